@@ -1,0 +1,37 @@
+"""``compile_study``: a study and its definitions in, a :class:`Plan` out, no I/O."""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+
+from pipeline.compile._cohort import cohort_stages
+from pipeline.compile._context import CompileContext
+from pipeline.compile._evidence import evidence_stages
+from pipeline.compile._plan import Plan, Stage
+from pipeline.compile._rules import rule_stages
+from pipeline.compile._sources import source_stages, source_tables
+from pipeline.config import LoadedStudy
+
+Pass = Callable[[CompileContext], tuple[Stage, ...]]
+
+# Data flows one way through these passes; each adds stages that read earlier ones.
+PASSES: tuple[Pass, ...] = (source_stages, evidence_stages, rule_stages, cohort_stages)
+
+
+def compile_study(loaded: LoadedStudy) -> Plan:
+    """Compile a loaded study into its plan of SQL stages.
+
+    Pure: no connection, file, clock or environment is read, so the same study always gives
+    the same plan.
+    """
+    ctx = CompileContext(loaded.study, loaded.catalog)
+    stages = tuple(stage for compile_pass in PASSES for stage in compile_pass(ctx))
+    return Plan(
+        study=loaded.study.study,
+        sources=source_tables(ctx),
+        stages=stages,
+        outputs=(
+            ("cohort", "cohort", ("patient_id",)),
+            ("attrition", "attrition", ("step_number",)),
+        ),
+    )

@@ -1,0 +1,154 @@
+"""Stages that turn usable rows into evidence events: (patient, evidence, date, rows that day).
+
+Coded rows are matched by an equality join against one small literal table of prefixes for all
+evidence of the study, so each table is scanned once however many definitions use it.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+
+from sqlglot import exp
+
+from pipeline.codes import expand_codes
+from pipeline.compile._context import CompileContext
+from pipeline.compile._plan import Stage
+from pipeline.compile._sql import days_between, query, value, values_table
+from pipeline.config import Evidence
+from pipeline.config._models import MeasurementEvidence
+
+CodeRow = tuple[str, str, str, str | None, bool]
+
+_CODED_EVIDENCE = """
+SELECT patient_id, evidence, event_date, CAST(COUNT(*) AS INT) AS n_rows
+FROM (
+  SELECT e.patient_id, e.event_date, c.evidence
+  FROM coded_events AS e
+  CROSS JOIN :lengths
+  JOIN :codes ON c.code_system = e.code_system
+    AND c.prefix = LEFT(e.code, l.prefix_length)
+    AND (c.source IS NULL OR c.source = e.source)
+  GROUP BY e.patient_id, e.event_date, e.code_system, e.code, e.source, c.evidence
+  HAVING NOT BOOL_OR(c.is_exclusion)
+) AS matched
+GROUP BY patient_id, evidence, event_date
+"""
+
+_MEASUREMENT_EVIDENCE = """
+SELECT patient_id, :key AS evidence, obs_date AS event_date, CAST(COUNT(*) AS INT) AS n_rows
+FROM :relation
+WHERE measure = :measure AND :passes
+GROUP BY patient_id, obs_date
+"""
+
+_EVIDENCE_EVENTS = """
+SELECT
+  patient_id, evidence, event_date, CAST(:day AS INT) AS day, CAST(SUM(n_rows) AS INT) AS n_rows
+FROM :events
+GROUP BY patient_id, evidence, event_date
+"""
+
+_COMPARISONS = {
+    "at_least": exp.GTE,
+    "above": exp.GT,
+    "below": exp.LT,
+    "at_most": exp.LTE,
+}
+
+
+def _code_rows(key: str, ev: Evidence) -> list[CodeRow]:
+    rows: list[CodeRow] = []
+    if ev.diagnosis:
+        sources: tuple[str | None, ...] = ev.diagnosis.source or (None,)
+        lists = [("ICD9", ev.diagnosis.ICD9, False), ("ICD10", ev.diagnosis.ICD10, False)]
+        if ev.diagnosis.exclude:
+            lists += [
+                ("ICD9", ev.diagnosis.exclude.ICD9, True),
+                ("ICD10", ev.diagnosis.exclude.ICD10, True),
+            ]
+        for system, codes, excluded in lists:
+            rows += [
+                (system, prefix, key, source, excluded)
+                for prefix in expand_codes(codes)
+                for source in sources
+            ]
+    if ev.prescription:
+        rows += [("ATC", p, key, None, False) for p in expand_codes(ev.prescription.atc)]
+        rows += [("ATC", p, key, None, True) for p in expand_codes(ev.prescription.exclude)]
+    return rows
+
+
+def code_table_rows(ctx: CompileContext) -> list[CodeRow]:
+    """Every (system, prefix, evidence, source, is_exclusion) row of the study, sorted."""
+    rows = {row for key, ev in ctx.evidence for row in _code_rows(key, ev)}
+    return sorted(rows, key=lambda r: (r[0], r[1], r[2], r[3] or "", r[4]))
+
+
+def _measurement_query(key: str, measurement: MeasurementEvidence, relation: str) -> exp.Query:
+    passes = exp.and_(
+        *(
+            _COMPARISONS[t.comparison](
+                this=exp.column("value"), expression=value(t.canonical_value)
+            )
+            for t in measurement.thresholds()
+        )
+    )
+    return query(
+        _MEASUREMENT_EVIDENCE,
+        key=key,
+        relation=exp.to_table(relation),
+        measure=measurement.measure,
+        passes=passes,
+    )
+
+
+def evidence_stages(ctx: CompileContext) -> tuple[Stage, ...]:
+    """Stages that produce ``evidence_events`` for every piece of evidence of the study."""
+    stages: list[Stage] = []
+    parts: list[exp.Query] = []
+    depends: list[str] = []
+    code_rows = code_table_rows(ctx)
+    if code_rows:
+        lengths = sorted({len(r[1]) for r in code_rows})
+        stages.append(
+            Stage(
+                "coded_evidence",
+                query(
+                    _CODED_EVIDENCE,
+                    lengths=values_table("l", ["prefix_length"], [(n,) for n in lengths]),
+                    codes=values_table(
+                        "c",
+                        ["code_system", "prefix", "evidence", "source", "is_exclusion"],
+                        code_rows,
+                    ),
+                ),
+                ("coded_events",),
+                "diagnosis and prescription rows matched to evidence by code prefix",
+            )
+        )
+        parts.append(query("SELECT patient_id, evidence, event_date, n_rows FROM coded_evidence"))
+        depends.append("coded_evidence")
+    for key, ev in ctx.evidence:
+        if ev.measurement:
+            parts.append(_measurement_query(key, ev.measurement, "measurement_values"))
+            depends.append("measurement_values")
+            if ev.measurement.measure == "egfr":
+                parts.append(_measurement_query(key, ev.measurement, "derived_egfr"))
+                depends.append("derived_egfr")
+    union = parts[0]
+    for part in parts[1:]:
+        union = union.union(part, distinct=False)
+    epoch = value(dt.date(1970, 1, 1))
+    stages.append(
+        Stage(
+            "evidence_events",
+            query(
+                _EVIDENCE_EVENTS,
+                day=days_between(epoch, exp.column("event_date")),
+                events=union.subquery("events"),
+            ),
+            tuple(sorted(set(depends))),
+            "one row per patient, evidence and day, with the day number for windows",
+        )
+    )
+    return tuple(stages)

@@ -1,0 +1,132 @@
+"""The plan: an ordered tuple of named SQL stages, a value you can print, diff and hash.
+
+Nothing here touches a database. Engines take a plan and run it; ``explain`` renders it.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass
+from typing import Literal
+
+from sqlglot import exp
+
+# The dialect the stage templates are written in; engines render to their own.
+SOURCE_DIALECT = "duckdb"
+
+
+@dataclass(frozen=True)
+class SourceTable:
+    """An extract table the plan reads, with the columns it needs.
+
+    Attributes:
+        name: Canonical table name, e.g. ``diagnoses``; the plan reads it as ``src_<name>``.
+        required: Columns that must be present in the file.
+        optional: Columns read when present and taken as NULL otherwise.
+        one_of: Groups of columns of which at least one must be present.
+    """
+
+    name: str
+    required: tuple[str, ...]
+    optional: tuple[str, ...] = ()
+    one_of: tuple[tuple[str, ...], ...] = ()
+
+    @property
+    def relation(self) -> str:
+        """The relation name stages use to read this table."""
+        return f"src_{self.name}"
+
+    @property
+    def columns(self) -> tuple[str, ...]:
+        """Every column the plan may read, in a fixed order."""
+        grouped = tuple(c for group in self.one_of for c in group)
+        return self.required + grouped + self.optional
+
+
+@dataclass(frozen=True)
+class Stage:
+    """One named step of the plan.
+
+    Attributes:
+        name: Unique snake_case name; later stages refer to it as a table.
+        query: The stage's query as a sqlglot tree, in the source dialect.
+        depends_on: Stages and source relations it reads.
+        description: Why the stage exists, in one line; shown by ``explain``.
+        kind: ``table`` is materialised; ``view`` is inlined where it is read; ``check`` must
+            return no rows, otherwise the run fails with ``failure`` and the first rows found.
+        failure: For checks, the message shown when rows are returned.
+    """
+
+    name: str
+    query: exp.Query
+    depends_on: tuple[str, ...]
+    description: str
+    kind: Literal["table", "view", "check"] = "table"
+    failure: str = ""
+
+    def render(self, dialect: str) -> str:
+        """Render the stage's query as SQL text for one dialect."""
+        return self.query.sql(dialect=dialect, pretty=True)
+
+
+@dataclass(frozen=True)
+class Plan:
+    """Everything an engine needs to build one study's cohort.
+
+    Attributes:
+        study: The study's name.
+        sources: Extract tables the plan reads.
+        stages: Stages in dependency order.
+        outputs: Output name (``cohort``, ``attrition``, ...) -> the stage that holds it, with
+            the columns it must be sorted by.
+    """
+
+    study: str
+    sources: tuple[SourceTable, ...]
+    stages: tuple[Stage, ...]
+    outputs: tuple[tuple[str, str, tuple[str, ...]], ...]
+
+    def __post_init__(self) -> None:
+        known = {s.relation for s in self.sources}
+        for stage in self.stages:
+            missing = [d for d in stage.depends_on if d not in known]
+            if missing:
+                raise ValueError(f"stage {stage.name} reads {missing} before they exist")
+            if stage.name in known:
+                raise ValueError(f"stage name {stage.name} is used twice")
+            known.add(stage.name)
+        for _, stage_name, _ in self.outputs:
+            if stage_name not in known:
+                raise ValueError(f"output stage {stage_name} is not in the plan")
+
+    def stage(self, name: str) -> Stage:
+        """Return a stage by name.
+
+        Raises:
+            KeyError: No stage has that name.
+        """
+        for stage in self.stages:
+            if stage.name == name:
+                return stage
+        raise KeyError(name)
+
+    def explain(self, dialect: str = SOURCE_DIALECT, *, only: str | None = None) -> str:
+        """Render the plan as commented SQL, one stage after another."""
+        parts = [f"-- plan for study {self.study} ({len(self.stages)} stages, dialect {dialect})"]
+        for source in self.sources:
+            parts.append(f"-- reads {source.relation}: {', '.join(source.columns)}")
+        for stage in self.stages:
+            if only is not None and stage.name != only:
+                continue
+            header = f"-- stage {stage.name} [{stage.kind}]: {stage.description}"
+            if stage.depends_on:
+                header += f"\n-- reads: {', '.join(stage.depends_on)}"
+            parts.append(f"{header}\n{stage.render(dialect)};")
+        return "\n\n".join(parts) + "\n"
+
+    def content_hash(self) -> str:
+        """A SHA-256 of the plan's SQL and shape, stored with outputs to tie them to the plan."""
+        digest = hashlib.sha256(self.explain(SOURCE_DIALECT).encode("utf-8"))
+        for name, stage_name, order in self.outputs:
+            digest.update(f"{name}:{stage_name}:{','.join(order)}".encode())
+        return digest.hexdigest()

@@ -1,0 +1,223 @@
+"""Load study and condition files, reporting every problem with file, line and column."""
+
+from __future__ import annotations
+
+import difflib
+from collections.abc import Iterable
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, TypeVar
+
+from pydantic import BaseModel, ValidationError
+
+from pipeline.config._models import Condition, Model, Study
+from pipeline.config._yaml import LocatedDocument, PathKey, load_yaml
+from pipeline.errors import ConfigError, Problem
+
+M = TypeVar("M", bound=BaseModel)
+
+
+def _vocabulary() -> list[str]:
+    """Every key our config models accept, for 'did you mean' suggestions."""
+    names: set[str] = set()
+    pending: list[type[BaseModel]] = [Model]
+    while pending:
+        model = pending.pop()
+        names.update(model.model_fields)
+        pending.extend(model.__subclasses__())
+    return sorted(names)
+
+
+def did_you_mean(word: str, choices: Iterable[str]) -> str:
+    """Return ``"; did you mean 'x'?"`` for the closest choice, or an empty string."""
+    close = difflib.get_close_matches(word, list(choices), n=1, cutoff=0.6)
+    return f"; did you mean '{close[0]}'?" if close else ""
+
+
+def _dotted(path: PathKey) -> str:
+    text = ""
+    for part in path:
+        text += f"[{part}]" if isinstance(part, int) else (f".{part}" if text else part)
+    return text or "(top level)"
+
+
+def _problem_from_error(doc: LocatedDocument, error: Any, vocabulary: list[str]) -> Problem:
+    loc: PathKey = tuple(error["loc"])
+    kind = error["type"]
+    if kind == "extra_forbidden":
+        key = str(loc[-1])
+        return doc.problem(
+            loc, "unknown-key", f"unknown key '{key}'{did_you_mean(key, vocabulary)}"
+        )
+    if kind == "missing":
+        return doc.problem(
+            loc[:-1], "missing-key", f"'{loc[-1]}' is required in {_dotted(loc[:-1])}"
+        )
+    message = str(error["msg"]).removeprefix("Value error, ")
+    if kind in ("greater_than_equal", "greater_than"):
+        message = f"must be {error['ctx'].get('ge', error['ctx'].get('gt'))} or more"
+        message += f" (got {error['input']!r})"
+    return doc.problem(loc, "bad-value", f"{_dotted(loc)}: {message}")
+
+
+def validate_document(doc: LocatedDocument, model: type[M]) -> M:
+    """Validate a located document against a model, mapping errors to file:line:col.
+
+    Raises:
+        ConfigError: With one problem per validation error.
+    """
+    if not isinstance(doc.data, dict):
+        raise ConfigError([doc.problem((), "bad-value", "the file must hold a mapping of keys")])
+    try:
+        return model.model_validate(doc.data)
+    except ValidationError as err:
+        vocabulary = _vocabulary()
+        raise ConfigError([_problem_from_error(doc, e, vocabulary) for e in err.errors()]) from err
+
+
+@dataclass(frozen=True)
+class Catalog:
+    """Every condition definition in a folder, by name, with the file it came from."""
+
+    folder: Path
+    conditions: dict[str, Condition]
+    files: dict[str, Path]
+
+    def get(self, name: str) -> Condition:
+        """Return a condition by name (names were checked when the study was loaded)."""
+        return self.conditions[name]
+
+
+def _check_rules(doc: LocatedDocument, condition: Condition) -> list[Problem]:
+    problems = []
+    for i, rule in enumerate(condition.rules):
+        for name in rule.need:
+            if name not in condition.evidence:
+                problems.append(
+                    doc.problem(
+                        ("rules", i, "need", name),
+                        "unknown-evidence",
+                        f"rule '{rule.name}' needs '{name}', which is not defined under "
+                        f"evidence{did_you_mean(name, condition.evidence)}",
+                    )
+                )
+    return problems
+
+
+def load_condition(file: Path) -> Condition:
+    """Load and check one condition file.
+
+    Raises:
+        ConfigError: Schema errors or rules that name undefined evidence.
+    """
+    doc = load_yaml(file)
+    condition = validate_document(doc, Condition)
+    problems = _check_rules(doc, condition)
+    if problems:
+        raise ConfigError(problems)
+    return condition
+
+
+def load_catalog(folder: Path) -> Catalog:
+    """Load every ``*.yaml`` condition file in a folder; all problems are reported together.
+
+    Raises:
+        ConfigError: A file is invalid, or two files define the same condition name.
+    """
+    if not folder.is_dir():
+        raise ConfigError(
+            [Problem(folder, 0, 0, "missing-folder", "the definitions folder does not exist")]
+        )
+    conditions: dict[str, Condition] = {}
+    files: dict[str, Path] = {}
+    problems: list[Problem] = []
+    for file in sorted(folder.glob("*.yaml")):
+        try:
+            condition = load_condition(file)
+        except ConfigError as err:
+            problems.extend(err.problems)
+            continue
+        if condition.condition in conditions:
+            doc = load_yaml(file)
+            problems.append(
+                doc.problem(
+                    ("condition",),
+                    "duplicate-condition",
+                    f"condition '{condition.condition}' is already defined in "
+                    f"{files[condition.condition]}",
+                )
+            )
+            continue
+        conditions[condition.condition] = condition
+        files[condition.condition] = file
+    if problems:
+        raise ConfigError(problems)
+    return Catalog(folder, conditions, files)
+
+
+@dataclass(frozen=True)
+class LoadedStudy:
+    """A validated study with its catalog; every path in it is absolute.
+
+    Attributes:
+        file: The study file.
+        study: The study with ``extract``, ``definitions`` and ``output.folder`` resolved
+            against the study file's folder.
+        catalog: The condition definitions the study may use.
+    """
+
+    file: Path
+    study: Study
+    catalog: Catalog
+
+
+def _resolve(base: Path, path: Path) -> Path:
+    return path if path.is_absolute() else (base / path).resolve()
+
+
+def load_study(file: Path) -> LoadedStudy:
+    """Load a study file and the condition definitions it refers to.
+
+    Raises:
+        ConfigError: Any schema or cross-reference problem, with file:line:col.
+    """
+    file = file.resolve()
+    doc = load_yaml(file)
+    study = validate_document(doc, Study)
+    base = file.parent
+    study = study.model_copy(
+        update={
+            "extract": _resolve(base, study.extract),
+            "definitions": _resolve(base, study.definitions),
+            "output": study.output.model_copy(
+                update={"folder": _resolve(base, study.output.folder)}
+            ),
+        }
+    )
+    try:
+        catalog = load_catalog(study.definitions)
+    except ConfigError as err:
+        if any(p.code == "missing-folder" for p in err.problems):
+            raise ConfigError(
+                [
+                    doc.problem(
+                        ("definitions",),
+                        "missing-folder",
+                        f"the definitions folder {study.definitions} does not exist",
+                    )
+                ]
+            ) from err
+        raise
+    problems = [
+        doc.problem(
+            ("outcomes", "conditions", i),
+            "unknown-condition",
+            f"outcome '{name}' is not defined in {study.definitions}"
+            f"{did_you_mean(name, catalog.conditions)}",
+        )
+        for i, name in enumerate(study.outcomes.conditions)
+        if name not in catalog.conditions
+    ]
+    if problems:
+        raise ConfigError(problems)
+    return LoadedStudy(file, study, catalog)

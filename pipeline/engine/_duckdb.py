@@ -1,0 +1,195 @@
+"""Run a plan on DuckDB, embedded, with a scratch folder for spilling.
+
+The engine binds each source table to a view over its files, renders every stage to DuckDB SQL
+and executes the stages in order. It knows nothing about studies: only plans.
+"""
+
+from __future__ import annotations
+
+import logging
+import tempfile
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import duckdb
+import pyarrow as pa
+from sqlglot import exp
+
+from pipeline.compile import Plan, SourceTable, Stage
+from pipeline.errors import EngineError
+from pipeline.extract import ExtractTable
+
+log = logging.getLogger(__name__)
+
+# An identifier in canonical integer form keeps its integer type; anything else stays text.
+_INTEGER_ID = r"^(0|-?[1-9][0-9]{0,17})$"
+
+
+@dataclass(frozen=True)
+class StageReport:
+    """What one stage cost: seconds and the rows it produced (None for views)."""
+
+    name: str
+    kind: str
+    seconds: float
+    rows: int | None
+
+
+@dataclass
+class RunResult:
+    """The outputs of a plan, read back from the engine, and what each stage cost."""
+
+    outputs: dict[str, pa.Table]
+    stages: list[StageReport] = field(default_factory=list)
+    engine: str = "duckdb"
+    engine_version: str = duckdb.__version__
+
+
+StageCallback = Callable[[Stage, int, int], None]
+
+
+def _reader(table: ExtractTable) -> exp.Expression:
+    files = exp.Array(expressions=[exp.Literal.string(str(f)) for f in table.files])
+    if table.file_format == "parquet":
+        return exp.func("read_parquet", files)
+    options = {"header": exp.true(), "all_varchar": exp.true(), "delim": exp.Literal.string(",")}
+    return exp.func(
+        "read_csv",
+        files,
+        *(exp.PropertyEQ(this=exp.var(k), expression=v) for k, v in options.items()),
+    )
+
+
+def _create(kind: str, name: str, query: exp.Query) -> exp.Create:
+    return exp.Create(
+        this=exp.to_table(name),
+        kind=kind,
+        expression=query,
+        properties=exp.Properties(expressions=[exp.TemporaryProperty()]),
+    )
+
+
+class DuckDBEngine:
+    """Execute plans on an embedded DuckDB database.
+
+    Args:
+        threads: Worker threads (DuckDB's default: all cores).
+        memory_limit: e.g. ``"2GB"``; beyond it DuckDB spills to the scratch folder.
+    """
+
+    DIALECT = "duckdb"
+
+    def __init__(self, *, threads: int | None = None, memory_limit: str | None = None) -> None:
+        self.threads = threads
+        self.memory_limit = memory_limit
+
+    def _connect(self, scratch: Path) -> duckdb.DuckDBPyConnection:
+        con = duckdb.connect(":memory:")
+        con.execute("SET temp_directory = ?", [str(scratch)])
+        con.execute("SET preserve_insertion_order = false")
+        if self.threads:
+            con.execute("SET threads = ?", [self.threads])
+        if self.memory_limit:
+            con.execute("SET memory_limit = ?", [self.memory_limit])
+        return con
+
+    def _id_type(self, con: duckdb.DuckDBPyConnection, patients: ExtractTable) -> str:
+        """The type patient_id gets in every table: the patients file's own type.
+
+        CSV has no types, so a CSV column of canonical integers is read as BIGINT (sorting 9
+        before 10) and anything else as text.
+        """
+        source = exp.Table(this=_reader(patients))
+        if patients.file_format == "parquet":
+            describe = exp.Describe(this=exp.select("patient_id").from_(source))
+            row = con.execute(describe.sql(self.DIALECT)).fetchone()
+            return str(row[1]) if row else "VARCHAR"
+        match = exp.func(
+            "REGEXP_FULL_MATCH", exp.column("patient_id"), exp.Literal.string(_INTEGER_ID)
+        )
+        probe = exp.select(exp.func("BOOL_AND", match)).from_(source)
+        row = con.execute(probe.sql(self.DIALECT)).fetchone()
+        return "BIGINT" if row and row[0] else "VARCHAR"
+
+    def _bind(
+        self,
+        con: duckdb.DuckDBPyConnection,
+        sources: tuple[SourceTable, ...],
+        tables: dict[str, ExtractTable],
+    ) -> None:
+        id_type = exp.DataType.build(self._id_type(con, tables["patients"]), dialect=self.DIALECT)
+        for source in sources:
+            table = tables[source.name]
+            columns: list[exp.Expression] = []
+            for name in source.columns:
+                if name not in table.columns:
+                    columns.append(exp.cast(exp.null(), "VARCHAR").as_(name))
+                elif name == "patient_id":
+                    columns.append(exp.TryCast(this=exp.column(name), to=id_type.copy()).as_(name))
+                else:
+                    columns.append(exp.column(name))
+            view = exp.select(*columns).from_(exp.Table(this=_reader(table)))
+            con.execute(_create("VIEW", source.relation, view).sql(self.DIALECT))
+
+    def _execute(self, con: duckdb.DuckDBPyConnection, stage: Stage) -> int | None:
+        if stage.kind == "check":
+            rows = con.execute(stage.render(self.DIALECT)).fetchall()
+            if rows:
+                shown = "; ".join(", ".join(str(v) for v in row) for row in rows)
+                raise EngineError(f"{stage.failure} (stage {stage.name}; first rows: {shown})")
+            return 0
+        kind = "VIEW" if stage.kind == "view" else "TABLE"
+        con.execute(_create(kind, stage.name, stage.query).sql(self.DIALECT))
+        if stage.kind == "view":
+            return None
+        count = exp.select(exp.func("COUNT", exp.Star())).from_(exp.to_table(stage.name))
+        row = con.execute(count.sql(self.DIALECT)).fetchone()
+        return int(row[0]) if row else 0
+
+    def run(
+        self,
+        plan: Plan,
+        tables: dict[str, ExtractTable],
+        *,
+        on_stage: StageCallback | None = None,
+    ) -> RunResult:
+        """Run every stage of the plan and return its outputs, sorted as the plan says.
+
+        Raises:
+            EngineError: DuckDB rejected a stage or a check stage found offending rows.
+        """
+        with tempfile.TemporaryDirectory(prefix="ascertain-scratch-") as scratch:
+            con = self._connect(Path(scratch))
+            try:
+                return self._run(con, plan, tables, on_stage)
+            except duckdb.Error as err:
+                raise EngineError(f"DuckDB failed: {err}") from err
+            finally:
+                con.close()
+
+    def _run(
+        self,
+        con: duckdb.DuckDBPyConnection,
+        plan: Plan,
+        tables: dict[str, ExtractTable],
+        on_stage: StageCallback | None,
+    ) -> RunResult:
+        self._bind(con, plan.sources, tables)
+        reports: list[StageReport] = []
+        for number, stage in enumerate(plan.stages, start=1):
+            if on_stage:
+                on_stage(stage, number, len(plan.stages))
+            started = time.perf_counter()
+            try:
+                rows = self._execute(con, stage)
+            except duckdb.Error as err:
+                raise EngineError(f"stage {stage.name} failed on DuckDB: {err}") from err
+            reports.append(StageReport(stage.name, stage.kind, time.perf_counter() - started, rows))
+            log.debug("stage %s: %.3fs, %s rows", stage.name, reports[-1].seconds, rows)
+        outputs = {}
+        for output, stage_name, order in plan.outputs:
+            select = exp.select("*").from_(stage_name).order_by(*order)
+            outputs[output] = con.sql(select.sql(self.DIALECT)).to_arrow_table()
+        return RunResult(outputs, reports)

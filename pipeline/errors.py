@@ -1,0 +1,60 @@
+"""The project's exception tree.
+
+Every error a user can cause derives from :class:`AscertainError`, so the CLI can print it as one
+plain message and exit 2 instead of showing a traceback::
+
+    AscertainError
+    ├── ConfigError     a study or condition file is unreadable or inconsistent (file:line:col)
+    ├── ExtractError    the extract is missing a table or column, or cannot be read
+    └── EngineError     the engine refused a plan or a data check failed while running it
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+
+class AscertainError(Exception):
+    """Base class of every error the tool reports to a user."""
+
+
+@dataclass(frozen=True, order=True)
+class Problem:
+    """One located problem in a configuration file.
+
+    Attributes:
+        file: The file at fault.
+        line: 1-based line, 0 when the problem concerns the whole file.
+        column: 1-based column, 0 when unknown.
+        code: A stable short identifier, e.g. ``unknown-key``.
+        message: One plain sentence.
+    """
+
+    file: Path
+    line: int
+    column: int
+    code: str
+    message: str
+
+    def __str__(self) -> str:
+        where = str(self.file)
+        if self.line:
+            where += f":{self.line}:{self.column}" if self.column else f":{self.line}"
+        return f"{where} [{self.code}] {self.message}"
+
+
+class ConfigError(AscertainError):
+    """One or more problems in study or condition files, each with its location."""
+
+    def __init__(self, problems: list[Problem]) -> None:
+        self.problems = sorted(problems)
+        super().__init__("\n".join(str(p) for p in self.problems))
+
+
+class ExtractError(AscertainError):
+    """The extract cannot be used: a missing table, a missing column, an unreadable file."""
+
+
+class EngineError(AscertainError):
+    """The engine failed to run a plan, or a data check in the plan found offending rows."""

@@ -1,0 +1,82 @@
+"""Write a run's outputs into a folder atomically: all files appear together or none do.
+
+Data files hold no timestamps and are written with fixed settings, so the same inputs give the
+same bytes; when and where the run happened goes to ``run.json`` only.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+import shutil
+import tempfile
+from pathlib import Path
+from typing import Any
+
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+ATTRITION_COLUMNS = ("step", "description", "patients_before", "removed", "remaining")
+
+
+def write_parquet(table: pa.Table, path: Path) -> None:
+    """Write a table to Parquet with fixed writer settings (deterministic bytes)."""
+    pq.write_table(
+        table,
+        path,
+        compression="zstd",
+        compression_level=3,
+        use_dictionary=True,
+        write_statistics=True,
+        row_group_size=1_000_000,
+    )
+
+
+def write_attrition(table: pa.Table, path: Path) -> None:
+    """Write the attrition log as CSV with the columns a reader expects, in step order."""
+    rows = table.select(list(ATTRITION_COLUMNS)).to_pylist()
+    with path.open("w", encoding="utf-8", newline="") as handle:
+        writer = csv.DictWriter(handle, fieldnames=ATTRITION_COLUMNS, lineterminator="\n")
+        writer.writeheader()
+        writer.writerows(rows)
+
+
+def write_json(data: dict[str, Any], path: Path) -> None:
+    """Write JSON with sorted keys and a trailing newline."""
+    path.write_text(json.dumps(data, indent=2, sort_keys=True, default=str) + "\n", "utf-8")
+
+
+def replace_folder(staged: Path, target: Path) -> None:
+    """Move a fully written folder into place, replacing ``target`` only at the last step."""
+    target.parent.mkdir(parents=True, exist_ok=True)
+    if target.exists():
+        retired = Path(tempfile.mkdtemp(prefix=f".{target.name}.old-", dir=target.parent))
+        target.rename(retired / target.name)
+        staged.rename(target)
+        shutil.rmtree(retired)
+    else:
+        staged.rename(target)
+
+
+def write_outputs(
+    target: Path, *, cohort: pa.Table, attrition: pa.Table, run_info: dict[str, Any]
+) -> list[Path]:
+    """Write ``cohort.parquet``, ``attrition.csv`` and ``run.json`` into ``target``.
+
+    Files are written to a hidden sibling folder first and moved into place together, so a
+    failed run never leaves a half-written output folder.
+
+    Returns:
+        The paths written, in a fixed order.
+    """
+    target.parent.mkdir(parents=True, exist_ok=True)
+    staged = Path(tempfile.mkdtemp(prefix=f".{target.name}.new-", dir=target.parent))
+    try:
+        write_parquet(cohort, staged / "cohort.parquet")
+        write_attrition(attrition, staged / "attrition.csv")
+        write_json(run_info, staged / "run.json")
+        replace_folder(staged, target)
+    except BaseException:
+        shutil.rmtree(staged, ignore_errors=True)
+        raise
+    return [target / "cohort.parquet", target / "attrition.csv", target / "run.json"]
