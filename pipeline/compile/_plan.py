@@ -110,6 +110,26 @@ class Plan:
                 return stage
         raise KeyError(name)
 
+    def through(self, name: str, order: tuple[str, ...] = ("patient_id",)) -> Plan:
+        """The smallest plan that computes stage ``name``, with that stage as its only output.
+
+        Used to run one stage and what it reads, e.g. in tests or when tracing one patient.
+
+        Raises:
+            KeyError: No stage has that name.
+        """
+        needed = {name}
+        for stage in reversed(self.stages):
+            if stage.name in needed:
+                needed.update(stage.depends_on)
+        self.stage(name)
+        return Plan(
+            study=self.study,
+            sources=tuple(s for s in self.sources if s.relation in needed),
+            stages=tuple(s for s in self.stages if s.name in needed),
+            outputs=((name, name, order),),
+        )
+
     def explain(self, dialect: str = SOURCE_DIALECT, *, only: str | None = None) -> str:
         """Render the plan as commented SQL, one stage after another."""
         parts = [f"-- plan for study {self.study} ({len(self.stages)} stages, dialect {dialect})"]

@@ -57,7 +57,7 @@ def _problem_from_error(doc: LocatedDocument, error: Any, vocabulary: list[str])
     if kind in ("greater_than_equal", "greater_than"):
         message = f"must be {error['ctx'].get('ge', error['ctx'].get('gt'))} or more"
         message += f" (got {error['input']!r})"
-    return doc.problem(loc, "bad-value", f"{_dotted(loc)}: {message}")
+    return doc.problem(loc, "bad-value", f"{_dotted(loc)}: {message}", at_value=True)
 
 
 def validate_document(doc: LocatedDocument, model: type[M]) -> M:

@@ -30,18 +30,21 @@ class LocatedDocument:
     file: Path
     data: Any
     positions: dict[PathKey, tuple[int, int]] = field(repr=False)
+    value_positions: dict[PathKey, tuple[int, int]] = field(repr=False, default_factory=dict)
 
-    def locate(self, path: PathKey) -> tuple[int, int]:
-        """Return the position of the deepest known prefix of ``path``."""
+    def locate(self, path: PathKey, *, at_value: bool = False) -> tuple[int, int]:
+        """Return the position of the deepest known prefix of ``path`` (its key, or value)."""
+        if at_value and tuple(path) in self.value_positions:
+            return self.value_positions[tuple(path)]
         for end in range(len(path), -1, -1):
             found = self.positions.get(tuple(path[:end]))
             if found is not None:
                 return found
         return (0, 0)
 
-    def problem(self, path: PathKey, code: str, message: str) -> Problem:
-        """Build a :class:`Problem` located at ``path``."""
-        line, column = self.locate(path)
+    def problem(self, path: PathKey, code: str, message: str, *, at_value: bool = False) -> Problem:
+        """Build a :class:`Problem` located at ``path`` (its key, or its value)."""
+        line, column = self.locate(path, at_value=at_value)
         return Problem(self.file, line, column, code, message)
 
 
@@ -54,10 +57,12 @@ class _Builder:
         self.file = file
         self.constructor = yaml.SafeLoader("")
         self.positions: dict[PathKey, tuple[int, int]] = {}
+        self.value_positions: dict[PathKey, tuple[int, int]] = {}
         self.problems: list[Problem] = []
 
     def build(self, node: yaml.Node, path: PathKey) -> Any:
         self.positions.setdefault(path, _position(node))
+        self.value_positions[path] = _position(node)
         if isinstance(node, yaml.MappingNode):
             result: dict[str, Any] = {}
             for key_node, value_node in node.value:
@@ -110,4 +115,4 @@ def load_yaml(file: Path) -> LocatedDocument:
         raise ConfigError([Problem(file, line, column, "bad-yaml", str(err.problem))]) from err
     if builder.problems:
         raise ConfigError(builder.problems)
-    return LocatedDocument(file, data, builder.positions)
+    return LocatedDocument(file, data, builder.positions, builder.value_positions)

@@ -104,14 +104,14 @@ class DuckDBEngine:
         source = exp.Table(this=_reader(patients))
         if patients.file_format == "parquet":
             describe = exp.Describe(this=exp.select("patient_id").from_(source))
-            row = con.execute(describe.sql(self.DIALECT)).fetchone()
-            return str(row[1]) if row else "VARCHAR"
+            rows = con.execute(describe.sql(self.DIALECT)).fetchall()
+            return str(rows[0][1]) if rows else "VARCHAR"
         match = exp.func(
             "REGEXP_FULL_MATCH", exp.column("patient_id"), exp.Literal.string(_INTEGER_ID)
         )
         probe = exp.select(exp.func("BOOL_AND", match)).from_(source)
-        row = con.execute(probe.sql(self.DIALECT)).fetchone()
-        return "BIGINT" if row and row[0] else "VARCHAR"
+        rows = con.execute(probe.sql(self.DIALECT)).fetchall()
+        return "BIGINT" if rows and rows[0][0] else "VARCHAR"
 
     def _bind(
         self,
@@ -145,8 +145,7 @@ class DuckDBEngine:
         if stage.kind == "view":
             return None
         count = exp.select(exp.func("COUNT", exp.Star())).from_(exp.to_table(stage.name))
-        row = con.execute(count.sql(self.DIALECT)).fetchone()
-        return int(row[0]) if row else 0
+        return int(con.execute(count.sql(self.DIALECT)).fetchall()[0][0])
 
     def run(
         self,

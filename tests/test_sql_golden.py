@@ -1,0 +1,48 @@
+"""Golden files of the demo plan's SQL: any change to generated SQL shows up in review.
+
+Regenerate with ``pytest tests/test_sql_golden.py --update-golden`` and read the diff.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+import sqlglot
+from sqlglot import exp
+
+from pipeline._build import plan_study
+
+from .conftest import DEMO_STUDY
+
+GOLDEN = Path(__file__).parent / "golden" / "orvane_multimorbidity"
+
+
+@pytest.mark.parametrize("dialect", ["duckdb"])
+def test_demo_plan_matches_golden(dialect: str, update_golden: bool) -> None:
+    text = plan_study(DEMO_STUDY).explain(dialect)
+    golden = GOLDEN / f"{dialect}.sql"
+    if update_golden:
+        golden.write_text(text, encoding="utf-8")
+    assert text == golden.read_text(encoding="utf-8")
+
+
+def test_compiling_twice_gives_identical_plans() -> None:
+    first, second = plan_study(DEMO_STUDY), plan_study(DEMO_STUDY)
+    assert first.explain() == second.explain()
+    assert first.content_hash() == second.content_hash()
+
+
+def test_every_stage_parses_back_and_declares_what_it_reads() -> None:
+    plan = plan_study(DEMO_STUDY)
+    for stage in plan.stages:
+        reparsed = sqlglot.parse_one(stage.render("duckdb"), read="duckdb")
+        ctes = {cte.alias for cte in reparsed.find_all(exp.CTE)}
+        tables = {t.name for t in reparsed.find_all(exp.Table) if t.name and t.name not in ctes}
+        assert tables == set(stage.depends_on), stage.name
+
+
+def test_stage_names_are_unique_snake_case() -> None:
+    names = [s.name for s in plan_study(DEMO_STUDY).stages]
+    assert len(names) == len(set(names))
+    assert all(n.replace("_", "").isalnum() and n == n.lower() for n in names)
