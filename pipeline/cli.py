@@ -6,6 +6,7 @@ fix are printed as one plain message (file:line where there is one) with exit co
 
 from __future__ import annotations
 
+import datetime as dt
 import sys
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
@@ -113,3 +114,41 @@ def sql(
         Console(stderr=True).print(f"error: no stage '{stage}'; stages: {names}")
         raise typer.Exit(2)
     typer.echo(plan.explain(dialect, only=stage), nl=False)
+
+
+@app.command()
+def synth(
+    out_dir: Annotated[Path, typer.Argument(help="Folder to write the extract into.")],
+    patients: Annotated[int, typer.Option(min=1, help="Number of patients.")] = 10_000,
+    seed: Annotated[int, typer.Option(help="Random seed; the same seed gives the same bytes.")] = 1,
+    file_format: Annotated[str, typer.Option("--format", help="parquet or csv.")] = "parquet",
+    start: Annotated[
+        str, typer.Option(help="First day of the extract (YYYY-MM-DD).")
+    ] = "2010-01-01",
+    end: Annotated[str, typer.Option(help="Last day of the extract (YYYY-MM-DD).")] = "2021-12-31",
+    debug: DebugOpt = False,
+) -> None:
+    """Write a synthetic Orvane Bay extract with its ground truth (fictional data)."""
+    from pipeline.synth import generate_extract
+
+    if file_format not in ("parquet", "csv"):
+        Console(stderr=True).print(f"error: --format must be parquet or csv, not '{file_format}'")
+        raise typer.Exit(2)
+    try:
+        first, last = dt.date.fromisoformat(start), dt.date.fromisoformat(end)
+    except ValueError as err:
+        Console(stderr=True).print(f"error: --start/--end: {err}")
+        raise typer.Exit(2) from None
+    summary = _fail_cleanly(
+        lambda: generate_extract(
+            out_dir,
+            patients=patients,
+            seed=seed,
+            file_format="csv" if file_format == "csv" else "parquet",
+            start=first,
+            end=last,
+        ),
+        debug=debug,
+    )
+    rows = ", ".join(f"{name} {count:,}" for name, count in sorted(summary.rows.items()))
+    Console(highlight=False).print(f"wrote {summary.patients:,} patients to {out_dir}: {rows}")
