@@ -72,7 +72,9 @@ def rule_query(condition: Condition, rule: Rule) -> exp.Query:
     if rule.apart_at_least_days is not None:
         # Exactly two events: the current row is one, the frame must hold the other.
         if len(keys) == 1:
-            met = exp.and_(exp.column("evidence").eq(keys[0]), exp.column("in_frame_0") >= 1)
+            # With apart 0 the frame holds the current row itself: another event is needed.
+            others = 2 if rule.apart_at_least_days == 0 else 1
+            met = exp.and_(exp.column("evidence").eq(keys[0]), exp.column("in_frame_0") >= others)
         else:
             met = exp.or_(
                 exp.and_(exp.column("evidence").eq(keys[0]), exp.column("in_frame_1") >= 1),

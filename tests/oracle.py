@@ -1,0 +1,119 @@
+"""A slow, plain-Python reference for when a rule is first met (one patient at a time).
+
+It knows nothing about the compiler; it restates the rule semantics of DEMO_STUDY.md
+("Evidence and rules") as directly as possible:
+
+- Each ``(evidence key, date, n_rows)`` becomes events: one event per (evidence, date) with
+  ``distinct_days``, otherwise ``n_rows`` separate events on that date.
+- ``need {e: k, ...}`` with ``within_days W`` is met by a set holding ``k`` distinct events of
+  each ``e`` whose dates span at most ``W`` days (no ``W``: no limit). The onset is the minimum
+  over qualifying sets of the latest date in the set.
+- ``apart_at_least_days A`` (two events in total): a pair of distinct events of the needed
+  kinds whose dates differ by at least ``A`` (and at most ``W`` when given); the onset is the
+  minimum over such pairs of the later date.
+
+Two independent formulations of the ``within_days`` rules are given: :func:`rule_onset` scans
+candidate end dates and counts, :func:`rule_onset_by_sets` enumerates the sets themselves (only
+usable on tiny inputs); the tests check that they agree.
+"""
+
+from __future__ import annotations
+
+import itertools
+from collections import Counter
+from datetime import date
+
+Event = tuple[str, date]  # (evidence name, date); one per event, repeated for n_rows
+
+
+def _expand(events: list[tuple[str, date, int]], rule: dict, condition: str) -> list[Event]:
+    """The events the rule can use, as (evidence name, date), one entry per event."""
+    prefix = f"{condition}."
+    out: list[Event] = []
+    for key, day, n_rows in events:
+        if not key.startswith(prefix):
+            continue  # evidence of another condition
+        name = key[len(prefix) :]
+        if name not in rule["need"]:
+            continue  # evidence this rule does not use
+        copies = 1 if rule.get("distinct_days", False) else n_rows
+        out.extend([(name, day)] * copies)
+    return out
+
+
+def _apart_onset(expanded: list[Event], rule: dict) -> date | None:
+    """Earliest later-date over pairs of distinct events that are far enough apart."""
+    apart = rule["apart_at_least_days"]
+    within = rule.get("within_days")
+    needed = Counter(rule["need"])  # exactly two events in total
+    best: date | None = None
+    # combinations over positions: each pair uses two different events
+    for (name1, day1), (name2, day2) in itertools.combinations(expanded, 2):
+        if Counter([name1, name2]) != needed:
+            continue
+        gap = abs((day2 - day1).days)
+        if gap < apart:
+            continue
+        if within is not None and gap > within:
+            continue
+        later = max(day1, day2)
+        if best is None or later < best:
+            best = later
+    return best
+
+
+def rule_onset(events: list[tuple[str, date, int]], rule: dict, condition: str) -> date | None:
+    """The date one patient first meets ``rule``, or None.
+
+    Args:
+        events: The patient's rows of ``evidence_events``: (``"<condition>.<evidence>"``,
+            date, n_rows).
+        rule: A rule as written in a definition (``need``, ``distinct_days``,
+            ``within_days``, ``apart_at_least_days``).
+        condition: The condition the rule belongs to.
+    """
+    expanded = _expand(events, rule, condition)
+    if rule.get("apart_at_least_days") is not None:
+        return _apart_onset(expanded, rule)
+    within = rule.get("within_days")
+    # The latest date of any set is the date of one of its events, so the candidate onsets
+    # are the event dates; try them from the earliest and stop at the first that works.
+    for end in sorted({day for _, day in expanded}):
+        # events usable by a set whose latest date is `end`
+        window = [
+            (name, day)
+            for name, day in expanded
+            if day <= end and (within is None or (end - day).days <= within)
+        ]
+        counts = Counter(name for name, _ in window)  # one entry per event (see _expand)
+        if all(counts[name] >= k for name, k in rule["need"].items()):
+            return end
+    return None
+
+
+def rule_onset_by_sets(
+    events: list[tuple[str, date, int]], rule: dict, condition: str
+) -> date | None:
+    """Same as :func:`rule_onset` for ``within_days`` rules, by enumerating every set.
+
+    Exponential: for tiny inputs only.
+    """
+    expanded = _expand(events, rule, condition)
+    within = rule.get("within_days")
+    positions = {
+        name: [i for i, (n, _) in enumerate(expanded) if n == name] for name in rule["need"]
+    }
+    choices = [itertools.combinations(positions[name], k) for name, k in rule["need"].items()]
+    best: date | None = None
+    for picked in itertools.product(*choices):
+        chosen = [expanded[i] for group in picked for i in group]
+        days = [day for _, day in chosen]
+        if rule.get("distinct_days", False) and any(
+            len({day for n, day in chosen if n == name}) < k for name, k in rule["need"].items()
+        ):
+            continue  # k events of one evidence must fall on k different dates
+        if within is not None and (max(days) - min(days)).days > within:
+            continue
+        if best is None or max(days) < best:
+            best = max(days)
+    return best
