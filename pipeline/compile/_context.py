@@ -6,6 +6,7 @@ from dataclasses import dataclass
 from functools import cached_property
 
 from pipeline.config import Catalog, Condition, Evidence, Study
+from pipeline.measures import DERIVED_FROM, MEASURES
 
 
 def evidence_key(condition: str, evidence: str) -> str:
@@ -25,38 +26,51 @@ class CompileContext:
     catalog: Catalog
 
     @cached_property
-    def conditions(self) -> tuple[Condition, ...]:
-        """Conditions the study uses, in the order the study names them."""
+    def outcomes(self) -> tuple[Condition, ...]:
+        """Outcome conditions, in the order the study names them."""
         return tuple(self.catalog.get(name) for name in self.study.outcomes.conditions)
 
     @cached_property
+    def flagged(self) -> tuple[str, ...]:
+        """Conditions whose onset the analysis table needs: outcomes, then covariate flags."""
+        names = list(self.study.outcomes.conditions)
+        names += [c.condition for c in self.study.covariates.values() if c.condition]
+        return tuple(dict.fromkeys(names))
+
+    @cached_property
+    def conditions(self) -> tuple[Condition, ...]:
+        """Every condition to evaluate, each after the conditions it refers to."""
+        return tuple(self.catalog.get(n) for n in self.catalog.with_references(self.flagged))
+
+    @cached_property
     def evidence(self) -> tuple[tuple[str, Evidence], ...]:
-        """Every piece of evidence the study's conditions use, by key, in a fixed order."""
+        """Every piece of evidence read from the extract, by key, in a fixed order."""
         return tuple(
             (evidence_key(c.condition, name), ev)
             for c in self.conditions
             for name, ev in sorted(c.evidence.items())
+            if ev.condition is None
         )
 
     @cached_property
     def measures(self) -> tuple[str, ...]:
-        """Measures the evidence compares, plus creatinine when eGFR may be derived from it."""
+        """Measures the evidence reads, with those needed to derive them."""
         wanted = {ev.measurement.measure for _, ev in self.evidence if ev.measurement}
-        if "egfr" in wanted:
-            wanted.add("creatinine")
+        for derived, sources in DERIVED_FROM.items():
+            if derived in wanted:
+                wanted.update(sources)
         return tuple(sorted(wanted))
 
     @property
-    def uses_diagnoses(self) -> bool:
-        """Whether any evidence reads the diagnoses table."""
-        return any(ev.diagnosis for _, ev in self.evidence)
+    def numeric_measures(self) -> tuple[str, ...]:
+        """The measures read as numbers (not coded)."""
+        return tuple(m for m in self.measures if not MEASURES[m].is_coded)
 
-    @property
-    def uses_prescriptions(self) -> bool:
-        """Whether any evidence reads the prescriptions table."""
-        return any(ev.prescription for _, ev in self.evidence)
+    def uses(self, kind: str) -> bool:
+        """Whether any evidence is of this kind (diagnosis, prescription, encounter ...)."""
+        return any(getattr(ev, kind) is not None for _, ev in self.evidence)
 
     @property
     def uses_coded_events(self) -> bool:
         """Whether any evidence is matched by code (diagnoses or prescriptions)."""
-        return self.uses_diagnoses or self.uses_prescriptions
+        return self.uses("diagnosis") or self.uses("prescription")

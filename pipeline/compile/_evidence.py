@@ -12,12 +12,14 @@ from sqlglot import exp
 
 from pipeline.codes import expand_codes
 from pipeline.compile._context import CompileContext
+from pipeline.compile._measurements import measure_relations
 from pipeline.compile._plan import Stage
-from pipeline.compile._sql import days_between, query, value, values_table
+from pipeline.compile._sql import days_between, is_in, query, value, values_table
 from pipeline.config import Evidence
 from pipeline.config._models import MeasurementEvidence
+from pipeline.measures import Threshold
 
-CodeRow = tuple[str, str, str, str | None, bool]
+CodeRow = tuple[str, str, str, str | None, int | None, bool]
 
 _CODED_EVIDENCE = """
 SELECT patient_id, evidence, event_date, CAST(COUNT(*) AS INT) AS n_rows
@@ -28,6 +30,7 @@ FROM (
   JOIN :codes ON c.code_system = e.code_system
     AND c.prefix = LEFT(e.code, l.prefix_length)
     AND (c.source IS NULL OR c.source = e.source)
+    AND (c.min_days IS NULL OR e.duration_days >= c.min_days)
   GROUP BY e.patient_id, e.event_date, e.code_system, e.code, e.source, c.evidence
   HAVING NOT BOOL_OR(c.is_exclusion)
 ) AS matched
@@ -41,11 +44,25 @@ WHERE measure = :measure AND :passes
 GROUP BY patient_id, obs_date
 """
 
+_ENCOUNTER_EVIDENCE = """
+SELECT patient_id, :key AS evidence, encounter_date AS event_date, CAST(COUNT(*) AS INT) AS n_rows
+FROM encounter_rows
+WHERE :types
+GROUP BY patient_id, encounter_date
+"""
+
 _EVIDENCE_EVENTS = """
 SELECT
   patient_id, evidence, event_date, CAST(:day AS INT) AS day, CAST(SUM(n_rows) AS INT) AS n_rows
 FROM :events
 GROUP BY patient_id, evidence, event_date
+"""
+
+_NO_EVENTS = """
+SELECT patient_id, CAST(NULL AS VARCHAR) AS evidence, CAST(NULL AS DATE) AS event_date,
+  1 AS n_rows
+FROM patient_base
+WHERE FALSE
 """
 
 _COMPARISONS = {
@@ -54,6 +71,29 @@ _COMPARISONS = {
     "below": exp.LT,
     "at_most": exp.LTE,
 }
+
+# A value reported as "<x" or ">x" meets a threshold only when the comparison is certain:
+# "<x" is below t when x <= t; ">x" is at least t when x >= t; otherwise it is not counted.
+_CERTAIN_WITH_QUALIFIER = {
+    "below": {"<": exp.LTE, "<=": exp.LT},
+    "at_most": {"<": exp.LTE, "<=": exp.LTE},
+    "above": {">": exp.GTE, ">=": exp.GT},
+    "at_least": {">": exp.GTE, ">=": exp.GTE},
+}
+
+
+def _meets(threshold: Threshold) -> exp.Expression:
+    value_col, limit = exp.column("value"), value(threshold.canonical_value)
+    case = exp.Case().when(
+        exp.column("qualifier").is_(exp.null()),
+        _COMPARISONS[threshold.comparison](this=value_col, expression=limit),
+    )
+    for qualifier, compare in _CERTAIN_WITH_QUALIFIER[threshold.comparison].items():
+        case = case.when(
+            exp.column("qualifier").eq(qualifier),
+            compare(this=value_col.copy(), expression=limit.copy()),
+        )
+    return case.else_(exp.false())
 
 
 def _code_rows(key: str, ev: Evidence) -> list[CodeRow]:
@@ -68,31 +108,28 @@ def _code_rows(key: str, ev: Evidence) -> list[CodeRow]:
             ]
         for system, codes, excluded in lists:
             rows += [
-                (system, prefix, key, source, excluded)
+                (system, prefix, key, source, None, excluded)
                 for prefix in expand_codes(codes)
                 for source in sources
             ]
     if ev.prescription:
-        rows += [("ATC", p, key, None, False) for p in expand_codes(ev.prescription.atc)]
-        rows += [("ATC", p, key, None, True) for p in expand_codes(ev.prescription.exclude)]
+        rx = ev.prescription
+        rows += [("ATC", p, key, None, rx.min_days, False) for p in expand_codes(rx.atc)]
+        rows += [("ATC", p, key, None, None, True) for p in expand_codes(rx.exclude)]
     return rows
 
 
 def code_table_rows(ctx: CompileContext) -> list[CodeRow]:
     """Every (system, prefix, evidence, source, is_exclusion) row of the study, sorted."""
     rows = {row for key, ev in ctx.evidence for row in _code_rows(key, ev)}
-    return sorted(rows, key=lambda r: (r[0], r[1], r[2], r[3] or "", r[4]))
+    return sorted(rows, key=lambda r: (r[0], r[1], r[2], r[3] or "", r[4] or 0, r[5]))
 
 
 def _measurement_query(key: str, measurement: MeasurementEvidence, relation: str) -> exp.Query:
-    passes = exp.and_(
-        *(
-            _COMPARISONS[t.comparison](
-                this=exp.column("value"), expression=value(t.canonical_value)
-            )
-            for t in measurement.thresholds()
-        )
-    )
+    if measurement.category:
+        passes = is_in(exp.column("category"), measurement.category)
+    else:
+        passes = exp.and_(*(_meets(t) for t in measurement.thresholds()))
     return query(
         _MEASUREMENT_EVIDENCE,
         key=key,
@@ -118,7 +155,7 @@ def evidence_stages(ctx: CompileContext) -> tuple[Stage, ...]:
                     lengths=values_table("l", ["prefix_length"], [(n,) for n in lengths]),
                     codes=values_table(
                         "c",
-                        ["code_system", "prefix", "evidence", "source", "is_exclusion"],
+                        ["code_system", "prefix", "evidence", "source", "min_days", "is_exclusion"],
                         code_rows,
                     ),
                 ),
@@ -130,11 +167,16 @@ def evidence_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         depends.append("coded_evidence")
     for key, ev in ctx.evidence:
         if ev.measurement:
-            parts.append(_measurement_query(key, ev.measurement, "measurement_values"))
-            depends.append("measurement_values")
-            if ev.measurement.measure == "egfr":
-                parts.append(_measurement_query(key, ev.measurement, "derived_egfr"))
-                depends.append("derived_egfr")
+            for relation in measure_relations(ctx, ev.measurement.measure):
+                parts.append(_measurement_query(key, ev.measurement, relation))
+                depends.append(relation)
+        if ev.encounter:
+            types = is_in(exp.column("encounter_type"), [t.lower() for t in ev.encounter.type])
+            parts.append(query(_ENCOUNTER_EVIDENCE, key=key, types=types))
+            depends.append("encounter_rows")
+    if not parts:  # every piece of evidence refers to another condition
+        parts.append(query(_NO_EVENTS))
+        depends.append("patient_base")
     union = parts[0]
     for part in parts[1:]:
         union = union.union(part, distinct=False)

@@ -4,15 +4,20 @@ A rule is met on the earliest date ``t`` such that the evidence it needs has all
 window ``[t - within_days, t]``; the onset is the minimum over qualifying sets of the latest
 date in the set. One window function per evidence computes this for every patient at once.
 With ``apart_at_least_days`` (two events) the frame becomes ``[t - within, t - apart]``.
+
+Conditions are evaluated one stage each, in reference order, so a condition used as evidence
+(``condition: diabetes``) is finished before the conditions that read its onset.
 """
 
 from __future__ import annotations
+
+import datetime as dt
 
 from sqlglot import exp
 
 from pipeline.compile._context import CompileContext, evidence_key
 from pipeline.compile._plan import Stage
-from pipeline.compile._sql import expression, query
+from pipeline.compile._sql import days_between, expression, is_in, query, value
 from pipeline.config import Condition, Rule
 
 _WITHIN = "RANGE BETWEEN :within PRECEDING AND CURRENT ROW"
@@ -32,12 +37,22 @@ WHERE :met
 GROUP BY patient_id
 """
 
-_FIRST_EVIDENCE = """
-SELECT e.patient_id, :condition AS condition, MIN(e.event_date) AS onset_date
-FROM evidence_events AS e
-JOIN (SELECT DISTINCT patient_id FROM rule_onsets WHERE condition = :condition) AS m
-  ON m.patient_id = e.patient_id
-WHERE :keys
+_REFERENCED_ONSETS = """
+SELECT patient_id, :key AS evidence, onset_date AS event_date, CAST(:day AS INT) AS day,
+  1 AS n_rows
+FROM :onsets
+"""
+
+_ONSET_RULE_MET = """
+SELECT patient_id, MIN(onset_date) AS onset_date
+FROM :rules
+GROUP BY patient_id
+"""
+
+_ONSET_FIRST_EVIDENCE = """
+SELECT e.patient_id, MIN(e.event_date) AS onset_date
+FROM :events AS e
+JOIN (SELECT DISTINCT patient_id FROM :rules) AS m ON m.patient_id = e.patient_id
 GROUP BY e.patient_id
 """
 
@@ -52,10 +67,21 @@ def _frame(rule: Rule) -> tuple[str, dict[str, int]]:
     return _WITHIN, {"within": rule.within_days}
 
 
-def rule_query(condition: Condition, rule: Rule) -> exp.Query:
-    """The query giving, per patient, the first date on which ``rule`` is met."""
+def _keys(condition: Condition, names: list[str] | tuple[str, ...]) -> list[str]:
+    return [evidence_key(condition.condition, n) for n in names]
+
+
+def rule_query(condition: Condition, rule: Rule, events: exp.Expression | None = None) -> exp.Query:
+    """The query giving, per patient, the first date on which ``rule`` is met.
+
+    Args:
+        condition: The condition the rule belongs to.
+        rule: The rule.
+        events: The relation of evidence events to read; ``evidence_events`` by default.
+    """
+    source = events if events is not None else exp.to_table("evidence_events")
     names = sorted(rule.need)
-    keys = [evidence_key(condition.condition, n) for n in names]
+    keys = _keys(condition, names)
     frame, bounds = _frame(rule)
     weight = exp.Literal.number(1) if rule.distinct_days else exp.column("n_rows")
     counts = [
@@ -64,83 +90,37 @@ def rule_query(condition: Condition, rule: Rule) -> exp.Query:
         )
         for i, key in enumerate(keys)
     ]
+    relevant = is_in(exp.column("evidence"), keys)
+    if rule.absent:
+        absent = exp.select("patient_id").from_(source.copy())
+        absent = absent.where(is_in(exp.column("evidence"), _keys(condition, rule.absent)))
+        relevant = exp.and_(relevant, exp.column("patient_id").isin(query=absent).not_())
     counted = (
-        exp.select("patient_id", "evidence", "event_date", *counts)
-        .from_("evidence_events")
-        .where(exp.column("evidence").isin(*(exp.convert(k) for k in keys)))
+        exp.select("patient_id", "evidence", "event_date", *counts).from_(source).where(relevant)
     )
-    if rule.apart_at_least_days is not None:
-        # Exactly two events: the current row is one, the frame must hold the other.
-        if len(keys) == 1:
-            # With apart 0 the frame holds the current row itself: another event is needed.
-            others = 2 if rule.apart_at_least_days == 0 else 1
-            met = exp.and_(exp.column("evidence").eq(keys[0]), exp.column("in_frame_0") >= others)
-        else:
-            met = exp.or_(
-                exp.and_(exp.column("evidence").eq(keys[0]), exp.column("in_frame_1") >= 1),
-                exp.and_(exp.column("evidence").eq(keys[1]), exp.column("in_frame_0") >= 1),
-            )
-    else:
-        met = exp.and_(
-            *(exp.column(f"in_frame_{i}") >= rule.need[name] for i, name in enumerate(names))
-        )
     return query(
         _RULE_MET,
         condition=condition.condition,
         rule=rule.name,
         counted=counted.subquery("counted"),
-        met=met,
+        met=_met(rule, names, keys),
     )
 
 
-def rule_stages(ctx: CompileContext) -> tuple[Stage, ...]:
-    """``rule_onsets`` (one row per patient, condition and rule met) and ``condition_onsets``."""
-    parts = [rule_query(c, r) for c in ctx.conditions for r in c.rules]
-    stages = [
-        Stage(
-            "rule_onsets",
-            _union_all(parts),
-            ("evidence_events",),
-            "the first date each rule of each condition is met, per patient",
+def _met(rule: Rule, names: list[str], keys: list[str]) -> exp.Expression:
+    if rule.apart_at_least_days is None:
+        return exp.and_(
+            *(exp.column(f"in_frame_{i}") >= rule.need[name] for i, name in enumerate(names))
         )
-    ]
-    first_evidence = [c.condition for c in ctx.conditions if c.onset == "first_evidence"]
-    rule_met = [c.condition for c in ctx.conditions if c.onset == "rule_met"]
-    onset_rows: list[exp.Query] = []
-    if rule_met:
-        onset_rows.append(
-            exp.select("patient_id", "condition", "onset_date")
-            .from_("rule_onsets")
-            .where(exp.column("condition").isin(*(exp.convert(c) for c in rule_met)))
-        )
-    for c in ctx.conditions:
-        if c.onset == "first_evidence":
-            onset_rows.append(
-                query(
-                    _FIRST_EVIDENCE,
-                    condition=c.condition,
-                    keys=exp.column("evidence", "e").isin(
-                        *(exp.convert(evidence_key(c.condition, n)) for n in sorted(c.evidence))
-                    ),
-                )
-            )
-    onsets = [
-        exp.Min(
-            this=exp.Case().when(exp.column("condition").eq(c.condition), exp.column("onset_date"))
-        ).as_(f"onset_{c.condition}")
-        for c in ctx.conditions
-    ]
-    stages.append(
-        Stage(
-            "condition_onsets",
-            exp.select("patient_id", *onsets)
-            .from_(_union_all(onset_rows).subquery("onsets"))
-            .group_by("patient_id"),
-            ("rule_onsets", "evidence_events") if first_evidence else ("rule_onsets",),
-            "each condition's onset per patient (rule met, or first evidence once a rule is met)",
-        )
+    # Exactly two events: the current row is one, the frame must hold the other.
+    if len(keys) == 1:
+        # With apart 0 the frame holds the current row itself: another event is needed.
+        others = 2 if rule.apart_at_least_days == 0 else 1
+        return exp.and_(exp.column("evidence").eq(keys[0]), exp.column("in_frame_0") >= others)
+    return exp.or_(
+        exp.and_(exp.column("evidence").eq(keys[0]), exp.column("in_frame_1") >= 1),
+        exp.and_(exp.column("evidence").eq(keys[1]), exp.column("in_frame_0") >= 1),
     )
-    return tuple(stages)
 
 
 def _union_all(parts: list[exp.Query]) -> exp.Query:
@@ -148,3 +128,76 @@ def _union_all(parts: list[exp.Query]) -> exp.Query:
     for part in parts[1:]:
         union = union.union(part, distinct=False)
     return union
+
+
+def _events_for(condition: Condition) -> tuple[exp.Expression, tuple[str, ...]]:
+    """The evidence events a condition reads, with its referenced conditions' onsets added."""
+    own = (
+        exp.select("patient_id", "evidence", "event_date", "day", "n_rows")
+        .from_("evidence_events")
+        .where(is_in(exp.column("evidence"), _keys(condition, sorted(condition.evidence))))
+    )
+    parts: list[exp.Query] = [own]
+    depends = ["evidence_events"]
+    epoch = value(dt.date(1970, 1, 1))
+    for name, ev in sorted(condition.evidence.items()):
+        if ev.condition is not None:
+            parts.append(
+                query(
+                    _REFERENCED_ONSETS,
+                    key=evidence_key(condition.condition, name),
+                    day=days_between(epoch, exp.column("onset_date")),
+                    onsets=exp.to_table(f"onset_{ev.condition}"),
+                )
+            )
+            depends.append(f"onset_{ev.condition}")
+    if len(parts) == 1:
+        return exp.to_table("evidence_events"), ("evidence_events",)
+    return _union_all(parts).subquery("evidence_events"), tuple(depends)
+
+
+def condition_stages(condition: Condition) -> tuple[Stage, Stage]:
+    """``rules_<c>``: each rule's first date per patient; ``onset_<c>``: the onset per patient."""
+    name = condition.condition
+    events, depends = _events_for(condition)
+    rules = Stage(
+        f"rules_{name}",
+        _union_all([rule_query(condition, r, events.copy()) for r in condition.rules]),
+        depends,
+        f"the first date each rule of {name} is met, per patient",
+    )
+    if condition.onset == "rule_met":
+        onset_query = query(_ONSET_RULE_MET, rules=exp.to_table(rules.name))
+        onset_depends: tuple[str, ...] = (rules.name,)
+        why = f"onset of {name}: the earliest date any of its rules is met"
+    else:
+        onset_query = query(_ONSET_FIRST_EVIDENCE, rules=exp.to_table(rules.name), events=events)
+        onset_depends = (*depends, rules.name)
+        why = f"onset of {name}: its first evidence, for patients meeting a rule"
+    return rules, Stage(f"onset_{name}", onset_query, onset_depends, why)
+
+
+def rule_stages(ctx: CompileContext) -> tuple[Stage, ...]:
+    """Per-condition rule and onset stages, then ``condition_onsets``: one column each."""
+    stages = [stage for c in ctx.conditions for stage in condition_stages(c)]
+    rows = [
+        exp.select("patient_id", value(name).as_("condition"), "onset_date").from_(f"onset_{name}")
+        for name in ctx.flagged
+    ]
+    onsets = [
+        exp.Min(
+            this=exp.Case().when(exp.column("condition").eq(name), exp.column("onset_date"))
+        ).as_(f"onset_{name}")
+        for name in ctx.flagged
+    ]
+    stages.append(
+        Stage(
+            "condition_onsets",
+            exp.select("patient_id", *onsets)
+            .from_(_union_all(rows).subquery("onsets"))
+            .group_by("patient_id"),
+            tuple(f"onset_{name}" for name in ctx.flagged),
+            "each condition's onset per patient, one column per condition the table needs",
+        )
+    )
+    return tuple(stages)

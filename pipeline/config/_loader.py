@@ -87,21 +87,89 @@ class Catalog:
         """Return a condition by name (names were checked when the study was loaded)."""
         return self.conditions[name]
 
+    def with_references(self, names: tuple[str, ...]) -> tuple[str, ...]:
+        """``names`` and every condition they refer to, each after those it refers to."""
+        ordered: list[str] = []
+
+        def visit(name: str) -> None:
+            if name in ordered:
+                return
+            for ref in self.conditions[name].references:
+                visit(ref)
+            ordered.append(name)
+
+        for name in names:
+            visit(name)
+        return tuple(ordered)
+
 
 def _check_rules(doc: LocatedDocument, condition: Condition) -> list[Problem]:
     problems = []
     for i, rule in enumerate(condition.rules):
-        for name in rule.need:
+        named = [(("rules", i, "need", name), "needs", name) for name in rule.need]
+        named += [
+            (("rules", i, "absent", j), "requires no", name) for j, name in enumerate(rule.absent)
+        ]
+        for path, verb, name in named:
             if name not in condition.evidence:
                 problems.append(
                     doc.problem(
-                        ("rules", i, "need", name),
+                        path,
                         "unknown-evidence",
-                        f"rule '{rule.name}' needs '{name}', which is not defined under "
+                        f"rule '{rule.name}' {verb} '{name}', which is not defined under "
                         f"evidence{did_you_mean(name, condition.evidence)}",
                     )
                 )
     return problems
+
+
+def _check_references(catalog: dict[str, Condition], files: dict[str, Path]) -> list[Problem]:
+    """Every referenced condition exists, and no condition depends on itself."""
+    problems = []
+    for name, condition in catalog.items():
+        for evidence, ev in condition.evidence.items():
+            if ev.condition is not None and ev.condition not in catalog:
+                doc = load_yaml(files[name])
+                problems.append(
+                    doc.problem(
+                        ("evidence", evidence, "condition"),
+                        "unknown-condition",
+                        f"evidence '{evidence}' refers to condition '{ev.condition}', which is "
+                        f"not defined{did_you_mean(ev.condition, catalog)}",
+                        at_value=True,
+                    )
+                )
+    if problems:
+        return problems
+    reported: set[frozenset[str]] = set()
+    for start in sorted(catalog):
+        cycle = _find_cycle(start, catalog)
+        if cycle and frozenset(cycle) not in reported:
+            reported.add(frozenset(cycle))
+            doc = load_yaml(files[start])
+            problems.append(
+                doc.problem(
+                    ("condition",),
+                    "definition-cycle",
+                    f"conditions refer to each other in a cycle: {' -> '.join(cycle)}",
+                )
+            )
+    return problems
+
+
+def _find_cycle(start: str, catalog: dict[str, Condition]) -> list[str] | None:
+    """The chain from ``start`` back to itself through condition references, if any."""
+    stack: list[tuple[str, list[str]]] = [(start, [start])]
+    seen: set[str] = set()
+    while stack:
+        name, chain = stack.pop()
+        for ref in catalog[name].references:
+            if ref == start:
+                return [*chain, start]
+            if ref not in seen:
+                seen.add(ref)
+                stack.append((ref, [*chain, ref]))
+    return None
 
 
 def load_condition(file: Path) -> Condition:
@@ -150,6 +218,7 @@ def load_catalog(folder: Path) -> Catalog:
             continue
         conditions[condition.condition] = condition
         files[condition.condition] = file
+    problems.extend(_check_references(conditions, files))
     if problems:
         raise ConfigError(problems)
     return Catalog(folder, conditions, files)
@@ -217,6 +286,31 @@ def load_study(file: Path) -> LoadedStudy:
         )
         for i, name in enumerate(study.outcomes.conditions)
         if name not in catalog.conditions
+    ]
+    problems += [
+        doc.problem(
+            ("covariates", name, "condition"),
+            "unknown-condition",
+            f"covariate '{name}' uses condition '{cov.condition}', which is not defined in "
+            f"{study.definitions}{did_you_mean(cov.condition, catalog.conditions)}",
+            at_value=True,
+        )
+        for name, cov in study.covariates.items()
+        if cov.condition is not None and cov.condition not in catalog.conditions
+    ]
+    taken = {"followup_end", "followup_days", "end_reason"} | {
+        f"{prefix}_{outcome}"
+        for outcome in study.outcomes.conditions
+        for prefix in ("prevalent", "at_risk", "incident", "onset", "days_to")
+    }
+    problems += [
+        doc.problem(
+            ("covariates", name),
+            "duplicate-column",
+            f"covariate '{name}' has the name of an analysis-table column",
+        )
+        for name in study.covariates
+        if name in taken
     ]
     if problems:
         raise ConfigError(problems)

@@ -7,19 +7,23 @@ with a suggestion instead of a silently ignored setting.
 from __future__ import annotations
 
 import datetime as dt
-import re
+from functools import partial
 from pathlib import Path
 from typing import Annotated, Literal, Self
 
-from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
+from pydantic import AfterValidator, BaseModel, ConfigDict, Field, field_validator, model_validator
 
+from pipeline.codes import check_code
 from pipeline.measures import MEASURES, Threshold
+from pipeline.measures._threshold import Comparison
 
 NonNegativeInt = Annotated[int, Field(ge=0)]
 PositiveInt = Annotated[int, Field(ge=1)]
 Name = Annotated[str, Field(pattern=r"^[a-z][a-z0-9_]*$", max_length=48)]
-
-_CODE_PATTERN = re.compile(r"^[A-Za-z0-9][A-Za-z0-9. ]*(-[A-Za-z0-9][A-Za-z0-9. ]*)?$")
+ICD9Code = Annotated[str, AfterValidator(partial(check_code, "ICD9"))]
+ICD10Code = Annotated[str, AfterValidator(partial(check_code, "ICD10"))]
+ATCCode = Annotated[str, AfterValidator(partial(check_code, "ATC"))]
+Quantity = str | float
 
 
 class Model(BaseModel):
@@ -28,20 +32,11 @@ class Model(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)
 
 
-def _check_codes(codes: tuple[str, ...]) -> tuple[str, ...]:
-    for code in codes:
-        if not _CODE_PATTERN.match(code):
-            raise ValueError(f"'{code}' is not a code, a prefix or a range such as 'I10-I15'")
-    return codes
-
-
 class DiagnosisCodes(Model):
-    """Code prefixes (or ranges) per system, as written in a definition."""
+    """Code prefixes (or ranges such as ``I10-I15``) per system, as written in a definition."""
 
-    ICD9: tuple[str, ...] = ()
-    ICD10: tuple[str, ...] = ()
-
-    _codes = field_validator("ICD9", "ICD10")(_check_codes)
+    ICD9: tuple[ICD9Code, ...] = ()
+    ICD10: tuple[ICD10Code, ...] = ()
 
 
 class DiagnosisEvidence(DiagnosisCodes):
@@ -58,22 +53,30 @@ class DiagnosisEvidence(DiagnosisCodes):
 
 
 class PrescriptionEvidence(Model):
-    """Prescriptions whose WHO ATC code starts with one of the prefixes."""
+    """Prescriptions whose WHO ATC code starts with a prefix, optionally lasting long enough.
 
-    atc: tuple[str, ...] = Field(min_length=1)
-    exclude: tuple[str, ...] = ()
+    ``min_days`` counts the days from start to stop, both included; a prescription without a
+    stop date does not meet a minimum duration.
+    """
 
-    _codes = field_validator("atc", "exclude")(_check_codes)
+    atc: tuple[ATCCode, ...] = Field(min_length=1)
+    exclude: tuple[ATCCode, ...] = ()
+    min_days: PositiveInt | None = None
 
 
 class MeasurementEvidence(Model):
-    """Measurements of one measure compared with a threshold written with its unit."""
+    """Measurements of one measure compared with thresholds written with their units.
+
+    A coded measure (smoking status) takes ``category`` instead of thresholds.
+    """
 
     measure: str
-    at_least: str | float | None = None
-    above: str | float | None = None
-    below: str | float | None = None
-    at_most: str | float | None = None
+    at_least: Quantity | None = None
+    above: Quantity | None = None
+    below: Quantity | None = None
+    at_most: Quantity | None = None
+    between: tuple[Quantity, Quantity] | None = None
+    category: tuple[str, ...] = ()
 
     @field_validator("measure")
     @classmethod
@@ -84,8 +87,8 @@ class MeasurementEvidence(Model):
 
     def thresholds(self) -> tuple[Threshold, ...]:
         """Return the thresholds in canonical units (they were checked at load time)."""
-        return tuple(
-            Threshold.parse(self.measure, comparison, text)
+        written: list[tuple[Comparison, Quantity]] = [
+            (comparison, text)
             for comparison, text in (
                 ("at_least", self.at_least),
                 ("above", self.above),
@@ -93,41 +96,93 @@ class MeasurementEvidence(Model):
                 ("at_most", self.at_most),
             )
             if text is not None
+        ]
+        if self.between is not None:
+            written += [("at_least", self.between[0]), ("at_most", self.between[1])]
+        return tuple(
+            Threshold.parse(self.measure, comparison, text) for comparison, text in written
         )
 
     @model_validator(mode="after")
-    def _valid_thresholds(self) -> Self:
-        if not self.thresholds():
-            raise ValueError("a measurement needs at least one of at_least, above, below, at_most")
+    def _valid_comparison(self) -> Self:
+        measure = MEASURES[self.measure]
+        if measure.is_coded:
+            unknown = sorted(set(self.category) - set(measure.categories))
+            if not self.category or unknown or self.thresholds():
+                raise ValueError(
+                    f"{self.measure} is a coded measure: give category with some of "
+                    f"{', '.join(measure.categories)}"
+                    + (f" (unknown: {', '.join(unknown)})" if unknown else "")
+                )
+            return self
+        if self.category:
+            raise ValueError(f"{self.measure} is numeric: use thresholds, not category")
+        thresholds = self.thresholds()
+        if not thresholds:
+            raise ValueError(
+                "a measurement needs at least one of at_least, above, below, at_most, between"
+            )
+        low = max((t.canonical_value for t in thresholds if t.comparison in _LOWER), default=None)
+        high = min((t.canonical_value for t in thresholds if t.comparison in _UPPER), default=None)
+        if low is not None and high is not None and low > high:
+            raise ValueError("the thresholds leave no value that could qualify")
         return self
 
 
+_LOWER = ("at_least", "above")
+_UPPER = ("below", "at_most")
+
+
+class EncounterEvidence(Model):
+    """Encounters of some types (compared lower-cased)."""
+
+    type: tuple[str, ...] = Field(min_length=1)
+
+
 class Evidence(Model):
-    """One named piece of evidence: exactly one kind of extract row that counts."""
+    """One named piece of evidence: exactly one kind of extract row, or another condition.
+
+    ``condition: other`` is one event per patient on the other condition's onset date.
+    """
 
     diagnosis: DiagnosisEvidence | None = None
     prescription: PrescriptionEvidence | None = None
     measurement: MeasurementEvidence | None = None
+    encounter: EncounterEvidence | None = None
+    condition: Name | None = None
 
     @model_validator(mode="after")
     def _exactly_one_kind(self) -> Self:
-        kinds = [k for k in ("diagnosis", "prescription", "measurement") if getattr(self, k)]
+        kinds = [k for k in EVIDENCE_KINDS if getattr(self, k) is not None]
         if len(kinds) != 1:
             raise ValueError(
-                "evidence needs exactly one of diagnosis, prescription, measurement"
+                f"evidence needs exactly one of {', '.join(EVIDENCE_KINDS)}"
                 + (f" (got {', '.join(kinds)})" if kinds else "")
             )
         return self
 
+    @property
+    def kind(self) -> str:
+        """Which kind of evidence this is."""
+        return next(k for k in EVIDENCE_KINDS if getattr(self, k) is not None)
+
+
+EVIDENCE_KINDS = ("diagnosis", "prescription", "measurement", "encounter", "condition")
+
 
 class Rule(Model):
-    """A way the evidence makes a case: counts of evidence met inside a window."""
+    """A way the evidence makes a case: counts of evidence met inside a window.
+
+    ``absent`` lists evidence that must never occur (up to the end of data) for the rule to
+    count, e.g. no type 1 diabetes code ever.
+    """
 
     name: str
     need: dict[str, PositiveInt] = Field(min_length=1)
     distinct_days: bool = False
     within_days: NonNegativeInt | None = None
     apart_at_least_days: NonNegativeInt | None = None
+    absent: tuple[str, ...] = ()
 
     @model_validator(mode="after")
     def _window_is_consistent(self) -> Self:
@@ -142,6 +197,9 @@ class Rule(Model):
             and self.apart_at_least_days > self.within_days
         ):
             raise ValueError("apart_at_least_days is larger than within_days: no pair can qualify")
+        both = sorted(set(self.absent) & set(self.need))
+        if both:
+            raise ValueError(f"evidence both needed and absent: {', '.join(both)}")
         return self
 
 
@@ -154,6 +212,11 @@ class Condition(Model):
     evidence: dict[Name, Evidence] = Field(min_length=1)
     rules: tuple[Rule, ...] = Field(min_length=1)
     onset: Literal["rule_met", "first_evidence"] = "rule_met"
+
+    @property
+    def references(self) -> tuple[str, ...]:
+        """Other conditions this one uses as evidence, sorted."""
+        return tuple(sorted({e.condition for e in self.evidence.values() if e.condition}))
 
 
 class DateRange(Model):
@@ -262,6 +325,26 @@ class EngineSettings(Model):
     ) = None
 
 
+class Covariate(Model):
+    """One baseline covariate column of the analysis table; exactly one key is set.
+
+    ``condition``: true when the named condition's onset is on or before the index date.
+    """
+
+    condition: Name | None = None
+
+    @model_validator(mode="after")
+    def _exactly_one(self) -> Self:
+        if len(self.model_fields_set) != 1:
+            raise ValueError(
+                "each covariate sets exactly one of: " + ", ".join(Covariate.model_fields)
+            )
+        return self
+
+
+RESERVED_COLUMNS = ("patient_id", "index_date", "age_at_index", "sex")
+
+
 class Study(Model):
     """A study design: source, index, eligibility, outcomes, follow-up and output."""
 
@@ -272,7 +355,22 @@ class Study(Model):
     end_of_data: dt.date
     index: IndexRule
     eligibility: tuple[Criterion, ...] = ()
+    covariates: dict[Name, Covariate] = Field(default_factory=dict)
     outcomes: Outcomes
     followup: Followup
     output: Output
     engine: EngineSettings = EngineSettings()
+
+    @field_validator("covariates")
+    @classmethod
+    def _no_reserved_names(cls, value: dict[str, Covariate]) -> dict[str, Covariate]:
+        clash = sorted(set(value) & set(RESERVED_COLUMNS))
+        if clash:
+            raise ValueError(f"covariate name(s) {', '.join(clash)} are analysis-table columns")
+        return value
+
+    @model_validator(mode="after")
+    def _index_within_data(self) -> Self:
+        if self.index.first_encounter.between[1] > self.end_of_data:
+            raise ValueError("the index window ends after end_of_data")
+        return self

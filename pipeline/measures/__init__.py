@@ -2,6 +2,7 @@
 
 from pipeline.measures._registry import (
     CREATININE_UMOL_PER_MG_DL,
+    DERIVED_FROM,
     HBA1C_NGSP_INTERCEPT,
     HBA1C_NGSP_SLOPE,
     MEASURES,
@@ -13,6 +14,7 @@ from pipeline.measures._threshold import Threshold, parse_quantity
 
 __all__ = [
     "CREATININE_UMOL_PER_MG_DL",
+    "DERIVED_FROM",
     "HBA1C_NGSP_INTERCEPT",
     "HBA1C_NGSP_SLOPE",
     "MEASURES",

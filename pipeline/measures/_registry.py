@@ -2,7 +2,8 @@
 
 Every unit conversion is linear (``canonical = factor * value + offset``), which keeps the
 conversion a small lookup table the compiler can join against instead of a chain of CASEs.
-Units the registry does not list are never guessed: such values are not used.
+Units the registry does not list are never guessed: such values are not used. The plausibility
+ranges are common practice, not a published standard.
 """
 
 from __future__ import annotations
@@ -17,6 +18,8 @@ HBA1C_NGSP_SLOPE = 0.09148
 HBA1C_NGSP_INTERCEPT = 2.152
 # Glucose: molar mass 180.156 g/mol, so 1 mmol/L = 18.0156 mg/dL.
 GLUCOSE_MG_DL_PER_MMOL_L = 18.0156
+# Cholesterol: molar mass 386.65 g/mol, so 1 mmol/L = 38.67 mg/dL (from memory; common practice).
+CHOLESTEROL_MG_DL_PER_MMOL_L = 38.67
 
 
 @dataclass(frozen=True)
@@ -42,15 +45,23 @@ class Measure:
 
     Attributes:
         name: The value of ``measure`` in the extract.
-        canonical_unit: The unit every value is converted to.
+        canonical_unit: The unit every value is converted to ("" for a coded measure).
         units: Accepted spellings (compared after trimming, case kept) and their conversions.
         plausible: Inclusive range of canonical values that are used; others are set aside.
+        categories: For a coded measure (smoking status), the accepted values of
+            ``value_text``, compared lower-cased; numeric measures have none.
     """
 
     name: str
     canonical_unit: str
     units: tuple[UnitConversion, ...]
     plausible: tuple[float, float]
+    categories: tuple[str, ...] = ()
+
+    @property
+    def is_coded(self) -> bool:
+        """Whether the measure takes categories rather than numbers."""
+        return bool(self.categories)
 
     def conversion(self, spelling: str) -> UnitConversion | None:
         """Return the conversion for a unit spelling, or None when it is not accepted."""
@@ -108,12 +119,40 @@ MEASURES: dict[str, Measure] = {
             "weight", "kg", (*_same("kg"), UnitConversion("g", 1.0, divisor=1000.0)), (2.0, 400.0)
         ),
         Measure(
+            "total_cholesterol",
+            "mmol/L",
+            (
+                *_same("mmol/L", "mmol/l"),
+                UnitConversion("mg/dL", 1.0, divisor=CHOLESTEROL_MG_DL_PER_MMOL_L),
+                UnitConversion("mg/dl", 1.0, divisor=CHOLESTEROL_MG_DL_PER_MMOL_L),
+            ),
+            (1.0, 20.0),
+        ),
+        Measure(
+            "ldl",
+            "mmol/L",
+            (
+                *_same("mmol/L", "mmol/l"),
+                UnitConversion("mg/dL", 1.0, divisor=CHOLESTEROL_MG_DL_PER_MMOL_L),
+                UnitConversion("mg/dl", 1.0, divisor=CHOLESTEROL_MG_DL_PER_MMOL_L),
+            ),
+            (0.2, 15.0),
+        ),
+        Measure("smoking", "", (), (0.0, 0.0), categories=("current", "former", "never")),
+        Measure(
             "height",
             "cm",
             (*_same("cm"), UnitConversion("m", 100.0), UnitConversion("mm", 1.0, divisor=10.0)),
             (40.0, 250.0),
         ),
     )
+}
+
+
+# Measures the engine can derive when they are not reported, and what from.
+DERIVED_FROM: dict[str, tuple[str, ...]] = {
+    "egfr": ("creatinine",),  # CKD-EPI 2021, on days without a usable reported eGFR
+    "bmi": ("weight", "height"),  # weight / (latest height in m)^2, on days without a BMI
 }
 
 
@@ -126,4 +165,5 @@ def conversion_rows() -> list[tuple[str, str, float, float, float, float, float]
         (m.name, u.spelling, u.factor, u.divisor, u.offset, m.plausible[0], m.plausible[1])
         for m in sorted(MEASURES.values(), key=lambda m: m.name)
         for u in m.units
+        if not m.is_coded
     ]

@@ -90,6 +90,58 @@ def draw_encounters(rng: np.random.Generator, sc: Scenario, pop: Population) -> 
     return {"pidx": owner, "day": day, "etype": etype.astype(np.int64)}
 
 
+class Visits:
+    """A chunk's encounter days, for putting codes and vital signs on days the patient came in.
+
+    A diagnosis code is written during a contact, so code and vital-sign rows are moved onto
+    encounter days: a row drawn at random in ``[lo, hi]`` takes a random encounter of its
+    patient in that range, and a first code (recognition) takes the patient's first encounter
+    within ``Scenario.recognition_visit_days`` of the day. Rows with no encounter in range keep
+    their day, and an encounter is added on it (:meth:`added`), so every code has a contact.
+    """
+
+    _BITS = 17  # days after the chunk's first day; 2**17 days is 358 years
+
+    def __init__(self, enc: Columns, first_day: int) -> None:
+        self.first_day = first_day
+        self.keys = np.unique(self._key(enc["pidx"], enc["day"]))
+        self._added: list[tuple[np.ndarray, np.ndarray]] = []
+
+    def _key(self, owner: np.ndarray, day: np.ndarray) -> np.ndarray:
+        return (owner.astype(np.int64) << self._BITS) | (day - self.first_day)
+
+    def days(
+        self,
+        u: np.ndarray,
+        owner: np.ndarray,
+        lo: np.ndarray,
+        hi: np.ndarray,
+    ) -> np.ndarray:
+        """The encounter at quantile ``u`` among the patient's encounters in ``[lo, hi]``.
+
+        Rows without one get the day at quantile ``u`` of ``[lo, hi]`` and a new encounter.
+        """
+        a = np.searchsorted(self.keys, self._key(owner, lo), side="left")
+        b = np.searchsorted(self.keys, self._key(owner, np.maximum(hi, lo)), side="right")
+        m = b - a
+        found = m > 0
+        at = np.minimum(a + np.floor(u * m).astype(np.int64), self.keys.shape[0] - 1)
+        visit = (self.keys[at] & ((1 << self._BITS) - 1)) + self.first_day
+        width = np.maximum(hi - lo + 1, 1)
+        day = np.where(found, visit, lo + np.floor(u * width).astype(np.int64))
+        self._added.append((owner[~found], day[~found]))
+        return day
+
+    def added(self) -> tuple[np.ndarray, np.ndarray]:
+        """Patients and days of the encounters added for rows that had none in range."""
+        if not self._added:
+            return np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int64)
+        return (
+            np.concatenate([o for o, _ in self._added]),
+            np.concatenate([d for _, d in self._added]),
+        )
+
+
 class CodeBook:
     """Sorted vocabularies for diagnosis codes (with spelling variants) and ATC codes.
 
@@ -152,7 +204,9 @@ def _diagnosis_rows(
     source = np.minimum(source, 2)
     if force_visit:
         source = np.full(n, sc.dx_source_names.index("visit"))
-    system = np.where(is9, SYSTEMS.index("ICD9"), SYSTEMS.index("ICD10"))
+    # a few ICD-10 codes arrive labelled ICD9 (a feed that fills the system column by default)
+    mislabelled = ~is9 & (rng.random(n) < sc.p_icd10_labelled_icd9_row)
+    system = np.where(is9 | mislabelled, SYSTEMS.index("ICD9"), SYSTEMS.index("ICD10"))
     return {"pidx": owner, "day": day, "system": system, "code": code, "source": source}
 
 
@@ -182,13 +236,29 @@ def _rx_rows(
 
 
 def _repeats(
-    rng: np.random.Generator, first: np.ndarray, last: np.ndarray, rate: float, who: np.ndarray
+    rng: np.random.Generator,
+    first: np.ndarray,
+    last: np.ndarray,
+    rate: float,
+    who: np.ndarray,
+    visits: tuple[Visits, int] | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
-    """One row at ``first`` and a Poisson(rate * years) more in ``[first, last]``, for ``who``."""
+    """One row at ``first`` and a Poisson(rate * years) more in ``[first, last]``, for ``who``.
+
+    With ``visits = (index, window)`` the first row moves to the first encounter within
+    ``window`` days on or after ``first`` and the others onto encounters in ``[first, last]``.
+    """
     counts = np.where(who, 1 + rng.poisson(rate * years_between(first, last)), 0)
     owner, pos = expand(counts)
-    day = uniform_days(rng, first[owner], last[owner])
-    return owner, np.where(pos == 0, first[owner], day)
+    if visits is None:
+        day = uniform_days(rng, first[owner], last[owner])
+        return owner, np.where(pos == 0, first[owner], day)
+    index, window = visits
+    start = first[owner]
+    is_first = pos == 0
+    hi = np.where(is_first, np.minimum(start + window, last[owner]), last[owner])
+    u = np.where(is_first, 0.0, rng.random(owner.shape[0]))
+    return owner, index.days(u, owner, start, hi)
 
 
 def recognition_day(rng: np.random.Generator, sc: Scenario, pop: Population) -> np.ndarray:
@@ -215,8 +285,12 @@ def draw_diagnoses_and_prescriptions(
     pop: Population,
     book: CodeBook,
     recognised: np.ndarray,
+    visits: Visits,
 ) -> tuple[Columns, Columns]:
     """Condition codes, rule-out codes, treatment, off-target drugs and background rows.
+
+    Diagnosis codes are put on encounter days (see :class:`Visits`); prescriptions are not
+    (repeat prescriptions are usually issued without a contact).
 
     Args:
         rng: The chunk's generator.
@@ -224,6 +298,7 @@ def draw_diagnoses_and_prescriptions(
         pop: The chunk's people.
         book: Vocabularies.
         recognised: Output of :func:`recognition_day`.
+        visits: The chunk's encounter days.
 
     Returns:
         ``(diagnoses, prescriptions)`` column dicts.
@@ -240,14 +315,23 @@ def draw_diagnoses_and_prescriptions(
         is_seen = seen != NEVER
         coded = is_seen & (rng.random(n) < cond.p_coded)
         treated = is_seen & (rng.random(n) < cond.p_treated)
-        owner, day = _repeats(rng, seen, pop.exit_day, cond.codes_per_year, coded)
+        owner, day = _repeats(
+            rng,
+            seen,
+            pop.exit_day,
+            cond.codes_per_year,
+            coded,
+            visits=(visits, sc.recognition_visit_days),
+        )
         dx.append(
             _diagnosis_rows(rng, sc, book, owner=owner, day=day, icd9=cond.icd9, icd10=cond.icd10)
         )
         non_case = pop.onset_day[:, j] > pop.exit_day
         false_code = non_case & adult & (rng.random(n) < cond.p_false_code)
         owner = np.flatnonzero(false_code)
-        day = uniform_days(rng, pop.entry_day[owner], pop.exit_day[owner])
+        day = visits.days(
+            rng.random(owner.shape[0]), owner, pop.entry_day[owner], pop.exit_day[owner]
+        )
         dx.append(
             _diagnosis_rows(
                 rng,
@@ -276,7 +360,7 @@ def draw_diagnoses_and_prescriptions(
 
     years = years_between(pop.entry_day, pop.exit_day)
     owner, _ = expand(rng.poisson(sc.other_dx_rate * years))
-    day = uniform_days(rng, pop.entry_day[owner], pop.exit_day[owner])
+    day = visits.days(rng.random(owner.shape[0]), owner, pop.entry_day[owner], pop.exit_day[owner])
     dx.append(
         _diagnosis_rows(
             rng, sc, book, owner=owner, day=day, icd9=sc.other_dx_icd9, icd10=sc.other_dx_icd10

@@ -32,6 +32,7 @@ from pipeline.synth._events import (
     SYSTEMS,
     CodeBook,
     Columns,
+    Visits,
     add_duplicates,
     concat,
     draw_diagnoses_and_prescriptions,
@@ -209,11 +210,21 @@ def _chunk_tables(
     """Draw every table of one chunk and convert it to sorted Arrow tables."""
     recognised = recognition_day(rng, sc, pop)
     enc = draw_encounters(rng, sc, pop)
-    dx, rx = draw_diagnoses_and_prescriptions(rng, sc, pop, book, recognised)
-    meas = draw_measurements(rng, sc, pop, recognised)
+    d0 = int(pop.entry_day.min())
+    visits = Visits(enc, d0)
+    dx, rx = draw_diagnoses_and_prescriptions(rng, sc, pop, book, recognised, visits)
+    meas = draw_measurements(rng, sc, pop, recognised, visits)
+    added_owner, added_day = visits.added()
     owner, day = _after_death(rng, sc, pop)
     phone = sc.encounter_types.index("phone")
-    enc = concat([enc, {"pidx": owner, "day": day, "etype": np.full(owner.shape[0], phone)}])
+    visit = sc.encounter_types.index("visit")
+    enc = concat(
+        [
+            enc,
+            {"pidx": added_owner, "day": added_day, "etype": np.full(added_owner.shape[0], visit)},
+            {"pidx": owner, "day": day, "etype": np.full(owner.shape[0], phone)},
+        ]
+    )
     weight = np.round(pop.bmi[owner] * (pop.height[owner] / 100.0) ** 2, 1)
     meas = concat(
         [
@@ -230,7 +241,6 @@ def _chunk_tables(
     )
     ids = patient_ids(pop.number)
     # patient (20 bits), day since start (17 bits), then the small category columns
-    d0 = int(pop.entry_day.min())
     enc = _distinct(enc, _pack((enc["pidx"], 20), (enc["day"] - d0, 17), (enc["etype"], 4)))
     dx = _distinct(
         dx,

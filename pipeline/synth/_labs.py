@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from pipeline.synth._events import Columns, concat, expand, uniform_days, years_between
+from pipeline.synth._events import Columns, Visits, concat, expand, uniform_days, years_between
 from pipeline.synth._population import NEVER, Population
 from pipeline.synth._scenario import CONDITIONS, Scenario
 
@@ -66,20 +66,28 @@ def _test_days(
     base_rate: np.ndarray,
     extra_rate: float,
     extra_from: np.ndarray,
+    visits: Visits | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Test dates: background testing, plus closer monitoring after recognition.
 
-    ``extra_from`` is the recognition day, NEVER when the condition is not recognised.
+    ``extra_from`` is the recognition day, NEVER when the condition is not recognised. With
+    ``visits`` the dates are encounter days (vital signs); without, any day (lab samples).
     """
+
+    def days(owner: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
+        if visits is None:
+            return uniform_days(rng, lo, hi)
+        return visits.days(rng.random(owner.shape[0]), owner, lo, hi)
+
     counts = rng.poisson(base_rate * years_between(pop.entry_day, pop.exit_day))
     owner, _ = expand(counts)
-    day = uniform_days(rng, pop.entry_day[owner], pop.exit_day[owner])
+    day = days(owner, pop.entry_day[owner], pop.exit_day[owner])
     first = np.minimum(extra_from, pop.exit_day)
     counts = np.where(
         extra_from != NEVER, rng.poisson(extra_rate * years_between(first, pop.exit_day)), 0
     )
     owner2, _ = expand(counts)
-    day2 = uniform_days(rng, first[owner2], pop.exit_day[owner2])
+    day2 = days(owner2, first[owner2], pop.exit_day[owner2])
     return np.concatenate([owner, owner2]), np.concatenate([day, day2])
 
 
@@ -164,12 +172,12 @@ def _kidney(rng: np.random.Generator, sc: Scenario, pop: Population, seen: np.nd
 
 
 def _blood_pressure(
-    rng: np.random.Generator, sc: Scenario, pop: Population, seen: np.ndarray
+    rng: np.random.Generator, sc: Scenario, pop: Population, seen: np.ndarray, visits: Visits
 ) -> Columns:
-    """Systolic and diastolic pairs; raised after a hypertension onset; rare typo x10."""
+    """Systolic and diastolic pairs at encounters; raised after hypertension onset; typo x10."""
     j = CONDITIONS.index("hypertension")
     adult = pop.age_at(pop.entry_day) >= 18
-    owner, day = _test_days(rng, pop, sc.bp_rate * adult, sc.bp_case_rate, seen[:, j])
+    owner, day = _test_days(rng, pop, sc.bp_rate * adult, sc.bp_case_rate, seen[:, j], visits)
     n = owner.shape[0]
     case = pop.onset_day[owner, j] <= day
     sbp = np.where(case, rng.normal(146.0, 13.0, n), np.clip(rng.normal(122.0, 10.0, n), 90, 139))
@@ -180,11 +188,11 @@ def _blood_pressure(
     return concat([s_rows, _rows(owner, day, "dbp", dbp, "mmHg")])
 
 
-def _body_size(rng: np.random.Generator, sc: Scenario, pop: Population) -> Columns:
-    """BMI, weight and height rows; heights in metres labelled cm, weights in pounds."""
+def _body_size(rng: np.random.Generator, sc: Scenario, pop: Population, visits: Visits) -> Columns:
+    """BMI, weight and height rows at encounters; heights in metres as cm, weights in pounds."""
     counts = rng.poisson(sc.anthropometry_rate * years_between(pop.entry_day, pop.exit_day))
     owner, _ = expand(counts)
-    day = uniform_days(rng, pop.entry_day[owner], pop.exit_day[owner])
+    day = visits.days(rng.random(owner.shape[0]), owner, pop.entry_day[owner], pop.exit_day[owner])
     n = owner.shape[0]
     age = pop.age_at(day, owner)
     height = np.where(age < 18, np.minimum(75.0 + 5.8 * age, pop.height[owner]), pop.height[owner])
@@ -216,15 +224,22 @@ def _body_size(rng: np.random.Generator, sc: Scenario, pop: Population) -> Colum
 
 
 def draw_measurements(
-    rng: np.random.Generator, sc: Scenario, pop: Population, recognised: np.ndarray
+    rng: np.random.Generator,
+    sc: Scenario,
+    pop: Population,
+    recognised: np.ndarray,
+    visits: Visits,
 ) -> Columns:
     """All measurement rows of the chunk (``text`` indexes :data:`TEXTS`, NO_TEXT for null).
+
+    Vital signs are taken at encounters; lab results carry the sample day, any day.
 
     Args:
         rng: The chunk's generator.
         sc: Scenario parameters.
         pop: The chunk's people.
         recognised: Recognition day per condition (closer monitoring from then on).
+        visits: The chunk's encounter days.
 
     Returns:
         Column dict with ``pidx, day, measure, value, text, unit``.
@@ -233,7 +248,7 @@ def draw_measurements(
         [
             _hba1c(rng, sc, pop, recognised),
             _kidney(rng, sc, pop, recognised),
-            _blood_pressure(rng, sc, pop, recognised),
-            _body_size(rng, sc, pop),
+            _blood_pressure(rng, sc, pop, recognised, visits),
+            _body_size(rng, sc, pop, visits),
         ]
     )

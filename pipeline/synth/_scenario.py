@@ -18,7 +18,7 @@ from typing import Any
 
 import numpy as np
 
-GENERATOR_VERSION = "1"
+GENERATOR_VERSION = "2"
 
 CONDITIONS: tuple[str, ...] = ("ckd", "heart_failure", "hypertension", "type2_diabetes")
 """Latent conditions, in the (alphabetical) order of the copula's columns and the truth table."""
@@ -223,6 +223,8 @@ class Scenario:
     icd10_switch_date: str = "2013-01-01"
     p_code_undotted_row: float = 0.2
     p_code_lower_row: float = 0.1
+    p_icd10_labelled_icd9_row: float = 0.002
+    recognition_visit_days: int = 60
     other_dx_rate: float = 3.0
     other_dx_icd9: dict[str, float] = field(
         default_factory=lambda: {

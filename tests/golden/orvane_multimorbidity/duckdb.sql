@@ -1,12 +1,12 @@
--- plan for study orvane_multimorbidity (14 stages, dialect duckdb)
+-- plan for study orvane_multimorbidity (22 stages, dialect duckdb)
 
 -- reads src_patients: patient_id, sex, death_date, birth_date, birth_year, practice_id
 
--- reads src_encounters: patient_id, encounter_date
+-- reads src_encounters: patient_id, encounter_date, encounter_type
 
 -- reads src_diagnoses: patient_id, event_date, code_system, code, source
 
--- reads src_prescriptions: patient_id, start_date, atc
+-- reads src_prescriptions: patient_id, start_date, atc, stop_date
 
 -- reads src_measurements: patient_id, obs_date, measure, unit, value, value_text
 
@@ -35,18 +35,17 @@ ORDER BY
   patient_id
 LIMIT 5;
 
--- stage encounter_summary [table]: first and last usable encounter and the index date, one pass over encounters
+-- stage encounter_rows [view]: usable encounters: a readable date, a known patient, not after death or end of data
 -- reads: src_encounters, patient_base
 SELECT
   e.patient_id,
-  MIN(e.encounter_date) AS first_encounter,
-  MAX(e.encounter_date) AS last_encounter,
-  MIN(e.encounter_date) FILTER(WHERE
-    e.encounter_date BETWEEN CAST('2015-01-01' AS DATE) AND CAST('2016-12-31' AS DATE)) AS index_date
+  e.encounter_date,
+  e.encounter_type
 FROM (
   SELECT
     patient_id,
-    TRY_CAST(encounter_date AS DATE) AS encounter_date
+    TRY_CAST(encounter_date AS DATE) AS encounter_date,
+    LOWER(TRIM(CAST(encounter_type AS TEXT))) AS encounter_type
   FROM src_encounters
 ) AS e
 JOIN patient_base AS p
@@ -55,9 +54,19 @@ WHERE
   e.encounter_date <= CAST('2019-12-31' AS DATE)
   AND (
     p.death_date IS NULL OR e.encounter_date <= p.death_date
-  )
+  );
+
+-- stage encounter_summary [table]: first and last usable encounter and the index date, one pass over encounters
+-- reads: encounter_rows
+SELECT
+  patient_id,
+  MIN(encounter_date) AS first_encounter,
+  MAX(encounter_date) AS last_encounter,
+  MIN(encounter_date) FILTER(WHERE
+    encounter_date BETWEEN CAST('2015-01-01' AS DATE) AND CAST('2016-12-31' AS DATE)) AS index_date
+FROM encounter_rows
 GROUP BY
-  e.patient_id;
+  patient_id;
 
 -- stage coded_events [view]: usable diagnosis and prescription rows with normalised codes
 -- reads: src_diagnoses, src_prescriptions, patient_base
@@ -66,14 +75,16 @@ SELECT
   r.event_date,
   r.code_system,
   r.code,
-  r.source
+  r.source,
+  r.duration_days
 FROM (
   SELECT
     patient_id,
     TRY_CAST(event_date AS DATE) AS event_date,
     UPPER(TRIM(CAST(code_system AS TEXT))) AS code_system,
     REPLACE(REPLACE(UPPER(code), '.', ''), ' ', '') AS code,
-    LOWER(TRIM(CAST(source AS TEXT))) AS source
+    LOWER(TRIM(CAST(source AS TEXT))) AS source,
+    CAST(NULL AS INT) AS duration_days
   FROM src_diagnoses
   UNION ALL
   SELECT
@@ -81,7 +92,8 @@ FROM (
     TRY_CAST(start_date AS DATE) AS event_date,
     'ATC' AS code_system,
     REPLACE(REPLACE(UPPER(atc), '.', ''), ' ', '') AS code,
-    CAST(NULL AS TEXT) AS source
+    CAST(NULL AS TEXT) AS source,
+    CAST(DATE_DIFF('DAY', TRY_CAST(start_date AS DATE), TRY_CAST(stop_date AS DATE)) + 1 AS INT) AS duration_days
   FROM src_prescriptions
 ) AS r
 JOIN patient_base AS p
@@ -92,29 +104,123 @@ WHERE
     p.death_date IS NULL OR r.event_date <= p.death_date
   );
 
--- stage measurement_rows [view]: usable measurements of the measures the study needs, in canonical units
+-- stage measurement_rows [view]: every measurement row parsed and converted, with the problem that stops its use
 -- reads: src_measurements, patient_base
-SELECT
-  m.patient_id,
-  m.obs_date,
-  m.measure,
-  u.factor * m.value / u.divisor + u.offset_value AS value,
-  u.low,
-  u.high
-FROM (
+WITH read AS (
   SELECT
     patient_id,
     TRY_CAST(obs_date AS DATE) AS obs_date,
     LOWER(TRIM(CAST(measure AS TEXT))) AS measure,
-    CASE
-      WHEN value IS NULL OR TRIM(CAST(value AS TEXT)) = ''
-      THEN TRY_CAST(TRIM(CAST(value_text AS TEXT)) AS DOUBLE)
-      ELSE TRY_CAST(value AS DOUBLE)
-    END AS value,
-    TRIM(CAST(unit AS TEXT)) AS unit
+    NULLIF(TRIM(CAST(value AS TEXT)), '') AS value_given,
+    NULLIF(TRIM(CAST(value_text AS TEXT)), '') AS text_given,
+    NULLIF(TRIM(CAST(unit AS TEXT)), '') AS unit_given
   FROM src_measurements
-) AS m
-JOIN (VALUES
+), split AS (
+  SELECT
+    *,
+    NULLIF(
+      REGEXP_EXTRACT(text_given, '^(<=|>=|<|>)?[ ]*([0-9]+([.,][0-9]+)?)[ ]*(.*)$', 1),
+      ''
+    ) AS text_qualifier,
+    NULLIF(
+      REGEXP_EXTRACT(text_given, '^(<=|>=|<|>)?[ ]*([0-9]+([.,][0-9]+)?)[ ]*(.*)$', 2),
+      ''
+    ) AS text_number,
+    NULLIF(
+      TRIM(REGEXP_EXTRACT(text_given, '^(<=|>=|<|>)?[ ]*([0-9]+([.,][0-9]+)?)[ ]*(.*)$', 4)),
+      ''
+    ) AS text_unit
+  FROM read
+), parsed AS (
+  SELECT
+    patient_id,
+    obs_date,
+    measure,
+    CASE
+      WHEN NOT value_given IS NULL
+      THEN TRY_CAST(value_given AS DOUBLE)
+      WHEN text_number LIKE '%,%' AND REGEXP_MATCHES(text_number, '^[0-9]+,[0-9]{1,2}$')
+      THEN TRY_CAST(REPLACE(text_number, ',', '.') AS DOUBLE)
+      WHEN text_number LIKE '%,%'
+      THEN NULL
+      ELSE TRY_CAST(text_number AS DOUBLE)
+    END AS reading,
+    CASE WHEN value_given IS NULL THEN text_qualifier END AS qualifier,
+    COALESCE(unit_given, CASE WHEN value_given IS NULL THEN text_unit END) AS unit,
+    value_given IS NULL
+    AND NOT text_unit IS NULL
+    AND NOT unit_given IS NULL
+    AND text_unit <> unit_given AS unit_conflict,
+    value_given IS NULL AND text_given IS NULL AS empty,
+    CASE WHEN value_given IS NULL THEN LOWER(text_given) END AS category
+  FROM split
+)
+SELECT
+  r.patient_id,
+  r.obs_date,
+  r.measure,
+  r.qualifier,
+  r.category,
+  u.factor * r.reading / u.divisor + u.offset_value AS value,
+  CASE
+    WHEN p.patient_id IS NULL
+    THEN 'orphan patient'
+    WHEN r.obs_date IS NULL
+    THEN 'unparseable date'
+    WHEN r.obs_date > CAST('2019-12-31' AS DATE)
+    THEN 'after end of data'
+    WHEN NOT p.death_date IS NULL AND r.obs_date > p.death_date
+    THEN 'after death'
+    WHEN k.measure IS NULL
+    THEN 'unknown measure'
+    WHEN k.is_coded
+    AND (
+      r.category IS NULL
+      OR NOT (
+        r.measure = 'smoking' AND r.category = 'current'
+      )
+      OR (
+        r.measure = 'smoking' AND r.category = 'former'
+      )
+      OR (
+        r.measure = 'smoking' AND r.category = 'never'
+      )
+    )
+    THEN 'category not recognised'
+    WHEN k.is_coded
+    THEN NULL
+    WHEN r.empty
+    THEN 'no value'
+    WHEN r.reading IS NULL
+    THEN 'value not numeric'
+    WHEN r.unit_conflict
+    THEN 'unit differs from value_text'
+    WHEN u.measure IS NULL
+    THEN 'unit not convertible'
+    WHEN NOT u.factor * r.reading / u.divisor + u.offset_value BETWEEN u.low AND u.high
+    THEN 'implausible value'
+  END AS problem
+FROM parsed AS r
+LEFT JOIN patient_base AS p
+  ON p.patient_id = r.patient_id
+LEFT JOIN (VALUES
+  ('bmi', FALSE),
+  ('creatinine', FALSE),
+  ('dbp', FALSE),
+  ('egfr', FALSE),
+  ('fasting_glucose', FALSE),
+  ('hba1c', FALSE),
+  ('height', FALSE),
+  ('ldl', FALSE),
+  ('sbp', FALSE),
+  ('smoking', TRUE),
+  ('total_cholesterol', FALSE),
+  ('weight', FALSE)) AS k(measure, is_coded)
+  ON k.measure = r.measure
+LEFT JOIN (VALUES
+  ('bmi', 'kg/m2', 1.0, 1.0, 0.0, 10.0, 80.0),
+  ('bmi', 'kg/m²', 1.0, 1.0, 0.0, 10.0, 80.0),
+  ('bmi', 'kg/m^2', 1.0, 1.0, 0.0, 10.0, 80.0),
   ('creatinine', 'mg/dL', 1.0, 1.0, 0.0, 0.1, 20.0),
   ('creatinine', 'mg/dl', 1.0, 1.0, 0.0, 0.1, 20.0),
   ('creatinine', 'umol/L', 1.0, 88.42, 0.0, 0.1, 20.0),
@@ -122,45 +228,63 @@ JOIN (VALUES
   ('creatinine', 'μmol/L', 1.0, 88.42, 0.0, 0.1, 20.0),
   ('creatinine', 'umol/l', 1.0, 88.42, 0.0, 0.1, 20.0),
   ('creatinine', 'µmol/l', 1.0, 88.42, 0.0, 0.1, 20.0),
+  ('dbp', 'mmHg', 1.0, 1.0, 0.0, 20.0, 200.0),
+  ('dbp', 'mm[Hg]', 1.0, 1.0, 0.0, 20.0, 200.0),
+  ('dbp', 'mm Hg', 1.0, 1.0, 0.0, 20.0, 200.0),
   ('egfr', 'mL/min/1.73m2', 1.0, 1.0, 0.0, 1.0, 200.0),
   ('egfr', 'mL/min/1.73 m2', 1.0, 1.0, 0.0, 1.0, 200.0),
   ('egfr', 'mL/min/{1.73_m2}', 1.0, 1.0, 0.0, 1.0, 200.0),
   ('egfr', 'ml/min/1.73m2', 1.0, 1.0, 0.0, 1.0, 200.0),
   ('egfr', 'mL/min/1.73m²', 1.0, 1.0, 0.0, 1.0, 200.0),
+  ('fasting_glucose', 'mmol/L', 1.0, 1.0, 0.0, 1.0, 50.0),
+  ('fasting_glucose', 'mmol/l', 1.0, 1.0, 0.0, 1.0, 50.0),
+  ('fasting_glucose', 'mg/dL', 1.0, 18.0156, 0.0, 1.0, 50.0),
+  ('fasting_glucose', 'mg/dl', 1.0, 18.0156, 0.0, 1.0, 50.0),
   ('hba1c', '%', 1.0, 1.0, 0.0, 3.0, 20.0),
   ('hba1c', '% Hb', 1.0, 1.0, 0.0, 3.0, 20.0),
   ('hba1c', '%{HbA1c}', 1.0, 1.0, 0.0, 3.0, 20.0),
-  ('hba1c', 'mmol/mol', 0.09148, 1.0, 2.152, 3.0, 20.0)) AS u(measure, unit, factor, divisor, offset_value, low, high)
-  ON u.measure = m.measure AND u.unit = m.unit
-JOIN patient_base AS p
-  ON p.patient_id = m.patient_id
-WHERE
-  m.measure IN ('creatinine', 'egfr', 'hba1c')
-  AND m.obs_date <= CAST('2019-12-31' AS DATE)
-  AND (
-    p.death_date IS NULL OR m.obs_date <= p.death_date
-  )
-  AND NOT m.value IS NULL;
+  ('hba1c', 'mmol/mol', 0.09148, 1.0, 2.152, 3.0, 20.0),
+  ('height', 'cm', 1.0, 1.0, 0.0, 40.0, 250.0),
+  ('height', 'm', 100.0, 1.0, 0.0, 40.0, 250.0),
+  ('height', 'mm', 1.0, 10.0, 0.0, 40.0, 250.0),
+  ('ldl', 'mmol/L', 1.0, 1.0, 0.0, 0.2, 15.0),
+  ('ldl', 'mmol/l', 1.0, 1.0, 0.0, 0.2, 15.0),
+  ('ldl', 'mg/dL', 1.0, 38.67, 0.0, 0.2, 15.0),
+  ('ldl', 'mg/dl', 1.0, 38.67, 0.0, 0.2, 15.0),
+  ('sbp', 'mmHg', 1.0, 1.0, 0.0, 50.0, 300.0),
+  ('sbp', 'mm[Hg]', 1.0, 1.0, 0.0, 50.0, 300.0),
+  ('sbp', 'mm Hg', 1.0, 1.0, 0.0, 50.0, 300.0),
+  ('total_cholesterol', 'mmol/L', 1.0, 1.0, 0.0, 1.0, 20.0),
+  ('total_cholesterol', 'mmol/l', 1.0, 1.0, 0.0, 1.0, 20.0),
+  ('total_cholesterol', 'mg/dL', 1.0, 38.67, 0.0, 1.0, 20.0),
+  ('total_cholesterol', 'mg/dl', 1.0, 38.67, 0.0, 1.0, 20.0),
+  ('weight', 'kg', 1.0, 1.0, 0.0, 2.0, 400.0),
+  ('weight', 'g', 1.0, 1000.0, 0.0, 2.0, 400.0)) AS u(measure, unit, factor, divisor, offset_value, low, high)
+  ON u.measure = r.measure AND u.unit = r.unit;
 
--- stage measurement_values [table]: measurement values inside their plausibility range
+-- stage measurement_values [table]: usable values of the measures the study reads, in canonical units
 -- reads: measurement_rows
 SELECT
   patient_id,
   obs_date,
   measure,
   value,
+  qualifier,
+  category,
   FALSE AS derived
 FROM measurement_rows
 WHERE
-  value BETWEEN low AND high;
+  problem IS NULL AND measure IN ('creatinine', 'egfr', 'hba1c');
 
--- stage derived_egfr [table]: eGFR derived from creatinine by CKD-EPI 2021 where no eGFR was reported
+-- stage derived_egfr [table]: eGFR derived from creatinine by CKD-EPI 2021 where none was reported that day
 -- reads: measurement_values, patient_base
 SELECT
   patient_id,
   obs_date,
   'egfr' AS measure,
   egfr AS value,
+  CAST(NULL AS TEXT) AS qualifier,
+  CAST(NULL AS TEXT) AS category,
   TRUE AS derived
 FROM (
   SELECT
@@ -191,7 +315,10 @@ FROM (
   ) AS r
     ON r.patient_id = c.patient_id AND r.obs_date = c.obs_date
   WHERE
-    c.measure = 'creatinine' AND r.patient_id IS NULL AND NOT p.birth_date IS NULL
+    c.measure = 'creatinine'
+    AND c.qualifier IS NULL
+    AND r.patient_id IS NULL
+    AND NOT p.birth_date IS NULL
 ) AS d
 WHERE
   egfr BETWEEN 1.0 AND 200.0;
@@ -213,24 +340,43 @@ FROM (
     (3),
     (4)) AS l(prefix_length)
   JOIN (VALUES
-    ('ATC', 'A10B', 'type2_diabetes.dm_drug', NULL, FALSE),
-    ('ATC', 'C03C', 'heart_failure.loop_diuretic', NULL, FALSE),
-    ('ICD10', 'E11', 'type2_diabetes.dm_code', NULL, FALSE),
-    ('ICD10', 'I50', 'heart_failure.hf_code', NULL, FALSE),
-    ('ICD10', 'N183', 'ckd.ckd_code', NULL, FALSE),
-    ('ICD10', 'N184', 'ckd.ckd_code', NULL, FALSE),
-    ('ICD10', 'N185', 'ckd.ckd_code', NULL, FALSE),
-    ('ICD10', 'N186', 'ckd.ckd_code', NULL, FALSE),
-    ('ICD9', '250', 'type2_diabetes.dm_code', NULL, FALSE),
-    ('ICD9', '428', 'heart_failure.hf_code', NULL, FALSE),
-    ('ICD9', '5853', 'ckd.ckd_code', NULL, FALSE),
-    ('ICD9', '5854', 'ckd.ckd_code', NULL, FALSE),
-    ('ICD9', '5855', 'ckd.ckd_code', NULL, FALSE),
-    ('ICD9', '5856', 'ckd.ckd_code', NULL, FALSE)) AS c(code_system, prefix, evidence, source, is_exclusion)
+    ('ATC', 'A10B', 'type2_diabetes.dm_drug', NULL, NULL, FALSE),
+    ('ATC', 'C02', 'hypertension.antihypertensive', NULL, NULL, FALSE),
+    ('ATC', 'C03', 'hypertension.antihypertensive', NULL, NULL, FALSE),
+    ('ATC', 'C03C', 'heart_failure.loop_diuretic', NULL, NULL, FALSE),
+    ('ATC', 'C07', 'hypertension.antihypertensive', NULL, NULL, FALSE),
+    ('ATC', 'C08', 'hypertension.antihypertensive', NULL, NULL, FALSE),
+    ('ATC', 'C09', 'hypertension.antihypertensive', NULL, NULL, FALSE),
+    ('ICD10', 'E11', 'type2_diabetes.dm_code', NULL, NULL, FALSE),
+    ('ICD10', 'I10', 'hypertension.htn_code', NULL, NULL, FALSE),
+    ('ICD10', 'I11', 'hypertension.htn_code', NULL, NULL, FALSE),
+    ('ICD10', 'I12', 'hypertension.htn_code', NULL, NULL, FALSE),
+    ('ICD10', 'I13', 'hypertension.htn_code', NULL, NULL, FALSE),
+    ('ICD10', 'I14', 'hypertension.htn_code', NULL, NULL, FALSE),
+    ('ICD10', 'I15', 'hypertension.htn_code', NULL, NULL, FALSE),
+    ('ICD10', 'I50', 'heart_failure.hf_code', NULL, NULL, FALSE),
+    ('ICD10', 'N183', 'ckd.ckd_code', NULL, NULL, FALSE),
+    ('ICD10', 'N184', 'ckd.ckd_code', NULL, NULL, FALSE),
+    ('ICD10', 'N185', 'ckd.ckd_code', NULL, NULL, FALSE),
+    ('ICD10', 'N186', 'ckd.ckd_code', NULL, NULL, FALSE),
+    ('ICD9', '250', 'type2_diabetes.dm_code', NULL, NULL, FALSE),
+    ('ICD9', '401', 'hypertension.htn_code', NULL, NULL, FALSE),
+    ('ICD9', '402', 'hypertension.htn_code', NULL, NULL, FALSE),
+    ('ICD9', '403', 'hypertension.htn_code', NULL, NULL, FALSE),
+    ('ICD9', '404', 'hypertension.htn_code', NULL, NULL, FALSE),
+    ('ICD9', '405', 'hypertension.htn_code', NULL, NULL, FALSE),
+    ('ICD9', '428', 'heart_failure.hf_code', NULL, NULL, FALSE),
+    ('ICD9', '5853', 'ckd.ckd_code', NULL, NULL, FALSE),
+    ('ICD9', '5854', 'ckd.ckd_code', NULL, NULL, FALSE),
+    ('ICD9', '5855', 'ckd.ckd_code', NULL, NULL, FALSE),
+    ('ICD9', '5856', 'ckd.ckd_code', NULL, NULL, FALSE)) AS c(code_system, prefix, evidence, source, min_days, is_exclusion)
     ON c.code_system = e.code_system
     AND c.prefix = LEFT(e.code, l.prefix_length)
     AND (
       c.source IS NULL OR c.source = e.source
+    )
+    AND (
+      c.min_days IS NULL OR e.duration_days >= c.min_days
     )
   GROUP BY
     e.patient_id,
@@ -270,7 +416,16 @@ FROM (
     CAST(COUNT(*) AS INT) AS n_rows
   FROM measurement_values
   WHERE
-    measure = 'hba1c' AND value >= 6.5
+    measure = 'hba1c'
+    AND CASE
+      WHEN qualifier IS NULL
+      THEN value >= 6.5
+      WHEN qualifier = '>'
+      THEN value >= 6.5
+      WHEN qualifier = '>='
+      THEN value >= 6.5
+      ELSE FALSE
+    END
   GROUP BY
     patient_id,
     obs_date
@@ -282,7 +437,16 @@ FROM (
     CAST(COUNT(*) AS INT) AS n_rows
   FROM measurement_values
   WHERE
-    measure = 'egfr' AND value < 60.0
+    measure = 'egfr'
+    AND CASE
+      WHEN qualifier IS NULL
+      THEN value < 60.0
+      WHEN qualifier = '<'
+      THEN value <= 60.0
+      WHEN qualifier = '<='
+      THEN value < 60.0
+      ELSE FALSE
+    END
   GROUP BY
     patient_id,
     obs_date
@@ -294,7 +458,16 @@ FROM (
     CAST(COUNT(*) AS INT) AS n_rows
   FROM derived_egfr
   WHERE
-    measure = 'egfr' AND value < 60.0
+    measure = 'egfr'
+    AND CASE
+      WHEN qualifier IS NULL
+      THEN value < 60.0
+      WHEN qualifier = '<'
+      THEN value <= 60.0
+      WHEN qualifier = '<='
+      THEN value < 60.0
+      ELSE FALSE
+    END
   GROUP BY
     patient_id,
     obs_date
@@ -304,7 +477,7 @@ GROUP BY
   evidence,
   event_date;
 
--- stage rule_onsets [table]: the first date each rule of each condition is met, per patient
+-- stage rules_type2_diabetes [table]: the first date each rule of type2_diabetes is met, per patient
 -- reads: evidence_events
 SELECT
   patient_id,
@@ -365,8 +538,19 @@ FROM (
 WHERE
   in_frame_0 >= 2
 GROUP BY
-  patient_id
-UNION ALL
+  patient_id;
+
+-- stage onset_type2_diabetes [table]: onset of type2_diabetes: the earliest date any of its rules is met
+-- reads: rules_type2_diabetes
+SELECT
+  patient_id,
+  MIN(onset_date) AS onset_date
+FROM rules_type2_diabetes
+GROUP BY
+  patient_id;
+
+-- stage rules_ckd [table]: the first date each rule of ckd is met, per patient
+-- reads: evidence_events
 SELECT
   patient_id,
   'ckd' AS condition,
@@ -409,8 +593,19 @@ FROM (
 WHERE
   in_frame_0 >= 2
 GROUP BY
-  patient_id
-UNION ALL
+  patient_id;
+
+-- stage onset_ckd [table]: onset of ckd: the earliest date any of its rules is met
+-- reads: rules_ckd
+SELECT
+  patient_id,
+  MIN(onset_date) AS onset_date
+FROM rules_ckd
+GROUP BY
+  patient_id;
+
+-- stage rules_heart_failure [table]: the first date each rule of heart_failure is met, per patient
+-- reads: evidence_events
 SELECT
   patient_id,
   'heart_failure' AS condition,
@@ -452,21 +647,99 @@ WHERE
 GROUP BY
   patient_id;
 
--- stage condition_onsets [table]: each condition's onset per patient (rule met, or first evidence once a rule is met)
--- reads: rule_onsets
+-- stage onset_heart_failure [table]: onset of heart_failure: the earliest date any of its rules is met
+-- reads: rules_heart_failure
+SELECT
+  patient_id,
+  MIN(onset_date) AS onset_date
+FROM rules_heart_failure
+GROUP BY
+  patient_id;
+
+-- stage rules_hypertension [table]: the first date each rule of hypertension is met, per patient
+-- reads: evidence_events
+SELECT
+  patient_id,
+  'hypertension' AS condition,
+  'two hypertension codes' AS rule,
+  MIN(event_date) AS onset_date
+FROM (
+  SELECT
+    patient_id,
+    evidence,
+    event_date,
+    SUM(CASE WHEN evidence = 'hypertension.htn_code' THEN 1 ELSE 0 END) OVER (PARTITION BY patient_id ORDER BY day RANGE BETWEEN 730 PRECEDING AND CURRENT ROW) AS in_frame_0
+  FROM evidence_events
+  WHERE
+    evidence IN ('hypertension.htn_code')
+) AS counted
+WHERE
+  in_frame_0 >= 2
+GROUP BY
+  patient_id
+UNION ALL
+SELECT
+  patient_id,
+  'hypertension' AS condition,
+  'code and antihypertensive' AS rule,
+  MIN(event_date) AS onset_date
+FROM (
+  SELECT
+    patient_id,
+    evidence,
+    event_date,
+    SUM(CASE WHEN evidence = 'hypertension.antihypertensive' THEN n_rows ELSE 0 END) OVER (PARTITION BY patient_id ORDER BY day RANGE BETWEEN 365 PRECEDING AND CURRENT ROW) AS in_frame_0,
+    SUM(CASE WHEN evidence = 'hypertension.htn_code' THEN n_rows ELSE 0 END) OVER (PARTITION BY patient_id ORDER BY day RANGE BETWEEN 365 PRECEDING AND CURRENT ROW) AS in_frame_1
+  FROM evidence_events
+  WHERE
+    evidence IN ('hypertension.antihypertensive', 'hypertension.htn_code')
+) AS counted
+WHERE
+  in_frame_0 >= 1 AND in_frame_1 >= 1
+GROUP BY
+  patient_id;
+
+-- stage onset_hypertension [table]: onset of hypertension: the earliest date any of its rules is met
+-- reads: rules_hypertension
+SELECT
+  patient_id,
+  MIN(onset_date) AS onset_date
+FROM rules_hypertension
+GROUP BY
+  patient_id;
+
+-- stage condition_onsets [table]: each condition's onset per patient, one column per condition the table needs
+-- reads: onset_type2_diabetes, onset_ckd, onset_heart_failure, onset_hypertension
 SELECT
   patient_id,
   MIN(CASE WHEN condition = 'type2_diabetes' THEN onset_date END) AS onset_type2_diabetes,
   MIN(CASE WHEN condition = 'ckd' THEN onset_date END) AS onset_ckd,
-  MIN(CASE WHEN condition = 'heart_failure' THEN onset_date END) AS onset_heart_failure
+  MIN(CASE WHEN condition = 'heart_failure' THEN onset_date END) AS onset_heart_failure,
+  MIN(CASE WHEN condition = 'hypertension' THEN onset_date END) AS onset_hypertension
 FROM (
   SELECT
     patient_id,
-    condition,
+    'type2_diabetes' AS condition,
     onset_date
-  FROM rule_onsets
-  WHERE
-    condition IN ('type2_diabetes', 'ckd', 'heart_failure')
+  FROM onset_type2_diabetes
+  UNION ALL
+  SELECT
+    patient_id,
+    'ckd' AS condition,
+    onset_date
+  FROM onset_ckd
+  UNION ALL
+  SELECT
+    patient_id,
+    'heart_failure' AS condition,
+    onset_date
+  FROM onset_heart_failure
+  UNION ALL
+  SELECT
+    patient_id,
+    'hypertension' AS condition,
+    onset_date
+  FROM onset_hypertension
 ) AS onsets
 GROUP BY
   patient_id;
@@ -485,6 +758,7 @@ SELECT
   onset_type2_diabetes,
   onset_ckd,
   onset_heart_failure,
+  onset_hypertension,
   prevalent_type2_diabetes,
   prevalent_ckd,
   prevalent_heart_failure,
@@ -511,6 +785,7 @@ FROM (
     onset_type2_diabetes,
     onset_ckd,
     onset_heart_failure,
+    onset_hypertension,
     COALESCE(NOT onset_type2_diabetes IS NULL AND onset_type2_diabetes <= index_date, FALSE) AS prevalent_type2_diabetes,
     COALESCE(NOT onset_ckd IS NULL AND onset_ckd <= index_date, FALSE) AS prevalent_ckd,
     COALESCE(NOT onset_heart_failure IS NULL AND onset_heart_failure <= index_date, FALSE) AS prevalent_heart_failure
@@ -526,7 +801,8 @@ FROM (
       s.age_at_index,
       o.onset_type2_diabetes,
       o.onset_ckd,
-      o.onset_heart_failure
+      o.onset_heart_failure,
+      o.onset_hypertension
     FROM (
       SELECT
         s.patient_id,
@@ -660,6 +936,7 @@ SELECT
   index_date,
   CAST(age_at_index AS INT) AS age_at_index,
   sex,
+  COALESCE(NOT onset_hypertension IS NULL AND onset_hypertension <= index_date, FALSE) AS hypertension,
   prevalent_type2_diabetes AS prevalent_type2_diabetes,
   NOT prevalent_type2_diabetes AS at_risk_type2_diabetes,
   CASE
@@ -724,6 +1001,7 @@ FROM (
     onset_type2_diabetes,
     onset_ckd,
     onset_heart_failure,
+    onset_hypertension,
     prevalent_type2_diabetes,
     prevalent_ckd,
     prevalent_heart_failure,

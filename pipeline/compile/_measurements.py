@@ -1,0 +1,222 @@
+"""Stages that read measurements: parse, convert to canonical units, check, derive.
+
+Every measurement row gets either a usable canonical value or a ``problem`` saying why not, so
+nothing is dropped silently. ``value`` wins; ``value_text`` is read only when ``value`` is empty,
+and only what is unambiguous is parsed: ``6.5``, ``6,5`` (a decimal comma with one or two
+decimals), ``<5`` or ``>90`` (the qualifier is kept), ``6.5 %`` (the unit must agree with the
+unit column when both are given). Units the registry does not list are never guessed.
+"""
+
+from __future__ import annotations
+
+from sqlglot import exp
+
+from pipeline.compile._context import CompileContext
+from pipeline.compile._plan import Stage
+from pipeline.compile._sql import age_in_years, is_in, query, values_table
+from pipeline.measures import DERIVED_FROM, MEASURES, conversion_rows
+
+# No backslashes: the pattern must mean the same in every engine's string literals.
+READING_PATTERN = "^(<=|>=|<|>)?[ ]*([0-9]+([.,][0-9]+)?)[ ]*(.*)$"
+DECIMAL_COMMA_PATTERN = "^[0-9]+,[0-9]{1,2}$"
+
+_MEASUREMENT_ROWS = """
+WITH read AS (
+  SELECT
+    patient_id,
+    TRY_CAST(obs_date AS DATE) AS obs_date,
+    LOWER(TRIM(CAST(measure AS VARCHAR))) AS measure,
+    NULLIF(TRIM(CAST(value AS VARCHAR)), '') AS value_given,
+    NULLIF(TRIM(CAST(value_text AS VARCHAR)), '') AS text_given,
+    NULLIF(TRIM(CAST(unit AS VARCHAR)), '') AS unit_given
+  FROM src_measurements
+), split AS (
+  SELECT
+    *,
+    NULLIF(REGEXP_EXTRACT(text_given, :pattern, 1), '') AS text_qualifier,
+    NULLIF(REGEXP_EXTRACT(text_given, :pattern, 2), '') AS text_number,
+    NULLIF(TRIM(REGEXP_EXTRACT(text_given, :pattern, 4)), '') AS text_unit
+  FROM read
+), parsed AS (
+  SELECT
+    patient_id,
+    obs_date,
+    measure,
+    CASE
+      WHEN value_given IS NOT NULL THEN TRY_CAST(value_given AS DOUBLE)
+      WHEN text_number LIKE '%,%' AND REGEXP_MATCHES(text_number, :decimal_comma)
+        THEN TRY_CAST(REPLACE(text_number, ',', '.') AS DOUBLE)
+      WHEN text_number LIKE '%,%' THEN NULL
+      ELSE TRY_CAST(text_number AS DOUBLE)
+    END AS reading,
+    CASE WHEN value_given IS NULL THEN text_qualifier END AS qualifier,
+    COALESCE(unit_given, CASE WHEN value_given IS NULL THEN text_unit END) AS unit,
+    value_given IS NULL AND text_unit IS NOT NULL AND unit_given IS NOT NULL
+      AND text_unit <> unit_given AS unit_conflict,
+    value_given IS NULL AND text_given IS NULL AS empty,
+    CASE WHEN value_given IS NULL THEN LOWER(text_given) END AS category
+  FROM split
+)
+SELECT
+  r.patient_id,
+  r.obs_date,
+  r.measure,
+  r.qualifier,
+  r.category,
+  u.factor * r.reading / u.divisor + u.offset_value AS value,
+  CASE
+    WHEN p.patient_id IS NULL THEN 'orphan patient'
+    WHEN r.obs_date IS NULL THEN 'unparseable date'
+    WHEN r.obs_date > :end_of_data THEN 'after end of data'
+    WHEN p.death_date IS NOT NULL AND r.obs_date > p.death_date THEN 'after death'
+    WHEN k.measure IS NULL THEN 'unknown measure'
+    WHEN k.is_coded AND (r.category IS NULL OR NOT :known_category) THEN 'category not recognised'
+    WHEN k.is_coded THEN NULL
+    WHEN r.empty THEN 'no value'
+    WHEN r.reading IS NULL THEN 'value not numeric'
+    WHEN r.unit_conflict THEN 'unit differs from value_text'
+    WHEN u.measure IS NULL THEN 'unit not convertible'
+    WHEN u.factor * r.reading / u.divisor + u.offset_value NOT BETWEEN u.low AND u.high
+      THEN 'implausible value'
+  END AS problem
+FROM parsed AS r
+LEFT JOIN patient_base AS p ON p.patient_id = r.patient_id
+LEFT JOIN :known ON k.measure = r.measure
+LEFT JOIN :units ON u.measure = r.measure AND u.unit = r.unit
+"""
+
+_MEASUREMENT_VALUES = """
+SELECT patient_id, obs_date, measure, value, qualifier, category, FALSE AS derived
+FROM measurement_rows
+WHERE problem IS NULL AND :wanted
+"""
+
+# eGFR from creatinine by CKD-EPI 2021 (Inker et al., N Engl J Med 2021;385:1737), age in
+# completed years on the measurement date. Only exact creatinine values (no < or >), and only
+# on days without a usable reported eGFR, which wins.
+_DERIVED_EGFR = """
+SELECT patient_id, obs_date, 'egfr' AS measure, egfr AS value, CAST(NULL AS VARCHAR) AS qualifier,
+  CAST(NULL AS VARCHAR) AS category, TRUE AS derived
+FROM (
+  SELECT
+    c.patient_id,
+    c.obs_date,
+    142
+      * POWER(LEAST(c.value / k.kappa, 1), k.alpha)
+      * POWER(GREATEST(c.value / k.kappa, 1), -1.2)
+      * POWER(0.9938, :age)
+      * k.female_factor AS egfr
+  FROM measurement_values AS c
+  JOIN patient_base AS p ON p.patient_id = c.patient_id
+  JOIN (VALUES ('F', 0.7, -0.241, 1.012), ('M', 0.9, -0.302, 1.0))
+    AS k(sex, kappa, alpha, female_factor) ON k.sex = p.sex
+  LEFT JOIN (
+    SELECT DISTINCT patient_id, obs_date FROM measurement_values WHERE measure = 'egfr'
+  ) AS r ON r.patient_id = c.patient_id AND r.obs_date = c.obs_date
+  WHERE c.measure = 'creatinine' AND c.qualifier IS NULL AND r.patient_id IS NULL
+    AND p.birth_date IS NOT NULL
+) AS d
+WHERE egfr BETWEEN :low AND :high
+"""
+
+# BMI from weight and the latest height ever recorded (DEMO_STUDY.md), on days without a usable
+# reported BMI; several weights on one day each give a BMI.
+_DERIVED_BMI = """
+SELECT patient_id, obs_date, 'bmi' AS measure, bmi AS value, CAST(NULL AS VARCHAR) AS qualifier,
+  CAST(NULL AS VARCHAR) AS category, TRUE AS derived
+FROM (
+  SELECT w.patient_id, w.obs_date, w.value / POWER(h.height_cm / 100, 2) AS bmi
+  FROM measurement_values AS w
+  JOIN (
+    SELECT patient_id, AVG(value) AS height_cm
+    FROM (
+      SELECT patient_id, value, obs_date,
+        MAX(obs_date) OVER (PARTITION BY patient_id) AS last_date
+      FROM measurement_values
+      WHERE measure = 'height' AND qualifier IS NULL
+    ) AS heights
+    WHERE obs_date = last_date
+    GROUP BY patient_id
+  ) AS h ON h.patient_id = w.patient_id
+  LEFT JOIN (
+    SELECT DISTINCT patient_id, obs_date FROM measurement_values WHERE measure = 'bmi'
+  ) AS r ON r.patient_id = w.patient_id AND r.obs_date = w.obs_date
+  WHERE w.measure = 'weight' AND w.qualifier IS NULL AND r.patient_id IS NULL
+) AS d
+WHERE bmi BETWEEN :low AND :high
+"""
+
+
+def measurement_stages(ctx: CompileContext) -> tuple[Stage, ...]:
+    """``measurement_rows`` (every row, with a problem or not) and usable values."""
+    if not ctx.measures:
+        return ()
+    known = values_table(
+        "k",
+        ["measure", "is_coded"],
+        [(m.name, m.is_coded) for m in sorted(MEASURES.values(), key=lambda m: m.name)],
+    )
+    units = values_table(
+        "u",
+        ["measure", "unit", "factor", "divisor", "offset_value", "low", "high"],
+        conversion_rows(),
+    )
+    categories = sorted({(m.name, c) for m in MEASURES.values() for c in m.categories})
+    known_category = exp.or_(
+        *(
+            exp.and_(exp.column("measure", "r").eq(name), exp.column("category", "r").eq(value))
+            for name, value in categories
+        )
+    )
+    stages = [
+        Stage(
+            "measurement_rows",
+            query(
+                _MEASUREMENT_ROWS,
+                pattern=READING_PATTERN,
+                decimal_comma=DECIMAL_COMMA_PATTERN,
+                end_of_data=ctx.study.end_of_data,
+                known=known,
+                units=units,
+                known_category=known_category,
+            ),
+            ("src_measurements", "patient_base"),
+            "every measurement row parsed and converted, with the problem that stops its use",
+            kind="view",
+        ),
+        Stage(
+            "measurement_values",
+            query(_MEASUREMENT_VALUES, wanted=is_in(exp.column("measure"), ctx.measures)),
+            ("measurement_rows",),
+            "usable values of the measures the study reads, in canonical units",
+        ),
+    ]
+    if "egfr" in ctx.measures:
+        low, high = MEASURES["egfr"].plausible
+        age = age_in_years(birth=exp.column("birth_date", "p"), on=exp.column("obs_date", "c"))
+        stages.append(
+            Stage(
+                "derived_egfr",
+                query(_DERIVED_EGFR, age=age, low=low, high=high),
+                ("measurement_values", "patient_base"),
+                "eGFR derived from creatinine by CKD-EPI 2021 where none was reported that day",
+            )
+        )
+    if "bmi" in ctx.measures:
+        low, high = MEASURES["bmi"].plausible
+        stages.append(
+            Stage(
+                "derived_bmi",
+                query(_DERIVED_BMI, low=low, high=high),
+                ("measurement_values",),
+                "BMI from weight and the latest height where none was reported that day",
+            )
+        )
+    return tuple(stages)
+
+
+def measure_relations(ctx: CompileContext, measure: str) -> tuple[str, ...]:
+    """The stages holding values of ``measure``: reported, and derived where it can be."""
+    if measure in DERIVED_FROM and measure in ctx.measures:
+        return ("measurement_values", f"derived_{measure}")
+    return ("measurement_values",)
