@@ -28,6 +28,7 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
 from pipeline.errors import AscertainError
+from pipeline.synth._csv import spoil_dates
 from pipeline.synth._events import (
     SYSTEMS,
     CodeBook,
@@ -363,7 +364,7 @@ class _Sink:
                     version="2.6",
                 )
             else:
-                self.writers[table] = pacsv.CSVWriter(self.path(table), SCHEMAS[table])
+                self.writers[table] = pacsv.CSVWriter(self.path(table), data.schema)
             self.rows[table] = 0
         writer = self.writers[table]
         if isinstance(writer, pq.ParquetWriter):
@@ -485,7 +486,10 @@ def _write_chunks(
             pop = draw_population(
                 rng, sc, numbers=numbers, ghost=ghost, start_day=_day(start), end_day=_day(end)
             )
-            for name, table in _chunk_tables(rng, sc, book, pop).items():
+            tables = _chunk_tables(rng, sc, book, pop)
+            if file_format == "csv":
+                spoil_dates(rng, tables, sc.p_unreadable_date_row)
+            for name, table in tables.items():
                 sink.write(name, table)
     finally:
         sink.close()

@@ -283,6 +283,8 @@ class Scenario:
     p_orphan_patient: float = 0.001
     p_value_text_comma_row: float = 0.02
     p_implausible_row: float = 0.003
+    p_unreadable_date_row: float = 0.0005
+    """Share of event rows whose date is unreadable; CSV output only (Parquet dates are typed)."""
     chunk_size: int = 50_000
 
     def to_dict(self) -> dict[str, Any]:

@@ -1,0 +1,116 @@
+"""Small builders shared by tests: tiny CSV extracts, ad-hoc studies, running one stage."""
+
+from __future__ import annotations
+
+import csv
+from pathlib import Path
+from typing import Any
+
+from pipeline._build import plan_study
+from pipeline.engine import DuckDBEngine
+from pipeline.extract import discover_extract
+
+from .conftest import DEMO_STUDY
+
+COLUMNS = {
+    "patients": ["patient_id", "birth_date", "sex", "death_date"],
+    "encounters": ["patient_id", "encounter_date", "encounter_type"],
+    "diagnoses": ["patient_id", "event_date", "code_system", "code", "source"],
+    "prescriptions": ["patient_id", "start_date", "stop_date", "atc"],
+    "measurements": ["patient_id", "obs_date", "measure", "value_text", "value", "unit"],
+}
+
+
+def write_extract(folder: Path, tables: dict[str, list[dict[str, Any]]]) -> Path:
+    """Write each canonical table as CSV; tables not given are written empty."""
+    folder.mkdir(parents=True, exist_ok=True)
+    for name, columns in COLUMNS.items():
+        with (folder / f"{name}.csv").open("w", encoding="utf-8", newline="") as handle:
+            writer = csv.DictWriter(handle, fieldnames=columns)
+            writer.writeheader()
+            for row in tables.get(name, []):
+                writer.writerow({c: row.get(c, "") for c in columns})
+    return folder
+
+
+STUDY_TEMPLATE = """\
+study: test_study
+title: a test study
+extract: {extract}
+definitions: {definitions}
+end_of_data: 2019-12-31
+index:
+  first_encounter:
+    between: [2015-01-01, 2016-12-31]
+eligibility:
+  - sex: [F, M]
+  - alive_at_index: true
+  - age:
+      between: [40, 85]
+  - history_days: 730
+covariates: {covariates}
+outcomes:
+  conditions: [{outcomes}]
+  horizon_days: 1461
+followup:
+  end_at: [death, end_of_data, lost_contact, horizon]
+  lost_contact_after_days: 365
+output:
+  folder: {out}
+"""
+
+
+def write_study(
+    folder: Path,
+    conditions: dict[str, str],
+    outcomes: list[str],
+    *,
+    extract: Path,
+    covariates: str = "{}",
+) -> Path:
+    """Write condition files and a study using them; returns the study file."""
+    definitions = folder / "conditions"
+    definitions.mkdir(parents=True, exist_ok=True)
+    for name, text in conditions.items():
+        (definitions / f"{name}.yaml").write_text(text, encoding="utf-8")
+    study = folder / "study.yaml"
+    study.write_text(
+        STUDY_TEMPLATE.format(
+            extract=extract,
+            definitions=definitions,
+            outcomes=", ".join(outcomes),
+            covariates=covariates,
+            out=folder / "out",
+        ),
+        encoding="utf-8",
+    )
+    return study
+
+
+def run_stage(
+    extract: Path, stage: str, *, study: Path = DEMO_STUDY, order: tuple[str, ...] = ("patient_id",)
+) -> list[dict[str, Any]]:
+    """Run the part of a study's plan that computes ``stage`` and return its rows."""
+    plan = plan_study(study).through(stage, order=order)
+    result = DuckDBEngine(threads=1).run(plan, discover_extract(extract, plan.sources))
+    return result.outputs[stage].to_pylist()
+
+
+def eligible_patient(patient_id: str, sex: str = "F", birth_date: str = "1955-06-15") -> dict:
+    """A patient row that passes the demo eligibility steps with :func:`eligible_encounters`."""
+    return {"patient_id": patient_id, "birth_date": birth_date, "sex": sex, "death_date": ""}
+
+
+def eligible_encounters(patient_id: str) -> list[dict]:
+    """Encounters giving index 2015-03-02 with more than 730 days of history."""
+    return [
+        {"patient_id": patient_id, "encounter_date": d, "encounter_type": "visit"}
+        for d in (
+            "2012-01-10",
+            "2015-03-02",
+            "2016-03-01",
+            "2017-03-01",
+            "2018-03-01",
+            "2019-03-01",
+        )
+    ]
