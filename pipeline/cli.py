@@ -19,6 +19,7 @@ from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
 
 from pipeline._build import BuildOptions, build_study, plan_study
 from pipeline.compile import Stage
+from pipeline.config._check import check_paths, explain_condition
 from pipeline.errors import AscertainError
 
 app = typer.Typer(
@@ -152,3 +153,25 @@ def synth(
     )
     rows = ", ".join(f"{name} {count:,}" for name, count in sorted(summary.rows.items()))
     Console(highlight=False).print(f"wrote {summary.patients:,} patients to {out_dir}: {rows}")
+
+
+@app.command()
+def check(
+    paths: Annotated[
+        list[Path] | None, typer.Argument(help="Files or folders (default: definitions/).")
+    ] = None,
+    explain: Annotated[
+        bool, typer.Option("--explain", help="Say what each definition means.")
+    ] = False,
+) -> None:
+    """Check study and definition files without data. Exit 0 clean, 1 problems, 2 unreadable."""
+    report = check_paths(paths or [Path("definitions")])
+    console = Console(highlight=False, soft_wrap=True)
+    if explain:
+        for condition in report.conditions.values():
+            console.print(explain_condition(condition), markup=False)
+            console.print()
+    for problem in report.problems:
+        console.print(str(problem), markup=False)
+    console.print(f"{len(report.files)} files checked, {len(report.problems)} problems")
+    raise typer.Exit(report.exit_code)

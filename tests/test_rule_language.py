@@ -284,8 +284,9 @@ def test_wrong_unit_in_threshold_is_located(tmp_path: Path) -> None:
     )
     (problem,) = _catalog_problems(tmp_path, {"low": text})
     assert problem.startswith("low.yaml:5:")
-    assert "[bad-value] evidence.low.measurement: unit 'mmol/mol' cannot be converted for egfr" in (
-        problem
+    assert (
+        "[bad-value] evidence.low.measurement.below: unit 'mmol/mol' cannot be converted for egfr"
+        in (problem)
     )
 
 

@@ -11,7 +11,15 @@ from functools import partial
 from pathlib import Path
 from typing import Annotated, Literal, Self
 
-from pydantic import AfterValidator, BaseModel, ConfigDict, Field, field_validator, model_validator
+from pydantic import (
+    AfterValidator,
+    BaseModel,
+    ConfigDict,
+    Field,
+    ValidationInfo,
+    field_validator,
+    model_validator,
+)
 
 from pipeline.codes import check_code
 from pipeline.measures import MEASURES, Threshold
@@ -83,6 +91,18 @@ class MeasurementEvidence(Model):
     def _known_measure(cls, value: str) -> str:
         if value not in MEASURES:
             raise ValueError(f"unknown measure '{value}'; known: {', '.join(sorted(MEASURES))}")
+        return value
+
+    @field_validator("at_least", "above", "below", "at_most", "between")
+    @classmethod
+    def _convertible(
+        cls, value: Quantity | tuple[Quantity, Quantity] | None, info: ValidationInfo
+    ) -> Quantity | tuple[Quantity, Quantity] | None:
+        measure = info.data.get("measure")
+        if value is None or measure is None or MEASURES[measure].is_coded:
+            return value
+        for text in value if isinstance(value, tuple) else (value,):
+            Threshold.parse(measure, "at_least", text)  # raises with the reason
         return value
 
     def thresholds(self) -> tuple[Threshold, ...]:

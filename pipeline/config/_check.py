@@ -1,0 +1,216 @@
+"""``ascertain check``: validate definition and study files without data, and explain them.
+
+Beyond what loading already rejects, the checks here find definitions that load but are
+probably not what their author meant: evidence no rule uses, exclusions that remove nothing,
+inclusions an exclusion cancels.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from pipeline.codes import expand_codes
+from pipeline.config._loader import load_catalog, load_condition, load_study
+from pipeline.config._models import Condition, Evidence, Rule
+from pipeline.config._yaml import load_yaml
+from pipeline.errors import ConfigError, Problem
+
+UNREADABLE = frozenset({"unreadable", "bad-yaml", "empty-file", "missing-folder", "not-found"})
+
+
+@dataclass
+class CheckReport:
+    """Problems found, files checked, and the definitions that loaded (for ``--explain``)."""
+
+    problems: list[Problem] = field(default_factory=list)
+    files: list[Path] = field(default_factory=list)
+    conditions: dict[Path, Condition] = field(default_factory=dict)
+
+    @property
+    def exit_code(self) -> int:
+        """0 when clean, 2 when a file could not be read at all, else 1."""
+        if any(p.code in UNREADABLE for p in self.problems):
+            return 2
+        return 1 if self.problems else 0
+
+
+def _yaml_files(paths: list[Path]) -> tuple[list[Path], list[Problem]]:
+    files: list[Path] = []
+    missing: list[Problem] = []
+    for path in paths:
+        if path.is_dir():
+            files.extend(sorted(path.rglob("*.yaml")))
+        elif path.is_file():
+            files.append(path)
+        else:
+            missing.append(Problem(path, 0, 0, "not-found", "no such file or folder"))
+    return sorted(set(files)), missing
+
+
+def _is_study(file: Path) -> bool:
+    try:
+        data = load_yaml(file).data
+    except ConfigError:
+        return False
+    return isinstance(data, dict) and "study" in data
+
+
+def _lint(file: Path, condition: Condition) -> list[Problem]:
+    doc = load_yaml(file)
+    used = {name for rule in condition.rules for name in (*rule.need, *rule.absent)}
+    problems = [
+        doc.problem(
+            ("evidence", name),
+            "unused-evidence",
+            f"evidence '{name}' is defined but no rule uses it",
+        )
+        for name in condition.evidence
+        if name not in used
+    ]
+    for name, ev in condition.evidence.items():
+        for system, included, excluded, path in _code_lists(ev):
+            include = expand_codes(included)
+            for prefix in expand_codes(excluded):
+                if not any(prefix.startswith(i) for i in include):
+                    problems.append(
+                        doc.problem(
+                            ("evidence", name, *path),
+                            "exclude-unused",
+                            f"evidence '{name}': excluded {system} '{prefix}' is not inside any "
+                            "included code, so it removes nothing",
+                        )
+                    )
+                cancelled = [i for i in include if i.startswith(prefix)]
+                if cancelled:
+                    problems.append(
+                        doc.problem(
+                            ("evidence", name, *path),
+                            "include-excluded",
+                            f"evidence '{name}': {system} '{', '.join(cancelled)}' is included "
+                            f"and excluded by '{prefix}', so it matches nothing",
+                        )
+                    )
+    return problems
+
+
+def _code_lists(
+    ev: Evidence,
+) -> list[tuple[str, tuple[str, ...], tuple[str, ...], tuple[str, ...]]]:
+    if ev.diagnosis and ev.diagnosis.exclude:
+        exclude = ev.diagnosis.exclude
+        return [
+            ("ICD9", ev.diagnosis.ICD9, exclude.ICD9, ("diagnosis", "exclude")),
+            ("ICD10", ev.diagnosis.ICD10, exclude.ICD10, ("diagnosis", "exclude")),
+        ]
+    if ev.prescription and ev.prescription.exclude:
+        return [("ATC", ev.prescription.atc, ev.prescription.exclude, ("prescription", "exclude"))]
+    return []
+
+
+def check_paths(paths: list[Path]) -> CheckReport:
+    """Check every YAML file under ``paths``: studies, definitions and their folders."""
+    files, problems = _yaml_files(paths)
+    report = CheckReport(problems=problems, files=files)
+    folders: set[Path] = set()
+    for file in files:
+        try:
+            if _is_study(file):
+                load_study(file)
+                continue
+            condition = load_condition(file)
+        except ConfigError as err:
+            report.problems.extend(err.problems)
+            continue
+        report.conditions[file] = condition
+        report.problems.extend(_lint(file, condition))
+        folders.add(file.parent)
+    for folder in sorted(folders):
+        try:
+            load_catalog(folder)
+        except ConfigError as err:
+            known = set(report.problems)
+            report.problems.extend(p for p in err.problems if p not in known)
+    report.problems = sorted(set(report.problems))
+    return report
+
+
+def _codes_text(ev: Evidence) -> str:
+    if ev.diagnosis:
+        parts = [
+            f"an {label} code starting {' or '.join(codes)}"
+            for label, codes in (("ICD-10", ev.diagnosis.ICD10), ("ICD-9", ev.diagnosis.ICD9))
+            if codes
+        ]
+        text = "a diagnosis with " + " or ".join(parts)
+        if ev.diagnosis.exclude:
+            excluded = [*ev.diagnosis.exclude.ICD10, *ev.diagnosis.exclude.ICD9]
+            text += f", except {', '.join(excluded)}"
+        if ev.diagnosis.source:
+            text += f", recorded in {' or '.join(s.replace('_', ' ') for s in ev.diagnosis.source)}"
+        return text
+    if ev.prescription:
+        rx = ev.prescription
+        text = f"a prescription with an ATC code starting {' or '.join(rx.atc)}"
+        if rx.exclude:
+            text += f", except {', '.join(rx.exclude)}"
+        if rx.min_days:
+            text += f", lasting at least {rx.min_days} days"
+        return text
+    if ev.measurement:
+        m = ev.measurement
+        if m.category:
+            return f"a measurement of {m.measure} recorded as {' or '.join(m.category)}"
+        limits = [
+            f"{label} {value}"
+            for label, value in (
+                ("at least", m.at_least),
+                ("above", m.above),
+                ("below", m.below),
+                ("at most", m.at_most),
+            )
+            if value is not None
+        ]
+        if m.between:
+            limits.append(f"between {m.between[0]} and {m.between[1]}")
+        return f"a measurement of {m.measure} {' and '.join(limits)}"
+    if ev.encounter:
+        return f"an encounter of type {' or '.join(ev.encounter.type)}"
+    return f"the onset of {ev.condition}"
+
+
+def _rule_text(rule: Rule) -> str:
+    needs = " and ".join(f"{count} {name}" for name, count in rule.need.items())
+    text = f"rule '{rule.name}': {needs} event{'s' if sum(rule.need.values()) > 1 else ''}"
+    if rule.distinct_days:
+        text += " on distinct days"
+    if rule.apart_at_least_days is not None:
+        text += f" at least {rule.apart_at_least_days} days apart"
+    if rule.within_days is not None:
+        text += f" within {rule.within_days} days of each other"
+    if rule.absent:
+        text += f", with no {' or '.join(rule.absent)} ever"
+    return text
+
+
+def explain_condition(condition: Condition) -> str:
+    """One plain paragraph saying what a definition means.
+
+    >>> from pipeline.config import Condition
+    >>> c = Condition.model_validate({"condition": "x", "title": "X", "about": "a",
+    ...     "evidence": {"code": {"diagnosis": {"ICD10": ["I50"]}}},
+    ...     "rules": [{"name": "one code", "need": {"code": 1}}]})
+    >>> print(explain_condition(c))
+    X (x): a patient is a case from the earliest date on which any rule is met: rule 'one code': 1 code event. Evidence: code is a diagnosis with an ICD-10 code starting I50. Onset: the date the first rule is met.
+    """  # noqa: E501
+    rules = "; ".join(_rule_text(r) for r in condition.rules)
+    evidence = "; ".join(f"{name} is {_codes_text(ev)}" for name, ev in condition.evidence.items())
+    onset = (
+        "the date the first rule is met"
+        if condition.onset == "rule_met"
+        else "the date of the first evidence, once a rule is met"
+    )
+    return (
+        f"{condition.title} ({condition.condition}): a patient is a case from the earliest date "
+        f"on which any rule is met: {rules}. Evidence: {evidence}. Onset: {onset}."
+    )
