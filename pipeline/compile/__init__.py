@@ -1,6 +1,14 @@
 """Compile a study into a plan of named SQL stages (sqlglot trees), without running anything."""
 
 from pipeline.compile._compiler import PASSES, compile_study
-from pipeline.compile._plan import SOURCE_DIALECT, Plan, SourceTable, Stage
+from pipeline.compile._plan import SOURCE_DIALECT, ColumnDoc, Plan, SourceTable, Stage
 
-__all__ = ["PASSES", "SOURCE_DIALECT", "Plan", "SourceTable", "Stage", "compile_study"]
+__all__ = [
+    "PASSES",
+    "SOURCE_DIALECT",
+    "ColumnDoc",
+    "Plan",
+    "SourceTable",
+    "Stage",
+    "compile_study",
+]

@@ -10,31 +10,32 @@ import datetime as dt
 
 from sqlglot import exp
 
+from pipeline.compile._baseline import (
+    covariate_column,
+    measure_covariates_stage,
+    window_counts_stage,
+)
 from pipeline.compile._context import CompileContext
+from pipeline.compile._index import index_description, index_stage
 from pipeline.compile._plan import Stage
-from pipeline.compile._sql import add_days, age_in_years, days_between, expression, query, value
+from pipeline.compile._sql import add_days, age_in_years, days_between, expression, value
 from pipeline.config import Criterion
 
-_SOURCE_POPULATION = """
-SELECT
-  s.patient_id,
-  p.sex,
-  p.birth_date,
-  p.death_date,
-  s.index_date,
-  s.first_encounter,
-  s.last_encounter,
-  :age AS age_at_index
-FROM encounter_summary AS s
-JOIN patient_base AS p ON p.patient_id = s.patient_id
-WHERE s.index_date IS NOT NULL
-"""
+_STEP_NAMES = {
+    "history_days": "history",
+    "registered_days": "registration",
+    "no_evidence": "no_prior_evidence",
+    "at_risk_of_any_outcome": "at_risk_any_outcome",
+}
 
 _BASE_COLUMNS = (
     "patient_id",
     "sex",
     "birth_date",
     "death_date",
+    "practice_id",
+    "registration_date",
+    "deregistration_date",
     "index_date",
     "first_encounter",
     "last_encounter",
@@ -43,16 +44,22 @@ _BASE_COLUMNS = (
 
 
 def _step_name(criterion: Criterion) -> str:
-    names = {"history_days": "history", "at_risk_of_any_outcome": "at_risk_any_outcome"}
-    return names.get(criterion.kind, criterion.kind)
+    return _STEP_NAMES.get(criterion.kind, criterion.kind)
 
 
-def _step(ctx: CompileContext, criterion: Criterion) -> tuple[exp.Expression, str]:
+def _window_text(window: tuple[int | None, int]) -> str:
+    start, end = window
+    start_text = "all history" if start is None else f"day {start}"
+    return f"from {start_text} to day {end} of index"
+
+
+def _step(ctx: CompileContext, number: int, criterion: Criterion) -> tuple[exp.Expression, str]:
     """The predicate of one eligibility step and its plain description."""
+    column = exp.column
     if criterion.sex is not None:
         sexes = sorted(criterion.sex)
         return (
-            exp.column("sex").isin(*(exp.convert(s) for s in sexes)),
+            column("sex").isin(*(exp.convert(s) for s in sexes)),
             f"sex recorded as {' or '.join(sexes)}",
         )
     if criterion.alive_at_index:
@@ -69,12 +76,40 @@ def _step(ctx: CompileContext, criterion: Criterion) -> tuple[exp.Expression, st
     if criterion.history_days is not None:
         days = criterion.history_days
         return (
-            days_between(exp.column("first_encounter"), exp.column("index_date")) >= days,
+            days_between(column("first_encounter"), column("index_date")) >= days,
             f"first encounter at least {days} days before index",
+        )
+    if criterion.registered_days is not None:
+        days = criterion.registered_days
+        return (
+            days_between(column("registration_date"), column("index_date")) >= days,
+            f"registered at least {days} days before index",
+        )
+    if criterion.encounters is not None:
+        rule = criterion.encounters
+        return (
+            column(f"step_evidence_{number}") >= rule.at_least,
+            f"at least {rule.at_least} encounters {_window_text(rule.window)}",
+        )
+    if criterion.practice is not None:
+        return (
+            column("practice_id").isin(*(exp.convert(p) for p in sorted(criterion.practice))),
+            f"registered at practice {', '.join(sorted(criterion.practice))}",
+        )
+    if criterion.not_prevalent is not None:
+        onset = column(f"onset_{criterion.not_prevalent}")
+        return (
+            exp.or_(onset.is_(exp.null()), onset > column("index_date")),
+            f"no {criterion.not_prevalent} on or before the index date",
+        )
+    if criterion.no_evidence is not None:
+        return (
+            column(f"step_evidence_{number}").eq(0),
+            f"none of the listed evidence {_window_text(criterion.no_evidence.window)}",
         )
     names = [c.condition for c in ctx.outcomes]
     return (
-        exp.not_(exp.and_(*(exp.column(f"prevalent_{n}") for n in names))),
+        exp.not_(exp.and_(*(column(f"prevalent_{n}") for n in names))),
         f"at risk of at least one outcome (not prevalent for all of {', '.join(names)})",
     )
 
@@ -88,71 +123,158 @@ def _prevalent(name: str) -> exp.Expression:
     )
 
 
-def cohort_stages(ctx: CompileContext) -> tuple[Stage, ...]:
-    """Source population, eligibility flags, the attrition log and the analysis table."""
+def _followup_candidates(ctx: CompileContext) -> dict[str, exp.Expression]:
     study = ctx.study
+    index = exp.column("index_date")
+    if study.outcomes.horizon_days is not None:
+        horizon = add_days(index, study.outcomes.horizon_days)
+    else:
+        years = exp.DateAdd(
+            this=index, expression=value(study.outcomes.horizon_years), unit=exp.var("YEAR")
+        )
+        horizon = exp.cast(years, exp.DataType.Type.DATE)
+    candidates = {
+        "death": exp.column("death_date"),
+        "end_of_data": value(study.end_of_data),
+        "deregistration": exp.column("deregistration_date"),
+        "horizon": horizon,
+    }
+    if study.followup.lost_contact_after_days is not None:
+        candidates["lost_contact"] = add_days(
+            exp.column("last_encounter"), study.followup.lost_contact_after_days
+        )
+    return {reason: candidates[reason] for reason in study.followup.end_at}
+
+
+def _with_followup(ctx: CompileContext, source: exp.Expression) -> exp.Query:
+    """Add ``horizon_end``, ``followup_end`` and ``end_reason`` to every source patient."""
+    candidates = _followup_candidates(ctx)
+    far = value(dt.date(9999, 12, 31))
+    followup_end = exp.func(
+        "LEAST", *(exp.func("COALESCE", e.copy(), far.copy()) for e in candidates.values())
+    )
+    reason = exp.Case()
+    for name, candidate in candidates.items():
+        reason = reason.when(candidate.copy().eq(exp.column("followup_end")), value(name))
+    inner = exp.select(
+        exp.Star(),
+        candidates["horizon"].copy().as_("horizon_end"),
+        followup_end.as_("followup_end"),
+    ).from_(source)
+    return exp.select(exp.Star(), reason.as_("end_reason")).from_(inner.subquery("fu"))
+
+
+def _eligibility_query(ctx: CompileContext, steps: list[exp.Expression]) -> exp.Query:
     names = [c.condition for c in ctx.outcomes]
     onset_columns = [f"onset_{n}" for n in ctx.flagged]
-    population = query(
-        _SOURCE_POPULATION,
-        age=age_in_years(birth=exp.column("birth_date", "p"), on=exp.column("index_date", "s")),
+    has_windows = window_counts_stage(ctx) is not None
+    window_columns = [
+        f"step_evidence_{i}"
+        for i, c in enumerate(ctx.study.eligibility, 1)
+        if c.encounters or c.no_evidence
+    ]
+    base = (
+        exp.select(
+            exp.column("patient_id", "i"),
+            exp.column("sex", "p"),
+            exp.column("birth_date", "p"),
+            exp.column("death_date", "p"),
+            exp.column("practice_id", "p"),
+            exp.column("registration_date", "p"),
+            exp.column("deregistration_date", "p"),
+            exp.column("index_date", "i"),
+            exp.column("first_encounter", "s"),
+            exp.column("last_encounter", "s"),
+            age_in_years(birth=exp.column("birth_date", "p"), on=exp.column("index_date", "i")).as_(
+                "age_at_index"
+            ),
+            *(exp.column(c, "o") for c in onset_columns),
+            *(exp.column(c, "w") for c in window_columns),
+        )
+        .from_("index_dates AS i")
+        .join("patient_base AS p", on="p.patient_id = i.patient_id")
+        .join("encounter_summary AS s", on="s.patient_id = i.patient_id")
+        .join("condition_onsets AS o", on="o.patient_id = i.patient_id", join_type="left")
     )
-    steps = [_step(ctx, c) for c in study.eligibility]
+    if has_windows:
+        base = base.join("window_counts AS w", on="w.patient_id = i.patient_id", join_type="left")
+    with_prevalence = exp.select(
+        exp.Star(), *(_prevalent(n).as_(f"prevalent_{n}") for n in names)
+    ).from_(base.subquery("b"))
+    with_followup = _with_followup(ctx, with_prevalence.subquery("v"))
     flags = [
         exp.func("COALESCE", predicate, exp.false()).as_(f"step_{i}")
-        for i, (predicate, _) in enumerate(steps, start=1)
+        for i, predicate in enumerate(steps, start=1)
     ]
-    eligibility = (
-        exp.select(
-            *(exp.column(c, "s") for c in _BASE_COLUMNS),
-            *(exp.column(c, "o") for c in onset_columns),
-        )
-        .from_(population.subquery("s"))
-        .join("condition_onsets AS o", on="o.patient_id = s.patient_id", join_type="left")
-    )
-    with_prevalence = exp.select(
-        *_BASE_COLUMNS,
-        *onset_columns,
-        *(_prevalent(n).as_(f"prevalent_{n}") for n in names),
-    ).from_(eligibility.subquery("e"))
-    flagged = exp.select(
+    return exp.select(
         *_BASE_COLUMNS,
         *onset_columns,
         *(f"prevalent_{n}" for n in names),
+        "horizon_end",
+        "followup_end",
+        "end_reason",
         *flags,
-    ).from_(with_prevalence.subquery("v"))
-    stages = [
+    ).from_(with_followup.subquery("f"))
+
+
+def _complete_followup() -> tuple[exp.Expression, str]:
+    return (
+        exp.or_(
+            exp.column("followup_end") >= exp.column("horizon_end"),
+            exp.column("end_reason").eq("death"),
+        ),
+        "follow-up reaches the horizon or ends at death",
+    )
+
+
+def cohort_stages(ctx: CompileContext) -> tuple[Stage, ...]:
+    """Index, baseline windows, eligibility flags, the attrition log and the analysis table."""
+    study = ctx.study
+    steps = [_step(ctx, i, c) for i, c in enumerate(study.eligibility, start=1)]
+    names = [_step_name(c) for c in study.eligibility]
+    if study.followup.incomplete == "exclude":
+        steps.append(_complete_followup())
+        names.append("complete_followup")
+    stages = [index_stage(ctx)]
+    optional = [window_counts_stage(ctx), measure_covariates_stage(ctx)]
+    stages += [stage for stage in optional if stage is not None]
+    depends = ["index_dates", "patient_base", "encounter_summary", "condition_onsets"]
+    if optional[0] is not None:
+        depends.append("window_counts")
+    stages.append(
         Stage(
             "eligibility",
-            flagged,
-            ("encounter_summary", "patient_base", "condition_onsets"),
-            "the source population with one pass/fail column per eligibility step",
-        ),
+            _eligibility_query(ctx, [predicate for predicate, _ in steps]),
+            tuple(depends),
+            "the source population with follow-up and one pass/fail column per eligibility step",
+        )
+    )
+    stages.append(
         Stage(
             "attrition",
             _attrition_query(
-                [
-                    (_step_name(c), text)
-                    for c, (_, text) in zip(study.eligibility, steps, strict=True)
-                ],
-                index_text=_index_text(ctx),
+                [(name, text) for name, (_, text) in zip(names, steps, strict=True)],
+                index_text=index_description(ctx),
             ),
             ("eligibility",),
             "patients before, removed and remaining at each eligibility step",
-        ),
+        )
+    )
+    cohort_depends = ["eligibility", *(s.name for s in optional if s is not None)]
+    stages.append(
         Stage(
             "cohort",
-            _cohort_query(ctx, len(steps)),
-            ("eligibility",),
+            _cohort_query(
+                ctx,
+                len(steps),
+                has_windows=optional[0] is not None,
+                has_measures=optional[1] is not None,
+            ),
+            tuple(cohort_depends),
             "the analysis table: one row per eligible patient",
-        ),
-    ]
+        )
+    )
     return tuple(stages)
-
-
-def _index_text(ctx: CompileContext) -> str:
-    start, end = ctx.study.index.first_encounter.between
-    return f"first encounter between {start.isoformat()} and {end.isoformat()}"
 
 
 def _attrition_query(steps: list[tuple[str, str]], *, index_text: str) -> exp.Query:
@@ -161,14 +283,11 @@ def _attrition_query(steps: list[tuple[str, str]], *, index_text: str) -> exp.Qu
     for i in range(1, len(steps) + 1):
         if i > 1:
             condition = exp.and_(condition, exp.column(f"step_{i}"))
+        passed = exp.Case().when(condition.copy(), exp.Literal.number(1))
         counts.append(
             exp.func(
                 "COALESCE",
-                exp.Sum(
-                    this=exp.Case()
-                    .when(condition, exp.Literal.number(1))
-                    .else_(exp.Literal.number(0))
-                ),
+                exp.Sum(this=passed.else_(exp.Literal.number(0))),
                 exp.Literal.number(0),
             ).as_(f"n_{i}")
         )
@@ -208,79 +327,53 @@ def _attrition_query(steps: list[tuple[str, str]], *, index_text: str) -> exp.Qu
     return typed.with_("totals", as_=totals)
 
 
-def _followup_candidates(ctx: CompileContext) -> dict[str, exp.Expression]:
-    study = ctx.study
-    candidates = {
-        "death": exp.column("death_date"),
-        "end_of_data": value(study.end_of_data),
-        "horizon": add_days(exp.column("index_date"), study.outcomes.horizon_days),
-    }
-    if study.followup.lost_contact_after_days is not None:
-        candidates["lost_contact"] = add_days(
-            exp.column("last_encounter"), study.followup.lost_contact_after_days
-        )
-    return {reason: candidates[reason] for reason in study.followup.end_at}
-
-
-def _covariate_columns(ctx: CompileContext) -> list[exp.Expression]:
-    columns: list[exp.Expression] = []
-    for name, covariate in ctx.study.covariates.items():
-        if covariate.condition is not None:
-            columns.append(_prevalent(covariate.condition).as_(name))
-    return columns
-
-
-def _cohort_query(ctx: CompileContext, n_steps: int) -> exp.Query:
-    names = [c.condition for c in ctx.outcomes]
-    onset_columns = [f"onset_{n}" for n in ctx.flagged]
-    candidates = _followup_candidates(ctx)
-    far = value(dt.date(9999, 12, 31))
-    followup_end = exp.func(
-        "LEAST", *(exp.func("COALESCE", e.copy(), far.copy()) for e in candidates.values())
+def _outcome_columns(name: str) -> list[exp.Expression]:
+    onset = exp.column(f"onset_{name}", "f")
+    prevalent = exp.column(f"prevalent_{name}", "f")
+    index = exp.column("index_date", "f")
+    incident = exp.func(
+        "COALESCE",
+        exp.and_(onset > index, onset <= exp.column("followup_end", "f")),
+        exp.false(),
     )
-    reason = exp.Case()
-    for name, candidate in candidates.items():
-        reason = reason.when(candidate.copy().eq(exp.column("followup_end")), value(name))
-    inner = exp.select(
-        *_BASE_COLUMNS,
-        *onset_columns,
-        *(f"prevalent_{n}" for n in names),
-        followup_end.as_("followup_end"),
-    ).from_("eligibility")
-    if n_steps:
-        inner = inner.where(exp.and_(*(exp.column(f"step_{i}") for i in range(1, n_steps + 1))))
-    outcome_columns: list[exp.Expression] = []
-    for n in names:
-        onset = exp.column(f"onset_{n}")
-        prevalent = exp.column(f"prevalent_{n}")
-        incident = exp.func(
-            "COALESCE",
-            exp.and_(onset > exp.column("index_date"), onset <= exp.column("followup_end")),
-            exp.false(),
-        )
-        outcome_columns += [
-            prevalent.as_(f"prevalent_{n}"),
-            exp.not_(prevalent).as_(f"at_risk_{n}"),
-            exp.Case().when(prevalent, exp.null()).else_(incident).as_(f"incident_{n}"),
-            onset.as_(f"onset_{n}"),
-            exp.cast(
-                exp.Case().when(
-                    exp.and_(exp.not_(prevalent), incident),
-                    days_between(exp.column("index_date"), onset),
-                ),
-                "INT",
-            ).as_(f"days_to_{n}"),
-        ]
-    return exp.select(
-        "patient_id",
-        "index_date",
-        exp.cast(exp.column("age_at_index"), "INT").as_("age_at_index"),
-        "sex",
-        *_covariate_columns(ctx),
-        *outcome_columns,
-        "followup_end",
-        exp.cast(days_between(exp.column("index_date"), exp.column("followup_end")), "INT").as_(
+    return [
+        prevalent.as_(f"prevalent_{name}"),
+        exp.not_(prevalent.copy()).as_(f"at_risk_{name}"),
+        exp.Case().when(prevalent.copy(), exp.null()).else_(incident).as_(f"incident_{name}"),
+        onset.copy().as_(f"onset_{name}"),
+        exp.cast(
+            exp.Case().when(
+                exp.and_(exp.not_(prevalent.copy()), incident.copy()),
+                days_between(index.copy(), onset.copy()),
+            ),
+            "INT",
+        ).as_(f"days_to_{name}"),
+    ]
+
+
+def _cohort_query(
+    ctx: CompileContext, n_steps: int, *, has_windows: bool, has_measures: bool
+) -> exp.Query:
+    column = exp.column
+    query = exp.select(
+        column("patient_id", "f"),
+        column("index_date", "f"),
+        exp.cast(column("age_at_index", "f"), "INT").as_("age_at_index"),
+        column("sex", "f"),
+        *(c for name, cov in ctx.study.covariates.items() for c in covariate_column(name, cov)),
+        *(c for outcome in ctx.outcomes for c in _outcome_columns(outcome.condition)),
+        column("followup_end", "f"),
+        exp.cast(days_between(column("index_date", "f"), column("followup_end", "f")), "INT").as_(
             "followup_days"
         ),
-        reason.as_("end_reason"),
-    ).from_(inner.subquery("f"))
+        column("end_reason", "f"),
+    ).from_("eligibility AS f")
+    if has_windows:
+        query = query.join("window_counts AS w", on="w.patient_id = f.patient_id", join_type="left")
+    if has_measures:
+        query = query.join(
+            "measure_covariates AS m", on="m.patient_id = f.patient_id", join_type="left"
+        )
+    if n_steps:
+        query = query.where(exp.and_(*(column(f"step_{i}", "f") for i in range(1, n_steps + 1))))
+    return query

@@ -6,6 +6,7 @@ from collections.abc import Callable
 
 from pipeline.compile._cohort import cohort_stages
 from pipeline.compile._context import CompileContext
+from pipeline.compile._dictionary import dictionary
 from pipeline.compile._evidence import evidence_stages
 from pipeline.compile._measurements import measurement_stages
 from pipeline.compile._plan import Plan, Stage
@@ -41,4 +42,5 @@ def compile_study(loaded: LoadedStudy) -> Plan:
             ("cohort", "cohort", ("patient_id",)),
             ("attrition", "attrition", ("step_number",)),
         ),
+        columns=dictionary(ctx),
     )

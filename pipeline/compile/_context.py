@@ -5,8 +5,20 @@ from __future__ import annotations
 from dataclasses import dataclass
 from functools import cached_property
 
-from pipeline.config import Catalog, Condition, Evidence, Study
+from pipeline.codes import CHARLSON_CATEGORIES
+from pipeline.config import (
+    Catalog,
+    Condition,
+    DiagnosisEvidence,
+    EncounterEvidence,
+    Evidence,
+    Study,
+)
 from pipeline.measures import DERIVED_FROM, MEASURES
+
+# Evidence the study itself defines (not a condition) gets keys starting with "@", which no
+# condition name can, so the two never collide.
+INDEX_EVENT = "@index.first_event"
 
 
 def evidence_key(condition: str, evidence: str) -> str:
@@ -16,6 +28,21 @@ def evidence_key(condition: str, evidence: str) -> str:
     'ckd.egfr_low'
     """
     return f"{condition}.{evidence}"
+
+
+def step_key(number: int) -> str:
+    """The evidence key of an eligibility step's own evidence."""
+    return f"@eligibility.{number}"
+
+
+def covariate_key(name: str) -> str:
+    """The evidence key of a covariate's own evidence."""
+    return f"@covariate.{name}"
+
+
+def charlson_key(category: str) -> str:
+    """The evidence key of one Charlson category."""
+    return f"@charlson.{category}"
 
 
 @dataclass(frozen=True)
@@ -32,30 +59,71 @@ class CompileContext:
 
     @cached_property
     def flagged(self) -> tuple[str, ...]:
-        """Conditions whose onset the analysis table needs: outcomes, then covariate flags."""
+        """Conditions whose onset the study reads: outcomes, covariates, steps, the index."""
         names = list(self.study.outcomes.conditions)
         names += [c.condition for c in self.study.covariates.values() if c.condition]
+        names += [c.not_prevalent for c in self.study.eligibility if c.not_prevalent]
+        event = self.study.index.first_event
+        if event is not None and event.condition is not None:
+            names.append(event.condition)
         return tuple(dict.fromkeys(names))
+
+    @cached_property
+    def first_evidence_of(self) -> tuple[str, ...]:
+        """Conditions whose first evidence a covariate dates from."""
+        names = [c.days_since_first_evidence for c in self.study.covariates.values()]
+        return tuple(dict.fromkeys(n for n in names if n))
+
+    @cached_property
+    def study_evidence(self) -> tuple[tuple[str, Evidence], ...]:
+        """Evidence the study defines itself: the index event, steps, covariate counts, scores."""
+        found: list[tuple[str, Evidence]] = []
+        event = self.study.index.first_event
+        if event is not None and event.evidence is not None:
+            found.append((INDEX_EVENT, event.evidence))
+        for i, criterion in enumerate(self.study.eligibility, start=1):
+            if criterion.no_evidence is not None:
+                found.append((step_key(i), criterion.no_evidence.evidence))
+            if criterion.encounters is not None:
+                found.append((step_key(i), Evidence(encounter=EncounterEvidence())))
+        for name, covariate in self.study.covariates.items():
+            if covariate.count is not None:
+                found.append((covariate_key(name), covariate.count))
+        charlson = [c.charlson for c in self.study.covariates.values() if c.charlson]
+        if charlson:
+            systems = set(charlson[0].codes)  # one code basis per study (checked at load)
+            for category in CHARLSON_CATEGORIES:
+                icd10 = category.icd10 if "ICD10" in systems else ()
+                icd9 = category.icd9 if "ICD9" in systems else ()
+                evidence = Evidence(diagnosis=DiagnosisEvidence(ICD10=icd10, ICD9=icd9))
+                found.append((charlson_key(category.name), evidence))
+        return tuple(found)
 
     @cached_property
     def conditions(self) -> tuple[Condition, ...]:
         """Every condition to evaluate, each after the conditions it refers to."""
-        return tuple(self.catalog.get(n) for n in self.catalog.with_references(self.flagged))
+        names = self.catalog.with_references(self.flagged + self.first_evidence_of)
+        return tuple(self.catalog.get(n) for n in names)
 
     @cached_property
     def evidence(self) -> tuple[tuple[str, Evidence], ...]:
         """Every piece of evidence read from the extract, by key, in a fixed order."""
-        return tuple(
+        conditions = tuple(
             (evidence_key(c.condition, name), ev)
             for c in self.conditions
             for name, ev in sorted(c.evidence.items())
             if ev.condition is None
         )
+        return conditions + self.study_evidence
 
     @cached_property
     def measures(self) -> tuple[str, ...]:
         """Measures the evidence reads, with those needed to derive them."""
         wanted = {ev.measurement.measure for _, ev in self.evidence if ev.measurement}
+        for covariate in self.study.covariates.values():
+            measure = covariate.latest or covariate.mean or covariate.minimum or covariate.maximum
+            if measure:
+                wanted.add(measure)
         for derived, sources in DERIVED_FROM.items():
             if derived in wanted:
                 wanted.update(sources)

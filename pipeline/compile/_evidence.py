@@ -15,20 +15,23 @@ from pipeline.compile._context import CompileContext
 from pipeline.compile._measurements import measure_relations
 from pipeline.compile._plan import Stage
 from pipeline.compile._sql import days_between, is_in, query, value, values_table
-from pipeline.config import Evidence
-from pipeline.config._models import MeasurementEvidence
+from pipeline.config import Evidence, MeasurementEvidence
 from pipeline.measures import Threshold
 
 CodeRow = tuple[str, str, str, str | None, int | None, bool]
 
+# Each row is probed once per prefix length, so the join to the prefixes is an equality join.
 _CODED_EVIDENCE = """
 SELECT patient_id, evidence, event_date, CAST(COUNT(*) AS INT) AS n_rows
 FROM (
   SELECT e.patient_id, e.event_date, c.evidence
-  FROM coded_events AS e
-  CROSS JOIN :lengths
+  FROM (
+    SELECT r.*, LEFT(r.code, l.prefix_length) AS probe
+    FROM coded_events AS r
+    CROSS JOIN :lengths
+  ) AS e
   JOIN :codes ON c.code_system = e.code_system
-    AND c.prefix = LEFT(e.code, l.prefix_length)
+    AND c.prefix = e.probe
     AND (c.source IS NULL OR c.source = e.source)
     AND (c.min_days IS NULL OR e.duration_days >= c.min_days)
   GROUP BY e.patient_id, e.event_date, e.code_system, e.code, e.source, c.evidence
@@ -45,7 +48,8 @@ GROUP BY patient_id, obs_date
 """
 
 _ENCOUNTER_EVIDENCE = """
-SELECT patient_id, :key AS evidence, encounter_date AS event_date, CAST(COUNT(*) AS INT) AS n_rows
+SELECT patient_id, :key AS evidence, encounter_date AS event_date,
+  CAST(COUNT(DISTINCT COALESCE(encounter_type, '')) AS INT) AS n_rows
 FROM encounter_rows
 WHERE :types
 GROUP BY patient_id, encounter_date
@@ -171,7 +175,11 @@ def evidence_stages(ctx: CompileContext) -> tuple[Stage, ...]:
                 parts.append(_measurement_query(key, ev.measurement, relation))
                 depends.append(relation)
         if ev.encounter:
-            types = is_in(exp.column("encounter_type"), [t.lower() for t in ev.encounter.type])
+            types = (
+                is_in(exp.column("encounter_type"), [t.lower() for t in ev.encounter.type])
+                if ev.encounter.type
+                else exp.true()
+            )
             parts.append(query(_ENCOUNTER_EVIDENCE, key=key, types=types))
             depends.append("encounter_rows")
     if not parts:  # every piece of evidence refers to another condition

@@ -44,6 +44,18 @@ class SourceTable:
 
 
 @dataclass(frozen=True)
+class ColumnDoc:
+    """One row of the analysis table's data dictionary."""
+
+    column: str
+    type: str
+    unit: str
+    meaning: str
+    computed: str
+    sources: str
+
+
+@dataclass(frozen=True)
 class Stage:
     """One named step of the plan.
 
@@ -79,12 +91,14 @@ class Plan:
         stages: Stages in dependency order.
         outputs: Output name (``cohort``, ``attrition``, ...) -> the stage that holds it, with
             the columns it must be sorted by.
+        columns: The data dictionary of the analysis table.
     """
 
     study: str
     sources: tuple[SourceTable, ...]
     stages: tuple[Stage, ...]
     outputs: tuple[tuple[str, str, tuple[str, ...]], ...]
+    columns: tuple[ColumnDoc, ...] = ()
 
     def __post_init__(self) -> None:
         known = {s.relation for s in self.sources}

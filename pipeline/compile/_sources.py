@@ -11,13 +11,14 @@ from sqlglot import exp
 from pipeline.codes import normalised_code_sql
 from pipeline.compile._context import CompileContext
 from pipeline.compile._plan import SourceTable, Stage
-from pipeline.compile._sql import days_between, query
+from pipeline.compile._sql import days_between, is_in, query, value
+from pipeline.config import Study
 
 PATIENTS = SourceTable(
     "patients",
     required=("patient_id", "sex", "death_date"),
     one_of=(("birth_date", "birth_year"),),
-    optional=("practice_id",),
+    optional=("practice_id", "registration_date", "deregistration_date"),
 )
 ENCOUNTERS = SourceTable(
     "encounters", required=("patient_id", "encounter_date"), optional=("encounter_type",)
@@ -54,7 +55,10 @@ SELECT DISTINCT
     TRY_CAST(birth_date AS DATE), MAKE_DATE(TRY_CAST(birth_year AS INT), 7, 1)
   ) AS birth_date,
   NULLIF(UPPER(TRIM(CAST(sex AS VARCHAR))), '') AS sex,
-  TRY_CAST(death_date AS DATE) AS death_date
+  TRY_CAST(death_date AS DATE) AS death_date,
+  NULLIF(TRIM(CAST(practice_id AS VARCHAR)), '') AS practice_id,
+  TRY_CAST(registration_date AS DATE) AS registration_date,
+  TRY_CAST(deregistration_date AS DATE) AS deregistration_date
 FROM src_patients
 WHERE patient_id IS NOT NULL
 """
@@ -82,13 +86,13 @@ WHERE e.encounter_date <= :end_of_data
   AND (p.death_date IS NULL OR e.encounter_date <= p.death_date)
 """
 
+# The first encounter in the index window is found in the same pass when the study indexes on it.
 _ENCOUNTER_SUMMARY = """
 SELECT
   patient_id,
   MIN(encounter_date) AS first_encounter,
   MAX(encounter_date) AS last_encounter,
-  MIN(encounter_date) FILTER (WHERE encounter_date BETWEEN :index_start AND :index_end)
-    AS index_date
+  MIN(CASE WHEN :in_window THEN encounter_date END) AS first_in_window
 FROM encounter_rows
 GROUP BY patient_id
 """
@@ -127,7 +131,6 @@ WHERE r.event_date <= :end_of_data
 def source_stages(ctx: CompileContext) -> tuple[Stage, ...]:
     """Stages that turn raw extract tables into typed, usable rows."""
     study = ctx.study
-    window = study.index.first_encounter.between
     stages = [
         Stage(
             "patient_base",
@@ -152,9 +155,9 @@ def source_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         ),
         Stage(
             "encounter_summary",
-            query(_ENCOUNTER_SUMMARY, index_start=window[0], index_end=window[1]),
+            query(_ENCOUNTER_SUMMARY, in_window=_index_window(study)),
             ("encounter_rows",),
-            "first and last usable encounter and the index date, one pass over encounters",
+            "first and last usable encounter per patient (and the first in the index window)",
         ),
     ]
     if ctx.uses_coded_events:
@@ -184,6 +187,19 @@ def source_stages(ctx: CompileContext) -> tuple[Stage, ...]:
             )
         )
     return tuple(stages)
+
+
+def _index_window(study: Study) -> exp.Expression:
+    rule = study.index.first_encounter
+    if rule is None:
+        return exp.false()
+    start, end = rule.between
+    inside = exp.column("encounter_date").between(value(start), value(end))
+    if rule.type:
+        inside = exp.and_(
+            inside, is_in(exp.column("encounter_type"), [t.lower() for t in rule.type])
+        )
+    return inside
 
 
 def _coded_sources(ctx: CompileContext) -> tuple[str, ...]:

@@ -1,26 +1,42 @@
 """Study and condition files: pydantic models and located YAML loading."""
 
-from pipeline.config._loader import Catalog, LoadedStudy, load_catalog, load_condition, load_study
-from pipeline.config._models import (
+from pipeline.config._condition import (
     Condition,
-    Criterion,
+    DiagnosisEvidence,
+    EncounterEvidence,
     Evidence,
-    Followup,
-    Outcomes,
+    MeasurementEvidence,
+    PrescriptionEvidence,
     Rule,
+)
+from pipeline.config._loader import Catalog, LoadedStudy, load_catalog, load_condition, load_study
+from pipeline.config._study import (
+    Covariate,
+    Criterion,
+    Followup,
+    IndexRule,
+    Outcomes,
     Study,
+    Window,
 )
 
 __all__ = [
     "Catalog",
     "Condition",
+    "Covariate",
     "Criterion",
+    "DiagnosisEvidence",
+    "EncounterEvidence",
     "Evidence",
     "Followup",
+    "IndexRule",
     "LoadedStudy",
+    "MeasurementEvidence",
     "Outcomes",
+    "PrescriptionEvidence",
     "Rule",
     "Study",
+    "Window",
     "load_catalog",
     "load_condition",
     "load_study",

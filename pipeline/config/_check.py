@@ -11,8 +11,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from pipeline.codes import expand_codes
+from pipeline.config._condition import Condition, Evidence, Rule
 from pipeline.config._loader import load_catalog, load_condition, load_study
-from pipeline.config._models import Condition, Evidence, Rule
 from pipeline.config._yaml import load_yaml
 from pipeline.errors import ConfigError, Problem
 

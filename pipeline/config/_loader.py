@@ -10,7 +10,9 @@ from typing import Any, TypeVar
 
 from pydantic import BaseModel, ValidationError
 
-from pipeline.config._models import Condition, Model, Study
+from pipeline.config._base import Model
+from pipeline.config._condition import Condition, Rule
+from pipeline.config._study import Study
 from pipeline.config._yaml import LocatedDocument, PathKey, load_yaml
 from pipeline.errors import ConfigError, Problem
 
@@ -57,7 +59,8 @@ def _problem_from_error(doc: LocatedDocument, error: Any, vocabulary: list[str])
     if kind in ("greater_than_equal", "greater_than"):
         message = f"must be {error['ctx'].get('ge', error['ctx'].get('gt'))} or more"
         message += f" (got {error['input']!r})"
-    return doc.problem(loc, "bad-value", f"{_dotted(loc)}: {message}", at_value=True)
+    at_value = doc.holds_scalar(loc)
+    return doc.problem(loc, "bad-value", f"{_dotted(loc)}: {message}", at_value=at_value)
 
 
 def validate_document(doc: LocatedDocument, model: type[M]) -> M:
@@ -244,6 +247,92 @@ def _resolve(base: Path, path: Path) -> Path:
     return path if path.is_absolute() else (base / path).resolve()
 
 
+def _condition_references(study: Study) -> list[tuple[PathKey, str, str]]:
+    """Every place a study names a condition: (path, what it is, the name)."""
+    found: list[tuple[PathKey, str, str]] = [
+        (("outcomes", "conditions", i), "outcome", name)
+        for i, name in enumerate(study.outcomes.conditions)
+    ]
+    for name, cov in study.covariates.items():
+        for key in ("condition", "days_since_first_evidence"):
+            referred = getattr(cov, key)
+            if referred is not None:
+                found.append((("covariates", name, key), f"covariate {name}: condition", referred))
+    for i, criterion in enumerate(study.eligibility):
+        if criterion.not_prevalent is not None:
+            path: PathKey = ("eligibility", i, "not_prevalent")
+            found.append((path, "condition", criterion.not_prevalent))
+    event = study.index.first_event
+    if event is not None and event.condition is not None:
+        found.append((("index", "first_event", "condition"), "index condition", event.condition))
+    found += [
+        (("definition_changes", name), "changed condition", name)
+        for name in study.definition_changes
+    ]
+    return found
+
+
+def _duplicate_columns(doc: LocatedDocument, study: Study) -> list[Problem]:
+    taken = {"followup_end", "followup_days", "end_reason"} | {
+        f"{prefix}_{outcome}"
+        for outcome in study.outcomes.conditions
+        for prefix in ("prevalent", "at_risk", "incident", "onset", "days_to")
+    }
+    problems = []
+    for name, cov in study.covariates.items():
+        columns = [name, f"{name}_date", f"{name}_derived"] if cov.latest else [name]
+        clash = [c for c in columns if c in taken]
+        if clash:
+            problems.append(
+                doc.problem(
+                    ("covariates", name),
+                    "duplicate-column",
+                    f"covariate '{name}' makes column(s) {', '.join(clash)}, which the analysis "
+                    "table already has",
+                )
+            )
+        taken.update(columns)
+    return problems
+
+
+def _apply_changes(doc: LocatedDocument, study: Study, catalog: Catalog) -> Catalog:
+    """The catalog with the study's rule-window changes applied (files stay as they are)."""
+    if not study.definition_changes:
+        return catalog
+    conditions = dict(catalog.conditions)
+    problems = []
+    for name, changes in study.definition_changes.items():
+        condition = conditions[name]
+        rules = {rule.name: rule for rule in condition.rules}
+        for rule_name in changes:
+            if rule_name not in rules:
+                problems.append(
+                    doc.problem(
+                        ("definition_changes", name, rule_name),
+                        "unknown-rule",
+                        f"condition '{name}' has no rule '{rule_name}'"
+                        f"{did_you_mean(rule_name, rules)}",
+                    )
+                )
+        if problems:
+            continue
+        new_rules = []
+        for rule in condition.rules:
+            change = changes.get(rule.name)
+            update = change.model_dump(exclude_none=True) if change else {}
+            try:
+                new_rules.append(Rule.model_validate({**rule.model_dump(), **update}))
+            except ValidationError as err:
+                message = str(err.errors()[0]["msg"]).removeprefix("Value error, ")
+                problems.append(
+                    doc.problem(("definition_changes", name, rule.name), "bad-value", message)
+                )
+        conditions[name] = condition.model_copy(update={"rules": tuple(new_rules)})
+    if problems:
+        raise ConfigError(problems)
+    return Catalog(catalog.folder, conditions, catalog.files)
+
+
 def load_study(file: Path) -> LoadedStudy:
     """Load a study file and the condition definitions it refers to.
 
@@ -279,39 +368,19 @@ def load_study(file: Path) -> LoadedStudy:
         raise
     problems = [
         doc.problem(
-            ("outcomes", "conditions", i),
+            path,
             "unknown-condition",
-            f"outcome '{name}' is not defined in {study.definitions}"
+            f"{what} '{name}' is not defined in {study.definitions}"
             f"{did_you_mean(name, catalog.conditions)}",
-        )
-        for i, name in enumerate(study.outcomes.conditions)
-        if name not in catalog.conditions
-    ]
-    problems += [
-        doc.problem(
-            ("covariates", name, "condition"),
-            "unknown-condition",
-            f"covariate '{name}' uses condition '{cov.condition}', which is not defined in "
-            f"{study.definitions}{did_you_mean(cov.condition, catalog.conditions)}",
             at_value=True,
         )
-        for name, cov in study.covariates.items()
-        if cov.condition is not None and cov.condition not in catalog.conditions
+        for path, what, name in _condition_references(study)
+        if name not in catalog.conditions
     ]
-    taken = {"followup_end", "followup_days", "end_reason"} | {
-        f"{prefix}_{outcome}"
-        for outcome in study.outcomes.conditions
-        for prefix in ("prevalent", "at_risk", "incident", "onset", "days_to")
-    }
-    problems += [
-        doc.problem(
-            ("covariates", name),
-            "duplicate-column",
-            f"covariate '{name}' has the name of an analysis-table column",
-        )
-        for name in study.covariates
-        if name in taken
-    ]
+    problems += _duplicate_columns(doc, study)
+    if problems:
+        raise ConfigError(problems)
+    catalog = _apply_changes(doc, study, catalog)
     if problems:
         raise ConfigError(problems)
     return LoadedStudy(file, study, catalog)

@@ -42,6 +42,16 @@ class LocatedDocument:
                 return found
         return (0, 0)
 
+    def holds_scalar(self, path: PathKey) -> bool:
+        """Whether the value at ``path`` is a scalar (not a mapping or a list)."""
+        node = self.data
+        for part in path:
+            try:
+                node = node[part]
+            except (KeyError, IndexError, TypeError):
+                return False
+        return not isinstance(node, dict | list)
+
     def problem(self, path: PathKey, code: str, message: str, *, at_value: bool = False) -> Problem:
         """Build a :class:`Problem` located at ``path`` (its key, or its value)."""
         line, column = self.locate(path, at_value=at_value)

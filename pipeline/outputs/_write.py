@@ -16,6 +16,8 @@ from typing import Any
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from pipeline.compile import ColumnDoc
+
 ATTRITION_COLUMNS = ("step", "description", "patients_before", "removed", "remaining")
 
 
@@ -41,6 +43,32 @@ def write_attrition(table: pa.Table, path: Path) -> None:
         writer.writerows(rows)
 
 
+DICTIONARY_COLUMNS = ("column", "type", "unit", "meaning", "computed", "sources")
+
+
+def write_dictionary(columns: tuple[ColumnDoc, ...], folder: Path) -> None:
+    """Write the data dictionary as ``dictionary.csv`` and ``dictionary.md``."""
+    rows = [{name: getattr(doc, name) for name in DICTIONARY_COLUMNS} for doc in columns]
+    with (folder / "dictionary.csv").open("w", encoding="utf-8", newline="") as handle:
+        writer = csv.DictWriter(handle, fieldnames=DICTIONARY_COLUMNS, lineterminator="\n")
+        writer.writeheader()
+        writer.writerows(rows)
+    lines = [
+        "# Data dictionary of cohort.parquet",
+        "",
+        "Research use only; not for clinical decisions. Suppress small counts before sharing "
+        "any summary, and follow your local data-governance rules.",
+        "",
+        "| " + " | ".join(DICTIONARY_COLUMNS) + " |",
+        "|" + "---|" * len(DICTIONARY_COLUMNS),
+    ]
+    lines += [
+        "| " + " | ".join(str(row[c]).replace("|", "\\|") for c in DICTIONARY_COLUMNS) + " |"
+        for row in rows
+    ]
+    (folder / "dictionary.md").write_text("\n".join(lines) + "\n", encoding="utf-8")
+
+
 def write_json(data: dict[str, Any], path: Path) -> None:
     """Write JSON with sorted keys and a trailing newline."""
     path.write_text(json.dumps(data, indent=2, sort_keys=True, default=str) + "\n", "utf-8")
@@ -59,9 +87,14 @@ def replace_folder(staged: Path, target: Path) -> None:
 
 
 def write_outputs(
-    target: Path, *, cohort: pa.Table, attrition: pa.Table, run_info: dict[str, Any]
+    target: Path,
+    *,
+    cohort: pa.Table,
+    attrition: pa.Table,
+    columns: tuple[ColumnDoc, ...],
+    run_info: dict[str, Any],
 ) -> list[Path]:
-    """Write ``cohort.parquet``, ``attrition.csv`` and ``run.json`` into ``target``.
+    """Write the cohort, attrition log, data dictionary and run record into ``target``.
 
     Files are written to a hidden sibling folder first and moved into place together, so a
     failed run never leaves a half-written output folder.
@@ -74,9 +107,11 @@ def write_outputs(
     try:
         write_parquet(cohort, staged / "cohort.parquet")
         write_attrition(attrition, staged / "attrition.csv")
+        write_dictionary(columns, staged)
         write_json(run_info, staged / "run.json")
         replace_folder(staged, target)
     except BaseException:
         shutil.rmtree(staged, ignore_errors=True)
         raise
-    return [target / "cohort.parquet", target / "attrition.csv", target / "run.json"]
+    names = ("cohort.parquet", "attrition.csv", "dictionary.csv", "dictionary.md", "run.json")
+    return [target / name for name in names]

@@ -1,6 +1,6 @@
--- plan for study orvane_multimorbidity (22 stages, dialect duckdb)
+-- plan for study orvane_multimorbidity (26 stages, dialect duckdb)
 
--- reads src_patients: patient_id, sex, death_date, birth_date, birth_year, practice_id
+-- reads src_patients: patient_id, sex, death_date, birth_date, birth_year, practice_id, registration_date, deregistration_date
 
 -- reads src_encounters: patient_id, encounter_date, encounter_type
 
@@ -16,7 +16,10 @@ SELECT DISTINCT
   patient_id,
   COALESCE(TRY_CAST(birth_date AS DATE), MAKE_DATE(TRY_CAST(birth_year AS INT), 7, 1)) AS birth_date,
   NULLIF(UPPER(TRIM(CAST(sex AS TEXT))), '') AS sex,
-  TRY_CAST(death_date AS DATE) AS death_date
+  TRY_CAST(death_date AS DATE) AS death_date,
+  NULLIF(TRIM(CAST(practice_id AS TEXT)), '') AS practice_id,
+  TRY_CAST(registration_date AS DATE) AS registration_date,
+  TRY_CAST(deregistration_date AS DATE) AS deregistration_date
 FROM src_patients
 WHERE
   NOT patient_id IS NULL;
@@ -56,14 +59,18 @@ WHERE
     p.death_date IS NULL OR e.encounter_date <= p.death_date
   );
 
--- stage encounter_summary [table]: first and last usable encounter and the index date, one pass over encounters
+-- stage encounter_summary [table]: first and last usable encounter per patient (and the first in the index window)
 -- reads: encounter_rows
 SELECT
   patient_id,
   MIN(encounter_date) AS first_encounter,
   MAX(encounter_date) AS last_encounter,
-  MIN(encounter_date) FILTER(WHERE
-    encounter_date BETWEEN CAST('2015-01-01' AS DATE) AND CAST('2016-12-31' AS DATE)) AS index_date
+  MIN(
+    CASE
+      WHEN encounter_date BETWEEN CAST('2015-01-01' AS DATE) AND CAST('2016-12-31' AS DATE)
+      THEN encounter_date
+    END
+  ) AS first_in_window
 FROM encounter_rows
 GROUP BY
   patient_id;
@@ -274,7 +281,8 @@ SELECT
   FALSE AS derived
 FROM measurement_rows
 WHERE
-  problem IS NULL AND measure IN ('creatinine', 'egfr', 'hba1c');
+  problem IS NULL
+  AND measure IN ('bmi', 'creatinine', 'egfr', 'hba1c', 'height', 'sbp', 'weight');
 
 -- stage derived_egfr [table]: eGFR derived from creatinine by CKD-EPI 2021 where none was reported that day
 -- reads: measurement_values, patient_base
@@ -323,6 +331,57 @@ FROM (
 WHERE
   egfr BETWEEN 1.0 AND 200.0;
 
+-- stage derived_bmi [table]: BMI from weight and the latest height where none was reported that day
+-- reads: measurement_values
+SELECT
+  patient_id,
+  obs_date,
+  'bmi' AS measure,
+  bmi AS value,
+  CAST(NULL AS TEXT) AS qualifier,
+  CAST(NULL AS TEXT) AS category,
+  TRUE AS derived
+FROM (
+  SELECT
+    w.patient_id,
+    w.obs_date,
+    w.value / POWER(h.height_cm / 100, 2) AS bmi
+  FROM measurement_values AS w
+  JOIN (
+    SELECT
+      patient_id,
+      AVG(value) AS height_cm
+    FROM (
+      SELECT
+        patient_id,
+        value,
+        obs_date,
+        MAX(obs_date) OVER (PARTITION BY patient_id) AS last_date
+      FROM measurement_values
+      WHERE
+        measure = 'height' AND qualifier IS NULL
+    ) AS heights
+    WHERE
+      obs_date = last_date
+    GROUP BY
+      patient_id
+  ) AS h
+    ON h.patient_id = w.patient_id
+  LEFT JOIN (
+    SELECT DISTINCT
+      patient_id,
+      obs_date
+    FROM measurement_values
+    WHERE
+      measure = 'bmi'
+  ) AS r
+    ON r.patient_id = w.patient_id AND r.obs_date = w.obs_date
+  WHERE
+    w.measure = 'weight' AND w.qualifier IS NULL AND r.patient_id IS NULL
+) AS d
+WHERE
+  bmi BETWEEN 10.0 AND 80.0;
+
 -- stage coded_evidence [table]: diagnosis and prescription rows matched to evidence by code prefix
 -- reads: coded_events
 SELECT
@@ -335,10 +394,15 @@ FROM (
     e.patient_id,
     e.event_date,
     c.evidence
-  FROM coded_events AS e
-  CROSS JOIN (VALUES
-    (3),
-    (4)) AS l(prefix_length)
+  FROM (
+    SELECT
+      r.*,
+      LEFT(r.code, l.prefix_length) AS probe
+    FROM coded_events AS r
+    CROSS JOIN (VALUES
+      (3),
+      (4)) AS l(prefix_length)
+  ) AS e
   JOIN (VALUES
     ('ATC', 'A10B', 'type2_diabetes.dm_drug', NULL, NULL, FALSE),
     ('ATC', 'C02', 'hypertension.antihypertensive', NULL, NULL, FALSE),
@@ -347,18 +411,307 @@ FROM (
     ('ATC', 'C07', 'hypertension.antihypertensive', NULL, NULL, FALSE),
     ('ATC', 'C08', 'hypertension.antihypertensive', NULL, NULL, FALSE),
     ('ATC', 'C09', 'hypertension.antihypertensive', NULL, NULL, FALSE),
+    ('ICD10', 'B18', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'B20', '@charlson.hiv_aids', NULL, NULL, FALSE),
+    ('ICD10', 'B21', '@charlson.hiv_aids', NULL, NULL, FALSE),
+    ('ICD10', 'B22', '@charlson.hiv_aids', NULL, NULL, FALSE),
+    ('ICD10', 'B24', '@charlson.hiv_aids', NULL, NULL, FALSE),
+    ('ICD10', 'C00', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C01', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C02', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C03', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C04', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C05', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C06', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C07', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C08', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C09', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C10', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C11', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C12', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C13', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C14', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C15', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C16', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C17', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C18', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C19', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C20', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C21', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C22', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C23', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C24', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C25', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C26', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C30', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C31', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C32', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C33', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C34', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C37', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C38', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C39', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C40', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C41', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C43', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C45', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C46', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C47', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C48', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C49', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C50', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C51', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C52', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C53', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C54', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C55', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C56', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C57', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C58', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C60', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C61', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C62', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C63', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C64', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C65', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C66', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C67', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C68', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C69', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C70', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C71', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C72', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C73', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C74', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C75', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C76', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C77', '@charlson.metastatic_solid_tumour', NULL, NULL, FALSE),
+    ('ICD10', 'C78', '@charlson.metastatic_solid_tumour', NULL, NULL, FALSE),
+    ('ICD10', 'C79', '@charlson.metastatic_solid_tumour', NULL, NULL, FALSE),
+    ('ICD10', 'C80', '@charlson.metastatic_solid_tumour', NULL, NULL, FALSE),
+    ('ICD10', 'C81', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C82', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C83', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C84', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C85', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C88', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C90', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C91', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C92', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C93', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C94', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C95', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C96', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'C97', '@charlson.malignancy', NULL, NULL, FALSE),
+    ('ICD10', 'E100', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E101', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E102', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E103', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E104', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E105', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E106', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E107', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E108', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E109', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
     ('ICD10', 'E11', 'type2_diabetes.dm_code', NULL, NULL, FALSE),
+    ('ICD10', 'E110', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E111', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E112', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E113', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E114', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E115', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E116', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E117', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E118', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E119', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E120', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E121', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E122', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E123', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E124', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E125', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E126', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E127', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E128', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E129', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E130', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E131', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E132', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E133', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E134', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E135', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E136', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E137', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E138', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E139', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E140', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E141', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E142', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E143', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E144', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E145', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E146', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E147', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E148', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+    ('ICD10', 'E149', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+    ('ICD10', 'F00', '@charlson.dementia', NULL, NULL, FALSE),
+    ('ICD10', 'F01', '@charlson.dementia', NULL, NULL, FALSE),
+    ('ICD10', 'F02', '@charlson.dementia', NULL, NULL, FALSE),
+    ('ICD10', 'F03', '@charlson.dementia', NULL, NULL, FALSE),
+    ('ICD10', 'F051', '@charlson.dementia', NULL, NULL, FALSE),
+    ('ICD10', 'G041', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
+    ('ICD10', 'G114', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
+    ('ICD10', 'G30', '@charlson.dementia', NULL, NULL, FALSE),
+    ('ICD10', 'G311', '@charlson.dementia', NULL, NULL, FALSE),
+    ('ICD10', 'G45', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
+    ('ICD10', 'G46', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
+    ('ICD10', 'G801', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
+    ('ICD10', 'G802', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
+    ('ICD10', 'G81', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
+    ('ICD10', 'G82', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
+    ('ICD10', 'G830', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
+    ('ICD10', 'G831', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
+    ('ICD10', 'G832', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
+    ('ICD10', 'G833', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
+    ('ICD10', 'G834', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
+    ('ICD10', 'G839', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
+    ('ICD10', 'H340', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
+    ('ICD10', 'I099', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
     ('ICD10', 'I10', 'hypertension.htn_code', NULL, NULL, FALSE),
     ('ICD10', 'I11', 'hypertension.htn_code', NULL, NULL, FALSE),
+    ('ICD10', 'I110', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
     ('ICD10', 'I12', 'hypertension.htn_code', NULL, NULL, FALSE),
+    ('ICD10', 'I120', '@charlson.renal_disease', NULL, NULL, FALSE),
     ('ICD10', 'I13', 'hypertension.htn_code', NULL, NULL, FALSE),
+    ('ICD10', 'I130', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
+    ('ICD10', 'I131', '@charlson.renal_disease', NULL, NULL, FALSE),
+    ('ICD10', 'I132', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
     ('ICD10', 'I14', 'hypertension.htn_code', NULL, NULL, FALSE),
     ('ICD10', 'I15', 'hypertension.htn_code', NULL, NULL, FALSE),
+    ('ICD10', 'I21', '@charlson.myocardial_infarction', NULL, NULL, FALSE),
+    ('ICD10', 'I22', '@charlson.myocardial_infarction', NULL, NULL, FALSE),
+    ('ICD10', 'I252', '@charlson.myocardial_infarction', NULL, NULL, FALSE),
+    ('ICD10', 'I255', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
+    ('ICD10', 'I278', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+    ('ICD10', 'I279', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+    ('ICD10', 'I420', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
+    ('ICD10', 'I425', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
+    ('ICD10', 'I426', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
+    ('ICD10', 'I427', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
+    ('ICD10', 'I428', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
+    ('ICD10', 'I429', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
+    ('ICD10', 'I43', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
+    ('ICD10', 'I50', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
     ('ICD10', 'I50', 'heart_failure.hf_code', NULL, NULL, FALSE),
+    ('ICD10', 'I60', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
+    ('ICD10', 'I61', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
+    ('ICD10', 'I62', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
+    ('ICD10', 'I63', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
+    ('ICD10', 'I64', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
+    ('ICD10', 'I65', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
+    ('ICD10', 'I66', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
+    ('ICD10', 'I67', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
+    ('ICD10', 'I68', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
+    ('ICD10', 'I69', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
+    ('ICD10', 'I70', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
+    ('ICD10', 'I71', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
+    ('ICD10', 'I731', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
+    ('ICD10', 'I738', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
+    ('ICD10', 'I739', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
+    ('ICD10', 'I771', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
+    ('ICD10', 'I790', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
+    ('ICD10', 'I792', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
+    ('ICD10', 'I850', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'I859', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'I864', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'I982', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'J40', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+    ('ICD10', 'J41', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+    ('ICD10', 'J42', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+    ('ICD10', 'J43', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+    ('ICD10', 'J44', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+    ('ICD10', 'J45', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+    ('ICD10', 'J46', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+    ('ICD10', 'J47', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+    ('ICD10', 'J60', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+    ('ICD10', 'J61', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+    ('ICD10', 'J62', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+    ('ICD10', 'J63', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+    ('ICD10', 'J64', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+    ('ICD10', 'J65', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+    ('ICD10', 'J66', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+    ('ICD10', 'J67', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+    ('ICD10', 'J684', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+    ('ICD10', 'J701', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+    ('ICD10', 'J703', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K25', '@charlson.peptic_ulcer_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K26', '@charlson.peptic_ulcer_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K27', '@charlson.peptic_ulcer_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K28', '@charlson.peptic_ulcer_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K551', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K558', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K559', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K700', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K701', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K702', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K703', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K704', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K709', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K711', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K713', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K714', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K715', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K717', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K721', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K729', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K73', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K74', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K760', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K762', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K763', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K764', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K765', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K766', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K767', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K768', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'K769', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'M05', '@charlson.rheumatic_disease', NULL, NULL, FALSE),
+    ('ICD10', 'M06', '@charlson.rheumatic_disease', NULL, NULL, FALSE),
+    ('ICD10', 'M315', '@charlson.rheumatic_disease', NULL, NULL, FALSE),
+    ('ICD10', 'M32', '@charlson.rheumatic_disease', NULL, NULL, FALSE),
+    ('ICD10', 'M33', '@charlson.rheumatic_disease', NULL, NULL, FALSE),
+    ('ICD10', 'M34', '@charlson.rheumatic_disease', NULL, NULL, FALSE),
+    ('ICD10', 'M351', '@charlson.rheumatic_disease', NULL, NULL, FALSE),
+    ('ICD10', 'M353', '@charlson.rheumatic_disease', NULL, NULL, FALSE),
+    ('ICD10', 'M360', '@charlson.rheumatic_disease', NULL, NULL, FALSE),
+    ('ICD10', 'N032', '@charlson.renal_disease', NULL, NULL, FALSE),
+    ('ICD10', 'N033', '@charlson.renal_disease', NULL, NULL, FALSE),
+    ('ICD10', 'N034', '@charlson.renal_disease', NULL, NULL, FALSE),
+    ('ICD10', 'N035', '@charlson.renal_disease', NULL, NULL, FALSE),
+    ('ICD10', 'N036', '@charlson.renal_disease', NULL, NULL, FALSE),
+    ('ICD10', 'N037', '@charlson.renal_disease', NULL, NULL, FALSE),
+    ('ICD10', 'N052', '@charlson.renal_disease', NULL, NULL, FALSE),
+    ('ICD10', 'N053', '@charlson.renal_disease', NULL, NULL, FALSE),
+    ('ICD10', 'N054', '@charlson.renal_disease', NULL, NULL, FALSE),
+    ('ICD10', 'N055', '@charlson.renal_disease', NULL, NULL, FALSE),
+    ('ICD10', 'N056', '@charlson.renal_disease', NULL, NULL, FALSE),
+    ('ICD10', 'N057', '@charlson.renal_disease', NULL, NULL, FALSE),
+    ('ICD10', 'N18', '@charlson.renal_disease', NULL, NULL, FALSE),
     ('ICD10', 'N183', 'ckd.ckd_code', NULL, NULL, FALSE),
     ('ICD10', 'N184', 'ckd.ckd_code', NULL, NULL, FALSE),
     ('ICD10', 'N185', 'ckd.ckd_code', NULL, NULL, FALSE),
     ('ICD10', 'N186', 'ckd.ckd_code', NULL, NULL, FALSE),
+    ('ICD10', 'N19', '@charlson.renal_disease', NULL, NULL, FALSE),
+    ('ICD10', 'N250', '@charlson.renal_disease', NULL, NULL, FALSE),
+    ('ICD10', 'P290', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
+    ('ICD10', 'Z490', '@charlson.renal_disease', NULL, NULL, FALSE),
+    ('ICD10', 'Z491', '@charlson.renal_disease', NULL, NULL, FALSE),
+    ('ICD10', 'Z492', '@charlson.renal_disease', NULL, NULL, FALSE),
+    ('ICD10', 'Z940', '@charlson.renal_disease', NULL, NULL, FALSE),
+    ('ICD10', 'Z944', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+    ('ICD10', 'Z958', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
+    ('ICD10', 'Z959', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
+    ('ICD10', 'Z992', '@charlson.renal_disease', NULL, NULL, FALSE),
     ('ICD9', '250', 'type2_diabetes.dm_code', NULL, NULL, FALSE),
     ('ICD9', '401', 'hypertension.htn_code', NULL, NULL, FALSE),
     ('ICD9', '402', 'hypertension.htn_code', NULL, NULL, FALSE),
@@ -371,7 +724,7 @@ FROM (
     ('ICD9', '5855', 'ckd.ckd_code', NULL, NULL, FALSE),
     ('ICD9', '5856', 'ckd.ckd_code', NULL, NULL, FALSE)) AS c(code_system, prefix, evidence, source, min_days, is_exclusion)
     ON c.code_system = e.code_system
-    AND c.prefix = LEFT(e.code, l.prefix_length)
+    AND c.prefix = e.probe
     AND (
       c.source IS NULL OR c.source = e.source
     )
@@ -394,7 +747,7 @@ GROUP BY
   event_date;
 
 -- stage evidence_events [table]: one row per patient, evidence and day, with the day number for windows
--- reads: coded_evidence, derived_egfr, measurement_values
+-- reads: coded_evidence, derived_egfr, encounter_rows, measurement_values
 SELECT
   patient_id,
   evidence,
@@ -471,6 +824,18 @@ FROM (
   GROUP BY
     patient_id,
     obs_date
+  UNION ALL
+  SELECT
+    patient_id,
+    '@covariate.visits_prior_year' AS evidence,
+    encounter_date AS event_date,
+    CAST(COUNT(DISTINCT COALESCE(encounter_type, '')) AS INT) AS n_rows
+  FROM encounter_rows
+  WHERE
+    TRUE
+  GROUP BY
+    patient_id,
+    encounter_date
 ) AS events
 GROUP BY
   patient_id,
@@ -744,13 +1109,451 @@ FROM (
 GROUP BY
   patient_id;
 
--- stage eligibility [table]: the source population with one pass/fail column per eligibility step
--- reads: encounter_summary, patient_base, condition_onsets
+-- stage index_dates [table]: index: the first encounter between 2015-01-01 and 2016-12-31
+-- reads: encounter_summary
+SELECT
+  patient_id,
+  first_in_window AS index_date
+FROM encounter_summary
+WHERE
+  NOT first_in_window IS NULL;
+
+-- stage window_counts [table]: per patient, evidence counted in windows around the index date
+-- reads: index_dates, evidence_events
+SELECT
+  patient_id,
+  COALESCE(
+    SUM(
+      CASE
+        WHEN e.evidence = '@covariate.visits_prior_year' AND e_offset BETWEEN -365 AND -1
+        THEN e.n_rows
+        ELSE 0
+      END
+    ),
+    0
+  ) AS count_visits_prior_year,
+  COALESCE(
+    SUM(
+      CASE
+        WHEN e.evidence = '@charlson.myocardial_infarction' AND e_offset <= 0
+        THEN e.n_rows
+        ELSE 0
+      END
+    ),
+    0
+  ) AS charlson_myocardial_infarction,
+  COALESCE(
+    SUM(
+      CASE
+        WHEN e.evidence = '@charlson.congestive_heart_failure' AND e_offset <= 0
+        THEN e.n_rows
+        ELSE 0
+      END
+    ),
+    0
+  ) AS charlson_congestive_heart_failure,
+  COALESCE(
+    SUM(
+      CASE
+        WHEN e.evidence = '@charlson.peripheral_vascular_disease' AND e_offset <= 0
+        THEN e.n_rows
+        ELSE 0
+      END
+    ),
+    0
+  ) AS charlson_peripheral_vascular_disease,
+  COALESCE(
+    SUM(
+      CASE
+        WHEN e.evidence = '@charlson.cerebrovascular_disease' AND e_offset <= 0
+        THEN e.n_rows
+        ELSE 0
+      END
+    ),
+    0
+  ) AS charlson_cerebrovascular_disease,
+  COALESCE(
+    SUM(
+      CASE
+        WHEN e.evidence = '@charlson.dementia' AND e_offset <= 0
+        THEN e.n_rows
+        ELSE 0
+      END
+    ),
+    0
+  ) AS charlson_dementia,
+  COALESCE(
+    SUM(
+      CASE
+        WHEN e.evidence = '@charlson.chronic_pulmonary_disease' AND e_offset <= 0
+        THEN e.n_rows
+        ELSE 0
+      END
+    ),
+    0
+  ) AS charlson_chronic_pulmonary_disease,
+  COALESCE(
+    SUM(
+      CASE
+        WHEN e.evidence = '@charlson.rheumatic_disease' AND e_offset <= 0
+        THEN e.n_rows
+        ELSE 0
+      END
+    ),
+    0
+  ) AS charlson_rheumatic_disease,
+  COALESCE(
+    SUM(
+      CASE
+        WHEN e.evidence = '@charlson.peptic_ulcer_disease' AND e_offset <= 0
+        THEN e.n_rows
+        ELSE 0
+      END
+    ),
+    0
+  ) AS charlson_peptic_ulcer_disease,
+  COALESCE(
+    SUM(
+      CASE
+        WHEN e.evidence = '@charlson.mild_liver_disease' AND e_offset <= 0
+        THEN e.n_rows
+        ELSE 0
+      END
+    ),
+    0
+  ) AS charlson_mild_liver_disease,
+  COALESCE(
+    SUM(
+      CASE
+        WHEN e.evidence = '@charlson.diabetes_without_complications' AND e_offset <= 0
+        THEN e.n_rows
+        ELSE 0
+      END
+    ),
+    0
+  ) AS charlson_diabetes_without_complications,
+  COALESCE(
+    SUM(
+      CASE
+        WHEN e.evidence = '@charlson.diabetes_with_complications' AND e_offset <= 0
+        THEN e.n_rows
+        ELSE 0
+      END
+    ),
+    0
+  ) AS charlson_diabetes_with_complications,
+  COALESCE(
+    SUM(
+      CASE
+        WHEN e.evidence = '@charlson.hemiplegia_paraplegia' AND e_offset <= 0
+        THEN e.n_rows
+        ELSE 0
+      END
+    ),
+    0
+  ) AS charlson_hemiplegia_paraplegia,
+  COALESCE(
+    SUM(
+      CASE
+        WHEN e.evidence = '@charlson.renal_disease' AND e_offset <= 0
+        THEN e.n_rows
+        ELSE 0
+      END
+    ),
+    0
+  ) AS charlson_renal_disease,
+  COALESCE(
+    SUM(
+      CASE
+        WHEN e.evidence = '@charlson.malignancy' AND e_offset <= 0
+        THEN e.n_rows
+        ELSE 0
+      END
+    ),
+    0
+  ) AS charlson_malignancy,
+  COALESCE(
+    SUM(
+      CASE
+        WHEN e.evidence = '@charlson.moderate_severe_liver_disease' AND e_offset <= 0
+        THEN e.n_rows
+        ELSE 0
+      END
+    ),
+    0
+  ) AS charlson_moderate_severe_liver_disease,
+  COALESCE(
+    SUM(
+      CASE
+        WHEN e.evidence = '@charlson.metastatic_solid_tumour' AND e_offset <= 0
+        THEN e.n_rows
+        ELSE 0
+      END
+    ),
+    0
+  ) AS charlson_metastatic_solid_tumour,
+  COALESCE(
+    SUM(
+      CASE
+        WHEN e.evidence = '@charlson.hiv_aids' AND e_offset <= 0
+        THEN e.n_rows
+        ELSE 0
+      END
+    ),
+    0
+  ) AS charlson_hiv_aids
+FROM (
+  SELECT
+    i.patient_id,
+    e.evidence,
+    e.event_date,
+    e.n_rows,
+    DATE_DIFF('DAY', i.index_date, e.event_date) AS e_offset
+  FROM index_dates AS i
+  LEFT JOIN (
+    SELECT
+      patient_id,
+      evidence,
+      event_date,
+      n_rows
+    FROM evidence_events
+    WHERE
+      evidence IN (
+        '@charlson.cerebrovascular_disease',
+        '@charlson.chronic_pulmonary_disease',
+        '@charlson.congestive_heart_failure',
+        '@charlson.dementia',
+        '@charlson.diabetes_with_complications',
+        '@charlson.diabetes_without_complications',
+        '@charlson.hemiplegia_paraplegia',
+        '@charlson.hiv_aids',
+        '@charlson.malignancy',
+        '@charlson.metastatic_solid_tumour',
+        '@charlson.mild_liver_disease',
+        '@charlson.moderate_severe_liver_disease',
+        '@charlson.myocardial_infarction',
+        '@charlson.peptic_ulcer_disease',
+        '@charlson.peripheral_vascular_disease',
+        '@charlson.renal_disease',
+        '@charlson.rheumatic_disease',
+        '@covariate.visits_prior_year'
+      )
+  ) AS e
+    ON e.patient_id = i.patient_id AND e.event_date <= i.index_date
+) AS e
+GROUP BY
+  patient_id;
+
+-- stage measure_covariates [table]: per patient, measurement covariates summarised in their windows
+-- reads: derived_bmi, derived_egfr, index_dates, measurement_values
+SELECT
+  i.patient_id,
+  c0.m_bmi,
+  c0.m_bmi_date,
+  c0.m_bmi_derived,
+  c1.m_sbp,
+  c1.m_sbp_date,
+  c1.m_sbp_derived,
+  c2.m_hba1c,
+  c2.m_hba1c_date,
+  c2.m_hba1c_derived,
+  c3.m_egfr,
+  c3.m_egfr_date,
+  c3.m_egfr_derived
+FROM index_dates AS i
+LEFT JOIN (
+  SELECT
+    patient_id,
+    AVG(value) AS m_bmi,
+    obs_date AS m_bmi_date,
+    BOOL_OR(CAST(derived AS BOOLEAN)) AS m_bmi_derived
+  FROM (
+    SELECT
+      patient_id,
+      obs_date,
+      value,
+      derived,
+      MAX(obs_date) OVER (PARTITION BY patient_id) AS last_date
+    FROM (
+      SELECT
+        v.patient_id,
+        v.obs_date,
+        v.value,
+        v.derived
+      FROM (
+        SELECT
+          patient_id,
+          obs_date,
+          value,
+          derived
+        FROM measurement_values
+        WHERE
+          measure = 'bmi' AND qualifier IS NULL
+        UNION ALL
+        SELECT
+          patient_id,
+          obs_date,
+          value,
+          derived
+        FROM derived_bmi
+        WHERE
+          measure = 'bmi' AND qualifier IS NULL
+      ) AS v
+      JOIN index_dates AS i
+        ON i.patient_id = v.patient_id
+        AND DATE_DIFF('DAY', i.index_date, v.obs_date) BETWEEN -730 AND 0
+    ) AS v
+  ) AS r
+  WHERE
+    obs_date = last_date
+  GROUP BY
+    patient_id,
+    obs_date
+) AS c0
+  ON c0.patient_id = i.patient_id
+LEFT JOIN (
+  SELECT
+    patient_id,
+    AVG(value) AS m_sbp,
+    obs_date AS m_sbp_date,
+    BOOL_OR(CAST(derived AS BOOLEAN)) AS m_sbp_derived
+  FROM (
+    SELECT
+      patient_id,
+      obs_date,
+      value,
+      derived,
+      MAX(obs_date) OVER (PARTITION BY patient_id) AS last_date
+    FROM (
+      SELECT
+        v.patient_id,
+        v.obs_date,
+        v.value,
+        v.derived
+      FROM (
+        SELECT
+          patient_id,
+          obs_date,
+          value,
+          derived
+        FROM measurement_values
+        WHERE
+          measure = 'sbp' AND qualifier IS NULL
+      ) AS v
+      JOIN index_dates AS i
+        ON i.patient_id = v.patient_id
+        AND DATE_DIFF('DAY', i.index_date, v.obs_date) BETWEEN -730 AND 0
+    ) AS v
+  ) AS r
+  WHERE
+    obs_date = last_date
+  GROUP BY
+    patient_id,
+    obs_date
+) AS c1
+  ON c1.patient_id = i.patient_id
+LEFT JOIN (
+  SELECT
+    patient_id,
+    AVG(value) AS m_hba1c,
+    obs_date AS m_hba1c_date,
+    BOOL_OR(CAST(derived AS BOOLEAN)) AS m_hba1c_derived
+  FROM (
+    SELECT
+      patient_id,
+      obs_date,
+      value,
+      derived,
+      MAX(obs_date) OVER (PARTITION BY patient_id) AS last_date
+    FROM (
+      SELECT
+        v.patient_id,
+        v.obs_date,
+        v.value,
+        v.derived
+      FROM (
+        SELECT
+          patient_id,
+          obs_date,
+          value,
+          derived
+        FROM measurement_values
+        WHERE
+          measure = 'hba1c' AND qualifier IS NULL
+      ) AS v
+      JOIN index_dates AS i
+        ON i.patient_id = v.patient_id
+        AND DATE_DIFF('DAY', i.index_date, v.obs_date) BETWEEN -730 AND 0
+    ) AS v
+  ) AS r
+  WHERE
+    obs_date = last_date
+  GROUP BY
+    patient_id,
+    obs_date
+) AS c2
+  ON c2.patient_id = i.patient_id
+LEFT JOIN (
+  SELECT
+    patient_id,
+    AVG(value) AS m_egfr,
+    obs_date AS m_egfr_date,
+    BOOL_OR(CAST(derived AS BOOLEAN)) AS m_egfr_derived
+  FROM (
+    SELECT
+      patient_id,
+      obs_date,
+      value,
+      derived,
+      MAX(obs_date) OVER (PARTITION BY patient_id) AS last_date
+    FROM (
+      SELECT
+        v.patient_id,
+        v.obs_date,
+        v.value,
+        v.derived
+      FROM (
+        SELECT
+          patient_id,
+          obs_date,
+          value,
+          derived
+        FROM measurement_values
+        WHERE
+          measure = 'egfr' AND qualifier IS NULL
+        UNION ALL
+        SELECT
+          patient_id,
+          obs_date,
+          value,
+          derived
+        FROM derived_egfr
+        WHERE
+          measure = 'egfr' AND qualifier IS NULL
+      ) AS v
+      JOIN index_dates AS i
+        ON i.patient_id = v.patient_id
+        AND DATE_DIFF('DAY', i.index_date, v.obs_date) BETWEEN -730 AND 0
+    ) AS v
+  ) AS r
+  WHERE
+    obs_date = last_date
+  GROUP BY
+    patient_id,
+    obs_date
+) AS c3
+  ON c3.patient_id = i.patient_id;
+
+-- stage eligibility [table]: the source population with follow-up and one pass/fail column per eligibility step
+-- reads: index_dates, patient_base, encounter_summary, condition_onsets, window_counts
 SELECT
   patient_id,
   sex,
   birth_date,
   death_date,
+  practice_id,
+  registration_date,
+  deregistration_date,
   index_date,
   first_encounter,
   last_encounter,
@@ -762,6 +1565,9 @@ SELECT
   prevalent_type2_diabetes,
   prevalent_ckd,
   prevalent_heart_failure,
+  horizon_end,
+  followup_end,
+  end_reason,
   COALESCE(sex IN ('F', 'M'), FALSE) AS step_1,
   COALESCE(death_date IS NULL OR death_date > index_date, FALSE) AS step_2,
   COALESCE(age_at_index BETWEEN 40 AND 85, FALSE) AS step_3,
@@ -774,59 +1580,67 @@ SELECT
   ) AS step_5
 FROM (
   SELECT
-    patient_id,
-    sex,
-    birth_date,
-    death_date,
-    index_date,
-    first_encounter,
-    last_encounter,
-    age_at_index,
-    onset_type2_diabetes,
-    onset_ckd,
-    onset_heart_failure,
-    onset_hypertension,
-    COALESCE(NOT onset_type2_diabetes IS NULL AND onset_type2_diabetes <= index_date, FALSE) AS prevalent_type2_diabetes,
-    COALESCE(NOT onset_ckd IS NULL AND onset_ckd <= index_date, FALSE) AS prevalent_ckd,
-    COALESCE(NOT onset_heart_failure IS NULL AND onset_heart_failure <= index_date, FALSE) AS prevalent_heart_failure
+    *,
+    CASE
+      WHEN death_date = followup_end
+      THEN 'death'
+      WHEN CAST('2019-12-31' AS DATE) = followup_end
+      THEN 'end_of_data'
+      WHEN CAST(last_encounter + INTERVAL 365 DAY AS DATE) = followup_end
+      THEN 'lost_contact'
+      WHEN CAST(index_date + INTERVAL 1461 DAY AS DATE) = followup_end
+      THEN 'horizon'
+    END AS end_reason
   FROM (
     SELECT
-      s.patient_id,
-      s.sex,
-      s.birth_date,
-      s.death_date,
-      s.index_date,
-      s.first_encounter,
-      s.last_encounter,
-      s.age_at_index,
-      o.onset_type2_diabetes,
-      o.onset_ckd,
-      o.onset_heart_failure,
-      o.onset_hypertension
+      *,
+      CAST(index_date + INTERVAL 1461 DAY AS DATE) AS horizon_end,
+      LEAST(
+        COALESCE(death_date, CAST('9999-12-31' AS DATE)),
+        COALESCE(CAST('2019-12-31' AS DATE), CAST('9999-12-31' AS DATE)),
+        COALESCE(CAST(last_encounter + INTERVAL 365 DAY AS DATE), CAST('9999-12-31' AS DATE)),
+        COALESCE(CAST(index_date + INTERVAL 1461 DAY AS DATE), CAST('9999-12-31' AS DATE))
+      ) AS followup_end
     FROM (
       SELECT
-        s.patient_id,
-        p.sex,
-        p.birth_date,
-        p.death_date,
-        s.index_date,
-        s.first_encounter,
-        s.last_encounter,
-        YEAR(s.index_date) - YEAR(p.birth_date) - CASE
-          WHEN MONTH(s.index_date) * 100 + DAY(s.index_date) < MONTH(p.birth_date) * 100 + DAY(p.birth_date)
-          THEN 1
-          ELSE 0
-        END AS age_at_index
-      FROM encounter_summary AS s
-      JOIN patient_base AS p
-        ON p.patient_id = s.patient_id
-      WHERE
-        NOT s.index_date IS NULL
-    ) AS s
-    LEFT JOIN condition_onsets AS o
-      ON o.patient_id = s.patient_id
-  ) AS e
-) AS v;
+        *,
+        COALESCE(NOT onset_type2_diabetes IS NULL AND onset_type2_diabetes <= index_date, FALSE) AS prevalent_type2_diabetes,
+        COALESCE(NOT onset_ckd IS NULL AND onset_ckd <= index_date, FALSE) AS prevalent_ckd,
+        COALESCE(NOT onset_heart_failure IS NULL AND onset_heart_failure <= index_date, FALSE) AS prevalent_heart_failure
+      FROM (
+        SELECT
+          i.patient_id,
+          p.sex,
+          p.birth_date,
+          p.death_date,
+          p.practice_id,
+          p.registration_date,
+          p.deregistration_date,
+          i.index_date,
+          s.first_encounter,
+          s.last_encounter,
+          YEAR(i.index_date) - YEAR(p.birth_date) - CASE
+            WHEN MONTH(i.index_date) * 100 + DAY(i.index_date) < MONTH(p.birth_date) * 100 + DAY(p.birth_date)
+            THEN 1
+            ELSE 0
+          END AS age_at_index,
+          o.onset_type2_diabetes,
+          o.onset_ckd,
+          o.onset_heart_failure,
+          o.onset_hypertension
+        FROM index_dates AS i
+        JOIN patient_base AS p
+          ON p.patient_id = i.patient_id
+        JOIN encounter_summary AS s
+          ON s.patient_id = i.patient_id
+        LEFT JOIN condition_onsets AS o
+          ON o.patient_id = i.patient_id
+        LEFT JOIN window_counts AS w
+          ON w.patient_id = i.patient_id
+      ) AS b
+    ) AS v
+  ) AS fu
+) AS f;
 
 -- stage attrition [table]: patients before, removed and remaining at each eligibility step
 -- reads: eligibility
@@ -877,7 +1691,7 @@ FROM (
   SELECT
     0 AS step_number,
     'source_population' AS step,
-    'first encounter between 2015-01-01 and 2016-12-31' AS description,
+    'the first encounter between 2015-01-01 and 2016-12-31' AS description,
     n_0 AS patients_before,
     0 AS removed,
     n_0 AS remaining
@@ -930,88 +1744,106 @@ FROM (
 ) AS steps;
 
 -- stage cohort [table]: the analysis table: one row per eligible patient
--- reads: eligibility
+-- reads: eligibility, window_counts, measure_covariates
 SELECT
-  patient_id,
-  index_date,
-  CAST(age_at_index AS INT) AS age_at_index,
-  sex,
-  COALESCE(NOT onset_hypertension IS NULL AND onset_hypertension <= index_date, FALSE) AS hypertension,
-  prevalent_type2_diabetes AS prevalent_type2_diabetes,
-  NOT prevalent_type2_diabetes AS at_risk_type2_diabetes,
+  f.patient_id,
+  f.index_date,
+  CAST(f.age_at_index AS INT) AS age_at_index,
+  f.sex,
+  CAST(m.m_bmi AS DOUBLE) AS bmi,
+  m.m_bmi_date AS bmi_date,
+  m.m_bmi_derived AS bmi_derived,
+  CAST(m.m_sbp AS DOUBLE) AS sbp,
+  m.m_sbp_date AS sbp_date,
+  m.m_sbp_derived AS sbp_derived,
+  CAST(m.m_hba1c AS DOUBLE) AS hba1c,
+  m.m_hba1c_date AS hba1c_date,
+  m.m_hba1c_derived AS hba1c_derived,
+  CAST(m.m_egfr AS DOUBLE) AS egfr,
+  m.m_egfr_date AS egfr_date,
+  m.m_egfr_derived AS egfr_derived,
+  CAST(w.count_visits_prior_year AS INT) AS visits_prior_year,
+  COALESCE(NOT f.onset_hypertension IS NULL AND f.onset_hypertension <= f.index_date, FALSE) AS hypertension,
+  CAST(CASE WHEN COALESCE(w.charlson_myocardial_infarction, 0) > 0 THEN 1 ELSE 0 END + CASE WHEN COALESCE(w.charlson_congestive_heart_failure, 0) > 0 THEN 1 ELSE 0 END + CASE WHEN COALESCE(w.charlson_peripheral_vascular_disease, 0) > 0 THEN 1 ELSE 0 END + CASE WHEN COALESCE(w.charlson_cerebrovascular_disease, 0) > 0 THEN 1 ELSE 0 END + CASE WHEN COALESCE(w.charlson_dementia, 0) > 0 THEN 1 ELSE 0 END + CASE WHEN COALESCE(w.charlson_chronic_pulmonary_disease, 0) > 0 THEN 1 ELSE 0 END + CASE WHEN COALESCE(w.charlson_rheumatic_disease, 0) > 0 THEN 1 ELSE 0 END + CASE WHEN COALESCE(w.charlson_peptic_ulcer_disease, 0) > 0 THEN 1 ELSE 0 END + CASE
+    WHEN COALESCE(w.charlson_mild_liver_disease, 0) > 0
+    AND NOT COALESCE(w.charlson_moderate_severe_liver_disease, 0) > 0
+    THEN 1
+    ELSE 0
+  END + CASE
+    WHEN COALESCE(w.charlson_diabetes_without_complications, 0) > 0
+    AND NOT COALESCE(w.charlson_diabetes_with_complications, 0) > 0
+    THEN 1
+    ELSE 0
+  END + CASE WHEN COALESCE(w.charlson_diabetes_with_complications, 0) > 0 THEN 2 ELSE 0 END + CASE WHEN COALESCE(w.charlson_hemiplegia_paraplegia, 0) > 0 THEN 2 ELSE 0 END + CASE WHEN COALESCE(w.charlson_renal_disease, 0) > 0 THEN 2 ELSE 0 END + CASE
+    WHEN COALESCE(w.charlson_malignancy, 0) > 0
+    AND NOT COALESCE(w.charlson_metastatic_solid_tumour, 0) > 0
+    THEN 2
+    ELSE 0
+  END + CASE
+    WHEN COALESCE(w.charlson_moderate_severe_liver_disease, 0) > 0
+    THEN 3
+    ELSE 0
+  END + CASE WHEN COALESCE(w.charlson_metastatic_solid_tumour, 0) > 0 THEN 6 ELSE 0 END + CASE WHEN COALESCE(w.charlson_hiv_aids, 0) > 0 THEN 6 ELSE 0 END AS INT) AS charlson,
+  f.prevalent_type2_diabetes AS prevalent_type2_diabetes,
+  NOT f.prevalent_type2_diabetes AS at_risk_type2_diabetes,
   CASE
-    WHEN prevalent_type2_diabetes
+    WHEN f.prevalent_type2_diabetes
     THEN NULL
-    ELSE COALESCE(onset_type2_diabetes > index_date AND onset_type2_diabetes <= followup_end, FALSE)
+    ELSE COALESCE(
+      f.onset_type2_diabetes > f.index_date
+      AND f.onset_type2_diabetes <= f.followup_end,
+      FALSE
+    )
   END AS incident_type2_diabetes,
-  onset_type2_diabetes AS onset_type2_diabetes,
+  f.onset_type2_diabetes AS onset_type2_diabetes,
   CAST(CASE
-    WHEN NOT prevalent_type2_diabetes
-    AND COALESCE(onset_type2_diabetes > index_date AND onset_type2_diabetes <= followup_end, FALSE)
-    THEN DATE_DIFF('DAY', index_date, onset_type2_diabetes)
+    WHEN NOT f.prevalent_type2_diabetes
+    AND COALESCE(
+      f.onset_type2_diabetes > f.index_date
+      AND f.onset_type2_diabetes <= f.followup_end,
+      FALSE
+    )
+    THEN DATE_DIFF('DAY', f.index_date, f.onset_type2_diabetes)
   END AS INT) AS days_to_type2_diabetes,
-  prevalent_ckd AS prevalent_ckd,
-  NOT prevalent_ckd AS at_risk_ckd,
+  f.prevalent_ckd AS prevalent_ckd,
+  NOT f.prevalent_ckd AS at_risk_ckd,
   CASE
-    WHEN prevalent_ckd
+    WHEN f.prevalent_ckd
     THEN NULL
-    ELSE COALESCE(onset_ckd > index_date AND onset_ckd <= followup_end, FALSE)
+    ELSE COALESCE(f.onset_ckd > f.index_date AND f.onset_ckd <= f.followup_end, FALSE)
   END AS incident_ckd,
-  onset_ckd AS onset_ckd,
+  f.onset_ckd AS onset_ckd,
   CAST(CASE
-    WHEN NOT prevalent_ckd
-    AND COALESCE(onset_ckd > index_date AND onset_ckd <= followup_end, FALSE)
-    THEN DATE_DIFF('DAY', index_date, onset_ckd)
+    WHEN NOT f.prevalent_ckd
+    AND COALESCE(f.onset_ckd > f.index_date AND f.onset_ckd <= f.followup_end, FALSE)
+    THEN DATE_DIFF('DAY', f.index_date, f.onset_ckd)
   END AS INT) AS days_to_ckd,
-  prevalent_heart_failure AS prevalent_heart_failure,
-  NOT prevalent_heart_failure AS at_risk_heart_failure,
+  f.prevalent_heart_failure AS prevalent_heart_failure,
+  NOT f.prevalent_heart_failure AS at_risk_heart_failure,
   CASE
-    WHEN prevalent_heart_failure
+    WHEN f.prevalent_heart_failure
     THEN NULL
-    ELSE COALESCE(onset_heart_failure > index_date AND onset_heart_failure <= followup_end, FALSE)
+    ELSE COALESCE(
+      f.onset_heart_failure > f.index_date AND f.onset_heart_failure <= f.followup_end,
+      FALSE
+    )
   END AS incident_heart_failure,
-  onset_heart_failure AS onset_heart_failure,
+  f.onset_heart_failure AS onset_heart_failure,
   CAST(CASE
-    WHEN NOT prevalent_heart_failure
-    AND COALESCE(onset_heart_failure > index_date AND onset_heart_failure <= followup_end, FALSE)
-    THEN DATE_DIFF('DAY', index_date, onset_heart_failure)
+    WHEN NOT f.prevalent_heart_failure
+    AND COALESCE(
+      f.onset_heart_failure > f.index_date AND f.onset_heart_failure <= f.followup_end,
+      FALSE
+    )
+    THEN DATE_DIFF('DAY', f.index_date, f.onset_heart_failure)
   END AS INT) AS days_to_heart_failure,
-  followup_end,
-  CAST(DATE_DIFF('DAY', index_date, followup_end) AS INT) AS followup_days,
-  CASE
-    WHEN death_date = followup_end
-    THEN 'death'
-    WHEN CAST('2019-12-31' AS DATE) = followup_end
-    THEN 'end_of_data'
-    WHEN CAST(last_encounter + INTERVAL 365 DAY AS DATE) = followup_end
-    THEN 'lost_contact'
-    WHEN CAST(index_date + INTERVAL 1461 DAY AS DATE) = followup_end
-    THEN 'horizon'
-  END AS end_reason
-FROM (
-  SELECT
-    patient_id,
-    sex,
-    birth_date,
-    death_date,
-    index_date,
-    first_encounter,
-    last_encounter,
-    age_at_index,
-    onset_type2_diabetes,
-    onset_ckd,
-    onset_heart_failure,
-    onset_hypertension,
-    prevalent_type2_diabetes,
-    prevalent_ckd,
-    prevalent_heart_failure,
-    LEAST(
-      COALESCE(death_date, CAST('9999-12-31' AS DATE)),
-      COALESCE(CAST('2019-12-31' AS DATE), CAST('9999-12-31' AS DATE)),
-      COALESCE(CAST(last_encounter + INTERVAL 365 DAY AS DATE), CAST('9999-12-31' AS DATE)),
-      COALESCE(CAST(index_date + INTERVAL 1461 DAY AS DATE), CAST('9999-12-31' AS DATE))
-    ) AS followup_end
-  FROM eligibility
-  WHERE
-    step_1 AND step_2 AND step_3 AND step_4 AND step_5
-) AS f;
+  f.followup_end,
+  CAST(DATE_DIFF('DAY', f.index_date, f.followup_end) AS INT) AS followup_days,
+  f.end_reason
+FROM eligibility AS f
+LEFT JOIN window_counts AS w
+  ON w.patient_id = f.patient_id
+LEFT JOIN measure_covariates AS m
+  ON m.patient_id = f.patient_id
+WHERE
+  f.step_1 AND f.step_2 AND f.step_3 AND f.step_4 AND f.step_5;

@@ -1,4 +1,4 @@
-"""Pydantic models of condition files and study files.
+"""Pydantic models of condition files (case definitions).
 
 The vocabulary is ours (see DESIGN.md). Every model forbids unknown keys, so a typo is an error
 with a suggestion instead of a silently ignored setting.
@@ -6,38 +6,22 @@ with a suggestion instead of a silently ignored setting.
 
 from __future__ import annotations
 
-import datetime as dt
-from functools import partial
-from pathlib import Path
-from typing import Annotated, Literal, Self
+from typing import Literal, Self
 
-from pydantic import (
-    AfterValidator,
-    BaseModel,
-    ConfigDict,
-    Field,
-    ValidationInfo,
-    field_validator,
-    model_validator,
+from pydantic import Field, ValidationInfo, field_validator, model_validator
+
+from pipeline.config._base import (
+    ATCCode,
+    ICD9Code,
+    ICD10Code,
+    Model,
+    Name,
+    NonNegativeInt,
+    PositiveInt,
+    Quantity,
 )
-
-from pipeline.codes import check_code
 from pipeline.measures import MEASURES, Threshold
 from pipeline.measures._threshold import Comparison
-
-NonNegativeInt = Annotated[int, Field(ge=0)]
-PositiveInt = Annotated[int, Field(ge=1)]
-Name = Annotated[str, Field(pattern=r"^[a-z][a-z0-9_]*$", max_length=48)]
-ICD9Code = Annotated[str, AfterValidator(partial(check_code, "ICD9"))]
-ICD10Code = Annotated[str, AfterValidator(partial(check_code, "ICD10"))]
-ATCCode = Annotated[str, AfterValidator(partial(check_code, "ATC"))]
-Quantity = str | float
-
-
-class Model(BaseModel):
-    """Base of every config model: unknown keys are errors, values are immutable."""
-
-    model_config = ConfigDict(extra="forbid", frozen=True)
 
 
 class DiagnosisCodes(Model):
@@ -154,9 +138,9 @@ _UPPER = ("below", "at_most")
 
 
 class EncounterEvidence(Model):
-    """Encounters of some types (compared lower-cased)."""
+    """Encounters of some types (compared lower-cased); no types means any encounter."""
 
-    type: tuple[str, ...] = Field(min_length=1)
+    type: tuple[str, ...] = ()
 
 
 class Evidence(Model):
@@ -237,160 +221,3 @@ class Condition(Model):
     def references(self) -> tuple[str, ...]:
         """Other conditions this one uses as evidence, sorted."""
         return tuple(sorted({e.condition for e in self.evidence.values() if e.condition}))
-
-
-class DateRange(Model):
-    """An inclusive calendar window."""
-
-    between: tuple[dt.date, dt.date]
-
-    @model_validator(mode="after")
-    def _ordered(self) -> Self:
-        if self.between[0] > self.between[1]:
-            raise ValueError("the window ends before it starts")
-        return self
-
-
-class IndexRule(Model):
-    """How each patient's index date is chosen."""
-
-    first_encounter: DateRange
-
-
-class AgeRange(Model):
-    """Inclusive range of age in completed years."""
-
-    between: tuple[NonNegativeInt, NonNegativeInt]
-
-    @model_validator(mode="after")
-    def _ordered(self) -> Self:
-        if self.between[0] > self.between[1]:
-            raise ValueError("the age range ends before it starts")
-        return self
-
-
-class Criterion(Model):
-    """One eligibility step; exactly one key is set. Steps apply in the order written."""
-
-    sex: tuple[Literal["F", "M"], ...] | None = None
-    alive_at_index: Literal[True] | None = None
-    age: AgeRange | None = None
-    history_days: NonNegativeInt | None = None
-    at_risk_of_any_outcome: Literal[True] | None = None
-
-    @model_validator(mode="after")
-    def _exactly_one(self) -> Self:
-        if len(self.model_fields_set) != 1:
-            raise ValueError(
-                "each eligibility step sets exactly one of: " + ", ".join(Criterion.model_fields)
-            )
-        return self
-
-    @property
-    def kind(self) -> str:
-        """The name of the key this step sets."""
-        return next(iter(self.model_fields_set))
-
-
-class Outcomes(Model):
-    """The conditions followed for incidence, side by side."""
-
-    conditions: tuple[Name, ...] = Field(min_length=1)
-    horizon_days: PositiveInt
-    lookback: Literal["all"] = "all"
-
-    @field_validator("conditions")
-    @classmethod
-    def _unique(cls, value: tuple[str, ...]) -> tuple[str, ...]:
-        repeated = sorted({c for c in value if value.count(c) > 1})
-        if repeated:
-            raise ValueError(f"outcome listed twice: {', '.join(repeated)}")
-        return value
-
-
-FollowupEnd = Literal["death", "end_of_data", "lost_contact", "horizon"]
-
-
-class Followup(Model):
-    """What ends follow-up; the order of ``end_at`` breaks ties between reasons."""
-
-    end_at: tuple[FollowupEnd, ...] = ("death", "end_of_data", "lost_contact", "horizon")
-    lost_contact_after_days: NonNegativeInt | None = None
-    incomplete: Literal["censor"] = "censor"
-
-    @model_validator(mode="after")
-    def _consistent(self) -> Self:
-        if len(set(self.end_at)) != len(self.end_at):
-            raise ValueError("a follow-up end reason is listed twice")
-        if "horizon" not in self.end_at:
-            raise ValueError("follow-up must end at the horizon: add 'horizon' to end_at")
-        if ("lost_contact" in self.end_at) != (self.lost_contact_after_days is not None):
-            raise ValueError("lost_contact in end_at and lost_contact_after_days go together")
-        return self
-
-
-class Output(Model):
-    """Where results go and which counts are too small to show."""
-
-    folder: Path
-    small_cell_threshold: PositiveInt = 5
-
-
-class EngineSettings(Model):
-    """Engine resources; the command line can override them."""
-
-    threads: PositiveInt | None = None
-    memory_limit: (
-        Annotated[str, Field(pattern=r"^\d+(\.\d+)?\s*(KB|MB|GB|TB|KiB|MiB|GiB|TiB)$")] | None
-    ) = None
-
-
-class Covariate(Model):
-    """One baseline covariate column of the analysis table; exactly one key is set.
-
-    ``condition``: true when the named condition's onset is on or before the index date.
-    """
-
-    condition: Name | None = None
-
-    @model_validator(mode="after")
-    def _exactly_one(self) -> Self:
-        if len(self.model_fields_set) != 1:
-            raise ValueError(
-                "each covariate sets exactly one of: " + ", ".join(Covariate.model_fields)
-            )
-        return self
-
-
-RESERVED_COLUMNS = ("patient_id", "index_date", "age_at_index", "sex")
-
-
-class Study(Model):
-    """A study design: source, index, eligibility, outcomes, follow-up and output."""
-
-    study: Name
-    title: str
-    extract: Path
-    definitions: Path = Path("../conditions")
-    end_of_data: dt.date
-    index: IndexRule
-    eligibility: tuple[Criterion, ...] = ()
-    covariates: dict[Name, Covariate] = Field(default_factory=dict)
-    outcomes: Outcomes
-    followup: Followup
-    output: Output
-    engine: EngineSettings = EngineSettings()
-
-    @field_validator("covariates")
-    @classmethod
-    def _no_reserved_names(cls, value: dict[str, Covariate]) -> dict[str, Covariate]:
-        clash = sorted(set(value) & set(RESERVED_COLUMNS))
-        if clash:
-            raise ValueError(f"covariate name(s) {', '.join(clash)} are analysis-table columns")
-        return value
-
-    @model_validator(mode="after")
-    def _index_within_data(self) -> Self:
-        if self.index.first_encounter.between[1] > self.end_of_data:
-            raise ValueError("the index window ends after end_of_data")
-        return self

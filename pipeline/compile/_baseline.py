@@ -1,0 +1,262 @@
+"""Baseline quantities relative to each patient's index date, one pass per source.
+
+``window_counts`` counts evidence in windows (eligibility steps, count covariates, Charlson
+categories, first evidence of a condition) with one join of ``evidence_events`` to the index;
+``measure_covariates`` summarises measurement values in windows. Windows are day offsets from
+the index, both ends included; a missing value stays missing (NULL), never zero.
+"""
+
+from __future__ import annotations
+
+from sqlglot import exp
+
+from pipeline.codes import CHARLSON_CATEGORIES, HIERARCHY, WEIGHTS
+from pipeline.compile._context import (
+    CompileContext,
+    charlson_key,
+    covariate_key,
+    evidence_key,
+    step_key,
+)
+from pipeline.compile._measurements import measure_relations
+from pipeline.compile._plan import Stage
+from pipeline.compile._sql import days_between, is_in
+from pipeline.config import Covariate, Window
+
+OFFSET = "e_offset"  # event date minus index date, in days
+
+
+def in_window(window: Window, offset: exp.Expression) -> exp.Expression:
+    """``offset`` inside the window (both ends included; no start means all history)."""
+    start, end = window
+    if start is None:
+        return offset <= end
+    return offset.between(start, end)
+
+
+def _count(key: str, window: Window) -> exp.Expression:
+    hit = exp.and_(exp.column("evidence", "e").eq(key), in_window(window, exp.column(OFFSET)))
+    return exp.func(
+        "COALESCE",
+        exp.Sum(this=exp.Case().when(hit, exp.column("n_rows", "e")).else_(exp.Literal.number(0))),
+        exp.Literal.number(0),
+    )
+
+
+def window_columns(ctx: CompileContext) -> list[tuple[str, exp.Expression, tuple[str, ...]]]:
+    """(column, aggregate, evidence keys) for everything ``window_counts`` computes."""
+    columns: list[tuple[str, exp.Expression, tuple[str, ...]]] = []
+    for i, criterion in enumerate(ctx.study.eligibility, start=1):
+        step = criterion.encounters or criterion.no_evidence
+        if step is not None:
+            key = step_key(i)
+            columns.append((f"step_evidence_{i}", _count(key, step.window), (key,)))
+    for name, covariate in ctx.study.covariates.items():
+        if covariate.count is not None:
+            key = covariate_key(name)
+            columns.append((f"count_{name}", _count(key, covariate.span), (key,)))
+    if any(c.charlson for c in ctx.study.covariates.values()):
+        for category in CHARLSON_CATEGORIES:
+            key = charlson_key(category.name)
+            columns.append((f"charlson_{category.name}", _count(key, (None, 0)), (key,)))
+    for name in ctx.first_evidence_of:
+        condition = ctx.catalog.get(name)
+        keys = tuple(
+            evidence_key(name, e)
+            for e, ev in sorted(condition.evidence.items())
+            if not ev.condition
+        )
+        first = exp.Min(
+            this=exp.Case().when(
+                exp.and_(is_in(exp.column("evidence", "e"), keys), exp.column(OFFSET) <= 0),
+                exp.column("event_date", "e"),
+            )
+        )
+        columns.append((f"first_evidence_{name}", first, keys))
+    return columns
+
+
+def window_counts_stage(ctx: CompileContext) -> Stage | None:
+    """``window_counts``: per source patient, evidence counts in windows around the index."""
+    columns = window_columns(ctx)
+    if not columns:
+        return None
+    keys = sorted({k for _, _, ks in columns for k in ks})
+    offset = days_between(exp.column("index_date", "i"), exp.column("event_date", "e"))
+    events = (
+        exp.select("patient_id", "evidence", "event_date", "n_rows")
+        .from_("evidence_events")
+        .where(is_in(exp.column("evidence"), keys))
+    )
+    joined = (
+        exp.select(
+            exp.column("patient_id", "i"),
+            exp.column("evidence", "e"),
+            exp.column("event_date", "e"),
+            exp.column("n_rows", "e"),
+            offset.as_(OFFSET),
+        )
+        .from_("index_dates AS i")
+        .join(
+            events.subquery("e"),
+            on=exp.and_(
+                exp.column("patient_id", "e").eq(exp.column("patient_id", "i")),
+                exp.column("event_date", "e") <= exp.column("index_date", "i"),
+            ),
+            join_type="left",
+        )
+    )
+    query = (
+        exp.select("patient_id", *(aggregate.as_(name) for name, aggregate, _ in columns))
+        .from_(joined.subquery("e"))
+        .group_by("patient_id")
+    )
+    return Stage(
+        "window_counts",
+        query,
+        ("index_dates", "evidence_events"),
+        "per patient, evidence counted in windows around the index date",
+    )
+
+
+_SUMMARIES = {"mean": exp.Avg, "minimum": exp.Min, "maximum": exp.Max}
+
+
+def _measure_values(ctx: CompileContext, measure: str, window: Window) -> exp.Query:
+    relations = measure_relations(ctx, measure)
+    parts = [
+        exp.select("patient_id", "obs_date", "value", "derived")
+        .from_(relation)
+        .where(exp.and_(exp.column("measure").eq(measure), exp.column("qualifier").is_(exp.null())))
+        for relation in relations
+    ]
+    union: exp.Query = parts[0]
+    for part in parts[1:]:
+        union = union.union(part, distinct=False)
+    offset = days_between(exp.column("index_date", "i"), exp.column("obs_date", "v"))
+    return (
+        exp.select(
+            exp.column("patient_id", "v"),
+            exp.column("obs_date", "v"),
+            exp.column("value", "v"),
+            exp.column("derived", "v"),
+        )
+        .from_(union.subquery("v"))
+        .join(
+            "index_dates AS i",
+            on=exp.and_(
+                exp.column("patient_id", "i").eq(exp.column("patient_id", "v")),
+                in_window(window, offset),
+            ),
+        )
+    )
+
+
+def _summary(ctx: CompileContext, name: str, covariate: Covariate) -> exp.Query:
+    measure = covariate.latest or covariate.mean or covariate.minimum or covariate.maximum
+    assert measure is not None  # only called for measure covariates
+    values = _measure_values(ctx, measure, covariate.span)
+    if covariate.latest is None:
+        aggregate = _SUMMARIES[covariate.kind](this=exp.column("value"))
+        return (
+            exp.select("patient_id", aggregate.as_(f"m_{name}"))
+            .from_(values.subquery("v"))
+            .group_by("patient_id")
+        )
+    last = exp.Window(
+        this=exp.Max(this=exp.column("obs_date")), partition_by=[exp.column("patient_id")]
+    )
+    ranked = exp.select("patient_id", "obs_date", "value", "derived", last.as_("last_date")).from_(
+        values.subquery("v")
+    )
+    return (
+        exp.select(
+            "patient_id",
+            exp.Avg(this=exp.column("value")).as_(f"m_{name}"),
+            exp.column("obs_date").as_(f"m_{name}_date"),
+            exp.func("BOOL_OR", exp.column("derived")).as_(f"m_{name}_derived"),
+        )
+        .from_(ranked.subquery("r"))
+        .where(exp.column("obs_date").eq(exp.column("last_date")))
+        .group_by("patient_id", "obs_date")
+    )
+
+
+MEASURE_KINDS = ("latest", "mean", "minimum", "maximum")
+
+
+def measure_covariates_stage(ctx: CompileContext) -> Stage | None:
+    """``measure_covariates``: per source patient, each measure covariate's value."""
+    wanted = [(n, c) for n, c in ctx.study.covariates.items() if c.kind in MEASURE_KINDS]
+    if not wanted:
+        return None
+    query = exp.select(exp.column("patient_id", "i")).from_("index_dates AS i")
+    depends = {"index_dates"}
+    for number, (name, covariate) in enumerate(wanted):
+        alias = f"c{number}"
+        summary = _summary(ctx, name, covariate)
+        columns = [f"m_{name}"]
+        if covariate.latest:
+            columns += [f"m_{name}_date", f"m_{name}_derived"]
+        query = query.select(*(exp.column(c, alias) for c in columns)).join(
+            summary.subquery(alias),
+            on=exp.column("patient_id", alias).eq(exp.column("patient_id", "i")),
+            join_type="left",
+        )
+        measure = covariate.latest or covariate.mean or covariate.minimum or covariate.maximum
+        depends.update(measure_relations(ctx, measure or ""))
+    return Stage(
+        "measure_covariates",
+        query,
+        tuple(sorted(depends)),
+        "per patient, measurement covariates summarised in their windows",
+    )
+
+
+def charlson_score(weights: str) -> exp.Expression:
+    """The Charlson index from ``window_counts``'s category columns, with the hierarchy."""
+    present = {
+        c.name: exp.func("COALESCE", exp.column(f"charlson_{c.name}", "w"), exp.Literal.number(0))
+        > 0
+        for c in CHARLSON_CATEGORIES
+    }
+    severe_of = dict(HIERARCHY)
+    terms: list[exp.Expression] = []
+    for category in CHARLSON_CATEGORIES:
+        weight = WEIGHTS[weights][category.name]
+        if weight == 0:
+            continue
+        counts = present[category.name].copy()
+        if category.name in severe_of:
+            counts = exp.and_(counts, exp.not_(present[severe_of[category.name]].copy()))
+        terms.append(
+            exp.Case().when(counts, exp.Literal.number(weight)).else_(exp.Literal.number(0))
+        )
+    total: exp.Expression = terms[0]
+    for term in terms[1:]:
+        total = exp.Add(this=total, expression=term)
+    return exp.cast(total, "INT")
+
+
+def covariate_column(name: str, covariate: Covariate) -> list[exp.Expression]:
+    """The analysis-table column(s) of one covariate (read from eligibility ``f``, ``w``, ``m``)."""
+    kind = covariate.kind
+    if kind == "condition":
+        onset = exp.column(f"onset_{covariate.condition}", "f")
+        prevalent = exp.and_(onset.is_(exp.null()).not_(), onset <= exp.column("index_date", "f"))
+        return [exp.func("COALESCE", prevalent, exp.false()).as_(name)]
+    if kind == "count":
+        return [exp.cast(exp.column(f"count_{name}", "w"), "INT").as_(name)]
+    if kind == "days_since_first_evidence":
+        first = exp.column(f"first_evidence_{covariate.days_since_first_evidence}", "w")
+        return [exp.cast(days_between(first, exp.column("index_date", "f")), "INT").as_(name)]
+    if kind == "charlson":
+        assert covariate.charlson is not None  # kind is charlson
+        return [charlson_score(covariate.charlson.weights).as_(name)]
+    columns = [exp.cast(exp.column(f"m_{name}", "m"), "DOUBLE").as_(name)]
+    if covariate.latest:
+        columns += [
+            exp.column(f"m_{name}_date", "m").as_(f"{name}_date"),
+            exp.column(f"m_{name}_derived", "m").as_(f"{name}_derived"),
+        ]
+    return columns

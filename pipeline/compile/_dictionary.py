@@ -1,0 +1,231 @@
+"""The data dictionary of the analysis table, written from the same study the plan comes from.
+
+Every column gets its type, unit, a one-sentence meaning, how it was computed, and the
+definitions it comes from, so the table describes itself.
+"""
+
+from __future__ import annotations
+
+from pipeline.codes import CHARLSON_CATEGORIES, WEIGHTS
+from pipeline.compile._context import CompileContext
+from pipeline.compile._index import index_description
+from pipeline.compile._plan import ColumnDoc
+from pipeline.config import Covariate, Window
+from pipeline.measures import DERIVED_FROM, MEASURES
+
+
+def _window(window: Window) -> str:
+    start, end = window
+    first = "all history" if start is None else f"{-start} days before index"
+    last = "the index date" if end == 0 else f"{-end} days before index"
+    return f"from {first} to {last}, both included"
+
+
+def _measure_docs(name: str, covariate: Covariate) -> list[ColumnDoc]:
+    measure = covariate.latest or covariate.mean or covariate.minimum or covariate.maximum
+    assert measure is not None  # only called for measure covariates
+    unit = MEASURES[measure].canonical_unit
+    how = f"{covariate.kind} exact value (no < or >) {_window(covariate.span)}"
+    if measure in DERIVED_FROM:
+        how += (
+            f"; reported values, and on days without one, values derived from "
+            f"{' and '.join(DERIVED_FROM[measure])}"
+        )
+    if covariate.latest:
+        how += "; several values on the latest day are averaged"
+        return [
+            ColumnDoc(name, "DOUBLE", unit, f"latest {measure} before index", how, "measurements"),
+            ColumnDoc(f"{name}_date", "DATE", "", f"date of {name}", how, "measurements"),
+            ColumnDoc(
+                f"{name}_derived",
+                "BOOLEAN",
+                "",
+                f"whether {name} was derived, not reported",
+                how,
+                "measurements",
+            ),
+        ]
+    return [ColumnDoc(name, "DOUBLE", unit, f"{covariate.kind} of {measure}", how, "measurements")]
+
+
+def _charlson_doc(name: str, covariate: Covariate) -> ColumnDoc:
+    assert covariate.charlson is not None  # only called for the charlson kind
+    weights = covariate.charlson.weights
+    stated = ", ".join(f"{c.title} {WEIGHTS[weights][c.name]}" for c in CHARLSON_CATEGORIES)
+    source = "Charlson et al. 1987" if weights == "charlson_1987" else "Quan et al. 2011"
+    return ColumnDoc(
+        name,
+        "INTEGER",
+        "points",
+        "Charlson comorbidity index over all history up to and including the index date",
+        f"categories by the Quan et al. 2005 coding algorithms "
+        f"({', '.join(covariate.charlson.codes)} codes); weights ({source}): {stated}; "
+        "a milder category does not count when its severe form is present "
+        "(liver disease, diabetes, malignancy vs metastatic tumour)",
+        "diagnoses",
+    )
+
+
+def _covariate_docs(ctx: CompileContext, name: str, covariate: Covariate) -> list[ColumnDoc]:
+    kind = covariate.kind
+    if kind == "condition":
+        title = ctx.catalog.get(covariate.condition or "").title
+        return [
+            ColumnDoc(
+                name,
+                "BOOLEAN",
+                "",
+                f"{title} on or before the index date",
+                f"onset of {covariate.condition} <= index_date (all history)",
+                _definition_source(ctx, covariate.condition or ""),
+            )
+        ]
+    if kind == "count":
+        return [
+            ColumnDoc(
+                name,
+                "INTEGER",
+                "rows",
+                "number of matching records (0 when none)",
+                f"records of the listed evidence {_window(covariate.span)}",
+                "extract",
+            )
+        ]
+    if kind == "days_since_first_evidence":
+        condition = covariate.days_since_first_evidence or ""
+        return [
+            ColumnDoc(
+                name,
+                "INTEGER",
+                "days",
+                f"days from the first evidence of {condition} to index",
+                "index_date - earliest evidence date on or before index; empty when none",
+                _definition_source(ctx, condition),
+            )
+        ]
+    if kind == "charlson":
+        return [_charlson_doc(name, covariate)]
+    return _measure_docs(name, covariate)
+
+
+def _definition_source(ctx: CompileContext, condition: str) -> str:
+    path = ctx.catalog.files.get(condition)
+    return f"definitions/conditions/{path.name}" if path else condition
+
+
+def _outcome_docs(ctx: CompileContext, name: str) -> list[ColumnDoc]:
+    title = ctx.catalog.get(name).title
+    source = _definition_source(ctx, name)
+    return [
+        ColumnDoc(
+            f"prevalent_{name}",
+            "BOOLEAN",
+            "",
+            f"{title} on or before the index date",
+            f"onset_{name} <= index_date",
+            source,
+        ),
+        ColumnDoc(
+            f"at_risk_{name}",
+            "BOOLEAN",
+            "",
+            f"at risk of {title} at index",
+            f"not prevalent_{name}",
+            source,
+        ),
+        ColumnDoc(
+            f"incident_{name}",
+            "BOOLEAN",
+            "",
+            f"{title} developed during follow-up",
+            f"index_date < onset_{name} <= followup_end; empty when not at risk",
+            source,
+        ),
+        ColumnDoc(
+            f"onset_{name}",
+            "DATE",
+            "",
+            f"date a rule for {title} was first met",
+            "using all evidence up to the end of data; filled also when prevalent or "
+            "after follow-up",
+            source,
+        ),
+        ColumnDoc(
+            f"days_to_{name}",
+            "INTEGER",
+            "days",
+            f"days from index to {title}",
+            f"onset_{name} - index_date when incident, else empty",
+            source,
+        ),
+    ]
+
+
+def dictionary(ctx: CompileContext) -> tuple[ColumnDoc, ...]:
+    """Every column of the analysis table, in table order."""
+    study = ctx.study
+    horizon = (
+        f"{study.outcomes.horizon_days} days"
+        if study.outcomes.horizon_days is not None
+        else f"{study.outcomes.horizon_years} years"
+    )
+    reasons = ", ".join(study.followup.end_at)
+    docs = [
+        ColumnDoc(
+            "patient_id",
+            "as in the extract",
+            "",
+            "the patient's identifier",
+            "as in the extract's patients table",
+            "patients",
+        ),
+        ColumnDoc(
+            "index_date",
+            "DATE",
+            "",
+            "the patient's index (baseline) date",
+            index_description(ctx),
+            "encounters",
+        ),
+        ColumnDoc(
+            "age_at_index",
+            "INTEGER",
+            "years",
+            "age in completed years at index",
+            "birthdays count on the day; 29 February births turn a year older on 1 March "
+            "in non-leap years; birth year only: born 1 July",
+            "patients",
+        ),
+        ColumnDoc("sex", "VARCHAR", "", "sex as recorded", "trimmed and upper-cased", "patients"),
+    ]
+    for name, covariate in study.covariates.items():
+        docs += _covariate_docs(ctx, name, covariate)
+    for outcome in ctx.outcomes:
+        docs += _outcome_docs(ctx, outcome.condition)
+    docs += [
+        ColumnDoc(
+            "followup_end",
+            "DATE",
+            "",
+            "the last day of follow-up",
+            f"earliest of: {reasons} (horizon {horizon} after index)",
+            "patients, encounters",
+        ),
+        ColumnDoc(
+            "followup_days",
+            "INTEGER",
+            "days",
+            "length of follow-up",
+            "followup_end - index_date",
+            "patients, encounters",
+        ),
+        ColumnDoc(
+            "end_reason",
+            "VARCHAR",
+            "",
+            "why follow-up ended",
+            f"one of {reasons}; on a tie the first in that order",
+            "patients, encounters",
+        ),
+    ]
+    return tuple(docs)

@@ -1,0 +1,378 @@
+"""Pydantic models of study files: index, eligibility, covariates, outcomes, follow-up.
+
+Windows are written as two day offsets relative to the index date, both included:
+``window: [-365, -1]`` is the year before index without the index day; ``[null, 0]`` (the
+default) is all history up to and including the index date.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from pathlib import Path
+from typing import Annotated, Literal, Self
+
+from pydantic import Field, field_validator, model_validator
+
+from pipeline.config._base import Model, Name, NonNegativeInt, PositiveInt
+from pipeline.config._condition import Evidence
+from pipeline.measures import MEASURES
+
+Window = tuple[int | None, int]
+
+
+def _check_window(window: Window | None) -> Window | None:
+    if window is None:
+        return None
+    start, end = window
+    if end > 0:
+        raise ValueError(
+            f"the window ends {end} days after the index date; baseline windows must end on or "
+            "before the index date (0)"
+        )
+    if start is not None and start > end:
+        raise ValueError(f"the window starts ({start}) after it ends ({end})")
+    return window
+
+
+def _exactly_one(model: Model, kinds: tuple[str, ...], what: str) -> None:
+    chosen = [k for k in kinds if getattr(model, k) is not None]
+    if len(chosen) != 1:
+        raise ValueError(f"{what} sets exactly one of: {', '.join(kinds)}")
+
+
+def _plain_evidence(evidence: Evidence | None) -> Evidence | None:
+    if evidence is not None and evidence.condition is not None:
+        raise ValueError("use 'condition:' at this level, not inside evidence")
+    return evidence
+
+
+class DateRange(Model):
+    """An inclusive calendar window."""
+
+    between: tuple[dt.date, dt.date]
+
+    @model_validator(mode="after")
+    def _ordered(self) -> Self:
+        if self.between[0] > self.between[1]:
+            raise ValueError("the window ends before it starts")
+        return self
+
+
+class FirstEncounter(DateRange):
+    """Index at the first encounter in the window, optionally of some types only."""
+
+    type: tuple[str, ...] = ()
+
+
+class FirstEvent(DateRange):
+    """Index at the first qualifying event in the window: evidence, or a condition's onset."""
+
+    evidence: Evidence | None = None
+    condition: Name | None = None
+
+    _plain = field_validator("evidence")(classmethod(lambda cls, v: _plain_evidence(v)))
+
+    @model_validator(mode="after")
+    def _one_source(self) -> Self:
+        _exactly_one(self, ("evidence", "condition"), "first_event")
+        return self
+
+
+class RandomEncounter(DateRange):
+    """Index at one encounter in the window drawn per patient; the seed makes it repeatable."""
+
+    seed: int
+
+
+class IndexRule(Model):
+    """How each patient's index date is chosen; exactly one strategy is set."""
+
+    first_encounter: FirstEncounter | None = None
+    fixed_date: dt.date | None = None
+    first_event: FirstEvent | None = None
+    random_encounter: RandomEncounter | None = None
+
+    @model_validator(mode="after")
+    def _one_strategy(self) -> Self:
+        _exactly_one(self, STRATEGIES, "index")
+        return self
+
+    @property
+    def strategy(self) -> str:
+        """The strategy's key."""
+        return next(k for k in STRATEGIES if getattr(self, k) is not None)
+
+    @property
+    def last_possible(self) -> dt.date:
+        """The latest date an index can fall on."""
+        if self.fixed_date is not None:
+            return self.fixed_date
+        window = self.first_encounter or self.first_event or self.random_encounter
+        assert window is not None  # one strategy is set (checked above)
+        return window.between[1]
+
+
+STRATEGIES = ("first_encounter", "fixed_date", "first_event", "random_encounter")
+
+
+class AgeRange(Model):
+    """Inclusive range of age in completed years."""
+
+    between: tuple[NonNegativeInt, NonNegativeInt]
+
+    @model_validator(mode="after")
+    def _ordered(self) -> Self:
+        if self.between[0] > self.between[1]:
+            raise ValueError("the age range ends before it starts")
+        return self
+
+
+class EncounterCount(Model):
+    """At least ``at_least`` encounters inside a window relative to index."""
+
+    at_least: PositiveInt
+    window: Window
+
+    _window = field_validator("window")(classmethod(lambda cls, v: _check_window(v)))
+
+
+class EvidenceInWindow(Model):
+    """Evidence inside a window relative to index (all history up to index by default)."""
+
+    evidence: Evidence
+    window: Window = (None, 0)
+
+    _window = field_validator("window")(classmethod(lambda cls, v: _check_window(v)))
+    _plain = field_validator("evidence")(classmethod(lambda cls, v: _plain_evidence(v)))
+
+
+class Criterion(Model):
+    """One eligibility step; exactly one key is set. Steps apply in the order written."""
+
+    sex: tuple[Literal["F", "M"], ...] | None = None
+    alive_at_index: Literal[True] | None = None
+    age: AgeRange | None = None
+    history_days: NonNegativeInt | None = None
+    registered_days: NonNegativeInt | None = None
+    encounters: EncounterCount | None = None
+    practice: tuple[str, ...] | None = None
+    not_prevalent: Name | None = None
+    no_evidence: EvidenceInWindow | None = None
+    at_risk_of_any_outcome: Literal[True] | None = None
+
+    @model_validator(mode="after")
+    def _exactly_one(self) -> Self:
+        if len(self.model_fields_set) != 1:
+            raise ValueError(
+                "each eligibility step sets exactly one of: " + ", ".join(Criterion.model_fields)
+            )
+        return self
+
+    @property
+    def kind(self) -> str:
+        """The name of the key this step sets."""
+        return next(iter(self.model_fields_set))
+
+
+class Outcomes(Model):
+    """The conditions followed for incidence, side by side, and the horizon."""
+
+    conditions: tuple[Name, ...] = Field(min_length=1)
+    horizon_days: PositiveInt | None = None
+    horizon_years: PositiveInt | None = None
+    lookback: Literal["all"] = "all"
+
+    @field_validator("conditions")
+    @classmethod
+    def _unique(cls, value: tuple[str, ...]) -> tuple[str, ...]:
+        repeated = sorted({c for c in value if value.count(c) > 1})
+        if repeated:
+            raise ValueError(f"outcome listed twice: {', '.join(repeated)}")
+        return value
+
+    @model_validator(mode="after")
+    def _one_horizon(self) -> Self:
+        if self.horizon_days is None and self.horizon_years is None:
+            raise ValueError("the horizon is missing: give horizon_days or horizon_years")
+        if self.horizon_days is not None and self.horizon_years is not None:
+            raise ValueError("give the horizon once: horizon_days or horizon_years, not both")
+        return self
+
+
+FollowupEnd = Literal["death", "end_of_data", "lost_contact", "deregistration", "horizon"]
+
+
+class Followup(Model):
+    """What ends follow-up; the order of ``end_at`` breaks ties between reasons.
+
+    ``incomplete: exclude`` removes patients whose follow-up ends before the horizon for a
+    reason other than death (one more attrition line); ``censor`` keeps them.
+    """
+
+    end_at: tuple[FollowupEnd, ...] = ("death", "end_of_data", "lost_contact", "horizon")
+    lost_contact_after_days: NonNegativeInt | None = None
+    incomplete: Literal["censor", "exclude"] = "censor"
+
+    @model_validator(mode="after")
+    def _consistent(self) -> Self:
+        if len(set(self.end_at)) != len(self.end_at):
+            raise ValueError("a follow-up end reason is listed twice")
+        if "horizon" not in self.end_at:
+            raise ValueError("follow-up must end at the horizon: add 'horizon' to end_at")
+        if ("lost_contact" in self.end_at) != (self.lost_contact_after_days is not None):
+            raise ValueError("lost_contact in end_at and lost_contact_after_days go together")
+        return self
+
+
+class Output(Model):
+    """Where results go and which counts are too small to show."""
+
+    folder: Path
+    small_cell_threshold: PositiveInt = 5
+
+
+class EngineSettings(Model):
+    """Engine resources; the command line can override them."""
+
+    threads: PositiveInt | None = None
+    memory_limit: (
+        Annotated[str, Field(pattern=r"^\d+(\.\d+)?\s*(KB|MB|GB|TB|KiB|MiB|GiB|TiB)$")] | None
+    ) = None
+
+
+class CharlsonSpec(Model):
+    """The Charlson index: which weights, and which code systems' Quan (2005) lists to use."""
+
+    weights: Literal["charlson_1987", "quan_2011"]
+    codes: tuple[Literal["ICD10", "ICD9"], ...] = ("ICD10", "ICD9")
+
+    @field_validator("codes")
+    @classmethod
+    def _some_codes(cls, value: tuple[str, ...]) -> tuple[str, ...]:
+        if not value:
+            raise ValueError("name at least one code system")
+        return value
+
+
+class Covariate(Model):
+    """One baseline covariate of the analysis table; exactly one kind key is set.
+
+    - ``condition``: true when the condition's onset is on or before the index date;
+    - ``latest`` / ``mean`` / ``minimum`` / ``maximum``: a measure's values in ``window``
+      (``latest`` also gives the value's date and whether it was derived);
+    - ``count``: evidence rows in ``window`` (0 when none);
+    - ``days_since_first_evidence``: days from a condition's first evidence to index;
+    - ``charlson``: the Charlson index from Quan 2005 codes over all history, with the weights.
+    """
+
+    condition: Name | None = None
+    latest: str | None = None
+    mean: str | None = None
+    minimum: str | None = None
+    maximum: str | None = None
+    count: Evidence | None = None
+    days_since_first_evidence: Name | None = None
+    charlson: CharlsonSpec | None = None
+    window: Window | None = None
+
+    _window = field_validator("window")(classmethod(lambda cls, v: _check_window(v)))
+    _plain = field_validator("count")(classmethod(lambda cls, v: _plain_evidence(v)))
+
+    @field_validator("latest", "mean", "minimum", "maximum")
+    @classmethod
+    def _numeric_measure(cls, value: str | None) -> str | None:
+        if value is None:
+            return None
+        measure = MEASURES.get(value)
+        if measure is None:
+            raise ValueError(f"unknown measure '{value}'; known: {', '.join(sorted(MEASURES))}")
+        if measure.is_coded:
+            raise ValueError(
+                f"{value} is a coded measure with no canonical unit; only numeric measures "
+                "have values to summarise"
+            )
+        return value
+
+    @model_validator(mode="after")
+    def _one_kind(self) -> Self:
+        _exactly_one(self, COVARIATE_KINDS, "each covariate")
+        if self.window is not None and self.kind not in WINDOWED_KINDS:
+            raise ValueError(f"window applies to {', '.join(WINDOWED_KINDS)} only")
+        return self
+
+    @property
+    def kind(self) -> str:
+        """The covariate's kind key."""
+        return next(k for k in COVARIATE_KINDS if getattr(self, k) is not None)
+
+    @property
+    def span(self) -> Window:
+        """The window, all history up to index when not given."""
+        return self.window or (None, 0)
+
+
+COVARIATE_KINDS = (
+    "condition",
+    "latest",
+    "mean",
+    "minimum",
+    "maximum",
+    "count",
+    "days_since_first_evidence",
+    "charlson",
+)
+WINDOWED_KINDS = ("latest", "mean", "minimum", "maximum", "count")
+
+
+class RuleChange(Model):
+    """New window settings for one rule of a definition, used by one study only."""
+
+    within_days: NonNegativeInt | None = None
+    apart_at_least_days: NonNegativeInt | None = None
+    distinct_days: bool | None = None
+
+
+RESERVED_COLUMNS = ("patient_id", "index_date", "age_at_index", "sex")
+
+
+class Study(Model):
+    """A study design: source, index, eligibility, outcomes, follow-up and output.
+
+    ``definition_changes`` adjusts a definition's rule windows for this study only, by
+    condition and rule name, without copying the definition file.
+    """
+
+    study: Name
+    title: str
+    extract: Path
+    definitions: Path = Path("../conditions")
+    definition_changes: dict[Name, dict[str, RuleChange]] = Field(default_factory=dict)
+    end_of_data: dt.date
+    index: IndexRule
+    eligibility: tuple[Criterion, ...] = ()
+    covariates: dict[Name, Covariate] = Field(default_factory=dict)
+    outcomes: Outcomes
+    followup: Followup
+    output: Output
+    engine: EngineSettings = EngineSettings()
+
+    @field_validator("covariates")
+    @classmethod
+    def _no_reserved_names(cls, value: dict[str, Covariate]) -> dict[str, Covariate]:
+        clash = sorted(set(value) & set(RESERVED_COLUMNS))
+        if clash:
+            raise ValueError(f"covariate name(s) {', '.join(clash)} are analysis-table columns")
+        return value
+
+    @model_validator(mode="after")
+    def _one_charlson_code_basis(self) -> Self:
+        bases = {c.charlson.codes for c in self.covariates.values() if c.charlson}
+        if len(bases) > 1:
+            raise ValueError("Charlson covariates of one study must use the same code systems")
+        return self
+
+    @model_validator(mode="after")
+    def _index_within_data(self) -> Self:
+        if self.index.last_possible > self.end_of_data:
+            raise ValueError("the index window ends after end_of_data")
+        return self
