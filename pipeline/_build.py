@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import datetime as dt
 import platform
+import tempfile
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from importlib.metadata import PackageNotFoundError, version
 from pathlib import Path
@@ -13,7 +15,13 @@ from pipeline.config import LoadedStudy, load_study
 from pipeline.engine import DuckDBEngine, RunResult
 from pipeline.engine._duckdb import StageCallback
 from pipeline.extract import discover_extract
-from pipeline.outputs import write_outputs
+from pipeline.outputs import (
+    changed_inputs,
+    describe_files,
+    read_manifest,
+    sha256_file,
+    write_outputs,
+)
 
 
 def tool_version() -> str:
@@ -67,26 +75,37 @@ def build_study(
     extract = (options.extract or study.extract).resolve()
     out = (options.out or study.output.folder).resolve()
     tables = discover_extract(extract, plan.sources)
+    threads = options.threads or study.engine.threads
     engine = DuckDBEngine(
-        threads=options.threads or study.engine.threads,
-        memory_limit=options.memory_limit or study.engine.memory_limit,
+        threads=threads, memory_limit=options.memory_limit or study.engine.memory_limit
     )
-    started = dt.datetime.now(dt.UTC)
-    run = engine.run(plan, tables, on_stage=on_stage)
-    finished = dt.datetime.now(dt.UTC)
-    cohort = run.outputs["cohort"]
+    extract_files = [f for table in tables.values() for f in table.files]
+    with ThreadPoolExecutor(max_workers=1) as hasher:
+        # Hashing the extract overlaps with the engine's work instead of adding to it.
+        hashed_extract = hasher.submit(describe_files, extract_files)
+        started = dt.datetime.now(dt.UTC)
+        run = engine.run(plan, tables, on_stage=on_stage)
+        finished = dt.datetime.now(dt.UTC)
+        extract_entries = hashed_extract.result()
+    manifest = {
+        "tool_version": tool_version(),
+        "engine": {"name": run.engine, "version": run.engine_version, "threads": threads},
+        "python": platform.python_version(),
+        "study": describe_files([loaded.file]),
+        "definitions": describe_files(loaded.catalog.files.values()),
+        "extract": extract_entries,
+        "extract_folder": str(extract),
+        "plan_hash": plan.content_hash(),
+        "rows": {"cohort": run.outputs["cohort"].num_rows},
+    }
     run_info = {
         "study": study.study,
         "study_file": str(loaded.file),
         "extract": str(extract),
-        "tool_version": tool_version(),
-        "engine": {"name": run.engine, "version": run.engine_version},
-        "python": platform.python_version(),
-        "plan_hash": plan.content_hash(),
         "started_utc": started.isoformat(timespec="seconds"),
         "finished_utc": finished.isoformat(timespec="seconds"),
         "counts": {
-            "cohort_patients": cohort.num_rows,
+            "cohort_patients": run.outputs["cohort"].num_rows,
             "attrition": run.outputs["attrition"].select(["step", "remaining"]).to_pylist(),
         },
         "stages": [
@@ -96,9 +115,57 @@ def build_study(
     }
     files = write_outputs(
         out,
-        cohort=cohort,
+        cohort=run.outputs["cohort"],
         attrition=run.outputs["attrition"],
         columns=plan.columns,
+        manifest=manifest,
         run_info=run_info,
     )
     return BuildResult(out, files, plan, run)
+
+
+@dataclass(frozen=True)
+class VerifyResult:
+    """What ``verify`` found: changed inputs and output files that differ on rebuild."""
+
+    changed_inputs: list[str]
+    differing_outputs: list[str]
+
+    @property
+    def identical(self) -> bool:
+        """Whether the rebuild reproduced every output file bit for bit."""
+        return not self.changed_inputs and not self.differing_outputs
+
+
+def verify_output(folder: Path) -> VerifyResult:
+    """Rebuild an output folder from its manifest in a temporary folder and compare.
+
+    Raises:
+        AscertainError: The folder has no manifest, or the rebuild fails.
+    """
+    manifest = read_manifest(folder)
+    changes = changed_inputs(manifest)
+    study_file = Path(manifest["study"][0]["path"])
+    if not study_file.is_file():
+        return VerifyResult(changes, [])
+    with tempfile.TemporaryDirectory(prefix="ascertain-verify-") as scratch:
+        rebuilt = Path(scratch) / "out"
+        options = BuildOptions(
+            extract=Path(manifest["extract_folder"]),
+            out=rebuilt,
+            threads=manifest["engine"].get("threads"),
+        )
+        build_study(study_file, options)
+        again = read_manifest(rebuilt)
+    differing = [
+        name
+        for name in sorted(set(manifest["outputs"]) | set(again["outputs"]))
+        if manifest["outputs"].get(name) != again["outputs"].get(name)
+    ]
+    for name in sorted(manifest["outputs"]):
+        path = folder / name
+        if not path.is_file() or sha256_file(path) != manifest["outputs"][name]:
+            differing.append(f"{name} (the file in the folder no longer matches the manifest)")
+    if again["plan_hash"] != manifest["plan_hash"]:
+        differing.append("the plan (the study or a definition compiles differently now)")
+    return VerifyResult(changes, differing)

@@ -17,7 +17,7 @@ import typer
 from rich.console import Console
 from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
 
-from pipeline._build import BuildOptions, build_study, plan_study
+from pipeline._build import BuildOptions, build_study, plan_study, verify_output
 from pipeline.compile import Stage
 from pipeline.config._check import check_paths, explain_condition
 from pipeline.errors import AscertainError
@@ -175,3 +175,21 @@ def check(
         console.print(str(problem), markup=False)
     console.print(f"{len(report.files)} files checked, {len(report.problems)} problems")
     raise typer.Exit(report.exit_code)
+
+
+@app.command()
+def verify(
+    output: Annotated[Path, typer.Argument(help="An output folder written by build.")],
+    debug: DebugOpt = False,
+) -> None:
+    """Rebuild an output folder from its manifest and report whether it is identical."""
+    result = _fail_cleanly(lambda: verify_output(output), debug=debug)
+    console = Console(highlight=False, soft_wrap=True)
+    for line in result.changed_inputs:
+        console.print(f"changed input: {line}", markup=False)
+    for name in result.differing_outputs:
+        console.print(f"differs: {name}", markup=False)
+    if result.identical:
+        console.print(f"identical: {output} rebuilt bit for bit from its manifest")
+        return
+    raise typer.Exit(1)

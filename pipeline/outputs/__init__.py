@@ -1,5 +1,27 @@
-"""Writing a run's outputs: the analysis table, the attrition log and the run record."""
+"""Writing a run's outputs: analysis table, attrition log, dictionary, manifest, run record."""
 
-from pipeline.outputs._write import ATTRITION_COLUMNS, write_outputs, write_parquet
+from pipeline.outputs._manifest import (
+    MANIFEST,
+    changed_inputs,
+    describe_files,
+    read_manifest,
+    sha256_file,
+)
+from pipeline.outputs._write import (
+    ATTRITION_COLUMNS,
+    DATA_FILES,
+    write_outputs,
+    write_parquet,
+)
 
-__all__ = ["ATTRITION_COLUMNS", "write_outputs", "write_parquet"]
+__all__ = [
+    "ATTRITION_COLUMNS",
+    "DATA_FILES",
+    "MANIFEST",
+    "changed_inputs",
+    "describe_files",
+    "read_manifest",
+    "sha256_file",
+    "write_outputs",
+    "write_parquet",
+]

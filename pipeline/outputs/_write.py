@@ -17,6 +17,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from pipeline.compile import ColumnDoc
+from pipeline.outputs._manifest import MANIFEST, sha256_file
 
 ATTRITION_COLUMNS = ("step", "description", "patients_before", "removed", "remaining")
 
@@ -92,12 +93,14 @@ def write_outputs(
     cohort: pa.Table,
     attrition: pa.Table,
     columns: tuple[ColumnDoc, ...],
+    manifest: dict[str, Any],
     run_info: dict[str, Any],
 ) -> list[Path]:
-    """Write the cohort, attrition log, data dictionary and run record into ``target``.
+    """Write the cohort, attrition log, data dictionary, manifest and run record.
 
     Files are written to a hidden sibling folder first and moved into place together, so a
-    failed run never leaves a half-written output folder.
+    failed run never leaves a half-written output folder. The manifest gets the hash of every
+    data file; ``run.json`` (when and how long) is the only file that differs between runs.
 
     Returns:
         The paths written, in a fixed order.
@@ -108,10 +111,14 @@ def write_outputs(
         write_parquet(cohort, staged / "cohort.parquet")
         write_attrition(attrition, staged / "attrition.csv")
         write_dictionary(columns, staged)
+        hashed = {name: sha256_file(staged / name) for name in DATA_FILES}
+        write_json({**manifest, "outputs": hashed}, staged / MANIFEST)
         write_json(run_info, staged / "run.json")
         replace_folder(staged, target)
     except BaseException:
         shutil.rmtree(staged, ignore_errors=True)
         raise
-    names = ("cohort.parquet", "attrition.csv", "dictionary.csv", "dictionary.md", "run.json")
-    return [target / name for name in names]
+    return [target / name for name in (*DATA_FILES, MANIFEST, "run.json")]
+
+
+DATA_FILES = ("cohort.parquet", "attrition.csv", "dictionary.csv", "dictionary.md")
