@@ -50,6 +50,7 @@ def test_output_files(built: Path) -> None:
         "cohort.parquet",
         "dictionary.csv",
         "dictionary.md",
+        "manifest.json",
         "run.json",
     ]
 

@@ -35,7 +35,7 @@ def _verify(out: Path) -> tuple[int, str]:
 
 
 def test_manifest_lists_inputs_outputs_and_versions(workspace: tuple[Path, Path, Path]) -> None:
-    study, extract, out = workspace
+    study, _, out = workspace
     manifest = json.loads((out / "manifest.json").read_text(encoding="utf-8"))
     assert manifest["study"][0]["path"] == str(study)
     assert {Path(e["path"]).name for e in manifest["extract"]} == {
