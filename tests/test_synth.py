@@ -120,8 +120,17 @@ def test_parquet_schemas(extract: Path) -> None:
         assert [(f.name, f.type) for f in schema] == columns, name
 
 
+def _readable(text: str) -> bool:
+    try:
+        date.fromisoformat(text)
+    except ValueError:
+        return False
+    return re.fullmatch(r"\d{4}-\d{2}-\d{2}", text) is not None
+
+
 def test_csv_has_the_same_columns_and_iso_dates(tmp_path: Path) -> None:
     summary = generate_extract(tmp_path / "csv", patients=300, seed=3, file_format="csv")
+    spoiled = dated = 0
     for name in TABLES:
         path = tmp_path / "csv" / f"{name}.csv"
         header = path.read_text(encoding="utf-8").splitlines()[0]
@@ -134,9 +143,18 @@ def test_csv_has_the_same_columns_and_iso_dates(tmp_path: Path) -> None:
         )
         assert table.num_rows == summary.rows[name]
         if name in DATE_COLUMN:
-            dates = set(table.column(DATE_COLUMN[name]).to_pylist())
-            assert all(re.fullmatch(r"\d{4}-\d{2}-\d{2}", d) for d in dates)
+            dates = table.column(DATE_COLUMN[name]).to_pylist()
+            bad = [d for d in dates if not _readable(d)]
+            # the two unreadable shapes: month pushed past 12, or day-first
+            assert all(
+                re.fullmatch(r"\d{4}-(1[3-9]|2[0-4])-\d{2}|\d{2}/\d{2}/\d{4}", d) for d in bad
+            )
+            spoiled += len(bad)
+            dated += len(dates)
     assert (tmp_path / "csv" / "truth.parquet").exists()
+    rate = Scenario().p_unreadable_date_row
+    low, high = _rate_ci(spoiled, dated)  # statsmodels proportion_confint, 99.9 % Wilson
+    assert low <= rate <= high
 
 
 def test_summary_counts_match_files(extract: Path, tmp_path: Path) -> None:
@@ -167,13 +185,22 @@ def test_patient_ids_and_practices(con: duckdb.DuckDBPyConnection) -> None:
 
 
 def test_icd_system_follows_the_switch_date(con: duckdb.DuckDBPyConnection) -> None:
-    wrong = _scalar(
+    icd10 = {c.replace(".", "") for c in Scenario().other_dx_icd10}
+    for cond in Scenario().conditions.values():
+        icd10 |= {c.replace(".", "") for c in cond.icd10}
+    early = _scalar(
         con,
-        """SELECT count(*) FROM diagnoses WHERE
-        (code_system = 'ICD9' AND event_date >= DATE '2013-01-01') OR
-        (code_system = 'ICD10' AND event_date < DATE '2013-01-01')""",
+        "SELECT count(*) FROM diagnoses WHERE code_system = 'ICD10' "
+        "AND event_date < DATE '2013-01-01'",
     )
-    assert wrong == 0
+    assert early == 0
+    # after the switch, rows labelled ICD9 are ICD-10 codes mislabelled at a stated rate
+    late = con.execute(
+        "SELECT DISTINCT upper(replace(code, '.', '')) FROM diagnoses "
+        "WHERE code_system = 'ICD9' AND event_date >= DATE '2013-01-01'"
+    ).fetchall()
+    assert late
+    assert {r[0] for r in late} <= icd10
 
 
 def test_mess_is_present(con: duckdb.DuckDBPyConnection) -> None:

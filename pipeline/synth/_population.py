@@ -14,7 +14,7 @@ import numpy as np
 from pipeline.synth._scenario import CONDITIONS, Scenario, draw_frank_copula
 
 NEVER = np.int64(2**31 - 1)
-"""Sentinel day number for a date that does not happen (later than any real date)."""
+"""Marker day number for a date that does not happen (later than any real date)."""
 
 DAYS_PER_YEAR = 365.25
 
