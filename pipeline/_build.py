@@ -10,10 +10,13 @@ from dataclasses import dataclass
 from importlib.metadata import PackageNotFoundError, version
 from pathlib import Path
 
+import pyarrow as pa
+
 from pipeline.compile import Plan, compile_study
 from pipeline.config import LoadedStudy, load_study
 from pipeline.engine import DuckDBEngine, RunResult
 from pipeline.engine._duckdb import StageCallback
+from pipeline.errors import EngineError
 from pipeline.extract import discover_extract
 from pipeline.outputs import (
     changed_inputs,
@@ -87,6 +90,7 @@ def build_study(
         run = engine.run(plan, tables, on_stage=on_stage)
         finished = dt.datetime.now(dt.UTC)
         extract_entries = hashed_extract.result()
+    quality = check_row_accounting(run.outputs["quality"], run.outputs["rows_read"])
     manifest = {
         "tool_version": tool_version(),
         "engine": {"name": run.engine, "version": run.engine_version, "threads": threads},
@@ -96,7 +100,10 @@ def build_study(
         "extract": extract_entries,
         "extract_folder": str(extract),
         "plan_hash": plan.content_hash(),
-        "rows": {"cohort": run.outputs["cohort"].num_rows},
+        "rows": {
+            "cohort": run.outputs["cohort"].num_rows,
+            **{row["source_table"]: row["n_rows"] for row in run.outputs["rows_read"].to_pylist()},
+        },
     }
     run_info = {
         "study": study.study,
@@ -104,6 +111,7 @@ def build_study(
         "extract": str(extract),
         "started_utc": started.isoformat(timespec="seconds"),
         "finished_utc": finished.isoformat(timespec="seconds"),
+        "quality": quality,
         "counts": {
             "cohort_patients": run.outputs["cohort"].num_rows,
             "attrition": run.outputs["attrition"].select(["step", "remaining"]).to_pylist(),
@@ -117,11 +125,34 @@ def build_study(
         out,
         cohort=run.outputs["cohort"],
         attrition=run.outputs["attrition"],
+        quality=run.outputs["quality"],
         columns=plan.columns,
         manifest=manifest,
         run_info=run_info,
     )
     return BuildResult(out, files, plan, run)
+
+
+def check_row_accounting(quality: pa.Table, rows_read: pa.Table) -> dict[str, dict[str, int]]:
+    """Check used + set aside = read for every table; return the per-table summary.
+
+    Raises:
+        EngineError: A table's rows do not add up (a defect of the tool, never of the data).
+    """
+    read = {row["source_table"]: row["n_rows"] for row in rows_read.to_pylist()}
+    summary: dict[str, dict[str, int]] = {
+        table: {"read": n, "used": 0, "set_aside": 0} for table, n in read.items()
+    }
+    for row in quality.to_pylist():
+        key = "used" if row["outcome"] == "used" else "set_aside"
+        summary[row["source_table"]][key] += row["n_rows"]
+    for table, counts in summary.items():
+        if counts["used"] + counts["set_aside"] != counts["read"]:
+            raise EngineError(
+                f"row accounting failed for {table}: read {counts['read']:,}, used "
+                f"{counts['used']:,}, set aside {counts['set_aside']:,}"
+            )
+    return summary
 
 
 @dataclass(frozen=True)

@@ -50,6 +50,7 @@ def test_manifest_lists_inputs_outputs_and_versions(workspace: tuple[Path, Path,
         "cohort.parquet",
         "dictionary.csv",
         "dictionary.md",
+        "quality.csv",
     ]
     assert manifest["engine"]["name"] == "duckdb"
     assert len(manifest["plan_hash"]) == 64
@@ -117,5 +118,5 @@ def test_two_builds_with_1_and_2_threads_are_byte_identical(
         ],
     )
     assert result.exit_code == 0, result.output
-    for name in ("cohort.parquet", "attrition.csv", "dictionary.csv", "dictionary.md"):
+    for name in ("cohort.parquet", "attrition.csv", "quality.csv", "dictionary.csv"):
         assert (again / name).read_bytes() == (out / name).read_bytes(), name

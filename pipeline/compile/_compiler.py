@@ -10,6 +10,7 @@ from pipeline.compile._dictionary import dictionary
 from pipeline.compile._evidence import evidence_stages
 from pipeline.compile._measurements import measurement_stages
 from pipeline.compile._plan import Plan, Stage
+from pipeline.compile._quality import quality_stages
 from pipeline.compile._rules import rule_stages
 from pipeline.compile._sources import source_stages, source_tables
 from pipeline.config import LoadedStudy
@@ -23,6 +24,7 @@ PASSES: tuple[Pass, ...] = (
     evidence_stages,
     rule_stages,
     cohort_stages,
+    quality_stages,
 )
 
 
@@ -41,6 +43,8 @@ def compile_study(loaded: LoadedStudy) -> Plan:
         outputs=(
             ("cohort", "cohort", ("patient_id",)),
             ("attrition", "attrition", ("step_number",)),
+            ("quality", "quality_log", ("source_table", "outcome", "reason")),
+            ("rows_read", "rows_read", ("source_table",)),
         ),
         columns=dictionary(ctx),
     )

@@ -34,7 +34,7 @@ FROM (
     AND c.prefix = e.probe
     AND (c.source IS NULL OR c.source = e.source)
     AND (c.min_days IS NULL OR e.duration_days >= c.min_days)
-  GROUP BY e.patient_id, e.event_date, e.code_system, e.code, e.source, c.evidence
+  GROUP BY e.patient_id, e.event_date, e.code_system, e.code, e.source, e.duration_days, c.evidence
   HAVING NOT BOOL_OR(c.is_exclusion)
 ) AS matched
 GROUP BY patient_id, evidence, event_date

@@ -13,6 +13,7 @@ from sqlglot import exp
 
 from pipeline.compile._context import CompileContext
 from pipeline.compile._plan import Stage
+from pipeline.compile._sources import MEASUREMENTS, grouped_rows
 from pipeline.compile._sql import age_in_years, is_in, query, values_table
 from pipeline.measures import DERIVED_FROM, MEASURES, conversion_rows
 
@@ -28,8 +29,9 @@ WITH read AS (
     LOWER(TRIM(CAST(measure AS VARCHAR))) AS measure,
     NULLIF(TRIM(CAST(value AS VARCHAR)), '') AS value_given,
     NULLIF(TRIM(CAST(value_text AS VARCHAR)), '') AS text_given,
-    NULLIF(TRIM(CAST(unit AS VARCHAR)), '') AS unit_given
-  FROM src_measurements
+    NULLIF(TRIM(CAST(unit AS VARCHAR)), '') AS unit_given,
+    copies
+  FROM :distinct_rows
 ), split AS (
   SELECT
     *,
@@ -54,7 +56,8 @@ WITH read AS (
     value_given IS NULL AND text_unit IS NOT NULL AND unit_given IS NOT NULL
       AND text_unit <> unit_given AS unit_conflict,
     value_given IS NULL AND text_given IS NULL AS empty,
-    CASE WHEN value_given IS NULL THEN LOWER(text_given) END AS category
+    CASE WHEN value_given IS NULL THEN LOWER(text_given) END AS category,
+    copies
   FROM split
 )
 SELECT
@@ -62,7 +65,8 @@ SELECT
   r.obs_date,
   r.measure,
   r.qualifier,
-  r.category,
+  CASE WHEN k.is_coded THEN r.category END AS category,
+  r.copies,
   u.factor * r.reading / u.divisor + u.offset_value AS value,
   CASE
     WHEN p.patient_id IS NULL THEN 'orphan patient'
@@ -179,9 +183,10 @@ def measurement_stages(ctx: CompileContext) -> tuple[Stage, ...]:
                 known=known,
                 units=units,
                 known_category=known_category,
+                distinct_rows=grouped_rows(MEASUREMENTS).subquery("d"),
             ),
             ("src_measurements", "patient_base"),
-            "every measurement row parsed and converted, with the problem that stops its use",
+            "every distinct measurement row parsed and converted, with what stops its use",
             kind="view",
         ),
         Stage(

@@ -36,6 +36,15 @@ MEASUREMENTS = SourceTable(
 )
 
 
+def grouped_rows(table: SourceTable) -> exp.Query:
+    """Distinct rows of a source table with how many copies of each the extract holds."""
+    return (
+        exp.select(*table.columns, exp.func("COUNT", exp.Star()).as_("copies"))
+        .from_(table.relation)
+        .group_by(*table.columns)
+    )
+
+
 def source_tables(ctx: CompileContext) -> tuple[SourceTable, ...]:
     """The extract tables this study reads."""
     tables = [PATIENTS, ENCOUNTERS]

@@ -35,13 +35,21 @@ def write_parquet(table: pa.Table, path: Path) -> None:
     )
 
 
-def write_attrition(table: pa.Table, path: Path) -> None:
-    """Write the attrition log as CSV with the columns a reader expects, in step order."""
-    rows = table.select(list(ATTRITION_COLUMNS)).to_pylist()
+QUALITY_COLUMNS = ("source_table", "outcome", "reason", "n_rows")
+
+
+def write_csv(table: pa.Table, columns: tuple[str, ...], path: Path) -> None:
+    """Write some columns of a table as CSV, in the table's row order."""
+    rows = table.select(list(columns)).to_pylist()
     with path.open("w", encoding="utf-8", newline="") as handle:
-        writer = csv.DictWriter(handle, fieldnames=ATTRITION_COLUMNS, lineterminator="\n")
+        writer = csv.DictWriter(handle, fieldnames=columns, lineterminator="\n")
         writer.writeheader()
         writer.writerows(rows)
+
+
+def write_attrition(table: pa.Table, path: Path) -> None:
+    """Write the attrition log as CSV with the columns a reader expects, in step order."""
+    write_csv(table, ATTRITION_COLUMNS, path)
 
 
 DICTIONARY_COLUMNS = ("column", "type", "unit", "meaning", "computed", "sources")
@@ -92,6 +100,7 @@ def write_outputs(
     *,
     cohort: pa.Table,
     attrition: pa.Table,
+    quality: pa.Table,
     columns: tuple[ColumnDoc, ...],
     manifest: dict[str, Any],
     run_info: dict[str, Any],
@@ -110,6 +119,7 @@ def write_outputs(
     try:
         write_parquet(cohort, staged / "cohort.parquet")
         write_attrition(attrition, staged / "attrition.csv")
+        write_csv(quality, QUALITY_COLUMNS, staged / "quality.csv")
         write_dictionary(columns, staged)
         hashed = {name: sha256_file(staged / name) for name in DATA_FILES}
         write_json({**manifest, "outputs": hashed}, staged / MANIFEST)
@@ -121,4 +131,10 @@ def write_outputs(
     return [target / name for name in (*DATA_FILES, MANIFEST, "run.json")]
 
 
-DATA_FILES = ("cohort.parquet", "attrition.csv", "dictionary.csv", "dictionary.md")
+DATA_FILES = (
+    "cohort.parquet",
+    "attrition.csv",
+    "quality.csv",
+    "dictionary.csv",
+    "dictionary.md",
+)

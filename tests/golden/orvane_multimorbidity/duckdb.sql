@@ -1,4 +1,4 @@
--- plan for study orvane_multimorbidity (26 stages, dialect duckdb)
+-- plan for study orvane_multimorbidity (28 stages, dialect duckdb)
 
 -- reads src_patients: patient_id, sex, death_date, birth_date, birth_year, practice_id, registration_date, deregistration_date
 
@@ -111,7 +111,7 @@ WHERE
     p.death_date IS NULL OR r.event_date <= p.death_date
   );
 
--- stage measurement_rows [view]: every measurement row parsed and converted, with the problem that stops its use
+-- stage measurement_rows [view]: every distinct measurement row parsed and converted, with what stops its use
 -- reads: src_measurements, patient_base
 WITH read AS (
   SELECT
@@ -120,8 +120,26 @@ WITH read AS (
     LOWER(TRIM(CAST(measure AS TEXT))) AS measure,
     NULLIF(TRIM(CAST(value AS TEXT)), '') AS value_given,
     NULLIF(TRIM(CAST(value_text AS TEXT)), '') AS text_given,
-    NULLIF(TRIM(CAST(unit AS TEXT)), '') AS unit_given
-  FROM src_measurements
+    NULLIF(TRIM(CAST(unit AS TEXT)), '') AS unit_given,
+    copies
+  FROM (
+    SELECT
+      patient_id,
+      obs_date,
+      measure,
+      unit,
+      value,
+      value_text,
+      COUNT(*) AS copies
+    FROM src_measurements
+    GROUP BY
+      patient_id,
+      obs_date,
+      measure,
+      unit,
+      value,
+      value_text
+  ) AS d
 ), split AS (
   SELECT
     *,
@@ -159,7 +177,8 @@ WITH read AS (
     AND NOT unit_given IS NULL
     AND text_unit <> unit_given AS unit_conflict,
     value_given IS NULL AND text_given IS NULL AS empty,
-    CASE WHEN value_given IS NULL THEN LOWER(text_given) END AS category
+    CASE WHEN value_given IS NULL THEN LOWER(text_given) END AS category,
+    copies
   FROM split
 )
 SELECT
@@ -167,7 +186,8 @@ SELECT
   r.obs_date,
   r.measure,
   r.qualifier,
-  r.category,
+  CASE WHEN k.is_coded THEN r.category END AS category,
+  r.copies,
   u.factor * r.reading / u.divisor + u.offset_value AS value,
   CASE
     WHEN p.patient_id IS NULL
@@ -737,6 +757,7 @@ FROM (
     e.code_system,
     e.code,
     e.source,
+    e.duration_days,
     c.evidence
   HAVING
     NOT BOOL_OR(CAST(c.is_exclusion AS BOOLEAN))
@@ -1847,3 +1868,286 @@ LEFT JOIN measure_covariates AS m
   ON m.patient_id = f.patient_id
 WHERE
   f.step_1 AND f.step_2 AND f.step_3 AND f.step_4 AND f.step_5;
+
+-- stage rows_read [table]: rows read per extract table, counted on their own to check the quality log
+-- reads: src_diagnoses, src_encounters, src_measurements, src_patients, src_prescriptions
+SELECT
+  'patients' AS source_table,
+  CAST(COUNT(*) AS BIGINT) AS n_rows
+FROM src_patients
+UNION ALL
+SELECT
+  'encounters' AS source_table,
+  CAST(COUNT(*) AS BIGINT) AS n_rows
+FROM src_encounters
+UNION ALL
+SELECT
+  'diagnoses' AS source_table,
+  CAST(COUNT(*) AS BIGINT) AS n_rows
+FROM src_diagnoses
+UNION ALL
+SELECT
+  'prescriptions' AS source_table,
+  CAST(COUNT(*) AS BIGINT) AS n_rows
+FROM src_prescriptions
+UNION ALL
+SELECT
+  'measurements' AS source_table,
+  CAST(COUNT(*) AS BIGINT) AS n_rows
+FROM src_measurements;
+
+-- stage quality_log [table]: every extract row: used, or set aside with the first reason that applies
+-- reads: measurement_rows, patient_base, src_diagnoses, src_encounters, src_patients, src_prescriptions
+WITH summary AS (
+  SELECT
+    reason,
+    'patients' AS source_table,
+    SUM(1) AS distinct_rows,
+    SUM(copies - 1) AS duplicates
+  FROM (
+    SELECT
+      CASE WHEN patient_id IS NULL THEN 'missing patient_id' ELSE 'used' END AS reason,
+      copies
+    FROM (
+      SELECT
+        patient_id,
+        sex,
+        death_date,
+        birth_date,
+        birth_year,
+        practice_id,
+        registration_date,
+        deregistration_date,
+        COUNT(*) AS copies
+      FROM src_patients
+      GROUP BY
+        patient_id,
+        sex,
+        death_date,
+        birth_date,
+        birth_year,
+        practice_id,
+        registration_date,
+        deregistration_date
+    ) AS g
+  ) AS c
+  GROUP BY
+    reason
+  UNION ALL
+  SELECT
+    reason,
+    'encounters' AS source_table,
+    SUM(1) AS distinct_rows,
+    SUM(copies - 1) AS duplicates
+  FROM (
+    SELECT
+      CASE
+        WHEN p.patient_id IS NULL
+        THEN 'orphan patient'
+        WHEN r.row_date IS NULL
+        THEN 'unparseable date'
+        WHEN NOT NULL IS NULL
+        THEN NULL
+        WHEN r.row_date > CAST('2019-12-31' AS DATE)
+        THEN 'after end of data'
+        WHEN NOT p.death_date IS NULL AND r.row_date > p.death_date
+        THEN 'after death'
+        ELSE 'used'
+      END AS reason,
+      r.copies
+    FROM (
+      SELECT
+        *,
+        TRY_CAST(encounter_date AS DATE) AS row_date
+      FROM (
+        SELECT
+          patient_id,
+          encounter_date,
+          encounter_type,
+          COUNT(*) AS copies
+        FROM src_encounters
+        GROUP BY
+          patient_id,
+          encounter_date,
+          encounter_type
+      ) AS g
+    ) AS r
+    LEFT JOIN patient_base AS p
+      ON p.patient_id = r.patient_id
+  ) AS c
+  GROUP BY
+    reason
+  UNION ALL
+  SELECT
+    reason,
+    'diagnoses' AS source_table,
+    SUM(1) AS distinct_rows,
+    SUM(copies - 1) AS duplicates
+  FROM (
+    SELECT
+      CASE
+        WHEN p.patient_id IS NULL
+        THEN 'orphan patient'
+        WHEN r.row_date IS NULL
+        THEN 'unparseable date'
+        WHEN NOT CASE
+          WHEN NOT UPPER(TRIM(CAST(r.code_system AS TEXT))) IN ('ICD9', 'ICD10')
+          THEN 'unknown code system'
+          WHEN UPPER(TRIM(CAST(r.code_system AS TEXT))) = 'ICD9'
+          AND NOT REGEXP_MATCHES(
+            REPLACE(REPLACE(UPPER(r.code), '.', ''), ' ', ''),
+            '^([0-9]{3}([0-9]{1,2})?|V[0-9]{2}([0-9]{1,2})?|E[0-9]{3}([0-9])?)$'
+          )
+          THEN 'malformed code'
+          WHEN UPPER(TRIM(CAST(r.code_system AS TEXT))) = 'ICD10'
+          AND NOT REGEXP_MATCHES(
+            REPLACE(REPLACE(UPPER(r.code), '.', ''), ' ', ''),
+            '^[A-Z][0-9][0-9A-Z]([0-9A-Z]{1,4})?$'
+          )
+          THEN 'malformed code'
+        END IS NULL
+        THEN CASE
+          WHEN NOT UPPER(TRIM(CAST(r.code_system AS TEXT))) IN ('ICD9', 'ICD10')
+          THEN 'unknown code system'
+          WHEN UPPER(TRIM(CAST(r.code_system AS TEXT))) = 'ICD9'
+          AND NOT REGEXP_MATCHES(
+            REPLACE(REPLACE(UPPER(r.code), '.', ''), ' ', ''),
+            '^([0-9]{3}([0-9]{1,2})?|V[0-9]{2}([0-9]{1,2})?|E[0-9]{3}([0-9])?)$'
+          )
+          THEN 'malformed code'
+          WHEN UPPER(TRIM(CAST(r.code_system AS TEXT))) = 'ICD10'
+          AND NOT REGEXP_MATCHES(
+            REPLACE(REPLACE(UPPER(r.code), '.', ''), ' ', ''),
+            '^[A-Z][0-9][0-9A-Z]([0-9A-Z]{1,4})?$'
+          )
+          THEN 'malformed code'
+        END
+        WHEN r.row_date > CAST('2019-12-31' AS DATE)
+        THEN 'after end of data'
+        WHEN NOT p.death_date IS NULL AND r.row_date > p.death_date
+        THEN 'after death'
+        ELSE 'used'
+      END AS reason,
+      r.copies
+    FROM (
+      SELECT
+        *,
+        TRY_CAST(event_date AS DATE) AS row_date
+      FROM (
+        SELECT
+          patient_id,
+          event_date,
+          code_system,
+          code,
+          source,
+          COUNT(*) AS copies
+        FROM src_diagnoses
+        GROUP BY
+          patient_id,
+          event_date,
+          code_system,
+          code,
+          source
+      ) AS g
+    ) AS r
+    LEFT JOIN patient_base AS p
+      ON p.patient_id = r.patient_id
+  ) AS c
+  GROUP BY
+    reason
+  UNION ALL
+  SELECT
+    reason,
+    'prescriptions' AS source_table,
+    SUM(1) AS distinct_rows,
+    SUM(copies - 1) AS duplicates
+  FROM (
+    SELECT
+      CASE
+        WHEN p.patient_id IS NULL
+        THEN 'orphan patient'
+        WHEN r.row_date IS NULL
+        THEN 'unparseable date'
+        WHEN NOT CASE
+          WHEN NOT REGEXP_MATCHES(
+            REPLACE(REPLACE(UPPER(r.atc), '.', ''), ' ', ''),
+            '^[A-Z]([0-9]{2}([A-Z]([A-Z]([0-9]{2})?)?)?)?$'
+          )
+          THEN 'malformed code'
+        END IS NULL
+        THEN CASE
+          WHEN NOT REGEXP_MATCHES(
+            REPLACE(REPLACE(UPPER(r.atc), '.', ''), ' ', ''),
+            '^[A-Z]([0-9]{2}([A-Z]([A-Z]([0-9]{2})?)?)?)?$'
+          )
+          THEN 'malformed code'
+        END
+        WHEN r.row_date > CAST('2019-12-31' AS DATE)
+        THEN 'after end of data'
+        WHEN NOT p.death_date IS NULL AND r.row_date > p.death_date
+        THEN 'after death'
+        ELSE 'used'
+      END AS reason,
+      r.copies
+    FROM (
+      SELECT
+        *,
+        TRY_CAST(start_date AS DATE) AS row_date
+      FROM (
+        SELECT
+          patient_id,
+          start_date,
+          atc,
+          stop_date,
+          COUNT(*) AS copies
+        FROM src_prescriptions
+        GROUP BY
+          patient_id,
+          start_date,
+          atc,
+          stop_date
+      ) AS g
+    ) AS r
+    LEFT JOIN patient_base AS p
+      ON p.patient_id = r.patient_id
+  ) AS c
+  GROUP BY
+    reason
+  UNION ALL
+  SELECT
+    reason,
+    'measurements' AS source_table,
+    SUM(1) AS distinct_rows,
+    SUM(copies - 1) AS duplicates
+  FROM (
+    SELECT
+      COALESCE(problem, 'used') AS reason,
+      copies
+    FROM measurement_rows
+  ) AS c
+  GROUP BY
+    reason
+)
+SELECT
+  source_table,
+  CASE WHEN reason = 'used' THEN 'used' ELSE 'set aside' END AS outcome,
+  reason,
+  CAST(SUM(n) AS BIGINT) AS n_rows
+FROM (
+  SELECT
+    source_table,
+    reason,
+    distinct_rows AS n
+  FROM summary
+  UNION ALL
+  SELECT
+    source_table,
+    'exact duplicate' AS reason,
+    duplicates AS n
+  FROM summary
+  WHERE
+    duplicates > 0
+) AS counted
+GROUP BY
+  source_table,
+  reason;

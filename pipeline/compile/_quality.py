@@ -1,0 +1,156 @@
+"""The quality log: every extract row is either used or counted under the reason it was not.
+
+Each table is grouped on all its columns once, so exact duplicates are found (the first copy is
+judged, the others are counted as duplicates); each distinct row then gets the first reason that
+applies, in the order the reasons are listed below, or ``used``. A separate count of rows read
+lets the build check that used + set aside = read for every table.
+"""
+
+from __future__ import annotations
+
+from sqlglot import exp
+
+from pipeline.codes import SHAPES, normalised_code_sql
+from pipeline.compile._context import CompileContext
+from pipeline.compile._plan import SourceTable, Stage
+from pipeline.compile._sources import grouped_rows, source_tables
+from pipeline.compile._sql import query, value
+
+# The same shapes definitions are checked against, applied to extract codes (no dots: the
+# extract codes are normalised first).
+_CODE_PATTERNS = {
+    system: pattern.pattern.replace("\\.?", "") for system, (pattern, _) in SHAPES.items()
+}
+
+_DATED = """
+SELECT
+  CASE
+    WHEN p.patient_id IS NULL THEN 'orphan patient'
+    WHEN r.row_date IS NULL THEN 'unparseable date'
+    WHEN :problem IS NOT NULL THEN :problem
+    WHEN r.row_date > :end_of_data THEN 'after end of data'
+    WHEN p.death_date IS NOT NULL AND r.row_date > p.death_date THEN 'after death'
+    ELSE 'used'
+  END AS reason,
+  r.copies
+FROM :rows
+LEFT JOIN patient_base AS p ON p.patient_id = r.patient_id
+"""
+
+_MEASUREMENTS = """
+SELECT COALESCE(problem, 'used') AS reason, copies
+FROM measurement_rows
+"""
+
+_PATIENTS = """
+SELECT CASE WHEN patient_id IS NULL THEN 'missing patient_id' ELSE 'used' END AS reason, copies
+FROM :rows
+"""
+
+_SUMMARY = """
+SELECT reason, :table_name AS source_table, SUM(1) AS distinct_rows, SUM(copies - 1) AS duplicates
+FROM :classified
+GROUP BY reason
+"""
+
+_LOG = """
+SELECT
+  source_table,
+  CASE WHEN reason = 'used' THEN 'used' ELSE 'set aside' END AS outcome,
+  reason,
+  CAST(SUM(n) AS BIGINT) AS n_rows
+FROM (
+  SELECT source_table, reason, distinct_rows AS n FROM summary
+  UNION ALL
+  SELECT source_table, 'exact duplicate' AS reason, duplicates AS n FROM summary
+  WHERE duplicates > 0
+) AS counted
+GROUP BY source_table, reason
+"""
+
+
+def _code_problem(table: str) -> exp.Expression:
+    if table == "prescriptions":
+        code = normalised_code_sql(exp.column("atc", "r"))
+        bad = exp.not_(exp.func("REGEXP_MATCHES", code, value(_CODE_PATTERNS["ATC"])))
+        return exp.Case().when(bad, value("malformed code"))
+    system = exp.Upper(this=exp.Trim(this=exp.cast(exp.column("code_system", "r"), "VARCHAR")))
+    code = normalised_code_sql(exp.column("code", "r"))
+    case = exp.Case().when(
+        exp.not_(system.copy().isin(value("ICD9"), value("ICD10"))), value("unknown code system")
+    )
+    for name in ("ICD9", "ICD10"):
+        malformed = exp.and_(
+            system.copy().eq(name),
+            exp.not_(exp.func("REGEXP_MATCHES", code.copy(), value(_CODE_PATTERNS[name]))),
+        )
+        case = case.when(malformed, value("malformed code"))
+    return case
+
+
+_DATE_COLUMNS = {
+    "encounters": "encounter_date",
+    "diagnoses": "event_date",
+    "prescriptions": "start_date",
+}
+
+
+def _classified(ctx: CompileContext, table: SourceTable) -> exp.Query:
+    grouped = grouped_rows(table).subquery("g")
+    if table.name == "patients":
+        return query(_PATIENTS, rows=grouped)
+    if table.name == "measurements":
+        return query(_MEASUREMENTS)
+    dated = exp.select(
+        exp.Star(),
+        exp.TryCast(this=exp.column(_DATE_COLUMNS[table.name]), to=exp.DataType.build("DATE")).as_(
+            "row_date"
+        ),
+    ).from_(grouped)
+    problem = _code_problem(table.name) if table.name != "encounters" else exp.null()
+    return query(
+        _DATED,
+        rows=dated.subquery("r"),
+        problem=problem,
+        end_of_data=ctx.study.end_of_data,
+    )
+
+
+def quality_stages(ctx: CompileContext) -> tuple[Stage, ...]:
+    """``rows_read``, and ``quality_log``: rows per table, outcome and reason."""
+    tables = source_tables(ctx)
+    read = [
+        exp.select(
+            value(t.name).as_("source_table"),
+            exp.cast(exp.func("COUNT", exp.Star()), "BIGINT").as_("n_rows"),
+        ).from_(t.relation)
+        for t in tables
+    ]
+    summaries = [
+        query(_SUMMARY, table_name=t.name, classified=_classified(ctx, t).subquery("c"))
+        for t in tables
+    ]
+    depends = {t.relation for t in tables if t.name != "measurements"} | {"patient_base"}
+    if any(t.name == "measurements" for t in tables):
+        depends.add("measurement_rows")
+    return (
+        Stage(
+            "rows_read",
+            _union(read),
+            tuple(sorted(t.relation for t in tables)),
+            "rows read per extract table, counted on their own to check the quality log",
+        ),
+        Stage(
+            "quality_log",
+            query(_LOG).with_("summary", as_=_union(summaries)),
+            tuple(sorted(depends)),
+            "every extract row: used, or set aside with the first reason that applies",
+        ),
+    )
+
+
+def _union(parts: list[exp.Query]) -> exp.Query:
+    union = parts[0]
+    for part in parts[1:]:
+        union = union.union(part, distinct=False)
+    return union
