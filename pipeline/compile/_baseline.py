@@ -21,7 +21,7 @@ from pipeline.compile._context import (
 from pipeline.compile._measurements import measure_relations
 from pipeline.compile._plan import Stage
 from pipeline.compile._sql import days_between, is_in
-from pipeline.config import Covariate, Window
+from pipeline.config import Covariate, Evidence, Window
 
 OFFSET = "e_offset"  # event date minus index date, in days
 
@@ -43,16 +43,23 @@ def _count(key: str, window: Window) -> exp.Expression:
     )
 
 
+def _encounter_types(evidence: Evidence) -> tuple[str, ...] | None:
+    """The types an encounter-kind evidence counts (empty: any), or None for other kinds."""
+    if evidence.encounter is None:
+        return None
+    return tuple(t.lower() for t in evidence.encounter.type)
+
+
 def window_columns(ctx: CompileContext) -> list[tuple[str, exp.Expression, tuple[str, ...]]]:
-    """(column, aggregate, evidence keys) for everything ``window_counts`` computes."""
+    """(column, aggregate, evidence keys) for counts read from ``evidence_events``."""
     columns: list[tuple[str, exp.Expression, tuple[str, ...]]] = []
     for i, criterion in enumerate(ctx.study.eligibility, start=1):
-        step = criterion.encounters or criterion.no_evidence
-        if step is not None:
+        rule = criterion.no_evidence
+        if rule is not None and _encounter_types(rule.evidence) is None:
             key = step_key(i)
-            columns.append((f"step_evidence_{i}", _count(key, step.window), (key,)))
+            columns.append((f"step_evidence_{i}", _count(key, rule.window), (key,)))
     for name, covariate in ctx.study.covariates.items():
-        if covariate.count is not None:
+        if covariate.count is not None and _encounter_types(covariate.count) is None:
             key = covariate_key(name)
             columns.append((f"count_{name}", _count(key, covariate.span), (key,)))
     if any(c.charlson for c in ctx.study.covariates.values()):
@@ -76,8 +83,28 @@ def window_columns(ctx: CompileContext) -> list[tuple[str, exp.Expression, tuple
     return columns
 
 
-def window_counts_stage(ctx: CompileContext) -> Stage | None:
-    """``window_counts``: per source patient, evidence counts in windows around the index."""
+def encounter_columns(ctx: CompileContext) -> list[tuple[str, Window, tuple[str, ...]]]:
+    """(column, window, types) for counts of encounters, read straight from the encounters.
+
+    Counting encounters through ``evidence_events`` would copy the whole encounters table into
+    it; counting them here touches only the encounters inside the windows.
+    """
+    columns: list[tuple[str, Window, tuple[str, ...]]] = []
+    for i, criterion in enumerate(ctx.study.eligibility, start=1):
+        if criterion.encounters is not None:
+            columns.append((f"step_evidence_{i}", criterion.encounters.window, ()))
+        if criterion.no_evidence is not None:
+            types = _encounter_types(criterion.no_evidence.evidence)
+            if types is not None:
+                columns.append((f"step_evidence_{i}", criterion.no_evidence.window, types))
+    for name, covariate in ctx.study.covariates.items():
+        types = _encounter_types(covariate.count) if covariate.count is not None else None
+        if types is not None:
+            columns.append((f"count_{name}", covariate.span, types))
+    return columns
+
+
+def _evidence_counts(ctx: CompileContext) -> exp.Query | None:
     columns = window_columns(ctx)
     if not columns:
         return None
@@ -103,19 +130,82 @@ def window_counts_stage(ctx: CompileContext) -> Stage | None:
                 exp.column("patient_id", "e").eq(exp.column("patient_id", "i")),
                 exp.column("event_date", "e") <= exp.column("index_date", "i"),
             ),
-            join_type="left",
         )
     )
-    query = (
+    return (
         exp.select("patient_id", *(aggregate.as_(name) for name, aggregate, _ in columns))
         .from_(joined.subquery("e"))
         .group_by("patient_id")
     )
+
+
+def _encounter_counts(ctx: CompileContext) -> exp.Query | None:
+    columns = encounter_columns(ctx)
+    if not columns:
+        return None
+    starts = [window[0] for _, window, _ in columns]
+    earliest = None if any(s is None for s in starts) else min(s for s in starts if s is not None)
+    offset = days_between(exp.column("index_date", "i"), exp.column("encounter_date", "e"))
+    # Exact duplicate encounter rows count once: distinct (day, type) inside the widest window.
+    visits = (
+        exp.select(
+            exp.column("patient_id", "e"),
+            exp.column("encounter_date", "e"),
+            exp.column("encounter_type", "e"),
+            offset.as_(OFFSET),
+        )
+        .distinct()
+        .from_("encounter_rows AS e")
+        .join(
+            "index_dates AS i",
+            on=exp.and_(
+                exp.column("patient_id", "i").eq(exp.column("patient_id", "e")),
+                in_window((earliest, 0), offset.copy()),
+            ),
+        )
+    )
+    aggregates = []
+    for name, window, types in columns:
+        hit = in_window(window, exp.column(OFFSET))
+        if types:
+            hit = exp.and_(hit, is_in(exp.column("encounter_type"), types))
+        counted = exp.Case().when(hit, exp.Literal.number(1)).else_(exp.Literal.number(0))
+        aggregates.append(exp.Sum(this=counted).as_(name))
+    return exp.select("patient_id", *aggregates).from_(visits.subquery("v")).group_by("patient_id")
+
+
+def window_counts_stage(ctx: CompileContext) -> Stage | None:
+    """``window_counts``: per source patient, counts in windows around the index date.
+
+    Counts are 0, never missing, for a patient with nothing in the window; first-evidence dates
+    stay missing when there is none.
+    """
+    parts = [
+        ("ev", _evidence_counts(ctx), "evidence_events"),
+        ("en", _encounter_counts(ctx), "encounter_rows"),
+    ]
+    present = [(alias, q, source) for alias, q, source in parts if q is not None]
+    if not present:
+        return None
+    selected: list[exp.Expression] = [exp.column("patient_id", "i")]
+    query = exp.select().from_("index_dates AS i")
+    for alias, part, _ in present:
+        for projection in part.selects[1:]:
+            name = projection.alias_or_name
+            value: exp.Expression = exp.column(name, alias)
+            if not name.startswith("first_evidence_"):
+                value = exp.func("COALESCE", value, exp.Literal.number(0))
+            selected.append(value.as_(name))
+        query = query.join(
+            part.subquery(alias),
+            on=exp.column("patient_id", alias).eq(exp.column("patient_id", "i")),
+            join_type="left",
+        )
     return Stage(
         "window_counts",
-        query,
-        ("index_dates", "evidence_events"),
-        "per patient, evidence counted in windows around the index date",
+        query.select(*selected),
+        ("index_dates", *(source for _, _, source in present)),
+        "per patient, evidence and encounters counted in windows around the index date",
     )
 
 

@@ -10,7 +10,6 @@ from pipeline.config import (
     Catalog,
     Condition,
     DiagnosisEvidence,
-    EncounterEvidence,
     Evidence,
     Study,
 )
@@ -82,12 +81,12 @@ class CompileContext:
         if event is not None and event.evidence is not None:
             found.append((INDEX_EVENT, event.evidence))
         for i, criterion in enumerate(self.study.eligibility, start=1):
-            if criterion.no_evidence is not None:
-                found.append((step_key(i), criterion.no_evidence.evidence))
-            if criterion.encounters is not None:
-                found.append((step_key(i), Evidence(encounter=EncounterEvidence())))
+            # encounter-kind evidence of the study is counted from encounters directly
+            no_evidence = criterion.no_evidence
+            if no_evidence is not None and no_evidence.evidence.encounter is None:
+                found.append((step_key(i), no_evidence.evidence))
         for name, covariate in self.study.covariates.items():
-            if covariate.count is not None:
+            if covariate.count is not None and covariate.count.encounter is None:
                 found.append((covariate_key(name), covariate.count))
         charlson = [c.charlson for c in self.study.covariates.values() if c.charlson]
         if charlson:

@@ -768,7 +768,7 @@ GROUP BY
   event_date;
 
 -- stage evidence_events [table]: one row per patient, evidence and day, with the day number for windows
--- reads: coded_evidence, derived_egfr, encounter_rows, measurement_values
+-- reads: coded_evidence, derived_egfr, measurement_values
 SELECT
   patient_id,
   evidence,
@@ -845,18 +845,6 @@ FROM (
   GROUP BY
     patient_id,
     obs_date
-  UNION ALL
-  SELECT
-    patient_id,
-    '@covariate.visits_prior_year' AS evidence,
-    encounter_date AS event_date,
-    CAST(COUNT(DISTINCT COALESCE(encounter_type, '')) AS INT) AS n_rows
-  FROM encounter_rows
-  WHERE
-    TRUE
-  GROUP BY
-    patient_id,
-    encounter_date
 ) AS events
 GROUP BY
   patient_id,
@@ -1139,231 +1127,263 @@ FROM encounter_summary
 WHERE
   NOT first_in_window IS NULL;
 
--- stage window_counts [table]: per patient, evidence counted in windows around the index date
--- reads: index_dates, evidence_events
+-- stage window_counts [table]: per patient, evidence and encounters counted in windows around the index date
+-- reads: index_dates, evidence_events, encounter_rows
 SELECT
-  patient_id,
-  COALESCE(
-    SUM(
-      CASE
-        WHEN e.evidence = '@covariate.visits_prior_year' AND e_offset BETWEEN -365 AND -1
-        THEN e.n_rows
-        ELSE 0
-      END
-    ),
-    0
-  ) AS count_visits_prior_year,
-  COALESCE(
-    SUM(
-      CASE
-        WHEN e.evidence = '@charlson.myocardial_infarction' AND e_offset <= 0
-        THEN e.n_rows
-        ELSE 0
-      END
-    ),
-    0
-  ) AS charlson_myocardial_infarction,
-  COALESCE(
-    SUM(
-      CASE
-        WHEN e.evidence = '@charlson.congestive_heart_failure' AND e_offset <= 0
-        THEN e.n_rows
-        ELSE 0
-      END
-    ),
-    0
-  ) AS charlson_congestive_heart_failure,
-  COALESCE(
-    SUM(
-      CASE
-        WHEN e.evidence = '@charlson.peripheral_vascular_disease' AND e_offset <= 0
-        THEN e.n_rows
-        ELSE 0
-      END
-    ),
-    0
-  ) AS charlson_peripheral_vascular_disease,
-  COALESCE(
-    SUM(
-      CASE
-        WHEN e.evidence = '@charlson.cerebrovascular_disease' AND e_offset <= 0
-        THEN e.n_rows
-        ELSE 0
-      END
-    ),
-    0
-  ) AS charlson_cerebrovascular_disease,
-  COALESCE(
-    SUM(
-      CASE
-        WHEN e.evidence = '@charlson.dementia' AND e_offset <= 0
-        THEN e.n_rows
-        ELSE 0
-      END
-    ),
-    0
-  ) AS charlson_dementia,
-  COALESCE(
-    SUM(
-      CASE
-        WHEN e.evidence = '@charlson.chronic_pulmonary_disease' AND e_offset <= 0
-        THEN e.n_rows
-        ELSE 0
-      END
-    ),
-    0
-  ) AS charlson_chronic_pulmonary_disease,
-  COALESCE(
-    SUM(
-      CASE
-        WHEN e.evidence = '@charlson.rheumatic_disease' AND e_offset <= 0
-        THEN e.n_rows
-        ELSE 0
-      END
-    ),
-    0
-  ) AS charlson_rheumatic_disease,
-  COALESCE(
-    SUM(
-      CASE
-        WHEN e.evidence = '@charlson.peptic_ulcer_disease' AND e_offset <= 0
-        THEN e.n_rows
-        ELSE 0
-      END
-    ),
-    0
-  ) AS charlson_peptic_ulcer_disease,
-  COALESCE(
-    SUM(
-      CASE
-        WHEN e.evidence = '@charlson.mild_liver_disease' AND e_offset <= 0
-        THEN e.n_rows
-        ELSE 0
-      END
-    ),
-    0
-  ) AS charlson_mild_liver_disease,
-  COALESCE(
-    SUM(
-      CASE
-        WHEN e.evidence = '@charlson.diabetes_without_complications' AND e_offset <= 0
-        THEN e.n_rows
-        ELSE 0
-      END
-    ),
-    0
-  ) AS charlson_diabetes_without_complications,
-  COALESCE(
-    SUM(
-      CASE
-        WHEN e.evidence = '@charlson.diabetes_with_complications' AND e_offset <= 0
-        THEN e.n_rows
-        ELSE 0
-      END
-    ),
-    0
-  ) AS charlson_diabetes_with_complications,
-  COALESCE(
-    SUM(
-      CASE
-        WHEN e.evidence = '@charlson.hemiplegia_paraplegia' AND e_offset <= 0
-        THEN e.n_rows
-        ELSE 0
-      END
-    ),
-    0
-  ) AS charlson_hemiplegia_paraplegia,
-  COALESCE(
-    SUM(
-      CASE
-        WHEN e.evidence = '@charlson.renal_disease' AND e_offset <= 0
-        THEN e.n_rows
-        ELSE 0
-      END
-    ),
-    0
-  ) AS charlson_renal_disease,
-  COALESCE(
-    SUM(
-      CASE
-        WHEN e.evidence = '@charlson.malignancy' AND e_offset <= 0
-        THEN e.n_rows
-        ELSE 0
-      END
-    ),
-    0
-  ) AS charlson_malignancy,
-  COALESCE(
-    SUM(
-      CASE
-        WHEN e.evidence = '@charlson.moderate_severe_liver_disease' AND e_offset <= 0
-        THEN e.n_rows
-        ELSE 0
-      END
-    ),
-    0
-  ) AS charlson_moderate_severe_liver_disease,
-  COALESCE(
-    SUM(
-      CASE
-        WHEN e.evidence = '@charlson.metastatic_solid_tumour' AND e_offset <= 0
-        THEN e.n_rows
-        ELSE 0
-      END
-    ),
-    0
-  ) AS charlson_metastatic_solid_tumour,
-  COALESCE(
-    SUM(
-      CASE
-        WHEN e.evidence = '@charlson.hiv_aids' AND e_offset <= 0
-        THEN e.n_rows
-        ELSE 0
-      END
-    ),
-    0
-  ) AS charlson_hiv_aids
-FROM (
+  i.patient_id,
+  COALESCE(ev.charlson_myocardial_infarction, 0) AS charlson_myocardial_infarction,
+  COALESCE(ev.charlson_congestive_heart_failure, 0) AS charlson_congestive_heart_failure,
+  COALESCE(ev.charlson_peripheral_vascular_disease, 0) AS charlson_peripheral_vascular_disease,
+  COALESCE(ev.charlson_cerebrovascular_disease, 0) AS charlson_cerebrovascular_disease,
+  COALESCE(ev.charlson_dementia, 0) AS charlson_dementia,
+  COALESCE(ev.charlson_chronic_pulmonary_disease, 0) AS charlson_chronic_pulmonary_disease,
+  COALESCE(ev.charlson_rheumatic_disease, 0) AS charlson_rheumatic_disease,
+  COALESCE(ev.charlson_peptic_ulcer_disease, 0) AS charlson_peptic_ulcer_disease,
+  COALESCE(ev.charlson_mild_liver_disease, 0) AS charlson_mild_liver_disease,
+  COALESCE(ev.charlson_diabetes_without_complications, 0) AS charlson_diabetes_without_complications,
+  COALESCE(ev.charlson_diabetes_with_complications, 0) AS charlson_diabetes_with_complications,
+  COALESCE(ev.charlson_hemiplegia_paraplegia, 0) AS charlson_hemiplegia_paraplegia,
+  COALESCE(ev.charlson_renal_disease, 0) AS charlson_renal_disease,
+  COALESCE(ev.charlson_malignancy, 0) AS charlson_malignancy,
+  COALESCE(ev.charlson_moderate_severe_liver_disease, 0) AS charlson_moderate_severe_liver_disease,
+  COALESCE(ev.charlson_metastatic_solid_tumour, 0) AS charlson_metastatic_solid_tumour,
+  COALESCE(ev.charlson_hiv_aids, 0) AS charlson_hiv_aids,
+  COALESCE(en.count_visits_prior_year, 0) AS count_visits_prior_year
+FROM index_dates AS i
+LEFT JOIN (
   SELECT
-    i.patient_id,
-    e.evidence,
-    e.event_date,
-    e.n_rows,
-    DATE_DIFF('DAY', i.index_date, e.event_date) AS e_offset
-  FROM index_dates AS i
-  LEFT JOIN (
+    patient_id,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.myocardial_infarction' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_myocardial_infarction,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.congestive_heart_failure' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_congestive_heart_failure,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.peripheral_vascular_disease' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_peripheral_vascular_disease,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.cerebrovascular_disease' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_cerebrovascular_disease,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.dementia' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_dementia,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.chronic_pulmonary_disease' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_chronic_pulmonary_disease,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.rheumatic_disease' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_rheumatic_disease,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.peptic_ulcer_disease' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_peptic_ulcer_disease,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.mild_liver_disease' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_mild_liver_disease,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.diabetes_without_complications' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_diabetes_without_complications,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.diabetes_with_complications' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_diabetes_with_complications,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.hemiplegia_paraplegia' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_hemiplegia_paraplegia,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.renal_disease' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_renal_disease,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.malignancy' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_malignancy,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.moderate_severe_liver_disease' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_moderate_severe_liver_disease,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.metastatic_solid_tumour' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_metastatic_solid_tumour,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.hiv_aids' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_hiv_aids
+  FROM (
     SELECT
-      patient_id,
-      evidence,
-      event_date,
-      n_rows
-    FROM evidence_events
-    WHERE
-      evidence IN (
-        '@charlson.cerebrovascular_disease',
-        '@charlson.chronic_pulmonary_disease',
-        '@charlson.congestive_heart_failure',
-        '@charlson.dementia',
-        '@charlson.diabetes_with_complications',
-        '@charlson.diabetes_without_complications',
-        '@charlson.hemiplegia_paraplegia',
-        '@charlson.hiv_aids',
-        '@charlson.malignancy',
-        '@charlson.metastatic_solid_tumour',
-        '@charlson.mild_liver_disease',
-        '@charlson.moderate_severe_liver_disease',
-        '@charlson.myocardial_infarction',
-        '@charlson.peptic_ulcer_disease',
-        '@charlson.peripheral_vascular_disease',
-        '@charlson.renal_disease',
-        '@charlson.rheumatic_disease',
-        '@covariate.visits_prior_year'
-      )
+      i.patient_id,
+      e.evidence,
+      e.event_date,
+      e.n_rows,
+      DATE_DIFF('DAY', i.index_date, e.event_date) AS e_offset
+    FROM index_dates AS i
+    JOIN (
+      SELECT
+        patient_id,
+        evidence,
+        event_date,
+        n_rows
+      FROM evidence_events
+      WHERE
+        evidence IN (
+          '@charlson.cerebrovascular_disease',
+          '@charlson.chronic_pulmonary_disease',
+          '@charlson.congestive_heart_failure',
+          '@charlson.dementia',
+          '@charlson.diabetes_with_complications',
+          '@charlson.diabetes_without_complications',
+          '@charlson.hemiplegia_paraplegia',
+          '@charlson.hiv_aids',
+          '@charlson.malignancy',
+          '@charlson.metastatic_solid_tumour',
+          '@charlson.mild_liver_disease',
+          '@charlson.moderate_severe_liver_disease',
+          '@charlson.myocardial_infarction',
+          '@charlson.peptic_ulcer_disease',
+          '@charlson.peripheral_vascular_disease',
+          '@charlson.renal_disease',
+          '@charlson.rheumatic_disease'
+        )
+    ) AS e
+      ON e.patient_id = i.patient_id AND e.event_date <= i.index_date
   ) AS e
-    ON e.patient_id = i.patient_id AND e.event_date <= i.index_date
-) AS e
-GROUP BY
-  patient_id;
+  GROUP BY
+    patient_id
+) AS ev
+  ON ev.patient_id = i.patient_id
+LEFT JOIN (
+  SELECT
+    patient_id,
+    SUM(CASE WHEN e_offset BETWEEN -365 AND -1 THEN 1 ELSE 0 END) AS count_visits_prior_year
+  FROM (
+    SELECT DISTINCT
+      e.patient_id,
+      e.encounter_date,
+      e.encounter_type,
+      DATE_DIFF('DAY', i.index_date, e.encounter_date) AS e_offset
+    FROM encounter_rows AS e
+    JOIN index_dates AS i
+      ON i.patient_id = e.patient_id
+      AND DATE_DIFF('DAY', i.index_date, e.encounter_date) BETWEEN -365 AND 0
+  ) AS v
+  GROUP BY
+    patient_id
+) AS en
+  ON en.patient_id = i.patient_id;
 
 -- stage measure_covariates [table]: per patient, measurement covariates summarised in their windows
 -- reads: derived_bmi, derived_egfr, index_dates, measurement_values
