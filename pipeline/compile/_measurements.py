@@ -91,8 +91,8 @@ LEFT JOIN :units ON u.measure = r.measure AND u.unit = r.unit
 
 _MEASUREMENT_VALUES = """
 SELECT patient_id, obs_date, measure, value, qualifier, category, FALSE AS derived
-FROM measurement_rows
-WHERE problem IS NULL AND :wanted
+FROM :rows
+WHERE problem IS NULL
 """
 
 # eGFR from creatinine by CKD-EPI 2021 (Inker et al., N Engl J Med 2021;385:1737), age in
@@ -172,27 +172,37 @@ def measurement_stages(ctx: CompileContext) -> tuple[Stage, ...]:
             for name, value in categories
         )
     )
+    check = ctx.study.quality.exact_duplicates == "check"
+
+    def rows(where: exp.Expression | None) -> exp.Query:
+        # One template for the quality log (all rows) and for the values (wanted measures
+        # only, filtered before any grouping), so the two can never judge a row differently.
+        return query(
+            _MEASUREMENT_ROWS,
+            pattern=READING_PATTERN,
+            decimal_comma=DECIMAL_COMMA_PATTERN,
+            end_of_data=ctx.study.end_of_data,
+            known=known,
+            units=units,
+            known_category=known_category,
+            distinct_rows=grouped_rows(MEASUREMENTS, check_duplicates=check, where=where).subquery(
+                "d"
+            ),
+        )
+
+    measure = exp.Lower(this=exp.Trim(this=exp.cast(exp.column("measure"), "VARCHAR")))
     stages = [
         Stage(
             "measurement_rows",
-            query(
-                _MEASUREMENT_ROWS,
-                pattern=READING_PATTERN,
-                decimal_comma=DECIMAL_COMMA_PATTERN,
-                end_of_data=ctx.study.end_of_data,
-                known=known,
-                units=units,
-                known_category=known_category,
-                distinct_rows=grouped_rows(MEASUREMENTS).subquery("d"),
-            ),
+            rows(None),
             ("src_measurements", "patient_base"),
             "every distinct measurement row parsed and converted, with what stops its use",
             kind="view",
         ),
         Stage(
             "measurement_values",
-            query(_MEASUREMENT_VALUES, wanted=is_in(exp.column("measure"), ctx.measures)),
-            ("measurement_rows",),
+            query(_MEASUREMENT_VALUES, rows=rows(is_in(measure, ctx.measures)).subquery("r")),
+            ("src_measurements", "patient_base"),
             "usable values of the measures the study reads, in canonical units",
         ),
     ]

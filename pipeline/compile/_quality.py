@@ -57,7 +57,7 @@ _LOG = """
 SELECT
   source_table,
   CASE WHEN reason = 'used' THEN 'used' ELSE 'set aside' END AS outcome,
-  reason,
+  CASE WHEN reason = 'used' THEN :used ELSE reason END AS reason,
   CAST(SUM(n) AS BIGINT) AS n_rows
 FROM (
   SELECT source_table, reason, distinct_rows AS n FROM summary
@@ -96,7 +96,8 @@ _DATE_COLUMNS = {
 
 
 def _classified(ctx: CompileContext, table: SourceTable) -> exp.Query:
-    grouped = grouped_rows(table).subquery("g")
+    check = ctx.study.quality.exact_duplicates == "check"
+    grouped = grouped_rows(table, check_duplicates=check).subquery("g")
     if table.name == "patients":
         return query(_PATIENTS, rows=grouped)
     if table.name == "measurements":
@@ -126,6 +127,8 @@ def quality_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         ).from_(t.relation)
         for t in tables
     ]
+    checked = ctx.study.quality.exact_duplicates == "check"
+    used = "used" if checked else "used (exact duplicates not checked)"
     summaries = [
         query(_SUMMARY, table_name=t.name, classified=_classified(ctx, t).subquery("c"))
         for t in tables
@@ -142,7 +145,7 @@ def quality_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         ),
         Stage(
             "quality_log",
-            query(_LOG).with_("summary", as_=_union(summaries)),
+            query(_LOG, used=used).with_("summary", as_=_union(summaries)),
             tuple(sorted(depends)),
             "every extract row: used, or set aside with the first reason that applies",
         ),

@@ -36,13 +36,19 @@ MEASUREMENTS = SourceTable(
 )
 
 
-def grouped_rows(table: SourceTable) -> exp.Query:
-    """Distinct rows of a source table with how many copies of each the extract holds."""
-    return (
-        exp.select(*table.columns, exp.func("COUNT", exp.Star()).as_("copies"))
-        .from_(table.relation)
-        .group_by(*table.columns)
-    )
+def grouped_rows(
+    table: SourceTable, *, check_duplicates: bool, where: exp.Expression | None = None
+) -> exp.Query:
+    """Distinct rows of a source table with how many copies of each the extract holds.
+
+    Without the duplicate check every row stands alone (``copies`` is 1): no grouping.
+    """
+    rows = exp.select(*table.columns).from_(table.relation)
+    if where is not None:
+        rows = rows.where(where)
+    if not check_duplicates:
+        return rows.select(exp.Literal.number(1).as_("copies"))
+    return rows.select(exp.func("COUNT", exp.Star()).as_("copies")).group_by(*table.columns)
 
 
 def source_tables(ctx: CompileContext) -> tuple[SourceTable, ...]:

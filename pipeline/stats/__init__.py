@@ -1,0 +1,89 @@
+"""Statistics for the study report: pure functions on the analysis table, no I/O.
+
+- intervals: Wilson, Clopper-Pearson and exact Poisson (Garwood) intervals;
+- incidence: cumulative incidence and incidence rates per person-time;
+- survival: Kaplan-Meier and Aalen-Johansen curves (death as competing event);
+- Table 1, outcome combinations and pairwise dependence (odds ratio, phi, Kendall's tau,
+  Frank copula theta);
+- agreement of a definition with a reference standard;
+- small-cell suppression of every published table.
+
+Only numpy, scipy and polars are used; reference libraries (statsmodels, lifelines,
+scikit-learn) appear in the tests only.
+"""
+
+from pipeline.stats._agreement import (
+    DiagnosticAccuracy,
+    OnsetAgreement,
+    diagnostic_accuracy,
+    onset_agreement,
+)
+from pipeline.stats._combinations import COMBINATIONS_SCHEMA, NO_OUTCOME, outcome_combinations
+from pipeline.stats._dependence import (
+    DEPENDENCE_SCHEMA,
+    Association,
+    association_2x2,
+    frank_tau,
+    frank_theta_from_tau,
+    pairwise_dependence,
+)
+from pipeline.stats._incidence import (
+    DAYS_PER_YEAR,
+    CumulativeIncidence,
+    IncidenceRate,
+    cumulative_incidence,
+    incidence_rate,
+)
+from pipeline.stats._intervals import (
+    Interval,
+    clopper_pearson_interval,
+    poisson_exact_interval,
+    wilson_interval,
+)
+from pipeline.stats._suppress import suppress_counts
+from pipeline.stats._survival import (
+    CENSORED,
+    DEATH,
+    OUTCOME,
+    StepCurve,
+    aalen_johansen,
+    competing_risk_data,
+    kaplan_meier,
+)
+from pipeline.stats._table_one import TABLE_ONE_SCHEMA, baseline_variables, table_one
+
+__all__ = [
+    "CENSORED",
+    "COMBINATIONS_SCHEMA",
+    "DAYS_PER_YEAR",
+    "DEATH",
+    "DEPENDENCE_SCHEMA",
+    "NO_OUTCOME",
+    "OUTCOME",
+    "TABLE_ONE_SCHEMA",
+    "Association",
+    "CumulativeIncidence",
+    "DiagnosticAccuracy",
+    "IncidenceRate",
+    "Interval",
+    "OnsetAgreement",
+    "StepCurve",
+    "aalen_johansen",
+    "association_2x2",
+    "baseline_variables",
+    "clopper_pearson_interval",
+    "competing_risk_data",
+    "cumulative_incidence",
+    "diagnostic_accuracy",
+    "frank_tau",
+    "frank_theta_from_tau",
+    "incidence_rate",
+    "kaplan_meier",
+    "onset_agreement",
+    "outcome_combinations",
+    "pairwise_dependence",
+    "poisson_exact_interval",
+    "suppress_counts",
+    "table_one",
+    "wilson_interval",
+]

@@ -1,0 +1,63 @@
+"""Checks and column names shared by the statistics on the analysis table.
+
+The analysis table (``cohort.parquet``) names outcome columns by a fixed pattern, one set per
+outcome ``X``: ``prevalent_X``, ``at_risk_X``, ``incident_X`` (null when not at risk),
+``onset_X`` and ``days_to_X``. Keeping the pattern in one place means a rename touches one file.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable
+
+import polars as pl
+
+OUTCOME_PREFIXES = ("prevalent_", "at_risk_", "incident_", "onset_", "days_to_")
+"""Prefixes of the per-outcome columns, in the order the analysis table writes them."""
+
+FOLLOWUP_COLUMNS = ("followup_end", "followup_days", "end_reason")
+"""Columns describing follow-up after the index date (not baseline characteristics)."""
+
+
+def require_columns(cohort: pl.DataFrame, columns: Iterable[str], *, what: str) -> None:
+    """Fail with one clear message naming every missing column.
+
+    Args:
+        cohort: The analysis table.
+        columns: Columns the caller needs.
+        what: What the columns are needed for, used in the message.
+
+    Raises:
+        ValueError: If any column is missing.
+    """
+    missing = [c for c in columns if c not in cohort.columns]
+    if missing:
+        raise ValueError(f"{what} needs column(s) {', '.join(missing)}, not in the table")
+
+
+def at_risk_rows(cohort: pl.DataFrame, outcomes: Iterable[str], *, what: str) -> pl.DataFrame:
+    """Return the patients at risk of every outcome, checking their incident flag is known.
+
+    Args:
+        cohort: The analysis table.
+        outcomes: Outcome names ``X`` (columns ``at_risk_X`` and ``incident_X`` must exist).
+        what: What the rows are needed for, used in messages.
+
+    Returns:
+        The rows with ``at_risk_X`` true for every outcome.
+
+    Raises:
+        ValueError: If a column is missing, or an at-risk patient has a null ``incident_X``
+            (the analysis table promises a value there, so a null means a broken input).
+    """
+    outcomes = list(outcomes)
+    require_columns(
+        cohort, [f"{p}{o}" for o in outcomes for p in ("at_risk_", "incident_")], what=what
+    )
+    rows = cohort.filter(
+        pl.all_horizontal(pl.col(f"at_risk_{o}").fill_null(False) for o in outcomes)
+    )
+    for o in outcomes:
+        nulls = rows[f"incident_{o}"].null_count()
+        if nulls:
+            raise ValueError(f"{what}: {nulls} patient(s) at risk of {o} have a null incident_{o}")
+    return rows

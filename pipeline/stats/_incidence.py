@@ -1,0 +1,159 @@
+"""Cumulative incidence and incidence rates of one outcome over the study horizon.
+
+Both count only patients at risk of the outcome at the index date (``at_risk_X``), so prevalent
+cases never enter a denominator.
+
+- Cumulative incidence is the share of at-risk patients with an incident onset within the
+  horizon, with a Wilson interval. It ignores censoring, so it is a lower bound when follow-up
+  ends early (loss, death); the Kaplan-Meier and Aalen-Johansen curves in :mod:`._survival`
+  account for that.
+- The incidence rate divides events by person-time: each at-risk patient contributes from the
+  index date to onset if incident, else to the end of follow-up (``followup_days``), in years of
+  365.25 days. Its interval is the exact Poisson (Garwood) interval.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import polars as pl
+
+from pipeline.stats._columns import at_risk_rows, require_columns
+from pipeline.stats._intervals import poisson_exact_interval, wilson_interval
+
+__all__ = ["CumulativeIncidence", "IncidenceRate", "cumulative_incidence", "incidence_rate"]
+
+DAYS_PER_YEAR = 365.25
+"""Days in a person-year: the mean Julian year, so leap years need no special case."""
+
+
+@dataclass(frozen=True, slots=True)
+class CumulativeIncidence:
+    """Share of at-risk patients with an incident onset within the horizon.
+
+    Attributes:
+        outcome: The outcome name ``X``.
+        at_risk: Patients at risk at the index date.
+        events: At-risk patients with an incident onset.
+        proportion: ``events / at_risk`` (NaN when nobody is at risk).
+        low: Lower Wilson limit.
+        high: Upper Wilson limit.
+    """
+
+    outcome: str
+    at_risk: int
+    events: int
+    proportion: float
+    low: float
+    high: float
+
+
+@dataclass(frozen=True, slots=True)
+class IncidenceRate:
+    """Events per person-time among at-risk patients.
+
+    Attributes:
+        outcome: The outcome name ``X``.
+        events: Incident onsets.
+        person_years: Follow-up of at-risk patients to onset or end of follow-up, in years.
+        per: The rate unit, e.g. 1000 for "per 1,000 person-years".
+        rate: ``events / person_years * per`` (NaN with no person-time).
+        low: Lower exact Poisson limit, per ``per`` person-years.
+        high: Upper exact Poisson limit, per ``per`` person-years.
+    """
+
+    outcome: str
+    events: int
+    person_years: float
+    per: float
+    rate: float
+    low: float
+    high: float
+
+
+def cumulative_incidence(
+    cohort: pl.DataFrame, outcome: str, *, confidence: float = 0.95
+) -> CumulativeIncidence:
+    """Count incident onsets among patients at risk of ``outcome``, with a Wilson interval.
+
+    Args:
+        cohort: The analysis table.
+        outcome: The outcome name ``X`` (uses ``at_risk_X`` and ``incident_X``).
+        confidence: Two-sided confidence level.
+
+    Returns:
+        The counts, the proportion and its interval.
+
+    Raises:
+        ValueError: If a needed column is missing or an at-risk patient has no incident flag.
+
+    Examples:
+        >>> cohort = pl.DataFrame(
+        ...     {"at_risk_ckd": [True, True, True, False], "incident_ckd": [True, False, False, None]}
+        ... )
+        >>> ci = cumulative_incidence(cohort, "ckd")
+        >>> ci.at_risk, ci.events, round(ci.proportion, 4)
+        (3, 1, 0.3333)
+    """
+    rows = at_risk_rows(cohort, [outcome], what="cumulative incidence")
+    n = rows.height
+    events = int(rows[f"incident_{outcome}"].sum())
+    ci = wilson_interval(events, n, confidence=confidence)
+    return CumulativeIncidence(outcome, n, events, ci.estimate, ci.low, ci.high)
+
+
+def incidence_rate(
+    cohort: pl.DataFrame, outcome: str, *, per: float = 1000.0, confidence: float = 0.95
+) -> IncidenceRate:
+    """Incidence rate per ``per`` person-years among patients at risk, with an exact interval.
+
+    Args:
+        cohort: The analysis table.
+        outcome: The outcome name ``X`` (uses ``at_risk_X``, ``incident_X``, ``days_to_X`` and
+            ``followup_days``).
+        per: Person-years in the rate unit.
+        confidence: Two-sided confidence level.
+
+    Returns:
+        Events, person-years, and the rate with its Garwood interval, all per ``per``
+        person-years.
+
+    Raises:
+        ValueError: If a needed column is missing, an at-risk patient has no incident flag, an
+            incident patient has no ``days_to_X``, follow-up is missing or negative, or ``per``
+            is not positive.
+
+    Examples:
+        >>> cohort = pl.DataFrame(
+        ...     {
+        ...         "at_risk_ckd": [True, True],
+        ...         "incident_ckd": [True, False],
+        ...         "days_to_ckd": [365, None],
+        ...         "followup_days": [1000, 1461],
+        ...     }
+        ... )
+        >>> r = incidence_rate(cohort, "ckd")
+        >>> r.events, round(r.person_years, 4), round(r.rate, 2)
+        (1, 5.0, 200.0)
+    """
+    if not per > 0:
+        raise ValueError(f"per must be positive, got {per!r}")
+    require_columns(cohort, [f"days_to_{outcome}", "followup_days"], what="incidence rate")
+    rows = at_risk_rows(cohort, [outcome], what="incidence rate")
+    incident = pl.col(f"incident_{outcome}")
+    days = rows.select(
+        pl.when(incident).then(pl.col(f"days_to_{outcome}")).otherwise(pl.col("followup_days"))
+    ).to_series()
+    if days.null_count():
+        raise ValueError(
+            f"incidence rate: {days.null_count()} at-risk patient(s) have no follow-up time "
+            f"(days_to_{outcome} for incident cases, else followup_days)"
+        )
+    if rows.height and days.min() < 0:  # type: ignore[operator]
+        raise ValueError(f"incidence rate: negative follow-up time for {outcome}")
+    events = int(rows[f"incident_{outcome}"].sum())
+    person_years = float(days.cast(pl.Float64).sum()) / DAYS_PER_YEAR
+    ci = poisson_exact_interval(events, person_years, confidence=confidence)
+    return IncidenceRate(
+        outcome, events, person_years, float(per), ci.estimate * per, ci.low * per, ci.high * per
+    )

@@ -1,0 +1,183 @@
+"""Small-cell suppression for published summary tables.
+
+Counts of 1 to ``threshold - 1`` patients can identify people, so no published table shows
+them. The raw cohort file is the only unsuppressed output; every table in the report and every
+exported CSV goes through :func:`suppress_counts`.
+
+The rule, precisely:
+
+1. **Cells.** The cells are the values of ``count_columns`` and of ``total_column`` (if given)
+   in every row. Null cells are not counts and are left as null.
+2. **Primary suppression.** A cell with ``1 <= count < threshold`` is replaced by
+   ``f"<{threshold}"``.
+3. **Zeros are shown.** A true zero is shown as ``0``. We chose this because a zero discloses
+   no individual, and hiding zeros would make most sparse tables unreadable. (A zero may still
+   be hidden as a complement, step 5, when it is the only cell left to protect another.)
+4. **Relations.** A *relation* is a set of cells whose sum a reader knows or can work out:
+
+   - each row, when ``total_column`` is given: the row's count cells add up to its total,
+     and the total is one of the relation's cells;
+   - each column within each group of rows (all rows when ``group_by`` is empty), when
+     ``column_totals`` is true (the default): we assume the column total is published or
+     derivable elsewhere (e.g. the number of patients), so it is treated as known even if the
+     table has no totals row.
+
+   A relation with fewer than two cells is ignored (its only cell *is* the total).
+5. **Secondary suppression.** Whenever a relation has exactly one hidden cell, that cell could
+   be recovered by subtraction, so the smallest remaining shown non-zero cell of the relation
+   is hidden too (ties: first in row, then column order; a zero only if no non-zero cell is
+   left), and shown as ``secondary_marker``. This repeats over all relations until none has
+   exactly one hidden cell.
+
+The result guarantees that no hidden cell can be recovered by subtraction from any row or
+column total, even step by step (subtraction needs a relation with exactly one unknown, and
+none is left). It is not a full audit against every linear combination of relations or against
+interval reasoning (e.g. two hidden cells known to sum to 2 must both be 1); tables where that
+matters need a dedicated tool such as tau-ARGUS.
+
+Secondary cells are marked differently from primary ones because they are usually large:
+showing a hidden 120 as "<5" would misstate it. The report's footnote should say
+"<5: fewer than 5 patients; *: hidden so that a smaller count cannot be worked out".
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+
+import numpy as np
+import polars as pl
+from numpy.typing import NDArray
+
+__all__ = ["suppress_counts"]
+
+_SHOWN, _PRIMARY, _SECONDARY = 0, 1, 2
+
+
+def _relations(
+    table: pl.DataFrame,
+    n_cols: int,
+    *,
+    row_totals: bool,
+    column_totals: bool,
+    group_by: Sequence[str],
+) -> list[list[tuple[int, int]]]:
+    relations: list[list[tuple[int, int]]] = []
+    if row_totals:
+        relations.extend([(i, j) for j in range(n_cols)] for i in range(table.height))
+    if column_totals:
+        if group_by:
+            keyed = table.select(group_by).with_row_index("_row")
+            groups = [
+                g["_row"].to_list() for g in keyed.partition_by(list(group_by), maintain_order=True)
+            ]
+        else:
+            groups = [list(range(table.height))]
+        relations.extend([(i, j) for i in rows] for rows in groups for j in range(n_cols))
+    return relations
+
+
+def _protect(
+    values: NDArray[np.float64], status: NDArray[np.int8], relations: list[list[tuple[int, int]]]
+) -> None:
+    """Apply secondary suppression in place until no relation has exactly one hidden cell."""
+    changed = True
+    while changed:
+        changed = False
+        for relation in relations:
+            cells = [cell for cell in relation if not np.isnan(values[cell])]
+            if len(cells) < 2:
+                continue
+            if sum(status[cell] != _SHOWN for cell in cells) != 1:
+                continue
+            shown = [cell for cell in cells if status[cell] == _SHOWN]
+            nonzero = [cell for cell in shown if values[cell] > 0]
+            pick = min(nonzero or shown, key=lambda cell: (values[cell], cell))
+            status[pick] = _SECONDARY
+            changed = True
+
+
+def suppress_counts(
+    table: pl.DataFrame,
+    count_columns: Sequence[str],
+    *,
+    threshold: int = 5,
+    total_column: str | None = None,
+    group_by: Sequence[str] = (),
+    column_totals: bool = True,
+    linked_columns: Mapping[str, Sequence[str]] | None = None,
+    secondary_marker: str = "*",
+) -> pl.DataFrame:
+    """Hide small counts, and any count that would let one be recovered by subtraction.
+
+    See the module docstring for the exact rule.
+
+    Args:
+        table: The summary table; it is not modified.
+        count_columns: Integer columns holding counts of patients.
+        threshold: Smallest count that may be shown (counts ``1..threshold-1`` are hidden).
+        total_column: Integer column holding each row's total of ``count_columns``; makes each
+            row a relation.
+        group_by: Columns whose values split the rows into blocks with separate column totals
+            (e.g. ``["variable"]`` for a long Table 1: the levels of one variable add up).
+        column_totals: Treat column totals (per block) as known; set false only for tables
+            whose rows are not parts of a whole (e.g. one row per outcome).
+        linked_columns: For a count column, columns derived from it (e.g. ``{"n":
+            ["percent"]}``) that are set to null wherever the count is hidden, since they would
+            reveal it.
+        secondary_marker: Text shown for a count hidden only to protect another.
+
+    Returns:
+        A new table: count and total columns as strings (numbers, ``f"<{threshold}"`` or
+        ``secondary_marker``), linked columns nulled where needed, other columns unchanged.
+
+    Raises:
+        ValueError: If a column is missing or not integer, a count is negative, or
+            ``threshold`` is below 1.
+
+    Examples:
+        >>> t = pl.DataFrame({"group": ["a", "b", "c"], "n": [3, 40, 57]})
+        >>> suppress_counts(t, ["n"])["n"].to_list()
+        ['<5', '*', '57']
+    """
+    if isinstance(threshold, bool) or int(threshold) != threshold or threshold < 1:
+        raise ValueError(f"threshold must be a positive integer, got {threshold!r}")
+    cells = [*count_columns, *([total_column] if total_column else [])]
+    linked = dict(linked_columns or {})
+    needed = [*cells, *group_by, *(c for cols in linked.values() for c in cols), *linked]
+    missing = [c for c in needed if c not in table.columns]
+    if missing:
+        raise ValueError(f"suppress_counts: column(s) {', '.join(missing)} not in the table")
+    for column in cells:
+        if not table.schema[column].is_integer():
+            raise ValueError(f"suppress_counts: {column!r} is not an integer column")
+    values = table.select(pl.col(c).cast(pl.Float64) for c in cells).to_numpy()
+    values = values.reshape(table.height, len(cells))
+    if np.any(values < 0):
+        raise ValueError("suppress_counts: counts must be non-negative")
+    status = np.where((values >= 1) & (values < threshold), _PRIMARY, _SHOWN).astype(np.int8)
+    relations = _relations(
+        table,
+        len(cells),
+        row_totals=total_column is not None,
+        column_totals=column_totals,
+        group_by=group_by,
+    )
+    _protect(values, status, relations)
+    labels = {_PRIMARY: f"<{threshold}", _SECONDARY: secondary_marker}
+    replaced: list[pl.Series] = []
+    dependent_hidden: dict[str, NDArray[np.bool_]] = {}
+    for j, column in enumerate(cells):
+        text = [
+            None if np.isnan(v) else labels.get(int(s), str(int(v)))
+            for v, s in zip(values[:, j], status[:, j], strict=True)
+        ]
+        replaced.append(pl.Series(column, text, dtype=pl.String))
+        for dep in linked.get(column, ()):
+            mask = dependent_hidden.get(dep, np.zeros(table.height, dtype=np.bool_))
+            dependent_hidden[dep] = mask | (status[:, j] != _SHOWN)
+    for dep, mask in dependent_hidden.items():
+        hidden = pl.Series(mask)
+        replaced.append(
+            pl.select(pl.when(hidden).then(None).otherwise(table[dep]).alias(dep)).to_series()
+        )
+    return table.with_columns(replaced)
