@@ -21,22 +21,29 @@ from pipeline.measures import Threshold
 CodeRow = tuple[str, str, str, str | None, int | None, bool]
 
 # Each row is probed once per prefix length, so the join to the prefixes is an equality join.
+# A row counts for a piece of evidence when it matches an included prefix and no excluded one.
+_CODED_MATCHES = """
+SELECT
+  e.patient_id, e.event_date, e.code_system, e.code, e.raw_code, e.source, e.duration_days,
+  c.evidence, BOOL_OR(c.is_exclusion) AS excluded
+FROM (
+  SELECT r.*, LEFT(r.code, l.prefix_length) AS probe
+  FROM coded_events AS r
+  CROSS JOIN :lengths
+) AS e
+JOIN :codes ON c.code_system = e.code_system
+  AND c.prefix = e.probe
+  AND (c.source IS NULL OR c.source = e.source)
+  AND (c.min_days IS NULL OR e.duration_days >= c.min_days)
+GROUP BY
+  e.patient_id, e.event_date, e.code_system, e.code, e.raw_code, e.source, e.duration_days,
+  c.evidence
+"""
+
 _CODED_EVIDENCE = """
 SELECT patient_id, evidence, event_date, CAST(COUNT(*) AS INT) AS n_rows
-FROM (
-  SELECT e.patient_id, e.event_date, c.evidence
-  FROM (
-    SELECT r.*, LEFT(r.code, l.prefix_length) AS probe
-    FROM coded_events AS r
-    CROSS JOIN :lengths
-  ) AS e
-  JOIN :codes ON c.code_system = e.code_system
-    AND c.prefix = e.probe
-    AND (c.source IS NULL OR c.source = e.source)
-    AND (c.min_days IS NULL OR e.duration_days >= c.min_days)
-  GROUP BY e.patient_id, e.event_date, e.code_system, e.code, e.source, e.duration_days, c.evidence
-  HAVING NOT BOOL_OR(c.is_exclusion)
-) AS matched
+FROM coded_matches
+WHERE NOT excluded
 GROUP BY patient_id, evidence, event_date
 """
 
@@ -153,9 +160,9 @@ def evidence_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         lengths = sorted({len(r[1]) for r in code_rows})
         stages.append(
             Stage(
-                "coded_evidence",
+                "coded_matches",
                 query(
-                    _CODED_EVIDENCE,
+                    _CODED_MATCHES,
                     lengths=values_table("l", ["prefix_length"], [(n,) for n in lengths]),
                     codes=values_table(
                         "c",
@@ -164,7 +171,16 @@ def evidence_stages(ctx: CompileContext) -> tuple[Stage, ...]:
                     ),
                 ),
                 ("coded_events",),
-                "diagnosis and prescription rows matched to evidence by code prefix",
+                "each distinct diagnosis or prescription row with the evidence its code matches",
+                kind="view",
+            )
+        )
+        stages.append(
+            Stage(
+                "coded_evidence",
+                query(_CODED_EVIDENCE),
+                ("coded_matches",),
+                "matched rows counted per patient, evidence and day",
             )
         )
         parts.append(query("SELECT patient_id, evidence, event_date, n_rows FROM coded_evidence"))

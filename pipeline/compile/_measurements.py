@@ -57,6 +57,9 @@ WITH read AS (
       AND text_unit <> unit_given AS unit_conflict,
     value_given IS NULL AND text_given IS NULL AS empty,
     CASE WHEN value_given IS NULL THEN LOWER(text_given) END AS category,
+    value_given,
+    text_given,
+    unit_given,
     copies
   FROM split
 )
@@ -66,6 +69,9 @@ SELECT
   r.measure,
   r.qualifier,
   CASE WHEN k.is_coded THEN r.category END AS category,
+  r.value_given AS raw_value,
+  r.text_given AS raw_value_text,
+  r.unit_given AS raw_unit,
   r.copies,
   u.factor * r.reading / u.divisor + u.offset_value AS value,
   CASE

@@ -118,6 +118,7 @@ SELECT
   TRY_CAST(event_date AS DATE) AS event_date,
   UPPER(TRIM(CAST(code_system AS VARCHAR))) AS code_system,
   :code AS code,
+  CAST(code AS VARCHAR) AS raw_code,
   LOWER(TRIM(CAST(source AS VARCHAR))) AS source,
   CAST(NULL AS INT) AS duration_days
 FROM src_diagnoses
@@ -129,13 +130,14 @@ SELECT
   TRY_CAST(start_date AS DATE) AS event_date,
   'ATC' AS code_system,
   :code AS code,
+  CAST(atc AS VARCHAR) AS raw_code,
   CAST(NULL AS VARCHAR) AS source,
   CAST(:duration + 1 AS INT) AS duration_days
 FROM src_prescriptions
 """
 
 _CODED_EVENTS = """
-SELECT r.patient_id, r.event_date, r.code_system, r.code, r.source, r.duration_days
+SELECT r.patient_id, r.event_date, r.code_system, r.code, r.raw_code, r.source, r.duration_days
 FROM :rows AS r
 JOIN patient_base AS p ON p.patient_id = r.patient_id
 WHERE r.event_date <= :end_of_data

@@ -153,8 +153,9 @@ def diagnostic_accuracy(
         specificity=spec,
         ppv=wilson_interval(tp, tp + fp, confidence=confidence),
         npv=wilson_interval(tn, tn + fn, confidence=confidence),
-        lr_positive=_ratio(sens.estimate, 1.0 - spec.estimate),
-        lr_negative=_ratio(1.0 - sens.estimate, spec.estimate),
+        # From the counts, not the rounded proportions: LR+ = tp(fp+tn) / (fp(tp+fn)).
+        lr_positive=_ratio(tp * (fp + tn), fp * (tp + fn)) if tp + fn and fp + tn else math.nan,
+        lr_negative=_ratio(fn * (fp + tn), tn * (tp + fn)) if tp + fn and fp + tn else math.nan,
         kappa=Interval(kappa, kappa - z * ase, kappa + z * ase),
         kappa_ase=ase,
     )

@@ -54,7 +54,7 @@ def at_risk_rows(cohort: pl.DataFrame, outcomes: Iterable[str], *, what: str) ->
         cohort, [f"{p}{o}" for o in outcomes for p in ("at_risk_", "incident_")], what=what
     )
     rows = cohort.filter(
-        pl.all_horizontal(pl.col(f"at_risk_{o}").fill_null(False) for o in outcomes)
+        pl.all_horizontal(pl.col(f"at_risk_{o}").fill_null(value=False) for o in outcomes)
     )
     for o in outcomes:
         nulls = rows[f"incident_{o}"].null_count()

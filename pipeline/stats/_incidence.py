@@ -89,7 +89,10 @@ def cumulative_incidence(
 
     Examples:
         >>> cohort = pl.DataFrame(
-        ...     {"at_risk_ckd": [True, True, True, False], "incident_ckd": [True, False, False, None]}
+        ...     {
+        ...         "at_risk_ckd": [True, True, True, False],
+        ...         "incident_ckd": [True, False, False, None],
+        ...     }
         ... )
         >>> ci = cumulative_incidence(cohort, "ckd")
         >>> ci.at_risk, ci.events, round(ci.proportion, 4)
@@ -128,13 +131,13 @@ def incidence_rate(
         ...     {
         ...         "at_risk_ckd": [True, True],
         ...         "incident_ckd": [True, False],
-        ...         "days_to_ckd": [365, None],
-        ...         "followup_days": [1000, 1461],
+        ...         "days_to_ckd": [461, None],
+        ...         "followup_days": [1461, 1000],
         ...     }
         ... )
         >>> r = incidence_rate(cohort, "ckd")
         >>> r.events, round(r.person_years, 4), round(r.rate, 2)
-        (1, 5.0, 200.0)
+        (1, 4.0, 250.0)
     """
     if not per > 0:
         raise ValueError(f"per must be positive, got {per!r}")

@@ -47,53 +47,93 @@ from collections.abc import Mapping, Sequence
 import numpy as np
 import polars as pl
 from numpy.typing import NDArray
+from scipy import linalg
 
 __all__ = ["suppress_counts"]
 
 _SHOWN, _PRIMARY, _SECONDARY = 0, 1, 2
 
 
+Cell = tuple[int, int]
+Relation = list[tuple[Cell, int]]
+"""A linear relation ``sum(coefficient * cell) = known constant`` as (cell, coefficient)."""
+
+
 def _relations(
     table: pl.DataFrame,
-    n_cols: int,
+    n_counts: int,
     *,
     row_totals: bool,
     column_totals: bool,
     group_by: Sequence[str],
-) -> list[list[tuple[int, int]]]:
-    relations: list[list[tuple[int, int]]] = []
-    if row_totals:
-        relations.extend([(i, j) for j in range(n_cols)] for i in range(table.height))
+) -> list[Relation]:
+    n_cols = n_counts + int(row_totals)
+    relations: list[Relation] = []
+    if row_totals:  # counts minus the row total is 0
+        relations.extend(
+            [((i, j), 1) for j in range(n_counts)] + [((i, n_counts), -1)]
+            for i in range(table.height)
+        )
     if column_totals:
         if group_by:
             keyed = table.select(group_by).with_row_index("_row")
             groups = [
-                g["_row"].to_list() for g in keyed.partition_by(list(group_by), maintain_order=True)
+                g["_row"].to_list()
+                for g in keyed.partition_by(list(group_by), maintain_order=True)
             ]
         else:
             groups = [list(range(table.height))]
-        relations.extend([(i, j) for i in rows] for rows in groups for j in range(n_cols))
+        relations.extend([((i, j), 1) for i in rows] for rows in groups for j in range(n_cols))
     return relations
 
 
+def _hide_complement(
+    values: NDArray[np.float64], status: NDArray[np.int8], cells: list[Cell]
+) -> bool:
+    """Hide the smallest shown cell among ``cells`` (non-zero first); False if none is left."""
+    shown = [cell for cell in cells if status[cell] == _SHOWN and not np.isnan(values[cell])]
+    if not shown:
+        return False
+    nonzero = [cell for cell in shown if values[cell] > 0]
+    status[min(nonzero or shown, key=lambda cell: (values[cell], cell))] = _SECONDARY
+    return True
+
+
 def _protect(
-    values: NDArray[np.float64], status: NDArray[np.int8], relations: list[list[tuple[int, int]]]
+    values: NDArray[np.float64], status: NDArray[np.int8], relations: list[Relation]
 ) -> None:
     """Apply secondary suppression in place until no relation has exactly one hidden cell."""
     changed = True
     while changed:
         changed = False
         for relation in relations:
-            cells = [cell for cell in relation if not np.isnan(values[cell])]
-            if len(cells) < 2:
+            cells = [cell for cell, _ in relation if not np.isnan(values[cell])]
+            if len(cells) < 2 or sum(status[cell] != _SHOWN for cell in cells) != 1:
                 continue
-            if sum(status[cell] != _SHOWN for cell in cells) != 1:
-                continue
-            shown = [cell for cell in cells if status[cell] == _SHOWN]
-            nonzero = [cell for cell in shown if values[cell] > 0]
-            pick = min(nonzero or shown, key=lambda cell: (values[cell], cell))
-            status[pick] = _SECONDARY
-            changed = True
+            changed = _hide_complement(values, status, cells) or changed
+
+
+def _determined(
+    values: NDArray[np.float64], status: NDArray[np.int8], relations: list[Relation]
+) -> list[Cell]:
+    """Hidden cells whose value follows from some linear combination of the relations.
+
+    A hidden cell is determined exactly when every solution of the relations (restricted to
+    the hidden cells) moves it by zero, i.e. its row of the null-space basis is zero.
+    """
+    hidden = [
+        (int(i), int(j)) for i, j in zip(*np.nonzero(status != _SHOWN), strict=True)
+    ]
+    if not hidden:
+        return []
+    index = {cell: k for k, cell in enumerate(hidden)}
+    matrix = np.zeros((max(len(relations), 1), len(hidden)))
+    for r, relation in enumerate(relations):
+        for cell, coefficient in relation:
+            if cell in index and not np.isnan(values[cell]):
+                matrix[r, index[cell]] = coefficient
+    basis = linalg.null_space(matrix)
+    return [cell for cell in hidden if np.linalg.norm(basis[index[cell]]) < 1e-9]
 
 
 def suppress_counts(
@@ -157,12 +197,19 @@ def suppress_counts(
     status = np.where((values >= 1) & (values < threshold), _PRIMARY, _SHOWN).astype(np.int8)
     relations = _relations(
         table,
-        len(cells),
+        len(count_columns),
         row_totals=total_column is not None,
         column_totals=column_totals,
         group_by=group_by,
     )
     _protect(values, status, relations)
+    # Subtraction is now blocked; close the rarer leaks where a cell follows from a combination
+    # of relations (e.g. two blocks of hidden cells joined by one cell).
+    while leaks := _determined(values, status, relations):
+        around = [c for rel in relations if any(c == leaks[0] for c, _ in rel) for c, _ in rel]
+        if not _hide_complement(values, status, around):
+            break
+        _protect(values, status, relations)
     labels = {_PRIMARY: f"<{threshold}", _SECONDARY: secondary_marker}
     replaced: list[pl.Series] = []
     dependent_hidden: dict[str, NDArray[np.bool_]] = {}

@@ -21,8 +21,9 @@ missing     int      patients in the group with no value for the variable
 ==========  =======  =============================================================
 
 Rows come in the order: variables as listed; within a variable, groups ("overall" first, then
-the values of ``by`` sorted with null last); within a group, levels sorted. Every level seen anywhere appears in every group, with
-``n = 0`` where absent, so groups line up and suppression sees every cell.
+the values of ``by`` sorted with null last); within a group, levels sorted. Every level seen
+anywhere appears in every group, with ``n = 0`` where absent, so groups line up and suppression
+sees every cell.
 """
 
 from __future__ import annotations
