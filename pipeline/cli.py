@@ -7,6 +7,7 @@ fix are printed as one plain message (file:line where there is one) with exit co
 from __future__ import annotations
 
 import datetime as dt
+import json
 import sys
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
@@ -18,6 +19,7 @@ from rich.console import Console
 from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
 
 from pipeline._build import BuildOptions, build_study, plan_study, verify_output
+from pipeline._explain import explain_patient, render_trace
 from pipeline.compile import Stage
 from pipeline.config._check import check_paths, explain_condition
 from pipeline.errors import AscertainError
@@ -193,3 +195,24 @@ def verify(
         console.print(f"identical: {output} rebuilt bit for bit from its manifest")
         return
     raise typer.Exit(1)
+
+
+@app.command()
+def explain(
+    study: StudyArg,
+    patient: Annotated[str, typer.Option(help="The patient_id to trace.")],
+    extract: Annotated[
+        Path | None, typer.Option(help="Trace on this extract folder instead of the study's.")
+    ] = None,
+    output_format: Annotated[str, typer.Option("--format", help="text or json.")] = "text",
+    debug: DebugOpt = False,
+) -> None:
+    """Trace one patient: index, each eligibility step, evidence, rules met, follow-up."""
+    if output_format not in ("text", "json"):
+        Console(stderr=True).print(f"error: --format must be text or json, not '{output_format}'")
+        raise typer.Exit(2)
+    trace = _fail_cleanly(lambda: explain_patient(study, patient, extract=extract), debug=debug)
+    if output_format == "json":
+        typer.echo(json.dumps(trace, indent=2, sort_keys=True, default=str))
+    else:
+        typer.echo(render_trace(trace))

@@ -144,6 +144,13 @@ class Plan:
             outputs=((name, name, order),),
         )
 
+    def with_outputs(self, names: tuple[str, ...]) -> Plan:
+        """The same stages with some of them (tables or views) as the outputs, unsorted."""
+        for name in names:
+            self.stage(name)
+        outputs = tuple((name, name, ()) for name in names)
+        return Plan(self.study, self.sources, self.stages, outputs, self.columns)
+
     def explain(self, dialect: str = SOURCE_DIALECT, *, only: str | None = None) -> str:
         """Render the plan as commented SQL, one stage after another."""
         parts = [f"-- plan for study {self.study} ({len(self.stages)} stages, dialect {dialect})"]

@@ -118,6 +118,7 @@ class DuckDBEngine:
         con: duckdb.DuckDBPyConnection,
         sources: tuple[SourceTable, ...],
         tables: dict[str, ExtractTable],
+        patients: tuple[str, ...] | None = None,
     ) -> None:
         id_type = exp.DataType.build(self._id_type(con, tables["patients"]), dialect=self.DIALECT)
         for source in sources:
@@ -131,6 +132,13 @@ class DuckDBEngine:
                 else:
                     columns.append(exp.column(name))
             view = exp.select(*columns).from_(exp.Table(this=_reader(table)))
+            if patients is not None:
+                # Restrict every table to some patients (a trace); ids compared as typed values.
+                wanted = [
+                    exp.TryCast(this=exp.Literal.string(p), to=id_type.copy()) for p in patients
+                ]
+                typed = exp.TryCast(this=exp.column("patient_id"), to=id_type.copy())
+                view = view.where(typed.isin(*wanted))
             con.execute(_create("VIEW", source.relation, view).sql(self.DIALECT))
 
     def _execute(self, con: duckdb.DuckDBPyConnection, stage: Stage) -> int | None:
@@ -153,8 +161,11 @@ class DuckDBEngine:
         tables: dict[str, ExtractTable],
         *,
         on_stage: StageCallback | None = None,
+        patients: tuple[str, ...] | None = None,
     ) -> RunResult:
         """Run every stage of the plan and return its outputs, sorted as the plan says.
+
+        ``patients`` restricts every source table to those patient ids (used to trace one).
 
         Raises:
             EngineError: DuckDB rejected a stage or a check stage found offending rows.
@@ -162,7 +173,7 @@ class DuckDBEngine:
         with tempfile.TemporaryDirectory(prefix="ascertain-scratch-") as scratch:
             con = self._connect(Path(scratch))
             try:
-                return self._run(con, plan, tables, on_stage)
+                return self._run(con, plan, tables, on_stage, patients)
             except duckdb.Error as err:
                 raise EngineError(f"DuckDB failed: {err}") from err
             finally:
@@ -174,8 +185,9 @@ class DuckDBEngine:
         plan: Plan,
         tables: dict[str, ExtractTable],
         on_stage: StageCallback | None,
+        patients: tuple[str, ...] | None,
     ) -> RunResult:
-        self._bind(con, plan.sources, tables)
+        self._bind(con, plan.sources, tables, patients)
         reports: list[StageReport] = []
         for number, stage in enumerate(plan.stages, start=1):
             if on_stage:
@@ -189,6 +201,8 @@ class DuckDBEngine:
             log.debug("stage %s: %.3fs, %s rows", stage.name, reports[-1].seconds, rows)
         outputs = {}
         for output, stage_name, order in plan.outputs:
-            select = exp.select("*").from_(stage_name).order_by(*order)
+            select = exp.select("*").from_(stage_name)
+            if order:
+                select = select.order_by(*order)
             outputs[output] = con.sql(select.sql(self.DIALECT)).to_arrow_table()
         return RunResult(outputs, reports)

@@ -29,11 +29,17 @@ The rule, precisely:
    left), and shown as ``secondary_marker``. This repeats over all relations until none has
    exactly one hidden cell.
 
-The result guarantees that no hidden cell can be recovered by subtraction from any row or
-column total, even step by step (subtraction needs a relation with exactly one unknown, and
-none is left). It is not a full audit against every linear combination of relations or against
-interval reasoning (e.g. two hidden cells known to sum to 2 must both be 1); tables where that
-matters need a dedicated tool such as tau-ARGUS.
+6. **Linear audit.** Subtraction can also work through a combination of relations (two blocks
+   of hidden cells joined by a single hidden cell). After step 5, every hidden cell whose value
+   is fixed by the relations (its row of the null space of the relations restricted to hidden
+   cells is zero) gets the smallest shown cell of one of its relations hidden as well, and
+   step 5 runs again, until no hidden cell is determined.
+
+The result: no hidden cell can be recovered from the row and column totals by subtraction,
+step by step or through any linear combination of them. What it does not cover is reasoning
+with bounds (e.g. two hidden cells known to sum to 2 must both be 1, or a "*" cell known to be
+0 or at least the threshold); tables where that matters need a dedicated tool such as
+tau-ARGUS.
 
 Secondary cells are marked differently from primary ones because they are usually large:
 showing a hidden 120 as "<5" would misstate it. The report's footnote should say
@@ -78,8 +84,7 @@ def _relations(
         if group_by:
             keyed = table.select(group_by).with_row_index("_row")
             groups = [
-                g["_row"].to_list()
-                for g in keyed.partition_by(list(group_by), maintain_order=True)
+                g["_row"].to_list() for g in keyed.partition_by(list(group_by), maintain_order=True)
             ]
         else:
             groups = [list(range(table.height))]
@@ -121,9 +126,7 @@ def _determined(
     A hidden cell is determined exactly when every solution of the relations (restricted to
     the hidden cells) moves it by zero, i.e. its row of the null-space basis is zero.
     """
-    hidden = [
-        (int(i), int(j)) for i, j in zip(*np.nonzero(status != _SHOWN), strict=True)
-    ]
+    hidden = [(int(i), int(j)) for i, j in zip(*np.nonzero(status != _SHOWN), strict=True)]
     if not hidden:
         return []
     index = {cell: k for k, cell in enumerate(hidden)}

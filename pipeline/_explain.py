@@ -1,0 +1,253 @@
+"""``ascertain explain``: why one patient is in or out, and which evidence made each case.
+
+The trace runs the study's own plan on the engine with every source table restricted to the one
+patient, and reads the intermediate stages; nothing is re-implemented in Python, so the trace
+cannot drift from the build.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from pathlib import Path
+from typing import Any
+
+from pipeline.compile import Plan, compile_study
+from pipeline.config import Condition, load_study
+from pipeline.engine import DuckDBEngine
+from pipeline.extract import discover_extract
+from pipeline.measures import DERIVED_FROM
+
+Trace = dict[str, Any]
+
+
+def _iso(value: Any) -> Any:
+    return value.isoformat() if isinstance(value, dt.date) else value
+
+
+def _rows(result: dict[str, Any], name: str) -> list[dict[str, Any]]:
+    table = result.get(name)
+    if table is None:
+        return []
+    return [{k: _iso(v) for k, v in row.items()} for row in table.to_pylist()]
+
+
+def _trace_stages(plan: Plan) -> tuple[str, ...]:
+    wanted = [
+        "patient_base",
+        "encounter_summary",
+        "index_dates",
+        "eligibility",
+        "attrition",
+        "cohort",
+        "evidence_events",
+        "coded_matches",
+        "measurement_rows",
+        "derived_egfr",
+        "derived_bmi",
+    ]
+    names = {s.name for s in plan.stages}
+    rules = [s.name for s in plan.stages if s.name.startswith("rules_")]
+    return tuple(n for n in wanted if n in names) + tuple(rules)
+
+
+def _measurements(measures: set[str], outputs: dict[str, Any]) -> list[dict[str, Any]]:
+    rows = [
+        {
+            "date": r["obs_date"],
+            "measure": r["measure"],
+            "raw": " ".join(
+                str(v) for v in (r["raw_value"], r["raw_value_text"], r["raw_unit"]) if v
+            ),
+            "value": r["value"],
+            "status": r["problem"] or "used",
+        }
+        for r in _rows(outputs, "measurement_rows")
+        if r["measure"] in measures
+    ]
+    for derived in ("derived_egfr", "derived_bmi"):
+        rows += [
+            {
+                "date": r["obs_date"],
+                "measure": r["measure"],
+                "raw": "derived",
+                "value": r["value"],
+                "status": "used",
+            }
+            for r in _rows(outputs, derived)
+            if r["measure"] in measures
+        ]
+    return sorted(rows, key=lambda r: (r["date"] or "", r["measure"], r["raw"]))
+
+
+def _outcome(
+    condition: Condition, outputs: dict[str, Any], cohort: dict[str, Any] | None
+) -> dict[str, Any]:
+    name = condition.condition
+    prefix = f"{name}."
+    coded = [
+        {
+            "date": r["event_date"],
+            "kind": "prescription" if r["code_system"] == "ATC" else "diagnosis",
+            "system": r["code_system"],
+            "raw_code": r["raw_code"],
+            "normalised": r["code"],
+            "evidence": r["evidence"].removeprefix(prefix),
+            "counts": not r["excluded"],
+        }
+        for r in _rows(outputs, "coded_matches")
+        if r["evidence"].startswith(prefix)
+    ]
+    measured = [
+        {
+            "date": r["event_date"],
+            "kind": "evidence day",
+            "evidence": r["evidence"].removeprefix(prefix),
+            "rows": r["n_rows"],
+        }
+        for r in _rows(outputs, "evidence_events")
+        if r["evidence"].startswith(prefix)
+        and not any(c["date"] == r["event_date"] and c["evidence"] in r["evidence"] for c in coded)
+    ]
+    rules = [
+        {"rule": r["rule"], "met_on": r["onset_date"]} for r in _rows(outputs, f"rules_{name}")
+    ]
+    measures = {e.measurement.measure for e in condition.evidence.values() if e.measurement}
+    for measure in list(measures):
+        measures.update(DERIVED_FROM.get(measure, ()))
+    entry: dict[str, Any] = {
+        "evidence": sorted(coded + measured, key=lambda e: (e["date"] or "", e["evidence"])),
+        "measurements": _measurements(measures, outputs),
+        "rules_met": sorted(rules, key=lambda r: (r["met_on"], r["rule"])),
+    }
+    if cohort is not None:
+        entry |= {
+            "onset": _iso(cohort[f"onset_{name}"]),
+            "prevalent": cohort[f"prevalent_{name}"],
+            "incident": cohort[f"incident_{name}"],
+            "days_to": cohort[f"days_to_{name}"],
+        }
+    return entry
+
+
+def explain_patient(study_file: Path, patient_id: str, *, extract: Path | None = None) -> Trace:
+    """Trace one patient through a study.
+
+    Raises:
+        AscertainError: Bad config or extract (as for a build).
+    """
+    loaded = load_study(study_file)
+    plan = compile_study(loaded)
+    folder = (extract or loaded.study.extract).resolve()
+    tables = discover_extract(folder, plan.sources)
+    run = DuckDBEngine(threads=1).run(
+        plan.with_outputs(_trace_stages(plan)), tables, patients=(patient_id,)
+    )
+    outputs = run.outputs
+    patient = _rows(outputs, "patient_base")
+    eligibility = _rows(outputs, "eligibility")
+    cohort_rows = _rows(outputs, "cohort")
+    cohort = cohort_rows[0] if cohort_rows else None
+    trace: Trace = {
+        "study": loaded.study.study,
+        "patient_id": patient_id,
+        "in_patients_table": bool(patient),
+        "patient": patient[0] if patient else None,
+        "encounters": _rows(outputs, "encounter_summary")[:1] or None,
+        "index_date": eligibility[0]["index_date"] if eligibility else None,
+        "in_source_population": bool(eligibility),
+        "eligibility": _steps(outputs, eligibility[0] if eligibility else None),
+        "in_cohort": cohort is not None,
+        "outcomes": {
+            c: _outcome(loaded.catalog.get(c), outputs, cohort)
+            for c in loaded.study.outcomes.conditions
+        },
+        "followup": None
+        if cohort is None
+        else {
+            "end": cohort["followup_end"],
+            "days": cohort["followup_days"],
+            "reason": cohort["end_reason"],
+        },
+    }
+    if cohort is not None:
+        names = list(cohort)
+        first_outcome = next(i for i, n in enumerate(names) if n.startswith("prevalent_"))
+        trace["covariates"] = {n: cohort[n] for n in names[names.index("sex") + 1 : first_outcome]}
+    return trace
+
+
+_SHOWN = ("sex", "death_date", "age_at_index", "first_encounter", "practice_id")
+
+
+def _steps(outputs: dict[str, Any], row: dict[str, Any] | None) -> list[dict[str, Any]]:
+    if row is None:
+        return []
+    attrition = _rows(outputs, "attrition")[1:]
+    return [
+        {
+            "step": step["step"],
+            "description": step["description"],
+            "passed": bool(row[f"step_{i}"]),
+        }
+        for i, step in enumerate(attrition, start=1)
+    ] + [{"values": {k: row[k] for k in _SHOWN if k in row}}]
+
+
+def _render_outcome(name: str, outcome: dict[str, Any]) -> list[str]:
+    lines = [f"  outcome {name}:"]
+    for event in outcome["evidence"]:
+        if event["kind"] == "evidence day":
+            detail = f"{event['rows']} row(s)"
+        else:
+            detail = (
+                f"{event['kind']} {event['system']} '{event['raw_code']}' -> "
+                f"{event['normalised']}" + ("" if event["counts"] else " (excluded)")
+            )
+        lines.append(f"    {event['date']}  {event['evidence']:<18} {detail}")
+    for m in outcome["measurements"]:
+        value = "-" if m["value"] is None else f"{m['value']:.4g}"
+        lines.append(f"    {m['date']}  {m['measure']:<18} {m['raw']} -> {value} ({m['status']})")
+    lines += [f"    rule '{r['rule']}' met on {r['met_on']}" for r in outcome["rules_met"]]
+    if "onset" in outcome:
+        if outcome["prevalent"]:
+            status = "prevalent at index"
+        else:
+            status = "incident" if outcome["incident"] else "not incident"
+        lines.append(f"    onset {outcome['onset'] or '-'}: {status}")
+    return lines
+
+
+def _render_steps(trace: Trace) -> list[str]:
+    steps = [s for s in trace["eligibility"] if "step" in s]
+    values = next((s["values"] for s in trace["eligibility"] if "values" in s), {})
+    lines = [f"  values: {', '.join(f'{k}={v}' for k, v in values.items())}"]
+    for number, step in enumerate(steps, start=1):
+        mark = "pass" if step["passed"] else "FAIL"
+        lines.append(f"  step {number} {step['step']}: {mark} ({step['description']})")
+        if not step["passed"]:
+            lines.append("  excluded at this step")
+            break
+    return lines
+
+
+def render_trace(trace: Trace) -> str:
+    """The trace as plain text for a terminal."""
+    lines = [f"Patient {trace['patient_id']} in study {trace['study']}"]
+    if not trace["in_patients_table"]:
+        return "\n".join([*lines, "  not in the patients table: none of its rows are used"])
+    patient = trace["patient"]
+    lines.append(
+        f"  born {patient['birth_date']}, sex {patient['sex']}, died {patient['death_date'] or '-'}"
+    )
+    if not trace["in_source_population"]:
+        return "\n".join([*lines, "  no index date: not in the source population"])
+    lines.append(f"  index date {trace['index_date']}")
+    lines += _render_steps(trace)
+    lines.append(f"  in the cohort: {'yes' if trace['in_cohort'] else 'no'}")
+    for name, outcome in trace["outcomes"].items():
+        lines += _render_outcome(name, outcome)
+    if trace["followup"]:
+        fu = trace["followup"]
+        lines.append(f"  follow-up ends {fu['end']} ({fu['reason']}), {fu['days']} days")
+    lines += [f"  {name} = {value}" for name, value in trace.get("covariates", {}).items()]
+    return "\n".join(lines)
