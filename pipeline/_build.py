@@ -124,6 +124,7 @@ def build_study(
     files = write_outputs(
         out,
         cohort=run.outputs["cohort"],
+        population=run.outputs["population"],
         attrition=run.outputs["attrition"],
         quality=run.outputs["quality"],
         columns=plan.columns,

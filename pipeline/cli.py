@@ -19,6 +19,7 @@ from rich.console import Console
 from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
 
 from pipeline._build import BuildOptions, build_study, plan_study, verify_output
+from pipeline._diff import diff_runs, render_diff
 from pipeline._explain import explain_patient, render_trace
 from pipeline.compile import Stage
 from pipeline.config._check import check_paths, explain_condition
@@ -216,3 +217,14 @@ def explain(
         typer.echo(json.dumps(trace, indent=2, sort_keys=True, default=str))
     else:
         typer.echo(render_trace(trace))
+
+
+@app.command()
+def diff(
+    run_a: Annotated[Path, typer.Argument(help="The first output folder.")],
+    run_b: Annotated[Path, typer.Argument(help="The second output folder.")],
+    debug: DebugOpt = False,
+) -> None:
+    """Report patients gained and lost per attrition step and outcome between two builds."""
+    result = _fail_cleanly(lambda: diff_runs(run_a, run_b), debug=debug)
+    typer.echo(render_diff(result))

@@ -51,6 +51,7 @@ def test_output_files(built: Path) -> None:
         "dictionary.csv",
         "dictionary.md",
         "manifest.json",
+        "population.parquet",
         "quality.csv",
         "run.json",
     ]

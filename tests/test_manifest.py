@@ -50,6 +50,7 @@ def test_manifest_lists_inputs_outputs_and_versions(workspace: tuple[Path, Path,
         "cohort.parquet",
         "dictionary.csv",
         "dictionary.md",
+        "population.parquet",
         "quality.csv",
     ]
     assert manifest["engine"]["name"] == "duckdb"

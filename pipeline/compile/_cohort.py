@@ -260,6 +260,23 @@ def cohort_stages(ctx: CompileContext) -> tuple[Stage, ...]:
             "patients before, removed and remaining at each eligibility step",
         )
     )
+    excluded_at = exp.Case()
+    for i, name in enumerate(names, start=1):
+        excluded_at = excluded_at.when(exp.not_(exp.column(f"step_{i}")), value(name))
+    stages.append(
+        Stage(
+            "population",
+            exp.select("patient_id", "index_date", excluded_at.as_("excluded_at")).from_(
+                "eligibility"
+            )
+            if names
+            else exp.select(
+                "patient_id", "index_date", exp.cast(exp.null(), "VARCHAR").as_("excluded_at")
+            ).from_("eligibility"),
+            ("eligibility",),
+            "the source population with the first eligibility step each patient failed",
+        )
+    )
     cohort_depends = ["eligibility", *(s.name for s in optional if s is not None)]
     stages.append(
         Stage(

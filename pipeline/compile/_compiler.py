@@ -42,6 +42,7 @@ def compile_study(loaded: LoadedStudy) -> Plan:
         stages=stages,
         outputs=(
             ("cohort", "cohort", ("patient_id",)),
+            ("population", "population", ("patient_id",)),
             ("attrition", "attrition", ("step_number",)),
             ("quality", "quality_log", ("source_table", "outcome", "reason")),
             ("rows_read", "rows_read", ("source_table",)),

@@ -99,6 +99,7 @@ def write_outputs(
     target: Path,
     *,
     cohort: pa.Table,
+    population: pa.Table,
     attrition: pa.Table,
     quality: pa.Table,
     columns: tuple[ColumnDoc, ...],
@@ -118,6 +119,7 @@ def write_outputs(
     staged = Path(tempfile.mkdtemp(prefix=f".{target.name}.new-", dir=target.parent))
     try:
         write_parquet(cohort, staged / "cohort.parquet")
+        write_parquet(population, staged / "population.parquet")
         write_attrition(attrition, staged / "attrition.csv")
         write_csv(quality, QUALITY_COLUMNS, staged / "quality.csv")
         write_dictionary(columns, staged)
@@ -133,6 +135,7 @@ def write_outputs(
 
 DATA_FILES = (
     "cohort.parquet",
+    "population.parquet",
     "attrition.csv",
     "quality.csv",
     "dictionary.csv",

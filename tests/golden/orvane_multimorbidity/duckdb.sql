@@ -1,4 +1,4 @@
--- plan for study orvane_multimorbidity (29 stages, dialect duckdb)
+-- plan for study orvane_multimorbidity (30 stages, dialect duckdb)
 
 -- reads src_patients: patient_id, sex, death_date, birth_date, birth_year, practice_id, registration_date, deregistration_date
 
@@ -1984,6 +1984,25 @@ FROM (
     n_5
   FROM totals
 ) AS steps;
+
+-- stage population [table]: the source population with the first eligibility step each patient failed
+-- reads: eligibility
+SELECT
+  patient_id,
+  index_date,
+  CASE
+    WHEN NOT step_1
+    THEN 'sex'
+    WHEN NOT step_2
+    THEN 'alive_at_index'
+    WHEN NOT step_3
+    THEN 'age'
+    WHEN NOT step_4
+    THEN 'history'
+    WHEN NOT step_5
+    THEN 'at_risk_any_outcome'
+  END AS excluded_at
+FROM eligibility;
 
 -- stage cohort [table]: the analysis table: one row per eligible patient
 -- reads: eligibility, window_counts, measure_covariates
