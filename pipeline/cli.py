@@ -21,7 +21,9 @@ from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
 from pipeline._build import BuildOptions, build_study, plan_study, verify_output
 from pipeline._diff import diff_runs, render_diff
 from pipeline._explain import explain_patient, render_trace
+from pipeline._validate import render_validation, validate_study
 from pipeline.compile import Stage
+from pipeline.config import load_study
 from pipeline.config._check import check_paths, explain_condition
 from pipeline.errors import AscertainError
 
@@ -228,3 +230,22 @@ def diff(
     """Report patients gained and lost per attrition step and outcome between two builds."""
     result = _fail_cleanly(lambda: diff_runs(run_a, run_b), debug=debug)
     typer.echo(render_diff(result))
+
+
+@app.command()
+def validate(
+    study: StudyArg,
+    reference: Annotated[Path, typer.Option(help="Reference standard (CSV or Parquet).")],
+    extract: Annotated[
+        Path | None, typer.Option(help="Use this extract folder instead of the study's.")
+    ] = None,
+    debug: DebugOpt = False,
+) -> None:
+    """Compare each outcome's definition with a reference standard: sensitivity, PPV, kappa."""
+
+    def run() -> str:
+        results = validate_study(study, reference, extract=extract)
+        threshold = load_study(study).study.output.small_cell_threshold
+        return render_validation(results, threshold)
+
+    typer.echo(_fail_cleanly(run, debug=debug))

@@ -1,0 +1,176 @@
+"""``ascertain validate``: how well a case definition agrees with a reference standard.
+
+The reference is a table of ``patient_id, condition, status[, date]`` (chart review, say) or
+the synthetic ground truth ``patient_id, condition, true_onset_date``. Every patient of the
+extract's patients table is classified by the definition (a case when a rule is met by the end
+of data) and by the reference (a case when its status is true, or its date is on or before the
+end of data); the four cells give sensitivity, specificity, predictive values and kappa.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import polars as pl
+
+from pipeline.compile import compile_study
+from pipeline.config import load_study
+from pipeline.engine import DuckDBEngine
+from pipeline.errors import AscertainError
+from pipeline.extract import discover_extract
+from pipeline.stats import (
+    DiagnosticAccuracy,
+    OnsetAgreement,
+    diagnostic_accuracy,
+    onset_agreement,
+)
+
+
+@dataclass(frozen=True)
+class Validation:
+    """One condition's agreement with the reference."""
+
+    condition: str
+    accuracy: DiagnosticAccuracy
+    onsets: OnsetAgreement
+
+
+def read_reference(path: Path) -> pl.DataFrame:
+    """Read a reference file into ``patient_id, condition, status, date``.
+
+    Raises:
+        AscertainError: Unreadable file, or columns that are neither layout.
+    """
+    try:
+        frame = pl.read_parquet(path) if path.suffix == ".parquet" else pl.read_csv(path)
+    except (OSError, pl.exceptions.PolarsError) as err:
+        raise AscertainError(f"{path}: cannot read the reference: {err}") from err
+    columns = set(frame.columns)
+
+    def as_date(name: str) -> pl.Expr:
+        if frame.schema[name] == pl.Date:
+            return pl.col(name)
+        return pl.col(name).cast(pl.String).str.to_date("%Y-%m-%d", strict=False)
+
+    if {"patient_id", "condition", "true_onset_date"} <= columns:
+        date = as_date("true_onset_date")
+        return frame.select(
+            pl.col("patient_id").cast(pl.String),
+            pl.col("condition").cast(pl.String),
+            date.is_not_null().alias("status"),
+            date.alias("date"),
+        )
+    if {"patient_id", "condition", "status"} <= columns:
+        date = as_date("date") if "date" in columns else pl.lit(None, pl.Date)
+        status = pl.col("status").cast(pl.String).str.to_lowercase().is_in(["1", "true", "yes"])
+        return frame.select(
+            pl.col("patient_id").cast(pl.String),
+            pl.col("condition").cast(pl.String),
+            status.alias("status"),
+            date.alias("date"),
+        )
+    raise AscertainError(
+        f"{path}: a reference needs columns patient_id, condition and status (optionally date), "
+        f"or patient_id, condition and true_onset_date; found: {', '.join(frame.columns)}"
+    )
+
+
+def validate_study(
+    study_file: Path, reference: Path, *, extract: Path | None = None
+) -> list[Validation]:
+    """Compare each outcome of a study with the reference standard.
+
+    Raises:
+        AscertainError: Bad config, extract or reference; no outcome in the reference.
+    """
+    loaded = load_study(study_file)
+    plan = compile_study(loaded)
+    folder = (extract or loaded.study.extract).resolve()
+    tables = discover_extract(folder, plan.sources)
+    partial = plan.through("condition_onsets").with_outputs(("patient_base", "condition_onsets"))
+    run = DuckDBEngine().run(partial, tables)
+    patients = pl.from_arrow(run.outputs["patient_base"]).select(
+        pl.col("patient_id").cast(pl.String)
+    )
+    onsets = pl.from_arrow(run.outputs["condition_onsets"]).with_columns(
+        pl.col("patient_id").cast(pl.String)
+    )
+    ref = read_reference(reference)
+    end = loaded.study.end_of_data
+    results = []
+    for condition in loaded.study.outcomes.conditions:
+        wanted = ref.filter(pl.col("condition") == condition)
+        if wanted.is_empty():
+            continue
+        case_by_ref = wanted.with_columns(
+            (pl.col("status") & (pl.col("date").is_null() | (pl.col("date") <= end))).alias(
+                "ref_case"
+            )
+        ).select("patient_id", "ref_case", pl.col("date").alias("ref_date"))
+        joined = (
+            patients.join(onsets.select("patient_id", f"onset_{condition}"), "patient_id", "left")
+            .join(case_by_ref, "patient_id", "left")
+            .with_columns(
+                pl.col(f"onset_{condition}").is_not_null().alias("def_case"),
+                pl.col("ref_case").fill_null(value=False),
+            )
+        )
+        cells = {
+            name: joined.filter(rule).height
+            for name, rule in {
+                "tp": pl.col("def_case") & pl.col("ref_case"),
+                "fp": pl.col("def_case") & ~pl.col("ref_case"),
+                "fn": ~pl.col("def_case") & pl.col("ref_case"),
+                "tn": ~pl.col("def_case") & ~pl.col("ref_case"),
+            }.items()
+        }
+        both = joined.filter(
+            pl.col("def_case") & pl.col("ref_case") & pl.col("ref_date").is_not_null()
+        )
+        differences = (both[f"onset_{condition}"] - both["ref_date"]).dt.total_days().to_list()
+        results.append(
+            Validation(condition, diagnostic_accuracy(**cells), onset_agreement(differences))
+        )
+    if not results:
+        raise AscertainError(
+            f"{reference}: no rows for the study's outcomes "
+            f"({', '.join(loaded.study.outcomes.conditions)})"
+        )
+    return results
+
+
+def _shown(count: int, threshold: int) -> str:
+    return f"<{threshold}" if 0 < count < threshold else str(count)
+
+
+def render_validation(results: list[Validation], threshold: int) -> str:
+    """The agreement as plain text; counts below the threshold are shown as ``<threshold``."""
+    lines = []
+    for r in results:
+        a = r.accuracy
+        cells = ", ".join(
+            f"{name} {_shown(getattr(a, name), threshold)}" for name in ("tp", "fp", "fn", "tn")
+        )
+        lines.append(f"{r.condition}: {cells}")
+        for label in ("sensitivity", "specificity", "ppv", "npv"):
+            value = getattr(a, label)
+            lines.append(
+                f"  {label:<12} {value.estimate:.3f} (95% CI {value.low:.3f}-{value.high:.3f})"
+            )
+        kappa = a.kappa
+        lines.append(
+            f"  {'kappa':<12} {kappa.estimate:.3f} (95% CI {kappa.low:.3f}-{kappa.high:.3f})"
+        )
+        o = r.onsets
+        if o.n:
+            n = _shown(o.n, threshold)
+            lines.append(
+                f"  onset dates: median difference {o.median_difference:+.0f} days, "
+                f"{o.share_within.estimate:.1%} within {o.within_days} days (n {n})"
+            )
+    lines.append(
+        "Research use only. Counts below the threshold are suppressed; intervals from small "
+        "counts are wide."
+    )
+    return "\n".join(lines)
