@@ -209,3 +209,78 @@ def test_charlson_on_the_engine_agrees_with_comorbidipy(tmp_path: Path) -> None:
     assert cohort["cci_quan"].to_list() == [q + 2 * a for q, a in zip(quan, aids, strict=True)]
     assert sum(aids) > 0
     assert sum(s > 0 for s in cohort["cci"].to_list()) > 100
+
+
+LOOKBACK_STUDY = AGE_STUDY.replace(
+    "outcomes: {{conditions: [heart_failure], horizon_days: 365}}",
+    "outcomes: {{conditions: [heart_failure], horizon_days: 730, lookback: {lookback}}}",
+)
+
+
+@pytest.mark.parametrize(
+    ("lookback", "expected"),
+    [
+        # all history: A and C were prevalent from their 2010 codes
+        (
+            "all",
+            {
+                "A": (True, None, "2010-06-01"),
+                "B": (True, None, "2014-06-01"),
+                "C": (True, None, "2010-06-01"),
+            },
+        ),
+        # 730 days before 2015-03-02 is 2013-03-02: the 2010 codes no longer count; A's 2016
+        # codes make an incident onset, C has none, B's 2014 codes still make it prevalent
+        (
+            "730",
+            {
+                "A": (False, True, "2016-02-01"),
+                "B": (True, None, "2014-06-01"),
+                "C": (False, False, None),
+            },
+        ),
+    ],
+)
+def test_lookback_for_prevalence(tmp_path: Path, lookback: str, expected: dict) -> None:
+    def hf(pid: str, day: str) -> dict:
+        return {"patient_id": pid, "event_date": day, "code_system": "ICD10", "code": "I50.9"}
+
+    extract = write_extract(
+        tmp_path / "x",
+        {
+            "patients": [{"patient_id": p, "birth_date": "1950-01-01", "sex": "F"} for p in "ABC"],
+            "encounters": [{"patient_id": p, "encounter_date": "2010-01-01"} for p in "ABC"],
+            "diagnoses": [
+                hf("A", "2010-01-01"),
+                hf("A", "2010-06-01"),
+                hf("A", "2016-01-01"),
+                hf("A", "2016-02-01"),
+                hf("B", "2014-01-01"),
+                hf("B", "2014-06-01"),
+                hf("C", "2010-01-01"),
+                hf("C", "2010-06-01"),
+            ],
+        },
+    )
+    study = tmp_path / "study.yaml"
+    study.write_text(
+        LOOKBACK_STUDY.format(
+            extract=extract,
+            definitions=ROOT / "definitions" / "conditions",
+            day="2015-03-02",
+            out=tmp_path / "out",
+            lookback=lookback,
+        ),
+        encoding="utf-8",
+    )
+    build_study(study, BuildOptions())
+    cohort = pl.read_parquet(tmp_path / "out" / "cohort.parquet")
+    got = {
+        r["patient_id"]: (
+            r["prevalent_heart_failure"],
+            r["incident_heart_failure"],
+            r["onset_heart_failure"] and r["onset_heart_failure"].isoformat(),
+        )
+        for r in cohort.iter_rows(named=True)
+    }
+    assert got == expected

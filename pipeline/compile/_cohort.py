@@ -18,6 +18,7 @@ from pipeline.compile._baseline import (
 from pipeline.compile._context import CompileContext
 from pipeline.compile._index import index_description, index_stage
 from pipeline.compile._plan import Stage
+from pipeline.compile._rules import lookback_stages
 from pipeline.compile._sql import add_days, age_in_years, days_between, expression, value
 from pipeline.config import Criterion
 
@@ -164,9 +165,25 @@ def _with_followup(ctx: CompileContext, source: exp.Expression) -> exp.Query:
     return exp.select(exp.Star(), reason.as_("end_reason")).from_(inner.subquery("fu"))
 
 
+def _lookback_outcomes(ctx: CompileContext) -> list[str]:
+    return [
+        o.condition
+        for o in ctx.outcomes
+        if ctx.study.outcomes.lookback_for(o.condition) is not None
+    ]
+
+
+def _onset_column(name: str, lookback: list[str]) -> exp.Expression:
+    """A condition's onset: from its look-back stage when it has one, else from all history."""
+    if name in lookback:
+        return exp.column("onset_date", f"lb{lookback.index(name)}").as_(f"onset_{name}")
+    return exp.column(f"onset_{name}", "o")
+
+
 def _eligibility_query(ctx: CompileContext, steps: list[exp.Expression]) -> exp.Query:
     names = [c.condition for c in ctx.outcomes]
     onset_columns = [f"onset_{n}" for n in ctx.flagged]
+    lookback = _lookback_outcomes(ctx)
     has_windows = window_counts_stage(ctx) is not None
     window_columns = [
         f"step_evidence_{i}"
@@ -188,7 +205,7 @@ def _eligibility_query(ctx: CompileContext, steps: list[exp.Expression]) -> exp.
             age_in_years(birth=exp.column("birth_date", "p"), on=exp.column("index_date", "i")).as_(
                 "age_at_index"
             ),
-            *(exp.column(c, "o") for c in onset_columns),
+            *(_onset_column(c, lookback) for c in ctx.flagged),
             *(exp.column(c, "w") for c in window_columns),
         )
         .from_("index_dates AS i")
@@ -196,6 +213,13 @@ def _eligibility_query(ctx: CompileContext, steps: list[exp.Expression]) -> exp.
         .join("encounter_summary AS s", on="s.patient_id = i.patient_id")
         .join("condition_onsets AS o", on="o.patient_id = i.patient_id", join_type="left")
     )
+    for number, name in enumerate(lookback):
+        alias = f"lb{number}"
+        base = base.join(
+            exp.to_table(f"onset_{name}_lookback").as_(alias),
+            on=exp.column("patient_id", alias).eq(exp.column("patient_id", "i")),
+            join_type="left",
+        )
     if has_windows:
         base = base.join("window_counts AS w", on="w.patient_id = i.patient_id", join_type="left")
     with_prevalence = exp.select(
@@ -235,10 +259,11 @@ def cohort_stages(ctx: CompileContext) -> tuple[Stage, ...]:
     if study.followup.incomplete == "exclude":
         steps.append(_complete_followup())
         names.append("complete_followup")
-    stages = [index_stage(ctx)]
+    stages = [index_stage(ctx), *lookback_stages(ctx)]
     optional = [window_counts_stage(ctx), measure_covariates_stage(ctx)]
     stages += [stage for stage in optional if stage is not None]
     depends = ["index_dates", "patient_base", "encounter_summary", "condition_onsets"]
+    depends += [f"onset_{n}_lookback" for n in _lookback_outcomes(ctx)]
     if optional[0] is not None:
         depends.append("window_counts")
     stages.append(

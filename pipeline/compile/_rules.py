@@ -17,7 +17,7 @@ from sqlglot import exp
 
 from pipeline.compile._context import CompileContext, evidence_key
 from pipeline.compile._plan import Stage
-from pipeline.compile._sql import days_between, expression, is_in, query, value
+from pipeline.compile._sql import add_days, days_between, expression, is_in, query, value
 from pipeline.config import Condition, Rule
 
 _WITHIN = "RANGE BETWEEN :within PRECEDING AND CURRENT ROW"
@@ -156,15 +156,27 @@ def _events_for(condition: Condition) -> tuple[exp.Expression, tuple[str, ...]]:
     return _union_all(parts).subquery("evidence_events"), tuple(depends)
 
 
-def condition_stages(condition: Condition) -> tuple[Stage, Stage]:
-    """``rules_<c>``: each rule's first date per patient; ``onset_<c>``: the onset per patient."""
+def condition_stages(
+    condition: Condition, *, lookback_days: int | None = None
+) -> tuple[Stage, Stage]:
+    """``rules_<c>``: each rule's first date per patient; ``onset_<c>``: the onset per patient.
+
+    With ``lookback_days`` the stages are named ``rules_<c>_lookback`` and ``onset_<c>_lookback``
+    and read only evidence dated on or after each patient's index date minus that many days.
+    """
     name = condition.condition
     events, depends = _events_for(condition)
+    suffix = ""
+    if lookback_days is not None:
+        suffix = "_lookback"
+        events = _since_lookback(events, lookback_days)
+        depends = (*depends, "index_dates")
     rules = Stage(
-        f"rules_{name}",
+        f"rules_{name}{suffix}",
         _union_all([rule_query(condition, r, events.copy()) for r in condition.rules]),
         depends,
-        f"the first date each rule of {name} is met, per patient",
+        f"the first date each rule of {name} is met, per patient"
+        + (f", from evidence since {lookback_days} days before index" if suffix else ""),
     )
     if condition.onset == "rule_met":
         onset_query = query(_ONSET_RULE_MET, rules=exp.to_table(rules.name))
@@ -174,7 +186,38 @@ def condition_stages(condition: Condition) -> tuple[Stage, Stage]:
         onset_query = query(_ONSET_FIRST_EVIDENCE, rules=exp.to_table(rules.name), events=events)
         onset_depends = (*depends, rules.name)
         why = f"onset of {name}: its first evidence, for patients meeting a rule"
-    return rules, Stage(f"onset_{name}", onset_query, onset_depends, why)
+    return rules, Stage(f"onset_{name}{suffix}", onset_query, onset_depends, why)
+
+
+def _since_lookback(events: exp.Expression, days: int) -> exp.Expression:
+    source = (
+        events if isinstance(events, exp.Subquery) else exp.select("*").from_(events).subquery()
+    )
+    start = add_days(exp.column("index_date", "i"), -days)
+    recent = (
+        exp.select(
+            *(exp.column(c, "e") for c in ("patient_id", "evidence", "event_date", "day", "n_rows"))
+        )
+        .from_(source.as_("e"))
+        .join(
+            "index_dates AS i",
+            on=exp.and_(
+                exp.column("patient_id", "i").eq(exp.column("patient_id", "e")),
+                exp.column("event_date", "e") >= start,
+            ),
+        )
+    )
+    return recent.subquery("evidence_events")
+
+
+def lookback_stages(ctx: CompileContext) -> tuple[Stage, ...]:
+    """Rule and onset stages of outcomes whose prevalence looks back a limited time."""
+    stages: list[Stage] = []
+    for outcome in ctx.outcomes:
+        days = ctx.study.outcomes.lookback_for(outcome.condition)
+        if days is not None:
+            stages.extend(condition_stages(outcome, lookback_days=days))
+    return tuple(stages)
 
 
 def rule_stages(ctx: CompileContext) -> tuple[Stage, ...]:

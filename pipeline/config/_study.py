@@ -175,12 +175,23 @@ class Criterion(Model):
 
 
 class Outcomes(Model):
-    """The conditions followed for incidence, side by side, and the horizon."""
+    """The conditions followed for incidence, side by side, and the horizon.
+
+    ``lookback`` (for every outcome) and ``lookback_by_outcome`` limit the evidence that can make
+    a patient prevalent: with N days, only evidence dated on or after index - N counts for that
+    outcome, so its onset is the first date a rule is met from that evidence on.
+    """
 
     conditions: tuple[Name, ...] = Field(min_length=1)
     horizon_days: PositiveInt | None = None
     horizon_years: PositiveInt | None = None
-    lookback: Literal["all"] = "all"
+    lookback: Literal["all"] | PositiveInt = "all"
+    lookback_by_outcome: dict[Name, Literal["all"] | PositiveInt] = Field(default_factory=dict)
+
+    def lookback_for(self, outcome: str) -> int | None:
+        """Days of look-back for an outcome's prevalence; None means all history."""
+        chosen = self.lookback_by_outcome.get(outcome, self.lookback)
+        return None if chosen == "all" else int(chosen)
 
     @field_validator("conditions")
     @classmethod
@@ -189,6 +200,13 @@ class Outcomes(Model):
         if repeated:
             raise ValueError(f"outcome listed twice: {', '.join(repeated)}")
         return value
+
+    @model_validator(mode="after")
+    def _lookback_names_outcomes(self) -> Self:
+        unknown = sorted(set(self.lookback_by_outcome) - set(self.conditions))
+        if unknown:
+            raise ValueError(f"lookback_by_outcome names non-outcomes: {', '.join(unknown)}")
+        return self
 
     @model_validator(mode="after")
     def _one_horizon(self) -> Self:

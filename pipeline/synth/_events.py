@@ -2,7 +2,7 @@
 
 Each kind of row is made the same way: draw a count per person, ``np.repeat`` the person index
 by the counts, then draw every row's date and attributes in one vectorised call. There is no
-loop over people; the only Python loops run over the four conditions or a few row kinds.
+loop over people; the only Python loops run over the conditions or a few row kinds.
 
 Rows are returned as dicts of equal-length numpy arrays ("columns"); strings are held as indices
 into sorted vocabularies, so that sorting by index is sorting by the string.

@@ -39,8 +39,8 @@ class Population:
         death_day: Death, or :data:`NEVER` when alive at end of data.
         bmi: Usual BMI (kg/m2).
         height: Adult height (cm).
-        latent_u: Frank-copula uniforms, shape ``(n, 4)``, columns in ``CONDITIONS`` order.
-        onset_day: Latent onset per condition, shape ``(n, 4)``; may be after exit or NEVER.
+        latent_u: Frank-copula uniforms, shape ``(n, k)``, columns in ``CONDITIONS`` order.
+        onset_day: Latent onset per condition, shape ``(n, k)``; may be after exit or NEVER.
         end_day: Last day of the extract.
     """
 
@@ -153,7 +153,7 @@ def draw_population(
 
     latent_u = draw_frank_copula(rng, n, len(CONDITIONS), sc.copula_theta)
     onset_day = np.empty((n, len(CONDITIONS)), dtype=np.int64)
-    for j, name in enumerate(CONDITIONS):  # loop over four conditions, not over patients
+    for j, name in enumerate(CONDITIONS):  # loop over the conditions, not over patients
         cond = sc.conditions[name]
         rel = np.exp(cond.bmi_log_hr * (np.where(child, 27.0, bmi) - 27.0))
         age = _onset_age(latent_u[:, j], cond.hazard_at_50, cond.age_log_hr, rel)

@@ -18,9 +18,17 @@ from typing import Any
 
 import numpy as np
 
-GENERATOR_VERSION = "2"
+GENERATOR_VERSION = "3"
 
-CONDITIONS: tuple[str, ...] = ("ckd", "heart_failure", "hypertension", "type2_diabetes")
+CONDITIONS: tuple[str, ...] = (
+    "atrial_fibrillation",
+    "ckd",
+    "copd",
+    "depression",
+    "heart_failure",
+    "hypertension",
+    "type2_diabetes",
+)
 """Latent conditions, in the (alphabetical) order of the copula's columns and the truth table."""
 
 
@@ -73,6 +81,8 @@ DRUG_TEXT: dict[str, str] = {
     "A10BA02": "metformin 500 mg tablet",
     "A10BB01": "glibenclamide 5 mg tablet",
     "A10BH01": "sitagliptin 100 mg tablet",
+    "B01AA03": "warfarin 3 mg tablet",
+    "B01AF01": "apixaban 5 mg tablet",
     "C03AA03": "hydrochlorothiazide 25 mg tablet",
     "C03CA01": "furosemide 40 mg tablet",
     "C03CA02": "bumetanide 1 mg tablet",
@@ -83,14 +93,35 @@ DRUG_TEXT: dict[str, str] = {
     "C10AA01": "simvastatin 40 mg tablet",
     "J01CA04": "amoxicillin 500 mg capsule",
     "N02BE01": "paracetamol 500 mg tablet",
+    "N06AB04": "citalopram 20 mg tablet",
     "N06AB06": "sertraline 50 mg tablet",
     "R03AC02": "salbutamol 100 mcg inhaler",
+    "R03AK06": "salmeterol/fluticasone 50/500 mcg inhaler",
+    "R03BB04": "tiotropium 18 mcg inhalation powder",
 }
 """ATC code to the free text a prescriber's system would show (invented strengths)."""
 
 
 def _default_conditions() -> dict[str, Condition]:
     return {
+        "atrial_fibrillation": Condition(
+            hazard_at_50=0.0008,
+            age_log_hr=0.1,
+            bmi_log_hr=0.03,
+            mortality_hr=1.6,
+            p_coded=0.8,
+            p_treated=0.65,
+            p_late=0.25,
+            lag_days=60,
+            late_lag_days=800,
+            codes_per_year=1.5,
+            rx_per_year=8.0,
+            p_false_code=0.01,
+            p_off_target_rx=0.01,
+            icd9=("427.31",),
+            icd10=("I48.0", "I48.2", "I48.91"),
+            atc=("B01AF01", "B01AA03"),
+        ),
         "ckd": Condition(
             hazard_at_50=0.0015,
             age_log_hr=0.085,
@@ -108,6 +139,42 @@ def _default_conditions() -> dict[str, Condition]:
             icd9=("585.3", "585.4", "585.5"),
             icd10=("N18.3", "N18.4", "N18.5"),
             atc=(),
+        ),
+        "copd": Condition(
+            hazard_at_50=0.0012,
+            age_log_hr=0.07,
+            bmi_log_hr=0.0,
+            mortality_hr=1.8,
+            p_coded=0.75,
+            p_treated=0.7,
+            p_late=0.25,
+            lag_days=180,
+            late_lag_days=1200,
+            codes_per_year=1.5,
+            rx_per_year=4.0,
+            p_false_code=0.02,
+            p_off_target_rx=0.04,
+            icd9=("491.20", "491.21", "496"),
+            icd10=("J44.0", "J44.1", "J44.9"),
+            atc=("R03AC02", "R03BB04", "R03AK06"),
+        ),
+        "depression": Condition(
+            hazard_at_50=0.004,
+            age_log_hr=0.01,
+            bmi_log_hr=0.02,
+            mortality_hr=1.2,
+            p_coded=0.65,
+            p_treated=0.6,
+            p_late=0.2,
+            lag_days=120,
+            late_lag_days=600,
+            codes_per_year=1.0,
+            rx_per_year=6.0,
+            p_false_code=0.03,
+            p_off_target_rx=0.05,
+            icd9=("296.20", "296.22", "311"),
+            icd10=("F32.1", "F32.9", "F33.1"),
+            atc=("N06AB06", "N06AB04"),
         ),
         "heart_failure": Condition(
             hazard_at_50=0.0004,
@@ -230,8 +297,9 @@ class Scenario:
         default_factory=lambda: {
             "250.01": 0.01,
             "272.4": 0.15,
+            "300.00": 0.02,
             "465.9": 0.25,
-            "496": 0.05,
+            "466.0": 0.05,
             "585.2": 0.01,
             "724.2": 0.2,
             "786.2": 0.2,
@@ -239,13 +307,15 @@ class Scenario:
         }
     )
     """Background codes and their weights; near misses (type 1 diabetes, CKD stage 2,
-    prediabetes) are rare so that they test a definition's precision without dominating."""
+    prediabetes, acute bronchitis for COPD, anxiety for depression) are rare so that they test
+    a definition's precision without dominating."""
     other_dx_icd10: dict[str, float] = field(
         default_factory=lambda: {
             "E10.9": 0.01,
             "E78.5": 0.15,
+            "F41.9": 0.02,
             "J06.9": 0.25,
-            "J44.9": 0.05,
+            "J20.9": 0.05,
             "M54.5": 0.2,
             "N18.2": 0.01,
             "R05": 0.2,
@@ -256,8 +326,10 @@ class Scenario:
     dx_sources_icd9: tuple[float, float, float] = (0.7, 0.0, 0.3)
     dx_sources_icd10: tuple[float, float, float] = (0.3, 0.5, 0.2)
     dx_source_names: tuple[str, str, str] = ("billing", "problem_list", "visit")
-    acute_rx_rate: float = 2.5
-    acute_rx_atc: tuple[str, ...] = ("J01CA04", "N02BE01", "R03AC02", "N06AB06", "A02BC01")
+    acute_rx_rate: float = 1.5
+    acute_rx_atc: tuple[str, ...] = ("J01CA04", "N02BE01", "A02BC01")
+    """Short courses for anyone; inhalers and antidepressants for non-cases come only from
+    the conditions' ``p_off_target_rx`` (asthma or bronchitis, pain or anxiety)."""
     p_statin_age_50: float = 0.3
     statin_rx_per_year: float = 4.0
     rx_supply_days: tuple[int, ...] = (28, 56, 84)
@@ -294,7 +366,7 @@ class Scenario:
             A JSON-ready dict; tuples become lists.
         """
         out = dataclasses.asdict(self)
-        out["copula_family"] = "frank (exchangeable, all four conditions)"
+        out["copula_family"] = f"frank (exchangeable, all {len(CONDITIONS)} conditions)"
         out["copula_kendall_tau"] = round(frank_kendall_tau(self.copula_theta), 10)
         out["generator_version"] = GENERATOR_VERSION
         return out
