@@ -26,6 +26,7 @@ from pipeline.compile import Stage
 from pipeline.config import load_study
 from pipeline.config._check import check_paths, explain_condition
 from pipeline.errors import AscertainError
+from pipeline.outputs._report import write_report
 
 app = typer.Typer(
     name="ascertain",
@@ -249,3 +250,14 @@ def validate(
         return render_validation(results, threshold)
 
     typer.echo(_fail_cleanly(run, debug=debug))
+
+
+@app.command()
+def report(
+    output: Annotated[Path, typer.Argument(help="An output folder written by build.")],
+    debug: DebugOpt = False,
+) -> None:
+    """Write report.html and suppressed summary tables (summary/*.csv) for an output folder."""
+    files = _fail_cleanly(lambda: write_report(output), debug=debug)
+    for path in files:
+        typer.echo(str(path))

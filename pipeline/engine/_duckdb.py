@@ -18,6 +18,7 @@ import pyarrow as pa
 from sqlglot import exp
 
 from pipeline.compile import Plan, SourceTable, Stage
+from pipeline.engine._fhir import fhir_source
 from pipeline.errors import EngineError
 from pipeline.extract import ExtractTable
 
@@ -99,8 +100,10 @@ class DuckDBEngine:
         """The type patient_id gets in every table: the patients file's own type.
 
         CSV has no types, so a CSV column of canonical integers is read as BIGINT (sorting 9
-        before 10) and anything else as text.
+        before 10) and anything else as text. FHIR resource ids are text.
         """
+        if patients.file_format == "fhir":
+            return "VARCHAR"
         source = exp.Table(this=_reader(patients))
         if patients.file_format == "parquet":
             describe = exp.Describe(this=exp.select("patient_id").from_(source))
@@ -131,7 +134,11 @@ class DuckDBEngine:
                     columns.append(exp.TryCast(this=exp.column(name), to=id_type.copy()).as_(name))
                 else:
                     columns.append(exp.column(name))
-            view = exp.select(*columns).from_(exp.Table(this=_reader(table)))
+            if table.file_format == "fhir":
+                rows: exp.Expression = fhir_source(table).subquery("fhir")
+            else:
+                rows = exp.Table(this=_reader(table))
+            view = exp.select(*columns).from_(rows)
             if patients is not None:
                 # Restrict every table to some patients (a trace); ids compared as typed values.
                 wanted = [

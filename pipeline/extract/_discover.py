@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import csv
 import gzip
+import re
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Literal
@@ -16,7 +17,7 @@ import pyarrow.parquet as pq
 from pipeline.compile import SourceTable
 from pipeline.errors import ExtractError
 
-FileFormat = Literal["csv", "parquet"]
+FileFormat = Literal["csv", "parquet", "fhir"]
 
 _SUFFIXES: dict[str, FileFormat] = {".csv": "csv", ".csv.gz": "csv", ".parquet": "parquet"}
 
@@ -28,14 +29,17 @@ class ExtractTable:
     Attributes:
         name: Canonical table name.
         files: The files holding it (several for a folder of Parquet parts), sorted.
-        file_format: ``csv`` or ``parquet``.
-        columns: Column names present in the file, lower-cased, in file order.
+        file_format: ``csv``, ``parquet`` or ``fhir`` (a FHIR R4 bulk-data export).
+        columns: Column names present in the file, lower-cased, in file order (for ``fhir``,
+            the canonical columns the engine derives from the resources).
+        resources: For ``fhir``, the resource type each file holds (parallel to ``files``).
     """
 
     name: str
     files: tuple[Path, ...]
     file_format: FileFormat
     columns: tuple[str, ...]
+    resources: tuple[str, ...] = ()
 
 
 def _candidates(folder: Path, name: str) -> list[tuple[tuple[Path, ...], FileFormat]]:
@@ -81,8 +85,70 @@ def _check_columns(table: SourceTable, path: Path, columns: tuple[str, ...]) -> 
         raise ExtractError(f"{path}: column(s) {', '.join(duplicated)} appear more than once")
 
 
+# FHIR R4 bulk data: the resource types read for each canonical table, and the columns the
+# engine derives from them (pipeline/engine/_fhir.py builds them).
+FHIR_RESOURCES: dict[str, tuple[str, ...]] = {
+    "patients": ("Patient",),
+    "encounters": ("Encounter",),
+    "diagnoses": ("Condition",),
+    "prescriptions": ("MedicationRequest", "MedicationStatement"),
+    "measurements": ("Observation",),
+}
+FHIR_COLUMNS: dict[str, tuple[str, ...]] = {
+    "patients": ("patient_id", "birth_date", "birth_year", "sex", "death_date", "practice_id"),
+    "encounters": ("patient_id", "encounter_date", "encounter_type"),
+    "diagnoses": ("patient_id", "event_date", "code_system", "code", "source"),
+    "prescriptions": ("patient_id", "start_date", "stop_date", "atc", "drug_text"),
+    "measurements": ("patient_id", "obs_date", "measure", "value_text", "value", "unit"),
+}
+_NDJSON = (".ndjson", ".ndjson.gz")
+# Bulk-data file names: Patient.ndjson, Patient.2.ndjson, Patient_001.ndjson, 1.Patient.ndjson.
+_FHIR_NAME = re.compile(r"^(?:[0-9]+[._-])?([A-Z][A-Za-z]+)(?:[._-].*)?$")
+
+
+def _ndjson_files(folder: Path) -> list[Path]:
+    return sorted(p for p in folder.iterdir() if p.is_file() and p.name.endswith(_NDJSON))
+
+
+def _fhir_type(path: Path) -> str | None:
+    stem = path.name.removesuffix(".gz").removesuffix(".ndjson")
+    match = _FHIR_NAME.match(stem)
+    return match.group(1) if match else None
+
+
+def _discover_fhir(
+    folder: Path, files: list[Path], tables: tuple[SourceTable, ...]
+) -> dict[str, ExtractTable]:
+    """Group a bulk-data export's files by resource type into the canonical tables.
+
+    A type with no file has no resources (bulk export writes no empty files), so its table is
+    empty; only Patient files are required.
+    """
+    typed = [(path, _fhir_type(path)) for path in files]
+    found: dict[str, ExtractTable] = {}
+    for table in tables:
+        if table.name not in FHIR_RESOURCES:
+            raise ExtractError(f"{folder}: a FHIR export has no table '{table.name}'")
+        wanted = FHIR_RESOURCES[table.name]
+        mine = sorted((kind, path) for path, kind in typed if kind in wanted)
+        if table.name == "patients" and not mine:
+            raise ExtractError(
+                f"{folder}: FHIR export without Patient resources (looked for Patient*.ndjson)"
+            )
+        found[table.name] = ExtractTable(
+            table.name,
+            tuple(path for _, path in mine),
+            "fhir",
+            FHIR_COLUMNS[table.name],
+            tuple(str(kind) for kind, _ in mine),
+        )
+    return found
+
+
 def discover_extract(folder: Path, tables: tuple[SourceTable, ...]) -> dict[str, ExtractTable]:
     """Locate each table the plan reads and check it has the columns the plan needs.
+
+    A folder holding ``*.ndjson`` files is read as a FHIR R4 bulk-data export instead.
 
     Raises:
         ExtractError: The folder or a table is missing, ambiguous, unreadable, or lacks a
@@ -90,6 +156,15 @@ def discover_extract(folder: Path, tables: tuple[SourceTable, ...]) -> dict[str,
     """
     if not folder.is_dir():
         raise ExtractError(f"{folder}: the extract folder does not exist")
+    ndjson = _ndjson_files(folder)
+    if ndjson:
+        tabular = [files[0] for t in tables for files, _ in _candidates(folder, t.name)]
+        if tabular:
+            raise ExtractError(
+                f"{folder}: holds both FHIR NDJSON files and canonical tables ({tabular[0]}); "
+                "keep one kind of extract per folder"
+            )
+        return _discover_fhir(folder, ndjson, tables)
     found: dict[str, ExtractTable] = {}
     for table in tables:
         candidates = _candidates(folder, table.name)

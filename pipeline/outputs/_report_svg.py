@@ -65,7 +65,9 @@ def _main_box(y: float, title: str, lines: list[str], count: tuple[str, str, str
         _text(_MAIN_X + 14, y + 22, title, "box-title"),
         _count(_MAIN_X + _MAIN_W - 14, y + 22, *count, "box-count"),
     ]
-    parts += [_text(_MAIN_X + 14, y + 44 + _LINE * i, line, "box-note") for i, line in enumerate(lines)]
+    parts += [
+        _text(_MAIN_X + 14, y + 44 + _LINE * i, line, "box-note") for i, line in enumerate(lines)
+    ]
     return "".join(parts)
 
 
@@ -144,12 +146,12 @@ class Curve:
     horizon: float
 
 
-def _nice_max(value: float) -> float:
-    """A round axis maximum at or above ``value`` (1, 2, 2.5 or 5 times a power of ten)."""
+def _nice_step(value: float) -> float:
+    """A round tick step at or above ``value`` (1, 2 or 5 times a power of ten)."""
     if value <= 0:
-        return 0.01
+        return 0.0025
     power = 10 ** math.floor(math.log10(value))
-    return next(m * power for m in (1, 2, 2.5, 5, 10) if m * power >= value)
+    return next(m * power for m in (1, 2, 5, 10) if m * power >= value)
 
 
 def _step_path(
@@ -174,7 +176,10 @@ def render_curves(curve: Curve) -> str:
         An ``<svg>`` element.
     """
     w, h, left, right, top, bottom = 360, 250, 52, 14, 14, 40
-    top_value = _nice_max(float(max(curve.aj_values.max(), curve.km_values.max(), 1e-9)) * 1.05)
+    highest = float(max(curve.aj_values.max(), curve.km_values.max()))
+    step = _nice_step(highest / 4)
+    ticks = max(math.ceil(highest / step - 1e-9), 1)
+    top_value = step * ticks
     horizon = max(curve.horizon, 1e-9)
 
     def sx(t: float) -> float:
@@ -183,12 +188,14 @@ def render_curves(curve: Curve) -> str:
     def sy(v: float) -> float:
         return top + (h - top - bottom) * (1 - v / top_value)
 
-    parts = [f'<rect x="{left}" y="{top}" width="{w - left - right}" '
-             f'height="{h - top - bottom}" class="plot"/>']
-    for k in range(5):
-        v = top_value * k / 4
+    parts = [
+        f'<rect x="{left}" y="{top}" width="{w - left - right}" '
+        f'height="{h - top - bottom}" class="plot"/>'
+    ]
+    for k in range(ticks + 1):
+        v = step * k
         parts.append(f'<path d="M{left} {sy(v):.1f} H{w - right}" class="grid"/>')
-        parts.append(_text(left - 6, sy(v) + 4, f"{100 * v:.3g}%", "tick tick-y"))
+        parts.append(_text(left - 6, sy(v) + 4, f"{100 * v:.4g}%", "tick tick-y"))
     for year in range(math.floor(horizon) + 1):
         parts.append(f'<path d="M{sx(year):.1f} {h - bottom} v5" class="axis"/>')
         parts.append(_text(sx(year), h - bottom + 18, str(year), "tick tick-x"))
@@ -199,7 +206,7 @@ def render_curves(curve: Curve) -> str:
     label = f"Cumulative incidence of {curve.title}"
     return (
         f'<svg class="curve" viewBox="0 0 {w} {h}" role="img" aria-label="{escape(label)}">'
-        f'{"".join(parts)}</svg>'
+        f"{''.join(parts)}</svg>"
     )
 
 
@@ -221,27 +228,28 @@ class Bar:
 def render_bars(bars: Sequence[Bar]) -> str:
     """Draw a horizontal bar chart; suppressed counts get a label but no bar.
 
+    Labels sit above their bars so that long condition titles never get clipped.
+
     Args:
         bars: Bars in display order.
 
     Returns:
         An ``<svg>`` element.
     """
-    label_w, bar_w, row = 330, 520, 28
+    width, bar_w, row = 900, 780, 44
     top = max((b.value or 0 for b in bars), default=0) or 1
     parts = []
     for i, b in enumerate(bars):
-        y = 6 + i * row
-        parts.append(_text(label_w - 10, y + 18, b.label, "bar-label"))
-        length = 0.0 if b.value is None else bar_w * b.value / top
+        y = 4 + i * row
+        parts.append(_text(0, y + 14, b.label, "bar-label"))
+        length = 0.0 if b.value is None else max(bar_w * b.value / top, 1.5)
         if length:
             parts.append(
-                f'<rect x="{label_w}" y="{y + 4}" width="{length:.1f}" height="{row - 10}" '
-                'rx="2" class="bar"/>'
+                f'<rect x="0" y="{y + 20}" width="{length:.1f}" height="16" rx="2" class="bar"/>'
             )
-        parts.append(_text(label_w + length + 8, y + 18, b.shown, "bar-value"))
-    height = 12 + row * len(bars)
+        parts.append(_text(length + 8, y + 33, b.shown, "bar-value"))
+    height = 8 + row * len(bars)
     return (
-        f'<svg class="bars" viewBox="0 0 {label_w + bar_w + 80} {height}" role="img" '
+        f'<svg class="bars" viewBox="0 0 {width} {height}" role="img" '
         f'aria-label="Outcome combinations">{"".join(parts)}</svg>'
     )

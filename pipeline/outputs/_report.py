@@ -1,0 +1,204 @@
+"""The study report: summary tables with small-cell suppression, as CSV and one HTML file.
+
+``write_report`` reads a build's output folder and writes ``report.html`` and ``summary/*.csv``.
+Every count in them passes through :func:`pipeline.stats.suppress_counts` (see
+:mod:`._report_tables` for how tables that share counts are kept consistent). The raw build
+files next to them (``cohort.parquet`` and the build logs) are the unsuppressed record.
+
+The report is written even when the study and definition files named in the manifest are gone
+(a folder copied to a safe haven): it then says what it could not read instead of failing.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import polars as pl
+
+from pipeline.config import LoadedStudy, load_study
+from pipeline.errors import AscertainError
+from pipeline.outputs._manifest import read_manifest, sha256_file
+from pipeline.outputs._report_html import assemble
+from pipeline.outputs._report_tables import (
+    combinations_block,
+    curve_data,
+    dependence_block,
+    dependence_summary,
+    flow_block,
+    hidden_keys,
+    incidence_block,
+    incidence_summary,
+    masked,
+    quality_blocks,
+    table_one_blocks,
+    table_one_summary,
+)
+
+__all__ = ["DEFAULT_THRESHOLD", "write_report"]
+
+DEFAULT_THRESHOLD = 5
+"""Small-cell threshold used when the study file cannot be read (the study model's default)."""
+
+
+@dataclass
+class Study:
+    """What the report knows about the study, with notes on what it could not read."""
+
+    name: str
+    title: str
+    threshold: int
+    outcomes: tuple[str, ...]
+    titles: dict[str, str]
+    definitions: list[dict[str, str]] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)
+
+
+def _used_conditions(loaded: LoadedStudy) -> tuple[str, ...]:
+    study = loaded.study
+    names = list(study.outcomes.conditions)
+    for cov in study.covariates.values():
+        names += [n for n in (cov.condition, cov.days_since_first_evidence) if n]
+    names += [c.not_prevalent for c in study.eligibility if c.not_prevalent]
+    event = study.index.first_event
+    if event is not None and event.condition:
+        names.append(event.condition)
+    return loaded.catalog.with_references(tuple(dict.fromkeys(names)))
+
+
+def read_study(manifest: dict[str, Any], cohort: pl.DataFrame) -> Study:
+    """Load the study named in the manifest; fall back to the cohort's columns if it is gone.
+
+    The report must still be written when the YAML files moved (e.g. a folder copied to a
+    safe-haven), so a missing or invalid study only adds a note.
+    """
+    fallback = tuple(c.removeprefix("at_risk_") for c in cohort.columns if c.startswith("at_risk_"))
+    entry = (manifest.get("study") or [{}])[0]
+    path = Path(entry.get("path", "study.yaml"))
+    base = Study(path.stem, path.stem, DEFAULT_THRESHOLD, fallback, {o: o for o in fallback})
+    try:
+        loaded = load_study(path)
+    except (AscertainError, OSError) as err:
+        base.notes.append(
+            f"The study file {path} could not be read ({str(err).splitlines()[0]}), so condition "
+            "titles and definition provenance are not shown and the default small-cell "
+            f"threshold of {DEFAULT_THRESHOLD} is used."
+        )
+        return base
+    if entry.get("sha256") and sha256_file(path) != entry["sha256"]:
+        base.notes.append(f"The study file {path} has changed since the build.")
+    hashes = {d["path"]: d["sha256"] for d in manifest.get("definitions", [])}
+    definitions = []
+    for name in _used_conditions(loaded):
+        file = loaded.catalog.files[name]
+        current = sha256_file(file) if file.is_file() else ""
+        if hashes.get(str(file)) not in (None, current):
+            base.notes.append(f"The definition file {file} has changed since the build.")
+        condition = loaded.catalog.get(name)
+        definitions.append(
+            {
+                "name": name,
+                "title": condition.title,
+                "about": condition.about.strip(),
+                "path": str(file),
+                "sha256": hashes.get(str(file), current),
+            }
+        )
+    study = loaded.study
+    return Study(
+        name=study.study,
+        title=study.title,
+        threshold=study.output.small_cell_threshold,
+        outcomes=tuple(study.outcomes.conditions),
+        titles={d["name"]: d["title"] for d in definitions},
+        definitions=definitions,
+        notes=base.notes,
+    )
+
+
+def read_json(path: Path) -> dict[str, Any]:
+    """A JSON file, or an empty mapping when it is missing (run.json is optional)."""
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, json.JSONDecodeError):
+        return {}
+    return data if isinstance(data, dict) else {}
+
+
+def column_labels(output_dir: Path) -> dict[str, str]:
+    """Readable labels of the analysis-table columns from ``dictionary.csv`` (if present)."""
+    try:
+        dictionary = pl.read_csv(output_dir / "dictionary.csv", infer_schema_length=0)
+    except (OSError, pl.exceptions.PolarsError):
+        return {}
+    labels = {}
+    for r in dictionary.iter_rows(named=True):
+        meaning = r.get("meaning") or r["column"]
+        text = meaning[:1].upper() + meaning[1:]
+        labels[r["column"]] = f"{text} ({r['unit']})" if r.get("unit") else text
+    return labels
+
+
+def write_report(output_dir: Path) -> list[Path]:
+    """Write ``report.html`` and the suppressed ``summary/*.csv`` tables of a build.
+
+    Args:
+        output_dir: A folder written by ``ascertain build``.
+
+    Returns:
+        The files written, sorted.
+
+    Raises:
+        AscertainError: The folder has no manifest or lacks a build file.
+    """
+    output_dir = Path(output_dir)
+    manifest = read_manifest(output_dir)
+    try:
+        cohort = pl.read_parquet(output_dir / "cohort.parquet")
+        attrition = pl.read_csv(output_dir / "attrition.csv", infer_schema_length=0)
+        quality = pl.read_csv(output_dir / "quality.csv", infer_schema_length=0)
+    except (OSError, pl.exceptions.PolarsError) as err:
+        raise AscertainError(f"{output_dir}: cannot read the build outputs: {err}") from err
+    counts = ("patients_before", "removed", "remaining")
+    attrition = attrition.with_columns(pl.col(c).cast(pl.Int64) for c in counts)
+    study = read_study(manifest, cohort)
+    outcomes, t = study.outcomes, study.threshold
+    flow = flow_block(attrition, cohort.height)
+    t1 = {o: table_one_blocks(cohort, o) for o in outcomes}
+    results, incidence = incidence_block(cohort, outcomes)
+    combos = combinations_block(cohort, outcomes)
+    dependence = dependence_block(cohort, outcomes)
+    quality_parts = quality_blocks(quality)
+    blocks = [flow, *(b for _, *pair in t1.values() for b in pair), incidence, combos, dependence]
+    hidden = hidden_keys([*blocks, *quality_parts], t)
+    summaries = {
+        "flow": masked(flow, hidden, t),
+        "table_one": pl.concat(
+            [table_one_summary(o, long, parts, hidden, t) for o, (long, *parts) in t1.items()]
+        ),
+        "incidence": incidence_summary(results, study.titles, hidden, t),
+        "combinations": masked(combos, hidden, t),
+        "dependence": dependence_summary(dependence, hidden, t),
+    }
+    folder = output_dir / "summary"
+    folder.mkdir(exist_ok=True)
+    written = []
+    for name, frame in sorted(summaries.items()):
+        path = folder / f"{name}.csv"
+        frame.write_csv(path, line_terminator="\n")
+        written.append(path)
+    curves = {o: curve_data(cohort, o) for o in outcomes if f"events|{o}" not in hidden}
+    html = assemble(
+        study=study,
+        manifest=manifest,
+        run=read_json(output_dir / "run.json"),
+        summaries=summaries,
+        quality=pl.concat([masked(b, hidden, t) for b in quality_parts]),
+        curves=curves,
+        labels=column_labels(output_dir),
+    )
+    report = output_dir / "report.html"
+    report.write_text(html, encoding="utf-8")
+    return sorted([report, *written])

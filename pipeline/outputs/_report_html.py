@@ -1,0 +1,491 @@
+"""The HTML page of the study report: sections, tables and the stylesheet.
+
+Everything here formats tables that :mod:`._report` has already suppressed, so the HTML and
+the summary CSVs cannot disagree. The page is one file with inline CSS and inline SVG only:
+it must open on an offline analysis server and print on paper. Every string that comes from
+data or from user files is escaped; count cells carry ``class="n"`` so tests can find them.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Sequence
+from html import escape
+from typing import Any
+
+import polars as pl
+
+from pipeline.outputs._report_svg import (
+    Bar,
+    Curve,
+    FlowStep,
+    render_bars,
+    render_curves,
+    render_flow,
+)
+
+__all__ = ["SECTIONS", "assemble"]
+
+SECTIONS = (
+    ("flow", "Patient flow"),
+    ("table-one", "Table 1: baseline characteristics"),
+    ("incidence", "Incidence"),
+    ("curves", "Cumulative incidence curves"),
+    ("combinations", "Outcome combinations"),
+    ("dependence", "Pairwise dependence"),
+    ("definitions", "Definitions"),
+    ("quality", "Data quality"),
+    ("manifest", "Manifest"),
+)
+"""Section ids and headings, in page order (the cautions box comes before them)."""
+
+CSS = """
+:root{--ink:#1f2b2a;--muted:#5d6a67;--paper:#fbfaf6;--card:#ffffff;--line:#d9d4c8;
+--accent:#2c6a64;--accent-soft:#e3eeeb;--compare:#8c7b5f;--warn-bg:#fbf2e2;--warn:#b7791f;
+--serif:"Iowan Old Style","Palatino Linotype",Palatino,"Book Antiqua",Georgia,serif;
+--sans:system-ui,-apple-system,"Segoe UI","Noto Sans","Liberation Sans",Arial,sans-serif;
+--mono:ui-monospace,"SFMono-Regular",Menlo,Consolas,"Liberation Mono",monospace}
+*{box-sizing:border-box}
+body{margin:0;background:var(--paper);color:var(--ink);font:15px/1.55 var(--sans)}
+main{max-width:1100px;margin:0 auto;padding:40px 36px 64px}
+h1,h2,h3{font-family:var(--serif);font-weight:600;line-height:1.25;color:var(--ink)}
+h1{font-size:30px;margin:4px 0 10px}
+h2{font-size:22px;margin:0 0 14px;padding-bottom:6px;border-bottom:2px solid var(--accent)}
+h3{font-size:17px;margin:22px 0 8px}
+.eyebrow{margin:0;color:var(--accent);font-size:13px;letter-spacing:.08em;text-transform:uppercase}
+.meta{margin:0;color:var(--muted)}
+section{background:var(--card);border:1px solid var(--line);border-radius:8px;
+padding:24px 28px;margin:22px 0}
+.cautions{background:var(--warn-bg);border:1px solid var(--line);border-left:6px solid var(--warn);
+border-radius:8px;padding:16px 24px;margin:22px 0}
+.cautions h2{border:0;font-size:18px;margin:0 0 6px;padding:0}
+.cautions ul{margin:0;padding-left:20px}
+nav ol{columns:3;margin:0;padding-left:20px;color:var(--muted)}
+nav a{color:var(--accent)}
+table{border-collapse:collapse;width:100%;font-size:13.5px;margin:8px 0 4px;
+font-variant-numeric:tabular-nums}
+th,td{padding:5px 10px;border-bottom:1px solid var(--line);text-align:left;vertical-align:top}
+thead th{background:var(--accent-soft);font-weight:600;border-bottom:2px solid var(--accent)}
+td.num,th.num{text-align:right}td.num{white-space:nowrap}
+tr.var td:first-child{font-weight:600}
+td.sub{padding-left:26px;color:var(--muted)}
+.pct{color:var(--muted)}
+.col{font:400 11.5px var(--mono);color:var(--muted);margin-left:6px}
+.note{color:var(--muted);font-size:13px;margin:6px 0}
+.hash{font-family:var(--mono);font-size:12px;word-break:break-all}
+.about{margin:4px 0 10px;max-width:80ch}
+dl.def{display:grid;grid-template-columns:max-content 1fr;gap:2px 14px;margin:0;font-size:13px}
+dl.def dt{color:var(--muted)}dl.def dd{margin:0}
+.figs{display:grid;grid-template-columns:repeat(auto-fill,minmax(320px,1fr));gap:18px}
+figure{margin:0}figcaption{font-weight:600;margin-bottom:4px}
+svg{width:100%;height:auto;font-family:var(--sans)}
+svg.flow{max-width:860px}
+.box{fill:var(--accent-soft);stroke:var(--accent);stroke-width:1.5}
+.side{fill:#f6f3ec;stroke:var(--line);stroke-width:1.2}
+.box-title{font-size:14px;font-weight:600;fill:var(--ink)}
+.box-count{font-size:16px;font-weight:700;fill:var(--accent);text-anchor:end}
+.box-note{font-size:12.5px;fill:var(--muted)}
+.side-title{font-size:13px;font-weight:600;fill:var(--ink)}
+.side-count{font-size:14px;font-weight:700;fill:var(--warn)}
+.arrow,.link{stroke:var(--muted);stroke-width:1.4;fill:none}.link{stroke-dasharray:3 3}
+.head{fill:var(--muted)}
+.plot{fill:#fff;stroke:var(--line)}.grid{stroke:#ece8df}.axis{stroke:var(--muted)}
+.tick{font-size:11px;fill:var(--muted)}.tick-y{text-anchor:end}.tick-x{text-anchor:middle}
+.axis-label{font-size:12px;fill:var(--muted);text-anchor:middle}
+.aj{fill:none;stroke:var(--accent);stroke-width:2.2}
+.km{fill:none;stroke:var(--compare);stroke-width:1.6;stroke-dasharray:6 4}
+.legend{display:flex;gap:22px;font-size:13px;color:var(--muted);margin:4px 0 12px}
+.swatch{display:inline-block;width:28px;height:0;border-top:3px solid var(--accent);
+vertical-align:middle;margin-right:6px}.swatch.km{border-top:2px dashed var(--compare)}
+.bar{fill:var(--accent)}.bar-label{font-size:13px;fill:var(--ink)}
+svg.bars{max-width:900px;margin-bottom:8px}
+td.pair{min-width:190px}
+.bar-value{font-size:13px;font-weight:600;fill:var(--ink)}
+footer{color:var(--muted);font-size:12.5px;margin-top:28px}
+@media print{@page{margin:16mm 14mm}
+body{background:#fff;font-size:10pt}main{max-width:none;padding:0}
+section,.cautions{border:0;padding:0;margin:0 0 14pt;break-inside:auto}
+h2{break-after:avoid}figure,svg,tr{break-inside:avoid}nav{display:none}
+thead{display:table-header-group}}
+"""
+
+
+def _n(text: str | None, tag: str = "td") -> str:
+    """A count cell: thousands separators for numbers, the suppression marker as is."""
+    value = "" if text is None else (f"{int(text):,}" if text.isdigit() else text)
+    return (
+        f'<{tag} class="num n">{escape(value)}</{tag}>'
+        if tag
+        else (f'<span class="n">{escape(value)}</span>')
+    )
+
+
+def _num(value: float | None, digits: int = 1) -> str:
+    return "" if value is None else f"{value:,.{digits}f}"
+
+
+def _table(head: Sequence[str], rows: Iterable[str], numeric: Sequence[int] | None = None) -> str:
+    numeric = range(1, len(head)) if numeric is None else numeric
+    cells = "".join(
+        f"<th{' class=num' if i in numeric else ''}>{escape(h)}</th>" for i, h in enumerate(head)
+    )
+    return f"<table><thead><tr>{cells}</tr></thead><tbody>{''.join(rows)}</tbody></table>"
+
+
+def _section(ident: str, body: str) -> str:
+    title = dict(SECTIONS)[ident]
+    return f'<section id="{ident}"><h2>{escape(title)}</h2>{body}</section>'
+
+
+def _thousands(text: str) -> str:
+    return f"{int(text):,}" if text.isdigit() else text
+
+
+def _flow(flow: pl.DataFrame, threshold: int) -> str:
+    rows = [
+        {
+            k: _thousands(v) if k in ("patients_before", "removed", "remaining") else v
+            for k, v in r.items()
+        }
+        for r in flow.iter_rows(named=True)
+    ]
+    steps = [
+        FlowStep(
+            r["step"],
+            r["description"],
+            r["patients_before"],
+            r["removed"],
+            r["remaining"],
+            removes=i > 0 or r["removed"] != "0",
+        )
+        for i, r in enumerate(rows)
+    ]
+    return render_flow(steps) + (
+        f'<p class="note">Counts below {threshold} are shown as "&lt;{threshold}". Because each '
+        "box's count is the previous count minus the exclusions, a hidden exclusion would follow "
+        "by subtraction; so in each step where one of the three numbers (before, excluded, "
+        'remaining) is hidden, at least one more is hidden too, shown as "*". The cohort size '
+        "and the source population are hidden only when nothing else can protect a small "
+        "count.</p>"
+    )
+
+
+def _t1_cell(r: dict[str, Any] | None) -> str:
+    if r is None:
+        return "<td></td>"
+    pct = "" if r["percent"] is None else f' <span class="pct">({r["percent"]:.1f}%)</span>'
+    return f'<td class="num">{_n(r["n"], "")}{pct}</td>'
+
+
+def _t1_stat(r: dict[str, Any] | None, kind: str) -> str:
+    if r is None or r["mean"] is None:
+        return '<td class="num"></td>'
+    if kind == "mean":
+        sd = "" if r["sd"] is None else f" ({r['sd']:.1f})"
+        return f'<td class="num">{r["mean"]:.1f}{sd}</td>'
+    return f'<td class="num">{r["median"]:.1f} [{r["q1"]:.1f}, {r["q3"]:.1f}]</td>'
+
+
+def _table_one(frame: pl.DataFrame, outcome: str, title: str, labels: dict[str, str]) -> str:
+    by = f"incident_{outcome}"
+    groups = ("overall", f"{by}=false", f"{by}=true", f"{by}=null")
+    part = frame.filter(pl.col("by") == by)
+    cells = {(r["variable"], r["level"], r["group"]): r for r in part.iter_rows(named=True)}
+    head = ["Characteristic", "Overall", "Not incident", "Incident", "Not at risk"]
+    rows = [
+        "<tr><td>Patients, n</td>"
+        + "".join(_n(cells[("patients", None, g)]["n"]) for g in groups)
+        + "</tr>"
+    ]
+    variables = [v for v in dict.fromkeys(part["variable"].to_list()) if v != "patients"]
+    for v in variables:
+        levels = list(dict.fromkeys(k[1] for k in cells if k[0] == v))
+        label = escape(labels.get(v, v))
+        col = f' <span class="col">{escape(v)}</span>' if v in labels else ""
+        first = cells[(v, levels[0], "overall")]
+        if levels == [None]:
+            rows.append(f'<tr class="var"><td colspan="5">{label}{col}</td></tr>')
+            for kind, text in (("mean", "Mean (SD)"), ("median", "Median [Q1, Q3]")):
+                rows.append(
+                    f'<tr><td class="sub">{text}</td>'
+                    + "".join(_t1_stat(cells.get((v, None, g)), kind) for g in groups)
+                    + "</tr>"
+                )
+        elif levels == ["false", "true"]:
+            rows.append(
+                f'<tr class="var"><td>{label}, n (%){col}</td>'
+                + "".join(_t1_cell(cells.get((v, "true", g))) for g in groups)
+                + "</tr>"
+            )
+        else:
+            rows.append(f'<tr class="var"><td colspan="5">{label}, n (%){col}</td></tr>')
+            rows += [
+                f'<tr><td class="sub">{escape(str(lv))}</td>'
+                + "".join(_t1_cell(cells.get((v, lv, g))) for g in groups)
+                + "</tr>"
+                for lv in levels
+            ]
+        if first["missing"] != "0":
+            rows.append(
+                '<tr><td class="sub">Missing, n</td>'
+                + "".join(_n((cells.get((v, levels[0], g)) or {}).get("missing")) for g in groups)
+                + "</tr>"
+            )
+    return f"<h3>By incident {escape(title)}</h3>" + _table(head, rows)
+
+
+def _incidence(frame: pl.DataFrame) -> str:
+    def ci(est: Any, low: Any, high: Any, digits: int) -> str:
+        return "" if est is None else f"{est:.{digits}f} ({low:.{digits}f} to {high:.{digits}f})"
+
+    rows = [
+        f"<tr><td>{escape(r['title'])}</td>{_n(r['at_risk'])}{_n(r['events'])}"
+        f'<td class="num">{ci(r["cumulative_incidence_percent"], r["ci_low_percent"], r["ci_high_percent"], 2)}</td>'  # noqa: E501
+        f'<td class="num">{_num(r["person_years"])}</td>'
+        f'<td class="num">{ci(r["rate_per_1000_py"], r["rate_low"], r["rate_high"], 1)}</td></tr>'
+        for r in frame.iter_rows(named=True)
+    ]
+    head = [
+        "Outcome",
+        "At risk, n",
+        "Events, n",
+        "Cumulative incidence, % (95% CI)",
+        "Person-years",
+        "Rate per 1,000 PY (95% CI)",
+    ]
+    return _table(head, rows) + (
+        '<p class="note">At risk: patients without the condition at index. Cumulative incidence: '
+        "events within the horizon over patients at risk, with a Wilson score interval; it "
+        "ignores censoring. Rate: events per 1,000 person-years with an exact Poisson (Garwood) "
+        "interval. Estimates are left empty where a count is suppressed.</p>"
+    )
+
+
+def _curves(curves: dict[str, Curve], outcomes: Sequence[str], titles: dict[str, str]) -> str:
+    figs = [
+        f"<figure><figcaption>{escape(titles.get(o, o))}</figcaption>{render_curves(curves[o])}"
+        "</figure>"
+        for o in outcomes
+        if o in curves
+    ]
+    missing = [escape(titles.get(o, o)) for o in outcomes if o not in curves]
+    note = (
+        (
+            f'<p class="note">Not drawn because the number of events is suppressed: '
+            f"{', '.join(missing)}.</p>"
+        )
+        if missing
+        else ""
+    )
+    legend = (
+        '<div class="legend"><span><span class="swatch"></span>Aalen–Johansen, death as '
+        'competing event</span><span><span class="swatch km"></span>1 − Kaplan–Meier, '
+        "deaths censored (overstates risk)</span></div>"
+    )
+    return legend + f'<div class="figs">{"".join(figs)}</div>' + note
+
+
+def _combo_label(name: str, titles: dict[str, str]) -> str:
+    return (
+        "No incident outcome"
+        if name == "none"
+        else " + ".join(titles.get(p, p) for p in name.split("+"))
+    )
+
+
+def _combinations(frame: pl.DataFrame, titles: dict[str, str]) -> str:
+    rows = list(frame.iter_rows(named=True))
+    bars = [
+        Bar(
+            _combo_label(r["combination"], titles),
+            int(r["n"]) if r["n"].isdigit() else None,
+            _thousands(r["n"]),
+        )
+        for r in rows
+    ]
+    table = _table(
+        ["Combination", "Outcomes", "Patients, n"],
+        (
+            f"<tr><td>{escape(_combo_label(r['combination'], titles))}</td>"
+            f'<td class="num">{r["outcomes"]}</td>{_n(r["n"])}</tr>'
+            for r in rows
+        ),
+    )
+    return (
+        render_bars(bars)
+        + table
+        + (
+            '<p class="note">Patients at risk of every outcome at index, each counted once under '
+            "the exact set of outcomes that became incident within the horizon. Suppressed counts "
+            "have no bar.</p>"
+        )
+    )
+
+
+def _dependence(frame: pl.DataFrame, titles: dict[str, str]) -> str:
+    def f(x: Any, d: int = 3) -> str:
+        return "" if x is None else f"{x:.{d}f}"
+
+    rows = []
+    for r in frame.iter_rows(named=True):
+        first, second = (titles.get(r[k], r[k]) for k in ("outcome_1", "outcome_2"))
+        pair = f"{escape(first)}<br>× {escape(second)}"
+        mark = " †" if r["haldane"] and r["odds_ratio"] is not None else ""
+        odds = (
+            ""
+            if r["odds_ratio"] is None
+            else (f"{r['odds_ratio']:.2f} ({r['or_low']:.2f} to {r['or_high']:.2f}){mark}")
+        )
+        rows.append(
+            f'<tr><td class="pair">{pair}</td>{_n(r["n"])}{_n(r["both"])}{_n(r["first_only"])}'
+            f'{_n(r["second_only"])}{_n(r["neither"])}<td class="num">{odds}</td>'
+            f'<td class="num">{f(r["phi"])}</td><td class="num">{f(r["tau_b"])}</td>'
+            f'<td class="num">{f(r["frank_theta"], 2)}</td></tr>'
+        )
+    head = [
+        "Pair",
+        "At risk of both",
+        "Both",
+        "First only",
+        "Second only",
+        "Neither",
+        "Odds ratio (95% CI)",
+        "Phi",
+        "Kendall's τb",
+        "Frank θ",
+    ]
+    return _table(head, rows) + (
+        '<p class="note">Among patients at risk of both outcomes. Odds ratio with a Woolf '
+        "interval; † 0.5 added to every cell because one was zero. Frank θ is the copula "
+        "parameter implied by τb (Genest 1987), a descriptive summary. Measures are left empty "
+        "where a cell is suppressed.</p>"
+    )
+
+
+def _definitions(definitions: list[dict[str, str]]) -> str:
+    if not definitions:
+        return '<p class="note">The definition files could not be read; see the notes above.</p>'
+    return "".join(
+        f'<h3>{escape(d["title"])} <span class="pct">({escape(d["name"])})</span></h3>'
+        f'<p class="about">{escape(d["about"])}</p><dl class="def"><dt>File</dt>'
+        f'<dd class="hash">{escape(d["path"])}</dd><dt>SHA-256</dt>'
+        f'<dd class="hash">{escape(d["sha256"])}</dd></dl>'
+        for d in definitions
+    )
+
+
+def _quality(frame: pl.DataFrame) -> str:
+    rows = [
+        f"<tr><td>{escape(r['source_table'])}</td><td>{escape(r['outcome'])}</td>"
+        f"<td>{escape(r['reason'])}</td>{_n(r['n_rows'])}</tr>"
+        for r in frame.iter_rows(named=True)
+    ]
+    return _table(["Source table", "Status", "Reason", "Rows"], rows, [3]) + (
+        '<p class="note">Every row read from the extract is either used or set aside for one '
+        "reason; small row counts are suppressed like patient counts.</p>"
+    )
+
+
+def _manifest(manifest: dict[str, Any]) -> str:
+    inputs = [
+        f'<tr><td>{escape(kind)}</td><td class="hash">{escape(str(e.get("path", "")))}</td>'
+        f'<td class="num">{int(e.get("bytes", 0)):,}</td>'
+        f'<td class="hash">{escape(str(e.get("sha256", "")))}</td></tr>'
+        for kind in ("study", "definitions", "extract")
+        for e in manifest.get(kind, [])
+    ]
+    outputs = [
+        f'<tr><td>{escape(name)}</td><td class="hash">{escape(str(h))}</td></tr>'
+        for name, h in sorted(manifest.get("outputs", {}).items())
+    ]
+    engine = manifest.get("engine", {})
+    versions = (
+        f"ascertain {manifest.get('tool_version', '?')}, {engine.get('name', '?')} "
+        f"{engine.get('version', '?')}, Python {manifest.get('python', '?')}"
+    )
+    return (
+        f'<dl class="def"><dt>Plan hash</dt><dd class="hash">'
+        f"{escape(str(manifest.get('plan_hash', '')))}</dd><dt>Versions</dt>"
+        f"<dd>{escape(versions)}</dd></dl><h3>Inputs</h3>"
+        + _table(["Kind", "Path", "Bytes", "SHA-256"], inputs, [2])
+        + "<h3>Outputs of the build</h3>"
+        + _table(["File", "SHA-256"], outputs, [])
+    )
+
+
+def _cautions(threshold: int, notes: list[str]) -> str:
+    items = [
+        "For research use only.",
+        "Not for clinical decisions about individual patients.",
+        "Validate every condition definition locally before relying on it.",
+        f'Counts below {threshold} are suppressed (shown as "&lt;{threshold}"); a count that '
+        'would let one be worked out by subtraction is suppressed too (shown as "*"); '
+        "percentages, rates and intervals from suppressed counts are not shown. Only this report "
+        "and summary/ are suppressed: cohort.parquet and the build files next to it hold raw "
+        "counts and must not be shared.",
+        "Follow your local data-governance rules before sharing this report.",
+    ]
+    notes_html = "".join(f"<li>{escape(n)}</li>" for n in notes)
+    return (
+        '<aside class="cautions" id="cautions"><h2>Cautions</h2><ul>'
+        + "".join(f"<li>{i}</li>" for i in items)
+        + notes_html
+        + "</ul></aside>"
+    )
+
+
+def assemble(
+    *,
+    study: Any,
+    manifest: dict[str, Any],
+    run: dict[str, Any],
+    summaries: dict[str, pl.DataFrame],
+    quality: pl.DataFrame,
+    curves: dict[str, tuple[Any, Any, Any, Any]],
+    labels: dict[str, str],
+) -> str:
+    """Put the whole page together from the suppressed tables.
+
+    Args:
+        study: The study facts (:class:`._report.Study`).
+        manifest: The build's manifest.
+        run: The build's run record (for the build date only).
+        summaries: The suppressed summary tables by name.
+        quality: The suppressed quality log.
+        curves: Per outcome with shown events, ``(aj_times, aj, km_times, 1 - km)`` in years.
+        labels: Readable labels of the analysis-table columns.
+
+    Returns:
+        The HTML text.
+    """
+    t, titles = study.threshold, study.titles
+    horizon = max((float(c[0].max()) for c in curves.values()), default=1.0)
+    drawn = {o: Curve(titles.get(o, o), *c, horizon=horizon) for o, c in curves.items()}
+    built = str(run.get("finished_utc", "unknown"))[:10]
+    version = manifest.get("tool_version", "?")
+    body = {
+        "flow": _flow(summaries["flow"], t),
+        "table-one": "".join(
+            _table_one(summaries["table_one"], o, titles.get(o, o), labels) for o in study.outcomes
+        ),
+        "incidence": _incidence(summaries["incidence"]),
+        "curves": _curves(drawn, study.outcomes, titles),
+        "combinations": _combinations(summaries["combinations"], titles),
+        "dependence": _dependence(summaries["dependence"], titles),
+        "definitions": _definitions(study.definitions),
+        "quality": _quality(quality),
+        "manifest": _manifest(manifest),
+    }
+    toc = "".join(f'<li><a href="#{i}">{escape(h)}</a></li>' for i, h in SECTIONS)
+    return (
+        '<!doctype html><html lang="en"><head><meta charset="utf-8">'
+        '<meta name="viewport" content="width=device-width, initial-scale=1">'
+        f"<title>{escape(study.title)}</title><style>{CSS}</style></head><body><main>"
+        f'<header><p class="eyebrow">Study report · {escape(study.name)}</p>'
+        f'<h1>{escape(study.title)}</h1><p class="meta">Built {escape(built)} with ascertain '
+        f"{escape(str(version))} · small-cell threshold {t}</p></header>"
+        + _cautions(t, study.notes)
+        + f"<nav><ol>{toc}</ol></nav>"
+        + "".join(_section(i, body[i]) for i, _ in SECTIONS)
+        + "<footer>Written by ascertain report from the build's output folder. The summary "
+        "tables are also in summary/*.csv.</footer></main></body></html>\n"
+    )
