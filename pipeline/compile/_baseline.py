@@ -22,6 +22,7 @@ from pipeline.compile._measurements import measure_relations
 from pipeline.compile._plan import Stage
 from pipeline.compile._sql import days_between, is_in
 from pipeline.config import Covariate, Evidence, Window
+from pipeline.measures import DERIVED_FROM
 
 OFFSET = "e_offset"  # event date minus index date, in days
 
@@ -345,8 +346,7 @@ def covariate_column(name: str, covariate: Covariate) -> list[exp.Expression]:
         return [charlson_score(covariate.charlson.weights).as_(name)]
     columns = [exp.cast(exp.column(f"m_{name}", "m"), "DOUBLE").as_(name)]
     if covariate.latest:
-        columns += [
-            exp.column(f"m_{name}_date", "m").as_(f"{name}_date"),
-            exp.column(f"m_{name}_derived", "m").as_(f"{name}_derived"),
-        ]
+        columns.append(exp.column(f"m_{name}_date", "m").as_(f"{name}_date"))
+        if covariate.latest in DERIVED_FROM:
+            columns.append(exp.column(f"m_{name}_derived", "m").as_(f"{name}_derived"))
     return columns

@@ -33,18 +33,14 @@ def _measure_docs(name: str, covariate: Covariate) -> list[ColumnDoc]:
         )
     if covariate.latest:
         how += "; several values on the latest day are averaged"
-        return [
+        docs = [
             ColumnDoc(name, "DOUBLE", unit, f"latest {measure} before index", how, "measurements"),
             ColumnDoc(f"{name}_date", "DATE", "", f"date of {name}", how, "measurements"),
-            ColumnDoc(
-                f"{name}_derived",
-                "BOOLEAN",
-                "",
-                f"whether {name} was derived, not reported",
-                how,
-                "measurements",
-            ),
         ]
+        if measure in DERIVED_FROM:
+            meaning = f"whether {name} was derived, not reported"
+            docs.append(ColumnDoc(f"{name}_derived", "BOOLEAN", "", meaning, how, "measurements"))
+        return docs
     return [ColumnDoc(name, "DOUBLE", unit, f"{covariate.kind} of {measure}", how, "measurements")]
 
 

@@ -281,6 +281,7 @@ def _duplicate_columns(doc: LocatedDocument, study: Study) -> list[Problem]:
     problems = []
     for name, cov in study.covariates.items():
         columns = [name, f"{name}_date", f"{name}_derived"] if cov.latest else [name]
+        # (the _derived column exists only for derivable measures; reserving it always is safe)
         clash = [c for c in columns if c in taken]
         if clash:
             problems.append(

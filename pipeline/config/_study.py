@@ -277,7 +277,7 @@ class Covariate(Model):
 
     - ``condition``: true when the condition's onset is on or before the index date;
     - ``latest`` / ``mean`` / ``minimum`` / ``maximum``: a measure's values in ``window``
-      (``latest`` also gives the value's date and whether it was derived);
+      (``latest`` also gives the value's date, and for eGFR and BMI whether it was derived);
     - ``count``: evidence rows in ``window`` (0 when none);
     - ``days_since_first_evidence``: days from a condition's first evidence to index;
     - ``charlson``: the Charlson index from Quan 2005 codes over all history, with the weights.

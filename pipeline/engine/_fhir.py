@@ -382,7 +382,9 @@ SELECT
   CASE WHEN value_string IS NULL AND comparator IS NULL THEN quantity_value END AS value,
   CASE
     WHEN json_extract_string(quantity, '$.system') = :ucum
-      THEN COALESCE(json_extract_string(quantity, '$.code'), json_extract_string(quantity, '$.unit'))
+      THEN COALESCE(
+        json_extract_string(quantity, '$.code'), json_extract_string(quantity, '$.unit')
+      )
     ELSE COALESCE(json_extract_string(quantity, '$.unit'), json_extract_string(quantity, '$.code'))
   END AS unit
 FROM (
