@@ -17,10 +17,12 @@ from typing import Annotated, TypeVar
 import typer
 from rich.console import Console
 from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
+from rich.table import Table
 
 from pipeline._build import BuildOptions, build_study, plan_study, verify_output
 from pipeline._diff import diff_runs, render_diff
 from pipeline._explain import explain_patient, render_trace
+from pipeline._profile import profile_extract, write_profile
 from pipeline._validate import render_validation, validate_study
 from pipeline.compile import Stage
 from pipeline.config import load_study
@@ -261,3 +263,31 @@ def report(
     files = _fail_cleanly(lambda: write_report(output), debug=debug)
     for path in files:
         typer.echo(str(path))
+
+
+def _cell(value: object) -> str:
+    if value is None:
+        return "-"
+    return f"{value:,}" if isinstance(value, int) else str(value)
+
+
+@app.command()
+def profile(
+    extract: Annotated[Path, typer.Argument(help="The extract folder to look at.")],
+    out: Annotated[Path, typer.Option(help="Where to write profile.json and .html.")] = Path(
+        "profile"
+    ),
+    debug: DebugOpt = False,
+) -> None:
+    """Summarise an extract: rows, dates, orphans, codes, measures and units."""
+    result = _fail_cleanly(lambda: profile_extract(extract), debug=debug)
+    console = Console(highlight=False)
+    table = Table(title=f"extract {extract}")
+    for column in ("table", "rows", "first date", "last date", "unreadable dates", "orphans"):
+        table.add_column(column, justify="left" if column == "table" else "right")
+    for name, facts in result["tables"].items():
+        keys = ("rows", "first_date", "last_date", "unreadable_dates", "orphan_rows")
+        table.add_row(name, *(_cell(facts.get(key)) for key in keys))
+    console.print(table)
+    for path in write_profile(result, out):
+        console.print(str(path))

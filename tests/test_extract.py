@@ -125,3 +125,22 @@ def test_leading_zero_ids_stay_text(extract: Path, tmp_path: Path) -> None:
     cohort = pl.read_parquet(tmp_path / "out" / "cohort.parquet")
     assert cohort.schema["patient_id"] == pl.String
     assert cohort["patient_id"][0].startswith("00")
+
+
+def test_a_bad_value_in_a_numeric_looking_csv_column_is_read(tmp_path: Path) -> None:
+    # DuckDB 2.0 would push TRY_CAST into the CSV reader as a strict cast and fail the read;
+    # the engine turns that optimisation off so the row reaches the quality log instead.
+    extract = tmp_path / "x"
+    shutil.copytree(HANDMADE, extract, ignore=shutil.ignore_patterns("expected_*", "*.md"))
+    (extract / "measurements.csv").write_text(
+        "patient_id,obs_date,measure,value_text,value,unit\n"
+        "HM-001,2015-06-01,hba1c,,6.1,%\nHM-001,2015-07-01,hba1c,,x,%\n",
+        encoding="utf-8",
+    )
+    result = build_study(DEMO_STUDY, BuildOptions(extract=extract, out=tmp_path / "out"))
+    reasons = {
+        (r["source_table"], r["reason"]): r["n_rows"]
+        for r in result.run.outputs["quality"].to_pylist()
+    }
+    assert reasons[("measurements", "value not numeric")] == 1
+    assert reasons[("measurements", "used")] == 1

@@ -51,6 +51,9 @@ class RunResult:
 StageCallback = Callable[[Stage, int, int], None]
 
 
+_OPTIMIZERS = exp.select("name").from_("duckdb_optimizers()").sql("duckdb")
+
+
 def _reader(table: ExtractTable) -> exp.Expression:
     files = exp.Array(expressions=[exp.Literal.string(str(f)) for f in table.files])
     if table.file_format == "parquet":
@@ -89,6 +92,11 @@ class DuckDBEngine:
     def _connect(self, scratch: Path) -> duckdb.DuckDBPyConnection:
         con = duckdb.connect(":memory:")
         con.execute("SET temp_directory = ?", [str(scratch)])
+        # DuckDB 2.0 pushes TRY_CAST into the CSV reader as a strict cast, so one bad value in
+        # a text column would fail the whole read; every value must reach our own TRY_CAST.
+        optimizers = {row[0] for row in con.execute(_OPTIMIZERS).fetchall()}
+        if "type_pushdown" in optimizers:
+            con.execute("SET disabled_optimizers = 'type_pushdown'")
         con.execute("SET preserve_insertion_order = false")
         if self.threads:
             con.execute("SET threads = ?", [self.threads])

@@ -1,0 +1,123 @@
+"""``ascertain profile``: the first look at a new extract, written as JSON and one HTML page."""
+
+from __future__ import annotations
+
+import json
+from html import escape
+from pathlib import Path
+from typing import Any
+
+from pipeline.compile._sources import DIAGNOSES, ENCOUNTERS, MEASUREMENTS, PATIENTS, PRESCRIPTIONS
+from pipeline.engine import DuckDBEngine
+from pipeline.engine._profile import profile_tables
+from pipeline.errors import ExtractError
+from pipeline.extract import discover_extract
+
+ALL_TABLES = (PATIENTS, ENCOUNTERS, DIAGNOSES, PRESCRIPTIONS, MEASUREMENTS)
+
+
+def profile_extract(folder: Path) -> dict[str, Any]:
+    """Profile the canonical tables found in an extract folder (patients must be there).
+
+    Raises:
+        ExtractError: No patients table, or a table that lacks required columns.
+    """
+    found = {}
+    missing = []
+    for table in ALL_TABLES:
+        try:
+            found.update(discover_extract(folder, (table,)))
+        except ExtractError as err:
+            if table is PATIENTS or "not found" not in str(err):
+                raise
+            missing.append(table.name)
+    sources = tuple(t for t in ALL_TABLES if t.name in found)
+    profile = profile_tables(DuckDBEngine(), sources, found)
+    profile["extract"] = str(folder.resolve())
+    profile["missing_tables"] = missing
+    return profile
+
+
+def _bars(per_year: dict[str, int]) -> str:
+    """A small inline SVG bar chart of rows per year."""
+    if not per_year:
+        return ""
+    width, height, gap = 18, 60, 4
+    top = max(per_year.values()) or 1
+    bars = []
+    for i, (year, n) in enumerate(sorted(per_year.items())):
+        h = round(height * n / top)
+        x = i * (width + gap)
+        bars.append(
+            f'<rect x="{x}" y="{height - h}" width="{width}" height="{h}" fill="#3d7a74">'
+            f"<title>{escape(year)}: {n:,}</title></rect>"
+            f'<text x="{x + width / 2}" y="{height + 12}" font-size="8" '
+            f'text-anchor="middle">{escape(year[-2:])}</text>'
+        )
+    total = len(per_year) * (width + gap)
+    return f'<svg width="{total}" height="{height + 16}" role="img">{"".join(bars)}</svg>'
+
+
+def _rows_table(rows: list[dict[str, Any]], columns: list[str]) -> str:
+    head = "".join(f"<th>{escape(c)}</th>" for c in columns)
+    body = "".join(
+        "<tr>" + "".join(f"<td>{escape(_fmt(r.get(c)))}</td>" for c in columns) + "</tr>"
+        for r in rows
+    )
+    return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
+
+
+def _fmt(value: Any) -> str:
+    if value is None:
+        return "-"
+    if isinstance(value, float):
+        return f"{value:.4g}"
+    if isinstance(value, int):
+        return f"{value:,}"
+    return str(value)
+
+
+_CSS = (
+    "body{font-family:system-ui,sans-serif;margin:2rem auto;max-width:60rem;color:#1d2b2a}"
+    "h1,h2{font-family:Georgia,serif}table{border-collapse:collapse;margin:.5rem 0 1.5rem}"
+    "td,th{border-bottom:1px solid #d8e2e0;padding:.2rem .6rem;text-align:left}"
+    ".note{background:#fbf3e4;border-left:4px solid #b7791f;padding:.5rem 1rem}"
+)
+
+
+def render_profile_html(profile: dict[str, Any]) -> str:
+    """One self-contained page (inline CSS and SVG, no network)."""
+    parts = [
+        "<!doctype html><html lang=en><head><meta charset=utf-8>",
+        f"<title>Extract profile</title><style>{_CSS}</style></head><body>",
+        f"<h1>Extract profile</h1><p>{escape(profile['extract'])}</p>",
+        '<p class="note">Patient-level data stays inside the secure environment; this page '
+        "holds counts only. Research use only; follow local data-governance rules.</p>",
+    ]
+    for name, table in profile["tables"].items():
+        facts = {k: v for k, v in table.items() if k != "rows_per_year"}
+        parts.append(f"<h2>{escape(name)}</h2>")
+        parts.append(_rows_table([facts], list(facts)))
+        parts.append(_bars(table["rows_per_year"]))
+    if profile.get("missing_tables"):
+        parts.append(f"<p>Tables not found: {escape(', '.join(profile['missing_tables']))}</p>")
+    for key, columns in (
+        ("diagnosis_codes", ["code_system", "code", "rows"]),
+        ("prescription_codes", ["code_system", "code", "rows"]),
+        ("measures", ["measure", "unit", "rows", "numeric", "min", "p25", "p50", "p75", "max"]),
+    ):
+        if key in profile:
+            parts.append(f"<h2>{escape(key.replace('_', ' '))}</h2>")
+            parts.append(_rows_table(profile[key], columns))
+    parts.append("</body></html>")
+    return "\n".join(parts) + "\n"
+
+
+def write_profile(profile: dict[str, Any], out: Path) -> list[Path]:
+    """Write ``profile.json`` and ``profile.html`` into ``out``."""
+    out.mkdir(parents=True, exist_ok=True)
+    as_json = out / "profile.json"
+    as_json.write_text(json.dumps(profile, indent=2, sort_keys=True, default=str) + "\n", "utf-8")
+    page = out / "profile.html"
+    page.write_text(render_profile_html(profile), encoding="utf-8")
+    return [as_json, page]

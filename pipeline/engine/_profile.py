@@ -1,0 +1,176 @@
+"""``ascertain profile``: what is in a new extract and what is wrong with it, before any study.
+
+One DuckDB pass per question over the same source views a build uses: row counts, date ranges
+and rows per year, unreadable dates, orphan rows, code systems and the most frequent codes,
+measures with their units and value distributions.
+"""
+
+from __future__ import annotations
+
+import tempfile
+from pathlib import Path
+from typing import Any
+
+import duckdb
+from sqlglot import exp
+
+from pipeline.compile import SourceTable
+from pipeline.engine._duckdb import DuckDBEngine
+from pipeline.extract import ExtractTable
+
+DATE_COLUMNS = {
+    "patients": "birth_date",
+    "encounters": "encounter_date",
+    "diagnoses": "event_date",
+    "prescriptions": "start_date",
+    "measurements": "obs_date",
+}
+TOP = 10
+
+
+def _fetch(con: duckdb.DuckDBPyConnection, query: exp.Query) -> list[dict[str, Any]]:
+    result = con.execute(query.sql("duckdb"))
+    names = [d[0] for d in result.description or []]
+    return [dict(zip(names, row, strict=True)) for row in result.fetchall()]
+
+
+def _date(column: str) -> exp.Expression:
+    return exp.TryCast(this=exp.column(column), to=exp.DataType.build("DATE"))
+
+
+def _table_profile(con: duckdb.DuckDBPyConnection, name: str) -> dict[str, Any]:
+    relation = f"src_{name}"
+    day = _date(DATE_COLUMNS[name])
+    raw = exp.column(DATE_COLUMNS[name])
+    summary = exp.select(
+        exp.func("COUNT", exp.Star()).as_("rows"),
+        exp.Min(this=day).as_("first_date"),
+        exp.Max(this=day.copy()).as_("last_date"),
+        exp.func("COUNT_IF", exp.and_(raw.is_(exp.null()).not_(), day.copy().is_(exp.null()))).as_(
+            "unreadable_dates"
+        ),
+    ).from_(relation)
+    profile: dict[str, Any] = _fetch(con, summary)[0]
+    per_year = (
+        exp.select(exp.Year(this=day.copy()).as_("year"), exp.func("COUNT", exp.Star()).as_("rows"))
+        .from_(relation)
+        .where(day.copy().is_(exp.null()).not_())
+        .group_by("year")
+        .order_by("year")
+    )
+    profile["rows_per_year"] = {str(r["year"]): r["rows"] for r in _fetch(con, per_year)}
+    if name != "patients":
+        orphans = (
+            exp.select(exp.func("COUNT", exp.Star()).as_("n"))
+            .from_(f"{relation} AS r")
+            .where(
+                exp.column("patient_id", "r")
+                .isin(
+                    query=exp.select("patient_id")
+                    .from_("src_patients")
+                    .where(exp.column("patient_id").is_(exp.null()).not_())
+                )
+                .not_()
+            )
+        )
+        profile["orphan_rows"] = _fetch(con, orphans)[0]["n"]
+    return profile
+
+
+def _top_codes(
+    con: duckdb.DuckDBPyConnection, relation: str, system: exp.Expression, code: str
+) -> list[dict[str, Any]]:
+    normalised = exp.func(
+        "REPLACE",
+        exp.func(
+            "REPLACE",
+            exp.Upper(this=exp.column(code)),
+            exp.Literal.string("."),
+            exp.Literal.string(""),
+        ),
+        exp.Literal.string(" "),
+        exp.Literal.string(""),
+    )
+    ranked = (
+        exp.select(
+            system.as_("code_system"),
+            normalised.as_("code"),
+            exp.func("COUNT", exp.Star()).as_("rows"),
+        )
+        .from_(relation)
+        .group_by(system.copy(), normalised.copy())  # a bare name would mean the raw column
+    )
+    numbered = exp.select(
+        "code_system",
+        "code",
+        "rows",
+        exp.Window(
+            this=exp.func("ROW_NUMBER"),
+            partition_by=[exp.column("code_system")],
+            order=exp.Order(
+                expressions=[
+                    exp.Ordered(this=exp.column("rows"), desc=True),
+                    exp.Ordered(this=exp.column("code")),
+                ]
+            ),
+        ).as_("rank"),
+    ).from_(ranked.subquery("c"))
+    top = (
+        exp.select("code_system", "code", "rows")
+        .from_(numbered.subquery("n"))
+        .where(exp.column("rank") <= TOP)
+        .order_by("code_system", exp.Ordered(this=exp.column("rows"), desc=True), "code")
+    )
+    return _fetch(con, top)
+
+
+def _measures(con: duckdb.DuckDBPyConnection) -> list[dict[str, Any]]:
+    value = exp.TryCast(this=exp.column("value"), to=exp.DataType.build("DOUBLE"))
+    measure = exp.Lower(this=exp.Trim(this=exp.cast(exp.column("measure"), "VARCHAR")))
+    unit = exp.Trim(this=exp.cast(exp.column("unit"), "VARCHAR"))
+    quantiles = [
+        exp.func("QUANTILE_CONT", value.copy(), exp.Literal.number(q)).as_(f"p{int(q * 100)}")
+        for q in (0.25, 0.5, 0.75)
+    ]
+    query = (
+        exp.select(
+            measure.as_("measure"),
+            unit.as_("unit"),
+            exp.func("COUNT", exp.Star()).as_("rows"),
+            exp.func("COUNT", value.copy()).as_("numeric"),
+            exp.Min(this=value.copy()).as_("min"),
+            *quantiles,
+            exp.Max(this=value.copy()).as_("max"),
+        )
+        .from_("src_measurements")
+        .group_by(measure.copy(), unit.copy())  # a bare name would mean the raw column
+        .order_by(exp.column("measure"), exp.column("unit"))
+    )
+    return _fetch(con, query)
+
+
+def profile_tables(
+    engine: DuckDBEngine, sources: tuple[SourceTable, ...], tables: dict[str, ExtractTable]
+) -> dict[str, Any]:
+    """Profile every table found; see the module docstring for what is measured."""
+    with tempfile.TemporaryDirectory(prefix="ascertain-profile-") as scratch:
+        con = engine._connect(Path(scratch))
+        try:
+            engine._bind(con, sources, tables)
+            result: dict[str, Any] = {
+                "tables": {s.name: _table_profile(con, s.name) for s in sources}
+            }
+            if "diagnoses" in tables:
+                system = exp.Upper(
+                    this=exp.Trim(this=exp.cast(exp.column("code_system"), "VARCHAR"))
+                )
+                result["diagnosis_codes"] = _top_codes(con, "src_diagnoses", system, "code")
+            if "prescriptions" in tables:
+                result["prescription_codes"] = _top_codes(
+                    con, "src_prescriptions", exp.Literal.string("ATC"), "atc"
+                )
+            if "measurements" in tables:
+                result["measures"] = _measures(con)
+        finally:
+            con.close()
+    return result
