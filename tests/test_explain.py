@@ -104,3 +104,29 @@ def test_text_and_json_formats() -> None:
     assert _failed_step(data) == "age"
     bad = runner.invoke(app, [*args, "--format", "xml"])
     assert bad.exit_code == 2
+
+
+@pytest.mark.parametrize(
+    ("patient", "rule", "met_on", "incident"),
+    [
+        # HM-024: E119 2016-01-10 and 250.00 2018-01-09, exactly 730 days apart (fixture README)
+        ("HM-024", "two diabetes codes", "2018-01-09", True),
+        # HX-017: eGFR 52 on 2015-09-01 and 48 on 2016-03-01, 182 days apart (fixture README)
+        ("HX-017", "two low eGFR at least 90 days apart", "2016-03-01", True),
+    ],
+)
+def test_rule_met_dates(patient: str, rule: str, met_on: str, incident: bool) -> None:
+    extract = HANDMADE if patient.startswith("HM") else MEASURES
+    trace = _trace(patient, extract)
+    outcome = "type2_diabetes" if "diabetes" in rule else "ckd"
+    met = {r["rule"]: r["met_on"] for r in trace["outcomes"][outcome]["rules_met"]}
+    assert met[rule] == met_on
+    assert trace["outcomes"][outcome]["incident"] is incident
+
+
+def test_two_codes_731_days_apart_meet_no_rule() -> None:
+    # HM-025: second code 731 days after the first: no rule met, no onset (fixture README)
+    outcome = _trace("HM-025")["outcomes"]["type2_diabetes"]
+    assert outcome["rules_met"] == []
+    assert outcome["onset"] is None
+    assert len([e for e in outcome["evidence"] if e["evidence"] == "dm_code"]) == 2

@@ -335,3 +335,29 @@ def test_parse_quantity() -> None:
 def test_threshold_errors(measure: str, text: str, message: str) -> None:
     with pytest.raises(ValueError, match="^" + re.escape(message)):
         Threshold.parse(measure, "at_least", text)
+
+
+@pytest.mark.parametrize(
+    ("egfr", "low"),
+    # KDIGO 2012 GFR categories (Kidney Int Suppl 2013;3): G2 is 60-89, G3a 45-59, so 60 is
+    # not stage 3 and 59.9 is; the ckd definition's "below 60" must split them the same way.
+    [("60", False), ("59.9", True), ("45", True), ("89.9", False)],
+)
+def test_egfr_low_follows_the_kdigo_g3a_boundary(tmp_path: Path, egfr: str, low: bool) -> None:
+    extract = write_extract(
+        tmp_path / "x",
+        {
+            "patients": [{"patient_id": "P1", "birth_date": "1950-01-01", "sex": "F"}],
+            "measurements": [
+                {
+                    "patient_id": "P1",
+                    "obs_date": "2016-01-01",
+                    "measure": "egfr",
+                    "value": egfr,
+                    "unit": "mL/min/1.73m2",
+                }
+            ],
+        },
+    )
+    events = run_stage(extract, "evidence_events", order=("evidence",))
+    assert any(e["evidence"] == "ckd.egfr_low" for e in events) is low

@@ -244,3 +244,15 @@ def test_report_renders_in_headless_chromium(demo: Path, tmp_path: Path) -> None
     subprocess.run(command, check=True, timeout=90, capture_output=True)
     assert png.is_file()
     assert png.stat().st_size > 10_000
+
+
+def test_report_command(small: Path) -> None:
+    from typer.testing import CliRunner
+
+    from pipeline.cli import app
+
+    result = CliRunner().invoke(app, ["report", str(small)])
+    assert result.exit_code == 0, result.output
+    assert str(small / "report.html") in result.output
+    missing = CliRunner().invoke(app, ["report", str(small / "nowhere")])
+    assert missing.exit_code == 2
