@@ -66,9 +66,9 @@ def _source_rows(extract: Path) -> dict[str, list[tuple[str | None, ...]]]:
     stages = tuple(
         Stage(
             f"read_{s.name}",
-            exp.select(
-                *(exp.cast(exp.column(c), "VARCHAR").as_(c) for c in s.columns)
-            ).from_(s.relation),
+            exp.select(*(exp.cast(exp.column(c), "VARCHAR").as_(c) for c in s.columns)).from_(
+                s.relation
+            ),
             (s.relation,),
             f"the {s.name} table as bound",
         )
@@ -172,7 +172,7 @@ def test_cohort_from_fhir_equals_cohort_from_csv(builds: dict[str, Path]) -> Non
 def test_every_fhir_row_is_accounted_for(builds: dict[str, Path]) -> None:
     with (builds["fhir"] / "quality.csv").open(encoding="utf-8") as handle:
         quality = list(csv.DictReader(handle))
-    per_table = {t: 0 for t in TABLES}
+    per_table = dict.fromkeys(TABLES, 0)
     for row in quality:
         per_table[row["source_table"]] += int(row["n_rows"])
     # 8 patients; 22 encounters; 11 Conditions -> 12 rows (one coded ICD-10 and ICD-9);

@@ -361,3 +361,24 @@ def test_egfr_low_follows_the_kdigo_g3a_boundary(tmp_path: Path, egfr: str, low:
     )
     events = run_stage(extract, "evidence_events", order=("evidence",))
     assert any(e["evidence"] == "ckd.egfr_low" for e in events) is low
+
+
+def test_every_smoking_category_is_recognised(tmp_path: Path) -> None:
+    rows = _measurement_rows(
+        tmp_path,
+        [
+            {
+                "patient_id": "P1",
+                "obs_date": f"2016-01-0{i}",
+                "measure": "smoking",
+                "value_text": text,
+            }
+            for i, text in enumerate(("Current", "former", " NEVER ", "sometimes"), start=1)
+        ],
+    )
+    assert [(r["category"], r["problem"]) for r in rows] == [
+        ("current", None),
+        ("former", None),
+        ("never", None),
+        ("sometimes", "category not recognised"),
+    ]

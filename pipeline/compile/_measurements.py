@@ -80,7 +80,8 @@ SELECT
     WHEN r.obs_date > :end_of_data THEN 'after end of data'
     WHEN p.death_date IS NOT NULL AND r.obs_date > p.death_date THEN 'after death'
     WHEN k.measure IS NULL THEN 'unknown measure'
-    WHEN k.is_coded AND (r.category IS NULL OR NOT :known_category) THEN 'category not recognised'
+    WHEN k.is_coded AND (r.category IS NULL OR NOT (:known_category))
+      THEN 'category not recognised'
     WHEN k.is_coded THEN NULL
     WHEN r.empty THEN 'no value'
     WHEN r.reading IS NULL THEN 'value not numeric'

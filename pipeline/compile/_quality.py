@@ -70,12 +70,17 @@ GROUP BY source_table, reason
 
 
 def _code_problem(table: str) -> exp.Expression:
+    # An empty or missing code or system is malformed or unknown, never used.
     if table == "prescriptions":
-        code = normalised_code_sql(exp.column("atc", "r"))
+        code = exp.func("COALESCE", normalised_code_sql(exp.column("atc", "r")), value(""))
         bad = exp.not_(exp.func("REGEXP_MATCHES", code, value(_CODE_PATTERNS["ATC"])))
         return exp.Case().when(bad, value("malformed code"))
-    system = exp.Upper(this=exp.Trim(this=exp.cast(exp.column("code_system", "r"), "VARCHAR")))
-    code = normalised_code_sql(exp.column("code", "r"))
+    system = exp.func(
+        "COALESCE",
+        exp.Upper(this=exp.Trim(this=exp.cast(exp.column("code_system", "r"), "VARCHAR"))),
+        value(""),
+    )
+    code = exp.func("COALESCE", normalised_code_sql(exp.column("code", "r")), value(""))
     case = exp.Case().when(
         exp.not_(system.copy().isin(value("ICD9"), value("ICD10"))), value("unknown code system")
     )

@@ -213,13 +213,15 @@ SELECT
     AND (
       r.category IS NULL
       OR NOT (
-        r.measure = 'smoking' AND r.category = 'current'
-      )
-      OR (
-        r.measure = 'smoking' AND r.category = 'former'
-      )
-      OR (
-        r.measure = 'smoking' AND r.category = 'never'
+        (
+          r.measure = 'smoking' AND r.category = 'current'
+        )
+        OR (
+          r.measure = 'smoking' AND r.category = 'former'
+        )
+        OR (
+          r.measure = 'smoking' AND r.category = 'never'
+        )
       )
     )
     THEN 'category not recognised'
@@ -408,13 +410,15 @@ FROM (
       AND (
         r.category IS NULL
         OR NOT (
-          r.measure = 'smoking' AND r.category = 'current'
-        )
-        OR (
-          r.measure = 'smoking' AND r.category = 'former'
-        )
-        OR (
-          r.measure = 'smoking' AND r.category = 'never'
+          (
+            r.measure = 'smoking' AND r.category = 'current'
+          )
+          OR (
+            r.measure = 'smoking' AND r.category = 'former'
+          )
+          OR (
+            r.measure = 'smoking' AND r.category = 'never'
+          )
         )
       )
       THEN 'category not recognised'
@@ -2229,33 +2233,33 @@ WITH summary AS (
         WHEN r.row_date IS NULL
         THEN 'unparseable date'
         WHEN NOT CASE
-          WHEN NOT UPPER(TRIM(CAST(r.code_system AS TEXT))) IN ('ICD9', 'ICD10')
+          WHEN NOT COALESCE(UPPER(TRIM(CAST(r.code_system AS TEXT))), '') IN ('ICD9', 'ICD10')
           THEN 'unknown code system'
-          WHEN UPPER(TRIM(CAST(r.code_system AS TEXT))) = 'ICD9'
+          WHEN COALESCE(UPPER(TRIM(CAST(r.code_system AS TEXT))), '') = 'ICD9'
           AND NOT REGEXP_MATCHES(
-            REPLACE(REPLACE(UPPER(r.code), '.', ''), ' ', ''),
+            COALESCE(REPLACE(REPLACE(UPPER(r.code), '.', ''), ' ', ''), ''),
             '^([0-9]{3}([0-9]{1,2})?|V[0-9]{2}([0-9]{1,2})?|E[0-9]{3}([0-9])?)$'
           )
           THEN 'malformed code'
-          WHEN UPPER(TRIM(CAST(r.code_system AS TEXT))) = 'ICD10'
+          WHEN COALESCE(UPPER(TRIM(CAST(r.code_system AS TEXT))), '') = 'ICD10'
           AND NOT REGEXP_MATCHES(
-            REPLACE(REPLACE(UPPER(r.code), '.', ''), ' ', ''),
+            COALESCE(REPLACE(REPLACE(UPPER(r.code), '.', ''), ' ', ''), ''),
             '^[A-Z][0-9][0-9A-Z]([0-9A-Z]{1,4})?$'
           )
           THEN 'malformed code'
         END IS NULL
         THEN CASE
-          WHEN NOT UPPER(TRIM(CAST(r.code_system AS TEXT))) IN ('ICD9', 'ICD10')
+          WHEN NOT COALESCE(UPPER(TRIM(CAST(r.code_system AS TEXT))), '') IN ('ICD9', 'ICD10')
           THEN 'unknown code system'
-          WHEN UPPER(TRIM(CAST(r.code_system AS TEXT))) = 'ICD9'
+          WHEN COALESCE(UPPER(TRIM(CAST(r.code_system AS TEXT))), '') = 'ICD9'
           AND NOT REGEXP_MATCHES(
-            REPLACE(REPLACE(UPPER(r.code), '.', ''), ' ', ''),
+            COALESCE(REPLACE(REPLACE(UPPER(r.code), '.', ''), ' ', ''), ''),
             '^([0-9]{3}([0-9]{1,2})?|V[0-9]{2}([0-9]{1,2})?|E[0-9]{3}([0-9])?)$'
           )
           THEN 'malformed code'
-          WHEN UPPER(TRIM(CAST(r.code_system AS TEXT))) = 'ICD10'
+          WHEN COALESCE(UPPER(TRIM(CAST(r.code_system AS TEXT))), '') = 'ICD10'
           AND NOT REGEXP_MATCHES(
-            REPLACE(REPLACE(UPPER(r.code), '.', ''), ' ', ''),
+            COALESCE(REPLACE(REPLACE(UPPER(r.code), '.', ''), ' ', ''), ''),
             '^[A-Z][0-9][0-9A-Z]([0-9A-Z]{1,4})?$'
           )
           THEN 'malformed code'
@@ -2308,14 +2312,14 @@ WITH summary AS (
         THEN 'unparseable date'
         WHEN NOT CASE
           WHEN NOT REGEXP_MATCHES(
-            REPLACE(REPLACE(UPPER(r.atc), '.', ''), ' ', ''),
+            COALESCE(REPLACE(REPLACE(UPPER(r.atc), '.', ''), ' ', ''), ''),
             '^[A-Z]([0-9]{2}([A-Z]([A-Z]([0-9]{2})?)?)?)?$'
           )
           THEN 'malformed code'
         END IS NULL
         THEN CASE
           WHEN NOT REGEXP_MATCHES(
-            REPLACE(REPLACE(UPPER(r.atc), '.', ''), ' ', ''),
+            COALESCE(REPLACE(REPLACE(UPPER(r.atc), '.', ''), ' ', ''), ''),
             '^[A-Z]([0-9]{2}([A-Z]([A-Z]([0-9]{2})?)?)?)?$'
           )
           THEN 'malformed code'
