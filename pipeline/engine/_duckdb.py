@@ -7,6 +7,7 @@ and executes the stages in order. It knows nothing about studies: only plans.
 from __future__ import annotations
 
 import logging
+import re
 import tempfile
 import time
 from collections.abc import Callable
@@ -19,7 +20,8 @@ from sqlglot import exp
 
 from pipeline.compile import Plan, SourceTable, Stage
 from pipeline.engine._fhir import fhir_source
-from pipeline.errors import EngineError
+from pipeline.engine._mapped import source_column
+from pipeline.errors import EngineError, ExtractError
 from pipeline.extract import ExtractTable
 
 log = logging.getLogger(__name__)
@@ -54,16 +56,94 @@ StageCallback = Callable[[Stage, int, int], None]
 _OPTIMIZERS = exp.select("name").from_("duckdb_optimizers()").sql("duckdb")
 
 
+def _csv_options(table: ExtractTable) -> dict[str, exp.Expression]:
+    # The header as discovery read it (stripped, lower-cased); a blank or repeated name, which
+    # no canonical or mapped column can be, gets a positional one so DuckDB accepts the list.
+    names = [
+        name if name and name not in table.columns[:i] else f"column{i + 1}"
+        for i, name in enumerate(table.columns)
+    ]
+    text = exp.Literal.string
+    columns = exp.Struct(
+        expressions=[exp.PropertyEQ(this=text(n), expression=text("VARCHAR")) for n in names]
+    )
+    return {
+        "header": exp.true(),
+        "auto_detect": exp.false(),
+        "columns": columns,
+        "delim": text(","),
+        "quote": text('"'),
+        "escape": text('"'),
+        "encoding": text("utf-8"),
+        "strict_mode": exp.true(),
+        "null_padding": exp.false(),
+    }
+
+
 def _reader(table: ExtractTable) -> exp.Expression:
+    """The table function reading one extract table's files, every CSV value as text.
+
+    CSV files are read as RFC 4180 says and nothing is guessed: comma-separated, UTF-8 (a
+    byte-order mark is skipped), fields quoted with ``"`` (which may hold commas and line
+    breaks; ``""`` is a quote), the first line a header, skipped, whose names discovery read
+    into ``table.columns`` (so these must be the file's header, in file order). With
+    auto-detection off DuckDB never guesses a comment character, rows to skip or types, so no
+    line can disappear unnoticed, and its errors give the right line.
+
+    A ragged row, with too few or too many fields, is refused: the read fails and the engine
+    reports an ``ExtractError`` naming the file, the line and the first missing or extra
+    column (see :func:`_read_failure`); so do text that is not UTF-8, a quote never closed and
+    a line longer than DuckDB's maximum line size. Padding short rows (``null_padding``) was
+    rejected: DuckDB pads only in its single-threaded reader once fields hold line breaks, and
+    that reader silently drops the rest of a file after a quote that is never closed.
+
+    Delimiters other than the comma, other encodings, empty files and files that are not what
+    their name says are refused earlier, when discovery reads the header.
+    """
     files = exp.Array(expressions=[exp.Literal.string(str(f)) for f in table.files])
     if table.file_format == "parquet":
         return exp.func("read_parquet", files)
-    options = {"header": exp.true(), "all_varchar": exp.true(), "delim": exp.Literal.string(",")}
     return exp.func(
         "read_csv",
         files,
-        *(exp.PropertyEQ(this=exp.var(k), expression=v) for k, v in options.items()),
+        *(exp.PropertyEQ(this=exp.var(k), expression=v) for k, v in _csv_options(table).items()),
     )
+
+
+# DuckDB's CSV errors: "CSV Error on Line: N", "Original Line: ...", the reason, the options.
+_CSV_LINE = re.compile(r"CSV Error on Line: (\d+)")
+_CSV_TEXT = re.compile(r"^Original Line: (.*)$", re.MULTILINE)
+_CSV_FILE = re.compile(r"^\s*file = (.+)$", re.MULTILINE)
+_CSV_WIDTH = re.compile(r"Expected Number of Columns: (\d+) Found: (\d+)")
+_CSV_REASONS = {
+    "Invalid unicode": "not valid UTF-8 (convert the file to UTF-8)",
+    "Maximum line size": "the line is longer than DuckDB's maximum line size",
+    "unterminated quote": "a quoted field is never closed",
+}
+
+
+def _read_failure(err: duckdb.Error) -> ExtractError | None:
+    """An extract file DuckDB could not read, as an error naming the file and the line.
+
+    DuckDB counts a record whose quoted fields hold line breaks as one line. Returns None when
+    ``err`` is not a CSV reading error.
+    """
+    message = str(err)
+    line, file = _CSV_LINE.search(message), _CSV_FILE.search(message)
+    if not line or not file:
+        return None
+    width = _CSV_WIDTH.search(message)
+    if width:
+        expected, found = (int(n) for n in width.groups())
+        where = "extra" if found > expected else "missing"
+        column = min(expected, found) + 1
+        reason = f"{found} fields where the header has {expected} ({where} from column {column})"
+    else:
+        known = (text for key, text in _CSV_REASONS.items() if key.lower() in message.lower())
+        reason = next(known, "cannot be read as CSV")
+    text = _CSV_TEXT.search(message)
+    shown = f" {text.group(1)[:60]!r}" if text else ""
+    return ExtractError(f"{file.group(1).strip()}: line {line.group(1)}{shown}: {reason}")
 
 
 def _create(kind: str, name: str, query: exp.Query) -> exp.Create:
@@ -114,11 +194,15 @@ class DuckDBEngine:
             return "VARCHAR"
         source = exp.Table(this=_reader(patients))
         if patients.file_format == "parquet":
-            describe = exp.Describe(this=exp.select("patient_id").from_(source))
+            describe = exp.Describe(
+                this=exp.select(source_column(patients, "patient_id")).from_(source)
+            )
             rows = con.execute(describe.sql(self.DIALECT)).fetchall()
             return str(rows[0][1]) if rows else "VARCHAR"
         match = exp.func(
-            "REGEXP_FULL_MATCH", exp.column("patient_id"), exp.Literal.string(_INTEGER_ID)
+            "REGEXP_FULL_MATCH",
+            source_column(patients, "patient_id"),
+            exp.Literal.string(_INTEGER_ID),
         )
         probe = exp.select(exp.func("BOOL_AND", match)).from_(source)
         rows = con.execute(probe.sql(self.DIALECT)).fetchall()
@@ -136,12 +220,13 @@ class DuckDBEngine:
             table = tables[source.name]
             columns: list[exp.Expression] = []
             for name in source.columns:
-                if name not in table.columns:
+                if name not in table.provides:
                     columns.append(exp.cast(exp.null(), "VARCHAR").as_(name))
                 elif name == "patient_id":
-                    columns.append(exp.TryCast(this=exp.column(name), to=id_type.copy()).as_(name))
+                    column = source_column(table, name)
+                    columns.append(exp.TryCast(this=column, to=id_type.copy()).as_(name))
                 else:
-                    columns.append(exp.column(name))
+                    columns.append(source_column(table, name).as_(name))
             if table.file_format == "fhir":
                 rows: exp.Expression = fhir_source(table).subquery("fhir")
             else:
@@ -190,7 +275,7 @@ class DuckDBEngine:
             try:
                 return self._run(con, plan, tables, on_stage, patients)
             except duckdb.Error as err:
-                raise EngineError(f"DuckDB failed: {err}") from err
+                raise _read_failure(err) or EngineError(f"DuckDB failed: {err}") from err
             finally:
                 con.close()
 
@@ -211,7 +296,8 @@ class DuckDBEngine:
             try:
                 rows = self._execute(con, stage)
             except duckdb.Error as err:
-                raise EngineError(f"stage {stage.name} failed on DuckDB: {err}") from err
+                failure = EngineError(f"stage {stage.name} failed on DuckDB: {err}")
+                raise _read_failure(err) or failure from err
             reports.append(StageReport(stage.name, stage.kind, time.perf_counter() - started, rows))
             log.debug("stage %s: %.3fs, %s rows", stage.name, reports[-1].seconds, rows)
         outputs = {}

@@ -1,5 +1,6 @@
-"""The canonical extract: locating its tables and checking their columns."""
+"""The extract: locating its tables (folders, FHIR exports, site mappings), checking columns."""
 
-from pipeline.extract._discover import ExtractTable, discover_extract
+from pipeline.extract._discover import ExtractTable
+from pipeline.extract._mapped import discover_extract
 
 __all__ = ["ExtractTable", "discover_extract"]

@@ -15,6 +15,7 @@ from typing import Literal
 import pyarrow.parquet as pq
 
 from pipeline.compile import SourceTable
+from pipeline.config._mapping import TableMapping
 from pipeline.errors import ExtractError
 
 FileFormat = Literal["csv", "parquet", "fhir"]
@@ -33,6 +34,7 @@ class ExtractTable:
         columns: Column names present in the file, lower-cased, in file order (for ``fhir``,
             the canonical columns the engine derives from the resources).
         resources: For ``fhir``, the resource type each file holds (parallel to ``files``).
+        mapping: When read through a site mapping file, how its columns map to ours.
     """
 
     name: str
@@ -40,6 +42,12 @@ class ExtractTable:
     file_format: FileFormat
     columns: tuple[str, ...]
     resources: tuple[str, ...] = ()
+    mapping: TableMapping | None = None
+
+    @property
+    def provides(self) -> tuple[str, ...]:
+        """The canonical columns this table provides (through the mapping, if it has one)."""
+        return tuple(self.mapping.columns) if self.mapping is not None else self.columns
 
 
 def _candidates(folder: Path, name: str) -> list[tuple[tuple[Path, ...], FileFormat]]:
@@ -56,16 +64,56 @@ def _candidates(folder: Path, name: str) -> list[tuple[tuple[Path, ...], FileFor
     return found
 
 
+# What the first bytes of a file that is not CSV text say it is.
+_NOT_TEXT = {
+    b"PAR1": "a Parquet file",
+    b"\x1f\x8b": "gzip-compressed (name it .csv.gz)",
+    b"PK\x03\x04": "a zip archive (a spreadsheet?)",
+    b"\xff\xfe": "UTF-16 text",
+    b"\xfe\xff": "UTF-16 text",
+}
+_HEADER_BYTES = 1 << 20
+_OTHER_DELIMITERS = (";", "\t", "|")
+
+
+def _csv_header(path: Path) -> list[str]:
+    """The names in a CSV file's first line, refusing files that cannot be comma-separated text.
+
+    Only the first line is read: the engine checks the rest (and names the line at fault).
+    """
+    opener = gzip.open if path.name.endswith(".gz") else open
+    with opener(path, "rb") as handle:
+        line = handle.readline(_HEADER_BYTES)
+    if not line:
+        raise ExtractError(f"{path}: empty file, no header")
+    for magic, what in _NOT_TEXT.items():
+        if line.startswith(magic):
+            raise ExtractError(f"{path}: this is {what}, not CSV text")
+    if b"\x00" in line:
+        raise ExtractError(f"{path}: line 1 holds NUL bytes; this is not CSV text")
+    try:
+        text = line.decode("utf-8-sig")
+    except UnicodeDecodeError as err:
+        raise ExtractError(
+            f"{path}: line 1, byte {err.start + 1}: not valid UTF-8 "
+            f"(byte 0x{line[err.start]:02x}); files must be UTF-8 (convert Latin-1 or Windows text)"
+        ) from err
+    names = next(csv.reader([text]), [])
+    if not any(name.strip() for name in names):
+        raise ExtractError(f"{path}: line 1 is blank; the first line must be the header")
+    if len(names) == 1 and any(d in names[0] for d in _OTHER_DELIMITERS):
+        raise ExtractError(
+            f"{path}: the header has one column {names[0].strip()!r}; files must be comma-separated"
+        )
+    return names
+
+
 def _header(path: Path, file_format: FileFormat) -> tuple[str, ...]:
     try:
-        if file_format == "parquet":
-            names = pq.read_schema(path).names
-        else:
-            opener = gzip.open if path.suffix == ".gz" else open
-            with opener(path, "rt", encoding="utf-8-sig", newline="") as handle:
-                names = next(csv.reader(handle), [])
-    except (OSError, UnicodeDecodeError, ValueError) as err:
-        raise ExtractError(f"{path}: cannot read the header: {err}") from err
+        names = pq.read_schema(path).names if file_format == "parquet" else _csv_header(path)
+    except (OSError, ValueError, csv.Error) as err:
+        what = "not a readable Parquet file" if file_format == "parquet" else "cannot be read"
+        raise ExtractError(f"{path}: {what}: {err}") from err
     return tuple(n.strip().lower() for n in names)
 
 
@@ -145,7 +193,7 @@ def _discover_fhir(
     return found
 
 
-def discover_extract(folder: Path, tables: tuple[SourceTable, ...]) -> dict[str, ExtractTable]:
+def discover_folder(folder: Path, tables: tuple[SourceTable, ...]) -> dict[str, ExtractTable]:
     """Locate each table the plan reads and check it has the columns the plan needs.
 
     A folder holding ``*.ndjson`` files is read as a FHIR R4 bulk-data export instead.
