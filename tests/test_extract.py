@@ -144,3 +144,22 @@ def test_a_bad_value_in_a_numeric_looking_csv_column_is_read(tmp_path: Path) -> 
     }
     assert reasons[("measurements", "value not numeric")] == 1
     assert reasons[("measurements", "used")] == 1
+
+
+def test_a_folder_of_parquet_parts_gives_the_same_cohort(tmp_path: Path) -> None:
+    # Large extracts arrive as many Parquet parts per table: <table>/*.parquet.
+    extract = tmp_path / "parts"
+    extract.mkdir()
+    for csv_file in sorted(HANDMADE.glob("*.csv")):
+        if csv_file.name.startswith("expected_"):
+            continue
+        frame = pl.read_csv(csv_file, infer_schema_length=0)
+        folder = extract / csv_file.stem
+        folder.mkdir()
+        for number, start in enumerate(range(0, max(frame.height, 1), 7)):
+            frame.slice(start, 7).write_parquet(folder / f"part-{number:03d}.parquet")
+    _build(extract, tmp_path / "from_parts")
+    _build(HANDMADE, tmp_path / "from_csv")
+    parts = pl.read_parquet(tmp_path / "from_parts" / "cohort.parquet")
+    assert parts.height == 29
+    assert parts.equals(pl.read_parquet(tmp_path / "from_csv" / "cohort.parquet"))
