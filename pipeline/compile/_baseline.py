@@ -213,12 +213,17 @@ def window_counts_stage(ctx: CompileContext) -> Stage | None:
 _SUMMARIES = {"mean": exp.Avg, "minimum": exp.Min, "maximum": exp.Max}
 
 
-def _measure_values(ctx: CompileContext, measure: str, window: Window) -> exp.Query:
-    relations = measure_relations(ctx, measure)
+def _baseline_values(ctx: CompileContext, measures: list[str], earliest: int | None) -> exp.Query:
+    """Exact values of the covariate measures, near enough to the index, read once."""
+    relations = sorted({r for m in measures for r in measure_relations(ctx, m)})
     parts = [
-        exp.select("patient_id", "obs_date", "value", "derived")
+        exp.select("patient_id", "measure", "obs_date", "value", "derived")
         .from_(relation)
-        .where(exp.and_(exp.column("measure").eq(measure), exp.column("qualifier").is_(exp.null())))
+        .where(
+            exp.and_(
+                is_in(exp.column("measure"), measures), exp.column("qualifier").is_(exp.null())
+            )
+        )
         for relation in relations
     ]
     union: exp.Query = parts[0]
@@ -228,27 +233,45 @@ def _measure_values(ctx: CompileContext, measure: str, window: Window) -> exp.Qu
     return (
         exp.select(
             exp.column("patient_id", "v"),
+            exp.column("measure", "v"),
             exp.column("obs_date", "v"),
             exp.column("value", "v"),
             exp.column("derived", "v"),
+            offset.as_(OFFSET),
         )
         .from_(union.subquery("v"))
         .join(
             "index_dates AS i",
             on=exp.and_(
                 exp.column("patient_id", "i").eq(exp.column("patient_id", "v")),
-                in_window(window, offset),
+                in_window((earliest, 0), offset.copy()),
             ),
         )
     )
 
 
-def _summary(ctx: CompileContext, name: str, covariate: Covariate) -> exp.Query:
+def _rounded(value: exp.Expression) -> exp.Expression:
+    """Round to 10 decimals, so outputs stay identical bit for bit.
+
+    A sum's last bits depend on the order values arrive in, which varies with threads and plans.
+    """
+    return exp.func("ROUND", value, exp.Literal.number(10))
+
+
+def _summary(name: str, covariate: Covariate) -> exp.Query:
     measure = covariate.latest or covariate.mean or covariate.minimum or covariate.maximum
     assert measure is not None  # only called for measure covariates
-    values = _measure_values(ctx, measure, covariate.span)
+    values = (
+        exp.select("patient_id", "obs_date", "value", "derived")
+        .from_("baseline_values")
+        .where(
+            exp.and_(
+                exp.column("measure").eq(measure), in_window(covariate.span, exp.column(OFFSET))
+            )
+        )
+    )
     if covariate.latest is None:
-        aggregate = _SUMMARIES[covariate.kind](this=exp.column("value"))
+        aggregate = _rounded(_SUMMARIES[covariate.kind](this=exp.column("value")))
         return (
             exp.select("patient_id", aggregate.as_(f"m_{name}"))
             .from_(values.subquery("v"))
@@ -263,7 +286,7 @@ def _summary(ctx: CompileContext, name: str, covariate: Covariate) -> exp.Query:
     return (
         exp.select(
             "patient_id",
-            exp.Avg(this=exp.column("value")).as_(f"m_{name}"),
+            _rounded(exp.Avg(this=exp.column("value"))).as_(f"m_{name}"),
             exp.column("obs_date").as_(f"m_{name}_date"),
             exp.func("BOOL_OR", exp.column("derived")).as_(f"m_{name}_derived"),
         )
@@ -277,28 +300,32 @@ MEASURE_KINDS = ("latest", "mean", "minimum", "maximum")
 
 
 def measure_covariates_stage(ctx: CompileContext) -> Stage | None:
-    """``measure_covariates``: per source patient, each measure covariate's value."""
+    """``measure_covariates``: per source patient, each measure covariate's value.
+
+    The values near the index are read once (``baseline_values``) and each covariate
+    summarises its own measure and window from them.
+    """
     wanted = [(n, c) for n, c in ctx.study.covariates.items() if c.kind in MEASURE_KINDS]
     if not wanted:
         return None
+    measures = sorted({c.latest or c.mean or c.minimum or c.maximum or "" for _, c in wanted})
+    starts = [c.span[0] for _, c in wanted]
+    earliest = None if any(s is None for s in starts) else min(s for s in starts if s is not None)
     query = exp.select(exp.column("patient_id", "i")).from_("index_dates AS i")
-    depends = {"index_dates"}
     for number, (name, covariate) in enumerate(wanted):
         alias = f"c{number}"
-        summary = _summary(ctx, name, covariate)
         columns = [f"m_{name}"]
         if covariate.latest:
             columns += [f"m_{name}_date", f"m_{name}_derived"]
         query = query.select(*(exp.column(c, alias) for c in columns)).join(
-            summary.subquery(alias),
+            _summary(name, covariate).subquery(alias),
             on=exp.column("patient_id", alias).eq(exp.column("patient_id", "i")),
             join_type="left",
         )
-        measure = covariate.latest or covariate.mean or covariate.minimum or covariate.maximum
-        depends.update(measure_relations(ctx, measure or ""))
+    depends = {"index_dates"} | {r for m in measures for r in measure_relations(ctx, m)}
     return Stage(
         "measure_covariates",
-        query,
+        query.with_("baseline_values", as_=_baseline_values(ctx, measures, earliest)),
         tuple(sorted(depends)),
         "per patient, measurement covariates summarised in their windows",
     )

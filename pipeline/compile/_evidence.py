@@ -62,11 +62,11 @@ WHERE :types
 GROUP BY patient_id, encounter_date
 """
 
+# Each part is already one row per patient, evidence and day, and no two parts share an
+# evidence key and day (a derived value exists only on days without a reported one).
 _EVIDENCE_EVENTS = """
-SELECT
-  patient_id, evidence, event_date, CAST(:day AS INT) AS day, CAST(SUM(n_rows) AS INT) AS n_rows
+SELECT patient_id, evidence, event_date, CAST(:day AS INT) AS day, CAST(n_rows AS INT) AS n_rows
 FROM :events
-GROUP BY patient_id, evidence, event_date
 """
 
 _NO_EVENTS = """

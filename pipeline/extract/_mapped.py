@@ -63,6 +63,9 @@ def discover_mapped(file: Path, tables: tuple[SourceTable, ...]) -> dict[str, Ex
             continue
         file_format = _format(files[0])
         header = _header(files[0], file_format)
+        for other in files[1:]:
+            if _header(other, _format(other)) != header:
+                raise ExtractError(f"{other}: columns differ from {files[0]}")
         for canonical, source in spec.columns.items():
             if isinstance(source, Constant) or source.strip().lower() in header:
                 continue

@@ -979,7 +979,7 @@ SELECT
   evidence,
   event_date,
   CAST(DATE_DIFF('DAY', CAST('1970-01-01' AS DATE), event_date) AS INT) AS day,
-  CAST(SUM(n_rows) AS INT) AS n_rows
+  CAST(n_rows AS INT) AS n_rows
 FROM (
   SELECT
     patient_id,
@@ -1050,11 +1050,7 @@ FROM (
   GROUP BY
     patient_id,
     obs_date
-) AS events
-GROUP BY
-  patient_id,
-  evidence,
-  event_date;
+) AS events;
 
 -- stage rules_type2_diabetes [table]: the first date each rule of type2_diabetes is met, per patient
 -- reads: evidence_events
@@ -1592,6 +1588,49 @@ LEFT JOIN (
 
 -- stage measure_covariates [table]: per patient, measurement covariates summarised in their windows
 -- reads: derived_bmi, derived_egfr, index_dates, measurement_values
+WITH baseline_values AS (
+  SELECT
+    v.patient_id,
+    v.measure,
+    v.obs_date,
+    v.value,
+    v.derived,
+    DATE_DIFF('DAY', i.index_date, v.obs_date) AS e_offset
+  FROM (
+    SELECT
+      patient_id,
+      measure,
+      obs_date,
+      value,
+      derived
+    FROM derived_bmi
+    WHERE
+      measure IN ('bmi', 'egfr', 'hba1c', 'sbp') AND qualifier IS NULL
+    UNION ALL
+    SELECT
+      patient_id,
+      measure,
+      obs_date,
+      value,
+      derived
+    FROM derived_egfr
+    WHERE
+      measure IN ('bmi', 'egfr', 'hba1c', 'sbp') AND qualifier IS NULL
+    UNION ALL
+    SELECT
+      patient_id,
+      measure,
+      obs_date,
+      value,
+      derived
+    FROM measurement_values
+    WHERE
+      measure IN ('bmi', 'egfr', 'hba1c', 'sbp') AND qualifier IS NULL
+  ) AS v
+  JOIN index_dates AS i
+    ON i.patient_id = v.patient_id
+    AND DATE_DIFF('DAY', i.index_date, v.obs_date) BETWEEN -730 AND 0
+)
 SELECT
   i.patient_id,
   c0.m_bmi,
@@ -1610,7 +1649,7 @@ FROM index_dates AS i
 LEFT JOIN (
   SELECT
     patient_id,
-    AVG(value) AS m_bmi,
+    ROUND(AVG(value), 10) AS m_bmi,
     obs_date AS m_bmi_date,
     BOOL_OR(CAST(derived AS BOOLEAN)) AS m_bmi_derived
   FROM (
@@ -1622,32 +1661,13 @@ LEFT JOIN (
       MAX(obs_date) OVER (PARTITION BY patient_id) AS last_date
     FROM (
       SELECT
-        v.patient_id,
-        v.obs_date,
-        v.value,
-        v.derived
-      FROM (
-        SELECT
-          patient_id,
-          obs_date,
-          value,
-          derived
-        FROM measurement_values
-        WHERE
-          measure = 'bmi' AND qualifier IS NULL
-        UNION ALL
-        SELECT
-          patient_id,
-          obs_date,
-          value,
-          derived
-        FROM derived_bmi
-        WHERE
-          measure = 'bmi' AND qualifier IS NULL
-      ) AS v
-      JOIN index_dates AS i
-        ON i.patient_id = v.patient_id
-        AND DATE_DIFF('DAY', i.index_date, v.obs_date) BETWEEN -730 AND 0
+        patient_id,
+        obs_date,
+        value,
+        derived
+      FROM baseline_values
+      WHERE
+        measure = 'bmi' AND e_offset BETWEEN -730 AND 0
     ) AS v
   ) AS r
   WHERE
@@ -1660,7 +1680,7 @@ LEFT JOIN (
 LEFT JOIN (
   SELECT
     patient_id,
-    AVG(value) AS m_sbp,
+    ROUND(AVG(value), 10) AS m_sbp,
     obs_date AS m_sbp_date,
     BOOL_OR(CAST(derived AS BOOLEAN)) AS m_sbp_derived
   FROM (
@@ -1672,23 +1692,13 @@ LEFT JOIN (
       MAX(obs_date) OVER (PARTITION BY patient_id) AS last_date
     FROM (
       SELECT
-        v.patient_id,
-        v.obs_date,
-        v.value,
-        v.derived
-      FROM (
-        SELECT
-          patient_id,
-          obs_date,
-          value,
-          derived
-        FROM measurement_values
-        WHERE
-          measure = 'sbp' AND qualifier IS NULL
-      ) AS v
-      JOIN index_dates AS i
-        ON i.patient_id = v.patient_id
-        AND DATE_DIFF('DAY', i.index_date, v.obs_date) BETWEEN -730 AND 0
+        patient_id,
+        obs_date,
+        value,
+        derived
+      FROM baseline_values
+      WHERE
+        measure = 'sbp' AND e_offset BETWEEN -730 AND 0
     ) AS v
   ) AS r
   WHERE
@@ -1701,7 +1711,7 @@ LEFT JOIN (
 LEFT JOIN (
   SELECT
     patient_id,
-    AVG(value) AS m_hba1c,
+    ROUND(AVG(value), 10) AS m_hba1c,
     obs_date AS m_hba1c_date,
     BOOL_OR(CAST(derived AS BOOLEAN)) AS m_hba1c_derived
   FROM (
@@ -1713,23 +1723,13 @@ LEFT JOIN (
       MAX(obs_date) OVER (PARTITION BY patient_id) AS last_date
     FROM (
       SELECT
-        v.patient_id,
-        v.obs_date,
-        v.value,
-        v.derived
-      FROM (
-        SELECT
-          patient_id,
-          obs_date,
-          value,
-          derived
-        FROM measurement_values
-        WHERE
-          measure = 'hba1c' AND qualifier IS NULL
-      ) AS v
-      JOIN index_dates AS i
-        ON i.patient_id = v.patient_id
-        AND DATE_DIFF('DAY', i.index_date, v.obs_date) BETWEEN -730 AND 0
+        patient_id,
+        obs_date,
+        value,
+        derived
+      FROM baseline_values
+      WHERE
+        measure = 'hba1c' AND e_offset BETWEEN -730 AND 0
     ) AS v
   ) AS r
   WHERE
@@ -1742,7 +1742,7 @@ LEFT JOIN (
 LEFT JOIN (
   SELECT
     patient_id,
-    AVG(value) AS m_egfr,
+    ROUND(AVG(value), 10) AS m_egfr,
     obs_date AS m_egfr_date,
     BOOL_OR(CAST(derived AS BOOLEAN)) AS m_egfr_derived
   FROM (
@@ -1754,32 +1754,13 @@ LEFT JOIN (
       MAX(obs_date) OVER (PARTITION BY patient_id) AS last_date
     FROM (
       SELECT
-        v.patient_id,
-        v.obs_date,
-        v.value,
-        v.derived
-      FROM (
-        SELECT
-          patient_id,
-          obs_date,
-          value,
-          derived
-        FROM measurement_values
-        WHERE
-          measure = 'egfr' AND qualifier IS NULL
-        UNION ALL
-        SELECT
-          patient_id,
-          obs_date,
-          value,
-          derived
-        FROM derived_egfr
-        WHERE
-          measure = 'egfr' AND qualifier IS NULL
-      ) AS v
-      JOIN index_dates AS i
-        ON i.patient_id = v.patient_id
-        AND DATE_DIFF('DAY', i.index_date, v.obs_date) BETWEEN -730 AND 0
+        patient_id,
+        obs_date,
+        value,
+        derived
+      FROM baseline_values
+      WHERE
+        measure = 'egfr' AND e_offset BETWEEN -730 AND 0
     ) AS v
   ) AS r
   WHERE
