@@ -591,3 +591,13 @@ def test_suppression_rules_on_a_hand_table() -> None:
     assert rows_only["n"].to_list() == ["<5", "97", "0", "40", "60"]
     with pytest.raises(ValueError, match="integer"):
         suppress_counts(table, ["percent"])
+
+
+def test_suppression_of_a_group_of_one_row_hides_only_the_small_cells() -> None:
+    # A column "total" over a group of one row is that row's cell, not a second known number:
+    # it must not make every cell of the row look recoverable.
+    table = pl.DataFrame({"group": ["a"], "x": [3], "y": [40], "z": [57], "total": [100]})
+    out = suppress_counts(table, ["x", "y", "z"], total_column="total", group_by=["group"])
+    assert out.row(0, named=True)["x"] == "<5"
+    assert out.row(0, named=True)["z"] != "<5"
+    assert sum(out.row(0, named=True)[c] in ("<5", "*") for c in ("x", "y", "z")) == 2

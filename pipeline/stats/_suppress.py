@@ -132,8 +132,11 @@ def _determined(
     index = {cell: k for k, cell in enumerate(hidden)}
     matrix = np.zeros((max(len(relations), 1), len(hidden)))
     for r, relation in enumerate(relations):
-        for cell, coefficient in relation:
-            if cell in index and not np.isnan(values[cell]):
+        present = [(cell, c) for cell, c in relation if not np.isnan(values[cell])]
+        if len(present) < 2:
+            continue  # a one-cell "total" is the cell itself, not a separately known number
+        for cell, coefficient in present:
+            if cell in index:
                 matrix[r, index[cell]] = coefficient
     basis = linalg.null_space(matrix)
     return [cell for cell in hidden if np.linalg.norm(basis[index[cell]]) < 1e-9]
