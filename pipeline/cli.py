@@ -130,7 +130,7 @@ def synth(
     out_dir: Annotated[Path, typer.Argument(help="Folder to write the extract into.")],
     patients: Annotated[int, typer.Option(min=1, help="Number of patients.")] = 10_000,
     seed: Annotated[int, typer.Option(help="Random seed; the same seed gives the same bytes.")] = 1,
-    file_format: Annotated[str, typer.Option("--format", help="parquet or csv.")] = "parquet",
+    file_format: Annotated[str, typer.Option("--format", help="parquet, csv or fhir.")] = "parquet",
     start: Annotated[
         str, typer.Option(help="First day of the extract (YYYY-MM-DD).")
     ] = "2010-01-01",
@@ -140,8 +140,8 @@ def synth(
     """Write a synthetic Orvane Bay extract with its ground truth (fictional data)."""
     from pipeline.synth import generate_extract
 
-    if file_format not in ("parquet", "csv"):
-        Console(stderr=True).print(f"error: --format must be parquet or csv, not '{file_format}'")
+    if file_format not in ("parquet", "csv", "fhir"):
+        Console(stderr=True).print(f"error: --format must be parquet, csv or fhir: '{file_format}'")
         raise typer.Exit(2)
     try:
         first, last = dt.date.fromisoformat(start), dt.date.fromisoformat(end)
@@ -153,7 +153,7 @@ def synth(
             out_dir,
             patients=patients,
             seed=seed,
-            file_format="csv" if file_format == "csv" else "parquet",
+            file_format=file_format,  # type: ignore[arg-type]  # one of the three, checked above
             start=first,
             end=last,
         ),

@@ -40,11 +40,12 @@ from pipeline.synth._events import (
     draw_encounters,
     recognition_day,
 )
+from pipeline.synth._fhir_export import write_fhir_export
 from pipeline.synth._labs import MEASURES, NO_TEXT, TEXTS, UNITS, draw_measurements
 from pipeline.synth._population import NEVER, SEX_VALUES, Population, draw_population
 from pipeline.synth._scenario import CONDITIONS, Scenario
 
-FileFormat = Literal["parquet", "csv"]
+FileFormat = Literal["parquet", "csv", "fhir"]
 TABLES: tuple[str, ...] = ("patients", "encounters", "diagnoses", "prescriptions", "measurements")
 _EPOCH = date(1970, 1, 1)
 
@@ -114,7 +115,7 @@ class GenerationSummary:
         patients: Rows in ``patients``.
         orphan_patients: People whose rows exist but who have no ``patients`` row.
         seed: The seed used.
-        file_format: ``parquet`` or ``csv`` (``truth`` is always Parquet).
+        file_format: ``parquet``, ``csv`` or ``fhir`` (``truth`` is always Parquet).
         rows: Row count per table, ``truth`` included.
         files: Every file written, sorted by name.
     """
@@ -381,8 +382,8 @@ class _Sink:
 def _check_arguments(patients: int, file_format: str, start: date, end: date, sc: Scenario) -> None:
     if patients < 1 or patients > 9_000_000:
         raise AscertainError(f"patients must be between 1 and 9,000,000, got {patients}")
-    if file_format not in ("parquet", "csv"):
-        raise AscertainError(f"file_format must be 'parquet' or 'csv', got {file_format!r}")
+    if file_format not in ("parquet", "csv", "fhir"):
+        raise AscertainError(f"file_format must be 'parquet', 'csv' or 'fhir', got {file_format!r}")
     if not 366 <= (end - start).days <= 100 * 366:
         raise AscertainError(f"the extract must cover 1 to 100 years, got {start} to {end}")
     if not 1 <= sc.chunk_size <= 1_000_000:
@@ -412,7 +413,9 @@ def generate_extract(
         out_dir: Destination folder (created if needed; our files in it are replaced).
         patients: Number of rows in ``patients``.
         seed: Seed of the random streams; same seed and parameters give identical bytes.
-        file_format: Format of the five extract tables.
+        file_format: Format of the five extract tables; ``fhir`` writes them as Parquet to
+            the temporary folder, then as a FHIR R4 bulk-data export (NDJSON) in their place
+            (see :mod:`pipeline.synth._fhir_export`).
         start: First day of the extract.
         end: Last day of the extract.
         scenario: Parameters; the default Orvane Bay scenario when None.
@@ -429,7 +432,11 @@ def generate_extract(
     out_dir.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{out_dir.name}-", dir=out_dir.parent))
     try:
-        sink, orphans = _write_chunks(tmp, sc, patients, seed, file_format, start, end)
+        written = "parquet" if file_format == "fhir" else file_format
+        sink, orphans = _write_chunks(tmp, sc, patients, seed, written, start, end)
+        tables = [sink.path(t) for t in TABLES]
+        if file_format == "fhir":
+            tables = write_fhir_export(tmp, tmp / "fhir")
         meta = {
             "end": end.isoformat(),
             "file_format": file_format,
@@ -441,9 +448,10 @@ def generate_extract(
         }
         text = json.dumps(meta, sort_keys=True, indent=2, ensure_ascii=False) + "\n"
         (tmp / "scenario.json").write_text(text, encoding="utf-8")
-        names = sorted([sink.path(t).name for t in (*TABLES, "truth")] + ["scenario.json"])
-        for name in names:
-            os.replace(tmp / name, out_dir / name)
+        files = sorted([*tables, sink.path("truth"), tmp / "scenario.json"], key=lambda f: f.name)
+        names = [f.name for f in files]
+        for path in files:
+            os.replace(path, out_dir / path.name)
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
     return GenerationSummary(
