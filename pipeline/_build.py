@@ -14,8 +14,9 @@ import pyarrow as pa
 
 from pipeline.compile import Plan, compile_study
 from pipeline.config import LoadedStudy, load_study
-from pipeline.engine import DuckDBEngine, RunResult
+from pipeline.engine import DuckDBEngine, RunResult, SparkEngine
 from pipeline.engine._duckdb import StageCallback
+from pipeline.engine._spark import DEFAULT_MASTER
 from pipeline.errors import EngineError
 from pipeline.extract import discover_extract
 from pipeline.outputs import (
@@ -43,6 +44,29 @@ class BuildOptions:
     out: Path | None = None
     threads: int | None = None
     memory_limit: str | None = None
+    engine: str = "duckdb"
+    spark_master: str | None = None
+
+
+ENGINES = ("duckdb", "spark")
+
+
+def make_engine(
+    options: BuildOptions, threads: int | None, memory_limit: str | None
+) -> DuckDBEngine | SparkEngine:
+    """The engine the options name: DuckDB (default) or Spark (``local[*]`` or a master URL).
+
+    Raises:
+        EngineError: An unknown engine, or a Spark master given to DuckDB.
+    """
+    if options.engine not in ENGINES:
+        raise EngineError(f"--engine must be one of {', '.join(ENGINES)}, not '{options.engine}'")
+    if options.engine == "spark":
+        master = options.spark_master or (f"local[{threads}]" if threads else DEFAULT_MASTER)
+        return SparkEngine(master)
+    if options.spark_master:
+        raise EngineError("--spark-master needs --engine spark")
+    return DuckDBEngine(threads=threads, memory_limit=memory_limit)
 
 
 @dataclass(frozen=True)
@@ -79,9 +103,7 @@ def build_study(
     out = (options.out or study.output.folder).resolve()
     tables = discover_extract(extract, plan.sources)
     threads = options.threads or study.engine.threads
-    engine = DuckDBEngine(
-        threads=threads, memory_limit=options.memory_limit or study.engine.memory_limit
-    )
+    engine = make_engine(options, threads, options.memory_limit or study.engine.memory_limit)
     extract_files = [f for table in tables.values() for f in table.files]
     with ThreadPoolExecutor(max_workers=1) as hasher:
         # Hashing the extract overlaps with the engine's work instead of adding to it.
@@ -186,6 +208,7 @@ def verify_output(folder: Path) -> VerifyResult:
             extract=Path(manifest["extract_folder"]),
             out=rebuilt,
             threads=manifest["engine"].get("threads"),
+            engine=manifest["engine"].get("name", "duckdb"),
         )
         build_study(study_file, options)
         again = read_manifest(rebuilt)

@@ -27,6 +27,7 @@ from pipeline._validate import render_validation, validate_study
 from pipeline.compile import Stage
 from pipeline.config import load_study
 from pipeline.config._check import check_paths, explain_condition
+from pipeline.engine import DuckDBEngine, SparkEngine
 from pipeline.errors import AscertainError
 from pipeline.outputs._report import write_report
 
@@ -90,10 +91,23 @@ def build(
     profile: Annotated[
         bool, typer.Option("--profile", help="Print seconds and rows per stage.")
     ] = False,
+    engine: Annotated[
+        str, typer.Option(help="duckdb (default) or spark (pip install 'ascertain[spark]').")
+    ] = "duckdb",
+    spark_master: Annotated[
+        str | None, typer.Option(help="Spark master URL (default local[*]); with --engine spark.")
+    ] = None,
     debug: DebugOpt = False,
 ) -> None:
     """Build the study's cohort: cohort.parquet, attrition.csv and run.json."""
-    options = BuildOptions(extract=extract, out=out, threads=threads, memory_limit=memory_limit)
+    options = BuildOptions(
+        extract=extract,
+        out=out,
+        threads=threads,
+        memory_limit=memory_limit,
+        engine=engine,
+        spark_master=spark_master,
+    )
     with _progress(quiet=quiet) as on_stage:
         result = _fail_cleanly(lambda: build_study(study, options, on_stage=on_stage), debug=debug)
     console = Console(highlight=False)
@@ -113,7 +127,9 @@ def build(
 def sql(
     study: StudyArg,
     stage: Annotated[str | None, typer.Option(help="Print only this stage.")] = None,
-    dialect: Annotated[str, typer.Option(help="SQL dialect to render.")] = "duckdb",
+    dialect: Annotated[
+        str, typer.Option(help="duckdb or spark: the SQL exactly as that engine runs it.")
+    ] = "duckdb",
     debug: DebugOpt = False,
 ) -> None:
     """Print the study's plan as SQL, stage by stage, without running anything."""
@@ -122,7 +138,9 @@ def sql(
         names = ", ".join(s.name for s in plan.stages)
         Console(stderr=True).print(f"error: no stage '{stage}'; stages: {names}")
         raise typer.Exit(2)
-    typer.echo(plan.explain(dialect, only=stage), nl=False)
+    engines = {e.DIALECT: e for e in (DuckDBEngine, SparkEngine)}
+    prepared = engines[dialect].prepare(plan) if dialect in engines else plan
+    typer.echo(prepared.explain(dialect, only=stage), nl=False)
 
 
 @app.command()

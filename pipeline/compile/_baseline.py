@@ -250,14 +250,6 @@ def _baseline_values(ctx: CompileContext, measures: list[str], earliest: int | N
     )
 
 
-def _rounded(value: exp.Expression) -> exp.Expression:
-    """Round to 10 decimals, so outputs stay identical bit for bit.
-
-    A sum's last bits depend on the order values arrive in, which varies with threads and plans.
-    """
-    return exp.func("ROUND", value, exp.Literal.number(10))
-
-
 def _summary(name: str, covariate: Covariate) -> exp.Query:
     measure = covariate.latest or covariate.mean or covariate.minimum or covariate.maximum
     assert measure is not None  # only called for measure covariates
@@ -271,7 +263,7 @@ def _summary(name: str, covariate: Covariate) -> exp.Query:
         )
     )
     if covariate.latest is None:
-        aggregate = _rounded(_SUMMARIES[covariate.kind](this=exp.column("value")))
+        aggregate = _SUMMARIES[covariate.kind](this=exp.column("value"))
         return (
             exp.select("patient_id", aggregate.as_(f"m_{name}"))
             .from_(values.subquery("v"))
@@ -286,7 +278,7 @@ def _summary(name: str, covariate: Covariate) -> exp.Query:
     return (
         exp.select(
             "patient_id",
-            _rounded(exp.Avg(this=exp.column("value"))).as_(f"m_{name}"),
+            exp.Avg(this=exp.column("value")).as_(f"m_{name}"),
             exp.column("obs_date").as_(f"m_{name}_date"),
             exp.func("BOOL_OR", exp.column("derived")).as_(f"m_{name}_derived"),
         )

@@ -165,6 +165,11 @@ class DuckDBEngine:
 
     DIALECT = "duckdb"
 
+    @staticmethod
+    def prepare(plan: Plan) -> Plan:
+        """The plan exactly as this engine runs it (DuckDB runs the stages as compiled)."""
+        return plan
+
     def __init__(self, *, threads: int | None = None, memory_limit: str | None = None) -> None:
         self.threads = threads
         self.memory_limit = memory_limit

@@ -14,6 +14,7 @@ from pathlib import Path
 from typing import Any
 
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from pipeline.compile import ColumnDoc
@@ -22,10 +23,27 @@ from pipeline.outputs._manifest import MANIFEST, sha256_file
 ATTRITION_COLUMNS = ("step", "description", "patients_before", "removed", "remaining")
 
 
+DECIMALS = 10
+
+
+def round_doubles(table: pa.Table) -> pa.Table:
+    """Round every floating-point column to 10 decimals, in Python, for every engine alike.
+
+    The last bits of a mean or a power depend on summation order and on the maths library
+    (DuckDB's C vs Spark's Java), so the same inputs must be rounded in one place for the
+    outputs to be identical bit for bit.
+    """
+    columns = [
+        pc.round(column, DECIMALS) if pa.types.is_floating(column.type) else column
+        for column in table.columns
+    ]
+    return pa.Table.from_arrays(columns, schema=table.schema)
+
+
 def write_parquet(table: pa.Table, path: Path) -> None:
     """Write a table to Parquet with fixed writer settings (deterministic bytes)."""
     pq.write_table(
-        table,
+        round_doubles(table),
         path,
         compression="zstd",
         compression_level=3,

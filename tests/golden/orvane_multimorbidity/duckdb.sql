@@ -1649,7 +1649,7 @@ FROM index_dates AS i
 LEFT JOIN (
   SELECT
     patient_id,
-    ROUND(AVG(value), 10) AS m_bmi,
+    AVG(value) AS m_bmi,
     obs_date AS m_bmi_date,
     BOOL_OR(CAST(derived AS BOOLEAN)) AS m_bmi_derived
   FROM (
@@ -1680,7 +1680,7 @@ LEFT JOIN (
 LEFT JOIN (
   SELECT
     patient_id,
-    ROUND(AVG(value), 10) AS m_sbp,
+    AVG(value) AS m_sbp,
     obs_date AS m_sbp_date,
     BOOL_OR(CAST(derived AS BOOLEAN)) AS m_sbp_derived
   FROM (
@@ -1711,7 +1711,7 @@ LEFT JOIN (
 LEFT JOIN (
   SELECT
     patient_id,
-    ROUND(AVG(value), 10) AS m_hba1c,
+    AVG(value) AS m_hba1c,
     obs_date AS m_hba1c_date,
     BOOL_OR(CAST(derived AS BOOLEAN)) AS m_hba1c_derived
   FROM (
@@ -1742,7 +1742,7 @@ LEFT JOIN (
 LEFT JOIN (
   SELECT
     patient_id,
-    ROUND(AVG(value), 10) AS m_egfr,
+    AVG(value) AS m_egfr,
     obs_date AS m_egfr_date,
     BOOL_OR(CAST(derived AS BOOLEAN)) AS m_egfr_derived
   FROM (

@@ -1,0 +1,381 @@
+"""Run a plan on Spark: the same stages, rewritten where Spark SQL means something else.
+
+The rewrite rules live in :mod:`pipeline.engine._spark_sql`; this module binds the extract
+files as ``src_<table>`` views, runs the stages and fetches the outputs as Arrow. pyspark is
+imported only inside its functions: ``pip install ascertain[spark]`` is needed only to run.
+"""
+
+from __future__ import annotations
+
+import logging
+import re
+import time
+from collections.abc import Iterator
+from contextlib import contextmanager
+from typing import TYPE_CHECKING, Any
+
+import pyarrow as pa
+from sqlglot import exp
+
+from pipeline.compile import Plan, SourceTable, Stage
+from pipeline.engine._duckdb import _INTEGER_ID, RunResult, StageCallback, StageReport
+from pipeline.engine._mapped import source_column
+from pipeline.engine._spark_sql import spark_plan, spark_query, try_cast
+from pipeline.errors import EngineError, ExtractError
+from pipeline.extract import ExtractTable
+
+if TYPE_CHECKING:  # pragma: no cover
+    from pyspark.sql import DataFrame, SparkSession
+
+log = logging.getLogger(__name__)
+
+DEFAULT_MASTER = "local[*]"
+
+# Small, explicit defaults: a laptop-sized shuffle, no web UI, UTC, and ANSI mode ON so that
+# CAST fails on bad input and TRY_CAST returns NULL, as on DuckDB (with ANSI off Spark's CAST
+# silently returns NULL and the two would be indistinguishable).
+SPARK_CONF: dict[str, str] = {
+    "spark.sql.shuffle.partitions": "4",
+    "spark.ui.enabled": "false",
+    "spark.ui.showConsoleProgress": "false",
+    "spark.sql.session.timeZone": "UTC",
+    "spark.sql.ansi.enabled": "true",
+    "spark.sql.execution.arrow.pyspark.enabled": "true",
+    "spark.sql.caseSensitive": "false",
+    # Stage plans are long; Spark renders them for its listeners, which can exhaust the heap.
+    "spark.sql.maxPlanStringLength": "65536",
+    "spark.driver.memory": "2g",
+}
+
+# -- the engine --------------------------------------------------------------------------------
+
+
+def _spark_error(err: BaseException) -> bool:
+    try:
+        from py4j.protocol import Py4JJavaError
+        from pyspark.errors import PySparkException
+    except ImportError:  # pragma: no cover
+        return False
+    return isinstance(err, PySparkException | Py4JJavaError)
+
+
+# Spark's errors: "[ERROR_CLASS] message", the file being read, the CSV record it refused.
+_ERROR_CLASS = re.compile(r"(\[[A-Z_.]+\] [^\n]*)")
+_READ_FILE = re.compile(r"while reading file (?:file://)?(\S+?)\.?(?:\s|$)")
+_MALFORMED = re.compile(r"Malformed CSV record: (.*?)(?: SQLSTATE|$)", re.MULTILINE)
+
+
+def _first_line(err: BaseException) -> str:
+    """The most telling line of a Spark error: its error class and message, else its first."""
+    text = str(err)
+    found = _ERROR_CLASS.search(text)
+    if found:
+        return found.group(1).split(" SQLSTATE")[0].strip()
+    lines = text.strip().splitlines()
+    return lines[0] if lines else type(err).__name__
+
+
+def _read_failure(err: BaseException) -> ExtractError | None:
+    """An extract file Spark could not read, as an error naming the file (Spark gives no line).
+
+    Returns None when ``err`` is not a failure to read a file.
+    """
+    text = str(err)
+    file = _READ_FILE.search(text)
+    if not file:
+        return None
+    record = _MALFORMED.search(text)
+    if record:
+        shown = record.group(1).strip()[:60]
+        return ExtractError(
+            f"{file.group(1)}: row {shown!r} has more or fewer fields than the header"
+        )
+    return ExtractError(f"{file.group(1)}: cannot be read: {_first_line(err)}")
+
+
+class SparkEngine:
+    """Execute plans on Spark, ``local[*]`` by default or any cluster by its master URL.
+
+    A session is created for each run (with :data:`SPARK_CONF`) and stopped after it, unless
+    one is passed in: then each run works in a fresh ``newSession()`` of it (own temporary
+    views, own SQL settings) and the session is left running (used by tests).
+
+    Args:
+        master: Spark master URL, e.g. ``local[*]`` or ``spark://host:7077``.
+        conf: Extra Spark settings, applied over :data:`SPARK_CONF`.
+        session: An existing SparkSession to reuse.
+    """
+
+    DIALECT = "spark"
+
+    @staticmethod
+    def prepare(plan: Plan) -> Plan:
+        """The plan exactly as this engine runs it: every stage through the Spark rewrites."""
+        return spark_plan(plan)
+
+    # Declared differences that compile could read (habit 5); none needs a compile change yet.
+    SUPPORTS_QUALIFY = False
+    NULLS_FIRST_BY_DEFAULT = True  # sqlglot writes NULLS LAST wherever DuckDB's default matters
+    STRICT_CSV_WIDTH = True  # ragged CSV rows fail the read (FAILFAST), as on DuckDB
+    READS_FHIR = False  # FHIR bulk exports are read by the DuckDB engine only
+    # ROUND(double, d) rounds the shortest decimal text of the double (Double.toString) half
+    # up; DuckDB rounds its exact binary value. They differ at apparent ties (0.0055 -> 0.006
+    # here, 0.005 there), and Java's POW may differ from C's by one ulp. No SQL rule fixes
+    # this; compile should not ROUND doubles to near full precision when this flag is False.
+    ROUNDS_LIKE_DUCKDB = False
+
+    def __init__(
+        self,
+        master: str = DEFAULT_MASTER,
+        *,
+        conf: dict[str, str] | None = None,
+        session: SparkSession | None = None,
+    ) -> None:
+        self.master = master
+        self.conf = {**SPARK_CONF, **(conf or {})}
+        self.session = session
+
+    @staticmethod
+    def create_session(master: str = DEFAULT_MASTER, conf: dict[str, str] | None = None) -> Any:
+        """A new SparkSession with :data:`SPARK_CONF` (and ``conf`` over it).
+
+        Raises:
+            EngineError: pyspark is not installed (``pip install ascertain[spark]``).
+        """
+        try:
+            from pyspark.sql import SparkSession
+        except ImportError as err:
+            raise EngineError(
+                "the Spark engine needs pyspark: pip install 'ascertain[spark]'"
+            ) from err
+        builder = SparkSession.builder.master(master).appName("ascertain")
+        for key, value in {**SPARK_CONF, **(conf or {})}.items():
+            builder = builder.config(key, value)
+        session = builder.getOrCreate()
+        # Spark logs every failed query as a page of JSON; the engine reports it as one line.
+        session.sparkContext.setLogLevel("FATAL")
+        return session
+
+    @contextmanager
+    def _session(self) -> Iterator[SparkSession]:
+        from pyspark.sql import SparkSession
+
+        # A session passed in, or one already running in this process (a notebook, a test
+        # module), is shared: the run gets its own newSession() and leaves the shared one up.
+        shared = self.session or SparkSession.getActiveSession()
+        if shared is None:
+            spark = self.create_session(self.master, self.conf)
+            try:
+                yield spark
+            finally:
+                spark.stop()
+            return
+        spark = shared.newSession()
+        for key, value in self.conf.items():
+            if key.startswith("spark.sql."):
+                spark.conf.set(key, value)
+        try:
+            yield spark
+        finally:
+            spark.catalog.clearCache()
+
+    def run(
+        self,
+        plan: Plan,
+        tables: dict[str, ExtractTable],
+        *,
+        on_stage: StageCallback | None = None,
+        patients: tuple[str, ...] | None = None,
+    ) -> RunResult:
+        """Run every stage of the plan and return its outputs, sorted as the plan says.
+
+        ``patients`` restricts every source table to those patient ids (used to trace one).
+
+        Raises:
+            EngineError: Spark rejected a stage or a check stage found offending rows.
+            ExtractError: An extract file could not be read.
+        """
+        for table in tables.values():
+            if table.file_format == "fhir" and not self.READS_FHIR:
+                raise EngineError(
+                    f"the Spark engine cannot read the FHIR export {table.name}; use DuckDB"
+                )
+        with self._session() as spark:
+            import pyspark
+
+            try:
+                result = self._run(spark, plan, tables, on_stage, patients)
+            except (ExtractError, EngineError):
+                raise
+            except Exception as err:
+                if _spark_error(err):
+                    raise EngineError(f"Spark failed: {_first_line(err)}") from err
+                raise
+            result.engine, result.engine_version = "spark", pyspark.__version__
+            return result
+
+    # -- binding sources -----------------------------------------------------------------------
+
+    def _read(self, spark: SparkSession, table: ExtractTable) -> DataFrame:
+        """One extract table's files as a DataFrame, every CSV value as text.
+
+        CSV is read as on DuckDB as far as Spark allows: the header skipped (its names as
+        discovery read them, in file order), every column a string, nothing inferred, fields
+        quoted with ``"`` (``""`` is a quote, line breaks allowed), UTF-8, and FAILFAST so a
+        row with too few or too many fields fails the read instead of being padded or cut.
+        Empty fields are NULL, as on DuckDB.
+        """
+        from pyspark.sql.types import StringType, StructField, StructType
+
+        paths = [str(f) for f in table.files]
+        if table.file_format == "parquet":
+            return spark.read.parquet(*paths)
+        names = [
+            name if name and name not in table.columns[:i] else f"column{i + 1}"
+            for i, name in enumerate(table.columns)
+        ]
+        schema = StructType([StructField(n, StringType(), nullable=True) for n in names])
+        return spark.read.csv(
+            paths,
+            schema=schema,
+            header=True,
+            enforceSchema=True,
+            sep=",",
+            quote='"',
+            escape='"',
+            encoding="UTF-8",
+            multiLine=True,
+            mode="FAILFAST",
+            ignoreLeadingWhiteSpace=False,
+            ignoreTrailingWhiteSpace=False,
+            nullValue="",
+        )
+
+    def _id_type(self, spark: SparkSession, patients: DataFrame, table: ExtractTable) -> str:
+        """The type patient_id gets in every table, as on DuckDB: the patients file's own type.
+
+        CSV ids all in canonical integer form are BIGINT (sorting 9 before 10), others text.
+        """
+        column = source_column(table, "patient_id")
+        if table.file_format == "parquet":
+            typed = patients.selectExpr(column.sql(self.DIALECT))
+            return str(typed.schema.fields[0].dataType.simpleString())
+        match = exp.RegexpLike(this=column, expression=exp.Literal.string(_INTEGER_ID))
+        probe = exp.select(exp.func("BOOL_AND", match)).from_("src_patients_raw")
+        patients.createOrReplaceTempView("src_patients_raw")
+        rows = spark.sql(probe.sql(self.DIALECT)).collect()
+        return "BIGINT" if rows and rows[0][0] else "STRING"
+
+    def _bind(
+        self,
+        spark: SparkSession,
+        sources: tuple[SourceTable, ...],
+        tables: dict[str, ExtractTable],
+        patients: tuple[str, ...] | None,
+    ) -> None:
+        if not sources:
+            return
+        frames = {name: self._read(spark, table) for name, table in tables.items()}
+        id_type = exp.DataType.build(
+            self._id_type(spark, frames["patients"], tables["patients"]), dialect=self.DIALECT
+        )
+        for source in sources:
+            table = tables[source.name]
+            raw = f"{source.relation}_raw"
+            frames[source.name].createOrReplaceTempView(raw)
+            columns: list[exp.Expression] = []
+            for name in source.columns:
+                if name not in table.provides:
+                    columns.append(exp.cast(exp.null(), "VARCHAR").as_(name))
+                elif name == "patient_id":
+                    column = source_column(table, name)
+                    columns.append(try_cast(column, id_type).as_(name))
+                else:
+                    columns.append(source_column(table, name).as_(name))
+            view = exp.select(*columns).from_(raw)
+            if patients is not None:
+                wanted = [try_cast(exp.Literal.string(p), id_type) for p in patients]
+                typed = try_cast(exp.column("patient_id"), id_type)
+                view = exp.select("*").from_(view.subquery("v")).where(typed.isin(*wanted))
+            spark.sql(spark_query(view).sql(self.DIALECT)).createOrReplaceTempView(source.relation)
+
+    # -- running stages ------------------------------------------------------------------------
+
+    def _execute(self, spark: SparkSession, stage: Stage) -> int | None:
+        frame = spark.sql(spark_query(stage.query).sql(self.DIALECT))
+        if stage.kind == "check":
+            rows = frame.limit(5).collect()
+            if rows:
+                shown = "; ".join(", ".join(str(v) for v in row) for row in rows)
+                raise EngineError(f"{stage.failure} (stage {stage.name}; first rows: {shown})")
+            return 0
+        if stage.kind == "view":
+            frame.createOrReplaceTempView(stage.name)
+            return None
+        # A local checkpoint computes the table once and cuts its lineage, so later stages read
+        # it as a scan rather than re-planning (and re-rendering) everything upstream.
+        frame = frame.localCheckpoint(eager=True)
+        count = frame.count()
+        frame.createOrReplaceTempView(stage.name)
+        return int(count)
+
+    def _run(
+        self,
+        spark: SparkSession,
+        plan: Plan,
+        tables: dict[str, ExtractTable],
+        on_stage: StageCallback | None,
+        patients: tuple[str, ...] | None,
+    ) -> RunResult:
+        try:
+            self._bind(spark, plan.sources, tables, patients)
+        except Exception as err:
+            if _spark_error(err):
+                raise ExtractError(f"Spark could not read the extract: {_first_line(err)}") from err
+            raise
+        reports: list[StageReport] = []
+        for number, stage in enumerate(plan.stages, start=1):
+            if on_stage:
+                on_stage(stage, number, len(plan.stages))
+            started = time.perf_counter()
+            try:
+                rows = self._execute(spark, stage)
+            except EngineError:
+                raise
+            except Exception as err:
+                if _spark_error(err):
+                    message = f"stage {stage.name} failed on Spark: {_first_line(err)}"
+                    raise _read_failure(err) or EngineError(message) from err
+                raise
+            reports.append(StageReport(stage.name, stage.kind, time.perf_counter() - started, rows))
+            log.debug("stage %s: %.3fs, %s rows", stage.name, reports[-1].seconds, rows)
+        outputs = {}
+        for output, stage_name, order in plan.outputs:
+            select = exp.select("*").from_(stage_name)
+            if order:
+                # DuckDB sorts NULLs last; say so, since Spark sorts them first by default.
+                select = select.order_by(
+                    *(exp.Ordered(this=exp.column(c), nulls_first=False) for c in order)
+                )
+            outputs[output] = _to_arrow(spark.sql(select.sql(self.DIALECT)))
+        return RunResult(outputs, reports)
+
+
+def _to_arrow(frame: DataFrame) -> pa.Table:
+    """A DataFrame as an Arrow table in DuckDB's types (plain strings, date32, int32/int64)."""
+    table = frame.toArrow() if hasattr(frame, "toArrow") else frame._collect_as_arrow()
+    if isinstance(table, list):  # pyspark 3.5: a list of record batches
+        table = pa.Table.from_batches(table, schema=_arrow_schema(frame))
+    fields = []
+    for field in table.schema:
+        kind = field.type
+        if pa.types.is_large_string(kind) or pa.types.is_string_view(kind):
+            kind = pa.string()
+        fields.append(pa.field(field.name, kind))
+    return table.cast(pa.schema(fields))
+
+
+def _arrow_schema(frame: DataFrame) -> pa.Schema:
+    from pyspark.sql.pandas.types import to_arrow_schema
+
+    return to_arrow_schema(frame.schema)

@@ -1,0 +1,2582 @@
+-- plan for study orvane_multimorbidity (30 stages, dialect spark)
+
+-- reads src_patients: patient_id, sex, death_date, birth_date, birth_year, practice_id, registration_date, deregistration_date
+
+-- reads src_encounters: patient_id, encounter_date, encounter_type
+
+-- reads src_diagnoses: patient_id, event_date, code_system, code, source
+
+-- reads src_prescriptions: patient_id, start_date, atc, stop_date
+
+-- reads src_measurements: patient_id, obs_date, measure, unit, value, value_text
+
+-- stage patient_base [table]: one typed row per patient: birth date (1 July when only the year is known), sex
+-- reads: src_patients
+SELECT DISTINCT
+  patient_id,
+  COALESCE(
+    CASE
+      WHEN CAST(birth_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+      THEN TRY_CAST(REGEXP_REPLACE(
+        TRIM(CAST(birth_date AS STRING)),
+        '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+        '$1-$3-$4'
+      ) AS DATE)
+    END,
+    CASE
+      WHEN COALESCE(
+        TRY_CAST(birth_year AS INT),
+        TRY_CAST(ROUND(
+          CASE
+            WHEN NOT CAST(birth_year AS STRING) RLIKE '[0-9.][dDfF]\\s*$'
+            THEN TRY_CAST(birth_year AS DOUBLE)
+          END
+        ) AS INT)
+      ) BETWEEN 1 AND 9999
+      THEN MAKE_DATE(
+        COALESCE(
+          TRY_CAST(birth_year AS INT),
+          TRY_CAST(ROUND(
+            CASE
+              WHEN NOT CAST(birth_year AS STRING) RLIKE '[0-9.][dDfF]\\s*$'
+              THEN TRY_CAST(birth_year AS DOUBLE)
+            END
+          ) AS INT)
+        ),
+        7,
+        1
+      )
+    END
+  ) AS birth_date,
+  NULLIF(UPPER(TRIM(CAST(sex AS STRING))), '') AS sex,
+  CASE
+    WHEN CAST(death_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+    THEN TRY_CAST(REGEXP_REPLACE(
+      TRIM(CAST(death_date AS STRING)),
+      '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+      '$1-$3-$4'
+    ) AS DATE)
+  END AS death_date,
+  NULLIF(TRIM(CAST(practice_id AS STRING)), '') AS practice_id,
+  CASE
+    WHEN CAST(registration_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+    THEN TRY_CAST(REGEXP_REPLACE(
+      TRIM(CAST(registration_date AS STRING)),
+      '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+      '$1-$3-$4'
+    ) AS DATE)
+  END AS registration_date,
+  CASE
+    WHEN CAST(deregistration_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+    THEN TRY_CAST(REGEXP_REPLACE(
+      TRIM(CAST(deregistration_date AS STRING)),
+      '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+      '$1-$3-$4'
+    ) AS DATE)
+  END AS deregistration_date
+FROM src_patients
+WHERE
+  NOT patient_id IS NULL;
+
+-- stage patient_duplicates [check]: patients must be listed once
+-- reads: patient_base
+SELECT
+  patient_id,
+  COUNT(*) AS n_rows
+FROM patient_base
+GROUP BY
+  patient_id
+HAVING
+  COUNT(*) > 1
+ORDER BY
+  patient_id NULLS LAST
+LIMIT 5;
+
+-- stage encounter_rows [view]: usable encounters: a readable date, a known patient, not after death or end of data
+-- reads: src_encounters, patient_base
+SELECT
+  e.patient_id,
+  e.encounter_date,
+  e.encounter_type
+FROM (
+  SELECT
+    patient_id,
+    CASE
+      WHEN CAST(encounter_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+      THEN TRY_CAST(REGEXP_REPLACE(
+        TRIM(CAST(encounter_date AS STRING)),
+        '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+        '$1-$3-$4'
+      ) AS DATE)
+    END AS encounter_date,
+    LOWER(TRIM(CAST(encounter_type AS STRING))) AS encounter_type
+  FROM src_encounters
+) AS e
+JOIN patient_base AS p
+  ON p.patient_id = e.patient_id
+WHERE
+  e.encounter_date <= CAST('2019-12-31' AS DATE)
+  AND (
+    p.death_date IS NULL OR e.encounter_date <= p.death_date
+  );
+
+-- stage encounter_summary [table]: first and last usable encounter per patient (and the first in the index window)
+-- reads: encounter_rows
+SELECT
+  patient_id,
+  MIN(encounter_date) AS first_encounter,
+  MAX(encounter_date) AS last_encounter,
+  MIN(
+    CASE
+      WHEN encounter_date BETWEEN CAST('2015-01-01' AS DATE) AND CAST('2016-12-31' AS DATE)
+      THEN encounter_date
+    END
+  ) AS first_in_window
+FROM encounter_rows
+GROUP BY
+  patient_id;
+
+-- stage coded_events [view]: usable diagnosis and prescription rows with normalised codes
+-- reads: src_diagnoses, src_prescriptions, patient_base
+SELECT
+  r.patient_id,
+  r.event_date,
+  r.code_system,
+  r.code,
+  r.raw_code,
+  r.source,
+  r.duration_days
+FROM (
+  SELECT
+    patient_id,
+    CASE
+      WHEN CAST(event_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+      THEN TRY_CAST(REGEXP_REPLACE(
+        TRIM(CAST(event_date AS STRING)),
+        '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+        '$1-$3-$4'
+      ) AS DATE)
+    END AS event_date,
+    UPPER(TRIM(CAST(code_system AS STRING))) AS code_system,
+    REPLACE(REPLACE(UPPER(code), '.', ''), ' ', '') AS code,
+    CAST(code AS STRING) AS raw_code,
+    LOWER(TRIM(CAST(source AS STRING))) AS source,
+    CAST(NULL AS INT) AS duration_days
+  FROM src_diagnoses
+  UNION ALL
+  SELECT
+    patient_id,
+    CASE
+      WHEN CAST(start_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+      THEN TRY_CAST(REGEXP_REPLACE(
+        TRIM(CAST(start_date AS STRING)),
+        '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+        '$1-$3-$4'
+      ) AS DATE)
+    END AS event_date,
+    'ATC' AS code_system,
+    REPLACE(REPLACE(UPPER(atc), '.', ''), ' ', '') AS code,
+    CAST(atc AS STRING) AS raw_code,
+    CAST(NULL AS STRING) AS source,
+    CAST(DATEDIFF(
+      DAY,
+      CASE
+        WHEN CAST(start_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+        THEN TRY_CAST(REGEXP_REPLACE(
+          TRIM(CAST(start_date AS STRING)),
+          '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+          '$1-$3-$4'
+        ) AS DATE)
+      END,
+      CASE
+        WHEN CAST(stop_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+        THEN TRY_CAST(REGEXP_REPLACE(
+          TRIM(CAST(stop_date AS STRING)),
+          '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+          '$1-$3-$4'
+        ) AS DATE)
+      END
+    ) + 1 AS INT) AS duration_days
+  FROM src_prescriptions
+) AS r
+JOIN patient_base AS p
+  ON p.patient_id = r.patient_id
+WHERE
+  r.event_date <= CAST('2019-12-31' AS DATE)
+  AND (
+    p.death_date IS NULL OR r.event_date <= p.death_date
+  );
+
+-- stage measurement_rows [view]: every distinct measurement row parsed and converted, with what stops its use
+-- reads: src_measurements, patient_base
+WITH read AS (
+  SELECT
+    patient_id,
+    CASE
+      WHEN CAST(obs_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+      THEN TRY_CAST(REGEXP_REPLACE(
+        TRIM(CAST(obs_date AS STRING)),
+        '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+        '$1-$3-$4'
+      ) AS DATE)
+    END AS obs_date,
+    LOWER(TRIM(CAST(measure AS STRING))) AS measure,
+    NULLIF(TRIM(CAST(value AS STRING)), '') AS value_given,
+    NULLIF(TRIM(CAST(value_text AS STRING)), '') AS text_given,
+    NULLIF(TRIM(CAST(unit AS STRING)), '') AS unit_given,
+    copies
+  FROM (
+    SELECT
+      patient_id,
+      obs_date,
+      measure,
+      unit,
+      value,
+      value_text,
+      COUNT(*) AS copies
+    FROM src_measurements
+    GROUP BY
+      patient_id,
+      obs_date,
+      measure,
+      unit,
+      value,
+      value_text
+  ) AS d
+), split AS (
+  SELECT
+    *,
+    NULLIF(REGEXP_EXTRACT(text_given, '^(<=|>=|<|>)?[ ]*([0-9]+([.,][0-9]+)?)[ ]*(.*)$'), '') AS text_qualifier,
+    NULLIF(
+      REGEXP_EXTRACT(text_given, '^(<=|>=|<|>)?[ ]*([0-9]+([.,][0-9]+)?)[ ]*(.*)$', 2),
+      ''
+    ) AS text_number,
+    NULLIF(
+      TRIM(REGEXP_EXTRACT(text_given, '^(<=|>=|<|>)?[ ]*([0-9]+([.,][0-9]+)?)[ ]*(.*)$', 4)),
+      ''
+    ) AS text_unit
+  FROM read
+), parsed AS (
+  SELECT
+    patient_id,
+    obs_date,
+    measure,
+    CASE
+      WHEN NOT value_given IS NULL
+      THEN CASE
+        WHEN NOT CAST(value_given AS STRING) RLIKE '[0-9.][dDfF]\\s*$'
+        THEN TRY_CAST(value_given AS DOUBLE)
+      END
+      WHEN text_number LIKE '%,%' AND text_number RLIKE '^[0-9]+,[0-9]{1,2}$'
+      THEN CASE
+        WHEN NOT CAST(REPLACE(text_number, ',', '.') AS STRING) RLIKE '[0-9.][dDfF]\\s*$'
+        THEN TRY_CAST(REPLACE(text_number, ',', '.') AS DOUBLE)
+      END
+      WHEN text_number LIKE '%,%'
+      THEN NULL
+      ELSE CASE
+        WHEN NOT CAST(text_number AS STRING) RLIKE '[0-9.][dDfF]\\s*$'
+        THEN TRY_CAST(text_number AS DOUBLE)
+      END
+    END AS reading,
+    CASE WHEN value_given IS NULL THEN text_qualifier END AS qualifier,
+    COALESCE(unit_given, CASE WHEN value_given IS NULL THEN text_unit END) AS unit,
+    value_given IS NULL
+    AND NOT text_unit IS NULL
+    AND NOT unit_given IS NULL
+    AND text_unit <> unit_given AS unit_conflict,
+    value_given IS NULL AND text_given IS NULL AS empty,
+    CASE WHEN value_given IS NULL THEN LOWER(text_given) END AS category,
+    value_given,
+    text_given,
+    unit_given,
+    copies
+  FROM split
+)
+SELECT
+  r.patient_id,
+  r.obs_date,
+  r.measure,
+  r.qualifier,
+  CASE WHEN k.is_coded THEN r.category END AS category,
+  r.value_given AS raw_value,
+  r.text_given AS raw_value_text,
+  r.unit_given AS raw_unit,
+  r.copies,
+  CASE
+    WHEN u.divisor = 0
+    THEN u.factor * r.reading * CAST('Infinity' AS DOUBLE)
+    ELSE u.factor * r.reading / u.divisor
+  END + u.offset_value AS value,
+  CASE
+    WHEN p.patient_id IS NULL
+    THEN 'orphan patient'
+    WHEN r.obs_date IS NULL
+    THEN 'unparseable date'
+    WHEN r.obs_date > CAST('2019-12-31' AS DATE)
+    THEN 'after end of data'
+    WHEN NOT p.death_date IS NULL AND r.obs_date > p.death_date
+    THEN 'after death'
+    WHEN k.measure IS NULL
+    THEN 'unknown measure'
+    WHEN k.is_coded
+    AND (
+      r.category IS NULL
+      OR NOT (
+        (
+          r.measure = 'smoking' AND r.category = 'current'
+        )
+        OR (
+          r.measure = 'smoking' AND r.category = 'former'
+        )
+        OR (
+          r.measure = 'smoking' AND r.category = 'never'
+        )
+      )
+    )
+    THEN 'category not recognised'
+    WHEN k.is_coded
+    THEN NULL
+    WHEN r.empty
+    THEN 'no value'
+    WHEN r.reading IS NULL
+    THEN 'value not numeric'
+    WHEN r.unit_conflict
+    THEN 'unit differs from value_text'
+    WHEN u.measure IS NULL
+    THEN 'unit not convertible'
+    WHEN NOT CASE
+      WHEN u.divisor = 0
+      THEN u.factor * r.reading * CAST('Infinity' AS DOUBLE)
+      ELSE u.factor * r.reading / u.divisor
+    END + u.offset_value BETWEEN u.low AND u.high
+    THEN 'implausible value'
+  END AS problem
+FROM parsed AS r
+LEFT JOIN patient_base AS p
+  ON p.patient_id = r.patient_id
+LEFT JOIN VALUES
+  ('bmi', FALSE),
+  ('creatinine', FALSE),
+  ('dbp', FALSE),
+  ('egfr', FALSE),
+  ('fasting_glucose', FALSE),
+  ('hba1c', FALSE),
+  ('height', FALSE),
+  ('ldl', FALSE),
+  ('sbp', FALSE),
+  ('smoking', TRUE),
+  ('total_cholesterol', FALSE),
+  ('weight', FALSE) AS k(measure, is_coded)
+  ON k.measure = r.measure
+LEFT JOIN VALUES
+  ('bmi', 'kg/m2', 1.0, 1.0, 0.0, 10.0, 80.0),
+  ('bmi', 'kg/m²', 1.0, 1.0, 0.0, 10.0, 80.0),
+  ('bmi', 'kg/m^2', 1.0, 1.0, 0.0, 10.0, 80.0),
+  ('creatinine', 'mg/dL', 1.0, 1.0, 0.0, 0.1, 20.0),
+  ('creatinine', 'mg/dl', 1.0, 1.0, 0.0, 0.1, 20.0),
+  ('creatinine', 'umol/L', 1.0, 88.42, 0.0, 0.1, 20.0),
+  ('creatinine', 'µmol/L', 1.0, 88.42, 0.0, 0.1, 20.0),
+  ('creatinine', 'μmol/L', 1.0, 88.42, 0.0, 0.1, 20.0),
+  ('creatinine', 'umol/l', 1.0, 88.42, 0.0, 0.1, 20.0),
+  ('creatinine', 'µmol/l', 1.0, 88.42, 0.0, 0.1, 20.0),
+  ('dbp', 'mmHg', 1.0, 1.0, 0.0, 20.0, 200.0),
+  ('dbp', 'mm[Hg]', 1.0, 1.0, 0.0, 20.0, 200.0),
+  ('dbp', 'mm Hg', 1.0, 1.0, 0.0, 20.0, 200.0),
+  ('egfr', 'mL/min/1.73m2', 1.0, 1.0, 0.0, 1.0, 200.0),
+  ('egfr', 'mL/min/1.73 m2', 1.0, 1.0, 0.0, 1.0, 200.0),
+  ('egfr', 'mL/min/{1.73_m2}', 1.0, 1.0, 0.0, 1.0, 200.0),
+  ('egfr', 'ml/min/1.73m2', 1.0, 1.0, 0.0, 1.0, 200.0),
+  ('egfr', 'mL/min/1.73m²', 1.0, 1.0, 0.0, 1.0, 200.0),
+  ('fasting_glucose', 'mmol/L', 1.0, 1.0, 0.0, 1.0, 50.0),
+  ('fasting_glucose', 'mmol/l', 1.0, 1.0, 0.0, 1.0, 50.0),
+  ('fasting_glucose', 'mg/dL', 1.0, 18.0156, 0.0, 1.0, 50.0),
+  ('fasting_glucose', 'mg/dl', 1.0, 18.0156, 0.0, 1.0, 50.0),
+  ('hba1c', '%', 1.0, 1.0, 0.0, 3.0, 20.0),
+  ('hba1c', '% Hb', 1.0, 1.0, 0.0, 3.0, 20.0),
+  ('hba1c', '%{HbA1c}', 1.0, 1.0, 0.0, 3.0, 20.0),
+  ('hba1c', 'mmol/mol', 0.09148, 1.0, 2.152, 3.0, 20.0),
+  ('height', 'cm', 1.0, 1.0, 0.0, 40.0, 250.0),
+  ('height', 'm', 100.0, 1.0, 0.0, 40.0, 250.0),
+  ('height', 'mm', 1.0, 10.0, 0.0, 40.0, 250.0),
+  ('ldl', 'mmol/L', 1.0, 1.0, 0.0, 0.2, 15.0),
+  ('ldl', 'mmol/l', 1.0, 1.0, 0.0, 0.2, 15.0),
+  ('ldl', 'mg/dL', 1.0, 38.67, 0.0, 0.2, 15.0),
+  ('ldl', 'mg/dl', 1.0, 38.67, 0.0, 0.2, 15.0),
+  ('sbp', 'mmHg', 1.0, 1.0, 0.0, 50.0, 300.0),
+  ('sbp', 'mm[Hg]', 1.0, 1.0, 0.0, 50.0, 300.0),
+  ('sbp', 'mm Hg', 1.0, 1.0, 0.0, 50.0, 300.0),
+  ('total_cholesterol', 'mmol/L', 1.0, 1.0, 0.0, 1.0, 20.0),
+  ('total_cholesterol', 'mmol/l', 1.0, 1.0, 0.0, 1.0, 20.0),
+  ('total_cholesterol', 'mg/dL', 1.0, 38.67, 0.0, 1.0, 20.0),
+  ('total_cholesterol', 'mg/dl', 1.0, 38.67, 0.0, 1.0, 20.0),
+  ('weight', 'kg', 1.0, 1.0, 0.0, 2.0, 400.0),
+  ('weight', 'g', 1.0, 1000.0, 0.0, 2.0, 400.0) AS u(measure, unit, factor, divisor, offset_value, low, high)
+  ON u.measure = r.measure AND u.unit = r.unit;
+
+-- stage measurement_values [table]: usable values of the measures the study reads, in canonical units
+-- reads: src_measurements, patient_base
+WITH read AS (
+  SELECT
+    patient_id,
+    CASE
+      WHEN CAST(obs_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+      THEN TRY_CAST(REGEXP_REPLACE(
+        TRIM(CAST(obs_date AS STRING)),
+        '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+        '$1-$3-$4'
+      ) AS DATE)
+    END AS obs_date,
+    LOWER(TRIM(CAST(measure AS STRING))) AS measure,
+    NULLIF(TRIM(CAST(value AS STRING)), '') AS value_given,
+    NULLIF(TRIM(CAST(value_text AS STRING)), '') AS text_given,
+    NULLIF(TRIM(CAST(unit AS STRING)), '') AS unit_given,
+    copies
+  FROM (
+    SELECT
+      patient_id,
+      obs_date,
+      measure,
+      unit,
+      value,
+      value_text,
+      COUNT(*) AS copies
+    FROM src_measurements
+    WHERE
+      LOWER(TRIM(CAST(measure AS STRING))) IN ('bmi', 'creatinine', 'egfr', 'hba1c', 'height', 'sbp', 'weight')
+    GROUP BY
+      patient_id,
+      obs_date,
+      measure,
+      unit,
+      value,
+      value_text
+  ) AS d
+), split AS (
+  SELECT
+    *,
+    NULLIF(REGEXP_EXTRACT(text_given, '^(<=|>=|<|>)?[ ]*([0-9]+([.,][0-9]+)?)[ ]*(.*)$'), '') AS text_qualifier,
+    NULLIF(
+      REGEXP_EXTRACT(text_given, '^(<=|>=|<|>)?[ ]*([0-9]+([.,][0-9]+)?)[ ]*(.*)$', 2),
+      ''
+    ) AS text_number,
+    NULLIF(
+      TRIM(REGEXP_EXTRACT(text_given, '^(<=|>=|<|>)?[ ]*([0-9]+([.,][0-9]+)?)[ ]*(.*)$', 4)),
+      ''
+    ) AS text_unit
+  FROM read
+), parsed AS (
+  SELECT
+    patient_id,
+    obs_date,
+    measure,
+    CASE
+      WHEN NOT value_given IS NULL
+      THEN CASE
+        WHEN NOT CAST(value_given AS STRING) RLIKE '[0-9.][dDfF]\\s*$'
+        THEN TRY_CAST(value_given AS DOUBLE)
+      END
+      WHEN text_number LIKE '%,%' AND text_number RLIKE '^[0-9]+,[0-9]{1,2}$'
+      THEN CASE
+        WHEN NOT CAST(REPLACE(text_number, ',', '.') AS STRING) RLIKE '[0-9.][dDfF]\\s*$'
+        THEN TRY_CAST(REPLACE(text_number, ',', '.') AS DOUBLE)
+      END
+      WHEN text_number LIKE '%,%'
+      THEN NULL
+      ELSE CASE
+        WHEN NOT CAST(text_number AS STRING) RLIKE '[0-9.][dDfF]\\s*$'
+        THEN TRY_CAST(text_number AS DOUBLE)
+      END
+    END AS reading,
+    CASE WHEN value_given IS NULL THEN text_qualifier END AS qualifier,
+    COALESCE(unit_given, CASE WHEN value_given IS NULL THEN text_unit END) AS unit,
+    value_given IS NULL
+    AND NOT text_unit IS NULL
+    AND NOT unit_given IS NULL
+    AND text_unit <> unit_given AS unit_conflict,
+    value_given IS NULL AND text_given IS NULL AS empty,
+    CASE WHEN value_given IS NULL THEN LOWER(text_given) END AS category,
+    value_given,
+    text_given,
+    unit_given,
+    copies
+  FROM split
+)
+SELECT
+  patient_id,
+  obs_date,
+  measure,
+  value,
+  qualifier,
+  category,
+  FALSE AS derived
+FROM (
+  SELECT
+    r.patient_id,
+    r.obs_date,
+    r.measure,
+    r.qualifier,
+    CASE WHEN k.is_coded THEN r.category END AS category,
+    r.value_given AS raw_value,
+    r.text_given AS raw_value_text,
+    r.unit_given AS raw_unit,
+    r.copies,
+    CASE
+      WHEN u.divisor = 0
+      THEN u.factor * r.reading * CAST('Infinity' AS DOUBLE)
+      ELSE u.factor * r.reading / u.divisor
+    END + u.offset_value AS value,
+    CASE
+      WHEN p.patient_id IS NULL
+      THEN 'orphan patient'
+      WHEN r.obs_date IS NULL
+      THEN 'unparseable date'
+      WHEN r.obs_date > CAST('2019-12-31' AS DATE)
+      THEN 'after end of data'
+      WHEN NOT p.death_date IS NULL AND r.obs_date > p.death_date
+      THEN 'after death'
+      WHEN k.measure IS NULL
+      THEN 'unknown measure'
+      WHEN k.is_coded
+      AND (
+        r.category IS NULL
+        OR NOT (
+          (
+            r.measure = 'smoking' AND r.category = 'current'
+          )
+          OR (
+            r.measure = 'smoking' AND r.category = 'former'
+          )
+          OR (
+            r.measure = 'smoking' AND r.category = 'never'
+          )
+        )
+      )
+      THEN 'category not recognised'
+      WHEN k.is_coded
+      THEN NULL
+      WHEN r.empty
+      THEN 'no value'
+      WHEN r.reading IS NULL
+      THEN 'value not numeric'
+      WHEN r.unit_conflict
+      THEN 'unit differs from value_text'
+      WHEN u.measure IS NULL
+      THEN 'unit not convertible'
+      WHEN NOT CASE
+        WHEN u.divisor = 0
+        THEN u.factor * r.reading * CAST('Infinity' AS DOUBLE)
+        ELSE u.factor * r.reading / u.divisor
+      END + u.offset_value BETWEEN u.low AND u.high
+      THEN 'implausible value'
+    END AS problem
+  FROM parsed AS r
+  LEFT JOIN patient_base AS p
+    ON p.patient_id = r.patient_id
+  LEFT JOIN VALUES
+    ('bmi', FALSE),
+    ('creatinine', FALSE),
+    ('dbp', FALSE),
+    ('egfr', FALSE),
+    ('fasting_glucose', FALSE),
+    ('hba1c', FALSE),
+    ('height', FALSE),
+    ('ldl', FALSE),
+    ('sbp', FALSE),
+    ('smoking', TRUE),
+    ('total_cholesterol', FALSE),
+    ('weight', FALSE) AS k(measure, is_coded)
+    ON k.measure = r.measure
+  LEFT JOIN VALUES
+    ('bmi', 'kg/m2', 1.0, 1.0, 0.0, 10.0, 80.0),
+    ('bmi', 'kg/m²', 1.0, 1.0, 0.0, 10.0, 80.0),
+    ('bmi', 'kg/m^2', 1.0, 1.0, 0.0, 10.0, 80.0),
+    ('creatinine', 'mg/dL', 1.0, 1.0, 0.0, 0.1, 20.0),
+    ('creatinine', 'mg/dl', 1.0, 1.0, 0.0, 0.1, 20.0),
+    ('creatinine', 'umol/L', 1.0, 88.42, 0.0, 0.1, 20.0),
+    ('creatinine', 'µmol/L', 1.0, 88.42, 0.0, 0.1, 20.0),
+    ('creatinine', 'μmol/L', 1.0, 88.42, 0.0, 0.1, 20.0),
+    ('creatinine', 'umol/l', 1.0, 88.42, 0.0, 0.1, 20.0),
+    ('creatinine', 'µmol/l', 1.0, 88.42, 0.0, 0.1, 20.0),
+    ('dbp', 'mmHg', 1.0, 1.0, 0.0, 20.0, 200.0),
+    ('dbp', 'mm[Hg]', 1.0, 1.0, 0.0, 20.0, 200.0),
+    ('dbp', 'mm Hg', 1.0, 1.0, 0.0, 20.0, 200.0),
+    ('egfr', 'mL/min/1.73m2', 1.0, 1.0, 0.0, 1.0, 200.0),
+    ('egfr', 'mL/min/1.73 m2', 1.0, 1.0, 0.0, 1.0, 200.0),
+    ('egfr', 'mL/min/{1.73_m2}', 1.0, 1.0, 0.0, 1.0, 200.0),
+    ('egfr', 'ml/min/1.73m2', 1.0, 1.0, 0.0, 1.0, 200.0),
+    ('egfr', 'mL/min/1.73m²', 1.0, 1.0, 0.0, 1.0, 200.0),
+    ('fasting_glucose', 'mmol/L', 1.0, 1.0, 0.0, 1.0, 50.0),
+    ('fasting_glucose', 'mmol/l', 1.0, 1.0, 0.0, 1.0, 50.0),
+    ('fasting_glucose', 'mg/dL', 1.0, 18.0156, 0.0, 1.0, 50.0),
+    ('fasting_glucose', 'mg/dl', 1.0, 18.0156, 0.0, 1.0, 50.0),
+    ('hba1c', '%', 1.0, 1.0, 0.0, 3.0, 20.0),
+    ('hba1c', '% Hb', 1.0, 1.0, 0.0, 3.0, 20.0),
+    ('hba1c', '%{HbA1c}', 1.0, 1.0, 0.0, 3.0, 20.0),
+    ('hba1c', 'mmol/mol', 0.09148, 1.0, 2.152, 3.0, 20.0),
+    ('height', 'cm', 1.0, 1.0, 0.0, 40.0, 250.0),
+    ('height', 'm', 100.0, 1.0, 0.0, 40.0, 250.0),
+    ('height', 'mm', 1.0, 10.0, 0.0, 40.0, 250.0),
+    ('ldl', 'mmol/L', 1.0, 1.0, 0.0, 0.2, 15.0),
+    ('ldl', 'mmol/l', 1.0, 1.0, 0.0, 0.2, 15.0),
+    ('ldl', 'mg/dL', 1.0, 38.67, 0.0, 0.2, 15.0),
+    ('ldl', 'mg/dl', 1.0, 38.67, 0.0, 0.2, 15.0),
+    ('sbp', 'mmHg', 1.0, 1.0, 0.0, 50.0, 300.0),
+    ('sbp', 'mm[Hg]', 1.0, 1.0, 0.0, 50.0, 300.0),
+    ('sbp', 'mm Hg', 1.0, 1.0, 0.0, 50.0, 300.0),
+    ('total_cholesterol', 'mmol/L', 1.0, 1.0, 0.0, 1.0, 20.0),
+    ('total_cholesterol', 'mmol/l', 1.0, 1.0, 0.0, 1.0, 20.0),
+    ('total_cholesterol', 'mg/dL', 1.0, 38.67, 0.0, 1.0, 20.0),
+    ('total_cholesterol', 'mg/dl', 1.0, 38.67, 0.0, 1.0, 20.0),
+    ('weight', 'kg', 1.0, 1.0, 0.0, 2.0, 400.0),
+    ('weight', 'g', 1.0, 1000.0, 0.0, 2.0, 400.0) AS u(measure, unit, factor, divisor, offset_value, low, high)
+    ON u.measure = r.measure AND u.unit = r.unit
+) AS r
+WHERE
+  problem IS NULL;
+
+-- stage derived_egfr [table]: eGFR derived from creatinine by CKD-EPI 2021 where none was reported that day
+-- reads: measurement_values, patient_base
+SELECT
+  patient_id,
+  obs_date,
+  'egfr' AS measure,
+  egfr AS value,
+  CAST(NULL AS STRING) AS qualifier,
+  CAST(NULL AS STRING) AS category,
+  TRUE AS derived
+FROM (
+  SELECT
+    c.patient_id,
+    c.obs_date,
+    142 * POWER(
+      LEAST(
+        CASE
+          WHEN k.kappa = 0
+          THEN c.value * CAST('Infinity' AS DOUBLE)
+          ELSE c.value / k.kappa
+        END,
+        1
+      ),
+      k.alpha
+    ) * POWER(
+      GREATEST(
+        CASE
+          WHEN k.kappa = 0
+          THEN c.value * CAST('Infinity' AS DOUBLE)
+          ELSE c.value / k.kappa
+        END,
+        1
+      ),
+      -1.2
+    ) * POWER(
+      0.9938,
+      YEAR(c.obs_date) - YEAR(p.birth_date) - CASE
+        WHEN MONTH(c.obs_date) * 100 + DAY(c.obs_date) < MONTH(p.birth_date) * 100 + DAY(p.birth_date)
+        THEN 1
+        ELSE 0
+      END
+    ) * k.female_factor AS egfr
+  FROM measurement_values AS c
+  JOIN patient_base AS p
+    ON p.patient_id = c.patient_id
+  JOIN VALUES
+    ('F', 0.7, -0.241, 1.012),
+    ('M', 0.9, -0.302, 1.0) AS k(sex, kappa, alpha, female_factor)
+    ON k.sex = p.sex
+  LEFT JOIN (
+    SELECT DISTINCT
+      patient_id,
+      obs_date
+    FROM measurement_values
+    WHERE
+      measure = 'egfr'
+  ) AS r
+    ON r.patient_id = c.patient_id AND r.obs_date = c.obs_date
+  WHERE
+    c.measure = 'creatinine'
+    AND c.qualifier IS NULL
+    AND r.patient_id IS NULL
+    AND NOT p.birth_date IS NULL
+) AS d
+WHERE
+  egfr BETWEEN 1.0 AND 200.0;
+
+-- stage derived_bmi [table]: BMI from weight and the latest height where none was reported that day
+-- reads: measurement_values
+SELECT
+  patient_id,
+  obs_date,
+  'bmi' AS measure,
+  bmi AS value,
+  CAST(NULL AS STRING) AS qualifier,
+  CAST(NULL AS STRING) AS category,
+  TRUE AS derived
+FROM (
+  SELECT
+    w.patient_id,
+    w.obs_date,
+    CASE
+      WHEN POWER(h.height_cm / 100, 2) = 0
+      THEN w.value * CAST('Infinity' AS DOUBLE)
+      ELSE w.value / POWER(h.height_cm / 100, 2)
+    END AS bmi
+  FROM measurement_values AS w
+  JOIN (
+    SELECT
+      patient_id,
+      AVG(value) AS height_cm
+    FROM (
+      SELECT
+        patient_id,
+        value,
+        obs_date,
+        MAX(obs_date) OVER (PARTITION BY patient_id) AS last_date
+      FROM measurement_values
+      WHERE
+        measure = 'height' AND qualifier IS NULL
+    ) AS heights
+    WHERE
+      obs_date = last_date
+    GROUP BY
+      patient_id
+  ) AS h
+    ON h.patient_id = w.patient_id
+  LEFT JOIN (
+    SELECT DISTINCT
+      patient_id,
+      obs_date
+    FROM measurement_values
+    WHERE
+      measure = 'bmi'
+  ) AS r
+    ON r.patient_id = w.patient_id AND r.obs_date = w.obs_date
+  WHERE
+    w.measure = 'weight' AND w.qualifier IS NULL AND r.patient_id IS NULL
+) AS d
+WHERE
+  bmi BETWEEN 10.0 AND 80.0;
+
+-- stage coded_matches [view]: each distinct diagnosis or prescription row with the evidence its code matches
+-- reads: coded_events
+SELECT
+  e.patient_id,
+  e.event_date,
+  e.code_system,
+  e.code,
+  e.raw_code,
+  e.source,
+  e.duration_days,
+  c.evidence,
+  BOOL_OR(c.is_exclusion) AS excluded
+FROM (
+  SELECT
+    r.*,
+    LEFT(r.code, l.prefix_length) AS probe
+  FROM coded_events AS r
+  CROSS JOIN VALUES
+    (3),
+    (4) AS l(prefix_length)
+) AS e
+JOIN VALUES
+  ('ATC', 'A10B', 'type2_diabetes.dm_drug', NULL, NULL, FALSE),
+  ('ATC', 'C02', 'hypertension.antihypertensive', NULL, NULL, FALSE),
+  ('ATC', 'C03', 'hypertension.antihypertensive', NULL, NULL, FALSE),
+  ('ATC', 'C03C', 'heart_failure.loop_diuretic', NULL, NULL, FALSE),
+  ('ATC', 'C07', 'hypertension.antihypertensive', NULL, NULL, FALSE),
+  ('ATC', 'C08', 'hypertension.antihypertensive', NULL, NULL, FALSE),
+  ('ATC', 'C09', 'hypertension.antihypertensive', NULL, NULL, FALSE),
+  ('ICD10', 'B18', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'B20', '@charlson.hiv_aids', NULL, NULL, FALSE),
+  ('ICD10', 'B21', '@charlson.hiv_aids', NULL, NULL, FALSE),
+  ('ICD10', 'B22', '@charlson.hiv_aids', NULL, NULL, FALSE),
+  ('ICD10', 'B24', '@charlson.hiv_aids', NULL, NULL, FALSE),
+  ('ICD10', 'C00', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C01', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C02', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C03', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C04', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C05', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C06', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C07', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C08', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C09', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C10', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C11', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C12', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C13', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C14', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C15', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C16', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C17', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C18', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C19', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C20', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C21', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C22', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C23', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C24', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C25', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C26', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C30', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C31', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C32', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C33', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C34', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C37', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C38', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C39', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C40', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C41', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C43', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C45', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C46', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C47', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C48', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C49', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C50', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C51', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C52', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C53', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C54', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C55', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C56', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C57', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C58', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C60', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C61', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C62', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C63', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C64', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C65', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C66', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C67', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C68', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C69', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C70', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C71', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C72', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C73', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C74', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C75', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C76', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C77', '@charlson.metastatic_solid_tumour', NULL, NULL, FALSE),
+  ('ICD10', 'C78', '@charlson.metastatic_solid_tumour', NULL, NULL, FALSE),
+  ('ICD10', 'C79', '@charlson.metastatic_solid_tumour', NULL, NULL, FALSE),
+  ('ICD10', 'C80', '@charlson.metastatic_solid_tumour', NULL, NULL, FALSE),
+  ('ICD10', 'C81', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C82', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C83', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C84', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C85', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C88', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C90', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C91', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C92', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C93', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C94', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C95', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C96', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'C97', '@charlson.malignancy', NULL, NULL, FALSE),
+  ('ICD10', 'E100', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E101', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E102', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E103', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E104', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E105', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E106', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E107', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E108', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E109', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E11', 'type2_diabetes.dm_code', NULL, NULL, FALSE),
+  ('ICD10', 'E110', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E111', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E112', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E113', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E114', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E115', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E116', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E117', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E118', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E119', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E120', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E121', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E122', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E123', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E124', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E125', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E126', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E127', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E128', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E129', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E130', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E131', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E132', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E133', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E134', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E135', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E136', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E137', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E138', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E139', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E140', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E141', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E142', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E143', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E144', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E145', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E146', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E147', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E148', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+  ('ICD10', 'E149', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
+  ('ICD10', 'F00', '@charlson.dementia', NULL, NULL, FALSE),
+  ('ICD10', 'F01', '@charlson.dementia', NULL, NULL, FALSE),
+  ('ICD10', 'F02', '@charlson.dementia', NULL, NULL, FALSE),
+  ('ICD10', 'F03', '@charlson.dementia', NULL, NULL, FALSE),
+  ('ICD10', 'F051', '@charlson.dementia', NULL, NULL, FALSE),
+  ('ICD10', 'G041', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
+  ('ICD10', 'G114', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
+  ('ICD10', 'G30', '@charlson.dementia', NULL, NULL, FALSE),
+  ('ICD10', 'G311', '@charlson.dementia', NULL, NULL, FALSE),
+  ('ICD10', 'G45', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
+  ('ICD10', 'G46', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
+  ('ICD10', 'G801', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
+  ('ICD10', 'G802', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
+  ('ICD10', 'G81', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
+  ('ICD10', 'G82', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
+  ('ICD10', 'G830', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
+  ('ICD10', 'G831', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
+  ('ICD10', 'G832', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
+  ('ICD10', 'G833', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
+  ('ICD10', 'G834', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
+  ('ICD10', 'G839', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
+  ('ICD10', 'H340', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
+  ('ICD10', 'I099', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
+  ('ICD10', 'I10', 'hypertension.htn_code', NULL, NULL, FALSE),
+  ('ICD10', 'I11', 'hypertension.htn_code', NULL, NULL, FALSE),
+  ('ICD10', 'I110', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
+  ('ICD10', 'I12', 'hypertension.htn_code', NULL, NULL, FALSE),
+  ('ICD10', 'I120', '@charlson.renal_disease', NULL, NULL, FALSE),
+  ('ICD10', 'I13', 'hypertension.htn_code', NULL, NULL, FALSE),
+  ('ICD10', 'I130', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
+  ('ICD10', 'I131', '@charlson.renal_disease', NULL, NULL, FALSE),
+  ('ICD10', 'I132', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
+  ('ICD10', 'I14', 'hypertension.htn_code', NULL, NULL, FALSE),
+  ('ICD10', 'I15', 'hypertension.htn_code', NULL, NULL, FALSE),
+  ('ICD10', 'I21', '@charlson.myocardial_infarction', NULL, NULL, FALSE),
+  ('ICD10', 'I22', '@charlson.myocardial_infarction', NULL, NULL, FALSE),
+  ('ICD10', 'I252', '@charlson.myocardial_infarction', NULL, NULL, FALSE),
+  ('ICD10', 'I255', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
+  ('ICD10', 'I278', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+  ('ICD10', 'I279', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+  ('ICD10', 'I420', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
+  ('ICD10', 'I425', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
+  ('ICD10', 'I426', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
+  ('ICD10', 'I427', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
+  ('ICD10', 'I428', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
+  ('ICD10', 'I429', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
+  ('ICD10', 'I43', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
+  ('ICD10', 'I50', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
+  ('ICD10', 'I50', 'heart_failure.hf_code', NULL, NULL, FALSE),
+  ('ICD10', 'I60', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
+  ('ICD10', 'I61', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
+  ('ICD10', 'I62', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
+  ('ICD10', 'I63', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
+  ('ICD10', 'I64', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
+  ('ICD10', 'I65', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
+  ('ICD10', 'I66', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
+  ('ICD10', 'I67', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
+  ('ICD10', 'I68', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
+  ('ICD10', 'I69', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
+  ('ICD10', 'I70', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
+  ('ICD10', 'I71', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
+  ('ICD10', 'I731', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
+  ('ICD10', 'I738', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
+  ('ICD10', 'I739', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
+  ('ICD10', 'I771', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
+  ('ICD10', 'I790', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
+  ('ICD10', 'I792', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
+  ('ICD10', 'I850', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'I859', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'I864', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'I982', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'J40', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+  ('ICD10', 'J41', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+  ('ICD10', 'J42', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+  ('ICD10', 'J43', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+  ('ICD10', 'J44', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+  ('ICD10', 'J45', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+  ('ICD10', 'J46', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+  ('ICD10', 'J47', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+  ('ICD10', 'J60', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+  ('ICD10', 'J61', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+  ('ICD10', 'J62', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+  ('ICD10', 'J63', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+  ('ICD10', 'J64', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+  ('ICD10', 'J65', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+  ('ICD10', 'J66', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+  ('ICD10', 'J67', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+  ('ICD10', 'J684', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+  ('ICD10', 'J701', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+  ('ICD10', 'J703', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K25', '@charlson.peptic_ulcer_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K26', '@charlson.peptic_ulcer_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K27', '@charlson.peptic_ulcer_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K28', '@charlson.peptic_ulcer_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K551', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K558', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K559', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K700', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K701', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K702', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K703', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K704', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K709', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K711', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K713', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K714', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K715', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K717', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K721', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K729', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K73', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K74', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K760', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K762', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K763', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K764', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K765', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K766', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K767', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K768', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'K769', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'M05', '@charlson.rheumatic_disease', NULL, NULL, FALSE),
+  ('ICD10', 'M06', '@charlson.rheumatic_disease', NULL, NULL, FALSE),
+  ('ICD10', 'M315', '@charlson.rheumatic_disease', NULL, NULL, FALSE),
+  ('ICD10', 'M32', '@charlson.rheumatic_disease', NULL, NULL, FALSE),
+  ('ICD10', 'M33', '@charlson.rheumatic_disease', NULL, NULL, FALSE),
+  ('ICD10', 'M34', '@charlson.rheumatic_disease', NULL, NULL, FALSE),
+  ('ICD10', 'M351', '@charlson.rheumatic_disease', NULL, NULL, FALSE),
+  ('ICD10', 'M353', '@charlson.rheumatic_disease', NULL, NULL, FALSE),
+  ('ICD10', 'M360', '@charlson.rheumatic_disease', NULL, NULL, FALSE),
+  ('ICD10', 'N032', '@charlson.renal_disease', NULL, NULL, FALSE),
+  ('ICD10', 'N033', '@charlson.renal_disease', NULL, NULL, FALSE),
+  ('ICD10', 'N034', '@charlson.renal_disease', NULL, NULL, FALSE),
+  ('ICD10', 'N035', '@charlson.renal_disease', NULL, NULL, FALSE),
+  ('ICD10', 'N036', '@charlson.renal_disease', NULL, NULL, FALSE),
+  ('ICD10', 'N037', '@charlson.renal_disease', NULL, NULL, FALSE),
+  ('ICD10', 'N052', '@charlson.renal_disease', NULL, NULL, FALSE),
+  ('ICD10', 'N053', '@charlson.renal_disease', NULL, NULL, FALSE),
+  ('ICD10', 'N054', '@charlson.renal_disease', NULL, NULL, FALSE),
+  ('ICD10', 'N055', '@charlson.renal_disease', NULL, NULL, FALSE),
+  ('ICD10', 'N056', '@charlson.renal_disease', NULL, NULL, FALSE),
+  ('ICD10', 'N057', '@charlson.renal_disease', NULL, NULL, FALSE),
+  ('ICD10', 'N18', '@charlson.renal_disease', NULL, NULL, FALSE),
+  ('ICD10', 'N183', 'ckd.ckd_code', NULL, NULL, FALSE),
+  ('ICD10', 'N184', 'ckd.ckd_code', NULL, NULL, FALSE),
+  ('ICD10', 'N185', 'ckd.ckd_code', NULL, NULL, FALSE),
+  ('ICD10', 'N186', 'ckd.ckd_code', NULL, NULL, FALSE),
+  ('ICD10', 'N19', '@charlson.renal_disease', NULL, NULL, FALSE),
+  ('ICD10', 'N250', '@charlson.renal_disease', NULL, NULL, FALSE),
+  ('ICD10', 'P290', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
+  ('ICD10', 'Z490', '@charlson.renal_disease', NULL, NULL, FALSE),
+  ('ICD10', 'Z491', '@charlson.renal_disease', NULL, NULL, FALSE),
+  ('ICD10', 'Z492', '@charlson.renal_disease', NULL, NULL, FALSE),
+  ('ICD10', 'Z940', '@charlson.renal_disease', NULL, NULL, FALSE),
+  ('ICD10', 'Z944', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
+  ('ICD10', 'Z958', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
+  ('ICD10', 'Z959', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
+  ('ICD10', 'Z992', '@charlson.renal_disease', NULL, NULL, FALSE),
+  ('ICD9', '250', 'type2_diabetes.dm_code', NULL, NULL, FALSE),
+  ('ICD9', '401', 'hypertension.htn_code', NULL, NULL, FALSE),
+  ('ICD9', '402', 'hypertension.htn_code', NULL, NULL, FALSE),
+  ('ICD9', '403', 'hypertension.htn_code', NULL, NULL, FALSE),
+  ('ICD9', '404', 'hypertension.htn_code', NULL, NULL, FALSE),
+  ('ICD9', '405', 'hypertension.htn_code', NULL, NULL, FALSE),
+  ('ICD9', '428', 'heart_failure.hf_code', NULL, NULL, FALSE),
+  ('ICD9', '5853', 'ckd.ckd_code', NULL, NULL, FALSE),
+  ('ICD9', '5854', 'ckd.ckd_code', NULL, NULL, FALSE),
+  ('ICD9', '5855', 'ckd.ckd_code', NULL, NULL, FALSE),
+  ('ICD9', '5856', 'ckd.ckd_code', NULL, NULL, FALSE) AS c(code_system, prefix, evidence, source, min_days, is_exclusion)
+  ON c.code_system = e.code_system
+  AND c.prefix = e.probe
+  AND (
+    c.source IS NULL OR c.source = e.source
+  )
+  AND (
+    c.min_days IS NULL OR e.duration_days >= c.min_days
+  )
+GROUP BY
+  e.patient_id,
+  e.event_date,
+  e.code_system,
+  e.code,
+  e.raw_code,
+  e.source,
+  e.duration_days,
+  c.evidence;
+
+-- stage coded_evidence [table]: matched rows counted per patient, evidence and day
+-- reads: coded_matches
+SELECT
+  patient_id,
+  evidence,
+  event_date,
+  CAST(COUNT(*) AS INT) AS n_rows
+FROM coded_matches
+WHERE
+  NOT excluded
+GROUP BY
+  patient_id,
+  evidence,
+  event_date;
+
+-- stage evidence_events [table]: one row per patient, evidence and day, with the day number for windows
+-- reads: coded_evidence, derived_egfr, measurement_values
+SELECT
+  patient_id,
+  evidence,
+  event_date,
+  CAST(DATEDIFF(DAY, CAST('1970-01-01' AS DATE), event_date) AS INT) AS day,
+  CAST(n_rows AS INT) AS n_rows
+FROM (
+  SELECT
+    patient_id,
+    evidence,
+    event_date,
+    n_rows
+  FROM coded_evidence
+  UNION ALL
+  SELECT
+    patient_id,
+    'type2_diabetes.a1c_high' AS evidence,
+    obs_date AS event_date,
+    CAST(COUNT(*) AS INT) AS n_rows
+  FROM measurement_values
+  WHERE
+    measure = 'hba1c'
+    AND CASE
+      WHEN qualifier IS NULL
+      THEN value >= 6.5
+      WHEN qualifier = '>'
+      THEN value >= 6.5
+      WHEN qualifier = '>='
+      THEN value >= 6.5
+      ELSE FALSE
+    END
+  GROUP BY
+    patient_id,
+    obs_date
+  UNION ALL
+  SELECT
+    patient_id,
+    'ckd.egfr_low' AS evidence,
+    obs_date AS event_date,
+    CAST(COUNT(*) AS INT) AS n_rows
+  FROM measurement_values
+  WHERE
+    measure = 'egfr'
+    AND CASE
+      WHEN qualifier IS NULL
+      THEN value < 60.0
+      WHEN qualifier = '<'
+      THEN value <= 60.0
+      WHEN qualifier = '<='
+      THEN value < 60.0
+      ELSE FALSE
+    END
+  GROUP BY
+    patient_id,
+    obs_date
+  UNION ALL
+  SELECT
+    patient_id,
+    'ckd.egfr_low' AS evidence,
+    obs_date AS event_date,
+    CAST(COUNT(*) AS INT) AS n_rows
+  FROM derived_egfr
+  WHERE
+    measure = 'egfr'
+    AND CASE
+      WHEN qualifier IS NULL
+      THEN value < 60.0
+      WHEN qualifier = '<'
+      THEN value <= 60.0
+      WHEN qualifier = '<='
+      THEN value < 60.0
+      ELSE FALSE
+    END
+  GROUP BY
+    patient_id,
+    obs_date
+) AS events;
+
+-- stage rules_type2_diabetes [table]: the first date each rule of type2_diabetes is met, per patient
+-- reads: evidence_events
+SELECT
+  patient_id,
+  'type2_diabetes' AS condition,
+  'two diabetes codes' AS rule,
+  MIN(event_date) AS onset_date
+FROM (
+  SELECT
+    patient_id,
+    evidence,
+    event_date,
+    SUM(CASE WHEN evidence = 'type2_diabetes.dm_code' THEN 1 ELSE 0 END) OVER (
+      PARTITION BY patient_id
+      ORDER BY day NULLS LAST
+      RANGE BETWEEN 730 PRECEDING AND CURRENT ROW
+    ) AS in_frame_0
+  FROM evidence_events
+  WHERE
+    evidence IN ('type2_diabetes.dm_code')
+) AS counted
+WHERE
+  in_frame_0 >= 2
+GROUP BY
+  patient_id
+UNION ALL
+SELECT
+  patient_id,
+  'type2_diabetes' AS condition,
+  'code and glucose-lowering drug' AS rule,
+  MIN(event_date) AS onset_date
+FROM (
+  SELECT
+    patient_id,
+    evidence,
+    event_date,
+    SUM(CASE WHEN evidence = 'type2_diabetes.dm_code' THEN n_rows ELSE 0 END) OVER (
+      PARTITION BY patient_id
+      ORDER BY day NULLS LAST
+      RANGE BETWEEN 365 PRECEDING AND CURRENT ROW
+    ) AS in_frame_0,
+    SUM(CASE WHEN evidence = 'type2_diabetes.dm_drug' THEN n_rows ELSE 0 END) OVER (
+      PARTITION BY patient_id
+      ORDER BY day NULLS LAST
+      RANGE BETWEEN 365 PRECEDING AND CURRENT ROW
+    ) AS in_frame_1
+  FROM evidence_events
+  WHERE
+    evidence IN ('type2_diabetes.dm_code', 'type2_diabetes.dm_drug')
+) AS counted
+WHERE
+  in_frame_0 >= 1 AND in_frame_1 >= 1
+GROUP BY
+  patient_id
+UNION ALL
+SELECT
+  patient_id,
+  'type2_diabetes' AS condition,
+  'two high HbA1c results' AS rule,
+  MIN(event_date) AS onset_date
+FROM (
+  SELECT
+    patient_id,
+    evidence,
+    event_date,
+    SUM(CASE WHEN evidence = 'type2_diabetes.a1c_high' THEN 1 ELSE 0 END) OVER (
+      PARTITION BY patient_id
+      ORDER BY day NULLS LAST
+      RANGE BETWEEN 730 PRECEDING AND CURRENT ROW
+    ) AS in_frame_0
+  FROM evidence_events
+  WHERE
+    evidence IN ('type2_diabetes.a1c_high')
+) AS counted
+WHERE
+  in_frame_0 >= 2
+GROUP BY
+  patient_id;
+
+-- stage onset_type2_diabetes [table]: onset of type2_diabetes: the earliest date any of its rules is met
+-- reads: rules_type2_diabetes
+SELECT
+  patient_id,
+  MIN(onset_date) AS onset_date
+FROM rules_type2_diabetes
+GROUP BY
+  patient_id;
+
+-- stage rules_ckd [table]: the first date each rule of ckd is met, per patient
+-- reads: evidence_events
+SELECT
+  patient_id,
+  'ckd' AS condition,
+  'two low eGFR at least 90 days apart' AS rule,
+  MIN(event_date) AS onset_date
+FROM (
+  SELECT
+    patient_id,
+    evidence,
+    event_date,
+    SUM(CASE WHEN evidence = 'ckd.egfr_low' THEN n_rows ELSE 0 END) OVER (
+      PARTITION BY patient_id
+      ORDER BY day NULLS LAST
+      RANGE BETWEEN UNBOUNDED PRECEDING AND 90 PRECEDING
+    ) AS in_frame_0
+  FROM evidence_events
+  WHERE
+    evidence IN ('ckd.egfr_low')
+) AS counted
+WHERE
+  evidence = 'ckd.egfr_low' AND in_frame_0 >= 1
+GROUP BY
+  patient_id
+UNION ALL
+SELECT
+  patient_id,
+  'ckd' AS condition,
+  'two CKD stage 3-6 codes' AS rule,
+  MIN(event_date) AS onset_date
+FROM (
+  SELECT
+    patient_id,
+    evidence,
+    event_date,
+    SUM(CASE WHEN evidence = 'ckd.ckd_code' THEN 1 ELSE 0 END) OVER (
+      PARTITION BY patient_id
+      ORDER BY day NULLS LAST
+      RANGE BETWEEN 730 PRECEDING AND CURRENT ROW
+    ) AS in_frame_0
+  FROM evidence_events
+  WHERE
+    evidence IN ('ckd.ckd_code')
+) AS counted
+WHERE
+  in_frame_0 >= 2
+GROUP BY
+  patient_id;
+
+-- stage onset_ckd [table]: onset of ckd: the earliest date any of its rules is met
+-- reads: rules_ckd
+SELECT
+  patient_id,
+  MIN(onset_date) AS onset_date
+FROM rules_ckd
+GROUP BY
+  patient_id;
+
+-- stage rules_heart_failure [table]: the first date each rule of heart_failure is met, per patient
+-- reads: evidence_events
+SELECT
+  patient_id,
+  'heart_failure' AS condition,
+  'two heart failure codes' AS rule,
+  MIN(event_date) AS onset_date
+FROM (
+  SELECT
+    patient_id,
+    evidence,
+    event_date,
+    SUM(CASE WHEN evidence = 'heart_failure.hf_code' THEN 1 ELSE 0 END) OVER (
+      PARTITION BY patient_id
+      ORDER BY day NULLS LAST
+      RANGE BETWEEN 730 PRECEDING AND CURRENT ROW
+    ) AS in_frame_0
+  FROM evidence_events
+  WHERE
+    evidence IN ('heart_failure.hf_code')
+) AS counted
+WHERE
+  in_frame_0 >= 2
+GROUP BY
+  patient_id
+UNION ALL
+SELECT
+  patient_id,
+  'heart_failure' AS condition,
+  'code and loop diuretic' AS rule,
+  MIN(event_date) AS onset_date
+FROM (
+  SELECT
+    patient_id,
+    evidence,
+    event_date,
+    SUM(CASE WHEN evidence = 'heart_failure.hf_code' THEN n_rows ELSE 0 END) OVER (
+      PARTITION BY patient_id
+      ORDER BY day NULLS LAST
+      RANGE BETWEEN 365 PRECEDING AND CURRENT ROW
+    ) AS in_frame_0,
+    SUM(CASE WHEN evidence = 'heart_failure.loop_diuretic' THEN n_rows ELSE 0 END) OVER (
+      PARTITION BY patient_id
+      ORDER BY day NULLS LAST
+      RANGE BETWEEN 365 PRECEDING AND CURRENT ROW
+    ) AS in_frame_1
+  FROM evidence_events
+  WHERE
+    evidence IN ('heart_failure.hf_code', 'heart_failure.loop_diuretic')
+) AS counted
+WHERE
+  in_frame_0 >= 1 AND in_frame_1 >= 1
+GROUP BY
+  patient_id;
+
+-- stage onset_heart_failure [table]: onset of heart_failure: the earliest date any of its rules is met
+-- reads: rules_heart_failure
+SELECT
+  patient_id,
+  MIN(onset_date) AS onset_date
+FROM rules_heart_failure
+GROUP BY
+  patient_id;
+
+-- stage rules_hypertension [table]: the first date each rule of hypertension is met, per patient
+-- reads: evidence_events
+SELECT
+  patient_id,
+  'hypertension' AS condition,
+  'two hypertension codes' AS rule,
+  MIN(event_date) AS onset_date
+FROM (
+  SELECT
+    patient_id,
+    evidence,
+    event_date,
+    SUM(CASE WHEN evidence = 'hypertension.htn_code' THEN 1 ELSE 0 END) OVER (
+      PARTITION BY patient_id
+      ORDER BY day NULLS LAST
+      RANGE BETWEEN 730 PRECEDING AND CURRENT ROW
+    ) AS in_frame_0
+  FROM evidence_events
+  WHERE
+    evidence IN ('hypertension.htn_code')
+) AS counted
+WHERE
+  in_frame_0 >= 2
+GROUP BY
+  patient_id
+UNION ALL
+SELECT
+  patient_id,
+  'hypertension' AS condition,
+  'code and antihypertensive' AS rule,
+  MIN(event_date) AS onset_date
+FROM (
+  SELECT
+    patient_id,
+    evidence,
+    event_date,
+    SUM(CASE WHEN evidence = 'hypertension.antihypertensive' THEN n_rows ELSE 0 END) OVER (
+      PARTITION BY patient_id
+      ORDER BY day NULLS LAST
+      RANGE BETWEEN 365 PRECEDING AND CURRENT ROW
+    ) AS in_frame_0,
+    SUM(CASE WHEN evidence = 'hypertension.htn_code' THEN n_rows ELSE 0 END) OVER (
+      PARTITION BY patient_id
+      ORDER BY day NULLS LAST
+      RANGE BETWEEN 365 PRECEDING AND CURRENT ROW
+    ) AS in_frame_1
+  FROM evidence_events
+  WHERE
+    evidence IN ('hypertension.antihypertensive', 'hypertension.htn_code')
+) AS counted
+WHERE
+  in_frame_0 >= 1 AND in_frame_1 >= 1
+GROUP BY
+  patient_id;
+
+-- stage onset_hypertension [table]: onset of hypertension: the earliest date any of its rules is met
+-- reads: rules_hypertension
+SELECT
+  patient_id,
+  MIN(onset_date) AS onset_date
+FROM rules_hypertension
+GROUP BY
+  patient_id;
+
+-- stage condition_onsets [table]: each condition's onset per patient, one column per condition the table needs
+-- reads: onset_type2_diabetes, onset_ckd, onset_heart_failure, onset_hypertension
+SELECT
+  patient_id,
+  MIN(CASE WHEN condition = 'type2_diabetes' THEN onset_date END) AS onset_type2_diabetes,
+  MIN(CASE WHEN condition = 'ckd' THEN onset_date END) AS onset_ckd,
+  MIN(CASE WHEN condition = 'heart_failure' THEN onset_date END) AS onset_heart_failure,
+  MIN(CASE WHEN condition = 'hypertension' THEN onset_date END) AS onset_hypertension
+FROM (
+  SELECT
+    patient_id,
+    'type2_diabetes' AS condition,
+    onset_date
+  FROM onset_type2_diabetes
+  UNION ALL
+  SELECT
+    patient_id,
+    'ckd' AS condition,
+    onset_date
+  FROM onset_ckd
+  UNION ALL
+  SELECT
+    patient_id,
+    'heart_failure' AS condition,
+    onset_date
+  FROM onset_heart_failure
+  UNION ALL
+  SELECT
+    patient_id,
+    'hypertension' AS condition,
+    onset_date
+  FROM onset_hypertension
+) AS onsets
+GROUP BY
+  patient_id;
+
+-- stage index_dates [table]: index: the first encounter between 2015-01-01 and 2016-12-31
+-- reads: encounter_summary
+SELECT
+  patient_id,
+  first_in_window AS index_date
+FROM encounter_summary
+WHERE
+  NOT first_in_window IS NULL;
+
+-- stage window_counts [table]: per patient, evidence and encounters counted in windows around the index date
+-- reads: index_dates, evidence_events, encounter_rows
+SELECT
+  i.patient_id,
+  COALESCE(ev.charlson_myocardial_infarction, 0) AS charlson_myocardial_infarction,
+  COALESCE(ev.charlson_congestive_heart_failure, 0) AS charlson_congestive_heart_failure,
+  COALESCE(ev.charlson_peripheral_vascular_disease, 0) AS charlson_peripheral_vascular_disease,
+  COALESCE(ev.charlson_cerebrovascular_disease, 0) AS charlson_cerebrovascular_disease,
+  COALESCE(ev.charlson_dementia, 0) AS charlson_dementia,
+  COALESCE(ev.charlson_chronic_pulmonary_disease, 0) AS charlson_chronic_pulmonary_disease,
+  COALESCE(ev.charlson_rheumatic_disease, 0) AS charlson_rheumatic_disease,
+  COALESCE(ev.charlson_peptic_ulcer_disease, 0) AS charlson_peptic_ulcer_disease,
+  COALESCE(ev.charlson_mild_liver_disease, 0) AS charlson_mild_liver_disease,
+  COALESCE(ev.charlson_diabetes_without_complications, 0) AS charlson_diabetes_without_complications,
+  COALESCE(ev.charlson_diabetes_with_complications, 0) AS charlson_diabetes_with_complications,
+  COALESCE(ev.charlson_hemiplegia_paraplegia, 0) AS charlson_hemiplegia_paraplegia,
+  COALESCE(ev.charlson_renal_disease, 0) AS charlson_renal_disease,
+  COALESCE(ev.charlson_malignancy, 0) AS charlson_malignancy,
+  COALESCE(ev.charlson_moderate_severe_liver_disease, 0) AS charlson_moderate_severe_liver_disease,
+  COALESCE(ev.charlson_metastatic_solid_tumour, 0) AS charlson_metastatic_solid_tumour,
+  COALESCE(ev.charlson_hiv_aids, 0) AS charlson_hiv_aids,
+  COALESCE(en.count_visits_prior_year, 0) AS count_visits_prior_year
+FROM index_dates AS i
+LEFT JOIN (
+  SELECT
+    patient_id,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.myocardial_infarction' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_myocardial_infarction,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.congestive_heart_failure' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_congestive_heart_failure,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.peripheral_vascular_disease' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_peripheral_vascular_disease,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.cerebrovascular_disease' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_cerebrovascular_disease,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.dementia' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_dementia,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.chronic_pulmonary_disease' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_chronic_pulmonary_disease,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.rheumatic_disease' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_rheumatic_disease,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.peptic_ulcer_disease' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_peptic_ulcer_disease,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.mild_liver_disease' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_mild_liver_disease,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.diabetes_without_complications' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_diabetes_without_complications,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.diabetes_with_complications' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_diabetes_with_complications,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.hemiplegia_paraplegia' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_hemiplegia_paraplegia,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.renal_disease' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_renal_disease,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.malignancy' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_malignancy,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.moderate_severe_liver_disease' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_moderate_severe_liver_disease,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.metastatic_solid_tumour' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_metastatic_solid_tumour,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN e.evidence = '@charlson.hiv_aids' AND e_offset <= 0
+          THEN e.n_rows
+          ELSE 0
+        END
+      ),
+      0
+    ) AS charlson_hiv_aids
+  FROM (
+    SELECT
+      i.patient_id,
+      e.evidence,
+      e.event_date,
+      e.n_rows,
+      DATEDIFF(DAY, i.index_date, e.event_date) AS e_offset
+    FROM index_dates AS i
+    JOIN (
+      SELECT
+        patient_id,
+        evidence,
+        event_date,
+        n_rows
+      FROM evidence_events
+      WHERE
+        evidence IN (
+          '@charlson.cerebrovascular_disease',
+          '@charlson.chronic_pulmonary_disease',
+          '@charlson.congestive_heart_failure',
+          '@charlson.dementia',
+          '@charlson.diabetes_with_complications',
+          '@charlson.diabetes_without_complications',
+          '@charlson.hemiplegia_paraplegia',
+          '@charlson.hiv_aids',
+          '@charlson.malignancy',
+          '@charlson.metastatic_solid_tumour',
+          '@charlson.mild_liver_disease',
+          '@charlson.moderate_severe_liver_disease',
+          '@charlson.myocardial_infarction',
+          '@charlson.peptic_ulcer_disease',
+          '@charlson.peripheral_vascular_disease',
+          '@charlson.renal_disease',
+          '@charlson.rheumatic_disease'
+        )
+    ) AS e
+      ON e.patient_id = i.patient_id AND e.event_date <= i.index_date
+  ) AS e
+  GROUP BY
+    patient_id
+) AS ev
+  ON ev.patient_id = i.patient_id
+LEFT JOIN (
+  SELECT
+    patient_id,
+    SUM(CASE WHEN e_offset BETWEEN -365 AND -1 THEN 1 ELSE 0 END) AS count_visits_prior_year
+  FROM (
+    SELECT DISTINCT
+      e.patient_id,
+      e.encounter_date,
+      e.encounter_type,
+      DATEDIFF(DAY, i.index_date, e.encounter_date) AS e_offset
+    FROM encounter_rows AS e
+    JOIN index_dates AS i
+      ON i.patient_id = e.patient_id
+      AND DATEDIFF(DAY, i.index_date, e.encounter_date) BETWEEN -365 AND 0
+  ) AS v
+  GROUP BY
+    patient_id
+) AS en
+  ON en.patient_id = i.patient_id;
+
+-- stage measure_covariates [table]: per patient, measurement covariates summarised in their windows
+-- reads: derived_bmi, derived_egfr, index_dates, measurement_values
+WITH baseline_values AS (
+  SELECT
+    v.patient_id,
+    v.measure,
+    v.obs_date,
+    v.value,
+    v.derived,
+    DATEDIFF(DAY, i.index_date, v.obs_date) AS e_offset
+  FROM (
+    SELECT
+      patient_id,
+      measure,
+      obs_date,
+      value,
+      derived
+    FROM derived_bmi
+    WHERE
+      measure IN ('bmi', 'egfr', 'hba1c', 'sbp') AND qualifier IS NULL
+    UNION ALL
+    SELECT
+      patient_id,
+      measure,
+      obs_date,
+      value,
+      derived
+    FROM derived_egfr
+    WHERE
+      measure IN ('bmi', 'egfr', 'hba1c', 'sbp') AND qualifier IS NULL
+    UNION ALL
+    SELECT
+      patient_id,
+      measure,
+      obs_date,
+      value,
+      derived
+    FROM measurement_values
+    WHERE
+      measure IN ('bmi', 'egfr', 'hba1c', 'sbp') AND qualifier IS NULL
+  ) AS v
+  JOIN index_dates AS i
+    ON i.patient_id = v.patient_id
+    AND DATEDIFF(DAY, i.index_date, v.obs_date) BETWEEN -730 AND 0
+)
+SELECT
+  i.patient_id,
+  c0.m_bmi,
+  c0.m_bmi_date,
+  c0.m_bmi_derived,
+  c1.m_sbp,
+  c1.m_sbp_date,
+  c1.m_sbp_derived,
+  c2.m_hba1c,
+  c2.m_hba1c_date,
+  c2.m_hba1c_derived,
+  c3.m_egfr,
+  c3.m_egfr_date,
+  c3.m_egfr_derived
+FROM index_dates AS i
+LEFT JOIN (
+  SELECT
+    patient_id,
+    AVG(value) AS m_bmi,
+    obs_date AS m_bmi_date,
+    BOOL_OR(derived) AS m_bmi_derived
+  FROM (
+    SELECT
+      patient_id,
+      obs_date,
+      value,
+      derived,
+      MAX(obs_date) OVER (PARTITION BY patient_id) AS last_date
+    FROM (
+      SELECT
+        patient_id,
+        obs_date,
+        value,
+        derived
+      FROM baseline_values
+      WHERE
+        measure = 'bmi' AND e_offset BETWEEN -730 AND 0
+    ) AS v
+  ) AS r
+  WHERE
+    obs_date = last_date
+  GROUP BY
+    patient_id,
+    obs_date
+) AS c0
+  ON c0.patient_id = i.patient_id
+LEFT JOIN (
+  SELECT
+    patient_id,
+    AVG(value) AS m_sbp,
+    obs_date AS m_sbp_date,
+    BOOL_OR(derived) AS m_sbp_derived
+  FROM (
+    SELECT
+      patient_id,
+      obs_date,
+      value,
+      derived,
+      MAX(obs_date) OVER (PARTITION BY patient_id) AS last_date
+    FROM (
+      SELECT
+        patient_id,
+        obs_date,
+        value,
+        derived
+      FROM baseline_values
+      WHERE
+        measure = 'sbp' AND e_offset BETWEEN -730 AND 0
+    ) AS v
+  ) AS r
+  WHERE
+    obs_date = last_date
+  GROUP BY
+    patient_id,
+    obs_date
+) AS c1
+  ON c1.patient_id = i.patient_id
+LEFT JOIN (
+  SELECT
+    patient_id,
+    AVG(value) AS m_hba1c,
+    obs_date AS m_hba1c_date,
+    BOOL_OR(derived) AS m_hba1c_derived
+  FROM (
+    SELECT
+      patient_id,
+      obs_date,
+      value,
+      derived,
+      MAX(obs_date) OVER (PARTITION BY patient_id) AS last_date
+    FROM (
+      SELECT
+        patient_id,
+        obs_date,
+        value,
+        derived
+      FROM baseline_values
+      WHERE
+        measure = 'hba1c' AND e_offset BETWEEN -730 AND 0
+    ) AS v
+  ) AS r
+  WHERE
+    obs_date = last_date
+  GROUP BY
+    patient_id,
+    obs_date
+) AS c2
+  ON c2.patient_id = i.patient_id
+LEFT JOIN (
+  SELECT
+    patient_id,
+    AVG(value) AS m_egfr,
+    obs_date AS m_egfr_date,
+    BOOL_OR(derived) AS m_egfr_derived
+  FROM (
+    SELECT
+      patient_id,
+      obs_date,
+      value,
+      derived,
+      MAX(obs_date) OVER (PARTITION BY patient_id) AS last_date
+    FROM (
+      SELECT
+        patient_id,
+        obs_date,
+        value,
+        derived
+      FROM baseline_values
+      WHERE
+        measure = 'egfr' AND e_offset BETWEEN -730 AND 0
+    ) AS v
+  ) AS r
+  WHERE
+    obs_date = last_date
+  GROUP BY
+    patient_id,
+    obs_date
+) AS c3
+  ON c3.patient_id = i.patient_id;
+
+-- stage eligibility [table]: the source population with follow-up and one pass/fail column per eligibility step
+-- reads: index_dates, patient_base, encounter_summary, condition_onsets, window_counts
+SELECT
+  patient_id,
+  sex,
+  birth_date,
+  death_date,
+  practice_id,
+  registration_date,
+  deregistration_date,
+  index_date,
+  first_encounter,
+  last_encounter,
+  age_at_index,
+  onset_type2_diabetes,
+  onset_ckd,
+  onset_heart_failure,
+  onset_hypertension,
+  prevalent_type2_diabetes,
+  prevalent_ckd,
+  prevalent_heart_failure,
+  horizon_end,
+  followup_end,
+  end_reason,
+  COALESCE(sex IN ('F', 'M'), FALSE) AS step_1,
+  COALESCE(death_date IS NULL OR death_date > index_date, FALSE) AS step_2,
+  COALESCE(age_at_index BETWEEN 40 AND 85, FALSE) AS step_3,
+  COALESCE(DATEDIFF(DAY, first_encounter, index_date) >= 730, FALSE) AS step_4,
+  COALESCE(
+    NOT (
+      prevalent_type2_diabetes AND prevalent_ckd AND prevalent_heart_failure
+    ),
+    FALSE
+  ) AS step_5
+FROM (
+  SELECT
+    *,
+    CASE
+      WHEN death_date = followup_end
+      THEN 'death'
+      WHEN CAST('2019-12-31' AS DATE) = followup_end
+      THEN 'end_of_data'
+      WHEN CAST(DATE_ADD(last_encounter, 365) AS DATE) = followup_end
+      THEN 'lost_contact'
+      WHEN CAST(DATE_ADD(index_date, 1461) AS DATE) = followup_end
+      THEN 'horizon'
+    END AS end_reason
+  FROM (
+    SELECT
+      *,
+      CAST(DATE_ADD(index_date, 1461) AS DATE) AS horizon_end,
+      LEAST(
+        COALESCE(death_date, CAST('9999-12-31' AS DATE)),
+        COALESCE(CAST('2019-12-31' AS DATE), CAST('9999-12-31' AS DATE)),
+        COALESCE(CAST(DATE_ADD(last_encounter, 365) AS DATE), CAST('9999-12-31' AS DATE)),
+        COALESCE(CAST(DATE_ADD(index_date, 1461) AS DATE), CAST('9999-12-31' AS DATE))
+      ) AS followup_end
+    FROM (
+      SELECT
+        *,
+        COALESCE(NOT onset_type2_diabetes IS NULL AND onset_type2_diabetes <= index_date, FALSE) AS prevalent_type2_diabetes,
+        COALESCE(NOT onset_ckd IS NULL AND onset_ckd <= index_date, FALSE) AS prevalent_ckd,
+        COALESCE(NOT onset_heart_failure IS NULL AND onset_heart_failure <= index_date, FALSE) AS prevalent_heart_failure
+      FROM (
+        SELECT
+          i.patient_id,
+          p.sex,
+          p.birth_date,
+          p.death_date,
+          p.practice_id,
+          p.registration_date,
+          p.deregistration_date,
+          i.index_date,
+          s.first_encounter,
+          s.last_encounter,
+          YEAR(i.index_date) - YEAR(p.birth_date) - CASE
+            WHEN MONTH(i.index_date) * 100 + DAY(i.index_date) < MONTH(p.birth_date) * 100 + DAY(p.birth_date)
+            THEN 1
+            ELSE 0
+          END AS age_at_index,
+          o.onset_type2_diabetes,
+          o.onset_ckd,
+          o.onset_heart_failure,
+          o.onset_hypertension
+        FROM index_dates AS i
+        JOIN patient_base AS p
+          ON p.patient_id = i.patient_id
+        JOIN encounter_summary AS s
+          ON s.patient_id = i.patient_id
+        LEFT JOIN condition_onsets AS o
+          ON o.patient_id = i.patient_id
+        LEFT JOIN window_counts AS w
+          ON w.patient_id = i.patient_id
+      ) AS b
+    ) AS v
+  ) AS fu
+) AS f;
+
+-- stage attrition [table]: patients before, removed and remaining at each eligibility step
+-- reads: eligibility
+WITH totals AS (
+  SELECT
+    COUNT(*) AS n_0,
+    COALESCE(SUM(CASE WHEN step_1 THEN 1 ELSE 0 END), 0) AS n_1,
+    COALESCE(SUM(CASE WHEN step_1 AND step_2 THEN 1 ELSE 0 END), 0) AS n_2,
+    COALESCE(SUM(CASE WHEN (
+      step_1 AND step_2
+    ) AND step_3 THEN 1 ELSE 0 END), 0) AS n_3,
+    COALESCE(
+      SUM(
+        CASE WHEN (
+          (
+            step_1 AND step_2
+          ) AND step_3
+        ) AND step_4 THEN 1 ELSE 0 END
+      ),
+      0
+    ) AS n_4,
+    COALESCE(
+      SUM(
+        CASE
+          WHEN (
+            (
+              (
+                step_1 AND step_2
+              ) AND step_3
+            ) AND step_4
+          ) AND step_5
+          THEN 1
+          ELSE 0
+        END
+      ),
+      0
+    ) AS n_5
+  FROM eligibility
+)
+SELECT
+  CAST(step_number AS INT) AS step_number,
+  step,
+  description,
+  CAST(patients_before AS BIGINT) AS patients_before,
+  CAST(removed AS BIGINT) AS removed,
+  CAST(remaining AS BIGINT) AS remaining
+FROM (
+  SELECT
+    0 AS step_number,
+    'source_population' AS step,
+    'the first encounter between 2015-01-01 and 2016-12-31' AS description,
+    n_0 AS patients_before,
+    0 AS removed,
+    n_0 AS remaining
+  FROM totals
+  UNION ALL
+  SELECT
+    1,
+    'sex',
+    'sex recorded as F or M',
+    n_0,
+    n_0 - n_1,
+    n_1
+  FROM totals
+  UNION ALL
+  SELECT
+    2,
+    'alive_at_index',
+    'alive at index (no death on or before the index date)',
+    n_1,
+    n_1 - n_2,
+    n_2
+  FROM totals
+  UNION ALL
+  SELECT
+    3,
+    'age',
+    'age at index between 40 and 85 years',
+    n_2,
+    n_2 - n_3,
+    n_3
+  FROM totals
+  UNION ALL
+  SELECT
+    4,
+    'history',
+    'first encounter at least 730 days before index',
+    n_3,
+    n_3 - n_4,
+    n_4
+  FROM totals
+  UNION ALL
+  SELECT
+    5,
+    'at_risk_any_outcome',
+    'at risk of at least one outcome (not prevalent for all of type2_diabetes, ckd, heart_failure)',
+    n_4,
+    n_4 - n_5,
+    n_5
+  FROM totals
+) AS steps;
+
+-- stage population [table]: the source population with the first eligibility step each patient failed
+-- reads: eligibility
+SELECT
+  patient_id,
+  index_date,
+  CASE
+    WHEN NOT step_1
+    THEN 'sex'
+    WHEN NOT step_2
+    THEN 'alive_at_index'
+    WHEN NOT step_3
+    THEN 'age'
+    WHEN NOT step_4
+    THEN 'history'
+    WHEN NOT step_5
+    THEN 'at_risk_any_outcome'
+  END AS excluded_at
+FROM eligibility;
+
+-- stage cohort [table]: the analysis table: one row per eligible patient
+-- reads: eligibility, window_counts, measure_covariates
+SELECT
+  f.patient_id,
+  f.index_date,
+  CAST(f.age_at_index AS INT) AS age_at_index,
+  f.sex,
+  CAST(m.m_bmi AS DOUBLE) AS bmi,
+  m.m_bmi_date AS bmi_date,
+  m.m_bmi_derived AS bmi_derived,
+  CAST(m.m_sbp AS DOUBLE) AS sbp,
+  m.m_sbp_date AS sbp_date,
+  CAST(m.m_hba1c AS DOUBLE) AS hba1c,
+  m.m_hba1c_date AS hba1c_date,
+  CAST(m.m_egfr AS DOUBLE) AS egfr,
+  m.m_egfr_date AS egfr_date,
+  m.m_egfr_derived AS egfr_derived,
+  CAST(w.count_visits_prior_year AS INT) AS visits_prior_year,
+  COALESCE(NOT f.onset_hypertension IS NULL AND f.onset_hypertension <= f.index_date, FALSE) AS hypertension,
+  CAST(CASE WHEN COALESCE(w.charlson_myocardial_infarction, 0) > 0 THEN 1 ELSE 0 END + CASE WHEN COALESCE(w.charlson_congestive_heart_failure, 0) > 0 THEN 1 ELSE 0 END + CASE WHEN COALESCE(w.charlson_peripheral_vascular_disease, 0) > 0 THEN 1 ELSE 0 END + CASE WHEN COALESCE(w.charlson_cerebrovascular_disease, 0) > 0 THEN 1 ELSE 0 END + CASE WHEN COALESCE(w.charlson_dementia, 0) > 0 THEN 1 ELSE 0 END + CASE WHEN COALESCE(w.charlson_chronic_pulmonary_disease, 0) > 0 THEN 1 ELSE 0 END + CASE WHEN COALESCE(w.charlson_rheumatic_disease, 0) > 0 THEN 1 ELSE 0 END + CASE WHEN COALESCE(w.charlson_peptic_ulcer_disease, 0) > 0 THEN 1 ELSE 0 END + CASE
+    WHEN COALESCE(w.charlson_mild_liver_disease, 0) > 0
+    AND NOT COALESCE(w.charlson_moderate_severe_liver_disease, 0) > 0
+    THEN 1
+    ELSE 0
+  END + CASE
+    WHEN COALESCE(w.charlson_diabetes_without_complications, 0) > 0
+    AND NOT COALESCE(w.charlson_diabetes_with_complications, 0) > 0
+    THEN 1
+    ELSE 0
+  END + CASE WHEN COALESCE(w.charlson_diabetes_with_complications, 0) > 0 THEN 2 ELSE 0 END + CASE WHEN COALESCE(w.charlson_hemiplegia_paraplegia, 0) > 0 THEN 2 ELSE 0 END + CASE WHEN COALESCE(w.charlson_renal_disease, 0) > 0 THEN 2 ELSE 0 END + CASE
+    WHEN COALESCE(w.charlson_malignancy, 0) > 0
+    AND NOT COALESCE(w.charlson_metastatic_solid_tumour, 0) > 0
+    THEN 2
+    ELSE 0
+  END + CASE
+    WHEN COALESCE(w.charlson_moderate_severe_liver_disease, 0) > 0
+    THEN 3
+    ELSE 0
+  END + CASE WHEN COALESCE(w.charlson_metastatic_solid_tumour, 0) > 0 THEN 6 ELSE 0 END + CASE WHEN COALESCE(w.charlson_hiv_aids, 0) > 0 THEN 6 ELSE 0 END AS INT) AS charlson,
+  f.prevalent_type2_diabetes AS prevalent_type2_diabetes,
+  NOT f.prevalent_type2_diabetes AS at_risk_type2_diabetes,
+  CASE
+    WHEN f.prevalent_type2_diabetes
+    THEN NULL
+    ELSE COALESCE(
+      f.onset_type2_diabetes > f.index_date
+      AND f.onset_type2_diabetes <= f.followup_end,
+      FALSE
+    )
+  END AS incident_type2_diabetes,
+  f.onset_type2_diabetes AS onset_type2_diabetes,
+  CAST(CASE
+    WHEN NOT f.prevalent_type2_diabetes
+    AND COALESCE(
+      f.onset_type2_diabetes > f.index_date
+      AND f.onset_type2_diabetes <= f.followup_end,
+      FALSE
+    )
+    THEN DATEDIFF(DAY, f.index_date, f.onset_type2_diabetes)
+  END AS INT) AS days_to_type2_diabetes,
+  f.prevalent_ckd AS prevalent_ckd,
+  NOT f.prevalent_ckd AS at_risk_ckd,
+  CASE
+    WHEN f.prevalent_ckd
+    THEN NULL
+    ELSE COALESCE(f.onset_ckd > f.index_date AND f.onset_ckd <= f.followup_end, FALSE)
+  END AS incident_ckd,
+  f.onset_ckd AS onset_ckd,
+  CAST(CASE
+    WHEN NOT f.prevalent_ckd
+    AND COALESCE(f.onset_ckd > f.index_date AND f.onset_ckd <= f.followup_end, FALSE)
+    THEN DATEDIFF(DAY, f.index_date, f.onset_ckd)
+  END AS INT) AS days_to_ckd,
+  f.prevalent_heart_failure AS prevalent_heart_failure,
+  NOT f.prevalent_heart_failure AS at_risk_heart_failure,
+  CASE
+    WHEN f.prevalent_heart_failure
+    THEN NULL
+    ELSE COALESCE(
+      f.onset_heart_failure > f.index_date AND f.onset_heart_failure <= f.followup_end,
+      FALSE
+    )
+  END AS incident_heart_failure,
+  f.onset_heart_failure AS onset_heart_failure,
+  CAST(CASE
+    WHEN NOT f.prevalent_heart_failure
+    AND COALESCE(
+      f.onset_heart_failure > f.index_date AND f.onset_heart_failure <= f.followup_end,
+      FALSE
+    )
+    THEN DATEDIFF(DAY, f.index_date, f.onset_heart_failure)
+  END AS INT) AS days_to_heart_failure,
+  f.followup_end,
+  CAST(DATEDIFF(DAY, f.index_date, f.followup_end) AS INT) AS followup_days,
+  f.end_reason
+FROM eligibility AS f
+LEFT JOIN window_counts AS w
+  ON w.patient_id = f.patient_id
+LEFT JOIN measure_covariates AS m
+  ON m.patient_id = f.patient_id
+WHERE
+  f.step_1 AND f.step_2 AND f.step_3 AND f.step_4 AND f.step_5;
+
+-- stage rows_read [table]: rows read per extract table, counted on their own to check the quality log
+-- reads: src_diagnoses, src_encounters, src_measurements, src_patients, src_prescriptions
+SELECT
+  'patients' AS source_table,
+  CAST(COUNT(*) AS BIGINT) AS n_rows
+FROM src_patients
+UNION ALL
+SELECT
+  'encounters' AS source_table,
+  CAST(COUNT(*) AS BIGINT) AS n_rows
+FROM src_encounters
+UNION ALL
+SELECT
+  'diagnoses' AS source_table,
+  CAST(COUNT(*) AS BIGINT) AS n_rows
+FROM src_diagnoses
+UNION ALL
+SELECT
+  'prescriptions' AS source_table,
+  CAST(COUNT(*) AS BIGINT) AS n_rows
+FROM src_prescriptions
+UNION ALL
+SELECT
+  'measurements' AS source_table,
+  CAST(COUNT(*) AS BIGINT) AS n_rows
+FROM src_measurements;
+
+-- stage quality_log [table]: every extract row: used, or set aside with the first reason that applies
+-- reads: measurement_rows, patient_base, src_diagnoses, src_encounters, src_patients, src_prescriptions
+WITH summary AS (
+  SELECT
+    reason,
+    'patients' AS source_table,
+    SUM(1) AS distinct_rows,
+    SUM(copies - 1) AS duplicates
+  FROM (
+    SELECT
+      CASE WHEN patient_id IS NULL THEN 'missing patient_id' ELSE 'used' END AS reason,
+      copies
+    FROM (
+      SELECT
+        patient_id,
+        sex,
+        death_date,
+        birth_date,
+        birth_year,
+        practice_id,
+        registration_date,
+        deregistration_date,
+        COUNT(*) AS copies
+      FROM src_patients
+      GROUP BY
+        patient_id,
+        sex,
+        death_date,
+        birth_date,
+        birth_year,
+        practice_id,
+        registration_date,
+        deregistration_date
+    ) AS g
+  ) AS c
+  GROUP BY
+    reason
+  UNION ALL
+  SELECT
+    reason,
+    'encounters' AS source_table,
+    SUM(1) AS distinct_rows,
+    SUM(copies - 1) AS duplicates
+  FROM (
+    SELECT
+      CASE
+        WHEN p.patient_id IS NULL
+        THEN 'orphan patient'
+        WHEN r.row_date IS NULL
+        THEN 'unparseable date'
+        WHEN NOT NULL IS NULL
+        THEN NULL
+        WHEN r.row_date > CAST('2019-12-31' AS DATE)
+        THEN 'after end of data'
+        WHEN NOT p.death_date IS NULL AND r.row_date > p.death_date
+        THEN 'after death'
+        ELSE 'used'
+      END AS reason,
+      r.copies
+    FROM (
+      SELECT
+        *,
+        CASE
+          WHEN CAST(encounter_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+          THEN TRY_CAST(REGEXP_REPLACE(
+            TRIM(CAST(encounter_date AS STRING)),
+            '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+            '$1-$3-$4'
+          ) AS DATE)
+        END AS row_date
+      FROM (
+        SELECT
+          patient_id,
+          encounter_date,
+          encounter_type,
+          COUNT(*) AS copies
+        FROM src_encounters
+        GROUP BY
+          patient_id,
+          encounter_date,
+          encounter_type
+      ) AS g
+    ) AS r
+    LEFT JOIN patient_base AS p
+      ON p.patient_id = r.patient_id
+  ) AS c
+  GROUP BY
+    reason
+  UNION ALL
+  SELECT
+    reason,
+    'diagnoses' AS source_table,
+    SUM(1) AS distinct_rows,
+    SUM(copies - 1) AS duplicates
+  FROM (
+    SELECT
+      CASE
+        WHEN p.patient_id IS NULL
+        THEN 'orphan patient'
+        WHEN r.row_date IS NULL
+        THEN 'unparseable date'
+        WHEN NOT CASE
+          WHEN NOT COALESCE(UPPER(TRIM(CAST(r.code_system AS STRING))), '') IN ('ICD9', 'ICD10')
+          THEN 'unknown code system'
+          WHEN COALESCE(UPPER(TRIM(CAST(r.code_system AS STRING))), '') = 'ICD9'
+          AND NOT COALESCE(REPLACE(REPLACE(UPPER(r.code), '.', ''), ' ', ''), '') RLIKE '^([0-9]{3}([0-9]{1,2})?|V[0-9]{2}([0-9]{1,2})?|E[0-9]{3}([0-9])?)$'
+          THEN 'malformed code'
+          WHEN COALESCE(UPPER(TRIM(CAST(r.code_system AS STRING))), '') = 'ICD10'
+          AND NOT COALESCE(REPLACE(REPLACE(UPPER(r.code), '.', ''), ' ', ''), '') RLIKE '^[A-Z][0-9][0-9A-Z]([0-9A-Z]{1,4})?$'
+          THEN 'malformed code'
+        END IS NULL
+        THEN CASE
+          WHEN NOT COALESCE(UPPER(TRIM(CAST(r.code_system AS STRING))), '') IN ('ICD9', 'ICD10')
+          THEN 'unknown code system'
+          WHEN COALESCE(UPPER(TRIM(CAST(r.code_system AS STRING))), '') = 'ICD9'
+          AND NOT COALESCE(REPLACE(REPLACE(UPPER(r.code), '.', ''), ' ', ''), '') RLIKE '^([0-9]{3}([0-9]{1,2})?|V[0-9]{2}([0-9]{1,2})?|E[0-9]{3}([0-9])?)$'
+          THEN 'malformed code'
+          WHEN COALESCE(UPPER(TRIM(CAST(r.code_system AS STRING))), '') = 'ICD10'
+          AND NOT COALESCE(REPLACE(REPLACE(UPPER(r.code), '.', ''), ' ', ''), '') RLIKE '^[A-Z][0-9][0-9A-Z]([0-9A-Z]{1,4})?$'
+          THEN 'malformed code'
+        END
+        WHEN r.row_date > CAST('2019-12-31' AS DATE)
+        THEN 'after end of data'
+        WHEN NOT p.death_date IS NULL AND r.row_date > p.death_date
+        THEN 'after death'
+        ELSE 'used'
+      END AS reason,
+      r.copies
+    FROM (
+      SELECT
+        *,
+        CASE
+          WHEN CAST(event_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+          THEN TRY_CAST(REGEXP_REPLACE(
+            TRIM(CAST(event_date AS STRING)),
+            '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+            '$1-$3-$4'
+          ) AS DATE)
+        END AS row_date
+      FROM (
+        SELECT
+          patient_id,
+          event_date,
+          code_system,
+          code,
+          source,
+          COUNT(*) AS copies
+        FROM src_diagnoses
+        GROUP BY
+          patient_id,
+          event_date,
+          code_system,
+          code,
+          source
+      ) AS g
+    ) AS r
+    LEFT JOIN patient_base AS p
+      ON p.patient_id = r.patient_id
+  ) AS c
+  GROUP BY
+    reason
+  UNION ALL
+  SELECT
+    reason,
+    'prescriptions' AS source_table,
+    SUM(1) AS distinct_rows,
+    SUM(copies - 1) AS duplicates
+  FROM (
+    SELECT
+      CASE
+        WHEN p.patient_id IS NULL
+        THEN 'orphan patient'
+        WHEN r.row_date IS NULL
+        THEN 'unparseable date'
+        WHEN NOT CASE
+          WHEN NOT COALESCE(REPLACE(REPLACE(UPPER(r.atc), '.', ''), ' ', ''), '') RLIKE '^[A-Z]([0-9]{2}([A-Z]([A-Z]([0-9]{2})?)?)?)?$'
+          THEN 'malformed code'
+        END IS NULL
+        THEN CASE
+          WHEN NOT COALESCE(REPLACE(REPLACE(UPPER(r.atc), '.', ''), ' ', ''), '') RLIKE '^[A-Z]([0-9]{2}([A-Z]([A-Z]([0-9]{2})?)?)?)?$'
+          THEN 'malformed code'
+        END
+        WHEN r.row_date > CAST('2019-12-31' AS DATE)
+        THEN 'after end of data'
+        WHEN NOT p.death_date IS NULL AND r.row_date > p.death_date
+        THEN 'after death'
+        ELSE 'used'
+      END AS reason,
+      r.copies
+    FROM (
+      SELECT
+        *,
+        CASE
+          WHEN CAST(start_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+          THEN TRY_CAST(REGEXP_REPLACE(
+            TRIM(CAST(start_date AS STRING)),
+            '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+            '$1-$3-$4'
+          ) AS DATE)
+        END AS row_date
+      FROM (
+        SELECT
+          patient_id,
+          start_date,
+          atc,
+          stop_date,
+          COUNT(*) AS copies
+        FROM src_prescriptions
+        GROUP BY
+          patient_id,
+          start_date,
+          atc,
+          stop_date
+      ) AS g
+    ) AS r
+    LEFT JOIN patient_base AS p
+      ON p.patient_id = r.patient_id
+  ) AS c
+  GROUP BY
+    reason
+  UNION ALL
+  SELECT
+    reason,
+    'measurements' AS source_table,
+    SUM(1) AS distinct_rows,
+    SUM(copies - 1) AS duplicates
+  FROM (
+    SELECT
+      COALESCE(problem, 'used') AS reason,
+      copies
+    FROM measurement_rows
+  ) AS c
+  GROUP BY
+    reason
+)
+SELECT
+  source_table,
+  CASE WHEN reason = 'used' THEN 'used' ELSE 'set aside' END AS outcome,
+  CASE WHEN reason = 'used' THEN 'used' ELSE reason END AS reason,
+  CAST(SUM(n) AS BIGINT) AS n_rows
+FROM (
+  SELECT
+    source_table,
+    reason,
+    distinct_rows AS n
+  FROM summary
+  UNION ALL
+  SELECT
+    source_table,
+    'exact duplicate' AS reason,
+    duplicates AS n
+  FROM summary
+  WHERE
+    duplicates > 0
+) AS counted
+GROUP BY
+  source_table,
+  reason;
