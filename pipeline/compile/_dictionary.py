@@ -25,7 +25,7 @@ def _measure_docs(name: str, covariate: Covariate) -> list[ColumnDoc]:
     measure = covariate.latest or covariate.mean or covariate.minimum or covariate.maximum
     assert measure is not None  # only called for measure covariates
     unit = MEASURES[measure].canonical_unit
-    how = f"{covariate.kind} exact value (no < or >) {_window(covariate.span)}"
+    how = f"{covariate.kind} exact value (no < or >) {_window(covariate.span)}; 6 decimals"
     if measure in DERIVED_FROM:
         how += (
             f"; reported values, and on days without one, values derived from "

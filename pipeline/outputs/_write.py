@@ -23,15 +23,16 @@ from pipeline.outputs._manifest import MANIFEST, sha256_file
 ATTRITION_COLUMNS = ("step", "description", "patients_before", "removed", "remaining")
 
 
-DECIMALS = 10
+DECIMALS = 6
 
 
 def round_doubles(table: pa.Table) -> pa.Table:
-    """Round every floating-point column to 10 decimals, in Python, for every engine alike.
+    """Round every floating-point column to 6 decimals, in Python, for every engine alike.
 
     The last bits of a mean or a power depend on summation order and on the maths library
-    (DuckDB's C vs Spark's Java), so the same inputs must be rounded in one place for the
-    outputs to be identical bit for bit.
+    (DuckDB's C vs Spark's Java), so values are rounded in one place for the outputs to be
+    identical bit for bit; 6 decimals is far finer than any measure here is recorded, and
+    makes a value whose two engines' results round differently (a tie) very unlikely.
     """
     columns = [
         pc.round(column, DECIMALS) if pa.types.is_floating(column.type) else column
