@@ -49,60 +49,26 @@ FileFormat = Literal["parquet", "csv", "fhir"]
 TABLES: tuple[str, ...] = ("patients", "encounters", "diagnoses", "prescriptions", "measurements")
 _EPOCH = date(1970, 1, 1)
 
+_TEXT, _DATE = pa.string(), pa.date32()
+
+# fmt: off
 SCHEMAS: dict[str, pa.Schema] = {
-    "patients": pa.schema(
-        [
-            ("patient_id", pa.string()),
-            ("birth_date", pa.date32()),
-            ("birth_year", pa.int32()),
-            ("sex", pa.string()),
-            ("death_date", pa.date32()),
-            ("practice_id", pa.string()),
-        ]
-    ),
-    "encounters": pa.schema(
-        [
-            ("patient_id", pa.string()),
-            ("encounter_date", pa.date32()),
-            ("encounter_type", pa.string()),
-        ]
-    ),
-    "diagnoses": pa.schema(
-        [
-            ("patient_id", pa.string()),
-            ("event_date", pa.date32()),
-            ("code_system", pa.string()),
-            ("code", pa.string()),
-            ("source", pa.string()),
-        ]
-    ),
-    "prescriptions": pa.schema(
-        [
-            ("patient_id", pa.string()),
-            ("start_date", pa.date32()),
-            ("stop_date", pa.date32()),
-            ("atc", pa.string()),
-            ("drug_text", pa.string()),
-        ]
-    ),
-    "measurements": pa.schema(
-        [
-            ("patient_id", pa.string()),
-            ("obs_date", pa.date32()),
-            ("measure", pa.string()),
-            ("value", pa.float64()),
-            ("value_text", pa.string()),
-            ("unit", pa.string()),
-        ]
-    ),
-    "truth": pa.schema(
-        [
-            ("patient_id", pa.string()),
-            ("condition", pa.string()),
-            ("true_onset_date", pa.date32()),
-        ]
-    ),
+    "patients": pa.schema([("patient_id", _TEXT), ("birth_date", _DATE),
+                           ("birth_year", pa.int32()), ("sex", _TEXT), ("death_date", _DATE),
+                           ("practice_id", _TEXT)]),
+    "encounters": pa.schema([("patient_id", _TEXT), ("encounter_date", _DATE),
+                             ("encounter_type", _TEXT)]),
+    "diagnoses": pa.schema([("patient_id", _TEXT), ("event_date", _DATE),
+                            ("code_system", _TEXT), ("code", _TEXT), ("source", _TEXT)]),
+    "prescriptions": pa.schema([("patient_id", _TEXT), ("start_date", _DATE),
+                                ("stop_date", _DATE), ("atc", _TEXT), ("drug_text", _TEXT)]),
+    "measurements": pa.schema([("patient_id", _TEXT), ("obs_date", _DATE), ("measure", _TEXT),
+                               ("value", pa.float64()), ("value_text", _TEXT),
+                               ("unit", _TEXT)]),
+    "truth": pa.schema([("patient_id", _TEXT), ("condition", _TEXT),
+                        ("true_onset_date", _DATE)]),
 }
+# fmt: on
 """Column names and types of every file, in file column order."""
 
 
