@@ -12,13 +12,13 @@ from pathlib import Path
 
 import pyarrow as pa
 
-from pipeline.compile import Plan, compile_study
+from pipeline.compile import POSITION_BASE, Plan, compile_study
 from pipeline.config import LoadedStudy, load_study
 from pipeline.engine import DuckDBEngine, RunResult, SparkEngine
 from pipeline.engine._duckdb import StageCallback
 from pipeline.engine._spark import DEFAULT_MASTER
 from pipeline.errors import EngineError
-from pipeline.extract import discover_extract
+from pipeline.extract import ExtractTable, discover_extract
 from pipeline.outputs import (
     changed_inputs,
     describe_files,
@@ -148,12 +148,38 @@ def build_study(
         cohort=run.outputs["cohort"],
         population=run.outputs["population"],
         attrition=run.outputs["attrition"],
-        quality=run.outputs["quality"],
+        quality=locate_first_rows(run.outputs["quality"], tables, extract),
         columns=plan.columns,
         manifest=manifest,
         run_info=run_info,
     )
     return BuildResult(out, files, plan, run)
+
+
+def locate_first_rows(
+    quality: pa.Table, tables: dict[str, ExtractTable], extract: Path
+) -> pa.Table:
+    """The quality log with each reason's first set-aside row as a file and a row number.
+
+    The engine gives a position (file index * POSITION_BASE + row, CSV only); a reader wants
+    the file, relative to the extract's folder where it lies inside it, and the row, counted
+    from 1 after the header (its line is row + 1 when no field holds a line break).
+    """
+    folder = extract if extract.is_dir() else extract.parent  # a mapping file's folder
+    files: list[str | None] = []
+    rows: list[int | None] = []
+    for entry in quality.to_pylist():
+        position = entry["first_position"]
+        if position is None:
+            files.append(None)
+            rows.append(None)
+            continue
+        path = tables[entry["source_table"]].files[position // POSITION_BASE]
+        files.append(str(path.relative_to(folder)) if path.is_relative_to(folder) else str(path))
+        rows.append(position % POSITION_BASE)
+    kept = quality.drop_columns(["first_position"])
+    kept = kept.append_column("first_file", pa.array(files, pa.string()))
+    return kept.append_column("first_row", pa.array(rows, pa.int64()))
 
 
 def check_row_accounting(quality: pa.Table, rows_read: pa.Table) -> dict[str, dict[str, int]]:

@@ -325,3 +325,52 @@ def test_sql_in_codes_is_data(tmp_path: Path, baseline: BuildResult) -> None:
     assert _added(result, baseline, "diagnoses") == {"malformed code": len(codes)}
     assert _read(result)["patients"] == _data_rows("patients")
     assert result.run.outputs["cohort"].equals(baseline.run.outputs["cohort"])
+
+
+# 11. A malformed date is counted, and the quality log names the first row it set aside.
+
+
+def _quality_rows(result: BuildResult, table: str) -> dict[str, tuple[str, str]]:
+    with (result.out / "quality.csv").open(encoding="utf-8") as handle:
+        rows = [r for r in csv.DictReader(handle) if r["source_table"] == table]
+    return {r["reason"]: (r["first_file"], r["first_row"]) for r in rows}
+
+
+def test_a_malformed_date_in_row_1234_is_named(tmp_path: Path, baseline: BuildResult) -> None:
+    data = _lines("diagnoses")[1:]
+    filler = [b"HM-001,2031-01-01,ICD10,I10,visit\n"] * (1233 - len(data))
+    # A quoted line break: row numbers count records, not lines.
+    filler[0] = b'HM-001,2031-01-01,ICD10,I10,"two\nlines"\n'
+    bad = b"HM-001,2016-31-01,ICD10,I10,visit\n"
+    rows = [*data, *filler, bad, b"HM-001,01/02/2016,ICD10,I10,visit\n"]
+    extract = _hostile(tmp_path, "diagnoses", b"".join([_lines("diagnoses")[0], *rows]))
+    result = _build(extract)
+    assert _read(result)["diagnoses"] == len(rows)
+    assert _added(result, baseline, "diagnoses")["unparseable date"] == 2
+    located = _quality_rows(result, "diagnoses")
+    assert located["unparseable date"] == ("diagnoses.csv", "1234")
+    assert located["used"] == ("", "")
+    assert result.run.outputs["cohort"].equals(baseline.run.outputs["cohort"])
+
+
+def test_rows_are_named_per_file_of_a_mapped_glob(tmp_path: Path) -> None:
+    header, *data = _lines("diagnoses")
+    extract = _hostile(tmp_path, "diagnoses", b"".join([header, *data]), name="unused.txt")
+    (extract / "unused.txt").unlink()
+    parts = extract / "diagnoses"
+    parts.mkdir()
+    (parts / "part-1.csv").write_bytes(b"".join([header, *data]))
+    (parts / "part-2.csv").write_bytes(header + b"HM-001,2016-02-01,ICD10,I10,visit\n" * 2
+                                       + b"HM-001,not a date,ICD10,I10,visit\n")  # fmt: skip
+    lines = ["mapping: two_parts", "tables:"]
+    for table in ("patients", "encounters", "diagnoses", "prescriptions", "measurements"):
+        file = "diagnoses/part-*.csv" if table == "diagnoses" else f"{table}.csv"
+        same = ", ".join(f"{c}: {c}" for c in _lines(table)[0].decode().strip().split(","))
+        lines += [f"  {table}:", f"    file: {file}", f"    columns: {{{same}}}"]
+    mapping = extract / "mapping.yaml"
+    mapping.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    result = _build(mapping)
+    assert _read(result)["diagnoses"] == len(data) + 3
+    located = _quality_rows(result, "diagnoses")
+    assert located["unparseable date"] == ("diagnoses/part-2.csv", "3")
+    assert located["exact duplicate"] == ("", "")

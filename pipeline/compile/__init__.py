@@ -1,11 +1,21 @@
 """Compile a study into a plan of named SQL stages (sqlglot trees), without running anything."""
 
 from pipeline.compile._compiler import PASSES, compile_study
-from pipeline.compile._plan import SOURCE_DIALECT, ColumnDoc, Plan, SourceTable, Stage
+from pipeline.compile._plan import (
+    POSITION_BASE,
+    SOURCE_DIALECT,
+    SOURCE_POSITION,
+    ColumnDoc,
+    Plan,
+    SourceTable,
+    Stage,
+)
 
 __all__ = [
     "PASSES",
+    "POSITION_BASE",
     "SOURCE_DIALECT",
+    "SOURCE_POSITION",
     "ColumnDoc",
     "Plan",
     "SourceTable",

@@ -30,7 +30,8 @@ WITH read AS (
     NULLIF(TRIM(CAST(value AS VARCHAR)), '') AS value_given,
     NULLIF(TRIM(CAST(value_text AS VARCHAR)), '') AS text_given,
     NULLIF(TRIM(CAST(unit AS VARCHAR)), '') AS unit_given,
-    copies
+    copies,
+    source_position
   FROM :distinct_rows
 ), split AS (
   SELECT
@@ -60,7 +61,8 @@ WITH read AS (
     value_given,
     text_given,
     unit_given,
-    copies
+    copies,
+    source_position
   FROM split
 )
 SELECT
@@ -73,6 +75,7 @@ SELECT
   r.text_given AS raw_value_text,
   r.unit_given AS raw_unit,
   r.copies,
+  r.source_position,
   u.factor * r.reading / u.divisor + u.offset_value AS value,
   CASE
     WHEN p.patient_id IS NULL THEN 'orphan patient'

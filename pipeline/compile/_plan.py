@@ -15,6 +15,14 @@ from sqlglot import exp
 SOURCE_DIALECT = "duckdb"
 
 
+# Every source relation also carries ``source_position``: where a CSV row sits in its table's
+# files, as file index * POSITION_BASE + row number (1 = the first record after the header).
+# Parquet and FHIR rows have none (NULL). The quality log names the first row set aside per
+# reason with it.
+SOURCE_POSITION = "source_position"
+POSITION_BASE = 10**12
+
+
 @dataclass(frozen=True)
 class SourceTable:
     """An extract table the plan reads, with the columns it needs.

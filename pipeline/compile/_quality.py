@@ -3,7 +3,8 @@
 Each table is grouped on all its columns once, so exact duplicates are found (the first copy is
 judged, the others are counted as duplicates); each distinct row then gets the first reason that
 applies, in the order the reasons are listed below, or ``used``. A separate count of rows read
-lets the build check that used + set aside = read for every table.
+lets the build check that used + set aside = read for every table. Each reason also keeps the
+position of the first row it set aside (CSV only; see SOURCE_POSITION), so a user can find it.
 """
 
 from __future__ import annotations
@@ -32,23 +33,32 @@ SELECT
     WHEN p.death_date IS NOT NULL AND r.row_date > p.death_date THEN 'after death'
     ELSE 'used'
   END AS reason,
-  r.copies
+  r.copies,
+  r.source_position
 FROM :rows
 LEFT JOIN patient_base AS p ON p.patient_id = r.patient_id
 """
 
 _MEASUREMENTS = """
-SELECT COALESCE(problem, 'used') AS reason, copies
+SELECT COALESCE(problem, 'used') AS reason, copies, source_position
 FROM measurement_rows
 """
 
 _PATIENTS = """
-SELECT CASE WHEN patient_id IS NULL THEN 'missing patient_id' ELSE 'used' END AS reason, copies
+SELECT
+  CASE WHEN patient_id IS NULL THEN 'missing patient_id' ELSE 'used' END AS reason,
+  copies,
+  source_position
 FROM :rows
 """
 
 _SUMMARY = """
-SELECT reason, :table_name AS source_table, SUM(1) AS distinct_rows, SUM(copies - 1) AS duplicates
+SELECT
+  reason,
+  :table_name AS source_table,
+  SUM(1) AS distinct_rows,
+  SUM(copies - 1) AS duplicates,
+  MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
 FROM :classified
 GROUP BY reason
 """
@@ -58,11 +68,14 @@ SELECT
   source_table,
   CASE WHEN reason = 'used' THEN 'used' ELSE 'set aside' END AS outcome,
   CASE WHEN reason = 'used' THEN :used ELSE reason END AS reason,
-  CAST(SUM(n) AS BIGINT) AS n_rows
+  CAST(SUM(n) AS BIGINT) AS n_rows,
+  MIN(first_position) AS first_position
 FROM (
-  SELECT source_table, reason, distinct_rows AS n FROM summary
+  SELECT source_table, reason, distinct_rows AS n, first_position FROM summary
   UNION ALL
-  SELECT source_table, 'exact duplicate' AS reason, duplicates AS n FROM summary
+  SELECT source_table, 'exact duplicate' AS reason, duplicates AS n,
+    CAST(NULL AS BIGINT) AS first_position
+  FROM summary
   WHERE duplicates > 0
 ) AS counted
 GROUP BY source_table, reason

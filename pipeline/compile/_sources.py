@@ -10,7 +10,7 @@ from sqlglot import exp
 
 from pipeline.codes import normalised_code_sql
 from pipeline.compile._context import CompileContext
-from pipeline.compile._plan import SourceTable, Stage
+from pipeline.compile._plan import SOURCE_POSITION, SourceTable, Stage
 from pipeline.compile._sql import days_between, is_in, query, value
 from pipeline.config import Study
 
@@ -41,14 +41,17 @@ def grouped_rows(
 ) -> exp.Query:
     """Distinct rows of a source table with how many copies of each the extract holds.
 
-    Without the duplicate check every row stands alone (``copies`` is 1): no grouping.
+    A row's position is its first copy's. Without the duplicate check every row stands alone
+    (``copies`` is 1): no grouping.
     """
     rows = exp.select(*table.columns).from_(table.relation)
     if where is not None:
         rows = rows.where(where)
     if not check_duplicates:
-        return rows.select(exp.Literal.number(1).as_("copies"))
-    return rows.select(exp.func("COUNT", exp.Star()).as_("copies")).group_by(*table.columns)
+        return rows.select(exp.column(SOURCE_POSITION), exp.Literal.number(1).as_("copies"))
+    first = exp.func("MIN", exp.column(SOURCE_POSITION)).as_(SOURCE_POSITION)
+    copies = exp.func("COUNT", exp.Star()).as_("copies")
+    return rows.select(first, copies).group_by(*table.columns)
 
 
 def source_tables(ctx: CompileContext) -> tuple[SourceTable, ...]:

@@ -18,7 +18,7 @@ import duckdb
 import pyarrow as pa
 from sqlglot import exp
 
-from pipeline.compile import Plan, SourceTable, Stage
+from pipeline.compile import POSITION_BASE, SOURCE_POSITION, Plan, SourceTable, Stage
 from pipeline.engine._fhir import fhir_source
 from pipeline.engine._mapped import source_column
 from pipeline.errors import EngineError, ExtractError
@@ -80,7 +80,30 @@ def _csv_options(table: ExtractTable) -> dict[str, exp.Expression]:
     }
 
 
-def _reader(table: ExtractTable) -> exp.Expression:
+def _rows(table: ExtractTable) -> exp.Expression:
+    """The rows of one extract table, each CSV row with its position (see SOURCE_POSITION).
+
+    Each CSV file is read on its own and numbered by ``ROW_NUMBER() OVER ()``, which DuckDB
+    runs as a streaming window over the reader's output in file order.
+    """
+    no_position = exp.cast(exp.null(), "BIGINT").as_(SOURCE_POSITION)
+    if table.file_format == "fhir":
+        return exp.select("*", no_position).from_(fhir_source(table).subquery("fhir")).subquery("r")
+    if table.file_format == "parquet":
+        return exp.select("*", no_position).from_(exp.Table(this=_reader(table))).subquery("r")
+    parts = []
+    for index, file in enumerate(table.files):
+        number = exp.Window(this=exp.func("ROW_NUMBER"))
+        position = exp.Add(this=exp.Literal.number(index * POSITION_BASE), expression=number)
+        reader = exp.Table(this=_reader(table, (file,)))
+        parts.append(exp.select("*", position.as_(SOURCE_POSITION)).from_(reader))
+    union = parts[0]
+    for part in parts[1:]:
+        union = union.union(part, distinct=False)
+    return union.subquery("r")
+
+
+def _reader(table: ExtractTable, files: tuple[Path, ...] | None = None) -> exp.Expression:
     """The table function reading one extract table's files, every CSV value as text.
 
     CSV files are read as RFC 4180 says and nothing is guessed: comma-separated, UTF-8 (a
@@ -100,12 +123,12 @@ def _reader(table: ExtractTable) -> exp.Expression:
     Delimiters other than the comma, other encodings, empty files and files that are not what
     their name says are refused earlier, when discovery reads the header.
     """
-    files = exp.Array(expressions=[exp.Literal.string(str(f)) for f in table.files])
+    paths = exp.Array(expressions=[exp.Literal.string(str(f)) for f in files or table.files])
     if table.file_format == "parquet":
-        return exp.func("read_parquet", files)
+        return exp.func("read_parquet", paths)
     return exp.func(
         "read_csv",
-        files,
+        paths,
         *(exp.PropertyEQ(this=exp.var(k), expression=v) for k, v in _csv_options(table).items()),
     )
 
@@ -232,11 +255,8 @@ class DuckDBEngine:
                     columns.append(exp.TryCast(this=column, to=id_type.copy()).as_(name))
                 else:
                     columns.append(source_column(table, name).as_(name))
-            if table.file_format == "fhir":
-                rows: exp.Expression = fhir_source(table).subquery("fhir")
-            else:
-                rows = exp.Table(this=_reader(table))
-            view = exp.select(*columns).from_(rows)
+            rows = _rows(table)
+            view = exp.select(*columns, exp.column(SOURCE_POSITION)).from_(rows)
             if patients is not None:
                 # Restrict every table to some patients (a trace); ids compared as typed values.
                 wanted = [

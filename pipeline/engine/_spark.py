@@ -17,7 +17,7 @@ from typing import TYPE_CHECKING, Any
 import pyarrow as pa
 from sqlglot import exp
 
-from pipeline.compile import Plan, SourceTable, Stage
+from pipeline.compile import POSITION_BASE, SOURCE_POSITION, Plan, SourceTable, Stage
 from pipeline.engine._duckdb import _INTEGER_ID, RunResult, StageCallback, StageReport
 from pipeline.engine._mapped import source_column
 from pipeline.engine._spark_sql import spark_plan, spark_query, try_cast
@@ -224,19 +224,40 @@ class SparkEngine:
         quoted with ``"`` (``""`` is a quote, line breaks allowed), UTF-8, and FAILFAST so a
         row with too few or too many fields fails the read instead of being padded or cut.
         Empty fields are NULL, as on DuckDB.
+
+        Each row gets its position as on DuckDB (see SOURCE_POSITION): every CSV file is read
+        on its own (``multiLine`` keeps a file in one partition, in file order) and numbered in
+        the order of ``monotonically_increasing_id``.
         """
+        from pyspark.sql import Window
+        from pyspark.sql import functions as F
+
+        if table.file_format == "parquet":
+            frame = spark.read.parquet(*(str(f) for f in table.files))
+            return frame.withColumn(SOURCE_POSITION, F.lit(None).cast("bigint"))
+        parts = []
+        for index, file in enumerate(table.files):
+            order = Window.orderBy(F.monotonically_increasing_id())
+            number = F.row_number().over(order) + F.lit(index * POSITION_BASE)
+            parts.append(
+                self._read_csv(spark, table, str(file)).withColumn(SOURCE_POSITION, number)
+            )
+        union = parts[0]
+        for part in parts[1:]:
+            union = union.unionByName(part)
+        return union
+
+    @staticmethod
+    def _read_csv(spark: SparkSession, table: ExtractTable, path: str) -> DataFrame:
         from pyspark.sql.types import StringType, StructField, StructType
 
-        paths = [str(f) for f in table.files]
-        if table.file_format == "parquet":
-            return spark.read.parquet(*paths)
         names = [
             name if name and name not in table.columns[:i] else f"column{i + 1}"
             for i, name in enumerate(table.columns)
         ]
         schema = StructType([StructField(n, StringType(), nullable=True) for n in names])
         return spark.read.csv(
-            paths,
+            path,
             schema=schema,
             header=True,
             enforceSchema=True,
@@ -292,7 +313,7 @@ class SparkEngine:
                     columns.append(try_cast(column, id_type).as_(name))
                 else:
                     columns.append(source_column(table, name).as_(name))
-            view = exp.select(*columns).from_(raw)
+            view = exp.select(*columns, exp.column(SOURCE_POSITION)).from_(raw)
             if patients is not None:
                 wanted = [try_cast(exp.Literal.string(p), id_type) for p in patients]
                 typed = try_cast(exp.column("patient_id"), id_type)

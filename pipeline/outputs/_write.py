@@ -54,7 +54,7 @@ def write_parquet(table: pa.Table, path: Path) -> None:
     )
 
 
-QUALITY_COLUMNS = ("source_table", "outcome", "reason", "n_rows")
+QUALITY_COLUMNS = ("source_table", "outcome", "reason", "n_rows", "first_file", "first_row")
 
 
 def write_csv(table: pa.Table, columns: tuple[str, ...], path: Path) -> None:

@@ -124,7 +124,8 @@ WITH read AS (
     NULLIF(TRIM(CAST(value AS TEXT)), '') AS value_given,
     NULLIF(TRIM(CAST(value_text AS TEXT)), '') AS text_given,
     NULLIF(TRIM(CAST(unit AS TEXT)), '') AS unit_given,
-    copies
+    copies,
+    source_position
   FROM (
     SELECT
       patient_id,
@@ -133,6 +134,7 @@ WITH read AS (
       unit,
       value,
       value_text,
+      MIN(source_position) AS source_position,
       COUNT(*) AS copies
     FROM src_measurements
     GROUP BY
@@ -184,7 +186,8 @@ WITH read AS (
     value_given,
     text_given,
     unit_given,
-    copies
+    copies,
+    source_position
   FROM split
 )
 SELECT
@@ -197,6 +200,7 @@ SELECT
   r.text_given AS raw_value_text,
   r.unit_given AS raw_unit,
   r.copies,
+  r.source_position,
   u.factor * r.reading / u.divisor + u.offset_value AS value,
   CASE
     WHEN p.patient_id IS NULL
@@ -319,7 +323,8 @@ FROM (
       NULLIF(TRIM(CAST(value AS TEXT)), '') AS value_given,
       NULLIF(TRIM(CAST(value_text AS TEXT)), '') AS text_given,
       NULLIF(TRIM(CAST(unit AS TEXT)), '') AS unit_given,
-      copies
+      copies,
+      source_position
     FROM (
       SELECT
         patient_id,
@@ -328,6 +333,7 @@ FROM (
         unit,
         value,
         value_text,
+        MIN(source_position) AS source_position,
         COUNT(*) AS copies
       FROM src_measurements
       WHERE
@@ -381,7 +387,8 @@ FROM (
       value_given,
       text_given,
       unit_given,
-      copies
+      copies,
+      source_position
     FROM split
   )
   SELECT
@@ -394,6 +401,7 @@ FROM (
     r.text_given AS raw_value_text,
     r.unit_given AS raw_unit,
     r.copies,
+    r.source_position,
     u.factor * r.reading / u.divisor + u.offset_value AS value,
     CASE
       WHEN p.patient_id IS NULL
@@ -2126,11 +2134,13 @@ WITH summary AS (
     reason,
     'patients' AS source_table,
     SUM(1) AS distinct_rows,
-    SUM(copies - 1) AS duplicates
+    SUM(copies - 1) AS duplicates,
+    MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       CASE WHEN patient_id IS NULL THEN 'missing patient_id' ELSE 'used' END AS reason,
-      copies
+      copies,
+      source_position
     FROM (
       SELECT
         patient_id,
@@ -2141,6 +2151,7 @@ WITH summary AS (
         practice_id,
         registration_date,
         deregistration_date,
+        MIN(source_position) AS source_position,
         COUNT(*) AS copies
       FROM src_patients
       GROUP BY
@@ -2161,7 +2172,8 @@ WITH summary AS (
     reason,
     'encounters' AS source_table,
     SUM(1) AS distinct_rows,
-    SUM(copies - 1) AS duplicates
+    SUM(copies - 1) AS duplicates,
+    MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       CASE
@@ -2177,7 +2189,8 @@ WITH summary AS (
         THEN 'after death'
         ELSE 'used'
       END AS reason,
-      r.copies
+      r.copies,
+      r.source_position
     FROM (
       SELECT
         *,
@@ -2187,6 +2200,7 @@ WITH summary AS (
           patient_id,
           encounter_date,
           encounter_type,
+          MIN(source_position) AS source_position,
           COUNT(*) AS copies
         FROM src_encounters
         GROUP BY
@@ -2205,7 +2219,8 @@ WITH summary AS (
     reason,
     'diagnoses' AS source_table,
     SUM(1) AS distinct_rows,
-    SUM(copies - 1) AS duplicates
+    SUM(copies - 1) AS duplicates,
+    MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       CASE
@@ -2251,7 +2266,8 @@ WITH summary AS (
         THEN 'after death'
         ELSE 'used'
       END AS reason,
-      r.copies
+      r.copies,
+      r.source_position
     FROM (
       SELECT
         *,
@@ -2263,6 +2279,7 @@ WITH summary AS (
           code_system,
           code,
           source,
+          MIN(source_position) AS source_position,
           COUNT(*) AS copies
         FROM src_diagnoses
         GROUP BY
@@ -2283,7 +2300,8 @@ WITH summary AS (
     reason,
     'prescriptions' AS source_table,
     SUM(1) AS distinct_rows,
-    SUM(copies - 1) AS duplicates
+    SUM(copies - 1) AS duplicates,
+    MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       CASE
@@ -2311,7 +2329,8 @@ WITH summary AS (
         THEN 'after death'
         ELSE 'used'
       END AS reason,
-      r.copies
+      r.copies,
+      r.source_position
     FROM (
       SELECT
         *,
@@ -2322,6 +2341,7 @@ WITH summary AS (
           start_date,
           atc,
           stop_date,
+          MIN(source_position) AS source_position,
           COUNT(*) AS copies
         FROM src_prescriptions
         GROUP BY
@@ -2341,11 +2361,13 @@ WITH summary AS (
     reason,
     'measurements' AS source_table,
     SUM(1) AS distinct_rows,
-    SUM(copies - 1) AS duplicates
+    SUM(copies - 1) AS duplicates,
+    MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       COALESCE(problem, 'used') AS reason,
-      copies
+      copies,
+      source_position
     FROM measurement_rows
   ) AS c
   GROUP BY
@@ -2355,18 +2377,21 @@ SELECT
   source_table,
   CASE WHEN reason = 'used' THEN 'used' ELSE 'set aside' END AS outcome,
   CASE WHEN reason = 'used' THEN 'used' ELSE reason END AS reason,
-  CAST(SUM(n) AS BIGINT) AS n_rows
+  CAST(SUM(n) AS BIGINT) AS n_rows,
+  MIN(first_position) AS first_position
 FROM (
   SELECT
     source_table,
     reason,
-    distinct_rows AS n
+    distinct_rows AS n,
+    first_position
   FROM summary
   UNION ALL
   SELECT
     source_table,
     'exact duplicate' AS reason,
-    duplicates AS n
+    duplicates AS n,
+    CAST(NULL AS BIGINT) AS first_position
   FROM summary
   WHERE
     duplicates > 0

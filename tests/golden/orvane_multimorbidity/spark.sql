@@ -224,7 +224,8 @@ WITH read AS (
     NULLIF(TRIM(CAST(value AS STRING)), '') AS value_given,
     NULLIF(TRIM(CAST(value_text AS STRING)), '') AS text_given,
     NULLIF(TRIM(CAST(unit AS STRING)), '') AS unit_given,
-    copies
+    copies,
+    source_position
   FROM (
     SELECT
       patient_id,
@@ -233,6 +234,7 @@ WITH read AS (
       unit,
       value,
       value_text,
+      MIN(source_position) AS source_position,
       COUNT(*) AS copies
     FROM src_measurements
     GROUP BY
@@ -290,7 +292,8 @@ WITH read AS (
     value_given,
     text_given,
     unit_given,
-    copies
+    copies,
+    source_position
   FROM split
 )
 SELECT
@@ -303,6 +306,7 @@ SELECT
   r.text_given AS raw_value_text,
   r.unit_given AS raw_unit,
   r.copies,
+  r.source_position,
   CASE
     WHEN u.divisor = 0
     THEN u.factor * r.reading * CAST('Infinity' AS DOUBLE)
@@ -431,7 +435,8 @@ WITH read AS (
     NULLIF(TRIM(CAST(value AS STRING)), '') AS value_given,
     NULLIF(TRIM(CAST(value_text AS STRING)), '') AS text_given,
     NULLIF(TRIM(CAST(unit AS STRING)), '') AS unit_given,
-    copies
+    copies,
+    source_position
   FROM (
     SELECT
       patient_id,
@@ -440,6 +445,7 @@ WITH read AS (
       unit,
       value,
       value_text,
+      MIN(source_position) AS source_position,
       COUNT(*) AS copies
     FROM src_measurements
     WHERE
@@ -499,7 +505,8 @@ WITH read AS (
     value_given,
     text_given,
     unit_given,
-    copies
+    copies,
+    source_position
   FROM split
 )
 SELECT
@@ -521,6 +528,7 @@ FROM (
     r.text_given AS raw_value_text,
     r.unit_given AS raw_unit,
     r.copies,
+    r.source_position,
     CASE
       WHEN u.divisor = 0
       THEN u.factor * r.reading * CAST('Infinity' AS DOUBLE)
@@ -2329,11 +2337,13 @@ WITH summary AS (
     reason,
     'patients' AS source_table,
     SUM(1) AS distinct_rows,
-    SUM(copies - 1) AS duplicates
+    SUM(copies - 1) AS duplicates,
+    MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       CASE WHEN patient_id IS NULL THEN 'missing patient_id' ELSE 'used' END AS reason,
-      copies
+      copies,
+      source_position
     FROM (
       SELECT
         patient_id,
@@ -2344,6 +2354,7 @@ WITH summary AS (
         practice_id,
         registration_date,
         deregistration_date,
+        MIN(source_position) AS source_position,
         COUNT(*) AS copies
       FROM src_patients
       GROUP BY
@@ -2364,7 +2375,8 @@ WITH summary AS (
     reason,
     'encounters' AS source_table,
     SUM(1) AS distinct_rows,
-    SUM(copies - 1) AS duplicates
+    SUM(copies - 1) AS duplicates,
+    MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       CASE
@@ -2380,7 +2392,8 @@ WITH summary AS (
         THEN 'after death'
         ELSE 'used'
       END AS reason,
-      r.copies
+      r.copies,
+      r.source_position
     FROM (
       SELECT
         *,
@@ -2397,6 +2410,7 @@ WITH summary AS (
           patient_id,
           encounter_date,
           encounter_type,
+          MIN(source_position) AS source_position,
           COUNT(*) AS copies
         FROM src_encounters
         GROUP BY
@@ -2415,7 +2429,8 @@ WITH summary AS (
     reason,
     'diagnoses' AS source_table,
     SUM(1) AS distinct_rows,
-    SUM(copies - 1) AS duplicates
+    SUM(copies - 1) AS duplicates,
+    MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       CASE
@@ -2449,7 +2464,8 @@ WITH summary AS (
         THEN 'after death'
         ELSE 'used'
       END AS reason,
-      r.copies
+      r.copies,
+      r.source_position
     FROM (
       SELECT
         *,
@@ -2468,6 +2484,7 @@ WITH summary AS (
           code_system,
           code,
           source,
+          MIN(source_position) AS source_position,
           COUNT(*) AS copies
         FROM src_diagnoses
         GROUP BY
@@ -2488,7 +2505,8 @@ WITH summary AS (
     reason,
     'prescriptions' AS source_table,
     SUM(1) AS distinct_rows,
-    SUM(copies - 1) AS duplicates
+    SUM(copies - 1) AS duplicates,
+    MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       CASE
@@ -2510,7 +2528,8 @@ WITH summary AS (
         THEN 'after death'
         ELSE 'used'
       END AS reason,
-      r.copies
+      r.copies,
+      r.source_position
     FROM (
       SELECT
         *,
@@ -2528,6 +2547,7 @@ WITH summary AS (
           start_date,
           atc,
           stop_date,
+          MIN(source_position) AS source_position,
           COUNT(*) AS copies
         FROM src_prescriptions
         GROUP BY
@@ -2547,11 +2567,13 @@ WITH summary AS (
     reason,
     'measurements' AS source_table,
     SUM(1) AS distinct_rows,
-    SUM(copies - 1) AS duplicates
+    SUM(copies - 1) AS duplicates,
+    MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       COALESCE(problem, 'used') AS reason,
-      copies
+      copies,
+      source_position
     FROM measurement_rows
   ) AS c
   GROUP BY
@@ -2561,18 +2583,21 @@ SELECT
   source_table,
   CASE WHEN reason = 'used' THEN 'used' ELSE 'set aside' END AS outcome,
   CASE WHEN reason = 'used' THEN 'used' ELSE reason END AS reason,
-  CAST(SUM(n) AS BIGINT) AS n_rows
+  CAST(SUM(n) AS BIGINT) AS n_rows,
+  MIN(first_position) AS first_position
 FROM (
   SELECT
     source_table,
     reason,
-    distinct_rows AS n
+    distinct_rows AS n,
+    first_position
   FROM summary
   UNION ALL
   SELECT
     source_table,
     'exact duplicate' AS reason,
-    duplicates AS n
+    duplicates AS n,
+    CAST(NULL AS BIGINT) AS first_position
   FROM summary
   WHERE
     duplicates > 0
