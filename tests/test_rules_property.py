@@ -9,6 +9,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from pipeline.compile._context import evidence_number
 from pipeline.compile._rules import rule_query
 from pipeline.config import Condition
 from tests.oracle import rule_onset, rule_onset_by_sets
@@ -40,7 +41,7 @@ def con():
     connection = duckdb.connect()
     connection.execute(
         "CREATE TABLE evidence_events("
-        "patient_id VARCHAR, evidence VARCHAR, event_date DATE, day INTEGER, n_rows INTEGER)"
+        "patient_id VARCHAR, evidence INTEGER, event_date DATE, day INTEGER, n_rows INTEGER)"
     )
     yield connection
     connection.close()
@@ -56,7 +57,7 @@ def sql_onsets(con: duckdb.DuckDBPyConnection, rule: dict, rows: list[Row]) -> d
         params = [
             item
             for patient, key, day, n_rows in rows
-            for item in (patient, key, day, (day - EPOCH).days, n_rows)
+            for item in (patient, evidence_number(key), day, (day - EPOCH).days, n_rows)
         ]
         con.execute(f"INSERT INTO evidence_events VALUES {values}", params)
     result = con.execute(sql).fetchall()

@@ -15,6 +15,7 @@ from pipeline.compile._context import (
     CompileContext,
     charlson_key,
     covariate_key,
+    evidence_id,
     evidence_key,
     step_key,
 )
@@ -36,7 +37,9 @@ def in_window(window: Window, offset: exp.Expression) -> exp.Expression:
 
 
 def _count(key: str, window: Window) -> exp.Expression:
-    hit = exp.and_(exp.column("evidence", "e").eq(key), in_window(window, exp.column(OFFSET)))
+    hit = exp.and_(
+        exp.column("evidence", "e").eq(evidence_id(key)), in_window(window, exp.column(OFFSET))
+    )
     return exp.func(
         "COALESCE",
         exp.Sum(this=exp.Case().when(hit, exp.column("n_rows", "e")).else_(exp.Literal.number(0))),
@@ -76,7 +79,10 @@ def window_columns(ctx: CompileContext) -> list[tuple[str, exp.Expression, tuple
         )
         first = exp.Min(
             this=exp.Case().when(
-                exp.and_(is_in(exp.column("evidence", "e"), keys), exp.column(OFFSET) <= 0),
+                exp.and_(
+                    exp.column("evidence", "e").isin(*(evidence_id(k) for k in keys)),
+                    exp.column(OFFSET) <= 0,
+                ),
                 exp.column("event_date", "e"),
             )
         )
@@ -114,7 +120,7 @@ def _evidence_counts(ctx: CompileContext) -> exp.Query | None:
     events = (
         exp.select("patient_id", "evidence", "event_date", "n_rows")
         .from_("evidence_events")
-        .where(is_in(exp.column("evidence"), keys))
+        .where(exp.column("evidence").isin(*(evidence_id(k) for k in keys)))
     )
     joined = (
         exp.select(

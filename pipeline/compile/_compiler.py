@@ -5,7 +5,7 @@ from __future__ import annotations
 from collections.abc import Callable
 
 from pipeline.compile._cohort import cohort_stages
-from pipeline.compile._context import CompileContext
+from pipeline.compile._context import CompileContext, evidence_key, evidence_number
 from pipeline.compile._dictionary import dictionary
 from pipeline.compile._evidence import evidence_stages
 from pipeline.compile._measurements import measurement_stages
@@ -14,6 +14,7 @@ from pipeline.compile._quality import quality_stages
 from pipeline.compile._rules import rule_stages
 from pipeline.compile._sources import source_stages, source_tables
 from pipeline.config import LoadedStudy
+from pipeline.errors import AscertainError
 
 Pass = Callable[[CompileContext], tuple[Stage, ...]]
 
@@ -35,6 +36,7 @@ def compile_study(loaded: LoadedStudy) -> Plan:
     the same plan.
     """
     ctx = CompileContext(loaded.study, loaded.catalog)
+    _check_evidence_numbers(ctx)
     stages = tuple(stage for compile_pass in PASSES for stage in compile_pass(ctx))
     return Plan(
         study=loaded.study.study,
@@ -49,3 +51,18 @@ def compile_study(loaded: LoadedStudy) -> Plan:
         ),
         columns=dictionary(ctx),
     )
+
+
+def _check_evidence_numbers(ctx: CompileContext) -> None:
+    """Refuse a study two of whose evidence keys would share a number (never seen; checked)."""
+    keys = {key for key, _ in ctx.evidence} | {
+        evidence_key(c.condition, name) for c in ctx.conditions for name in c.evidence
+    }
+    seen: dict[int, str] = {}
+    for key in sorted(keys):
+        other = seen.setdefault(evidence_number(key), key)
+        if other != key:
+            raise AscertainError(
+                f"evidence {other!r} and {key!r} share the number {evidence_number(key)}; "
+                "rename one of them"
+            )

@@ -1,5 +1,7 @@
 """Stages that turn usable rows into evidence events: (patient, evidence, date, rows that day).
 
+``evidence`` holds each key's number (see :func:`evidence_number`), not its text.
+
 Coded rows are matched by an equality join against one small literal table of prefixes for all
 evidence of the study, so each table is scanned once however many definitions use it.
 """
@@ -11,39 +13,53 @@ import datetime as dt
 from sqlglot import exp
 
 from pipeline.codes import expand_codes
-from pipeline.compile._context import CompileContext
+from pipeline.compile._context import CompileContext, evidence_id, evidence_number
 from pipeline.compile._measurements import measure_relations
 from pipeline.compile._plan import Stage
+from pipeline.compile._sources import same_raw_code
 from pipeline.compile._sql import days_between, is_in, query, value, values_table
 from pipeline.config import Evidence, MeasurementEvidence
 from pipeline.measures import Threshold
 
-CodeRow = tuple[str, str, str, str | None, int | None, bool]
+CodeRow = tuple[str, str, int, str | None, int | None, bool]
 
-# Each row is probed once per prefix length, so the join to the prefixes is an equality join.
-# A row counts for a piece of evidence when it matches an included prefix and no excluded one.
+# Each distinct extract code is probed once per prefix length, so the join to the prefixes is
+# an equality join. A code counts for a piece of evidence when it matches an included prefix
+# (with the fewest days any of them needs; NULL: none) and no excluded one.
+_CODE_MATCHES = """
+SELECT
+  c.source_table, c.raw_system, c.raw_code, c.raw_source, c.code_system, c.code, c.source,
+  m.evidence,
+  BOOL_OR(NOT m.is_exclusion) AS included,
+  BOOL_OR(m.is_exclusion) AS excluded,
+  CASE
+    WHEN BOOL_OR(NOT m.is_exclusion AND m.min_days IS NULL) THEN NULL
+    ELSE MIN(CASE WHEN NOT m.is_exclusion THEN m.min_days END)
+  END AS min_days
+FROM extract_codes AS c
+CROSS JOIN :lengths
+JOIN :codes ON m.code_system = c.code_system
+  AND m.prefix = LEFT(c.code, l.prefix_length)
+  AND (m.source IS NULL OR m.source = c.source)
+GROUP BY
+  c.source_table, c.raw_system, c.raw_code, c.raw_source, c.code_system, c.code, c.source,
+  m.evidence
+"""
+
+# Every usable coded row with each evidence its code matches; a row an exclusion matches, or
+# whose prescription is shorter than the evidence needs, is kept as not counting (for traces).
 _CODED_MATCHES = """
 SELECT
-  e.patient_id, e.event_date, e.code_system, e.code, e.raw_code, e.source, e.duration_days,
-  c.evidence, BOOL_OR(c.is_exclusion) AS excluded
-FROM (
-  SELECT r.*, LEFT(r.code, l.prefix_length) AS probe
-  FROM coded_events AS r
-  CROSS JOIN :lengths
-) AS e
-JOIN :codes ON c.code_system = e.code_system
-  AND c.prefix = e.probe
-  AND (c.source IS NULL OR c.source = e.source)
-  AND (c.min_days IS NULL OR e.duration_days >= c.min_days)
-GROUP BY
-  e.patient_id, e.event_date, e.code_system, e.code, e.raw_code, e.source, e.duration_days,
-  c.evidence
+  e.patient_id, e.event_date, m.code_system, m.code, e.raw_code, m.source, e.duration_days,
+  m.evidence, m.excluded OR NOT m.included AS excluded
+FROM coded_events AS e
+JOIN code_matches AS m ON :same_code
+WHERE m.excluded OR m.min_days IS NULL OR e.duration_days >= m.min_days
 """
 
 _CODED_EVIDENCE = """
 SELECT patient_id, evidence, event_date, CAST(COUNT(*) AS INT) AS n_rows
-FROM coded_matches
-WHERE NOT excluded
+FROM :rows
 GROUP BY patient_id, evidence, event_date
 """
 
@@ -70,7 +86,7 @@ FROM :events
 """
 
 _NO_EVENTS = """
-SELECT patient_id, CAST(NULL AS VARCHAR) AS evidence, CAST(NULL AS DATE) AS event_date,
+SELECT patient_id, CAST(NULL AS INT) AS evidence, CAST(NULL AS DATE) AS event_date,
   1 AS n_rows
 FROM patient_base
 WHERE FALSE
@@ -108,6 +124,7 @@ def _meets(threshold: Threshold) -> exp.Expression:
 
 
 def _code_rows(key: str, ev: Evidence) -> list[CodeRow]:
+    number = evidence_number(key)
     rows: list[CodeRow] = []
     if ev.diagnosis:
         sources: tuple[str | None, ...] = ev.diagnosis.source or (None,)
@@ -119,14 +136,14 @@ def _code_rows(key: str, ev: Evidence) -> list[CodeRow]:
             ]
         for system, codes, excluded in lists:
             rows += [
-                (system, prefix, key, source, None, excluded)
+                (system, prefix, number, source, None, excluded)
                 for prefix in expand_codes(codes)
                 for source in sources
             ]
     if ev.prescription:
         rx = ev.prescription
-        rows += [("ATC", p, key, None, rx.min_days, False) for p in expand_codes(rx.atc)]
-        rows += [("ATC", p, key, None, None, True) for p in expand_codes(rx.exclude)]
+        rows += [("ATC", p, number, None, rx.min_days, False) for p in expand_codes(rx.atc)]
+        rows += [("ATC", p, number, None, None, True) for p in expand_codes(rx.exclude)]
     return rows
 
 
@@ -143,7 +160,7 @@ def _measurement_query(key: str, measurement: MeasurementEvidence, relation: str
         passes = exp.and_(*(_meets(t) for t in measurement.thresholds()))
     return query(
         _MEASUREMENT_EVIDENCE,
-        key=key,
+        key=evidence_id(key),
         relation=exp.to_table(relation),
         measure=measurement.measure,
         passes=passes,
@@ -160,25 +177,40 @@ def evidence_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         lengths = sorted({len(r[1]) for r in code_rows})
         stages.append(
             Stage(
-                "coded_matches",
+                "code_matches",
                 query(
-                    _CODED_MATCHES,
+                    _CODE_MATCHES,
                     lengths=values_table("l", ["prefix_length"], [(n,) for n in lengths]),
                     codes=values_table(
-                        "c",
+                        "m",
                         ["code_system", "prefix", "evidence", "source", "min_days", "is_exclusion"],
                         code_rows,
                     ),
                 ),
-                ("coded_events",),
-                "each distinct diagnosis or prescription row with the evidence its code matches",
-                kind="view",
+                ("extract_codes",),
+                "each distinct extract code with the evidence it matches or is excluded from",
             )
         )
         stages.append(
             Stage(
+                "coded_matches",
+                query(_CODED_MATCHES, same_code=same_raw_code("e", "m")),
+                ("code_matches", "coded_events"),
+                "each usable diagnosis or prescription row with the evidence its code matches",
+                kind="view",
+            )
+        )
+        # Exact duplicates count once, unless the study skips looking for them.
+        counted = exp.select(
+            "patient_id", "event_date", "code_system", "code", "raw_code", "source",
+            "duration_days", "evidence",
+        ).from_("coded_matches").where(exp.not_(exp.column("excluded")))  # fmt: skip
+        if ctx.study.quality.exact_duplicates == "check":
+            counted = counted.distinct()
+        stages.append(
+            Stage(
                 "coded_evidence",
-                query(_CODED_EVIDENCE),
+                query(_CODED_EVIDENCE, rows=counted.subquery("m")),
                 ("coded_matches",),
                 "matched rows counted per patient, evidence and day",
             )
@@ -196,7 +228,7 @@ def evidence_stages(ctx: CompileContext) -> tuple[Stage, ...]:
                 if ev.encounter.type
                 else exp.true()
             )
-            parts.append(query(_ENCOUNTER_EVIDENCE, key=key, types=types))
+            parts.append(query(_ENCOUNTER_EVIDENCE, key=evidence_id(key), types=types))
             depends.append("encounter_rows")
     if not parts:  # every piece of evidence refers to another condition
         parts.append(query(_NO_EVENTS))

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 from sqlglot import exp
 
-from pipeline.compile._context import INDEX_EVENT, CompileContext
+from pipeline.compile._context import INDEX_EVENT, CompileContext, evidence_id
 from pipeline.compile._plan import Stage
 from pipeline.compile._sql import query, value
 
@@ -95,7 +95,7 @@ def index_stage(ctx: CompileContext) -> Stage:
             )
         return Stage(
             "index_dates",
-            query(_FIRST_EVIDENCE, key=INDEX_EVENT, start=start, end=end),
+            query(_FIRST_EVIDENCE, key=evidence_id(INDEX_EVENT), start=start, end=end),
             ("evidence_events",),
             f"index: the first qualifying event between {start} and {end}",
         )

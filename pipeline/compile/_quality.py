@@ -11,17 +11,10 @@ from __future__ import annotations
 
 from sqlglot import exp
 
-from pipeline.codes import SHAPES, normalised_code_sql
 from pipeline.compile._context import CompileContext
 from pipeline.compile._plan import SourceTable, Stage
-from pipeline.compile._sources import grouped_rows, source_tables
+from pipeline.compile._sources import grouped_rows, raw_code_columns, same_raw_code, source_tables
 from pipeline.compile._sql import query, value
-
-# The same shapes definitions are checked against, applied to extract codes (no dots: the
-# extract codes are normalised first).
-_CODE_PATTERNS = {
-    system: pattern.pattern.replace("\\.?", "") for system, (pattern, _) in SHAPES.items()
-}
 
 _DATED = """
 SELECT
@@ -82,30 +75,6 @@ GROUP BY source_table, reason
 """
 
 
-def _code_problem(table: str) -> exp.Expression:
-    # An empty or missing code or system is malformed or unknown, never used.
-    if table == "prescriptions":
-        code = exp.func("COALESCE", normalised_code_sql(exp.column("atc", "r")), value(""))
-        bad = exp.not_(exp.func("REGEXP_MATCHES", code, value(_CODE_PATTERNS["ATC"])))
-        return exp.Case().when(bad, value("malformed code"))
-    system = exp.func(
-        "COALESCE",
-        exp.Upper(this=exp.Trim(this=exp.cast(exp.column("code_system", "r"), "VARCHAR"))),
-        value(""),
-    )
-    code = exp.func("COALESCE", normalised_code_sql(exp.column("code", "r")), value(""))
-    case = exp.Case().when(
-        exp.not_(system.copy().isin(value("ICD9"), value("ICD10"))), value("unknown code system")
-    )
-    for name in ("ICD9", "ICD10"):
-        malformed = exp.and_(
-            system.copy().eq(name),
-            exp.not_(exp.func("REGEXP_MATCHES", code.copy(), value(_CODE_PATTERNS[name]))),
-        )
-        case = case.when(malformed, value("malformed code"))
-    return case
-
-
 _DATE_COLUMNS = {
     "encounters": "encounter_date",
     "diagnoses": "event_date",
@@ -126,13 +95,21 @@ def _classified(ctx: CompileContext, table: SourceTable) -> exp.Query:
             "row_date"
         ),
     ).from_(grouped)
-    problem = _code_problem(table.name) if table.name != "encounters" else exp.null()
-    return query(
+    if table.name == "encounters":
+        return query(
+            _DATED, rows=dated.subquery("r"), problem=exp.null(), end_of_data=ctx.study.end_of_data
+        )
+    # Codes were judged once per distinct value, in extract_codes.
+    dated = dated.select(*(c.as_(n) for n, c in raw_code_columns(table.name).items()))
+    dated = dated.select(value(table.name).as_("source_table"))
+    judged = query(
         _DATED,
         rows=dated.subquery("r"),
-        problem=problem,
+        problem=exp.column("problem", "c"),
         end_of_data=ctx.study.end_of_data,
     )
+    codes = exp.to_table("extract_codes").as_("c")
+    return judged.join(codes, on=same_raw_code("r", "c"), join_type="LEFT")
 
 
 def quality_stages(ctx: CompileContext) -> tuple[Stage, ...]:
@@ -152,6 +129,8 @@ def quality_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         for t in tables
     ]
     depends = {t.relation for t in tables if t.name != "measurements"} | {"patient_base"}
+    if any(t.name in ("diagnoses", "prescriptions") for t in tables):
+        depends.add("extract_codes")
     if any(t.name == "measurements" for t in tables):
         depends.add("measurement_rows")
     return (

@@ -15,9 +15,9 @@ import datetime as dt
 
 from sqlglot import exp
 
-from pipeline.compile._context import CompileContext, evidence_key
+from pipeline.compile._context import CompileContext, evidence_id, evidence_key
 from pipeline.compile._plan import Stage
-from pipeline.compile._sql import add_days, days_between, expression, is_in, query, value
+from pipeline.compile._sql import add_days, days_between, expression, query, value
 from pipeline.config import Condition, Rule
 
 _WITHIN = "RANGE BETWEEN :within PRECEDING AND CURRENT ROW"
@@ -67,8 +67,8 @@ def _frame(rule: Rule) -> tuple[str, dict[str, int]]:
     return _WITHIN, {"within": rule.within_days}
 
 
-def _keys(condition: Condition, names: list[str] | tuple[str, ...]) -> list[str]:
-    return [evidence_key(condition.condition, n) for n in names]
+def _keys(condition: Condition, names: list[str] | tuple[str, ...]) -> list[exp.Expression]:
+    return [evidence_id(evidence_key(condition.condition, n)) for n in names]
 
 
 def rule_query(condition: Condition, rule: Rule, events: exp.Expression | None = None) -> exp.Query:
@@ -90,10 +90,10 @@ def rule_query(condition: Condition, rule: Rule, events: exp.Expression | None =
         )
         for i, key in enumerate(keys)
     ]
-    relevant = is_in(exp.column("evidence"), keys)
+    relevant = exp.column("evidence").isin(*(k.copy() for k in keys))
     if rule.absent:
         absent = exp.select("patient_id").from_(source.copy())
-        absent = absent.where(is_in(exp.column("evidence"), _keys(condition, rule.absent)))
+        absent = absent.where(exp.column("evidence").isin(*_keys(condition, rule.absent)))
         relevant = exp.and_(relevant, exp.column("patient_id").isin(query=absent).not_())
     counted = (
         exp.select("patient_id", "evidence", "event_date", *counts).from_(source).where(relevant)
@@ -116,10 +116,12 @@ def _met(rule: Rule, names: list[str], keys: list[str]) -> exp.Expression:
     if len(keys) == 1:
         # With apart 0 the frame holds the current row itself: another event is needed.
         others = 2 if rule.apart_at_least_days == 0 else 1
-        return exp.and_(exp.column("evidence").eq(keys[0]), exp.column("in_frame_0") >= others)
+        return exp.and_(
+            exp.column("evidence").eq(keys[0].copy()), exp.column("in_frame_0") >= others
+        )
     return exp.or_(
-        exp.and_(exp.column("evidence").eq(keys[0]), exp.column("in_frame_1") >= 1),
-        exp.and_(exp.column("evidence").eq(keys[1]), exp.column("in_frame_0") >= 1),
+        exp.and_(exp.column("evidence").eq(keys[0].copy()), exp.column("in_frame_1") >= 1),
+        exp.and_(exp.column("evidence").eq(keys[1].copy()), exp.column("in_frame_0") >= 1),
     )
 
 
@@ -135,7 +137,7 @@ def _events_for(condition: Condition) -> tuple[exp.Expression, tuple[str, ...]]:
     own = (
         exp.select("patient_id", "evidence", "event_date", "day", "n_rows")
         .from_("evidence_events")
-        .where(is_in(exp.column("evidence"), _keys(condition, sorted(condition.evidence))))
+        .where(exp.column("evidence").isin(*_keys(condition, sorted(condition.evidence))))
     )
     parts: list[exp.Query] = [own]
     depends = ["evidence_events"]
@@ -145,7 +147,7 @@ def _events_for(condition: Condition) -> tuple[exp.Expression, tuple[str, ...]]:
             parts.append(
                 query(
                     _REFERENCED_ONSETS,
-                    key=evidence_key(condition.condition, name),
+                    key=evidence_id(evidence_key(condition.condition, name)),
                     day=days_between(epoch, exp.column("onset_date")),
                     onsets=exp.to_table(f"onset_{ev.condition}"),
                 )

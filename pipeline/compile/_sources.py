@@ -8,7 +8,7 @@ from __future__ import annotations
 
 from sqlglot import exp
 
-from pipeline.codes import normalised_code_sql
+from pipeline.codes import SHAPES, normalised_code_sql
 from pipeline.compile._context import CompileContext
 from pipeline.compile._plan import SOURCE_POSITION, SourceTable, Stage
 from pipeline.compile._sql import days_between, is_in, query, value
@@ -115,14 +115,16 @@ FROM encounter_rows
 GROUP BY patient_id
 """
 
+# Codes are read raw: every distinct (system, code, source) of the extract is normalised and
+# judged once, in ``extract_codes``, and rows are joined to it on their raw values.
 _DIAGNOSIS_ROWS = """
 SELECT
   patient_id,
   TRY_CAST(event_date AS DATE) AS event_date,
-  UPPER(TRIM(CAST(code_system AS VARCHAR))) AS code_system,
-  :code AS code,
-  CAST(code AS VARCHAR) AS raw_code,
-  LOWER(TRIM(CAST(source AS VARCHAR))) AS source,
+  'diagnoses' AS source_table,
+  :raw_system AS raw_system,
+  :raw_code AS raw_code,
+  :raw_source AS raw_source,
   CAST(NULL AS INT) AS duration_days
 FROM src_diagnoses
 """
@@ -131,21 +133,115 @@ _PRESCRIPTION_ROWS = """
 SELECT
   patient_id,
   TRY_CAST(start_date AS DATE) AS event_date,
-  'ATC' AS code_system,
-  :code AS code,
-  CAST(atc AS VARCHAR) AS raw_code,
-  CAST(NULL AS VARCHAR) AS source,
+  'prescriptions' AS source_table,
+  :raw_system AS raw_system,
+  :raw_code AS raw_code,
+  :raw_source AS raw_source,
   CAST(:duration + 1 AS INT) AS duration_days
 FROM src_prescriptions
 """
 
 _CODED_EVENTS = """
-SELECT r.patient_id, r.event_date, r.code_system, r.code, r.raw_code, r.source, r.duration_days
+SELECT
+  r.patient_id, r.event_date, r.source_table, r.raw_system, r.raw_code, r.raw_source,
+  r.duration_days
 FROM :rows AS r
 JOIN patient_base AS p ON p.patient_id = r.patient_id
 WHERE r.event_date <= :end_of_data
   AND (p.death_date IS NULL OR r.event_date <= p.death_date)
 """
+
+_EXTRACT_CODES = """
+SELECT
+  source_table, raw_system, raw_code, raw_source, code_system, code, source,
+  :problem AS problem
+FROM (
+  SELECT
+    source_table, raw_system, raw_code, raw_source,
+    CASE
+      WHEN source_table = 'prescriptions' THEN 'ATC' ELSE UPPER(TRIM(raw_system))
+    END AS code_system,
+    :code AS code,
+    LOWER(TRIM(raw_source)) AS source
+  FROM :found
+) AS c
+"""
+
+# The same shapes definitions are checked against, applied to extract codes (no dots: the
+# extract codes are normalised first).
+_CODE_PATTERNS = {
+    system: pattern.pattern.replace("\\.?", "") for system, (pattern, _) in SHAPES.items()
+}
+
+
+def raw_code_columns(table: str) -> dict[str, exp.Expression]:
+    """A coded table's raw system, code and source as text, the keys of ``extract_codes``."""
+    text = {
+        name: exp.cast(exp.column(name), "VARCHAR")
+        for name in ("code_system", "code", "source", "atc")
+    }
+    none = exp.cast(exp.null(), "VARCHAR")
+    if table == "diagnoses":
+        return {
+            "raw_system": text["code_system"],
+            "raw_code": text["code"],
+            "raw_source": text["source"],
+        }
+    return {"raw_system": none, "raw_code": text["atc"], "raw_source": none.copy()}
+
+
+def same_raw_code(row: str, code: str) -> exp.Expression:
+    """A coded row joined to its entry of ``extract_codes`` or ``code_matches``.
+
+    ``row`` and ``code`` are the aliases; both carry source_table and the raw_* columns, and
+    NULLs compare equal.
+    """
+    same = [
+        exp.NullSafeEQ(this=exp.column(c, row), expression=exp.column(c, code))
+        for c in ("raw_system", "raw_code", "raw_source")
+    ]
+    return exp.and_(exp.column("source_table", row).eq(exp.column("source_table", code)), *same)
+
+
+def _code_problem() -> exp.Expression:
+    # An empty or missing code or system is malformed or unknown, never used.
+    system = exp.func("COALESCE", exp.column("code_system"), value(""))
+    code = exp.func("COALESCE", exp.column("code"), value(""))
+
+    def malformed(name: str) -> exp.Expression:
+        return exp.not_(exp.func("REGEXP_MATCHES", code.copy(), value(_CODE_PATTERNS[name])))
+
+    atc = exp.Case().when(malformed("ATC"), value("malformed code"))
+    return (
+        exp.Case()
+        .when(exp.column("source_table").eq(value("prescriptions")), atc)
+        .when(
+            exp.not_(system.copy().isin(value("ICD9"), value("ICD10"))),
+            value("unknown code system"),
+        )
+        .when(exp.and_(system.copy().eq("ICD9"), malformed("ICD9")), value("malformed code"))
+        .when(exp.and_(system.copy().eq("ICD10"), malformed("ICD10")), value("malformed code"))
+    )
+
+
+def _extract_codes(ctx: CompileContext) -> exp.Query:
+    found = []
+    for table in (t.name for t in source_tables(ctx) if t.name in _CODED_TABLES):
+        columns = [c.as_(name) for name, c in raw_code_columns(table).items()]
+        relation = f"src_{table}"
+        found.append(
+            exp.select(value(table).as_("source_table"), *columns).from_(relation).distinct()
+        )
+    union = found[0] if len(found) == 1 else found[0].union(found[1], distinct=False)
+    return query(
+        _EXTRACT_CODES,
+        found=union.subquery("found"),
+        code=normalised_code_sql(exp.column("raw_code")),
+        problem=_code_problem(),
+    )
+
+
+_CODED_TABLES = ("diagnoses", "prescriptions")
 
 
 def source_stages(ctx: CompileContext) -> tuple[Stage, ...]:
@@ -180,21 +276,26 @@ def source_stages(ctx: CompileContext) -> tuple[Stage, ...]:
             "first and last usable encounter per patient (and the first in the index window)",
         ),
     ]
+    if any(t.name in _CODED_TABLES for t in source_tables(ctx)):
+        stages.append(
+            Stage(
+                "extract_codes",
+                _extract_codes(ctx),
+                _coded_sources(ctx),
+                "each distinct code of the extract, normalised, with what is wrong with it",
+            )
+        )
     if ctx.uses_coded_events:
         parts = []
         if ctx.uses("diagnosis"):
-            parts.append(query(_DIAGNOSIS_ROWS, code=normalised_code_sql(exp.column("code"))))
+            parts.append(query(_DIAGNOSIS_ROWS, **raw_code_columns("diagnoses")))
         if ctx.uses("prescription"):
             duration = days_between(
                 exp.TryCast(this=exp.column("start_date"), to=exp.DataType.build("DATE")),
                 exp.TryCast(this=exp.column("stop_date"), to=exp.DataType.build("DATE")),
             )
             parts.append(
-                query(
-                    _PRESCRIPTION_ROWS,
-                    code=normalised_code_sql(exp.column("atc")),
-                    duration=duration,
-                )
+                query(_PRESCRIPTION_ROWS, duration=duration, **raw_code_columns("prescriptions"))
             )
         rows = parts[0] if len(parts) == 1 else parts[0].union(parts[1], distinct=False)
         stages.append(
@@ -202,7 +303,7 @@ def source_stages(ctx: CompileContext) -> tuple[Stage, ...]:
                 "coded_events",
                 query(_CODED_EVENTS, rows=rows.subquery(), end_of_data=study.end_of_data),
                 (*_coded_sources(ctx), "patient_base"),
-                "usable diagnosis and prescription rows with normalised codes",
+                "usable diagnosis and prescription rows with their raw codes",
                 kind="view",
             )
         )

@@ -347,7 +347,8 @@ class QualitySettings(Model):
 
     ``exact_duplicates: skip`` counts exact duplicate rows as used instead of finding them,
     which spares one grouping of every table (the slowest part of a build at millions of
-    patients); the quality log then says that duplicates were not checked.
+    patients); the quality log then says that duplicates were not checked, and every copy of a
+    row counts as a row of evidence (with ``check`` copies count once).
     """
 
     exact_duplicates: Literal["check", "skip"] = "check"

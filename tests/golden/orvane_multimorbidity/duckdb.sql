@@ -1,4 +1,4 @@
--- plan for study orvane_multimorbidity (30 stages, dialect duckdb)
+-- plan for study orvane_multimorbidity (32 stages, dialect duckdb)
 
 -- reads src_patients: patient_id, sex, death_date, birth_date, birth_year, practice_id, registration_date, deregistration_date
 
@@ -75,34 +75,88 @@ FROM encounter_rows
 GROUP BY
   patient_id;
 
--- stage coded_events [view]: usable diagnosis and prescription rows with normalised codes
+-- stage extract_codes [table]: each distinct code of the extract, normalised, with what is wrong with it
+-- reads: src_diagnoses, src_prescriptions
+SELECT
+  source_table,
+  raw_system,
+  raw_code,
+  raw_source,
+  code_system,
+  code,
+  source,
+  CASE
+    WHEN source_table = 'prescriptions'
+    THEN CASE
+      WHEN NOT REGEXP_MATCHES(COALESCE(code, ''), '^[A-Z]([0-9]{2}([A-Z]([A-Z]([0-9]{2})?)?)?)?$')
+      THEN 'malformed code'
+    END
+    WHEN NOT COALESCE(code_system, '') IN ('ICD9', 'ICD10')
+    THEN 'unknown code system'
+    WHEN COALESCE(code_system, '') = 'ICD9'
+    AND NOT REGEXP_MATCHES(
+      COALESCE(code, ''),
+      '^([0-9]{3}([0-9]{1,2})?|V[0-9]{2}([0-9]{1,2})?|E[0-9]{3}([0-9])?)$'
+    )
+    THEN 'malformed code'
+    WHEN COALESCE(code_system, '') = 'ICD10'
+    AND NOT REGEXP_MATCHES(COALESCE(code, ''), '^[A-Z][0-9][0-9A-Z]([0-9A-Z]{1,4})?$')
+    THEN 'malformed code'
+  END AS problem
+FROM (
+  SELECT
+    source_table,
+    raw_system,
+    raw_code,
+    raw_source,
+    CASE WHEN source_table = 'prescriptions' THEN 'ATC' ELSE UPPER(TRIM(raw_system)) END AS code_system,
+    REPLACE(REPLACE(UPPER(raw_code), '.', ''), ' ', '') AS code,
+    LOWER(TRIM(raw_source)) AS source
+  FROM (
+    SELECT DISTINCT
+      'diagnoses' AS source_table,
+      CAST(code_system AS TEXT) AS raw_system,
+      CAST(code AS TEXT) AS raw_code,
+      CAST(source AS TEXT) AS raw_source
+    FROM src_diagnoses
+    UNION ALL
+    SELECT DISTINCT
+      'prescriptions' AS source_table,
+      CAST(NULL AS TEXT) AS raw_system,
+      CAST(atc AS TEXT) AS raw_code,
+      CAST(NULL AS TEXT) AS raw_source
+    FROM src_prescriptions
+  ) AS found
+) AS c;
+
+-- stage coded_events [view]: usable diagnosis and prescription rows with their raw codes
 -- reads: src_diagnoses, src_prescriptions, patient_base
 SELECT
   r.patient_id,
   r.event_date,
-  r.code_system,
-  r.code,
+  r.source_table,
+  r.raw_system,
   r.raw_code,
-  r.source,
+  r.raw_source,
   r.duration_days
 FROM (
   SELECT
     patient_id,
     TRY_CAST(event_date AS DATE) AS event_date,
-    UPPER(TRIM(CAST(code_system AS TEXT))) AS code_system,
-    REPLACE(REPLACE(UPPER(code), '.', ''), ' ', '') AS code,
+    'diagnoses' AS source_table,
+    CAST(code_system AS TEXT) AS raw_system,
     CAST(code AS TEXT) AS raw_code,
-    LOWER(TRIM(CAST(source AS TEXT))) AS source,
+    CAST(source AS TEXT) AS raw_source,
     CAST(NULL AS INT) AS duration_days
   FROM src_diagnoses
   UNION ALL
   SELECT
     patient_id,
     TRY_CAST(start_date AS DATE) AS event_date,
-    'ATC' AS code_system,
-    REPLACE(REPLACE(UPPER(atc), '.', ''), ' ', '') AS code,
+    'prescriptions' AS source_table,
+    CAST(NULL AS TEXT) AS raw_system,
     CAST(atc AS TEXT) AS raw_code,
-    CAST(NULL AS TEXT) AS source,
+    CAST(NULL AS TEXT) AS raw_source,
     CAST(DATE_DIFF('DAY', TRY_CAST(start_date AS DATE), TRY_CAST(stop_date AS DATE)) + 1 AS INT) AS duration_days
   FROM src_prescriptions
 ) AS r
@@ -606,364 +660,383 @@ FROM (
 WHERE
   bmi BETWEEN 10.0 AND 80.0;
 
--- stage coded_matches [view]: each distinct diagnosis or prescription row with the evidence its code matches
--- reads: coded_events
+-- stage code_matches [table]: each distinct extract code with the evidence it matches or is excluded from
+-- reads: extract_codes
+SELECT
+  c.source_table,
+  c.raw_system,
+  c.raw_code,
+  c.raw_source,
+  c.code_system,
+  c.code,
+  c.source,
+  m.evidence,
+  BOOL_OR(CAST(NOT m.is_exclusion AS BOOLEAN)) AS included,
+  BOOL_OR(CAST(m.is_exclusion AS BOOLEAN)) AS excluded,
+  CASE
+    WHEN BOOL_OR(CAST(NOT m.is_exclusion AND m.min_days IS NULL AS BOOLEAN))
+    THEN NULL
+    ELSE MIN(CASE WHEN NOT m.is_exclusion THEN m.min_days END)
+  END AS min_days
+FROM extract_codes AS c
+CROSS JOIN (VALUES
+  (3),
+  (4)) AS l(prefix_length)
+JOIN (VALUES
+  ('ATC', 'A10B', 872629348, NULL, NULL, FALSE),
+  ('ATC', 'C02', 1369371461, NULL, NULL, FALSE),
+  ('ATC', 'C03', 1369371461, NULL, NULL, FALSE),
+  ('ATC', 'C03C', 2082671494, NULL, NULL, FALSE),
+  ('ATC', 'C07', 1369371461, NULL, NULL, FALSE),
+  ('ATC', 'C08', 1369371461, NULL, NULL, FALSE),
+  ('ATC', 'C09', 1369371461, NULL, NULL, FALSE),
+  ('ICD10', 'B18', 300580152, NULL, NULL, FALSE),
+  ('ICD10', 'B20', 818584883, NULL, NULL, FALSE),
+  ('ICD10', 'B21', 818584883, NULL, NULL, FALSE),
+  ('ICD10', 'B22', 818584883, NULL, NULL, FALSE),
+  ('ICD10', 'B24', 818584883, NULL, NULL, FALSE),
+  ('ICD10', 'C00', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C01', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C02', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C03', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C04', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C05', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C06', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C07', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C08', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C09', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C10', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C11', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C12', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C13', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C14', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C15', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C16', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C17', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C18', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C19', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C20', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C21', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C22', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C23', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C24', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C25', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C26', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C30', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C31', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C32', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C33', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C34', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C37', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C38', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C39', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C40', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C41', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C43', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C45', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C46', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C47', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C48', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C49', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C50', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C51', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C52', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C53', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C54', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C55', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C56', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C57', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C58', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C60', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C61', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C62', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C63', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C64', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C65', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C66', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C67', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C68', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C69', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C70', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C71', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C72', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C73', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C74', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C75', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C76', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C77', 1188480176, NULL, NULL, FALSE),
+  ('ICD10', 'C78', 1188480176, NULL, NULL, FALSE),
+  ('ICD10', 'C79', 1188480176, NULL, NULL, FALSE),
+  ('ICD10', 'C80', 1188480176, NULL, NULL, FALSE),
+  ('ICD10', 'C81', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C82', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C83', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C84', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C85', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C88', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C90', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C91', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C92', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C93', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C94', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C95', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C96', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'C97', 1617294027, NULL, NULL, FALSE),
+  ('ICD10', 'E100', 696433381, NULL, NULL, FALSE),
+  ('ICD10', 'E101', 696433381, NULL, NULL, FALSE),
+  ('ICD10', 'E102', 1855815331, NULL, NULL, FALSE),
+  ('ICD10', 'E103', 1855815331, NULL, NULL, FALSE),
+  ('ICD10', 'E104', 1855815331, NULL, NULL, FALSE),
+  ('ICD10', 'E105', 1855815331, NULL, NULL, FALSE),
+  ('ICD10', 'E106', 696433381, NULL, NULL, FALSE),
+  ('ICD10', 'E107', 1855815331, NULL, NULL, FALSE),
+  ('ICD10', 'E108', 696433381, NULL, NULL, FALSE),
+  ('ICD10', 'E109', 696433381, NULL, NULL, FALSE),
+  ('ICD10', 'E11', 16584386, NULL, NULL, FALSE),
+  ('ICD10', 'E110', 696433381, NULL, NULL, FALSE),
+  ('ICD10', 'E111', 696433381, NULL, NULL, FALSE),
+  ('ICD10', 'E112', 1855815331, NULL, NULL, FALSE),
+  ('ICD10', 'E113', 1855815331, NULL, NULL, FALSE),
+  ('ICD10', 'E114', 1855815331, NULL, NULL, FALSE),
+  ('ICD10', 'E115', 1855815331, NULL, NULL, FALSE),
+  ('ICD10', 'E116', 696433381, NULL, NULL, FALSE),
+  ('ICD10', 'E117', 1855815331, NULL, NULL, FALSE),
+  ('ICD10', 'E118', 696433381, NULL, NULL, FALSE),
+  ('ICD10', 'E119', 696433381, NULL, NULL, FALSE),
+  ('ICD10', 'E120', 696433381, NULL, NULL, FALSE),
+  ('ICD10', 'E121', 696433381, NULL, NULL, FALSE),
+  ('ICD10', 'E122', 1855815331, NULL, NULL, FALSE),
+  ('ICD10', 'E123', 1855815331, NULL, NULL, FALSE),
+  ('ICD10', 'E124', 1855815331, NULL, NULL, FALSE),
+  ('ICD10', 'E125', 1855815331, NULL, NULL, FALSE),
+  ('ICD10', 'E126', 696433381, NULL, NULL, FALSE),
+  ('ICD10', 'E127', 1855815331, NULL, NULL, FALSE),
+  ('ICD10', 'E128', 696433381, NULL, NULL, FALSE),
+  ('ICD10', 'E129', 696433381, NULL, NULL, FALSE),
+  ('ICD10', 'E130', 696433381, NULL, NULL, FALSE),
+  ('ICD10', 'E131', 696433381, NULL, NULL, FALSE),
+  ('ICD10', 'E132', 1855815331, NULL, NULL, FALSE),
+  ('ICD10', 'E133', 1855815331, NULL, NULL, FALSE),
+  ('ICD10', 'E134', 1855815331, NULL, NULL, FALSE),
+  ('ICD10', 'E135', 1855815331, NULL, NULL, FALSE),
+  ('ICD10', 'E136', 696433381, NULL, NULL, FALSE),
+  ('ICD10', 'E137', 1855815331, NULL, NULL, FALSE),
+  ('ICD10', 'E138', 696433381, NULL, NULL, FALSE),
+  ('ICD10', 'E139', 696433381, NULL, NULL, FALSE),
+  ('ICD10', 'E140', 696433381, NULL, NULL, FALSE),
+  ('ICD10', 'E141', 696433381, NULL, NULL, FALSE),
+  ('ICD10', 'E142', 1855815331, NULL, NULL, FALSE),
+  ('ICD10', 'E143', 1855815331, NULL, NULL, FALSE),
+  ('ICD10', 'E144', 1855815331, NULL, NULL, FALSE),
+  ('ICD10', 'E145', 1855815331, NULL, NULL, FALSE),
+  ('ICD10', 'E146', 696433381, NULL, NULL, FALSE),
+  ('ICD10', 'E147', 1855815331, NULL, NULL, FALSE),
+  ('ICD10', 'E148', 696433381, NULL, NULL, FALSE),
+  ('ICD10', 'E149', 696433381, NULL, NULL, FALSE),
+  ('ICD10', 'F00', 684695303, NULL, NULL, FALSE),
+  ('ICD10', 'F01', 684695303, NULL, NULL, FALSE),
+  ('ICD10', 'F02', 684695303, NULL, NULL, FALSE),
+  ('ICD10', 'F03', 684695303, NULL, NULL, FALSE),
+  ('ICD10', 'F051', 684695303, NULL, NULL, FALSE),
+  ('ICD10', 'G041', 103697730, NULL, NULL, FALSE),
+  ('ICD10', 'G114', 103697730, NULL, NULL, FALSE),
+  ('ICD10', 'G30', 684695303, NULL, NULL, FALSE),
+  ('ICD10', 'G311', 684695303, NULL, NULL, FALSE),
+  ('ICD10', 'G45', 1577684049, NULL, NULL, FALSE),
+  ('ICD10', 'G46', 1577684049, NULL, NULL, FALSE),
+  ('ICD10', 'G801', 103697730, NULL, NULL, FALSE),
+  ('ICD10', 'G802', 103697730, NULL, NULL, FALSE),
+  ('ICD10', 'G81', 103697730, NULL, NULL, FALSE),
+  ('ICD10', 'G82', 103697730, NULL, NULL, FALSE),
+  ('ICD10', 'G830', 103697730, NULL, NULL, FALSE),
+  ('ICD10', 'G831', 103697730, NULL, NULL, FALSE),
+  ('ICD10', 'G832', 103697730, NULL, NULL, FALSE),
+  ('ICD10', 'G833', 103697730, NULL, NULL, FALSE),
+  ('ICD10', 'G834', 103697730, NULL, NULL, FALSE),
+  ('ICD10', 'G839', 103697730, NULL, NULL, FALSE),
+  ('ICD10', 'H340', 1577684049, NULL, NULL, FALSE),
+  ('ICD10', 'I099', 1177630332, NULL, NULL, FALSE),
+  ('ICD10', 'I10', 2001683759, NULL, NULL, FALSE),
+  ('ICD10', 'I11', 2001683759, NULL, NULL, FALSE),
+  ('ICD10', 'I110', 1177630332, NULL, NULL, FALSE),
+  ('ICD10', 'I12', 2001683759, NULL, NULL, FALSE),
+  ('ICD10', 'I120', 752661743, NULL, NULL, FALSE),
+  ('ICD10', 'I13', 2001683759, NULL, NULL, FALSE),
+  ('ICD10', 'I130', 1177630332, NULL, NULL, FALSE),
+  ('ICD10', 'I131', 752661743, NULL, NULL, FALSE),
+  ('ICD10', 'I132', 1177630332, NULL, NULL, FALSE),
+  ('ICD10', 'I14', 2001683759, NULL, NULL, FALSE),
+  ('ICD10', 'I15', 2001683759, NULL, NULL, FALSE),
+  ('ICD10', 'I21', 703042088, NULL, NULL, FALSE),
+  ('ICD10', 'I22', 703042088, NULL, NULL, FALSE),
+  ('ICD10', 'I252', 703042088, NULL, NULL, FALSE),
+  ('ICD10', 'I255', 1177630332, NULL, NULL, FALSE),
+  ('ICD10', 'I278', 294785012, NULL, NULL, FALSE),
+  ('ICD10', 'I279', 294785012, NULL, NULL, FALSE),
+  ('ICD10', 'I420', 1177630332, NULL, NULL, FALSE),
+  ('ICD10', 'I425', 1177630332, NULL, NULL, FALSE),
+  ('ICD10', 'I426', 1177630332, NULL, NULL, FALSE),
+  ('ICD10', 'I427', 1177630332, NULL, NULL, FALSE),
+  ('ICD10', 'I428', 1177630332, NULL, NULL, FALSE),
+  ('ICD10', 'I429', 1177630332, NULL, NULL, FALSE),
+  ('ICD10', 'I43', 1177630332, NULL, NULL, FALSE),
+  ('ICD10', 'I50', 1177630332, NULL, NULL, FALSE),
+  ('ICD10', 'I50', 2055434026, NULL, NULL, FALSE),
+  ('ICD10', 'I60', 1577684049, NULL, NULL, FALSE),
+  ('ICD10', 'I61', 1577684049, NULL, NULL, FALSE),
+  ('ICD10', 'I62', 1577684049, NULL, NULL, FALSE),
+  ('ICD10', 'I63', 1577684049, NULL, NULL, FALSE),
+  ('ICD10', 'I64', 1577684049, NULL, NULL, FALSE),
+  ('ICD10', 'I65', 1577684049, NULL, NULL, FALSE),
+  ('ICD10', 'I66', 1577684049, NULL, NULL, FALSE),
+  ('ICD10', 'I67', 1577684049, NULL, NULL, FALSE),
+  ('ICD10', 'I68', 1577684049, NULL, NULL, FALSE),
+  ('ICD10', 'I69', 1577684049, NULL, NULL, FALSE),
+  ('ICD10', 'I70', 416310112, NULL, NULL, FALSE),
+  ('ICD10', 'I71', 416310112, NULL, NULL, FALSE),
+  ('ICD10', 'I731', 416310112, NULL, NULL, FALSE),
+  ('ICD10', 'I738', 416310112, NULL, NULL, FALSE),
+  ('ICD10', 'I739', 416310112, NULL, NULL, FALSE),
+  ('ICD10', 'I771', 416310112, NULL, NULL, FALSE),
+  ('ICD10', 'I790', 416310112, NULL, NULL, FALSE),
+  ('ICD10', 'I792', 416310112, NULL, NULL, FALSE),
+  ('ICD10', 'I850', 2204522, NULL, NULL, FALSE),
+  ('ICD10', 'I859', 2204522, NULL, NULL, FALSE),
+  ('ICD10', 'I864', 2204522, NULL, NULL, FALSE),
+  ('ICD10', 'I982', 2204522, NULL, NULL, FALSE),
+  ('ICD10', 'J40', 294785012, NULL, NULL, FALSE),
+  ('ICD10', 'J41', 294785012, NULL, NULL, FALSE),
+  ('ICD10', 'J42', 294785012, NULL, NULL, FALSE),
+  ('ICD10', 'J43', 294785012, NULL, NULL, FALSE),
+  ('ICD10', 'J44', 294785012, NULL, NULL, FALSE),
+  ('ICD10', 'J45', 294785012, NULL, NULL, FALSE),
+  ('ICD10', 'J46', 294785012, NULL, NULL, FALSE),
+  ('ICD10', 'J47', 294785012, NULL, NULL, FALSE),
+  ('ICD10', 'J60', 294785012, NULL, NULL, FALSE),
+  ('ICD10', 'J61', 294785012, NULL, NULL, FALSE),
+  ('ICD10', 'J62', 294785012, NULL, NULL, FALSE),
+  ('ICD10', 'J63', 294785012, NULL, NULL, FALSE),
+  ('ICD10', 'J64', 294785012, NULL, NULL, FALSE),
+  ('ICD10', 'J65', 294785012, NULL, NULL, FALSE),
+  ('ICD10', 'J66', 294785012, NULL, NULL, FALSE),
+  ('ICD10', 'J67', 294785012, NULL, NULL, FALSE),
+  ('ICD10', 'J684', 294785012, NULL, NULL, FALSE),
+  ('ICD10', 'J701', 294785012, NULL, NULL, FALSE),
+  ('ICD10', 'J703', 294785012, NULL, NULL, FALSE),
+  ('ICD10', 'K25', 1714082935, NULL, NULL, FALSE),
+  ('ICD10', 'K26', 1714082935, NULL, NULL, FALSE),
+  ('ICD10', 'K27', 1714082935, NULL, NULL, FALSE),
+  ('ICD10', 'K28', 1714082935, NULL, NULL, FALSE),
+  ('ICD10', 'K551', 416310112, NULL, NULL, FALSE),
+  ('ICD10', 'K558', 416310112, NULL, NULL, FALSE),
+  ('ICD10', 'K559', 416310112, NULL, NULL, FALSE),
+  ('ICD10', 'K700', 300580152, NULL, NULL, FALSE),
+  ('ICD10', 'K701', 300580152, NULL, NULL, FALSE),
+  ('ICD10', 'K702', 300580152, NULL, NULL, FALSE),
+  ('ICD10', 'K703', 300580152, NULL, NULL, FALSE),
+  ('ICD10', 'K704', 2204522, NULL, NULL, FALSE),
+  ('ICD10', 'K709', 300580152, NULL, NULL, FALSE),
+  ('ICD10', 'K711', 2204522, NULL, NULL, FALSE),
+  ('ICD10', 'K713', 300580152, NULL, NULL, FALSE),
+  ('ICD10', 'K714', 300580152, NULL, NULL, FALSE),
+  ('ICD10', 'K715', 300580152, NULL, NULL, FALSE),
+  ('ICD10', 'K717', 300580152, NULL, NULL, FALSE),
+  ('ICD10', 'K721', 2204522, NULL, NULL, FALSE),
+  ('ICD10', 'K729', 2204522, NULL, NULL, FALSE),
+  ('ICD10', 'K73', 300580152, NULL, NULL, FALSE),
+  ('ICD10', 'K74', 300580152, NULL, NULL, FALSE),
+  ('ICD10', 'K760', 300580152, NULL, NULL, FALSE),
+  ('ICD10', 'K762', 300580152, NULL, NULL, FALSE),
+  ('ICD10', 'K763', 300580152, NULL, NULL, FALSE),
+  ('ICD10', 'K764', 300580152, NULL, NULL, FALSE),
+  ('ICD10', 'K765', 2204522, NULL, NULL, FALSE),
+  ('ICD10', 'K766', 2204522, NULL, NULL, FALSE),
+  ('ICD10', 'K767', 2204522, NULL, NULL, FALSE),
+  ('ICD10', 'K768', 300580152, NULL, NULL, FALSE),
+  ('ICD10', 'K769', 300580152, NULL, NULL, FALSE),
+  ('ICD10', 'M05', 264104370, NULL, NULL, FALSE),
+  ('ICD10', 'M06', 264104370, NULL, NULL, FALSE),
+  ('ICD10', 'M315', 264104370, NULL, NULL, FALSE),
+  ('ICD10', 'M32', 264104370, NULL, NULL, FALSE),
+  ('ICD10', 'M33', 264104370, NULL, NULL, FALSE),
+  ('ICD10', 'M34', 264104370, NULL, NULL, FALSE),
+  ('ICD10', 'M351', 264104370, NULL, NULL, FALSE),
+  ('ICD10', 'M353', 264104370, NULL, NULL, FALSE),
+  ('ICD10', 'M360', 264104370, NULL, NULL, FALSE),
+  ('ICD10', 'N032', 752661743, NULL, NULL, FALSE),
+  ('ICD10', 'N033', 752661743, NULL, NULL, FALSE),
+  ('ICD10', 'N034', 752661743, NULL, NULL, FALSE),
+  ('ICD10', 'N035', 752661743, NULL, NULL, FALSE),
+  ('ICD10', 'N036', 752661743, NULL, NULL, FALSE),
+  ('ICD10', 'N037', 752661743, NULL, NULL, FALSE),
+  ('ICD10', 'N052', 752661743, NULL, NULL, FALSE),
+  ('ICD10', 'N053', 752661743, NULL, NULL, FALSE),
+  ('ICD10', 'N054', 752661743, NULL, NULL, FALSE),
+  ('ICD10', 'N055', 752661743, NULL, NULL, FALSE),
+  ('ICD10', 'N056', 752661743, NULL, NULL, FALSE),
+  ('ICD10', 'N057', 752661743, NULL, NULL, FALSE),
+  ('ICD10', 'N18', 752661743, NULL, NULL, FALSE),
+  ('ICD10', 'N183', 1836175685, NULL, NULL, FALSE),
+  ('ICD10', 'N184', 1836175685, NULL, NULL, FALSE),
+  ('ICD10', 'N185', 1836175685, NULL, NULL, FALSE),
+  ('ICD10', 'N186', 1836175685, NULL, NULL, FALSE),
+  ('ICD10', 'N19', 752661743, NULL, NULL, FALSE),
+  ('ICD10', 'N250', 752661743, NULL, NULL, FALSE),
+  ('ICD10', 'P290', 1177630332, NULL, NULL, FALSE),
+  ('ICD10', 'Z490', 752661743, NULL, NULL, FALSE),
+  ('ICD10', 'Z491', 752661743, NULL, NULL, FALSE),
+  ('ICD10', 'Z492', 752661743, NULL, NULL, FALSE),
+  ('ICD10', 'Z940', 752661743, NULL, NULL, FALSE),
+  ('ICD10', 'Z944', 300580152, NULL, NULL, FALSE),
+  ('ICD10', 'Z958', 416310112, NULL, NULL, FALSE),
+  ('ICD10', 'Z959', 416310112, NULL, NULL, FALSE),
+  ('ICD10', 'Z992', 752661743, NULL, NULL, FALSE),
+  ('ICD9', '250', 16584386, NULL, NULL, FALSE),
+  ('ICD9', '401', 2001683759, NULL, NULL, FALSE),
+  ('ICD9', '402', 2001683759, NULL, NULL, FALSE),
+  ('ICD9', '403', 2001683759, NULL, NULL, FALSE),
+  ('ICD9', '404', 2001683759, NULL, NULL, FALSE),
+  ('ICD9', '405', 2001683759, NULL, NULL, FALSE),
+  ('ICD9', '428', 2055434026, NULL, NULL, FALSE),
+  ('ICD9', '5853', 1836175685, NULL, NULL, FALSE),
+  ('ICD9', '5854', 1836175685, NULL, NULL, FALSE),
+  ('ICD9', '5855', 1836175685, NULL, NULL, FALSE),
+  ('ICD9', '5856', 1836175685, NULL, NULL, FALSE)) AS m(code_system, prefix, evidence, source, min_days, is_exclusion)
+  ON m.code_system = c.code_system
+  AND m.prefix = LEFT(c.code, l.prefix_length)
+  AND (
+    m.source IS NULL OR m.source = c.source
+  )
+GROUP BY
+  c.source_table,
+  c.raw_system,
+  c.raw_code,
+  c.raw_source,
+  c.code_system,
+  c.code,
+  c.source,
+  m.evidence;
+
+-- stage coded_matches [view]: each usable diagnosis or prescription row with the evidence its code matches
+-- reads: code_matches, coded_events
 SELECT
   e.patient_id,
   e.event_date,
-  e.code_system,
-  e.code,
+  m.code_system,
+  m.code,
   e.raw_code,
-  e.source,
+  m.source,
   e.duration_days,
-  c.evidence,
-  BOOL_OR(CAST(c.is_exclusion AS BOOLEAN)) AS excluded
-FROM (
-  SELECT
-    r.*,
-    LEFT(r.code, l.prefix_length) AS probe
-  FROM coded_events AS r
-  CROSS JOIN (VALUES
-    (3),
-    (4)) AS l(prefix_length)
-) AS e
-JOIN (VALUES
-  ('ATC', 'A10B', 'type2_diabetes.dm_drug', NULL, NULL, FALSE),
-  ('ATC', 'C02', 'hypertension.antihypertensive', NULL, NULL, FALSE),
-  ('ATC', 'C03', 'hypertension.antihypertensive', NULL, NULL, FALSE),
-  ('ATC', 'C03C', 'heart_failure.loop_diuretic', NULL, NULL, FALSE),
-  ('ATC', 'C07', 'hypertension.antihypertensive', NULL, NULL, FALSE),
-  ('ATC', 'C08', 'hypertension.antihypertensive', NULL, NULL, FALSE),
-  ('ATC', 'C09', 'hypertension.antihypertensive', NULL, NULL, FALSE),
-  ('ICD10', 'B18', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'B20', '@charlson.hiv_aids', NULL, NULL, FALSE),
-  ('ICD10', 'B21', '@charlson.hiv_aids', NULL, NULL, FALSE),
-  ('ICD10', 'B22', '@charlson.hiv_aids', NULL, NULL, FALSE),
-  ('ICD10', 'B24', '@charlson.hiv_aids', NULL, NULL, FALSE),
-  ('ICD10', 'C00', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C01', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C02', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C03', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C04', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C05', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C06', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C07', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C08', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C09', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C10', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C11', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C12', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C13', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C14', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C15', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C16', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C17', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C18', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C19', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C20', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C21', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C22', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C23', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C24', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C25', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C26', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C30', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C31', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C32', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C33', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C34', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C37', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C38', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C39', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C40', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C41', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C43', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C45', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C46', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C47', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C48', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C49', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C50', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C51', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C52', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C53', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C54', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C55', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C56', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C57', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C58', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C60', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C61', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C62', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C63', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C64', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C65', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C66', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C67', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C68', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C69', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C70', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C71', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C72', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C73', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C74', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C75', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C76', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C77', '@charlson.metastatic_solid_tumour', NULL, NULL, FALSE),
-  ('ICD10', 'C78', '@charlson.metastatic_solid_tumour', NULL, NULL, FALSE),
-  ('ICD10', 'C79', '@charlson.metastatic_solid_tumour', NULL, NULL, FALSE),
-  ('ICD10', 'C80', '@charlson.metastatic_solid_tumour', NULL, NULL, FALSE),
-  ('ICD10', 'C81', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C82', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C83', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C84', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C85', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C88', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C90', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C91', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C92', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C93', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C94', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C95', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C96', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'C97', '@charlson.malignancy', NULL, NULL, FALSE),
-  ('ICD10', 'E100', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E101', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E102', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E103', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E104', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E105', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E106', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E107', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E108', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E109', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E11', 'type2_diabetes.dm_code', NULL, NULL, FALSE),
-  ('ICD10', 'E110', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E111', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E112', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E113', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E114', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E115', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E116', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E117', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E118', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E119', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E120', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E121', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E122', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E123', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E124', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E125', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E126', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E127', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E128', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E129', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E130', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E131', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E132', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E133', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E134', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E135', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E136', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E137', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E138', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E139', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E140', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E141', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E142', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E143', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E144', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E145', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E146', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E147', '@charlson.diabetes_with_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E148', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
-  ('ICD10', 'E149', '@charlson.diabetes_without_complications', NULL, NULL, FALSE),
-  ('ICD10', 'F00', '@charlson.dementia', NULL, NULL, FALSE),
-  ('ICD10', 'F01', '@charlson.dementia', NULL, NULL, FALSE),
-  ('ICD10', 'F02', '@charlson.dementia', NULL, NULL, FALSE),
-  ('ICD10', 'F03', '@charlson.dementia', NULL, NULL, FALSE),
-  ('ICD10', 'F051', '@charlson.dementia', NULL, NULL, FALSE),
-  ('ICD10', 'G041', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
-  ('ICD10', 'G114', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
-  ('ICD10', 'G30', '@charlson.dementia', NULL, NULL, FALSE),
-  ('ICD10', 'G311', '@charlson.dementia', NULL, NULL, FALSE),
-  ('ICD10', 'G45', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
-  ('ICD10', 'G46', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
-  ('ICD10', 'G801', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
-  ('ICD10', 'G802', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
-  ('ICD10', 'G81', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
-  ('ICD10', 'G82', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
-  ('ICD10', 'G830', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
-  ('ICD10', 'G831', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
-  ('ICD10', 'G832', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
-  ('ICD10', 'G833', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
-  ('ICD10', 'G834', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
-  ('ICD10', 'G839', '@charlson.hemiplegia_paraplegia', NULL, NULL, FALSE),
-  ('ICD10', 'H340', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
-  ('ICD10', 'I099', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
-  ('ICD10', 'I10', 'hypertension.htn_code', NULL, NULL, FALSE),
-  ('ICD10', 'I11', 'hypertension.htn_code', NULL, NULL, FALSE),
-  ('ICD10', 'I110', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
-  ('ICD10', 'I12', 'hypertension.htn_code', NULL, NULL, FALSE),
-  ('ICD10', 'I120', '@charlson.renal_disease', NULL, NULL, FALSE),
-  ('ICD10', 'I13', 'hypertension.htn_code', NULL, NULL, FALSE),
-  ('ICD10', 'I130', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
-  ('ICD10', 'I131', '@charlson.renal_disease', NULL, NULL, FALSE),
-  ('ICD10', 'I132', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
-  ('ICD10', 'I14', 'hypertension.htn_code', NULL, NULL, FALSE),
-  ('ICD10', 'I15', 'hypertension.htn_code', NULL, NULL, FALSE),
-  ('ICD10', 'I21', '@charlson.myocardial_infarction', NULL, NULL, FALSE),
-  ('ICD10', 'I22', '@charlson.myocardial_infarction', NULL, NULL, FALSE),
-  ('ICD10', 'I252', '@charlson.myocardial_infarction', NULL, NULL, FALSE),
-  ('ICD10', 'I255', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
-  ('ICD10', 'I278', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
-  ('ICD10', 'I279', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
-  ('ICD10', 'I420', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
-  ('ICD10', 'I425', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
-  ('ICD10', 'I426', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
-  ('ICD10', 'I427', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
-  ('ICD10', 'I428', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
-  ('ICD10', 'I429', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
-  ('ICD10', 'I43', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
-  ('ICD10', 'I50', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
-  ('ICD10', 'I50', 'heart_failure.hf_code', NULL, NULL, FALSE),
-  ('ICD10', 'I60', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
-  ('ICD10', 'I61', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
-  ('ICD10', 'I62', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
-  ('ICD10', 'I63', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
-  ('ICD10', 'I64', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
-  ('ICD10', 'I65', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
-  ('ICD10', 'I66', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
-  ('ICD10', 'I67', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
-  ('ICD10', 'I68', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
-  ('ICD10', 'I69', '@charlson.cerebrovascular_disease', NULL, NULL, FALSE),
-  ('ICD10', 'I70', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
-  ('ICD10', 'I71', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
-  ('ICD10', 'I731', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
-  ('ICD10', 'I738', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
-  ('ICD10', 'I739', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
-  ('ICD10', 'I771', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
-  ('ICD10', 'I790', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
-  ('ICD10', 'I792', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
-  ('ICD10', 'I850', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'I859', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'I864', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'I982', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'J40', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
-  ('ICD10', 'J41', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
-  ('ICD10', 'J42', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
-  ('ICD10', 'J43', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
-  ('ICD10', 'J44', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
-  ('ICD10', 'J45', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
-  ('ICD10', 'J46', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
-  ('ICD10', 'J47', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
-  ('ICD10', 'J60', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
-  ('ICD10', 'J61', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
-  ('ICD10', 'J62', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
-  ('ICD10', 'J63', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
-  ('ICD10', 'J64', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
-  ('ICD10', 'J65', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
-  ('ICD10', 'J66', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
-  ('ICD10', 'J67', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
-  ('ICD10', 'J684', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
-  ('ICD10', 'J701', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
-  ('ICD10', 'J703', '@charlson.chronic_pulmonary_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K25', '@charlson.peptic_ulcer_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K26', '@charlson.peptic_ulcer_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K27', '@charlson.peptic_ulcer_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K28', '@charlson.peptic_ulcer_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K551', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K558', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K559', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K700', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K701', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K702', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K703', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K704', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K709', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K711', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K713', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K714', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K715', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K717', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K721', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K729', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K73', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K74', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K760', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K762', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K763', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K764', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K765', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K766', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K767', '@charlson.moderate_severe_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K768', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'K769', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'M05', '@charlson.rheumatic_disease', NULL, NULL, FALSE),
-  ('ICD10', 'M06', '@charlson.rheumatic_disease', NULL, NULL, FALSE),
-  ('ICD10', 'M315', '@charlson.rheumatic_disease', NULL, NULL, FALSE),
-  ('ICD10', 'M32', '@charlson.rheumatic_disease', NULL, NULL, FALSE),
-  ('ICD10', 'M33', '@charlson.rheumatic_disease', NULL, NULL, FALSE),
-  ('ICD10', 'M34', '@charlson.rheumatic_disease', NULL, NULL, FALSE),
-  ('ICD10', 'M351', '@charlson.rheumatic_disease', NULL, NULL, FALSE),
-  ('ICD10', 'M353', '@charlson.rheumatic_disease', NULL, NULL, FALSE),
-  ('ICD10', 'M360', '@charlson.rheumatic_disease', NULL, NULL, FALSE),
-  ('ICD10', 'N032', '@charlson.renal_disease', NULL, NULL, FALSE),
-  ('ICD10', 'N033', '@charlson.renal_disease', NULL, NULL, FALSE),
-  ('ICD10', 'N034', '@charlson.renal_disease', NULL, NULL, FALSE),
-  ('ICD10', 'N035', '@charlson.renal_disease', NULL, NULL, FALSE),
-  ('ICD10', 'N036', '@charlson.renal_disease', NULL, NULL, FALSE),
-  ('ICD10', 'N037', '@charlson.renal_disease', NULL, NULL, FALSE),
-  ('ICD10', 'N052', '@charlson.renal_disease', NULL, NULL, FALSE),
-  ('ICD10', 'N053', '@charlson.renal_disease', NULL, NULL, FALSE),
-  ('ICD10', 'N054', '@charlson.renal_disease', NULL, NULL, FALSE),
-  ('ICD10', 'N055', '@charlson.renal_disease', NULL, NULL, FALSE),
-  ('ICD10', 'N056', '@charlson.renal_disease', NULL, NULL, FALSE),
-  ('ICD10', 'N057', '@charlson.renal_disease', NULL, NULL, FALSE),
-  ('ICD10', 'N18', '@charlson.renal_disease', NULL, NULL, FALSE),
-  ('ICD10', 'N183', 'ckd.ckd_code', NULL, NULL, FALSE),
-  ('ICD10', 'N184', 'ckd.ckd_code', NULL, NULL, FALSE),
-  ('ICD10', 'N185', 'ckd.ckd_code', NULL, NULL, FALSE),
-  ('ICD10', 'N186', 'ckd.ckd_code', NULL, NULL, FALSE),
-  ('ICD10', 'N19', '@charlson.renal_disease', NULL, NULL, FALSE),
-  ('ICD10', 'N250', '@charlson.renal_disease', NULL, NULL, FALSE),
-  ('ICD10', 'P290', '@charlson.congestive_heart_failure', NULL, NULL, FALSE),
-  ('ICD10', 'Z490', '@charlson.renal_disease', NULL, NULL, FALSE),
-  ('ICD10', 'Z491', '@charlson.renal_disease', NULL, NULL, FALSE),
-  ('ICD10', 'Z492', '@charlson.renal_disease', NULL, NULL, FALSE),
-  ('ICD10', 'Z940', '@charlson.renal_disease', NULL, NULL, FALSE),
-  ('ICD10', 'Z944', '@charlson.mild_liver_disease', NULL, NULL, FALSE),
-  ('ICD10', 'Z958', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
-  ('ICD10', 'Z959', '@charlson.peripheral_vascular_disease', NULL, NULL, FALSE),
-  ('ICD10', 'Z992', '@charlson.renal_disease', NULL, NULL, FALSE),
-  ('ICD9', '250', 'type2_diabetes.dm_code', NULL, NULL, FALSE),
-  ('ICD9', '401', 'hypertension.htn_code', NULL, NULL, FALSE),
-  ('ICD9', '402', 'hypertension.htn_code', NULL, NULL, FALSE),
-  ('ICD9', '403', 'hypertension.htn_code', NULL, NULL, FALSE),
-  ('ICD9', '404', 'hypertension.htn_code', NULL, NULL, FALSE),
-  ('ICD9', '405', 'hypertension.htn_code', NULL, NULL, FALSE),
-  ('ICD9', '428', 'heart_failure.hf_code', NULL, NULL, FALSE),
-  ('ICD9', '5853', 'ckd.ckd_code', NULL, NULL, FALSE),
-  ('ICD9', '5854', 'ckd.ckd_code', NULL, NULL, FALSE),
-  ('ICD9', '5855', 'ckd.ckd_code', NULL, NULL, FALSE),
-  ('ICD9', '5856', 'ckd.ckd_code', NULL, NULL, FALSE)) AS c(code_system, prefix, evidence, source, min_days, is_exclusion)
-  ON c.code_system = e.code_system
-  AND c.prefix = e.probe
-  AND (
-    c.source IS NULL OR c.source = e.source
-  )
-  AND (
-    c.min_days IS NULL OR e.duration_days >= c.min_days
-  )
-GROUP BY
-  e.patient_id,
-  e.event_date,
-  e.code_system,
-  e.code,
-  e.raw_code,
-  e.source,
-  e.duration_days,
-  c.evidence;
+  m.evidence,
+  m.excluded OR NOT m.included AS excluded
+FROM coded_events AS e
+JOIN code_matches AS m
+  ON e.source_table = m.source_table
+  AND e.raw_system IS NOT DISTINCT FROM m.raw_system
+  AND e.raw_code IS NOT DISTINCT FROM m.raw_code
+  AND e.raw_source IS NOT DISTINCT FROM m.raw_source
+WHERE
+  m.excluded OR m.min_days IS NULL OR e.duration_days >= m.min_days;
 
 -- stage coded_evidence [table]: matched rows counted per patient, evidence and day
 -- reads: coded_matches
@@ -972,9 +1045,20 @@ SELECT
   evidence,
   event_date,
   CAST(COUNT(*) AS INT) AS n_rows
-FROM coded_matches
-WHERE
-  NOT excluded
+FROM (
+  SELECT DISTINCT
+    patient_id,
+    event_date,
+    code_system,
+    code,
+    raw_code,
+    source,
+    duration_days,
+    evidence
+  FROM coded_matches
+  WHERE
+    NOT excluded
+) AS m
 GROUP BY
   patient_id,
   evidence,
@@ -998,7 +1082,7 @@ FROM (
   UNION ALL
   SELECT
     patient_id,
-    'type2_diabetes.a1c_high' AS evidence,
+    2017758955 /* type2_diabetes.a1c_high */ AS evidence,
     obs_date AS event_date,
     CAST(COUNT(*) AS INT) AS n_rows
   FROM measurement_values
@@ -1019,7 +1103,7 @@ FROM (
   UNION ALL
   SELECT
     patient_id,
-    'ckd.egfr_low' AS evidence,
+    819046859 /* ckd.egfr_low */ AS evidence,
     obs_date AS event_date,
     CAST(COUNT(*) AS INT) AS n_rows
   FROM measurement_values
@@ -1040,7 +1124,7 @@ FROM (
   UNION ALL
   SELECT
     patient_id,
-    'ckd.egfr_low' AS evidence,
+    819046859 /* ckd.egfr_low */ AS evidence,
     obs_date AS event_date,
     CAST(COUNT(*) AS INT) AS n_rows
   FROM derived_egfr
@@ -1072,10 +1156,10 @@ FROM (
     patient_id,
     evidence,
     event_date,
-    SUM(CASE WHEN evidence = 'type2_diabetes.dm_code' THEN 1 ELSE 0 END) OVER (PARTITION BY patient_id ORDER BY day RANGE BETWEEN 730 PRECEDING AND CURRENT ROW) AS in_frame_0
+    SUM(CASE WHEN evidence = 16584386 /* type2_diabetes.dm_code */ THEN 1 ELSE 0 END) OVER (PARTITION BY patient_id ORDER BY day RANGE BETWEEN 730 PRECEDING AND CURRENT ROW) AS in_frame_0
   FROM evidence_events
   WHERE
-    evidence IN ('type2_diabetes.dm_code')
+    evidence IN (16584386 /* type2_diabetes.dm_code */)
 ) AS counted
 WHERE
   in_frame_0 >= 2
@@ -1092,11 +1176,15 @@ FROM (
     patient_id,
     evidence,
     event_date,
-    SUM(CASE WHEN evidence = 'type2_diabetes.dm_code' THEN n_rows ELSE 0 END) OVER (PARTITION BY patient_id ORDER BY day RANGE BETWEEN 365 PRECEDING AND CURRENT ROW) AS in_frame_0,
-    SUM(CASE WHEN evidence = 'type2_diabetes.dm_drug' THEN n_rows ELSE 0 END) OVER (PARTITION BY patient_id ORDER BY day RANGE BETWEEN 365 PRECEDING AND CURRENT ROW) AS in_frame_1
+    SUM(
+      CASE WHEN evidence = 16584386 /* type2_diabetes.dm_code */ THEN n_rows ELSE 0 END
+    ) OVER (PARTITION BY patient_id ORDER BY day RANGE BETWEEN 365 PRECEDING AND CURRENT ROW) AS in_frame_0,
+    SUM(
+      CASE WHEN evidence = 872629348 /* type2_diabetes.dm_drug */ THEN n_rows ELSE 0 END
+    ) OVER (PARTITION BY patient_id ORDER BY day RANGE BETWEEN 365 PRECEDING AND CURRENT ROW) AS in_frame_1
   FROM evidence_events
   WHERE
-    evidence IN ('type2_diabetes.dm_code', 'type2_diabetes.dm_drug')
+    evidence IN (16584386, /* type2_diabetes.dm_code */872629348 /* type2_diabetes.dm_drug */)
 ) AS counted
 WHERE
   in_frame_0 >= 1 AND in_frame_1 >= 1
@@ -1113,10 +1201,10 @@ FROM (
     patient_id,
     evidence,
     event_date,
-    SUM(CASE WHEN evidence = 'type2_diabetes.a1c_high' THEN 1 ELSE 0 END) OVER (PARTITION BY patient_id ORDER BY day RANGE BETWEEN 730 PRECEDING AND CURRENT ROW) AS in_frame_0
+    SUM(CASE WHEN evidence = 2017758955 /* type2_diabetes.a1c_high */ THEN 1 ELSE 0 END) OVER (PARTITION BY patient_id ORDER BY day RANGE BETWEEN 730 PRECEDING AND CURRENT ROW) AS in_frame_0
   FROM evidence_events
   WHERE
-    evidence IN ('type2_diabetes.a1c_high')
+    evidence IN (2017758955 /* type2_diabetes.a1c_high */)
 ) AS counted
 WHERE
   in_frame_0 >= 2
@@ -1144,17 +1232,17 @@ FROM (
     patient_id,
     evidence,
     event_date,
-    SUM(CASE WHEN evidence = 'ckd.egfr_low' THEN n_rows ELSE 0 END) OVER (
+    SUM(CASE WHEN evidence = 819046859 /* ckd.egfr_low */ THEN n_rows ELSE 0 END) OVER (
       PARTITION BY patient_id
       ORDER BY day
       RANGE BETWEEN UNBOUNDED PRECEDING AND 90 PRECEDING
     ) AS in_frame_0
   FROM evidence_events
   WHERE
-    evidence IN ('ckd.egfr_low')
+    evidence IN (819046859 /* ckd.egfr_low */)
 ) AS counted
 WHERE
-  evidence = 'ckd.egfr_low' AND in_frame_0 >= 1
+  evidence = 819046859 /* ckd.egfr_low */ AND in_frame_0 >= 1
 GROUP BY
   patient_id
 UNION ALL
@@ -1168,10 +1256,10 @@ FROM (
     patient_id,
     evidence,
     event_date,
-    SUM(CASE WHEN evidence = 'ckd.ckd_code' THEN 1 ELSE 0 END) OVER (PARTITION BY patient_id ORDER BY day RANGE BETWEEN 730 PRECEDING AND CURRENT ROW) AS in_frame_0
+    SUM(CASE WHEN evidence = 1836175685 /* ckd.ckd_code */ THEN 1 ELSE 0 END) OVER (PARTITION BY patient_id ORDER BY day RANGE BETWEEN 730 PRECEDING AND CURRENT ROW) AS in_frame_0
   FROM evidence_events
   WHERE
-    evidence IN ('ckd.ckd_code')
+    evidence IN (1836175685 /* ckd.ckd_code */)
 ) AS counted
 WHERE
   in_frame_0 >= 2
@@ -1199,10 +1287,10 @@ FROM (
     patient_id,
     evidence,
     event_date,
-    SUM(CASE WHEN evidence = 'heart_failure.hf_code' THEN 1 ELSE 0 END) OVER (PARTITION BY patient_id ORDER BY day RANGE BETWEEN 730 PRECEDING AND CURRENT ROW) AS in_frame_0
+    SUM(CASE WHEN evidence = 2055434026 /* heart_failure.hf_code */ THEN 1 ELSE 0 END) OVER (PARTITION BY patient_id ORDER BY day RANGE BETWEEN 730 PRECEDING AND CURRENT ROW) AS in_frame_0
   FROM evidence_events
   WHERE
-    evidence IN ('heart_failure.hf_code')
+    evidence IN (2055434026 /* heart_failure.hf_code */)
 ) AS counted
 WHERE
   in_frame_0 >= 2
@@ -1219,11 +1307,22 @@ FROM (
     patient_id,
     evidence,
     event_date,
-    SUM(CASE WHEN evidence = 'heart_failure.hf_code' THEN n_rows ELSE 0 END) OVER (PARTITION BY patient_id ORDER BY day RANGE BETWEEN 365 PRECEDING AND CURRENT ROW) AS in_frame_0,
-    SUM(CASE WHEN evidence = 'heart_failure.loop_diuretic' THEN n_rows ELSE 0 END) OVER (PARTITION BY patient_id ORDER BY day RANGE BETWEEN 365 PRECEDING AND CURRENT ROW) AS in_frame_1
+    SUM(
+      CASE WHEN evidence = 2055434026 /* heart_failure.hf_code */ THEN n_rows ELSE 0 END
+    ) OVER (PARTITION BY patient_id ORDER BY day RANGE BETWEEN 365 PRECEDING AND CURRENT ROW) AS in_frame_0,
+    SUM(
+      CASE
+        WHEN evidence = 2082671494 /* heart_failure.loop_diuretic */
+        THEN n_rows
+        ELSE 0
+      END
+    ) OVER (PARTITION BY patient_id ORDER BY day RANGE BETWEEN 365 PRECEDING AND CURRENT ROW) AS in_frame_1
   FROM evidence_events
   WHERE
-    evidence IN ('heart_failure.hf_code', 'heart_failure.loop_diuretic')
+    evidence IN (
+      2055434026, /* heart_failure.hf_code */
+      2082671494 /* heart_failure.loop_diuretic */
+    )
 ) AS counted
 WHERE
   in_frame_0 >= 1 AND in_frame_1 >= 1
@@ -1251,10 +1350,10 @@ FROM (
     patient_id,
     evidence,
     event_date,
-    SUM(CASE WHEN evidence = 'hypertension.htn_code' THEN 1 ELSE 0 END) OVER (PARTITION BY patient_id ORDER BY day RANGE BETWEEN 730 PRECEDING AND CURRENT ROW) AS in_frame_0
+    SUM(CASE WHEN evidence = 2001683759 /* hypertension.htn_code */ THEN 1 ELSE 0 END) OVER (PARTITION BY patient_id ORDER BY day RANGE BETWEEN 730 PRECEDING AND CURRENT ROW) AS in_frame_0
   FROM evidence_events
   WHERE
-    evidence IN ('hypertension.htn_code')
+    evidence IN (2001683759 /* hypertension.htn_code */)
 ) AS counted
 WHERE
   in_frame_0 >= 2
@@ -1271,11 +1370,22 @@ FROM (
     patient_id,
     evidence,
     event_date,
-    SUM(CASE WHEN evidence = 'hypertension.antihypertensive' THEN n_rows ELSE 0 END) OVER (PARTITION BY patient_id ORDER BY day RANGE BETWEEN 365 PRECEDING AND CURRENT ROW) AS in_frame_0,
-    SUM(CASE WHEN evidence = 'hypertension.htn_code' THEN n_rows ELSE 0 END) OVER (PARTITION BY patient_id ORDER BY day RANGE BETWEEN 365 PRECEDING AND CURRENT ROW) AS in_frame_1
+    SUM(
+      CASE
+        WHEN evidence = 1369371461 /* hypertension.antihypertensive */
+        THEN n_rows
+        ELSE 0
+      END
+    ) OVER (PARTITION BY patient_id ORDER BY day RANGE BETWEEN 365 PRECEDING AND CURRENT ROW) AS in_frame_0,
+    SUM(
+      CASE WHEN evidence = 2001683759 /* hypertension.htn_code */ THEN n_rows ELSE 0 END
+    ) OVER (PARTITION BY patient_id ORDER BY day RANGE BETWEEN 365 PRECEDING AND CURRENT ROW) AS in_frame_1
   FROM evidence_events
   WHERE
-    evidence IN ('hypertension.antihypertensive', 'hypertension.htn_code')
+    evidence IN (
+      1369371461, /* hypertension.antihypertensive */
+      2001683759 /* hypertension.htn_code */
+    )
 ) AS counted
 WHERE
   in_frame_0 >= 1 AND in_frame_1 >= 1
@@ -1365,7 +1475,7 @@ LEFT JOIN (
     COALESCE(
       SUM(
         CASE
-          WHEN e.evidence = '@charlson.myocardial_infarction' AND e_offset <= 0
+          WHEN e.evidence = 703042088 /* @charlson.myocardial_infarction */ AND e_offset <= 0
           THEN e.n_rows
           ELSE 0
         END
@@ -1375,7 +1485,8 @@ LEFT JOIN (
     COALESCE(
       SUM(
         CASE
-          WHEN e.evidence = '@charlson.congestive_heart_failure' AND e_offset <= 0
+          WHEN e.evidence = 1177630332 /* @charlson.congestive_heart_failure */
+          AND e_offset <= 0
           THEN e.n_rows
           ELSE 0
         END
@@ -1385,7 +1496,8 @@ LEFT JOIN (
     COALESCE(
       SUM(
         CASE
-          WHEN e.evidence = '@charlson.peripheral_vascular_disease' AND e_offset <= 0
+          WHEN e.evidence = 416310112 /* @charlson.peripheral_vascular_disease */
+          AND e_offset <= 0
           THEN e.n_rows
           ELSE 0
         END
@@ -1395,7 +1507,7 @@ LEFT JOIN (
     COALESCE(
       SUM(
         CASE
-          WHEN e.evidence = '@charlson.cerebrovascular_disease' AND e_offset <= 0
+          WHEN e.evidence = 1577684049 /* @charlson.cerebrovascular_disease */ AND e_offset <= 0
           THEN e.n_rows
           ELSE 0
         END
@@ -1405,7 +1517,7 @@ LEFT JOIN (
     COALESCE(
       SUM(
         CASE
-          WHEN e.evidence = '@charlson.dementia' AND e_offset <= 0
+          WHEN e.evidence = 684695303 /* @charlson.dementia */ AND e_offset <= 0
           THEN e.n_rows
           ELSE 0
         END
@@ -1415,7 +1527,8 @@ LEFT JOIN (
     COALESCE(
       SUM(
         CASE
-          WHEN e.evidence = '@charlson.chronic_pulmonary_disease' AND e_offset <= 0
+          WHEN e.evidence = 294785012 /* @charlson.chronic_pulmonary_disease */
+          AND e_offset <= 0
           THEN e.n_rows
           ELSE 0
         END
@@ -1425,7 +1538,7 @@ LEFT JOIN (
     COALESCE(
       SUM(
         CASE
-          WHEN e.evidence = '@charlson.rheumatic_disease' AND e_offset <= 0
+          WHEN e.evidence = 264104370 /* @charlson.rheumatic_disease */ AND e_offset <= 0
           THEN e.n_rows
           ELSE 0
         END
@@ -1435,7 +1548,7 @@ LEFT JOIN (
     COALESCE(
       SUM(
         CASE
-          WHEN e.evidence = '@charlson.peptic_ulcer_disease' AND e_offset <= 0
+          WHEN e.evidence = 1714082935 /* @charlson.peptic_ulcer_disease */ AND e_offset <= 0
           THEN e.n_rows
           ELSE 0
         END
@@ -1445,7 +1558,7 @@ LEFT JOIN (
     COALESCE(
       SUM(
         CASE
-          WHEN e.evidence = '@charlson.mild_liver_disease' AND e_offset <= 0
+          WHEN e.evidence = 300580152 /* @charlson.mild_liver_disease */ AND e_offset <= 0
           THEN e.n_rows
           ELSE 0
         END
@@ -1455,7 +1568,8 @@ LEFT JOIN (
     COALESCE(
       SUM(
         CASE
-          WHEN e.evidence = '@charlson.diabetes_without_complications' AND e_offset <= 0
+          WHEN e.evidence = 696433381 /* @charlson.diabetes_without_complications */
+          AND e_offset <= 0
           THEN e.n_rows
           ELSE 0
         END
@@ -1465,7 +1579,8 @@ LEFT JOIN (
     COALESCE(
       SUM(
         CASE
-          WHEN e.evidence = '@charlson.diabetes_with_complications' AND e_offset <= 0
+          WHEN e.evidence = 1855815331 /* @charlson.diabetes_with_complications */
+          AND e_offset <= 0
           THEN e.n_rows
           ELSE 0
         END
@@ -1475,7 +1590,7 @@ LEFT JOIN (
     COALESCE(
       SUM(
         CASE
-          WHEN e.evidence = '@charlson.hemiplegia_paraplegia' AND e_offset <= 0
+          WHEN e.evidence = 103697730 /* @charlson.hemiplegia_paraplegia */ AND e_offset <= 0
           THEN e.n_rows
           ELSE 0
         END
@@ -1485,7 +1600,7 @@ LEFT JOIN (
     COALESCE(
       SUM(
         CASE
-          WHEN e.evidence = '@charlson.renal_disease' AND e_offset <= 0
+          WHEN e.evidence = 752661743 /* @charlson.renal_disease */ AND e_offset <= 0
           THEN e.n_rows
           ELSE 0
         END
@@ -1495,7 +1610,7 @@ LEFT JOIN (
     COALESCE(
       SUM(
         CASE
-          WHEN e.evidence = '@charlson.malignancy' AND e_offset <= 0
+          WHEN e.evidence = 1617294027 /* @charlson.malignancy */ AND e_offset <= 0
           THEN e.n_rows
           ELSE 0
         END
@@ -1505,7 +1620,8 @@ LEFT JOIN (
     COALESCE(
       SUM(
         CASE
-          WHEN e.evidence = '@charlson.moderate_severe_liver_disease' AND e_offset <= 0
+          WHEN e.evidence = 2204522 /* @charlson.moderate_severe_liver_disease */
+          AND e_offset <= 0
           THEN e.n_rows
           ELSE 0
         END
@@ -1515,7 +1631,7 @@ LEFT JOIN (
     COALESCE(
       SUM(
         CASE
-          WHEN e.evidence = '@charlson.metastatic_solid_tumour' AND e_offset <= 0
+          WHEN e.evidence = 1188480176 /* @charlson.metastatic_solid_tumour */ AND e_offset <= 0
           THEN e.n_rows
           ELSE 0
         END
@@ -1525,7 +1641,7 @@ LEFT JOIN (
     COALESCE(
       SUM(
         CASE
-          WHEN e.evidence = '@charlson.hiv_aids' AND e_offset <= 0
+          WHEN e.evidence = 818584883 /* @charlson.hiv_aids */ AND e_offset <= 0
           THEN e.n_rows
           ELSE 0
         END
@@ -1549,23 +1665,23 @@ LEFT JOIN (
       FROM evidence_events
       WHERE
         evidence IN (
-          '@charlson.cerebrovascular_disease',
-          '@charlson.chronic_pulmonary_disease',
-          '@charlson.congestive_heart_failure',
-          '@charlson.dementia',
-          '@charlson.diabetes_with_complications',
-          '@charlson.diabetes_without_complications',
-          '@charlson.hemiplegia_paraplegia',
-          '@charlson.hiv_aids',
-          '@charlson.malignancy',
-          '@charlson.metastatic_solid_tumour',
-          '@charlson.mild_liver_disease',
-          '@charlson.moderate_severe_liver_disease',
-          '@charlson.myocardial_infarction',
-          '@charlson.peptic_ulcer_disease',
-          '@charlson.peripheral_vascular_disease',
-          '@charlson.renal_disease',
-          '@charlson.rheumatic_disease'
+          1577684049, /* @charlson.cerebrovascular_disease */
+          294785012, /* @charlson.chronic_pulmonary_disease */
+          1177630332, /* @charlson.congestive_heart_failure */
+          684695303, /* @charlson.dementia */
+          1855815331, /* @charlson.diabetes_with_complications */
+          696433381, /* @charlson.diabetes_without_complications */
+          103697730, /* @charlson.hemiplegia_paraplegia */
+          818584883, /* @charlson.hiv_aids */
+          1617294027, /* @charlson.malignancy */
+          1188480176, /* @charlson.metastatic_solid_tumour */
+          300580152, /* @charlson.mild_liver_disease */
+          2204522, /* @charlson.moderate_severe_liver_disease */
+          703042088, /* @charlson.myocardial_infarction */
+          1714082935, /* @charlson.peptic_ulcer_disease */
+          416310112, /* @charlson.peripheral_vascular_disease */
+          752661743, /* @charlson.renal_disease */
+          264104370 /* @charlson.rheumatic_disease */
         )
     ) AS e
       ON e.patient_id = i.patient_id AND e.event_date <= i.index_date
@@ -2128,7 +2244,7 @@ SELECT
 FROM src_measurements;
 
 -- stage quality_log [table]: every extract row: used, or set aside with the first reason that applies
--- reads: measurement_rows, patient_base, src_diagnoses, src_encounters, src_patients, src_prescriptions
+-- reads: extract_codes, measurement_rows, patient_base, src_diagnoses, src_encounters, src_patients, src_prescriptions
 WITH summary AS (
   SELECT
     reason,
@@ -2228,38 +2344,8 @@ WITH summary AS (
         THEN 'orphan patient'
         WHEN r.row_date IS NULL
         THEN 'unparseable date'
-        WHEN NOT CASE
-          WHEN NOT COALESCE(UPPER(TRIM(CAST(r.code_system AS TEXT))), '') IN ('ICD9', 'ICD10')
-          THEN 'unknown code system'
-          WHEN COALESCE(UPPER(TRIM(CAST(r.code_system AS TEXT))), '') = 'ICD9'
-          AND NOT REGEXP_MATCHES(
-            COALESCE(REPLACE(REPLACE(UPPER(r.code), '.', ''), ' ', ''), ''),
-            '^([0-9]{3}([0-9]{1,2})?|V[0-9]{2}([0-9]{1,2})?|E[0-9]{3}([0-9])?)$'
-          )
-          THEN 'malformed code'
-          WHEN COALESCE(UPPER(TRIM(CAST(r.code_system AS TEXT))), '') = 'ICD10'
-          AND NOT REGEXP_MATCHES(
-            COALESCE(REPLACE(REPLACE(UPPER(r.code), '.', ''), ' ', ''), ''),
-            '^[A-Z][0-9][0-9A-Z]([0-9A-Z]{1,4})?$'
-          )
-          THEN 'malformed code'
-        END IS NULL
-        THEN CASE
-          WHEN NOT COALESCE(UPPER(TRIM(CAST(r.code_system AS TEXT))), '') IN ('ICD9', 'ICD10')
-          THEN 'unknown code system'
-          WHEN COALESCE(UPPER(TRIM(CAST(r.code_system AS TEXT))), '') = 'ICD9'
-          AND NOT REGEXP_MATCHES(
-            COALESCE(REPLACE(REPLACE(UPPER(r.code), '.', ''), ' ', ''), ''),
-            '^([0-9]{3}([0-9]{1,2})?|V[0-9]{2}([0-9]{1,2})?|E[0-9]{3}([0-9])?)$'
-          )
-          THEN 'malformed code'
-          WHEN COALESCE(UPPER(TRIM(CAST(r.code_system AS TEXT))), '') = 'ICD10'
-          AND NOT REGEXP_MATCHES(
-            COALESCE(REPLACE(REPLACE(UPPER(r.code), '.', ''), ' ', ''), ''),
-            '^[A-Z][0-9][0-9A-Z]([0-9A-Z]{1,4})?$'
-          )
-          THEN 'malformed code'
-        END
+        WHEN NOT c.problem IS NULL
+        THEN c.problem
         WHEN r.row_date > CAST('2019-12-31' AS DATE)
         THEN 'after end of data'
         WHEN NOT p.death_date IS NULL AND r.row_date > p.death_date
@@ -2271,7 +2357,11 @@ WITH summary AS (
     FROM (
       SELECT
         *,
-        TRY_CAST(event_date AS DATE) AS row_date
+        TRY_CAST(event_date AS DATE) AS row_date,
+        CAST(code_system AS TEXT) AS raw_system,
+        CAST(code AS TEXT) AS raw_code,
+        CAST(source AS TEXT) AS raw_source,
+        'diagnoses' AS source_table
       FROM (
         SELECT
           patient_id,
@@ -2292,6 +2382,11 @@ WITH summary AS (
     ) AS r
     LEFT JOIN patient_base AS p
       ON p.patient_id = r.patient_id
+    LEFT JOIN extract_codes AS c
+      ON r.source_table = c.source_table
+      AND r.raw_system IS NOT DISTINCT FROM c.raw_system
+      AND r.raw_code IS NOT DISTINCT FROM c.raw_code
+      AND r.raw_source IS NOT DISTINCT FROM c.raw_source
   ) AS c
   GROUP BY
     reason
@@ -2309,20 +2404,8 @@ WITH summary AS (
         THEN 'orphan patient'
         WHEN r.row_date IS NULL
         THEN 'unparseable date'
-        WHEN NOT CASE
-          WHEN NOT REGEXP_MATCHES(
-            COALESCE(REPLACE(REPLACE(UPPER(r.atc), '.', ''), ' ', ''), ''),
-            '^[A-Z]([0-9]{2}([A-Z]([A-Z]([0-9]{2})?)?)?)?$'
-          )
-          THEN 'malformed code'
-        END IS NULL
-        THEN CASE
-          WHEN NOT REGEXP_MATCHES(
-            COALESCE(REPLACE(REPLACE(UPPER(r.atc), '.', ''), ' ', ''), ''),
-            '^[A-Z]([0-9]{2}([A-Z]([A-Z]([0-9]{2})?)?)?)?$'
-          )
-          THEN 'malformed code'
-        END
+        WHEN NOT c.problem IS NULL
+        THEN c.problem
         WHEN r.row_date > CAST('2019-12-31' AS DATE)
         THEN 'after end of data'
         WHEN NOT p.death_date IS NULL AND r.row_date > p.death_date
@@ -2334,7 +2417,11 @@ WITH summary AS (
     FROM (
       SELECT
         *,
-        TRY_CAST(start_date AS DATE) AS row_date
+        TRY_CAST(start_date AS DATE) AS row_date,
+        CAST(NULL AS TEXT) AS raw_system,
+        CAST(atc AS TEXT) AS raw_code,
+        CAST(NULL AS TEXT) AS raw_source,
+        'prescriptions' AS source_table
       FROM (
         SELECT
           patient_id,
@@ -2353,6 +2440,11 @@ WITH summary AS (
     ) AS r
     LEFT JOIN patient_base AS p
       ON p.patient_id = r.patient_id
+    LEFT JOIN extract_codes AS c
+      ON r.source_table = c.source_table
+      AND r.raw_system IS NOT DISTINCT FROM c.raw_system
+      AND r.raw_code IS NOT DISTINCT FROM c.raw_code
+      AND r.raw_source IS NOT DISTINCT FROM c.raw_source
   ) AS c
   GROUP BY
     reason

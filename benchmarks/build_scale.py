@@ -1,0 +1,201 @@
+"""Build time and memory of the demo study against the time DuckDB needs to read the extract.
+
+A benchmark, not a test: it prints figures and asserts nothing about them.
+
+    python benchmarks/build_scale.py --patients 200000 --patients 2000000 [--repeat 3]
+
+For each size it generates a synthetic Parquet extract with ``ascertain synth`` (or reuses one
+already in ``benchmarks/data/``, which is git-ignored), then measures in the same run:
+
+(a) the scan floor: DuckDB reading every column the study reads, once, in one query per
+    table that folds each column into ``BIT_XOR(HASH(column))`` (so every value is read and
+    no Parquet statistics can answer it);
+(b) the full ``ascertain build`` of the study, in a child process;
+(c) the ratio b / a;
+(d) the build's peak resident memory (``ru_maxrss`` of the child, from ``os.wait4``);
+(e) the build again with ``--memory-limit`` (default 1GB) and ``--threads 2``.
+
+(a) and (b) are the best of ``--repeat`` runs; (e) runs once. The per-stage seconds of the
+best build come from its ``run.json``. Figures go to ``benchmarks/results/build_scale.json``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import duckdb
+from sqlglot import exp
+
+from pipeline._build import plan_study
+from pipeline.extract import discover_extract
+
+ROOT = Path(__file__).resolve().parent
+DEMO = ROOT.parent / "definitions" / "studies" / "orvane_multimorbidity.yaml"
+DATA = ROOT / "data"
+RESULTS = ROOT / "results" / "build_scale.json"
+
+
+def _cli(*args: str) -> list[str]:
+    return [sys.executable, "-c", "from pipeline.cli import app; app()", *args]
+
+
+def _child(cmd: list[str]) -> tuple[float, float, int]:
+    """Run a command; return its wall seconds, CPU seconds and peak RSS in MB."""
+    started = time.perf_counter()
+    child = subprocess.Popen(cmd, stdout=subprocess.DEVNULL)
+    _, status, usage = os.wait4(child.pid, 0)
+    wall = time.perf_counter() - started
+    code = os.waitstatus_to_exitcode(status)
+    if code:
+        raise SystemExit(f"{' '.join(cmd[3:])} failed with exit code {code}")
+    return wall, usage.ru_utime + usage.ru_stime, round(usage.ru_maxrss / 1024)
+
+
+def _extract(patients: int, seed: int) -> Path:
+    folder = DATA / f"synth_{patients}_seed{seed}"
+    if not (folder / "scenario.json").exists():
+        shutil.rmtree(folder, ignore_errors=True)
+        folder.parent.mkdir(parents=True, exist_ok=True)
+        print(f"generating {patients:,} patients in {folder} ...", file=sys.stderr, flush=True)
+        _child(_cli("synth", str(folder), "--patients", str(patients), "--seed", str(seed)))
+    return folder
+
+
+def _floor_queries(study: Path, extract: Path) -> list[str]:
+    """One query per table reading every column the study reads from it."""
+    plan = plan_study(study)
+    tables = discover_extract(extract, plan.sources)
+    queries = []
+    for source in plan.sources:
+        table = tables[source.name]
+        present = [c for c in source.columns if c in table.columns]
+        files = exp.Array(expressions=[exp.Literal.string(str(f)) for f in table.files])
+        folds = [exp.func("BIT_XOR", exp.func("HASH", exp.column(c))) for c in present]
+        select = exp.select(*folds).from_(exp.Table(this=exp.func("read_parquet", files)))
+        queries.append(select.sql("duckdb"))
+    return queries
+
+
+def _scan_floor(queries: list[str], threads: int | None) -> float:
+    con = duckdb.connect()
+    if threads:
+        con.execute("SET threads = ?", [threads])
+    started = time.perf_counter()
+    for sql in queries:
+        con.execute(sql).fetchall()
+    seconds = time.perf_counter() - started
+    con.close()
+    return seconds
+
+
+def _build(study: Path, extract: Path, out: Path, *extra: str) -> dict[str, object]:
+    args = ["build", str(study), "--extract", str(extract), "--out", str(out), "--quiet", *extra]
+    wall, cpu, rss = _child(_cli(*args))
+    run = json.loads((out / "run.json").read_text(encoding="utf-8"))
+    stages = sorted(run["stages"], key=lambda s: -s["seconds"])
+    return {
+        "wall_seconds": round(wall, 2),
+        "cpu_seconds": round(cpu, 1),
+        "peak_rss_mb": rss,
+        "cohort_patients": run["counts"]["cohort_patients"],
+        "slowest_stages": {s["name"]: s["seconds"] for s in stages[:8]},
+    }
+
+
+def _measure(args: argparse.Namespace, patients: int) -> dict[str, object]:
+    extract = _extract(patients, args.seed)
+    queries = _floor_queries(args.study, extract)
+    floors = [_scan_floor(queries, args.threads) for _ in range(args.repeat)]
+    out = Path(tempfile.mkdtemp(prefix="build-scale-"))
+    try:
+        threads = ["--threads", str(args.threads)] if args.threads else []
+        builds = [
+            _build(args.study, extract, out / f"run{i}", *threads) for i in range(args.repeat)
+        ]
+        best = min(builds, key=lambda b: b["wall_seconds"])
+        limited = _build(
+            args.study,
+            extract,
+            out / "limited",
+            "--memory-limit",
+            args.memory_limit,
+            "--threads",
+            "2",
+        )
+    finally:
+        shutil.rmtree(out, ignore_errors=True)
+    rows = {}
+    con = duckdb.connect()
+    for parquet in sorted(extract.glob("*.parquet")):
+        count = exp.select(exp.func("COUNT", exp.Star())).from_(
+            exp.Table(this=exp.func("read_parquet", exp.Literal.string(str(parquet))))
+        )
+        rows[parquet.stem] = con.execute(count.sql("duckdb")).fetchall()[0][0]
+    con.close()
+    floor = min(floors)
+    return {
+        "patients": patients,
+        "event_rows": sum(n for t, n in rows.items() if t not in ("patients", "truth")),
+        "parquet_mb": round(sum(p.stat().st_size for p in extract.glob("*.parquet")) / 2**20),
+        "scan_floor_seconds": round(floor, 2),
+        "build": best,
+        "build_all_seconds": [b["wall_seconds"] for b in builds],
+        "ratio": round(float(best["wall_seconds"]) / floor, 1),  # type: ignore[arg-type]
+        "memory_limited": {"memory_limit": args.memory_limit, "threads": 2, **limited},
+    }
+
+
+def _table(results: list[dict[str, object]]) -> str:
+    head = ["patients", "event rows", "floor s", "build s", "ratio", "peak MB", "limited s",
+            "limited peak MB"]  # fmt: skip
+    lines = [" | ".join(head), " | ".join("---" for _ in head)]
+    for r in results:
+        build, limited = r["build"], r["memory_limited"]
+        assert isinstance(build, dict) and isinstance(limited, dict)
+        cells = [f"{r['patients']:,}", f"{r['event_rows']:,}", f"{r['scan_floor_seconds']}",
+                 f"{build['wall_seconds']}", f"{r['ratio']}", f"{build['peak_rss_mb']:,}",
+                 f"{limited['wall_seconds']}", f"{limited['peak_rss_mb']:,}"]  # fmt: skip
+        lines.append(" | ".join(cells))
+    return "\n".join(lines)
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--patients", type=int, action="append", help="repeatable")
+    parser.add_argument("--seed", type=int, default=1)
+    parser.add_argument("--repeat", type=int, default=3, help="best of this many runs")
+    parser.add_argument("--study", type=Path, default=DEMO)
+    parser.add_argument("--threads", type=int, help="engine threads (default: all cores)")
+    parser.add_argument("--memory-limit", default="1GB", help="for the memory-limited run")
+    args = parser.parse_args()
+    results = []
+    for patients in args.patients or [200_000, 2_000_000]:
+        results.append(_measure(args, patients))
+        print(json.dumps(results[-1], indent=2), file=sys.stderr, flush=True)
+    print(f"study {args.study.name}; {os.cpu_count()} cores; {platform.platform()}")
+    print(_table(results))
+    RESULTS.parent.mkdir(parents=True, exist_ok=True)
+    meta = {
+        "study": str(args.study),
+        "cpus": os.cpu_count(),
+        "platform": platform.platform(),
+        "python": platform.python_version(),
+        "duckdb": duckdb.__version__,
+        "repeat": args.repeat,
+        "results": results,
+    }
+    RESULTS.write_text(json.dumps(meta, indent=2, sort_keys=True) + "\n", encoding="utf-8")
+    print(f"figures written to {RESULTS}")
+
+
+if __name__ == "__main__":
+    main()
