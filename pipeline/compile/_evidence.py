@@ -212,7 +212,8 @@ def evidence_stages(ctx: CompileContext) -> tuple[Stage, ...]:
                 "coded_evidence",
                 query(_CODED_EVIDENCE, rows=counted.subquery("m")),
                 ("coded_matches",),
-                "matched rows counted per patient, evidence and day",
+                "matched rows counted per patient, evidence and day (kept only in evidence_events)",
+                kind="view",
             )
         )
         parts.append(query("SELECT patient_id, evidence, event_date, n_rows FROM coded_evidence"))

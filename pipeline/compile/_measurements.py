@@ -21,12 +21,19 @@ from pipeline.measures import DERIVED_FROM, MEASURES, conversion_rows
 READING_PATTERN = "^(<=|>=|<|>)?[ ]*([0-9]+([.,][0-9]+)?)[ ]*(.*)$"
 DECIMAL_COMMA_PATTERN = "^[0-9]+,[0-9]{1,2}$"
 
+# A numeric value is never missing, so the text test of ``value_missing`` (a cast of every
+# number to text, costly at tens of millions of rows) runs only on the few other rows.
 _MEASUREMENT_ROWS = """
 WITH read AS (
   SELECT
     patient_id,
     TRY_CAST(obs_date AS DATE) AS obs_date,
     LOWER(TRIM(CAST(measure AS VARCHAR))) AS measure,
+    TRY_CAST(value AS DOUBLE) AS value_number,
+    CASE
+      WHEN TRY_CAST(value AS DOUBLE) IS NOT NULL THEN FALSE
+      ELSE NULLIF(TRIM(CAST(value AS VARCHAR)), '') IS NULL
+    END AS value_missing,
     NULLIF(TRIM(CAST(value AS VARCHAR)), '') AS value_given,
     NULLIF(TRIM(CAST(value_text AS VARCHAR)), '') AS text_given,
     NULLIF(TRIM(CAST(unit AS VARCHAR)), '') AS unit_given,
@@ -46,18 +53,18 @@ WITH read AS (
     obs_date,
     measure,
     CASE
-      WHEN value_given IS NOT NULL THEN TRY_CAST(value_given AS DOUBLE)
+      WHEN NOT value_missing THEN value_number
       WHEN text_number LIKE '%,%' AND REGEXP_MATCHES(text_number, :decimal_comma)
         THEN TRY_CAST(REPLACE(text_number, ',', '.') AS DOUBLE)
       WHEN text_number LIKE '%,%' THEN NULL
       ELSE TRY_CAST(text_number AS DOUBLE)
     END AS reading,
-    CASE WHEN value_given IS NULL THEN text_qualifier END AS qualifier,
-    COALESCE(unit_given, CASE WHEN value_given IS NULL THEN text_unit END) AS unit,
-    value_given IS NULL AND text_unit IS NOT NULL AND unit_given IS NOT NULL
+    CASE WHEN value_missing THEN text_qualifier END AS qualifier,
+    COALESCE(unit_given, CASE WHEN value_missing THEN text_unit END) AS unit,
+    value_missing AND text_unit IS NOT NULL AND unit_given IS NOT NULL
       AND text_unit <> unit_given AS unit_conflict,
-    value_given IS NULL AND text_given IS NULL AS empty,
-    CASE WHEN value_given IS NULL THEN LOWER(text_given) END AS category,
+    value_missing AND text_given IS NULL AS empty,
+    CASE WHEN value_missing THEN LOWER(text_given) END AS category,
     value_given,
     text_given,
     unit_given,

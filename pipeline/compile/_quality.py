@@ -49,7 +49,7 @@ _SUMMARY = """
 SELECT
   reason,
   :table_name AS source_table,
-  SUM(1) AS distinct_rows,
+  COUNT(*) AS distinct_rows,
   SUM(copies - 1) AS duplicates,
   MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
 FROM :classified

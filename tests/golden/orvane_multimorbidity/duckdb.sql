@@ -175,6 +175,12 @@ WITH read AS (
     patient_id,
     TRY_CAST(obs_date AS DATE) AS obs_date,
     LOWER(TRIM(CAST(measure AS TEXT))) AS measure,
+    TRY_CAST(value AS DOUBLE) AS value_number,
+    CASE
+      WHEN NOT TRY_CAST(value AS DOUBLE) IS NULL
+      THEN FALSE
+      ELSE NULLIF(TRIM(CAST(value AS TEXT)), '') IS NULL
+    END AS value_missing,
     NULLIF(TRIM(CAST(value AS TEXT)), '') AS value_given,
     NULLIF(TRIM(CAST(value_text AS TEXT)), '') AS text_given,
     NULLIF(TRIM(CAST(unit AS TEXT)), '') AS unit_given,
@@ -221,22 +227,22 @@ WITH read AS (
     obs_date,
     measure,
     CASE
-      WHEN NOT value_given IS NULL
-      THEN TRY_CAST(value_given AS DOUBLE)
+      WHEN NOT value_missing
+      THEN value_number
       WHEN text_number LIKE '%,%' AND REGEXP_MATCHES(text_number, '^[0-9]+,[0-9]{1,2}$')
       THEN TRY_CAST(REPLACE(text_number, ',', '.') AS DOUBLE)
       WHEN text_number LIKE '%,%'
       THEN NULL
       ELSE TRY_CAST(text_number AS DOUBLE)
     END AS reading,
-    CASE WHEN value_given IS NULL THEN text_qualifier END AS qualifier,
-    COALESCE(unit_given, CASE WHEN value_given IS NULL THEN text_unit END) AS unit,
-    value_given IS NULL
+    CASE WHEN value_missing THEN text_qualifier END AS qualifier,
+    COALESCE(unit_given, CASE WHEN value_missing THEN text_unit END) AS unit,
+    value_missing
     AND NOT text_unit IS NULL
     AND NOT unit_given IS NULL
     AND text_unit <> unit_given AS unit_conflict,
-    value_given IS NULL AND text_given IS NULL AS empty,
-    CASE WHEN value_given IS NULL THEN LOWER(text_given) END AS category,
+    value_missing AND text_given IS NULL AS empty,
+    CASE WHEN value_missing THEN LOWER(text_given) END AS category,
     value_given,
     text_given,
     unit_given,
@@ -374,6 +380,12 @@ FROM (
       patient_id,
       TRY_CAST(obs_date AS DATE) AS obs_date,
       LOWER(TRIM(CAST(measure AS TEXT))) AS measure,
+      TRY_CAST(value AS DOUBLE) AS value_number,
+      CASE
+        WHEN NOT TRY_CAST(value AS DOUBLE) IS NULL
+        THEN FALSE
+        ELSE NULLIF(TRIM(CAST(value AS TEXT)), '') IS NULL
+      END AS value_missing,
       NULLIF(TRIM(CAST(value AS TEXT)), '') AS value_given,
       NULLIF(TRIM(CAST(value_text AS TEXT)), '') AS text_given,
       NULLIF(TRIM(CAST(unit AS TEXT)), '') AS unit_given,
@@ -422,22 +434,22 @@ FROM (
       obs_date,
       measure,
       CASE
-        WHEN NOT value_given IS NULL
-        THEN TRY_CAST(value_given AS DOUBLE)
+        WHEN NOT value_missing
+        THEN value_number
         WHEN text_number LIKE '%,%' AND REGEXP_MATCHES(text_number, '^[0-9]+,[0-9]{1,2}$')
         THEN TRY_CAST(REPLACE(text_number, ',', '.') AS DOUBLE)
         WHEN text_number LIKE '%,%'
         THEN NULL
         ELSE TRY_CAST(text_number AS DOUBLE)
       END AS reading,
-      CASE WHEN value_given IS NULL THEN text_qualifier END AS qualifier,
-      COALESCE(unit_given, CASE WHEN value_given IS NULL THEN text_unit END) AS unit,
-      value_given IS NULL
+      CASE WHEN value_missing THEN text_qualifier END AS qualifier,
+      COALESCE(unit_given, CASE WHEN value_missing THEN text_unit END) AS unit,
+      value_missing
       AND NOT text_unit IS NULL
       AND NOT unit_given IS NULL
       AND text_unit <> unit_given AS unit_conflict,
-      value_given IS NULL AND text_given IS NULL AS empty,
-      CASE WHEN value_given IS NULL THEN LOWER(text_given) END AS category,
+      value_missing AND text_given IS NULL AS empty,
+      CASE WHEN value_missing THEN LOWER(text_given) END AS category,
       value_given,
       text_given,
       unit_given,
@@ -1038,7 +1050,7 @@ JOIN code_matches AS m
 WHERE
   m.excluded OR m.min_days IS NULL OR e.duration_days >= m.min_days;
 
--- stage coded_evidence [table]: matched rows counted per patient, evidence and day
+-- stage coded_evidence [view]: matched rows counted per patient, evidence and day (kept only in evidence_events)
 -- reads: coded_matches
 SELECT
   patient_id,
@@ -2249,7 +2261,7 @@ WITH summary AS (
   SELECT
     reason,
     'patients' AS source_table,
-    SUM(1) AS distinct_rows,
+    COUNT(*) AS distinct_rows,
     SUM(copies - 1) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
@@ -2287,7 +2299,7 @@ WITH summary AS (
   SELECT
     reason,
     'encounters' AS source_table,
-    SUM(1) AS distinct_rows,
+    COUNT(*) AS distinct_rows,
     SUM(copies - 1) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
@@ -2334,7 +2346,7 @@ WITH summary AS (
   SELECT
     reason,
     'diagnoses' AS source_table,
-    SUM(1) AS distinct_rows,
+    COUNT(*) AS distinct_rows,
     SUM(copies - 1) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
@@ -2394,7 +2406,7 @@ WITH summary AS (
   SELECT
     reason,
     'prescriptions' AS source_table,
-    SUM(1) AS distinct_rows,
+    COUNT(*) AS distinct_rows,
     SUM(copies - 1) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
@@ -2452,7 +2464,7 @@ WITH summary AS (
   SELECT
     reason,
     'measurements' AS source_table,
-    SUM(1) AS distinct_rows,
+    COUNT(*) AS distinct_rows,
     SUM(copies - 1) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (

@@ -272,6 +272,18 @@ WITH read AS (
       ) AS DATE)
     END AS obs_date,
     LOWER(TRIM(CAST(measure AS STRING))) AS measure,
+    CASE
+      WHEN NOT CAST(value AS STRING) RLIKE '[0-9.][dDfF]\\s*$'
+      THEN TRY_CAST(value AS DOUBLE)
+    END AS value_number,
+    CASE
+      WHEN NOT CASE
+        WHEN NOT CAST(value AS STRING) RLIKE '[0-9.][dDfF]\\s*$'
+        THEN TRY_CAST(value AS DOUBLE)
+      END IS NULL
+      THEN FALSE
+      ELSE NULLIF(TRIM(CAST(value AS STRING)), '') IS NULL
+    END AS value_missing,
     NULLIF(TRIM(CAST(value AS STRING)), '') AS value_given,
     NULLIF(TRIM(CAST(value_text AS STRING)), '') AS text_given,
     NULLIF(TRIM(CAST(unit AS STRING)), '') AS unit_given,
@@ -315,11 +327,8 @@ WITH read AS (
     obs_date,
     measure,
     CASE
-      WHEN NOT value_given IS NULL
-      THEN CASE
-        WHEN NOT CAST(value_given AS STRING) RLIKE '[0-9.][dDfF]\\s*$'
-        THEN TRY_CAST(value_given AS DOUBLE)
-      END
+      WHEN NOT value_missing
+      THEN value_number
       WHEN text_number LIKE '%,%' AND text_number RLIKE '^[0-9]+,[0-9]{1,2}$'
       THEN CASE
         WHEN NOT CAST(REPLACE(text_number, ',', '.') AS STRING) RLIKE '[0-9.][dDfF]\\s*$'
@@ -332,14 +341,14 @@ WITH read AS (
         THEN TRY_CAST(text_number AS DOUBLE)
       END
     END AS reading,
-    CASE WHEN value_given IS NULL THEN text_qualifier END AS qualifier,
-    COALESCE(unit_given, CASE WHEN value_given IS NULL THEN text_unit END) AS unit,
-    value_given IS NULL
+    CASE WHEN value_missing THEN text_qualifier END AS qualifier,
+    COALESCE(unit_given, CASE WHEN value_missing THEN text_unit END) AS unit,
+    value_missing
     AND NOT text_unit IS NULL
     AND NOT unit_given IS NULL
     AND text_unit <> unit_given AS unit_conflict,
-    value_given IS NULL AND text_given IS NULL AS empty,
-    CASE WHEN value_given IS NULL THEN LOWER(text_given) END AS category,
+    value_missing AND text_given IS NULL AS empty,
+    CASE WHEN value_missing THEN LOWER(text_given) END AS category,
     value_given,
     text_given,
     unit_given,
@@ -483,6 +492,18 @@ WITH read AS (
       ) AS DATE)
     END AS obs_date,
     LOWER(TRIM(CAST(measure AS STRING))) AS measure,
+    CASE
+      WHEN NOT CAST(value AS STRING) RLIKE '[0-9.][dDfF]\\s*$'
+      THEN TRY_CAST(value AS DOUBLE)
+    END AS value_number,
+    CASE
+      WHEN NOT CASE
+        WHEN NOT CAST(value AS STRING) RLIKE '[0-9.][dDfF]\\s*$'
+        THEN TRY_CAST(value AS DOUBLE)
+      END IS NULL
+      THEN FALSE
+      ELSE NULLIF(TRIM(CAST(value AS STRING)), '') IS NULL
+    END AS value_missing,
     NULLIF(TRIM(CAST(value AS STRING)), '') AS value_given,
     NULLIF(TRIM(CAST(value_text AS STRING)), '') AS text_given,
     NULLIF(TRIM(CAST(unit AS STRING)), '') AS unit_given,
@@ -528,11 +549,8 @@ WITH read AS (
     obs_date,
     measure,
     CASE
-      WHEN NOT value_given IS NULL
-      THEN CASE
-        WHEN NOT CAST(value_given AS STRING) RLIKE '[0-9.][dDfF]\\s*$'
-        THEN TRY_CAST(value_given AS DOUBLE)
-      END
+      WHEN NOT value_missing
+      THEN value_number
       WHEN text_number LIKE '%,%' AND text_number RLIKE '^[0-9]+,[0-9]{1,2}$'
       THEN CASE
         WHEN NOT CAST(REPLACE(text_number, ',', '.') AS STRING) RLIKE '[0-9.][dDfF]\\s*$'
@@ -545,14 +563,14 @@ WITH read AS (
         THEN TRY_CAST(text_number AS DOUBLE)
       END
     END AS reading,
-    CASE WHEN value_given IS NULL THEN text_qualifier END AS qualifier,
-    COALESCE(unit_given, CASE WHEN value_given IS NULL THEN text_unit END) AS unit,
-    value_given IS NULL
+    CASE WHEN value_missing THEN text_qualifier END AS qualifier,
+    COALESCE(unit_given, CASE WHEN value_missing THEN text_unit END) AS unit,
+    value_missing
     AND NOT text_unit IS NULL
     AND NOT unit_given IS NULL
     AND text_unit <> unit_given AS unit_conflict,
-    value_given IS NULL AND text_given IS NULL AS empty,
-    CASE WHEN value_given IS NULL THEN LOWER(text_given) END AS category,
+    value_missing AND text_given IS NULL AS empty,
+    CASE WHEN value_missing THEN LOWER(text_given) END AS category,
     value_given,
     text_given,
     unit_given,
@@ -1194,7 +1212,7 @@ JOIN code_matches AS m
 WHERE
   m.excluded OR m.min_days IS NULL OR e.duration_days >= m.min_days;
 
--- stage coded_evidence [table]: matched rows counted per patient, evidence and day
+-- stage coded_evidence [view]: matched rows counted per patient, evidence and day (kept only in evidence_events)
 -- reads: coded_matches
 SELECT
   patient_id,
@@ -2449,7 +2467,7 @@ WITH summary AS (
   SELECT
     reason,
     'patients' AS source_table,
-    SUM(1) AS distinct_rows,
+    COUNT(*) AS distinct_rows,
     SUM(copies - 1) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
@@ -2487,7 +2505,7 @@ WITH summary AS (
   SELECT
     reason,
     'encounters' AS source_table,
-    SUM(1) AS distinct_rows,
+    COUNT(*) AS distinct_rows,
     SUM(copies - 1) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
@@ -2541,7 +2559,7 @@ WITH summary AS (
   SELECT
     reason,
     'diagnoses' AS source_table,
-    SUM(1) AS distinct_rows,
+    COUNT(*) AS distinct_rows,
     SUM(copies - 1) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
@@ -2608,7 +2626,7 @@ WITH summary AS (
   SELECT
     reason,
     'prescriptions' AS source_table,
-    SUM(1) AS distinct_rows,
+    COUNT(*) AS distinct_rows,
     SUM(copies - 1) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
@@ -2673,7 +2691,7 @@ WITH summary AS (
   SELECT
     reason,
     'measurements' AS source_table,
-    SUM(1) AS distinct_rows,
+    COUNT(*) AS distinct_rows,
     SUM(copies - 1) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
