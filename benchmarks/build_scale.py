@@ -15,7 +15,10 @@ already in ``benchmarks/data/``, which is git-ignored), then measures in the sam
 (d) the build's peak resident memory (``ru_maxrss`` of the child, from ``os.wait4``);
 (e) the build again with ``--memory-limit`` (default 1GB) and ``--threads 2``.
 
-(a) and (b) are the best of ``--repeat`` runs; (e) runs once. The per-stage seconds of the
+Each size is measured for the study as written and for a variant of it with
+``quality: {exact_duplicates: skip}`` (written to a temporary file), since finding exact
+duplicates is the costliest part of a build at scale. (a) and (b) are the best of ``--repeat``
+runs; (e) runs once. The per-stage seconds of the
 best build come from its ``run.json``. Figures go to ``benchmarks/results/build_scale.json``.
 """
 
@@ -33,6 +36,7 @@ import time
 from pathlib import Path
 
 import duckdb
+import yaml
 from sqlglot import exp
 
 from pipeline._build import plan_study
@@ -85,6 +89,19 @@ def _floor_queries(study: Path, extract: Path) -> list[str]:
     return queries
 
 
+def _skip_variant(study: Path, folder: Path) -> Path:
+    """A copy of ``study`` that skips the exact-duplicate check, its paths made absolute."""
+    doc = yaml.safe_load(study.read_text(encoding="utf-8"))
+    for key in ("extract", "definitions"):
+        doc[key] = str((study.parent / doc[key]).resolve())
+    doc["output"]["folder"] = str(folder / "unused")
+    doc["study"] = f"{doc['study']}_skip_duplicates"
+    doc["quality"] = {"exact_duplicates": "skip"}
+    variant = folder / f"{study.stem}_skip_duplicates.yaml"
+    variant.write_text(yaml.safe_dump(doc, sort_keys=False), encoding="utf-8")
+    return variant
+
+
 def _scan_floor(queries: list[str], threads: int | None) -> float:
     con = duckdb.connect()
     if threads:
@@ -111,25 +128,17 @@ def _build(study: Path, extract: Path, out: Path, *extra: str) -> dict[str, obje
     }
 
 
-def _measure(args: argparse.Namespace, patients: int) -> dict[str, object]:
+def _measure(args: argparse.Namespace, study: Path, patients: int) -> dict[str, object]:
     extract = _extract(patients, args.seed)
-    queries = _floor_queries(args.study, extract)
+    queries = _floor_queries(study, extract)
     floors = [_scan_floor(queries, args.threads) for _ in range(args.repeat)]
     out = Path(tempfile.mkdtemp(prefix="build-scale-"))
     try:
         threads = ["--threads", str(args.threads)] if args.threads else []
-        builds = [
-            _build(args.study, extract, out / f"run{i}", *threads) for i in range(args.repeat)
-        ]
+        builds = [_build(study, extract, out / f"run{i}", *threads) for i in range(args.repeat)]
         best = min(builds, key=lambda b: b["wall_seconds"])
         limited = _build(
-            args.study,
-            extract,
-            out / "limited",
-            "--memory-limit",
-            args.memory_limit,
-            "--threads",
-            "2",
+            study, extract, out / "limited", "--memory-limit", args.memory_limit, "--threads", "2"
         )
     finally:
         shutil.rmtree(out, ignore_errors=True)
@@ -143,6 +152,7 @@ def _measure(args: argparse.Namespace, patients: int) -> dict[str, object]:
     con.close()
     floor = min(floors)
     return {
+        "study": study.stem,
         "patients": patients,
         "event_rows": sum(n for t, n in rows.items() if t not in ("patients", "truth")),
         "parquet_mb": round(sum(p.stat().st_size for p in extract.glob("*.parquet")) / 2**20),
@@ -155,13 +165,15 @@ def _measure(args: argparse.Namespace, patients: int) -> dict[str, object]:
 
 
 def _table(results: list[dict[str, object]]) -> str:
-    head = ["patients", "event rows", "floor s", "build s", "ratio", "peak MB", "limited s",
-            "limited peak MB"]  # fmt: skip
+    head = ["study", "patients", "event rows", "floor s", "build s", "ratio", "peak MB",
+            "limited s", "limited peak MB"]  # fmt: skip
     lines = [" | ".join(head), " | ".join("---" for _ in head)]
     for r in results:
         build, limited = r["build"], r["memory_limited"]
-        assert isinstance(build, dict) and isinstance(limited, dict)
-        cells = [f"{r['patients']:,}", f"{r['event_rows']:,}", f"{r['scan_floor_seconds']}",
+        assert isinstance(build, dict)
+        assert isinstance(limited, dict)
+        cells = [str(r["study"]), f"{r['patients']:,}", f"{r['event_rows']:,}",
+                 f"{r['scan_floor_seconds']}",
                  f"{build['wall_seconds']}", f"{r['ratio']}", f"{build['peak_rss_mb']:,}",
                  f"{limited['wall_seconds']}", f"{limited['peak_rss_mb']:,}"]  # fmt: skip
         lines.append(" | ".join(cells))
@@ -178,10 +190,13 @@ def main() -> None:
     parser.add_argument("--memory-limit", default="1GB", help="for the memory-limited run")
     args = parser.parse_args()
     results = []
-    for patients in args.patients or [200_000, 2_000_000]:
-        results.append(_measure(args, patients))
-        print(json.dumps(results[-1], indent=2), file=sys.stderr, flush=True)
-    print(f"study {args.study.name}; {os.cpu_count()} cores; {platform.platform()}")
+    with tempfile.TemporaryDirectory(prefix="build-scale-studies-") as folder:
+        studies = [args.study, _skip_variant(args.study, Path(folder))]
+        for patients in args.patients or [200_000, 2_000_000]:
+            for study in studies:
+                results.append(_measure(args, study, patients))
+                print(json.dumps(results[-1], indent=2), file=sys.stderr, flush=True)
+    print(f"{os.cpu_count()} cores; {platform.platform()}; DuckDB {duckdb.__version__}")
     print(_table(results))
     RESULTS.parent.mkdir(parents=True, exist_ok=True)
     meta = {

@@ -108,7 +108,7 @@ LEFT JOIN :units ON u.measure = r.measure AND u.unit = r.unit
 
 _MEASUREMENT_VALUES = """
 SELECT patient_id, obs_date, measure, value, qualifier, category, FALSE AS derived
-FROM :rows
+FROM measurement_judged
 WHERE problem IS NULL
 """
 
@@ -168,10 +168,12 @@ WHERE bmi BETWEEN :low AND :high
 """
 
 
-def measurement_stages(ctx: CompileContext) -> tuple[Stage, ...]:
-    """``measurement_rows`` (every row, with a problem or not) and usable values."""
-    if not ctx.measures:
-        return ()
+def judged_rows(ctx: CompileContext, where: exp.Expression | None) -> exp.Query:
+    """Measurement rows (those ``where`` keeps) parsed, converted and judged.
+
+    One template for the quality log and for the values, so the two can never judge a row
+    differently; ``where`` filters before any grouping.
+    """
     known = values_table(
         "k",
         ["measure", "is_coded"],
@@ -190,37 +192,58 @@ def measurement_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         )
     )
     check = ctx.study.quality.exact_duplicates == "check"
+    return query(
+        _MEASUREMENT_ROWS,
+        pattern=READING_PATTERN,
+        decimal_comma=DECIMAL_COMMA_PATTERN,
+        end_of_data=ctx.study.end_of_data,
+        known=known,
+        units=units,
+        known_category=known_category,
+        distinct_rows=grouped_rows(MEASUREMENTS, check_duplicates=check, where=where).subquery("d"),
+    )
 
-    def rows(where: exp.Expression | None) -> exp.Query:
-        # One template for the quality log (all rows) and for the values (wanted measures
-        # only, filtered before any grouping), so the two can never judge a row differently.
-        return query(
-            _MEASUREMENT_ROWS,
-            pattern=READING_PATTERN,
-            decimal_comma=DECIMAL_COMMA_PATTERN,
-            end_of_data=ctx.study.end_of_data,
-            known=known,
-            units=units,
-            known_category=known_category,
-            distinct_rows=grouped_rows(MEASUREMENTS, check_duplicates=check, where=where).subquery(
-                "d"
-            ),
-        )
 
+def wanted_measure(ctx: CompileContext) -> exp.Expression:
+    """True for a row of a measure the study reads; FALSE (never NULL) for any other row."""
     measure = exp.Lower(this=exp.Trim(this=exp.cast(exp.column("measure"), "VARCHAR")))
+    return exp.func("COALESCE", is_in(measure, ctx.measures), exp.false())
+
+
+_JUDGED = """
+SELECT patient_id, obs_date, measure, value, qualifier, category, copies, source_position, problem
+FROM :rows
+"""
+
+
+def measurement_stages(ctx: CompileContext) -> tuple[Stage, ...]:
+    """``measurement_rows`` (every row, with a problem or not) and usable values.
+
+    The rows of the measures the study reads are judged once, in ``measurement_judged``; the
+    values are its rows without a problem, and the quality log counts it with the other rows.
+    """
+    if not ctx.measures:
+        return ()
     stages = [
         Stage(
             "measurement_rows",
-            rows(None),
+            judged_rows(ctx, None),
             ("src_measurements", "patient_base"),
             "every distinct measurement row parsed and converted, with what stops its use",
             kind="view",
         ),
         Stage(
-            "measurement_values",
-            query(_MEASUREMENT_VALUES, rows=rows(is_in(measure, ctx.measures)).subquery("r")),
+            "measurement_judged",
+            query(_JUDGED, rows=judged_rows(ctx, wanted_measure(ctx)).subquery("r")),
             ("src_measurements", "patient_base"),
+            "the rows of the measures the study reads, parsed, converted and judged",
+        ),
+        Stage(
+            "measurement_values",
+            query(_MEASUREMENT_VALUES),
+            ("measurement_judged",),
             "usable values of the measures the study reads, in canonical units",
+            kind="view",
         ),
     ]
     if "egfr" in ctx.measures:

@@ -12,6 +12,7 @@ from __future__ import annotations
 from sqlglot import exp
 
 from pipeline.compile._context import CompileContext
+from pipeline.compile._measurements import judged_rows, wanted_measure
 from pipeline.compile._plan import SourceTable, Stage
 from pipeline.compile._sources import grouped_rows, raw_code_columns, same_raw_code, source_tables
 from pipeline.compile._sql import query, value
@@ -32,9 +33,14 @@ FROM :rows
 LEFT JOIN patient_base AS p ON p.patient_id = r.patient_id
 """
 
+# The measures the study reads were judged in measurement_judged; the others are judged here.
 _MEASUREMENTS = """
 SELECT COALESCE(problem, 'used') AS reason, copies, source_position
-FROM measurement_rows
+FROM (
+  SELECT problem, copies, source_position FROM measurement_judged
+  UNION ALL
+  SELECT problem, copies, source_position FROM :others
+) AS m
 """
 
 _PATIENTS = """
@@ -88,7 +94,8 @@ def _classified(ctx: CompileContext, table: SourceTable) -> exp.Query:
     if table.name == "patients":
         return query(_PATIENTS, rows=grouped)
     if table.name == "measurements":
-        return query(_MEASUREMENTS)
+        others = judged_rows(ctx, exp.not_(wanted_measure(ctx)))
+        return query(_MEASUREMENTS, others=others.subquery("o"))
     dated = exp.select(
         exp.Star(),
         exp.TryCast(this=exp.column(_DATE_COLUMNS[table.name]), to=exp.DataType.build("DATE")).as_(
@@ -132,7 +139,7 @@ def quality_stages(ctx: CompileContext) -> tuple[Stage, ...]:
     if any(t.name in ("diagnoses", "prescriptions") for t in tables):
         depends.add("extract_codes")
     if any(t.name == "measurements" for t in tables):
-        depends.add("measurement_rows")
+        depends |= {"measurement_judged", "src_measurements"}
     return (
         Stage(
             "rows_read",
