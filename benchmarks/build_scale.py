@@ -29,7 +29,6 @@ import json
 import os
 import platform
 import shutil
-import subprocess
 import sys
 import tempfile
 import time
@@ -37,6 +36,7 @@ from pathlib import Path
 
 import duckdb
 import yaml
+from _child import ascertain, run_child, write_results
 from sqlglot import exp
 
 from pipeline._build import plan_study
@@ -48,29 +48,17 @@ DATA = ROOT / "data"
 RESULTS = ROOT / "results" / "build_scale.json"
 
 
-def _cli(*args: str) -> list[str]:
-    return [sys.executable, "-c", "from pipeline.cli import app; app()", *args]
-
-
-def _child(cmd: list[str]) -> tuple[float, float, int]:
-    """Run a command; return its wall seconds, CPU seconds and peak RSS in MB."""
-    started = time.perf_counter()
-    child = subprocess.Popen(cmd, stdout=subprocess.DEVNULL)
-    _, status, usage = os.wait4(child.pid, 0)
-    wall = time.perf_counter() - started
-    code = os.waitstatus_to_exitcode(status)
-    if code:
-        raise SystemExit(f"{' '.join(cmd[3:])} failed with exit code {code}")
-    return wall, usage.ru_utime + usage.ru_stime, round(usage.ru_maxrss / 1024)
-
-
 def _extract(patients: int, seed: int) -> Path:
     folder = DATA / f"synth_{patients}_seed{seed}"
     if not (folder / "scenario.json").exists():
         shutil.rmtree(folder, ignore_errors=True)
         folder.parent.mkdir(parents=True, exist_ok=True)
         print(f"generating {patients:,} patients in {folder} ...", file=sys.stderr, flush=True)
-        _child(_cli("synth", str(folder), "--patients", str(patients), "--seed", str(seed)))
+        run = run_child(
+            ascertain("synth", str(folder), "--patients", str(patients), "--seed", str(seed))
+        )
+        if run.exit_code:
+            raise SystemExit(f"ascertain synth failed with exit code {run.exit_code}")
     return folder
 
 
@@ -116,13 +104,15 @@ def _scan_floor(queries: list[str], threads: int | None) -> float:
 
 def _build(study: Path, extract: Path, out: Path, *extra: str) -> dict[str, object]:
     args = ["build", str(study), "--extract", str(extract), "--out", str(out), "--quiet", *extra]
-    wall, cpu, rss = _child(_cli(*args))
+    child = run_child(ascertain(*args))
+    if child.exit_code:
+        raise SystemExit(f"ascertain {' '.join(args)} failed with exit code {child.exit_code}")
     run = json.loads((out / "run.json").read_text(encoding="utf-8"))
     stages = sorted(run["stages"], key=lambda s: -s["seconds"])
     return {
-        "wall_seconds": round(wall, 2),
-        "cpu_seconds": round(cpu, 1),
-        "peak_rss_mb": rss,
+        "wall_seconds": round(child.wall_seconds, 2),
+        "cpu_seconds": round(child.cpu_seconds, 1),
+        "peak_rss_mb": child.peak_rss_mb,
         "cohort_patients": run["counts"]["cohort_patients"],
         "slowest_stages": {s["name"]: s["seconds"] for s in stages[:8]},
     }
@@ -198,18 +188,9 @@ def main() -> None:
                 print(json.dumps(results[-1], indent=2), file=sys.stderr, flush=True)
     print(f"{os.cpu_count()} cores; {platform.platform()}; DuckDB {duckdb.__version__}")
     print(_table(results))
-    RESULTS.parent.mkdir(parents=True, exist_ok=True)
-    meta = {
-        "study": str(args.study),
-        "cpus": os.cpu_count(),
-        "platform": platform.platform(),
-        "python": platform.python_version(),
-        "duckdb": duckdb.__version__,
-        "repeat": args.repeat,
-        "results": results,
-    }
-    RESULTS.write_text(json.dumps(meta, indent=2, sort_keys=True) + "\n", encoding="utf-8")
-    print(f"figures written to {RESULTS}")
+    write_results(
+        RESULTS, results, duckdb=duckdb.__version__, repeat=args.repeat, study=str(args.study)
+    )
 
 
 if __name__ == "__main__":

@@ -13,17 +13,13 @@ Prints a table and writes the figures to ``benchmarks/results/synth_scale.json``
 from __future__ import annotations
 
 import argparse
-import json
-import os
-import platform
 import shutil
-import subprocess
 import sys
 import tempfile
-import time
 from pathlib import Path
 
 import pyarrow.parquet as pq
+from _child import ascertain, run_child, write_results
 
 TABLES = ("patients", "encounters", "diagnoses", "prescriptions", "measurements", "truth")
 RESULTS = Path(__file__).resolve().parent / "results" / "synth_scale.json"
@@ -31,32 +27,17 @@ RESULTS = Path(__file__).resolve().parent / "results" / "synth_scale.json"
 
 def _run_one(patients: int, seed: int, out: Path) -> dict[str, object]:
     """Generate one extract in a child process and measure it."""
-    cmd = [
-        sys.executable,
-        "-c",
-        "from pipeline.cli import app; app()",
-        "synth",
-        str(out),
-        "--patients",
-        str(patients),
-        "--seed",
-        str(seed),
-    ]
-    started = time.perf_counter()
-    child = subprocess.Popen(cmd, stdout=subprocess.DEVNULL)
-    _, status, usage = os.wait4(child.pid, 0)
-    wall = time.perf_counter() - started
-    child.returncode = os.waitstatus_to_exitcode(status)
-    if child.returncode:
-        raise SystemExit(f"ascertain synth failed with exit code {child.returncode}")
+    run = run_child(ascertain("synth", str(out), "--patients", str(patients), "--seed", str(seed)))
+    if run.exit_code:
+        raise SystemExit(f"ascertain synth failed with exit code {run.exit_code}")
     rows = {t: pq.read_metadata(out / f"{t}.parquet").num_rows for t in TABLES}
     size = sum((out / f"{t}.parquet").stat().st_size for t in TABLES)
     return {
         "patients": patients,
         "seed": seed,
-        "wall_seconds": round(wall, 1),
-        "cpu_seconds": round(usage.ru_utime + usage.ru_stime, 1),
-        "peak_rss_mb": round(usage.ru_maxrss / 1024),
+        "wall_seconds": round(run.wall_seconds, 1),
+        "cpu_seconds": round(run.cpu_seconds, 1),
+        "peak_rss_mb": run.peak_rss_mb,
         "rows": rows,
         "event_rows": sum(v for k, v in rows.items() if k not in ("patients", "truth")),
         "parquet_mb": round(size / 2**20, 1),
@@ -100,15 +81,7 @@ def main() -> None:
     if not args.keep and args.out is None:
         shutil.rmtree(base, ignore_errors=True)
     print(_table(results))
-    RESULTS.parent.mkdir(parents=True, exist_ok=True)
-    meta = {
-        "cpus": os.cpu_count(),
-        "machine": platform.machine(),
-        "python": platform.python_version(),
-        "results": results,
-    }
-    RESULTS.write_text(json.dumps(meta, indent=2, sort_keys=True) + "\n", encoding="utf-8")
-    print(f"figures written to {RESULTS}")
+    write_results(RESULTS, results)
 
 
 if __name__ == "__main__":

@@ -92,7 +92,7 @@ def build(
         bool, typer.Option("--profile", help="Print seconds and rows per stage.")
     ] = False,
     engine: Annotated[
-        str, typer.Option(help="duckdb (default) or spark (pip install 'ascertain[spark]').")
+        str, typer.Option(help="duckdb (default) or spark (pip install 'ascertain\\[spark]').")
     ] = "duckdb",
     spark_master: Annotated[
         str | None, typer.Option(help="Spark master URL (default local[*]); with --engine spark.")
