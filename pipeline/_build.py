@@ -163,7 +163,8 @@ def locate_first_rows(
 
     The engine gives a position (file index * POSITION_BASE + row, CSV only); a reader wants
     the file, relative to the extract's folder where it lies inside it, and the row, counted
-    from 1 after the header (its line is row + 1 when no field holds a line break).
+    from 1 after the header (its line is row + 1 when no field holds a line break and no
+    line is blank).
     """
     folder = extract if extract.is_dir() else extract.parent  # a mapping file's folder
     files: list[str | None] = []

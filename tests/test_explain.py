@@ -6,6 +6,7 @@ Expectations come from the fixtures' README files (hand-computed), not from a bu
 from __future__ import annotations
 
 import json
+import shutil
 from pathlib import Path
 
 import pytest
@@ -130,3 +131,17 @@ def test_two_codes_731_days_apart_meet_no_rule() -> None:
     assert outcome["rules_met"] == []
     assert outcome["onset"] is None
     assert len([e for e in outcome["evidence"] if e["evidence"] == "dm_code"]) == 2
+
+
+def test_an_exact_duplicate_row_is_traced_once(tmp_path: Path) -> None:
+    # The demo study checks exact duplicates: a copied E119 row of HM-024 counts once, in the
+    # rules and in the trace.
+    extract = tmp_path / "extract"
+    shutil.copytree(HANDMADE, extract)
+    with (extract / "diagnoses.csv").open("a", encoding="utf-8") as handle:
+        handle.write("HM-024,2016-01-10,ICD10,E119,problem_list\n")
+    outcome = _trace("HM-024", extract)["outcomes"]["type2_diabetes"]
+    assert [e["date"] for e in outcome["evidence"] if e["evidence"] == "dm_code"] == [
+        "2016-01-10",
+        "2018-01-09",
+    ]

@@ -374,3 +374,36 @@ def test_rows_are_named_per_file_of_a_mapped_glob(tmp_path: Path) -> None:
     located = _quality_rows(result, "diagnoses")
     assert located["unparseable date"] == ("diagnoses/part-2.csv", "3")
     assert located["exact duplicate"] == ("", "")
+
+
+def test_a_column_named_source_position_is_data(tmp_path: Path, baseline: BuildResult) -> None:
+    # The engine numbers rows in a column of that name; a file's own column gives way to it.
+    header, *data = _lines("diagnoses")
+    rows = [line.rstrip(b"\n") + b",999\n" for line in data]
+    rows.append(b"HM-001,not a date,ICD10,I10,visit,999\n")
+    extract = _hostile(
+        tmp_path, "diagnoses", header.rstrip(b"\n") + b",source_position\n" + b"".join(rows)
+    )
+    result = _build(extract)
+    assert _read(result)["diagnoses"] == len(rows)
+    assert _quality_rows(result, "diagnoses")["unparseable date"] == (
+        "diagnoses.csv",
+        str(len(rows)),
+    )
+    assert result.run.outputs["cohort"].equals(baseline.run.outputs["cohort"])
+
+
+def test_a_code_set_aside_never_counts_as_evidence(tmp_path: Path, baseline: BuildResult) -> None:
+    # HM-002 has no heart failure. One I50.9 code would need a loop diuretic within 365 days or a
+    # second code: a diagnosis row labelled ATC (unknown code system) and an overlong I50 code
+    # (malformed) are set aside, so neither may supply it.
+    rows = [
+        b"HM-002,2017-03-01,ICD10,I50.9,visit\n",
+        b"HM-002,2017-03-01,ATC,C03CA01,visit\n",
+        b"HM-002,2017-04-01,ICD10,I509XYZ1,visit\n",
+    ]
+    extract = _hostile(tmp_path, "diagnoses", b"".join([*_lines("diagnoses"), *rows]))
+    result = _build(extract)
+    added = _added(result, baseline, "diagnoses")
+    assert added == {"used": 1, "unknown code system": 1, "malformed code": 1}
+    assert result.run.outputs["cohort"].equals(baseline.run.outputs["cohort"])

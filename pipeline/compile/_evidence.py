@@ -25,7 +25,8 @@ CodeRow = tuple[str, str, int, str | None, int | None, bool]
 
 # Each distinct extract code is probed once per prefix length, so the join to the prefixes is
 # an equality join. A code counts for a piece of evidence when it matches an included prefix
-# (with the fewest days any of them needs; NULL: none) and no excluded one.
+# (with the fewest days any of them needs; NULL: none) and no excluded one. A code the quality
+# log sets aside (unknown system, malformed) matches nothing.
 _CODE_MATCHES = """
 SELECT
   c.source_table, c.raw_system, c.raw_code, c.raw_source, c.code_system, c.code, c.source,
@@ -41,13 +42,15 @@ CROSS JOIN :lengths
 JOIN :codes ON m.code_system = c.code_system
   AND m.prefix = LEFT(c.code, l.prefix_length)
   AND (m.source IS NULL OR m.source = c.source)
+WHERE c.problem IS NULL
 GROUP BY
   c.source_table, c.raw_system, c.raw_code, c.raw_source, c.code_system, c.code, c.source,
   m.evidence
 """
 
-# Every usable coded row with each evidence its code matches; a row an exclusion matches, or
-# whose prescription is shorter than the evidence needs, is kept as not counting (for traces).
+# Every usable coded row with each evidence its code matches (once per distinct row when exact
+# duplicates are checked). A row an exclusion matches is kept as not counting, for traces; a
+# prescription shorter than the evidence needs is left out, unless an exclusion matches too.
 _CODED_MATCHES = """
 SELECT
   e.patient_id, e.event_date, m.code_system, m.code, e.raw_code, m.source, e.duration_days,
@@ -191,22 +194,23 @@ def evidence_stages(ctx: CompileContext) -> tuple[Stage, ...]:
                 "each distinct extract code with the evidence it matches or is excluded from",
             )
         )
+        matches = query(_CODED_MATCHES, same_code=same_raw_code("e", "m"))
+        if ctx.study.quality.exact_duplicates == "check":
+            matches = matches.distinct()  # exact duplicates count once
         stages.append(
             Stage(
                 "coded_matches",
-                query(_CODED_MATCHES, same_code=same_raw_code("e", "m")),
+                matches,
                 ("code_matches", "coded_events"),
                 "each usable diagnosis or prescription row with the evidence its code matches",
                 kind="view",
             )
         )
-        # Exact duplicates count once, unless the study skips looking for them.
-        counted = exp.select(
-            "patient_id", "event_date", "code_system", "code", "raw_code", "source",
-            "duration_days", "evidence",
-        ).from_("coded_matches").where(exp.not_(exp.column("excluded")))  # fmt: skip
-        if ctx.study.quality.exact_duplicates == "check":
-            counted = counted.distinct()
+        counted = (
+            exp.select("patient_id", "event_date", "evidence")
+            .from_("coded_matches")
+            .where(exp.not_(exp.column("excluded")))
+        )
         stages.append(
             Stage(
                 "coded_evidence",

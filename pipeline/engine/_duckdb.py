@@ -84,19 +84,23 @@ def _rows(table: ExtractTable) -> exp.Expression:
     """The rows of one extract table, each CSV row with its position (see SOURCE_POSITION).
 
     Each CSV file is read on its own and numbered by ``ROW_NUMBER() OVER ()``, which DuckDB
-    runs as a streaming window over the reader's output in file order.
+    runs as a streaming window over the reader's output in file order. Blank lines are not
+    records, so a row's line is row + 1 only in a file without blank lines or quoted breaks.
     """
+    # A file's own column of that name gives way to ours, as with Spark's withColumn.
+    own = [exp.column(SOURCE_POSITION)] if SOURCE_POSITION in table.columns else []
+    every = exp.Star(except_=own) if own else exp.Star()
     no_position = exp.cast(exp.null(), "BIGINT").as_(SOURCE_POSITION)
     if table.file_format == "fhir":
         return exp.select("*", no_position).from_(fhir_source(table).subquery("fhir")).subquery("r")
     if table.file_format == "parquet":
-        return exp.select("*", no_position).from_(exp.Table(this=_reader(table))).subquery("r")
+        return exp.select(every, no_position).from_(exp.Table(this=_reader(table))).subquery("r")
     parts = []
     for index, file in enumerate(table.files):
         number = exp.Window(this=exp.func("ROW_NUMBER"))
         position = exp.Add(this=exp.Literal.number(index * POSITION_BASE), expression=number)
         reader = exp.Table(this=_reader(table, (file,)))
-        parts.append(exp.select("*", position.as_(SOURCE_POSITION)).from_(reader))
+        parts.append(exp.select(every.copy(), position.as_(SOURCE_POSITION)).from_(reader))
     union = parts[0]
     for part in parts[1:]:
         union = union.union(part, distinct=False)

@@ -1036,6 +1036,8 @@ JOIN (VALUES
   AND (
     m.source IS NULL OR m.source = c.source
   )
+WHERE
+  c.problem IS NULL
 GROUP BY
   c.source_table,
   c.raw_system,
@@ -1048,7 +1050,7 @@ GROUP BY
 
 -- stage coded_matches [view]: each usable diagnosis or prescription row with the evidence its code matches
 -- reads: code_matches, coded_events
-SELECT
+SELECT DISTINCT
   e.patient_id,
   e.event_date,
   m.code_system,
@@ -1075,14 +1077,9 @@ SELECT
   event_date,
   CAST(COUNT(*) AS INT) AS n_rows
 FROM (
-  SELECT DISTINCT
+  SELECT
     patient_id,
     event_date,
-    code_system,
-    code,
-    raw_code,
-    source,
-    duration_days,
     evidence
   FROM coded_matches
   WHERE
