@@ -1,4 +1,4 @@
-"""What the benchmarks share: measuring one child process, and writing figures to JSON."""
+"""What the benchmarks share: measuring one child process, printing and writing figures."""
 
 from __future__ import annotations
 
@@ -47,6 +47,12 @@ def run_child(
         cpu_seconds=usage.ru_utime + usage.ru_stime,
         peak_rss_mb=round(usage.ru_maxrss / 1024),
     )
+
+
+def markdown_table(head: list[str], rows: list[list[str]]) -> str:
+    """A plain Markdown table, for pasting figures into the README."""
+    lines = [head, ["---"] * len(head), *rows]
+    return "\n".join(" | ".join(cells) for cells in lines)
 
 
 def write_results(path: Path, results: list[dict[str, Any]], **extra: Any) -> None:

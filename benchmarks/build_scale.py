@@ -36,7 +36,7 @@ from pathlib import Path
 
 import duckdb
 import yaml
-from _child import ascertain, run_child, write_results
+from _child import ascertain, markdown_table, run_child, write_results
 from sqlglot import exp
 
 from pipeline._build import plan_study
@@ -157,17 +157,16 @@ def _measure(args: argparse.Namespace, study: Path, patients: int) -> dict[str, 
 def _table(results: list[dict[str, object]]) -> str:
     head = ["study", "patients", "event rows", "floor s", "build s", "ratio", "peak MB",
             "limited s", "limited peak MB"]  # fmt: skip
-    lines = [" | ".join(head), " | ".join("---" for _ in head)]
+    rows = []
     for r in results:
         build, limited = r["build"], r["memory_limited"]
         assert isinstance(build, dict)
         assert isinstance(limited, dict)
-        cells = [str(r["study"]), f"{r['patients']:,}", f"{r['event_rows']:,}",
-                 f"{r['scan_floor_seconds']}",
-                 f"{build['wall_seconds']}", f"{r['ratio']}", f"{build['peak_rss_mb']:,}",
-                 f"{limited['wall_seconds']}", f"{limited['peak_rss_mb']:,}"]  # fmt: skip
-        lines.append(" | ".join(cells))
-    return "\n".join(lines)
+        rows.append([str(r["study"]), f"{r['patients']:,}", f"{r['event_rows']:,}",
+                     f"{r['scan_floor_seconds']}",
+                     f"{build['wall_seconds']}", f"{r['ratio']}", f"{build['peak_rss_mb']:,}",
+                     f"{limited['wall_seconds']}", f"{limited['peak_rss_mb']:,}"])  # fmt: skip
+    return markdown_table(head, rows)
 
 
 def main() -> None:

@@ -19,7 +19,7 @@ import tempfile
 from pathlib import Path
 
 import pyarrow.parquet as pq
-from _child import ascertain, run_child, write_results
+from _child import ascertain, markdown_table, run_child, write_results
 
 TABLES = ("patients", "encounters", "diagnoses", "prescriptions", "measurements", "truth")
 RESULTS = Path(__file__).resolve().parent / "results" / "synth_scale.json"
@@ -46,20 +46,21 @@ def _run_one(patients: int, seed: int, out: Path) -> dict[str, object]:
 
 def _table(results: list[dict[str, object]]) -> str:
     head = ["N", "wall s", "cpu s", "peak RSS MB", *TABLES, "Parquet MB"]
-    lines = [" | ".join(head), " | ".join("---" for _ in head)]
+    rows = []
     for r in results:
-        rows = r["rows"]
-        assert isinstance(rows, dict)
-        cells = [
-            f"{r['patients']:,}",
-            f"{r['wall_seconds']}",
-            f"{r['cpu_seconds']}",
-            f"{r['peak_rss_mb']:.0f}",
-            *(f"{rows[t]:,}" for t in TABLES),
-            f"{r['parquet_mb']}",
-        ]
-        lines.append(" | ".join(cells))
-    return "\n".join(lines)
+        counts = r["rows"]
+        assert isinstance(counts, dict)
+        rows.append(
+            [
+                f"{r['patients']:,}",
+                f"{r['wall_seconds']}",
+                f"{r['cpu_seconds']}",
+                f"{r['peak_rss_mb']:.0f}",
+                *(f"{counts[t]:,}" for t in TABLES),
+                f"{r['parquet_mb']}",
+            ]
+        )
+    return markdown_table(head, rows)
 
 
 def main() -> None:
