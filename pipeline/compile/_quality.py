@@ -14,7 +14,13 @@ from sqlglot import exp
 from pipeline.compile._context import CompileContext
 from pipeline.compile._measurements import judged_rows, wanted_measure
 from pipeline.compile._plan import SourceTable, Stage
-from pipeline.compile._sources import grouped_rows, raw_code_columns, same_raw_code, source_tables
+from pipeline.compile._sources import (
+    coded_tables,
+    grouped_rows,
+    raw_code_columns,
+    same_raw_code,
+    source_tables,
+)
 from pipeline.compile._sql import query, value
 
 _DATED = """
@@ -136,7 +142,7 @@ def quality_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         for t in tables
     ]
     depends = {t.relation for t in tables if t.name != "measurements"} | {"patient_base"}
-    if any(t.name in ("diagnoses", "prescriptions") for t in tables):
+    if coded_tables(ctx):
         depends.add("extract_codes")
     if any(t.name == "measurements" for t in tables):
         depends |= {"measurement_judged", "src_measurements"}

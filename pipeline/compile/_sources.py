@@ -226,7 +226,7 @@ def _code_problem() -> exp.Expression:
 
 def _extract_codes(ctx: CompileContext) -> exp.Query:
     found = []
-    for table in (t.name for t in source_tables(ctx) if t.name in _CODED_TABLES):
+    for table in coded_tables(ctx):
         columns = [c.as_(name) for name, c in raw_code_columns(table).items()]
         relation = f"src_{table}"
         found.append(
@@ -239,9 +239,6 @@ def _extract_codes(ctx: CompileContext) -> exp.Query:
         code=normalised_code_sql(exp.column("raw_code")),
         problem=_code_problem(),
     )
-
-
-_CODED_TABLES = ("diagnoses", "prescriptions")
 
 
 def source_stages(ctx: CompileContext) -> tuple[Stage, ...]:
@@ -276,7 +273,7 @@ def source_stages(ctx: CompileContext) -> tuple[Stage, ...]:
             "first and last usable encounter per patient (and the first in the index window)",
         ),
     ]
-    if any(t.name in _CODED_TABLES for t in source_tables(ctx)):
+    if coded_tables(ctx):
         stages.append(
             Stage(
                 "extract_codes",
@@ -323,9 +320,11 @@ def _index_window(study: Study) -> exp.Expression:
     return inside
 
 
-def _coded_sources(ctx: CompileContext) -> tuple[str, ...]:
-    used = (
-        ("src_diagnoses", ctx.uses("diagnosis")),
-        ("src_prescriptions", ctx.uses("prescription")),
-    )
+def coded_tables(ctx: CompileContext) -> tuple[str, ...]:
+    """The coded extract tables (diagnoses, prescriptions) this study reads."""
+    used = (("diagnoses", ctx.uses("diagnosis")), ("prescriptions", ctx.uses("prescription")))
     return tuple(name for name, is_used in used if is_used)
+
+
+def _coded_sources(ctx: CompileContext) -> tuple[str, ...]:
+    return tuple(f"src_{name}" for name in coded_tables(ctx))

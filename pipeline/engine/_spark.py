@@ -227,7 +227,8 @@ class SparkEngine:
 
         Each row gets its position as on DuckDB (see SOURCE_POSITION): every CSV file is read
         on its own (``multiLine`` keeps a file in one partition, in file order) and numbered in
-        the order of ``monotonically_increasing_id``.
+        the order of ``monotonically_increasing_id``: one sort in a single partition per file,
+        affordable because large extracts arrive as Parquet, which has no positions.
         """
         from pyspark.sql import Window
         from pyspark.sql import functions as F
