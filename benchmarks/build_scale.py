@@ -13,7 +13,10 @@ already in ``benchmarks/data/``, which is git-ignored), then measures in the sam
 (b) the full ``ascertain build`` of the study, in a child process;
 (c) the ratio b / a;
 (d) the build's peak resident memory (``ru_maxrss`` of the child, from ``os.wait4``);
-(e) the build again with ``--memory-limit`` (default 1GB) and ``--threads 2``.
+(e) the build again with ``--memory-limit`` (default 1GB) and ``--threads 2``;
+(f) for a study that checks exact duplicates, the duplicate floor: DuckDB grouping each table
+    on the columns the check groups on, once, with nothing else; the least any exact check can
+    cost, and the reason (b) cannot come near (a) while the check is on.
 
 Each size is measured for the study as written and for a variant of it with
 ``quality: {exact_duplicates: skip}`` (written to a temporary file), since finding exact
@@ -40,6 +43,7 @@ from _child import ascertain, markdown_table, run_child, write_results
 from sqlglot import exp
 
 from pipeline._build import plan_study
+from pipeline.config import load_study
 from pipeline.extract import discover_extract
 
 ROOT = Path(__file__).resolve().parent
@@ -74,6 +78,27 @@ def _floor_queries(study: Path, extract: Path) -> list[str]:
         folds = [exp.func("BIT_XOR", exp.func("HASH", exp.column(c))) for c in present]
         select = exp.select(*folds).from_(exp.Table(this=exp.func("read_parquet", files)))
         queries.append(select.sql("duckdb"))
+    return queries
+
+
+def _duplicate_floor_queries(study: Path, extract: Path) -> list[str]:
+    """One query per table grouping it on the columns the exact-duplicate check groups on."""
+    if load_study(study).study.quality.exact_duplicates != "check":
+        return []
+    plan = plan_study(study)
+    tables = discover_extract(extract, plan.sources)
+    queries = []
+    for source in plan.sources:
+        table = tables[source.name]
+        present = [exp.column(c) for c in source.columns if c in table.columns]
+        files = exp.Array(expressions=[exp.Literal.string(str(f)) for f in table.files])
+        groups = (
+            exp.select(*present, exp.func("COUNT", exp.Star()).as_("copies"))
+            .from_(exp.Table(this=exp.func("read_parquet", files)))
+            .group_by(*present)
+        )
+        count = exp.select(exp.func("COUNT", exp.Star())).from_(groups.subquery("g"))
+        queries.append(count.sql("duckdb"))
     return queries
 
 
@@ -122,6 +147,8 @@ def _measure(args: argparse.Namespace, study: Path, patients: int) -> dict[str, 
     extract = _extract(patients, args.seed)
     queries = _floor_queries(study, extract)
     floors = [_scan_floor(queries, args.threads) for _ in range(args.repeat)]
+    duplicate_queries = _duplicate_floor_queries(study, extract)
+    duplicate_floor = _scan_floor(duplicate_queries, args.threads) if duplicate_queries else None
     out = Path(tempfile.mkdtemp(prefix="build-scale-"))
     try:
         threads = ["--threads", str(args.threads)] if args.threads else []
@@ -150,20 +177,21 @@ def _measure(args: argparse.Namespace, study: Path, patients: int) -> dict[str, 
         "build": best,
         "build_all_seconds": [b["wall_seconds"] for b in builds],
         "ratio": round(float(best["wall_seconds"]) / floor, 1),  # type: ignore[arg-type]
+        "duplicate_floor_seconds": None if duplicate_floor is None else round(duplicate_floor, 2),
         "memory_limited": {"memory_limit": args.memory_limit, "threads": 2, **limited},
     }
 
 
 def _table(results: list[dict[str, object]]) -> str:
-    head = ["study", "patients", "event rows", "floor s", "build s", "ratio", "peak MB",
-            "limited s", "limited peak MB"]  # fmt: skip
+    head = ["study", "patients", "event rows", "floor s", "duplicate floor s", "build s", "ratio",
+            "peak MB", "limited s", "limited peak MB"]  # fmt: skip
     rows = []
     for r in results:
         build, limited = r["build"], r["memory_limited"]
         assert isinstance(build, dict)
         assert isinstance(limited, dict)
         rows.append([str(r["study"]), f"{r['patients']:,}", f"{r['event_rows']:,}",
-                     f"{r['scan_floor_seconds']}",
+                     f"{r['scan_floor_seconds']}", f"{r['duplicate_floor_seconds'] or '-'}",
                      f"{build['wall_seconds']}", f"{r['ratio']}", f"{build['peak_rss_mb']:,}",
                      f"{limited['wall_seconds']}", f"{limited['peak_rss_mb']:,}"])  # fmt: skip
     return markdown_table(head, rows)
