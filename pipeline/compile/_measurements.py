@@ -109,7 +109,7 @@ LEFT JOIN :units ON u.measure = r.measure AND u.unit = r.unit
 _MEASUREMENT_VALUES = """
 SELECT patient_id, obs_date, measure, value, qualifier, category, FALSE AS derived
 FROM measurement_judged
-WHERE problem IS NULL
+WHERE problem IS NULL AND :wanted
 """
 
 # eGFR from creatinine by CKD-EPI 2021 (Inker et al., N Engl J Med 2021;385:1737), age in
@@ -204,12 +204,6 @@ def judged_rows(ctx: CompileContext, where: exp.Expression | None) -> exp.Query:
     )
 
 
-def wanted_measure(ctx: CompileContext) -> exp.Expression:
-    """True for a row of a measure the study reads; FALSE (never NULL) for any other row."""
-    measure = exp.Lower(this=exp.Trim(this=exp.cast(exp.column("measure"), "VARCHAR")))
-    return exp.func("COALESCE", is_in(measure, ctx.measures), exp.false())
-
-
 _JUDGED = """
 SELECT patient_id, obs_date, measure, value, qualifier, category, copies, source_position, problem
 FROM :rows
@@ -219,8 +213,10 @@ FROM :rows
 def measurement_stages(ctx: CompileContext) -> tuple[Stage, ...]:
     """``measurement_rows`` (every row, with a problem or not) and usable values.
 
-    The rows of the measures the study reads are judged once, in ``measurement_judged``; the
-    values are its rows without a problem, and the quality log counts it with the other rows.
+    Every row is judged once, in ``measurement_judged``: the values are its rows of the measures
+    the study reads that have no problem, and the quality log counts all of it. (Judging only
+    the measures the study reads, and the others apart for the quality log, read and grouped the
+    table twice.)
     """
     if not ctx.measures:
         return ()
@@ -234,13 +230,13 @@ def measurement_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         ),
         Stage(
             "measurement_judged",
-            query(_JUDGED, rows=judged_rows(ctx, wanted_measure(ctx)).subquery("r")),
+            query(_JUDGED, rows=judged_rows(ctx, None).subquery("r")),
             ("src_measurements", "patient_base"),
-            "the rows of the measures the study reads, parsed, converted and judged",
+            "every measurement row parsed, converted and judged: values and quality log",
         ),
         Stage(
             "measurement_values",
-            query(_MEASUREMENT_VALUES),
+            query(_MEASUREMENT_VALUES, wanted=is_in(exp.column("measure"), ctx.measures)),
             ("measurement_judged",),
             "usable values of the measures the study reads, in canonical units",
             kind="view",

@@ -12,7 +12,6 @@ from __future__ import annotations
 from sqlglot import exp
 
 from pipeline.compile._context import CompileContext
-from pipeline.compile._measurements import judged_rows, wanted_measure
 from pipeline.compile._plan import SourceTable, Stage
 from pipeline.compile._sources import (
     coded_tables,
@@ -39,14 +38,10 @@ FROM :rows
 LEFT JOIN patient_base AS p ON p.patient_id = r.patient_id
 """
 
-# The measures the study reads were judged in measurement_judged; the others are judged here.
+# Every measurement row was judged in measurement_judged.
 _MEASUREMENTS = """
 SELECT COALESCE(problem, 'used') AS reason, copies, source_position
-FROM (
-  SELECT problem, copies, source_position FROM measurement_judged
-  UNION ALL
-  SELECT problem, copies, source_position FROM :others
-) AS m
+FROM measurement_judged
 """
 
 _PATIENTS = """
@@ -100,8 +95,7 @@ def _classified(ctx: CompileContext, table: SourceTable) -> exp.Query:
     if table.name == "patients":
         return query(_PATIENTS, rows=grouped)
     if table.name == "measurements":
-        others = judged_rows(ctx, exp.not_(wanted_measure(ctx)))
-        return query(_MEASUREMENTS, others=others.subquery("o"))
+        return query(_MEASUREMENTS)
     dated = exp.select(
         exp.Star(),
         exp.TryCast(this=exp.column(_DATE_COLUMNS[table.name]), to=exp.DataType.build("DATE")).as_(
@@ -145,7 +139,7 @@ def quality_stages(ctx: CompileContext) -> tuple[Stage, ...]:
     if coded_tables(ctx):
         depends.add("extract_codes")
     if any(t.name == "measurements" for t in tables):
-        depends |= {"measurement_judged", "src_measurements"}
+        depends.add("measurement_judged")
     return (
         Stage(
             "rows_read",

@@ -364,7 +364,7 @@ LEFT JOIN (VALUES
   ('weight', 'g', 1.0, 1000.0, 0.0, 2.0, 400.0)) AS u(measure, unit, factor, divisor, offset_value, low, high)
   ON u.measure = r.measure AND u.unit = r.unit;
 
--- stage measurement_judged [table]: the rows of the measures the study reads, parsed, converted and judged
+-- stage measurement_judged [table]: every measurement row parsed, converted and judged: values and quality log
 -- reads: src_measurements, patient_base
 SELECT
   patient_id,
@@ -404,11 +404,6 @@ FROM (
         MIN(source_position) AS source_position,
         COUNT(*) AS copies
       FROM src_measurements
-      WHERE
-        COALESCE(
-          LOWER(TRIM(CAST(measure AS TEXT))) IN ('bmi', 'creatinine', 'egfr', 'hba1c', 'height', 'sbp', 'weight'),
-          FALSE
-        )
       GROUP BY
         patient_id,
         obs_date,
@@ -589,7 +584,8 @@ SELECT
   FALSE AS derived
 FROM measurement_judged
 WHERE
-  problem IS NULL;
+  problem IS NULL
+  AND measure IN ('bmi', 'creatinine', 'egfr', 'hba1c', 'height', 'sbp', 'weight');
 
 -- stage derived_egfr [table]: eGFR derived from creatinine by CKD-EPI 2021 where none was reported that day
 -- reads: measurement_values, patient_base
@@ -2270,7 +2266,7 @@ SELECT
 FROM src_measurements;
 
 -- stage quality_log [table]: every extract row: used, or set aside with the first reason that applies
--- reads: extract_codes, measurement_judged, patient_base, src_diagnoses, src_encounters, src_measurements, src_patients, src_prescriptions
+-- reads: extract_codes, measurement_judged, patient_base, src_diagnoses, src_encounters, src_patients, src_prescriptions
 WITH summary AS (
   SELECT
     reason,
@@ -2486,218 +2482,7 @@ WITH summary AS (
       COALESCE(problem, 'used') AS reason,
       copies,
       source_position
-    FROM (
-      SELECT
-        problem,
-        copies,
-        source_position
-      FROM measurement_judged
-      UNION ALL
-      SELECT
-        problem,
-        copies,
-        source_position
-      FROM (
-        WITH read AS (
-          SELECT
-            patient_id,
-            TRY_CAST(obs_date AS DATE) AS obs_date,
-            LOWER(TRIM(CAST(measure AS TEXT))) AS measure,
-            TRY_CAST(value AS DOUBLE) AS value_number,
-            CASE
-              WHEN NOT TRY_CAST(value AS DOUBLE) IS NULL
-              THEN FALSE
-              ELSE NULLIF(TRIM(CAST(value AS TEXT)), '') IS NULL
-            END AS value_missing,
-            NULLIF(TRIM(CAST(value AS TEXT)), '') AS value_given,
-            NULLIF(TRIM(CAST(value_text AS TEXT)), '') AS text_given,
-            NULLIF(TRIM(CAST(unit AS TEXT)), '') AS unit_given,
-            copies,
-            source_position
-          FROM (
-            SELECT
-              patient_id,
-              obs_date,
-              measure,
-              unit,
-              value,
-              value_text,
-              MIN(source_position) AS source_position,
-              COUNT(*) AS copies
-            FROM src_measurements
-            WHERE
-              NOT COALESCE(
-                LOWER(TRIM(CAST(measure AS TEXT))) IN ('bmi', 'creatinine', 'egfr', 'hba1c', 'height', 'sbp', 'weight'),
-                FALSE
-              )
-            GROUP BY
-              patient_id,
-              obs_date,
-              measure,
-              unit,
-              value,
-              value_text
-          ) AS d
-        ), split AS (
-          SELECT
-            *,
-            NULLIF(
-              REGEXP_EXTRACT(text_given, '^(<=|>=|<|>)?[ ]*([0-9]+([.,][0-9]+)?)[ ]*(.*)$', 1),
-              ''
-            ) AS text_qualifier,
-            NULLIF(
-              REGEXP_EXTRACT(text_given, '^(<=|>=|<|>)?[ ]*([0-9]+([.,][0-9]+)?)[ ]*(.*)$', 2),
-              ''
-            ) AS text_number,
-            NULLIF(
-              TRIM(REGEXP_EXTRACT(text_given, '^(<=|>=|<|>)?[ ]*([0-9]+([.,][0-9]+)?)[ ]*(.*)$', 4)),
-              ''
-            ) AS text_unit
-          FROM read
-        ), parsed AS (
-          SELECT
-            patient_id,
-            obs_date,
-            measure,
-            CASE
-              WHEN NOT value_missing
-              THEN value_number
-              WHEN text_number LIKE '%,%' AND REGEXP_MATCHES(text_number, '^[0-9]+,[0-9]{1,2}$')
-              THEN TRY_CAST(REPLACE(text_number, ',', '.') AS DOUBLE)
-              WHEN text_number LIKE '%,%'
-              THEN NULL
-              ELSE TRY_CAST(text_number AS DOUBLE)
-            END AS reading,
-            CASE WHEN value_missing THEN text_qualifier END AS qualifier,
-            COALESCE(unit_given, CASE WHEN value_missing THEN text_unit END) AS unit,
-            value_missing
-            AND NOT text_unit IS NULL
-            AND NOT unit_given IS NULL
-            AND text_unit <> unit_given AS unit_conflict,
-            value_missing AND text_given IS NULL AS empty,
-            CASE WHEN value_missing THEN LOWER(text_given) END AS category,
-            value_given,
-            text_given,
-            unit_given,
-            copies,
-            source_position
-          FROM split
-        )
-        SELECT
-          r.patient_id,
-          r.obs_date,
-          r.measure,
-          r.qualifier,
-          CASE WHEN k.is_coded THEN r.category END AS category,
-          r.value_given AS raw_value,
-          r.text_given AS raw_value_text,
-          r.unit_given AS raw_unit,
-          r.copies,
-          r.source_position,
-          u.factor * r.reading / u.divisor + u.offset_value AS value,
-          CASE
-            WHEN p.patient_id IS NULL
-            THEN 'orphan patient'
-            WHEN r.obs_date IS NULL
-            THEN 'unparseable date'
-            WHEN r.obs_date > CAST('2019-12-31' AS DATE)
-            THEN 'after end of data'
-            WHEN NOT p.death_date IS NULL AND r.obs_date > p.death_date
-            THEN 'after death'
-            WHEN k.measure IS NULL
-            THEN 'unknown measure'
-            WHEN k.is_coded
-            AND (
-              r.category IS NULL
-              OR NOT (
-                (
-                  r.measure = 'smoking' AND r.category = 'current'
-                )
-                OR (
-                  r.measure = 'smoking' AND r.category = 'former'
-                )
-                OR (
-                  r.measure = 'smoking' AND r.category = 'never'
-                )
-              )
-            )
-            THEN 'category not recognised'
-            WHEN k.is_coded
-            THEN NULL
-            WHEN r.empty
-            THEN 'no value'
-            WHEN r.reading IS NULL
-            THEN 'value not numeric'
-            WHEN r.unit_conflict
-            THEN 'unit differs from value_text'
-            WHEN u.measure IS NULL
-            THEN 'unit not convertible'
-            WHEN NOT u.factor * r.reading / u.divisor + u.offset_value BETWEEN u.low AND u.high
-            THEN 'implausible value'
-          END AS problem
-        FROM parsed AS r
-        LEFT JOIN patient_base AS p
-          ON p.patient_id = r.patient_id
-        LEFT JOIN (VALUES
-          ('bmi', FALSE),
-          ('creatinine', FALSE),
-          ('dbp', FALSE),
-          ('egfr', FALSE),
-          ('fasting_glucose', FALSE),
-          ('hba1c', FALSE),
-          ('height', FALSE),
-          ('ldl', FALSE),
-          ('sbp', FALSE),
-          ('smoking', TRUE),
-          ('total_cholesterol', FALSE),
-          ('weight', FALSE)) AS k(measure, is_coded)
-          ON k.measure = r.measure
-        LEFT JOIN (VALUES
-          ('bmi', 'kg/m2', 1.0, 1.0, 0.0, 10.0, 80.0),
-          ('bmi', 'kg/m²', 1.0, 1.0, 0.0, 10.0, 80.0),
-          ('bmi', 'kg/m^2', 1.0, 1.0, 0.0, 10.0, 80.0),
-          ('creatinine', 'mg/dL', 1.0, 1.0, 0.0, 0.1, 20.0),
-          ('creatinine', 'mg/dl', 1.0, 1.0, 0.0, 0.1, 20.0),
-          ('creatinine', 'umol/L', 1.0, 88.42, 0.0, 0.1, 20.0),
-          ('creatinine', 'µmol/L', 1.0, 88.42, 0.0, 0.1, 20.0),
-          ('creatinine', 'μmol/L', 1.0, 88.42, 0.0, 0.1, 20.0),
-          ('creatinine', 'umol/l', 1.0, 88.42, 0.0, 0.1, 20.0),
-          ('creatinine', 'µmol/l', 1.0, 88.42, 0.0, 0.1, 20.0),
-          ('dbp', 'mmHg', 1.0, 1.0, 0.0, 20.0, 200.0),
-          ('dbp', 'mm[Hg]', 1.0, 1.0, 0.0, 20.0, 200.0),
-          ('dbp', 'mm Hg', 1.0, 1.0, 0.0, 20.0, 200.0),
-          ('egfr', 'mL/min/1.73m2', 1.0, 1.0, 0.0, 1.0, 200.0),
-          ('egfr', 'mL/min/1.73 m2', 1.0, 1.0, 0.0, 1.0, 200.0),
-          ('egfr', 'mL/min/{1.73_m2}', 1.0, 1.0, 0.0, 1.0, 200.0),
-          ('egfr', 'ml/min/1.73m2', 1.0, 1.0, 0.0, 1.0, 200.0),
-          ('egfr', 'mL/min/1.73m²', 1.0, 1.0, 0.0, 1.0, 200.0),
-          ('fasting_glucose', 'mmol/L', 1.0, 1.0, 0.0, 1.0, 50.0),
-          ('fasting_glucose', 'mmol/l', 1.0, 1.0, 0.0, 1.0, 50.0),
-          ('fasting_glucose', 'mg/dL', 1.0, 18.0156, 0.0, 1.0, 50.0),
-          ('fasting_glucose', 'mg/dl', 1.0, 18.0156, 0.0, 1.0, 50.0),
-          ('hba1c', '%', 1.0, 1.0, 0.0, 3.0, 20.0),
-          ('hba1c', '% Hb', 1.0, 1.0, 0.0, 3.0, 20.0),
-          ('hba1c', '%{HbA1c}', 1.0, 1.0, 0.0, 3.0, 20.0),
-          ('hba1c', 'mmol/mol', 0.09148, 1.0, 2.152, 3.0, 20.0),
-          ('height', 'cm', 1.0, 1.0, 0.0, 40.0, 250.0),
-          ('height', 'm', 100.0, 1.0, 0.0, 40.0, 250.0),
-          ('height', 'mm', 1.0, 10.0, 0.0, 40.0, 250.0),
-          ('ldl', 'mmol/L', 1.0, 1.0, 0.0, 0.2, 15.0),
-          ('ldl', 'mmol/l', 1.0, 1.0, 0.0, 0.2, 15.0),
-          ('ldl', 'mg/dL', 1.0, 38.67, 0.0, 0.2, 15.0),
-          ('ldl', 'mg/dl', 1.0, 38.67, 0.0, 0.2, 15.0),
-          ('sbp', 'mmHg', 1.0, 1.0, 0.0, 50.0, 300.0),
-          ('sbp', 'mm[Hg]', 1.0, 1.0, 0.0, 50.0, 300.0),
-          ('sbp', 'mm Hg', 1.0, 1.0, 0.0, 50.0, 300.0),
-          ('total_cholesterol', 'mmol/L', 1.0, 1.0, 0.0, 1.0, 20.0),
-          ('total_cholesterol', 'mmol/l', 1.0, 1.0, 0.0, 1.0, 20.0),
-          ('total_cholesterol', 'mg/dL', 1.0, 38.67, 0.0, 1.0, 20.0),
-          ('total_cholesterol', 'mg/dl', 1.0, 38.67, 0.0, 1.0, 20.0),
-          ('weight', 'kg', 1.0, 1.0, 0.0, 2.0, 400.0),
-          ('weight', 'g', 1.0, 1000.0, 0.0, 2.0, 400.0)) AS u(measure, unit, factor, divisor, offset_value, low, high)
-          ON u.measure = r.measure AND u.unit = r.unit
-      ) AS o
-    ) AS m
+    FROM measurement_judged
   ) AS c
   GROUP BY
     reason
