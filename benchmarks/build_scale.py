@@ -32,9 +32,9 @@ import json
 import os
 import platform
 import shutil
+import subprocess
 import sys
 import tempfile
-import time
 from pathlib import Path
 
 import duckdb
@@ -115,16 +115,29 @@ def _skip_variant(study: Path, folder: Path) -> Path:
     return variant
 
 
+_TIMED_QUERIES = """
+import json, sys, time
+import duckdb
+queries, threads = json.loads(sys.argv[1]), int(sys.argv[2])
+con = duckdb.connect()
+if threads:
+    con.execute("SET threads = ?", [threads])
+started = time.perf_counter()
+for sql in queries:
+    con.execute(sql).fetchall()
+print(time.perf_counter() - started)
+"""
+
+
 def _scan_floor(queries: list[str], threads: int | None) -> float:
-    con = duckdb.connect()
-    if threads:
-        con.execute("SET threads = ?", [threads])
-    started = time.perf_counter()
-    for sql in queries:
-        con.execute(sql).fetchall()
-    seconds = time.perf_counter() - started
-    con.close()
-    return seconds
+    """Seconds to run ``queries``, in a child process.
+
+    Not in this process: on Linux a child's peak RSS starts at its parent's RSS when forked, so
+    a floor query run here would inflate every build's measured peak memory.
+    """
+    cmd = [sys.executable, "-c", _TIMED_QUERIES, json.dumps(queries), str(threads or 0)]
+    done = subprocess.run(cmd, capture_output=True, text=True, check=True)
+    return float(done.stdout.strip())
 
 
 def _build(study: Path, extract: Path, out: Path, *extra: str) -> dict[str, object]:
