@@ -66,37 +66,37 @@ def _extract(patients: int, seed: int) -> Path:
     return folder
 
 
-def _floor_queries(study: Path, extract: Path) -> list[str]:
-    """One query per table reading every column the study reads from it."""
+def _table_reads(study: Path, extract: Path) -> list[tuple[list[exp.Column], exp.Table]]:
+    """For each table the study reads: the columns it reads that the extract has, and the read."""
     plan = plan_study(study)
     tables = discover_extract(extract, plan.sources)
-    queries = []
+    reads = []
     for source in plan.sources:
         table = tables[source.name]
-        present = [c for c in source.columns if c in table.columns]
+        present = [exp.column(c) for c in source.columns if c in table.columns]
         files = exp.Array(expressions=[exp.Literal.string(str(f)) for f in table.files])
-        folds = [exp.func("BIT_XOR", exp.func("HASH", exp.column(c))) for c in present]
-        select = exp.select(*folds).from_(exp.Table(this=exp.func("read_parquet", files)))
-        queries.append(select.sql("duckdb"))
-    return queries
+        reads.append((present, exp.Table(this=exp.func("read_parquet", files))))
+    return reads
+
+
+def _floor_queries(study: Path, extract: Path) -> list[str]:
+    """One query per table reading every column the study reads from it."""
+    return [
+        exp.select(*(exp.func("BIT_XOR", exp.func("HASH", c)) for c in present))
+        .from_(read)
+        .sql("duckdb")
+        for present, read in _table_reads(study, extract)
+    ]
 
 
 def _duplicate_floor_queries(study: Path, extract: Path) -> list[str]:
     """One query per table grouping it on the columns the exact-duplicate check groups on."""
     if load_study(study).study.quality.exact_duplicates != "check":
         return []
-    plan = plan_study(study)
-    tables = discover_extract(extract, plan.sources)
     queries = []
-    for source in plan.sources:
-        table = tables[source.name]
-        present = [exp.column(c) for c in source.columns if c in table.columns]
-        files = exp.Array(expressions=[exp.Literal.string(str(f)) for f in table.files])
-        groups = (
-            exp.select(*present, exp.func("COUNT", exp.Star()).as_("copies"))
-            .from_(exp.Table(this=exp.func("read_parquet", files)))
-            .group_by(*present)
-        )
+    for present, read in _table_reads(study, extract):
+        copies = exp.func("COUNT", exp.Star()).as_("copies")
+        groups = exp.select(*present, copies).from_(read).group_by(*present)
         count = exp.select(exp.func("COUNT", exp.Star())).from_(groups.subquery("g"))
         queries.append(count.sql("duckdb"))
     return queries

@@ -168,11 +168,11 @@ WHERE bmi BETWEEN :low AND :high
 """
 
 
-def judged_rows(ctx: CompileContext, where: exp.Expression | None) -> exp.Query:
-    """Measurement rows (those ``where`` keeps) parsed, converted and judged.
+def _judged_rows(ctx: CompileContext) -> exp.Query:
+    """Every distinct measurement row parsed, converted and judged.
 
-    One template for the quality log and for the values, so the two can never judge a row
-    differently; ``where`` filters before any grouping.
+    One judgement for the quality log and for the values, so the two can never judge a row
+    differently.
     """
     known = values_table(
         "k",
@@ -200,13 +200,13 @@ def judged_rows(ctx: CompileContext, where: exp.Expression | None) -> exp.Query:
         known=known,
         units=units,
         known_category=known_category,
-        distinct_rows=grouped_rows(MEASUREMENTS, check_duplicates=check, where=where).subquery("d"),
+        distinct_rows=grouped_rows(MEASUREMENTS, check_duplicates=check).subquery("d"),
     )
 
 
 _JUDGED = """
 SELECT patient_id, obs_date, measure, value, qualifier, category, copies, source_position, problem
-FROM :rows
+FROM measurement_rows
 """
 
 
@@ -223,15 +223,15 @@ def measurement_stages(ctx: CompileContext) -> tuple[Stage, ...]:
     stages = [
         Stage(
             "measurement_rows",
-            judged_rows(ctx, None),
+            _judged_rows(ctx),
             ("src_measurements", "patient_base"),
             "every distinct measurement row parsed and converted, with what stops its use",
             kind="view",
         ),
         Stage(
             "measurement_judged",
-            query(_JUDGED, rows=judged_rows(ctx, None).subquery("r")),
-            ("src_measurements", "patient_base"),
+            query(_JUDGED),
+            ("measurement_rows",),
             "every measurement row parsed, converted and judged: values and quality log",
         ),
         Stage(

@@ -36,17 +36,13 @@ MEASUREMENTS = SourceTable(
 )
 
 
-def grouped_rows(
-    table: SourceTable, *, check_duplicates: bool, where: exp.Expression | None = None
-) -> exp.Query:
+def grouped_rows(table: SourceTable, *, check_duplicates: bool) -> exp.Query:
     """Distinct rows of a source table with how many copies of each the extract holds.
 
     A row's position is its first copy's. Without the duplicate check every row stands alone
     (``copies`` is 1): no grouping.
     """
     rows = exp.select(*table.columns).from_(table.relation)
-    if where is not None:
-        rows = rows.where(where)
     if not check_duplicates:
         return rows.select(exp.column(SOURCE_POSITION), exp.Literal.number(1).as_("copies"))
     first = exp.func("MIN", exp.column(SOURCE_POSITION)).as_(SOURCE_POSITION)
