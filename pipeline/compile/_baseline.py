@@ -21,19 +21,11 @@ from pipeline.compile._context import (
 )
 from pipeline.compile._measurements import measure_relations
 from pipeline.compile._plan import Stage
-from pipeline.compile._sql import days_between, is_in
+from pipeline.compile._sql import days_between, in_window, is_in, near_index
 from pipeline.config import Covariate, Evidence, Window
 from pipeline.measures import DERIVED_FROM
 
 OFFSET = "e_offset"  # event date minus index date, in days
-
-
-def in_window(window: Window, offset: exp.Expression) -> exp.Expression:
-    """``offset`` inside the window (both ends included; no start means all history)."""
-    start, end = window
-    if start is None:
-        return offset <= end
-    return offset.between(start, end)
 
 
 def _count(key: str, window: Window) -> exp.Expression:
@@ -121,6 +113,7 @@ def _evidence_counts(ctx: CompileContext) -> exp.Query | None:
         exp.select("patient_id", "evidence", "event_date", "n_rows")
         .from_("evidence_events")
         .where(exp.column("evidence").isin(*(evidence_id(k) for k in keys)))
+        .where(near_index(exp.column("event_date"), ctx.index_range, (None, 0)))
     )
     joined = (
         exp.select(
@@ -163,6 +156,7 @@ def _encounter_counts(ctx: CompileContext) -> exp.Query | None:
         )
         .distinct()
         .from_("encounter_rows AS e")
+        .where(near_index(exp.column("encounter_date", "e"), ctx.index_range, (earliest, 0)))
         .join(
             "index_dates AS i",
             on=exp.and_(
@@ -227,7 +221,9 @@ def _baseline_values(ctx: CompileContext, measures: list[str], earliest: int | N
         .from_(relation)
         .where(
             exp.and_(
-                is_in(exp.column("measure"), measures), exp.column("qualifier").is_(exp.null())
+                is_in(exp.column("measure"), measures),
+                exp.column("qualifier").is_(exp.null()),
+                near_index(exp.column("obs_date"), ctx.index_range, (earliest, 0)),
             )
         )
         for relation in relations

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import datetime as dt
 import zlib
 from dataclasses import dataclass
 from functools import cached_property
@@ -134,6 +135,11 @@ class CompileContext:
             if ev.condition is None
         )
         return conditions + self.study_evidence
+
+    @property
+    def index_range(self) -> tuple[dt.date, dt.date]:
+        """The first and last dates any index date can fall on."""
+        return self.study.index.first_possible, self.study.index.last_possible
 
     @cached_property
     def measures(self) -> tuple[str, ...]:

@@ -14,12 +14,11 @@ from sqlglot import exp
 
 from pipeline.codes import expand_codes
 from pipeline.compile._context import CompileContext, evidence_id, evidence_number
-from pipeline.compile._measurements import measure_relations
+from pipeline.compile._measurements import measure_relations, measurement_passes
 from pipeline.compile._plan import Stage
 from pipeline.compile._sources import same_raw_code
 from pipeline.compile._sql import days_between, is_in, query, value, values_table
 from pipeline.config import Evidence, MeasurementEvidence
-from pipeline.measures import Threshold
 
 CodeRow = tuple[str, str, int, str | None, int | None, bool]
 
@@ -95,36 +94,6 @@ FROM patient_base
 WHERE FALSE
 """
 
-_COMPARISONS = {
-    "at_least": exp.GTE,
-    "above": exp.GT,
-    "below": exp.LT,
-    "at_most": exp.LTE,
-}
-
-# A value reported as "<x" or ">x" meets a threshold only when the comparison is certain:
-# "<x" is below t when x <= t; ">x" is at least t when x >= t; otherwise it is not counted.
-_CERTAIN_WITH_QUALIFIER = {
-    "below": {"<": exp.LTE, "<=": exp.LT},
-    "at_most": {"<": exp.LTE, "<=": exp.LTE},
-    "above": {">": exp.GTE, ">=": exp.GT},
-    "at_least": {">": exp.GTE, ">=": exp.GTE},
-}
-
-
-def _meets(threshold: Threshold) -> exp.Expression:
-    value_col, limit = exp.column("value"), value(threshold.canonical_value)
-    case = exp.Case().when(
-        exp.column("qualifier").is_(exp.null()),
-        _COMPARISONS[threshold.comparison](this=value_col, expression=limit),
-    )
-    for qualifier, compare in _CERTAIN_WITH_QUALIFIER[threshold.comparison].items():
-        case = case.when(
-            exp.column("qualifier").eq(qualifier),
-            compare(this=value_col.copy(), expression=limit.copy()),
-        )
-    return case.else_(exp.false())
-
 
 def _code_rows(key: str, ev: Evidence) -> list[CodeRow]:
     number = evidence_number(key)
@@ -157,16 +126,12 @@ def code_table_rows(ctx: CompileContext) -> list[CodeRow]:
 
 
 def _measurement_query(key: str, measurement: MeasurementEvidence, relation: str) -> exp.Query:
-    if measurement.category:
-        passes = is_in(exp.column("category"), measurement.category)
-    else:
-        passes = exp.and_(*(_meets(t) for t in measurement.thresholds()))
     return query(
         _MEASUREMENT_EVIDENCE,
         key=evidence_id(key),
         relation=exp.to_table(relation),
         measure=measurement.measure,
-        passes=passes,
+        passes=measurement_passes(measurement),
     )
 
 

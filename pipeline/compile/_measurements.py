@@ -14,8 +14,16 @@ from sqlglot import exp
 from pipeline.compile._context import CompileContext
 from pipeline.compile._plan import Stage
 from pipeline.compile._sources import MEASUREMENTS, grouped_rows
-from pipeline.compile._sql import age_in_years, is_in, query, values_table
-from pipeline.measures import DERIVED_FROM, MEASURES, conversion_rows
+from pipeline.compile._sql import (
+    age_in_years,
+    is_in,
+    near_index,
+    query,
+    value,
+    values_table,
+)
+from pipeline.config import MeasurementEvidence
+from pipeline.measures import DERIVED_FROM, MEASURES, Threshold, conversion_rows
 
 # No backslashes: the pattern must mean the same in every engine's string literals.
 READING_PATTERN = "^(<=|>=|<|>)?[ ]*([0-9]+([.,][0-9]+)?)[ ]*(.*)$"
@@ -105,6 +113,44 @@ LEFT JOIN patient_base AS p ON p.patient_id = r.patient_id
 LEFT JOIN :known ON k.measure = r.measure
 LEFT JOIN :units ON u.measure = r.measure AND u.unit = r.unit
 """
+
+_COMPARISONS = {
+    "at_least": exp.GTE,
+    "above": exp.GT,
+    "below": exp.LT,
+    "at_most": exp.LTE,
+}
+
+# A value reported as "<x" or ">x" meets a threshold only when the comparison is certain:
+# "<x" is below t when x <= t; ">x" is at least t when x >= t; otherwise it is not counted.
+_CERTAIN_WITH_QUALIFIER = {
+    "below": {"<": exp.LTE, "<=": exp.LT},
+    "at_most": {"<": exp.LTE, "<=": exp.LTE},
+    "above": {">": exp.GTE, ">=": exp.GT},
+    "at_least": {">": exp.GTE, ">=": exp.GTE},
+}
+
+
+def _meets(threshold: Threshold) -> exp.Expression:
+    value_col, limit = exp.column("value"), value(threshold.canonical_value)
+    case = exp.Case().when(
+        exp.column("qualifier").is_(exp.null()),
+        _COMPARISONS[threshold.comparison](this=value_col, expression=limit),
+    )
+    for qualifier, compare in _CERTAIN_WITH_QUALIFIER[threshold.comparison].items():
+        case = case.when(
+            exp.column("qualifier").eq(qualifier),
+            compare(this=value_col.copy(), expression=limit.copy()),
+        )
+    return case.else_(exp.false())
+
+
+def measurement_passes(measurement: MeasurementEvidence) -> exp.Expression:
+    """Whether a value (columns ``value``, ``qualifier``, ``category``) meets the evidence."""
+    if measurement.category:
+        return is_in(exp.column("category"), measurement.category)
+    return exp.and_(*(_meets(t) for t in measurement.thresholds()))
+
 
 _MEASUREMENT_VALUES = """
 SELECT patient_id, obs_date, measure, value, qualifier, category, FALSE AS derived
@@ -210,16 +256,69 @@ FROM measurement_rows
 """
 
 
+def _kept_rows(ctx: CompileContext) -> exp.Expression | None:
+    """Which usable rows ``measurement_values`` keeps: those some later stage can read.
+
+    None keeps every row. A measure that is derived, or that a derivation reads, keeps every row
+    (a reported value wins over a derived one on its day, and the latest height is any height).
+    Any other measure keeps the rows its evidence can count (all dates: a look-back may reach
+    any of them) and those its covariates' windows can reach from any possible index date; the
+    rest (most blood pressures, say) would only be stored and never read. The dates are fixed
+    by the study, so no row waits on a join to the index dates.
+    """
+    demands: dict[str, list[exp.Expression] | None] = {m: [] for m in ctx.measures}
+    for derived, sources in DERIVED_FROM.items():
+        if derived in ctx.measures:
+            demands.update(dict.fromkeys((derived, *sources)))
+    for _, ev in ctx.evidence:
+        wanted = demands[ev.measurement.measure] if ev.measurement else None
+        if ev.measurement and wanted is not None:
+            wanted.append(measurement_passes(ev.measurement))
+    for covariate in ctx.study.covariates.values():
+        measure = covariate.latest or covariate.mean or covariate.minimum or covariate.maximum
+        wanted = demands[measure] if measure else None
+        if wanted is not None:
+            wanted.append(near_index(exp.column("obs_date"), ctx.index_range, covariate.span))
+    whole = sorted(m for m, wanted in demands.items() if not wanted)
+    if len(whole) == len(demands):
+        return None
+    kept = [is_in(exp.column("measure"), whole)] if whole else []
+    for measure, wanted in sorted(demands.items()):
+        if wanted:
+            kept.append(exp.and_(exp.column("measure").eq(measure), exp.or_(*wanted)))
+    return exp.or_(*kept)
+
+
+def _values_stage(ctx: CompileContext) -> Stage:
+    values = query(_MEASUREMENT_VALUES, wanted=is_in(exp.column("measure"), ctx.measures))
+    kept = _kept_rows(ctx)
+    if kept is None:
+        return Stage(
+            "measurement_values",
+            values,
+            ("measurement_judged",),
+            "usable values of the measures the study reads, in canonical units",
+        )
+    return Stage(
+        "measurement_values",
+        values.where(kept),
+        ("measurement_judged",),
+        "usable values the study can read, in canonical units: all of derived measures and "
+        "their inputs, of the others those that are evidence or near a possible index date",
+    )
+
+
 def measurement_stages(ctx: CompileContext) -> tuple[Stage, ...]:
     """``measurement_rows`` (every row, with a problem or not) and usable values.
 
-    Every row is judged once, in ``measurement_judged``: the values are its rows of the measures
-    the study reads that have no problem, and the quality log counts all of it. (Judging only
-    the measures the study reads, and the others apart for the quality log, read and grouped the
-    table twice.)
+    Every row is judged once in ``measurement_judged``, for the values and the quality log.
+    When exact duplicates are checked it is a table, so the grouping runs once; otherwise a
+    view, read twice (by the values and the quality log), which costs less than storing tens
+    of millions of judged rows.
     """
     if not ctx.measures:
         return ()
+    check = ctx.study.quality.exact_duplicates == "check"
     stages = [
         Stage(
             "measurement_rows",
@@ -233,14 +332,9 @@ def measurement_stages(ctx: CompileContext) -> tuple[Stage, ...]:
             query(_JUDGED),
             ("measurement_rows",),
             "every measurement row parsed, converted and judged: values and quality log",
+            kind="table" if check else "view",
         ),
-        Stage(
-            "measurement_values",
-            query(_MEASUREMENT_VALUES, wanted=is_in(exp.column("measure"), ctx.measures)),
-            ("measurement_judged",),
-            "usable values of the measures the study reads, in canonical units",
-            kind="view",
-        ),
+        _values_stage(ctx),
     ]
     if "egfr" in ctx.measures:
         low, high = MEASURES["egfr"].plausible

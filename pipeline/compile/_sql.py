@@ -69,6 +69,30 @@ def days_between(start: exp.Expression, end: exp.Expression) -> exp.Expression:
     return exp.DateDiff(this=end, expression=start, unit=exp.var("DAY"))
 
 
+def in_window(window: tuple[int | None, int], offset: exp.Expression) -> exp.Expression:
+    """``offset`` inside the window (both ends included; no start means all history)."""
+    start, end = window
+    if start is None:
+        return offset <= end
+    return offset.between(start, end)
+
+
+def near_index(
+    day: exp.Expression, possible: tuple[dt.date, dt.date], window: tuple[int | None, int]
+) -> exp.Expression:
+    """``day`` inside ``window`` of some index date in ``possible`` (first, last), by fixed dates.
+
+    True of every row a window can reach from a patient's own index date, so an engine can drop
+    the other rows before any join to the index dates.
+    """
+    first, last = possible
+    start, end = window
+    latest = value(last + dt.timedelta(days=end))
+    if start is None:
+        return day <= latest
+    return day.between(value(first + dt.timedelta(days=start)), latest)
+
+
 def add_days(date: exp.Expression, days: int | exp.Expression) -> exp.Expression:
     """``date + days`` as a DATE on every engine."""
     return exp.cast(

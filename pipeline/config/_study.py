@@ -103,6 +103,15 @@ class IndexRule(Model):
         return next(k for k in STRATEGIES if getattr(self, k) is not None)
 
     @property
+    def first_possible(self) -> dt.date:
+        """The earliest date an index can fall on."""
+        if self.fixed_date is not None:
+            return self.fixed_date
+        window = self.first_encounter or self.first_event or self.random_encounter
+        assert window is not None  # one strategy is set (checked above)
+        return window.between[0]
+
+    @property
     def last_possible(self) -> dt.date:
         """The latest date an index can fall on."""
         if self.fixed_date is not None:

@@ -378,7 +378,7 @@ SELECT
   problem
 FROM measurement_rows;
 
--- stage measurement_values [view]: usable values of the measures the study reads, in canonical units
+-- stage measurement_values [table]: usable values the study can read, in canonical units: all of derived measures and their inputs, of the others those that are evidence or near a possible index date
 -- reads: measurement_judged
 SELECT
   patient_id,
@@ -390,8 +390,32 @@ SELECT
   FALSE AS derived
 FROM measurement_judged
 WHERE
-  problem IS NULL
-  AND measure IN ('bmi', 'creatinine', 'egfr', 'hba1c', 'height', 'sbp', 'weight');
+  (
+    problem IS NULL
+    AND measure IN ('bmi', 'creatinine', 'egfr', 'hba1c', 'height', 'sbp', 'weight')
+  )
+  AND (
+    measure IN ('bmi', 'creatinine', 'egfr', 'height', 'weight')
+    OR (
+      measure = 'hba1c'
+      AND (
+        CASE
+          WHEN qualifier IS NULL
+          THEN value >= 6.5
+          WHEN qualifier = '>'
+          THEN value >= 6.5
+          WHEN qualifier = '>='
+          THEN value >= 6.5
+          ELSE FALSE
+        END
+        OR obs_date BETWEEN CAST('2013-01-01' AS DATE) AND CAST('2016-12-31' AS DATE)
+      )
+    )
+    OR (
+      measure = 'sbp'
+      AND obs_date BETWEEN CAST('2013-01-01' AS DATE) AND CAST('2016-12-31' AS DATE)
+    )
+  );
 
 -- stage derived_egfr [table]: eGFR derived from creatinine by CKD-EPI 2021 where none was reported that day
 -- reads: measurement_values, patient_base
@@ -1511,6 +1535,7 @@ LEFT JOIN (
           752661743, /* @charlson.renal_disease */
           264104370 /* @charlson.rheumatic_disease */
         )
+        AND event_date <= CAST('2016-12-31' AS DATE)
     ) AS e
       ON e.patient_id = i.patient_id AND e.event_date <= i.index_date
   ) AS e
@@ -1532,6 +1557,8 @@ LEFT JOIN (
     JOIN index_dates AS i
       ON i.patient_id = e.patient_id
       AND DATE_DIFF('DAY', i.index_date, e.encounter_date) BETWEEN -365 AND 0
+    WHERE
+      e.encounter_date BETWEEN CAST('2014-01-01' AS DATE) AND CAST('2016-12-31' AS DATE)
   ) AS v
   GROUP BY
     patient_id
@@ -1557,7 +1584,9 @@ WITH baseline_values AS (
       derived
     FROM derived_bmi
     WHERE
-      measure IN ('bmi', 'egfr', 'hba1c', 'sbp') AND qualifier IS NULL
+      measure IN ('bmi', 'egfr', 'hba1c', 'sbp')
+      AND qualifier IS NULL
+      AND obs_date BETWEEN CAST('2013-01-01' AS DATE) AND CAST('2016-12-31' AS DATE)
     UNION ALL
     SELECT
       patient_id,
@@ -1567,7 +1596,9 @@ WITH baseline_values AS (
       derived
     FROM derived_egfr
     WHERE
-      measure IN ('bmi', 'egfr', 'hba1c', 'sbp') AND qualifier IS NULL
+      measure IN ('bmi', 'egfr', 'hba1c', 'sbp')
+      AND qualifier IS NULL
+      AND obs_date BETWEEN CAST('2013-01-01' AS DATE) AND CAST('2016-12-31' AS DATE)
     UNION ALL
     SELECT
       patient_id,
@@ -1577,7 +1608,9 @@ WITH baseline_values AS (
       derived
     FROM measurement_values
     WHERE
-      measure IN ('bmi', 'egfr', 'hba1c', 'sbp') AND qualifier IS NULL
+      measure IN ('bmi', 'egfr', 'hba1c', 'sbp')
+      AND qualifier IS NULL
+      AND obs_date BETWEEN CAST('2013-01-01' AS DATE) AND CAST('2016-12-31' AS DATE)
   ) AS v
   JOIN index_dates AS i
     ON i.patient_id = v.patient_id
