@@ -31,9 +31,9 @@ def _reachable(day: date, index: date, window: tuple[int | None, int]) -> bool:
     return offset <= end and (start is None or offset >= start)
 
 
-windows = st.tuples(
-    st.one_of(st.none(), st.integers(-3000, 0)), st.integers(-400, 0)
-).filter(lambda w: w[0] is None or w[0] <= w[1])
+windows = st.tuples(st.one_of(st.none(), st.integers(-3000, 0)), st.integers(-400, 0)).filter(
+    lambda w: w[0] is None or w[0] <= w[1]
+)
 
 
 @settings(max_examples=200, deadline=None)
