@@ -16,7 +16,10 @@ already in ``benchmarks/data/``, which is git-ignored), then measures in the sam
 (e) the build again with ``--memory-limit`` (default 1GB) and ``--threads 2``;
 (f) for a study that checks exact duplicates, the duplicate floor: DuckDB grouping each table
     on the columns the check groups on, once, with nothing else; the least any exact check can
-    cost, and the reason (b) cannot come near (a) while the check is on.
+    cost, and the reason (b) cannot come near (a) while the check is on;
+(g) the patient floor: each event table's rows joined once to the patients (reading the
+    Parquet files directly), counting known patients and rows dated after death; the least
+    work that checks every row against its patient, as every build must.
 
 Each size is measured for the study as written and for a variant of it with
 ``quality: {exact_duplicates: skip}`` (written to a temporary file), since finding exact
@@ -102,6 +105,55 @@ def _duplicate_floor_queries(study: Path, extract: Path) -> list[str]:
     return queries
 
 
+# The date each event table's rows are checked against death and end of data by.
+_EVENT_DATES = {
+    "encounters": "encounter_date",
+    "diagnoses": "event_date",
+    "prescriptions": "start_date",
+    "measurements": "obs_date",
+}
+
+
+def _patient_floor_queries(study: Path, extract: Path) -> list[str]:
+    """One query per event table joining each row to its patient, as every build must.
+
+    It counts the rows with a known patient and those dated after the patient's death: the
+    least work that checks each row against its patient (the orphan and after-death reasons).
+    """
+    plan = plan_study(study)
+    tables = discover_extract(extract, plan.sources)
+    reads = {
+        name: exp.Table(
+            this=exp.func(
+                "read_parquet",
+                exp.Array(expressions=[exp.Literal.string(str(f)) for f in tables[name].files]),
+            )
+        )
+        for name in tables
+    }
+    queries = []
+    for source in plan.sources:
+        date = _EVENT_DATES.get(source.name)
+        if date is None:
+            continue
+        after_death = exp.column(date, "r") > exp.column("death_date", "p")
+        counts = [
+            exp.func("COUNT", exp.column("patient_id", "p")),
+            exp.func("COUNT_IF", after_death),
+        ]
+        joined = (
+            exp.select(*counts)
+            .from_(reads[source.name].copy().as_("r"))
+            .join(
+                reads["patients"].copy().as_("p"),
+                on=exp.column("patient_id", "p").eq(exp.column("patient_id", "r")),
+                join_type="left",
+            )
+        )
+        queries.append(joined.sql("duckdb"))
+    return queries
+
+
 def _skip_variant(study: Path, folder: Path) -> Path:
     """A copy of ``study`` that skips the exact-duplicate check, its paths made absolute."""
     doc = yaml.safe_load(study.read_text(encoding="utf-8"))
@@ -162,6 +214,7 @@ def _measure(args: argparse.Namespace, study: Path, patients: int) -> dict[str, 
     floors = [_scan_floor(queries, args.threads) for _ in range(args.repeat)]
     duplicate_queries = _duplicate_floor_queries(study, extract)
     duplicate_floor = _scan_floor(duplicate_queries, args.threads) if duplicate_queries else None
+    patient_floor = _scan_floor(_patient_floor_queries(study, extract), args.threads)
     out = Path(tempfile.mkdtemp(prefix="build-scale-"))
     try:
         threads = ["--threads", str(args.threads)] if args.threads else []
@@ -191,20 +244,22 @@ def _measure(args: argparse.Namespace, study: Path, patients: int) -> dict[str, 
         "build_all_seconds": [b["wall_seconds"] for b in builds],
         "ratio": round(float(best["wall_seconds"]) / floor, 1),  # type: ignore[arg-type]
         "duplicate_floor_seconds": None if duplicate_floor is None else round(duplicate_floor, 2),
+        "patient_floor_seconds": round(patient_floor, 2),
         "memory_limited": {"memory_limit": args.memory_limit, "threads": 2, **limited},
     }
 
 
 def _table(results: list[dict[str, object]]) -> str:
-    head = ["study", "patients", "event rows", "floor s", "duplicate floor s", "build s", "ratio",
-            "peak MB", "limited s", "limited peak MB"]  # fmt: skip
+    head = ["study", "patients", "event rows", "floor s", "patient floor s", "duplicate floor s",
+            "build s", "ratio", "peak MB", "limited s", "limited peak MB"]  # fmt: skip
     rows = []
     for r in results:
         build, limited = r["build"], r["memory_limited"]
         assert isinstance(build, dict)
         assert isinstance(limited, dict)
         rows.append([str(r["study"]), f"{r['patients']:,}", f"{r['event_rows']:,}",
-                     f"{r['scan_floor_seconds']}", f"{r['duplicate_floor_seconds'] or '-'}",
+                     f"{r['scan_floor_seconds']}", f"{r['patient_floor_seconds']}",
+                     f"{r['duplicate_floor_seconds'] or '-'}",
                      f"{build['wall_seconds']}", f"{r['ratio']}", f"{build['peak_rss_mb']:,}",
                      f"{limited['wall_seconds']}", f"{limited['peak_rss_mb']:,}"])  # fmt: skip
     return markdown_table(head, rows)
