@@ -23,7 +23,13 @@ from pipeline.compile._sql import (
     values_table,
 )
 from pipeline.config import MeasurementEvidence
-from pipeline.measures import DERIVED_FROM, MEASURES, Threshold, conversion_rows
+from pipeline.measures import (
+    DERIVED_FROM,
+    MEASURES,
+    SAME_DAY_INPUTS,
+    Threshold,
+    conversion_rows,
+)
 
 # No backslashes: the pattern must mean the same in every engine's string literals.
 READING_PATTERN = "^(<=|>=|<|>)?[ ]*([0-9]+([.,][0-9]+)?)[ ]*(.*)$"
@@ -259,26 +265,40 @@ FROM measurement_rows
 def _kept_rows(ctx: CompileContext) -> exp.Expression | None:
     """Which usable rows ``measurement_values`` keeps: those some later stage can read.
 
-    None keeps every row. A measure that is derived, or that a derivation reads, keeps every row
-    (a reported value wins over a derived one on its day, and the latest height is any height).
-    Any other measure keeps the rows its evidence can count (all dates: a look-back may reach
-    any of them) and those its covariates' windows can reach from any possible index date; the
-    rest (most blood pressures, say) would only be stored and never read. The dates are fixed
-    by the study, so no row waits on a join to the index dates.
+    None keeps every row. A measure keeps the rows its evidence can count (all dates: a
+    look-back may reach any of them) and those its covariates' windows can reach from any
+    possible index date; the rest (most blood pressures, say) would only be stored and never
+    read. The dates are fixed by the study, so no row waits on a join to the index dates.
+
+    A derived measure read only in windows keeps its windows, and so do the inputs it reads on
+    the same day (weight for BMI): a reported value wins over a derived one on its day, so both
+    are needed on the same days. Inputs read whatever their date (height) are kept whole. A
+    derived measure that is evidence, or whose same-day inputs are read for themselves too, is
+    kept whole with all its inputs: a threshold on derived values says nothing of the days
+    their inputs fall on.
     """
-    demands: dict[str, list[exp.Expression] | None] = {m: [] for m in ctx.measures}
-    for derived, sources in DERIVED_FROM.items():
-        if derived in ctx.measures:
-            demands.update(dict.fromkeys((derived, *sources)))
+    direct: dict[str, list[exp.Expression]] = {m: [] for m in ctx.measures}
+    evidence_on: set[str] = set()
     for _, ev in ctx.evidence:
-        wanted = demands[ev.measurement.measure] if ev.measurement else None
-        if ev.measurement and wanted is not None:
-            wanted.append(measurement_passes(ev.measurement))
+        if ev.measurement:
+            direct[ev.measurement.measure].append(measurement_passes(ev.measurement))
+            evidence_on.add(ev.measurement.measure)
     for covariate in ctx.study.covariates.values():
         measure = covariate.latest or covariate.mean or covariate.minimum or covariate.maximum
-        wanted = demands[measure] if measure else None
-        if wanted is not None:
-            wanted.append(near_index(exp.column("obs_date"), ctx.index_range, covariate.span))
+        if measure:
+            direct[measure].append(
+                near_index(exp.column("obs_date"), ctx.index_range, covariate.span)
+            )
+    demands: dict[str, list[exp.Expression] | None] = dict(direct)
+    for derived, sources in DERIVED_FROM.items():
+        if derived not in ctx.measures:
+            continue
+        same_day = SAME_DAY_INPUTS.get(derived, ())
+        if derived in evidence_on or any(direct[s] for s in same_day):
+            demands.update(dict.fromkeys((derived, *sources)))
+            continue
+        for source in sources:
+            demands[source] = [w.copy() for w in direct[derived]] if source in same_day else None
     whole = sorted(m for m, wanted in demands.items() if not wanted)
     if len(whole) == len(demands):
         return None

@@ -55,6 +55,17 @@ StageCallback = Callable[[Stage, int, int], None]
 
 _OPTIMIZERS = exp.select("name").from_("duckdb_optimizers()").sql("duckdb")
 
+# Optimizers the engine turns off (where this DuckDB has them):
+# - type_pushdown: DuckDB 2.0 pushes TRY_CAST into the CSV reader as a strict cast, so one bad
+#   value in a text column would fail the whole read; every value must reach our own TRY_CAST.
+# - build_side_probe_side: it swaps a join's sides by estimated sizes, and after a stage's
+#   filters it can take tens of millions of extract rows for a few hundred thousand and build
+#   its hash table on them instead of on the patients (at 2M patients: 8-10 s for one such join
+#   instead of about 1 s). Without it an outer join builds on the side written on the right
+#   (the patients, or a small table, in this plan) and an inner join on the side the join
+#   order optimizer picks.
+_DISABLED_OPTIMIZERS = ("type_pushdown", "build_side_probe_side")
+
 
 def _csv_options(table: ExtractTable) -> dict[str, exp.Expression]:
     # The header as discovery read it (stripped, lower-cased); a blank or repeated name, which
@@ -204,11 +215,10 @@ class DuckDBEngine:
     def _connect(self, scratch: Path) -> duckdb.DuckDBPyConnection:
         con = duckdb.connect(":memory:")
         con.execute("SET temp_directory = ?", [str(scratch)])
-        # DuckDB 2.0 pushes TRY_CAST into the CSV reader as a strict cast, so one bad value in
-        # a text column would fail the whole read; every value must reach our own TRY_CAST.
         optimizers = {row[0] for row in con.execute(_OPTIMIZERS).fetchall()}
-        if "type_pushdown" in optimizers:
-            con.execute("SET disabled_optimizers = 'type_pushdown'")
+        disabled = [name for name in _DISABLED_OPTIMIZERS if name in optimizers]
+        if disabled:
+            con.execute("SET disabled_optimizers = ?", [",".join(disabled)])
         con.execute("SET preserve_insertion_order = false")
         if self.threads:
             con.execute("SET threads = ?", [self.threads])

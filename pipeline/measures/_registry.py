@@ -155,6 +155,10 @@ DERIVED_FROM: dict[str, tuple[str, ...]] = {
     "bmi": ("weight", "height"),  # weight / (latest height in m)^2, on days without a BMI
 }
 
+# The inputs each derivation reads on the day of the value it derives (the others, height, are
+# read whatever their date).
+SAME_DAY_INPUTS: dict[str, tuple[str, ...]] = {"egfr": ("creatinine",), "bmi": ("weight",)}
+
 
 def conversion_rows() -> list[tuple[str, str, float, float, float, float, float]]:
     """Return (measure, unit spelling, factor, divisor, offset, low, high) per accepted unit.

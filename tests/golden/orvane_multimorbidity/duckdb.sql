@@ -395,7 +395,11 @@ WHERE
     AND measure IN ('bmi', 'creatinine', 'egfr', 'hba1c', 'height', 'sbp', 'weight')
   )
   AND (
-    measure IN ('bmi', 'creatinine', 'egfr', 'height', 'weight')
+    measure IN ('creatinine', 'egfr', 'height')
+    OR (
+      measure = 'bmi'
+      AND obs_date BETWEEN CAST('2013-01-01' AS DATE) AND CAST('2016-12-31' AS DATE)
+    )
     OR (
       measure = 'hba1c'
       AND (
@@ -413,6 +417,10 @@ WHERE
     )
     OR (
       measure = 'sbp'
+      AND obs_date BETWEEN CAST('2013-01-01' AS DATE) AND CAST('2016-12-31' AS DATE)
+    )
+    OR (
+      measure = 'weight'
       AND obs_date BETWEEN CAST('2013-01-01' AS DATE) AND CAST('2016-12-31' AS DATE)
     )
   );
