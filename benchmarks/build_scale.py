@@ -172,6 +172,7 @@ import json, sys, time
 import duckdb
 queries, threads = json.loads(sys.argv[1]), int(sys.argv[2])
 con = duckdb.connect()
+con.execute("SET enable_progress_bar = false")  # it would print to stdout, which carries the time
 if threads:
     con.execute("SET threads = ?", [threads])
 started = time.perf_counter()
