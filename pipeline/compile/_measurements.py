@@ -323,8 +323,8 @@ def _values_stage(ctx: CompileContext) -> Stage:
         "measurement_values",
         values.where(kept),
         ("measurement_judged",),
-        "usable values the study can read, in canonical units: all of derived measures and "
-        "their inputs, of the others those that are evidence or near a possible index date",
+        "usable values some stage can read, in canonical units: those that are evidence, "
+        "those near a possible index date, and what derived values need",
     )
 
 

@@ -378,7 +378,7 @@ SELECT
   problem
 FROM measurement_rows;
 
--- stage measurement_values [table]: usable values the study can read, in canonical units: all of derived measures and their inputs, of the others those that are evidence or near a possible index date
+-- stage measurement_values [table]: usable values some stage can read, in canonical units: those that are evidence, those near a possible index date, and what derived values need
 -- reads: measurement_judged
 SELECT
   patient_id,
