@@ -23,13 +23,11 @@ from pipeline._build import BuildOptions, build_study, plan_study, verify_output
 from pipeline._diff import diff_runs, render_diff
 from pipeline._explain import explain_patient, render_trace
 from pipeline._profile import profile_extract, write_profile
-from pipeline._validate import render_validation, validate_study
 from pipeline.compile import Stage
 from pipeline.config import load_study
 from pipeline.config._check import check_paths, explain_condition
 from pipeline.engine import DuckDBEngine, SparkEngine
 from pipeline.errors import AscertainError
-from pipeline.outputs._report import write_report
 
 app = typer.Typer(
     name="ascertain",
@@ -265,6 +263,9 @@ def validate(
     """Compare each outcome's definition with a reference standard: sensitivity, PPV, kappa."""
 
     def run() -> str:
+        # Imported here: it loads scipy (half a second), which no other command needs.
+        from pipeline._validate import render_validation, validate_study
+
         results = validate_study(study, reference, extract=extract)
         threshold = load_study(study).study.output.small_cell_threshold
         return render_validation(results, threshold)
@@ -278,6 +279,9 @@ def report(
     debug: DebugOpt = False,
 ) -> None:
     """Write report.html and suppressed summary tables (summary/*.csv) for an output folder."""
+    # Imported here: it loads scipy (half a second), which no other command needs.
+    from pipeline.outputs._report import write_report
+
     files = _fail_cleanly(lambda: write_report(output), debug=debug)
     for path in files:
         typer.echo(str(path))
