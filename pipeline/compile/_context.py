@@ -139,7 +139,7 @@ class CompileContext:
     @property
     def index_range(self) -> tuple[dt.date, dt.date]:
         """The first and last dates any index date can fall on."""
-        return self.study.index.first_possible, self.study.index.last_possible
+        return self.study.index.possible
 
     @cached_property
     def measures(self) -> tuple[str, ...]:

@@ -103,22 +103,13 @@ class IndexRule(Model):
         return next(k for k in STRATEGIES if getattr(self, k) is not None)
 
     @property
-    def first_possible(self) -> dt.date:
-        """The earliest date an index can fall on."""
+    def possible(self) -> tuple[dt.date, dt.date]:
+        """The earliest and latest dates an index can fall on."""
         if self.fixed_date is not None:
-            return self.fixed_date
+            return self.fixed_date, self.fixed_date
         window = self.first_encounter or self.first_event or self.random_encounter
         assert window is not None  # one strategy is set (checked above)
-        return window.between[0]
-
-    @property
-    def last_possible(self) -> dt.date:
-        """The latest date an index can fall on."""
-        if self.fixed_date is not None:
-            return self.fixed_date
-        window = self.first_encounter or self.first_event or self.random_encounter
-        assert window is not None  # one strategy is set (checked above)
-        return window.between[1]
+        return window.between
 
 
 STRATEGIES = ("first_encounter", "fixed_date", "first_event", "random_encounter")
@@ -413,6 +404,6 @@ class Study(Model):
 
     @model_validator(mode="after")
     def _index_within_data(self) -> Self:
-        if self.index.last_possible > self.end_of_data:
+        if self.index.possible[1] > self.end_of_data:
             raise ValueError("the index window ends after end_of_data")
         return self
