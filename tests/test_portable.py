@@ -189,6 +189,7 @@ def test_a_mapping_file_is_an_input_and_mapped_files_are_relative_to_it(tmp_path
     assert "changed input: extract file mapping.yaml has changed since the build" in output
 
 
+# Made-up paths: portable_path only compares their parts and never touches the disk.
 @pytest.mark.parametrize(
     ("path", "base", "home", "expected"),
     [
