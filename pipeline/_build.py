@@ -245,7 +245,7 @@ def locate_inputs(
                 f"{folder}: the manifest does not say where the study file {name} is "
                 "(it was too far from the output folder to record); pass --study FILE"
             )
-        study = folder / hint
+        study = folder.resolve() / hint  # the hint was made from the resolved folder
     if not study.is_file():
         raise AscertainError(f"{study}: the study file {name} is not there; pass --study FILE")
     if extract is None and locations.get("extract_from_study") is not None:

@@ -81,7 +81,7 @@ def locate_study(
     if study is not None:
         return study, name
     hint = manifest.get("locations", {}).get("study_from_output")
-    return (output_dir / hint if hint else None), name
+    return (output_dir.resolve() / hint if hint else None), name
 
 
 def read_study(
