@@ -3,12 +3,12 @@
 from __future__ import annotations
 
 import datetime as dt
-import platform
 import tempfile
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from importlib.metadata import PackageNotFoundError, version
 from pathlib import Path
+from typing import Any
 
 import pyarrow as pa
 
@@ -17,11 +17,15 @@ from pipeline.config import LoadedStudy, load_study
 from pipeline.engine import DuckDBEngine, RunResult, SparkEngine
 from pipeline.engine._duckdb import StageCallback
 from pipeline.engine._spark import DEFAULT_MASTER
-from pipeline.errors import EngineError
+from pipeline.errors import AscertainError, EngineError
 from pipeline.extract import ExtractTable, discover_extract
 from pipeline.outputs import (
     changed_inputs,
     describe_files,
+    extract_inputs,
+    extract_root,
+    make_manifest,
+    portable_path,
     read_manifest,
     sha256_file,
     write_outputs,
@@ -104,33 +108,33 @@ def build_study(
     tables = discover_extract(extract, plan.sources)
     threads = options.threads or study.engine.threads
     engine = make_engine(options, threads, options.memory_limit or study.engine.memory_limit)
-    extract_files = [f for table in tables.values() for f in table.files]
+    extract_files = extract_inputs(extract, (f for t in tables.values() for f in t.files))
     with ThreadPoolExecutor(max_workers=1) as hasher:
         # Hashing the extract overlaps with the engine's work instead of adding to it.
-        hashed_extract = hasher.submit(describe_files, extract_files)
+        hashed_extract = hasher.submit(describe_files, extract_files, extract_root(extract))
         started = dt.datetime.now(dt.UTC)
         run = engine.run(plan, tables, on_stage=on_stage)
         finished = dt.datetime.now(dt.UTC)
         extract_entries = hashed_extract.result()
     quality = check_row_accounting(run.outputs["quality"], run.outputs["rows_read"])
-    manifest = {
-        "tool_version": tool_version(),
-        "engine": {"name": run.engine, "version": run.engine_version, "threads": threads},
-        "python": platform.python_version(),
-        "study": describe_files([loaded.file]),
-        "definitions": describe_files(loaded.catalog.files.values()),
-        "extract": extract_entries,
-        "extract_folder": str(extract),
-        "plan_hash": plan.content_hash(),
-        "rows": {
+    manifest = make_manifest(
+        tool_version=tool_version(),
+        engine={"name": run.engine, "version": run.engine_version, "threads": threads},
+        study_file=loaded.file,
+        definition_files=loaded.catalog.files.values(),
+        extract=extract,
+        extract_entries=extract_entries,
+        out=out,
+        plan_hash=plan.content_hash(),
+        rows={
             "cohort": run.outputs["cohort"].num_rows,
             **{row["source_table"]: row["n_rows"] for row in run.outputs["rows_read"].to_pylist()},
         },
-    }
+    )
     run_info = {
         "study": study.study,
-        "study_file": str(loaded.file),
-        "extract": str(extract),
+        "study_file": loaded.file.name,
+        "extract": manifest["locations"]["extract_from_study"],
         "started_utc": started.isoformat(timespec="seconds"),
         "finished_utc": finished.isoformat(timespec="seconds"),
         "quality": quality,
@@ -162,11 +166,12 @@ def locate_first_rows(
     """The quality log with each reason's first set-aside row as a file and a row number.
 
     The engine gives a position (file index * POSITION_BASE + row, CSV only); a reader wants
-    the file, relative to the extract's folder where it lies inside it, and the row, counted
+    the file, relative to the extract's folder (by name alone where a relative path could name
+    a private folder, see ``portable_path``), and the row, counted
     from 1 after the header (its line is row + 1 when no field holds a line break and no
     line is blank).
     """
-    folder = extract if extract.is_dir() else extract.parent  # a mapping file's folder
+    folder = extract_root(extract)
     files: list[str | None] = []
     rows: list[int | None] = []
     for entry in quality.to_pylist():
@@ -176,7 +181,7 @@ def locate_first_rows(
             rows.append(None)
             continue
         path = tables[entry["source_table"]].files[position // POSITION_BASE]
-        files.append(str(path.relative_to(folder)) if path.is_relative_to(folder) else str(path))
+        files.append(portable_path(path, folder) or path.name)
         rows.append(position % POSITION_BASE)
     kept = quality.drop_columns(["first_position"])
     kept = kept.append_column("first_file", pa.array(files, pa.string()))
@@ -218,27 +223,71 @@ class VerifyResult:
         return not self.changed_inputs and not self.differing_outputs
 
 
-def verify_output(folder: Path) -> VerifyResult:
-    """Rebuild an output folder from its manifest in a temporary folder and compare.
+def locate_inputs(
+    folder: Path, manifest: dict[str, Any], study: Path | None, extract: Path | None
+) -> tuple[Path, Path | None]:
+    """Where the study and the extract to rebuild from are on this machine.
+
+    The study is ``study`` if given, else the manifest's hint (the study file relative to the
+    output folder). The extract is ``extract`` if given, else the manifest's hint (the extract
+    the build read, relative to the study's folder), else ``None``: the study's own
+    ``extract:``.
 
     Raises:
-        AscertainError: The folder has no manifest, or the rebuild fails.
+        AscertainError: The study or the recorded extract cannot be found on this machine.
+    """
+    name = manifest["study"][0]["path"]
+    locations = manifest.get("locations", {})
+    if study is None:
+        hint = locations.get("study_from_output")
+        if hint is None:
+            raise AscertainError(
+                f"{folder}: the manifest does not say where the study file {name} is "
+                "(it was too far from the output folder to record); pass --study FILE"
+            )
+        study = folder.resolve() / hint  # the hint was made from the resolved folder
+    if not study.is_file():
+        raise AscertainError(f"{study}: the study file {name} is not there; pass --study FILE")
+    if extract is None and locations.get("extract_from_study") is not None:
+        extract = study.resolve().parent / locations["extract_from_study"]
+        if not extract.exists():
+            raise AscertainError(
+                f"{extract}: the extract the build read ({locations['extract_from_study']} "
+                "from the study's folder) is not there; pass --extract DIR"
+            )
+    return study, extract
+
+
+def verify_output(
+    folder: Path, *, study: Path | None = None, extract: Path | None = None
+) -> VerifyResult:
+    """Rebuild an output folder from its manifest in a temporary folder and compare.
+
+    The inputs may live elsewhere than at the build (another machine, another layout): they
+    are found as :func:`locate_inputs` says and compared by their recorded relative paths.
+
+    Args:
+        folder: An output folder written by ``build``.
+        study: The study file, when it is not where the manifest's hint says.
+        extract: The extract folder or mapping file, when not where the manifest's hint says.
+
+    Raises:
+        AscertainError: The folder has no manifest, an input cannot be found, or the rebuild
+            fails.
     """
     manifest = read_manifest(folder)
-    changes = changed_inputs(manifest)
-    study_file = Path(manifest["study"][0]["path"])
-    if not study_file.is_file():
-        return VerifyResult(changes, [])
+    study, extract = locate_inputs(folder, manifest, study, extract)
     with tempfile.TemporaryDirectory(prefix="ascertain-verify-") as scratch:
         rebuilt = Path(scratch) / "out"
         options = BuildOptions(
-            extract=Path(manifest["extract_folder"]),
+            extract=extract,
             out=rebuilt,
             threads=manifest["engine"].get("threads"),
             engine=manifest["engine"].get("name", "duckdb"),
         )
-        build_study(study_file, options)
+        build_study(study, options)
         again = read_manifest(rebuilt)
+    changes = changed_inputs(manifest, again)
     differing = [
         name
         for name in sorted(set(manifest["outputs"]) | set(again["outputs"]))

@@ -33,7 +33,8 @@ def profile_extract(folder: Path) -> dict[str, Any]:
             missing.append(table.name)
     sources = tuple(t for t in ALL_TABLES if t.name in found)
     profile = profile_tables(DuckDBEngine(), sources, found)
-    profile["extract"] = str(folder.resolve())
+    # Its name only: the profile is meant to be shared, and a full path names the machine.
+    profile["extract"] = folder.resolve().name
     profile["missing_tables"] = missing
     return profile
 

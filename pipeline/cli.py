@@ -204,10 +204,21 @@ def check(
 @app.command()
 def verify(
     output: Annotated[Path, typer.Argument(help="An output folder written by build.")],
+    study: Annotated[
+        Path | None,
+        typer.Option(help="The study file (default: where the manifest says, from OUTPUT_DIR)."),
+    ] = None,
+    extract: Annotated[
+        Path | None,
+        typer.Option(help="The extract (default: where the manifest says, from the study)."),
+    ] = None,
     debug: DebugOpt = False,
 ) -> None:
-    """Rebuild an output folder from its manifest and report whether it is identical."""
-    result = _fail_cleanly(lambda: verify_output(output), debug=debug)
+    """Rebuild an output folder from its manifest and report whether it is identical.
+
+    Exits 0 when identical, 1 when an input or output differs, 2 when it cannot verify.
+    """
+    result = _fail_cleanly(lambda: verify_output(output, study=study, extract=extract), debug=debug)
     console = Console(highlight=False, soft_wrap=True)
     for line in result.changed_inputs:
         console.print(f"changed input: {line}", markup=False)
@@ -276,13 +287,17 @@ def validate(
 @app.command()
 def report(
     output: Annotated[Path, typer.Argument(help="An output folder written by build.")],
+    study: Annotated[
+        Path | None,
+        typer.Option(help="The study file (default: where the manifest says, from OUTPUT_DIR)."),
+    ] = None,
     debug: DebugOpt = False,
 ) -> None:
     """Write report.html and suppressed summary tables (summary/*.csv) for an output folder."""
     # Imported here: it loads scipy (half a second), which no other command needs.
     from pipeline.outputs._report import write_report
 
-    files = _fail_cleanly(lambda: write_report(output), debug=debug)
+    files = _fail_cleanly(lambda: write_report(output, study), debug=debug)
     for path in files:
         typer.echo(str(path))
 

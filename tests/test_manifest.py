@@ -37,8 +37,15 @@ def _verify(out: Path) -> tuple[int, str]:
 def test_manifest_lists_inputs_outputs_and_versions(workspace: tuple[Path, Path, Path]) -> None:
     study, _, out = workspace
     manifest = json.loads((out / "manifest.json").read_text(encoding="utf-8"))
-    assert manifest["study"][0]["path"] == str(study)
-    assert {Path(e["path"]).name for e in manifest["extract"]} == {
+    assert manifest["manifest_version"] == 2
+    assert manifest["study"][0]["path"] == study.name
+    assert "../conditions/heart_failure.yaml" in {e["path"] for e in manifest["definitions"]}
+    assert manifest["locations"] == {
+        "extract_kind": "folder",
+        "extract_from_study": "../../extract",
+        "study_from_output": f"../definitions/studies/{study.name}",
+    }
+    assert {e["path"] for e in manifest["extract"]} == {
         "patients.csv",
         "encounters.csv",
         "diagnoses.csv",
@@ -71,7 +78,7 @@ def test_verify_names_a_changed_extract_file(workspace: tuple[Path, Path, Path])
         handle.write("HM-001,2016-05-05,ICD10,I50.9,billing\n")
     code, output = _verify(out)
     assert code == 1
-    assert f"changed input: extract file {extract / 'diagnoses.csv'} has changed" in output
+    assert "changed input: extract file diagnoses.csv has changed since the build" in output
 
 
 def test_verify_names_a_changed_definition(workspace: tuple[Path, Path, Path]) -> None:
@@ -80,7 +87,10 @@ def test_verify_names_a_changed_definition(workspace: tuple[Path, Path, Path]) -
     hf.write_text(hf.read_text(encoding="utf-8").replace("within_days: 365", "within_days: 30"))
     code, output = _verify(out)
     assert code == 1
-    assert f"changed input: definitions file {hf} has changed since the build" in output
+    assert (
+        "changed input: definitions file ../conditions/heart_failure.yaml has changed since the "
+        "build" in output
+    )
     assert "differs: the plan" in output
 
 

@@ -2,8 +2,13 @@
 
 from pipeline.outputs._manifest import (
     MANIFEST,
+    MANIFEST_VERSION,
     changed_inputs,
     describe_files,
+    extract_inputs,
+    extract_root,
+    make_manifest,
+    portable_path,
     read_manifest,
     sha256_file,
 )
@@ -18,8 +23,13 @@ __all__ = [
     "ATTRITION_COLUMNS",
     "DATA_FILES",
     "MANIFEST",
+    "MANIFEST_VERSION",
     "changed_inputs",
     "describe_files",
+    "extract_inputs",
+    "extract_root",
+    "make_manifest",
+    "portable_path",
     "read_manifest",
     "sha256_file",
     "write_outputs",

@@ -3,12 +3,23 @@
 It lists the tool, engine and Python versions, the study and every definition file with content
 hashes, the extract files with sizes and hashes, the plan's hash, and the hash of every output
 file. It holds no timestamps, so two builds of the same inputs give the same manifest.
+
+It holds no machine paths either, so it can be shared and checked on another machine: the
+study is recorded by its file name, the definitions relative to the study's folder
+(``../conditions/ckd.yaml``), and the extract by its role, each file relative to the extract's
+root (the extract folder, or the folder of a site mapping file, which is listed too). Two
+hints say where the inputs were, for ``verify`` on the same layout: the study relative to the
+output folder, and the extract relative to the study's folder. A relative path is recorded only
+when it cannot spell out a private folder (see :func:`portable_path`); otherwise the hint is
+left out (``null``) and a file is named by its name alone.
 """
 
 from __future__ import annotations
 
 import hashlib
 import json
+import os
+import platform
 from collections.abc import Iterable
 from pathlib import Path
 from typing import Any
@@ -16,7 +27,9 @@ from typing import Any
 from pipeline.errors import AscertainError
 
 MANIFEST = "manifest.json"
+MANIFEST_VERSION = 2
 CHUNK = 1 << 20
+INPUT_GROUPS = ("study", "definitions", "extract")
 
 
 def sha256_file(path: Path) -> str:
@@ -28,16 +41,128 @@ def sha256_file(path: Path) -> str:
     return digest.hexdigest()
 
 
-def describe_files(paths: Iterable[Path]) -> list[dict[str, Any]]:
-    """Path, size and SHA-256 of each file, sorted by path."""
-    return [
-        {"path": str(p), "bytes": p.stat().st_size, "sha256": sha256_file(p)}
-        for p in sorted(set(paths))
+def _home() -> Path | None:
+    try:
+        return Path.home().resolve()
+    except (RuntimeError, OSError):  # no home directory known: nothing more to protect
+        return None
+
+
+def portable_path(path: Path, base: Path) -> str | None:
+    """``path`` relative to the folder ``base``, with ``/`` separators, if that is private-free.
+
+    A relative path spells out every folder below the two paths' common ancestor. That is
+    harmless when the ancestor is a project folder, but from ``/srv/out`` to
+    ``/home/someone/study.yaml`` it would name the home directory. So the path is given only
+    when the common ancestor lies at least two levels below the file-system root and is not
+    above the home directory; otherwise (or on different drives) ``None``.
+    """
+    path, base = Path(os.path.abspath(path)), Path(os.path.abspath(base))
+    try:
+        common = Path(os.path.commonpath([path, base]))
+    except ValueError:  # different drives
+        return None
+    home = _home()
+    if len(common.parts) < 3 or (home is not None and common in home.parents):
+        return None
+    return Path(os.path.relpath(path, base)).as_posix()
+
+
+def describe_files(paths: Iterable[Path], base: Path) -> list[dict[str, Any]]:
+    """Path relative to ``base`` (or the bare name), size and SHA-256 of each file, by path."""
+    entries = [
+        {
+            "path": portable_path(p, base) or p.name,
+            "bytes": p.stat().st_size,
+            "sha256": sha256_file(p),
+        }
+        for p in set(paths)
     ]
+    return sorted(entries, key=lambda e: e["path"])
+
+
+def extract_root(extract: Path) -> Path:
+    """The folder extract files are named relative to: the folder, or a mapping file's folder."""
+    return extract if extract.is_dir() else extract.parent
+
+
+def extract_inputs(extract: Path, files: Iterable[Path]) -> list[Path]:
+    """Every file a build reads from the extract: the table files, and a site mapping file."""
+    return [*files, *([extract] if extract.is_file() else [])]
+
+
+def make_manifest(
+    *,
+    tool_version: str,
+    engine: dict[str, Any],
+    study_file: Path,
+    definition_files: Iterable[Path],
+    extract: Path,
+    extract_entries: list[dict[str, Any]],
+    out: Path,
+    plan_hash: str,
+    rows: dict[str, int],
+) -> dict[str, Any]:
+    """The manifest of one build (without the output hashes, which the writer adds).
+
+    Args:
+        tool_version: The version of ascertain that built it.
+        engine: The engine's name, version and thread count.
+        study_file: The study file, resolved.
+        definition_files: Every definition file the study's catalog loaded.
+        extract: The extract folder or site mapping file the build read.
+        extract_entries: ``describe_files`` of the extract's files, relative to its root.
+        out: The output folder (for the hint of where the study is from there).
+        plan_hash: The compiled plan's content hash.
+        rows: Cohort size and rows read per source table.
+    """
+    return {
+        "manifest_version": MANIFEST_VERSION,
+        "tool_version": tool_version,
+        "engine": engine,
+        "python": platform.python_version(),
+        "study": describe_files([study_file], study_file.parent),
+        "definitions": describe_files(definition_files, study_file.parent),
+        "extract": extract_entries,
+        "locations": {
+            "extract_kind": "folder" if extract.is_dir() else "mapping file",
+            "extract_from_study": portable_path(extract, study_file.parent),
+            "study_from_output": portable_path(study_file, out),
+        },
+        "plan_hash": plan_hash,
+        "rows": rows,
+    }
+
+
+def _upgrade(data: dict[str, Any], folder: Path) -> dict[str, Any]:
+    """A manifest of the first layout (absolute paths) in the current one, paths made relative."""
+    study = Path(data["study"][0]["path"])
+    extract = Path(data.get("extract_folder", study.parent))
+    root = extract.parent if extract.suffix in (".yaml", ".yml") else extract
+
+    def relative(group: str, base: Path) -> list[dict[str, Any]]:
+        entries = [
+            {**e, "path": portable_path(Path(e["path"]), base) or Path(e["path"]).name}
+            for e in data.get(group, [])
+        ]
+        return sorted(entries, key=lambda e: e["path"])
+
+    upgraded = {k: v for k, v in data.items() if k != "extract_folder"}
+    return upgraded | {
+        "manifest_version": MANIFEST_VERSION,
+        "study": relative("study", study.parent),
+        "definitions": relative("definitions", study.parent),
+        "extract": relative("extract", root),
+        "locations": {
+            "extract_kind": "folder" if root == extract else "mapping file",
+            "extract_from_study": portable_path(extract, study.parent),
+            "study_from_output": portable_path(study, folder.resolve()),
+        },
+    }
 
 
 def read_manifest(folder: Path) -> dict[str, Any]:
-    """Read an output folder's manifest.
+    """Read an output folder's manifest, in the current layout whatever version wrote it.
 
     Raises:
         AscertainError: The folder has no readable manifest.
@@ -47,19 +172,38 @@ def read_manifest(folder: Path) -> dict[str, Any]:
         data = json.loads(path.read_text(encoding="utf-8"))
     except (OSError, json.JSONDecodeError) as err:
         raise AscertainError(f"{path}: cannot read the manifest: {err}") from err
-    if not isinstance(data, dict) or "outputs" not in data:
+    if not isinstance(data, dict) or "outputs" not in data or not data.get("study"):
         raise AscertainError(f"{path}: not a manifest written by ascertain")
+    version = data.get("manifest_version", 1)
+    if version == 1:
+        return _upgrade(data, folder)
+    if version != MANIFEST_VERSION:
+        raise AscertainError(
+            f"{path}: manifest version {version} is newer than this ascertain reads "
+            f"({MANIFEST_VERSION}); use the version that wrote it ({data.get('tool_version')})"
+        )
     return data
 
 
-def changed_inputs(manifest: dict[str, Any]) -> list[str]:
-    """Input files whose content no longer matches the manifest, as readable lines."""
+def changed_inputs(recorded: dict[str, Any], rebuilt: dict[str, Any]) -> list[str]:
+    """Inputs that differ between a manifest and that of its rebuild, as readable lines.
+
+    Files are matched by their recorded relative path (the study by its role: there is one),
+    so the inputs may live anywhere on the machine that rebuilds.
+    """
     changes = []
-    for group in ("study", "definitions", "extract"):
-        for entry in manifest.get(group, []):
-            path = Path(entry["path"])
-            if not path.is_file():
-                changes.append(f"{group} file {path} is missing")
-            elif sha256_file(path) != entry["sha256"]:
-                changes.append(f"{group} file {path} has changed since the build")
+    for group in INPUT_GROUPS:
+        before = {e["path"]: e["sha256"] for e in recorded.get(group, [])}
+        after = {e["path"]: e["sha256"] for e in rebuilt.get(group, [])}
+        if group == "study":
+            if list(before.values()) != list(after.values()):
+                changes.append(f"study file {next(iter(after), '?')} has changed since the build")
+            continue
+        for name in sorted(before.keys() | after.keys()):
+            if name not in after:
+                changes.append(f"{group} file {name} is missing")
+            elif name not in before:
+                changes.append(f"{group} file {name} was not there at the build")
+            elif before[name] != after[name]:
+                changes.append(f"{group} file {name} has changed since the build")
     return changes

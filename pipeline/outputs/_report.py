@@ -6,7 +6,8 @@ Every count in them passes through :func:`pipeline.stats.suppress_counts` (see
 files next to them (``cohort.parquet`` and the build logs) are the unsuppressed record.
 
 The report is written even when the study and definition files named in the manifest are gone
-(a folder copied to a safe haven): it then says what it could not read instead of failing.
+(a folder copied to a safe haven): it then says what it could not read instead of failing. It
+names files relative to the study's folder, never by a path of the machine it ran on.
 """
 
 from __future__ import annotations
@@ -20,7 +21,7 @@ import polars as pl
 
 from pipeline.config import LoadedStudy, load_study
 from pipeline.errors import AscertainError
-from pipeline.outputs._manifest import read_manifest, sha256_file
+from pipeline.outputs._manifest import portable_path, read_manifest, sha256_file
 from pipeline.outputs._report_html import assemble
 from pipeline.outputs._report_tables import (
     combinations_block,
@@ -68,50 +69,78 @@ def _used_conditions(loaded: LoadedStudy) -> tuple[str, ...]:
     return loaded.catalog.with_references(tuple(dict.fromkeys(names)))
 
 
-def read_study(manifest: dict[str, Any], cohort: pl.DataFrame) -> Study:
-    """Load the study named in the manifest; fall back to the cohort's columns if it is gone.
+def locate_study(
+    output_dir: Path, manifest: dict[str, Any], study: Path | None
+) -> tuple[Path | None, str]:
+    """The study file to read (``study``, else the manifest's hint from the output folder).
+
+    Returns:
+        The path, or ``None`` when the manifest holds no hint; and the study's file name.
+    """
+    name = str((manifest.get("study") or [{}])[0].get("path", "study.yaml"))
+    if study is not None:
+        return study, name
+    hint = manifest.get("locations", {}).get("study_from_output")
+    return (output_dir.resolve() / hint if hint else None), name
+
+
+def read_study(
+    manifest: dict[str, Any], cohort: pl.DataFrame, output_dir: Path, study: Path | None = None
+) -> Study:
+    """Load the build's study; fall back to the cohort's columns if it cannot be found.
 
     The report must still be written when the YAML files moved (e.g. a folder copied to a
-    safe-haven), so a missing or invalid study only adds a note.
+    safe-haven), so a missing or invalid study only adds a note. Notes and definition paths
+    name files relative to the study's folder, never by a path of this machine.
     """
     fallback = tuple(c.removeprefix("at_risk_") for c in cohort.columns if c.startswith("at_risk_"))
-    entry = (manifest.get("study") or [{}])[0]
-    path = Path(entry.get("path", "study.yaml"))
-    base = Study(path.stem, path.stem, DEFAULT_THRESHOLD, fallback, {o: o for o in fallback})
-    try:
-        loaded = load_study(path)
-    except (AscertainError, OSError) as err:
+    path, name = locate_study(output_dir, manifest, study)
+    stem = Path(name).stem
+    base = Study(stem, stem, DEFAULT_THRESHOLD, fallback, {o: o for o in fallback})
+    reason = ""
+    if path is None:
+        reason = "the manifest does not say where it is; name it with --study"
+    elif not path.is_file():
+        reason = "it is not there; name it with --study"
+    else:
+        try:
+            loaded = load_study(path)
+        except (AscertainError, OSError):
+            reason = "it no longer loads; run ascertain check on it"
+    if reason:
         base.notes.append(
-            f"The study file {path} could not be read ({str(err).splitlines()[0]}), so condition "
-            "titles and definition provenance are not shown and the default small-cell "
-            f"threshold of {DEFAULT_THRESHOLD} is used."
+            f"The study file {name} could not be read ({reason}), so condition titles and "
+            "definition provenance are not shown and the default small-cell threshold of "
+            f"{DEFAULT_THRESHOLD} is used."
         )
         return base
-    if entry.get("sha256") and sha256_file(path) != entry["sha256"]:
-        base.notes.append(f"The study file {path} has changed since the build.")
+    entry = manifest["study"][0]
+    if entry.get("sha256") and sha256_file(loaded.file) != entry["sha256"]:
+        base.notes.append(f"The study file {name} has changed since the build.")
     hashes = {d["path"]: d["sha256"] for d in manifest.get("definitions", [])}
     definitions = []
-    for name in _used_conditions(loaded):
-        file = loaded.catalog.files[name]
+    for condition_name in _used_conditions(loaded):
+        file = loaded.catalog.files[condition_name]
+        shown = portable_path(file, loaded.file.parent) or file.name
         current = sha256_file(file) if file.is_file() else ""
-        if hashes.get(str(file)) not in (None, current):
-            base.notes.append(f"The definition file {file} has changed since the build.")
-        condition = loaded.catalog.get(name)
+        if hashes.get(shown) not in (None, current):
+            base.notes.append(f"The definition file {shown} has changed since the build.")
+        condition = loaded.catalog.get(condition_name)
         definitions.append(
             {
-                "name": name,
+                "name": condition_name,
                 "title": condition.title,
                 "about": condition.about.strip(),
-                "path": str(file),
-                "sha256": hashes.get(str(file), current),
+                "path": shown,
+                "sha256": hashes.get(shown, current),
             }
         )
-    study = loaded.study
+    study_model = loaded.study
     return Study(
-        name=study.study,
-        title=study.title,
-        threshold=study.output.small_cell_threshold,
-        outcomes=tuple(study.outcomes.conditions),
+        name=study_model.study,
+        title=study_model.title,
+        threshold=study_model.output.small_cell_threshold,
+        outcomes=tuple(study_model.outcomes.conditions),
         titles={d["name"]: d["title"] for d in definitions},
         definitions=definitions,
         notes=base.notes,
@@ -141,11 +170,13 @@ def column_labels(output_dir: Path) -> dict[str, str]:
     return labels
 
 
-def write_report(output_dir: Path) -> list[Path]:
+def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]:
     """Write ``report.html`` and the suppressed ``summary/*.csv`` tables of a build.
 
     Args:
         output_dir: A folder written by ``ascertain build``.
+        study_file: The study file, when it is not where the manifest's hint says (the study
+            relative to the output folder; there is no hint when the two are far apart).
 
     Returns:
         The files written, sorted.
@@ -163,7 +194,7 @@ def write_report(output_dir: Path) -> list[Path]:
         raise AscertainError(f"{output_dir}: cannot read the build outputs: {err}") from err
     counts = ("patients_before", "removed", "remaining")
     attrition = attrition.with_columns(pl.col(c).cast(pl.Int64) for c in counts)
-    study = read_study(manifest, cohort)
+    study = read_study(manifest, cohort, output_dir, study_file)
     outcomes, t = study.outcomes, study.threshold
     flow = flow_block(attrition, cohort.height)
     t1 = {o: table_one_blocks(cohort, o) for o in outcomes}
