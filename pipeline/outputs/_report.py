@@ -189,7 +189,7 @@ def write_report(output_dir: Path) -> list[Path]:
         path = folder / f"{name}.csv"
         frame.write_csv(path, line_terminator="\n")
         written.append(path)
-    curves = {o: curve_data(cohort, o) for o in outcomes if f"events|{o}" not in hidden}
+    curves = {o: curve_data(cohort, o, t) for o in outcomes if f"events|{o}" not in hidden}
     html = assemble(
         study=study,
         manifest=manifest,
