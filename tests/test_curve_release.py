@@ -110,7 +110,8 @@ def test_every_released_step_protects_its_patients(
     allowed = set(full.times[full.times > 0]) if grid is None else set(grid)
     if shared >= threshold:
         allowed.add(last)
-    assert times[0] == 0.0 and np.all(np.diff(times) > 0)
+    assert times[0] == 0.0
+    assert np.all(np.diff(times) > 0)
     assert set(times[1:]) <= allowed
     for j in range(1, times.size):
         # at least `threshold` events since the previous step, and as many at risk
@@ -165,10 +166,12 @@ def test_report_curves_step_only_on_the_grid_with_enough_events() -> None:
     km = kaplan_meier(d, c == OUTCOME)
     assert km_v[jumps] == pytest.approx(1 - km.at(step_days[jumps]))
     # the flat end holds the last step's value: fewer than 5 events after it are not shown
-    assert aj_v[-1] == aj_v[jumps[-1]] and km_v[-1] == km_v[jumps[-1]]
+    assert aj_v[-1] == aj_v[jumps[-1]]
+    assert km_v[-1] == km_v[jumps[-1]]
 
 
 def test_the_note_under_the_curves_names_the_threshold() -> None:
     note = curve_note(7)
-    assert "at least 7 events" in note and f"every {CURVE_GRID_DAYS} days" in note
+    assert "at least 7 events" in note
+    assert f"every {CURVE_GRID_DAYS} days" in note
     assert "fewer than 7 patients are at risk" in note
