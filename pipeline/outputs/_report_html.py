@@ -178,7 +178,7 @@ def _t1_cell(r: dict[str, Any] | None) -> str:
 
 
 def _t1_stat(r: dict[str, Any] | None, kind: str) -> str:
-    if r is None or r["mean"] is None:
+    if r is None or r[kind] is None:  # a median can be shown where the mean is not
         return '<td class="num"></td>'
     if kind == "mean":
         sd = "" if r["sd"] is None else f" ({r['sd']:.1f})"
