@@ -1,4 +1,12 @@
-"""``ascertain profile``: the first look at a new extract, written as JSON and one HTML page."""
+"""``ascertain profile``: the first look at a new extract, written as JSON and one HTML page.
+
+The profile is patient-level detail for use inside the secure environment: it is there to find
+orphan rows, unreadable dates and rare codes, so it shows small counts as they are, and the
+first and last dates of each table are single patients' dates. It is labelled so on every
+output (:data:`PATIENT_LEVEL`). Measure values are given only as percentiles of groups of at
+least ``threshold`` values, never as minimum or maximum, so the measure table holds no single
+patient's value.
+"""
 
 from __future__ import annotations
 
@@ -10,18 +18,31 @@ from typing import Any
 from pipeline.compile._sources import DIAGNOSES, ENCOUNTERS, MEASUREMENTS, PATIENTS, PRESCRIPTIONS
 from pipeline.engine import DuckDBEngine
 from pipeline.engine._profile import profile_tables
-from pipeline.errors import ExtractError
+from pipeline.errors import AscertainError, ExtractError
 from pipeline.extract import discover_extract
 
 ALL_TABLES = (PATIENTS, ENCOUNTERS, DIAGNOSES, PRESCRIPTIONS, MEASUREMENTS)
+PATIENT_LEVEL = (
+    "Patient-level detail for use inside the secure environment: small counts are shown as "
+    "they are, and first and last dates are single patients' dates. Do not release it."
+)
+"""The label every profile output carries (JSON, HTML page and terminal)."""
 
 
-def profile_extract(folder: Path) -> dict[str, Any]:
+def profile_extract(folder: Path, *, threshold: int = 5) -> dict[str, Any]:
     """Profile the canonical tables found in an extract folder (patients must be there).
 
+    Args:
+        folder: The extract folder.
+        threshold: Smallest number of numeric values of a measure and unit whose percentiles
+            are given (the study default small-cell threshold is 5).
+
     Raises:
+        AscertainError: ``threshold`` is below 1.
         ExtractError: No patients table, or a table that lacks required columns.
     """
+    if threshold < 1:
+        raise AscertainError(f"the threshold must be at least 1, got {threshold}")
     found = {}
     missing = []
     for table in ALL_TABLES:
@@ -32,8 +53,10 @@ def profile_extract(folder: Path) -> dict[str, Any]:
                 raise
             missing.append(table.name)
     sources = tuple(t for t in ALL_TABLES if t.name in found)
-    profile = profile_tables(DuckDBEngine(), sources, found)
-    # Its name only: the profile is meant to be shared, and a full path names the machine.
+    profile = profile_tables(DuckDBEngine(), sources, found, threshold=threshold)
+    profile["release"] = PATIENT_LEVEL
+    profile["percentiles_from"] = threshold
+    # Its name only: a full path names the machine it was made on.
     profile["extract"] = folder.resolve().name
     profile["missing_tables"] = missing
     return profile
@@ -92,8 +115,9 @@ def render_profile_html(profile: dict[str, Any]) -> str:
         "<!doctype html><html lang=en><head><meta charset=utf-8>",
         f"<title>Extract profile</title><style>{_CSS}</style></head><body>",
         f"<h1>Extract profile</h1><p>{escape(profile['extract'])}</p>",
-        '<p class="note">Patient-level data stays inside the secure environment; this page '
-        "holds counts only. Research use only; follow local data-governance rules.</p>",
+        f'<p class="note">{escape(profile["release"])} Measure values are percentiles of at '
+        f"least {profile['percentiles_from']} values. Research use only; follow local "
+        "data-governance rules.</p>",
     ]
     for name, table in profile["tables"].items():
         facts = {k: v for k, v in table.items() if k != "rows_per_year"}
@@ -105,7 +129,7 @@ def render_profile_html(profile: dict[str, Any]) -> str:
     for key, columns in (
         ("diagnosis_codes", ["code_system", "code", "rows"]),
         ("prescription_codes", ["code_system", "code", "rows"]),
-        ("measures", ["measure", "unit", "rows", "numeric", "min", "p25", "p50", "p75", "max"]),
+        ("measures", ["measure", "unit", "rows", "numeric", "p5", "p25", "p50", "p75", "p95"]),
     ):
         if key in profile:
             parts.append(f"<h2>{escape(key.replace('_', ' '))}</h2>")

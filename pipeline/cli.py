@@ -314,10 +314,13 @@ def profile(
     out: Annotated[Path, typer.Option(help="Where to write profile.json and .html.")] = Path(
         "profile"
     ),
+    threshold: Annotated[
+        int, typer.Option(min=1, help="Fewest values of a measure whose percentiles are shown.")
+    ] = 5,
     debug: DebugOpt = False,
 ) -> None:
-    """Summarise an extract: rows, dates, orphans, codes, measures and units."""
-    result = _fail_cleanly(lambda: profile_extract(extract), debug=debug)
+    """Summarise an extract: rows, dates, orphans, codes, measures and units (patient-level)."""
+    result = _fail_cleanly(lambda: profile_extract(extract, threshold=threshold), debug=debug)
     console = Console(highlight=False)
     table = Table(title=f"extract {extract}")
     for column in ("table", "rows", "first date", "last date", "unreadable dates", "orphans"):
@@ -326,5 +329,6 @@ def profile(
         keys = ("rows", "first_date", "last_date", "unreadable_dates", "orphan_rows")
         table.add_row(name, *(_cell(facts.get(key)) for key in keys))
     console.print(table)
+    console.print(result["release"])
     for path in write_profile(result, out):
         console.print(str(path))

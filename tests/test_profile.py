@@ -3,14 +3,15 @@
 from __future__ import annotations
 
 import json
+from html import escape
 from pathlib import Path
 
 import pytest
 from typer.testing import CliRunner
 
-from pipeline._profile import profile_extract
+from pipeline._profile import PATIENT_LEVEL, profile_extract
 from pipeline.cli import app
-from pipeline.errors import ExtractError
+from pipeline.errors import AscertainError, ExtractError
 
 from .helpers import write_extract
 
@@ -55,7 +56,19 @@ def test_codes_and_measures(extract: Path) -> None:
     ]
     (sbp,) = profile["measures"]
     assert (sbp["measure"], sbp["unit"], sbp["rows"], sbp["numeric"]) == ("sbp", "mmHg", 5, 4)
-    assert (sbp["min"], sbp["p50"], sbp["max"]) == (120.0, 135.0, 150.0)
+
+
+def test_measure_values_are_percentiles_of_enough_values(extract: Path) -> None:
+    # 4 numeric values (120, 130, 140, 150): below the default threshold of 5, no percentile
+    (sbp,) = profile_extract(extract)["measures"]
+    assert [sbp[f"p{p}"] for p in (5, 25, 50, 75, 95)] == [None] * 5
+    # with 4 allowed: linear interpolation at (n - 1) * q, by hand: 0.15 -> 121.5, 2.85 -> 148.5
+    (sbp,) = profile_extract(extract, threshold=4)["measures"]
+    assert [sbp[f"p{p}"] for p in (5, 25, 50, 75, 95)] == [121.5, 127.5, 135.0, 142.5, 148.5]
+    # never the smallest or largest value: those are single patients' values
+    assert not {"min", "max"} & set(sbp)
+    values = {v for k, v in sbp.items() if k not in ("measure", "unit", "rows", "numeric")}
+    assert not {120.0, 150.0} & values
 
 
 def test_cli_writes_json_and_html(extract: Path, tmp_path: Path) -> None:
@@ -66,6 +79,18 @@ def test_cli_writes_json_and_html(extract: Path, tmp_path: Path) -> None:
     page = (out / "profile.html").read_text()
     assert "<svg" in page
     assert "http" not in page
+    # it shows small counts, so it says it is patient-level detail, and nowhere "counts only"
+    assert PATIENT_LEVEL in " ".join(result.output.split())
+    assert escape(PATIENT_LEVEL) in page
+    assert "counts only" not in page
+    assert json.loads((out / "profile.json").read_text())["release"] == PATIENT_LEVEL
+
+
+def test_cli_threshold_must_be_positive(extract: Path, tmp_path: Path) -> None:
+    result = CliRunner().invoke(app, ["profile", str(extract), "--threshold", "0"])
+    assert result.exit_code == 2
+    with pytest.raises(AscertainError, match="at least 1"):
+        profile_extract(extract, threshold=0)
 
 
 def test_missing_patients_table(tmp_path: Path) -> None:

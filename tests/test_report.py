@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import csv
 import json
+import re
 import shutil
 import subprocess
 from html.parser import HTMLParser
@@ -187,6 +188,17 @@ def test_estimates_from_hidden_counts_are_not_shown(small: Path) -> None:
     for row in _rows(small / "summary" / "dependence.csv"):
         if {row["both"], row["first_only"], row["second_only"], row["neither"]} & set(MARKERS):
             assert row["odds_ratio"] == row["phi"] == row["frank_theta"] == ""
+
+
+def test_curves_are_coarsened_and_say_so(demo: Path) -> None:
+    html = (demo / "report.html").read_text(encoding="utf-8")
+    assert "each step stands for at least 5 events" in html
+    # every corner of a drawn curve is a grid day (30, 60, ...) or the horizon, in x pixels
+    days_per_px = 1461 / (360 - 52 - 14)
+    for path in re.findall(r'<path d="(M[^"]*)" class="(?:aj|km)"/>', html):
+        xs = [float(x) for x in re.findall(r"H([0-9.]+)", path)]
+        days = [(x - 52) * days_per_px for x in xs]
+        assert all(min(d % 30, 30 - d % 30) < 3 or d > 1458 for d in days), days
 
 
 def test_report_is_deterministic(demo: Path) -> None:

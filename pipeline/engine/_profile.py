@@ -2,7 +2,7 @@
 
 One DuckDB pass per question over the same source views a build uses: row counts, date ranges
 and rows per year, unreadable dates, orphan rows, code systems and the most frequent codes,
-measures with their units and value distributions.
+measures with their units and value percentiles (never minimum or maximum).
 """
 
 from __future__ import annotations
@@ -124,13 +124,27 @@ def _top_codes(
     return _fetch(con, top)
 
 
-def _measures(con: duckdb.DuckDBPyConnection) -> list[dict[str, Any]]:
+PERCENTILES = (5, 25, 50, 75, 95)
+"""Percentiles of each measure's values in the profile; no minimum or maximum, which are single
+patients' values."""
+
+
+def _measures(con: duckdb.DuckDBPyConnection, threshold: int) -> list[dict[str, Any]]:
+    """Rows and value percentiles per measure and unit as written in the extract.
+
+    Percentiles are given only for a (measure, unit) with at least ``threshold`` numeric
+    values: a percentile of a few values is close to one patient's value. The minimum and
+    maximum are never given; implausible values are counted by the build's quality log.
+    """
     value = exp.TryCast(this=exp.column("value"), to=exp.DataType.build("DOUBLE"))
     measure = exp.Lower(this=exp.Trim(this=exp.cast(exp.column("measure"), "VARCHAR")))
     unit = exp.Trim(this=exp.cast(exp.column("unit"), "VARCHAR"))
+    enough = exp.func("COUNT", value.copy()) >= exp.Literal.number(threshold)
     quantiles = [
-        exp.func("QUANTILE_CONT", value.copy(), exp.Literal.number(q)).as_(f"p{int(q * 100)}")
-        for q in (0.25, 0.5, 0.75)
+        exp.case()
+        .when(enough.copy(), exp.func("QUANTILE_CONT", value.copy(), exp.Literal.number(p / 100)))
+        .as_(f"p{p}")
+        for p in PERCENTILES
     ]
     query = (
         exp.select(
@@ -138,9 +152,7 @@ def _measures(con: duckdb.DuckDBPyConnection) -> list[dict[str, Any]]:
             unit.as_("unit"),
             exp.func("COUNT", exp.Star()).as_("rows"),
             exp.func("COUNT", value.copy()).as_("numeric"),
-            exp.Min(this=value.copy()).as_("min"),
             *quantiles,
-            exp.Max(this=value.copy()).as_("max"),
         )
         .from_("src_measurements")
         .group_by(measure.copy(), unit.copy())  # a bare name would mean the raw column
@@ -150,9 +162,16 @@ def _measures(con: duckdb.DuckDBPyConnection) -> list[dict[str, Any]]:
 
 
 def profile_tables(
-    engine: DuckDBEngine, sources: tuple[SourceTable, ...], tables: dict[str, ExtractTable]
+    engine: DuckDBEngine,
+    sources: tuple[SourceTable, ...],
+    tables: dict[str, ExtractTable],
+    *,
+    threshold: int = 5,
 ) -> dict[str, Any]:
-    """Profile every table found; see the module docstring for what is measured."""
+    """Profile every table found; see the module docstring for what is measured.
+
+    ``threshold`` is the smallest number of numeric values whose percentiles are given.
+    """
     with tempfile.TemporaryDirectory(prefix="ascertain-profile-") as scratch:
         con = engine._connect(Path(scratch))
         try:
@@ -170,7 +189,7 @@ def profile_tables(
                     con, "src_prescriptions", exp.Literal.string("ATC"), "atc"
                 )
             if "measurements" in tables:
-                result["measures"] = _measures(con)
+                result["measures"] = _measures(con, threshold)
         finally:
             con.close()
     return result

@@ -28,6 +28,7 @@ from pipeline.outputs._report_tables import (
     curve_data,
     dependence_block,
     dependence_summary,
+    differenced_means,
     flow_block,
     hidden_keys,
     incidence_block,
@@ -204,10 +205,14 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
     quality_parts = quality_blocks(quality)
     blocks = [flow, *(b for _, *pair in t1.values() for b in pair), incidence, combos, dependence]
     hidden = hidden_keys([*blocks, *quality_parts], t)
+    no_means = differenced_means((long for long, *_ in t1.values()), t)
     summaries = {
         "flow": masked(flow, hidden, t),
         "table_one": pl.concat(
-            [table_one_summary(o, long, parts, hidden, t) for o, (long, *parts) in t1.items()]
+            [
+                table_one_summary(o, long, parts, hidden, t, no_means)
+                for o, (long, *parts) in t1.items()
+            ]
         ),
         "incidence": incidence_summary(results, study.titles, hidden, t),
         "combinations": masked(combos, hidden, t),
@@ -220,7 +225,7 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
         path = folder / f"{name}.csv"
         frame.write_csv(path, line_terminator="\n")
         written.append(path)
-    curves = {o: curve_data(cohort, o) for o in outcomes if f"events|{o}" not in hidden}
+    curves = {o: curve_data(cohort, o, t) for o in outcomes if f"events|{o}" not in hidden}
     html = assemble(
         study=study,
         manifest=manifest,

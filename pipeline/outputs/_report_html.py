@@ -22,6 +22,7 @@ from pipeline.outputs._report_svg import (
     render_curves,
     render_flow,
 )
+from pipeline.outputs._report_tables import curve_note
 
 __all__ = ["SECTIONS", "assemble"]
 
@@ -177,7 +178,7 @@ def _t1_cell(r: dict[str, Any] | None) -> str:
 
 
 def _t1_stat(r: dict[str, Any] | None, kind: str) -> str:
-    if r is None or r["mean"] is None:
+    if r is None or r[kind] is None:  # a median can be shown where the mean is not
         return '<td class="num"></td>'
     if kind == "mean":
         sd = "" if r["sd"] is None else f" ({r['sd']:.1f})"
@@ -260,7 +261,9 @@ def _incidence(frame: pl.DataFrame) -> str:
     )
 
 
-def _curves(curves: dict[str, Curve], outcomes: Sequence[str], titles: dict[str, str]) -> str:
+def _curves(
+    curves: dict[str, Curve], outcomes: Sequence[str], titles: dict[str, str], threshold: int
+) -> str:
     figs = [
         f"<figure><figcaption>{escape(titles.get(o, o))}</figcaption>{render_curves(curves[o])}"
         "</figure>"
@@ -281,7 +284,8 @@ def _curves(curves: dict[str, Curve], outcomes: Sequence[str], titles: dict[str,
         'competing event</span><span><span class="swatch km"></span>1 − Kaplan–Meier, '
         "deaths censored (overstates risk)</span></div>"
     )
-    return legend + f'<div class="figs">{"".join(figs)}</div>' + note
+    coarse = f'<p class="note">{escape(curve_note(threshold))}</p>'
+    return legend + f'<div class="figs">{"".join(figs)}</div>' + coarse + note
 
 
 def _combo_label(name: str, titles: dict[str, str]) -> str:
@@ -468,7 +472,7 @@ def assemble(
             _table_one(summaries["table_one"], o, titles.get(o, o), labels) for o in study.outcomes
         ),
         "incidence": _incidence(summaries["incidence"]),
-        "curves": _curves(drawn, study.outcomes, titles),
+        "curves": _curves(drawn, study.outcomes, titles, t),
         "combinations": _combinations(summaries["combinations"], titles),
         "dependence": _dependence(summaries["dependence"], titles),
         "definitions": _definitions(study.definitions),

@@ -22,6 +22,7 @@ from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from typing import Any
 
+import numpy as np
 import polars as pl
 
 from pipeline.stats import (
@@ -29,6 +30,7 @@ from pipeline.stats import (
     OUTCOME,
     aalen_johansen,
     baseline_variables,
+    coarsen_curve,
     competing_risk_data,
     cumulative_incidence,
     incidence_rate,
@@ -294,20 +296,48 @@ def masked(block: Block, hidden: frozenset[str], threshold: int) -> pl.DataFrame
     ).drop([f"{c}#key" for c in block.cells])
 
 
+def differenced_means(longs: Iterable[pl.DataFrame], threshold: int) -> frozenset[str]:
+    """Numeric variables whose means and SDs must not be shown in any group of any Table 1.
+
+    A group's mean times its size is the sum of its values, and the groups of one Table 1
+    (not incident, incident, not at risk) add up to the overall column, which every outcome's
+    Table 1 shares. So when one group has between 1 and ``threshold - 1`` values, hiding only
+    its own mean is useless: the overall sum minus the other groups' sums gives it, from this
+    Table 1 or another. Sums of squares (SDs) add up the same way. Medians and quartiles do
+    not add up and are kept for groups of at least ``threshold`` values.
+
+    Args:
+        longs: The long Table 1 of every outcome (:func:`pipeline.stats.table_one`).
+        threshold: Smallest group whose values may be summarised.
+
+    Returns:
+        The variables whose mean and SD are left out everywhere.
+    """
+    small = pl.col("n").is_between(1, threshold - 1)
+    return frozenset(
+        v
+        for long in longs
+        for v in long.filter(pl.col("level").is_null() & small)["variable"].to_list()
+    )
+
+
 def table_one_summary(
     outcome: str,
     long: pl.DataFrame,
     blocks: Sequence[Block],
     hidden: frozenset[str],
     threshold: int,
+    no_means: frozenset[str] = frozenset(),
 ) -> pl.DataFrame:
     """Table 1 as published: counts suppressed, and statistics of hidden counts removed.
 
     A percentage is shown only when every count of its variable in that group is shown,
     because a percentage of a shown count reveals its denominator. Means, SDs and quartiles are
-    left out only when fewer than ``threshold`` patients contribute: a summary of a few values
+    left out when fewer than ``threshold`` patients contribute: a summary of a few values
     can describe individuals, while a summary of many reveals nothing about the count even
-    when that count is hidden as a complement.
+    when that count is hidden as a complement. Means and SDs of the variables in ``no_means``
+    (:func:`differenced_means`) are left out in every group. There is no minimum or maximum:
+    each is a single patient's value.
     """
     status: dict[tuple[str, str, str], tuple[int, bool]] = {}
     for block in blocks:
@@ -334,7 +364,8 @@ def table_one_summary(
             None if block_hidden or r.get("percent") is None else round(r["percent"], 1)
         )
         for s in _NUMERIC_STATS:  # summaries of fewer than `threshold` values could identify
-            value = None if n < threshold else r.get(s)
+            gone = n < threshold or (s in ("mean", "sd") and var in no_means)
+            value = None if gone else r.get(s)
             record[s] = None if value is None or math.isnan(value) else round(value, 2)
         m, m_hidden = status.get((var, "missing", group), (0, False))
         missing = hidden_marker(m, threshold) if m_hidden else str(m)
@@ -389,9 +420,35 @@ def dependence_summary(block: Block, hidden: frozenset[str], threshold: int) -> 
     ).rename({"a": "both", "b": "first_only", "c": "second_only", "d": "neither"})
 
 
-def curve_data(cohort: pl.DataFrame, outcome: str) -> tuple[Any, Any, Any, Any]:
-    """Aalen-Johansen (death competing) and 1 - Kaplan-Meier (deaths censored), in years."""
+CURVE_GRID_DAYS = 30
+"""Released curves may step only every this many days (and at the last day of follow-up)."""
+
+
+def curve_note(threshold: int) -> str:
+    """The sentence under the curves that says how they were coarsened, and what that costs."""
+    return (
+        f"So that no curve shows a single patient, each step stands for at least {threshold} "
+        f"events since the previous step, steps fall only every {CURVE_GRID_DAYS} days or on the "
+        f"last day of follow-up when at least {threshold} patients reach it, and the curves stop "
+        f"where fewer than {threshold} patients are at risk. At each step the curve shows the "
+        "full estimate on that day; between steps it may lag the full estimate by fewer than "
+        f"{threshold} events."
+    )
+
+
+def curve_data(cohort: pl.DataFrame, outcome: str, threshold: int) -> tuple[Any, Any, Any, Any]:
+    """Aalen-Johansen (death competing) and 1 - Kaplan-Meier (deaths censored), in years.
+
+    Both curves are coarsened by :func:`pipeline.stats.coarsen_curve` on a grid of
+    :data:`CURVE_GRID_DAYS` days: each drawn step stands for at least ``threshold`` events and
+    at least ``threshold`` patients at risk, and the curves stop where fewer are at risk. The
+    two share their event counts and risk sets, so they step at the same times.
+    """
     durations, codes = competing_risk_data(cohort, outcome)
-    aj = aalen_johansen(durations, codes, OUTCOME)
+    last = float(durations.max()) if durations.size else 0.0
+    grid = np.arange(CURVE_GRID_DAYS, last + CURVE_GRID_DAYS, CURVE_GRID_DAYS, dtype=np.float64)
+    aj = coarsen_curve(aalen_johansen(durations, codes, OUTCOME), threshold, start=0.0, grid=grid)
     km = kaplan_meier(durations, codes == OUTCOME)
-    return aj.times / DAYS_PER_YEAR, aj.values, km.times / DAYS_PER_YEAR, 1.0 - km.values
+    km_times, km_values = coarsen_curve(km, threshold, start=1.0, grid=grid).drawn()
+    aj_times, aj_values = aj.drawn()
+    return aj_times / DAYS_PER_YEAR, aj_values, km_times / DAYS_PER_YEAR, 1.0 - km_values

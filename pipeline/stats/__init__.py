@@ -2,7 +2,8 @@
 
 - intervals: Wilson, Clopper-Pearson and exact Poisson (Garwood) intervals;
 - incidence: cumulative incidence and incidence rates per person-time;
-- survival: Kaplan-Meier and Aalen-Johansen curves (death as competing event);
+- survival: Kaplan-Meier and Aalen-Johansen curves (death as competing event), and their
+  coarsening before release (steps of at least the threshold's events and patients at risk);
 - Table 1, outcome combinations and pairwise dependence (odds ratio, phi, Kendall's tau,
   Frank copula theta);
 - agreement of a definition with a reference standard;
@@ -18,6 +19,7 @@ from pipeline.stats._agreement import (
     diagnostic_accuracy,
     onset_agreement,
 )
+from pipeline.stats._coarsen import ReleasedCurve, coarsen_curve
 from pipeline.stats._combinations import COMBINATIONS_SCHEMA, NO_OUTCOME, outcome_combinations
 from pipeline.stats._dependence import (
     DEPENDENCE_SCHEMA,
@@ -67,11 +69,13 @@ __all__ = [
     "IncidenceRate",
     "Interval",
     "OnsetAgreement",
+    "ReleasedCurve",
     "StepCurve",
     "aalen_johansen",
     "association_2x2",
     "baseline_variables",
     "clopper_pearson_interval",
+    "coarsen_curve",
     "competing_risk_data",
     "cumulative_incidence",
     "diagnostic_accuracy",
