@@ -21,6 +21,7 @@ from pipeline.errors import EngineError
 from pipeline.extract import ExtractTable, discover_extract
 from pipeline.outputs import (
     changed_inputs,
+    check_usable,
     describe_files,
     read_manifest,
     sha256_file,
@@ -113,6 +114,13 @@ def build_study(
         finished = dt.datetime.now(dt.UTC)
         extract_entries = hashed_extract.result()
     quality = check_row_accounting(run.outputs["quality"], run.outputs["rows_read"])
+    check_usable(
+        study,
+        {table: counts["read"] for table, counts in quality.items()},
+        locate_first_rows(run.outputs["quality"], tables, extract),
+        run.outputs["attrition"],
+        run.outputs["cohort"].num_rows,
+    )
     manifest = {
         "tool_version": tool_version(),
         "engine": {"name": run.engine, "version": run.engine_version, "threads": threads},

@@ -7,6 +7,7 @@ from pipeline.outputs._manifest import (
     read_manifest,
     sha256_file,
 )
+from pipeline.outputs._usability import check_usable
 from pipeline.outputs._write import (
     ATTRITION_COLUMNS,
     DATA_FILES,
@@ -19,6 +20,7 @@ __all__ = [
     "DATA_FILES",
     "MANIFEST",
     "changed_inputs",
+    "check_usable",
     "describe_files",
     "read_manifest",
     "sha256_file",
