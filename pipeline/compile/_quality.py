@@ -1,7 +1,8 @@
 """The quality log: every extract row is either used or counted under the reason it was not.
 
 Each table is grouped on all its columns once, so exact duplicates are found (the first copy is
-judged, the others are counted as duplicates); each distinct row then gets the first reason that
+judged, the others are counted as duplicates, unless the row has no readable patient_id: see
+_SUMMARY); each distinct row then gets the first reason that
 applies, in the order the reasons are listed below, or ``used``. A separate count of rows read
 lets the build check that used + set aside = read for every table. Each reason also keeps the
 position of the first row it set aside (CSV only; see SOURCE_POSITION), so a user can find it.
@@ -148,14 +149,16 @@ SELECT
     ELSE 'used'
   END AS reason,
   r.copies,
-  r.source_position
+  r.source_position,
+  r.patient_id IS NULL AS no_patient_id
 FROM :rows
 LEFT JOIN patient_base AS p ON p.patient_id = r.patient_id
 """
 
 # Every measurement row was judged in measurement_judged.
 _MEASUREMENTS = """
-SELECT COALESCE(problem, 'used') AS reason, copies, source_position
+SELECT
+  COALESCE(problem, 'used') AS reason, copies, source_position, patient_id IS NULL AS no_patient_id
 FROM measurement_judged
 """
 
@@ -163,16 +166,23 @@ _PATIENTS = """
 SELECT
   CASE WHEN patient_id IS NULL THEN 'missing patient_id' ELSE 'used' END AS reason,
   copies,
-  source_position
+  source_position,
+  patient_id IS NULL AS no_patient_id
 FROM :rows
 """
 
+# A row whose patient_id is empty, or cannot be read as the patients table's id type (the
+# views bind it with TRY_CAST), has no patient, so its copies are not exact duplicates: rows
+# of different patients would otherwise meet on a NULL id and their date and code, and an
+# extract whose ids all differ in type from the patients table's would show most of its rows
+# as duplicates (a design reason, which never stops a build) instead of orphans. Such rows are
+# all counted under their reason.
 _SUMMARY = """
 SELECT
   reason,
   :table_name AS source_table,
-  COUNT(*) AS distinct_rows,
-  SUM(copies - 1) AS duplicates,
+  SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
+  SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
   MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
 FROM :classified
 GROUP BY reason
