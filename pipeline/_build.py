@@ -21,6 +21,7 @@ from pipeline.errors import AscertainError, EngineError
 from pipeline.extract import ExtractTable, discover_extract
 from pipeline.outputs import (
     changed_inputs,
+    check_usable,
     describe_files,
     extract_inputs,
     extract_root,
@@ -117,6 +118,14 @@ def build_study(
         finished = dt.datetime.now(dt.UTC)
         extract_entries = hashed_extract.result()
     quality = check_row_accounting(run.outputs["quality"], run.outputs["rows_read"])
+    located_quality = locate_first_rows(run.outputs["quality"], tables, extract)
+    check_usable(
+        study,
+        {table: counts["read"] for table, counts in quality.items()},
+        located_quality,
+        run.outputs["attrition"],
+        run.outputs["cohort"].num_rows,
+    )
     manifest = make_manifest(
         tool_version=tool_version(),
         engine={"name": run.engine, "version": run.engine_version, "threads": threads},
@@ -152,7 +161,7 @@ def build_study(
         cohort=run.outputs["cohort"],
         population=run.outputs["population"],
         attrition=run.outputs["attrition"],
-        quality=locate_first_rows(run.outputs["quality"], tables, extract),
+        quality=located_quality,
         columns=plan.columns,
         manifest=manifest,
         run_info=run_info,

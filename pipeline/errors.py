@@ -6,7 +6,8 @@ plain message and exit 2 instead of showing a traceback::
     AscertainError
     ├── ConfigError     a study or condition file is unreadable or inconsistent (file:line:col)
     ├── ExtractError    the extract is missing a table or column, or cannot be read
-    └── EngineError     the engine refused a plan or a data check failed while running it
+    ├── EngineError     the engine refused a plan or a data check failed while running it
+    └── UnusableBuildError  the build ran but its result would mislead (misread data, no cohort)
 """
 
 from __future__ import annotations
@@ -58,3 +59,11 @@ class ExtractError(AscertainError):
 
 class EngineError(AscertainError):
     """The engine failed to run a plan, or a data check in the plan found offending rows."""
+
+
+class UnusableBuildError(AscertainError):
+    """A build ran but its result would mislead, so nothing was written.
+
+    Raised when more than the study's share of a table's rows is set aside for a reason that
+    means the extract was misread, or when the cohort is empty and the study does not allow it.
+    """

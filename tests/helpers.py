@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import csv
+import shutil
 from pathlib import Path
 from typing import Any
 
@@ -10,7 +11,7 @@ from pipeline._build import plan_study
 from pipeline.engine import DuckDBEngine
 from pipeline.extract import discover_extract
 
-from .conftest import DEMO_STUDY
+from .conftest import DEMO_STUDY, ROOT
 
 COLUMNS = {
     "patients": ["patient_id", "birth_date", "sex", "death_date"],
@@ -114,3 +115,27 @@ def eligible_encounters(patient_id: str) -> list[dict]:
             "2019-03-01",
         )
     ]
+
+
+def demo_study_variant(folder: Path, *, output: str = "", quality: str = "") -> Path:
+    """A copy of the demo study, with its definitions, plus settings a test needs.
+
+    ``output`` is inserted as the first lines of the ``output:`` section (e.g.
+    ``"allow_empty_cohort: true"``); ``quality`` becomes the study's ``quality:`` section,
+    written as a YAML flow mapping (e.g. ``"{max_share_set_aside: 1}"``).
+    """
+    shutil.copytree(ROOT / "definitions" / "conditions", folder / "conditions")
+    (folder / "studies").mkdir()
+    text = DEMO_STUDY.read_text(encoding="utf-8")
+    text = text.replace(
+        "extract: ../../synthetic_extract", f"extract: {ROOT / 'synthetic_extract'}"
+    )
+    if output:
+        assert "\noutput:\n" in text
+        text = text.replace("\noutput:\n", f"\noutput:\n  {output}\n")
+    if quality:
+        assert "\nquality:" not in text
+        text += f"\nquality: {quality}\n"
+    study = folder / "studies" / DEMO_STUDY.name
+    study.write_text(text, encoding="utf-8")
+    return study

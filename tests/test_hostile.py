@@ -26,6 +26,7 @@ from pipeline.errors import ExtractError
 from pipeline.extract import discover_extract
 
 from .conftest import DEMO_STUDY, HANDMADE
+from .helpers import demo_study_variant
 
 
 def _lines(table: str) -> list[bytes]:
@@ -265,7 +266,10 @@ def test_enormous_measurement_values_are_counted(tmp_path: Path, baseline: Build
         b"HM-001,2016-01-04,hba1c,,6.5,%\n",  # a plain value, for comparison
     ]
     extract = _hostile(tmp_path, "measurements", b"".join([*_lines("measurements"), *rows]))
-    result = _build(extract)
+    # Three implausible values of four would stop the demo study's build as a misread table.
+    accepted = "{accept_set_aside: [{table: measurements, reason: implausible value}]}"
+    study = demo_study_variant(tmp_path / "study", quality=accepted)
+    result = build_study(study, BuildOptions(extract=extract, out=tmp_path / "out"))
     assert _read(result)["measurements"] == len(rows)
     assert _added(result, baseline, "measurements") == {"implausible value": 3, "used": 1}
 

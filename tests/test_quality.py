@@ -12,7 +12,7 @@ from pipeline._build import BuildOptions, build_study, check_row_accounting
 from pipeline.errors import EngineError
 
 from .conftest import DEMO_STUDY, HANDMADE
-from .helpers import write_extract
+from .helpers import demo_study_variant, write_extract
 
 P = {"patient_id": "A"}
 D = "2015-06-01"
@@ -67,7 +67,9 @@ def quality(tmp_path_factory: pytest.TempPathFactory) -> dict[tuple[str, str], i
             ],
         },
     )
-    build_study(DEMO_STUDY, BuildOptions(extract=extract, out=folder / "out"))
+    # Patient A has too little history for the demo study: the cohort is empty on purpose.
+    study = demo_study_variant(folder / "study", output="allow_empty_cohort: true")
+    build_study(study, BuildOptions(extract=extract, out=folder / "out"))
     with (folder / "out" / "quality.csv").open(encoding="utf-8") as handle:
         return {(r["source_table"], r["reason"]): int(r["n_rows"]) for r in csv.DictReader(handle)}
 

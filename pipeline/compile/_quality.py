@@ -1,13 +1,16 @@
 """The quality log: every extract row is either used or counted under the reason it was not.
 
 Each table is grouped on all its columns once, so exact duplicates are found (the first copy is
-judged, the others are counted as duplicates); each distinct row then gets the first reason that
+judged, the others are counted as duplicates, unless the row has no readable patient_id: see
+_SUMMARY); each distinct row then gets the first reason that
 applies, in the order the reasons are listed below, or ``used``. A separate count of rows read
 lets the build check that used + set aside = read for every table. Each reason also keeps the
 position of the first row it set aside (CSV only; see SOURCE_POSITION), so a user can find it.
 """
 
 from __future__ import annotations
+
+from dataclasses import dataclass
 
 from sqlglot import exp
 
@@ -22,6 +25,119 @@ from pipeline.compile._sources import (
 )
 from pipeline.compile._sql import query, value
 
+
+@dataclass(frozen=True)
+class SetAsideReason:
+    """What one quality-log reason says about the extract, and what to do when it is common.
+
+    Attributes:
+        misread: True when many rows set aside for this reason mean the extract was read
+            wrongly (a date format, an id column, a code-system spelling), so a build where
+            more than the study's share of a table is set aside for it is refused. False when
+            the reason follows from the study's design (its end of data, deaths, the measures
+            it knows, duplicates); those never stop a build.
+        tables: The extract tables whose rows the reason can set aside.
+        hint: What to check or change, shown when a misread reason stops a build.
+    """
+
+    misread: bool
+    tables: tuple[str, ...]
+    hint: str
+
+
+_EVENTS = ("encounters", "diagnoses", "prescriptions", "measurements")
+_ALL = ("patients", *_EVENTS)
+
+# Every reason the quality log can give, spelt exactly as the stages below and
+# measurement_judged (compile/_measurements.py) and extract_codes (compile/_sources.py) spell
+# it. tests/test_useless_runs.py fails when a stage gives a reason that is missing here.
+SET_ASIDE_REASONS: dict[str, SetAsideReason] = {
+    "missing patient_id": SetAsideReason(
+        misread=True,
+        tables=("patients",),
+        hint="patient_id is empty; check that the patients file (or the site mapping's "
+        "columns: patient_id) names the column that holds the patient identifier.",
+    ),
+    "orphan patient": SetAsideReason(
+        misread=True,
+        tables=_EVENTS,
+        hint="these rows' patient_id matches no patient of the patients table; check that "
+        "every table's patient_id column holds the same identifier written the same way "
+        "(leading zeros, prefixes; ids take the patients table's type, integer or text, and "
+        "an id that cannot be read as that type matches nobody), and that a site mapping "
+        "names the right column.",
+    ),
+    "unparseable date": SetAsideReason(
+        misread=True,
+        tables=_EVENTS,
+        hint="the date is empty or not written YYYY-MM-DD; if the site writes dates "
+        'otherwise, describe them in a site mapping file (dates: "%d/%m/%Y", or excel for '
+        "spreadsheet serial days), and check that the mapping names the right date column.",
+    ),
+    "unknown code system": SetAsideReason(
+        misread=True,
+        tables=("diagnoses",),
+        hint="code_system holds values other than ICD10 and ICD9; translate the site's "
+        "labels in a site mapping file (values: {code_system: {ICD-10-CA: ICD10}}).",
+    ),
+    "malformed code": SetAsideReason(
+        misread=True,
+        tables=("diagnoses", "prescriptions"),
+        hint="the codes do not have the shape of their system (ICD-10, ICD-9, ATC); check "
+        "that the code column (atc for prescriptions) holds codes and that code_system says "
+        "which system each one is.",
+    ),
+    "category not recognised": SetAsideReason(
+        misread=True,
+        tables=("measurements",),
+        hint="a coded measure's values are not the ones it knows; translate the site's "
+        "values in a site mapping file (values:).",
+    ),
+    "no value": SetAsideReason(
+        misread=True,
+        tables=("measurements",),
+        hint="neither value nor value_text holds anything; check which columns the file (or "
+        "the site mapping) gives as value and value_text.",
+    ),
+    "value not numeric": SetAsideReason(
+        misread=True,
+        tables=("measurements",),
+        hint="the values are not numbers; check the value and value_text columns and that "
+        "decimals are written with a point.",
+    ),
+    "unit differs from value_text": SetAsideReason(
+        misread=True,
+        tables=("measurements",),
+        hint="value_text carries a unit other than the unit column's; check which column "
+        "holds the unit.",
+    ),
+    "unit not convertible": SetAsideReason(
+        misread=True,
+        tables=("measurements",),
+        hint="the units are not ones their measure converts from; translate the site's unit "
+        "spellings in a site mapping file (values: {unit: ...}) or check the unit column.",
+    ),
+    "implausible value": SetAsideReason(
+        misread=True,
+        tables=("measurements",),
+        hint="the values lie outside their measure's plausible range, which usually means "
+        "the unit column does not describe them; check the unit and value columns.",
+    ),
+    "after end of data": SetAsideReason(
+        misread=False, tables=_EVENTS, hint="dated after the study's end_of_data."
+    ),
+    "after death": SetAsideReason(
+        misread=False, tables=_EVENTS, hint="dated after the patient's death."
+    ),
+    "unknown measure": SetAsideReason(
+        misread=False, tables=("measurements",), hint="a measure the tool does not know."
+    ),
+    "exact duplicate": SetAsideReason(
+        misread=False, tables=_ALL, hint="a copy of a row counted once."
+    ),
+}
+
+
 _DATED = """
 SELECT
   CASE
@@ -33,14 +149,16 @@ SELECT
     ELSE 'used'
   END AS reason,
   r.copies,
-  r.source_position
+  r.source_position,
+  r.patient_id IS NULL AS no_patient_id
 FROM :rows
 LEFT JOIN patient_base AS p ON p.patient_id = r.patient_id
 """
 
 # Every measurement row was judged in measurement_judged.
 _MEASUREMENTS = """
-SELECT COALESCE(problem, 'used') AS reason, copies, source_position
+SELECT
+  COALESCE(problem, 'used') AS reason, copies, source_position, patient_id IS NULL AS no_patient_id
 FROM measurement_judged
 """
 
@@ -48,16 +166,23 @@ _PATIENTS = """
 SELECT
   CASE WHEN patient_id IS NULL THEN 'missing patient_id' ELSE 'used' END AS reason,
   copies,
-  source_position
+  source_position,
+  patient_id IS NULL AS no_patient_id
 FROM :rows
 """
 
+# A row whose patient_id is empty, or cannot be read as the patients table's id type (the
+# views bind it with TRY_CAST), has no patient, so its copies are not exact duplicates: rows
+# of different patients would otherwise meet on a NULL id and their date and code, and an
+# extract whose ids all differ in type from the patients table's would show most of its rows
+# as duplicates (a design reason, which never stops a build) instead of orphans. Such rows are
+# all counted under their reason.
 _SUMMARY = """
 SELECT
   reason,
   :table_name AS source_table,
-  COUNT(*) AS distinct_rows,
-  SUM(copies - 1) AS duplicates,
+  SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
+  SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
   MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
 FROM :classified
 GROUP BY reason

@@ -60,21 +60,36 @@ def _table_profile(con: duckdb.DuckDBPyConnection, name: str) -> dict[str, Any]:
     )
     profile["rows_per_year"] = {str(r["year"]): r["rows"] for r in _fetch(con, per_year)}
     if name != "patients":
-        orphans = (
-            exp.select(exp.func("COUNT", exp.Star()).as_("n"))
-            .from_(f"{relation} AS r")
-            .where(
-                exp.column("patient_id", "r")
-                .isin(
-                    query=exp.select("patient_id")
-                    .from_("src_patients")
-                    .where(exp.column("patient_id").is_(exp.null()).not_())
-                )
-                .not_()
-            )
-        )
-        profile["orphan_rows"] = _fetch(con, orphans)[0]["n"]
+        profile["orphan_rows"] = _fetch(con, _orphans(relation))[0]["n"]
     return profile
+
+
+def _orphans(relation: str) -> exp.Query:
+    """Rows of an event table whose patient is not in patients, counted as the build does.
+
+    The build's quality log joins each row to the patients (``LEFT JOIN patient_base``) and
+    calls it an orphan when no patient matches: also when its patient_id is empty or cannot
+    be read as the patients table's id type (the views bind every patient_id with TRY_CAST to
+    that type, so such an id is NULL). ``NOT IN`` would miss exactly those rows, since
+    ``NULL NOT IN (...)`` is not true: an extract whose ids differ in type between tables
+    showed no orphans while the build set every row aside.
+    """
+    patients = (
+        exp.select("patient_id")
+        .distinct()
+        .from_("src_patients")
+        .where(exp.column("patient_id").is_(exp.null()).not_())
+    )
+    return (
+        exp.select(exp.func("COUNT", exp.Star()).as_("n"))
+        .from_(exp.to_table(relation).as_("r"))
+        .join(
+            patients.subquery("p"),
+            on=exp.column("patient_id", "p").eq(exp.column("patient_id", "r")),
+            join_type="LEFT",
+        )
+        .where(exp.column("patient_id", "p").is_(exp.null()))
+    )
 
 
 def _top_codes(

@@ -12,6 +12,7 @@ from pipeline.outputs._manifest import (
     read_manifest,
     sha256_file,
 )
+from pipeline.outputs._usability import check_usable
 from pipeline.outputs._write import (
     ATTRITION_COLUMNS,
     DATA_FILES,
@@ -25,6 +26,7 @@ __all__ = [
     "MANIFEST",
     "MANIFEST_VERSION",
     "changed_inputs",
+    "check_usable",
     "describe_files",
     "extract_inputs",
     "extract_root",

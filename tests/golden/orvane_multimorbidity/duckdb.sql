@@ -2118,14 +2118,15 @@ WITH summary AS (
   SELECT
     reason,
     'patients' AS source_table,
-    COUNT(*) AS distinct_rows,
-    SUM(copies - 1) AS duplicates,
+    SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
+    SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       CASE WHEN patient_id IS NULL THEN 'missing patient_id' ELSE 'used' END AS reason,
       copies,
-      source_position
+      source_position,
+      patient_id IS NULL AS no_patient_id
     FROM (
       SELECT
         patient_id,
@@ -2156,8 +2157,8 @@ WITH summary AS (
   SELECT
     reason,
     'encounters' AS source_table,
-    COUNT(*) AS distinct_rows,
-    SUM(copies - 1) AS duplicates,
+    SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
+    SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
@@ -2175,7 +2176,8 @@ WITH summary AS (
         ELSE 'used'
       END AS reason,
       r.copies,
-      r.source_position
+      r.source_position,
+      r.patient_id IS NULL AS no_patient_id
     FROM (
       SELECT
         *,
@@ -2203,8 +2205,8 @@ WITH summary AS (
   SELECT
     reason,
     'diagnoses' AS source_table,
-    COUNT(*) AS distinct_rows,
-    SUM(copies - 1) AS duplicates,
+    SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
+    SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
@@ -2222,7 +2224,8 @@ WITH summary AS (
         ELSE 'used'
       END AS reason,
       r.copies,
-      r.source_position
+      r.source_position,
+      r.patient_id IS NULL AS no_patient_id
     FROM (
       SELECT
         *,
@@ -2263,8 +2266,8 @@ WITH summary AS (
   SELECT
     reason,
     'prescriptions' AS source_table,
-    COUNT(*) AS distinct_rows,
-    SUM(copies - 1) AS duplicates,
+    SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
+    SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
@@ -2282,7 +2285,8 @@ WITH summary AS (
         ELSE 'used'
       END AS reason,
       r.copies,
-      r.source_position
+      r.source_position,
+      r.patient_id IS NULL AS no_patient_id
     FROM (
       SELECT
         *,
@@ -2321,14 +2325,15 @@ WITH summary AS (
   SELECT
     reason,
     'measurements' AS source_table,
-    COUNT(*) AS distinct_rows,
-    SUM(copies - 1) AS duplicates,
+    SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
+    SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       COALESCE(problem, 'used') AS reason,
       copies,
-      source_position
+      source_position,
+      patient_id IS NULL AS no_patient_id
     FROM measurement_judged
   ) AS c
   GROUP BY

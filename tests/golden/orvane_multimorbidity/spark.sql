@@ -2300,14 +2300,15 @@ WITH summary AS (
   SELECT
     reason,
     'patients' AS source_table,
-    COUNT(*) AS distinct_rows,
-    SUM(copies - 1) AS duplicates,
+    SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
+    SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       CASE WHEN patient_id IS NULL THEN 'missing patient_id' ELSE 'used' END AS reason,
       copies,
-      source_position
+      source_position,
+      patient_id IS NULL AS no_patient_id
     FROM (
       SELECT
         patient_id,
@@ -2338,8 +2339,8 @@ WITH summary AS (
   SELECT
     reason,
     'encounters' AS source_table,
-    COUNT(*) AS distinct_rows,
-    SUM(copies - 1) AS duplicates,
+    SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
+    SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
@@ -2357,7 +2358,8 @@ WITH summary AS (
         ELSE 'used'
       END AS reason,
       r.copies,
-      r.source_position
+      r.source_position,
+      r.patient_id IS NULL AS no_patient_id
     FROM (
       SELECT
         *,
@@ -2392,8 +2394,8 @@ WITH summary AS (
   SELECT
     reason,
     'diagnoses' AS source_table,
-    COUNT(*) AS distinct_rows,
-    SUM(copies - 1) AS duplicates,
+    SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
+    SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
@@ -2411,7 +2413,8 @@ WITH summary AS (
         ELSE 'used'
       END AS reason,
       r.copies,
-      r.source_position
+      r.source_position,
+      r.patient_id IS NULL AS no_patient_id
     FROM (
       SELECT
         *,
@@ -2459,8 +2462,8 @@ WITH summary AS (
   SELECT
     reason,
     'prescriptions' AS source_table,
-    COUNT(*) AS distinct_rows,
-    SUM(copies - 1) AS duplicates,
+    SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
+    SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
@@ -2478,7 +2481,8 @@ WITH summary AS (
         ELSE 'used'
       END AS reason,
       r.copies,
-      r.source_position
+      r.source_position,
+      r.patient_id IS NULL AS no_patient_id
     FROM (
       SELECT
         *,
@@ -2524,14 +2528,15 @@ WITH summary AS (
   SELECT
     reason,
     'measurements' AS source_table,
-    COUNT(*) AS distinct_rows,
-    SUM(copies - 1) AS duplicates,
+    SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
+    SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       COALESCE(problem, 'used') AS reason,
       copies,
-      source_position
+      source_position,
+      patient_id IS NULL AS no_patient_id
     FROM measurement_judged
   ) AS c
   GROUP BY
