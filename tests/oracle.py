@@ -11,6 +11,10 @@ It knows nothing about the compiler; it restates the rule semantics of DEMO_STUD
 - ``apart_at_least_days A`` (two events in total): a pair of distinct events of the needed
   kinds whose dates differ by at least ``A`` (and at most ``W`` when given); the onset is the
   minimum over such pairs of the later date.
+- ``absent [x, ...]`` without ``absent_window``: any event of x, on any date, and the rule is
+  never met. With ``absent_window [s, e]``: a set (or pair) whose latest date is ``t`` does not
+  count when an event of x falls on a date ``d`` with ``s <= d - t <= e`` (a ``None`` end is
+  open on that side).
 
 Two independent formulations of the ``within_days`` rules are given: :func:`rule_onset` scans
 candidate end dates and counts, :func:`rule_onset_by_sets` enumerates the sets themselves (only
@@ -41,7 +45,25 @@ def _expand(events: list[tuple[str, date, int]], rule: dict, condition: str) -> 
     return out
 
 
-def _apart_onset(expanded: list[Event], rule: dict) -> date | None:
+def _blocked(events: list[tuple[str, date, int]], rule: dict, condition: str):
+    """A test of whether a candidate onset ``t`` is ruled out by the rule's absent evidence."""
+    absent = {f"{condition}.{name}" for name in rule.get("absent", ())}
+    days = [day for key, day, _ in events if key in absent]
+    window = rule.get("absent_window")
+    if window is None:
+        return lambda _t: bool(days)  # any absent event, whenever: never met
+    start, end = window
+
+    def blocked(t: date) -> bool:
+        return any(
+            (start is None or (d - t).days >= start) and (end is None or (d - t).days <= end)
+            for d in days
+        )
+
+    return blocked
+
+
+def _apart_onset(expanded: list[Event], rule: dict, blocked=lambda _t: False) -> date | None:
     """Earliest later-date over pairs of distinct events that are far enough apart."""
     apart = rule["apart_at_least_days"]
     within = rule.get("within_days")
@@ -57,6 +79,8 @@ def _apart_onset(expanded: list[Event], rule: dict) -> date | None:
         if within is not None and gap > within:
             continue
         later = max(day1, day2)
+        if blocked(later):
+            continue
         if best is None or later < best:
             best = later
     return best
@@ -69,16 +93,19 @@ def rule_onset(events: list[tuple[str, date, int]], rule: dict, condition: str) 
         events: The patient's rows of ``evidence_events``: (``"<condition>.<evidence>"``,
             date, n_rows).
         rule: A rule as written in a definition (``need``, ``distinct_days``,
-            ``within_days``, ``apart_at_least_days``).
+            ``within_days``, ``apart_at_least_days``, ``absent``, ``absent_window``).
         condition: The condition the rule belongs to.
     """
     expanded = _expand(events, rule, condition)
+    blocked = _blocked(events, rule, condition)
     if rule.get("apart_at_least_days") is not None:
-        return _apart_onset(expanded, rule)
+        return _apart_onset(expanded, rule, blocked)
     within = rule.get("within_days")
     # The latest date of any set is the date of one of its events, so the candidate onsets
     # are the event dates; try them from the earliest and stop at the first that works.
     for end in sorted({day for _, day in expanded}):
+        if blocked(end):
+            continue
         # events usable by a set whose latest date is `end`
         window = [
             (name, day)
@@ -99,6 +126,7 @@ def rule_onset_by_sets(
     Exponential: for tiny inputs only.
     """
     expanded = _expand(events, rule, condition)
+    blocked = _blocked(events, rule, condition)
     within = rule.get("within_days")
     positions = {
         name: [i for i, (n, _) in enumerate(expanded) if n == name] for name in rule["need"]
@@ -113,6 +141,8 @@ def rule_onset_by_sets(
         ):
             continue  # k events of one evidence must fall on k different dates
         if within is not None and (max(days) - min(days)).days > within:
+            continue
+        if blocked(max(days)):
             continue
         if best is None or max(days) < best:
             best = max(days)

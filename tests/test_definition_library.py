@@ -23,7 +23,10 @@ ROOT = Path(__file__).resolve().parent.parent
 CONDITIONS = ROOT / "definitions" / "conditions"
 
 EXISTING = {"type2_diabetes", "ckd", "heart_failure", "hypertension"}
+REVIEWED = {"type2_diabetes", "heart_failure"}
+"""Demo definitions changed by the clinical review, with test patients here too."""
 LIBRARY = {
+    "kidney_replacement",
     "type1_diabetes",
     "copd",
     "asthma",
@@ -63,6 +66,24 @@ CASES: dict[str, dict[str, dict]] = {
             ],
             "expect": None,
         },
+        # Insulin-only: metformin 366 days after the rule is met, past the 365-day window.
+        "T1-METFORMIN-366": {
+            "rows": [
+                ("dx", "2016-03-01", "ICD10", "E11.9"),
+                ("rx", "2016-04-01", "A10AE04"),
+                ("rx", "2017-04-02", "A10BA02"),
+            ],
+            "expect": "2016-04-01",
+        },
+        # Metformin 365 days after: inside the window, the insulin-only rule is not met.
+        "T1-METFORMIN-365": {
+            "rows": [
+                ("dx", "2016-03-01", "ICD10", "E11.9"),
+                ("rx", "2016-04-01", "A10AE04"),
+                ("rx", "2017-04-01", "A10BA02"),
+            ],
+            "expect": None,
+        },
         # Two type 1 codes on the same day; ICD-9 250.02 is type 2 (fifth digit 2).
         "T1-SAMEDAY": {
             "rows": [
@@ -70,6 +91,96 @@ CASES: dict[str, dict[str, dict]] = {
                 ("dx", "2016-01-05", "ICD10", "E10.1"),
                 ("dx", "2016-02-05", "ICD9", "250.02"),
                 ("dx", "2016-08-05", "ICD9", "250.02"),
+            ],
+            "expect": None,
+        },
+    },
+    "type2_diabetes": {
+        # ICD-9-CM type 1 codes (fifth digit 1 or 3), dotted or not: none counts, not even
+        # with a glucose-lowering drug.
+        "T2-ICD9-TYPE1": {
+            "rows": [
+                ("dx", "2016-01-05", "ICD9", "250.01"),
+                ("dx", "2016-03-01", "ICD9", "25013"),
+                ("dx", "2016-06-01", "ICD9", "250.91"),
+                ("rx", "2016-06-02", "A10BA02"),
+            ],
+            "expect": None,
+        },
+        # Fifth digit 0 and 2 are type 2: two codes on distinct days.
+        "T2-ICD9-TWO": {
+            "rows": [
+                ("dx", "2016-01-05", "ICD9", "250.00"),
+                ("dx", "2016-06-01", "ICD9", "250.02"),
+            ],
+            "expect": "2016-06-01",
+        },
+        # 250.40 undotted (type 2 with renal manifestations) and metformin.
+        "T2-ICD9-DRUG": {
+            "rows": [("dx", "2016-02-01", "ICD9", "25040"), ("rx", "2016-03-01", "A10BA02")],
+            "expect": "2016-03-01",
+        },
+    },
+    "heart_failure": {
+        # Hypertensive heart disease with heart failure, and a loop diuretic.
+        "HF-I11": {
+            "rows": [("dx", "2016-01-01", "ICD10", "I11.0"), ("rx", "2016-02-01", "C03CA01")],
+            "expect": "2016-02-01",
+        },
+        # Hypertensive heart and kidney disease with heart failure, twice.
+        "HF-I13": {
+            "rows": [
+                ("dx", "2016-01-01", "ICD10", "I13.2"),
+                ("dx", "2016-05-01", "ICD10", "I13.0"),
+            ],
+            "expect": "2016-05-01",
+        },
+        "HF-ICD9": {
+            "rows": [
+                ("dx", "2016-01-01", "ICD9", "402.91"),
+                ("dx", "2016-03-01", "ICD9", "40493"),
+            ],
+            "expect": "2016-03-01",
+        },
+        # The same diseases without heart failure: I11.9, I13.1, 402.90, 404.92.
+        "HF-WITHOUT": {
+            "rows": [
+                ("dx", "2016-01-01", "ICD10", "I11.9"),
+                ("dx", "2016-02-01", "ICD10", "I13.1"),
+                ("dx", "2016-03-01", "ICD9", "402.90"),
+                ("dx", "2016-04-01", "ICD9", "404.92"),
+                ("rx", "2016-04-01", "C03CA01"),
+            ],
+            "expect": None,
+        },
+    },
+    "kidney_replacement": {
+        "KR-TWO": {
+            "rows": [
+                ("dx", "2016-01-01", "ICD10", "Z99.2"),
+                ("dx", "2016-04-01", "ICD10", "Z94.0"),
+            ],
+            "expect": "2016-04-01",
+        },
+        "KR-ICD9": {
+            "rows": [
+                ("dx", "2016-01-01", "ICD9", "V45.11"),
+                ("dx", "2016-02-01", "ICD9", "V42.0"),
+            ],
+            "expect": "2016-02-01",
+        },
+        "KR-PROBLEM": {
+            "rows": [("dx", "2016-02-01", "ICD10", "Z49.1", "problem_list")],
+            "expect": "2016-02-01",
+        },
+        # Stage 5 CKD codes are not kidney replacement; one dialysis code on a visit is not
+        # enough; V45.12 (noncompliance with dialysis) is not V45.11.
+        "KR-CKD": {
+            "rows": [
+                ("dx", "2016-01-01", "ICD10", "N18.5"),
+                ("dx", "2016-02-01", "ICD10", "N18.5"),
+                ("dx", "2016-03-01", "ICD10", "Z49.1"),
+                ("dx", "2016-04-01", "ICD9", "V45.12"),
             ],
             "expect": None,
         },
@@ -253,6 +364,39 @@ CASES: dict[str, dict[str, dict]] = {
             ],
             "expect": None,
         },
+        # ICD-10-CM adult BMI 35.0-35.9 with a BMI of 35.5 the same day.
+        "OB-Z68": {
+            "rows": [
+                ("dx", "2016-01-01", "ICD10", "Z68.35"),
+                ("ms", "2016-01-01", "bmi", "35.5", "kg/m2"),
+            ],
+            "expect": "2016-01-01",
+        },
+        # ICD-9-CM adult BMI 40.0-44.9, then a BMI of 42.
+        "OB-V85": {
+            "rows": [
+                ("dx", "2016-01-01", "ICD9", "V85.41"),
+                ("ms", "2016-03-01", "bmi", "42", "kg/m2"),
+            ],
+            "expect": "2016-03-01",
+        },
+        # Obesity hypoventilation syndrome, then a BMI of 33.
+        "OB-27803": {
+            "rows": [
+                ("dx", "2016-01-01", "ICD9", "278.03"),
+                ("ms", "2016-05-01", "bmi", "33", "kg/m2"),
+            ],
+            "expect": "2016-05-01",
+        },
+        # Adult BMI 29 (Z68.29) and children's BMI-for-age (Z68.54) are not obesity codes here.
+        "OB-OTHER-Z68": {
+            "rows": [
+                ("dx", "2016-01-01", "ICD10", "Z68.29"),
+                ("dx", "2016-01-02", "ICD10", "Z68.54"),
+                ("ms", "2016-03-01", "bmi", "31", "kg/m2"),
+            ],
+            "expect": None,
+        },
         # Two high BMI values 792 days apart.
         "OB-FAR": {
             "rows": [
@@ -270,6 +414,32 @@ CASES: dict[str, dict[str, dict]] = {
         "DM-MIXED": {
             "rows": [("dx", "2015-11-01", "ICD9", "331.0"), ("dx", "2016-03-01", "ICD10", "G30.9")],
             "expect": "2016-03-01",
+        },
+        # Delirium superimposed on dementia, then senile degeneration of the brain.
+        "DM-F051-G311": {
+            "rows": [
+                ("dx", "2016-01-01", "ICD10", "F05.1"),
+                ("dx", "2016-04-01", "ICD10", "G31.1"),
+            ],
+            "expect": "2016-04-01",
+        },
+        # Dementia with Lewy bodies (ICD-10-CM) and donepezil.
+        "DM-LEWY": {
+            "rows": [("dx", "2016-01-01", "ICD10", "G31.83"), ("rx", "2016-01-15", "N06DA02")],
+            "expect": "2016-01-15",
+        },
+        "DM-ICD9-SENILE": {
+            "rows": [("dx", "2016-01-01", "ICD9", "331.2"), ("dx", "2016-02-01", "ICD9", "331.2")],
+            "expect": "2016-02-01",
+        },
+        # Alcoholic degeneration (G31.2) and WHO's broad G31.8 are not dementia codes here.
+        "DM-G31-OTHER": {
+            "rows": [
+                ("dx", "2016-01-01", "ICD10", "G31.2"),
+                ("dx", "2016-02-01", "ICD10", "G31.8"),
+                ("rx", "2016-02-01", "N06DA02"),
+            ],
+            "expect": None,
         },
         # Delirium codes and an anti-dementia drug without a dementia code.
         "DM-DELIRIUM": {
@@ -347,15 +517,50 @@ def test_library_loads_with_the_expected_conditions() -> None:
         assert "Research use only" in catalog.conditions[name].about, name
 
 
+def test_every_definition_states_its_provenance() -> None:
+    catalog = load_catalog(CONDITIONS)
+    for name, condition in catalog.conditions.items():
+        provenance = condition.provenance
+        assert provenance is not None, name
+        # Either a publication as "Author et al., year" or our own work, said plainly.
+        assert provenance.adapts.startswith("our own") or " et al., " in provenance.adapts, name
+        assert "ICD-10" in provenance.icd_edition, name
+        assert "ICD-9-CM" in provenance.icd_edition, name
+    reviewed = {"type1_diabetes", "type2_diabetes", "heart_failure", "dementia", "obesity"}
+    for name in reviewed:
+        assert catalog.conditions[name].provenance.version == "1.1", name  # type: ignore[union-attr]
+
+
+def test_obesity_makes_no_adult_only_claim_it_does_not_check() -> None:
+    # The rules have no age test, so neither the title nor the text may promise adults only.
+    obesity = load_catalog(CONDITIONS).conditions["obesity"]
+    assert "adult" not in obesity.title.lower()
+    assert "Adults only" not in obesity.about
+    assert "The rules do not check age" in obesity.about
+
+
+def test_ckd_has_no_kidney_replacement_codes() -> None:
+    # Dialysis and transplant status live in kidney_replacement; the demo's ckd keeps its rules.
+    catalog = load_catalog(CONDITIONS)
+    ckd = catalog.conditions["ckd"]
+    codes = [c for ev in ckd.evidence.values() if ev.diagnosis for c in ev.diagnosis.ICD10]
+    codes += [c for ev in ckd.evidence.values() if ev.diagnosis for c in ev.diagnosis.ICD9]
+    assert not [c for c in codes if c.startswith(("Z49", "Z99", "Z94", "V45", "V42"))]
+    assert [r.name for r in ckd.rules] == [
+        "two low eGFR at least 90 days apart",
+        "two CKD stage 3-6 codes",
+    ]
+
+
 def test_every_library_condition_has_test_patients() -> None:
-    assert set(CASES) == LIBRARY
+    assert set(CASES) == LIBRARY | REVIEWED
     for name, patients in CASES.items():
         outcomes = [spec["expect"] for spec in patients.values()]
         assert any(o is None for o in outcomes), f"{name}: no non-case"
         assert any(o is not None for o in outcomes), f"{name}: no case"
 
 
-@pytest.mark.parametrize("condition", sorted(LIBRARY))
+@pytest.mark.parametrize("condition", sorted(LIBRARY | REVIEWED))
 def test_definition_finds_its_cases(condition: str, tmp_path: Path) -> None:
     patients = CASES[condition]
     _write_extract(tmp_path / "extract", patients)

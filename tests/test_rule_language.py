@@ -301,3 +301,46 @@ def test_atc_malformed_rejected(code: str) -> None:
     # WHO ATC structure (WHOCC): A1, A10B2, A10BA2 are not levels of the hierarchy
     with pytest.raises(ValueError, match="is not a valid WHO ATC code or prefix"):
         check_code("ATC", code)
+
+
+@pytest.mark.parametrize(
+    ("rule", "message"),
+    [
+        (
+            "{name: r, need: {code: 1}, absent_window: [null, 365]}",
+            "absent_window is given but the rule lists no absent evidence",
+        ),
+        (
+            "{name: r, need: {code: 1}, absent: [other], absent_window: [30, -30]}",
+            "absent_window starts (30) after it ends (-30)",
+        ),
+    ],
+)
+def test_bad_absent_window_is_located(tmp_path: Path, rule: str, message: str) -> None:
+    text = (
+        "condition: a\ntitle: A\nabout: x\nevidence:\n  code: {diagnosis: {ICD10: [E11]}}\n"
+        f"  other: {{diagnosis: {{ICD10: [E10]}}}}\nrules:\n  - {rule}\n"
+    )
+    problems = _catalog_problems(tmp_path, {"a": text})
+    assert f"a.yaml:8:5 [bad-value] rules[0]: {message}" in problems
+
+
+def test_absent_window_keeps_a_case_a_later_record_would_have_undone(tmp_path: Path) -> None:
+    bounded = TYPE2.replace("absent: [t1_code]}", "absent: [t1_code], absent_window: [null, 0]}")
+    cohort = _build(
+        tmp_path,
+        {"diabetes": DIABETES, "type2": bounded},
+        ["diabetes", "type2"],
+        {
+            "diagnoses": [
+                _dx("B", "2016-01-01", "E11.9"),
+                _dx("B", "2016-06-01", "E11.9"),
+                _dx("B", "2019-05-01", "E10.9"),  # after the onset: outside [null, 0]
+                _dx("C", "2016-01-01", "E11.9"),
+                _dx("C", "2016-06-01", "E11.9"),
+                _dx("C", "2016-06-01", "E10.9"),  # on the onset day: inside the window
+            ]
+        },
+    )
+    # The same patient B as in test_condition_reference_and_absent_evidence is now a case.
+    assert _onsets(cohort, "type2") == {"B": "2016-06-01", "C": None}

@@ -118,6 +118,19 @@ def apart_rules(draw: st.DrawFn) -> dict:
     }
 
 
+ABSENT_END = st.one_of(st.none(), st.sampled_from([-30, -1, 0, 1, 30, 365]), st.integers(-400, 400))
+
+
+@st.composite
+def absent_rules(draw: st.DrawFn) -> dict:
+    """A within or apart rule that also lists ``x`` as absent, with or without a window."""
+    rule = draw(st.one_of(within_rules(), apart_rules()))
+    window = draw(st.one_of(st.none(), st.tuples(ABSENT_END, ABSENT_END)))
+    if window is not None and None not in window and window[0] > window[1]:
+        window = (window[1], window[0])  # the model rejects a reversed window
+    return {**rule, "absent": ["x"], "absent_window": window}
+
+
 def to_rows(histories: list[list[tuple[str, int, int]]]) -> list[Row]:
     return [
         (f"p{i}", key, D0 + timedelta(days=offset), n_rows)
@@ -150,6 +163,13 @@ def test_within_rules_match_oracle(con, histories, rule):
 @settings(max_examples=300, deadline=None)
 @given(histories=PATIENTS, rule=apart_rules())
 def test_apart_rules_match_oracle(con, histories, rule):
+    rows = to_rows(histories)
+    assert sql_onsets(con, rule, rows) == oracle_onsets(rows, rule)
+
+
+@settings(max_examples=300, deadline=None)
+@given(histories=PATIENTS, rule=absent_rules())
+def test_absent_rules_match_oracle(con, histories, rule):
     rows = to_rows(histories)
     assert sql_onsets(con, rule, rows) == oracle_onsets(rows, rule)
 
@@ -306,3 +326,42 @@ def test_other_evidence_and_conditions_do_not_count(con):
     ]
     # only one usable code: not met
     assert sql_onsets(con, TWO_CODES, rows) == {}
+
+
+# The insulin-only pattern: a code and a drug within a year, and no "x" (say, a non-insulin
+# drug) in a window around the date the rule is met.
+NO_X_UNTIL_A_YEAR_AFTER = {**CODE_AND_DRUG, "absent": ["x"], "absent_window": (None, 365)}
+
+
+def test_absent_window_ignores_evidence_after_its_end(con):
+    t = D0 + timedelta(days=10)  # code on D0, drug on day 10: candidate onset 2020-01-11
+    rows = [
+        ("x_366_after", "c.a", D0, 1),
+        ("x_366_after", "c.b", t, 1),
+        ("x_366_after", "c.x", t + timedelta(days=366), 1),  # past the window's end
+        ("x_365_after", "c.a", D0, 1),
+        ("x_365_after", "c.b", t, 1),
+        ("x_365_after", "c.x", t + timedelta(days=365), 1),  # on the window's last day
+        ("x_long_before", "c.x", D0 - timedelta(days=1000), 1),  # null start: all history
+        ("x_long_before", "c.a", D0, 1),
+        ("x_long_before", "c.b", t, 1),
+    ]
+    assert sql_onsets(con, NO_X_UNTIL_A_YEAR_AFTER, rows) == {"x_366_after": date(2020, 1, 11)}
+    # Without a window, the same x 366 days later rules the patient out for good.
+    unbounded = {**NO_X_UNTIL_A_YEAR_AFTER, "absent_window": None}
+    assert sql_onsets(con, unbounded, rows[:3]) == {}
+
+
+def test_absent_window_lets_a_later_candidate_qualify(con):
+    rule = {**CODE_AND_DRUG, "absent": ["x"], "absent_window": (-30, 30)}
+    rows = [
+        ("p", "c.a", D0, 1),
+        ("p", "c.b", D0 + timedelta(days=1), 1),  # first candidate: day 1
+        ("p", "c.x", D0 + timedelta(days=5), 1),  # 4 days after day 1: day 1 is ruled out
+        ("p", "c.b", D0 + timedelta(days=100), 1),  # second candidate: day 100
+    ]
+    # Day 100 meets code (day 0) and drug within 365 days, and x is 95 days before it, outside
+    # [-30, 30]: met on day 100, 2020-04-10.
+    assert sql_onsets(con, rule, rows) == {"p": date(2020, 4, 10)}
+    near = [*rows, ("p", "c.x", D0 + timedelta(days=80), 1)]  # 20 days before day 100
+    assert sql_onsets(con, rule, near) == {}

@@ -16,6 +16,15 @@ table is what is kept here: malignancy ends at 195.8 as in the paper (comorbidip
 renal disease; 437.3 in peripheral vascular and cerebrovascular disease) count in both, where
 comorbidipy assigns each code to one category only.
 
+One deliberate deviation from the paper (ours, so it is stated in every output's data
+dictionary): renal disease does not count chronic kidney disease stages 1 and 2, ICD-10 N18.1,
+N18.2 and ICD-9-CM 585.1, 585.2. The paper lists N18 and 585 whole, but stages 1 and 2 are kidney
+damage with normal or mildly reduced filtration, not the moderate or severe renal disease the
+Charlson index weights, and they are often coded from a single mildly low eGFR. Every other N18
+and 585 code still scores: the bare three-character codes, stages 3 to 5 and end-stage
+(N18.3-N18.6, N18.0 where an edition has it, 585.3-585.6) and the unspecified or other ones
+(N18.8, N18.9, 585.9), whose stage is unknown.
+
 Weights: ``charlson_1987`` are the original weights of Charlson ME, Pompei P, Ales KL, MacKenzie CR,
 *J Chronic Dis* 1987;40:373-383; ``quan_2011`` are the updated weights of Quan H, Li B, Couris CM,
 et al., *Am J Epidemiol* 2011;173:676-682 (AIDS/HIV = 4 as published; comorbidipy 0.5.0 uses 2).
@@ -42,12 +51,22 @@ class CharlsonCategory:
         title: The category's name as a reader expects it in a table.
         icd10: ICD-10 codes, prefixes or equal-length ranges (Quan 2005, ICD-10 column).
         icd9: ICD-9-CM codes, prefixes or ranges (Quan 2005, enhanced ICD-9-CM column).
+        icd10_except: ICD-10 prefixes inside ``icd10`` that do not count (our deviations).
+        icd9_except: ICD-9-CM prefixes inside ``icd9`` that do not count (our deviations).
     """
 
     name: str
     title: str
     icd10: tuple[str, ...]
     icd9: tuple[str, ...]
+    icd10_except: tuple[str, ...] = ()
+    icd9_except: tuple[str, ...] = ()
+
+    def codes(self, system: str) -> tuple[tuple[str, ...], tuple[str, ...]]:
+        """The category's included codes and its exceptions in one system, as written."""
+        if system == "ICD10":
+            return self.icd10, self.icd10_except
+        return self.icd9, self.icd9_except
 
 
 # Laid out by hand, several codes a line, to read alongside the paper's table.
@@ -163,6 +182,9 @@ CHARLSON_CATEGORIES: tuple[CharlsonCategory, ...] = (
             "403.01", "403.11", "403.91", "404.02", "404.03", "404.12", "404.13", "404.92",
             "404.93", "582", "583.0-583.7", "585", "586", "588.0", "V42.0", "V45.1", "V56",
         ),
+        # Our deviation from Quan 2005 (module docstring): CKD stages 1 and 2 do not score.
+        icd10_except=("N18.1", "N18.2"),
+        icd9_except=("585.1", "585.2"),
     ),
     CharlsonCategory(
         name="malignancy",
@@ -275,7 +297,28 @@ def category_prefixes(system: str) -> dict[str, tuple[str, ...]]:
     if system not in SYSTEMS:
         raise ValueError(f"Charlson codes exist for {', '.join(SYSTEMS)}, not '{system}'")
     return {
-        category.name: tuple(expand_codes(category.icd10 if system == "ICD10" else category.icd9))
+        category.name: tuple(expand_codes(category.codes(system)[0]))
+        for category in CHARLSON_CATEGORIES
+    }
+
+
+@cache
+def category_exceptions(system: str) -> dict[str, tuple[str, ...]]:
+    """Each category's normalised prefixes that do not count, for one code system.
+
+    A code counts for a category when it starts with one of :func:`category_prefixes` and with
+    none of these (our stated deviations from Quan 2005).
+
+    Raises:
+        ValueError: An unknown system.
+
+    >>> category_exceptions("ICD10")["renal_disease"]
+    ('N181', 'N182')
+    """
+    if system not in SYSTEMS:
+        raise ValueError(f"Charlson codes exist for {', '.join(SYSTEMS)}, not '{system}'")
+    return {
+        category.name: tuple(expand_codes(category.codes(system)[1]))
         for category in CHARLSON_CATEGORIES
     }
 
@@ -289,13 +332,14 @@ def charlson_categories(codes: Iterable[tuple[str, str]]) -> set[str]:
 
     Returns:
         Names of the categories with at least one code whose normalised form starts with one
-        of the category's prefixes in the same system.
+        of the category's prefixes in the same system and with none of its exceptions.
     """
     found: set[str] = set()
     for system, code in codes:
         normalised = normalise_code(code)
+        exceptions = category_exceptions(system)
         for name, prefixes in category_prefixes(system).items():
-            if any(normalised.startswith(prefix) for prefix in prefixes):
+            if normalised.startswith(prefixes) and not normalised.startswith(exceptions[name]):
                 found.add(name)
     return found
 

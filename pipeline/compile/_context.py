@@ -13,6 +13,7 @@ from pipeline.codes import CHARLSON_CATEGORIES
 from pipeline.config import (
     Catalog,
     Condition,
+    DiagnosisCodes,
     DiagnosisEvidence,
     Evidence,
     Study,
@@ -113,9 +114,16 @@ class CompileContext:
         if charlson:
             systems = set(charlson[0].codes)  # one code basis per study (checked at load)
             for category in CHARLSON_CATEGORIES:
-                icd10 = category.icd10 if "ICD10" in systems else ()
-                icd9 = category.icd9 if "ICD9" in systems else ()
-                evidence = Evidence(diagnosis=DiagnosisEvidence(ICD10=icd10, ICD9=icd9))
+                icd10, icd10_except = category.codes("ICD10") if "ICD10" in systems else ((), ())
+                icd9, icd9_except = category.codes("ICD9") if "ICD9" in systems else ((), ())
+                exclude = (
+                    DiagnosisCodes(ICD10=icd10_except, ICD9=icd9_except)
+                    if icd10_except or icd9_except
+                    else None
+                )
+                evidence = Evidence(
+                    diagnosis=DiagnosisEvidence(ICD10=icd10, ICD9=icd9, exclude=exclude)
+                )
                 found.append((charlson_key(category.name), evidence))
         return tuple(found)
 

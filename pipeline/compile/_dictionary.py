@@ -49,13 +49,21 @@ def _charlson_doc(name: str, covariate: Covariate) -> ColumnDoc:
     weights = covariate.charlson.weights
     stated = ", ".join(f"{c.title} {WEIGHTS[weights][c.name]}" for c in CHARLSON_CATEGORIES)
     source = "Charlson et al. 1987" if weights == "charlson_1987" else "Quan et al. 2011"
+    systems = covariate.charlson.codes
+    deviations = "; ".join(
+        f"{c.title} without {', '.join(code for system in systems for code in c.codes(system)[1])}"
+        for c in CHARLSON_CATEGORIES
+        if any(c.codes(system)[1] for system in systems)
+    )
     return ColumnDoc(
         name,
         "INTEGER",
         "points",
         "Charlson comorbidity index over all history up to and including the index date",
         f"categories by the Quan et al. 2005 coding algorithms "
-        f"({', '.join(covariate.charlson.codes)} codes); weights ({source}): {stated}; "
+        f"({', '.join(systems)} codes), with our deviation from it: {deviations} "
+        "(chronic kidney disease stages 1-2 do not score as renal disease); "
+        f"weights ({source}): {stated}; "
         "a milder category does not count when its severe form is present "
         "(liver disease, diabetes, malignancy vs metastatic tumour)",
         "diagnoses",

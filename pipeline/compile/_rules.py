@@ -4,6 +4,9 @@ A rule is met on the earliest date ``t`` such that the evidence it needs has all
 window ``[t - within_days, t]``; the onset is the minimum over qualifying sets of the latest
 date in the set. One window function per evidence computes this for every patient at once.
 With ``apart_at_least_days`` (two events) the frame becomes ``[t - within, t - apart]``.
+With ``absent_window: [s, e]`` one more window function counts the absent evidence in
+``[t + s, t + e]`` around each candidate date, which must hold none; without it, a patient with
+absent evidence on any date never meets the rule.
 
 Conditions are evaluated one stage each, in reference order, so a condition used as evidence
 (``condition: diabetes``) is finished before the conditions that read its onset.
@@ -24,6 +27,13 @@ _WITHIN = "RANGE BETWEEN :within PRECEDING AND CURRENT ROW"
 _UNBOUNDED = "RANGE BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW"
 _APART_WITHIN = "RANGE BETWEEN :within PRECEDING AND :apart PRECEDING"
 _APART = "RANGE BETWEEN UNBOUNDED PRECEDING AND :apart PRECEDING"
+
+# COUNT, not SUM: a frame can be empty (e.g. from 1 day after to 1 day after), and SUM over no
+# rows is NULL where COUNT is 0.
+_ABSENT_IN_FRAME = (
+    "COUNT(CASE WHEN :absent THEN 1 END)"
+    " OVER (PARTITION BY patient_id ORDER BY day RANGE BETWEEN {low} AND {high})"
+)
 
 _COUNT_IN_FRAME = (
     "SUM(CASE WHEN evidence = :key THEN :weight ELSE 0 END)"
@@ -67,6 +77,29 @@ def _frame(rule: Rule) -> tuple[str, dict[str, int]]:
     return _WITHIN, {"within": rule.within_days}
 
 
+def _absent_bound(offset: int | None, name: str, unbounded: str) -> tuple[str, dict[str, int]]:
+    """One end of the absent window as a frame bound: days before or after the current row."""
+    if offset is None:
+        return f"UNBOUNDED {unbounded}", {}
+    if offset == 0:
+        return "CURRENT ROW", {}
+    return f":{name} {'PRECEDING' if offset < 0 else 'FOLLOWING'}", {name: abs(offset)}
+
+
+def _absent_in_frame(rule: Rule, keys: list[exp.Expression]) -> exp.Expression:
+    """Absent evidence dated inside the rule's ``absent_window`` around each row's day."""
+    assert rule.absent_window is not None  # only called for a bounded absent
+    start, end = rule.absent_window
+    low, low_bound = _absent_bound(start, "low", "PRECEDING")
+    high, high_bound = _absent_bound(end, "high", "FOLLOWING")
+    return expression(
+        _ABSENT_IN_FRAME.format(low=low, high=high),
+        absent=exp.column("evidence").isin(*keys),
+        **low_bound,
+        **high_bound,
+    ).as_("absent_in_frame")
+
+
 def _keys(condition: Condition, names: list[str] | tuple[str, ...]) -> list[exp.Expression]:
     return [evidence_id(evidence_key(condition.condition, n)) for n in names]
 
@@ -90,11 +123,19 @@ def rule_query(condition: Condition, rule: Rule, events: exp.Expression | None =
         )
         for i, key in enumerate(keys)
     ]
-    relevant = exp.column("evidence").isin(*(k.copy() for k in keys))
-    if rule.absent:
+    needed = exp.column("evidence").isin(*(k.copy() for k in keys))
+    relevant: exp.Expression = needed
+    met = _met(rule, names, keys)
+    if rule.absent and rule.absent_window is None:
         absent = exp.select("patient_id").from_(source.copy())
         absent = absent.where(exp.column("evidence").isin(*_keys(condition, rule.absent)))
         relevant = exp.and_(relevant, exp.column("patient_id").isin(query=absent).not_())
+    elif rule.absent:
+        # Absent rows join the window functions; only needed rows can be the day it is met.
+        absent_keys = _keys(condition, rule.absent)
+        relevant = exp.or_(needed, exp.column("evidence").isin(*(k.copy() for k in absent_keys)))
+        counts.append(_absent_in_frame(rule, absent_keys))
+        met = exp.and_(needed.copy(), met, exp.column("absent_in_frame").eq(0))
     counted = (
         exp.select("patient_id", "evidence", "event_date", *counts).from_(source).where(relevant)
     )
@@ -103,7 +144,7 @@ def rule_query(condition: Condition, rule: Rule, events: exp.Expression | None =
         condition=condition.condition,
         rule=rule.name,
         counted=counted.subquery("counted"),
-        met=_met(rule, names, keys),
+        met=met,
     )
 
 

@@ -2,11 +2,13 @@
 
 from pipeline.config._condition import (
     Condition,
+    DiagnosisCodes,
     DiagnosisEvidence,
     EncounterEvidence,
     Evidence,
     MeasurementEvidence,
     PrescriptionEvidence,
+    Provenance,
     Rule,
 )
 from pipeline.config._loader import Catalog, LoadedStudy, load_catalog, load_condition, load_study
@@ -25,6 +27,7 @@ __all__ = [
     "Condition",
     "Covariate",
     "Criterion",
+    "DiagnosisCodes",
     "DiagnosisEvidence",
     "EncounterEvidence",
     "Evidence",
@@ -34,6 +37,7 @@ __all__ = [
     "MeasurementEvidence",
     "Outcomes",
     "PrescriptionEvidence",
+    "Provenance",
     "Rule",
     "Study",
     "Window",

@@ -59,7 +59,17 @@ def _is_study(file: Path) -> bool:
 def _lint(file: Path, condition: Condition) -> list[Problem]:
     doc = load_yaml(file)
     used = {name for rule in condition.rules for name in (*rule.need, *rule.absent)}
-    problems = [
+    problems = []
+    if condition.provenance is None:
+        problems.append(
+            doc.problem(
+                ("condition",),
+                "no-provenance",
+                f"definition '{condition.condition}' has no provenance: say which published "
+                "algorithm it adapts (or that it is our own), its ICD edition, version and date",
+            )
+        )
+    problems += [
         doc.problem(
             ("evidence", name),
             "unused-evidence",
@@ -189,8 +199,25 @@ def _rule_text(rule: Rule) -> str:
     if rule.within_days is not None:
         text += f" within {rule.within_days} days of each other"
     if rule.absent:
-        text += f", with no {' or '.join(rule.absent)} ever"
+        text += f", with no {' or '.join(rule.absent)} {_absent_window_text(rule)}"
     return text
+
+
+def _absent_window_text(rule: Rule) -> str:
+    if rule.absent_window is None:
+        return "ever"
+    start, end = rule.absent_window
+
+    def offset(days: int | None, open_end: str) -> str:
+        if days is None:
+            return open_end
+        if days == 0:
+            return "the day it is met"
+        return f"{abs(days)} days {'before' if days < 0 else 'after'} the day it is met"
+
+    return (
+        f"from {offset(start, 'the start of the record')} to {offset(end, 'the end of the record')}"
+    )
 
 
 def explain_condition(condition: Condition) -> str:

@@ -6,7 +6,8 @@ with a suggestion instead of a silently ignored setting.
 
 from __future__ import annotations
 
-from typing import Literal, Self
+import datetime as dt
+from typing import Annotated, Literal, Self
 
 from pydantic import Field, ValidationInfo, field_validator, model_validator
 
@@ -174,11 +175,18 @@ class Evidence(Model):
 EVIDENCE_KINDS = ("diagnosis", "prescription", "measurement", "encounter", "condition")
 
 
+AbsentWindow = tuple[int | None, int | None]
+
+
 class Rule(Model):
     """A way the evidence makes a case: counts of evidence met inside a window.
 
-    ``absent`` lists evidence that must never occur (up to the end of data) for the rule to
-    count, e.g. no type 1 diabetes code ever.
+    ``absent`` lists evidence that must not occur for the rule to count, e.g. no non-insulin
+    glucose-lowering drug. Without ``absent_window`` it must never occur (up to the end of
+    data), so a record made years later can undo a case retroactively. ``absent_window:
+    [start, end]`` bounds that: the rule is met on the earliest date ``t`` on which its need is
+    met and no absent evidence is dated in ``[t + start, t + end]`` (days, both ends included;
+    ``null`` start is all history before, ``null`` end all of the record after).
     """
 
     name: str
@@ -187,6 +195,7 @@ class Rule(Model):
     within_days: NonNegativeInt | None = None
     apart_at_least_days: NonNegativeInt | None = None
     absent: tuple[str, ...] = ()
+    absent_window: AbsentWindow | None = None
 
     @model_validator(mode="after")
     def _window_is_consistent(self) -> Self:
@@ -204,7 +213,33 @@ class Rule(Model):
         both = sorted(set(self.absent) & set(self.need))
         if both:
             raise ValueError(f"evidence both needed and absent: {', '.join(both)}")
+        if self.absent_window is not None:
+            start, end = self.absent_window
+            if not self.absent:
+                raise ValueError("absent_window is given but the rule lists no absent evidence")
+            if start is not None and end is not None and start > end:
+                raise ValueError(f"absent_window starts ({start}) after it ends ({end})")
         return self
+
+
+class Provenance(Model):
+    """Where a definition comes from, so a reader can judge it and cite the right version.
+
+    Attributes:
+        adapts: The published algorithm the definition adapts, as "Author et al., year", or
+            "our own, in the style of ..." when it adapts no single publication.
+        icd_edition: Which ICD editions its codes are written in, e.g. "ICD-10 (WHO) and
+            ICD-9-CM"; prefix matching means the same list can mean different codes in another
+            edition.
+        version: The definition's own version, dotted numbers ("1.1"); raise it on any change
+            that can change who is a case.
+        date: The date of that version.
+    """
+
+    adapts: Annotated[str, Field(min_length=1)]
+    icd_edition: Annotated[str, Field(min_length=1)]
+    version: Annotated[str, Field(pattern=r"^[0-9]+(\.[0-9]+)*$")]
+    date: dt.date
 
 
 class Condition(Model):
@@ -213,6 +248,7 @@ class Condition(Model):
     condition: Name
     title: str
     about: str
+    provenance: Provenance | None = None
     evidence: dict[Name, Evidence] = Field(min_length=1)
     rules: tuple[Rule, ...] = Field(min_length=1)
     onset: Literal["rule_met", "first_evidence"] = "rule_met"
