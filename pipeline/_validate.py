@@ -24,7 +24,9 @@ from pipeline.stats import (
     OnsetAgreement,
     diagnostic_accuracy,
     onset_agreement,
+    protect_cells,
 )
+from pipeline.stats._disclosure import Relation
 
 
 @dataclass(frozen=True)
@@ -140,37 +142,102 @@ def validate_study(
     return results
 
 
-def _shown(count: int, threshold: int) -> str:
-    return f"<{threshold}" if 0 < count < threshold else str(count)
+_STATISTICS = {  # each statistic and the cells it is computed from
+    "sensitivity": ("tp", "fn"),
+    "specificity": ("tn", "fp"),
+    "ppv": ("tp", "fp"),
+    "npv": ("tn", "fn"),
+    "kappa": ("tp", "fp", "fn", "tn"),
+}
+
+
+def validation_cells(results: list[Validation]) -> tuple[dict[str, int], list[Relation], set[str]]:
+    """The counts of a validation as cells of the suppression system, with their relations.
+
+    Per condition: the four cells, the definition's and the reference's positives and
+    negatives (each the sum of two cells; statistics reveal them), and of the true positives
+    those with a reference date whose onsets were compared (``onset_n``), split into those
+    within the agreement window and the others. The patients of the extract (``total``) are
+    the same for every condition. These are patients of the whole extract judged at the end
+    of data, not the sets a build's report counts, so a validation is a system of its own.
+
+    Returns:
+        Cell values, relations, and the latent cells (true positives without a reference date,
+        never released).
+    """
+    values: dict[str, int] = {}
+    relations: list[Relation] = []
+    latent: set[str] = set()
+    for r in results:
+        a, o, c = r.accuracy, r.onsets, r.condition
+        cell = {name: f"{c}|{name}" for name in ("tp", "fp", "fn", "tn")}
+        values |= {cell[name]: int(getattr(a, name)) for name in cell}
+        values["total"] = a.tp + a.fp + a.fn + a.tn
+        relations.append((*((cell[name], 1) for name in cell), ("total", -1)))
+        for margin, (x, y) in {
+            "def_pos": ("tp", "fp"),
+            "def_neg": ("fn", "tn"),
+            "ref_pos": ("tp", "fn"),
+            "ref_neg": ("fp", "tn"),
+        }.items():
+            values[f"{c}|{margin}"] = values[cell[x]] + values[cell[y]]
+            relations.append(((cell[x], 1), (cell[y], 1), (f"{c}|{margin}", -1)))
+        values[f"{c}|onset_n"] = o.n
+        values[f"{c}|onset_within"] = o.within
+        values[f"{c}|onset_outside"] = o.n - o.within
+        values[f"{c}|tp_undated"] = a.tp - o.n
+        latent.add(f"{c}|tp_undated")
+        relations.append(
+            ((f"{c}|onset_n", 1), (f"{c}|tp_undated", 1), (cell["tp"], -1)),
+        )
+        relations.append(
+            ((f"{c}|onset_within", 1), (f"{c}|onset_outside", 1), (f"{c}|onset_n", -1)),
+        )
+    return values, relations, latent
 
 
 def render_validation(results: list[Validation], threshold: int) -> str:
-    """The agreement as plain text; counts below the threshold are shown as ``<threshold``."""
+    """The agreement as plain text, with small counts suppressed as in the report.
+
+    The counts go through :func:`pipeline.stats.protect_cells` with the relations of
+    :func:`validation_cells`: counts from 1 to ``threshold - 1`` are shown as
+    ``<threshold``, counts hidden so that those cannot be worked out as ``*``, and every
+    statistic computed from a hidden count (its estimate reveals the count) is left out.
+    """
+    values, relations, latent = validation_cells(results)
+    hidden = protect_cells(values, relations, threshold, latent=latent, priority={"total": 1})
+
+    def shown(key: str) -> str:
+        if key not in hidden:
+            return str(values[key])
+        return f"<{threshold}" if 0 < values[key] < threshold else "*"
+
     lines = []
     for r in results:
-        a = r.accuracy
-        cells = ", ".join(
-            f"{name} {_shown(getattr(a, name), threshold)}" for name in ("tp", "fp", "fn", "tn")
-        )
-        lines.append(f"{r.condition}: {cells}")
-        for label in ("sensitivity", "specificity", "ppv", "npv"):
-            value = getattr(a, label)
+        c = r.condition
+        cells = ", ".join(f"{name} {shown(f'{c}|{name}')}" for name in ("tp", "fp", "fn", "tn"))
+        lines.append(f"{c}: {cells}")
+        for label, inputs in _STATISTICS.items():
+            value = getattr(r.accuracy, label)
+            if any(f"{c}|{name}" in hidden for name in inputs):
+                lines.append(f"  {label:<12} suppressed (computed from a hidden count)")
+                continue
             lines.append(
                 f"  {label:<12} {value.estimate:.3f} (95% CI {value.low:.3f}-{value.high:.3f})"
             )
-        kappa = a.kappa
-        lines.append(
-            f"  {'kappa':<12} {kappa.estimate:.3f} (95% CI {kappa.low:.3f}-{kappa.high:.3f})"
-        )
         o = r.onsets
         if o.n:
-            n = _shown(o.n, threshold)
-            lines.append(
-                f"  onset dates: median difference {o.median_difference:+.0f} days, "
-                f"{o.share_within.estimate:.1%} within {o.within_days} days (n {n})"
-            )
+            onset = (f"{c}|onset_n", f"{c}|onset_within", f"{c}|onset_outside")
+            if o.n < threshold or any(k in hidden for k in onset):
+                lines.append(f"  onset dates: suppressed (n {shown(f'{c}|onset_n')})")
+            else:
+                lines.append(
+                    f"  onset dates: median difference {o.median_difference:+.0f} days, "
+                    f"{o.share_within.estimate:.1%} within {o.within_days} days (n {o.n})"
+                )
     lines.append(
-        "Research use only. Counts below the threshold are suppressed; intervals from small "
-        "counts are wide."
+        f"Research use only. Small-cell threshold {threshold}: counts from 1 to {threshold - 1} "
+        f"are shown as <{threshold}, counts hidden so that those cannot be worked out as *, "
+        "and statistics computed from a hidden count are not shown."
     )
     return "\n".join(lines)

@@ -7,9 +7,11 @@ from pathlib import Path
 import pytest
 from typer.testing import CliRunner
 
-from pipeline._validate import validate_study
+from pipeline._validate import Validation, render_validation, validate_study, validation_cells
 from pipeline.cli import app
 from pipeline.errors import AscertainError
+from pipeline.stats import diagnostic_accuracy, onset_agreement
+from pipeline.stats._disclosure import feasible_range
 
 from .conftest import DEMO_STUDY
 from .helpers import write_extract
@@ -68,7 +70,9 @@ def test_ground_truth_layout_and_suppressed_output(tmp_path: Path, extract: Path
     output = CliRunner().invoke(app, args).output
     # C's true onset is after the end of data (2019-12-31): the reference calls it no case.
     assert "type2_diabetes: tp <5, fp <5, fn 0, tn <5" in output
-    assert "sensitivity  1.000" in output
+    # tp is hidden, so sensitivity (tp / (tp + fn) = 1.000) would give it back: not printed.
+    assert "sensitivity  suppressed" in output
+    assert "1.000" not in output
 
 
 def test_reference_with_unknown_columns(tmp_path: Path, extract: Path) -> None:
@@ -76,3 +80,38 @@ def test_reference_with_unknown_columns(tmp_path: Path, extract: Path) -> None:
     bad.write_text("id,disease\nA,x\n", encoding="utf-8")
     with pytest.raises(AscertainError, match="a reference needs columns patient_id, condition"):
         validate_study(DEMO_STUDY, bad, extract=extract)
+
+
+def _validation(tp: int, fp: int, fn: int, tn: int, dated: int) -> Validation:
+    differences = [0] * dated
+    return Validation(
+        "ckd", diagnostic_accuracy(tp=tp, fp=fp, fn=fn, tn=tn), onset_agreement(differences)
+    )
+
+
+def test_validation_counts_cannot_be_worked_out_from_what_is_printed() -> None:
+    # The case of issue 16: "tp <5, fp <5, fn 40" next to sensitivity 0.070 and PPV 0.600
+    # gave tp = 3 and fp = 2 back. Now the statistics from hidden counts are not printed, and
+    # the counts shown leave each hidden one at least 5 values wide (exact integer bounds).
+    result = _validation(3, 2, 40, 955, dated=3)
+    text = render_validation([result], 5)
+    assert "ckd: tp <5, fp <5, fn *, tn *" in text
+    for label in ("sensitivity", "specificity", "ppv", "npv", "kappa"):
+        assert f"{label:<12} suppressed" in text
+    assert "0.070" not in text
+    assert "0.600" not in text
+    assert "onset dates: suppressed (n <5)" in text
+    assert "threshold 5" in text
+    values, relations, _ = validation_cells([result])
+    unknown = set(values) - {"total"}  # only the number of patients is known to a reader
+    for cell in ("tp", "fp", "fn", "tn"):
+        low, high = feasible_range(f"ckd|{cell}", values, relations, unknown)
+        assert high - low >= 5, cell
+
+
+def test_validation_with_large_counts_is_printed_whole() -> None:
+    text = render_validation([_validation(60, 20, 40, 880, dated=50)], 5)
+    assert "ckd: tp 60, fp 20, fn 40, tn 880" in text
+    assert "sensitivity  0.600" in text
+    assert "ppv          0.750" in text
+    assert "(n 50)" in text

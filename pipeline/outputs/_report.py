@@ -1,8 +1,8 @@
 """The study report: summary tables with small-cell suppression, as CSV and one HTML file.
 
 ``write_report`` reads a build's output folder and writes ``report.html`` and ``summary/*.csv``.
-Every count in them passes through :func:`pipeline.stats.suppress_counts` (see
-:mod:`._report_tables` for how tables that share counts are kept consistent). The raw build
+Every count in them is suppressed as one linked system by :func:`pipeline.stats.protect_cells`
+(see :mod:`._report_tables` for the cells and relations of the report). The raw build
 files next to them (``cohort.parquet`` and the build logs) are the unsuppressed record.
 
 The report is written even when the study and definition files named in the manifest are gone
@@ -204,7 +204,7 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
     dependence = dependence_block(cohort, outcomes)
     quality_parts = quality_blocks(quality)
     blocks = [flow, *(b for _, *pair in t1.values() for b in pair), incidence, combos, dependence]
-    hidden = hidden_keys([*blocks, *quality_parts], t)
+    hidden = hidden_keys([*blocks, *quality_parts], t, cohort, outcomes)
     no_means = differenced_means((long for long, *_ in t1.values()), t)
     summaries = {
         "flow": masked(flow, hidden, t),

@@ -1,15 +1,27 @@
 """Summary tables of the study report, and the small-cell suppression shared by all of them.
 
-Why a fixpoint over several tables: the same count often appears in more than one table (the
-cohort size in the flow and in Table 1, the events of an outcome in the incidence table and as
-a Table 1 column). Hiding a count in one table is useless if another table shows it, or lets it
-be worked out. So every displayed count has a *key* naming the quantity it is; each table is
-suppressed by :func:`pipeline.stats.suppress_counts` on its own relations, with the counts
-already hidden elsewhere forced hidden (passed as 1, which makes them primary), and this repeats
-until no table hides anything new. At the fixpoint every table's relations are protected with
-the same hidden set. The cohort size and the source population are passed with a large offset
-so they are chosen as a complement only when nothing else is left: they are the numbers a
-reader needs most.
+Every released count of the report (the flow, Table 1 of each outcome, incidence,
+combinations, dependence and the quality log) is one cell of a single system, suppressed
+together by :func:`pipeline.stats.protect_cells`:
+
+- Each count has a *key* naming the set it counts; a set shown in two tables (the cohort size
+  in the flow and Table 1, the events of an outcome in the incidence table and as a Table 1
+  column) has one key, so it is hidden everywhere or nowhere.
+- Relations within tables: parts add up to their row total (flow, incidence, dependence, the
+  Table 1 groups); each Table 1 variable's rows add up to its group's size (a count of the
+  patients row); quality lines add up to the rows read of their source table (a count that is
+  not printed but taken as known).
+- Relations across tables: every count of patients of the cohort is described by whom it counts
+  (:mod:`._report_cells`) and tied to latent atoms of the cohort, which implies every identity
+  between the tables (events of X = both + first only in the dependence table + Table 1's
+  "incident X, prevalent Y" cell, combinations against incidence, and so on). Counts with the
+  same atoms share a key.
+- Complements are chosen from the detailed tables first (Table 1 by outcome, combinations,
+  dependence, quality), then Table 1's overall column and the flow, then events and group
+  sizes, and the cohort size and source population last: those are the numbers readers need.
+
+Numbers derived from counts (percentages, estimates, intervals, odds ratios) are left empty
+wherever a count they are computed from is hidden.
 
 A hidden count below the threshold is published as ``<threshold``; a larger count hidden only
 to protect a small one is published as ``*``, so no published marker misstates a count.
@@ -18,13 +30,14 @@ to protect a small one is published as ``*``, so no published marker misstates a
 from __future__ import annotations
 
 import math
-from collections.abc import Iterable, Sequence
-from dataclasses import dataclass
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 import polars as pl
 
+from pipeline.outputs._report_cells import Spec, aliases, atom_relations, cohort_atoms
 from pipeline.stats import (
     DAYS_PER_YEAR,
     OUTCOME,
@@ -37,86 +50,117 @@ from pipeline.stats import (
     kaplan_meier,
     outcome_combinations,
     pairwise_dependence,
-    suppress_counts,
+    protect_cells,
     table_one,
 )
+from pipeline.stats._disclosure import Relation
 
-_PROTECTED = frozenset({"N", "src"})
-_OFFSET = 10**12
+_PRIORITY = (  # how much readers need a count; complements come from low ranks first
+    (3, ("N", "src")),
+    (2, ("events|", "nonevents|", "atrisk|", "t1size|")),
+    (1, ("t1|", "flow|", "removed|")),
+)
+
+
+def _priority(key: str) -> int:
+    return next((rank for rank, starts in _PRIORITY if key.startswith(starts)), 0)
+
+
 _NUMERIC_STATS = ("mean", "sd", "median", "q1", "q3")
 _DERIVED_DEPENDENCE = ("odds_ratio", "or_low", "or_high", "phi", "tau_b", "frank_theta")
+_STATES = {"false": "false", "true": "true", "null": "null"}
 
 
 @dataclass(frozen=True)
 class Block:
-    """One table as suppression sees it: counts, their keys and the table's relations.
+    """One table as suppression sees it: counts, their keys, meanings and relations.
 
     Attributes:
         frame: Integer count columns, plus ``<column>#key`` string columns naming each cell.
         counts: Count columns (the parts).
         total: Column holding each row's total, if rows add up.
-        group_by: Columns splitting rows into blocks whose columns add up.
-        column_totals: Whether columns (per block) add up to a known total.
+        relations: Further identities between keys (beyond rows adding up to ``total``).
+        meanings: For counts of cohort patients, which patients (see :mod:`._report_cells`).
+        extra: Counts that are not printed but taken as known (e.g. rows read), by key.
     """
 
     frame: pl.DataFrame
     counts: tuple[str, ...]
     total: str | None = None
-    group_by: tuple[str, ...] = ()
-    column_totals: bool = False
+    relations: tuple[Relation, ...] = ()
+    meanings: Mapping[str, Spec] = field(default_factory=dict)
+    extra: Mapping[str, int] = field(default_factory=dict)
 
     @property
     def cells(self) -> tuple[str, ...]:
         """Every count column, the total included."""
         return (*self.counts, *([self.total] if self.total else []))
 
+    def values(self) -> dict[str, int]:
+        """Each key's count (a key repeated in the block has one count)."""
+        out = dict(self.extra)
+        for c in self.cells:
+            out.update(zip(self.frame[f"{c}#key"].to_list(), self.frame[c].to_list(), strict=True))
+        return out
 
-def _block_hidden(block: Block, hidden: frozenset[str], threshold: int) -> set[str]:
-    forced = block.frame.with_columns(
-        pl.when(pl.col(f"{c}#key").is_in(list(hidden)))
-        .then(1)
-        .when(pl.col(f"{c}#key").is_in(list(_PROTECTED)) & (pl.col(c) >= threshold))
-        .then(pl.col(c) + _OFFSET)
-        .otherwise(pl.col(c))
-        .cast(pl.Int64)
-        .alias(c)
-        for c in block.cells
-    )
-    out = suppress_counts(
-        forced,
-        list(block.counts),
-        threshold=threshold,
-        total_column=block.total,
-        group_by=list(block.group_by),
-        column_totals=block.column_totals,
-    )
-    found: set[str] = set()
-    for c in block.cells:
-        text = out[c].cast(pl.String).to_list()
-        keys = block.frame[f"{c}#key"].to_list()
-        original = forced[c].to_list()
-        found.update(k for k, t, v in zip(keys, text, original, strict=True) if t != str(v))
-    return found
+    def all_relations(self) -> list[Relation]:
+        """The block's relations, with each row's parts adding up to its total."""
+        out = list(self.relations)
+        if self.total:
+            keys = self.frame.select(f"{c}#key" for c in self.cells).rows()
+            out.extend(((*((k, 1) for k in row[:-1]), (row[-1], -1))) for row in keys)
+        return out
 
 
-def hidden_keys(blocks: Sequence[Block], threshold: int) -> frozenset[str]:
-    """Keys of every count to hide, consistent across all tables (see the module docstring).
+def hidden_keys(
+    blocks: Sequence[Block], threshold: int, cohort: pl.DataFrame, outcomes: Sequence[str]
+) -> frozenset[str]:
+    """Keys of every count to hide, chosen over all tables at once (see the module docstring).
 
     Args:
         blocks: Every table of the report.
         threshold: Smallest count that may be shown.
+        cohort: The analysis table the counts were taken from (for the atoms).
+        outcomes: The study's outcomes.
 
     Returns:
         The hidden keys.
     """
-    hidden: frozenset[str] = frozenset()
-    while True:
-        found = set(hidden)
-        for block in blocks:
-            found |= _block_hidden(block, hidden, threshold)
-        if found == hidden:
-            return hidden
-        hidden = frozenset(found)
+    values: dict[str, int] = {}
+    meanings: dict[str, Spec] = {}
+    relations: list[Relation] = []
+    for block in blocks:
+        values |= block.values()
+        meanings |= block.meanings
+        relations += block.all_relations()
+    prevalent = {f"prevalent_{o}" for o in outcomes}
+    variables = [v for v in baseline_variables(cohort) if v not in prevalent]
+    atoms = cohort_atoms(cohort, outcomes, variables)
+    relations += atom_relations(atoms, meanings)
+    alias = aliases(atoms, meanings)
+    latent = atoms.values()
+    merged: dict[str, int] = {}
+    for key, value in {**values, **latent}.items():
+        merged[alias.get(key, key)] = value
+    priority: dict[str, int] = {}
+    for key in values:  # a key shared by tables gets the priority of its most needed use
+        rank = _priority(key)
+        priority[alias.get(key, key)] = max(rank, priority.get(alias.get(key, key), 0))
+    unique: set[Relation] = set()
+    for relation in relations:
+        summed: dict[str, int] = {}
+        for k, c in relation:
+            summed[alias.get(k, k)] = summed.get(alias.get(k, k), 0) + c
+        if len(kept := tuple(sorted((k, c) for k, c in summed.items() if c))) > 1:
+            unique.add(kept)
+    hidden = protect_cells(
+        merged,
+        sorted(unique),
+        threshold,
+        latent=latent,
+        priority=priority,
+    )
+    return frozenset(k for k in values if alias.get(k, k) in hidden)
 
 
 def _keyed(rows: list[dict[str, Any]], schema: dict[str, Any]) -> pl.DataFrame:
@@ -143,7 +187,9 @@ def flow_block(attrition: pl.DataFrame, cohort_size: int) -> Block:
     schema = dict(attrition.schema) | {
         f"{c}#key": pl.String for c in ("patients_before", "removed", "remaining")
     }
-    return Block(_keyed(rows, schema), ("removed", "remaining"), total="patients_before")
+    frame = _keyed(rows, schema)
+    meanings: dict[str, Spec] = {"N": ()} if "N" in frame["remaining#key"] else {}
+    return Block(frame, ("removed", "remaining"), total="patients_before", meanings=meanings)
 
 
 def _group_names(by: str) -> tuple[str, ...]:
@@ -152,23 +198,31 @@ def _group_names(by: str) -> tuple[str, ...]:
 
 def _t1_key(outcome: str, variable: str, row: str, group: str) -> str:
     if variable == "patients":
-        special = ("N", f"nonevents|{outcome}", f"events|{outcome}", f"prevalent|{outcome}")
+        special = ("N", *(f"t1size|{outcome}|{state}" for state in ("false", "true", "null")))
         return dict(zip(_group_names(f"incident_{outcome}"), special, strict=True))[group]
     if group == "overall":
-        if variable.startswith("prevalent_") and row in ("true", "false"):
-            kind = "prevalent" if row == "true" else "atrisk"
-            return f"{kind}|{variable.removeprefix('prevalent_')}"
         return f"t1|{variable}|{row}"
     return f"t1|{outcome}|{variable}|{row}|{group}"
+
+
+def _t1_meaning(outcome: str, variable: str, row: str, group: str) -> Spec:
+    """Whom a Table 1 count counts: its group's incident state, and its variable's level."""
+    spec: list[tuple[str, str]] = []
+    if group != "overall":
+        spec.append((f"inc|{outcome}", group.rsplit("=", 1)[1]))
+    if variable.startswith("prevalent_"):
+        spec.append((f"prev|{variable.removeprefix('prevalent_')}", _STATES.get(row, "null")))
+    elif variable != "patients":
+        spec.append((variable, row))
+    return tuple(spec)
 
 
 def table_one_blocks(cohort: pl.DataFrame, outcome: str) -> tuple[pl.DataFrame, Block, Block]:
     """Table 1 by incident status of one outcome, and its two suppression blocks.
 
     The first block has, per variable, a row per level (``non-missing`` for numeric ones) and a
-    ``missing`` row, so each variable's rows add up to the group size. The second holds the
-    group sizes (``patients``), which add up to the cohort size; it is a block of its own
-    because with column totals a one-row block's cells would count as known totals.
+    ``missing`` row; each variable's rows add up to the group size, a count of the second
+    block (``patients``), whose groups add up to the cohort size.
 
     Returns:
         The long Table 1 from :func:`pipeline.stats.table_one`, the variables block and the
@@ -187,6 +241,7 @@ def table_one_blocks(cohort: pl.DataFrame, outcome: str) -> tuple[pl.DataFrame, 
         cells.setdefault((r["variable"], "missing"), {})[r["group"]] = r["missing"]
     schema: dict[str, Any] = {"variable": pl.String, "row": pl.String}
     schema |= dict.fromkeys(groups, pl.Int64) | {f"{g}#key": pl.String for g in groups}
+    meanings: dict[str, Spec] = {}
 
     def frame(items: Iterable[tuple[tuple[str, str], dict[str, int]]]) -> pl.DataFrame:
         rows = []
@@ -194,20 +249,29 @@ def table_one_blocks(cohort: pl.DataFrame, outcome: str) -> tuple[pl.DataFrame, 
             record: dict[str, Any] = {"variable": variable, "row": row}
             for g in groups:
                 record[g] = values.get(g, 0)
-                record[f"{g}#key"] = _t1_key(outcome, variable, row, g)
+                record[f"{g}#key"] = key = _t1_key(outcome, variable, row, g)
+                meanings[key] = _t1_meaning(outcome, variable, row, g)
             rows.append(record)
         return _keyed(rows, schema)
 
+    body = frame(cells.items())
+    sizes_frame = frame([(("patients", "all"), size)])
+    columns: list[Relation] = []
+    for part in body.partition_by("variable", maintain_order=True):
+        for g in groups:  # a variable's rows add up to its group's size
+            total = _t1_key(outcome, "patients", "all", g)
+            columns.append(((total, -1), *((k, 1) for k in part[f"{g}#key"])))
     return (
         long,
-        Block(frame(cells.items()), groups[1:], "overall", ("variable",), column_totals=True),
-        Block(frame([(("patients", "all"), size)]), groups[1:], "overall"),
+        Block(body, groups[1:], "overall", tuple(columns), meanings),
+        Block(sizes_frame, groups[1:], "overall", meanings=meanings),
     )
 
 
 def incidence_block(cohort: pl.DataFrame, outcomes: Sequence[str]) -> tuple[list[Any], Block]:
     """Cumulative incidence and rates per outcome; events and non-events add up to at-risk."""
     results, rows = [], []
+    meanings: dict[str, Spec] = {}
     for o in outcomes:
         ci, rate = cumulative_incidence(cohort, o), incidence_rate(cohort, o)
         results.append((o, ci, rate))
@@ -222,20 +286,34 @@ def incidence_block(cohort: pl.DataFrame, outcomes: Sequence[str]) -> tuple[list
                 "at_risk#key": f"atrisk|{o}",
             }
         )
+        meanings |= {
+            f"events|{o}": ((f"at|{o}", "true"), (f"inc|{o}", "true")),
+            f"nonevents|{o}": ((f"at|{o}", "true"), (f"inc|{o}", "false")),
+            f"atrisk|{o}": ((f"at|{o}", "true"),),
+        }
     schema = {
         "outcome": pl.String,
         "events": pl.Int64,
         "nonevents": pl.Int64,
         "at_risk": pl.Int64,
     } | {f"{c}#key": pl.String for c in ("events", "nonevents", "at_risk")}
-    return results, Block(_keyed(rows, schema), ("events", "nonevents"), total="at_risk")
+    frame = _keyed(rows, schema)
+    return results, Block(frame, ("events", "nonevents"), "at_risk", meanings=meanings)
 
 
 def combinations_block(cohort: pl.DataFrame, outcomes: Sequence[str]) -> Block:
-    """Patients by exact combination of incident outcomes; the rows add up to those at risk."""
+    """Patients at risk of every outcome, by exact combination of incident outcomes."""
     table = outcome_combinations(cohort, outcomes, include_none=True)
     table = table.with_columns(("comb|" + pl.col("combination")).alias("n#key"))
-    return Block(table, ("n",), column_totals=True)
+    meanings: dict[str, Spec] = {}
+    for name in table["combination"]:
+        members = set(name.split("+"))
+        meanings[f"comb|{name}"] = tuple(
+            (f"{p}|{o}", "true" if p == "at" or o in members else "false")
+            for o in outcomes
+            for p in ("at", "inc")
+        )
+    return Block(table, ("n",), meanings=meanings)
 
 
 def dependence_block(cohort: pl.DataFrame, outcomes: Sequence[str]) -> Block:
@@ -245,21 +323,36 @@ def dependence_block(cohort: pl.DataFrame, outcomes: Sequence[str]) -> Block:
     table = table.with_columns(
         ("dep|" + pair + f"|{c}").alias(f"{c}#key") for c in ("a", "b", "c", "d", "n")
     )
-    return Block(table, ("a", "b", "c", "d"), total="n")
+    meanings: dict[str, Spec] = {}
+    cells = {"a": ("true", "true"), "b": ("true", "false"), "c": ("false", "true")}
+    cells |= {"d": ("false", "false")}
+    for first, second in table.select("outcome_1", "outcome_2").iter_rows():
+        at_risk = ((f"at|{first}", "true"), (f"at|{second}", "true"))
+        meanings[f"dep|{first}|{second}|n"] = at_risk
+        for c, (x, y) in cells.items():
+            meanings[f"dep|{first}|{second}|{c}"] = (
+                *at_risk,
+                (f"inc|{first}", x),
+                (f"inc|{second}", y),
+            )
+    return Block(table, ("a", "b", "c", "d"), total="n", meanings=meanings)
 
 
 def quality_blocks(quality: pl.DataFrame) -> list[Block]:
     """Rows used and set aside, one block per source table; they add up to the rows read.
 
-    A table with a single line (all rows used) gets no column total: that line *is* the total
-    and is shown.
+    The rows read of each table are not printed, but a reader may know them, so they are a
+    count of the system (``qtotal|<table>``) that the lines add up to.
     """
     key = "q|" + pl.col("source_table") + "|" + pl.col("outcome") + "|" + pl.col("reason")
     table = quality.with_columns(pl.col("n_rows").cast(pl.Int64), key.alias("n_rows#key"))
-    return [
-        Block(part, ("n_rows",), column_totals=part.height > 1)
-        for part in table.partition_by("source_table", maintain_order=True)
-    ]
+    blocks = []
+    for part in table.partition_by("source_table", maintain_order=True):
+        total = f"qtotal|{part['source_table'][0]}"
+        relation = ((total, -1), *((k, 1) for k in part["n_rows#key"]))
+        extra = {total: int(part["n_rows"].sum())}
+        blocks.append(Block(part, ("n_rows",), relations=(relation,), extra=extra))
+    return blocks
 
 
 # --- applying the hidden set ----------------------------------------------------------------
@@ -359,7 +452,10 @@ def table_one_summary(
             "group": group,
             "n": hidden_marker(n, threshold) if n_hidden else str(n),
         }
-        block_hidden = any(h for (v, _, g), (_, h) in status.items() if v == var and g == group)
+        # a percentage of a shown count reveals its denominator, and so its group's size
+        block_hidden = status[("patients", "all", group)][1] or any(
+            h for (v, _, g), (_, h) in status.items() if v == var and g == group
+        )
         record["percent"] = (
             None if block_hidden or r.get("percent") is None else round(r["percent"], 1)
         )
@@ -414,7 +510,9 @@ def incidence_summary(
 def dependence_summary(block: Block, hidden: frozenset[str], threshold: int) -> pl.DataFrame:
     """Pairwise dependence as published; measures from a table with a hidden cell are empty."""
     out = masked(block, hidden, threshold)
-    gone = pl.any_horizontal(pl.col(c).str.starts_with("<") for c in ("a", "b", "c", "d", "n"))
+    gone = pl.any_horizontal(
+        pl.col(c).str.starts_with("<") | (pl.col(c) == "*") for c in ("a", "b", "c", "d", "n")
+    )
     return out.with_columns(
         pl.when(gone).then(None).otherwise(pl.col(c).round(3)).alias(c) for c in _DERIVED_DEPENDENCE
     ).rename({"a": "both", "b": "first_only", "c": "second_only", "d": "neither"})

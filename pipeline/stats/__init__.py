@@ -29,6 +29,7 @@ from pipeline.stats._dependence import (
     frank_theta_from_tau,
     pairwise_dependence,
 )
+from pipeline.stats._disclosure import protect_cells
 from pipeline.stats._incidence import (
     DAYS_PER_YEAR,
     CumulativeIncidence,
@@ -87,6 +88,7 @@ __all__ = [
     "outcome_combinations",
     "pairwise_dependence",
     "poisson_exact_interval",
+    "protect_cells",
     "suppress_counts",
     "table_one",
     "wilson_interval",

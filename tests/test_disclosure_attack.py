@@ -1,0 +1,253 @@
+"""An attack on the released summary tables: can a reader work out a hidden count?
+
+The attacker reads only what was written (``summary/*.csv``), knows what each table counts,
+and writes the identities between the tables from that meaning alone (this file does not use
+the suppression code's relations). Each patient of the cohort falls in one *atom*: a state per
+outcome (E incident, F at risk without the event, P prevalent, so not at risk) and, for each
+Table 1 variable, a level. Every released count is a sum of atoms; shown counts are
+equations, hidden ones unknowns. An exact integer solver (``scipy.optimize.milp``) then
+minimises and maximises each hidden count. The release passes when no hidden count is pinned
+to fewer than ``threshold`` + 1 values (``max - min >= 5``); the markers' own bounds ("<5"
+means 1 to 4) are not used, as in the suppression rule. Common practice in statistical
+disclosure control (interval/"protection level" audits), written here from memory.
+"""
+
+from __future__ import annotations
+
+import csv
+import math
+from collections.abc import Callable
+from itertools import product
+from pathlib import Path
+
+import numpy as np
+import polars as pl
+import pytest
+from scipy.optimize import Bounds, LinearConstraint, milp
+
+from pipeline._build import BuildOptions, build_study
+from pipeline.outputs._report import write_report
+
+from .conftest import DEMO_STUDY, HANDMADE
+
+THRESHOLD = 5
+MARKERS = ("<5", "*")
+State = tuple[str, ...]
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    out = tmp_path_factory.mktemp("attack_demo") / "out"
+    build_study(DEMO_STUDY, BuildOptions(out=out))
+    write_report(out)
+    return out
+
+
+@pytest.fixture(scope="module")
+def tiny(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    out = tmp_path_factory.mktemp("attack_tiny") / "out"
+    build_study(DEMO_STUDY, BuildOptions(extract=HANDMADE, out=out))
+    write_report(out)
+    return out
+
+
+def _rows(path: Path) -> list[dict[str, str]]:
+    with path.open(encoding="utf-8") as handle:
+        return list(csv.DictReader(handle))
+
+
+class Attack:
+    """The attacker's model of one output folder: atoms, released cells and equations."""
+
+    def __init__(self, folder: Path) -> None:
+        self.incidence = _rows(folder / "summary" / "incidence.csv")
+        self.outcomes = [r["outcome"] for r in self.incidence]
+        self.table_one = _rows(folder / "summary" / "table_one.csv")
+        self.levels: dict[str, set[str]] = {}
+        for r in self.table_one:
+            v = r["variable"]
+            if v == "patients" or v.startswith("prevalent_"):
+                continue
+            self.levels.setdefault(v, {"missing"}).add(r["level"] or "non-missing")
+        self.states = list(product("EFP", repeat=len(self.outcomes)))
+        self.names = [("s", s, "", "") for s in self.states]
+        for v, levels in sorted(self.levels.items()):
+            self.names += [("l", s, v, lv) for s in self.states for lv in sorted(levels)]
+        self.flow = _rows(folder / "summary" / "flow.csv")
+        self.names += [("flow", (), c, str(i)) for i in range(len(self.flow)) for c in ("b", "r")]
+        self.index = {n: i for i, n in enumerate(self.names)}
+        # (coefficients, released text, description); a cell is a sum of atoms
+        self.cells: list[tuple[dict[int, int], str, str]] = []
+        self.identities: list[dict[int, int]] = []
+        for v, levels in self.levels.items():  # each state's patients, split by a variable
+            for s in self.states:
+                eq = {self.index[("l", s, v, lv)]: 1 for lv in levels}
+                self.identities.append(eq | {self.index[("s", s, "", "")]: -1})
+        self._read_tables(folder)
+
+    def _of(self, keep: Callable[[State], bool], variable: str = "", level: str = "") -> dict:
+        if variable:
+            return {self.index[("l", s, variable, level)]: 1 for s in self.states if keep(s)}
+        return {self.index[("s", s, "", "")]: 1 for s in self.states if keep(s)}
+
+    def _state(self, outcome: str) -> int:
+        return self.outcomes.index(outcome)
+
+    def _read_tables(self, folder: Path) -> None:
+        group_state = {"false": "F", "true": "E", "null": "P"}
+        for r in self.table_one:
+            o = self._state(r["by"].removeprefix("incident_"))
+            g = r["group"].rsplit("=", 1)[-1]
+
+            def in_group(s: State, o: int = o, g: str = g) -> bool:
+                return g == "overall" or s[o] == group_state[g]
+
+            v, level = r["variable"], r["level"]
+            what = f"table_one {r['by']} {v} {level} {r['group']}"
+            if v == "patients":
+                self.cells.append((self._of(in_group), r["n"], what))
+            elif v.startswith("prevalent_"):
+                p = self._state(v.removeprefix("prevalent_"))
+                want = {"true": "P", "false": "EF"}[level]
+                self.cells.append(
+                    (self._of(lambda s, p=p, w=want, f=in_group: f(s) and s[p] in w), r["n"], what)
+                )
+                self.cells.append(
+                    (self._of(lambda s: False), r["missing"], what + " missing")
+                )  # the attacker knows prevalence is never missing: 0 patients
+            else:
+                self.cells.append((self._of(in_group, v, level or "non-missing"), r["n"], what))
+                self.cells.append(
+                    (self._of(in_group, v, "missing"), r["missing"], what + " missing")
+                )
+        for r in self.incidence:
+            o = self._state(r["outcome"])
+            self.cells.append((self._of(lambda s, o=o: s[o] in "EF"), r["at_risk"], "at_risk"))
+            self.cells.append((self._of(lambda s, o=o: s[o] == "E"), r["events"], "events"))
+        for r in _rows(folder / "summary" / "combinations.csv"):
+            members = set() if r["combination"] == "none" else set(r["combination"].split("+"))
+            wanted = tuple("E" if o in members else "F" for o in self.outcomes)
+            self.cells.append(
+                (self._of(lambda s, w=wanted: s == w), r["n"], f"combination {r['combination']}")
+            )
+        for r in _rows(folder / "summary" / "dependence.csv"):
+            i, j = self._state(r["outcome_1"]), self._state(r["outcome_2"])
+            for column, (x, y) in {
+                "n": ("EF", "EF"),
+                "both": ("E", "E"),
+                "first_only": ("E", "F"),
+                "second_only": ("F", "E"),
+                "neither": ("F", "F"),
+            }.items():
+                self.cells.append(
+                    (
+                        self._of(lambda s, i=i, j=j, x=x, y=y: s[i] in x and s[j] in y),
+                        r[column],
+                        f"dependence {r['outcome_1']} {r['outcome_2']} {column}",
+                    )
+                )
+        last = len(self.flow) - 1
+        for i, r in enumerate(self.flow):  # before = removed + remaining; remaining = next before
+            before, removed = (
+                self.index[("flow", (), "b", str(i))],
+                self.index[("flow", (), "r", str(i))],
+            )
+            self.cells.append(({before: 1}, r["patients_before"], f"flow {i} before"))
+            self.cells.append(({removed: 1}, r["removed"], f"flow {i} removed"))
+            remaining = (
+                self._of(lambda s: True)
+                if i == last
+                else {self.index[("flow", (), "b", str(i + 1))]: 1}
+            )
+            self.cells.append((remaining, r["remaining"], f"flow {i} remaining"))
+            self.identities.append({before: 1, removed: -1} | dict.fromkeys(remaining, -1))
+
+    def ranges(self) -> list[tuple[str, float, float]]:
+        """Every hidden cell's exact (min, max) given all shown cells and identities."""
+        n = len(self.names)
+        rows = [dict(eq) for eq in self.identities]
+        rhs = [0.0] * len(rows)
+        for coefficients, text, _ in self.cells:
+            if text not in MARKERS:
+                rows.append(coefficients)
+                rhs.append(float(text))
+        matrix = np.zeros((len(rows), n))
+        for r, eq in enumerate(rows):
+            for k, c in eq.items():
+                matrix[r, k] = c
+        constraints = LinearConstraint(matrix, rhs, rhs)
+        out = []
+        for coefficients, text, what in self.cells:
+            if text not in MARKERS:
+                continue
+            objective = np.zeros(n)
+            for k, c in coefficients.items():
+                objective[k] = c
+            ends = []
+            for sign in (1.0, -1.0):
+                result = milp(
+                    sign * objective,
+                    constraints=constraints,
+                    integrality=np.ones(n),
+                    bounds=Bounds(0, np.inf),
+                )
+                assert result.status in (0, 4), (what, result.message)  # 4: unbounded
+                ends.append(sign * result.fun if result.status == 0 else math.inf)
+            out.append((what, ends[0], ends[1]))
+        return out
+
+
+def _naive(folder: Path) -> Attack:
+    """The same released cells with primary suppression only: the counts 1 to 4 hidden."""
+    cohort = pl.read_parquet(folder / "cohort.parquet")
+    outcomes = [r["outcome"] for r in _rows(folder / "summary" / "incidence.csv")]
+    truth = Attack(folder)
+    states = {}
+    for s in truth.states:
+        mask = pl.lit(value=True)
+        for o, x in zip(outcomes, s, strict=True):
+            inc = pl.col(f"incident_{o}")
+            mask &= {"E": inc.fill_null(value=False), "F": inc.not_().fill_null(value=False)}.get(
+                x, inc.is_null()
+            )
+        states[s] = mask
+    levels = {}
+    for v, names in truth.levels.items():
+        for lv in names:
+            if lv == "missing":
+                levels[(v, lv)] = pl.col(v).is_null()
+            elif lv == "non-missing":
+                levels[(v, lv)] = pl.col(v).is_not_null()
+            else:
+                levels[(v, lv)] = pl.col(v).cast(pl.String) == lv
+    count: dict[int, int] = {}
+    for name, k in truth.index.items():
+        if name[0] == "s":
+            count[k] = cohort.filter(states[name[1]]).height
+        elif name[0] == "l":
+            count[k] = cohort.filter(states[name[1]] & levels[(name[2], name[3])]).height
+    for i, r in enumerate(_rows(folder / "attrition.csv")):
+        count[truth.index[("flow", (), "b", str(i))]] = int(r["patients_before"])
+        count[truth.index[("flow", (), "r", str(i))]] = int(r["removed"])
+    naive = []
+    for coefficients, _, what in truth.cells:
+        value = sum(c * count[k] for k, c in coefficients.items())
+        naive.append((coefficients, "<5" if 0 < value < THRESHOLD else str(value), what))
+    truth.cells = naive
+    return truth
+
+
+@pytest.mark.parametrize("which", ["demo", "tiny"])
+def test_no_hidden_count_can_be_narrowed_down(which: str, request: pytest.FixtureRequest) -> None:
+    attack = Attack(request.getfixturevalue(which))
+    ranges = attack.ranges()
+    assert ranges  # both cohorts have hidden counts
+    narrow = [(what, lo, hi) for what, lo, hi in ranges if hi - lo < THRESHOLD]
+    assert not narrow
+
+
+def test_the_attack_breaks_primary_suppression_alone(tiny: Path) -> None:
+    attack = _naive(tiny)
+    ranges = attack.ranges()
+    determined = [what for what, lo, hi in ranges if lo == hi]
+    assert determined, "the attack found nothing: it could not fail"
