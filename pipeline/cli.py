@@ -22,7 +22,7 @@ from rich.table import Table
 from pipeline._build import BuildOptions, build_study, plan_study, verify_output
 from pipeline._diff import diff_runs, render_diff
 from pipeline._explain import explain_patient, render_trace
-from pipeline._profile import profile_extract, write_profile
+from pipeline._profile import check_profile_folder, profile_extract, write_profile
 from pipeline.compile import Stage
 from pipeline.config import load_study
 from pipeline.config._check import check_paths, explain_condition
@@ -118,6 +118,8 @@ def build(
         for step in attrition:
             removed, remaining = step["removed"], step["remaining"]
             console.print(f"{step['step']:<24} removed {removed:>9,}  remaining {remaining:>9,}")
+    for note in result.notes:
+        console.print(f"note: {note}", markup=False, soft_wrap=True)
     console.print(f"cohort of {result.run.outputs['cohort'].num_rows:,} patients -> {result.out}")
 
 
@@ -302,6 +304,7 @@ def profile(
     debug: DebugOpt = False,
 ) -> None:
     """Summarise an extract: rows, dates, orphans, codes, measures and units."""
+    _fail_cleanly(lambda: check_profile_folder(extract, out), debug=debug)
     result = _fail_cleanly(lambda: profile_extract(extract), debug=debug)
     console = Console(highlight=False)
     table = Table(title=f"extract {extract}")
@@ -311,5 +314,5 @@ def profile(
         keys = ("rows", "first_date", "last_date", "unreadable_dates", "orphan_rows")
         table.add_row(name, *(_cell(facts.get(key)) for key in keys))
     console.print(table)
-    for path in write_profile(result, out):
+    for path in _fail_cleanly(lambda: write_profile(result, out), debug=debug):
         console.print(str(path))

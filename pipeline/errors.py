@@ -6,7 +6,9 @@ plain message and exit 2 instead of showing a traceback::
     AscertainError
     ├── ConfigError     a study or condition file is unreadable or inconsistent (file:line:col)
     ├── ExtractError    the extract is missing a table or column, or cannot be read
-    └── EngineError     the engine refused a plan or a data check failed while running it
+    ├── EngineError     the engine refused a plan or a data check failed while running it
+    └── OutputFolderError  an output folder holds files the tool did not write, or overlaps
+                        an input (the extract, the study): the command refuses, touching nothing
 """
 
 from __future__ import annotations
@@ -58,3 +60,11 @@ class ExtractError(AscertainError):
 
 class EngineError(AscertainError):
     """The engine failed to run a plan, or a data check in the plan found offending rows."""
+
+
+class OutputFolderError(AscertainError):
+    """An output folder cannot be written without touching files the tool did not write there.
+
+    Raised before any work is done: the folder holds foreign files, is a file, is or lies
+    inside an input, or holds one (see :mod:`pipeline.outputs._ownership`).
+    """
