@@ -2,6 +2,18 @@
 
 Each command parses its arguments, calls one library function and reports. Errors the user can
 fix are printed as one plain message (file:line where there is one) with exit code 2.
+
+Exit codes, the same for every command:
+
+- 0: done (``verify``: identical; ``check``: no problems).
+- 1: a negative answer, the command having run to the end: ``verify`` found a difference,
+  ``check`` found problems. ``diff``, ``explain``, ``validate`` and ``profile`` report what they
+  find and exit 0.
+- 2: refused: bad arguments (typer's usage errors too), unreadable or invalid input, an output
+  folder holding files ascertain did not write or overlapping the extract, an engine failure,
+  an operating-system error. Nothing is written and earlier outputs are untouched.
+
+A traceback (``--debug``, or a defect of the tool) is not part of the convention.
 """
 
 from __future__ import annotations
@@ -48,7 +60,9 @@ DebugOpt = Annotated[bool, typer.Option("--debug", help="Show the full traceback
 def _fail_cleanly(action: Callable[[], T], *, debug: bool) -> T:
     try:
         return action()
-    except AscertainError as err:
+    except (AscertainError, OSError) as err:
+        # OSError: a folder that cannot be created or read, a full disk. Writes are staged, so
+        # nothing was written; a traceback's exit status (1) would read as a negative answer.
         if debug:
             raise
         Console(stderr=True, highlight=False, soft_wrap=True).print(
@@ -133,6 +147,13 @@ def sql(
     debug: DebugOpt = False,
 ) -> None:
     """Print the study's plan as SQL, stage by stage, without running anything."""
+    from sqlglot.dialects.dialect import Dialect
+
+    try:
+        Dialect.get_or_raise(dialect)
+    except ValueError as err:
+        Console(stderr=True).print(f"error: --dialect: {err}", markup=False)
+        raise typer.Exit(2) from None
     plan = _fail_cleanly(lambda: plan_study(study), debug=debug)
     if stage is not None and stage not in {s.name for s in plan.stages}:
         names = ", ".join(s.name for s in plan.stages)
