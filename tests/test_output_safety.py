@@ -348,3 +348,15 @@ def test_a_negative_answer_exits_1(study_copy: Callable[[str], Path]) -> None:
     code, output = cli("check", bad)
     assert code == 1, output
     assert "horizon_dayz" in output
+
+
+def test_an_operating_system_error_exits_2(monkeypatch: pytest.MonkeyPatch) -> None:
+    import pipeline.cli as cli_module
+
+    def denied(*args: object, **kwargs: object) -> None:
+        raise PermissionError(13, "Permission denied", "out")
+
+    monkeypatch.setattr(cli_module, "build_study", denied)
+    code, output = cli("build", DEMO_STUDY, "--quiet")
+    assert code == 2
+    assert "Permission denied" in output
