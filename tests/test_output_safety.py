@@ -360,3 +360,15 @@ def test_an_operating_system_error_exits_2(monkeypatch: pytest.MonkeyPatch) -> N
     code, output = cli("build", DEMO_STUDY, "--quiet")
     assert code == 2
     assert "Permission denied" in output
+
+
+def test_a_manifest_not_written_by_ascertain_owns_nothing(tmp_path: Path) -> None:
+    out = tmp_path / "out"
+    out.mkdir()
+    (out / "manifest.json").write_text('{"outputs": {"data.csv": "x"}}')
+    (out / "data.csv").write_text("mine\n")
+    before = snapshot(out)
+    code, output = build(out)
+    assert code == 2
+    assert "data.csv" in output
+    assert snapshot(out) == before

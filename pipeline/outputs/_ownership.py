@@ -101,7 +101,8 @@ def listed_files(folder: Path, owner: Owner) -> frozenset[str]:
         entries = data.get("files")
         extra: tuple[str, ...] = ()
     else:
-        entries = data.get("outputs")
+        # A build's manifest: its outputs and the plan's hash (a user's manifest.json is foreign).
+        entries = data.get("outputs") if "plan_hash" in data else None
         extra = BUILD_COMPANIONS
     if not isinstance(entries, (list, dict)):
         return frozenset()
