@@ -5,7 +5,7 @@ from __future__ import annotations
 import datetime as dt
 import tempfile
 from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from importlib.metadata import PackageNotFoundError, version
 from pathlib import Path
 from typing import Any
@@ -31,6 +31,7 @@ from pipeline.outputs import (
     sha256_file,
     write_outputs,
 )
+from pipeline.outputs._ownership import BUILD, check_folder
 
 
 def tool_version() -> str:
@@ -82,6 +83,8 @@ class BuildResult:
     files: list[Path]
     plan: Plan
     run: RunResult
+    notes: list[str] = field(default_factory=list)
+    """Sentences for the user, e.g. that the previous cohort's report was removed."""
 
 
 def plan_study(study_file: Path) -> Plan:
@@ -97,8 +100,12 @@ def build_study(
 ) -> BuildResult:
     """Build a study's cohort and write its outputs.
 
+    The output folder must be new, empty or a previous build's (see
+    :mod:`pipeline.outputs._ownership`); it is checked before the engine starts.
+
     Raises:
-        AscertainError: Bad config, a bad extract, or an engine failure; nothing is written.
+        AscertainError: Bad config, a bad extract, an engine failure, or an output folder
+            holding files ascertain did not write (OutputFolderError); nothing is written.
     """
     options = options or BuildOptions()
     loaded: LoadedStudy = load_study(study_file)
@@ -107,9 +114,13 @@ def build_study(
     extract = (options.extract or study.extract).resolve()
     out = (options.out or study.output.folder).resolve()
     tables = discover_extract(extract, plan.sources)
+    extract_files = extract_inputs(extract, (f for t in tables.values() for f in t.files))
+    # Before the engine starts, so a refused build costs nothing and touches nothing.
+    check_folder(
+        out, BUILD, inputs=[("extract", extract), *(("extract file", f) for f in extract_files)]
+    )
     threads = options.threads or study.engine.threads
     engine = make_engine(options, threads, options.memory_limit or study.engine.memory_limit)
-    extract_files = extract_inputs(extract, (f for t in tables.values() for f in t.files))
     with ThreadPoolExecutor(max_workers=1) as hasher:
         # Hashing the extract overlaps with the engine's work instead of adding to it.
         hashed_extract = hasher.submit(describe_files, extract_files, extract_root(extract))
@@ -156,7 +167,7 @@ def build_study(
             for s in run.stages
         ],
     }
-    files = write_outputs(
+    written = write_outputs(
         out,
         cohort=run.outputs["cohort"],
         population=run.outputs["population"],
@@ -166,7 +177,7 @@ def build_study(
         manifest=manifest,
         run_info=run_info,
     )
-    return BuildResult(out, files, plan, run)
+    return BuildResult(out, written.files, plan, run, written.notes)
 
 
 def locate_first_rows(

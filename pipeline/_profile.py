@@ -20,6 +20,7 @@ from pipeline.engine import DuckDBEngine
 from pipeline.engine._profile import profile_tables
 from pipeline.errors import AscertainError, ExtractError
 from pipeline.extract import discover_extract
+from pipeline.outputs._ownership import PROFILE, check_folder, install, staging
 
 ALL_TABLES = (PATIENTS, ENCOUNTERS, DIAGNOSES, PRESCRIPTIONS, MEASUREMENTS)
 PATIENT_LEVEL = (
@@ -138,11 +139,28 @@ def render_profile_html(profile: dict[str, Any]) -> str:
     return "\n".join(parts) + "\n"
 
 
+def check_profile_folder(extract: Path, out: Path) -> None:
+    """Refuse, before any work, an ``out`` that is not new, empty or a previous profile's.
+
+    Raises:
+        OutputFolderError: ``out`` holds foreign files or overlaps the extract.
+    """
+    check_folder(out, PROFILE, inputs=[("extract", extract)])
+
+
 def write_profile(profile: dict[str, Any], out: Path) -> list[Path]:
-    """Write ``profile.json`` and ``profile.html`` into ``out``."""
-    out.mkdir(parents=True, exist_ok=True)
-    as_json = out / "profile.json"
-    as_json.write_text(json.dumps(profile, indent=2, sort_keys=True, default=str) + "\n", "utf-8")
-    page = out / "profile.html"
-    page.write_text(render_profile_html(profile), encoding="utf-8")
-    return [as_json, page]
+    """Write ``profile.json`` and ``profile.html`` into ``out``, listed in its record.
+
+    ``out`` must be new, empty or a previous profile's folder; only the files a previous
+    profile wrote there are replaced (see :mod:`pipeline.outputs._ownership`).
+
+    Raises:
+        OutputFolderError: ``out`` holds files ascertain did not write there.
+    """
+    names = ["profile.json", "profile.html"]
+    with staging(out) as staged:
+        text = json.dumps(profile, indent=2, sort_keys=True, default=str) + "\n"
+        (staged / "profile.json").write_text(text, "utf-8")
+        (staged / "profile.html").write_text(render_profile_html(profile), encoding="utf-8")
+        install(staged, out, PROFILE, names)
+    return [out / name for name in names]

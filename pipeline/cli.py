@@ -2,6 +2,18 @@
 
 Each command parses its arguments, calls one library function and reports. Errors the user can
 fix are printed as one plain message (file:line where there is one) with exit code 2.
+
+Exit codes, the same for every command:
+
+- 0: done (``verify``: identical; ``check``: no problems).
+- 1: a negative answer, the command having run to the end: ``verify`` found a difference,
+  ``check`` found problems. ``diff``, ``explain``, ``validate`` and ``profile`` report what they
+  find and exit 0.
+- 2: refused: bad arguments (typer's usage errors too), unreadable or invalid input, an output
+  folder holding files ascertain did not write or overlapping the extract, an engine failure,
+  an operating-system error. Nothing is written and earlier outputs are untouched.
+
+A traceback (``--debug``, or a defect of the tool) is not part of the convention.
 """
 
 from __future__ import annotations
@@ -22,7 +34,7 @@ from rich.table import Table
 from pipeline._build import BuildOptions, build_study, plan_study, verify_output
 from pipeline._diff import diff_runs, render_diff
 from pipeline._explain import explain_patient, render_trace
-from pipeline._profile import profile_extract, write_profile
+from pipeline._profile import check_profile_folder, profile_extract, write_profile
 from pipeline.compile import Stage
 from pipeline.config import load_study
 from pipeline.config._check import check_paths, explain_condition
@@ -48,7 +60,9 @@ DebugOpt = Annotated[bool, typer.Option("--debug", help="Show the full traceback
 def _fail_cleanly(action: Callable[[], T], *, debug: bool) -> T:
     try:
         return action()
-    except AscertainError as err:
+    except (AscertainError, OSError) as err:
+        # OSError: a folder that cannot be created or read, a full disk. Writes are staged, so
+        # nothing was written; a traceback's exit status (1) would read as a negative answer.
         if debug:
             raise
         Console(stderr=True, highlight=False, soft_wrap=True).print(
@@ -118,6 +132,8 @@ def build(
         for step in attrition:
             removed, remaining = step["removed"], step["remaining"]
             console.print(f"{step['step']:<24} removed {removed:>9,}  remaining {remaining:>9,}")
+    for note in result.notes:
+        console.print(f"note: {note}", markup=False, soft_wrap=True)
     console.print(f"cohort of {result.run.outputs['cohort'].num_rows:,} patients -> {result.out}")
 
 
@@ -131,6 +147,13 @@ def sql(
     debug: DebugOpt = False,
 ) -> None:
     """Print the study's plan as SQL, stage by stage, without running anything."""
+    from sqlglot.dialects.dialect import Dialect
+
+    try:
+        Dialect.get_or_raise(dialect)
+    except ValueError as err:
+        Console(stderr=True).print(f"error: --dialect: {err}", markup=False)
+        raise typer.Exit(2) from None
     plan = _fail_cleanly(lambda: plan_study(study), debug=debug)
     if stage is not None and stage not in {s.name for s in plan.stages}:
         names = ", ".join(s.name for s in plan.stages)
@@ -320,6 +343,7 @@ def profile(
     debug: DebugOpt = False,
 ) -> None:
     """Summarise an extract: rows, dates, orphans, codes, measures and units (patient-level)."""
+    _fail_cleanly(lambda: check_profile_folder(extract, out), debug=debug)
     result = _fail_cleanly(lambda: profile_extract(extract, threshold=threshold), debug=debug)
     console = Console(highlight=False)
     table = Table(title=f"extract {extract}")
@@ -330,5 +354,5 @@ def profile(
         table.add_row(name, *(_cell(facts.get(key)) for key in keys))
     console.print(table)
     console.print(result["release"])
-    for path in write_profile(result, out):
+    for path in _fail_cleanly(lambda: write_profile(result, out), debug=debug):
         console.print(str(path))

@@ -7,7 +7,9 @@ plain message and exit 2 instead of showing a traceback::
     ├── ConfigError     a study or condition file is unreadable or inconsistent (file:line:col)
     ├── ExtractError    the extract is missing a table or column, or cannot be read
     ├── EngineError     the engine refused a plan or a data check failed while running it
-    └── UnusableBuildError  the build ran but its result would mislead (misread data, no cohort)
+    ├── UnusableBuildError  the build ran but its result would mislead (misread data, no cohort)
+    └── OutputFolderError  an output folder holds files the tool did not write, or overlaps
+                        an input (the extract, the study): the command refuses, touching nothing
 """
 
 from __future__ import annotations
@@ -66,4 +68,12 @@ class UnusableBuildError(AscertainError):
 
     Raised when more than the study's share of a table's rows is set aside for a reason that
     means the extract was misread, or when the cohort is empty and the study does not allow it.
+    """
+
+
+class OutputFolderError(AscertainError):
+    """An output folder cannot be written without touching files the tool did not write there.
+
+    Raised before any work is done: the folder holds foreign files, is a file, is or lies
+    inside an input, or holds one (see :mod:`pipeline.outputs._ownership`).
     """

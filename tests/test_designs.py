@@ -54,7 +54,7 @@ def built(request: pytest.FixtureRequest, tmp_path_factory: pytest.TempPathFacto
             text.replace("../../../../definitions", str(DESIGNS.parents[2] / "definitions")),
             encoding="utf-8",
         )
-    out = folder / "result"
+    out = folder.parent / "result"  # beside the extract: an output inside it is refused
     build_study(folder / study, BuildOptions(out=out))
     return DESIGNS / case, suffix, out
 

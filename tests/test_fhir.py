@@ -205,15 +205,17 @@ def test_builders_give_the_declared_columns() -> None:
 
 def test_missing_resource_types_give_empty_tables(tmp_path: Path) -> None:
     # Bulk export writes no file for a type without resources; other file-name shapes work.
-    shutil.copy(FHIR / "Patient.ndjson", tmp_path / "Patient.000.ndjson")
-    shutil.copy(FHIR / "Encounter.ndjson", tmp_path / "1.Encounter.ndjson")
-    (tmp_path / "Observation_2.ndjson").write_text("", encoding="utf-8")
+    export = tmp_path / "export"  # the output goes beside it: an output inside it is refused
+    export.mkdir()
+    shutil.copy(FHIR / "Patient.ndjson", export / "Patient.000.ndjson")
+    shutil.copy(FHIR / "Encounter.ndjson", export / "1.Encounter.ndjson")
+    (export / "Observation_2.ndjson").write_text("", encoding="utf-8")
     plan = plan_study(DEMO_STUDY)
-    tables = discover_extract(tmp_path, plan.sources)
-    assert tables["patients"].files == (tmp_path / "Patient.000.ndjson",)
+    tables = discover_extract(export, plan.sources)
+    assert tables["patients"].files == (export / "Patient.000.ndjson",)
     assert tables["encounters"].resources == ("Encounter",)
     assert tables["diagnoses"].files == ()
-    result = build_study(DEMO_STUDY, BuildOptions(extract=tmp_path, out=tmp_path / "out"))
+    result = build_study(DEMO_STUDY, BuildOptions(extract=export, out=tmp_path / "out"))
     assert result.run.outputs["cohort"].num_rows == 5
     assert "READ_JSON" in fhir_source(tables["measurements"]).sql("duckdb").upper()
 

@@ -53,7 +53,9 @@ def _cohort(folder: Path) -> pl.DataFrame:
 
 def test_generated_export_has_the_bulk_data_files(extracts: dict[str, Path]) -> None:
     names = sorted(p.name for p in extracts["fhir"].iterdir())
-    expected = sorted([f"{t}.ndjson" for t in TYPES] + ["scenario.json", "truth.parquet"])
+    expected = sorted(
+        [f"{t}.ndjson" for t in TYPES] + ["scenario.json", "truth.parquet", "ascertain-synth.json"]
+    )
     assert names == expected
     meta = json.loads((extracts["fhir"] / "scenario.json").read_text(encoding="utf-8"))
     assert meta["file_format"] == "fhir"

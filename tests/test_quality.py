@@ -25,7 +25,7 @@ def quality(tmp_path_factory: pytest.TempPathFactory) -> dict[tuple[str, str], i
     rx = {**P, "start_date": D, "atc": "C03CA01"}
     mx = {**P, "obs_date": D, "measure": "hba1c", "value": "6.0", "unit": "%"}
     extract = write_extract(
-        folder,
+        folder / "extract",  # the output goes beside it: an output inside the extract is refused
         {
             "patients": [
                 {

@@ -103,7 +103,9 @@ def _scalar(con: duckdb.DuckDBPyConnection, sql: str) -> object:
 def test_same_seed_gives_identical_bytes(extract: Path, tmp_path: Path) -> None:
     generate_extract(tmp_path / "b", patients=N, seed=11, scenario=SMALL_CHUNKS)
     first, second = _digests(extract), _digests(tmp_path / "b")
-    assert sorted(first) == sorted([f"{t}.parquet" for t in (*TABLES, "truth")] + ["scenario.json"])
+    record = "ascertain-synth.json"  # the list of files synth wrote (pipeline/outputs/_ownership)
+    expected = [f"{t}.parquet" for t in (*TABLES, "truth")] + ["scenario.json", record]
+    assert sorted(first) == sorted(expected)
     assert first == second
 
 

@@ -22,6 +22,7 @@ import polars as pl
 from pipeline.config import LoadedStudy, load_study
 from pipeline.errors import AscertainError
 from pipeline.outputs._manifest import portable_path, read_manifest, sha256_file
+from pipeline.outputs._ownership import REPORT, check_folder, install, staging
 from pipeline.outputs._report_html import assemble
 from pipeline.outputs._report_tables import (
     combinations_block,
@@ -40,6 +41,9 @@ from pipeline.outputs._report_tables import (
 )
 
 __all__ = ["DEFAULT_THRESHOLD", "write_report"]
+
+REPORT_PAGE = "report.html"
+SUMMARY = "summary"
 
 DEFAULT_THRESHOLD = 5
 """Small-cell threshold used when the study file cannot be read (the study model's default)."""
@@ -174,19 +178,26 @@ def column_labels(output_dir: Path) -> dict[str, str]:
 def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]:
     """Write ``report.html`` and the suppressed ``summary/*.csv`` tables of a build.
 
+    The files are written beside the build's and listed in ``ascertain-report.json``; a
+    later report replaces only those, and a rebuild of the folder removes them (they would
+    describe the previous cohort). A ``report.html`` or ``summary/`` file the tool did not
+    write, or any other foreign file in the folder, makes it refuse before any work.
+
     Args:
         output_dir: A folder written by ``ascertain build``.
         study_file: The study file, when it is not where the manifest's hint says (the study
             relative to the output folder; there is no hint when the two are far apart).
 
     Returns:
-        The files written, sorted.
+        The report's files (not its record), sorted.
 
     Raises:
         AscertainError: The folder has no manifest or lacks a build file.
+        OutputFolderError: The folder holds files ascertain did not write there.
     """
     output_dir = Path(output_dir)
     manifest = read_manifest(output_dir)
+    check_folder(output_dir, REPORT)
     try:
         cohort = pl.read_parquet(output_dir / "cohort.parquet")
         attrition = pl.read_csv(output_dir / "attrition.csv", infer_schema_length=0)
@@ -218,13 +229,6 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
         "combinations": masked(combos, hidden, t),
         "dependence": dependence_summary(dependence, hidden, t),
     }
-    folder = output_dir / "summary"
-    folder.mkdir(exist_ok=True)
-    written = []
-    for name, frame in sorted(summaries.items()):
-        path = folder / f"{name}.csv"
-        frame.write_csv(path, line_terminator="\n")
-        written.append(path)
     curves = {o: curve_data(cohort, o, t) for o in outcomes if f"events|{o}" not in hidden}
     html = assemble(
         study=study,
@@ -235,6 +239,11 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
         curves=curves,
         labels=column_labels(output_dir),
     )
-    report = output_dir / "report.html"
-    report.write_text(html, encoding="utf-8")
-    return sorted([report, *written])
+    names = [REPORT_PAGE, *(f"{SUMMARY}/{name}.csv" for name in sorted(summaries))]
+    with staging(output_dir) as staged:
+        (staged / SUMMARY).mkdir()
+        for name, frame in summaries.items():
+            frame.write_csv(staged / SUMMARY / f"{name}.csv", line_terminator="\n")
+        (staged / REPORT_PAGE).write_text(html, encoding="utf-8")
+        install(staged, output_dir, REPORT, names)
+    return sorted(output_dir / name for name in names)

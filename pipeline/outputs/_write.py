@@ -1,4 +1,4 @@
-"""Write a run's outputs into a folder atomically: all files appear together or none do.
+"""Write a run's outputs into a folder: complete files only, and a failed run changes nothing.
 
 Data files hold no timestamps and are written with fixed settings, so the same inputs give the
 same bytes; when and where the run happened goes to ``run.json`` only.
@@ -8,8 +8,7 @@ from __future__ import annotations
 
 import csv
 import json
-import shutil
-import tempfile
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -19,6 +18,7 @@ import pyarrow.parquet as pq
 
 from pipeline.compile import ColumnDoc
 from pipeline.outputs._manifest import MANIFEST, sha256_file
+from pipeline.outputs._ownership import BUILD, install, staging
 
 ATTRITION_COLUMNS = ("step", "description", "patients_before", "removed", "remaining")
 
@@ -102,16 +102,17 @@ def write_json(data: dict[str, Any], path: Path) -> None:
     path.write_text(json.dumps(data, indent=2, sort_keys=True, default=str) + "\n", "utf-8")
 
 
-def replace_folder(staged: Path, target: Path) -> None:
-    """Move a fully written folder into place, replacing ``target`` only at the last step."""
-    target.parent.mkdir(parents=True, exist_ok=True)
-    if target.exists():
-        retired = Path(tempfile.mkdtemp(prefix=f".{target.name}.old-", dir=target.parent))
-        target.rename(retired / target.name)
-        staged.rename(target)
-        shutil.rmtree(retired)
-    else:
-        staged.rename(target)
+@dataclass(frozen=True)
+class Written:
+    """What :func:`write_outputs` did: the files it wrote and notes for the user.
+
+    Attributes:
+        files: The paths written, in a fixed order.
+        notes: Sentences about files it removed (a report of the previous cohort).
+    """
+
+    files: list[Path]
+    notes: list[str]
 
 
 def write_outputs(
@@ -124,19 +125,21 @@ def write_outputs(
     columns: tuple[ColumnDoc, ...],
     manifest: dict[str, Any],
     run_info: dict[str, Any],
-) -> list[Path]:
+) -> Written:
     """Write the cohort, attrition log, data dictionary, manifest and run record.
 
-    Files are written to a hidden sibling folder first and moved into place together, so a
-    failed run never leaves a half-written output folder. The manifest gets the hash of every
-    data file; ``run.json`` (when and how long) is the only file that differs between runs.
+    Files are written to a hidden sibling folder first and moved in only when all are
+    complete (:func:`pipeline.outputs._ownership.install`), so a failed run leaves the previous
+    output untouched. Only files a previous build listed in its manifest are replaced or
+    removed; a report written for the previous cohort is removed, with a note saying so. The
+    manifest gets the hash of every data file; ``run.json`` (when and how long) is the only
+    file that differs between runs.
 
-    Returns:
-        The paths written, in a fixed order.
+    Raises:
+        OutputFolderError: ``target`` holds files ascertain did not write there.
     """
-    target.parent.mkdir(parents=True, exist_ok=True)
-    staged = Path(tempfile.mkdtemp(prefix=f".{target.name}.new-", dir=target.parent))
-    try:
+    names = [*DATA_FILES, MANIFEST, "run.json"]
+    with staging(target) as staged:
         write_parquet(cohort, staged / "cohort.parquet")
         write_parquet(population, staged / "population.parquet")
         write_attrition(attrition, staged / "attrition.csv")
@@ -145,11 +148,8 @@ def write_outputs(
         hashed = {name: sha256_file(staged / name) for name in DATA_FILES}
         write_json({**manifest, "outputs": hashed}, staged / MANIFEST)
         write_json(run_info, staged / "run.json")
-        replace_folder(staged, target)
-    except BaseException:
-        shutil.rmtree(staged, ignore_errors=True)
-        raise
-    return [target / name for name in (*DATA_FILES, MANIFEST, "run.json")]
+        notes = install(staged, target, BUILD, names)
+    return Written([target / name for name in names], notes)
 
 
 DATA_FILES = (

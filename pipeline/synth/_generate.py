@@ -14,8 +14,6 @@ from __future__ import annotations
 
 import json
 import os
-import shutil
-import tempfile
 from dataclasses import dataclass
 from datetime import date
 from pathlib import Path
@@ -28,6 +26,7 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
 from pipeline.errors import AscertainError
+from pipeline.outputs._ownership import SYNTH, check_folder, install, staging
 from pipeline.synth._csv import spoil_dates
 from pipeline.synth._events import (
     SYSTEMS,
@@ -373,10 +372,12 @@ def generate_extract(
     """Write a synthetic Orvane Bay extract with its ground truth to ``out_dir``.
 
     Files are written to a temporary folder beside ``out_dir`` and moved in only when all are
-    complete, so a failure never leaves a partial extract behind.
+    complete, so a failure never leaves a partial extract behind. ``out_dir`` must be new,
+    empty or a previous synthetic extract (listed in ``ascertain-synth.json``): only files a
+    previous run wrote are replaced or removed (see :mod:`pipeline.outputs._ownership`).
 
     Args:
-        out_dir: Destination folder (created if needed; our files in it are replaced).
+        out_dir: Destination folder (created if needed; a previous run's files are replaced).
         patients: Number of rows in ``patients``.
         seed: Seed of the random streams; same seed and parameters give identical bytes.
         file_format: Format of the five extract tables; ``fhir`` writes them as Parquet to
@@ -391,13 +392,13 @@ def generate_extract(
 
     Raises:
         AscertainError: An argument is out of range.
+        OutputFolderError: ``out_dir`` holds files ascertain did not write there.
     """
     sc = scenario or Scenario()
     _check_arguments(patients, file_format, start, end, sc)
     out_dir = Path(out_dir)
-    out_dir.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out_dir.name}-", dir=out_dir.parent))
-    try:
+    check_folder(out_dir, SYNTH)
+    with staging(out_dir) as tmp:
         written = "parquet" if file_format == "fhir" else file_format
         sink, orphans = _write_chunks(tmp, sc, patients, seed, written, start, end)
         tables = [sink.path(t) for t in TABLES]
@@ -416,10 +417,12 @@ def generate_extract(
         (tmp / "scenario.json").write_text(text, encoding="utf-8")
         files = sorted([*tables, sink.path("truth"), tmp / "scenario.json"], key=lambda f: f.name)
         names = [f.name for f in files]
+        # Only the extract's files go in: the FHIR export leaves its canonical tables behind.
+        final = tmp / "final"
+        final.mkdir()
         for path in files:
-            os.replace(path, out_dir / path.name)
-    finally:
-        shutil.rmtree(tmp, ignore_errors=True)
+            os.replace(path, final / path.name)
+        install(final, out_dir, SYNTH, names)
     return GenerationSummary(
         out_dir=out_dir,
         patients=patients,
