@@ -146,7 +146,22 @@ def test_a_later_set_does_not_lend_its_evidence(con):
         ("p", "c.b", date(2016, 1, 1), 1),
         ("p", "c.a", date(2016, 4, 1), 1),  # 91 days after b: met on 2016-04-01, from 2016-01-01
         ("p", "c.a", date(2015, 12, 1), 1),  # a 31 days before b: no pair with it
+        ("p", "c.b", date(2016, 4, 5), 1),  # pairs with the a of 2015-12-01 (126 days), later
     ]
-    # a of 2015-12-01 pairs with b of 2016-01-01 only if 90+ days apart: 31 < 90, so the onset
-    # is b's date, not the earlier a.
+    # a of 2015-12-01 pairs with b of 2016-01-01 only if 90+ days apart: 31 < 90. It does pair
+    # with the b of 2016-04-05, but that pair ends 4 days after the first met date: the onset
+    # is b's date of 2016-01-01, not the earlier a.
     assert sql_onsets(con, [pair], rows) == {"p": date(2016, 1, 1)}
+
+
+def test_a_rule_met_later_does_not_lend_its_evidence(con):
+    codes_30 = {"need": {"a": 2}, "distinct_days": True, "within_days": 30}
+    inhaler = {"need": {"b": 1}, "within_days": 0}
+    rows = [
+        ("p", "c.a", date(2016, 1, 1), 1),
+        ("p", "c.b", date(2016, 1, 5), 1),  # the inhaler rule is met first, on 2016-01-05
+        ("p", "c.a", date(2016, 1, 11), 1),  # the two codes meet their rule 6 days later
+    ]
+    # Only the inhaler's set ends on the first met date: the onset is 2016-01-05, not the
+    # first code of the later-met rule (2016-01-01).
+    assert sql_onsets(con, [codes_30, inhaler], rows) == {"p": date(2016, 1, 5)}
