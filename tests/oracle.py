@@ -127,9 +127,13 @@ def _qualifying_sets(events: list[tuple[str, date, int]], rule: dict, condition:
         for (name1, day1), (name2, day2) in itertools.combinations(expanded, 2):
             gap = abs((day2 - day1).days)
             within = rule.get("within_days")
-            if Counter([name1, name2]) == needed and gap >= rule["apart_at_least_days"]:
-                if within is None or gap <= within:
-                    yield [day1, day2]
+            far_enough = gap >= rule["apart_at_least_days"]
+            if (
+                Counter([name1, name2]) == needed
+                and far_enough
+                and (within is None or gap <= within)
+            ):
+                yield [day1, day2]
         return
     within = rule.get("within_days")
     positions = {

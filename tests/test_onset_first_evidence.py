@@ -95,7 +95,10 @@ def small_rules(draw: st.DrawFn) -> dict:
 
 
 @settings(max_examples=300, deadline=None)
-@given(histories=st.lists(HISTORY, min_size=1, max_size=3), rules=st.lists(small_rules(), min_size=1, max_size=2))
+@given(
+    histories=st.lists(HISTORY, min_size=1, max_size=3),
+    rules=st.lists(small_rules(), min_size=1, max_size=2),
+)
 def test_first_evidence_onset_matches_oracle(con, histories, rules):
     rows = [
         (f"p{i}", key, D0 + timedelta(days=offset), n_rows)

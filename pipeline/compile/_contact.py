@@ -147,7 +147,7 @@ def _values(text: str, study: Study) -> dict[str, object]:
 def last_contact_column(study: Study) -> exp.Expression:
     """The eligibility query's column from which loss of contact is measured."""
     if study.followup.contact == "any_activity":
-        return exp.column("last_contact", "lc")
+        return exp.column("last_contact")
     return exp.column("last_encounter")
 
 
