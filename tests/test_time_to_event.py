@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import csv
 import json
-import os
 import re
 from pathlib import Path
 
@@ -140,19 +139,33 @@ def test_column_labels_and_units_are_in_the_parquet_file(demo: Path) -> None:
     )
 
 
-def test_readme_survival_example_runs(demo: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+def test_readme_survival_examples_run(demo: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     readme = (ROOT / "README.md").read_text(encoding="utf-8")
-    code = re.search(r"<!-- survival-example -->\n```python\n(.*?)```", readme, re.S)
-    assert code is not None
-    lines = code.group(1).strip().splitlines()
-    assert len(lines) <= 5
-    # the block reads output/orvane_multimorbidity/cohort.parquet from the working folder
+    blocks = [
+        re.search(rf"<!-- {name} -->\n```python\n(.*?)```", readme, re.S)
+        for name in ("survival-example", "cox-example")
+    ]
+    assert all(blocks)
+    code = [block.group(1) for block in blocks if block]
+    assert len([line for line in code[0].splitlines() if line.strip()]) <= 5
+    # the first block reads output/orvane_multimorbidity/cohort.parquet from the working folder
     monkeypatch.chdir(demo.parent.parent)
     namespace: dict[str, object] = {}
-    exec(compile(code.group(1), "README.md", "exec"), namespace)  # the README's own block
-    km, cox, cohort = namespace["km"], namespace["cox"], namespace["cohort"]
+    for text in code:
+        exec(compile(text, "README.md", "exec"), namespace)  # the README's own blocks
+    km, cox, hf = namespace["km"], namespace["cox"], namespace["hf"]
     # the fits used every patient at risk and their events
-    assert km.event_observed.sum() == (cohort["event_heart_failure"] == 1).sum() > 0
-    assert len(km.durations) == len(cohort)
+    events = int((hf["event_heart_failure"] == 1).sum())
+    assert events > 0
+    assert km.event_observed.sum() == events
+    assert (
+        len(km.durations)
+        == len(hf)
+        == int(
+            pl.read_parquet("output/orvane_multimorbidity/cohort.parquet")[
+                "at_risk_heart_failure"
+            ].sum()
+        )
+    )
     assert cox.params.shape == (1,)
-    assert os.path.exists("output/orvane_multimorbidity/cohort.parquet")
+    assert hf["time_heart_failure"].notna().all()
