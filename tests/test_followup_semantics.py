@@ -10,14 +10,17 @@
 from __future__ import annotations
 
 import csv
+import shutil
 from pathlib import Path
 
 import polars as pl
 import pytest
 
 from pipeline._build import BuildOptions, build_study
-from pipeline.errors import EngineError
+from pipeline.config import load_study
+from pipeline.errors import ConfigError, EngineError
 
+from .conftest import DEMO_STUDY
 from .helpers import write_extract
 
 # Our own definition for these tests (not a shipped one, which may change): two codes of E11
@@ -246,3 +249,41 @@ def test_clear_before_counts_for_the_at_risk_of_any_outcome_step(tmp_path: Path)
         clear="  clear_before: {diabetes: 365}",
     )
     assert _attrition(out) == [("source_population", 0, 3), ("at_risk_any_outcome", 1, 2)]
+
+
+def _problems(tmp_path: Path, replace: tuple[str, str]) -> tuple[str, list[str]]:
+    text = DEMO_STUDY.read_text(encoding="utf-8").replace(*replace)
+    folder = tmp_path / "studies"
+    folder.mkdir()
+    shutil.copytree(DEMO_STUDY.parent.parent / "conditions", tmp_path / "conditions")
+    path = folder / "study.yaml"
+    path.write_text(text, encoding="utf-8")
+    with pytest.raises(ConfigError) as caught:
+        load_study(path)
+    return text, [str(p) for p in caught.value.problems]
+
+
+def test_clear_before_must_name_an_outcome(tmp_path: Path) -> None:
+    text, problems = _problems(
+        tmp_path, ("  lookback: all\n", "  lookback: all\n  clear_before: {hypertension: 365}\n")
+    )
+    line = next(i for i, t in enumerate(text.splitlines(), 1) if t.startswith("outcomes:"))
+    (problem,) = problems
+    assert f"study.yaml:{line}:1 [bad-value] outcomes:" in problem
+    assert problem.endswith("clear_before names non-outcomes: hypertension")
+
+
+def test_contact_must_be_a_known_kind(tmp_path: Path) -> None:
+    text, problems = _problems(
+        tmp_path, ("  incomplete: censor\n", "  incomplete: censor\n  contact: phone_calls\n")
+    )
+    line = next(i for i, t in enumerate(text.splitlines(), 1) if "phone_calls" in t)
+    (problem,) = problems
+    assert f"study.yaml:{line}:" in problem
+    assert "followup.contact" in problem
+
+
+def test_one_contact_window_per_study(tmp_path: Path) -> None:
+    step = "  - in_contact_at_index: {window: [-365, 0]}\n"
+    _, problems = _problems(tmp_path, ("  - sex: [F, M]\n", f"{step}{step}  - sex: [F, M]\n"))
+    assert any("in_contact_at_index is given twice" in p for p in problems), problems

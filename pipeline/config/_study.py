@@ -424,6 +424,12 @@ class Study(Model):
         return self
 
     @model_validator(mode="after")
+    def _one_contact_step(self) -> Self:
+        if sum(c.in_contact_at_index is not None for c in self.eligibility) > 1:
+            raise ValueError("in_contact_at_index is given twice; one contact window per study")
+        return self
+
+    @model_validator(mode="after")
     def _index_within_data(self) -> Self:
         if self.index.possible[1] > self.end_of_data:
             raise ValueError("the index window ends after end_of_data")
