@@ -147,3 +147,52 @@ def rule_onset_by_sets(
         if best is None or max(days) < best:
             best = max(days)
     return best
+
+
+def _qualifying_sets(events: list[tuple[str, date, int]], rule: dict, condition: str):
+    """Every set of events that meets ``rule``, as the list of its dates (tiny inputs only)."""
+    expanded = _expand(events, rule, condition)
+    if rule.get("apart_at_least_days") is not None:
+        needed = Counter(rule["need"])
+        for (name1, day1), (name2, day2) in itertools.combinations(expanded, 2):
+            gap = abs((day2 - day1).days)
+            within = rule.get("within_days")
+            far_enough = gap >= rule["apart_at_least_days"]
+            if (
+                Counter([name1, name2]) == needed
+                and far_enough
+                and (within is None or gap <= within)
+            ):
+                yield [day1, day2]
+        return
+    within = rule.get("within_days")
+    positions = {
+        name: [i for i, (n, _) in enumerate(expanded) if n == name] for name in rule["need"]
+    }
+    choices = [itertools.combinations(positions[name], k) for name, k in rule["need"].items()]
+    for picked in itertools.product(*choices):
+        chosen = [expanded[i] for group in picked for i in group]
+        days = [day for _, day in chosen]
+        if rule.get("distinct_days", False) and any(
+            len({day for n, day in chosen if n == name}) < k for name, k in rule["need"].items()
+        ):
+            continue
+        if within is not None and (max(days) - min(days)).days > within:
+            continue
+        yield days
+
+
+def first_evidence_onset(
+    events: list[tuple[str, date, int]], rules: list[dict], condition: str
+) -> date | None:
+    """``onset: first_evidence`` by its definition, enumerating sets (tiny inputs only).
+
+    The condition is first met on the earliest date ``T`` that some rule's qualifying set ends
+    on; the onset is the earliest date of any event in any qualifying set (of any rule) whose
+    latest date is ``T``.
+    """
+    sets = [days for rule in rules for days in _qualifying_sets(events, rule, condition)]
+    if not sets:
+        return None
+    first_met = min(max(days) for days in sets)
+    return min(min(days) for days in sets if max(days) == first_met)

@@ -22,7 +22,7 @@ from pipeline.compile._context import (
 from pipeline.compile._measurements import measure_relations
 from pipeline.compile._plan import Stage
 from pipeline.compile._sql import days_between, in_window, is_in, near_index
-from pipeline.config import Covariate, Evidence, Window
+from pipeline.config import Condition, Covariate, Evidence, Window
 from pipeline.measures import DERIVED_FROM
 
 OFFSET = "e_offset"  # event date minus index date, in days
@@ -49,7 +49,7 @@ def _encounter_types(evidence: Evidence) -> tuple[str, ...] | None:
 def window_columns(ctx: CompileContext) -> list[tuple[str, exp.Expression, tuple[str, ...]]]:
     """(column, aggregate, evidence keys) for counts read from ``evidence_events``."""
     columns: list[tuple[str, exp.Expression, tuple[str, ...]]] = []
-    for i, criterion in enumerate(ctx.study.eligibility, start=1):
+    for i, criterion in enumerate(ctx.eligibility, start=1):
         rule = criterion.no_evidence
         if rule is not None and _encounter_types(rule.evidence) is None:
             key = step_key(i)
@@ -62,6 +62,18 @@ def window_columns(ctx: CompileContext) -> list[tuple[str, exp.Expression, tuple
         for category in CHARLSON_CATEGORIES:
             key = charlson_key(category.name)
             columns.append((f"charlson_{category.name}", _count(key, (None, 0)), (key,)))
+    for outcome in ctx.outcomes:
+        days = ctx.study.outcomes.clear_before_for(outcome.condition)
+        if days is not None:
+            keys = clear_keys(outcome)
+            hit = exp.and_(
+                exp.column("evidence", "e").isin(*(evidence_id(k) for k in keys)),
+                in_window((-days, 0), exp.column(OFFSET)),
+            )
+            count = exp.Sum(
+                this=exp.Case().when(hit, exp.column("n_rows", "e")).else_(exp.Literal.number(0))
+            )
+            columns.append((f"clear_evidence_{outcome.condition}", count, keys))
     for name in ctx.first_evidence_of:
         condition = ctx.catalog.get(name)
         keys = tuple(
@@ -82,6 +94,20 @@ def window_columns(ctx: CompileContext) -> list[tuple[str, exp.Expression, tuple
     return columns
 
 
+def clear_keys(condition: Condition) -> tuple[str, ...]:
+    """The evidence whose presence before index clears a patient from being at risk.
+
+    Every evidence some rule of the condition needs, read from the extract (not ``absent``
+    evidence, which speaks against the condition, nor another condition's onset).
+    """
+    needed = {name for rule in condition.rules for name in rule.need}
+    return tuple(
+        evidence_key(condition.condition, name)
+        for name, ev in sorted(condition.evidence.items())
+        if name in needed and ev.condition is None
+    )
+
+
 def encounter_columns(ctx: CompileContext) -> list[tuple[str, Window, tuple[str, ...]]]:
     """(column, window, types) for counts of encounters, read straight from the encounters.
 
@@ -89,7 +115,7 @@ def encounter_columns(ctx: CompileContext) -> list[tuple[str, Window, tuple[str,
     it; counting them here touches only the encounters inside the windows.
     """
     columns: list[tuple[str, Window, tuple[str, ...]]] = []
-    for i, criterion in enumerate(ctx.study.eligibility, start=1):
+    for i, criterion in enumerate(ctx.eligibility, start=1):
         if criterion.encounters is not None:
             columns.append((f"step_evidence_{i}", criterion.encounters.window, ()))
         if criterion.no_evidence is not None:

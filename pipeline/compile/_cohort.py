@@ -15,8 +15,17 @@ from pipeline.compile._baseline import (
     measure_covariates_stage,
     window_counts_stage,
 )
+from pipeline.compile._contact import (
+    DEFAULT_STEP_TEXT,
+    contact_stages,
+    eligibility_with_default,
+    in_contact_predicate,
+    last_contact_column,
+    negative_followup_check,
+)
 from pipeline.compile._context import CompileContext
 from pipeline.compile._index import index_description, index_stage
+from pipeline.compile._outcomes import at_risk, cleared_outcomes, outcome_columns
 from pipeline.compile._plan import Stage
 from pipeline.compile._rules import lookback_stages
 from pipeline.compile._sql import add_days, age_in_years, days_between, expression, value
@@ -108,9 +117,11 @@ def _step(ctx: CompileContext, number: int, criterion: Criterion) -> tuple[exp.E
             column(f"step_evidence_{number}").eq(0),
             f"none of the listed evidence {_window_text(criterion.no_evidence.window)}",
         )
+    if criterion.in_contact_at_index is not None:
+        return in_contact_predicate(criterion)
     names = [c.condition for c in ctx.outcomes]
     return (
-        exp.not_(exp.and_(*(column(f"prevalent_{n}") for n in names))),
+        exp.or_(*(at_risk(ctx, n) for n in names)),
         f"at risk of at least one outcome (not prevalent for all of {', '.join(names)})",
     )
 
@@ -142,7 +153,7 @@ def _followup_candidates(ctx: CompileContext) -> dict[str, exp.Expression]:
     }
     if study.followup.lost_contact_after_days is not None:
         candidates["lost_contact"] = add_days(
-            exp.column("last_encounter"), study.followup.lost_contact_after_days
+            last_contact_column(study), study.followup.lost_contact_after_days
         )
     return {reason: candidates[reason] for reason in study.followup.end_at}
 
@@ -187,9 +198,10 @@ def _eligibility_query(ctx: CompileContext, steps: list[exp.Expression]) -> exp.
     has_windows = window_counts_stage(ctx) is not None
     window_columns = [
         f"step_evidence_{i}"
-        for i, c in enumerate(ctx.study.eligibility, 1)
+        for i, c in enumerate(ctx.eligibility, 1)
         if c.encounters or c.no_evidence
     ]
+    cleared = cleared_outcomes(ctx)
     base = (
         exp.select(
             exp.column("patient_id", "i"),
@@ -207,6 +219,13 @@ def _eligibility_query(ctx: CompileContext, steps: list[exp.Expression]) -> exp.
             ),
             *(_onset_column(c, lookback) for c in ctx.flagged),
             *(exp.column(c, "w") for c in window_columns),
+            *(
+                exp.func("COALESCE", exp.column(f"clear_evidence_{n}", "w"), 0).as_(
+                    f"clear_evidence_{n}"
+                )
+                for n in cleared
+            ),
+            *_contact_columns(ctx),
         )
         .from_("index_dates AS i")
         .join("patient_base AS p", on="p.patient_id = i.patient_id")
@@ -222,6 +241,12 @@ def _eligibility_query(ctx: CompileContext, steps: list[exp.Expression]) -> exp.
         )
     if has_windows:
         base = base.join("window_counts AS w", on="w.patient_id = i.patient_id", join_type="left")
+    if ctx.study.followup.contact == "any_activity":
+        base = base.join("last_contact AS lc", on="lc.patient_id = i.patient_id", join_type="left")
+    if _has_contact_step(ctx):
+        base = base.join(
+            "contact_at_index AS ci", on="ci.patient_id = i.patient_id", join_type="left"
+        )
     with_prevalence = exp.select(
         exp.Star(), *(_prevalent(n).as_(f"prevalent_{n}") for n in names)
     ).from_(base.subquery("b"))
@@ -234,11 +259,25 @@ def _eligibility_query(ctx: CompileContext, steps: list[exp.Expression]) -> exp.
         *_BASE_COLUMNS,
         *onset_columns,
         *(f"prevalent_{n}" for n in names),
+        *(f"clear_evidence_{n}" for n in cleared),
         "horizon_end",
         "followup_end",
         "end_reason",
         *flags,
     ).from_(with_followup.subquery("f"))
+
+
+def _has_contact_step(ctx: CompileContext) -> bool:
+    return any(c.in_contact_at_index is not None for c in ctx.eligibility)
+
+
+def _contact_columns(ctx: CompileContext) -> list[exp.Expression]:
+    columns: list[exp.Expression] = []
+    if ctx.study.followup.contact == "any_activity":
+        columns.append(exp.column("last_contact", "lc"))
+    if _has_contact_step(ctx):
+        columns.append(exp.column("last_contact_by_index", "ci"))
+    return columns
 
 
 def _complete_followup() -> tuple[exp.Expression, str]:
@@ -254,18 +293,25 @@ def _complete_followup() -> tuple[exp.Expression, str]:
 def cohort_stages(ctx: CompileContext) -> tuple[Stage, ...]:
     """Index, baseline windows, eligibility flags, the attrition log and the analysis table."""
     study = ctx.study
-    steps = [_step(ctx, i, c) for i, c in enumerate(study.eligibility, start=1)]
-    names = [_step_name(c) for c in study.eligibility]
+    steps = [_step(ctx, i, c) for i, c in enumerate(ctx.eligibility, start=1)]
+    names = [_step_name(c) for c in ctx.eligibility]
+    if eligibility_with_default(study)[1]:
+        predicate, text = steps[0]
+        steps[0] = (predicate, f"{text} ({DEFAULT_STEP_TEXT})")
     if study.followup.incomplete == "exclude":
         steps.append(_complete_followup())
         names.append("complete_followup")
-    stages = [index_stage(ctx), *lookback_stages(ctx)]
+    present = {"coded_events"} if ctx.uses_coded_events else set()
+    present |= {"src_measurements"} if ctx.measures else set()
+    contact = contact_stages(study, ctx.eligibility, tuple(sorted(present)))
+    stages = [index_stage(ctx), *lookback_stages(ctx), *contact]
     optional = [window_counts_stage(ctx), measure_covariates_stage(ctx)]
     stages += [stage for stage in optional if stage is not None]
     depends = ["index_dates", "patient_base", "encounter_summary", "condition_onsets"]
     depends += [f"onset_{n}_lookback" for n in _lookback_outcomes(ctx)]
     if optional[0] is not None:
         depends.append("window_counts")
+    depends += [s.name for s in contact if s.name in ("last_contact", "contact_at_index")]
     stages.append(
         Stage(
             "eligibility",
@@ -316,6 +362,7 @@ def cohort_stages(ctx: CompileContext) -> tuple[Stage, ...]:
             "the analysis table: one row per eligible patient",
         )
     )
+    stages.append(negative_followup_check())
     return tuple(stages)
 
 
@@ -369,30 +416,6 @@ def _attrition_query(steps: list[tuple[str, str]], *, index_text: str) -> exp.Qu
     return typed.with_("totals", as_=totals)
 
 
-def _outcome_columns(name: str) -> list[exp.Expression]:
-    onset = exp.column(f"onset_{name}", "f")
-    prevalent = exp.column(f"prevalent_{name}", "f")
-    index = exp.column("index_date", "f")
-    incident = exp.func(
-        "COALESCE",
-        exp.and_(onset > index, onset <= exp.column("followup_end", "f")),
-        exp.false(),
-    )
-    return [
-        prevalent.as_(f"prevalent_{name}"),
-        exp.not_(prevalent.copy()).as_(f"at_risk_{name}"),
-        exp.Case().when(prevalent.copy(), exp.null()).else_(incident).as_(f"incident_{name}"),
-        onset.copy().as_(f"onset_{name}"),
-        exp.cast(
-            exp.Case().when(
-                exp.and_(exp.not_(prevalent.copy()), incident.copy()),
-                days_between(index.copy(), onset.copy()),
-            ),
-            "INT",
-        ).as_(f"days_to_{name}"),
-    ]
-
-
 def _cohort_query(
     ctx: CompileContext, n_steps: int, *, has_windows: bool, has_measures: bool
 ) -> exp.Query:
@@ -403,7 +426,14 @@ def _cohort_query(
         exp.cast(column("age_at_index", "f"), "INT").as_("age_at_index"),
         column("sex", "f"),
         *(c for name, cov in ctx.study.covariates.items() for c in covariate_column(name, cov)),
-        *(c for outcome in ctx.outcomes for c in _outcome_columns(outcome.condition)),
+        *(
+            c
+            for outcome in ctx.outcomes
+            for c in outcome_columns(
+                outcome.condition,
+                cleared=ctx.study.outcomes.clear_before_for(outcome.condition) is not None,
+            )
+        ),
         column("followup_end", "f"),
         exp.cast(days_between(column("index_date", "f"), column("followup_end", "f")), "INT").as_(
             "followup_days"

@@ -10,9 +10,11 @@ from functools import cached_property
 from sqlglot import exp
 
 from pipeline.codes import CHARLSON_CATEGORIES
+from pipeline.compile._contact import eligibility_with_default
 from pipeline.config import (
     Catalog,
     Condition,
+    Criterion,
     DiagnosisCodes,
     DiagnosisEvidence,
     Evidence,
@@ -79,11 +81,20 @@ class CompileContext:
         return tuple(self.catalog.get(name) for name in self.study.outcomes.conditions)
 
     @cached_property
+    def eligibility(self) -> tuple[Criterion, ...]:
+        """The eligibility steps in force.
+
+        The study's, with a default in-contact step first for fixed-date studies that end
+        follow-up at loss of contact (see ``_contact``).
+        """
+        return eligibility_with_default(self.study)[0]
+
+    @cached_property
     def flagged(self) -> tuple[str, ...]:
         """Conditions whose onset the study reads: outcomes, covariates, steps, the index."""
         names = list(self.study.outcomes.conditions)
         names += [c.condition for c in self.study.covariates.values() if c.condition]
-        names += [c.not_prevalent for c in self.study.eligibility if c.not_prevalent]
+        names += [c.not_prevalent for c in self.eligibility if c.not_prevalent]
         event = self.study.index.first_event
         if event is not None and event.condition is not None:
             names.append(event.condition)
@@ -102,7 +113,7 @@ class CompileContext:
         event = self.study.index.first_event
         if event is not None and event.evidence is not None:
             found.append((INDEX_EVENT, event.evidence))
-        for i, criterion in enumerate(self.study.eligibility, start=1):
+        for i, criterion in enumerate(self.eligibility, start=1):
             # encounter-kind evidence of the study is counted from encounters directly
             no_evidence = criterion.no_evidence
             if no_evidence is not None and no_evidence.evidence.encounter is None:

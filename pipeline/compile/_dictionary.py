@@ -118,8 +118,25 @@ def _definition_source(ctx: CompileContext, condition: str) -> str:
 
 
 def _outcome_docs(ctx: CompileContext, name: str) -> list[ColumnDoc]:
-    title = ctx.catalog.get(name).title
+    condition = ctx.catalog.get(name)
+    title = condition.title
     source = _definition_source(ctx, name)
+    at_risk = f"not prevalent_{name}"
+    clear = ctx.study.outcomes.clear_before_for(name)
+    if clear is not None:
+        at_risk += (
+            f", and no evidence that a rule of {name} needs dated from {clear} days before "
+            "index to the index date (clear_before, a design choice of this study: such a "
+            "patient may be a prevalent case recorded late)"
+        )
+    onset = ""
+    if condition.onset == "first_evidence":
+        onset = (
+            "the earliest evidence of the events that first met a rule (the sets of events "
+            "whose latest date is the first date any rule is met; when several sets meet a "
+            "rule that day, the earliest evidence of all of them), "
+        )
+    at_risk_event = f"at_risk_{name} and " if clear is not None else ""
     return [
         ColumnDoc(
             f"prevalent_{name}",
@@ -134,7 +151,7 @@ def _outcome_docs(ctx: CompileContext, name: str) -> list[ColumnDoc]:
             "BOOLEAN",
             "",
             f"at risk of {title} at index",
-            f"not prevalent_{name}",
+            at_risk,
             source,
         ),
         ColumnDoc(
@@ -142,16 +159,18 @@ def _outcome_docs(ctx: CompileContext, name: str) -> list[ColumnDoc]:
             "BOOLEAN",
             "",
             f"{title} developed during follow-up",
-            f"index_date < onset_{name} <= followup_end; empty when not at risk",
+            f"{at_risk_event}index_date < onset_{name} <= followup_end; empty when not at risk",
             source,
         ),
         ColumnDoc(
             f"onset_{name}",
             "DATE",
             "",
-            f"date a rule for {title} was first met",
-            "using all evidence up to the end of data; filled also when prevalent or "
-            "after follow-up",
+            f"date a rule for {title} was first met"
+            if condition.onset == "rule_met"
+            else f"date of the first evidence of {title} that met a rule",
+            f"{onset}using all evidence up to the end of data; filled also when prevalent or after "
+            "follow-up",
             source,
         ),
         ColumnDoc(
@@ -160,6 +179,25 @@ def _outcome_docs(ctx: CompileContext, name: str) -> list[ColumnDoc]:
             "days",
             f"days from index to {title}",
             f"onset_{name} - index_date when incident, else empty",
+            source,
+        ),
+        ColumnDoc(
+            f"time_{name}",
+            "INTEGER",
+            "days",
+            f"time at risk of {title}, for survival analysis (person-years: days / 365.25)",
+            f"when incident_{name}: onset_{name} - index_date (= days_to_{name}); otherwise "
+            f"followup_end - index_date (= followup_days); empty when not at risk",
+            source,
+        ),
+        ColumnDoc(
+            f"event_{name}",
+            "INTEGER",
+            "",
+            f"how time_{name} ends: 1 {title}, 2 death first (a competing event), 0 censored",
+            f"1 when incident_{name} (an onset on the day of death counts: 1); otherwise 2 when "
+            "end_reason is death; otherwise 0 (follow-up ended for another reason); empty when "
+            "not at risk",
             source,
         ),
     ]
@@ -174,6 +212,15 @@ def dictionary(ctx: CompileContext) -> tuple[ColumnDoc, ...]:
         else f"{study.outcomes.horizon_years} years"
     )
     reasons = ", ".join(study.followup.end_at)
+    lost = ""
+    if study.followup.lost_contact_after_days is not None:
+        contact = (
+            "the last usable encounter"
+            if study.followup.contact == "encounters"
+            else "the last usable dated row of encounters, diagnoses, prescriptions or "
+            "measurements (contact: any_activity)"
+        )
+        lost = f"; lost_contact: {study.followup.lost_contact_after_days} days after {contact}"
     docs = [
         ColumnDoc(
             "patient_id",
@@ -212,7 +259,7 @@ def dictionary(ctx: CompileContext) -> tuple[ColumnDoc, ...]:
             "DATE",
             "",
             "the last day of follow-up",
-            f"earliest of: {reasons} (horizon {horizon} after index)",
+            f"earliest of: {reasons} (horizon {horizon} after index){lost}",
             "patients, encounters",
         ),
         ColumnDoc(

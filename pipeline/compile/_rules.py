@@ -47,6 +47,22 @@ WHERE :met
 GROUP BY patient_id
 """
 
+# With ``onset: first_evidence`` each met row also carries the earliest evidence of the sets it
+# completes; only the rows of the first met date count, so a later set never lends its evidence.
+_RULE_MET_FIRST_EVIDENCE = """
+SELECT
+  patient_id, :condition AS condition, :rule AS rule, MIN(event_date) AS onset_date,
+  MIN(set_start) AS first_evidence_date
+FROM (
+  SELECT patient_id, event_date, set_start,
+    MIN(event_date) OVER (PARTITION BY patient_id) AS first_met
+  FROM :counted
+  WHERE :met
+) AS met
+WHERE event_date = first_met
+GROUP BY patient_id
+"""
+
 _REFERENCED_ONSETS = """
 SELECT patient_id, :key AS evidence, onset_date AS event_date, CAST(:day AS INT) AS day,
   1 AS n_rows
@@ -60,11 +76,21 @@ GROUP BY patient_id
 """
 
 _ONSET_FIRST_EVIDENCE = """
-SELECT e.patient_id, MIN(e.event_date) AS onset_date
-FROM :events AS e
-JOIN (SELECT DISTINCT patient_id FROM :rules) AS m ON m.patient_id = e.patient_id
-GROUP BY e.patient_id
+SELECT patient_id, MIN(first_evidence_date) AS onset_date
+FROM (
+  SELECT patient_id, onset_date, first_evidence_date,
+    MIN(onset_date) OVER (PARTITION BY patient_id) AS first_met
+  FROM :rules
+) AS r
+WHERE onset_date = first_met
+GROUP BY patient_id
 """
+
+_FIRST_IN_FRAME = "MIN(event_date) OVER (PARTITION BY patient_id ORDER BY day {frame})"
+_FIRST_OF_KEY_IN_FRAME = (
+    "MIN(CASE WHEN evidence = :key THEN event_date END)"
+    " OVER (PARTITION BY patient_id ORDER BY day {frame})"
+)
 
 
 def _frame(rule: Rule) -> tuple[str, dict[str, int]]:
@@ -104,13 +130,24 @@ def _keys(condition: Condition, names: list[str] | tuple[str, ...]) -> list[exp.
     return [evidence_id(evidence_key(condition.condition, n)) for n in names]
 
 
-def rule_query(condition: Condition, rule: Rule, events: exp.Expression | None = None) -> exp.Query:
+def rule_query(
+    condition: Condition,
+    rule: Rule,
+    events: exp.Expression | None = None,
+    *,
+    first_evidence: bool = False,
+) -> exp.Query:
     """The query giving, per patient, the first date on which ``rule`` is met.
 
     Args:
         condition: The condition the rule belongs to.
         rule: The rule.
         events: The relation of evidence events to read; ``evidence_events`` by default.
+        first_evidence: Also give ``first_evidence_date``: the earliest event of any set of
+            events that meets the rule on that first date. For a window rule that is the
+            earliest needed event in the window ending that day (each of them belongs to such
+            a set: a set without an event on that day would have met the rule earlier); for a
+            two-event rule, the earliest partner that the day's events pair with.
     """
     source = events if events is not None else exp.to_table("evidence_events")
     names = sorted(rule.need)
@@ -139,6 +176,15 @@ def rule_query(condition: Condition, rule: Rule, events: exp.Expression | None =
     counted = (
         exp.select("patient_id", "evidence", "event_date", *counts).from_(source).where(relevant)
     )
+    if first_evidence:
+        counted = counted.select(_set_start(rule, keys, frame, bounds).as_("set_start"))
+        return query(
+            _RULE_MET_FIRST_EVIDENCE,
+            condition=condition.condition,
+            rule=rule.name,
+            counted=counted.subquery("counted"),
+            met=_met(rule, names, keys),
+        )
     return query(
         _RULE_MET,
         condition=condition.condition,
@@ -146,6 +192,23 @@ def rule_query(condition: Condition, rule: Rule, events: exp.Expression | None =
         counted=counted.subquery("counted"),
         met=met,
     )
+
+
+def _set_start(
+    rule: Rule, keys: list[exp.Expression], frame: str, bounds: dict[str, int]
+) -> exp.Expression:
+    """The earliest evidence of the sets a met row completes (see :func:`rule_query`)."""
+    if rule.apart_at_least_days is None:
+        # Rows are already only the needed evidence: the earliest of any of them in the window.
+        return expression(_FIRST_IN_FRAME.format(frame=frame), **bounds)
+    firsts = [
+        expression(_FIRST_OF_KEY_IN_FRAME.format(frame=frame), key=key.copy(), **bounds)
+        for key in keys
+    ]
+    if len(keys) == 1:
+        return firsts[0]
+    # A row of one evidence pairs with the other evidence in its frame.
+    return exp.Case().when(exp.column("evidence").eq(keys[0].copy()), firsts[1]).else_(firsts[0])
 
 
 def _met(rule: Rule, names: list[str], keys: list[str]) -> exp.Expression:
@@ -214,9 +277,12 @@ def condition_stages(
         suffix = "_lookback"
         events = _since_lookback(events, lookback_days)
         depends = (*depends, "index_dates")
+    first = condition.onset == "first_evidence"
     rules = Stage(
         f"rules_{name}{suffix}",
-        _union_all([rule_query(condition, r, events.copy()) for r in condition.rules]),
+        _union_all(
+            [rule_query(condition, r, events.copy(), first_evidence=first) for r in condition.rules]
+        ),
         depends,
         f"the first date each rule of {name} is met, per patient"
         + (f", from evidence since {lookback_days} days before index" if suffix else ""),
@@ -226,9 +292,12 @@ def condition_stages(
         onset_depends: tuple[str, ...] = (rules.name,)
         why = f"onset of {name}: the earliest date any of its rules is met"
     else:
-        onset_query = query(_ONSET_FIRST_EVIDENCE, rules=exp.to_table(rules.name), events=events)
-        onset_depends = (*depends, rules.name)
-        why = f"onset of {name}: its first evidence, for patients meeting a rule"
+        onset_query = query(_ONSET_FIRST_EVIDENCE, rules=exp.to_table(rules.name))
+        onset_depends = (rules.name,)
+        why = (
+            f"onset of {name}: the earliest evidence of the sets of events that first met a "
+            "rule (on the first date any rule is met)"
+        )
     return rules, Stage(f"onset_{name}{suffix}", onset_query, onset_depends, why)
 
 

@@ -235,7 +235,10 @@ def explain_condition(condition: Condition) -> str:
     onset = (
         "the date the first rule is met"
         if condition.onset == "rule_met"
-        else "the date of the first evidence, once a rule is met"
+        else (
+            "the earliest evidence of the sets of events that first met a rule (all such "
+            "sets that day)"
+        )
     )
     return (
         f"{condition.title} ({condition.condition}): a patient is a case from the earliest date "

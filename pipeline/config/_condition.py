@@ -243,7 +243,13 @@ class Provenance(Model):
 
 
 class Condition(Model):
-    """A case definition: named evidence and the rules that turn it into a case."""
+    """A case definition: named evidence and the rules that turn it into a case.
+
+    ``onset: rule_met`` (the default) dates the case on the first day a rule is met;
+    ``first_evidence`` on the earliest evidence of the sets of events that met a rule that day
+    (of every such set, when several meet one), so evidence outside those sets (an inhaler
+    years before the codes) never dates the case.
+    """
 
     condition: Name
     title: str

@@ -146,6 +146,14 @@ class EvidenceInWindow(Model):
     _plain = field_validator("evidence")(classmethod(lambda cls, v: _plain_evidence(v)))
 
 
+class ContactWindow(Model):
+    """A window relative to index in which the patient must have had a contact."""
+
+    window: Window
+
+    _window = field_validator("window")(classmethod(lambda cls, v: _check_window(v)))
+
+
 class Criterion(Model):
     """One eligibility step; exactly one key is set. Steps apply in the order written."""
 
@@ -159,6 +167,7 @@ class Criterion(Model):
     not_prevalent: Name | None = None
     no_evidence: EvidenceInWindow | None = None
     at_risk_of_any_outcome: Literal[True] | None = None
+    in_contact_at_index: ContactWindow | None = None
 
     @model_validator(mode="after")
     def _exactly_one(self) -> Self:
@@ -187,6 +196,11 @@ class Outcomes(Model):
     horizon_years: PositiveInt | None = None
     lookback: Literal["all"] | PositiveInt = "all"
     lookback_by_outcome: dict[Name, Literal["all"] | PositiveInt] = Field(default_factory=dict)
+    clear_before: dict[Name, PositiveInt] = Field(default_factory=dict)
+
+    def clear_before_for(self, outcome: str) -> int | None:
+        """Days before index in which any evidence of the outcome means not at risk, or None."""
+        return self.clear_before.get(outcome)
 
     def lookback_for(self, outcome: str) -> int | None:
         """Days of look-back for an outcome's prevalence; None means all history."""
@@ -203,9 +217,10 @@ class Outcomes(Model):
 
     @model_validator(mode="after")
     def _lookback_names_outcomes(self) -> Self:
-        unknown = sorted(set(self.lookback_by_outcome) - set(self.conditions))
-        if unknown:
-            raise ValueError(f"lookback_by_outcome names non-outcomes: {', '.join(unknown)}")
+        for key in ("lookback_by_outcome", "clear_before"):
+            unknown = sorted(set(getattr(self, key)) - set(self.conditions))
+            if unknown:
+                raise ValueError(f"{key} names non-outcomes: {', '.join(unknown)}")
         return self
 
     @model_validator(mode="after")
@@ -223,6 +238,11 @@ FollowupEnd = Literal["death", "end_of_data", "lost_contact", "deregistration", 
 class Followup(Model):
     """What ends follow-up; the order of ``end_at`` breaks ties between reasons.
 
+    ``contact`` says what counts as contact with the practice, for loss of contact and the
+    ``in_contact_at_index`` step: ``encounters`` (usable encounters only) or ``any_activity``
+    (any row of encounters, diagnoses, prescriptions or measurements with a usable date, whatever
+    its code or value: a prescription after the last encounter is still contact).
+
     ``incomplete: exclude`` removes patients whose follow-up ends before the horizon for a
     reason other than death (one more attrition line); ``censor`` keeps them.
     """
@@ -230,6 +250,7 @@ class Followup(Model):
     end_at: tuple[FollowupEnd, ...] = ("death", "end_of_data", "lost_contact", "horizon")
     lost_contact_after_days: NonNegativeInt | None = None
     incomplete: Literal["censor", "exclude"] = "censor"
+    contact: Literal["encounters", "any_activity"] = "encounters"
 
     @model_validator(mode="after")
     def _consistent(self) -> Self:
@@ -448,6 +469,12 @@ class Study(Model):
         bases = {c.charlson.codes for c in self.covariates.values() if c.charlson}
         if len(bases) > 1:
             raise ValueError("Charlson covariates of one study must use the same code systems")
+        return self
+
+    @model_validator(mode="after")
+    def _one_contact_step(self) -> Self:
+        if sum(c.in_contact_at_index is not None for c in self.eligibility) > 1:
+            raise ValueError("in_contact_at_index is given twice; one contact window per study")
         return self
 
     @model_validator(mode="after")

@@ -54,6 +54,35 @@ def write_parquet(table: pa.Table, path: Path) -> None:
     )
 
 
+COLUMN_DOCS_KEY = "ascertain.columns"
+
+
+def with_column_docs(table: pa.Table, columns: tuple[ColumnDoc, ...]) -> pa.Table:
+    """The table with each column's meaning and unit from the data dictionary in its schema.
+
+    Each field gets ``description``, ``unit`` (when it has one) and ``computed`` (read back by
+    pyarrow as ``schema.field(name).metadata``); the schema also gets one JSON object of all
+    columns under ``ascertain.columns`` (read back by ``polars.read_parquet_metadata``, which
+    does not expose field metadata), so the file describes itself without the dictionary files.
+    Columns the dictionary does not list are left as they are.
+    """
+    docs = {doc.column: doc for doc in columns}
+    fields = []
+    described: dict[str, dict[str, str]] = {}
+    for field in table.schema:
+        doc = docs.get(field.name)
+        if doc is None:
+            fields.append(field)
+            continue
+        entry = {"description": doc.meaning, "unit": doc.unit, "computed": doc.computed}
+        entry = {key: text for key, text in entry.items() if text}
+        described[field.name] = entry
+        fields.append(field.with_metadata({k.encode(): v.encode() for k, v in entry.items()}))
+    text = json.dumps(described, sort_keys=True, ensure_ascii=False)
+    schema = pa.schema(fields, metadata={COLUMN_DOCS_KEY.encode(): text.encode()})
+    return table.cast(schema)
+
+
 QUALITY_COLUMNS = ("source_table", "outcome", "reason", "n_rows", "first_file", "first_row")
 
 
@@ -140,7 +169,7 @@ def write_outputs(
     """
     names = [*DATA_FILES, MANIFEST, "run.json"]
     with staging(target) as staged:
-        write_parquet(cohort, staged / "cohort.parquet")
+        write_parquet(with_column_docs(cohort, columns), staged / "cohort.parquet")
         write_parquet(population, staged / "population.parquet")
         write_attrition(attrition, staged / "attrition.csv")
         write_csv(quality, QUALITY_COLUMNS, staged / "quality.csv")

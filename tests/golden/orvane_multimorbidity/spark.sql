@@ -1,4 +1,4 @@
--- plan for study orvane_multimorbidity (33 stages, dialect spark)
+-- plan for study orvane_multimorbidity (34 stages, dialect spark)
 
 -- reads src_patients: patient_id, sex, death_date, birth_date, birth_year, practice_id, registration_date, deregistration_date
 
@@ -2010,9 +2010,7 @@ SELECT
   COALESCE(age_at_index BETWEEN 40 AND 85, FALSE) AS step_3,
   COALESCE(DATEDIFF(DAY, first_encounter, index_date) >= 730, FALSE) AS step_4,
   COALESCE(
-    NOT (
-      prevalent_type2_diabetes AND prevalent_ckd AND prevalent_heart_failure
-    ),
+    NOT prevalent_type2_diabetes OR NOT prevalent_ckd OR NOT prevalent_heart_failure,
     FALSE
   ) AS step_5
 FROM (
@@ -2241,9 +2239,8 @@ SELECT
   f.prevalent_type2_diabetes AS prevalent_type2_diabetes,
   NOT f.prevalent_type2_diabetes AS at_risk_type2_diabetes,
   CASE
-    WHEN f.prevalent_type2_diabetes
-    THEN NULL
-    ELSE COALESCE(
+    WHEN NOT f.prevalent_type2_diabetes
+    THEN COALESCE(
       f.onset_type2_diabetes > f.index_date
       AND f.onset_type2_diabetes <= f.followup_end,
       FALSE
@@ -2259,12 +2256,35 @@ SELECT
     )
     THEN DATEDIFF(DAY, f.index_date, f.onset_type2_diabetes)
   END AS INT) AS days_to_type2_diabetes,
+  CAST(CASE
+    WHEN NOT f.prevalent_type2_diabetes
+    AND COALESCE(
+      f.onset_type2_diabetes > f.index_date
+      AND f.onset_type2_diabetes <= f.followup_end,
+      FALSE
+    )
+    THEN DATEDIFF(DAY, f.index_date, f.onset_type2_diabetes)
+    WHEN NOT f.prevalent_type2_diabetes
+    THEN DATEDIFF(DAY, f.index_date, f.followup_end)
+  END AS INT) AS time_type2_diabetes,
+  CAST(CASE
+    WHEN NOT f.prevalent_type2_diabetes
+    AND COALESCE(
+      f.onset_type2_diabetes > f.index_date
+      AND f.onset_type2_diabetes <= f.followup_end,
+      FALSE
+    )
+    THEN 1
+    WHEN NOT f.prevalent_type2_diabetes AND f.end_reason = 'death'
+    THEN 2
+    WHEN NOT f.prevalent_type2_diabetes
+    THEN 0
+  END AS INT) AS event_type2_diabetes,
   f.prevalent_ckd AS prevalent_ckd,
   NOT f.prevalent_ckd AS at_risk_ckd,
   CASE
-    WHEN f.prevalent_ckd
-    THEN NULL
-    ELSE COALESCE(f.onset_ckd > f.index_date AND f.onset_ckd <= f.followup_end, FALSE)
+    WHEN NOT f.prevalent_ckd
+    THEN COALESCE(f.onset_ckd > f.index_date AND f.onset_ckd <= f.followup_end, FALSE)
   END AS incident_ckd,
   f.onset_ckd AS onset_ckd,
   CAST(CASE
@@ -2272,12 +2292,27 @@ SELECT
     AND COALESCE(f.onset_ckd > f.index_date AND f.onset_ckd <= f.followup_end, FALSE)
     THEN DATEDIFF(DAY, f.index_date, f.onset_ckd)
   END AS INT) AS days_to_ckd,
+  CAST(CASE
+    WHEN NOT f.prevalent_ckd
+    AND COALESCE(f.onset_ckd > f.index_date AND f.onset_ckd <= f.followup_end, FALSE)
+    THEN DATEDIFF(DAY, f.index_date, f.onset_ckd)
+    WHEN NOT f.prevalent_ckd
+    THEN DATEDIFF(DAY, f.index_date, f.followup_end)
+  END AS INT) AS time_ckd,
+  CAST(CASE
+    WHEN NOT f.prevalent_ckd
+    AND COALESCE(f.onset_ckd > f.index_date AND f.onset_ckd <= f.followup_end, FALSE)
+    THEN 1
+    WHEN NOT f.prevalent_ckd AND f.end_reason = 'death'
+    THEN 2
+    WHEN NOT f.prevalent_ckd
+    THEN 0
+  END AS INT) AS event_ckd,
   f.prevalent_heart_failure AS prevalent_heart_failure,
   NOT f.prevalent_heart_failure AS at_risk_heart_failure,
   CASE
-    WHEN f.prevalent_heart_failure
-    THEN NULL
-    ELSE COALESCE(
+    WHEN NOT f.prevalent_heart_failure
+    THEN COALESCE(
       f.onset_heart_failure > f.index_date AND f.onset_heart_failure <= f.followup_end,
       FALSE
     )
@@ -2291,6 +2326,28 @@ SELECT
     )
     THEN DATEDIFF(DAY, f.index_date, f.onset_heart_failure)
   END AS INT) AS days_to_heart_failure,
+  CAST(CASE
+    WHEN NOT f.prevalent_heart_failure
+    AND COALESCE(
+      f.onset_heart_failure > f.index_date AND f.onset_heart_failure <= f.followup_end,
+      FALSE
+    )
+    THEN DATEDIFF(DAY, f.index_date, f.onset_heart_failure)
+    WHEN NOT f.prevalent_heart_failure
+    THEN DATEDIFF(DAY, f.index_date, f.followup_end)
+  END AS INT) AS time_heart_failure,
+  CAST(CASE
+    WHEN NOT f.prevalent_heart_failure
+    AND COALESCE(
+      f.onset_heart_failure > f.index_date AND f.onset_heart_failure <= f.followup_end,
+      FALSE
+    )
+    THEN 1
+    WHEN NOT f.prevalent_heart_failure AND f.end_reason = 'death'
+    THEN 2
+    WHEN NOT f.prevalent_heart_failure
+    THEN 0
+  END AS INT) AS event_heart_failure,
   f.followup_end,
   CAST(DATEDIFF(DAY, f.index_date, f.followup_end) AS INT) AS followup_days,
   f.end_reason
@@ -2301,6 +2358,20 @@ LEFT JOIN measure_covariates AS m
   ON m.patient_id = f.patient_id
 WHERE
   f.step_1 AND f.step_2 AND f.step_3 AND f.step_4 AND f.step_5;
+
+-- stage followup_not_negative [check]: no patient of the cohort may have follow-up ending before the index date
+-- reads: cohort
+SELECT
+  patient_id,
+  index_date,
+  followup_end,
+  end_reason
+FROM cohort
+WHERE
+  followup_days < 0
+ORDER BY
+  patient_id NULLS LAST
+LIMIT 5;
 
 -- stage rows_read [table]: rows read per extract table, counted on their own to check the quality log
 -- reads: src_diagnoses, src_encounters, src_measurements, src_patients, src_prescriptions
