@@ -196,15 +196,15 @@ def test_a_mapping_file_is_an_input_and_mapped_files_are_relative_to_it(tmp_path
         (
             "/data/proj/conditions/ckd.yaml",
             "/data/proj/studies",
-            "/home/x",
+            "/users/x",
             "../conditions/ckd.yaml",
         ),
-        ("/data/proj/studies/s.yaml", "/data/proj/studies", "/home/x", "s.yaml"),
-        ("/home/x/p/defs/a.yaml", "/home/x/p/out", "/home/x", "../defs/a.yaml"),
-        ("/home/x/a/s.yaml", "/home/x/b/out", "/home/x", "../../a/s.yaml"),
+        ("/data/proj/studies/s.yaml", "/data/proj/studies", "/users/x", "s.yaml"),
+        ("/users/x/p/defs/a.yaml", "/users/x/p/out", "/users/x", "../defs/a.yaml"),
+        ("/users/x/a/s.yaml", "/users/x/b/out", "/users/x", "../../a/s.yaml"),
         # The common ancestor is the root, a top folder or above the home: no path.
-        ("/home/x/s.yaml", "/srv/out", "/home/x", None),
-        ("/srv/a/s.yaml", "/srv/b/out", "/home/x", None),
+        ("/users/x/s.yaml", "/srv/out", "/users/x", None),
+        ("/srv/a/s.yaml", "/srv/b/out", "/users/x", None),
         ("/data/home/x/s.yaml", "/data/home/y/out", "/data/home/x", None),
     ],
 )

@@ -53,7 +53,7 @@ def portable_path(path: Path, base: Path) -> str | None:
 
     A relative path spells out every folder below the two paths' common ancestor. That is
     harmless when the ancestor is a project folder, but from ``/srv/out`` to
-    ``/home/someone/study.yaml`` it would name the home directory. So the path is given only
+    ``/users/someone/study.yaml`` it would name the home directory. So the path is given only
     when the common ancestor lies at least two levels below the file-system root and is not
     above the home directory; otherwise (or on different drives) ``None``.
     """
