@@ -19,6 +19,8 @@ together by :func:`pipeline.stats.protect_cells`:
 - Complements are chosen from the detailed tables first (Table 1 by outcome, combinations,
   dependence, quality), then Table 1's overall column and the flow, then events and group
   sizes, and the cohort size and source population last: those are the numbers readers need.
+  Each rank costs as much as a thousand cells of the rank below (see ``protect_cells``). The
+  rows read of a source table are known to a reader and never hidden.
 
 Numbers derived from counts (percentages, estimates, intervals, odds ratios) are left empty
 wherever a count they are computed from is hidden.
@@ -42,11 +44,14 @@ from pipeline.stats._disclosure import Relation
 _PRIORITY = (  # how much readers need a count; complements come from low ranks first
     (3, ("N", "src")),
     (2, ("events|", "nonevents|", "atrisk|", "t1size|")),
-    (1, ("t1|", "flow|", "removed|")),
+    (1, ("flow|", "removed|")),
 )
 
 
 def _priority(key: str) -> int:
+    """A key's rank: Table 1's overall column (``t1|variable|row``) ranks with the flow."""
+    if key.startswith("t1|") and key.count("|") == 2:
+        return 1
     return next((rank for rank, starts in _PRIORITY if key.startswith(starts)), 0)
 
 
@@ -108,10 +113,12 @@ def hidden_keys(
     values: dict[str, int] = {}
     meanings: dict[str, Spec] = {}
     relations: list[Relation] = []
+    known: set[str] = set()
     for block in blocks:
         values |= block.values()
         meanings |= block.meanings
         relations += block.all_relations()
+        known |= set(block.extra)
     prevalent = {f"prevalent_{o}" for o in outcomes}
     variables = [v for v in baseline_variables(cohort) if v not in prevalent]
     atoms = cohort_atoms(cohort, outcomes, variables)
@@ -137,6 +144,7 @@ def hidden_keys(
         sorted(unique),
         threshold,
         latent=latent,
+        known=known,
         priority=priority,
     )
     return frozenset(k for k in values if alias.get(k, k) in hidden)
