@@ -27,20 +27,24 @@ The rule, precisely (:func:`protect_cells`):
    on every shown cell and moving the cell by at least ``threshold``, proves it safe, and proves
    at once every other hidden cell it moves that far.
 5. **Complements by optimisation.** For a hidden cell not yet proved, an integer program looks
-   for the cheapest such second solution that may also move shown non-zero cells, moving the
-   cell up by ``threshold`` (and, for a cell of at least ``threshold``, down by it): the
-   cost of moving a shown cell by one is its weight (1000 to the power of its ``priority``,
-   times ``1 + value / (1 + value)`` so that among equals the smaller count is preferred), the
-   cells it moves are hidden. Zero cost means the cell is safe already. Otherwise the exact
-   range is computed (step 3): the cell may be safe with a range such as ``[v - 2, v + 3]``
-   that no single move of ``threshold`` reaches; if it is not, the cheaper move's cells are
-   hidden (the upward one on a tie). Hidden cells are treated in order of value, then key.
+   for the cheapest such second solution that may also move shown non-zero cells (never a
+   zero, never a known cell), moving the cell up by ``threshold`` (and, for a cell of at least
+   ``threshold``, down by it); the cells it moves are hidden. The cost of moving a shown cell
+   by one is its weight, ``1000 ** priority * (1 + value / (1 + value))``: fewest cells first,
+   a cell of one priority higher only when it saves a thousand cells, and among equals the
+   smaller count. Zero cost means the cell is safe already. Otherwise its exact range is
+   computed (step 3), since a range such as ``[v - 2, v + 3]`` is safe although no single
+   move of ``threshold`` exists; if it is too narrow, the cheaper move's cells are hidden (the
+   upward one on a tie). Hidden cells are treated in order of value, then key. A cell that no
+   move can shift even with every shown cell hidden is pinned by known cells alone (the only
+   line of a quality table whose rows read are known); it stays hidden and nothing else is.
 
 Every mixed-integer problem is solved with ``scipy.optimize.milp`` (HiGHS) on a sparse matrix
 restricted to the cell's connected part of the system; a linear relaxation
-(``scipy.optimize.linprog``) comes first wherever it settles the question: its range contains
-the integer range, so a relaxed width below ``threshold`` fails the cell without an integer
-solve, and an integral relaxed optimum is the integer optimum.
+(``scipy.optimize.linprog``) comes first: its range contains the integer range, so a
+relaxed problem without a solution has no integer one, and an integral relaxed optimum is the
+integer optimum (sums of parts usually give one). Relations are put in a canonical order, so
+the hidden set does not depend on the order the caller lists them in.
 
 What this guarantees: no hidden count can be narrowed to fewer than ``threshold`` + 1 values
 by any reasoning that uses only the released numbers, the relations given here, and the fact
@@ -48,8 +52,9 @@ that counts are non-negative integers. It assumes the reader ignores what the ma
 ("<5" means 1 to 4); intervals are judged without that bound, as the audit's criterion. It
 does not cover outside knowledge, patient-level files, or statistics other than counts (those
 derived from a hidden cell must be withheld by the caller; see ``linked`` helpers in the
-callers). The complements are a good choice, not a proven cheapest one: each cell is protected
-in turn, and an earlier choice is not revisited.
+callers), nor a cell pinned by known cells alone (step 5), which no suppression can protect.
+The complements are a good choice, not a proven cheapest one: each cell is protected in turn
+at the least cost, and an earlier choice is not revisited.
 """
 
 from __future__ import annotations
@@ -101,6 +106,7 @@ class _System:
         self.values = np.array([values[k] for k in self.keys], dtype=np.float64)
         self.threshold = threshold
         rows, cols, data = [], [], []
+        relations = sorted({tuple(sorted(relation)) for relation in relations})
         for r, relation in enumerate(relations):
             for key, coefficient in relation:
                 rows.append(r)
@@ -179,23 +185,26 @@ def _solve(
     cost: np.ndarray, matrix: sparse.csr_array, low: np.ndarray, high: np.ndarray
 ) -> np.ndarray | None:
     """Minimise ``cost @ x`` over integers with ``matrix @ x = 0`` and bounds; None if none."""
-    n = len(cost)
-    zero = np.zeros(matrix.shape[0])
-    bounds = np.column_stack([low, high])
-    relaxed = linprog(cost, A_eq=matrix, b_eq=zero, bounds=bounds)
+    rows = matrix.shape[0] > 0
+    relaxed = linprog(
+        cost,
+        A_eq=matrix if rows else None,
+        b_eq=np.zeros(matrix.shape[0]) if rows else None,
+        bounds=np.column_stack([low, high]),
+    )
     if relaxed.status == 2:  # the relaxation is infeasible, so is the integer program
         return None
     if relaxed.status == 0 and np.allclose(relaxed.x, np.round(relaxed.x), atol=_TOLERANCE):
         return np.round(relaxed.x)
     result = milp(
         cost,
-        constraints=[LinearConstraint(matrix, 0, 0)],
-        integrality=np.ones(n),
+        constraints=[LinearConstraint(matrix, 0, 0)] if rows else [],
+        integrality=np.ones(len(cost)),
         bounds=Bounds(low, high),
     )
     if result.status == 0:
         return np.round(result.x)
-    if result.status == 2 or relaxed.status == 2:
+    if result.status == 2:
         return None
     raise RuntimeError(f"disclosure: the solver failed: {result.message}")
 
@@ -206,21 +215,25 @@ def _integer_range(matrix: sparse.csr_array, rhs: np.ndarray, at: int) -> tuple[
     objective = np.zeros(n)
     objective[at] = 1.0
     ends = []
+    rows = matrix.shape[0] > 0
     for sign in (1.0, -1.0):
-        relaxed = linprog(sign * objective, A_eq=matrix, b_eq=rhs, bounds=(0, None))
+        relaxed = linprog(
+            sign * objective,
+            A_eq=matrix if rows else None,
+            b_eq=rhs if rows else None,
+            bounds=(0, None),
+        )
         if relaxed.status == 3:  # unbounded relaxation: unbounded integer program too
             ends.append(math.inf)  # (rational data, a feasible integer point: the true values)
             continue
         if relaxed.status != 0:
             raise RuntimeError(f"disclosure: the solver failed: {relaxed.message}")
-        if abs(relaxed.x[at] - round(relaxed.x[at])) < _TOLERANCE and np.allclose(
-            relaxed.x, np.round(relaxed.x), atol=_TOLERANCE
-        ):
+        if np.allclose(relaxed.x, np.round(relaxed.x), atol=_TOLERANCE):
             ends.append(round(relaxed.x[at]))
             continue
         result = milp(
             sign * objective,
-            constraints=[LinearConstraint(matrix, rhs, rhs)] if matrix.shape[0] else [],
+            constraints=[LinearConstraint(matrix, rhs, rhs)] if rows else [],
             integrality=np.ones(n),
             bounds=Bounds(0, np.inf),
         )
@@ -307,18 +320,17 @@ def _protect(system: _System, cell: int, proved: np.ndarray) -> None:
     """Prove ``cell`` safe, hiding the complements of the cheapest move if needed (steps 4-5).
 
     Marks as proved the cell and every hidden cell the chosen move shifts by at least the
-    threshold.
+    threshold. A cell that no move can shift, even with every shown cell hidden, is pinned by
+    known cells alone; hiding more cannot help, so it stays hidden as it is.
     """
     t = system.threshold
     signs = (1, -1) if system.values[cell] >= t else (1,)
     options = [m for sign in signs if (m := system.move(cell, sign)) is not None]
-    if not options:
-        raise RuntimeError(f"disclosure: nothing can protect {system.keys[cell]}")
-    best = min(options, key=lambda m: m.cost)
+    best = min(options, key=lambda m: m.cost, default=None)
     proved[cell] = True
-    if best.cost > _TOLERANCE:
+    if best is None or best.cost > _TOLERANCE:
         low, high = system.range_of(cell)
-        if high - low >= t:
+        if best is None or high - low >= t:
             return
         for i in best.moves:
             if not (system.latent[i] or system.fixed[i]):
