@@ -458,5 +458,3 @@ def test_outcome_combinations() -> None:
     assert with_none.rows() == [("none", 0, 3), ("a", 1, 2), ("c+a", 2, 2)]
     with pytest.raises(ValueError, match="distinct"):
         outcome_combinations(_three_outcome_cohort(), ["a", "a"])
-
-
