@@ -13,7 +13,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from pipeline.outputs._report_tables import CURVE_GRID_DAYS, curve_data, curve_note
+from pipeline.outputs._report_curves import CURVE_GRID_DAYS, curve_data, curve_note
 from pipeline.stats import (
     DAYS_PER_YEAR,
     OUTCOME,

@@ -5,9 +5,9 @@ from __future__ import annotations
 import polars as pl
 import pytest
 
-from pipeline.outputs._report_tables import (
+from pipeline.outputs._report_suppression import hidden_keys
+from pipeline.outputs._report_table_one import (
     differenced_means,
-    hidden_keys,
     table_one_blocks,
     table_one_summary,
 )
@@ -28,7 +28,7 @@ COHORT = pl.DataFrame(
 
 def _published(threshold: int = 5) -> pl.DataFrame:
     long, *parts = table_one_blocks(COHORT, "x")
-    hidden = hidden_keys(parts, threshold)
+    hidden = hidden_keys(parts, threshold, COHORT, ["x"])
     no_means = differenced_means([long], threshold)
     return table_one_summary("x", long, parts, hidden, threshold, no_means).filter(
         pl.col("variable") == "age_at_index"

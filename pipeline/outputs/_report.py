@@ -2,7 +2,7 @@
 
 ``write_report`` reads a build's output folder and writes ``report.html`` and ``summary/*.csv``.
 Every count in them is suppressed as one linked system by :func:`pipeline.stats.protect_cells`
-(see :mod:`._report_tables` for the cells and relations of the report). The raw build
+(see :mod:`._report_suppression` for the cells and relations of the report). The raw build
 files next to them (``cohort.parquet`` and the build logs) are the unsuppressed record.
 
 The report is written even when the study and definition files named in the manifest are gone
@@ -23,21 +23,22 @@ from pipeline.config import LoadedStudy, load_study
 from pipeline.errors import AscertainError
 from pipeline.outputs._manifest import portable_path, read_manifest, sha256_file
 from pipeline.outputs._ownership import REPORT, check_folder, install, staging
+from pipeline.outputs._report_curves import curve_data
 from pipeline.outputs._report_html import assemble
-from pipeline.outputs._report_tables import (
-    combinations_block,
-    curve_data,
-    dependence_block,
-    dependence_summary,
+from pipeline.outputs._report_suppression import hidden_keys, masked
+from pipeline.outputs._report_table_one import (
     differenced_means,
-    flow_block,
-    hidden_keys,
-    incidence_block,
-    incidence_summary,
-    masked,
-    quality_blocks,
     table_one_blocks,
     table_one_summary,
+)
+from pipeline.outputs._report_tables import (
+    combinations_block,
+    dependence_block,
+    dependence_summary,
+    flow_block,
+    incidence_block,
+    incidence_summary,
+    quality_blocks,
 )
 
 __all__ = ["DEFAULT_THRESHOLD", "write_report"]

@@ -14,6 +14,7 @@ from typing import Any
 
 import polars as pl
 
+from pipeline.outputs._report_curves import curve_note
 from pipeline.outputs._report_svg import (
     Bar,
     Curve,
@@ -22,7 +23,6 @@ from pipeline.outputs._report_svg import (
     render_curves,
     render_flow,
 )
-from pipeline.outputs._report_tables import curve_note
 
 __all__ = ["SECTIONS", "assemble"]
 

@@ -1,173 +1,29 @@
-"""Summary tables of the study report, and the small-cell suppression shared by all of them.
+"""The report's count tables other than Table 1: flow, incidence, combinations, dependence, quality.
 
-Every released count of the report (the flow, Table 1 of each outcome, incidence,
-combinations, dependence and the quality log) is one cell of a single system, suppressed
-together by :func:`pipeline.stats.protect_cells`:
-
-- Each count has a *key* naming the set it counts; a set shown in two tables (the cohort size
-  in the flow and Table 1, the events of an outcome in the incidence table and as a Table 1
-  column) has one key, so it is hidden everywhere or nowhere.
-- Relations within tables: parts add up to their row total (flow, incidence, dependence, the
-  Table 1 groups); each Table 1 variable's rows add up to its group's size (a count of the
-  patients row); quality lines add up to the rows read of their source table (a count that is
-  not printed but taken as known).
-- Relations across tables: every count of patients of the cohort is described by whom it counts
-  (:mod:`._report_cells`) and tied to latent atoms of the cohort, which implies every identity
-  between the tables (events of X = both + first only in the dependence table + Table 1's
-  "incident X, prevalent Y" cell, combinations against incidence, and so on). Counts with the
-  same atoms share a key.
-- Complements are chosen from the detailed tables first (Table 1 by outcome, combinations,
-  dependence, quality), then Table 1's overall column and the flow, then events and group
-  sizes, and the cohort size and source population last: those are the numbers readers need.
-
-Numbers derived from counts (percentages, estimates, intervals, odds ratios) are left empty
-wherever a count they are computed from is hidden.
-
-A hidden count below the threshold is published as ``<threshold``; a larger count hidden only
-to protect a small one is published as ``*``, so no published marker misstates a count.
+Each ``*_block`` function returns the table's raw counts with a key per count, the relations
+between them and whom each count describes (a :class:`._report_suppression.Block`); the
+``*_summary`` functions turn a block into the table as published once the hidden keys are
+chosen, leaving out every number derived from a hidden count.
 """
 
 from __future__ import annotations
 
 import math
-from collections.abc import Iterable, Mapping, Sequence
-from dataclasses import dataclass, field
+from collections.abc import Iterable, Sequence
 from typing import Any
 
-import numpy as np
 import polars as pl
 
-from pipeline.outputs._report_cells import Spec, aliases, atom_relations, cohort_atoms
+from pipeline.outputs._report_cells import Spec
+from pipeline.outputs._report_suppression import Block, keyed_frame, masked, shown
 from pipeline.stats import (
-    DAYS_PER_YEAR,
-    OUTCOME,
-    aalen_johansen,
-    baseline_variables,
-    coarsen_curve,
-    competing_risk_data,
     cumulative_incidence,
     incidence_rate,
-    kaplan_meier,
     outcome_combinations,
     pairwise_dependence,
-    protect_cells,
-    table_one,
-)
-from pipeline.stats._disclosure import Relation
-
-_PRIORITY = (  # how much readers need a count; complements come from low ranks first
-    (3, ("N", "src")),
-    (2, ("events|", "nonevents|", "atrisk|", "t1size|")),
-    (1, ("t1|", "flow|", "removed|")),
 )
 
-
-def _priority(key: str) -> int:
-    return next((rank for rank, starts in _PRIORITY if key.startswith(starts)), 0)
-
-
-_NUMERIC_STATS = ("mean", "sd", "median", "q1", "q3")
 _DERIVED_DEPENDENCE = ("odds_ratio", "or_low", "or_high", "phi", "tau_b", "frank_theta")
-_STATES = {"false": "false", "true": "true", "null": "null"}
-
-
-@dataclass(frozen=True)
-class Block:
-    """One table as suppression sees it: counts, their keys, meanings and relations.
-
-    Attributes:
-        frame: Integer count columns, plus ``<column>#key`` string columns naming each cell.
-        counts: Count columns (the parts).
-        total: Column holding each row's total, if rows add up.
-        relations: Further identities between keys (beyond rows adding up to ``total``).
-        meanings: For counts of cohort patients, which patients (see :mod:`._report_cells`).
-        extra: Counts that are not printed but taken as known (e.g. rows read), by key.
-    """
-
-    frame: pl.DataFrame
-    counts: tuple[str, ...]
-    total: str | None = None
-    relations: tuple[Relation, ...] = ()
-    meanings: Mapping[str, Spec] = field(default_factory=dict)
-    extra: Mapping[str, int] = field(default_factory=dict)
-
-    @property
-    def cells(self) -> tuple[str, ...]:
-        """Every count column, the total included."""
-        return (*self.counts, *([self.total] if self.total else []))
-
-    def values(self) -> dict[str, int]:
-        """Each key's count (a key repeated in the block has one count)."""
-        out = dict(self.extra)
-        for c in self.cells:
-            out.update(zip(self.frame[f"{c}#key"].to_list(), self.frame[c].to_list(), strict=True))
-        return out
-
-    def all_relations(self) -> list[Relation]:
-        """The block's relations, with each row's parts adding up to its total."""
-        out = list(self.relations)
-        if self.total:
-            keys = self.frame.select(f"{c}#key" for c in self.cells).rows()
-            out.extend(((*((k, 1) for k in row[:-1]), (row[-1], -1))) for row in keys)
-        return out
-
-
-def hidden_keys(
-    blocks: Sequence[Block], threshold: int, cohort: pl.DataFrame, outcomes: Sequence[str]
-) -> frozenset[str]:
-    """Keys of every count to hide, chosen over all tables at once (see the module docstring).
-
-    Args:
-        blocks: Every table of the report.
-        threshold: Smallest count that may be shown.
-        cohort: The analysis table the counts were taken from (for the atoms).
-        outcomes: The study's outcomes.
-
-    Returns:
-        The hidden keys.
-    """
-    values: dict[str, int] = {}
-    meanings: dict[str, Spec] = {}
-    relations: list[Relation] = []
-    for block in blocks:
-        values |= block.values()
-        meanings |= block.meanings
-        relations += block.all_relations()
-    prevalent = {f"prevalent_{o}" for o in outcomes}
-    variables = [v for v in baseline_variables(cohort) if v not in prevalent]
-    atoms = cohort_atoms(cohort, outcomes, variables)
-    relations += atom_relations(atoms, meanings)
-    alias = aliases(atoms, meanings)
-    latent = atoms.values()
-    merged: dict[str, int] = {}
-    for key, value in {**values, **latent}.items():
-        merged[alias.get(key, key)] = value
-    priority: dict[str, int] = {}
-    for key in values:  # a key shared by tables gets the priority of its most needed use
-        rank = _priority(key)
-        priority[alias.get(key, key)] = max(rank, priority.get(alias.get(key, key), 0))
-    unique: set[Relation] = set()
-    for relation in relations:
-        summed: dict[str, int] = {}
-        for k, c in relation:
-            summed[alias.get(k, k)] = summed.get(alias.get(k, k), 0) + c
-        if len(kept := tuple(sorted((k, c) for k, c in summed.items() if c))) > 1:
-            unique.add(kept)
-    hidden = protect_cells(
-        merged,
-        sorted(unique),
-        threshold,
-        latent=latent,
-        priority=priority,
-    )
-    return frozenset(k for k in values if alias.get(k, k) in hidden)
-
-
-def _keyed(rows: list[dict[str, Any]], schema: dict[str, Any]) -> pl.DataFrame:
-    return pl.DataFrame(rows, schema=schema, orient="row")
-
-
-# --- tables: raw counts with keys ------------------------------------------------------------
 
 
 def flow_block(attrition: pl.DataFrame, cohort_size: int) -> Block:
@@ -187,85 +43,9 @@ def flow_block(attrition: pl.DataFrame, cohort_size: int) -> Block:
     schema = dict(attrition.schema) | {
         f"{c}#key": pl.String for c in ("patients_before", "removed", "remaining")
     }
-    frame = _keyed(rows, schema)
+    frame = keyed_frame(rows, schema)
     meanings: dict[str, Spec] = {"N": ()} if "N" in frame["remaining#key"] else {}
     return Block(frame, ("removed", "remaining"), total="patients_before", meanings=meanings)
-
-
-def _group_names(by: str) -> tuple[str, ...]:
-    return ("overall", f"{by}=false", f"{by}=true", f"{by}=null")
-
-
-def _t1_key(outcome: str, variable: str, row: str, group: str) -> str:
-    if variable == "patients":
-        special = ("N", *(f"t1size|{outcome}|{state}" for state in ("false", "true", "null")))
-        return dict(zip(_group_names(f"incident_{outcome}"), special, strict=True))[group]
-    if group == "overall":
-        return f"t1|{variable}|{row}"
-    return f"t1|{outcome}|{variable}|{row}|{group}"
-
-
-def _t1_meaning(outcome: str, variable: str, row: str, group: str) -> Spec:
-    """Whom a Table 1 count counts: its group's incident state, and its variable's level."""
-    spec: list[tuple[str, str]] = []
-    if group != "overall":
-        spec.append((f"inc|{outcome}", group.rsplit("=", 1)[1]))
-    if variable.startswith("prevalent_"):
-        spec.append((f"prev|{variable.removeprefix('prevalent_')}", _STATES.get(row, "null")))
-    elif variable != "patients":
-        spec.append((variable, row))
-    return tuple(spec)
-
-
-def table_one_blocks(cohort: pl.DataFrame, outcome: str) -> tuple[pl.DataFrame, Block, Block]:
-    """Table 1 by incident status of one outcome, and its two suppression blocks.
-
-    The first block has, per variable, a row per level (``non-missing`` for numeric ones) and a
-    ``missing`` row; each variable's rows add up to the group size, a count of the second
-    block (``patients``), whose groups add up to the cohort size.
-
-    Returns:
-        The long Table 1 from :func:`pipeline.stats.table_one`, the variables block and the
-        group-size block.
-    """
-    by = f"incident_{outcome}"
-    variables = baseline_variables(cohort, exclude=[by, f"prevalent_{outcome}"])
-    long = table_one(cohort, by=by, variables=variables)
-    groups = _group_names(by)
-    sizes = cohort.group_by(pl.col(by).cast(pl.String).fill_null("null")).len()
-    size = {f"{by}={k}": int(n) for k, n in sizes.iter_rows()} | {"overall": cohort.height}
-    cells: dict[tuple[str, str], dict[str, int]] = {}
-    for r in long.iter_rows(named=True):
-        row = r["level"] if r["level"] is not None else "non-missing"
-        cells.setdefault((r["variable"], row), {})[r["group"]] = r["n"]
-        cells.setdefault((r["variable"], "missing"), {})[r["group"]] = r["missing"]
-    schema: dict[str, Any] = {"variable": pl.String, "row": pl.String}
-    schema |= dict.fromkeys(groups, pl.Int64) | {f"{g}#key": pl.String for g in groups}
-    meanings: dict[str, Spec] = {}
-
-    def frame(items: Iterable[tuple[tuple[str, str], dict[str, int]]]) -> pl.DataFrame:
-        rows = []
-        for (variable, row), values in items:
-            record: dict[str, Any] = {"variable": variable, "row": row}
-            for g in groups:
-                record[g] = values.get(g, 0)
-                record[f"{g}#key"] = key = _t1_key(outcome, variable, row, g)
-                meanings[key] = _t1_meaning(outcome, variable, row, g)
-            rows.append(record)
-        return _keyed(rows, schema)
-
-    body = frame(cells.items())
-    sizes_frame = frame([(("patients", "all"), size)])
-    columns: list[Relation] = []
-    for part in body.partition_by("variable", maintain_order=True):
-        for g in groups:  # a variable's rows add up to its group's size
-            total = _t1_key(outcome, "patients", "all", g)
-            columns.append(((total, -1), *((k, 1) for k in part[f"{g}#key"])))
-    return (
-        long,
-        Block(body, groups[1:], "overall", tuple(columns), meanings),
-        Block(sizes_frame, groups[1:], "overall", meanings=meanings),
-    )
 
 
 def incidence_block(cohort: pl.DataFrame, outcomes: Sequence[str]) -> tuple[list[Any], Block]:
@@ -297,7 +77,7 @@ def incidence_block(cohort: pl.DataFrame, outcomes: Sequence[str]) -> tuple[list
         "nonevents": pl.Int64,
         "at_risk": pl.Int64,
     } | {f"{c}#key": pl.String for c in ("events", "nonevents", "at_risk")}
-    frame = _keyed(rows, schema)
+    frame = keyed_frame(rows, schema)
     return results, Block(frame, ("events", "nonevents"), "at_risk", meanings=meanings)
 
 
@@ -355,129 +135,6 @@ def quality_blocks(quality: pl.DataFrame) -> list[Block]:
     return blocks
 
 
-# --- applying the hidden set ----------------------------------------------------------------
-
-
-def hidden_marker(value: int, threshold: int) -> str:
-    """How a hidden count reads: ``<threshold`` when it is small, else ``*``.
-
-    A count hidden only so that a small one cannot be worked out by subtraction is larger than
-    the threshold; showing it as ``<5`` would misstate it.
-    """
-    return f"<{threshold}" if 0 < value < threshold else "*"
-
-
-def shown(value: int, key: str, hidden: frozenset[str], threshold: int) -> str:
-    """A count as published: the number, or its hidden marker."""
-    return hidden_marker(value, threshold) if key in hidden else str(value)
-
-
-def masked(block: Block, hidden: frozenset[str], threshold: int) -> pl.DataFrame:
-    """The block's frame with every count as published text and the key columns dropped."""
-    return block.frame.with_columns(
-        pl.Series(
-            c,
-            [
-                shown(v, k, hidden, threshold)
-                for v, k in zip(
-                    block.frame[c].to_list(), block.frame[f"{c}#key"].to_list(), strict=True
-                )
-            ],
-            dtype=pl.String,
-        )
-        for c in block.cells
-    ).drop([f"{c}#key" for c in block.cells])
-
-
-def differenced_means(longs: Iterable[pl.DataFrame], threshold: int) -> frozenset[str]:
-    """Numeric variables whose means and SDs must not be shown in any group of any Table 1.
-
-    A group's mean times its size is the sum of its values, and the groups of one Table 1
-    (not incident, incident, not at risk) add up to the overall column, which every outcome's
-    Table 1 shares. So when one group has between 1 and ``threshold - 1`` values, hiding only
-    its own mean is useless: the overall sum minus the other groups' sums gives it, from this
-    Table 1 or another. Sums of squares (SDs) add up the same way. Medians and quartiles do
-    not add up and are kept for groups of at least ``threshold`` values.
-
-    Args:
-        longs: The long Table 1 of every outcome (:func:`pipeline.stats.table_one`).
-        threshold: Smallest group whose values may be summarised.
-
-    Returns:
-        The variables whose mean and SD are left out everywhere.
-    """
-    small = pl.col("n").is_between(1, threshold - 1)
-    return frozenset(
-        v
-        for long in longs
-        for v in long.filter(pl.col("level").is_null() & small)["variable"].to_list()
-    )
-
-
-def table_one_summary(
-    outcome: str,
-    long: pl.DataFrame,
-    blocks: Sequence[Block],
-    hidden: frozenset[str],
-    threshold: int,
-    no_means: frozenset[str] = frozenset(),
-) -> pl.DataFrame:
-    """Table 1 as published: counts suppressed, and statistics of hidden counts removed.
-
-    A percentage is shown only when every count of its variable in that group is shown,
-    because a percentage of a shown count reveals its denominator. Means, SDs and quartiles are
-    left out when fewer than ``threshold`` patients contribute: a summary of a few values
-    can describe individuals, while a summary of many reveals nothing about the count even
-    when that count is hidden as a complement. Means and SDs of the variables in ``no_means``
-    (:func:`differenced_means`) are left out in every group. There is no minimum or maximum:
-    each is a single patient's value.
-    """
-    status: dict[tuple[str, str, str], tuple[int, bool]] = {}
-    for block in blocks:
-        for r in block.frame.iter_rows(named=True):
-            for g in block.cells:
-                status[(r["variable"], r["row"], g)] = (r[g], r[f"{g}#key"] in hidden)
-    out = []
-    for r in [
-        {"variable": "patients", "level": None, "group": g}
-        for g in _group_names(f"incident_{outcome}")
-    ] + list(long.iter_rows(named=True)):
-        var, group = r["variable"], r["group"]
-        row = "all" if var == "patients" else (r["level"] or "non-missing")
-        n, n_hidden = status[(var, row, group)]
-        record = {
-            "by": f"incident_{outcome}",
-            "variable": var,
-            "level": r["level"],
-            "group": group,
-            "n": hidden_marker(n, threshold) if n_hidden else str(n),
-        }
-        # a percentage of a shown count reveals its denominator, and so its group's size
-        block_hidden = status[("patients", "all", group)][1] or any(
-            h for (v, _, g), (_, h) in status.items() if v == var and g == group
-        )
-        record["percent"] = (
-            None if block_hidden or r.get("percent") is None else round(r["percent"], 1)
-        )
-        for s in _NUMERIC_STATS:  # summaries of fewer than `threshold` values could identify
-            gone = n < threshold or (s in ("mean", "sd") and var in no_means)
-            value = None if gone else r.get(s)
-            record[s] = None if value is None or math.isnan(value) else round(value, 2)
-        m, m_hidden = status.get((var, "missing", group), (0, False))
-        missing = hidden_marker(m, threshold) if m_hidden else str(m)
-        record["missing"] = None if var == "patients" else missing
-        out.append(record)
-    schema = {
-        "by": pl.String,
-        "variable": pl.String,
-        "level": pl.String,
-        "group": pl.String,
-        "n": pl.String,
-        "percent": pl.Float64,
-    } | dict.fromkeys(_NUMERIC_STATS, pl.Float64)
-    return pl.DataFrame(out, schema=schema | {"missing": pl.String}, orient="row")
-
-
 def incidence_summary(
     results: Iterable[Any], titles: dict[str, str], hidden: frozenset[str], threshold: int
 ) -> pl.DataFrame:
@@ -516,37 +173,3 @@ def dependence_summary(block: Block, hidden: frozenset[str], threshold: int) -> 
     return out.with_columns(
         pl.when(gone).then(None).otherwise(pl.col(c).round(3)).alias(c) for c in _DERIVED_DEPENDENCE
     ).rename({"a": "both", "b": "first_only", "c": "second_only", "d": "neither"})
-
-
-CURVE_GRID_DAYS = 30
-"""Released curves may step only every this many days (and at the last day of follow-up)."""
-
-
-def curve_note(threshold: int) -> str:
-    """The sentence under the curves that says how they were coarsened, and what that costs."""
-    return (
-        f"So that no curve shows a single patient, each step stands for at least {threshold} "
-        f"events since the previous step, steps fall only every {CURVE_GRID_DAYS} days or on the "
-        f"last day of follow-up when at least {threshold} patients reach it, and the curves stop "
-        f"where fewer than {threshold} patients are at risk. At each step the curve shows the "
-        "full estimate on that day; between steps it may lag the full estimate by fewer than "
-        f"{threshold} events."
-    )
-
-
-def curve_data(cohort: pl.DataFrame, outcome: str, threshold: int) -> tuple[Any, Any, Any, Any]:
-    """Aalen-Johansen (death competing) and 1 - Kaplan-Meier (deaths censored), in years.
-
-    Both curves are coarsened by :func:`pipeline.stats.coarsen_curve` on a grid of
-    :data:`CURVE_GRID_DAYS` days: each drawn step stands for at least ``threshold`` events and
-    at least ``threshold`` patients at risk, and the curves stop where fewer are at risk. The
-    two share their event counts and risk sets, so they step at the same times.
-    """
-    durations, codes = competing_risk_data(cohort, outcome)
-    last = float(durations.max()) if durations.size else 0.0
-    grid = np.arange(CURVE_GRID_DAYS, last + CURVE_GRID_DAYS, CURVE_GRID_DAYS, dtype=np.float64)
-    aj = coarsen_curve(aalen_johansen(durations, codes, OUTCOME), threshold, start=0.0, grid=grid)
-    km = kaplan_meier(durations, codes == OUTCOME)
-    km_times, km_values = coarsen_curve(km, threshold, start=1.0, grid=grid).drawn()
-    aj_times, aj_values = aj.drawn()
-    return aj_times / DAYS_PER_YEAR, aj_values, km_times / DAYS_PER_YEAR, 1.0 - km_values

@@ -43,7 +43,6 @@ from pipeline.stats._intervals import (
     poisson_exact_interval,
     wilson_interval,
 )
-from pipeline.stats._suppress import suppress_counts
 from pipeline.stats._survival import (
     CENSORED,
     DEATH,
@@ -89,7 +88,6 @@ __all__ = [
     "pairwise_dependence",
     "poisson_exact_interval",
     "protect_cells",
-    "suppress_counts",
     "table_one",
     "wilson_interval",
 ]
