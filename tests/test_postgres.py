@@ -258,6 +258,24 @@ def test_verify_says_identical_then_names_the_changed_table(orvane: Server, tmp_
     assert result.changed_inputs[0].startswith("database table diagnoses (copy.diagnoses) has")
 
 
+def test_password_from_libpq_password_file(
+    orvane: Server, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Without password_env or PGPASSWORD, libpq's own password file is read (PGPASSFILE)."""
+    from pipeline.compile import SourceTable
+    from pipeline.extract import open_extract
+
+    monkeypatch.delenv("PGPASSWORD", raising=False)
+    passfile = tmp_path / "pgpass"
+    passfile.write_text(f"{orvane.host}:{orvane.port}:orvane:{READER}:{READER_PASSWORD}\n")
+    passfile.chmod(0o600)
+    monkeypatch.setenv("PGPASSFILE", str(passfile))
+    wanted = (SourceTable("patients", ("patient_id",), ("patient_id",)),)
+    with open_extract(_uri(orvane), wanted) as opened:
+        assert opened.database is not None
+        assert opened.database.tables[0].rows == 20000
+
+
 # -- bad input -----------------------------------------------------------------------------------
 
 
