@@ -18,7 +18,7 @@ from pipeline.engine import DuckDBEngine, RunResult, SparkEngine
 from pipeline.engine._duckdb import StageCallback
 from pipeline.engine._spark import DEFAULT_MASTER
 from pipeline.errors import AscertainError, EngineError
-from pipeline.extract import ExtractTable, discover_extract
+from pipeline.extract import ExtractTable, database_source, discover_extract, open_extract
 from pipeline.outputs import (
     changed_inputs,
     check_usable,
@@ -44,9 +44,12 @@ def tool_version() -> str:
 
 @dataclass(frozen=True)
 class BuildOptions:
-    """Command-line overrides of a study's extract, output folder and engine settings."""
+    """Command-line overrides of a study's extract, output folder and engine settings.
 
-    extract: Path | None = None
+    ``extract`` is a folder or mapping file, or a database connection URI (text).
+    """
+
+    extract: Path | str | None = None
     out: Path | None = None
     threads: int | None = None
     memory_limit: str | None = None
@@ -111,17 +114,19 @@ def build_study(
     loaded: LoadedStudy = load_study(study_file)
     study = loaded.study
     plan = compile_study(loaded)
-    extract = (options.extract or study.extract).resolve()
+    extract = resolve_extract(options.extract or study.extract)
     out = (options.out or study.output.folder).resolve()
-    tables = discover_extract(extract, plan.sources)
-    extract_files = extract_inputs(extract, (f for t in tables.values() for f in t.files))
-    # Before the engine starts, so a refused build costs nothing and touches nothing.
-    check_folder(
-        out, BUILD, inputs=[("extract", extract), *(("extract file", f) for f in extract_files)]
-    )
+    # Before anything is read, so a refused build costs nothing and touches nothing.
+    check_folder(out, BUILD, inputs=local_inputs(extract, plan))
     threads = options.threads or study.engine.threads
     engine = make_engine(options, threads, options.memory_limit or study.engine.memory_limit)
-    with ThreadPoolExecutor(max_workers=1) as hasher:
+    if isinstance(engine, SparkEngine) and database_source(extract) is not None:
+        raise EngineError(
+            "a Spark build reads files; a database extract can be built with --engine duckdb"
+        )
+    with open_extract(extract, plan.sources) as opened, ThreadPoolExecutor(1) as hasher:
+        tables = opened.tables
+        extract_files = extract_inputs(extract, opened.files)
         # Hashing the extract overlaps with the engine's work instead of adding to it.
         hashed_extract = hasher.submit(describe_files, extract_files, extract_root(extract))
         started = dt.datetime.now(dt.UTC)
@@ -146,6 +151,7 @@ def build_study(
         extract_entries=extract_entries,
         out=out,
         plan_hash=plan.content_hash(),
+        database=opened.database.as_manifest() if opened.database else None,
         rows={
             "cohort": run.outputs["cohort"].num_rows,
             **{row["source_table"]: row["n_rows"] for row in run.outputs["rows_read"].to_pylist()},
@@ -180,8 +186,25 @@ def build_study(
     return BuildResult(out, written.files, plan, run, written.notes)
 
 
+def local_inputs(extract: Path | str, plan: Plan) -> list[tuple[str, Path]]:
+    """The extract's files on this machine, which no output folder may hold or lie inside."""
+    if isinstance(extract, str):  # a connection URI: nothing on this machine to protect
+        return []
+    files = (
+        []
+        if database_source(extract) is not None
+        else [f for table in discover_extract(extract, plan.sources).values() for f in table.files]
+    )
+    return [("extract", extract), *(("extract file", f) for f in files)]
+
+
+def resolve_extract(extract: Path | str) -> Path | str:
+    """An extract argument made absolute (a connection URI is left as it is)."""
+    return extract if isinstance(extract, str) else extract.resolve()
+
+
 def locate_first_rows(
-    quality: pa.Table, tables: dict[str, ExtractTable], extract: Path
+    quality: pa.Table, tables: dict[str, ExtractTable], extract: Path | str
 ) -> pa.Table:
     """The quality log with each reason's first set-aside row as a file and a row number.
 
@@ -244,14 +267,14 @@ class VerifyResult:
 
 
 def locate_inputs(
-    folder: Path, manifest: dict[str, Any], study: Path | None, extract: Path | None
-) -> tuple[Path, Path | None]:
+    folder: Path, manifest: dict[str, Any], study: Path | None, extract: Path | str | None
+) -> tuple[Path, Path | str | None]:
     """Where the study and the extract to rebuild from are on this machine.
 
     The study is ``study`` if given, else the manifest's hint (the study file relative to the
     output folder). The extract is ``extract`` if given, else the manifest's hint (the extract
     the build read, relative to the study's folder), else ``None``: the study's own
-    ``extract:``.
+    ``extract:``. A database source is found by its recorded URI (no password).
 
     Raises:
         AscertainError: The study or the recorded extract cannot be found on this machine.
@@ -268,6 +291,8 @@ def locate_inputs(
         study = folder.resolve() / hint  # the hint was made from the resolved folder
     if not study.is_file():
         raise AscertainError(f"{study}: the study file {name} is not there; pass --study FILE")
+    if extract is None and locations.get("extract_uri") is not None:
+        return study, str(locations["extract_uri"])
     if extract is None and locations.get("extract_from_study") is not None:
         extract = study.resolve().parent / locations["extract_from_study"]
         if not extract.exists():
@@ -279,7 +304,7 @@ def locate_inputs(
 
 
 def verify_output(
-    folder: Path, *, study: Path | None = None, extract: Path | None = None
+    folder: Path, *, study: Path | None = None, extract: Path | str | None = None
 ) -> VerifyResult:
     """Rebuild an output folder from its manifest in a temporary folder and compare.
 
@@ -289,7 +314,8 @@ def verify_output(
     Args:
         folder: An output folder written by ``build``.
         study: The study file, when it is not where the manifest's hint says.
-        extract: The extract folder or mapping file, when not where the manifest's hint says.
+        extract: The extract folder, mapping file or connection URI, when not where the
+            manifest's hint says.
 
     Raises:
         AscertainError: The folder has no manifest, an input cannot be found, or the rebuild

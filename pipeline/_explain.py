@@ -15,7 +15,7 @@ from pipeline.compile import Plan, compile_study
 from pipeline.compile._context import evidence_key, evidence_number
 from pipeline.config import Condition, load_study
 from pipeline.engine import DuckDBEngine
-from pipeline.extract import discover_extract
+from pipeline.extract import open_extract
 from pipeline.measures import DERIVED_FROM
 
 Trace = dict[str, Any]
@@ -133,7 +133,9 @@ def _outcome(
     return entry
 
 
-def explain_patient(study_file: Path, patient_id: str, *, extract: Path | None = None) -> Trace:
+def explain_patient(
+    study_file: Path, patient_id: str, *, extract: Path | str | None = None
+) -> Trace:
     """Trace one patient through a study.
 
     Raises:
@@ -141,11 +143,11 @@ def explain_patient(study_file: Path, patient_id: str, *, extract: Path | None =
     """
     loaded = load_study(study_file)
     plan = compile_study(loaded)
-    folder = (extract or loaded.study.extract).resolve()
-    tables = discover_extract(folder, plan.sources)
-    run = DuckDBEngine(threads=1).run(
-        plan.with_outputs(_trace_stages(plan)), tables, patients=(patient_id,)
-    )
+    source = extract or loaded.study.extract
+    with open_extract(source if isinstance(source, str) else source.resolve(), plan.sources) as x:
+        run = DuckDBEngine(threads=1).run(
+            plan.with_outputs(_trace_stages(plan)), x.tables, patients=(patient_id,)
+        )
     outputs = run.outputs
     patient = _rows(outputs, "patient_base")
     eligibility = _rows(outputs, "eligibility")

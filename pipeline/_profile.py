@@ -19,7 +19,7 @@ from pipeline.compile._sources import DIAGNOSES, ENCOUNTERS, MEASUREMENTS, PATIE
 from pipeline.engine import DuckDBEngine
 from pipeline.engine._profile import profile_tables
 from pipeline.errors import AscertainError, ExtractError
-from pipeline.extract import discover_extract
+from pipeline.extract import ExtractTable, database_source, discover_extract, open_extract
 from pipeline.outputs._ownership import PROFILE, check_folder, install, staging
 
 ALL_TABLES = (PATIENTS, ENCOUNTERS, DIAGNOSES, PRESCRIPTIONS, MEASUREMENTS)
@@ -30,11 +30,11 @@ PATIENT_LEVEL = (
 """The label every profile output carries (JSON, HTML page and terminal)."""
 
 
-def profile_extract(folder: Path, *, threshold: int = 5) -> dict[str, Any]:
-    """Profile the canonical tables found in an extract folder (patients must be there).
+def profile_extract(folder: Path | str, *, threshold: int = 5) -> dict[str, Any]:
+    """Profile the canonical tables found in an extract (patients must be there).
 
     Args:
-        folder: The extract folder.
+        folder: The extract folder, site mapping file, or database connection URI.
         threshold: Smallest number of numeric values of a measure and unit whose percentiles
             are given (the study default small-cell threshold is 5).
 
@@ -44,6 +44,17 @@ def profile_extract(folder: Path, *, threshold: int = 5) -> dict[str, Any]:
     """
     if threshold < 1:
         raise AscertainError(f"the threshold must be at least 1, got {threshold}")
+    database = database_source(folder)
+    if database is not None:
+        optional = frozenset(t.name for t in ALL_TABLES if t is not PATIENTS)
+        with open_extract(folder, ALL_TABLES, optional=optional) as opened:
+            found = opened.tables
+            profile = _profile(found, threshold)
+        # The database and schema only: the mapping's folder or the server would say more.
+        profile["extract"] = f"{database.database}.{database.schema}"
+        profile["missing_tables"] = [t.name for t in ALL_TABLES if t.name not in found]
+        return profile
+    folder = Path(folder)
     found = {}
     missing = []
     for table in ALL_TABLES:
@@ -53,13 +64,18 @@ def profile_extract(folder: Path, *, threshold: int = 5) -> dict[str, Any]:
             if table is PATIENTS or "not found" not in str(err):
                 raise
             missing.append(table.name)
+    profile = _profile(found, threshold)
+    # Its name only: a full path names the machine it was made on.
+    profile["extract"] = folder.resolve().name
+    profile["missing_tables"] = missing
+    return profile
+
+
+def _profile(found: dict[str, ExtractTable], threshold: int) -> dict[str, Any]:
     sources = tuple(t for t in ALL_TABLES if t.name in found)
     profile = profile_tables(DuckDBEngine(), sources, found, threshold=threshold)
     profile["release"] = PATIENT_LEVEL
     profile["percentiles_from"] = threshold
-    # Its name only: a full path names the machine it was made on.
-    profile["extract"] = folder.resolve().name
-    profile["missing_tables"] = missing
     return profile
 
 
@@ -139,13 +155,15 @@ def render_profile_html(profile: dict[str, Any]) -> str:
     return "\n".join(parts) + "\n"
 
 
-def check_profile_folder(extract: Path, out: Path) -> None:
+def check_profile_folder(extract: Path | str, out: Path) -> None:
     """Refuse, before any work, an ``out`` that is not new, empty or a previous profile's.
 
     Raises:
         OutputFolderError: ``out`` holds foreign files or overlaps the extract.
     """
-    check_folder(out, PROFILE, inputs=[("extract", extract)])
+    # A connection URI names nothing on this machine that the folder could overlap.
+    inputs = [] if isinstance(extract, str) else [("extract", extract)]
+    check_folder(out, PROFILE, inputs=inputs)
 
 
 def write_profile(profile: dict[str, Any], out: Path) -> list[Path]:

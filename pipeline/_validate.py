@@ -18,7 +18,7 @@ from pipeline.compile import compile_study
 from pipeline.config import load_study
 from pipeline.engine import DuckDBEngine
 from pipeline.errors import AscertainError
-from pipeline.extract import discover_extract
+from pipeline.extract import open_extract
 from pipeline.stats import (
     DiagnosticAccuracy,
     OnsetAgreement,
@@ -79,7 +79,7 @@ def read_reference(path: Path) -> pl.DataFrame:
 
 
 def validate_study(
-    study_file: Path, reference: Path, *, extract: Path | None = None
+    study_file: Path, reference: Path, *, extract: Path | str | None = None
 ) -> list[Validation]:
     """Compare each outcome of a study with the reference standard.
 
@@ -88,10 +88,10 @@ def validate_study(
     """
     loaded = load_study(study_file)
     plan = compile_study(loaded)
-    folder = (extract or loaded.study.extract).resolve()
-    tables = discover_extract(folder, plan.sources)
+    source = extract or loaded.study.extract
     partial = plan.through("condition_onsets").with_outputs(("patient_base", "condition_onsets"))
-    run = DuckDBEngine().run(partial, tables)
+    with open_extract(source if isinstance(source, str) else source.resolve(), plan.sources) as x:
+        run = DuckDBEngine().run(partial, x.tables)
     patients = pl.from_arrow(run.outputs["patient_base"]).select(
         pl.col("patient_id").cast(pl.String)
     )

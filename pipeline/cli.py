@@ -40,6 +40,7 @@ from pipeline.config import load_study
 from pipeline.config._check import check_paths, explain_condition
 from pipeline.engine import DuckDBEngine, SparkEngine
 from pipeline.errors import AscertainError
+from pipeline.extract import as_extract
 
 app = typer.Typer(
     name="ascertain",
@@ -55,6 +56,14 @@ StudyArg = Annotated[
     Path, typer.Argument(help="The study file (YAML).", exists=False, dir_okay=False)
 ]
 DebugOpt = Annotated[bool, typer.Option("--debug", help="Show the full traceback on errors.")]
+EXTRACT_HELP = (
+    "Use this extract instead of the study's: a folder, a site mapping file, or a database URI "
+    "postgresql://USER@HOST:PORT/DATABASE?schema=S (password from PGPASSWORD or ~/.pgpass)."
+)
+
+
+def _extract(text: str | None) -> Path | str | None:
+    return None if text is None else as_extract(text)
 
 
 def _fail_cleanly(action: Callable[[], T], *, debug: bool) -> T:
@@ -89,9 +98,7 @@ def _progress(*, quiet: bool) -> Iterator[Callable[[Stage, int, int], None] | No
 @app.command()
 def build(
     study: StudyArg,
-    extract: Annotated[
-        Path | None, typer.Option(help="Run on this extract folder instead of the study's.")
-    ] = None,
+    extract: Annotated[str | None, typer.Option(help=EXTRACT_HELP)] = None,
     out: Annotated[
         Path | None, typer.Option(help="Write outputs here instead of the study's folder.")
     ] = None,
@@ -113,7 +120,7 @@ def build(
 ) -> None:
     """Build the study's cohort: cohort.parquet, attrition.csv and run.json."""
     options = BuildOptions(
-        extract=extract,
+        extract=_extract(extract),
         out=out,
         threads=threads,
         memory_limit=memory_limit,
@@ -232,7 +239,7 @@ def verify(
         typer.Option(help="The study file (default: where the manifest says, from OUTPUT_DIR)."),
     ] = None,
     extract: Annotated[
-        Path | None,
+        str | None,
         typer.Option(help="The extract (default: where the manifest says, from the study)."),
     ] = None,
     debug: DebugOpt = False,
@@ -241,7 +248,9 @@ def verify(
 
     Exits 0 when identical, 1 when an input or output differs, 2 when it cannot verify.
     """
-    result = _fail_cleanly(lambda: verify_output(output, study=study, extract=extract), debug=debug)
+    result = _fail_cleanly(
+        lambda: verify_output(output, study=study, extract=_extract(extract)), debug=debug
+    )
     console = Console(highlight=False, soft_wrap=True)
     for line in result.changed_inputs:
         console.print(f"changed input: {line}", markup=False)
@@ -257,9 +266,7 @@ def verify(
 def explain(
     study: StudyArg,
     patient: Annotated[str, typer.Option(help="The patient_id to trace.")],
-    extract: Annotated[
-        Path | None, typer.Option(help="Trace on this extract folder instead of the study's.")
-    ] = None,
+    extract: Annotated[str | None, typer.Option(help=EXTRACT_HELP)] = None,
     output_format: Annotated[str, typer.Option("--format", help="text or json.")] = "text",
     debug: DebugOpt = False,
 ) -> None:
@@ -267,7 +274,9 @@ def explain(
     if output_format not in ("text", "json"):
         Console(stderr=True).print(f"error: --format must be text or json, not '{output_format}'")
         raise typer.Exit(2)
-    trace = _fail_cleanly(lambda: explain_patient(study, patient, extract=extract), debug=debug)
+    trace = _fail_cleanly(
+        lambda: explain_patient(study, patient, extract=_extract(extract)), debug=debug
+    )
     if output_format == "json":
         typer.echo(json.dumps(trace, indent=2, sort_keys=True, default=str))
     else:
@@ -289,9 +298,7 @@ def diff(
 def validate(
     study: StudyArg,
     reference: Annotated[Path, typer.Option(help="Reference standard (CSV or Parquet).")],
-    extract: Annotated[
-        Path | None, typer.Option(help="Use this extract folder instead of the study's.")
-    ] = None,
+    extract: Annotated[str | None, typer.Option(help=EXTRACT_HELP)] = None,
     debug: DebugOpt = False,
 ) -> None:
     """Compare each outcome's definition with a reference standard: sensitivity, PPV, kappa."""
@@ -300,7 +307,7 @@ def validate(
         # Imported here: it loads scipy (half a second), which no other command needs.
         from pipeline._validate import render_validation, validate_study
 
-        results = validate_study(study, reference, extract=extract)
+        results = validate_study(study, reference, extract=_extract(extract))
         threshold = load_study(study).study.output.small_cell_threshold
         return render_validation(results, threshold)
 
@@ -333,7 +340,9 @@ def _cell(value: object) -> str:
 
 @app.command()
 def profile(
-    extract: Annotated[Path, typer.Argument(help="The extract folder to look at.")],
+    extract: Annotated[
+        str, typer.Argument(help="The extract folder, mapping file or connection URI to look at.")
+    ],
     out: Annotated[Path, typer.Option(help="Where to write profile.json and .html.")] = Path(
         "profile"
     ),
@@ -343,8 +352,9 @@ def profile(
     debug: DebugOpt = False,
 ) -> None:
     """Summarise an extract: rows, dates, orphans, codes, measures and units (patient-level)."""
-    _fail_cleanly(lambda: check_profile_folder(extract, out), debug=debug)
-    result = _fail_cleanly(lambda: profile_extract(extract, threshold=threshold), debug=debug)
+    source = as_extract(extract)
+    _fail_cleanly(lambda: check_profile_folder(source, out), debug=debug)
+    result = _fail_cleanly(lambda: profile_extract(source, threshold=threshold), debug=debug)
     console = Console(highlight=False)
     table = Table(title=f"extract {extract}")
     for column in ("table", "rows", "first date", "last date", "unreadable dates", "orphans"):

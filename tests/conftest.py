@@ -1,10 +1,14 @@
 from __future__ import annotations
 
+import importlib.util
+import os
 import shutil
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from pathlib import Path
 
 import pytest
+
+from .pg_server import Server, find_bindir, running_server
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO_STUDY = ROOT / "definitions" / "studies" / "orvane_multimorbidity.yaml"
@@ -41,3 +45,23 @@ def study_copy(tmp_path: Path) -> Callable[[str], Path]:
         return path
 
     return write
+
+
+@pytest.fixture(scope="session")
+def pg_server() -> Iterator[Server]:
+    """A throwaway PostgreSQL server for the session (see tests/pg_server.py).
+
+    Without PostgreSQL or its driver the tests that use it skip with the reason; in CI
+    (``CI=true``, where .ci/run installs both) they fail instead.
+    """
+    reason = None
+    if find_bindir() is None:
+        reason = "PostgreSQL is not installed (initdb not found; apt-get install postgresql)"
+    elif importlib.util.find_spec("adbc_driver_postgresql") is None:
+        reason = "the PostgreSQL driver is not installed (pip install '.[postgres]')"
+    if reason is not None:
+        if os.environ.get("CI") == "true":
+            pytest.fail(f"CI must run the PostgreSQL tests: {reason}")
+        pytest.skip(reason)
+    with running_server() as server:
+        yield server

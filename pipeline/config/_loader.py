@@ -346,7 +346,9 @@ def load_study(file: Path) -> LoadedStudy:
     base = file.parent
     study = study.model_copy(
         update={
-            "extract": _resolve(base, study.extract),
+            "extract": study.extract
+            if isinstance(study.extract, str)
+            else _resolve(base, study.extract),
             "definitions": _resolve(base, study.definitions),
             "output": study.output.model_copy(
                 update={"folder": _resolve(base, study.output.folder)}

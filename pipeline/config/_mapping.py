@@ -14,6 +14,11 @@ tables:
     dates: "%d/%m/%Y"
     values: {sex: {"1": M, "2": F}}
 ```
+
+A site whose extract lives in a database says where in a ``database:`` section, and each table
+names a ``table:`` of that database's schema instead of a ``file:``. The password is never in
+the mapping: it comes from the environment variable ``password_env`` names, or from libpq's own
+``PGPASSWORD`` or password file (``PGPASSFILE``, ``~/.pgpass``).
 """
 
 from __future__ import annotations
@@ -21,7 +26,7 @@ from __future__ import annotations
 import re
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Annotated, Self
+from typing import Annotated, Literal, Self
 
 from pydantic import Field, field_validator, model_validator
 
@@ -58,10 +63,11 @@ class Constant(Model):
 
 
 class TableMapping(Model):
-    """How one canonical table is read from a site's file(s).
+    """How one canonical table is read from a site's file(s) or database table.
 
     Attributes:
         file: A file, a glob of files, or a folder of Parquet parts, relative to the mapping.
+        table: With a ``database:`` section, the table (or view) in its schema instead.
         columns: Canonical column -> the site's column name, or a constant.
         dates: ``iso`` (YYYY-MM-DD), ``excel`` (day serial numbers), or a strptime format
             such as ``%d/%m/%Y``; it applies to every date column of the table.
@@ -69,7 +75,8 @@ class TableMapping(Model):
             they are (so they can still be judged, e.g. as an unknown code system).
     """
 
-    file: str
+    file: str | None = None
+    table: Annotated[str, Field(min_length=1, max_length=63)] | None = None
     columns: dict[str, Annotated[str, Field(min_length=1)] | Constant] = Field(min_length=1)
     dates: str = "iso"
     values: dict[str, dict[str, str]] = Field(default_factory=dict)
@@ -83,11 +90,47 @@ class TableMapping(Model):
             )
         return value
 
+    @model_validator(mode="after")
+    def _one_place(self) -> Self:
+        if (self.file is None) == (self.table is None):
+            raise ValueError("give either file (a file source) or table (a database source)")
+        return self
+
+
+# An environment variable's name, as POSIX shells allow it.
+EnvName = Annotated[str, Field(pattern=r"^[A-Za-z_][A-Za-z0-9_]*$", max_length=64)]
+
+
+class DatabaseSettings(Model):
+    """Where a database extract is and who reads it; never the password.
+
+    Attributes:
+        driver: The database system; ``postgresql`` is the one supported.
+        host: Server name or address.
+        port: Server port.
+        database: The database holding the extract.
+        schema_name: The schema (``schema:`` in the file) holding the extract's tables.
+        user: The role the build logs in as (read access is enough).
+        password_env: The environment variable holding the password; without it libpq's own
+            ``PGPASSWORD`` or password file (``PGPASSFILE``, ``~/.pgpass``) is used.
+        connect_timeout_seconds: How long to wait for the server before giving up.
+    """
+
+    driver: Literal["postgresql"]
+    host: Annotated[str, Field(min_length=1)]
+    port: Annotated[int, Field(ge=1, le=65535)] = 5432
+    database: Annotated[str, Field(min_length=1, max_length=63)]
+    schema_name: Annotated[str, Field(min_length=1, max_length=63, alias="schema")] = "public"
+    user: Annotated[str, Field(min_length=1, max_length=63)]
+    password_env: EnvName | None = None
+    connect_timeout_seconds: Annotated[int, Field(ge=2, le=600)] = 10
+
 
 class SiteMapping(Model):
-    """A whole site mapping: a name and the tables it provides."""
+    """A whole site mapping: a name, where its data is (files, or a database) and its tables."""
 
     mapping: Name
+    database: DatabaseSettings | None = None
     tables: dict[str, TableMapping] = Field(min_length=1)
 
     @model_validator(mode="after")
@@ -125,6 +168,13 @@ def load_mapping(file: Path) -> LoadedMapping:
                 )
             )
             continue
+        if (mapping.database is None) != (spec.table is None):
+            where, why = (
+                ("table", "a mapping without a database: section reads files; give file")
+                if spec.table is not None
+                else ("file", "a mapping with a database: section reads tables; give table")
+            )
+            problems.append(doc.problem(("tables", table, where), "wrong-source", why))
         known = CANONICAL_COLUMNS[table]
         for group in ("columns", "values"):
             for column in getattr(spec, group):

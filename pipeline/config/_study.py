@@ -8,6 +8,7 @@ default) is all history up to and including the index date.
 from __future__ import annotations
 
 import datetime as dt
+import re
 from pathlib import Path
 from typing import Annotated, Literal, Self
 
@@ -16,6 +17,8 @@ from pydantic import Field, field_validator, model_validator
 from pipeline.config._base import Model, Name, NonNegativeInt, PositiveInt
 from pipeline.config._condition import Evidence
 from pipeline.measures import MEASURES
+
+_DATABASE_URI = re.compile(r"^postgres(?:ql)?://", re.IGNORECASE)
 
 Window = tuple[int | None, int]
 
@@ -443,7 +446,7 @@ class Study(Model):
 
     study: Name
     title: str
-    extract: Path
+    extract: Path | str
     definitions: Path = Path("../conditions")
     definition_changes: dict[Name, dict[str, RuleChange]] = Field(default_factory=dict)
     end_of_data: dt.date
@@ -455,6 +458,14 @@ class Study(Model):
     output: Output
     engine: EngineSettings = EngineSettings()
     quality: QualitySettings = QualitySettings()
+
+    @field_validator("extract", mode="before")
+    @classmethod
+    def _path_or_uri(cls, value: object) -> object:
+        # A database connection URI stays text (a path would fold its "//"); the rest is a path.
+        if isinstance(value, str) and not _DATABASE_URI.match(value):
+            return Path(value)
+        return value
 
     @field_validator("covariates")
     @classmethod

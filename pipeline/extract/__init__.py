@@ -1,6 +1,17 @@
-"""The extract: locating its tables (folders, FHIR exports, site mappings), checking columns."""
+"""The extract: locating its tables (folders, FHIR exports, site mappings, databases)."""
 
+from pipeline.extract._dbread import DatabaseFacts, OpenedExtract, database_source, open_extract
+from pipeline.extract._dbsource import as_extract, is_database_uri
 from pipeline.extract._discover import ExtractTable
 from pipeline.extract._mapped import discover_extract
 
-__all__ = ["ExtractTable", "discover_extract"]
+__all__ = [
+    "DatabaseFacts",
+    "ExtractTable",
+    "OpenedExtract",
+    "as_extract",
+    "database_source",
+    "discover_extract",
+    "is_database_uri",
+    "open_extract",
+]

@@ -39,6 +39,8 @@ def discover_mapped(file: Path, tables: tuple[SourceTable, ...]) -> dict[str, Ex
         ExtractError: A mapped file cannot be read.
     """
     loaded = load_mapping(file)
+    if loaded.mapping.database is not None:
+        raise ExtractError(f"{loaded.file}: reads a database; open it with open_extract")
     doc = load_yaml(loaded.file)
     base = loaded.file.parent
     found: dict[str, ExtractTable] = {}
@@ -50,7 +52,7 @@ def discover_mapped(file: Path, tables: tuple[SourceTable, ...]) -> dict[str, Ex
                 doc.problem(("tables",), "missing-table", f"no mapping for table '{table.name}'")
             )
             continue
-        files = _files(base, spec.file)
+        files = _files(base, spec.file or "")
         if not files:
             problems.append(
                 doc.problem(

@@ -81,14 +81,43 @@ def describe_files(paths: Iterable[Path], base: Path) -> list[dict[str, Any]]:
     return sorted(entries, key=lambda e: e["path"])
 
 
-def extract_root(extract: Path) -> Path:
-    """The folder extract files are named relative to: the folder, or a mapping file's folder."""
+def extract_root(extract: Path | str) -> Path:
+    """The folder extract files are named relative to: the folder, or a mapping file's folder.
+
+    A connection URI has no files; the current folder stands in (nothing is named from it).
+    """
+    if isinstance(extract, str):
+        return Path.cwd()
     return extract if extract.is_dir() else extract.parent
 
 
-def extract_inputs(extract: Path, files: Iterable[Path]) -> list[Path]:
+def extract_inputs(extract: Path | str, files: Iterable[Path]) -> list[Path]:
     """Every file a build reads from the extract: the table files, and a site mapping file."""
+    if isinstance(extract, str):
+        return [*files]
     return [*files, *([extract] if extract.is_file() else [])]
+
+
+def _locations(
+    extract: Path | str, study_file: Path, out: Path, database: dict[str, Any] | None
+) -> dict[str, Any]:
+    """Where the inputs were: hints for ``verify`` on the same layout (see module docstring).
+
+    A database named by a URI is recorded by that URI, which holds no password.
+    """
+    if isinstance(extract, str):
+        return {
+            "extract_kind": "database",
+            "extract_from_study": None,
+            "extract_uri": extract,
+            "study_from_output": portable_path(study_file, out),
+        }
+    kind = "folder" if extract.is_dir() else "mapping file"
+    return {
+        "extract_kind": f"database {kind}" if database is not None else kind,
+        "extract_from_study": portable_path(extract, study_file.parent),
+        "study_from_output": portable_path(study_file, out),
+    }
 
 
 def make_manifest(
@@ -97,11 +126,12 @@ def make_manifest(
     engine: dict[str, Any],
     study_file: Path,
     definition_files: Iterable[Path],
-    extract: Path,
+    extract: Path | str,
     extract_entries: list[dict[str, Any]],
     out: Path,
     plan_hash: str,
     rows: dict[str, int],
+    database: dict[str, Any] | None = None,
 ) -> dict[str, Any]:
     """The manifest of one build (without the output hashes, which the writer adds).
 
@@ -110,13 +140,15 @@ def make_manifest(
         engine: The engine's name, version and thread count.
         study_file: The study file, resolved.
         definition_files: Every definition file the study's catalog loaded.
-        extract: The extract folder or site mapping file the build read.
+        extract: The extract folder, site mapping file or connection URI the build read.
         extract_entries: ``describe_files`` of the extract's files, relative to its root.
         out: The output folder (for the hint of where the study is from there).
         plan_hash: The compiled plan's content hash.
         rows: Cohort size and rows read per source table.
+        database: For a database source, its server version and each table's rows and
+            checksum (``DatabaseFacts.as_manifest``); the section is absent for files.
     """
-    return {
+    manifest = {
         "manifest_version": MANIFEST_VERSION,
         "tool_version": tool_version,
         "engine": engine,
@@ -124,14 +156,13 @@ def make_manifest(
         "study": describe_files([study_file], study_file.parent),
         "definitions": describe_files(definition_files, study_file.parent),
         "extract": extract_entries,
-        "locations": {
-            "extract_kind": "folder" if extract.is_dir() else "mapping file",
-            "extract_from_study": portable_path(extract, study_file.parent),
-            "study_from_output": portable_path(study_file, out),
-        },
+        "locations": _locations(extract, study_file, out, database),
         "plan_hash": plan_hash,
         "rows": rows,
     }
+    if database is not None:
+        manifest["database"] = database
+    return manifest
 
 
 def _upgrade(data: dict[str, Any], folder: Path) -> dict[str, Any]:
@@ -206,4 +237,27 @@ def changed_inputs(recorded: dict[str, Any], rebuilt: dict[str, Any]) -> list[st
                 changes.append(f"{group} file {name} was not there at the build")
             elif before[name] != after[name]:
                 changes.append(f"{group} file {name} has changed since the build")
+    return changes + _changed_tables(recorded, rebuilt)
+
+
+def _changed_tables(recorded: dict[str, Any], rebuilt: dict[str, Any]) -> list[str]:
+    """Database tables whose row count or content checksum differ, as readable lines."""
+    before = {t["table"]: t for t in recorded.get("database", {}).get("tables", [])}
+    after = {t["table"]: t for t in rebuilt.get("database", {}).get("tables", [])}
+    changes = []
+    for name in sorted(before.keys() | after.keys()):
+        old, new = before.get(name), after.get(name)
+        if new is None or old is None:
+            state = "not read now" if new is None else "not read at the build"
+            changes.append(f"database table {name} was {state}")
+        elif old["source"] != new["source"]:
+            changes.append(
+                f"database table {name} is read from {new['source']}, not {old['source']}"
+            )
+        elif (old["rows"], old["checksum"]) != (new["rows"], new["checksum"]):
+            changes.append(
+                f"database table {name} ({new['source']}) has changed since the build "
+                f"({old['rows']:,} rows then, {new['rows']:,} now; checksum "
+                f"{old['checksum']} then, {new['checksum']} now)"
+            )
     return changes
