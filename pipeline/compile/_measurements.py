@@ -52,7 +52,8 @@ WITH read AS (
     NULLIF(TRIM(CAST(value_text AS VARCHAR)), '') AS text_given,
     NULLIF(TRIM(CAST(unit AS VARCHAR)), '') AS unit_given,
     copies,
-    source_position
+    source_position,
+    source_problem
   FROM :distinct_rows
 ), split AS (
   SELECT
@@ -83,7 +84,8 @@ WITH read AS (
     text_given,
     unit_given,
     copies,
-    source_position
+    source_position,
+    source_problem
   FROM split
 )
 SELECT
@@ -99,6 +101,7 @@ SELECT
   r.source_position,
   u.factor * r.reading / u.divisor + u.offset_value AS value,
   CASE
+    WHEN r.source_problem IS NOT NULL THEN r.source_problem
     WHEN p.patient_id IS NULL THEN 'orphan patient'
     WHEN r.obs_date IS NULL THEN 'unparseable date'
     WHEN r.obs_date > :end_of_data THEN 'after end of data'

@@ -6,7 +6,7 @@
 
 -- reads src_diagnoses: patient_id, event_date, code_system, code, source
 
--- reads src_prescriptions: patient_id, start_date, atc, stop_date
+-- reads src_prescriptions: patient_id, start_date, atc, stop_date, drug_text
 
 -- reads src_measurements: patient_id, obs_date, measure, unit, value, value_text
 
@@ -22,7 +22,7 @@ SELECT DISTINCT
   TRY_CAST(deregistration_date AS DATE) AS deregistration_date
 FROM src_patients
 WHERE
-  NOT patient_id IS NULL;
+  NOT patient_id IS NULL AND source_problem IS NULL;
 
 -- stage patient_duplicates [check]: patients must be listed once
 -- reads: patient_base
@@ -50,6 +50,8 @@ FROM (
     TRY_CAST(encounter_date AS DATE) AS encounter_date,
     LOWER(TRIM(CAST(encounter_type AS TEXT))) AS encounter_type
   FROM src_encounters
+  WHERE
+    source_problem IS NULL
 ) AS e
 JOIN patient_base AS p
   ON p.patient_id = e.patient_id
@@ -149,6 +151,8 @@ FROM (
     CAST(source AS TEXT) AS raw_source,
     CAST(NULL AS INT) AS duration_days
   FROM src_diagnoses
+  WHERE
+    source_problem IS NULL
   UNION ALL
   SELECT
     patient_id,
@@ -159,6 +163,8 @@ FROM (
     CAST(NULL AS TEXT) AS raw_source,
     CAST(DATE_DIFF('DAY', TRY_CAST(start_date AS DATE), TRY_CAST(stop_date AS DATE)) + 1 AS INT) AS duration_days
   FROM src_prescriptions
+  WHERE
+    source_problem IS NULL
 ) AS r
 JOIN patient_base AS p
   ON p.patient_id = r.patient_id
@@ -185,7 +191,8 @@ WITH read AS (
     NULLIF(TRIM(CAST(value_text AS TEXT)), '') AS text_given,
     NULLIF(TRIM(CAST(unit AS TEXT)), '') AS unit_given,
     copies,
-    source_position
+    source_position,
+    source_problem
   FROM (
     SELECT
       patient_id,
@@ -194,6 +201,7 @@ WITH read AS (
       unit,
       value,
       value_text,
+      source_problem,
       MIN(source_position) AS source_position,
       COUNT(*) AS copies
     FROM src_measurements
@@ -203,7 +211,8 @@ WITH read AS (
       measure,
       unit,
       value,
-      value_text
+      value_text,
+      source_problem
   ) AS d
 ), split AS (
   SELECT
@@ -247,7 +256,8 @@ WITH read AS (
     text_given,
     unit_given,
     copies,
-    source_position
+    source_position,
+    source_problem
   FROM split
 )
 SELECT
@@ -263,6 +273,8 @@ SELECT
   r.source_position,
   u.factor * r.reading / u.divisor + u.offset_value AS value,
   CASE
+    WHEN NOT r.source_problem IS NULL
+    THEN r.source_problem
     WHEN p.patient_id IS NULL
     THEN 'orphan patient'
     WHEN r.obs_date IS NULL
@@ -2158,7 +2170,13 @@ WITH summary AS (
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
-      CASE WHEN patient_id IS NULL THEN 'missing patient_id' ELSE 'used' END AS reason,
+      CASE
+        WHEN NOT source_problem IS NULL
+        THEN source_problem
+        WHEN patient_id IS NULL
+        THEN 'missing patient_id'
+        ELSE 'used'
+      END AS reason,
       copies,
       source_position,
       patient_id IS NULL AS no_patient_id
@@ -2172,6 +2190,7 @@ WITH summary AS (
         practice_id,
         registration_date,
         deregistration_date,
+        source_problem,
         MIN(source_position) AS source_position,
         COUNT(*) AS copies
       FROM src_patients
@@ -2183,7 +2202,8 @@ WITH summary AS (
         birth_year,
         practice_id,
         registration_date,
-        deregistration_date
+        deregistration_date,
+        source_problem
     ) AS g
   ) AS c
   GROUP BY
@@ -2198,6 +2218,8 @@ WITH summary AS (
   FROM (
     SELECT
       CASE
+        WHEN NOT r.source_problem IS NULL
+        THEN r.source_problem
         WHEN p.patient_id IS NULL
         THEN 'orphan patient'
         WHEN r.row_date IS NULL
@@ -2222,13 +2244,15 @@ WITH summary AS (
           patient_id,
           encounter_date,
           encounter_type,
+          source_problem,
           MIN(source_position) AS source_position,
           COUNT(*) AS copies
         FROM src_encounters
         GROUP BY
           patient_id,
           encounter_date,
-          encounter_type
+          encounter_type,
+          source_problem
       ) AS g
     ) AS r
     LEFT JOIN patient_base AS p
@@ -2246,6 +2270,8 @@ WITH summary AS (
   FROM (
     SELECT
       CASE
+        WHEN NOT r.source_problem IS NULL
+        THEN r.source_problem
         WHEN p.patient_id IS NULL
         THEN 'orphan patient'
         WHEN r.row_date IS NULL
@@ -2276,6 +2302,7 @@ WITH summary AS (
           code_system,
           code,
           source,
+          source_problem,
           MIN(source_position) AS source_position,
           COUNT(*) AS copies
         FROM src_diagnoses
@@ -2284,7 +2311,8 @@ WITH summary AS (
           event_date,
           code_system,
           code,
-          source
+          source,
+          source_problem
       ) AS g
     ) AS r
     LEFT JOIN patient_base AS p
@@ -2307,6 +2335,8 @@ WITH summary AS (
   FROM (
     SELECT
       CASE
+        WHEN NOT r.source_problem IS NULL
+        THEN r.source_problem
         WHEN p.patient_id IS NULL
         THEN 'orphan patient'
         WHEN r.row_date IS NULL
@@ -2336,6 +2366,8 @@ WITH summary AS (
           start_date,
           atc,
           stop_date,
+          drug_text,
+          source_problem,
           MIN(source_position) AS source_position,
           COUNT(*) AS copies
         FROM src_prescriptions
@@ -2343,7 +2375,9 @@ WITH summary AS (
           patient_id,
           start_date,
           atc,
-          stop_date
+          stop_date,
+          drug_text,
+          source_problem
       ) AS g
     ) AS r
     LEFT JOIN patient_base AS p

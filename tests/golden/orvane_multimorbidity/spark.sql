@@ -6,7 +6,7 @@
 
 -- reads src_diagnoses: patient_id, event_date, code_system, code, source
 
--- reads src_prescriptions: patient_id, start_date, atc, stop_date
+-- reads src_prescriptions: patient_id, start_date, atc, stop_date, drug_text
 
 -- reads src_measurements: patient_id, obs_date, measure, unit, value, value_text
 
@@ -76,7 +76,7 @@ SELECT DISTINCT
   END AS deregistration_date
 FROM src_patients
 WHERE
-  NOT patient_id IS NULL;
+  NOT patient_id IS NULL AND source_problem IS NULL;
 
 -- stage patient_duplicates [check]: patients must be listed once
 -- reads: patient_base
@@ -111,6 +111,8 @@ FROM (
     END AS encounter_date,
     LOWER(TRIM(CAST(encounter_type AS STRING))) AS encounter_type
   FROM src_encounters
+  WHERE
+    source_problem IS NULL
 ) AS e
 JOIN patient_base AS p
   ON p.patient_id = e.patient_id
@@ -214,6 +216,8 @@ FROM (
     CAST(source AS STRING) AS raw_source,
     CAST(NULL AS INT) AS duration_days
   FROM src_diagnoses
+  WHERE
+    source_problem IS NULL
   UNION ALL
   SELECT
     patient_id,
@@ -249,6 +253,8 @@ FROM (
       END
     ) + 1 AS INT) AS duration_days
   FROM src_prescriptions
+  WHERE
+    source_problem IS NULL
 ) AS r
 JOIN patient_base AS p
   ON p.patient_id = r.patient_id
@@ -288,7 +294,8 @@ WITH read AS (
     NULLIF(TRIM(CAST(value_text AS STRING)), '') AS text_given,
     NULLIF(TRIM(CAST(unit AS STRING)), '') AS unit_given,
     copies,
-    source_position
+    source_position,
+    source_problem
   FROM (
     SELECT
       patient_id,
@@ -297,6 +304,7 @@ WITH read AS (
       unit,
       value,
       value_text,
+      source_problem,
       MIN(source_position) AS source_position,
       COUNT(*) AS copies
     FROM src_measurements
@@ -306,7 +314,8 @@ WITH read AS (
       measure,
       unit,
       value,
-      value_text
+      value_text,
+      source_problem
   ) AS d
 ), split AS (
   SELECT
@@ -353,7 +362,8 @@ WITH read AS (
     text_given,
     unit_given,
     copies,
-    source_position
+    source_position,
+    source_problem
   FROM split
 )
 SELECT
@@ -373,6 +383,8 @@ SELECT
     ELSE u.factor * r.reading / u.divisor
   END + u.offset_value AS value,
   CASE
+    WHEN NOT r.source_problem IS NULL
+    THEN r.source_problem
     WHEN p.patient_id IS NULL
     THEN 'orphan patient'
     WHEN r.obs_date IS NULL
@@ -2340,7 +2352,13 @@ WITH summary AS (
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
-      CASE WHEN patient_id IS NULL THEN 'missing patient_id' ELSE 'used' END AS reason,
+      CASE
+        WHEN NOT source_problem IS NULL
+        THEN source_problem
+        WHEN patient_id IS NULL
+        THEN 'missing patient_id'
+        ELSE 'used'
+      END AS reason,
       copies,
       source_position,
       patient_id IS NULL AS no_patient_id
@@ -2354,6 +2372,7 @@ WITH summary AS (
         practice_id,
         registration_date,
         deregistration_date,
+        source_problem,
         MIN(source_position) AS source_position,
         COUNT(*) AS copies
       FROM src_patients
@@ -2365,7 +2384,8 @@ WITH summary AS (
         birth_year,
         practice_id,
         registration_date,
-        deregistration_date
+        deregistration_date,
+        source_problem
     ) AS g
   ) AS c
   GROUP BY
@@ -2380,6 +2400,8 @@ WITH summary AS (
   FROM (
     SELECT
       CASE
+        WHEN NOT r.source_problem IS NULL
+        THEN r.source_problem
         WHEN p.patient_id IS NULL
         THEN 'orphan patient'
         WHEN r.row_date IS NULL
@@ -2411,13 +2433,15 @@ WITH summary AS (
           patient_id,
           encounter_date,
           encounter_type,
+          source_problem,
           MIN(source_position) AS source_position,
           COUNT(*) AS copies
         FROM src_encounters
         GROUP BY
           patient_id,
           encounter_date,
-          encounter_type
+          encounter_type,
+          source_problem
       ) AS g
     ) AS r
     LEFT JOIN patient_base AS p
@@ -2435,6 +2459,8 @@ WITH summary AS (
   FROM (
     SELECT
       CASE
+        WHEN NOT r.source_problem IS NULL
+        THEN r.source_problem
         WHEN p.patient_id IS NULL
         THEN 'orphan patient'
         WHEN r.row_date IS NULL
@@ -2472,6 +2498,7 @@ WITH summary AS (
           code_system,
           code,
           source,
+          source_problem,
           MIN(source_position) AS source_position,
           COUNT(*) AS copies
         FROM src_diagnoses
@@ -2480,7 +2507,8 @@ WITH summary AS (
           event_date,
           code_system,
           code,
-          source
+          source,
+          source_problem
       ) AS g
     ) AS r
     LEFT JOIN patient_base AS p
@@ -2503,6 +2531,8 @@ WITH summary AS (
   FROM (
     SELECT
       CASE
+        WHEN NOT r.source_problem IS NULL
+        THEN r.source_problem
         WHEN p.patient_id IS NULL
         THEN 'orphan patient'
         WHEN r.row_date IS NULL
@@ -2539,6 +2569,8 @@ WITH summary AS (
           start_date,
           atc,
           stop_date,
+          drug_text,
+          source_problem,
           MIN(source_position) AS source_position,
           COUNT(*) AS copies
         FROM src_prescriptions
@@ -2546,7 +2578,9 @@ WITH summary AS (
           patient_id,
           start_date,
           atc,
-          stop_date
+          stop_date,
+          drug_text,
+          source_problem
       ) AS g
     ) AS r
     LEFT JOIN patient_base AS p
