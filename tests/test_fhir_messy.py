@@ -37,6 +37,7 @@ import polars as pl
 import pytest
 
 from pipeline._build import BuildOptions, build_study
+from pipeline._profile import profile_extract
 from pipeline.compile._quality import SET_ASIDE_REASONS
 from pipeline.engine._fhir import READER_REASONS, STATUS_SET_ASIDE
 from pipeline.errors import ExtractError, UnusableBuildError
@@ -213,3 +214,25 @@ def test_mostly_malformed_lines_stop_the_build_with_file_and_line(tmp_path: Path
     (folder / "Observation.ndjson").write_text("\n".join(lines) + "\n", encoding="utf-8")
     with pytest.raises(UnusableBuildError, match=r"malformed line.*Observation.ndjson row 2"):
         build_study(DEMO_STUDY, BuildOptions(extract=folder, out=tmp_path / "out"))
+
+
+def test_profile_counts_what_the_build_counts(tmp_path: Path) -> None:
+    # One more copy of OB-202's line: a duplicate id the profile names with its two lines.
+    folder = tmp_path / "extract"
+    shutil.copytree(MESSY, folder)
+    second = (MESSY / "Patient.ndjson").read_text(encoding="utf-8").splitlines()[1]
+    with (folder / "Patient.ndjson").open("a", encoding="utf-8") as handle:
+        handle.write(second + "\n")
+    profile = profile_extract(folder)
+    tables = profile["tables"]
+    assert tables["patients"]["duplicate_patient_ids"] == [
+        {"patient_id": "OB-202", "rows": 2, "where": ["Patient.ndjson:2", "Patient.ndjson:10"]}
+    ]
+    for (table, reason), (n_rows, first) in EXPECTED_QUALITY.items():
+        if reason in READER_REASONS:
+            assert tables[table]["set_aside_by_reader"][reason] == {"rows": n_rows, "first": first}
+    assert tables["encounters"]["orphan_rows"] == 1  # OB-205, as the build counts it
+    assert tables["encounters"]["rows_without_patient"] == 2
+    assert tables["measurements"]["rows_without_patient"] == 1
+    assert tables["diagnoses"]["missing_dates"] == 1
+    assert all(tables[t]["orphan_rows"] == 0 for t in ("diagnoses", "prescriptions"))
