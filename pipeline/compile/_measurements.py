@@ -99,6 +99,7 @@ SELECT
   r.unit_given AS raw_unit,
   r.copies,
   r.source_position,
+  r.source_problem,
   u.factor * r.reading / u.divisor + u.offset_value AS value,
   CASE
     WHEN r.source_problem IS NOT NULL THEN r.source_problem
@@ -260,7 +261,9 @@ def _judged_rows(ctx: CompileContext) -> exp.Query:
 
 
 _JUDGED = """
-SELECT patient_id, obs_date, measure, value, qualifier, category, copies, source_position, problem
+SELECT
+  patient_id, obs_date, measure, value, qualifier, category, copies, source_position,
+  source_problem, problem
 FROM measurement_rows
 """
 

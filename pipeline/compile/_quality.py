@@ -214,7 +214,7 @@ SELECT
   END AS reason,
   r.copies,
   r.source_position,
-  r.patient_id IS NULL AS no_patient_id
+  r.patient_id IS NULL OR r.source_problem IS NOT NULL AS counted_whole
 FROM :rows
 LEFT JOIN patient_base AS p ON p.patient_id = r.patient_id
 """
@@ -222,7 +222,10 @@ LEFT JOIN patient_base AS p ON p.patient_id = r.patient_id
 # Every measurement row was judged in measurement_judged.
 _MEASUREMENTS = """
 SELECT
-  COALESCE(problem, 'used') AS reason, copies, source_position, patient_id IS NULL AS no_patient_id
+  COALESCE(problem, 'used') AS reason,
+  copies,
+  source_position,
+  patient_id IS NULL OR source_problem IS NOT NULL AS counted_whole
 FROM measurement_judged
 """
 
@@ -235,7 +238,7 @@ SELECT
   END AS reason,
   copies,
   source_position,
-  patient_id IS NULL AS no_patient_id
+  patient_id IS NULL OR source_problem IS NOT NULL AS counted_whole
 FROM :rows
 """
 
@@ -244,13 +247,14 @@ FROM :rows
 # of different patients would otherwise meet on a NULL id and their date and code, and an
 # extract whose ids all differ in type from the patients table's would show most of its rows
 # as duplicates (a design reason, which never stops a build) instead of orphans. Such rows are
-# all counted under their reason.
+# all counted under their reason. So is a row the FHIR reader set aside (source_problem): two
+# medications without an ATC coding, on the same day, are two drugs, not one and a copy.
 _SUMMARY = """
 SELECT
   reason,
   :table_name AS source_table,
-  SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
-  SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
+  SUM(CASE WHEN counted_whole THEN copies ELSE 1 END) AS distinct_rows,
+  SUM(CASE WHEN counted_whole THEN 0 ELSE copies - 1 END) AS duplicates,
   MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
 FROM :classified
 GROUP BY reason

@@ -27,9 +27,7 @@ DIAGNOSES = SourceTable(
     "diagnoses", required=("patient_id", "event_date", "code_system", "code"), optional=("source",)
 )
 PRESCRIPTIONS = SourceTable(
-    "prescriptions",
-    required=("patient_id", "start_date", "atc"),
-    optional=("stop_date", "drug_text"),
+    "prescriptions", required=("patient_id", "start_date", "atc"), optional=("stop_date",)
 )
 MEASUREMENTS = SourceTable(
     "measurements",

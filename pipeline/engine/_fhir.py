@@ -30,7 +30,8 @@ Resources map to rows as follows (the Bulk Data file name says which type a file
   ATC coding (one row with no ``atc`` when there is none, set aside as an unknown code system;
   ``medication not found`` when the reference leads nowhere). ``drug_text`` is the
   medication's text, else its first coding's display, else (no ATC) its first coding as
-  ``system|code``, else the reference: the drug's identity, part of the exact-duplicate key.
+  ``system|code``, else the reference. Rows the reader sets aside are never exact
+  duplicates, so two drugs without ATC on one day stay two rows.
   Requests start at ``authoredOn`` and stop at the first dosage instruction's
   ``timing.repeat.boundsPeriod.end``, else ``dispenseRequest.validityPeriod.end``; statements
   use ``effectiveDateTime`` or ``effectivePeriod``. A stop before the start is set aside.

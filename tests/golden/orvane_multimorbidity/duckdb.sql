@@ -6,7 +6,7 @@
 
 -- reads src_diagnoses: patient_id, event_date, code_system, code, source
 
--- reads src_prescriptions: patient_id, start_date, atc, stop_date, drug_text
+-- reads src_prescriptions: patient_id, start_date, atc, stop_date
 
 -- reads src_measurements: patient_id, obs_date, measure, unit, value, value_text
 
@@ -271,6 +271,7 @@ SELECT
   r.unit_given AS raw_unit,
   r.copies,
   r.source_position,
+  r.source_problem,
   u.factor * r.reading / u.divisor + u.offset_value AS value,
   CASE
     WHEN NOT r.source_problem IS NULL
@@ -342,6 +343,8 @@ LEFT JOIN (VALUES
   ('creatinine', 'μmol/L', 1.0, 88.42, 0.0, 0.1, 20.0),
   ('creatinine', 'umol/l', 1.0, 88.42, 0.0, 0.1, 20.0),
   ('creatinine', 'µmol/l', 1.0, 88.42, 0.0, 0.1, 20.0),
+  ('creatinine', 'mmol/L', 1000.0, 88.42, 0.0, 0.1, 20.0),
+  ('creatinine', 'mmol/l', 1000.0, 88.42, 0.0, 0.1, 20.0),
   ('dbp', 'mmHg', 1.0, 1.0, 0.0, 20.0, 200.0),
   ('dbp', 'mm[Hg]', 1.0, 1.0, 0.0, 20.0, 200.0),
   ('dbp', 'mm Hg', 1.0, 1.0, 0.0, 20.0, 200.0),
@@ -361,6 +364,7 @@ LEFT JOIN (VALUES
   ('height', 'cm', 1.0, 1.0, 0.0, 40.0, 250.0),
   ('height', 'm', 100.0, 1.0, 0.0, 40.0, 250.0),
   ('height', 'mm', 1.0, 10.0, 0.0, 40.0, 250.0),
+  ('height', '[in_i]', 2.54, 1.0, 0.0, 40.0, 250.0),
   ('ldl', 'mmol/L', 1.0, 1.0, 0.0, 0.2, 15.0),
   ('ldl', 'mmol/l', 1.0, 1.0, 0.0, 0.2, 15.0),
   ('ldl', 'mg/dL', 1.0, 38.67, 0.0, 0.2, 15.0),
@@ -373,7 +377,8 @@ LEFT JOIN (VALUES
   ('total_cholesterol', 'mg/dL', 1.0, 38.67, 0.0, 1.0, 20.0),
   ('total_cholesterol', 'mg/dl', 1.0, 38.67, 0.0, 1.0, 20.0),
   ('weight', 'kg', 1.0, 1.0, 0.0, 2.0, 400.0),
-  ('weight', 'g', 1.0, 1000.0, 0.0, 2.0, 400.0)) AS u(measure, unit, factor, divisor, offset_value, low, high)
+  ('weight', 'g', 1.0, 1000.0, 0.0, 2.0, 400.0),
+  ('weight', '[lb_av]', 0.45359237, 1.0, 0.0, 2.0, 400.0)) AS u(measure, unit, factor, divisor, offset_value, low, high)
   ON u.measure = r.measure AND u.unit = r.unit;
 
 -- stage measurement_judged [table]: every measurement row parsed, converted and judged: values and quality log
@@ -387,6 +392,7 @@ SELECT
   category,
   copies,
   source_position,
+  source_problem,
   problem
 FROM measurement_rows;
 
@@ -2165,8 +2171,8 @@ WITH summary AS (
   SELECT
     reason,
     'patients' AS source_table,
-    SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
-    SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
+    SUM(CASE WHEN counted_whole THEN copies ELSE 1 END) AS distinct_rows,
+    SUM(CASE WHEN counted_whole THEN 0 ELSE copies - 1 END) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
@@ -2179,7 +2185,7 @@ WITH summary AS (
       END AS reason,
       copies,
       source_position,
-      patient_id IS NULL AS no_patient_id
+      patient_id IS NULL OR NOT source_problem IS NULL AS counted_whole
     FROM (
       SELECT
         patient_id,
@@ -2212,8 +2218,8 @@ WITH summary AS (
   SELECT
     reason,
     'encounters' AS source_table,
-    SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
-    SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
+    SUM(CASE WHEN counted_whole THEN copies ELSE 1 END) AS distinct_rows,
+    SUM(CASE WHEN counted_whole THEN 0 ELSE copies - 1 END) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
@@ -2234,7 +2240,7 @@ WITH summary AS (
       END AS reason,
       r.copies,
       r.source_position,
-      r.patient_id IS NULL AS no_patient_id
+      r.patient_id IS NULL OR NOT r.source_problem IS NULL AS counted_whole
     FROM (
       SELECT
         *,
@@ -2264,8 +2270,8 @@ WITH summary AS (
   SELECT
     reason,
     'diagnoses' AS source_table,
-    SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
-    SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
+    SUM(CASE WHEN counted_whole THEN copies ELSE 1 END) AS distinct_rows,
+    SUM(CASE WHEN counted_whole THEN 0 ELSE copies - 1 END) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
@@ -2286,7 +2292,7 @@ WITH summary AS (
       END AS reason,
       r.copies,
       r.source_position,
-      r.patient_id IS NULL AS no_patient_id
+      r.patient_id IS NULL OR NOT r.source_problem IS NULL AS counted_whole
     FROM (
       SELECT
         *,
@@ -2329,8 +2335,8 @@ WITH summary AS (
   SELECT
     reason,
     'prescriptions' AS source_table,
-    SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
-    SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
+    SUM(CASE WHEN counted_whole THEN copies ELSE 1 END) AS distinct_rows,
+    SUM(CASE WHEN counted_whole THEN 0 ELSE copies - 1 END) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
@@ -2351,7 +2357,7 @@ WITH summary AS (
       END AS reason,
       r.copies,
       r.source_position,
-      r.patient_id IS NULL AS no_patient_id
+      r.patient_id IS NULL OR NOT r.source_problem IS NULL AS counted_whole
     FROM (
       SELECT
         *,
@@ -2366,7 +2372,6 @@ WITH summary AS (
           start_date,
           atc,
           stop_date,
-          drug_text,
           source_problem,
           MIN(source_position) AS source_position,
           COUNT(*) AS copies
@@ -2376,7 +2381,6 @@ WITH summary AS (
           start_date,
           atc,
           stop_date,
-          drug_text,
           source_problem
       ) AS g
     ) AS r
@@ -2394,15 +2398,15 @@ WITH summary AS (
   SELECT
     reason,
     'measurements' AS source_table,
-    SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
-    SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
+    SUM(CASE WHEN counted_whole THEN copies ELSE 1 END) AS distinct_rows,
+    SUM(CASE WHEN counted_whole THEN 0 ELSE copies - 1 END) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       COALESCE(problem, 'used') AS reason,
       copies,
       source_position,
-      patient_id IS NULL AS no_patient_id
+      patient_id IS NULL OR NOT source_problem IS NULL AS counted_whole
     FROM measurement_judged
   ) AS c
   GROUP BY
