@@ -357,12 +357,31 @@ def profile(
     result = _fail_cleanly(lambda: profile_extract(source, threshold=threshold), debug=debug)
     console = Console(highlight=False)
     table = Table(title=f"extract {extract}")
-    for column in ("table", "rows", "first date", "last date", "unreadable dates", "orphans"):
-        table.add_column(column, justify="left" if column == "table" else "right")
+    columns = {
+        "rows": "rows",
+        "first_date": "first date",
+        "last_date": "last date",
+        "unreadable_dates": "unreadable dates",
+        "missing_dates": "missing dates",
+        "orphan_rows": "orphans",
+        "rows_without_patient": "no patient",
+    }
+    table.add_column("table")
+    for column in columns.values():
+        table.add_column(column, justify="right")
     for name, facts in result["tables"].items():
-        keys = ("rows", "first_date", "last_date", "unreadable_dates", "orphan_rows")
-        table.add_row(name, *(_cell(facts.get(key)) for key in keys))
+        table.add_row(name, *(_cell(facts.get(key)) for key in columns))
     console.print(table)
+    for name, facts in result["tables"].items():
+        for reason, found in facts.get("set_aside_by_reader", {}).items():
+            console.print(
+                f"{name}: {found['rows']:,} set aside: {reason} (first at {found['first']})"
+            )
+    for duplicate in result["tables"]["patients"].get("duplicate_patient_ids", []):
+        where = ", ".join(duplicate["where"])
+        console.print(
+            f"warning: patient id {duplicate['patient_id']} on {duplicate['rows']} rows: {where}"
+        )
     console.print(result["release"])
     for path in _fail_cleanly(lambda: write_profile(result, out), debug=debug):
         console.print(str(path))

@@ -168,12 +168,25 @@ def test_cohort_from_fhir_equals_cohort_from_csv(builds: dict[str, Path]) -> Non
     assert (builds["fhir"] / "attrition.csv").read_text() == (
         builds["csv"] / "attrition.csv"
     ).read_text()
-    # Only CSV rows have positions (first_file, first_row); the counts must be the same.
-    quality = [pl.read_csv(builds[name] / "quality.csv") for name in ("fhir", "csv")]
-    assert quality[0]["first_row"].null_count() == quality[0].height
-    assert quality[1]["first_row"].null_count() < quality[1].height
-    located = ["first_file", "first_row"]
-    assert quality[0].drop(located).equals(quality[1].drop(located))
+    # Both name the first row of each reason (FHIR: the line); the FHIR reader says more
+    # precisely why a row was set aside, and the used rows are the same.
+    quality = {name: _quality(builds[name]) for name in ("fhir", "csv")}
+    assert quality["fhir"]["encounters", "missing date"] == ("1", "Encounter.ndjson", "21")
+    assert quality["csv"]["encounters", "unparseable date"] == ("1", "encounters.csv", "21")
+    assert quality["fhir"]["diagnoses", "year-only date"] == ("1", "Condition.ndjson", "5")
+    assert quality["fhir"]["prescriptions", "unknown code system"][0] == "1"  # RxNorm only
+    assert quality["csv"]["prescriptions", "malformed code"][0] == "1"  # no atc
+    for table in TABLES:
+        used = [quality[name][table, "used"][0] for name in ("fhir", "csv")]
+        assert used[0] == used[1], table
+
+
+def _quality(out: Path) -> dict[tuple[str, str], tuple[str, str, str]]:
+    with (out / "quality.csv").open(encoding="utf-8") as handle:
+        return {
+            (r["source_table"], r["reason"]): (r["n_rows"], r["first_file"], r["first_row"])
+            for r in csv.DictReader(handle)
+        }
 
 
 def test_every_fhir_row_is_accounted_for(builds: dict[str, Path]) -> None:
@@ -200,7 +213,8 @@ def test_every_fhir_row_is_accounted_for(builds: dict[str, Path]) -> None:
 def test_builders_give_the_declared_columns() -> None:
     assert set(BUILDERS) == set(FHIR_COLUMNS)
     for name, builder in BUILDERS.items():
-        assert tuple(builder({}).named_selects) == FHIR_COLUMNS[name]
+        given = FHIR_COLUMNS[name] + ("source_position", "source_problem")
+        assert tuple(builder({}).named_selects) == given
 
 
 def test_missing_resource_types_give_empty_tables(tmp_path: Path) -> None:
@@ -217,7 +231,7 @@ def test_missing_resource_types_give_empty_tables(tmp_path: Path) -> None:
     assert tables["diagnoses"].files == ()
     result = build_study(DEMO_STUDY, BuildOptions(extract=export, out=tmp_path / "out"))
     assert result.run.outputs["cohort"].num_rows == 5
-    assert "READ_JSON" in fhir_source(tables["measurements"]).sql("duckdb").upper()
+    assert "READ_CSV" in fhir_source(tables["measurements"]).sql("duckdb").upper()
 
 
 def test_folder_without_patients_or_with_both_kinds_is_refused(tmp_path: Path) -> None:

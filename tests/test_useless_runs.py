@@ -22,6 +22,7 @@ from pipeline._profile import profile_extract
 from pipeline.cli import app
 from pipeline.compile._quality import SET_ASIDE_REASONS
 from pipeline.config import load_study
+from pipeline.engine._fhir import READER_REASONS
 from pipeline.errors import ConfigError, UnusableBuildError
 from pipeline.outputs._usability import misread_shares
 
@@ -100,13 +101,20 @@ def test_every_reason_of_the_quality_log_is_classified() -> None:
     assert "exact duplicate" in found  # the walk reaches the log's own literals
     assert "unit not convertible" in found  # and the measurements' judgement
     assert "unknown code system" in found  # and extract_codes
-    assert found == set(SET_ASIDE_REASONS)
+    # and the reasons the FHIR reader gives in source_problem, before any stage
+    assert found | set(READER_REASONS) == set(SET_ASIDE_REASONS)
 
 
 def test_design_reasons_are_the_ones_the_issue_names() -> None:
     # From the issue: these follow from the study's design and never stop a build.
     design = {r for r, kind in SET_ASIDE_REASONS.items() if not kind.misread}
-    assert design == {"after end of data", "after death", "unknown measure", "exact duplicate"}
+    assert design == {"after end of data", "after death", "unknown measure", "exact duplicate"} | {
+        # FHIR statuses (issue 26): recorded as not having happened, whatever their share
+        "entered in error",
+        "refuted",
+        "not taken",
+        "cancelled",
+    }
     assert all(kind.hint.strip() for kind in SET_ASIDE_REASONS.values())
 
 

@@ -52,7 +52,8 @@ WITH read AS (
     NULLIF(TRIM(CAST(value_text AS VARCHAR)), '') AS text_given,
     NULLIF(TRIM(CAST(unit AS VARCHAR)), '') AS unit_given,
     copies,
-    source_position
+    source_position,
+    source_problem
   FROM :distinct_rows
 ), split AS (
   SELECT
@@ -83,7 +84,8 @@ WITH read AS (
     text_given,
     unit_given,
     copies,
-    source_position
+    source_position,
+    source_problem
   FROM split
 )
 SELECT
@@ -97,8 +99,10 @@ SELECT
   r.unit_given AS raw_unit,
   r.copies,
   r.source_position,
+  r.source_problem,
   u.factor * r.reading / u.divisor + u.offset_value AS value,
   CASE
+    WHEN r.source_problem IS NOT NULL THEN r.source_problem
     WHEN p.patient_id IS NULL THEN 'orphan patient'
     WHEN r.obs_date IS NULL THEN 'unparseable date'
     WHEN r.obs_date > :end_of_data THEN 'after end of data'
@@ -257,7 +261,9 @@ def _judged_rows(ctx: CompileContext) -> exp.Query:
 
 
 _JUDGED = """
-SELECT patient_id, obs_date, measure, value, qualifier, category, copies, source_position, problem
+SELECT
+  patient_id, obs_date, measure, value, qualifier, category, copies, source_position,
+  source_problem, problem
 FROM measurement_rows
 """
 

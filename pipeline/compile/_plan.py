@@ -15,12 +15,17 @@ from sqlglot import exp
 SOURCE_DIALECT = "duckdb"
 
 
-# Every source relation also carries ``source_position``: where a CSV row sits in its table's
-# files, as file index * POSITION_BASE + row number (1 = the first record after the header).
-# Parquet and FHIR rows have none (NULL). The quality log names the first row set aside per
-# reason with it.
+# Every source relation also carries ``source_position``: where a row sits in its table's
+# files, as file index * POSITION_BASE + row number (CSV: 1 = the first record after the
+# header; FHIR NDJSON: the line number). Parquet rows have none (NULL). The quality log names
+# the first row set aside per reason with it.
 SOURCE_POSITION = "source_position"
 POSITION_BASE = 10**12
+# Every source relation also carries ``source_problem``: the reason the reader itself set a row
+# aside before any stage judged it (a FHIR line that is not JSON, a resource of another type, a
+# refuted diagnosis...), NULL for a row the reader has nothing against (every CSV and Parquet
+# row). The quality log gives it first; no stage uses such a row.
+SOURCE_PROBLEM = "source_problem"
 
 
 @dataclass(frozen=True)

@@ -76,9 +76,11 @@ SET_ASIDE_REASONS: dict[str, SetAsideReason] = {
     ),
     "unknown code system": SetAsideReason(
         misread=True,
-        tables=("diagnoses",),
+        tables=("diagnoses", "prescriptions"),
         hint="code_system holds values other than ICD10 and ICD9; translate the site's "
-        "labels in a site mapping file (values: {code_system: {ICD-10-CA: ICD10}}).",
+        "labels in a site mapping file (values: {code_system: {ICD-10-CA: ICD10}}). In a FHIR "
+        "export: no coding of the Condition has an ICD-10 or ICD-9-CM system, or no coding of "
+        "the medication has the ATC system (http://www.whocc.no/atc).",
     ),
     "malformed code": SetAsideReason(
         misread=True,
@@ -123,6 +125,67 @@ SET_ASIDE_REASONS: dict[str, SetAsideReason] = {
         hint="the values lie outside their measure's plausible range, which usually means "
         "the unit column does not describe them; check the unit and value columns.",
     ),
+    # Reasons only the FHIR reader gives (engine/_fhir.py, READER_REASONS), before any stage.
+    "malformed line": SetAsideReason(
+        misread=True,
+        tables=_ALL,
+        hint="lines of the NDJSON files are not JSON objects (cut off, two resources on one "
+        "line, stray text); the quality log names the first file and line; a bulk-data file "
+        "holds one resource per line.",
+    ),
+    "other resource type": SetAsideReason(
+        misread=True,
+        tables=_ALL,
+        hint="lines hold a resource of another type than the file's name says (a Bundle, a "
+        "Practitioner in Patient.ndjson); each bulk-data file holds one resource type and "
+        "Bundles are not unpacked: export the resources themselves.",
+    ),
+    "no patient reference": SetAsideReason(
+        misread=True,
+        tables=_EVENTS,
+        hint="the resources' subject is missing or does not refer to a Patient "
+        "(Patient/<id>); check that the export holds the patients' own resources.",
+    ),
+    "missing date": SetAsideReason(
+        misread=True,
+        tables=_EVENTS,
+        hint="the resources carry none of the date elements the reader takes a date from "
+        "(see the README's FHIR section); check that the export keeps them.",
+    ),
+    "year-only date": SetAsideReason(
+        misread=True,
+        tables=_EVENTS,
+        hint="the dates give a year only, too coarse for windows of days; an export that "
+        "coarsens dates cannot be used for this study.",
+    ),
+    "stop date before start date": SetAsideReason(
+        misread=True,
+        tables=("prescriptions",),
+        hint="the medication's stop date (boundsPeriod or validityPeriod end, "
+        "effectivePeriod end) is before its start; check the export's dates.",
+    ),
+    "medication not found": SetAsideReason(
+        misread=True,
+        tables=("prescriptions",),
+        hint="medicationReference points at no Medication, neither a contained one (#id) "
+        "nor one in the Medication files; include the Medication resources in the export.",
+    ),
+    "entered in error": SetAsideReason(
+        misread=False,
+        tables=_EVENTS,
+        hint="recorded as entered in error (status or verification status).",
+    ),
+    "refuted": SetAsideReason(
+        misread=False, tables=("diagnoses",), hint="a diagnosis ruled out (verification status)."
+    ),
+    "not taken": SetAsideReason(
+        misread=False, tables=("prescriptions",), hint="a medication the patient did not take."
+    ),
+    "cancelled": SetAsideReason(
+        misread=False,
+        tables=("encounters", "prescriptions", "measurements"),
+        hint="an encounter, order or observation cancelled before it happened.",
+    ),
     "after end of data": SetAsideReason(
         misread=False, tables=_EVENTS, hint="dated after the study's end_of_data."
     ),
@@ -141,6 +204,7 @@ SET_ASIDE_REASONS: dict[str, SetAsideReason] = {
 _DATED = """
 SELECT
   CASE
+    WHEN r.source_problem IS NOT NULL THEN r.source_problem
     WHEN p.patient_id IS NULL THEN 'orphan patient'
     WHEN r.row_date IS NULL THEN 'unparseable date'
     WHEN :problem IS NOT NULL THEN :problem
@@ -150,7 +214,7 @@ SELECT
   END AS reason,
   r.copies,
   r.source_position,
-  r.patient_id IS NULL AS no_patient_id
+  r.patient_id IS NULL OR r.source_problem IS NOT NULL AS counted_whole
 FROM :rows
 LEFT JOIN patient_base AS p ON p.patient_id = r.patient_id
 """
@@ -158,16 +222,23 @@ LEFT JOIN patient_base AS p ON p.patient_id = r.patient_id
 # Every measurement row was judged in measurement_judged.
 _MEASUREMENTS = """
 SELECT
-  COALESCE(problem, 'used') AS reason, copies, source_position, patient_id IS NULL AS no_patient_id
+  COALESCE(problem, 'used') AS reason,
+  copies,
+  source_position,
+  patient_id IS NULL OR source_problem IS NOT NULL AS counted_whole
 FROM measurement_judged
 """
 
 _PATIENTS = """
 SELECT
-  CASE WHEN patient_id IS NULL THEN 'missing patient_id' ELSE 'used' END AS reason,
+  CASE
+    WHEN source_problem IS NOT NULL THEN source_problem
+    WHEN patient_id IS NULL THEN 'missing patient_id'
+    ELSE 'used'
+  END AS reason,
   copies,
   source_position,
-  patient_id IS NULL AS no_patient_id
+  patient_id IS NULL OR source_problem IS NOT NULL AS counted_whole
 FROM :rows
 """
 
@@ -176,13 +247,14 @@ FROM :rows
 # of different patients would otherwise meet on a NULL id and their date and code, and an
 # extract whose ids all differ in type from the patients table's would show most of its rows
 # as duplicates (a design reason, which never stops a build) instead of orphans. Such rows are
-# all counted under their reason.
+# all counted under their reason. So is a row the FHIR reader set aside (source_problem): two
+# medications without an ATC coding, on the same day, are two drugs, not one and a copy.
 _SUMMARY = """
 SELECT
   reason,
   :table_name AS source_table,
-  SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
-  SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
+  SUM(CASE WHEN counted_whole THEN copies ELSE 1 END) AS distinct_rows,
+  SUM(CASE WHEN counted_whole THEN 0 ELSE copies - 1 END) AS duplicates,
   MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
 FROM :classified
 GROUP BY reason

@@ -10,7 +10,7 @@ from sqlglot import exp
 
 from pipeline.codes import SHAPES, normalised_code_sql
 from pipeline.compile._context import CompileContext
-from pipeline.compile._plan import SOURCE_POSITION, SourceTable, Stage
+from pipeline.compile._plan import SOURCE_POSITION, SOURCE_PROBLEM, SourceTable, Stage
 from pipeline.compile._sql import days_between, is_in, query, value
 from pipeline.config import Study
 
@@ -40,14 +40,15 @@ def grouped_rows(table: SourceTable, *, check_duplicates: bool) -> exp.Query:
     """Distinct rows of a source table with how many copies of each the extract holds.
 
     A row's position is its first copy's. Without the duplicate check every row stands alone
-    (``copies`` is 1): no grouping.
+    (``copies`` is 1): no grouping. The reader's own problem with a row (``source_problem``)
+    is part of the row: a refuted diagnosis is no copy of a confirmed one on the same day.
     """
-    rows = exp.select(*table.columns).from_(table.relation)
+    rows = exp.select(*table.columns, SOURCE_PROBLEM).from_(table.relation)
     if not check_duplicates:
         return rows.select(exp.column(SOURCE_POSITION), exp.Literal.number(1).as_("copies"))
     first = exp.func("MIN", exp.column(SOURCE_POSITION)).as_(SOURCE_POSITION)
     copies = exp.func("COUNT", exp.Star()).as_("copies")
-    return rows.select(first, copies).group_by(*table.columns)
+    return rows.select(first, copies).group_by(*table.columns, SOURCE_PROBLEM)
 
 
 def source_tables(ctx: CompileContext) -> tuple[SourceTable, ...]:
@@ -74,7 +75,7 @@ SELECT DISTINCT
   TRY_CAST(registration_date AS DATE) AS registration_date,
   TRY_CAST(deregistration_date AS DATE) AS deregistration_date
 FROM src_patients
-WHERE patient_id IS NOT NULL
+WHERE patient_id IS NOT NULL AND source_problem IS NULL
 """
 
 _PATIENT_DUPLICATES = """
@@ -94,6 +95,7 @@ FROM (
     TRY_CAST(encounter_date AS DATE) AS encounter_date,
     LOWER(TRIM(CAST(encounter_type AS VARCHAR))) AS encounter_type
   FROM src_encounters
+  WHERE source_problem IS NULL
 ) AS e
 JOIN patient_base AS p ON p.patient_id = e.patient_id
 WHERE e.encounter_date <= :end_of_data
@@ -123,6 +125,7 @@ SELECT
   :raw_source AS raw_source,
   CAST(NULL AS INT) AS duration_days
 FROM src_diagnoses
+WHERE source_problem IS NULL
 """
 
 _PRESCRIPTION_ROWS = """
@@ -135,6 +138,7 @@ SELECT
   :raw_source AS raw_source,
   CAST(:duration + 1 AS INT) AS duration_days
 FROM src_prescriptions
+WHERE source_problem IS NULL
 """
 
 _CODED_EVENTS = """

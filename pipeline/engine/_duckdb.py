@@ -18,7 +18,14 @@ import duckdb
 import pyarrow as pa
 from sqlglot import exp
 
-from pipeline.compile import POSITION_BASE, SOURCE_POSITION, Plan, SourceTable, Stage
+from pipeline.compile import (
+    POSITION_BASE,
+    SOURCE_POSITION,
+    SOURCE_PROBLEM,
+    Plan,
+    SourceTable,
+    Stage,
+)
 from pipeline.engine._fhir import fhir_source
 from pipeline.engine._mapped import source_column
 from pipeline.errors import EngineError, ExtractError
@@ -103,7 +110,8 @@ def _rows(table: ExtractTable) -> exp.Expression:
     every = exp.Star(except_=own) if own else exp.Star()
     no_position = exp.cast(exp.null(), "BIGINT").as_(SOURCE_POSITION)
     if table.file_format == "fhir":
-        return exp.select("*", no_position).from_(fhir_source(table).subquery("fhir")).subquery("r")
+        # The FHIR reader gives each row its file and line, and its own problem with it.
+        return fhir_source(table).subquery("r")
     if table.file_format == "parquet":
         return exp.select(every, no_position).from_(exp.Table(this=_reader(table))).subquery("r")
     parts = []
@@ -270,7 +278,12 @@ class DuckDBEngine:
                 else:
                     columns.append(source_column(table, name).as_(name))
             rows = _rows(table)
-            view = exp.select(*columns, exp.column(SOURCE_POSITION)).from_(rows)
+            problem = (
+                exp.column(SOURCE_PROBLEM)
+                if table.file_format == "fhir"
+                else exp.cast(exp.null(), "VARCHAR").as_(SOURCE_PROBLEM)
+            )
+            view = exp.select(*columns, exp.column(SOURCE_POSITION), problem).from_(rows)
             if patients is not None:
                 # Restrict every table to some patients (a trace); ids compared as typed values.
                 wanted = [

@@ -14,8 +14,9 @@ from typing import Any
 import duckdb
 from sqlglot import exp
 
-from pipeline.compile import SourceTable
-from pipeline.engine._duckdb import DuckDBEngine
+from pipeline.compile import POSITION_BASE, SourceTable
+from pipeline.engine._duckdb import DuckDBEngine, _read_failure
+from pipeline.errors import EngineError
 from pipeline.extract import ExtractTable
 
 DATE_COLUMNS = {
@@ -38,17 +39,42 @@ def _date(column: str) -> exp.Expression:
     return exp.TryCast(this=exp.column(column), to=exp.DataType.build("DATE"))
 
 
-def _table_profile(con: duckdb.DuckDBPyConnection, name: str) -> dict[str, Any]:
+def _where(position: int | None, table: ExtractTable) -> str | None:
+    """A source position as ``file:row`` (CSV: row after the header; NDJSON: the line)."""
+    if position is None:
+        return None
+    return f"{table.files[position // POSITION_BASE].name}:{position % POSITION_BASE}"
+
+
+def _table_profile(
+    con: duckdb.DuckDBPyConnection, name: str, table: ExtractTable
+) -> dict[str, Any]:
     relation = f"src_{name}"
     day = _date(DATE_COLUMNS[name])
-    raw = exp.column(DATE_COLUMNS[name])
+    given = exp.func(
+        "NULLIF",
+        exp.Trim(this=exp.cast(exp.column(DATE_COLUMNS[name]), "VARCHAR")),
+        exp.Literal.string(""),
+    )
+    problem = exp.column("source_problem")
     summary = exp.select(
         exp.func("COUNT", exp.Star()).as_("rows"),
         exp.Min(this=day).as_("first_date"),
         exp.Max(this=day.copy()).as_("last_date"),
-        exp.func("COUNT_IF", exp.and_(raw.is_(exp.null()).not_(), day.copy().is_(exp.null()))).as_(
-            "unreadable_dates"
-        ),
+        exp.func(
+            "COUNT_IF", exp.and_(given.copy().is_(exp.null()).not_(), day.copy().is_(exp.null()))
+        ).as_("unreadable_dates"),
+        # As the build counts them: not rows the reader set aside for another reason first.
+        exp.func(
+            "COUNT_IF",
+            exp.and_(
+                given.copy().is_(exp.null()),
+                exp.or_(problem.copy().is_(exp.null()), problem.copy().eq("missing date")),
+            ),
+        ).as_("missing_dates"),
+        # A FHIR resource whose subject is no Patient; an empty id in CSV is an orphan, as in
+        # the build.
+        exp.func("COUNT_IF", problem.copy().eq("no patient reference")).as_("rows_without_patient"),
     ).from_(relation)
     profile: dict[str, Any] = _fetch(con, summary)[0]
     per_year = (
@@ -59,9 +85,59 @@ def _table_profile(con: duckdb.DuckDBPyConnection, name: str) -> dict[str, Any]:
         .order_by("year")
     )
     profile["rows_per_year"] = {str(r["year"]): r["rows"] for r in _fetch(con, per_year)}
-    if name != "patients":
+    set_aside = (
+        exp.select(
+            problem.copy().as_("reason"),
+            exp.func("COUNT", exp.Star()).as_("rows"),
+            exp.func("MIN", exp.column("source_position")).as_("first"),
+        )
+        .from_(relation)
+        .where(problem.copy().is_(exp.null()).not_())
+        .group_by(problem.copy())
+        .order_by(problem.copy())
+    )
+    profile["set_aside_by_reader"] = {
+        r["reason"]: {"rows": r["rows"], "first": _where(r["first"], table)}
+        for r in _fetch(con, set_aside)
+    }
+    if name == "patients":
+        profile.pop("rows_without_patient")
+        profile["duplicate_patient_ids"] = _duplicate_ids(con, table)
+    else:
         profile["orphan_rows"] = _fetch(con, _orphans(relation))[0]["n"]
     return profile
+
+
+def _duplicate_ids(con: duckdb.DuckDBPyConnection, table: ExtractTable) -> list[dict[str, Any]]:
+    """Patient ids given on more than one row (the first five), with where each row is.
+
+    The build counts identical rows once (exact duplicates) and stops on rows that differ;
+    either way the analyst wants to find them before a study.
+    """
+    query = (
+        exp.select(
+            exp.column("patient_id"),
+            exp.func("COUNT", exp.Star()).as_("rows"),
+            exp.func("LIST", exp.column("source_position")).as_("positions"),
+        )
+        .from_("src_patients")
+        .where(
+            exp.and_(
+                exp.column("patient_id").is_(exp.null()).not_(),
+                exp.column("source_problem").is_(exp.null()),
+            )
+        )
+        .group_by(exp.column("patient_id"))
+        .having(exp.func("COUNT", exp.Star()) > exp.Literal.number(1))
+        .order_by(exp.column("patient_id"))
+        .limit(5)
+    )
+    found = []
+    for row in _fetch(con, query):
+        positions = sorted(p for p in row["positions"] if p is not None)
+        where = [w for w in (_where(p, table) for p in positions) if w]
+        found.append({"patient_id": str(row["patient_id"]), "rows": row["rows"], "where": where})
+    return found
 
 
 def _orphans(relation: str) -> exp.Query:
@@ -78,7 +154,12 @@ def _orphans(relation: str) -> exp.Query:
         exp.select("patient_id")
         .distinct()
         .from_("src_patients")
-        .where(exp.column("patient_id").is_(exp.null()).not_())
+        .where(
+            exp.and_(
+                exp.column("patient_id").is_(exp.null()).not_(),
+                exp.column("source_problem").is_(exp.null()),
+            )
+        )
     )
     return (
         exp.select(exp.func("COUNT", exp.Star()).as_("n"))
@@ -88,7 +169,12 @@ def _orphans(relation: str) -> exp.Query:
             on=exp.column("patient_id", "p").eq(exp.column("patient_id", "r")),
             join_type="LEFT",
         )
-        .where(exp.column("patient_id", "p").is_(exp.null()))
+        .where(
+            exp.and_(
+                exp.column("patient_id", "p").is_(exp.null()),
+                exp.column("source_problem", "r").is_(exp.null()),
+            )
+        )
     )
 
 
@@ -186,25 +272,39 @@ def profile_tables(
     """Profile every table found; see the module docstring for what is measured.
 
     ``threshold`` is the smallest number of numeric values whose percentiles are given.
+
+    Raises:
+        ExtractError: A file cannot be read (named with its line), as in a build.
+        EngineError: DuckDB failed otherwise.
     """
     with tempfile.TemporaryDirectory(prefix="ascertain-profile-") as scratch:
         con = engine._connect(Path(scratch))
         try:
-            engine._bind(con, sources, tables)
-            result: dict[str, Any] = {
-                "tables": {s.name: _table_profile(con, s.name) for s in sources}
-            }
-            if "diagnoses" in tables:
-                system = exp.Upper(
-                    this=exp.Trim(this=exp.cast(exp.column("code_system"), "VARCHAR"))
-                )
-                result["diagnosis_codes"] = _top_codes(con, "src_diagnoses", system, "code")
-            if "prescriptions" in tables:
-                result["prescription_codes"] = _top_codes(
-                    con, "src_prescriptions", exp.Literal.string("ATC"), "atc"
-                )
-            if "measurements" in tables:
-                result["measures"] = _measures(con, threshold)
+            return _profile(con, engine, sources, tables, threshold)
+        except duckdb.Error as err:
+            raise _read_failure(err) or EngineError(f"DuckDB failed: {err}") from err
         finally:
             con.close()
+
+
+def _profile(
+    con: duckdb.DuckDBPyConnection,
+    engine: DuckDBEngine,
+    sources: tuple[SourceTable, ...],
+    tables: dict[str, ExtractTable],
+    threshold: int,
+) -> dict[str, Any]:
+    engine._bind(con, sources, tables)
+    result: dict[str, Any] = {
+        "tables": {s.name: _table_profile(con, s.name, tables[s.name]) for s in sources}
+    }
+    if "diagnoses" in tables:
+        system = exp.Upper(this=exp.Trim(this=exp.cast(exp.column("code_system"), "VARCHAR")))
+        result["diagnosis_codes"] = _top_codes(con, "src_diagnoses", system, "code")
+    if "prescriptions" in tables:
+        result["prescription_codes"] = _top_codes(
+            con, "src_prescriptions", exp.Literal.string("ATC"), "atc"
+        )
+    if "measurements" in tables:
+        result["measures"] = _measures(con, threshold)
     return result

@@ -17,7 +17,14 @@ from typing import TYPE_CHECKING, Any
 import pyarrow as pa
 from sqlglot import exp
 
-from pipeline.compile import POSITION_BASE, SOURCE_POSITION, Plan, SourceTable, Stage
+from pipeline.compile import (
+    POSITION_BASE,
+    SOURCE_POSITION,
+    SOURCE_PROBLEM,
+    Plan,
+    SourceTable,
+    Stage,
+)
 from pipeline.engine._duckdb import _INTEGER_ID, RunResult, StageCallback, StageReport
 from pipeline.engine._mapped import source_column
 from pipeline.engine._spark_sql import spark_plan, spark_query, try_cast
@@ -314,7 +321,9 @@ class SparkEngine:
                     columns.append(try_cast(column, id_type).as_(name))
                 else:
                     columns.append(source_column(table, name).as_(name))
-            view = exp.select(*columns, exp.column(SOURCE_POSITION)).from_(raw)
+            # Spark reads no FHIR, the one reader that sets rows aside itself.
+            problem = exp.cast(exp.null(), "VARCHAR").as_(SOURCE_PROBLEM)
+            view = exp.select(*columns, exp.column(SOURCE_POSITION), problem).from_(raw)
             if patients is not None:
                 wanted = [try_cast(exp.Literal.string(p), id_type) for p in patients]
                 typed = try_cast(exp.column("patient_id"), id_type)

@@ -139,7 +139,8 @@ FHIR_RESOURCES: dict[str, tuple[str, ...]] = {
     "patients": ("Patient",),
     "encounters": ("Encounter",),
     "diagnoses": ("Condition",),
-    "prescriptions": ("MedicationRequest", "MedicationStatement"),
+    # Medication resources give no rows: medicationReference is followed to them.
+    "prescriptions": ("Medication", "MedicationRequest", "MedicationStatement"),
     "measurements": ("Observation",),
 }
 FHIR_COLUMNS: dict[str, tuple[str, ...]] = {
@@ -164,6 +165,19 @@ def _fhir_type(path: Path) -> str | None:
     return match.group(1) if match else None
 
 
+def _has_resources(path: Path) -> bool:
+    """Whether an NDJSON file holds anything but blank space (read up to its first byte)."""
+    opener = gzip.open if path.name.endswith(".gz") else open
+    try:
+        with opener(path, "rb") as handle:
+            while chunk := handle.read(1 << 16):
+                if chunk.strip(b" \t\r\n\xef\xbb\xbf"):
+                    return True
+    except (OSError, EOFError) as err:
+        raise ExtractError(f"{path}: cannot be read: {err}") from err
+    return False
+
+
 def _discover_fhir(
     folder: Path, files: list[Path], tables: tuple[SourceTable, ...]
 ) -> dict[str, ExtractTable]:
@@ -183,6 +197,10 @@ def _discover_fhir(
             raise ExtractError(
                 f"{folder}: FHIR export without Patient resources (looked for Patient*.ndjson)"
             )
+        if table.name == "patients" and not any(_has_resources(path) for _, path in mine):
+            # Every event would be an orphan: say what is wrong instead.
+            names = ", ".join(path.name for _, path in mine)
+            raise ExtractError(f"{folder}: FHIR export without Patient resources ({names} empty)")
         found[table.name] = ExtractTable(
             table.name,
             tuple(path for _, path in mine),

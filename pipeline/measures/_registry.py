@@ -18,6 +18,12 @@ HBA1C_NGSP_SLOPE = 0.09148
 HBA1C_NGSP_INTERCEPT = 2.152
 # Glucose: molar mass 180.156 g/mol, so 1 mmol/L = 18.0156 mg/dL.
 GLUCOSE_MG_DL_PER_MMOL_L = 18.0156
+# Creatinine in mmol/L: 1 mmol/L = 1000 umol/L (SI prefixes), then umol/L as above.
+CREATININE_UMOL_PER_MMOL = 1000.0
+# Avoirdupois pound and international inch, exact by definition (International Yard and Pound
+# Agreement, 1959; the UCUM codes [lb_av] and [in_i] are defined from them).
+KG_PER_POUND = 0.45359237
+CM_PER_INCH = 2.54
 # Cholesterol: molar mass 386.65 g/mol, so 1 mmol/L = 38.67 mg/dL (from memory; common practice).
 CHOLESTEROL_MG_DL_PER_MMOL_L = 38.67
 
@@ -108,6 +114,10 @@ MEASURES: dict[str, Measure] = {
                     UnitConversion(s, 1.0, divisor=CREATININE_UMOL_PER_MG_DL)
                     for s in ("umol/L", "µmol/L", "μmol/L", "umol/l", "µmol/l")
                 ),
+                *(
+                    UnitConversion(s, CREATININE_UMOL_PER_MMOL, divisor=CREATININE_UMOL_PER_MG_DL)
+                    for s in ("mmol/L", "mmol/l")
+                ),
             ),
             (0.1, 20.0),
         ),
@@ -116,7 +126,14 @@ MEASURES: dict[str, Measure] = {
         Measure("dbp", "mmHg", _same("mmHg", "mm[Hg]", "mm Hg"), (20.0, 200.0)),
         Measure("bmi", "kg/m2", _same("kg/m2", "kg/m²", "kg/m^2"), (10.0, 80.0)),
         Measure(
-            "weight", "kg", (*_same("kg"), UnitConversion("g", 1.0, divisor=1000.0)), (2.0, 400.0)
+            "weight",
+            "kg",
+            (
+                *_same("kg"),
+                UnitConversion("g", 1.0, divisor=1000.0),
+                UnitConversion("[lb_av]", KG_PER_POUND),  # UCUM's code; "lb" is not read
+            ),
+            (2.0, 400.0),
         ),
         Measure(
             "total_cholesterol",
@@ -142,7 +159,12 @@ MEASURES: dict[str, Measure] = {
         Measure(
             "height",
             "cm",
-            (*_same("cm"), UnitConversion("m", 100.0), UnitConversion("mm", 1.0, divisor=10.0)),
+            (
+                *_same("cm"),
+                UnitConversion("m", 100.0),
+                UnitConversion("mm", 1.0, divisor=10.0),
+                UnitConversion("[in_i]", CM_PER_INCH),  # UCUM's code
+            ),
             (40.0, 250.0),
         ),
     )
