@@ -452,7 +452,7 @@ def test_hostile_table_is_counted_as_for_files(orvane: Server, tmp_path: Path) -
     study.write_text(text.replace("../conditions", str(DEMO_STUDY.parent.parent / "conditions")))
     quality = {}
     for kind, extract in (("csv", folder), ("database", _uri(orvane, "hostile"))):
-        out = tmp_path / kind
+        out = tmp_path / "out" / kind
         build_study(study, BuildOptions(extract=extract, out=out))
         frame = pl.read_csv(out / "quality.csv").filter(pl.col("source_table") == "diagnoses")
         quality[kind] = frame.drop("first_file", "first_row")
