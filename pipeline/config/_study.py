@@ -437,14 +437,18 @@ RESERVED_COLUMNS = ("patient_id", "index_date", "age_at_index", "sex")
 class Study(Model):
     """A study design: source, index, eligibility, outcomes, follow-up and output.
 
-    ``definition_changes`` adjusts a definition's rule windows for this study only, by
-    condition and rule name, without copying the definition file.
+    ``definitions`` is the folder of condition files, relative to the study file;
+    ``library: true`` instead reads the definition library installed with ascertain, so a
+    study copied anywhere still finds its definitions. ``definition_changes`` adjusts a
+    definition's rule windows for this study only, by condition and rule name, without
+    copying the definition file.
     """
 
     study: Name
     title: str
     extract: Path
     definitions: Path = Path("../conditions")
+    library: bool = False
     definition_changes: dict[Name, dict[str, RuleChange]] = Field(default_factory=dict)
     end_of_data: dt.date
     index: IndexRule
