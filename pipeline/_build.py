@@ -147,6 +147,7 @@ def build_study(
         engine={"name": run.engine, "version": run.engine_version, "threads": threads},
         study_file=loaded.file,
         definition_files=loaded.catalog.files.values(),
+        library=study.library,
         extract=extract,
         extract_entries=extract_entries,
         out=out,

@@ -13,16 +13,20 @@ from typing import Any
 
 from pipeline.compile import Plan, compile_study
 from pipeline.compile._context import evidence_key, evidence_number
-from pipeline.config import Condition, load_study
+from pipeline.config import Condition, Study, load_study
 from pipeline.engine import DuckDBEngine
 from pipeline.extract import open_extract
 from pipeline.measures import DERIVED_FROM
+from pipeline.outputs._write import DECIMALS
 
 Trace = dict[str, Any]
 
 
 def _iso(value: Any) -> Any:
-    return value.isoformat() if isinstance(value, dt.date) else value
+    """Dates as ISO text, floats rounded as the outputs round them (6 decimals)."""
+    if isinstance(value, dt.date):
+        return value.isoformat()
+    return round(value, DECIMALS) if isinstance(value, float) else value
 
 
 def _rows(result: dict[str, Any], name: str) -> list[dict[str, Any]]:
@@ -34,6 +38,7 @@ def _rows(result: dict[str, Any], name: str) -> list[dict[str, Any]]:
 
 def _trace_stages(plan: Plan) -> tuple[str, ...]:
     wanted = [
+        "rows_read",
         "patient_base",
         "encounter_summary",
         "index_dates",
@@ -153,15 +158,26 @@ def explain_patient(
     eligibility = _rows(outputs, "eligibility")
     cohort_rows = _rows(outputs, "cohort")
     cohort = cohort_rows[0] if cohort_rows else None
+    rows = {r["source_table"]: r["n_rows"] for r in _rows(outputs, "rows_read")}
+    encounters = _rows(outputs, "encounter_summary")[:1] or None
     trace: Trace = {
+        "trace_version": TRACE_VERSION,
         "study": loaded.study.study,
         "patient_id": patient_id,
+        "in_extract": any(rows.values()),
+        "rows_in_extract": rows,
         "in_patients_table": bool(patient),
         "patient": patient[0] if patient else None,
-        "encounters": _rows(outputs, "encounter_summary")[:1] or None,
+        "encounters": encounters,
         "index_date": eligibility[0]["index_date"] if eligibility else None,
         "in_source_population": bool(eligibility),
-        "eligibility": _steps(outputs, eligibility[0] if eligibility else None),
+        "not_in_source_population": None
+        if eligibility
+        else _why_no_index(loaded.study, rows, in_patients=bool(patient), encounters=encounters),
+        "eligibility": _steps(outputs),
+        "values": {k: _iso(eligibility[0][k]) for k in _SHOWN if k in eligibility[0]}
+        if eligibility
+        else {},
         "in_cohort": cohort is not None,
         "outcomes": {
             c: _outcome(loaded.catalog.get(c), outputs, cohort)
@@ -175,6 +191,7 @@ def explain_patient(
             "reason": cohort["end_reason"],
         },
     }
+    trace["covariates"] = {}
     if cohort is not None:
         names = list(cohort)
         first_outcome = next(i for i, n in enumerate(names) if n.startswith("prevalent_"))
@@ -182,13 +199,51 @@ def explain_patient(
     return trace
 
 
+TRACE_VERSION = 2
 _SHOWN = ("sex", "death_date", "age_at_index", "first_encounter", "practice_id")
 
 
-def _steps(outputs: dict[str, Any], row: dict[str, Any] | None) -> list[dict[str, Any]]:
-    if row is None:
+def _why_no_index(
+    study: Study,
+    rows: dict[str, int],
+    *,
+    in_patients: bool,
+    encounters: list[dict[str, Any]] | None,
+) -> str:
+    """Why a patient has no index date, in one sentence (the strategy's own terms)."""
+    if not any(rows.values()):
+        return "no row of the extract names this patient"
+    if not in_patients:
+        tables = ", ".join(f"{t}: {n}" for t, n in sorted(rows.items()) if n)
+        return (
+            f"not in the patients table: its rows ({tables}) are orphans, set aside in the "
+            "quality log"
+        )
+    index = study.index
+    start, end = index.possible
+    if index.fixed_date is not None:
+        return f"no usable encounter on or before the fixed index date {index.fixed_date}"
+    if index.first_event is not None:
+        what = "onset of " + index.first_event.condition if index.first_event.condition else ""
+        return f"no {what or 'qualifying event'} from {start} to {end} (the index window)"
+    window = index.first_encounter or index.random_encounter
+    types = getattr(window, "type", ())
+    kind = f"encounter of type {' or '.join(types)}" if types else "usable encounter"
+    seen = (
+        f"; its usable encounters run from {encounters[0]['first_encounter']} to "
+        f"{encounters[0]['last_encounter']}"
+        if encounters and encounters[0].get("first_encounter")
+        else "; it has no usable encounter"
+    )
+    return f"no {kind} from {start} to {end} (the index window), before death{seen}"
+
+
+def _steps(outputs: dict[str, Any]) -> list[dict[str, Any]]:
+    eligibility = _rows(outputs, "eligibility")
+    if not eligibility:
         return []
-    attrition = _rows(outputs, "attrition")[1:]
+    row = eligibility[0]
+    attrition = [r for r in _rows(outputs, "attrition") if r["step_number"] > 0]
     return [
         {
             "step": step["step"],
@@ -196,7 +251,7 @@ def _steps(outputs: dict[str, Any], row: dict[str, Any] | None) -> list[dict[str
             "passed": bool(row[f"step_{i}"]),
         }
         for i, step in enumerate(attrition, start=1)
-    ] + [{"values": {k: row[k] for k in _SHOWN if k in row}}]
+    ]
 
 
 def _render_outcome(name: str, outcome: dict[str, Any]) -> list[str]:
@@ -224,8 +279,8 @@ def _render_outcome(name: str, outcome: dict[str, Any]) -> list[str]:
 
 
 def _render_steps(trace: Trace) -> list[str]:
-    steps = [s for s in trace["eligibility"] if "step" in s]
-    values = next((s["values"] for s in trace["eligibility"] if "values" in s), {})
+    steps = trace["eligibility"]
+    values = trace["values"]
     lines = [f"  values: {', '.join(f'{k}={v}' for k, v in values.items())}"]
     for number, step in enumerate(steps, start=1):
         mark = "pass" if step["passed"] else "FAIL"
@@ -240,13 +295,16 @@ def render_trace(trace: Trace) -> str:
     """The trace as plain text for a terminal."""
     lines = [f"Patient {trace['patient_id']} in study {trace['study']}"]
     if not trace["in_patients_table"]:
-        return "\n".join([*lines, "  not in the patients table: none of its rows are used"])
+        return "\n".join(
+            [*lines, f"  not in the source population: {trace['not_in_source_population']}"]
+        )
     patient = trace["patient"]
     lines.append(
         f"  born {patient['birth_date']}, sex {patient['sex']}, died {patient['death_date'] or '-'}"
     )
     if not trace["in_source_population"]:
-        return "\n".join([*lines, "  no index date: not in the source population"])
+        reason = trace["not_in_source_population"]
+        return "\n".join([*lines, f"  no index date, not in the source population: {reason}"])
     lines.append(f"  index date {trace['index_date']}")
     lines += _render_steps(trace)
     lines.append(f"  in the cohort: {'yes' if trace['in_cohort'] else 'no'}")

@@ -7,8 +7,8 @@ Exit codes, the same for every command:
 
 - 0: done (``verify``: identical; ``check``: no problems).
 - 1: a negative answer, the command having run to the end: ``verify`` found a difference,
-  ``check`` found problems. ``diff``, ``explain``, ``validate`` and ``profile`` report what they
-  find and exit 0.
+  ``check`` found problems, ``explain`` found no such patient in the extract. ``diff``,
+  ``validate`` and ``profile`` report what they find and exit 0.
 - 2: refused: bad arguments (typer's usage errors too), unreadable or invalid input, an output
   folder holding files ascertain did not write or overlapping the extract, an engine failure,
   an operating-system error. Nothing is written and earlier outputs are untouched.
@@ -28,6 +28,7 @@ from typing import Annotated, TypeVar
 
 import typer
 from rich.console import Console
+from rich.markup import escape
 from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
 from rich.table import Table
 
@@ -48,6 +49,8 @@ app = typer.Typer(
     no_args_is_help=True,
     add_completion=False,
     pretty_exceptions_enable=False,
+    # Markdown: docstring lines of one paragraph are joined, so help reads as written.
+    rich_markup_mode="markdown",
 )
 
 T = TypeVar("T")
@@ -74,8 +77,9 @@ def _fail_cleanly(action: Callable[[], T], *, debug: bool) -> T:
         # nothing was written; a traceback's exit status (1) would read as a negative answer.
         if debug:
             raise
+        # escape(): the message's "[unknown-key]" codes are text, not console markup.
         Console(stderr=True, highlight=False, soft_wrap=True).print(
-            f"[bold red]error:[/] {err}", markup=True
+            f"[bold red]error:[/] {escape(str(err))}", markup=True
         )
         raise typer.Exit(2) from None
 
@@ -118,7 +122,13 @@ def build(
     ] = None,
     debug: DebugOpt = False,
 ) -> None:
-    """Build the study's cohort: cohort.parquet, attrition.csv and run.json."""
+    """Build the study's cohort and its logs into the study's output folder (or --out).
+
+    Writes cohort.parquet, population.parquet, attrition.csv, quality.csv, dictionary.csv,
+    dictionary.md, manifest.json and run.json.
+
+    Example: ascertain build definitions/studies/orvane_multimorbidity.yaml --out out/demo
+    """
     options = BuildOptions(
         extract=_extract(extract),
         out=out,
@@ -153,7 +163,12 @@ def sql(
     ] = "duckdb",
     debug: DebugOpt = False,
 ) -> None:
-    """Print the study's plan as SQL, stage by stage, without running anything."""
+    """Print the study's plan as SQL, stage by stage, without running anything.
+
+    Writes nothing; prints the SQL of every stage (or of --stage) to the terminal.
+
+    Example: ascertain sql definitions/studies/orvane_multimorbidity.yaml --stage attrition
+    """
     from sqlglot.dialects.dialect import Dialect
 
     try:
@@ -183,7 +198,13 @@ def synth(
     end: Annotated[str, typer.Option(help="Last day of the extract (YYYY-MM-DD).")] = "2021-12-31",
     debug: DebugOpt = False,
 ) -> None:
-    """Write a synthetic Orvane Bay extract with its ground truth (fictional data)."""
+    """Write a synthetic Orvane Bay extract with its ground truth (fictional data).
+
+    Writes patients, encounters, diagnoses, prescriptions and measurements (Parquet, CSV or
+    FHIR NDJSON), the ground truth, scenario.json and ascertain-synth.json into OUT_DIR.
+
+    Example: ascertain synth extracts/orvane_small --patients 1000 --seed 7 --format csv
+    """
     from pipeline.synth import generate_extract
 
     if file_format not in ("parquet", "csv", "fhir"):
@@ -218,7 +239,13 @@ def check(
         bool, typer.Option("--explain", help="Say what each definition means.")
     ] = False,
 ) -> None:
-    """Check study and definition files without data. Exit 0 clean, 1 problems, 2 unreadable."""
+    """Check study and definition files without data. Exit 0 clean, 1 problems, 2 unreadable.
+
+    Writes nothing; prints each problem as file:line:col [code] message, and with --explain
+    what each definition and study means.
+
+    Example: ascertain check definitions/ --explain
+    """
     report = check_paths(paths or [Path("definitions")])
     console = Console(highlight=False, soft_wrap=True)
     if explain:
@@ -247,6 +274,10 @@ def verify(
     """Rebuild an output folder from its manifest and report whether it is identical.
 
     Exits 0 when identical, 1 when an input or output differs, 2 when it cannot verify.
+    Writes nothing into OUTPUT_DIR (the rebuild runs in a temporary folder); prints each
+    changed input and differing output.
+
+    Example: ascertain verify output/orvane_multimorbidity
     """
     result = _fail_cleanly(
         lambda: verify_output(output, study=study, extract=_extract(extract)), debug=debug
@@ -270,13 +301,24 @@ def explain(
     output_format: Annotated[str, typer.Option("--format", help="text or json.")] = "text",
     debug: DebugOpt = False,
 ) -> None:
-    """Trace one patient: index, each eligibility step, evidence, rules met, follow-up."""
+    """Trace one patient: index, each eligibility step, evidence, rules met, follow-up.
+
+    Writes nothing; prints the trace (text, or JSON with --format json; patient-level).
+    Exits 1 when no row of the extract names the patient.
+
+    Example: ascertain explain definitions/studies/orvane_multimorbidity.yaml --patient 1042
+    """
     if output_format not in ("text", "json"):
         Console(stderr=True).print(f"error: --format must be text or json, not '{output_format}'")
         raise typer.Exit(2)
     trace = _fail_cleanly(
         lambda: explain_patient(study, patient, extract=_extract(extract)), debug=debug
     )
+    if not trace["in_extract"]:
+        Console(stderr=True, highlight=False).print(
+            f"no patient {patient} in the extract", markup=False
+        )
+        raise typer.Exit(1)
     if output_format == "json":
         typer.echo(json.dumps(trace, indent=2, sort_keys=True, default=str))
     else:
@@ -289,7 +331,12 @@ def diff(
     run_b: Annotated[Path, typer.Argument(help="The second output folder.")],
     debug: DebugOpt = False,
 ) -> None:
-    """Report patients gained and lost per attrition step and outcome between two builds."""
+    """Report patients gained and lost per attrition step and outcome between two builds.
+
+    Writes nothing; prints the differences (patient-level: up to five ids each).
+
+    Example: ascertain diff output/before output/after
+    """
     result = _fail_cleanly(lambda: diff_runs(run_a, run_b), debug=debug)
     typer.echo(render_diff(result))
 
@@ -301,7 +348,13 @@ def validate(
     extract: Annotated[str | None, typer.Option(help=EXTRACT_HELP)] = None,
     debug: DebugOpt = False,
 ) -> None:
-    """Compare each outcome's definition with a reference standard: sensitivity, PPV, kappa."""
+    """Compare each outcome's definition with a reference standard: sensitivity, PPV, kappa.
+
+    Writes nothing; prints one suppressed table per outcome.
+
+    Example: ascertain validate definitions/studies/orvane_multimorbidity.yaml --reference
+    chart_review.csv
+    """
 
     def run() -> str:
         # Imported here: it loads scipy (half a second), which no other command needs.
@@ -323,7 +376,12 @@ def report(
     ] = None,
     debug: DebugOpt = False,
 ) -> None:
-    """Write report.html and suppressed summary tables (summary/*.csv) for an output folder."""
+    """Write report.html and suppressed summary tables (summary/*.csv) for an output folder.
+
+    Writes report.html, summary/*.csv and ascertain-report.json into OUTPUT_DIR.
+
+    Example: ascertain report output/orvane_multimorbidity
+    """
     # Imported here: it loads scipy (half a second), which no other command needs.
     from pipeline.outputs._report import write_report
 
@@ -351,7 +409,13 @@ def profile(
     ] = 5,
     debug: DebugOpt = False,
 ) -> None:
-    """Summarise an extract: rows, dates, orphans, codes, measures and units (patient-level)."""
+    """Summarise an extract: rows, dates, orphans, codes, measures and units (patient-level).
+
+    Writes profile.json, profile.html and ascertain-profile.json into --out, and prints a
+    table per extract table.
+
+    Example: ascertain profile synthetic_extract --out profile/orvane
+    """
     source = as_extract(extract)
     _fail_cleanly(lambda: check_profile_folder(source, out), debug=debug)
     result = _fail_cleanly(lambda: profile_extract(source, threshold=threshold), debug=debug)

@@ -117,11 +117,20 @@ def test_every_section_heading_is_present(demo: Path) -> None:
 def test_flow_diagram_numbers_equal_the_attrition_log(demo: Path) -> None:
     flow = _page(demo).flow
     attrition = _rows(demo / "attrition.csv")
-    for i, row in enumerate(attrition):
+    for row in attrition:
         assert int(flow[(row["step"], "remaining")].replace(",", "")) == int(row["remaining"])
-        if i > 0:
+        # The extract and the source population remove nobody by definition: no side box.
+        if row["step"] not in ("patients_in_extract", "source_population"):
             assert int(flow[(row["step"], "removed")].replace(",", "")) == int(row["removed"])
     assert _rows(demo / "summary" / "flow.csv") == attrition  # nothing below 5 in the demo
+
+
+def test_flow_boxes_are_labelled_not_named(demo: Path) -> None:
+    html = (demo / "report.html").read_text(encoding="utf-8")
+    assert ">Patients in the extract<" in html
+    assert ">With an index date<" in html
+    assert ">Alive at index<" in html
+    assert "After alive_at_index" not in html
 
 
 def test_small_cohort_has_no_small_count_in_any_csv(small: Path) -> None:

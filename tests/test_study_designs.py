@@ -86,7 +86,7 @@ def test_fixed_date_study_excluding_incomplete_followup(tmp_path: Path) -> None:
     with (out / "attrition.csv").open(encoding="utf-8") as handle:
         steps = list(csv.DictReader(handle))
     assert [s["step"] for s in steps][-1] == "complete_followup"
-    assert steps[0]["description"].startswith("2015-06-30 for everyone with an encounter")
+    assert steps[2]["description"].startswith("2015-06-30 for everyone with an encounter")
     assert int(steps[-1]["removed"]) > 0
     cohort = pl.read_parquet(out / "cohort.parquet")
     assert cohort.height == int(steps[-1]["remaining"])

@@ -327,8 +327,8 @@ def cohort_stages(ctx: CompileContext) -> tuple[Stage, ...]:
                 [(name, text) for name, (_, text) in zip(names, steps, strict=True)],
                 index_text=index_description(ctx),
             ),
-            ("eligibility",),
-            "patients before, removed and remaining at each eligibility step",
+            ("eligibility", "patient_base"),
+            "patients in the extract, without an index date, and at each eligibility step",
         )
     )
     excluded_at = exp.Case()
@@ -367,7 +367,9 @@ def cohort_stages(ctx: CompileContext) -> tuple[Stage, ...]:
 
 
 def _attrition_query(steps: list[tuple[str, str]], *, index_text: str) -> exp.Query:
-    counts = [exp.func("COUNT", exp.Star()).as_("n_0")]
+    # The whole extract first: patients without an index date are the first removed.
+    extract = exp.select(exp.func("COUNT", exp.Star())).from_("patient_base")
+    counts = [exp.func("COUNT", exp.Star()).as_("n_0"), extract.subquery().as_("n_all")]
     condition: exp.Expression = exp.column("step_1")
     for i in range(1, len(steps) + 1):
         if i > 1:
@@ -383,13 +385,29 @@ def _attrition_query(steps: list[tuple[str, str]], *, index_text: str) -> exp.Qu
     totals = exp.select(*counts).from_("eligibility")
     rows = [
         exp.select(
-            exp.Literal.number(0).as_("step_number"),
-            value("source_population").as_("step"),
-            value(index_text).as_("description"),
-            exp.column("n_0").as_("patients_before"),
+            exp.Literal.number(-2).as_("step_number"),
+            value("patients_in_extract").as_("step"),
+            value("patients in the extract").as_("description"),
+            exp.column("n_all").as_("patients_before"),
             exp.Literal.number(0).as_("removed"),
-            exp.column("n_0").as_("remaining"),
-        ).from_("totals")
+            exp.column("n_all").as_("remaining"),
+        ).from_("totals"),
+        exp.select(
+            exp.Literal.number(-1),
+            value("without_index_date"),
+            value("without an index date"),
+            exp.column("n_all"),
+            exp.column("n_all") - exp.column("n_0"),
+            exp.column("n_0"),
+        ).from_("totals"),
+        exp.select(
+            exp.Literal.number(0),
+            value("source_population"),
+            value(index_text),
+            exp.column("n_0"),
+            exp.Literal.number(0),
+            exp.column("n_0"),
+        ).from_("totals"),
     ]
     for i, (name, text) in enumerate(steps, start=1):
         rows.append(

@@ -12,6 +12,7 @@ from typing import Annotated, Literal, Self
 from pydantic import Field, ValidationInfo, field_validator, model_validator
 
 from pipeline.config._base import (
+    ONE_OR_MORE,
     ATCCode,
     ICD9Code,
     ICD10Code,
@@ -28,15 +29,15 @@ from pipeline.measures._threshold import Comparison
 class DiagnosisCodes(Model):
     """Code prefixes (or ranges such as ``I10-I15``) per system, as written in a definition."""
 
-    ICD9: tuple[ICD9Code, ...] = ()
-    ICD10: tuple[ICD10Code, ...] = ()
+    ICD9: Annotated[tuple[ICD9Code, ...], ONE_OR_MORE] = ()
+    ICD10: Annotated[tuple[ICD10Code, ...], ONE_OR_MORE] = ()
 
 
 class DiagnosisEvidence(DiagnosisCodes):
     """Diagnosis rows whose code matches, optionally from some sources only."""
 
     exclude: DiagnosisCodes | None = None
-    source: tuple[Literal["billing", "problem_list", "visit"], ...] = ()
+    source: Annotated[tuple[Literal["billing", "problem_list", "visit"], ...], ONE_OR_MORE] = ()
 
     @model_validator(mode="after")
     def _needs_codes(self) -> Self:
@@ -52,8 +53,8 @@ class PrescriptionEvidence(Model):
     stop date does not meet a minimum duration.
     """
 
-    atc: tuple[ATCCode, ...] = Field(min_length=1)
-    exclude: tuple[ATCCode, ...] = ()
+    atc: Annotated[tuple[ATCCode, ...], ONE_OR_MORE, Field(min_length=1)]
+    exclude: Annotated[tuple[ATCCode, ...], ONE_OR_MORE] = ()
     min_days: PositiveInt | None = None
 
 
@@ -69,7 +70,7 @@ class MeasurementEvidence(Model):
     below: Quantity | None = None
     at_most: Quantity | None = None
     between: tuple[Quantity, Quantity] | None = None
-    category: tuple[str, ...] = ()
+    category: Annotated[tuple[str, ...], ONE_OR_MORE] = ()
 
     @field_validator("measure")
     @classmethod
@@ -141,7 +142,7 @@ _UPPER = ("below", "at_most")
 class EncounterEvidence(Model):
     """Encounters of some types (compared lower-cased); no types means any encounter."""
 
-    type: tuple[str, ...] = ()
+    type: Annotated[tuple[str, ...], ONE_OR_MORE] = ()
 
 
 class Evidence(Model):
@@ -194,7 +195,7 @@ class Rule(Model):
     distinct_days: bool = False
     within_days: NonNegativeInt | None = None
     apart_at_least_days: NonNegativeInt | None = None
-    absent: tuple[str, ...] = ()
+    absent: Annotated[tuple[str, ...], ONE_OR_MORE] = ()
     absent_window: AbsentWindow | None = None
 
     @model_validator(mode="after")

@@ -12,6 +12,7 @@ from pydantic import BaseModel, ValidationError
 
 from pipeline.config._base import Model
 from pipeline.config._condition import Condition, Rule
+from pipeline.config._library import library_conditions
 from pipeline.config._study import Study
 from pipeline.config._yaml import LocatedDocument, PathKey, load_yaml
 from pipeline.errors import ConfigError, Problem
@@ -344,12 +345,24 @@ def load_study(file: Path) -> LoadedStudy:
     doc = load_yaml(file)
     study = validate_document(doc, Study)
     base = file.parent
+    if study.library and "definitions" in doc.data:
+        raise ConfigError(
+            [
+                doc.problem(
+                    ("library",),
+                    "conflicting-keys",
+                    "'library: true' reads the shipped definitions; remove 'definitions' "
+                    "(or 'library' to read your own folder)",
+                )
+            ]
+        )
+    definitions = library_conditions() if study.library else _resolve(base, study.definitions)
     study = study.model_copy(
         update={
             "extract": study.extract
             if isinstance(study.extract, str)
             else _resolve(base, study.extract),
-            "definitions": _resolve(base, study.definitions),
+            "definitions": definitions,
             "output": study.output.model_copy(
                 update={"folder": _resolve(base, study.output.folder)}
             ),
@@ -364,7 +377,9 @@ def load_study(file: Path) -> LoadedStudy:
                     doc.problem(
                         ("definitions",),
                         "missing-folder",
-                        f"the definitions folder {study.definitions} does not exist",
+                        f"the definitions folder {study.definitions} does not exist (it is "
+                        "relative to the study file; 'library: true' instead of 'definitions' "
+                        "reads the definitions shipped with ascertain)",
                     )
                 ]
             ) from err

@@ -14,7 +14,7 @@ from typing import Annotated, Literal, Self
 
 from pydantic import Field, field_validator, model_validator
 
-from pipeline.config._base import Model, Name, NonNegativeInt, PositiveInt
+from pipeline.config._base import ONE_OR_MORE, Model, Name, NonNegativeInt, PositiveInt
 from pipeline.config._condition import Evidence
 from pipeline.measures import MEASURES
 
@@ -64,7 +64,7 @@ class DateRange(Model):
 class FirstEncounter(DateRange):
     """Index at the first encounter in the window, optionally of some types only."""
 
-    type: tuple[str, ...] = ()
+    type: Annotated[tuple[str, ...], ONE_OR_MORE] = ()
 
 
 class FirstEvent(DateRange):
@@ -160,13 +160,13 @@ class ContactWindow(Model):
 class Criterion(Model):
     """One eligibility step; exactly one key is set. Steps apply in the order written."""
 
-    sex: tuple[Literal["F", "M"], ...] | None = None
+    sex: Annotated[tuple[Literal["F", "M"], ...], ONE_OR_MORE] | None = None
     alive_at_index: Literal[True] | None = None
     age: AgeRange | None = None
     history_days: NonNegativeInt | None = None
     registered_days: NonNegativeInt | None = None
     encounters: EncounterCount | None = None
-    practice: tuple[str, ...] | None = None
+    practice: Annotated[tuple[str, ...], ONE_OR_MORE] | None = None
     not_prevalent: Name | None = None
     no_evidence: EvidenceInWindow | None = None
     at_risk_of_any_outcome: Literal[True] | None = None
@@ -194,7 +194,7 @@ class Outcomes(Model):
     outcome, so its onset is the first date a rule is met from that evidence on.
     """
 
-    conditions: tuple[Name, ...] = Field(min_length=1)
+    conditions: Annotated[tuple[Name, ...], ONE_OR_MORE, Field(min_length=1)]
     horizon_days: PositiveInt | None = None
     horizon_years: PositiveInt | None = None
     lookback: Literal["all"] | PositiveInt = "all"
@@ -250,7 +250,12 @@ class Followup(Model):
     reason other than death (one more attrition line); ``censor`` keeps them.
     """
 
-    end_at: tuple[FollowupEnd, ...] = ("death", "end_of_data", "lost_contact", "horizon")
+    end_at: Annotated[tuple[FollowupEnd, ...], ONE_OR_MORE] = (
+        "death",
+        "end_of_data",
+        "lost_contact",
+        "horizon",
+    )
     lost_contact_after_days: NonNegativeInt | None = None
     incomplete: Literal["censor", "exclude"] = "censor"
     contact: Literal["encounters", "any_activity"] = "encounters"
@@ -292,7 +297,7 @@ class CharlsonSpec(Model):
     """The Charlson index: which weights, and which code systems' Quan (2005) lists to use."""
 
     weights: Literal["charlson_1987", "quan_2011"]
-    codes: tuple[Literal["ICD10", "ICD9"], ...] = ("ICD10", "ICD9")
+    codes: Annotated[tuple[Literal["ICD10", "ICD9"], ...], ONE_OR_MORE] = ("ICD10", "ICD9")
 
     @field_validator("codes")
     @classmethod
@@ -440,14 +445,18 @@ RESERVED_COLUMNS = ("patient_id", "index_date", "age_at_index", "sex")
 class Study(Model):
     """A study design: source, index, eligibility, outcomes, follow-up and output.
 
-    ``definition_changes`` adjusts a definition's rule windows for this study only, by
-    condition and rule name, without copying the definition file.
+    ``definitions`` is the folder of condition files, relative to the study file;
+    ``library: true`` instead reads the definition library installed with ascertain, so a
+    study copied anywhere still finds its definitions. ``definition_changes`` adjusts a
+    definition's rule windows for this study only, by condition and rule name, without
+    copying the definition file.
     """
 
     study: Name
     title: str
     extract: Path | str
     definitions: Path = Path("../conditions")
+    library: bool = False
     definition_changes: dict[Name, dict[str, RuleChange]] = Field(default_factory=dict)
     end_of_data: dt.date
     index: IndexRule

@@ -24,12 +24,14 @@ from collections.abc import Iterable
 from pathlib import Path
 from typing import Any
 
+from pipeline.config._library import library_folder
 from pipeline.errors import AscertainError
 
 MANIFEST = "manifest.json"
 MANIFEST_VERSION = 2
 CHUNK = 1 << 20
 INPUT_GROUPS = ("study", "definitions", "extract")
+LIBRARY_PREFIX = "library:"
 
 
 def sha256_file(path: Path) -> str:
@@ -70,15 +72,28 @@ def portable_path(path: Path, base: Path) -> str | None:
 
 def describe_files(paths: Iterable[Path], base: Path) -> list[dict[str, Any]]:
     """Path relative to ``base`` (or the bare name), size and SHA-256 of each file, by path."""
+    return _describe({p: portable_path(p, base) or p.name for p in set(paths)})
+
+
+def _describe(named: dict[Path, str]) -> list[dict[str, Any]]:
     entries = [
-        {
-            "path": portable_path(p, base) or p.name,
-            "bytes": p.stat().st_size,
-            "sha256": sha256_file(p),
-        }
-        for p in set(paths)
+        {"path": name, "bytes": p.stat().st_size, "sha256": sha256_file(p)}
+        for p, name in named.items()
     ]
     return sorted(entries, key=lambda e: e["path"])
+
+
+def definition_path(file: Path, study_file: Path, *, library: bool) -> str:
+    """How a manifest names a definition file.
+
+    A study that reads the shipped library (``library: true``) names its definitions inside
+    the library (``library:conditions/ckd.yaml``): where ascertain is installed differs from
+    machine to machine, and a rebuild must match them wherever that is. Other definitions are
+    named relative to the study's folder (``../conditions/ckd.yaml``).
+    """
+    if library:
+        return LIBRARY_PREFIX + (portable_path(file, library_folder()) or file.name)
+    return portable_path(file, study_file.parent) or file.name
 
 
 def extract_root(extract: Path | str) -> Path:
@@ -126,6 +141,7 @@ def make_manifest(
     engine: dict[str, Any],
     study_file: Path,
     definition_files: Iterable[Path],
+    library: bool = False,
     extract: Path | str,
     extract_entries: list[dict[str, Any]],
     out: Path,
@@ -140,6 +156,7 @@ def make_manifest(
         engine: The engine's name, version and thread count.
         study_file: The study file, resolved.
         definition_files: Every definition file the study's catalog loaded.
+        library: The study reads the shipped library (see :func:`definition_path`).
         extract: The extract folder, site mapping file or connection URI the build read.
         extract_entries: ``describe_files`` of the extract's files, relative to its root.
         out: The output folder (for the hint of where the study is from there).
@@ -154,7 +171,9 @@ def make_manifest(
         "engine": engine,
         "python": platform.python_version(),
         "study": describe_files([study_file], study_file.parent),
-        "definitions": describe_files(definition_files, study_file.parent),
+        "definitions": _describe(
+            {f: definition_path(f, study_file, library=library) for f in set(definition_files)}
+        ),
         "extract": extract_entries,
         "locations": _locations(extract, study_file, out, database),
         "plan_hash": plan_hash,

@@ -21,7 +21,7 @@ import polars as pl
 
 from pipeline.config import LoadedStudy, load_study
 from pipeline.errors import AscertainError
-from pipeline.outputs._manifest import portable_path, read_manifest, sha256_file
+from pipeline.outputs._manifest import definition_path, read_manifest, sha256_file
 from pipeline.outputs._ownership import REPORT, check_folder, install, staging
 from pipeline.outputs._report_curves import curve_data
 from pipeline.outputs._report_html import assemble
@@ -127,7 +127,7 @@ def read_study(
     definitions = []
     for condition_name in _used_conditions(loaded):
         file = loaded.catalog.files[condition_name]
-        shown = portable_path(file, loaded.file.parent) or file.name
+        shown = definition_path(file, loaded.file, library=loaded.study.library)
         current = sha256_file(file) if file.is_file() else ""
         if hashes.get(shown) not in (None, current):
             base.notes.append(f"The definition file {shown} has changed since the build.")

@@ -16,9 +16,11 @@ import polars as pl
 
 from pipeline.outputs._report_curves import curve_note
 from pipeline.outputs._report_svg import (
+    DEFINING_STEPS,
     Bar,
     Curve,
     FlowStep,
+    flow_title,
     render_bars,
     render_curves,
     render_flow,
@@ -156,9 +158,10 @@ def _flow(flow: pl.DataFrame, threshold: int) -> str:
             r["patients_before"],
             r["removed"],
             r["remaining"],
-            removes=i > 0 or r["removed"] != "0",
+            removes=r["step"] not in DEFINING_STEPS,
+            title=flow_title(r["step"]),
         )
-        for i, r in enumerate(rows)
+        for r in rows
     ]
     return render_flow(steps) + (
         f'<p class="note">Counts below {threshold} are shown as "&lt;{threshold}". Because each '

@@ -20,11 +20,44 @@ from html import escape
 import numpy as np
 from numpy.typing import NDArray
 
-__all__ = ["Bar", "Curve", "FlowStep", "render_bars", "render_curves", "render_flow"]
+__all__ = [
+    "DEFINING_STEPS",
+    "Bar",
+    "Curve",
+    "FlowStep",
+    "flow_title",
+    "render_bars",
+    "render_curves",
+    "render_flow",
+]
 
 _MAIN_X, _MAIN_W, _SIDE_X, _SIDE_W = 20, 300, 380, 460
 _WRAP = 58
 _LINE = 17
+
+
+# Box labels of the flow diagram: what the patients in the box have, not the step's name.
+STEP_TITLES = {
+    "patients_in_extract": "Patients in the extract",
+    "without_index_date": "With an index date",
+    "source_population": "Source population",
+    "sex": "Sex recorded",
+    "alive_at_index": "Alive at index",
+    "age": "In the age range",
+    "history": "Enough history before index",
+    "registration": "Registered long enough",
+    "practice": "In the chosen practices",
+    "in_contact_at_index": "In contact at index",
+    "at_risk_any_outcome": "At risk of an outcome",
+    "complete_followup": "Complete follow-up",
+}
+# Lines that remove nobody by definition: drawn as a box without a side box.
+DEFINING_STEPS = ("patients_in_extract", "source_population")
+
+
+def flow_title(step: str) -> str:
+    """The label of a flow-diagram box after ``step`` (its name, spelled out, when unknown)."""
+    return STEP_TITLES.get(step, step.replace("_", " ").capitalize())
 
 
 @dataclass(frozen=True)
@@ -37,8 +70,9 @@ class FlowStep:
         before: Formatted ``patients_before`` (drawn only for a first step that removes).
         removed: Formatted ``removed``.
         remaining: Formatted ``remaining``.
-        removes: Whether the step is drawn with a side box (false for a first step that
-            removes nobody: it defines the source population).
+        removes: Whether the step is drawn with a side box (false for a step that removes
+            nobody by definition: the extract, the source population).
+        title: The box's label (e.g. "Alive at index"); the step name when empty.
     """
 
     step: str
@@ -47,6 +81,7 @@ class FlowStep:
     removed: str
     remaining: str
     removes: bool
+    title: str = ""
 
 
 def _text(x: float, y: float, content: str, cls: str, extra: str = "") -> str:
@@ -104,8 +139,8 @@ def render_flow(steps: Sequence[FlowStep], *, final_label: str = "Analysis cohor
                     for j, line in enumerate(lines)
                 )
             )
-        title = final_label if last else ("Source population" if i == 0 else f"After {s.step}")
-        note = textwrap.wrap(s.description, 40) if i == 0 and not s.removes else []
+        title = final_label if last else (s.title or s.step)
+        note = textwrap.wrap(s.description, 40) if i > 0 and not s.removes else []
         parts.append(_main_box(y, title, note, (s.remaining, s.step, "remaining")))
         height = 52 + _LINE * len(note)
         if not last:

@@ -100,13 +100,18 @@ def describe_misread(found: MisreadShare, limit: float) -> str:
     )
 
 
+PRE_POPULATION_STEPS = ("patients_in_extract", "without_index_date")
+
+
 def _emptied_by(attrition: list[dict[str, Any]]) -> str:
     """Which attrition step removed the last patients, as a phrase."""
-    first = attrition[0] if attrition else None
+    # The lines before the source population (the extract, without an index date) come first.
+    steps = [s for s in attrition if s["step"] not in PRE_POPULATION_STEPS]
+    first = steps[0] if steps else None
     if first is None or not first["remaining"]:
         described = f" ({first['description']})" if first and first.get("description") else ""
         return f"the source population is already empty{described}"
-    for step in attrition[1:]:
+    for step in steps[1:]:
         if not step["remaining"]:
             return (
                 f"step '{step['step']}' ({step['description']}) removed the last "

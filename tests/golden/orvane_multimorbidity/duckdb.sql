@@ -1913,11 +1913,16 @@ FROM (
   ) AS fu
 ) AS f;
 
--- stage attrition [table]: patients before, removed and remaining at each eligibility step
--- reads: eligibility
+-- stage attrition [table]: patients in the extract, without an index date, and at each eligibility step
+-- reads: eligibility, patient_base
 WITH totals AS (
   SELECT
     COUNT(*) AS n_0,
+    (
+      SELECT
+        COUNT(*)
+      FROM patient_base
+    ) AS n_all,
     COALESCE(SUM(CASE WHEN step_1 THEN 1 ELSE 0 END), 0) AS n_1,
     COALESCE(SUM(CASE WHEN step_1 AND step_2 THEN 1 ELSE 0 END), 0) AS n_2,
     COALESCE(SUM(CASE WHEN (
@@ -1960,12 +1965,30 @@ SELECT
   CAST(remaining AS BIGINT) AS remaining
 FROM (
   SELECT
-    0 AS step_number,
-    'source_population' AS step,
-    'the first encounter between 2015-01-01 and 2016-12-31' AS description,
-    n_0 AS patients_before,
+    -2 AS step_number,
+    'patients_in_extract' AS step,
+    'patients in the extract' AS description,
+    n_all AS patients_before,
     0 AS removed,
-    n_0 AS remaining
+    n_all AS remaining
+  FROM totals
+  UNION ALL
+  SELECT
+    -1,
+    'without_index_date',
+    'without an index date',
+    n_all,
+    n_all - n_0,
+    n_0
+  FROM totals
+  UNION ALL
+  SELECT
+    0,
+    'source_population',
+    'the first encounter between 2015-01-01 and 2016-12-31',
+    n_0,
+    0,
+    n_0
   FROM totals
   UNION ALL
   SELECT
