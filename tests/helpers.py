@@ -3,9 +3,12 @@
 from __future__ import annotations
 
 import csv
+import os
 import shutil
 from pathlib import Path
-from typing import Any
+from typing import Any, NoReturn
+
+import pytest
 
 from pipeline._build import plan_study
 from pipeline.engine import DuckDBEngine
@@ -139,3 +142,31 @@ def demo_study_variant(folder: Path, *, output: str = "", quality: str = "") -> 
     study = folder / "studies" / DEMO_STUDY.name
     study.write_text(text, encoding="utf-8")
     return study
+
+
+def in_ci() -> bool:
+    """Whether the tests run in CI, where every test dependency must be present (``CI=true``)."""
+    return os.environ.get("CI", "").strip().lower() == "true"
+
+
+def require(found: object, reason: str) -> None:
+    """Skip the calling test when a tool it needs is missing; in CI, fail it instead.
+
+    Locally a missing PostgreSQL, Java or Chromium should not stop anyone from running the
+    rest of the suite, so the test skips with the reason. In CI (``CI=true``) a skip would
+    hide that a whole engine or the report's browser check never ran, so it fails.
+
+    Args:
+        found: what was found (a path from ``shutil.which``, a module spec, a bool); falsy
+            means missing.
+        reason: what is missing and how to install it, shown in the skip or failure.
+    """
+    if found:
+        return
+    _missing(reason)
+
+
+def _missing(reason: str) -> NoReturn:
+    if in_ci():
+        pytest.fail(f"{reason} (CI=true: a missing test dependency fails)", pytrace=False)
+    pytest.skip(reason)

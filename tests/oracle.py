@@ -1,7 +1,8 @@
 """A slow, plain-Python reference for when a rule is first met (one patient at a time).
 
-It knows nothing about the compiler; it restates the rule semantics of DEMO_STUDY.md
-("Evidence and rules") as directly as possible:
+It knows nothing about the compiler; it restates the rule semantics of the demo spec
+(``definitions/studies/orvane_multimorbidity.md``, §3 "Evidence and rules") as directly as
+possible:
 
 - Each ``(evidence key, date, n_rows)`` becomes events: one event per (evidence, date) with
   ``distinct_days``, otherwise ``n_rows`` separate events on that date.

@@ -10,7 +10,8 @@ N18 and 585 (test_ckd_stages_1_and_2_are_our_known_difference).
 
 Weights: "charlson" in comorbidipy and our ``charlson_1987`` are Charlson et al. 1987 (J Chronic Dis
 40:373); comorbidipy's "quan" and our ``quan_2011`` are Quan et al. 2011 (Am J Epidemiol 173:676),
-except that comorbidipy gives AIDS/HIV 2 where the paper gives 4 (REFERENCE_VALUES.md section 10).
+except that comorbidipy gives AIDS/HIV 2 where the paper gives 4 (from memory, not checked
+against the paper).
 """
 
 from __future__ import annotations
@@ -43,7 +44,7 @@ class _SettingWithCopyWarning(Warning):
 
 def _import_comorbidipy() -> ModuleType:
     # comorbidipy 0.5.0 imports pandas.core.common.SettingWithCopyWarning, which moved to
-    # pandas.errors in pandas 1.5 and is gone in pandas 3 (REFERENCE_VALUES.md section 10).
+    # pandas.errors in pandas 1.5 and is gone in pandas 3 (seen when running it).
     import pandas.core.common
 
     if not hasattr(pandas.core.common, "SettingWithCopyWarning"):
@@ -160,7 +161,7 @@ def test_prefix_lists_match_comorbidipy() -> None:
 
 # --------------------------------------------------------------------------- reference rows
 
-# REFERENCE_VALUES.md section 10: comorbidipy 0.5.0 with variant "quan", assign0=True.
+# Computed with comorbidipy 0.5.0 (Quan 2005 ICD-10 mapping), variant "quan", assign0=True.
 # Columns: codes, age, "charlson" (1987 weights), "quan" (2011 weights with AIDS = 2), age-adjusted.
 REFERENCE_ROWS = [
     (("E119",), 65, 1, 0, 3),
@@ -181,7 +182,7 @@ def test_reference_rows(
     codes: tuple[str, ...], age: int, score_1987: int, score_quan: int, age_adjusted: int
 ) -> None:
     pairs = [("ICD10", code) for code in codes]
-    # Source: comorbidipy 0.5.0 via REFERENCE_VALUES.md section 10, weighting "charlson".
+    # Source: comorbidipy 0.5.0 (REFERENCE_ROWS above), weighting "charlson".
     assert charlson_score(pairs, "charlson_1987") == score_1987
     # Source: same, weighting "quan"; Quan 2011 gives AIDS/HIV 4 where comorbidipy gives 2.
     aids = any(code.startswith(AIDS_PREFIXES) for code in codes)
@@ -197,7 +198,7 @@ def test_reference_rows(
 
 def test_reference_rows_still_hold_in_installed_comorbidipy() -> None:
     patients = [codes for codes, *_ in REFERENCE_ROWS]
-    # Source: REFERENCE_VALUES.md section 10 was measured on comorbidipy 0.5.0.
+    # Source: REFERENCE_ROWS were computed with comorbidipy 0.5.0; this reruns the installed one.
     assert _comorbidipy_scores(patients, "icd10", "charlson") == [r[2] for r in REFERENCE_ROWS]
     assert _comorbidipy_scores(patients, "icd10", "quan") == [r[3] for r in REFERENCE_ROWS]
 

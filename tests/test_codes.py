@@ -78,7 +78,7 @@ def matched(tmp_path_factory: pytest.TempPathFactory) -> dict[str, set[str]]:
         rows.append([code, "2015-01-01", "ICD10", code, "billing"])
         rows.append([code, "2015-01-02", "icd10", code.replace(".", "").lower(), "visit"])
         rows.append([code, "2015-01-03", " ICD10", f" {code} ", "problem_list"])
-        # an ICD-10-shaped code labelled ICD9 matches nothing (DEMO_STUDY.md)
+        # an ICD-10-shaped code labelled ICD9 matches nothing (demo spec §3.3)
         rows.append([code, "2015-01-04", "ICD9", code, "billing"])
     _write_csv(
         folder / "diagnoses.csv",

@@ -1,7 +1,7 @@
 """Measurements: unit conversions, derived measures and value parsing, checked on the engine.
 
-External values come from the sources named beside each check; see also
-../shared/REFERENCE_VALUES.md, where they were verified against reference libraries.
+External values come from the sources named beside each check (a publication, a reference
+library, or "from memory").
 """
 
 from __future__ import annotations
@@ -123,7 +123,7 @@ def test_hba1c_threshold_in_mmol_per_mol() -> None:
 
 
 def test_creatinine_micromoles(tmp_path: Path) -> None:
-    # 1 mg/dL = 88.42 umol/L (DEMO_STUDY.md; molar mass 113.12 g/mol gives 88.402; KDIGO's 88.4)
+    # 1 mg/dL = 88.42 umol/L (demo spec §4.2; molar mass 113.12 g/mol gives 88.402; KDIGO's 88.4)
     rows = _measurement_rows(
         tmp_path,
         [

@@ -23,6 +23,7 @@ from pipeline.outputs._report import write_report
 from pipeline.outputs._report_html import SECTIONS
 
 from .conftest import DEMO_STUDY, HANDMADE, ROOT
+from .helpers import require
 
 SUMMARIES = ("combinations", "dependence", "flow", "incidence", "table_one")
 COUNT_COLUMNS = {
@@ -242,8 +243,8 @@ def _chromium() -> str | None:
 
 def test_report_renders_in_headless_chromium(demo: Path, tmp_path: Path) -> None:
     browser = _chromium()
-    if browser is None:
-        pytest.skip("no chromium: install the Debian package (apt-get install -y chromium)")
+    require(browser, "no chromium: install the Debian package (apt-get install -y chromium)")
+    assert browser is not None
     artifacts = ROOT / "test-artifacts"
     artifacts.mkdir(exist_ok=True)
     png = artifacts / "report.png"

@@ -1,7 +1,8 @@
 """The Spark engine gives the same outputs as DuckDB for the same plan.
 
 One SparkSession serves the whole module (each run gets its own ``newSession()``). Skipped, with
-the reason, when pyspark or Java is missing: ``pip install 'ascertain[spark]'`` and a JDK 17.
+the reason, when pyspark or Java is missing (``pip install 'ascertain[spark]'`` and a JDK 17);
+in CI (``CI=true``) that fails instead (``helpers.require``).
 """
 
 from __future__ import annotations
@@ -31,15 +32,19 @@ from pipeline.extract import discover_extract
 from pipeline.outputs import write_parquet
 
 from .conftest import DEMO_STUDY, HANDMADE, ROOT
+from .helpers import require
 
-_NO_PYSPARK = importlib.util.find_spec("pyspark") is None
-_NO_JAVA = shutil.which("java") is None and not os.environ.get("JAVA_HOME")
+pytestmark = [pytest.mark.spark, pytest.mark.slow]
 
-pytestmark = [
-    pytest.mark.spark,
-    pytest.mark.skipif(_NO_PYSPARK, reason="pyspark is not installed (ascertain[spark])"),
-    pytest.mark.skipif(_NO_JAVA, reason="no Java runtime for Spark (install a JDK 17)"),
-]
+
+@pytest.fixture(autouse=True, scope="module")
+def _spark_is_available() -> None:
+    require(importlib.util.find_spec("pyspark"), "pyspark is not installed (ascertain[spark])")
+    require(
+        shutil.which("java") or os.environ.get("JAVA_HOME"),
+        "no Java runtime for Spark (install a JDK 17)",
+    )
+
 
 OUTPUTS = ("cohort", "population", "attrition", "quality", "rows_read")
 

@@ -17,6 +17,8 @@ from pipeline.engine._spark_sql import spark_plan
 from .conftest import DEMO_STUDY
 
 GOLDEN = Path(__file__).parent / "golden" / "orvane_multimorbidity"
+DESIGNS = Path(__file__).parent / "fixtures" / "designs"
+DESIGN_STUDIES = sorted(p.relative_to(DESIGNS) for p in DESIGNS.glob("*/study*.yaml"))
 
 
 @pytest.mark.parametrize("dialect", ["duckdb", "spark"])
@@ -28,6 +30,30 @@ def test_demo_plan_matches_golden(dialect: str, update_golden: bool) -> None:
     if update_golden:
         golden.write_text(text, encoding="utf-8")
     assert text == golden.read_text(encoding="utf-8")
+
+
+@pytest.mark.parametrize("dialect", ["duckdb", "spark"])
+@pytest.mark.parametrize("study", DESIGN_STUDIES, ids=str)
+def test_design_plan_matches_golden(study: Path, dialect: str, update_golden: bool) -> None:
+    # One golden file per design fixture's study file and dialect: tests/golden/designs/<fixture>/.
+    plan = plan_study(DESIGNS / study)
+    text = (spark_plan(plan) if dialect == "spark" else plan).explain(dialect)
+    golden = GOLDEN.parent / "designs" / study.parent / f"{study.stem}.{dialect}.sql"
+    if update_golden:
+        golden.parent.mkdir(parents=True, exist_ok=True)
+        golden.write_text(text, encoding="utf-8")
+    assert text == golden.read_text(encoding="utf-8")
+
+
+def test_every_design_study_has_a_golden_file() -> None:
+    assert len(DESIGN_STUDIES) >= 7
+    written = sorted((GOLDEN.parent / "designs").glob("*/*.sql"))
+    expected = sorted(
+        GOLDEN.parent / "designs" / s.parent / f"{s.stem}.{d}.sql"
+        for s in DESIGN_STUDIES
+        for d in ("duckdb", "spark")
+    )
+    assert written == expected
 
 
 def test_compiling_twice_gives_identical_plans() -> None:

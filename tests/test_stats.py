@@ -1,8 +1,9 @@
 """External checks of pipeline.stats.
 
 Every numeric assert names its source: a reference library (statsmodels, lifelines,
-scikit-learn, scipy), /work/shared/REFERENCE_VALUES.md (section number), or a value computed by
-hand in the comment beside it. Reference libraries are imported with pytest.importorskip so the
+scikit-learn, scipy) called here or, for a fixed table of values, the library and version or
+the publication the values were computed with, or a value computed by hand in the comment
+beside it. Reference libraries are imported with pytest.importorskip so the
 library itself never needs them.
 """
 
@@ -38,7 +39,7 @@ from pipeline.stats import (
 
 PROPORTIONS = [(9, 100), (0, 50), (50, 50), (412, 4580), (1, 3), (0, 1), (1, 1), (7, 13)]
 
-# REFERENCE_VALUES.md section 6.
+# Ten subjects, no ties (2 = a competing event); reference values computed with lifelines 0.30.3.
 KM_DURATIONS = [2, 3, 4, 5, 6, 7, 8, 9, 10, 12]
 KM_CODES = [1, 0, 2, 1, 0, 1, 2, 1, 0, 1]
 
@@ -99,9 +100,10 @@ def test_proportion_intervals_match_reference_table(
     x: int, n: int, wilson: tuple[float, float], exact: tuple[float, float]
 ) -> None:
     w = wilson_interval(x, n)
-    assert (round(w.low, 4), round(w.high, 4)) == wilson  # REFERENCE_VALUES.md section 5
+    # statsmodels 0.15.0 proportion_confint (method "wilson" / "beta"), 4 decimals
+    assert (round(w.low, 4), round(w.high, 4)) == wilson
     e = clopper_pearson_interval(x, n)
-    assert (round(e.low, 4), round(e.high, 4)) == exact  # REFERENCE_VALUES.md section 5
+    assert (round(e.low, 4), round(e.high, 4)) == exact
 
 
 def test_proportion_limits_are_exact_at_the_edges() -> None:
@@ -109,7 +111,7 @@ def test_proportion_limits_are_exact_at_the_edges() -> None:
     assert wilson_interval(50, 50).high == 1.0
     assert clopper_pearson_interval(0, 50).low == 0.0
     assert clopper_pearson_interval(50, 50).high == 1.0
-    # Closed form 1 - 0.025^(1/50) (REFERENCE_VALUES.md section 5).
+    # Closed form 1 - 0.025^(1/50) (Clopper-Pearson with x = 0, by hand).
     assert clopper_pearson_interval(0, 50).high == pytest.approx(1 - 0.025 ** (1 / 50), abs=1e-12)
 
 
@@ -140,15 +142,17 @@ def test_poisson_exact_matches_garwood_chi_square_formula(k: int) -> None:
 
 
 def test_poisson_exact_reference_values() -> None:
+    # Garwood (1936) exact limits chi2(a/2, 2k)/2 and chi2(1-a/2, 2k+2)/2, computed with scipy
+    # 1.17 chi2.ppf (statsmodels confint_poisson(method="exact-c") gives the same).
     ci = poisson_exact_interval(12, 1000.0)
-    assert (round(ci.low * 1000, 4), round(ci.high * 1000, 4)) == (6.2006, 20.9616)  # REF 5
+    assert (round(ci.low * 1000, 4), round(ci.high * 1000, 4)) == (6.2006, 20.9616)  # Garwood
     ci = poisson_exact_interval(0, 500.0)
     assert ci.low == 0.0
-    assert round(ci.high * 1000, 4) == 7.3778  # REFERENCE_VALUES.md section 5
-    assert round(ci.high * 500, 4) == 3.6889  # count upper limit, REF 5
+    assert round(ci.high * 1000, 4) == 7.3778  # Garwood
+    assert round(ci.high * 500, 4) == 3.6889  # count upper limit, Garwood
     one, five = poisson_exact_interval(1, 1.0), poisson_exact_interval(5, 1.0)
-    assert (round(one.low, 4), round(one.high, 4)) == (0.0253, 5.5716)  # REF 5
-    assert (round(five.low, 4), round(five.high, 4)) == (1.6235, 11.6683)  # REF 5
+    assert (round(one.low, 4), round(one.high, 4)) == (0.0253, 5.5716)  # Garwood
+    assert (round(five.low, 4), round(five.high, 4)) == (1.6235, 11.6683)  # Garwood
 
 
 # --- incidence -------------------------------------------------------------------------------
@@ -202,7 +206,8 @@ def test_kaplan_meier_matches_lifelines_and_reference() -> None:
     ref = lifelines.KaplanMeierFitter().fit(KM_DURATIONS, events).survival_function_
     assert km.times.tolist() == ref.index.tolist()
     np.testing.assert_allclose(km.values, ref["KM_estimate"].to_numpy(), atol=1e-12)  # lifelines
-    hand = {2: 0.9, 4: 0.7875, 5: 0.675, 7: 0.54, 8: 0.405, 9: 0.27, 12: 0.0}  # REF section 6
+    # lifelines 0.30.3, and by hand
+    hand = {2: 0.9, 4: 0.7875, 5: 0.675, 7: 0.54, 8: 0.405, 9: 0.27, 12: 0.0}
     np.testing.assert_allclose(km.at(list(hand)), list(hand.values()), atol=1e-12)
     assert km.at([-1.0, 0.0, 2.5, 100.0]).tolist() == pytest.approx([1.0, 1.0, 0.9, 0.0])
 
@@ -235,13 +240,13 @@ def test_aalen_johansen_matches_lifelines(cause: int) -> None:
 def test_aalen_johansen_reference_values_and_identity() -> None:
     cif1 = aalen_johansen(KM_DURATIONS, KM_CODES, cause=1)
     cif2 = aalen_johansen(KM_DURATIONS, KM_CODES, cause=2)
-    hand1 = {2: 0.1, 5: 0.2125, 7: 0.3475, 9: 0.4825, 12: 0.7525}  # REFERENCE section 6
+    hand1 = {2: 0.1, 5: 0.2125, 7: 0.3475, 9: 0.4825, 12: 0.7525}  # lifelines 0.30.3 AJ
     np.testing.assert_allclose(cif1.at(list(hand1)), list(hand1.values()), atol=1e-12)
-    np.testing.assert_allclose(cif2.at([4, 8]), [0.1125, 0.2475], atol=1e-12)  # REF section 6
+    np.testing.assert_allclose(cif2.at([4, 8]), [0.1125, 0.2475], atol=1e-12)  # lifelines
     km_any = kaplan_meier(KM_DURATIONS, KM_CODES)
-    np.testing.assert_allclose(cif1.values + cif2.values, 1 - km_any.values, atol=1e-12)  # REF 6
+    np.testing.assert_allclose(cif1.values + cif2.values, 1 - km_any.values, atol=1e-12)  # identity
     naive = 1 - kaplan_meier(KM_DURATIONS, [c == 1 for c in KM_CODES]).at(9).item()
-    assert naive == pytest.approx(0.588571, abs=1e-6)  # REF 6: naive 1-KM overestimates
+    assert naive == pytest.approx(0.588571, abs=1e-6)  # lifelines KM: naive 1-KM overestimates
     assert naive > cif1.at(9).item()
 
 
@@ -270,7 +275,8 @@ def test_competing_risk_data_codes() -> None:
 
 def test_diagnostic_accuracy_reference_values() -> None:
     acc = diagnostic_accuracy(90, 10, 30, 870)
-    expected = {  # REFERENCE_VALUES.md section 7
+    # Estimates by hand; Wilson limits from statsmodels 0.15.0 proportion_confint, 4 decimals.
+    expected = {
         "sensitivity": (0.75, 0.6656, 0.8189),
         "specificity": (0.98864, 0.9792, 0.9938),
         "ppv": (0.90, 0.8256, 0.9448),
@@ -280,11 +286,11 @@ def test_diagnostic_accuracy_reference_values() -> None:
         ci = getattr(acc, name)
         assert round(ci.estimate, 5) == estimate
         assert (round(ci.low, 4), round(ci.high, 4)) == (low, high)
-    assert acc.lr_positive == pytest.approx(66.0, abs=1e-12)  # REF section 7
-    assert round(acc.lr_negative, 5) == 0.25287  # REF section 7
-    assert round(acc.kappa.estimate, 6) == 0.795918  # REF section 7
-    assert round(acc.kappa_ase, 4) == 0.0311  # REF section 7 (statsmodels ASE)
-    assert (round(acc.kappa.low, 4), round(acc.kappa.high, 4)) == (0.7349, 0.8569)  # REF 7
+    assert acc.lr_positive == pytest.approx(66.0, abs=1e-12)  # hand: 0.75 / (10 / 880)
+    assert round(acc.lr_negative, 5) == 0.25287  # hand: 0.25 / (870 / 880)
+    assert round(acc.kappa.estimate, 6) == 0.795918  # hand: (.96 - .804) / (1 - .804)
+    assert round(acc.kappa_ase, 4) == 0.0311  # statsmodels 0.15.0 cohens_kappa ASE
+    assert (round(acc.kappa.low, 4), round(acc.kappa.high, 4)) == (0.7349, 0.8569)  # statsmodels
 
 
 @pytest.mark.parametrize("cells", [(90, 10, 30, 870), (5, 3, 2, 40), (0, 4, 3, 9), (20, 0, 0, 7)])
@@ -321,10 +327,11 @@ def test_onset_agreement() -> None:
 
 def test_odds_ratio_phi_and_tau_reference_table() -> None:
     r = association_2x2(40, 10, 20, 30)
-    assert r.odds_ratio == pytest.approx(6.0, rel=1e-12)  # REFERENCE_VALUES.md section 11
-    assert (round(r.or_low, 4), round(r.or_high, 4)) == (2.4526, 14.6781)  # REF 11, Woolf
+    assert r.odds_ratio == pytest.approx(6.0, rel=1e-12)  # hand: 40*30 / (10*20)
+    # hand: Woolf (1955) limits exp(ln 6 +- 1.96 sqrt(1/40 + 1/10 + 1/20 + 1/30))
+    assert (round(r.or_low, 4), round(r.or_high, 4)) == (2.4526, 14.6781)
     assert not r.haldane
-    assert round(r.phi, 6) == 0.408248  # REF section 11
+    assert round(r.phi, 6) == 0.408248  # hand: (40*30 - 10*20) / sqrt(50*50*60*40)
     sample = sps.contingency.odds_ratio([[40, 10], [20, 30]], kind="sample")
     assert r.odds_ratio == pytest.approx(sample.statistic, rel=1e-12)  # scipy sample OR
     x = np.repeat([1, 1, 0, 0], [40, 10, 20, 30])
@@ -348,7 +355,7 @@ def test_haldane_correction_only_with_a_zero_cell() -> None:
     ("theta", "tau"), [(1.0, 0.110019), (2.0, 0.213895), (5.0, 0.456701), (-2.0, -0.213895)]
 )
 def test_frank_tau_and_inverse(theta: float, tau: float) -> None:
-    assert round(frank_tau(theta), 6) == tau  # REFERENCE_VALUES.md section 11 (Genest 1987)
+    assert round(frank_tau(theta), 6) == tau  # Genest 1987 (Biometrika 74:549), scipy quad
     assert frank_theta_from_tau(tau) == pytest.approx(theta, abs=1e-4)  # inverted back
     assert frank_theta_from_tau(frank_tau(theta)) == pytest.approx(theta, abs=1e-9)
     copula = _quiet_import("statsmodels.distributions.copula.api")

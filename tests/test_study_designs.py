@@ -103,7 +103,7 @@ AGES = [
     ("2000-02-29", "2001-03-01", 1),
     ("2000-02-29", "2004-02-28", 3),
     ("2000-02-29", "2004-02-29", 4),
-    # dateutil's relativedelta gives 1 here; our documented convention (DEMO_STUDY.md) is that a
+    # dateutil's relativedelta gives 1 here; our documented convention (demo spec §1.3) is that a
     # 29 February birthday is reached on 1 March in non-leap years.
     ("2000-02-29", "2001-02-28", 0),
 ]
@@ -203,7 +203,7 @@ def test_charlson_on_the_engine_agrees_with_comorbidipy(tmp_path: Path) -> None:
     # Source: comorbidipy 0.5.0 (Quan 2005 ICD-10 mapping), weighting "charlson" = Charlson 1987.
     assert cohort["cci"].to_list() == _comorbidipy_scores(undotted, "icd10", "charlson")
     # Source: comorbidipy "quan" weights = Quan 2011, except AIDS/HIV 2 there and 4 here (the
-    # paper's value, REFERENCE_VALUES.md section 10): ours is exactly 2 more with B20-B22/B24.
+    # paper's value, from memory): ours is exactly 2 more with B20-B22/B24.
     quan = _comorbidipy_scores(undotted, "icd10", "quan")
     aids = [any(c[:3] in ("B20", "B21", "B22", "B24") for c in p) for p in undotted]
     assert cohort["cci_quan"].to_list() == [q + 2 * a for q, a in zip(quan, aids, strict=True)]

@@ -294,7 +294,7 @@ def _frank_tau_scipy(theta: float) -> float:
 
 @pytest.mark.parametrize(("theta", "expected"), [(1.0, 0.110019), (2.0, 0.213895), (5.0, 0.456701)])
 def test_frank_tau_formula_matches_scipy(theta: float, expected: float) -> None:
-    # expected values: REFERENCE_VALUES.md section 11 (Genest 1987; scipy quad)
+    # expected values: Genest 1987 (Biometrika 74:549), integrated with scipy quad
     assert frank_kendall_tau(theta) == pytest.approx(_frank_tau_scipy(theta), abs=1e-9)
     assert frank_kendall_tau(theta) == pytest.approx(expected, abs=1e-6)
 

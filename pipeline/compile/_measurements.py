@@ -196,7 +196,8 @@ FROM (
 WHERE egfr BETWEEN :low AND :high
 """
 
-# BMI from weight and the latest height ever recorded (DEMO_STUDY.md), on days without a usable
+# BMI from weight and the latest height ever recorded (demo spec §5,
+# definitions/studies/orvane_multimorbidity.md), on days without a usable
 # reported BMI; several weights on one day each give a BMI.
 _DERIVED_BMI = """
 SELECT patient_id, obs_date, 'bmi' AS measure, bmi AS value, CAST(NULL AS VARCHAR) AS qualifier,

@@ -1,6 +1,6 @@
 """Pydantic models of condition files (case definitions).
 
-The vocabulary is ours (see DESIGN.md). Every model forbids unknown keys, so a typo is an error
+The vocabulary is ours (README.md shows it). Every model forbids unknown keys, so a typo is an error
 with a suggestion instead of a silently ignored setting.
 """
 

@@ -35,7 +35,7 @@ from pipeline.config._loader import did_you_mean, validate_document
 from pipeline.config._yaml import load_yaml
 from pipeline.errors import ConfigError
 
-# Canonical columns per table, with the ones that hold dates (DESIGN.md).
+# Canonical columns per table, with the ones that hold dates: the canonical schema itself.
 CANONICAL_COLUMNS: dict[str, tuple[str, ...]] = {
     "patients": (
         "patient_id", "birth_date", "birth_year", "sex", "death_date", "practice_id",

@@ -10,7 +10,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-# Creatinine: 1 mg/dL = 88.42 umol/L (molar mass 113.12 g/mol; DEMO_STUDY.md uses 88.42).
+# Creatinine: 1 mg/dL = 88.42 umol/L (molar mass 113.12 g/mol; the demo
+# spec, definitions/studies/orvane_multimorbidity.md §4.2, uses 88.42).
 CREATININE_UMOL_PER_MG_DL = 88.42
 # HbA1c IFCC (mmol/mol) to NGSP (%): master equation NGSP = 0.09148 * IFCC + 2.152
 # (Hoelzel et al. 2004, Clin Chem 50:166).

@@ -37,8 +37,8 @@ UNITS: tuple[str, ...] = (
     "umol/L",
     "µmol/L",
 )
-CREATININE_UMOL_PER_MG = 88.42  # DEMO_STUDY.md divides µmol/L by 88.42
-IFCC_SLOPE, IFCC_INTERCEPT = 0.09148, 2.152  # NGSP = 0.09148 * IFCC + 2.152 (DEMO_STUDY.md)
+CREATININE_UMOL_PER_MG = 88.42  # the demo spec (§4.2) divides µmol/L by 88.42
+IFCC_SLOPE, IFCC_INTERCEPT = 0.09148, 2.152  # NGSP = 0.09148 * IFCC + 2.152 (demo spec §4.1)
 _COMMA = [f"{i / 10:.1f}".replace(".", ",") for i in range(301)]
 TEXTS: tuple[str, ...] = tuple(sorted([*_COMMA, "<0.6", ">90"]))
 """Every ``value_text`` the generator writes, sorted; rows hold an index, NO_TEXT for null."""

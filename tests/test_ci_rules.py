@@ -1,0 +1,89 @@
+"""CI checks what the project promises: style and import bans, the whole suite, no silent skips.
+
+``.ci/run`` runs exactly the README's test command; these tests pin what that command does.
+"""
+
+from __future__ import annotations
+
+import shutil
+import subprocess
+import tomllib
+
+import pytest
+
+from .conftest import ROOT
+from .helpers import in_ci, require
+
+
+def _readme_test_command() -> str:
+    """The command ``.ci/run`` extracts from README.md, extracted by ``.ci/run``'s own awk."""
+    run = (ROOT / ".ci" / "run").read_text(encoding="utf-8")
+    (line,) = [x for x in run.splitlines() if x.startswith("command=$(awk ")]
+    program = line.split("'")[1]
+    awk = shutil.which("awk")
+    require(awk, "no awk to read the test command the way .ci/run does")
+    assert awk is not None
+    done = subprocess.run(
+        [awk, program, "README.md"], cwd=ROOT, capture_output=True, text=True, check=True
+    )
+    return done.stdout.strip()
+
+
+def test_ci_command_checks_style_before_running_the_whole_suite() -> None:
+    command = _readme_test_command()
+    steps = [step.strip() for step in command.split("&&")]
+    assert steps == [
+        'python -m pip install ".[test]"',
+        "ruff check .",
+        "ruff format --check .",
+        "python -m pytest",
+    ]
+
+
+def test_ruff_enforces_the_import_bans_and_complexity_and_skips_ci_venvs() -> None:
+    config = tomllib.loads((ROOT / "pyproject.toml").read_text(encoding="utf-8"))
+    ruff = config["tool"]["ruff"]
+    assert {"TID", "C90"} <= set(ruff["lint"]["select"])
+    assert "duckdb" in ruff["lint"]["flake8-tidy-imports"]["banned-api"]
+    assert ruff["lint"]["mccabe"]["max-complexity"] <= 12
+    # .ci/run creates .ci-venv inside the repository: linting it would fail on installed code.
+    assert {".ci-venv", ".venv"} <= set(ruff["extend-exclude"])
+    assert "ruff" in " ".join(config["project"]["optional-dependencies"]["test"])
+
+
+def test_ruff_really_finds_a_banned_import(tmp_path) -> None:  # type: ignore[no-untyped-def]
+    # The ban is real only if ruff, run with this configuration, flags it outside the engine.
+    ruff = pytest.importorskip("ruff")
+    module = ROOT / "pipeline" / "compile"
+    probe = tmp_path / "probe.py"
+    probe.write_text('"""Probe."""\n\nimport duckdb\n\nduckdb.sql("select 1")\n', encoding="utf-8")
+    binary = ruff.find_ruff_bin()  # type: ignore[attr-defined]
+    done = subprocess.run(
+        [binary, "check", "--config", str(ROOT / "pyproject.toml"), "--select", "TID251",
+         "--stdin-filename", str(module / "probe.py"), "-"],
+        input=probe.read_text(encoding="utf-8"), capture_output=True, text=True, check=False,
+    )  # fmt: skip
+    assert done.returncode == 1, done.stdout + done.stderr
+    assert "TID251" in done.stdout
+
+
+@pytest.mark.parametrize(("ci", "expected"), [("true", True), ("TRUE", True), ("", False)])
+def test_in_ci_reads_the_ci_variable(
+    monkeypatch: pytest.MonkeyPatch, ci: str, expected: bool
+) -> None:
+    monkeypatch.setenv("CI", ci)
+    assert in_ci() is expected
+
+
+def test_a_missing_tool_skips_locally(monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.delenv("CI", raising=False)
+    with pytest.raises(pytest.skip.Exception, match="no Java"):
+        require(None, "no Java runtime")
+    require("/usr/bin/java", "no Java runtime")  # found: nothing happens
+
+
+def test_a_missing_tool_fails_in_ci(monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setenv("CI", "true")
+    with pytest.raises(pytest.fail.Exception, match=r"no chromium.*CI=true"):
+        require(None, "no chromium")
+    require(True, "no chromium")
