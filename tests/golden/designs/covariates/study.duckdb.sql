@@ -22,7 +22,7 @@ SELECT DISTINCT
   TRY_CAST(deregistration_date AS DATE) AS deregistration_date
 FROM src_patients
 WHERE
-  NOT patient_id IS NULL;
+  NOT patient_id IS NULL AND source_problem IS NULL;
 
 -- stage patient_duplicates [check]: patients must be listed once
 -- reads: patient_base
@@ -50,6 +50,8 @@ FROM (
     TRY_CAST(encounter_date AS DATE) AS encounter_date,
     LOWER(TRIM(CAST(encounter_type AS TEXT))) AS encounter_type
   FROM src_encounters
+  WHERE
+    source_problem IS NULL
 ) AS e
 JOIN patient_base AS p
   ON p.patient_id = e.patient_id
@@ -149,6 +151,8 @@ FROM (
     CAST(source AS TEXT) AS raw_source,
     CAST(NULL AS INT) AS duration_days
   FROM src_diagnoses
+  WHERE
+    source_problem IS NULL
   UNION ALL
   SELECT
     patient_id,
@@ -159,6 +163,8 @@ FROM (
     CAST(NULL AS TEXT) AS raw_source,
     CAST(DATE_DIFF('DAY', TRY_CAST(start_date AS DATE), TRY_CAST(stop_date AS DATE)) + 1 AS INT) AS duration_days
   FROM src_prescriptions
+  WHERE
+    source_problem IS NULL
 ) AS r
 JOIN patient_base AS p
   ON p.patient_id = r.patient_id
@@ -185,7 +191,8 @@ WITH read AS (
     NULLIF(TRIM(CAST(value_text AS TEXT)), '') AS text_given,
     NULLIF(TRIM(CAST(unit AS TEXT)), '') AS unit_given,
     copies,
-    source_position
+    source_position,
+    source_problem
   FROM (
     SELECT
       patient_id,
@@ -194,6 +201,7 @@ WITH read AS (
       unit,
       value,
       value_text,
+      source_problem,
       MIN(source_position) AS source_position,
       COUNT(*) AS copies
     FROM src_measurements
@@ -203,7 +211,8 @@ WITH read AS (
       measure,
       unit,
       value,
-      value_text
+      value_text,
+      source_problem
   ) AS d
 ), split AS (
   SELECT
@@ -247,7 +256,8 @@ WITH read AS (
     text_given,
     unit_given,
     copies,
-    source_position
+    source_position,
+    source_problem
   FROM split
 )
 SELECT
@@ -261,8 +271,11 @@ SELECT
   r.unit_given AS raw_unit,
   r.copies,
   r.source_position,
+  r.source_problem,
   u.factor * r.reading / u.divisor + u.offset_value AS value,
   CASE
+    WHEN NOT r.source_problem IS NULL
+    THEN r.source_problem
     WHEN p.patient_id IS NULL
     THEN 'orphan patient'
     WHEN r.obs_date IS NULL
@@ -330,6 +343,8 @@ LEFT JOIN (VALUES
   ('creatinine', 'μmol/L', 1.0, 88.42, 0.0, 0.1, 20.0),
   ('creatinine', 'umol/l', 1.0, 88.42, 0.0, 0.1, 20.0),
   ('creatinine', 'µmol/l', 1.0, 88.42, 0.0, 0.1, 20.0),
+  ('creatinine', 'mmol/L', 1000.0, 88.42, 0.0, 0.1, 20.0),
+  ('creatinine', 'mmol/l', 1000.0, 88.42, 0.0, 0.1, 20.0),
   ('dbp', 'mmHg', 1.0, 1.0, 0.0, 20.0, 200.0),
   ('dbp', 'mm[Hg]', 1.0, 1.0, 0.0, 20.0, 200.0),
   ('dbp', 'mm Hg', 1.0, 1.0, 0.0, 20.0, 200.0),
@@ -349,6 +364,7 @@ LEFT JOIN (VALUES
   ('height', 'cm', 1.0, 1.0, 0.0, 40.0, 250.0),
   ('height', 'm', 100.0, 1.0, 0.0, 40.0, 250.0),
   ('height', 'mm', 1.0, 10.0, 0.0, 40.0, 250.0),
+  ('height', '[in_i]', 2.54, 1.0, 0.0, 40.0, 250.0),
   ('ldl', 'mmol/L', 1.0, 1.0, 0.0, 0.2, 15.0),
   ('ldl', 'mmol/l', 1.0, 1.0, 0.0, 0.2, 15.0),
   ('ldl', 'mg/dL', 1.0, 38.67, 0.0, 0.2, 15.0),
@@ -361,7 +377,8 @@ LEFT JOIN (VALUES
   ('total_cholesterol', 'mg/dL', 1.0, 38.67, 0.0, 1.0, 20.0),
   ('total_cholesterol', 'mg/dl', 1.0, 38.67, 0.0, 1.0, 20.0),
   ('weight', 'kg', 1.0, 1.0, 0.0, 2.0, 400.0),
-  ('weight', 'g', 1.0, 1000.0, 0.0, 2.0, 400.0)) AS u(measure, unit, factor, divisor, offset_value, low, high)
+  ('weight', 'g', 1.0, 1000.0, 0.0, 2.0, 400.0),
+  ('weight', '[lb_av]', 0.45359237, 1.0, 0.0, 2.0, 400.0)) AS u(measure, unit, factor, divisor, offset_value, low, high)
   ON u.measure = r.measure AND u.unit = r.unit;
 
 -- stage measurement_judged [table]: every measurement row parsed, converted and judged: values and quality log
@@ -375,6 +392,7 @@ SELECT
   category,
   copies,
   source_position,
+  source_problem,
   problem
 FROM measurement_rows;
 
@@ -1757,11 +1775,16 @@ FROM (
   ) AS fu
 ) AS f;
 
--- stage attrition [table]: patients before, removed and remaining at each eligibility step
--- reads: eligibility
+-- stage attrition [table]: patients in the extract, without an index date, and at each eligibility step
+-- reads: eligibility, patient_base
 WITH totals AS (
   SELECT
     COUNT(*) AS n_0,
+    (
+      SELECT
+        COUNT(*)
+      FROM patient_base
+    ) AS n_all,
     COALESCE(SUM(CASE WHEN step_1 THEN 1 ELSE 0 END), 0) AS n_1,
     COALESCE(SUM(CASE WHEN step_1 AND step_2 THEN 1 ELSE 0 END), 0) AS n_2,
     COALESCE(SUM(CASE WHEN (
@@ -1788,12 +1811,30 @@ SELECT
   CAST(remaining AS BIGINT) AS remaining
 FROM (
   SELECT
-    0 AS step_number,
-    'source_population' AS step,
-    'the first encounter between 2015-01-01 and 2016-12-31' AS description,
-    n_0 AS patients_before,
+    -2 AS step_number,
+    'patients_in_extract' AS step,
+    'patients in the extract' AS description,
+    n_all AS patients_before,
     0 AS removed,
-    n_0 AS remaining
+    n_all AS remaining
+  FROM totals
+  UNION ALL
+  SELECT
+    -1,
+    'without_index_date',
+    'without an index date',
+    n_all,
+    n_all - n_0,
+    n_0
+  FROM totals
+  UNION ALL
+  SELECT
+    0,
+    'source_population',
+    'the first encounter between 2015-01-01 and 2016-12-31',
+    n_0,
+    0,
+    n_0
   FROM totals
   UNION ALL
   SELECT
@@ -2001,15 +2042,21 @@ WITH summary AS (
   SELECT
     reason,
     'patients' AS source_table,
-    SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
-    SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
+    SUM(CASE WHEN counted_whole THEN copies ELSE 1 END) AS distinct_rows,
+    SUM(CASE WHEN counted_whole THEN 0 ELSE copies - 1 END) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
-      CASE WHEN patient_id IS NULL THEN 'missing patient_id' ELSE 'used' END AS reason,
+      CASE
+        WHEN NOT source_problem IS NULL
+        THEN source_problem
+        WHEN patient_id IS NULL
+        THEN 'missing patient_id'
+        ELSE 'used'
+      END AS reason,
       copies,
       source_position,
-      patient_id IS NULL AS no_patient_id
+      patient_id IS NULL OR NOT source_problem IS NULL AS counted_whole
     FROM (
       SELECT
         patient_id,
@@ -2020,6 +2067,7 @@ WITH summary AS (
         practice_id,
         registration_date,
         deregistration_date,
+        source_problem,
         MIN(source_position) AS source_position,
         COUNT(*) AS copies
       FROM src_patients
@@ -2031,7 +2079,8 @@ WITH summary AS (
         birth_year,
         practice_id,
         registration_date,
-        deregistration_date
+        deregistration_date,
+        source_problem
     ) AS g
   ) AS c
   GROUP BY
@@ -2040,12 +2089,14 @@ WITH summary AS (
   SELECT
     reason,
     'encounters' AS source_table,
-    SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
-    SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
+    SUM(CASE WHEN counted_whole THEN copies ELSE 1 END) AS distinct_rows,
+    SUM(CASE WHEN counted_whole THEN 0 ELSE copies - 1 END) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       CASE
+        WHEN NOT r.source_problem IS NULL
+        THEN r.source_problem
         WHEN p.patient_id IS NULL
         THEN 'orphan patient'
         WHEN r.row_date IS NULL
@@ -2060,7 +2111,7 @@ WITH summary AS (
       END AS reason,
       r.copies,
       r.source_position,
-      r.patient_id IS NULL AS no_patient_id
+      r.patient_id IS NULL OR NOT r.source_problem IS NULL AS counted_whole
     FROM (
       SELECT
         *,
@@ -2070,13 +2121,15 @@ WITH summary AS (
           patient_id,
           encounter_date,
           encounter_type,
+          source_problem,
           MIN(source_position) AS source_position,
           COUNT(*) AS copies
         FROM src_encounters
         GROUP BY
           patient_id,
           encounter_date,
-          encounter_type
+          encounter_type,
+          source_problem
       ) AS g
     ) AS r
     LEFT JOIN patient_base AS p
@@ -2088,12 +2141,14 @@ WITH summary AS (
   SELECT
     reason,
     'diagnoses' AS source_table,
-    SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
-    SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
+    SUM(CASE WHEN counted_whole THEN copies ELSE 1 END) AS distinct_rows,
+    SUM(CASE WHEN counted_whole THEN 0 ELSE copies - 1 END) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       CASE
+        WHEN NOT r.source_problem IS NULL
+        THEN r.source_problem
         WHEN p.patient_id IS NULL
         THEN 'orphan patient'
         WHEN r.row_date IS NULL
@@ -2108,7 +2163,7 @@ WITH summary AS (
       END AS reason,
       r.copies,
       r.source_position,
-      r.patient_id IS NULL AS no_patient_id
+      r.patient_id IS NULL OR NOT r.source_problem IS NULL AS counted_whole
     FROM (
       SELECT
         *,
@@ -2124,6 +2179,7 @@ WITH summary AS (
           code_system,
           code,
           source,
+          source_problem,
           MIN(source_position) AS source_position,
           COUNT(*) AS copies
         FROM src_diagnoses
@@ -2132,7 +2188,8 @@ WITH summary AS (
           event_date,
           code_system,
           code,
-          source
+          source,
+          source_problem
       ) AS g
     ) AS r
     LEFT JOIN patient_base AS p
@@ -2149,12 +2206,14 @@ WITH summary AS (
   SELECT
     reason,
     'prescriptions' AS source_table,
-    SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
-    SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
+    SUM(CASE WHEN counted_whole THEN copies ELSE 1 END) AS distinct_rows,
+    SUM(CASE WHEN counted_whole THEN 0 ELSE copies - 1 END) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       CASE
+        WHEN NOT r.source_problem IS NULL
+        THEN r.source_problem
         WHEN p.patient_id IS NULL
         THEN 'orphan patient'
         WHEN r.row_date IS NULL
@@ -2169,7 +2228,7 @@ WITH summary AS (
       END AS reason,
       r.copies,
       r.source_position,
-      r.patient_id IS NULL AS no_patient_id
+      r.patient_id IS NULL OR NOT r.source_problem IS NULL AS counted_whole
     FROM (
       SELECT
         *,
@@ -2184,6 +2243,7 @@ WITH summary AS (
           start_date,
           atc,
           stop_date,
+          source_problem,
           MIN(source_position) AS source_position,
           COUNT(*) AS copies
         FROM src_prescriptions
@@ -2191,7 +2251,8 @@ WITH summary AS (
           patient_id,
           start_date,
           atc,
-          stop_date
+          stop_date,
+          source_problem
       ) AS g
     ) AS r
     LEFT JOIN patient_base AS p
@@ -2208,15 +2269,15 @@ WITH summary AS (
   SELECT
     reason,
     'measurements' AS source_table,
-    SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
-    SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
+    SUM(CASE WHEN counted_whole THEN copies ELSE 1 END) AS distinct_rows,
+    SUM(CASE WHEN counted_whole THEN 0 ELSE copies - 1 END) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       COALESCE(problem, 'used') AS reason,
       copies,
       source_position,
-      patient_id IS NULL AS no_patient_id
+      patient_id IS NULL OR NOT source_problem IS NULL AS counted_whole
     FROM measurement_judged
   ) AS c
   GROUP BY

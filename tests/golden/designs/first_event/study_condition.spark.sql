@@ -74,7 +74,7 @@ SELECT DISTINCT
   END AS deregistration_date
 FROM src_patients
 WHERE
-  NOT patient_id IS NULL;
+  NOT patient_id IS NULL AND source_problem IS NULL;
 
 -- stage patient_duplicates [check]: patients must be listed once
 -- reads: patient_base
@@ -109,6 +109,8 @@ FROM (
     END AS encounter_date,
     LOWER(TRIM(CAST(encounter_type AS STRING))) AS encounter_type
   FROM src_encounters
+  WHERE
+    source_problem IS NULL
 ) AS e
 JOIN patient_base AS p
   ON p.patient_id = e.patient_id
@@ -207,6 +209,8 @@ FROM (
     CAST(source AS STRING) AS raw_source,
     CAST(NULL AS INT) AS duration_days
   FROM src_diagnoses
+  WHERE
+    source_problem IS NULL
   UNION ALL
   SELECT
     patient_id,
@@ -242,6 +246,8 @@ FROM (
       END
     ) + 1 AS INT) AS duration_days
   FROM src_prescriptions
+  WHERE
+    source_problem IS NULL
 ) AS r
 JOIN patient_base AS p
   ON p.patient_id = r.patient_id
@@ -644,11 +650,16 @@ FROM (
   ) AS fu
 ) AS f;
 
--- stage attrition [table]: patients before, removed and remaining at each eligibility step
--- reads: eligibility
+-- stage attrition [table]: patients in the extract, without an index date, and at each eligibility step
+-- reads: eligibility, patient_base
 WITH totals AS (
   SELECT
     COUNT(*) AS n_0,
+    (
+      SELECT
+        COUNT(*)
+      FROM patient_base
+    ) AS n_all,
     COALESCE(SUM(CASE WHEN step_1 THEN 1 ELSE 0 END), 0) AS n_1,
     COALESCE(SUM(CASE WHEN step_1 AND step_2 THEN 1 ELSE 0 END), 0) AS n_2,
     COALESCE(SUM(CASE WHEN (
@@ -665,12 +676,30 @@ SELECT
   CAST(remaining AS BIGINT) AS remaining
 FROM (
   SELECT
-    0 AS step_number,
-    'source_population' AS step,
-    'the onset of hypertension between 2015-01-01 and 2016-12-31' AS description,
-    n_0 AS patients_before,
+    -2 AS step_number,
+    'patients_in_extract' AS step,
+    'patients in the extract' AS description,
+    n_all AS patients_before,
     0 AS removed,
-    n_0 AS remaining
+    n_all AS remaining
+  FROM totals
+  UNION ALL
+  SELECT
+    -1,
+    'without_index_date',
+    'without an index date',
+    n_all,
+    n_all - n_0,
+    n_0
+  FROM totals
+  UNION ALL
+  SELECT
+    0,
+    'source_population',
+    'the onset of hypertension between 2015-01-01 and 2016-12-31',
+    n_0,
+    0,
+    n_0
   FROM totals
   UNION ALL
   SELECT
@@ -812,15 +841,21 @@ WITH summary AS (
   SELECT
     reason,
     'patients' AS source_table,
-    SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
-    SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
+    SUM(CASE WHEN counted_whole THEN copies ELSE 1 END) AS distinct_rows,
+    SUM(CASE WHEN counted_whole THEN 0 ELSE copies - 1 END) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
-      CASE WHEN patient_id IS NULL THEN 'missing patient_id' ELSE 'used' END AS reason,
+      CASE
+        WHEN NOT source_problem IS NULL
+        THEN source_problem
+        WHEN patient_id IS NULL
+        THEN 'missing patient_id'
+        ELSE 'used'
+      END AS reason,
       copies,
       source_position,
-      patient_id IS NULL AS no_patient_id
+      patient_id IS NULL OR NOT source_problem IS NULL AS counted_whole
     FROM (
       SELECT
         patient_id,
@@ -831,6 +866,7 @@ WITH summary AS (
         practice_id,
         registration_date,
         deregistration_date,
+        source_problem,
         MIN(source_position) AS source_position,
         COUNT(*) AS copies
       FROM src_patients
@@ -842,7 +878,8 @@ WITH summary AS (
         birth_year,
         practice_id,
         registration_date,
-        deregistration_date
+        deregistration_date,
+        source_problem
     ) AS g
   ) AS c
   GROUP BY
@@ -851,12 +888,14 @@ WITH summary AS (
   SELECT
     reason,
     'encounters' AS source_table,
-    SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
-    SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
+    SUM(CASE WHEN counted_whole THEN copies ELSE 1 END) AS distinct_rows,
+    SUM(CASE WHEN counted_whole THEN 0 ELSE copies - 1 END) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       CASE
+        WHEN NOT r.source_problem IS NULL
+        THEN r.source_problem
         WHEN p.patient_id IS NULL
         THEN 'orphan patient'
         WHEN r.row_date IS NULL
@@ -871,7 +910,7 @@ WITH summary AS (
       END AS reason,
       r.copies,
       r.source_position,
-      r.patient_id IS NULL AS no_patient_id
+      r.patient_id IS NULL OR NOT r.source_problem IS NULL AS counted_whole
     FROM (
       SELECT
         *,
@@ -888,13 +927,15 @@ WITH summary AS (
           patient_id,
           encounter_date,
           encounter_type,
+          source_problem,
           MIN(source_position) AS source_position,
           COUNT(*) AS copies
         FROM src_encounters
         GROUP BY
           patient_id,
           encounter_date,
-          encounter_type
+          encounter_type,
+          source_problem
       ) AS g
     ) AS r
     LEFT JOIN patient_base AS p
@@ -906,12 +947,14 @@ WITH summary AS (
   SELECT
     reason,
     'diagnoses' AS source_table,
-    SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
-    SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
+    SUM(CASE WHEN counted_whole THEN copies ELSE 1 END) AS distinct_rows,
+    SUM(CASE WHEN counted_whole THEN 0 ELSE copies - 1 END) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       CASE
+        WHEN NOT r.source_problem IS NULL
+        THEN r.source_problem
         WHEN p.patient_id IS NULL
         THEN 'orphan patient'
         WHEN r.row_date IS NULL
@@ -926,7 +969,7 @@ WITH summary AS (
       END AS reason,
       r.copies,
       r.source_position,
-      r.patient_id IS NULL AS no_patient_id
+      r.patient_id IS NULL OR NOT r.source_problem IS NULL AS counted_whole
     FROM (
       SELECT
         *,
@@ -949,6 +992,7 @@ WITH summary AS (
           code_system,
           code,
           source,
+          source_problem,
           MIN(source_position) AS source_position,
           COUNT(*) AS copies
         FROM src_diagnoses
@@ -957,7 +1001,8 @@ WITH summary AS (
           event_date,
           code_system,
           code,
-          source
+          source,
+          source_problem
       ) AS g
     ) AS r
     LEFT JOIN patient_base AS p
@@ -974,12 +1019,14 @@ WITH summary AS (
   SELECT
     reason,
     'prescriptions' AS source_table,
-    SUM(CASE WHEN no_patient_id THEN copies ELSE 1 END) AS distinct_rows,
-    SUM(CASE WHEN no_patient_id THEN 0 ELSE copies - 1 END) AS duplicates,
+    SUM(CASE WHEN counted_whole THEN copies ELSE 1 END) AS distinct_rows,
+    SUM(CASE WHEN counted_whole THEN 0 ELSE copies - 1 END) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       CASE
+        WHEN NOT r.source_problem IS NULL
+        THEN r.source_problem
         WHEN p.patient_id IS NULL
         THEN 'orphan patient'
         WHEN r.row_date IS NULL
@@ -994,7 +1041,7 @@ WITH summary AS (
       END AS reason,
       r.copies,
       r.source_position,
-      r.patient_id IS NULL AS no_patient_id
+      r.patient_id IS NULL OR NOT r.source_problem IS NULL AS counted_whole
     FROM (
       SELECT
         *,
@@ -1016,6 +1063,7 @@ WITH summary AS (
           start_date,
           atc,
           stop_date,
+          source_problem,
           MIN(source_position) AS source_position,
           COUNT(*) AS copies
         FROM src_prescriptions
@@ -1023,7 +1071,8 @@ WITH summary AS (
           patient_id,
           start_date,
           atc,
-          stop_date
+          stop_date,
+          source_problem
       ) AS g
     ) AS r
     LEFT JOIN patient_base AS p
