@@ -19,6 +19,7 @@ from pipeline.stats._agreement import (
     diagnostic_accuracy,
     onset_agreement,
 )
+from pipeline.stats._cif_interval import CifEstimate, aalen_johansen_interval
 from pipeline.stats._coarsen import ReleasedCurve, coarsen_curve
 from pipeline.stats._combinations import COMBINATIONS_SCHEMA, NO_OUTCOME, outcome_combinations
 from pipeline.stats._dependence import (
@@ -64,6 +65,7 @@ __all__ = [
     "OUTCOME",
     "TABLE_ONE_SCHEMA",
     "Association",
+    "CifEstimate",
     "CumulativeIncidence",
     "DiagnosticAccuracy",
     "IncidenceRate",
@@ -72,6 +74,7 @@ __all__ = [
     "ReleasedCurve",
     "StepCurve",
     "aalen_johansen",
+    "aalen_johansen_interval",
     "association_2x2",
     "baseline_variables",
     "clopper_pearson_interval",
