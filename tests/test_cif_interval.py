@@ -63,7 +63,8 @@ def test_variance_by_hand() -> None:
     se = math.sqrt(4 / 64) / (0.5 * math.log(2))
     assert est.low[2] == pytest.approx(0.5 ** math.exp(z * se), rel=1e-9)
     assert est.high[2] == pytest.approx(0.5 ** math.exp(-z * se), rel=1e-9)
-    assert est.low[0] == 0.0 and math.isnan(est.high[0])  # no interval on the log(-log) scale
+    assert est.low[0] == 0.0  # F = 0: no interval on the log(-log) scale
+    assert math.isnan(est.high[0])
     assert est.variance[3] == est.variance[2]  # a censoring changes nothing
 
 

@@ -11,9 +11,10 @@ of any cause, ``d_ki`` of cause ``k`` and ``S`` the all-cause Kaplan-Meier survi
              - 2 sum (F(t) - F(t_i)) * S(t_{i-1}) * d_ki / n_i^2
 
 The interval is built on the ``log(-log F)`` scale (as Collett and lifelines do) and
-transformed back, so it stays inside (0, 1): with ``se = sqrt(Var) / (F |log F|)`` the limits
-are ``F ** exp(z se)`` and ``F ** exp(-z se)``. A time where every patient at risk has an event (``n_i = d_i``) ends
-the curve; its first-term weight is taken as 0, because ``F(t) - F(t_i)`` is 0 from then on.
+transformed back, so it stays inside (0, 1): with ``se = sqrt(Var) / (F |log F|)`` the
+limits are ``F ** exp(z se)`` and ``F ** exp(-z se)``. A time where every patient at risk has
+an event (``n_i = d_i``) ends the curve; its first-term weight is taken as 0, because
+``F(t) - F(t_i)`` is 0 from then on (lifelines gives NaN there).
 
 Ties between causes at one time are handled exactly (no jitter, unlike lifelines), so results
 agree with lifelines on data without such ties.
