@@ -22,7 +22,7 @@ from pipeline.stats import (
     association_2x2,
     clopper_pearson_interval,
     competing_risk_data,
-    cumulative_incidence,
+    crude_proportion,
     diagnostic_accuracy,
     frank_tau,
     frank_theta_from_tau,
@@ -169,7 +169,7 @@ def _outcome_cohort() -> pl.DataFrame:
 
 
 def test_cumulative_incidence_counts_at_risk_only() -> None:
-    ci = cumulative_incidence(_outcome_cohort(), "ckd")
+    ci = crude_proportion(_outcome_cohort(), "ckd")
     assert (ci.at_risk, ci.events) == (5, 2)  # hand count: p1, p3 among p1..p5
     ref = wilson_interval(2, 5)
     assert (ci.proportion, ci.low, ci.high) == (0.4, ref.low, ref.high)
@@ -187,7 +187,7 @@ def test_incidence_rate_uses_time_to_onset_for_cases() -> None:
 def test_incidence_rejects_null_flag_among_at_risk() -> None:
     bad = _outcome_cohort().with_columns(pl.lit(None, pl.Boolean).alias("incident_ckd"))
     with pytest.raises(ValueError, match="null incident_ckd"):
-        cumulative_incidence(bad, "ckd")
+        crude_proportion(bad, "ckd")
     with pytest.raises(ValueError, match="days_to_x"):
         incidence_rate(_outcome_cohort(), "x")
 

@@ -1,7 +1,8 @@
 """Statistics for the study report: pure functions on the analysis table, no I/O.
 
 - intervals: Wilson, Clopper-Pearson and exact Poisson (Garwood) intervals;
-- incidence: cumulative incidence and incidence rates per person-time;
+- incidence: Aalen-Johansen cumulative incidence at the horizon with a delta-method
+  interval, crude proportions and incidence rates per person-time;
 - survival: Kaplan-Meier and Aalen-Johansen curves (death as competing event), and their
   coarsening before release (steps of at least the threshold's events and patients at risk);
 - Table 1, outcome combinations and pairwise dependence (odds ratio, phi, Kendall's tau,
@@ -33,9 +34,10 @@ from pipeline.stats._dependence import (
 from pipeline.stats._disclosure import protect_cells
 from pipeline.stats._incidence import (
     DAYS_PER_YEAR,
-    CumulativeIncidence,
+    CrudeProportion,
     IncidenceRate,
-    cumulative_incidence,
+    crude_proportion,
+    cumulative_incidence_at_horizon,
     incidence_rate,
 )
 from pipeline.stats._intervals import (
@@ -66,7 +68,7 @@ __all__ = [
     "TABLE_ONE_SCHEMA",
     "Association",
     "CifEstimate",
-    "CumulativeIncidence",
+    "CrudeProportion",
     "DiagnosticAccuracy",
     "IncidenceRate",
     "Interval",
@@ -80,7 +82,8 @@ __all__ = [
     "clopper_pearson_interval",
     "coarsen_curve",
     "competing_risk_data",
-    "cumulative_incidence",
+    "crude_proportion",
+    "cumulative_incidence_at_horizon",
     "diagnostic_accuracy",
     "frank_tau",
     "frank_theta_from_tau",
