@@ -292,6 +292,22 @@ def validate(
     extract: Annotated[
         Path | None, typer.Option(help="Use this extract folder instead of the study's.")
     ] = None,
+    coverage: Annotated[
+        str | None,
+        typer.Option(
+            help="Which patients the reference covers: 'reviewed' (only those listed count) or "
+            "'complete' (every patient; unlisted ones are negatives). Or '# coverage: ...' in "
+            "the file."
+        ),
+    ] = None,
+    sampling: Annotated[
+        str | None,
+        typer.Option(
+            help="How a reviewed sample was drawn: 'simple', or 'by_definition' (separately "
+            "among the definition's positives and negatives: sensitivity and specificity are "
+            "corrected for verification bias). Or '# sampling: ...' in the file."
+        ),
+    ] = None,
     debug: DebugOpt = False,
 ) -> None:
     """Compare each outcome's definition with a reference standard: sensitivity, PPV, kappa."""
@@ -300,7 +316,9 @@ def validate(
         # Imported here: it loads scipy (half a second), which no other command needs.
         from pipeline._validate import render_validation, validate_study
 
-        results = validate_study(study, reference, extract=extract)
+        results = validate_study(
+            study, reference, extract=extract, coverage=coverage, sampling=sampling
+        )
         threshold = load_study(study).study.output.small_cell_threshold
         return render_validation(results, threshold)
 

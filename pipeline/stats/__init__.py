@@ -7,7 +7,8 @@
   coarsening before release (steps of at least the threshold's events and patients at risk);
 - Table 1, outcome combinations and pairwise dependence (odds ratio, phi, Kendall's tau,
   Frank copula theta);
-- agreement of a definition with a reference standard;
+- agreement of a definition with a reference standard, and sensitivity and specificity
+  corrected for verification bias (Begg and Greenes 1983);
 - small-cell suppression of every published table.
 
 Only numpy, scipy and polars are used; reference libraries (statsmodels, lifelines,
@@ -56,6 +57,7 @@ from pipeline.stats._survival import (
     kaplan_meier,
 )
 from pipeline.stats._table_one import TABLE_ONE_SCHEMA, baseline_variables, table_one
+from pipeline.stats._verification import CorrectedAccuracy, verification_corrected
 
 __all__ = [
     "CENSORED",
@@ -68,6 +70,7 @@ __all__ = [
     "TABLE_ONE_SCHEMA",
     "Association",
     "CifEstimate",
+    "CorrectedAccuracy",
     "CrudeProportion",
     "DiagnosticAccuracy",
     "IncidenceRate",
@@ -95,5 +98,6 @@ __all__ = [
     "poisson_exact_interval",
     "protect_cells",
     "table_one",
+    "verification_corrected",
     "wilson_interval",
 ]
