@@ -185,9 +185,10 @@ def test_estimates_from_hidden_counts_are_not_shown(small: Path) -> None:
     for row in _rows(small / "summary" / "incidence.csv"):
         if {row["events"], row["at_risk"]} & set(MARKERS):
             assert row["cumulative_incidence_percent"] == row["rate_per_1000_py"] == ""
+            assert row["crude_percent"] == row["ci_high_percent"] == ""
     for row in _rows(small / "summary" / "dependence.csv"):
         if {row["both"], row["first_only"], row["second_only"], row["neither"]} & set(MARKERS):
-            assert row["odds_ratio"] == row["phi"] == row["frank_theta"] == ""
+            assert row["odds_ratio"] == row["phi"] == row["oe_ratio"] == row["expected"] == ""
 
 
 def test_curves_are_coarsened_and_say_so(demo: Path) -> None:

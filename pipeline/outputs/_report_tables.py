@@ -24,7 +24,16 @@ from pipeline.stats import (
     pairwise_dependence,
 )
 
-_DERIVED_DEPENDENCE = ("odds_ratio", "or_low", "or_high", "phi", "tau_b", "frank_theta")
+_DERIVED_DEPENDENCE = (
+    "odds_ratio",
+    "or_low",
+    "or_high",
+    "phi",
+    "expected",
+    "oe_ratio",
+    "oe_low",
+    "oe_high",
+)
 
 
 def flow_block(attrition: pl.DataFrame, cohort_size: int) -> Block:
@@ -173,7 +182,12 @@ def incidence_summary(
 
 
 def dependence_summary(block: Block, hidden: frozenset[str], threshold: int) -> pl.DataFrame:
-    """Pairwise dependence as published; measures from a table with a hidden cell are empty."""
+    """Pairwise dependence as published; measures from a table with a hidden cell are empty.
+
+    The expected co-occurrence is computed from stratum counts that are not released; it is
+    left empty with the other measures when a cell of its pair is hidden, because with a
+    single stratum it is ``(a + b)(a + c) / n``, a function of the hidden cells.
+    """
     out = masked(block, hidden, threshold)
     gone = pl.any_horizontal(
         pl.col(c).str.starts_with("<") | (pl.col(c) == "*") for c in ("a", "b", "c", "d", "n")
