@@ -15,6 +15,7 @@ from html.parser import HTMLParser
 from pathlib import Path
 
 import numpy as np
+import polars as pl
 import pytest
 from scipy import linalg
 
@@ -270,3 +271,13 @@ def test_report_command(small: Path) -> None:
     assert str(small / "report.html") in result.output
     missing = CliRunner().invoke(app, ["report", str(small / "nowhere")])
     assert missing.exit_code == 2
+
+
+def test_table_one_names_covariates_by_their_label(demo: Path) -> None:
+    # The demo study labels bmi and sbp; hba1c falls back to its documented meaning and unit.
+    html = (demo / "report.html").read_text(encoding="utf-8")
+    assert "BMI, latest in the two years before index, kg/m²" in html
+    assert "Systolic blood pressure, latest in the two years before index, mmHg" in html
+    assert "<th class=num>SMD</th>" in html
+    table_one = pl.read_csv(demo / "summary" / "table_one.csv", infer_schema_length=0)
+    assert table_one.filter(pl.col("smd").is_not_null()).height > 0

@@ -38,16 +38,21 @@ def _t1_stat(r: dict[str, Any] | None, kind: str) -> str:
     return f'<td class="num">{r["median"]:.1f} [{r["q1"]:.1f}, {r["q3"]:.1f}]</td>'
 
 
+def _smd(r: dict[str, Any] | None) -> str:
+    value = None if r is None else r.get("smd")
+    return '<td class="num"></td>' if value is None else f'<td class="num">{value:.2f}</td>'
+
+
 def table_one_section(frame: pl.DataFrame, outcome: str, title: str, labels: dict[str, str]) -> str:
     by = f"incident_{outcome}"
     groups = ("overall", f"{by}=false", f"{by}=true", f"{by}=null")
     part = frame.filter(pl.col("by") == by)
     cells = {(r["variable"], r["level"], r["group"]): r for r in part.iter_rows(named=True)}
-    head = ["Characteristic", "Overall", "Not incident", "Incident", "Not at risk"]
+    head = ["Characteristic", "Overall", "Not incident", "Incident", "Not at risk", "SMD"]
     rows = [
         "<tr><td>Patients, n</td>"
         + "".join(_n(cells[("patients", None, g)]["n"]) for g in groups)
-        + "</tr>"
+        + "<td></td></tr>"
     ]
     variables = [v for v in dict.fromkeys(part["variable"].to_list()) if v != "patients"]
     for v in variables:
@@ -56,24 +61,27 @@ def table_one_section(frame: pl.DataFrame, outcome: str, title: str, labels: dic
         col = f' <span class="col">{escape(v)}</span>' if v in labels else ""
         first = cells[(v, levels[0], "overall")]
         if levels == [None]:
-            rows.append(f'<tr class="var"><td colspan="5">{label}{col}</td></tr>')
+            rows.append(f'<tr class="var"><td colspan="6">{label}{col}</td></tr>')
             for kind, text in (("mean", "Mean (SD)"), ("median", "Median [Q1, Q3]")):
                 rows.append(
                     f'<tr><td class="sub">{text}</td>'
                     + "".join(_t1_stat(cells.get((v, None, g)), kind) for g in groups)
+                    + (_smd(first) if kind == "mean" else "<td></td>")
                     + "</tr>"
                 )
         elif levels == ["false", "true"]:
             rows.append(
                 f'<tr class="var"><td>{label}, n (%){col}</td>'
                 + "".join(_t1_cell(cells.get((v, "true", g))) for g in groups)
+                + _smd(cells.get((v, "true", "overall")))
                 + "</tr>"
             )
         else:
-            rows.append(f'<tr class="var"><td colspan="5">{label}, n (%){col}</td></tr>')
+            rows.append(f'<tr class="var"><td colspan="6">{label}, n (%){col}</td></tr>')
             rows += [
                 f'<tr><td class="sub">{escape(str(lv))}</td>'
                 + "".join(_t1_cell(cells.get((v, lv, g))) for g in groups)
+                + _smd(cells.get((v, lv, "overall")))
                 + "</tr>"
                 for lv in levels
             ]
@@ -81,9 +89,16 @@ def table_one_section(frame: pl.DataFrame, outcome: str, title: str, labels: dic
             rows.append(
                 '<tr><td class="sub">Missing, n</td>'
                 + "".join(_n((cells.get((v, levels[0], g)) or {}).get("missing")) for g in groups)
-                + "</tr>"
+                + "<td></td></tr>"
             )
-    return f"<h3>By incident {escape(title)}</h3>" + _table(head, rows)
+    return (
+        f"<h3>By incident {escape(title)}</h3>"
+        + _table(head, rows)
+        + '<p class="note">SMD: standardised difference, incident against not incident (Austin '
+        "2009): the difference in means over the square root of the average of the two "
+        "variances, or for a category the difference in proportions over the square root of "
+        "the average of p(1 − p). Left empty where a statistic it uses is withheld.</p>"
+    )
 
 
 def incidence_section(frame: pl.DataFrame) -> str:
@@ -165,27 +180,38 @@ def dependence_section(frame: pl.DataFrame, titles: dict[str, str]) -> str:
             if r["odds_ratio"] is None
             else (f"{r['odds_ratio']:.2f} ({r['or_low']:.2f} to {r['or_high']:.2f}){mark}")
         )
+        ratio = (
+            ""
+            if r["oe_ratio"] is None
+            else f"{r['oe_ratio']:.2f} ({r['oe_low']:.2f} to {r['oe_high']:.2f})"
+        )
         rows.append(
             f'<tr><td class="pair">{pair}</td>{_n(r["n"])}{_n(r["both"])}{_n(r["first_only"])}'
             f'{_n(r["second_only"])}{_n(r["neither"])}<td class="num">{odds}</td>'
-            f'<td class="num">{f(r["phi"])}</td><td class="num">{f(r["tau_b"])}</td>'
-            f'<td class="num">{f(r["frank_theta"], 2)}</td></tr>'
+            f'<td class="num">{f(r["phi"])}</td><td class="num">{f(r["expected"], 1)}</td>'
+            f'<td class="num">{ratio}</td></tr>'
         )
     head = [
         "Pair",
         "At risk of both",
-        "Both",
+        "Both (observed)",
         "First only",
         "Second only",
         "Neither",
         "Odds ratio (95% CI)",
         "Phi",
-        "Kendall's τb",
-        "Frank θ",
+        "Expected both",
+        "Observed / expected (95% CI)",
     ]
+    strata = sorted(set(frame["strata"].to_list())) if frame.height else []
     return _table(head, rows) + (
-        '<p class="note">Among patients at risk of both outcomes. Odds ratio with a Woolf '
-        "interval; † 0.5 added to every cell because one was zero. Frank θ is the copula "
-        "parameter implied by τb (Genest 1987), a descriptive summary. Measures are left empty "
-        "where a cell is suppressed.</p>"
+        '<p class="note">Among patients at risk of both outcomes, incident within the horizon. '
+        "Odds ratio with a Woolf interval; † 0.5 added to every cell because one was zero. "
+        "Expected both: the patients expected to have both outcomes if the two were "
+        "independent within strata of "
+        f"{escape(', '.join(strata) or 'age band and sex')} (the sum over strata of patients "
+        "times the two outcomes' crude proportions); observed / expected with an exact Poisson "
+        "interval treating the expectation as fixed. A ratio above 1 means the outcomes occur "
+        "together more often than age and sex explain. Measures are left empty where a cell "
+        "is suppressed.</p>"
     )

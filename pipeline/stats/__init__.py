@@ -5,8 +5,8 @@
   interval, crude proportions and incidence rates per person-time;
 - survival: Kaplan-Meier and Aalen-Johansen curves (death as competing event), and their
   coarsening before release (steps of at least the threshold's events and patients at risk);
-- Table 1, outcome combinations and pairwise dependence (odds ratio, phi, Kendall's tau,
-  Frank copula theta);
+- Table 1, outcome combinations and pairwise dependence (odds ratio, phi, observed against
+  expected co-occurrence within age band and sex);
 - agreement of a definition with a reference standard, and sensitivity and specificity
   corrected for verification bias (Begg and Greenes 1983);
 - small-cell suppression of every published table.
@@ -28,8 +28,7 @@ from pipeline.stats._dependence import (
     DEPENDENCE_SCHEMA,
     Association,
     association_2x2,
-    frank_tau,
-    frank_theta_from_tau,
+    expected_co_occurrence,
     pairwise_dependence,
 )
 from pipeline.stats._disclosure import protect_cells
@@ -56,7 +55,13 @@ from pipeline.stats._survival import (
     competing_risk_data,
     kaplan_meier,
 )
-from pipeline.stats._table_one import TABLE_ONE_SCHEMA, baseline_variables, table_one
+from pipeline.stats._table_one import (
+    TABLE_ONE_SCHEMA,
+    baseline_variables,
+    smd_binary,
+    smd_continuous,
+    table_one,
+)
 from pipeline.stats._verification import CorrectedAccuracy, verification_corrected
 
 __all__ = [
@@ -88,8 +93,7 @@ __all__ = [
     "crude_proportion",
     "cumulative_incidence_at_horizon",
     "diagnostic_accuracy",
-    "frank_tau",
-    "frank_theta_from_tau",
+    "expected_co_occurrence",
     "incidence_rate",
     "kaplan_meier",
     "onset_agreement",
@@ -97,6 +101,8 @@ __all__ = [
     "pairwise_dependence",
     "poisson_exact_interval",
     "protect_cells",
+    "smd_binary",
+    "smd_continuous",
     "table_one",
     "verification_corrected",
     "wilson_interval",
