@@ -346,6 +346,22 @@ def validate(
     study: StudyArg,
     reference: Annotated[Path, typer.Option(help="Reference standard (CSV or Parquet).")],
     extract: Annotated[str | None, typer.Option(help=EXTRACT_HELP)] = None,
+    coverage: Annotated[
+        str | None,
+        typer.Option(
+            help="Which patients the reference covers: 'reviewed' (only those listed count) or "
+            "'complete' (every patient; unlisted ones are negatives). Or '# coverage: ...' in "
+            "the file."
+        ),
+    ] = None,
+    sampling: Annotated[
+        str | None,
+        typer.Option(
+            help="How a reviewed sample was drawn: 'simple', or 'by_definition' (separately "
+            "among the definition's positives and negatives: sensitivity and specificity are "
+            "corrected for verification bias). Or '# sampling: ...' in the file."
+        ),
+    ] = None,
     debug: DebugOpt = False,
 ) -> None:
     """Compare each outcome's definition with a reference standard: sensitivity, PPV, kappa.
@@ -360,7 +376,9 @@ def validate(
         # Imported here: it loads scipy (half a second), which no other command needs.
         from pipeline._validate import render_validation, validate_study
 
-        results = validate_study(study, reference, extract=_extract(extract))
+        results = validate_study(
+            study, reference, extract=_extract(extract), coverage=coverage, sampling=sampling
+        )
         threshold = load_study(study).study.output.small_cell_threshold
         return render_validation(results, threshold)
 

@@ -11,6 +11,7 @@ import json
 import re
 import shutil
 import subprocess
+from collections.abc import Callable
 from html.parser import HTMLParser
 from pathlib import Path
 
@@ -195,9 +196,10 @@ def test_estimates_from_hidden_counts_are_not_shown(small: Path) -> None:
     for row in _rows(small / "summary" / "incidence.csv"):
         if {row["events"], row["at_risk"]} & set(MARKERS):
             assert row["cumulative_incidence_percent"] == row["rate_per_1000_py"] == ""
+            assert row["crude_percent"] == row["ci_high_percent"] == ""
     for row in _rows(small / "summary" / "dependence.csv"):
         if {row["both"], row["first_only"], row["second_only"], row["neither"]} & set(MARKERS):
-            assert row["odds_ratio"] == row["phi"] == row["frank_theta"] == ""
+            assert row["odds_ratio"] == row["phi"] == row["oe_ratio"] == row["expected"] == ""
 
 
 def test_curves_are_coarsened_and_say_so(demo: Path) -> None:
@@ -279,3 +281,21 @@ def test_report_command(small: Path) -> None:
     assert str(small / "report.html") in result.output
     missing = CliRunner().invoke(app, ["report", str(small / "nowhere")])
     assert missing.exit_code == 2
+
+
+def test_table_one_names_covariates_by_their_label(
+    tmp_path: Path, study_copy: Callable[[str], Path]
+) -> None:
+    # bmi gets a label in the study; hba1c falls back to its documented meaning and unit.
+    text = DEMO_STUDY.read_text(encoding="utf-8")
+    plain = "  bmi: {latest: bmi, window: [-730, 0]}"
+    assert plain in text
+    label = "BMI, latest in the two years before index, kg/m²"
+    study = study_copy(text.replace(plain, plain[:-1] + f', label: "{label}"}}'))
+    out = tmp_path / "out"
+    build_study(study, BuildOptions(extract=HANDMADE, out=out))
+    write_report(out, study)
+    html = (out / "report.html").read_text(encoding="utf-8")
+    assert label in html
+    assert "Hba1c" in html or "HbA1c" in html
+    assert "<th class=num>SMD</th>" in html

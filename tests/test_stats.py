@@ -23,10 +23,9 @@ from pipeline.stats import (
     association_2x2,
     clopper_pearson_interval,
     competing_risk_data,
-    cumulative_incidence,
+    crude_proportion,
     diagnostic_accuracy,
-    frank_tau,
-    frank_theta_from_tau,
+    expected_co_occurrence,
     incidence_rate,
     kaplan_meier,
     onset_agreement,
@@ -173,7 +172,7 @@ def _outcome_cohort() -> pl.DataFrame:
 
 
 def test_cumulative_incidence_counts_at_risk_only() -> None:
-    ci = cumulative_incidence(_outcome_cohort(), "ckd")
+    ci = crude_proportion(_outcome_cohort(), "ckd")
     assert (ci.at_risk, ci.events) == (5, 2)  # hand count: p1, p3 among p1..p5
     ref = wilson_interval(2, 5)
     assert (ci.proportion, ci.low, ci.high) == (0.4, ref.low, ref.high)
@@ -191,7 +190,7 @@ def test_incidence_rate_uses_time_to_onset_for_cases() -> None:
 def test_incidence_rejects_null_flag_among_at_risk() -> None:
     bad = _outcome_cohort().with_columns(pl.lit(None, pl.Boolean).alias("incident_ckd"))
     with pytest.raises(ValueError, match="null incident_ckd"):
-        cumulative_incidence(bad, "ckd")
+        crude_proportion(bad, "ckd")
     with pytest.raises(ValueError, match="days_to_x"):
         incidence_rate(_outcome_cohort(), "x")
 
@@ -325,7 +324,7 @@ def test_onset_agreement() -> None:
 # --- dependence ------------------------------------------------------------------------------
 
 
-def test_odds_ratio_phi_and_tau_reference_table() -> None:
+def test_odds_ratio_and_phi_reference_table() -> None:
     r = association_2x2(40, 10, 20, 30)
     assert r.odds_ratio == pytest.approx(6.0, rel=1e-12)  # hand: 40*30 / (10*20)
     # hand: Woolf (1955) limits exp(ln 6 +- 1.96 sqrt(1/40 + 1/10 + 1/20 + 1/30))
@@ -336,10 +335,10 @@ def test_odds_ratio_phi_and_tau_reference_table() -> None:
     assert r.odds_ratio == pytest.approx(sample.statistic, rel=1e-12)  # scipy sample OR
     x = np.repeat([1, 1, 0, 0], [40, 10, 20, 30])
     y = np.repeat([1, 0, 1, 0], [40, 10, 20, 30])
-    assert r.tau_b == pytest.approx(sps.kendalltau(x, y).statistic, abs=1e-12)  # scipy tau-b
+    # Kendall's tau-b of two binary flags is phi (why it is no longer reported): scipy tau-b
+    assert r.phi == pytest.approx(sps.kendalltau(x, y).statistic, abs=1e-12)
     metrics = _quiet_import("sklearn.metrics")
     assert r.phi == pytest.approx(metrics.matthews_corrcoef(x, y), abs=1e-12)  # sklearn MCC
-    assert r.frank_theta == pytest.approx(frank_theta_from_tau(r.tau_b))
 
 
 def test_haldane_correction_only_with_a_zero_cell() -> None:
@@ -349,28 +348,6 @@ def test_haldane_correction_only_with_a_zero_cell() -> None:
     se = math.sqrt(1 / 12.5 + 1 / 0.5 + 1 / 5.5 + 1 / 30.5)
     assert r.or_low == pytest.approx(r.odds_ratio * math.exp(-sps.norm.ppf(0.975) * se))
     assert math.isnan(association_2x2(0, 0, 5, 30).phi)  # no first-outcome cases: phi undefined
-
-
-@pytest.mark.parametrize(
-    ("theta", "tau"), [(1.0, 0.110019), (2.0, 0.213895), (5.0, 0.456701), (-2.0, -0.213895)]
-)
-def test_frank_tau_and_inverse(theta: float, tau: float) -> None:
-    assert round(frank_tau(theta), 6) == tau  # Genest 1987 (Biometrika 74:549), scipy quad
-    assert frank_theta_from_tau(tau) == pytest.approx(theta, abs=1e-4)  # inverted back
-    assert frank_theta_from_tau(frank_tau(theta)) == pytest.approx(theta, abs=1e-9)
-    copula = _quiet_import("statsmodels.distributions.copula.api")
-    assert frank_tau(theta) == pytest.approx(copula.FrankCopula(theta).tau(), abs=1e-7)  # sm
-
-
-def test_frank_theta_edge_cases() -> None:
-    assert frank_theta_from_tau(0.0) == 0.0
-    assert frank_theta_from_tau(1.0) == math.inf
-    assert math.isnan(frank_theta_from_tau(math.nan))
-    assert frank_tau(1e-6) == pytest.approx(1e-6 / 9, rel=1e-9)  # series tau ~ theta/9
-    assert frank_tau(frank_theta_from_tau(0.95)) == pytest.approx(0.95, abs=1e-10)
-    assert frank_tau(frank_theta_from_tau(-0.3)) == pytest.approx(-0.3, abs=1e-12)
-    with pytest.raises(ValueError, match=r"\[-1, 1\]"):
-        frank_theta_from_tau(1.5)
 
 
 def _three_outcome_cohort() -> pl.DataFrame:
@@ -399,6 +376,32 @@ def test_pairwise_dependence_counts() -> None:
         ("b", "c", 7, 3, 1, 0, 3),
     ]
     assert dep["haldane"].to_list() == [False, True, True]
+    # No age or sex columns: one stratum, E = (a+b)(a+c)/n; a,b: 3 * 3 / 6 = 1.5, O/E 2 / 1.5.
+    assert dep["strata"].to_list() == ["none"] * 3
+    assert dep["expected"][0] == pytest.approx(1.5)
+    assert dep["oe_ratio"][0] == pytest.approx(2 / 1.5)
+    garwood = poisson_exact_interval(2, 1.5)  # the exact Poisson interval of 2 over E fixed
+    assert (dep["oe_low"][0], dep["oe_high"][0]) == pytest.approx((garwood.low, garwood.high))
+
+
+def test_expected_co_occurrence_is_stratified_by_age_band_and_sex() -> None:
+    # By hand: two outcomes, each frequent in the old and rare in the young, independent
+    # within each stratum. Stratum (age band 4, F): n 4, 2 and 2 events, 1 both -> E 1.
+    # Stratum (age band 8, F): n 4, 4 and 4 events -> E 4. (band 8, M): n 2, 0 events -> 0.
+    rows = pl.DataFrame(
+        {
+            "age_at_index": [45, 46, 47, 48, 81, 82, 83, 84, 85, 86],
+            "sex": ["F"] * 8 + ["M"] * 2,
+            "incident_a": [True, True, False, False, True, True, True, True, False, False],
+            "incident_b": [True, False, True, False, True, True, True, True, False, False],
+        }
+    )
+    expected, strata = expected_co_occurrence(rows, "a", "b")
+    assert expected == pytest.approx(5.0)
+    assert strata == "10-year age band x sex"
+    # Unstratified it would be 6 * 6 / 10 = 3.6: the shared dependence on age looks like
+    # co-occurrence (observed 5).
+    assert expected_co_occurrence(rows.drop("age_at_index", "sex"), "a", "b")[0] == 3.6
 
 
 # --- Table 1 and combinations ----------------------------------------------------------------

@@ -62,3 +62,42 @@ def test_no_minimum_or_maximum_is_released() -> None:
     assert not {"min", "max"} & set(published.columns)
     shown = {v for c in ("mean", "median", "q1", "q3") for v in published[c].to_list()}
     assert not {min(AGES), max(AGES)} & shown
+
+
+def test_smd_by_hand_and_withheld_with_its_statistics() -> None:
+    # Austin 2009 by hand: incident ages 40..50 (step 2), not incident 52..78.
+    long, *parts = table_one_blocks(COHORT, "x")
+    hidden = hidden_keys(parts, 2, COHORT, ["x"])
+    published = table_one_summary("x", long, parts, hidden, 2, frozenset())
+    incident = pl.Series([40 + 2 * i for i in range(6)], dtype=pl.Float64)
+    other = pl.Series([40 + 2 * i for i in range(6, 20)], dtype=pl.Float64)
+    pooled = ((incident.std() ** 2 + other.std() ** 2) / 2) ** 0.5  # type: ignore[operator]
+    expected = (incident.mean() - other.mean()) / pooled  # type: ignore[operator]
+    ages = published.filter(pl.col("variable") == "age_at_index")
+    smd = dict(zip(ages["group"], ages["smd"], strict=True))
+    assert smd["overall"] == pytest.approx(round(expected, 3))
+    assert smd["incident_x=true"] is None  # one SMD per row of the table, on the overall row
+    prevalent = published.filter(pl.col("variable") == "prevalent_x", pl.col("group") == "overall")
+    # prevalent_x is not a Table 1 variable of its own outcome; none of the rows is a patient
+    assert prevalent.is_empty()
+    # With the means withheld (a small group, threshold 5), the SMD goes with them.
+    assert _published()["smd"].to_list() == [None] * 4
+
+
+def test_smd_of_a_category_is_withheld_with_its_percentages() -> None:
+    cohort = COHORT.with_columns(
+        pl.Series("smoker", [i % 3 == 0 for i in range(20)] + [True, False])
+    )
+    long, *parts = table_one_blocks(cohort, "x")
+    for threshold, shown in ((1, True), (5, False)):
+        hidden = hidden_keys(parts, threshold, cohort, ["x"])
+        out = table_one_summary("x", long, parts, hidden, threshold, frozenset())
+        row = out.filter(
+            pl.col("variable") == "smoker", pl.col("level") == "true", pl.col("group") == "overall"
+        )
+        if shown:  # by hand: incident 2 of 6 (i = 0, 3), not incident 5 of 14 (6, 9, ..., 18)
+            p1, p0 = 2 / 6, 5 / 14
+            pooled = ((p1 * (1 - p1) + p0 * (1 - p0)) / 2) ** 0.5
+            assert row["smd"][0] == pytest.approx(round((p1 - p0) / pooled, 3))
+        else:  # incident smokers (2) are hidden, so the percentages are, and so is the SMD
+            assert row["smd"][0] is None

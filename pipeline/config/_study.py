@@ -316,8 +316,13 @@ class Covariate(Model):
     - ``count``: evidence rows in ``window`` (0 when none);
     - ``days_since_first_evidence``: days from a condition's first evidence to index;
     - ``charlson``: the Charlson index from Quan 2005 codes over all history, with the weights.
+
+    ``label`` is how tables for readers (Table 1 of the report) name the covariate, e.g.
+    "BMI, latest in the two years before index, kg/m²"; without it they use the column's
+    documented meaning and unit (measure, window, unit), from the data dictionary.
     """
 
+    label: str | None = Field(default=None, min_length=1, max_length=200)
     condition: Name | None = None
     latest: str | None = None
     mean: str | None = None

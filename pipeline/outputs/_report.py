@@ -52,7 +52,11 @@ DEFAULT_THRESHOLD = 5
 
 @dataclass
 class Study:
-    """What the report knows about the study, with notes on what it could not read."""
+    """What the report knows about the study, with notes on what it could not read.
+
+    ``labels`` holds the covariates' own ``label:`` from the study; the others are named by
+    their documented meaning and unit (:func:`column_labels`).
+    """
 
     name: str
     title: str
@@ -60,6 +64,7 @@ class Study:
     outcomes: tuple[str, ...]
     titles: dict[str, str]
     definitions: list[dict[str, str]] = field(default_factory=list)
+    labels: dict[str, str] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
 
 
@@ -150,6 +155,7 @@ def read_study(
         titles={d["name"]: d["title"] for d in definitions},
         definitions=definitions,
         notes=base.notes,
+        labels={n: c.label for n, c in study_model.covariates.items() if c.label},
     )
 
 
@@ -238,7 +244,7 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
         summaries=summaries,
         quality=pl.concat([masked(b, hidden, t) for b in quality_parts]),
         curves=curves,
-        labels=column_labels(output_dir),
+        labels=column_labels(output_dir) | study.labels,
     )
     names = [REPORT_PAGE, *(f"{SUMMARY}/{name}.csv" for name in sorted(summaries))]
     with staging(output_dir) as staged:

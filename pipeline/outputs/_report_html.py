@@ -8,13 +8,20 @@ data or from user files is escaped; count cells carry ``class="n"`` so tests can
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Sequence
 from html import escape
 from typing import Any
 
 import polars as pl
 
-from pipeline.outputs._report_curves import curve_note
+from pipeline.outputs._report_html_cells import n_cell as _n
+from pipeline.outputs._report_html_cells import table as _table
+from pipeline.outputs._report_html_cells import thousands as _thousands
+from pipeline.outputs._report_html_results import (
+    curves_section,
+    dependence_section,
+    incidence_section,
+    table_one_section,
+)
 from pipeline.outputs._report_svg import (
     DEFINING_STEPS,
     Bar,
@@ -22,7 +29,6 @@ from pipeline.outputs._report_svg import (
     FlowStep,
     flow_title,
     render_bars,
-    render_curves,
     render_flow,
 )
 
@@ -112,35 +118,9 @@ thead{display:table-header-group}}
 """
 
 
-def _n(text: str | None, tag: str = "td") -> str:
-    """A count cell: thousands separators for numbers, the suppression marker as is."""
-    value = "" if text is None else (f"{int(text):,}" if text.isdigit() else text)
-    return (
-        f'<{tag} class="num n">{escape(value)}</{tag}>'
-        if tag
-        else (f'<span class="n">{escape(value)}</span>')
-    )
-
-
-def _num(value: float | None, digits: int = 1) -> str:
-    return "" if value is None else f"{value:,.{digits}f}"
-
-
-def _table(head: Sequence[str], rows: Iterable[str], numeric: Sequence[int] | None = None) -> str:
-    numeric = range(1, len(head)) if numeric is None else numeric
-    cells = "".join(
-        f"<th{' class=num' if i in numeric else ''}>{escape(h)}</th>" for i, h in enumerate(head)
-    )
-    return f"<table><thead><tr>{cells}</tr></thead><tbody>{''.join(rows)}</tbody></table>"
-
-
 def _section(ident: str, body: str) -> str:
     title = dict(SECTIONS)[ident]
     return f'<section id="{ident}"><h2>{escape(title)}</h2>{body}</section>'
-
-
-def _thousands(text: str) -> str:
-    return f"{int(text):,}" if text.isdigit() else text
 
 
 def _flow(flow: pl.DataFrame, threshold: int) -> str:
@@ -171,124 +151,6 @@ def _flow(flow: pl.DataFrame, threshold: int) -> str:
         "and the source population are hidden only when nothing else can protect a small "
         "count.</p>"
     )
-
-
-def _t1_cell(r: dict[str, Any] | None) -> str:
-    if r is None:
-        return "<td></td>"
-    pct = "" if r["percent"] is None else f' <span class="pct">({r["percent"]:.1f}%)</span>'
-    return f'<td class="num">{_n(r["n"], "")}{pct}</td>'
-
-
-def _t1_stat(r: dict[str, Any] | None, kind: str) -> str:
-    if r is None or r[kind] is None:  # a median can be shown where the mean is not
-        return '<td class="num"></td>'
-    if kind == "mean":
-        sd = "" if r["sd"] is None else f" ({r['sd']:.1f})"
-        return f'<td class="num">{r["mean"]:.1f}{sd}</td>'
-    return f'<td class="num">{r["median"]:.1f} [{r["q1"]:.1f}, {r["q3"]:.1f}]</td>'
-
-
-def _table_one(frame: pl.DataFrame, outcome: str, title: str, labels: dict[str, str]) -> str:
-    by = f"incident_{outcome}"
-    groups = ("overall", f"{by}=false", f"{by}=true", f"{by}=null")
-    part = frame.filter(pl.col("by") == by)
-    cells = {(r["variable"], r["level"], r["group"]): r for r in part.iter_rows(named=True)}
-    head = ["Characteristic", "Overall", "Not incident", "Incident", "Not at risk"]
-    rows = [
-        "<tr><td>Patients, n</td>"
-        + "".join(_n(cells[("patients", None, g)]["n"]) for g in groups)
-        + "</tr>"
-    ]
-    variables = [v for v in dict.fromkeys(part["variable"].to_list()) if v != "patients"]
-    for v in variables:
-        levels = list(dict.fromkeys(k[1] for k in cells if k[0] == v))
-        label = escape(labels.get(v, v))
-        col = f' <span class="col">{escape(v)}</span>' if v in labels else ""
-        first = cells[(v, levels[0], "overall")]
-        if levels == [None]:
-            rows.append(f'<tr class="var"><td colspan="5">{label}{col}</td></tr>')
-            for kind, text in (("mean", "Mean (SD)"), ("median", "Median [Q1, Q3]")):
-                rows.append(
-                    f'<tr><td class="sub">{text}</td>'
-                    + "".join(_t1_stat(cells.get((v, None, g)), kind) for g in groups)
-                    + "</tr>"
-                )
-        elif levels == ["false", "true"]:
-            rows.append(
-                f'<tr class="var"><td>{label}, n (%){col}</td>'
-                + "".join(_t1_cell(cells.get((v, "true", g))) for g in groups)
-                + "</tr>"
-            )
-        else:
-            rows.append(f'<tr class="var"><td colspan="5">{label}, n (%){col}</td></tr>')
-            rows += [
-                f'<tr><td class="sub">{escape(str(lv))}</td>'
-                + "".join(_t1_cell(cells.get((v, lv, g))) for g in groups)
-                + "</tr>"
-                for lv in levels
-            ]
-        if first["missing"] != "0":
-            rows.append(
-                '<tr><td class="sub">Missing, n</td>'
-                + "".join(_n((cells.get((v, levels[0], g)) or {}).get("missing")) for g in groups)
-                + "</tr>"
-            )
-    return f"<h3>By incident {escape(title)}</h3>" + _table(head, rows)
-
-
-def _incidence(frame: pl.DataFrame) -> str:
-    def ci(est: Any, low: Any, high: Any, digits: int) -> str:
-        return "" if est is None else f"{est:.{digits}f} ({low:.{digits}f} to {high:.{digits}f})"
-
-    rows = [
-        f"<tr><td>{escape(r['title'])}</td>{_n(r['at_risk'])}{_n(r['events'])}"
-        f'<td class="num">{ci(r["cumulative_incidence_percent"], r["ci_low_percent"], r["ci_high_percent"], 2)}</td>'  # noqa: E501
-        f'<td class="num">{_num(r["person_years"])}</td>'
-        f'<td class="num">{ci(r["rate_per_1000_py"], r["rate_low"], r["rate_high"], 1)}</td></tr>'
-        for r in frame.iter_rows(named=True)
-    ]
-    head = [
-        "Outcome",
-        "At risk, n",
-        "Events, n",
-        "Cumulative incidence, % (95% CI)",
-        "Person-years",
-        "Rate per 1,000 PY (95% CI)",
-    ]
-    return _table(head, rows) + (
-        '<p class="note">At risk: patients without the condition at index. Cumulative incidence: '
-        "events within the horizon over patients at risk, with a Wilson score interval; it "
-        "ignores censoring. Rate: events per 1,000 person-years with an exact Poisson (Garwood) "
-        "interval. Estimates are left empty where a count is suppressed.</p>"
-    )
-
-
-def _curves(
-    curves: dict[str, Curve], outcomes: Sequence[str], titles: dict[str, str], threshold: int
-) -> str:
-    figs = [
-        f"<figure><figcaption>{escape(titles.get(o, o))}</figcaption>{render_curves(curves[o])}"
-        "</figure>"
-        for o in outcomes
-        if o in curves
-    ]
-    missing = [escape(titles.get(o, o)) for o in outcomes if o not in curves]
-    note = (
-        (
-            f'<p class="note">Not drawn because the number of events is suppressed: '
-            f"{', '.join(missing)}.</p>"
-        )
-        if missing
-        else ""
-    )
-    legend = (
-        '<div class="legend"><span><span class="swatch"></span>Aalen–Johansen, death as '
-        'competing event</span><span><span class="swatch km"></span>1 − Kaplan–Meier, '
-        "deaths censored (overstates risk)</span></div>"
-    )
-    coarse = f'<p class="note">{escape(curve_note(threshold))}</p>'
-    return legend + f'<div class="figs">{"".join(figs)}</div>' + coarse + note
 
 
 def _combo_label(name: str, titles: dict[str, str]) -> str:
@@ -325,46 +187,6 @@ def _combinations(frame: pl.DataFrame, titles: dict[str, str]) -> str:
             "the exact set of outcomes that became incident within the horizon. Suppressed counts "
             "have no bar.</p>"
         )
-    )
-
-
-def _dependence(frame: pl.DataFrame, titles: dict[str, str]) -> str:
-    def f(x: Any, d: int = 3) -> str:
-        return "" if x is None else f"{x:.{d}f}"
-
-    rows = []
-    for r in frame.iter_rows(named=True):
-        first, second = (titles.get(r[k], r[k]) for k in ("outcome_1", "outcome_2"))
-        pair = f"{escape(first)}<br>× {escape(second)}"
-        mark = " †" if r["haldane"] and r["odds_ratio"] is not None else ""
-        odds = (
-            ""
-            if r["odds_ratio"] is None
-            else (f"{r['odds_ratio']:.2f} ({r['or_low']:.2f} to {r['or_high']:.2f}){mark}")
-        )
-        rows.append(
-            f'<tr><td class="pair">{pair}</td>{_n(r["n"])}{_n(r["both"])}{_n(r["first_only"])}'
-            f'{_n(r["second_only"])}{_n(r["neither"])}<td class="num">{odds}</td>'
-            f'<td class="num">{f(r["phi"])}</td><td class="num">{f(r["tau_b"])}</td>'
-            f'<td class="num">{f(r["frank_theta"], 2)}</td></tr>'
-        )
-    head = [
-        "Pair",
-        "At risk of both",
-        "Both",
-        "First only",
-        "Second only",
-        "Neither",
-        "Odds ratio (95% CI)",
-        "Phi",
-        "Kendall's τb",
-        "Frank θ",
-    ]
-    return _table(head, rows) + (
-        '<p class="note">Among patients at risk of both outcomes. Odds ratio with a Woolf '
-        "interval; † 0.5 added to every cell because one was zero. Frank θ is the copula "
-        "parameter implied by τb (Genest 1987), a descriptive summary. Measures are left empty "
-        "where a cell is suppressed.</p>"
     )
 
 
@@ -472,12 +294,13 @@ def assemble(
     body = {
         "flow": _flow(summaries["flow"], t),
         "table-one": "".join(
-            _table_one(summaries["table_one"], o, titles.get(o, o), labels) for o in study.outcomes
+            table_one_section(summaries["table_one"], o, titles.get(o, o), labels)
+            for o in study.outcomes
         ),
-        "incidence": _incidence(summaries["incidence"]),
-        "curves": _curves(drawn, study.outcomes, titles, t),
+        "incidence": incidence_section(summaries["incidence"]),
+        "curves": curves_section(drawn, study.outcomes, titles, t),
         "combinations": _combinations(summaries["combinations"], titles),
-        "dependence": _dependence(summaries["dependence"], titles),
+        "dependence": dependence_section(summaries["dependence"], titles),
         "definitions": _definitions(study.definitions),
         "quality": _quality(quality),
         "manifest": _manifest(manifest),

@@ -17,7 +17,7 @@ import polars as pl
 
 from pipeline.outputs._report_cells import Spec
 from pipeline.outputs._report_suppression import Block, hidden_marker, keyed_frame
-from pipeline.stats import baseline_variables, table_one
+from pipeline.stats import baseline_variables, smd_binary, smd_continuous, table_one
 from pipeline.stats._disclosure import Relation
 
 _NUMERIC_STATS = ("mean", "sd", "median", "q1", "q3")
@@ -178,6 +178,7 @@ def table_one_summary(
         missing = hidden_marker(m, threshold) if m_hidden else str(m)
         record["missing"] = None if var == "patients" else missing
         out.append(record)
+    _add_smd(out, long, f"incident_{outcome}")
     schema = {
         "by": pl.String,
         "variable": pl.String,
@@ -186,4 +187,37 @@ def table_one_summary(
         "n": pl.String,
         "percent": pl.Float64,
     } | dict.fromkeys(_NUMERIC_STATS, pl.Float64)
-    return pl.DataFrame(out, schema=schema | {"missing": pl.String}, orient="row")
+    schema |= {"missing": pl.String, "smd": pl.Float64}
+    return pl.DataFrame(out, schema=schema, orient="row")
+
+
+def _add_smd(out: list[dict[str, Any]], long: pl.DataFrame, by: str) -> None:
+    """Put the incident-versus-not-incident SMD on each variable's overall row (Austin 2009).
+
+    It is computed from the unrounded statistics, and only where the statistics it is made of
+    are published for both groups (the means and SDs, or the percentages): an SMD from a
+    withheld mean or a hidden count would give it back.
+    """
+    raw = {(r["variable"], r["level"], r["group"]): r for r in long.iter_rows(named=True)}
+    published = {(r["variable"], r["level"], r["group"]): r for r in out}
+    one, zero = f"{by}=true", f"{by}=false"
+    for record in out:
+        record["smd"] = None
+        key = (record["variable"], record["level"])
+        if record["group"] != "overall" or record["variable"] == "patients":
+            continue
+        shown = [published.get((*key, g)) for g in (one, zero)]
+        values = [raw.get((*key, g)) for g in (one, zero)]
+        if None in shown or None in values:
+            continue
+        if record["level"] is None:
+            if any(p["mean"] is None or p["sd"] is None for p in shown):  # type: ignore[index]
+                continue
+            a, b = values
+            smd = smd_continuous(a["mean"], a["sd"], b["mean"], b["sd"])  # type: ignore[index]
+        else:
+            if any(p["percent"] is None for p in shown):  # type: ignore[index]
+                continue
+            a, b = values
+            smd = smd_binary(a["percent"] / 100.0, b["percent"] / 100.0)  # type: ignore[index]
+        record["smd"] = None if math.isnan(smd) else round(smd, 3)

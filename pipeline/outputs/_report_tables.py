@@ -17,13 +17,23 @@ import polars as pl
 from pipeline.outputs._report_cells import Spec
 from pipeline.outputs._report_suppression import Block, keyed_frame, masked, shown
 from pipeline.stats import (
-    cumulative_incidence,
+    crude_proportion,
+    cumulative_incidence_at_horizon,
     incidence_rate,
     outcome_combinations,
     pairwise_dependence,
 )
 
-_DERIVED_DEPENDENCE = ("odds_ratio", "or_low", "or_high", "phi", "tau_b", "frank_theta")
+_DERIVED_DEPENDENCE = (
+    "odds_ratio",
+    "or_low",
+    "or_high",
+    "phi",
+    "expected",
+    "oe_ratio",
+    "oe_low",
+    "oe_high",
+)
 
 
 def flow_block(attrition: pl.DataFrame, cohort_size: int) -> Block:
@@ -49,12 +59,16 @@ def flow_block(attrition: pl.DataFrame, cohort_size: int) -> Block:
 
 
 def incidence_block(cohort: pl.DataFrame, outcomes: Sequence[str]) -> tuple[list[Any], Block]:
-    """Cumulative incidence and rates per outcome; events and non-events add up to at-risk."""
+    """Cumulative incidence, crude proportions and rates per outcome.
+
+    Events and non-events add up to at-risk. Each result is ``(outcome, crude proportion,
+    Aalen-Johansen cumulative incidence at the horizon, rate)``.
+    """
     results, rows = [], []
     meanings: dict[str, Spec] = {}
     for o in outcomes:
-        ci, rate = cumulative_incidence(cohort, o), incidence_rate(cohort, o)
-        results.append((o, ci, rate))
+        ci, rate = crude_proportion(cohort, o), incidence_rate(cohort, o)
+        results.append((o, ci, cumulative_incidence_at_horizon(cohort, o), rate))
         rows.append(
             {
                 "outcome": o,
@@ -140,7 +154,7 @@ def incidence_summary(
 ) -> pl.DataFrame:
     """Incidence as published; estimates from a hidden count are left empty."""
     rows = []
-    for o, ci, rate in results:
+    for o, ci, aj, rate in results:
         gone = f"events|{o}" in hidden or f"atrisk|{o}" in hidden
 
         def keep(x: float, digits: int, *, gone: bool = gone) -> float | None:
@@ -152,9 +166,12 @@ def incidence_summary(
                 "title": titles.get(o, o),
                 "at_risk": shown(ci.at_risk, f"atrisk|{o}", hidden, threshold),
                 "events": shown(ci.events, f"events|{o}", hidden, threshold),
-                "cumulative_incidence_percent": keep(100 * ci.proportion, 2),
-                "ci_low_percent": keep(100 * ci.low, 2),
-                "ci_high_percent": keep(100 * ci.high, 2),
+                "cumulative_incidence_percent": keep(100 * aj.estimate, 2),
+                "ci_low_percent": keep(100 * aj.low, 2),
+                "ci_high_percent": keep(100 * aj.high, 2),
+                "crude_percent": keep(100 * ci.proportion, 2),
+                "crude_low_percent": keep(100 * ci.low, 2),
+                "crude_high_percent": keep(100 * ci.high, 2),
                 "person_years": round(rate.person_years, 1),
                 "rate_per_1000_py": keep(rate.rate, 2),
                 "rate_low": keep(rate.low, 2),
@@ -165,7 +182,12 @@ def incidence_summary(
 
 
 def dependence_summary(block: Block, hidden: frozenset[str], threshold: int) -> pl.DataFrame:
-    """Pairwise dependence as published; measures from a table with a hidden cell are empty."""
+    """Pairwise dependence as published; measures from a table with a hidden cell are empty.
+
+    The expected co-occurrence is computed from stratum counts that are not released; it is
+    left empty with the other measures when a cell of its pair is hidden, because with a
+    single stratum it is ``(a + b)(a + c) / n``, a function of the hidden cells.
+    """
     out = masked(block, hidden, threshold)
     gone = pl.any_horizontal(
         pl.col(c).str.starts_with("<") | (pl.col(c) == "*") for c in ("a", "b", "c", "d", "n")

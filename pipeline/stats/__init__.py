@@ -1,12 +1,14 @@
 """Statistics for the study report: pure functions on the analysis table, no I/O.
 
 - intervals: Wilson, Clopper-Pearson and exact Poisson (Garwood) intervals;
-- incidence: cumulative incidence and incidence rates per person-time;
+- incidence: Aalen-Johansen cumulative incidence at the horizon with a delta-method
+  interval, crude proportions and incidence rates per person-time;
 - survival: Kaplan-Meier and Aalen-Johansen curves (death as competing event), and their
   coarsening before release (steps of at least the threshold's events and patients at risk);
-- Table 1, outcome combinations and pairwise dependence (odds ratio, phi, Kendall's tau,
-  Frank copula theta);
-- agreement of a definition with a reference standard;
+- Table 1, outcome combinations and pairwise dependence (odds ratio, phi, observed against
+  expected co-occurrence within age band and sex);
+- agreement of a definition with a reference standard, and sensitivity and specificity
+  corrected for verification bias (Begg and Greenes 1983);
 - small-cell suppression of every published table.
 
 Only numpy, scipy and polars are used; reference libraries (statsmodels, lifelines,
@@ -19,22 +21,23 @@ from pipeline.stats._agreement import (
     diagnostic_accuracy,
     onset_agreement,
 )
+from pipeline.stats._cif_interval import CifEstimate, aalen_johansen_interval
 from pipeline.stats._coarsen import ReleasedCurve, coarsen_curve
 from pipeline.stats._combinations import COMBINATIONS_SCHEMA, NO_OUTCOME, outcome_combinations
 from pipeline.stats._dependence import (
     DEPENDENCE_SCHEMA,
     Association,
     association_2x2,
-    frank_tau,
-    frank_theta_from_tau,
+    expected_co_occurrence,
     pairwise_dependence,
 )
 from pipeline.stats._disclosure import protect_cells
 from pipeline.stats._incidence import (
     DAYS_PER_YEAR,
-    CumulativeIncidence,
+    CrudeProportion,
     IncidenceRate,
-    cumulative_incidence,
+    crude_proportion,
+    cumulative_incidence_at_horizon,
     incidence_rate,
 )
 from pipeline.stats._intervals import (
@@ -52,7 +55,14 @@ from pipeline.stats._survival import (
     competing_risk_data,
     kaplan_meier,
 )
-from pipeline.stats._table_one import TABLE_ONE_SCHEMA, baseline_variables, table_one
+from pipeline.stats._table_one import (
+    TABLE_ONE_SCHEMA,
+    baseline_variables,
+    smd_binary,
+    smd_continuous,
+    table_one,
+)
+from pipeline.stats._verification import CorrectedAccuracy, verification_corrected
 
 __all__ = [
     "CENSORED",
@@ -64,7 +74,9 @@ __all__ = [
     "OUTCOME",
     "TABLE_ONE_SCHEMA",
     "Association",
-    "CumulativeIncidence",
+    "CifEstimate",
+    "CorrectedAccuracy",
+    "CrudeProportion",
     "DiagnosticAccuracy",
     "IncidenceRate",
     "Interval",
@@ -72,15 +84,16 @@ __all__ = [
     "ReleasedCurve",
     "StepCurve",
     "aalen_johansen",
+    "aalen_johansen_interval",
     "association_2x2",
     "baseline_variables",
     "clopper_pearson_interval",
     "coarsen_curve",
     "competing_risk_data",
-    "cumulative_incidence",
+    "crude_proportion",
+    "cumulative_incidence_at_horizon",
     "diagnostic_accuracy",
-    "frank_tau",
-    "frank_theta_from_tau",
+    "expected_co_occurrence",
     "incidence_rate",
     "kaplan_meier",
     "onset_agreement",
@@ -88,6 +101,9 @@ __all__ = [
     "pairwise_dependence",
     "poisson_exact_interval",
     "protect_cells",
+    "smd_binary",
+    "smd_continuous",
     "table_one",
+    "verification_corrected",
     "wilson_interval",
 ]

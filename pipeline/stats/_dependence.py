@@ -6,14 +6,17 @@ only, ``d`` neither) gives:
 - the sample odds ratio ``ad / bc`` with a Woolf (log) interval. When a cell is 0 the log odds
   ratio is infinite, so 0.5 is added to every cell (Haldane-Anscombe) for the estimate *and*
   the interval; the result says so (``haldane``) and the report should too.
-- the phi coefficient, the Pearson correlation of the two indicators.
-- Kendall's tau-b of the two binary variables. For a 2x2 table tau-b equals phi exactly; it is
-  computed from concordant and discordant pairs anyway, as it feeds the copula below.
-- the Frank copula parameter theta implied by tau, by inverting
-  ``tau(theta) = 1 - 4 / theta * (1 - D1(theta))`` with the Debye function
-  ``D1(theta) = 1/theta * integral_0^theta t / (e^t - 1) dt`` (Genest 1987, *Biometrika*
-  74:549). Tau from binary data is attenuated by the ties, so theta is a descriptive summary of
-  the dependence, not an estimate of a latent-time copula.
+- the phi coefficient, the Pearson correlation of the two indicators. (Kendall's tau-b of two
+  binary flags equals phi, and a copula parameter fitted to binary data is not identifiable,
+  Genest and Neslehova 2007, so neither is reported.)
+- observed against expected co-occurrence: ``a`` against the number of patients expected to
+  have both if the two outcomes were independent *within strata* of age band and sex, so that
+  two outcomes that merely share a dependence on age or sex do not look associated:
+  ``E = sum over strata of n_s * p1_s * p2_s``, with ``n_s`` the stratum's patients at risk of
+  both and ``p_s`` the crude proportion of each outcome among them (the same crude,
+  within-horizon measure as ``a`` itself). The ratio ``a / E`` has an exact Poisson (Garwood)
+  interval treating ``E`` as fixed. It assumes independence given age band and sex, and
+  ignores censoring, as ``a`` does (both are counted within the horizon).
 """
 
 from __future__ import annotations
@@ -24,20 +27,22 @@ from dataclasses import dataclass
 from itertools import combinations
 
 import polars as pl
-from scipy import integrate, optimize, stats
+from scipy import stats
 
 from pipeline.stats._columns import at_risk_rows
+from pipeline.stats._intervals import poisson_exact_interval
 
 __all__ = [
+    "AGE_BAND_YEARS",
     "DEPENDENCE_SCHEMA",
     "Association",
     "association_2x2",
-    "frank_tau",
-    "frank_theta_from_tau",
+    "expected_co_occurrence",
     "pairwise_dependence",
 ]
 
-_SMALL_THETA = 1e-3
+AGE_BAND_YEARS = 10
+"""Width of the age bands (``age_at_index // 10``) that stratify the expected co-occurrence."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -54,8 +59,6 @@ class Association:
         or_high: Upper Woolf limit.
         haldane: Whether 0.5 was added to every cell because one was 0.
         phi: Phi coefficient; NaN when a margin is 0.
-        tau_b: Kendall's tau-b; NaN when a margin is 0.
-        frank_theta: Frank copula parameter with Kendall's tau equal to ``tau_b``.
     """
 
     a: int
@@ -67,8 +70,6 @@ class Association:
     or_high: float
     haldane: bool
     phi: float
-    tau_b: float
-    frank_theta: float
 
 
 DEPENDENCE_SCHEMA: dict[str, pl.DataType] = {
@@ -84,105 +85,19 @@ DEPENDENCE_SCHEMA: dict[str, pl.DataType] = {
     "or_high": pl.Float64(),
     "haldane": pl.Boolean(),
     "phi": pl.Float64(),
-    "tau_b": pl.Float64(),
-    "frank_theta": pl.Float64(),
+    "expected": pl.Float64(),
+    "oe_ratio": pl.Float64(),
+    "oe_low": pl.Float64(),
+    "oe_high": pl.Float64(),
+    "strata": pl.String(),
 }
 """Columns of :func:`pairwise_dependence`: the pair, patients at risk of both, the 2x2 cells
-(see :class:`Association`) and the measures."""
-
-
-def _debye_integrand(t: float) -> float:
-    # t / (e^t - 1), written so large t cannot overflow; the limit at 0 is 1.
-    if t == 0.0:
-        return 1.0
-    return t * math.exp(-t) / -math.expm1(-t)
-
-
-def frank_tau(theta: float) -> float:
-    """Kendall's tau of the Frank copula with parameter ``theta``.
-
-    Uses ``tau = 1 - 4/theta * (1 - D1(theta))``, odd in theta, with the series
-    ``theta/9 - theta**3/900`` near 0 where the closed form cancels badly.
-
-    Args:
-        theta: The Frank parameter (any real; 0 is independence).
-
-    Returns:
-        Kendall's tau in (-1, 1).
-
-    Examples:
-        >>> round(frank_tau(5.0), 6)
-        0.456701
-    """
-    if math.isnan(theta):
-        return math.nan
-    if math.isinf(theta):
-        return math.copysign(1.0, theta)
-    x = abs(theta)
-    if x < _SMALL_THETA:
-        return theta / 9.0 - theta**3 / 900.0
-    # The integrand is below 1e-40 past t = 100, so the tail adds nothing at double precision.
-    integral, _ = integrate.quad(_debye_integrand, 0.0, min(x, 100.0), epsabs=1e-14, limit=200)
-    tau = 1.0 - 4.0 / x * (1.0 - integral / x)
-    return math.copysign(tau, theta)
-
-
-def frank_theta_from_tau(tau: float) -> float:
-    """Frank copula parameter whose Kendall's tau is ``tau`` (Genest 1987).
-
-    Solves ``frank_tau(theta) = tau`` with Brent's method on a bracket widened until it holds
-    the root; tau is odd in theta, so only positive roots are searched.
-
-    Args:
-        tau: Kendall's tau in [-1, 1].
-
-    Returns:
-        Theta; 0 for tau 0, +-inf for tau +-1, NaN for NaN.
-
-    Raises:
-        ValueError: If ``|tau| > 1``.
-
-    Examples:
-        >>> round(frank_theta_from_tau(0.213895), 4)
-        2.0
-    """
-    if math.isnan(tau):
-        return math.nan
-    if abs(tau) > 1.0:
-        raise ValueError(f"Kendall's tau must lie in [-1, 1], got {tau}")
-    if tau == 0.0:
-        return 0.0
-    if abs(tau) == 1.0:
-        return math.copysign(math.inf, tau)
-    target = abs(tau)
-    high = 1.0
-    while frank_tau(high) < target:
-        high *= 2.0
-    theta = optimize.brentq(lambda t: frank_tau(t) - target, 0.0, high, xtol=1e-12, rtol=1e-14)
-    return math.copysign(float(theta), tau)
-
-
-def _kendall_tau_b(a: int, b: int, c: int, d: int) -> float:
-    """Kendall's tau-b of two binary variables from their pairs of patients.
-
-    Concordant pairs are (both, neither) = ``a*d``, discordant (first only, second only) =
-    ``b*c``; the denominator counts pairs not tied on each variable. Algebraically this equals
-    phi.
-    """
-    n = a + b + c + d
-
-    def pairs(k: int) -> int:
-        return k * (k - 1) // 2
-
-    untied_1 = pairs(n) - pairs(a + b) - pairs(c + d)
-    untied_2 = pairs(n) - pairs(a + c) - pairs(b + d)
-    if untied_1 == 0 or untied_2 == 0:
-        return math.nan
-    return (a * d - b * c) / math.sqrt(untied_1 * untied_2)
+(see :class:`Association`), the odds ratio and phi, and observed (``a``) against expected
+co-occurrence with its interval and what the expectation was stratified by."""
 
 
 def association_2x2(a: int, b: int, c: int, d: int, *, confidence: float = 0.95) -> Association:
-    """Odds ratio, phi, Kendall's tau-b and Frank theta of a 2x2 table.
+    """Odds ratio and phi of a 2x2 table.
 
     Args:
         a: Both outcomes.
@@ -215,7 +130,6 @@ def association_2x2(a: int, b: int, c: int, d: int, *, confidence: float = 0.95)
     z = float(stats.norm.ppf(0.5 + confidence / 2.0))
     margins = (a + b) * (c + d) * (a + c) * (b + d)
     phi = (a * d - b * c) / math.sqrt(margins) if margins else math.nan
-    tau_b = _kendall_tau_b(a, b, c, d)
     return Association(
         a=a,
         b=b,
@@ -226,9 +140,54 @@ def association_2x2(a: int, b: int, c: int, d: int, *, confidence: float = 0.95)
         or_high=math.exp(log_or + z * se),
         haldane=haldane,
         phi=phi,
-        tau_b=tau_b,
-        frank_theta=frank_theta_from_tau(tau_b),
     )
+
+
+def _strata(cohort: pl.DataFrame) -> tuple[list[pl.Expr], str]:
+    """Age band and sex, as far as the table has them, and their description."""
+    keys, names = [], []
+    if "age_at_index" in cohort.columns:
+        keys.append((pl.col("age_at_index") // AGE_BAND_YEARS).alias("age_band"))
+        names.append(f"{AGE_BAND_YEARS}-year age band")
+    if "sex" in cohort.columns:
+        keys.append(pl.col("sex"))
+        names.append("sex")
+    return keys, " x ".join(names) or "none"
+
+
+def expected_co_occurrence(rows: pl.DataFrame, first: str, second: str) -> tuple[float, str]:
+    """Patients expected to have both outcomes if independent within age band and sex.
+
+    Args:
+        rows: Patients at risk of both outcomes.
+        first: The first outcome ``X`` (``incident_X``).
+        second: The second outcome.
+
+    Returns:
+        ``sum n_s p1_s p2_s`` over the strata (crude proportions within each), and what the
+        strata were (``"none"`` when the table has neither age nor sex: one stratum).
+
+    Examples:
+        >>> rows = pl.DataFrame(
+        ...     {
+        ...         "sex": ["F", "F", "F", "F", "M", "M"],
+        ...         "incident_a": [True, True, False, False, True, False],
+        ...         "incident_b": [True, False, True, False, False, False],
+        ...     }
+        ... )
+        >>> expected_co_occurrence(rows, "a", "b")
+        (1.0, 'sex')
+    """
+    keys, described = _strata(rows)
+    x, y = pl.col(f"incident_{first}").cast(pl.Int64), pl.col(f"incident_{second}").cast(pl.Int64)
+    per = (
+        rows.group_by(keys)
+        .agg(pl.len().alias("n"), x.sum().alias("e1"), y.sum().alias("e2"))
+        .select((pl.col("e1").cast(pl.Float64) * pl.col("e2") / pl.col("n")).alias("expected"))
+        if keys
+        else rows.select((x.sum().cast(pl.Float64) * y.sum() / pl.len()).alias("expected"))
+    )
+    return float(per["expected"].sum()) if rows.height else 0.0, described
 
 
 def pairwise_dependence(
@@ -237,9 +196,10 @@ def pairwise_dependence(
     """Association of every pair of outcomes among patients at risk of both.
 
     Args:
-        cohort: The analysis table.
+        cohort: The analysis table (``age_at_index`` and ``sex`` stratify the expected
+            co-occurrence when present).
         outcomes: Outcome names; pairs follow their order (``(o1, o2), (o1, o3), (o2, o3)``).
-        confidence: Two-sided confidence level of the odds-ratio interval.
+        confidence: Two-sided confidence level of the intervals.
 
     Returns:
         One row per pair, schema :data:`DEPENDENCE_SCHEMA`.
@@ -257,8 +217,20 @@ def pairwise_dependence(
         c = int((~x & y).sum())
         d = rows.height - a - b - c
         r = association_2x2(a, b, c, d, confidence=confidence)
+        expected, strata = expected_co_occurrence(rows, first, second)
+        if expected > 0:
+            oe = poisson_exact_interval(a, expected, confidence=confidence)
+        else:  # nobody expected: no ratio (a is 0 too, as a <= each stratum's events)
+            oe = poisson_exact_interval(0, 0.0, confidence=confidence)
         records.append(
             {"outcome_1": first, "outcome_2": second, "n": rows.height}
-            | {k: getattr(r, k) for k in list(DEPENDENCE_SCHEMA)[3:]}
+            | {k: getattr(r, k) for k in list(DEPENDENCE_SCHEMA)[3:12]}
+            | {
+                "expected": expected,
+                "oe_ratio": oe.estimate,
+                "oe_low": oe.low,
+                "oe_high": oe.high,
+                "strata": strata,
+            }
         )
     return pl.DataFrame(records, schema=DEPENDENCE_SCHEMA, orient="row")

@@ -1,12 +1,14 @@
-"""Cumulative incidence and incidence rates of one outcome over the study horizon.
+"""Cumulative incidence, crude proportions and incidence rates of one outcome.
 
-Both count only patients at risk of the outcome at the index date (``at_risk_X``), so prevalent
+All count only patients at risk of the outcome at the index date (``at_risk_X``), so prevalent
 cases never enter a denominator.
 
-- Cumulative incidence is the share of at-risk patients with an incident onset within the
-  horizon, with a Wilson interval. It ignores censoring, so it is a lower bound when follow-up
-  ends early (loss, death); the Kaplan-Meier and Aalen-Johansen curves in :mod:`._survival`
-  account for that.
+- The cumulative incidence at the horizon is the Aalen-Johansen estimate with death as the
+  competing event and its delta-method interval (:mod:`._cif_interval`): it accounts for
+  follow-up that ends early, and does not pretend the dead could still develop the outcome.
+- The crude proportion is the share of at-risk patients with an incident onset within the
+  horizon, with a Wilson interval. It ignores censoring (a patient lost after a year counts as
+  a non-case), so it is a lower bound whenever follow-up ends before the horizon.
 - The incidence rate divides events by person-time: each at-risk patient contributes from the
   index date to onset if incident, else to the end of follow-up (``followup_days``), in years of
   365.25 days. Its interval is the exact Poisson (Garwood) interval.
@@ -14,22 +16,31 @@ cases never enter a denominator.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import polars as pl
 
+from pipeline.stats._cif_interval import aalen_johansen_interval
 from pipeline.stats._columns import at_risk_rows, require_columns
-from pipeline.stats._intervals import poisson_exact_interval, wilson_interval
+from pipeline.stats._intervals import Interval, poisson_exact_interval, wilson_interval
+from pipeline.stats._survival import OUTCOME, competing_risk_data
 
-__all__ = ["CumulativeIncidence", "IncidenceRate", "cumulative_incidence", "incidence_rate"]
+__all__ = [
+    "CrudeProportion",
+    "IncidenceRate",
+    "crude_proportion",
+    "cumulative_incidence_at_horizon",
+    "incidence_rate",
+]
 
 DAYS_PER_YEAR = 365.25
 """Days in a person-year: the mean Julian year, so leap years need no special case."""
 
 
 @dataclass(frozen=True, slots=True)
-class CumulativeIncidence:
-    """Share of at-risk patients with an incident onset within the horizon.
+class CrudeProportion:
+    """Share of at-risk patients with an incident onset within the horizon (censoring ignored).
 
     Attributes:
         outcome: The outcome name ``X``.
@@ -71,10 +82,13 @@ class IncidenceRate:
     high: float
 
 
-def cumulative_incidence(
+def crude_proportion(
     cohort: pl.DataFrame, outcome: str, *, confidence: float = 0.95
-) -> CumulativeIncidence:
+) -> CrudeProportion:
     """Count incident onsets among patients at risk of ``outcome``, with a Wilson interval.
+
+    A patient whose follow-up ended early without the outcome counts as a non-case, so this is
+    not a cumulative incidence; :func:`cumulative_incidence_at_horizon` is.
 
     Args:
         cohort: The analysis table.
@@ -94,15 +108,56 @@ def cumulative_incidence(
         ...         "incident_ckd": [True, False, False, None],
         ...     }
         ... )
-        >>> ci = cumulative_incidence(cohort, "ckd")
+        >>> ci = crude_proportion(cohort, "ckd")
         >>> ci.at_risk, ci.events, round(ci.proportion, 4)
         (3, 1, 0.3333)
     """
-    rows = at_risk_rows(cohort, [outcome], what="cumulative incidence")
+    rows = at_risk_rows(cohort, [outcome], what="crude proportion")
     n = rows.height
     events = int(rows[f"incident_{outcome}"].sum())
     ci = wilson_interval(events, n, confidence=confidence)
-    return CumulativeIncidence(outcome, n, events, ci.estimate, ci.low, ci.high)
+    return CrudeProportion(outcome, n, events, ci.estimate, ci.low, ci.high)
+
+
+def cumulative_incidence_at_horizon(
+    cohort: pl.DataFrame, outcome: str, *, confidence: float = 0.95
+) -> Interval:
+    """Aalen-Johansen cumulative incidence at the end of follow-up, death competing.
+
+    Follow-up ends at the horizon at the latest, so the curve is flat from the last observed
+    time on and its value there is the cumulative incidence at the horizon. The interval is
+    the delta-method one of :func:`pipeline.stats.aalen_johansen_interval` (Collett 2015,
+    log(-log) scale).
+
+    Args:
+        cohort: The analysis table (``at_risk_X``, ``incident_X``, ``days_to_X``,
+            ``followup_days``, ``end_reason``).
+        outcome: The outcome name ``X``.
+        confidence: Two-sided confidence level.
+
+    Returns:
+        The estimate with its limits; all NaN when nobody is at risk.
+
+    Examples:
+        >>> cohort = pl.DataFrame(
+        ...     {
+        ...         "at_risk_ckd": [True, True, True, True],
+        ...         "incident_ckd": [True, False, True, False],
+        ...         "days_to_ckd": [1, None, 3, None],
+        ...         "followup_days": [4, 2, 4, 4],
+        ...         "end_reason": ["horizon", "death", "horizon", "horizon"],
+        ...     }
+        ... )
+        >>> cumulative_incidence_at_horizon(cohort, "ckd").estimate
+        0.5
+    """
+    durations, codes = competing_risk_data(cohort, outcome)
+    if durations.size == 0:
+        return Interval(math.nan, math.nan, math.nan)
+    horizon = [float(durations.max())]
+    return aalen_johansen_interval(
+        durations, codes, OUTCOME, horizon, confidence=confidence
+    ).interval()
 
 
 def incidence_rate(
