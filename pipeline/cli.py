@@ -28,6 +28,7 @@ from typing import Annotated, TypeVar
 
 import typer
 from rich.console import Console
+from rich.markup import escape
 from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
 from rich.table import Table
 
@@ -75,7 +76,9 @@ def _fail_cleanly(action: Callable[[], T], *, debug: bool) -> T:
         if debug:
             raise
         Console(stderr=True, highlight=False, soft_wrap=True).print(
-            f"[bold red]error:[/] {err}", markup=True
+            # Escaped: a message's "[unknown-key]" code (or a path with brackets) is no markup.
+            f"[bold red]error:[/] {escape(str(err))}",
+            markup=True,
         )
         raise typer.Exit(2) from None
 
