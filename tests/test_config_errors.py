@@ -8,6 +8,7 @@ from pathlib import Path
 import pytest
 from typer.testing import CliRunner
 
+from pipeline.cli import app
 from pipeline.config import load_study
 from pipeline.errors import ConfigError
 
@@ -163,3 +164,14 @@ def test_failed_build_leaves_existing_output_untouched(
     assert result.exit_code == 2
     assert sorted(p.name for p in out.iterdir()) == ["cohort.parquet"]
     assert (out / "cohort.parquet").read_bytes() == b"previous run"
+
+
+@pytest.mark.parametrize("command", ["build", "sql"])
+def test_the_command_line_prints_the_stable_code(
+    study_copy: Callable[..., Path], command: str
+) -> None:
+    """The error line keeps its ``[code]`` (it was once eaten as terminal markup)."""
+    path = study_copy(DEMO_TEXT.replace("horizon_days: 1461", "horizon_dayz: 1461"))
+    result = CliRunner().invoke(app, [command, str(path)])
+    assert result.exit_code == 2
+    assert "[unknown-key] unknown key 'horizon_dayz'" in " ".join(result.output.split())

@@ -372,3 +372,17 @@ def test_a_manifest_not_written_by_ascertain_owns_nothing(tmp_path: Path) -> Non
     assert code == 2
     assert "data.csv" in output
     assert snapshot(out) == before
+
+
+def test_writing_into_the_current_folder_stages_beside_it(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """``synth .`` in an empty folder (and ``report .`` in a build) must not stage inside it."""
+    here = tmp_path / "here"
+    here.mkdir()
+    monkeypatch.chdir(here)
+    code, output = cli("synth", ".", "--patients", 20, "--seed", 3)
+    assert code == 0, output
+    assert (here / "ascertain-synth.json").is_file()
+    assert not [p for p in here.iterdir() if p.name.startswith(".")]
+    assert no_staging_left(tmp_path)

@@ -198,10 +198,12 @@ def staging(folder: Path) -> Iterator[Path]:
     """A hidden sibling folder to write into; removed on leaving, whatever happened.
 
     A sibling lies on the same file system as the destination, so moving files in is a
-    rename, never a copy.
+    rename, never a copy. The folder is made absolute first: ``.`` (``synth .``, ``report .``)
+    is its own ``parent``, so the staging folder would land inside it and be refused as foreign.
     """
-    folder.parent.mkdir(parents=True, exist_ok=True)
-    staged = Path(tempfile.mkdtemp(prefix=f".{folder.name}.new-", dir=folder.parent))
+    where = Path(os.path.abspath(folder))
+    where.parent.mkdir(parents=True, exist_ok=True)
+    staged = Path(tempfile.mkdtemp(prefix=f".{where.name}.new-", dir=where.parent))
     try:
         yield staged
     finally:
