@@ -35,6 +35,7 @@ from rich.table import Table
 from pipeline._build import BuildOptions, build_study, plan_study, verify_output
 from pipeline._diff import diff_runs, render_diff
 from pipeline._explain import explain_patient, render_trace
+from pipeline._init import init_study
 from pipeline._profile import check_profile_folder, profile_extract, write_profile
 from pipeline.compile import Stage
 from pipeline.config import load_study
@@ -152,6 +153,27 @@ def build(
     for note in result.notes:
         console.print(f"note: {note}", markup=False, soft_wrap=True)
     console.print(f"cohort of {result.run.outputs['cohort'].num_rows:,} patients -> {result.out}")
+
+
+@app.command()
+def init(
+    folder: Annotated[Path, typer.Argument(help="A new or empty folder for the study.")],
+    extract: Annotated[
+        Path | None, typer.Option(help="The extract folder the study reads (default: extract).")
+    ] = None,
+    debug: DebugOpt = False,
+) -> None:
+    """Start a study: a study file, two definitions and a README saying what to edit first.
+
+    Writes study.yaml, definitions/type2_diabetes.yaml (copied from the shipped library),
+    definitions/gout.yaml (a skeleton with every key), README.md and ascertain-init.json into
+    FOLDER, which must be new or empty. `ascertain check FOLDER` passes on it as written.
+
+    Example: ascertain init studies/my_study --extract synthetic_extract
+    """
+    files = _fail_cleanly(lambda: init_study(folder, extract=extract), debug=debug)
+    for path in files:
+        typer.echo(str(path))
 
 
 @app.command()
