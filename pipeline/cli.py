@@ -40,6 +40,7 @@ from pipeline._profile import check_profile_folder, profile_extract, write_profi
 from pipeline.compile import Stage
 from pipeline.config import load_study
 from pipeline.config._check import check_paths, explain_condition
+from pipeline.config._explain_study import explain_study
 from pipeline.engine import DuckDBEngine, SparkEngine
 from pipeline.errors import AscertainError
 from pipeline.extract import as_extract
@@ -258,7 +259,7 @@ def check(
         list[Path] | None, typer.Argument(help="Files or folders (default: definitions/).")
     ] = None,
     explain: Annotated[
-        bool, typer.Option("--explain", help="Say what each definition means.")
+        bool, typer.Option("--explain", help="Say what each study and definition means.")
     ] = False,
 ) -> None:
     """Check study and definition files without data. Exit 0 clean, 1 problems, 2 unreadable.
@@ -271,6 +272,9 @@ def check(
     report = check_paths(paths or [Path("definitions")])
     console = Console(highlight=False, soft_wrap=True)
     if explain:
+        for study_design in report.studies.values():
+            console.print(explain_study(study_design), markup=False)
+            console.print()
         for condition in report.conditions.values():
             console.print(explain_condition(condition), markup=False)
             console.print()
