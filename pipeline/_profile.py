@@ -80,23 +80,44 @@ def _profile(found: dict[str, ExtractTable], threshold: int) -> dict[str, Any]:
 
 
 def _bars(per_year: dict[str, int]) -> str:
-    """A small inline SVG bar chart of rows per year."""
+    """An inline SVG bar chart of rows per year that always fits the page's width.
+
+    The chart is drawn in a fixed coordinate width (a ``viewBox``) and scaled to the width of
+    the page, so ninety birth years fit as well as five visit years. Years missing between the
+    first and the last get an empty bar, so the axis is a true time axis. Years are labelled in
+    full; when they would crowd, only every second, fifth or tenth year is labelled (each bar
+    still names its year and count on hover).
+    """
     if not per_year:
         return ""
-    width, height, gap = 18, 60, 4
-    top = max(per_year.values()) or 1
+    counts = dict(per_year)
+    if all(year.isdigit() for year in counts):
+        first, last = min(map(int, counts)), max(map(int, counts))
+        counts = {str(y): per_year.get(str(y), 0) for y in range(first, last + 1)}
+    view_width, height, label_space = 600, 60, 14
+    slot = view_width / len(counts)
+    # A full year at font size 9 is about 22 units wide; label every step-th bar so they never
+    # overlap, with steps that land on round years.
+    step = next(s for s in (1, 2, 5, 10, 20, 50, 100, len(counts)) if s * slot >= 26)
+    top = max(counts.values()) or 1
     bars = []
-    for i, (year, n) in enumerate(sorted(per_year.items())):
-        h = round(height * n / top)
-        x = i * (width + gap)
+    for i, (year, n) in enumerate(sorted(counts.items())):
+        h = round(height * n / top, 2)
+        x = round(i * slot, 2)
         bars.append(
-            f'<rect x="{x}" y="{height - h}" width="{width}" height="{h}" fill="#3d7a74">'
-            f"<title>{escape(year)}: {n:,}</title></rect>"
-            f'<text x="{x + width / 2}" y="{height + 12}" font-size="8" '
-            f'text-anchor="middle">{escape(year[-2:])}</text>'
+            f'<rect x="{x}" y="{height - h}" width="{round(slot * 0.8, 2)}" height="{h}" '
+            f'fill="#3d7a74"><title>{escape(year)}: {n:,}</title></rect>'
         )
-    total = len(per_year) * (width + gap)
-    return f'<svg width="{total}" height="{height + 16}" role="img">{"".join(bars)}</svg>'
+        if (int(year) if year.isdigit() else i) % step == 0:
+            bars.append(
+                f'<text x="{round(x + slot * 0.4, 2)}" y="{height + 11}" font-size="9" '
+                f'text-anchor="middle">{escape(year)}</text>'
+            )
+    box = f"-12 0 {view_width + 24} {height + label_space}"
+    return (
+        f'<svg viewBox="{box}" width="100%" style="max-width:{view_width + 24}px" role="img" '
+        f'aria-label="rows per year">{"".join(bars)}</svg>'
+    )
 
 
 def _rows_table(rows: list[dict[str, Any]], columns: list[str]) -> str:
@@ -139,8 +160,12 @@ def render_profile_html(profile: dict[str, Any]) -> str:
     for name, table in profile["tables"].items():
         facts = {k: v for k, v in table.items() if k != "rows_per_year"}
         parts.append(f"<h2>{escape(name)}</h2>")
-        parts.append(_rows_table([facts], list(facts)))
-        parts.append(_bars(table["rows_per_year"]))
+        # One fact per row: a table's facts side by side are wider than the page.
+        facts_rows = [{"fact": k.replace("_", " "), "value": v} for k, v in facts.items()]
+        parts.append(_rows_table(facts_rows, ["fact", "value"]))
+        if table["rows_per_year"]:
+            what = "birth year" if name == "patients" else "year"
+            parts.append(f"<p>Rows per {what}</p>{_bars(table['rows_per_year'])}")
     if profile.get("missing_tables"):
         parts.append(f"<p>Tables not found: {escape(', '.join(profile['missing_tables']))}</p>")
     for key, columns in (

@@ -35,10 +35,12 @@ from rich.table import Table
 from pipeline._build import BuildOptions, build_study, plan_study, verify_output
 from pipeline._diff import diff_runs, render_diff
 from pipeline._explain import explain_patient, render_trace
+from pipeline._init import init_study
 from pipeline._profile import check_profile_folder, profile_extract, write_profile
 from pipeline.compile import Stage
 from pipeline.config import load_study
 from pipeline.config._check import check_paths, explain_condition
+from pipeline.config._explain_study import explain_study
 from pipeline.engine import DuckDBEngine, SparkEngine
 from pipeline.errors import AscertainError
 from pipeline.extract import as_extract
@@ -155,6 +157,27 @@ def build(
 
 
 @app.command()
+def init(
+    folder: Annotated[Path, typer.Argument(help="A new or empty folder for the study.")],
+    extract: Annotated[
+        Path | None, typer.Option(help="The extract folder the study reads (default: extract).")
+    ] = None,
+    debug: DebugOpt = False,
+) -> None:
+    """Start a study: a study file, two definitions and a README saying what to edit first.
+
+    Writes study.yaml, definitions/type2_diabetes.yaml (copied from the shipped library),
+    definitions/gout.yaml (a skeleton with every key), README.md and ascertain-init.json into
+    FOLDER, which must be new or empty. `ascertain check FOLDER` passes on it as written.
+
+    Example: ascertain init studies/my_study --extract synthetic_extract
+    """
+    files = _fail_cleanly(lambda: init_study(folder, extract=extract), debug=debug)
+    for path in files:
+        typer.echo(str(path))
+
+
+@app.command()
 def sql(
     study: StudyArg,
     stage: Annotated[str | None, typer.Option(help="Print only this stage.")] = None,
@@ -236,7 +259,7 @@ def check(
         list[Path] | None, typer.Argument(help="Files or folders (default: definitions/).")
     ] = None,
     explain: Annotated[
-        bool, typer.Option("--explain", help="Say what each definition means.")
+        bool, typer.Option("--explain", help="Say what each study and definition means.")
     ] = False,
 ) -> None:
     """Check study and definition files without data. Exit 0 clean, 1 problems, 2 unreadable.
@@ -249,6 +272,9 @@ def check(
     report = check_paths(paths or [Path("definitions")])
     console = Console(highlight=False, soft_wrap=True)
     if explain:
+        for study_design in report.studies.values():
+            console.print(explain_study(study_design), markup=False)
+            console.print()
         for condition in report.conditions.values():
             console.print(explain_condition(condition), markup=False)
             console.print()

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import shutil
+from collections.abc import Callable
 from pathlib import Path
 
 import pytest
@@ -167,3 +168,84 @@ def test_bad_provenance_is_located(definitions: Path, old: str, new: str, expect
     assert code == 1
     assert f"{file}:" in output
     assert expected in " ".join(output.split())
+
+
+DEMO_EXPLAINED = (
+    "Incident type 2 diabetes, CKD and heart failure in the Orvane Bay network, 2015-2019 "
+    "(orvane_multimorbidity): Index: the first encounter between 2015-01-01 and 2016-12-31. "
+    "Eligibility, in this order: 1. sex recorded as F or M; 2. alive at index (no death on or "
+    "before the index date); 3. age at index between 40 and 85 years; 4. first encounter at "
+    "least 730 days before index; 5. at risk of at least one outcome (not prevalent for all of "
+    "type2_diabetes, ckd, heart_failure). Outcomes, side by side: type2_diabetes, ckd and "
+    "heart_failure; each is prevalent when its onset is on or before the index date, and "
+    "incident when its onset falls after the index date and within the horizon of 1461 days "
+    "after index. Follow-up ends at the first of death, the end of data (2019-12-31), loss of "
+    "contact (365 days after the last encounter) or the horizon (ties in that order); a patient "
+    "whose follow-up ends before the horizon is censored. Covariates: bmi is the latest value "
+    "of bmi from 730 days before index to the index date; sbp is the latest value of sbp from "
+    "730 days before index to the index date; hba1c is the latest value of hba1c from 730 days "
+    "before index to the index date; egfr is the latest value of egfr from 730 days before "
+    "index to the index date; visits_prior_year is the number of records of an encounter of "
+    "any type from 365 days before index to 1 day before index; hypertension is whether "
+    "hypertension has its onset on or before the index date; charlson is the Charlson index "
+    "from the start of the record to the index date, from the Quan 2005 ICD10 codes with the "
+    "Charlson 1987 weights."
+)
+
+
+def test_explain_a_study_in_plain_sentences() -> None:
+    code, out = _check(
+        "--explain", str(ROOT / "definitions" / "studies" / "orvane_multimorbidity.yaml")
+    )
+    assert code == 0, out
+    assert out == f"{DEMO_EXPLAINED}\n\n1 files checked, 0 problems\n"
+
+
+def test_explain_a_study_states_every_other_choice(study_copy: Callable[[str], Path]) -> None:
+    study = study_copy(
+        """\
+study: other_choices
+title: Other choices
+extract: extract
+definitions: ../conditions
+end_of_data: 2019-12-31
+index: {first_event: {between: [2015-01-01, 2016-12-31], evidence: {prescription: {atc: [A10B]}}}}
+eligibility:
+  - registered_days: 365
+  - encounters: {at_least: 2, window: [-730, -1]}
+  - practice: [P2, P1]
+  - not_prevalent: ckd
+  - no_evidence: {evidence: {diagnosis: {ICD10: [E10]}}, window: [null, 0]}
+  - in_contact_at_index: {window: [-365, 0]}
+covariates:
+  years_ckd: {days_since_first_evidence: ckd}
+  low_egfr: {minimum: egfr, window: [-365, 0]}
+  c: {charlson: {weights: quan_2011, codes: [ICD10, ICD9]}}
+outcomes: {conditions: [heart_failure], horizon_years: 3, lookback: 1825,
+           clear_before: {heart_failure: 365}}
+followup: {end_at: [death, deregistration, horizon], incomplete: exclude}
+output: {folder: out}
+"""
+    )
+    code, out = _check("--explain", str(study))
+    assert code == 0, out
+    for sentence in (
+        "Index: the first date of a prescription with an ATC code starting A10B between "
+        "2015-01-01 and 2016-12-31.",
+        "1. registered at least 365 days before index; 2. at least 2 encounters from 730 days "
+        "before index to 1 day before index; 3. registered at practice P1 or P2; 4. no ckd on "
+        "or before the index date; 5. without a diagnosis with an ICD-10 code starting E10 "
+        "from the start of the record to the index date; 6. a contact from 365 days before "
+        "index to the index date, and not deregistered before index.",
+        "within the horizon of 3 years after index. For heart_failure only evidence from 1825 "
+        "days before index on counts. A patient with any evidence a rule of heart_failure needs "
+        "from 365 days before index to the index date is not at risk of heart_failure.",
+        "Follow-up ends at the first of death, deregistration or the horizon (ties in that "
+        "order); a patient whose follow-up ends before the horizon is removed (one more "
+        "attrition step), unless it ended at death.",
+        "Covariates: years_ckd is the days from the first evidence of ckd to the index date; "
+        "low_egfr is the lowest value of egfr from 365 days before index to the index date; c "
+        "is the Charlson index from the start of the record to the index date, from the Quan "
+        "2005 ICD10 and ICD9 codes with the Quan 2011 weights.",
+    ):
+        assert sentence in out, sentence

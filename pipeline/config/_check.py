@@ -13,6 +13,7 @@ from pathlib import Path
 from pipeline.codes import expand_codes
 from pipeline.config._condition import Condition, Evidence, Rule
 from pipeline.config._loader import load_catalog, load_condition, load_study
+from pipeline.config._study import Study
 from pipeline.config._yaml import load_yaml
 from pipeline.errors import ConfigError, Problem
 
@@ -21,11 +22,15 @@ UNREADABLE = frozenset({"unreadable", "bad-yaml", "empty-file", "missing-folder"
 
 @dataclass
 class CheckReport:
-    """Problems found, files checked, and the definitions that loaded (for ``--explain``)."""
+    """Problems found, files checked, and the definitions and studies that loaded.
+
+    The loaded ones are kept for ``--explain``.
+    """
 
     problems: list[Problem] = field(default_factory=list)
     files: list[Path] = field(default_factory=list)
     conditions: dict[Path, Condition] = field(default_factory=dict)
+    studies: dict[Path, Study] = field(default_factory=dict)
 
     @property
     def exit_code(self) -> int:
@@ -126,7 +131,7 @@ def check_paths(paths: list[Path]) -> CheckReport:
     for file in files:
         try:
             if _is_study(file):
-                load_study(file)
+                report.studies[file] = load_study(file).study
                 continue
             condition = load_condition(file)
         except ConfigError as err:
@@ -185,6 +190,8 @@ def _codes_text(ev: Evidence) -> str:
             limits.append(f"between {m.between[0]} and {m.between[1]}")
         return f"a measurement of {m.measure} {' and '.join(limits)}"
     if ev.encounter:
+        if not ev.encounter.type:
+            return "an encounter of any type"
         return f"an encounter of type {' or '.join(ev.encounter.type)}"
     return f"the onset of {ev.condition}"
 

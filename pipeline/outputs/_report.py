@@ -20,6 +20,7 @@ from typing import Any
 import polars as pl
 
 from pipeline.config import LoadedStudy, load_study
+from pipeline.config._check import explain_condition
 from pipeline.errors import AscertainError
 from pipeline.outputs._manifest import definition_path, read_manifest, sha256_file
 from pipeline.outputs._ownership import REPORT, check_folder, install, staging
@@ -137,11 +138,15 @@ def read_study(
         if hashes.get(shown) not in (None, current):
             base.notes.append(f"The definition file {shown} has changed since the build.")
         condition = loaded.catalog.get(condition_name)
+        # The rules in the words of `ascertain check --explain`, without the title the heading
+        # already shows: what makes a case, not only what the author wrote about it.
+        rules = explain_condition(condition).removeprefix(f"{condition.title} ({condition_name}): ")
         definitions.append(
             {
                 "name": condition_name,
                 "title": condition.title,
                 "about": condition.about.strip(),
+                "rules": rules[:1].upper() + rules[1:],
                 "path": shown,
                 "sha256": hashes.get(shown, current),
             }

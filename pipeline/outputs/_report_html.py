@@ -195,7 +195,8 @@ def _definitions(definitions: list[dict[str, str]]) -> str:
         return '<p class="note">The definition files could not be read; see the notes above.</p>'
     return "".join(
         f'<h3>{escape(d["title"])} <span class="pct">({escape(d["name"])})</span></h3>'
-        f'<p class="about">{escape(d["about"])}</p><dl class="def"><dt>File</dt>'
+        f'<p class="about">{escape(d["about"])}</p><p class="about">{escape(d["rules"])}</p>'
+        '<dl class="def"><dt>File</dt>'
         f'<dd class="hash">{escape(d["path"])}</dd><dt>SHA-256</dt>'
         f'<dd class="hash">{escape(d["sha256"])}</dd></dl>'
         for d in definitions
