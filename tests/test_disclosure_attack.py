@@ -1,6 +1,7 @@
 """An attack on the released summary tables: can a reader work out a hidden count?
 
-The attacker reads only what was written (``summary/*.csv``), knows what each table counts,
+The attacker reads only what was written (``summary/*.csv``, and the cohort size in
+``manifest.json``), knows what each table counts,
 and writes the identities between the tables from that meaning alone (this file does not use
 the suppression code's relations). Each patient of the cohort falls in one *atom*: a state per
 outcome (E incident, F at risk without the event, P prevalent, so not at risk) and, for each
@@ -15,6 +16,7 @@ disclosure control (interval/"protection level" audits), written here from memor
 from __future__ import annotations
 
 import csv
+import json
 import math
 from collections.abc import Callable
 from itertools import product
@@ -84,6 +86,11 @@ class Attack:
                 eq = {self.index[("l", s, v, lv)]: 1 for lv in levels}
                 self.identities.append(eq | {self.index[("s", s, "", "")]: -1})
         self._read_tables(folder)
+        # The manifest states the exact cohort size: the attacker knows every patient's atom
+        # sums to it.
+        manifest = json.loads((folder / "manifest.json").read_text(encoding="utf-8"))
+        cohort = {self.index[("s", s, "", "")]: 1 for s in self.states}
+        self.cells.append((cohort, str(manifest["rows"]["cohort"]), "manifest rows.cohort"))
 
     def _of(self, keep: Callable[[State], bool], variable: str = "", level: str = "") -> dict:
         if variable:

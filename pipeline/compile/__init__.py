@@ -11,6 +11,7 @@ from pipeline.compile._plan import (
     SourceTable,
     Stage,
 )
+from pipeline.compile._sources import unreadable_patient_date
 
 __all__ = [
     "PASSES",
@@ -23,4 +24,5 @@ __all__ = [
     "SourceTable",
     "Stage",
     "compile_study",
+    "unreadable_patient_date",
 ]

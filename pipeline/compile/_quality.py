@@ -22,6 +22,7 @@ from pipeline.compile._sources import (
     raw_code_columns,
     same_raw_code,
     source_tables,
+    unreadable_patient_date,
 )
 from pipeline.compile._sql import query, value
 
@@ -65,12 +66,15 @@ SET_ASIDE_REASONS: dict[str, SetAsideReason] = {
         "every table's patient_id column holds the same identifier written the same way "
         "(leading zeros, prefixes; ids take the patients table's type, integer or text, and "
         "an id that cannot be read as that type matches nobody), and that a site mapping "
-        "names the right column.",
+        "names the right column; a patient set aside in the patients table (an unparseable date) "
+        "leaves their rows orphans too.",
     ),
     "unparseable date": SetAsideReason(
         misread=True,
-        tables=_EVENTS,
-        hint="the date is empty or not written YYYY-MM-DD; if the site writes dates "
+        tables=_ALL,
+        hint="the date is empty or not written YYYY-MM-DD (patients: a birth, death, "
+        "registration or deregistration date written but not readable; the patient is left "
+        "out and their other rows count as orphans); if the site writes dates "
         'otherwise, describe them in a site mapping file (dates: "%d/%m/%Y", or excel for '
         "spreadsheet serial days), and check that the mapping names the right date column.",
     ),
@@ -234,6 +238,7 @@ SELECT
   CASE
     WHEN source_problem IS NOT NULL THEN source_problem
     WHEN patient_id IS NULL THEN 'missing patient_id'
+    WHEN :unreadable_date THEN 'unparseable date'
     ELSE 'used'
   END AS reason,
   copies,
@@ -290,7 +295,7 @@ def _classified(ctx: CompileContext, table: SourceTable) -> exp.Query:
     check = ctx.study.quality.exact_duplicates == "check"
     grouped = grouped_rows(table, check_duplicates=check).subquery("g")
     if table.name == "patients":
-        return query(_PATIENTS, rows=grouped)
+        return query(_PATIENTS, rows=grouped, unreadable_date=unreadable_patient_date())
     if table.name == "measurements":
         return query(_MEASUREMENTS)
     dated = exp.select(

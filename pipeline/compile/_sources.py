@@ -36,6 +36,31 @@ MEASUREMENTS = SourceTable(
 )
 
 
+# The patients table's dates. One written but unreadable sets the whole patient aside
+# (quality log: ``unparseable date``): a birth date read as 1 July of birth_year, or a death
+# read as no death, would give wrong ages and end reasons without a word.
+PATIENT_DATES = ("birth_date", "death_date", "registration_date", "deregistration_date")
+
+
+def unreadable_patient_date() -> exp.Expression:
+    """True for a patients row with a date that is written but cannot be read as one.
+
+    An empty date (NULL, or only spaces in a CSV) is not unreadable: no death date means
+    alive, no birth date means 1 July of birth_year. The cast is the one the events' dates
+    get, so a patients row and an event row written alike are judged alike. Patient-level
+    columns the file lacks are NULL in the source view, so they never count.
+    """
+    unreadable = []
+    for name in PATIENT_DATES:
+        column = exp.column(name)
+        # COALESCE: a NULL here would make the whole test NULL, and NOT NULL drops the row.
+        text = exp.Trim(this=exp.cast(column, "VARCHAR"))
+        written = exp.func("COALESCE", text, value("")).neq(value(""))
+        cast = exp.TryCast(this=column.copy(), to=exp.DataType.build("DATE"))
+        unreadable.append(exp.and_(written, cast.is_(exp.null())))
+    return exp.paren(exp.or_(*unreadable))
+
+
 def grouped_rows(table: SourceTable, *, check_duplicates: bool) -> exp.Query:
     """Distinct rows of a source table with how many copies of each the extract holds.
 
@@ -75,7 +100,7 @@ SELECT DISTINCT
   TRY_CAST(registration_date AS DATE) AS registration_date,
   TRY_CAST(deregistration_date AS DATE) AS deregistration_date
 FROM src_patients
-WHERE patient_id IS NOT NULL AND source_problem IS NULL
+WHERE patient_id IS NOT NULL AND source_problem IS NULL AND NOT :unreadable_date
 """
 
 _PATIENT_DUPLICATES = """
@@ -247,9 +272,10 @@ def source_stages(ctx: CompileContext) -> tuple[Stage, ...]:
     stages = [
         Stage(
             "patient_base",
-            query(_PATIENT_BASE),
+            query(_PATIENT_BASE, unreadable_date=unreadable_patient_date()),
             ("src_patients",),
-            "one typed row per patient: birth date (1 July when only the year is known), sex",
+            "one typed row per patient: birth date (1 July when only the year is known), sex; "
+            "a patient with a written but unreadable date is left out",
         ),
         Stage(
             "patient_duplicates",

@@ -14,7 +14,7 @@ from typing import Any
 import duckdb
 from sqlglot import exp
 
-from pipeline.compile import POSITION_BASE, SourceTable
+from pipeline.compile import POSITION_BASE, SourceTable, unreadable_patient_date
 from pipeline.engine._duckdb import DuckDBEngine, _read_failure
 from pipeline.errors import EngineError
 from pipeline.extract import ExtractTable
@@ -148,7 +148,8 @@ def _orphans(relation: str) -> exp.Query:
     be read as the patients table's id type (the views bind every patient_id with TRY_CAST to
     that type, so such an id is NULL). ``NOT IN`` would miss exactly those rows, since
     ``NULL NOT IN (...)`` is not true: an extract whose ids differ in type between tables
-    showed no orphans while the build set every row aside.
+    showed no orphans while the build set every row aside. A patient the build leaves out for
+    an unreadable date leaves orphans too.
     """
     patients = (
         exp.select("patient_id")
@@ -158,6 +159,7 @@ def _orphans(relation: str) -> exp.Query:
             exp.and_(
                 exp.column("patient_id").is_(exp.null()).not_(),
                 exp.column("source_problem").is_(exp.null()),
+                exp.not_(unreadable_patient_date()),
             )
         )
     )

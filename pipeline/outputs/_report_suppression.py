@@ -20,7 +20,8 @@ together by :func:`pipeline.stats.protect_cells`:
   dependence, quality), then Table 1's overall column and the flow, then events and group
   sizes, and the cohort size and source population last: those are the numbers readers need.
   Each rank costs as much as a thousand cells of the rank below (see ``protect_cells``). The
-  rows read of a source table are known to a reader and never hidden.
+  rows read of a source table are known to a reader and never hidden; so is the cohort size,
+  which manifest.json states exactly.
 
 Numbers derived from counts (percentages, estimates, intervals, odds ratios) are left empty
 wherever a count they are computed from is hidden.
@@ -41,6 +42,9 @@ from pipeline.outputs._report_cells import Spec, aliases, atom_relations, cohort
 from pipeline.stats import baseline_variables, protect_cells
 from pipeline.stats._disclosure import Relation
 
+# The flow's last remaining count: the cohort size, which manifest.json (rows.cohort) also
+# states exactly, so a reader knows it whatever the report shows.
+COHORT_KEY = "N"
 _PRIORITY = (  # how much readers need a count; complements come from low ranks first
     (3, ("N", "src")),
     (2, ("events|", "nonevents|", "atrisk|", "t1size|")),
@@ -132,6 +136,8 @@ def hidden_keys(
     for key in values:  # a key shared by tables gets the priority of its most needed use
         rank = _priority(key)
         priority[alias.get(key, key)] = max(rank, priority.get(alias.get(key, key), 0))
+    if COHORT_KEY in values:  # manifest.json states the exact cohort size: never hidden
+        known.add(alias.get(COHORT_KEY, COHORT_KEY))
     unique: set[Relation] = set()
     for relation in relations:
         summed: dict[str, int] = {}

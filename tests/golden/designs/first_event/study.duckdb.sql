@@ -8,7 +8,7 @@
 
 -- reads src_prescriptions: patient_id, start_date, atc, stop_date
 
--- stage patient_base [table]: one typed row per patient: birth date (1 July when only the year is known), sex
+-- stage patient_base [table]: one typed row per patient: birth date (1 July when only the year is known), sex; a patient with a written but unreadable date is left out
 -- reads: src_patients
 SELECT DISTINCT
   patient_id,
@@ -20,7 +20,26 @@ SELECT DISTINCT
   TRY_CAST(deregistration_date AS DATE) AS deregistration_date
 FROM src_patients
 WHERE
-  NOT patient_id IS NULL AND source_problem IS NULL;
+  NOT patient_id IS NULL
+  AND source_problem IS NULL
+  AND NOT (
+    (
+      COALESCE(TRIM(CAST(birth_date AS TEXT)), '') <> ''
+      AND TRY_CAST(birth_date AS DATE) IS NULL
+    )
+    OR (
+      COALESCE(TRIM(CAST(death_date AS TEXT)), '') <> ''
+      AND TRY_CAST(death_date AS DATE) IS NULL
+    )
+    OR (
+      COALESCE(TRIM(CAST(registration_date AS TEXT)), '') <> ''
+      AND TRY_CAST(registration_date AS DATE) IS NULL
+    )
+    OR (
+      COALESCE(TRIM(CAST(deregistration_date AS TEXT)), '') <> ''
+      AND TRY_CAST(deregistration_date AS DATE) IS NULL
+    )
+  );
 
 -- stage patient_duplicates [check]: patients must be listed once
 -- reads: patient_base
@@ -653,6 +672,25 @@ WITH summary AS (
         THEN source_problem
         WHEN patient_id IS NULL
         THEN 'missing patient_id'
+        WHEN (
+          (
+            COALESCE(TRIM(CAST(birth_date AS TEXT)), '') <> ''
+            AND TRY_CAST(birth_date AS DATE) IS NULL
+          )
+          OR (
+            COALESCE(TRIM(CAST(death_date AS TEXT)), '') <> ''
+            AND TRY_CAST(death_date AS DATE) IS NULL
+          )
+          OR (
+            COALESCE(TRIM(CAST(registration_date AS TEXT)), '') <> ''
+            AND TRY_CAST(registration_date AS DATE) IS NULL
+          )
+          OR (
+            COALESCE(TRIM(CAST(deregistration_date AS TEXT)), '') <> ''
+            AND TRY_CAST(deregistration_date AS DATE) IS NULL
+          )
+        )
+        THEN 'unparseable date'
         ELSE 'used'
       END AS reason,
       copies,

@@ -8,7 +8,7 @@
 
 -- reads src_prescriptions: patient_id, start_date, atc, stop_date
 
--- stage patient_base [table]: one typed row per patient: birth date (1 July when only the year is known), sex
+-- stage patient_base [table]: one typed row per patient: birth date (1 July when only the year is known), sex; a patient with a written but unreadable date is left out
 -- reads: src_patients
 SELECT DISTINCT
   patient_id,
@@ -74,7 +74,54 @@ SELECT DISTINCT
   END AS deregistration_date
 FROM src_patients
 WHERE
-  NOT patient_id IS NULL AND source_problem IS NULL;
+  NOT patient_id IS NULL
+  AND source_problem IS NULL
+  AND NOT (
+    (
+      COALESCE(TRIM(CAST(birth_date AS STRING)), '') <> ''
+      AND CASE
+        WHEN CAST(birth_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+        THEN TRY_CAST(REGEXP_REPLACE(
+          TRIM(CAST(birth_date AS STRING)),
+          '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+          '$1-$3-$4'
+        ) AS DATE)
+      END IS NULL
+    )
+    OR (
+      COALESCE(TRIM(CAST(death_date AS STRING)), '') <> ''
+      AND CASE
+        WHEN CAST(death_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+        THEN TRY_CAST(REGEXP_REPLACE(
+          TRIM(CAST(death_date AS STRING)),
+          '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+          '$1-$3-$4'
+        ) AS DATE)
+      END IS NULL
+    )
+    OR (
+      COALESCE(TRIM(CAST(registration_date AS STRING)), '') <> ''
+      AND CASE
+        WHEN CAST(registration_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+        THEN TRY_CAST(REGEXP_REPLACE(
+          TRIM(CAST(registration_date AS STRING)),
+          '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+          '$1-$3-$4'
+        ) AS DATE)
+      END IS NULL
+    )
+    OR (
+      COALESCE(TRIM(CAST(deregistration_date AS STRING)), '') <> ''
+      AND CASE
+        WHEN CAST(deregistration_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+        THEN TRY_CAST(REGEXP_REPLACE(
+          TRIM(CAST(deregistration_date AS STRING)),
+          '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+          '$1-$3-$4'
+        ) AS DATE)
+      END IS NULL
+    )
+  );
 
 -- stage patient_duplicates [check]: patients must be listed once
 -- reads: patient_base
@@ -851,6 +898,53 @@ WITH summary AS (
         THEN source_problem
         WHEN patient_id IS NULL
         THEN 'missing patient_id'
+        WHEN (
+          (
+            COALESCE(TRIM(CAST(birth_date AS STRING)), '') <> ''
+            AND CASE
+              WHEN CAST(birth_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+              THEN TRY_CAST(REGEXP_REPLACE(
+                TRIM(CAST(birth_date AS STRING)),
+                '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+                '$1-$3-$4'
+              ) AS DATE)
+            END IS NULL
+          )
+          OR (
+            COALESCE(TRIM(CAST(death_date AS STRING)), '') <> ''
+            AND CASE
+              WHEN CAST(death_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+              THEN TRY_CAST(REGEXP_REPLACE(
+                TRIM(CAST(death_date AS STRING)),
+                '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+                '$1-$3-$4'
+              ) AS DATE)
+            END IS NULL
+          )
+          OR (
+            COALESCE(TRIM(CAST(registration_date AS STRING)), '') <> ''
+            AND CASE
+              WHEN CAST(registration_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+              THEN TRY_CAST(REGEXP_REPLACE(
+                TRIM(CAST(registration_date AS STRING)),
+                '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+                '$1-$3-$4'
+              ) AS DATE)
+            END IS NULL
+          )
+          OR (
+            COALESCE(TRIM(CAST(deregistration_date AS STRING)), '') <> ''
+            AND CASE
+              WHEN CAST(deregistration_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+              THEN TRY_CAST(REGEXP_REPLACE(
+                TRIM(CAST(deregistration_date AS STRING)),
+                '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+                '$1-$3-$4'
+              ) AS DATE)
+            END IS NULL
+          )
+        )
+        THEN 'unparseable date'
         ELSE 'used'
       END AS reason,
       copies,
