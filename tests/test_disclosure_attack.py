@@ -31,6 +31,7 @@ from pipeline._build import BuildOptions, build_study
 from pipeline.outputs._report import write_report
 
 from .conftest import DEMO_STUDY, HANDMADE
+from .helpers import demo_study_variant
 
 THRESHOLD = 5
 MARKERS = ("<5", "*")
@@ -270,3 +271,19 @@ def test_the_demo_report_hides_few_counts(demo: Path) -> None:
         for text in r.values()
     )
     assert 7 <= hidden <= 35
+
+
+def test_a_cohort_below_the_threshold_is_shown_as_the_manifest_states_it(tmp_path: Path) -> None:
+    # manifest.json states the exact cohort size (rows.cohort); hiding it in the report would
+    # protect nothing, and a complement chosen to protect it would hide counts for nothing.
+    study = demo_study_variant(tmp_path / "defs")
+    text = study.read_text(encoding="utf-8")
+    assert "small_cell_threshold: 5\n" in text
+    study.write_text(text.replace("small_cell_threshold: 5\n", "small_cell_threshold: 50\n"))
+    out = tmp_path / "out"
+    build_study(study, BuildOptions(extract=HANDMADE, out=out))
+    write_report(out, study)
+    size = json.loads((out / "manifest.json").read_text(encoding="utf-8"))["rows"]["cohort"]
+    assert 0 < size < 50
+    last = _rows(out / "summary" / "flow.csv")[-1]
+    assert last["remaining"] == str(size)
