@@ -31,7 +31,7 @@ from rich.console import Console
 from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
 from rich.table import Table
 
-from pipeline._build import BuildOptions, build_study, plan_study, verify_output
+from pipeline._build import BuildOptions, BuildResult, build_study, plan_study, verify_output
 from pipeline._diff import diff_runs, render_diff
 from pipeline._explain import explain_patient, render_trace
 from pipeline._profile import check_profile_folder, profile_extract, write_profile
@@ -40,6 +40,7 @@ from pipeline.config import load_study
 from pipeline.config._check import check_paths, explain_condition
 from pipeline.engine import DuckDBEngine, SparkEngine
 from pipeline.errors import AscertainError
+from pipeline.extract import extract_location
 
 app = typer.Typer(
     name="ascertain",
@@ -55,6 +56,14 @@ StudyArg = Annotated[
     Path, typer.Argument(help="The study file (YAML).", exists=False, dir_okay=False)
 ]
 DebugOpt = Annotated[bool, typer.Option("--debug", help="Show the full traceback on errors.")]
+SparkMasterOpt = Annotated[
+    str | None,
+    typer.Option(help="Spark master URL: local[*] (default), spark://HOST:PORT, yarn, k8s://URL."),
+]
+SparkConfOpt = Annotated[
+    list[str] | None,
+    typer.Option(help="A Spark setting KEY=VALUE (repeatable); beats the study's spark: section."),
+]
 
 
 def _fail_cleanly(action: Callable[[], T], *, debug: bool) -> T:
@@ -90,7 +99,8 @@ def _progress(*, quiet: bool) -> Iterator[Callable[[Stage, int, int], None] | No
 def build(
     study: StudyArg,
     extract: Annotated[
-        Path | None, typer.Option(help="Run on this extract folder instead of the study's.")
+        str | None,
+        typer.Option(help="Run on this extract (a folder, mapping file or file:// URI)."),
     ] = None,
     out: Annotated[
         Path | None, typer.Option(help="Write outputs here instead of the study's folder.")
@@ -106,22 +116,26 @@ def build(
     engine: Annotated[
         str, typer.Option(help="duckdb (default) or spark (pip install 'ascertain\\[spark]').")
     ] = "duckdb",
-    spark_master: Annotated[
-        str | None, typer.Option(help="Spark master URL (default local[*]); with --engine spark.")
-    ] = None,
+    spark_master: SparkMasterOpt = None,
+    spark_conf: SparkConfOpt = None,
     debug: DebugOpt = False,
 ) -> None:
     """Build the study's cohort: cohort.parquet, attrition.csv and run.json."""
-    options = BuildOptions(
-        extract=extract,
-        out=out,
-        threads=threads,
-        memory_limit=memory_limit,
-        engine=engine,
-        spark_master=spark_master,
-    )
+
+    def run() -> BuildResult:
+        options = BuildOptions(
+            extract=None if extract is None else extract_location(extract),
+            out=out,
+            threads=threads,
+            memory_limit=memory_limit,
+            engine=engine,
+            spark_master=spark_master,
+            spark_conf=tuple(spark_conf or ()),
+        )
+        return build_study(study, options, on_stage=on_stage)
+
     with _progress(quiet=quiet) as on_stage:
-        result = _fail_cleanly(lambda: build_study(study, options, on_stage=on_stage), debug=debug)
+        result = _fail_cleanly(run, debug=debug)
     console = Console(highlight=False)
     if profile:
         for report in result.run.stages:
@@ -232,16 +246,28 @@ def verify(
         typer.Option(help="The study file (default: where the manifest says, from OUTPUT_DIR)."),
     ] = None,
     extract: Annotated[
-        Path | None,
+        str | None,
         typer.Option(help="The extract (default: where the manifest says, from the study)."),
     ] = None,
+    spark_master: SparkMasterOpt = None,
+    spark_conf: SparkConfOpt = None,
     debug: DebugOpt = False,
 ) -> None:
     """Rebuild an output folder from its manifest and report whether it is identical.
 
     Exits 0 when identical, 1 when an input or output differs, 2 when it cannot verify.
+    Spark builds are rebuilt on local[*] unless --spark-master names another master.
     """
-    result = _fail_cleanly(lambda: verify_output(output, study=study, extract=extract), debug=debug)
+    result = _fail_cleanly(
+        lambda: verify_output(
+            output,
+            study=study,
+            extract=None if extract is None else extract_location(extract),
+            spark_master=spark_master,
+            spark_conf=tuple(spark_conf or ()),
+        ),
+        debug=debug,
+    )
     console = Console(highlight=False, soft_wrap=True)
     for line in result.changed_inputs:
         console.print(f"changed input: {line}", markup=False)

@@ -15,6 +15,7 @@ from pydantic import Field, field_validator, model_validator
 
 from pipeline.config._base import Model, Name, NonNegativeInt, PositiveInt
 from pipeline.config._condition import Evidence
+from pipeline.config._spark import SparkSettings
 from pipeline.measures import MEASURES
 
 Window = tuple[int | None, int]
@@ -454,6 +455,7 @@ class Study(Model):
     followup: Followup
     output: Output
     engine: EngineSettings = EngineSettings()
+    spark: SparkSettings = SparkSettings()
     quality: QualitySettings = QualitySettings()
 
     @field_validator("covariates")
