@@ -7,6 +7,7 @@ the reason, when pyspark or Java is missing: ``pip install 'ascertain[spark]'`` 
 from __future__ import annotations
 
 import importlib.util
+import json
 import math
 import os
 import shutil
@@ -226,6 +227,21 @@ def test_cli_build_with_spark_writes_the_same_files(session: Any, tmp_path: Path
     duck = pq.read_table(outs["duckdb"] / "cohort.parquet")
     spark = pq.read_table(outs["spark"] / "cohort.parquet")
     assert spark.equals(duck)
+    recorded = json.loads((outs["spark"] / "manifest.json").read_text())["engine"]
+    assert recorded["name"] == "spark"
+    assert recorded["master"].startswith("local[")
+    assert recorded["settings"]["spark.sql.ansi.enabled"] == "true"
+    # verify rebuilds a Spark build on the master and with the settings it is given.
+    again = CliRunner().invoke(
+        app,
+        [
+            *("verify", str(outs["spark"]), "--study", str(DEMO_STUDY)),
+            *("--extract", str(HANDMADE), "--spark-master", "local[1]"),
+            *("--spark-conf", "spark.sql.shuffle.partitions=2"),
+        ],
+    )
+    assert again.exit_code == 0, again.output
+    assert "identical" in again.output
 
 
 def test_spark_master_needs_the_spark_engine(tmp_path: Path) -> None:

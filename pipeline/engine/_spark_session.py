@@ -1,9 +1,11 @@
 """Starting a Spark session for a build: the master URL, the settings, and a bounded wait.
 
 A wrong master URL must cost the user one sentence and a few seconds, not a page of Java
-after a minute: the URL is checked before Java starts, a ``spark://`` master is probed over
-TCP within the connect timeout, and the registration itself is waited for no longer than that
-(Spark's own standalone client retries for about a minute, a fixed interval we cannot set).
+after a minute: the URL is checked before Java starts, and a ``spark://`` master is probed over
+TCP within the connect timeout. A master that accepts the connection but not the application
+(not a Spark master, a version mismatch) is given up after the connect timeout plus
+:data:`START_ALLOWANCE` for the whole session start (Spark's own standalone client retries for
+about a minute, a fixed interval we cannot set).
 
 Settings come from four places, later ones winning:
 
@@ -32,6 +34,9 @@ from pipeline.errors import EngineError
 
 DEFAULT_MASTER = "local[*]"
 DEFAULT_CONNECT_TIMEOUT = 30.0
+# Seconds a session's start may take beyond the connect timeout: creating the Spark context
+# takes 5-40 s on a busy two-core machine before the master is even asked (measured here).
+START_ALLOWANCE = 60.0
 
 # Settings the outputs depend on: ANSI mode so that CAST fails on bad input and TRY_CAST
 # returns NULL, as on DuckDB (with ANSI off Spark's CAST silently returns NULL); UTC so that
@@ -237,15 +242,21 @@ def safe_master(master: str) -> str:
     return re.sub(r"//[^/@]*@", "//", master)
 
 
+def _stop_gateway_process() -> None:
+    """Kill the JVM pyspark started for this session (the spark-submit process, by its id)."""
+    from pyspark import SparkContext
+
+    process = getattr(SparkContext._gateway, "proc", None)
+    if process is not None and process.poll() is None:
+        process.kill()
+        process.wait(timeout=10)
+
+
 def _forget_gateway() -> None:
     """Stop the JVM pyspark started for us and forget it, so nothing of it outlives the error."""
     from pyspark import SparkContext
 
-    gateway = SparkContext._gateway
-    process = getattr(gateway, "proc", None)
-    if process is not None:
-        process.kill()  # the spark-submit process pyspark launched for this session, by its id
-        process.wait(timeout=10)
+    _stop_gateway_process()
     SparkContext._gateway = None
     SparkContext._jvm = None
     SparkContext._active_spark_context = None
@@ -254,8 +265,9 @@ def _forget_gateway() -> None:
 def start_session(request: SessionRequest, passed: Mapping[str, str]) -> Any:
     """A new SparkSession on ``request.master`` with ``passed``, within the connect timeout.
 
-    Java is started first (local work, not counted); then the master gets
-    ``connect_timeout`` seconds to accept the application. On failure the JVM is stopped.
+    Java is started first (local work, not counted); then the context's start and the
+    master's acceptance get ``connect_timeout`` + :data:`START_ALLOWANCE` seconds. On failure
+    the JVM is stopped.
 
     Raises:
         EngineError: pyspark is missing, or the master is unreachable or refused the session.
@@ -273,31 +285,34 @@ def start_session(request: SessionRequest, passed: Mapping[str, str]) -> Any:
         SparkContext._ensure_initialized(conf=conf)
     except Exception as err:
         raise EngineError(f"Java for Spark did not start: {str(err).strip()[:300]}") from err
-    outcome: dict[str, Any] = {}
+    # The wait runs in this thread (so the session is this thread's active one, as after a
+    # plain getOrCreate); a timer stops the JVM if the master keeps it waiting too long, which
+    # ends the wait with an error.
+    fired = threading.Event()
 
-    def connect() -> None:
-        try:
-            outcome["session"] = SparkSession.builder.config(conf=conf).getOrCreate()
-        except Exception as err:  # reported by the waiting thread
-            outcome["error"] = err
+    def give_up() -> None:
+        fired.set()
+        _stop_gateway_process()
 
-    worker = threading.Thread(target=connect, name="ascertain-spark-connect", daemon=True)
-    worker.start()
-    worker.join(request.connect_timeout)
-    timed_out = worker.is_alive()  # read before the JVM is stopped, which ends the wait too
-    if timed_out or "error" in outcome:
+    waited = request.connect_timeout + START_ALLOWANCE
+    timer = threading.Timer(waited, give_up)
+    timer.daemon = True
+    timer.start()
+    try:
+        return SparkSession.builder.config(conf=conf).getOrCreate()
+    except Exception as err:
+        timer.cancel()
         _forget_gateway()
-        if not timed_out:
-            cause = _one_line(outcome["error"])
-            raise EngineError(f"the Spark master {safe_master(request.master)} refused: {cause}")
-        raise EngineError(
-            f"the Spark master {safe_master(request.master)} did not accept the application "
-            f"within {request.connect_timeout:g} s (is it a Spark master, with a worker that "
-            "has free cores and memory?); set spark: connect_timeout_seconds to wait longer"
-        )
-    # Made active in this thread too (the builder did so in the waiting thread only), so that
-    # getActiveSession() finds it here as it would after a plain getOrCreate().
-    return SparkSession.builder.getOrCreate()
+        master = safe_master(request.master)
+        if fired.is_set():
+            raise EngineError(
+                f"the Spark master {master} did not accept the application within {waited:g} s "
+                "(is it a Spark master of the same version as pyspark?); set spark: "
+                "connect_timeout_seconds to wait longer"
+            ) from err
+        raise EngineError(f"the Spark master {master} refused: {_one_line(err)}") from err
+    finally:
+        timer.cancel()
 
 
 def _one_line(err: BaseException) -> str:
