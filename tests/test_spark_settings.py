@@ -12,6 +12,7 @@ from pipeline.cli import app
 from pipeline.config import load_study
 from pipeline.config._spark import SparkSettings
 from pipeline.engine._spark_session import (
+    MACHINE_PATH,
     REDACTED,
     REQUIRED,
     TOOL_DEFAULTS,
@@ -128,13 +129,21 @@ def test_secrets_are_never_written_down() -> None:
             "spark.authenticate.secret": "ghi",
             "spark.ssl.keyPassword": "jkl",
             "spark.executor.memory": "1g",
+            "spark.eventLog.dir": "/srv/spark-events",
+            "spark.driver.extraJavaOptions": "-Dlog4j.configurationFile=file:/etc/l.xml",
+            "spark.executor.extraJavaOptions": "-Dx=/opt/y",
+            "spark.sql.shuffle.partitions": "200",
         }
     )
     assert shown == {
         "spark.authenticate.secret": REDACTED,
+        "spark.driver.extraJavaOptions": MACHINE_PATH,
+        "spark.eventLog.dir": MACHINE_PATH,
+        "spark.executor.extraJavaOptions": MACHINE_PATH,
         "spark.executor.memory": "1g",
         "spark.hadoop.fs.s3a.access.key": REDACTED,
         "spark.hadoop.fs.s3a.secret.key": REDACTED,
+        "spark.sql.shuffle.partitions": "200",
         "spark.ssl.keyPassword": REDACTED,
     }
     assert safe_master("k8s://https://user:pw@api.example:6443") == "k8s://https://api.example:6443"

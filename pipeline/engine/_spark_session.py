@@ -63,6 +63,10 @@ TOOL_DEFAULTS: dict[str, str] = {
 # credentials and the Hadoop S3 key names.
 _SECRET = re.compile(r"(?i)secret|password|token|access[._-]?key|credential|\.key$")
 REDACTED = "(redacted)"
+# A value naming a folder of this machine (a log folder, a JVM option with a file) is not
+# written down either: run.json and the manifest name no machine path.
+_MACHINE_PATH = re.compile(r"^(/|~|[A-Za-z]:[\\/])|file:|=/")
+MACHINE_PATH = "(a path on the build machine)"
 
 # What spark-submit's own flags set (common practice: the flags documented by spark-submit).
 _SUBMIT_FLAGS = {
@@ -233,8 +237,16 @@ class SessionRequest:
 
 
 def redact(settings: Mapping[str, str]) -> dict[str, str]:
-    """Settings safe to write down: secret-looking keys' values replaced, keys sorted."""
-    return {k: REDACTED if _SECRET.search(k) else v for k, v in sorted(settings.items())}
+    """Settings safe to write down, keys sorted: secrets and machine paths replaced."""
+    shown = {}
+    for key, value in sorted(settings.items()):
+        if _SECRET.search(key):
+            shown[key] = REDACTED
+        elif _MACHINE_PATH.search(value):
+            shown[key] = MACHINE_PATH
+        else:
+            shown[key] = value
+    return shown
 
 
 def safe_master(master: str) -> str:
