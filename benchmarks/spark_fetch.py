@@ -47,6 +47,7 @@ def _fetch(folder: Path, how: str) -> dict[str, object]:
         jvm.java.lang.System.gc()
         for pool in pools:
             pool.resetPeakUsage()
+        baseline = sum(int(p.getUsage().getUsed()) for p in pools)
         rss_before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
         started = time.perf_counter()
         table = frame.toArrow().cast(arrow_schema(frame)) if how == "whole" else to_arrow(frame)
@@ -59,6 +60,7 @@ def _fetch(folder: Path, how: str) -> dict[str, object]:
         result[name] = {
             "rows": table.num_rows,
             "seconds": round(seconds, 2),
+            "jvm_heap_before_mb": round(baseline / 2**20),
             "jvm_heap_peak_mb": round(peak / 2**20),
             "python_peak_growth_mb": round((rss_after - rss_before) / 1024),
             "arrow_mb": round(table.nbytes / 2**20, 1),

@@ -3,9 +3,11 @@
 ``DataFrame.toArrow()`` collects every partition of an output at once; on a cluster the
 driver's memory would then grow with the cohort (and ``spark.driver.maxResultSize``, 1g by
 default, would fail a large one). Here the JVM hands over one partition at a time
-(``toLocalIterator`` without prefetch) and Python turns every :data:`BATCH_ROWS` rows into an
-Arrow record batch, so neither side holds more than a partition of Spark rows at once; only
-the compact Arrow table the writers need is kept, as with DuckDB.
+(``toLocalIterator`` without prefetch, one job per partition, so
+``spark.driver.maxResultSize`` applies to a partition, not to the whole output) and Python
+turns every :data:`BATCH_ROWS` rows into an Arrow record batch; only the compact Arrow table
+the writers need is kept, as with DuckDB. It costs time: Python builds a Row object per row
+(at 200,000 patients about 4 s more per output than ``toArrow``, benchmarks/spark_fetch.py).
 """
 
 from __future__ import annotations
@@ -17,7 +19,9 @@ import pyarrow as pa
 if TYPE_CHECKING:  # pragma: no cover
     from pyspark.sql import DataFrame
 
-BATCH_ROWS = 65_536
+# Python holds a batch as Row objects (about 1.5 kB a cohort row) until it becomes Arrow: at
+# 65,536 rows that was 99 MB at 200,000 patients (benchmarks/spark_fetch.py).
+BATCH_ROWS = 16_384
 
 
 def arrow_schema(frame: DataFrame) -> pa.Schema:
