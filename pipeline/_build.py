@@ -14,9 +14,15 @@ import pyarrow as pa
 
 from pipeline.compile import POSITION_BASE, Plan, compile_study
 from pipeline.config import LoadedStudy, load_study
+from pipeline.config._spark import SparkSettings
 from pipeline.engine import DuckDBEngine, RunResult, SparkEngine
 from pipeline.engine._duckdb import StageCallback
-from pipeline.engine._spark import DEFAULT_MASTER
+from pipeline.engine._spark_session import (
+    DEFAULT_MASTER,
+    is_local,
+    master_addresses,
+    parse_settings,
+)
 from pipeline.errors import AscertainError, EngineError
 from pipeline.extract import ExtractTable, database_source, discover_extract, open_extract
 from pipeline.outputs import (
@@ -55,26 +61,56 @@ class BuildOptions:
     memory_limit: str | None = None
     engine: str = "duckdb"
     spark_master: str | None = None
+    spark_conf: tuple[str, ...] = ()
+    """``key=value`` Spark settings (``--spark-conf``), over the study's ``spark: settings``."""
 
 
 ENGINES = ("duckdb", "spark")
 
 
 def make_engine(
-    options: BuildOptions, threads: int | None, memory_limit: str | None
+    options: BuildOptions,
+    threads: int | None,
+    memory_limit: str | None,
+    spark: SparkSettings | None = None,
+    notes: list[str] | None = None,
 ) -> DuckDBEngine | SparkEngine:
     """The engine the options name: DuckDB (default) or Spark (``local[*]`` or a master URL).
 
+    ``--threads`` sets a local Spark's thread count; with a master URL it (and, on Spark,
+    ``--memory-limit`` always) is not applied, and a sentence saying so is added to ``notes``.
+
     Raises:
-        EngineError: An unknown engine, or a Spark master given to DuckDB.
+        EngineError: An unknown engine, Spark options given to DuckDB, a malformed master URL
+            or ``--spark-conf`` setting.
     """
     if options.engine not in ENGINES:
         raise EngineError(f"--engine must be one of {', '.join(ENGINES)}, not '{options.engine}'")
     if options.engine == "spark":
+        spark = spark or SparkSettings()
+        notes = notes if notes is not None else []
         master = options.spark_master or (f"local[{threads}]" if threads else DEFAULT_MASTER)
-        return SparkEngine(master)
-    if options.spark_master:
-        raise EngineError("--spark-master needs --engine spark")
+        master_addresses(master)  # a malformed URL is refused before any work
+        if options.spark_master and options.threads and not is_local(master):
+            notes.append(
+                f"--threads {options.threads} is not applied with --spark-master {master}: "
+                "set --spark-conf spark.cores.max=N (or spark.executor.cores) instead"
+            )
+        if options.memory_limit:
+            notes.append(
+                f"--memory-limit {options.memory_limit} is a DuckDB setting, not applied on "
+                "Spark: set --spark-conf spark.executor.memory=SIZE (and spark.driver.memory)"
+            )
+        settings = {**spark.text_settings(), **parse_settings(options.spark_conf, "--spark-conf")}
+        return SparkEngine(
+            master,
+            conf=settings,
+            connect_timeout=spark.connect_timeout_seconds,
+            stage_storage=spark.stage_storage,
+            checkpoint_folder=spark.checkpoint_folder,
+        )
+    if options.spark_master or options.spark_conf:
+        raise EngineError("--spark-master and --spark-conf need --engine spark")
     return DuckDBEngine(threads=threads, memory_limit=memory_limit)
 
 
@@ -119,7 +155,10 @@ def build_study(
     # Before anything is read, so a refused build costs nothing and touches nothing.
     check_folder(out, BUILD, inputs=local_inputs(extract, plan))
     threads = options.threads or study.engine.threads
-    engine = make_engine(options, threads, options.memory_limit or study.engine.memory_limit)
+    notes: list[str] = []
+    engine = make_engine(
+        options, threads, options.memory_limit or study.engine.memory_limit, study.spark, notes
+    )
     if isinstance(engine, SparkEngine) and database_source(extract) is not None:
         raise EngineError(
             "a Spark build reads files; a database extract can be built with --engine duckdb"
@@ -144,7 +183,12 @@ def build_study(
     )
     manifest = make_manifest(
         tool_version=tool_version(),
-        engine={"name": run.engine, "version": run.engine_version, "threads": threads},
+        engine={
+            "name": run.engine,
+            "version": run.engine_version,
+            "threads": threads,
+            **run.engine_info,
+        },
         study_file=loaded.file,
         definition_files=loaded.catalog.files.values(),
         library=study.library,
@@ -164,6 +208,7 @@ def build_study(
         "extract": manifest["locations"]["extract_from_study"],
         "started_utc": started.isoformat(timespec="seconds"),
         "finished_utc": finished.isoformat(timespec="seconds"),
+        "engine": {"name": run.engine, "version": run.engine_version, **run.engine_info},
         "quality": quality,
         "counts": {
             "cohort_patients": run.outputs["cohort"].num_rows,
@@ -184,7 +229,7 @@ def build_study(
         manifest=manifest,
         run_info=run_info,
     )
-    return BuildResult(out, written.files, plan, run, written.notes)
+    return BuildResult(out, written.files, plan, run, [*notes, *written.notes])
 
 
 def local_inputs(extract: Path | str, plan: Plan) -> list[tuple[str, Path]]:
@@ -305,7 +350,12 @@ def locate_inputs(
 
 
 def verify_output(
-    folder: Path, *, study: Path | None = None, extract: Path | str | None = None
+    folder: Path,
+    *,
+    study: Path | None = None,
+    extract: Path | str | None = None,
+    spark_master: str | None = None,
+    spark_conf: tuple[str, ...] = (),
 ) -> VerifyResult:
     """Rebuild an output folder from its manifest in a temporary folder and compare.
 
@@ -317,6 +367,9 @@ def verify_output(
         study: The study file, when it is not where the manifest's hint says.
         extract: The extract folder, mapping file or connection URI, when not where the
             manifest's hint says.
+        spark_master: Rebuild on this Spark master (default: the recorded engine; Spark
+            builds on ``local[*]``, since the recorded master may not be reachable from here).
+        spark_conf: ``key=value`` Spark settings for the rebuild (implies Spark).
 
     Raises:
         AscertainError: The folder has no manifest, an input cannot be found, or the rebuild
@@ -330,7 +383,11 @@ def verify_output(
             extract=extract,
             out=rebuilt,
             threads=manifest["engine"].get("threads"),
-            engine=manifest["engine"].get("name", "duckdb"),
+            engine="spark"
+            if spark_master or spark_conf
+            else manifest["engine"].get("name", "duckdb"),
+            spark_master=spark_master,
+            spark_conf=spark_conf,
         )
         build_study(study, options)
         again = read_manifest(rebuilt)

@@ -32,7 +32,7 @@ from rich.markup import escape
 from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
 from rich.table import Table
 
-from pipeline._build import BuildOptions, build_study, plan_study, verify_output
+from pipeline._build import BuildOptions, BuildResult, build_study, plan_study, verify_output
 from pipeline._diff import diff_runs, render_diff
 from pipeline._explain import explain_patient, render_trace
 from pipeline._init import init_study
@@ -62,13 +62,24 @@ StudyArg = Annotated[
 ]
 DebugOpt = Annotated[bool, typer.Option("--debug", help="Show the full traceback on errors.")]
 EXTRACT_HELP = (
-    "Use this extract instead of the study's: a folder, a site mapping file, or a database URI "
-    "postgresql://USER@HOST:PORT/DATABASE?schema=S (password from PGPASSWORD or ~/.pgpass)."
+    "Use this extract instead of the study's: a folder, a site mapping file, a file:// URI, or a "
+    "database URI postgresql://USER@HOST:PORT/DATABASE?schema=S (password from PGPASSWORD or "
+    "~/.pgpass)."
 )
 
 
 def _extract(text: str | None) -> Path | str | None:
     return None if text is None else as_extract(text)
+
+
+SparkMasterOpt = Annotated[
+    str | None,
+    typer.Option(help="Spark master URL: local[*] (default), spark://HOST:PORT, yarn, k8s://URL."),
+]
+SparkConfOpt = Annotated[
+    list[str] | None,
+    typer.Option(help="A Spark setting KEY=VALUE (repeatable); beats the study's spark: section."),
+]
 
 
 def _fail_cleanly(action: Callable[[], T], *, debug: bool) -> T:
@@ -119,9 +130,8 @@ def build(
     engine: Annotated[
         str, typer.Option(help="duckdb (default) or spark (pip install 'ascertain\\[spark]').")
     ] = "duckdb",
-    spark_master: Annotated[
-        str | None, typer.Option(help="Spark master URL (default local[*]); with --engine spark.")
-    ] = None,
+    spark_master: SparkMasterOpt = None,
+    spark_conf: SparkConfOpt = None,
     debug: DebugOpt = False,
 ) -> None:
     """Build the study's cohort and its logs into the study's output folder (or --out).
@@ -131,16 +141,21 @@ def build(
 
     Example: ascertain build definitions/studies/orvane_multimorbidity.yaml --out out/demo
     """
-    options = BuildOptions(
-        extract=_extract(extract),
-        out=out,
-        threads=threads,
-        memory_limit=memory_limit,
-        engine=engine,
-        spark_master=spark_master,
-    )
+
+    def run() -> BuildResult:
+        options = BuildOptions(
+            extract=_extract(extract),
+            out=out,
+            threads=threads,
+            memory_limit=memory_limit,
+            engine=engine,
+            spark_master=spark_master,
+            spark_conf=tuple(spark_conf or ()),
+        )
+        return build_study(study, options, on_stage=on_stage)
+
     with _progress(quiet=quiet) as on_stage:
-        result = _fail_cleanly(lambda: build_study(study, options, on_stage=on_stage), debug=debug)
+        result = _fail_cleanly(run, debug=debug)
     console = Console(highlight=False)
     if profile:
         for report in result.run.stages:
@@ -295,18 +310,28 @@ def verify(
         str | None,
         typer.Option(help="The extract (default: where the manifest says, from the study)."),
     ] = None,
+    spark_master: SparkMasterOpt = None,
+    spark_conf: SparkConfOpt = None,
     debug: DebugOpt = False,
 ) -> None:
     """Rebuild an output folder from its manifest and report whether it is identical.
 
     Exits 0 when identical, 1 when an input or output differs, 2 when it cannot verify.
+    Spark builds are rebuilt on local[*] unless --spark-master names another master.
     Writes nothing into OUTPUT_DIR (the rebuild runs in a temporary folder); prints each
     changed input and differing output.
 
     Example: ascertain verify output/orvane_multimorbidity
     """
     result = _fail_cleanly(
-        lambda: verify_output(output, study=study, extract=_extract(extract)), debug=debug
+        lambda: verify_output(
+            output,
+            study=study,
+            extract=_extract(extract),
+            spark_master=spark_master,
+            spark_conf=tuple(spark_conf or ()),
+        ),
+        debug=debug,
     )
     console = Console(highlight=False, soft_wrap=True)
     for line in result.changed_inputs:

@@ -8,6 +8,7 @@ in CI (``CI=true``) that fails instead (``helpers.require``).
 from __future__ import annotations
 
 import importlib.util
+import json
 import math
 import os
 import shutil
@@ -231,6 +232,21 @@ def test_cli_build_with_spark_writes_the_same_files(session: Any, tmp_path: Path
     duck = pq.read_table(outs["duckdb"] / "cohort.parquet")
     spark = pq.read_table(outs["spark"] / "cohort.parquet")
     assert spark.equals(duck)
+    recorded = json.loads((outs["spark"] / "manifest.json").read_text())["engine"]
+    assert recorded["name"] == "spark"
+    assert recorded["master"].startswith("local[")
+    assert recorded["settings"]["spark.sql.ansi.enabled"] == "true"
+    # verify rebuilds a Spark build on the master and with the settings it is given.
+    again = CliRunner().invoke(
+        app,
+        [
+            *("verify", str(outs["spark"]), "--study", str(DEMO_STUDY)),
+            *("--extract", str(HANDMADE), "--spark-master", "local[1]"),
+            *("--spark-conf", "spark.sql.shuffle.partitions=2"),
+        ],
+    )
+    assert again.exit_code == 0, again.output
+    assert "identical" in again.output
 
 
 def test_spark_master_needs_the_spark_engine(tmp_path: Path) -> None:
@@ -261,3 +277,32 @@ def test_a_ragged_csv_row_fails_the_read_naming_the_file(
     tables = discover_extract(extract, plan.sources)
     with pytest.raises(ExtractError, match=r"encounters\.csv: row 'HM-001,2016-01-01'"):
         SparkEngine(session=session).run(plan, tables)
+
+
+@pytest.mark.parametrize("storage", ["checkpoint", "cache"])
+def test_reliable_stage_storage_gives_the_same_rows(
+    session: Any, tmp_path: Path, storage: str
+) -> None:
+    patients = SourceTable("patients", ("patient_id", "sex"))
+    query = exp.select("patient_id", "sex").from_("src_patients")
+    plan = Plan(
+        study="storage",
+        sources=(patients,),
+        stages=(Stage("kept", query, ("src_patients",), "bound rows"),),
+        outputs=(("kept", "kept", ("patient_id",)),),
+    )
+    tables = discover_extract(HANDMADE, (patients,))
+    folder = tmp_path / "shared-checkpoints"
+    folder.mkdir()
+    (folder / "someone-elses.txt").write_text("not ours")
+    engine = SparkEngine(
+        session=session,
+        stage_storage=storage,
+        checkpoint_folder=folder.as_uri() if storage == "checkpoint" else None,
+    )
+    result = engine.run(plan, tables)
+    duck = DuckDBEngine().run(plan, tables).outputs["kept"]
+    _assert_same(duck, result.outputs["kept"], "kept")
+    assert result.engine_info["stage_storage"] == storage
+    # The run's own checkpoint subfolder is removed; nothing else in the folder is touched.
+    assert sorted(p.name for p in folder.iterdir()) == ["someone-elses.txt"]

@@ -17,6 +17,7 @@ from pydantic import Field, field_validator, model_validator
 from pipeline.config._base import ONE_OR_MORE, Model, Name, NonNegativeInt, PositiveInt
 from pipeline.config._condition import Evidence
 from pipeline.config._settings import EngineSettings, Output, QualitySettings
+from pipeline.config._spark import SparkSettings
 from pipeline.measures import MEASURES
 
 _DATABASE_URI = re.compile(r"^postgres(?:ql)?://", re.IGNORECASE)
@@ -396,6 +397,7 @@ class Study(Model):
     followup: Followup
     output: Output
     engine: EngineSettings = EngineSettings()
+    spark: SparkSettings = SparkSettings()
     quality: QualitySettings = QualitySettings()
 
     @field_validator("extract", mode="before")

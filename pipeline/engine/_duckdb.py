@@ -13,6 +13,7 @@ import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import duckdb
 import pyarrow as pa
@@ -55,6 +56,8 @@ class RunResult:
     stages: list[StageReport] = field(default_factory=list)
     engine: str = "duckdb"
     engine_version: str = duckdb.__version__
+    engine_info: dict[str, Any] = field(default_factory=dict)
+    """Where and how it ran, when that can differ between runs (Spark: master, settings)."""
 
 
 StageCallback = Callable[[Stage, int, int], None]

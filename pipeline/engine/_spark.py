@@ -14,7 +14,6 @@ from collections.abc import Iterator
 from contextlib import contextmanager
 from typing import TYPE_CHECKING, Any
 
-import pyarrow as pa
 from sqlglot import exp
 
 from pipeline.compile import (
@@ -27,6 +26,16 @@ from pipeline.compile import (
 )
 from pipeline.engine._duckdb import _INTEGER_ID, RunResult, StageCallback, StageReport
 from pipeline.engine._mapped import source_column
+from pipeline.engine._spark_fetch import to_arrow
+from pipeline.engine._spark_session import (
+    DEFAULT_CONNECT_TIMEOUT,
+    DEFAULT_MASTER,
+    SessionRequest,
+    safe_master,
+    settings_in_effect,
+    start_session,
+    user_settings,
+)
 from pipeline.engine._spark_sql import spark_plan, spark_query, try_cast
 from pipeline.errors import EngineError, ExtractError
 from pipeline.extract import ExtractTable
@@ -36,23 +45,11 @@ if TYPE_CHECKING:  # pragma: no cover
 
 log = logging.getLogger(__name__)
 
-DEFAULT_MASTER = "local[*]"
-
-# Small, explicit defaults: a laptop-sized shuffle, no web UI, UTC, and ANSI mode ON so that
-# CAST fails on bad input and TRY_CAST returns NULL, as on DuckDB (with ANSI off Spark's CAST
-# silently returns NULL and the two would be indistinguishable).
-SPARK_CONF: dict[str, str] = {
-    "spark.sql.shuffle.partitions": "4",
-    "spark.ui.enabled": "false",
-    "spark.ui.showConsoleProgress": "false",
-    "spark.sql.session.timeZone": "UTC",
-    "spark.sql.ansi.enabled": "true",
-    "spark.sql.execution.arrow.pyspark.enabled": "true",
-    "spark.sql.caseSensitive": "false",
-    # Stage plans are long; Spark renders them for its listeners, which can exhaust the heap.
-    "spark.sql.maxPlanStringLength": "65536",
-    "spark.driver.memory": "2g",
-}
+# Where each ``table`` stage is kept: ``local_checkpoint`` (fastest; on the executors' local
+# disks, so a lost executor fails the build), ``checkpoint`` (written to a folder every machine
+# shares, survives a lost executor) or ``cache`` (memory and disk, recomputed from its lineage
+# when an executor is lost; later stages are planned over the whole lineage, which is slower).
+STAGE_STORAGE = ("local_checkpoint", "checkpoint", "cache")
 
 # -- the engine --------------------------------------------------------------------------------
 
@@ -103,14 +100,19 @@ def _read_failure(err: BaseException) -> ExtractError | None:
 class SparkEngine:
     """Execute plans on Spark, ``local[*]`` by default or any cluster by its master URL.
 
-    A session is created for each run (with :data:`SPARK_CONF`) and stopped after it, unless
-    one is passed in: then each run works in a fresh ``newSession()`` of it (own temporary
+    A session is created for each run (see :mod:`pipeline.engine._spark_session` for its
+    settings and the bounded wait for the master) and stopped after it, unless one is passed
+    in or already running: then each run works in a fresh ``newSession()`` of it (own temporary
     views, own SQL settings) and the session is left running (used by tests).
 
     Args:
         master: Spark master URL, e.g. ``local[*]`` or ``spark://host:7077``.
-        conf: Extra Spark settings, applied over :data:`SPARK_CONF`.
+        conf: The user's Spark settings (the study's, the command line's over them).
         session: An existing SparkSession to reuse.
+        connect_timeout: Seconds the master gets to accept the application.
+        stage_storage: How table stages are kept, one of :data:`STAGE_STORAGE`.
+        checkpoint_folder: For ``checkpoint``: a folder (URI) every machine of the cluster
+            reaches; the run writes a subfolder there and removes it afterwards.
     """
 
     DIALECT = "spark"
@@ -137,54 +139,102 @@ class SparkEngine:
         *,
         conf: dict[str, str] | None = None,
         session: SparkSession | None = None,
+        connect_timeout: float = DEFAULT_CONNECT_TIMEOUT,
+        stage_storage: str = "local_checkpoint",
+        checkpoint_folder: str | None = None,
     ) -> None:
-        self.master = master
-        self.conf = {**SPARK_CONF, **(conf or {})}
+        if stage_storage not in STAGE_STORAGE:
+            raise EngineError(
+                f"Spark stage storage must be one of {', '.join(STAGE_STORAGE)}, "
+                f"not '{stage_storage}'"
+            )
+        if (stage_storage == "checkpoint") != (checkpoint_folder is not None):
+            raise EngineError("Spark stage storage 'checkpoint' goes with a checkpoint folder")
+        self.request = SessionRequest(master, dict(conf or {}), connect_timeout)
         self.session = session
+        self.stage_storage = stage_storage
+        self.checkpoint_folder = checkpoint_folder
+
+    @property
+    def master(self) -> str:
+        """The master URL this engine connects to when it starts its own session."""
+        return self.request.master
 
     @staticmethod
     def create_session(master: str = DEFAULT_MASTER, conf: dict[str, str] | None = None) -> Any:
-        """A new SparkSession with :data:`SPARK_CONF` (and ``conf`` over it).
+        """A new SparkSession with the tool's settings and ``conf`` (see ``_spark_session``).
 
         Raises:
-            EngineError: pyspark is not installed (``pip install ascertain[spark]``).
+            EngineError: pyspark is missing, or the master cannot be reached.
         """
-        try:
-            from pyspark.sql import SparkSession
-        except ImportError as err:
-            raise EngineError(
-                "the Spark engine needs pyspark: pip install 'ascertain[spark]'"
-            ) from err
-        builder = SparkSession.builder.master(master).appName("ascertain")
-        for key, value in {**SPARK_CONF, **(conf or {})}.items():
-            builder = builder.config(key, value)
-        session = builder.getOrCreate()
+        request = SessionRequest(master, dict(conf or {}))
+        session = start_session(request, request.passed(user_settings()))
         # Spark logs every failed query as a page of JSON; the engine reports it as one line.
         session.sparkContext.setLogLevel("FATAL")
         return session
 
     @contextmanager
-    def _session(self) -> Iterator[SparkSession]:
+    def _session(self) -> Iterator[tuple[SparkSession, dict[str, Any]]]:
+        """A session for one run, with what it runs on: master and settings in effect."""
         from pyspark.sql import SparkSession
 
+        user = user_settings()
+        watched = self.request.watched(user)
         # A session passed in, or one already running in this process (a notebook, a test
         # module), is shared: the run gets its own newSession() and leaves the shared one up.
         shared = self.session or SparkSession.getActiveSession()
         if shared is None:
-            spark = self.create_session(self.master, self.conf)
+            spark = start_session(self.request, self.request.passed(user))
+            spark.sparkContext.setLogLevel("FATAL")
             try:
-                yield spark
+                with self._storage(spark):
+                    yield spark, self._describe(spark, watched)
             finally:
                 spark.stop()
             return
         spark = shared.newSession()
-        for key, value in self.conf.items():
+        for key, value in self.request.passed(user).items():
             if key.startswith("spark.sql."):
                 spark.conf.set(key, value)
         try:
-            yield spark
+            with self._storage(spark):
+                yield spark, self._describe(spark, watched)
         finally:
             spark.catalog.clearCache()
+
+    def _describe(self, spark: SparkSession, watched: list[str]) -> dict[str, Any]:
+        info: dict[str, Any] = {
+            "master": safe_master(spark.sparkContext.master),
+            "settings": settings_in_effect(spark, watched),
+            "stage_storage": self.stage_storage,
+        }
+        return info
+
+    @contextmanager
+    def _storage(self, spark: SparkSession) -> Iterator[None]:
+        """Set the checkpoint folder for reliable checkpoints; remove this run's part after."""
+        if self.stage_storage != "checkpoint" or self.checkpoint_folder is None:
+            yield
+            return
+        context = spark.sparkContext
+        try:
+            context.setCheckpointDir(self.checkpoint_folder)
+        except Exception as err:
+            if _spark_error(err):
+                raise EngineError(
+                    f"the checkpoint folder {self.checkpoint_folder} cannot be used: "
+                    f"{_first_line(err)}"
+                ) from err
+            raise
+        # Spark made a fresh subfolder (a random name) for this context: ours to remove.
+        made = context.getCheckpointDir()
+        try:
+            yield
+        finally:
+            if made:
+                jvm = context._jvm
+                path = jvm.org.apache.hadoop.fs.Path(made)
+                path.getFileSystem(context._jsc.hadoopConfiguration()).delete(path, True)  # noqa: FBT003 (Java: recursive)
 
     def run(
         self,
@@ -207,11 +257,12 @@ class SparkEngine:
                 raise EngineError(
                     f"the Spark engine cannot read the FHIR export {table.name}; use DuckDB"
                 )
-        with self._session() as spark:
+        with self._session() as (spark, info):
             import pyspark
 
             try:
                 result = self._run(spark, plan, tables, on_stage, patients)
+                result.engine_info = info
             except (ExtractError, EngineError):
                 raise
             except Exception as err:
@@ -343,9 +394,18 @@ class SparkEngine:
         if stage.kind == "view":
             frame.createOrReplaceTempView(stage.name)
             return None
-        # A local checkpoint computes the table once and cuts its lineage, so later stages read
-        # it as a scan rather than re-planning (and re-rendering) everything upstream.
-        frame = frame.localCheckpoint(eager=True)
+        # A checkpoint computes the table once and cuts its lineage, so later stages read it as
+        # a scan rather than re-planning (and re-rendering) everything upstream. A local one
+        # lives on the executors' disks; a reliable one in the shared folder; a cached one is
+        # recomputed from its lineage where an executor was lost.
+        if self.stage_storage == "local_checkpoint":
+            frame = frame.localCheckpoint(eager=True)
+        elif self.stage_storage == "checkpoint":
+            frame = frame.checkpoint(eager=True)
+        else:
+            from pyspark import StorageLevel
+
+            frame = frame.persist(StorageLevel.MEMORY_AND_DISK)
         count = frame.count()
         frame.createOrReplaceTempView(stage.name)
         return int(count)
@@ -388,25 +448,5 @@ class SparkEngine:
                 select = select.order_by(
                     *(exp.Ordered(this=exp.column(c), nulls_first=False) for c in order)
                 )
-            outputs[output] = _to_arrow(spark.sql(select.sql(self.DIALECT)))
+            outputs[output] = to_arrow(spark.sql(select.sql(self.DIALECT)))
         return RunResult(outputs, reports)
-
-
-def _to_arrow(frame: DataFrame) -> pa.Table:
-    """A DataFrame as an Arrow table in DuckDB's types (plain strings, date32, int32/int64)."""
-    table = frame.toArrow() if hasattr(frame, "toArrow") else frame._collect_as_arrow()
-    if isinstance(table, list):  # pyspark 3.5: a list of record batches
-        table = pa.Table.from_batches(table, schema=_arrow_schema(frame))
-    fields = []
-    for field in table.schema:
-        kind = field.type
-        if pa.types.is_large_string(kind) or pa.types.is_string_view(kind):
-            kind = pa.string()
-        fields.append(pa.field(field.name, kind))
-    return table.cast(pa.schema(fields))
-
-
-def _arrow_schema(frame: DataFrame) -> pa.Schema:
-    from pyspark.sql.pandas.types import to_arrow_schema
-
-    return to_arrow_schema(frame.schema)

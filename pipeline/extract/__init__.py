@@ -2,7 +2,7 @@
 
 from pipeline.extract._dbread import DatabaseFacts, OpenedExtract, database_source, open_extract
 from pipeline.extract._dbsource import as_extract, is_database_uri
-from pipeline.extract._discover import ExtractTable
+from pipeline.extract._discover import ExtractTable, extract_location
 from pipeline.extract._mapped import discover_extract
 
 __all__ = [
@@ -12,6 +12,7 @@ __all__ = [
     "as_extract",
     "database_source",
     "discover_extract",
+    "extract_location",
     "is_database_uri",
     "open_extract",
 ]

@@ -49,8 +49,16 @@ def is_database_uri(text: str) -> bool:
 
 
 def as_extract(text: str) -> Path | str:
-    """An extract argument as given: a connection URI stays text, anything else is a path."""
-    return text if is_database_uri(text) else Path(text)
+    """An extract argument as given: a database URI stays text, anything else is a local path.
+
+    Raises:
+        ExtractError: A URI of a file system this process cannot read (see
+            :func:`pipeline.extract._discover.extract_location`).
+    """
+    # Imported here: discovery imports this module's neighbours, not the other way round.
+    from pipeline.extract._discover import extract_location
+
+    return text if is_database_uri(text) else extract_location(text)
 
 
 @dataclass(frozen=True)

@@ -11,6 +11,8 @@ import re
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Literal
+from urllib.parse import urlparse
+from urllib.request import url2pathname
 
 import pyarrow.parquet as pq
 
@@ -48,6 +50,37 @@ class ExtractTable:
     def provides(self) -> tuple[str, ...]:
         """The canonical columns this table provides (through the mapping, if it has one)."""
         return tuple(self.mapping.columns) if self.mapping is not None else self.columns
+
+
+_SCHEME = re.compile(r"^([A-Za-z][A-Za-z0-9+.-]*)://")
+
+
+def extract_location(text: str) -> Path:
+    """An extract given as a path or a URI, as the local path it names.
+
+    ``file://`` URIs are local paths. Other schemes (``hdfs://``, ``s3a://``) are refused with
+    a sentence saying so: the extract is discovered, checked and hashed by this process before
+    Spark starts, so it must be a path this machine sees (on a cluster: storage every machine
+    mounts at the same path).
+
+    Raises:
+        ExtractError: A URI whose scheme is not ``file``, or a ``file://`` URI of another host.
+    """
+    found = _SCHEME.match(text)
+    if not found:
+        return Path(text)
+    parsed = urlparse(text)
+    if parsed.scheme.lower() != "file":
+        raise ExtractError(
+            f"{text}: extracts on {parsed.scheme}:// cannot be read yet; ascertain reads a local "
+            "path or file:// URI (on a cluster, storage every machine mounts at the same path)"
+        )
+    if parsed.netloc not in ("", "localhost"):
+        raise ExtractError(
+            f"{text}: a file:// URI names a path on this machine, not on host "
+            f"'{parsed.netloc}' (write file:///path)"
+        )
+    return Path(url2pathname(parsed.path))
 
 
 def _candidates(folder: Path, name: str) -> list[tuple[tuple[Path, ...], FileFormat]]:
