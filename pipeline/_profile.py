@@ -15,6 +15,8 @@ from html import escape
 from pathlib import Path
 from typing import Any
 
+from rich.table import Table
+
 from pipeline.compile._sources import DIAGNOSES, ENCOUNTERS, MEASUREMENTS, PATIENTS, PRESCRIPTIONS
 from pipeline.engine import DuckDBEngine
 from pipeline.engine._profile import profile_tables
@@ -207,3 +209,46 @@ def write_profile(profile: dict[str, Any], out: Path) -> list[Path]:
         (staged / "profile.html").write_text(render_profile_html(profile), encoding="utf-8")
         install(staged, out, PROFILE, names)
     return [out / name for name in names]
+
+
+def _cell(value: object) -> str:
+    if value is None:
+        return "-"
+    return f"{value:,}" if isinstance(value, int) else str(value)
+
+
+_TABLE_COLUMNS = {
+    "rows": "rows",
+    "first_date": "first date",
+    "last_date": "last date",
+    "unreadable_dates": "unreadable dates",
+    "missing_dates": "missing dates",
+    "orphan_rows": "orphans",
+    "rows_without_patient": "no patient",
+}
+
+
+def profile_table(profile: dict[str, Any], title: str) -> Table:
+    """The terminal summary: one line per extract table, its rows, dates and unusable rows."""
+    table = Table(title=title)
+    table.add_column("table")
+    for column in _TABLE_COLUMNS.values():
+        table.add_column(column, justify="right")
+    for name, facts in profile["tables"].items():
+        table.add_row(name, *(_cell(facts.get(key)) for key in _TABLE_COLUMNS))
+    return table
+
+
+def profile_notes(profile: dict[str, Any]) -> list[str]:
+    """Lines under the terminal summary: rows the reader set aside, duplicate patient ids."""
+    lines = [
+        f"{name}: {found['rows']:,} set aside: {reason} (first at {found['first']})"
+        for name, facts in profile["tables"].items()
+        for reason, found in facts.get("set_aside_by_reader", {}).items()
+    ]
+    for duplicate in profile["tables"]["patients"].get("duplicate_patient_ids", []):
+        where = ", ".join(duplicate["where"])
+        lines.append(
+            f"warning: patient id {duplicate['patient_id']} on {duplicate['rows']} rows: {where}"
+        )
+    return lines

@@ -30,13 +30,18 @@ import typer
 from rich.console import Console
 from rich.markup import escape
 from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
-from rich.table import Table
 
 from pipeline._build import BuildOptions, BuildResult, build_study, plan_study, verify_output
 from pipeline._diff import diff_runs, render_diff
 from pipeline._explain import explain_patient, render_trace
 from pipeline._init import init_study
-from pipeline._profile import check_profile_folder, profile_extract, write_profile
+from pipeline._profile import (
+    check_profile_folder,
+    profile_extract,
+    profile_notes,
+    profile_table,
+    write_profile,
+)
 from pipeline.compile import Stage
 from pipeline.config import load_study
 from pipeline.config._check import check_paths, explain_condition
@@ -459,12 +464,6 @@ def report(
         typer.echo(str(path))
 
 
-def _cell(value: object) -> str:
-    if value is None:
-        return "-"
-    return f"{value:,}" if isinstance(value, int) else str(value)
-
-
 @app.command()
 def profile(
     extract: Annotated[
@@ -489,32 +488,9 @@ def profile(
     _fail_cleanly(lambda: check_profile_folder(source, out), debug=debug)
     result = _fail_cleanly(lambda: profile_extract(source, threshold=threshold), debug=debug)
     console = Console(highlight=False)
-    table = Table(title=f"extract {extract}")
-    columns = {
-        "rows": "rows",
-        "first_date": "first date",
-        "last_date": "last date",
-        "unreadable_dates": "unreadable dates",
-        "missing_dates": "missing dates",
-        "orphan_rows": "orphans",
-        "rows_without_patient": "no patient",
-    }
-    table.add_column("table")
-    for column in columns.values():
-        table.add_column(column, justify="right")
-    for name, facts in result["tables"].items():
-        table.add_row(name, *(_cell(facts.get(key)) for key in columns))
-    console.print(table)
-    for name, facts in result["tables"].items():
-        for reason, found in facts.get("set_aside_by_reader", {}).items():
-            console.print(
-                f"{name}: {found['rows']:,} set aside: {reason} (first at {found['first']})"
-            )
-    for duplicate in result["tables"]["patients"].get("duplicate_patient_ids", []):
-        where = ", ".join(duplicate["where"])
-        console.print(
-            f"warning: patient id {duplicate['patient_id']} on {duplicate['rows']} rows: {where}"
-        )
+    console.print(profile_table(result, f"extract {extract}"))
+    for line in profile_notes(result):
+        console.print(line, markup=False)
     console.print(result["release"])
     for path in _fail_cleanly(lambda: write_profile(result, out), debug=debug):
         console.print(str(path))
