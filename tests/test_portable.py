@@ -205,7 +205,7 @@ def test_a_mapping_file_is_an_input_and_mapped_files_are_relative_to_it(tmp_path
         # The common ancestor is the root, a top folder or above the home: no path.
         ("/users/x/s.yaml", "/srv/out", "/users/x", None),
         ("/srv/a/s.yaml", "/srv/b/out", "/users/x", None),
-        ("/data/home/x/s.yaml", "/data/home/y/out", "/data/home/x", None),
+        ("/data/users/x/s.yaml", "/data/users/y/out", "/data/users/x", None),
     ],
 )
 def test_portable_path_names_no_private_folder(

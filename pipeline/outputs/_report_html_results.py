@@ -131,7 +131,7 @@ def incidence_section(frame: pl.DataFrame) -> str:
     return _table(head, rows) + (
         '<p class="note">At risk: patients without the condition at index. Cumulative incidence: '
         "Aalen–Johansen estimate at the horizon with death as the competing event; 95% CI by "
-        "the delta method (Greenwood-type variance, Collett 2015) on the log(−log) scale. "
+        "the delta method (the variance given by Collett 2015) on the log(−log) scale. "
         "Rate: events per 1,000 person-years (days / 365.25) with an exact Poisson (Garwood) "
         "interval. Crude proportion: events over patients at risk, Wilson interval; it counts "
         "patients whose follow-up ended early as non-cases, so it understates the risk. "

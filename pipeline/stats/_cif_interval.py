@@ -1,6 +1,6 @@
 """Confidence intervals for the Aalen-Johansen cumulative incidence, death competing.
 
-The variance is the delta-method (Greenwood-type) estimator given by Collett, *Modelling
+The variance is the delta-method estimator given by Collett, *Modelling
 Survival Data in Medical Research* (3rd ed., 2015, section 12.2), the one lifelines'
 ``AalenJohansenFitter`` implements. For the cause-``k`` cumulative incidence ``F`` at time
 ``t``, summing over the distinct event times ``t_i <= t`` with ``n_i`` at risk, ``d_i`` events
