@@ -328,7 +328,11 @@ def start_session(request: SessionRequest, passed: Mapping[str, str]) -> Any:
 
 
 def _one_line(err: BaseException) -> str:
-    lines = [line.strip() for line in str(err).splitlines() if line.strip()]
+    try:
+        text = str(err)
+    except Exception:  # a Java error's text is fetched from a JVM that may have stopped
+        return type(err).__name__
+    lines = [line.strip() for line in text.splitlines() if line.strip()]
     for line in lines:
         if "Exception:" in line or "Error:" in line:
             return line.split("Exception:", 1)[-1].split("Error:", 1)[-1].strip()[:300]

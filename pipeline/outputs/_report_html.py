@@ -70,6 +70,7 @@ border-radius:8px;padding:16px 24px;margin:22px 0}
 .cautions ul{margin:0;padding-left:20px}
 nav ol{columns:3;margin:0;padding-left:20px;color:var(--muted)}
 nav a{color:var(--accent)}
+div.wide{overflow-x:auto}
 table{border-collapse:collapse;width:100%;font-size:13.5px;margin:8px 0 4px;
 font-variant-numeric:tabular-nums}
 th,td{padding:5px 10px;border-bottom:1px solid var(--line);text-align:left;vertical-align:top}

@@ -27,7 +27,9 @@ def table(head: Sequence[str], rows: Iterable[str], numeric: Sequence[int] | Non
     cells = "".join(
         f"<th{' class=num' if i in numeric else ''}>{escape(h)}</th>" for i, h in enumerate(head)
     )
-    return f"<table><thead><tr>{cells}</tr></thead><tbody>{''.join(rows)}</tbody></table>"
+    # A wide table (Table 1 with many groups) scrolls inside its own box, never past the page.
+    body = f"<table><thead><tr>{cells}</tr></thead><tbody>{''.join(rows)}</tbody></table>"
+    return f'<div class="wide">{body}</div>'
 
 
 def thousands(text: str) -> str:
