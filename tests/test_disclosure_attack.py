@@ -19,7 +19,8 @@ import csv
 import json
 import math
 from collections.abc import Callable
-from itertools import product
+from html.parser import HTMLParser
+from itertools import product, takewhile
 from pathlib import Path
 
 import numpy as np
@@ -287,3 +288,79 @@ def test_a_cohort_below_the_threshold_is_shown_as_the_manifest_states_it(tmp_pat
     assert 0 < size < 50
     last = _rows(out / "summary" / "flow.csv")[-1]
     assert last["remaining"] == str(size)
+
+
+class _QualityTable(HTMLParser):
+    """The report's quality table as (source table, status, reason, rows as printed)."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.rows: list[list[str]] = []
+        self._row: list[str] | None = None
+        self._inside = False
+
+    def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
+        if tag == "tr":
+            self._row = []
+        elif tag in ("td", "th") and self._row is not None:
+            self._row.append("")
+            self._inside = True
+
+    def handle_endtag(self, tag: str) -> None:
+        if tag in ("td", "th"):
+            self._inside = False
+        elif tag == "tr" and self._row is not None:
+            self.rows.append(self._row)
+            self._row = None
+
+    def handle_data(self, data: str) -> None:
+        if self._inside and self._row is not None:
+            self._row[-1] += data
+
+
+SOURCE_TABLES = ("patients", "encounters", "diagnoses", "prescriptions", "measurements")
+
+
+def _quality_leaks(lines: list[list[str]], read: dict[str, int], threshold: int) -> list[str]:
+    """Hidden quality counts an attacker narrows below the threshold (exact, by hand).
+
+    Each table's lines add up to its rows read, which the manifest states; that is the only
+    identity among them, so with k hidden lines summing to R each ranges over [0, R] when
+    k >= 2 and is R itself when k = 1.
+    """
+    hidden: dict[str, int] = {}
+    remaining = dict(read)
+    for table, _status, _reason, shown in lines:
+        if shown.replace(",", "").isdigit():
+            remaining[table] -= int(shown.replace(",", ""))
+        else:
+            hidden[table] = hidden.get(table, 0) + 1
+    return [
+        f"{table}: {k} hidden, summing to {remaining[table]}"
+        for table, k in hidden.items()
+        if k == 1 or remaining[table] < threshold
+    ]
+
+
+def test_the_quality_attack_finds_a_lone_hidden_line() -> None:
+    lines = [["diagnoses", "used", "used", "120"], ["diagnoses", "set aside", "x", "<5"]]
+    assert _quality_leaks(lines, {"diagnoses": 123}, 5) == ["diagnoses: 1 hidden, summing to 3"]
+
+
+@pytest.mark.parametrize("which", ["demo", "tiny"])
+def test_no_hidden_quality_count_can_be_narrowed_down(
+    which: str, request: pytest.FixtureRequest
+) -> None:
+    # The report's quality table is released in report.html only (not in summary/).
+    folder = request.getfixturevalue(which)
+    parser = _QualityTable()
+    parser.feed((folder / "report.html").read_text(encoding="utf-8"))
+    start = next(i for i, r in enumerate(parser.rows) if r[:1] == ["Source table"])
+    lines = list(
+        takewhile(lambda r: len(r) == 4 and r[0] in SOURCE_TABLES, parser.rows[start + 1 :])
+    )
+    read = json.loads((folder / "manifest.json").read_text(encoding="utf-8"))["rows"]
+    tables = {line[0] for line in lines}
+    assert tables
+    assert tables <= set(read), (tables, read)
+    assert _quality_leaks(lines, {t: read[t] for t in tables}, 5) == []
