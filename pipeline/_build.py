@@ -35,6 +35,7 @@ from pipeline.outputs import (
     portable_path,
     read_manifest,
     sha256_file,
+    study_keys,
     write_outputs,
 )
 from pipeline.outputs._ownership import BUILD, check_folder
@@ -197,6 +198,7 @@ def build_study(
         out=out,
         plan_hash=plan.content_hash(),
         database=opened.database.as_manifest() if opened.database else None,
+        keys=study_keys(study),
         rows={
             "cohort": run.outputs["cohort"].num_rows,
             **{row["source_table"]: row["n_rows"] for row in run.outputs["rows_read"].to_pylist()},

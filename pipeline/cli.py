@@ -387,7 +387,7 @@ def diff(
     run_b: Annotated[Path, typer.Argument(help="The second output folder.")],
     debug: DebugOpt = False,
 ) -> None:
-    """Report patients gained and lost per attrition step and outcome between two builds.
+    """Report changed inputs, patients gained and lost, and changed values between two builds.
 
     Writes nothing; prints the differences (patient-level: up to five ids each).
 

@@ -299,3 +299,28 @@ def test_table_one_names_covariates_by_their_label(
     assert label in html
     assert "Hba1c" in html or "HbA1c" in html
     assert "<th class=num>SMD</th>" in html
+
+
+def _first_cells(html: str) -> list[str]:
+    """The first cell of every table row, as text, without the column-name tag Table 1 adds."""
+    html = re.sub(r'<span class="col">[^<]*</span>', "", html)
+    cells = [re.search(r"<t[dh][^>]*>(.*?)</t[dh]>", row, re.S) for row in html.split("<tr")[1:]]
+    return [re.sub(r"<[^>]+>", " ", c.group(1)).strip() for c in cells if c]
+
+
+def test_every_table_row_names_things_in_words(demo: Path) -> None:
+    # Issue 20: rows say what they count, by the condition's title or the covariate's meaning
+    # (the same labels Table 1 uses), never by a bare outcome name or a generic phrase.
+    html = (demo / "report.html").read_text(encoding="utf-8")
+    firsts = _first_cells(html)
+    assert len(firsts) > 100  # Table 1 three times, incidence, combinations, dependence, ...
+    outcome = re.compile(r"\b(type2_diabetes|ckd|heart_failure)\b")
+    assert [c for c in firsts if outcome.search(c)] == []
+    assert "matching records" not in html
+    # The demo's unlabelled count covariate, in the words of `check --explain` (demo spec §5).
+    visits = (
+        "Number of records of an encounter of any type from 365 days before index to 1 day "
+        "before index (0 when none) (rows)"
+    )
+    assert visits in firsts
+    assert "Type 2 diabetes" in firsts  # the incidence table's row

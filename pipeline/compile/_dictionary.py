@@ -11,6 +11,7 @@ from pipeline.compile._context import CompileContext
 from pipeline.compile._index import index_description
 from pipeline.compile._plan import ColumnDoc
 from pipeline.config import Covariate, Window
+from pipeline.config._explain_study import counted_records
 from pipeline.measures import DERIVED_FROM, MEASURES
 
 
@@ -90,7 +91,7 @@ def _covariate_docs(ctx: CompileContext, name: str, covariate: Covariate) -> lis
                 name,
                 "INTEGER",
                 "rows",
-                "number of matching records (0 when none)",
+                f"number of {counted_records(covariate)} (0 when none)",
                 f"records of the listed evidence {_window(covariate.span)}",
                 "extract",
             )

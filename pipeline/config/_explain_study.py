@@ -85,6 +85,17 @@ def _step_text(step: Criterion, outcomes: tuple[str, ...]) -> str:
     return f"at risk of at least one outcome (not prevalent for all of {', '.join(outcomes)})"
 
 
+def counted_records(covariate: Covariate) -> str:
+    """What a count covariate counts, with its window, in the words of ``check --explain``.
+
+    The data dictionary states a count column's meaning with the same phrase, so a reader of
+    Table 1 sees what is counted and when (not only "number of matching records"), and the
+    two descriptions of one covariate cannot drift apart.
+    """
+    assert covariate.count is not None  # only called for the count kind
+    return f"records of {_codes_text(covariate.count)} {_window(covariate.span)}"
+
+
 def _covariate_text(name: str, covariate: Covariate) -> str:
     window = _window(covariate.span)
     if covariate.condition is not None:
@@ -99,7 +110,7 @@ def _covariate_text(name: str, covariate: Covariate) -> str:
         if measure is not None:
             return f"{name} is {word} value of {measure} {window}"
     if covariate.count is not None:
-        return f"{name} is the number of records of {_codes_text(covariate.count)} {window}"
+        return f"{name} is the number of {counted_records(covariate)}"
     if covariate.days_since_first_evidence is not None:
         return (
             f"{name} is the days from the first evidence of "

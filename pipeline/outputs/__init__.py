@@ -11,6 +11,7 @@ from pipeline.outputs._manifest import (
     portable_path,
     read_manifest,
     sha256_file,
+    study_keys,
 )
 from pipeline.outputs._usability import check_usable
 from pipeline.outputs._write import (
@@ -34,6 +35,7 @@ __all__ = [
     "portable_path",
     "read_manifest",
     "sha256_file",
+    "study_keys",
     "write_outputs",
     "write_parquet",
 ]

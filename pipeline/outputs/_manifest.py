@@ -25,6 +25,7 @@ from pathlib import Path
 from typing import Any
 
 from pipeline.config._library import library_folder
+from pipeline.config._study import Study
 from pipeline.errors import AscertainError
 
 MANIFEST = "manifest.json"
@@ -135,6 +136,42 @@ def _locations(
     }
 
 
+_NOT_STUDY_KEYS: dict[str, Any] = {
+    "definitions": True,
+    "extract": True,
+    "engine": True,
+    "spark": True,
+    "output": {"folder"},
+}
+"""Study keys left out of the manifest: paths of this machine (the definitions, the extract, the
+output folder; the manifest names its files otherwise) and how an engine runs (threads, memory,
+Spark settings, which may name machine paths or secrets), which does not change a cohort."""
+
+
+def _flatten(value: Any, prefix: str, into: dict[str, Any]) -> None:
+    if isinstance(value, dict):
+        for key, inner in value.items():
+            _flatten(inner, f"{prefix}.{key}" if prefix else str(key), into)
+    elif isinstance(value, list) and any(isinstance(v, dict) for v in value):
+        for number, inner in enumerate(value):  # eligibility steps: by their position
+            _flatten(inner, f"{prefix}[{number}]", into)
+    else:
+        into[prefix] = value
+
+
+def study_keys(study: Study) -> dict[str, Any]:
+    """The study's settings as flat key paths (``outcomes.horizon_days``) and JSON values.
+
+    ``ascertain diff`` compares two builds' designs from their manifests alone, since the
+    study file may have changed or moved since. Defaults are filled in, so a key spelled out
+    and one left at its default read the same; unset options are left out.
+    """
+    flat: dict[str, Any] = {}
+    dumped = study.model_dump(mode="json", exclude_none=True, exclude=_NOT_STUDY_KEYS)
+    _flatten(dumped, "", flat)
+    return dict(sorted(flat.items()))
+
+
 def make_manifest(
     *,
     tool_version: str,
@@ -148,6 +185,7 @@ def make_manifest(
     plan_hash: str,
     rows: dict[str, int],
     database: dict[str, Any] | None = None,
+    keys: dict[str, Any] | None = None,
 ) -> dict[str, Any]:
     """The manifest of one build (without the output hashes, which the writer adds).
 
@@ -164,6 +202,7 @@ def make_manifest(
         rows: Cohort size and rows read per source table.
         database: For a database source, its server version and each table's rows and
             checksum (``DatabaseFacts.as_manifest``); the section is absent for files.
+        keys: The study's settings (:func:`study_keys`), recorded as ``study_keys``.
     """
     manifest = {
         "manifest_version": MANIFEST_VERSION,
@@ -179,6 +218,8 @@ def make_manifest(
         "plan_hash": plan_hash,
         "rows": rows,
     }
+    if keys is not None:
+        manifest["study_keys"] = keys
     if database is not None:
         manifest["database"] = database
     return manifest
