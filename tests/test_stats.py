@@ -417,6 +417,9 @@ def test_table_one_overall_and_by_group() -> None:
             "smoker": [True, False, None, True, True],
             "at_risk_ckd": [True, True, True, True, False],
             "incident_ckd": [True, False, False, True, None],
+            # time_X and event_X are analysis columns after index, never baseline rows.
+            "time_ckd": [1, 2, 3, 4, None],
+            "event_ckd": [1, 0, 0, 1, None],
             "followup_days": [1, 2, 3, 4, 5],
         }
     ).with_columns(pl.col("index_date").cast(pl.Date))

@@ -15,10 +15,14 @@ from pipeline.config._explain_study import counted_records
 from pipeline.measures import DERIVED_FROM, MEASURES
 
 
+def _days_before(days: int) -> str:
+    return f"{days} day{'' if days == 1 else 's'} before index"
+
+
 def _window(window: Window) -> str:
     start, end = window
-    first = "all history" if start is None else f"{-start} days before index"
-    last = "the index date" if end == 0 else f"{-end} days before index"
+    first = "all history" if start is None else _days_before(-start)
+    last = "the index date" if end == 0 else _days_before(-end)
     return f"from {first} to {last}, both included"
 
 

@@ -11,7 +11,15 @@ from collections.abc import Iterable
 
 import polars as pl
 
-OUTCOME_PREFIXES = ("prevalent_", "at_risk_", "incident_", "onset_", "days_to_")
+OUTCOME_PREFIXES = (
+    "prevalent_",
+    "at_risk_",
+    "incident_",
+    "onset_",
+    "days_to_",
+    "time_",
+    "event_",
+)
 """Prefixes of the per-outcome columns, in the order the analysis table writes them."""
 
 FOLLOWUP_COLUMNS = ("followup_end", "followup_days", "end_reason")

@@ -68,7 +68,8 @@ def baseline_variables(cohort: pl.DataFrame, *, exclude: Sequence[str] = ()) -> 
 
     Kept: numeric, string, categorical and boolean columns, including ``prevalent_X``
     (conditions present at index). Dropped: ``patient_id``, dates, anything measured after the
-    index date (``at_risk_X``, ``incident_X``, ``onset_X``, ``days_to_X``, follow-up columns)
+    index date (``at_risk_X``, ``incident_X``, ``onset_X``, ``days_to_X``, ``time_X``,
+    ``event_X``, follow-up columns)
     and ``exclude``.
 
     Args:
