@@ -2,11 +2,19 @@
 
 :func:`write_fhir_export` turns the five canonical tables (a folder of Parquet or CSV files, or
 a site mapping file) into ``Patient.ndjson``, ``Encounter.ndjson``, ``Condition.ndjson``,
-``MedicationRequest.ndjson`` and ``Observation.ndjson``, shaped so that
+``MedicationRequest.ndjson`` and ``Observation.ndjson`` (with a seed also
+``MedicationStatement.ndjson`` and ``Medication.ndjson``), shaped so that
 :mod:`pipeline.engine._fhir` reads back the same canonical rows, and so the same cohort. It
 exists to test that reader at scale and to give the demo study a FHIR copy of its extract.
 
-How each canonical row is written (one resource per row, exact duplicates included):
+The row writers live in :mod:`pipeline.synth._fhir_resources`. Without a seed each row is
+written in the one plain form below; with a seed (``generate_extract(file_format="fhir")`` passes
+its own) :mod:`pipeline.synth._fhir_server` varies the forms as a server would and adds extra
+resources the reader sets aside, while the rows read back, and so the cohort, stay the same
+(converted units give back the same canonical values, not the same text).
+
+How each canonical row is written without a seed (one resource per row, exact duplicates
+included):
 
 - ``patients`` -> Patient: ``id`` = patient_id; ``birthDate`` = birth_date, or the year alone
   (``1950``) when only birth_year is readable; ``gender`` from the sex code as the pipeline
