@@ -59,16 +59,22 @@ def test_fixture_resources_are_valid_fhir() -> None:
         getattr(module, kind).model_validate(resource)
 
 
-def _source_rows(extract: Path) -> dict[str, list[tuple[str | None, ...]]]:
-    """Every canonical table as the engine binds it (``src_<table>``), values as text, sorted."""
+def _source_rows(
+    extract: Path, *, usable_only: bool = False
+) -> dict[str, list[tuple[str | None, ...]]]:
+    """Every canonical table as the engine binds it (``src_<table>``), values as text, sorted.
+
+    ``usable_only`` leaves out the rows the reader itself set aside (``source_problem``).
+    """
     plan = plan_study(DEMO_STUDY)
     tables = discover_extract(extract, plan.sources)
+    kept = exp.column("source_problem").is_(exp.null()) if usable_only else exp.true()
     stages = tuple(
         Stage(
             f"read_{s.name}",
-            exp.select(*(exp.cast(exp.column(c), "VARCHAR").as_(c) for c in s.columns)).from_(
-                s.relation
-            ),
+            exp.select(*(exp.cast(exp.column(c), "VARCHAR").as_(c) for c in s.columns))
+            .from_(s.relation)
+            .where(kept.copy()),
             (s.relation,),
             f"the {s.name} table as bound",
         )

@@ -2,11 +2,19 @@
 
 :func:`write_fhir_export` turns the five canonical tables (a folder of Parquet or CSV files, or
 a site mapping file) into ``Patient.ndjson``, ``Encounter.ndjson``, ``Condition.ndjson``,
-``MedicationRequest.ndjson`` and ``Observation.ndjson``, shaped so that
+``MedicationRequest.ndjson`` and ``Observation.ndjson`` (with a seed also
+``MedicationStatement.ndjson`` and ``Medication.ndjson``), shaped so that
 :mod:`pipeline.engine._fhir` reads back the same canonical rows, and so the same cohort. It
 exists to test that reader at scale and to give the demo study a FHIR copy of its extract.
 
-How each canonical row is written (one resource per row, exact duplicates included):
+The row writers live in :mod:`pipeline.synth._fhir_resources`. Without a seed each row is
+written in the one plain form below; with a seed (``generate_extract(file_format="fhir")`` passes
+its own) :mod:`pipeline.synth._fhir_server` varies the forms as a server would and adds extra
+resources the reader sets aside, while the rows read back, and so the cohort, stay the same
+(converted units give back the same canonical values, not the same text).
+
+How each canonical row is written without a seed (one resource per row, exact duplicates
+included):
 
 - ``patients`` -> Patient: ``id`` = patient_id; ``birthDate`` = birth_date, or the year alone
   (``1950``) when only birth_year is readable; ``gender`` from the sex code as the pipeline
@@ -68,69 +76,34 @@ What does not round-trip (the reader cannot express it; none of it changes the d
 from __future__ import annotations
 
 import json
-import math
 import os
-import re
 import tempfile
-from collections.abc import Callable, Iterator
+from collections.abc import Iterable, Iterator
+from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import TextIO
 
 import duckdb
 from sqlglot import exp
 
-from pipeline.compile._measurements import READING_PATTERN
 from pipeline.compile._sources import DIAGNOSES, ENCOUNTERS, MEASUREMENTS, PATIENTS, PRESCRIPTIONS
 from pipeline.engine._duckdb import _reader
-from pipeline.engine._fhir import (
-    ATC_SYSTEM,
-    LOINC_MEASURES,
-    LOINC_SYSTEM,
-    UCUM_SYSTEM,
-    fhir_source,
-)
+from pipeline.engine._fhir import fhir_source
 from pipeline.engine._mapped import source_column
 from pipeline.extract import ExtractTable, discover_extract
+from pipeline.synth._fhir_resources import WRITERS, Resource, Row
+from pipeline.synth._fhir_server import ServerLook
 
-Resource = dict[str, Any]
-Row = dict[str, Any]
-
-ICD10_SYSTEM = "http://hl7.org/fhir/sid/icd-10"
-ICD9_SYSTEM = "http://hl7.org/fhir/sid/icd-9-cm"
-CATEGORY_SYSTEM = "http://terminology.hl7.org/CodeSystem/condition-category"
-# Local code systems for what FHIR has no standard code for (URNs: nothing to resolve).
-ENCOUNTER_TYPE_SYSTEM = "urn:ascertain:encounter-type"
-DIAGNOSIS_SOURCE_SYSTEM = "urn:ascertain:diagnosis-source"
-MEASURE_SYSTEM = "urn:ascertain:measure"
-_ABSENT = {
-    "extension": [
-        {
-            "url": "http://hl7.org/fhir/StructureDefinition/data-absent-reason",
-            "valueCode": "unknown",
-        }
-    ]
-}
-
-# The LOINC code each measure is written with: the first the reader maps to it (reversed, so
-# the first wins), except eGFR, written as CKD-EPI, the equation labs report.
-MEASURE_LOINC: dict[str, str] = {
-    **{measure: code for code, measure in reversed(LOINC_MEASURES.items())},
-    "egfr": "62238-1",
-}
-_CREATININE_MOLAR = ("14682-9", ("umol/l", "µmol/l", "mmol/l"))
-
-# Printed units that are also their UCUM code (so system + code can be given with no change).
-UCUM_AS_PRINTED = frozenset(
-    {"%", "cm", "m", "kg", "g", "kg/m2", "mg/dL", "mg/L", "g/dL", "g/L", "mmol/L", "umol/L",
-     "mmol/mol", "mL/min"}
-)  # fmt: skip
-
-# Text the reader gives back unchanged from a quantity with a comparator: ``<`` + JSON number.
-_COMPARATOR_TEXT = re.compile(r"^(<=|>=|<|>)(.+)$")
-_PLAIN_NUMBER = re.compile(r"^-?(?:0|[1-9][0-9]*)(?:\.[0-9]+)?$")
-# How the pipeline reads a value_text: qualifier, number, unit (group 4).
-_READING = re.compile(READING_PATTERN)
-
+# The files of an export, in the order they are returned (bulk data names files by type).
+FILE_ORDER = (
+    "Patient",
+    "Encounter",
+    "Condition",
+    "MedicationRequest",
+    "MedicationStatement",
+    "Medication",
+    "Observation",
+)
 _BATCH_ROWS = 50_000
 _ISO_DAY = "'[0-9]{4}-[0-9]{2}-[0-9]{2}'"
 
@@ -202,166 +175,6 @@ _SELECTS: dict[str, tuple[tuple[str, ...], str]] = {
 }
 
 
-def _subject(patient_id: str | None) -> Resource:
-    return {"reference": f"Patient/{patient_id}"} if patient_id is not None else dict(_ABSENT)
-
-
-def _patient(row: Row, _: int) -> Resource:
-    resource: Resource = {"resourceType": "Patient"}
-    if row["patient_id"] is not None:
-        resource["id"] = row["patient_id"]
-    sex = row["sex"]
-    if sex is not None:
-        resource["gender"] = {"F": "female", "M": "male", "U": "unknown"}.get(sex, "other")
-    year = row["birth_year"]
-    if row["birth_readable"] or (row["birth_date"] is not None and year is None):
-        resource["birthDate"] = row["birth_date"]
-    elif year is not None:
-        resource["birthDate"] = f"{year:04d}" if 0 <= year <= 9999 else str(year)
-    if row["death_date"] is not None:
-        resource["deceasedDateTime"] = row["death_date"]
-    if row["practice_id"] is not None:
-        resource["managingOrganization"] = {"reference": f"Organization/{row['practice_id']}"}
-    return resource
-
-
-def _encounter(row: Row, number: int) -> Resource:
-    kind = row["encounter_type"]
-    resource: Resource = {
-        "resourceType": "Encounter",
-        "id": f"enc-{number}",
-        "status": "unknown",
-        "class": {"system": ENCOUNTER_TYPE_SYSTEM, "code": kind} if kind else dict(_ABSENT),
-        "subject": _subject(row["patient_id"]),
-    }
-    if row["encounter_date"] is not None:
-        resource["period"] = {"start": row["encounter_date"]}
-    return resource
-
-
-def _condition(row: Row, number: int) -> Resource:
-    resource: Resource = {"resourceType": "Condition", "id": f"cond-{number}"}
-    key = row["source_key"]
-    if key is not None:
-        codings = [{"system": DIAGNOSIS_SOURCE_SYSTEM, "code": row["source"]}]
-        if key in ("problem_list", "visit", "billing"):
-            hl7 = "problem-list-item" if key == "problem_list" else "encounter-diagnosis"
-            codings.insert(0, {"system": CATEGORY_SYSTEM, "code": hl7})
-        resource["category"] = [{"coding": codings}]
-    system = {"ICD10": ICD10_SYSTEM, "ICD9": ICD9_SYSTEM}.get(
-        row["system_label"], row["code_system"]
-    )
-    coding = {"system": system, "code": row["code"]}
-    coding = {k: v for k, v in coding.items() if v is not None}
-    if coding:
-        resource["code"] = {"coding": [coding]}
-    resource["subject"] = _subject(row["patient_id"])
-    if row["event_date"] is not None:
-        resource["onsetDateTime"] = row["event_date"]
-    return resource
-
-
-def _medication_request(row: Row, number: int) -> Resource:
-    medication: Resource = {}
-    if row["atc"] is not None:
-        medication["coding"] = [{"system": ATC_SYSTEM, "code": row["atc"]}]
-    if row["drug_text"] is not None:
-        medication["text"] = row["drug_text"]
-    resource: Resource = {
-        "resourceType": "MedicationRequest",
-        "id": f"rx-{number}",
-        "status": "unknown",
-        "intent": "order",
-        "medicationCodeableConcept": medication or dict(_ABSENT),
-        "subject": _subject(row["patient_id"]),
-    }
-    if row["start_date"] is not None:
-        resource["authoredOn"] = row["start_date"]
-    if row["stop_date"] is not None:
-        resource["dosageInstruction"] = [
-            {"timing": {"repeat": {"boundsPeriod": {"end": row["stop_date"]}}}}
-        ]
-    return resource
-
-
-def _observation_code(measure: str | None, key: str | None, unit: str | None) -> Resource:
-    if key is None or measure is None:
-        return dict(_ABSENT)
-    if key == "creatinine" and unit is not None and unit.lower() in _CREATININE_MOLAR[1]:
-        loinc: str | None = _CREATININE_MOLAR[0]
-    elif key.startswith("loinc:") and key[6:]:
-        loinc = measure.strip()[6:]
-    else:
-        loinc = MEASURE_LOINC.get(key)
-    if loinc is None:
-        return {"coding": [{"system": MEASURE_SYSTEM, "code": measure}], "text": measure}
-    return {"coding": [{"system": LOINC_SYSTEM, "code": loinc}], "text": measure}
-
-
-def _quantity(value: float | str | None, unit: str | None) -> Resource:
-    quantity: Resource = {} if value is None else {"value": value}
-    if unit is not None:
-        quantity["unit"] = unit
-        if unit in UCUM_AS_PRINTED:
-            quantity.update(system=UCUM_SYSTEM, code=unit)
-    return quantity
-
-
-def _literal(text: str) -> int | float | None:
-    """The JSON number written exactly as ``text`` (which the reader gives back), if any."""
-    if not _PLAIN_NUMBER.match(text) or len(text) > 15:
-        return None
-    number = float(text) if "." in text else int(text)
-    return number if json.dumps(number) == text else None
-
-
-def _observation_value(row: Row) -> Resource:
-    """The value[x] (and note) of one measurement row."""
-    unit, text = row["unit"], row["value_text"]
-    if row["value"] is not None:
-        number = row["value_number"]
-        value: float | str = row["value"]
-        if number is not None and math.isfinite(number):
-            literal = _literal(row["value"])
-            value = number if literal is None else literal
-        fields: Resource = {"valueQuantity": _quantity(value, unit)}
-        if text is not None:
-            fields["note"] = [{"text": text}]
-        return fields
-    if text is None:
-        return {"valueQuantity": _quantity(None, unit)} if unit is not None else {}
-    comparator = _COMPARATOR_TEXT.match(text)
-    bound = _literal(comparator[2]) if comparator else None
-    if comparator and bound is not None:
-        return {"valueQuantity": {"comparator": comparator[1], **_quantity(bound, unit)}}
-    reading = _READING.match(text.strip())
-    if unit is not None and reading and not reading[4].strip():
-        return {"valueString": f"{text.strip()} {unit}"}
-    return {"valueString": text}
-
-
-def _observation(row: Row, number: int) -> Resource:
-    return {
-        "resourceType": "Observation",
-        "id": f"obs-{number}",
-        "status": "final",
-        "code": _observation_code(row["measure"], row["measure_key"], row["unit"]),
-        "subject": _subject(row["patient_id"]),
-        **({"effectiveDateTime": row["obs_date"]} if row["obs_date"] is not None else {}),
-        **_observation_value(row),
-    }
-
-
-# Canonical table -> (resource type, the resource written for each row).
-WRITERS: dict[str, tuple[str, Callable[[Row, int], Resource]]] = {
-    "patients": ("Patient", _patient),
-    "encounters": ("Encounter", _encounter),
-    "diagnoses": ("Condition", _condition),
-    "prescriptions": ("MedicationRequest", _medication_request),
-    "measurements": ("Observation", _observation),
-}
-
-
 def _source_sql(table: ExtractTable, columns: tuple[str, ...]) -> str:
     """SQL reading one canonical table with exactly ``columns`` (NULL for absent ones)."""
     rows: exp.Expression
@@ -399,18 +212,87 @@ def _connect(scratch: Path) -> duckdb.DuckDBPyConnection:
     return con
 
 
-def write_fhir_export(canonical_dir: Path, out_dir: Path) -> list[Path]:
+@dataclass(frozen=True)
+class FhirExport:
+    """What :func:`write_fhir_export` wrote.
+
+    Attributes:
+        files: The NDJSON files, in :data:`FILE_ORDER`.
+        set_aside: Extra resources written for the reader to set aside, per (canonical table,
+            the reader's reason); empty without a seed.
+        forms: Rows written in each varied form (see :mod:`pipeline.synth._fhir_server`).
+    """
+
+    files: tuple[Path, ...]
+    set_aside: dict[tuple[str, str], int]
+    forms: dict[str, int]
+
+
+def _plain(table: str, rows: Iterable[Row]) -> Iterator[tuple[str, Resource]]:
+    resource_type, write = WRITERS[table]
+    for number, row in enumerate(rows, start=1):
+        yield resource_type, write(row, number)
+
+
+def _line(resource: Resource) -> str:
+    return json.dumps(resource, ensure_ascii=False, separators=(",", ":"), allow_nan=False) + "\n"
+
+
+class _Parts:
+    """One part file per resource type, opened on first use, moved in place when complete."""
+
+    def __init__(self, out_dir: Path) -> None:
+        self.out_dir = out_dir
+        self.handles: dict[str, TextIO] = {}
+
+    def write(self, resource_type: str, resource: Resource) -> None:
+        if resource_type not in self.handles:
+            part = self.out_dir / f".{resource_type}.ndjson.part"
+            self.handles[resource_type] = part.open("w", encoding="utf-8", newline="\n")
+        self.handles[resource_type].write(_line(resource))
+
+    def install(self) -> list[Path]:
+        """Move every part file in (an empty Patient.ndjson too) and drop stale files."""
+        self.close()
+        if "Patient" not in self.handles:
+            (self.out_dir / ".Patient.ndjson.part").write_text("", encoding="utf-8")
+        written = []
+        for resource_type in FILE_ORDER:
+            path = self.out_dir / f"{resource_type}.ndjson"
+            if resource_type in self.handles or resource_type == "Patient":
+                os.replace(self.out_dir / f".{resource_type}.ndjson.part", path)
+                written.append(path)
+            else:  # a type this export has none of: an older file would be read with it
+                path.unlink(missing_ok=True)
+        return written
+
+    def close(self) -> None:
+        for handle in self.handles.values():
+            handle.close()
+
+    def discard(self) -> None:
+        """Remove the part files left by a failed export (none after :meth:`install`)."""
+        self.close()
+        for resource_type in FILE_ORDER:
+            (self.out_dir / f".{resource_type}.ndjson.part").unlink(missing_ok=True)
+
+
+def write_fhir_export(canonical_dir: Path, out_dir: Path, *, seed: int | None = None) -> FhirExport:
     """Write a canonical extract's five tables as a FHIR R4 bulk-data export.
 
     Args:
         canonical_dir: The extract: a folder of canonical Parquet or CSV tables (or anything
             ``ascertain build --extract`` accepts, e.g. a site mapping file).
-        out_dir: Folder for the NDJSON files (created if needed; files of the same names are
-            replaced, each only once complete).
+        out_dir: Folder for the NDJSON files (created if needed; files of the names in
+            :data:`FILE_ORDER` are replaced once all are complete, or removed when this export
+            has no resource of their type).
+        seed: None writes each row in one plain form, the exact twin of the extract. A seed
+            writes it as a server would, in varied forms, with extra resources the reader sets
+            aside (:mod:`pipeline.synth._fhir_server`); the canonical rows used are the same.
 
     Returns:
-        The files written, in table order. A table without rows gives no file (bulk export
-        writes none), except Patient, which the reader requires.
+        A :class:`FhirExport`. A type without resources gives no file (bulk export writes
+        none), except Patient, which the reader requires.
 
     Raises:
         ExtractError: A table is missing or unreadable.
@@ -419,27 +301,24 @@ def write_fhir_export(canonical_dir: Path, out_dir: Path) -> list[Path]:
     tables = discover_extract(Path(canonical_dir), sources)
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
-    written: list[Path] = []
+    look = None if seed is None else ServerLook(seed)
+    parts = _Parts(out_dir)
     with tempfile.TemporaryDirectory(prefix="ascertain-fhir-") as scratch:
         con = _connect(Path(scratch))
         try:
-            for name, (resource_type, write) in WRITERS.items():
-                path = out_dir / f"{resource_type}.ndjson"
-                part = out_dir / f".{resource_type}.ndjson.part"
-                count = 0
-                with part.open("w", encoding="utf-8", newline="\n") as handle:
-                    for count, row in enumerate(_rows(con, tables[name]), start=1):
-                        resource = write(row, count)
-                        line = json.dumps(
-                            resource, ensure_ascii=False, separators=(",", ":"), allow_nan=False
-                        )
-                        handle.write(line + "\n")
-                if count == 0 and resource_type != "Patient":
-                    part.unlink()
-                    path.unlink(missing_ok=True)
-                    continue
-                os.replace(part, path)
-                written.append(path)
+            for name in WRITERS:
+                rows = _rows(con, tables[name])
+                stream = _plain(name, rows) if look is None else look.resources(name, rows)
+                for resource_type, resource in stream:
+                    parts.write(resource_type, resource)
+            for medication in look.medications.values() if look is not None else ():
+                parts.write("Medication", medication)
+            files = parts.install()
         finally:
             con.close()
-    return written
+            parts.discard()
+    if look is None:
+        return FhirExport(tuple(files), {}, {})
+    return FhirExport(
+        tuple(files), dict(sorted(look.set_aside.items())), dict(sorted(look.forms.items()))
+    )

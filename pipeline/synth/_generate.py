@@ -381,8 +381,10 @@ def generate_extract(
         patients: Number of rows in ``patients``.
         seed: Seed of the random streams; same seed and parameters give identical bytes.
         file_format: Format of the five extract tables; ``fhir`` writes them as Parquet to
-            the temporary folder, then as a FHIR R4 bulk-data export (NDJSON) in their place
-            (see :mod:`pipeline.synth._fhir_export`).
+            the temporary folder, then as a FHIR R4 bulk-data export (NDJSON) in their place,
+            as a server would write it with the same seed (see
+            :mod:`pipeline.synth._fhir_export`); ``scenario.json`` then records, under
+            ``fhir_export``, the extra resources written for the reader to set aside.
         start: First day of the extract.
         end: Last day of the extract.
         scenario: Parameters; the default Orvane Bay scenario when None.
@@ -402,8 +404,16 @@ def generate_extract(
         written = "parquet" if file_format == "fhir" else file_format
         sink, orphans = _write_chunks(tmp, sc, patients, seed, written, start, end)
         tables = [sink.path(t) for t in TABLES]
+        fhir: dict[str, object] = {}
         if file_format == "fhir":
-            tables = write_fhir_export(tmp, tmp / "fhir")
+            export = write_fhir_export(tmp, tmp / "fhir", seed=seed)
+            tables = list(export.files)
+            # What the export wrote beyond the canonical rows, so a build can be checked
+            # against it: the extra resources set aside, and the varied forms.
+            set_aside = [
+                {"table": t, "reason": r, "resources": n} for (t, r), n in export.set_aside.items()
+            ]
+            fhir = {"fhir_export": {"set_aside": set_aside, "forms": export.forms}}
         meta = {
             "end": end.isoformat(),
             "file_format": file_format,
@@ -412,6 +422,7 @@ def generate_extract(
             "start": start.isoformat(),
             "orphan_patients": orphans,
             "scenario": sc.to_dict(),
+            **fhir,
         }
         text = json.dumps(meta, sort_keys=True, indent=2, ensure_ascii=False) + "\n"
         (tmp / "scenario.json").write_text(text, encoding="utf-8")
