@@ -35,7 +35,7 @@ def compile_study(loaded: LoadedStudy) -> Plan:
     Pure: no connection, file, clock or environment is read, so the same study always gives
     the same plan.
     """
-    ctx = CompileContext(loaded.study, loaded.catalog)
+    ctx = CompileContext(loaded.study, loaded.catalog, loaded.measures)
     _check_evidence_numbers(ctx)
     stages = tuple(stage for compile_pass in PASSES for stage in compile_pass(ctx))
     return Plan(
