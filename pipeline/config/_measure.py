@@ -231,8 +231,8 @@ def load_measures(files: Iterable[Path], base: MeasureRegistry | None = None) ->
     defined_in = dict(base.files) if base else {}
     problems: list[Problem] = []
     for file in files:
-        if file in defined_in.values():
-            continue  # named twice (a folder and a file in it): read once
+        if file.resolve() in {f.resolve() for f in defined_in.values()}:
+            continue  # named twice (a folder and a file in it, or the shipped folder): read once
         try:
             measure = load_measure_file(file)
         except ConfigError as err:
