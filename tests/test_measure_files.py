@@ -112,10 +112,10 @@ def test_shipped_measures_keep_their_conversions() -> None:
     assert creatinine is not None
     assert (creatinine.factor, creatinine.divisor) == (1.0, 88.42)
     assert measures["smoking"].categories == ("current", "former", "never")
-    assert measures.names() == sorted(
-        ["bmi", "creatinine", "dbp", "egfr", "fasting_glucose", "hba1c", "height", "ldl"]
-        + ["sbp", "smoking", "total_cholesterol", "weight"]
-    )
+    assert measures.names() == [
+        *("bmi", "creatinine", "dbp", "egfr", "fasting_glucose", "hba1c", "height", "ldl"),
+        *("sbp", "smoking", "total_cholesterol", "weight"),
+    ]
 
 
 def test_shipped_loinc_codes_agree_with_the_fhir_reader() -> None:
@@ -241,3 +241,35 @@ def test_manifest_hashes_every_measure_file(tmp_path: Path) -> None:
     assert {f"library:measures/{f.name}" for f in shipped.values()} <= set(entries)
     assert entries["library:measures/hba1c.yaml"] == sha256_file(shipped["hba1c"])
     assert len(entries) == len(shipped) + 1
+
+
+ABSENT_CODE = """\
+condition: gout_code
+title: Gout by code (test)
+about: a code no row of the test extract carries
+provenance: {adapts: "our own, for this test", icd_edition: "ICD-10 (WHO)", version: "1",
+             date: 2026-01-01}
+evidence:
+  code: {diagnosis: {ICD10: [M10]}}
+rules:
+  - {name: one code, need: {code: 1}}
+"""
+
+
+def test_a_definition_matching_no_row_is_a_warning(tmp_path: Path) -> None:
+    study = _urate_study(tmp_path, {"gout": GOUT, "gout_code": ABSENT_CODE})
+    text = study.read_text("utf-8").replace("conditions: [gout]", "conditions: [gout, gout_code]")
+    study.write_text(text, "utf-8")
+    expected = (
+        "outcome 'gout_code': the definition 'gout_code' matches no row of the extract "
+        "(evidence gout_code.code); every patient comes out without it"
+    )
+    result = build_study(study, BuildOptions(out=tmp_path / "out", threads=1))
+    assert result.warnings == [expected]  # gout matched (P1, P3, P5), so it is not named
+    run = json.loads((tmp_path / "out" / "run.json").read_text(encoding="utf-8"))
+    assert run["unmatched_definitions"] == [
+        {"use": "outcome 'gout_code'", "definition": "gout_code", "evidence": ["gout_code.code"]}
+    ]
+    code, output = _check(str(study), "--extract", str(tmp_path / "x"))
+    assert code == 0, output
+    assert f"warning: {study}: {expected}" in output.replace("\n", " ")
