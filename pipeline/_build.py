@@ -12,7 +12,13 @@ from typing import Any
 
 import pyarrow as pa
 
-from pipeline.compile import POSITION_BASE, Plan, compile_study
+from pipeline.compile import (
+    EVIDENCE_COUNTS,
+    POSITION_BASE,
+    Plan,
+    compile_study,
+    unmatched_definitions,
+)
 from pipeline.config import LoadedStudy, load_study
 from pipeline.config._spark import SparkSettings
 from pipeline.engine import DuckDBEngine, RunResult, SparkEngine
@@ -125,6 +131,8 @@ class BuildResult:
     run: RunResult
     notes: list[str] = field(default_factory=list)
     """Sentences for the user, e.g. that the previous cohort's report was removed."""
+    warnings: list[str] = field(default_factory=list)
+    """Things that may mislead without stopping the build: a definition matching no row."""
 
 
 def plan_study(study_file: Path) -> Plan:
@@ -192,6 +200,7 @@ def build_study(
         },
         study_file=loaded.file,
         definition_files=loaded.catalog.files.values(),
+        measure_files=loaded.measures.files.values(),
         library=study.library,
         extract=extract,
         extract_entries=extract_entries,
@@ -204,6 +213,7 @@ def build_study(
             **{row["source_table"]: row["n_rows"] for row in run.outputs["rows_read"].to_pylist()},
         },
     )
+    unmatched = unmatched_definitions(loaded, evidence_counts(run.outputs[EVIDENCE_COUNTS]))
     run_info = {
         "study": study.study,
         "study_file": loaded.file.name,
@@ -212,6 +222,10 @@ def build_study(
         "finished_utc": finished.isoformat(timespec="seconds"),
         "engine": {"name": run.engine, "version": run.engine_version, **run.engine_info},
         "quality": quality,
+        "unmatched_definitions": [
+            {"use": u.what, "definition": u.definition or None, "evidence": list(u.keys)}
+            for u in unmatched
+        ],
         "counts": {
             "cohort_patients": run.outputs["cohort"].num_rows,
             "attrition": run.outputs["attrition"].select(["step", "remaining"]).to_pylist(),
@@ -231,7 +245,19 @@ def build_study(
         manifest=manifest,
         run_info=run_info,
     )
-    return BuildResult(out, written.files, plan, run, [*notes, *written.notes])
+    return BuildResult(
+        out,
+        written.files,
+        plan,
+        run,
+        [*notes, *written.notes],
+        [u.message() for u in unmatched],
+    )
+
+
+def evidence_counts(table: pa.Table) -> dict[int, int]:
+    """Evidence number -> patient-days, from a plan's ``evidence_counts`` output."""
+    return {row["evidence"]: row["n_events"] for row in table.to_pylist()}
 
 
 def local_inputs(extract: Path | str, plan: Plan) -> list[tuple[str, Path]]:

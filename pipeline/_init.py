@@ -43,6 +43,7 @@ title: Incident type 2 diabetes and gout after a first encounter in 2015-2016 (e
 extract: {extract}
 definitions: definitions              # the case definitions, relative to this file
 # library: true                       # instead of definitions: the library shipped with ascertain
+# measures: [measures]               # your own measure files (e.g. serum urate), beside the shipped
 end_of_data: 2019-12-31               # events after this date are not used
 
 index:                                # one strategy only:

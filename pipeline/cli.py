@@ -32,6 +32,7 @@ from rich.markup import escape
 from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
 
 from pipeline._build import BuildOptions, BuildResult, build_study, plan_study, verify_output
+from pipeline._check_data import check_extract, check_lines
 from pipeline._diff import diff_runs, render_diff
 from pipeline._explain import explain_patient, render_trace
 from pipeline._init import init_study
@@ -44,8 +45,7 @@ from pipeline._profile import (
 )
 from pipeline.compile import Stage
 from pipeline.config import load_study
-from pipeline.config._check import check_paths, explain_condition
-from pipeline.config._explain_study import explain_study
+from pipeline.config._check import check_paths
 from pipeline.engine import DuckDBEngine, SparkEngine
 from pipeline.errors import AscertainError
 from pipeline.extract import as_extract
@@ -173,6 +173,8 @@ def build(
             console.print(f"{step['step']:<24} removed {removed:>9,}  remaining {remaining:>9,}")
     for note in result.notes:
         console.print(f"note: {note}", markup=False, soft_wrap=True)
+    for warning in result.warnings:
+        console.print(f"warning: {warning}", markup=False, soft_wrap=True)
     console.print(f"cohort of {result.run.outputs['cohort'].num_rows:,} patients -> {result.out}")
 
 
@@ -281,26 +283,27 @@ def check(
     explain: Annotated[
         bool, typer.Option("--explain", help="Say what each study and definition means.")
     ] = False,
+    extract: Annotated[
+        str | None, typer.Option(help="Warn of definitions matching no row here.")
+    ] = None,
 ) -> None:
     """Check study and definition files without data. Exit 0 clean, 1 problems, 2 unreadable.
 
-    Writes nothing; prints each problem as file:line:col [code] message, and with --explain
-    what each definition and study means.
+    Writes nothing; prints each problem as file:line:col [code] message, each warning (a
+    threshold no plausible value meets; with --extract, a definition matching no row), and
+    with --explain what each definition and study means. Warnings leave the exit status.
 
     Example: ascertain check definitions/ --explain
     """
     report = check_paths(paths or [Path("definitions")])
+    data_warnings = (
+        []
+        if extract is None or report.problems
+        else _fail_cleanly(lambda: check_extract(report.studies, as_extract(extract)), debug=False)
+    )
     console = Console(highlight=False, soft_wrap=True)
-    if explain:
-        for study_design in report.studies.values():
-            console.print(explain_study(study_design), markup=False)
-            console.print()
-        for condition in report.conditions.values():
-            console.print(explain_condition(condition), markup=False)
-            console.print()
-    for problem in report.problems:
-        console.print(str(problem), markup=False)
-    console.print(f"{len(report.files)} files checked, {len(report.problems)} problems")
+    for line in check_lines(report, explain=explain, data_warnings=data_warnings):
+        console.print(line, markup=False)
     raise typer.Exit(report.exit_code)
 
 

@@ -12,7 +12,8 @@ from pathlib import Path
 import pytest
 
 from pipeline.compile._context import evidence_number
-from pipeline.measures import MEASURES, Threshold, parse_quantity
+from pipeline.config import shipped_measures
+from pipeline.measures import parse_quantity
 
 from .helpers import run_stage, write_extract, write_study
 
@@ -117,9 +118,9 @@ def test_hba1c_ifcc_to_ngsp(tmp_path: Path, mmol_per_mol: int, percent: float) -
 def test_hba1c_threshold_in_mmol_per_mol() -> None:
     # 48 mmol/mol is the ADA diagnostic threshold, 6.5 % (ADA Standards of Care, section 2);
     # by the master equation it is 6.543 %, so a threshold written in mmol/mol keeps its unit.
-    assert Threshold.parse("hba1c", "at_least", "48 mmol/mol").canonical_value == pytest.approx(
-        6.54304
-    )
+    assert shipped_measures().threshold(
+        "hba1c", "at_least", "48 mmol/mol"
+    ).canonical_value == pytest.approx(6.54304)
 
 
 def test_creatinine_micromoles(tmp_path: Path) -> None:
@@ -148,7 +149,7 @@ def test_creatinine_micromoles(tmp_path: Path) -> None:
 
 def test_glucose_mg_per_dl() -> None:
     # glucose molar mass 180.156 g/mol (IUPAC): 126 mg/dL = 6.994 mmol/L; 7.0 mmol/L = 126.11
-    conversion = MEASURES["fasting_glucose"].conversion("mg/dL")
+    conversion = shipped_measures()["fasting_glucose"].conversion("mg/dL")
     assert conversion is not None
     assert conversion.to_canonical(126) == pytest.approx(6.994, abs=0.001)
     assert conversion.to_canonical(126.11) == pytest.approx(7.0, abs=0.001)
@@ -335,7 +336,7 @@ def test_parse_quantity() -> None:
 )
 def test_threshold_errors(measure: str, text: str, message: str) -> None:
     with pytest.raises(ValueError, match="^" + re.escape(message)):
-        Threshold.parse(measure, "at_least", text)
+        shipped_measures().threshold(measure, "at_least", text)
 
 
 @pytest.mark.parametrize(

@@ -1,6 +1,7 @@
 """Compile a study into a plan of named SQL stages (sqlglot trees), without running anything."""
 
-from pipeline.compile._compiler import PASSES, compile_study
+from pipeline.compile._compiler import PASSES, compile_study, unmatched_definitions
+from pipeline.compile._matches import EVIDENCE_COUNTS, Use
 from pipeline.compile._plan import (
     POSITION_BASE,
     SOURCE_DIALECT,
@@ -14,6 +15,7 @@ from pipeline.compile._plan import (
 from pipeline.compile._sources import unreadable_patient_date
 
 __all__ = [
+    "EVIDENCE_COUNTS",
     "PASSES",
     "POSITION_BASE",
     "SOURCE_DIALECT",
@@ -23,6 +25,8 @@ __all__ = [
     "Plan",
     "SourceTable",
     "Stage",
+    "Use",
     "compile_study",
+    "unmatched_definitions",
     "unreadable_patient_date",
 ]

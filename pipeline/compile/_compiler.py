@@ -8,6 +8,7 @@ from pipeline.compile._cohort import cohort_stages
 from pipeline.compile._context import CompileContext, evidence_key, evidence_number
 from pipeline.compile._dictionary import dictionary
 from pipeline.compile._evidence import evidence_stages
+from pipeline.compile._matches import EVIDENCE_COUNTS, Use, match_count_stages, unmatched_uses
 from pipeline.compile._measurements import measurement_stages
 from pipeline.compile._plan import Plan, Stage
 from pipeline.compile._quality import quality_stages
@@ -26,6 +27,7 @@ PASSES: tuple[Pass, ...] = (
     rule_stages,
     cohort_stages,
     quality_stages,
+    match_count_stages,
 )
 
 
@@ -35,7 +37,7 @@ def compile_study(loaded: LoadedStudy) -> Plan:
     Pure: no connection, file, clock or environment is read, so the same study always gives
     the same plan.
     """
-    ctx = CompileContext(loaded.study, loaded.catalog)
+    ctx = CompileContext(loaded.study, loaded.catalog, loaded.measures)
     _check_evidence_numbers(ctx)
     stages = tuple(stage for compile_pass in PASSES for stage in compile_pass(ctx))
     return Plan(
@@ -48,9 +50,20 @@ def compile_study(loaded: LoadedStudy) -> Plan:
             ("attrition", "attrition", ("step_number",)),
             ("quality", "quality_log", ("source_table", "outcome", "reason")),
             ("rows_read", "rows_read", ("source_table",)),
+            (EVIDENCE_COUNTS, EVIDENCE_COUNTS, ("evidence",)),
         ),
         columns=dictionary(ctx),
     )
+
+
+def unmatched_definitions(loaded: LoadedStudy, counts: dict[int, int]) -> list[Use]:
+    """The study's uses of definitions that matched no row, from a run's ``evidence_counts``.
+
+    Args:
+        loaded: The study the plan was compiled from.
+        counts: Evidence number -> patient-days, from the plan's ``evidence_counts`` output.
+    """
+    return unmatched_uses(CompileContext(loaded.study, loaded.catalog, loaded.measures), counts)
 
 
 def _check_evidence_numbers(ctx: CompileContext) -> None:

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import datetime as dt
 import zlib
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from functools import cached_property
 
 from sqlglot import exp
@@ -20,7 +20,8 @@ from pipeline.config import (
     Evidence,
     Study,
 )
-from pipeline.measures import DERIVED_FROM, MEASURES
+from pipeline.config._measure import shipped_measures
+from pipeline.measures import DERIVED_FROM, MeasureRegistry
 
 # Evidence the study itself defines (not a condition) gets keys starting with "@", which no
 # condition name can, so the two never collide.
@@ -70,10 +71,14 @@ def charlson_key(category: str) -> str:
 
 @dataclass(frozen=True)
 class CompileContext:
-    """A study and its definitions, with the facts the passes share."""
+    """A study and its definitions, with the facts the passes share.
+
+    ``registry`` holds the measures the study may read (shipped, and its own files).
+    """
 
     study: Study
     catalog: Catalog
+    registry: MeasureRegistry = field(default_factory=shipped_measures)
 
     @cached_property
     def outcomes(self) -> tuple[Condition, ...]:
@@ -176,7 +181,7 @@ class CompileContext:
     @property
     def numeric_measures(self) -> tuple[str, ...]:
         """The measures read as numbers (not coded)."""
-        return tuple(m for m in self.measures if not MEASURES[m].is_coded)
+        return tuple(m for m in self.measures if not self.registry[m].is_coded)
 
     def uses(self, kind: str) -> bool:
         """Whether any evidence is of this kind (diagnosis, prescription, encounter ...)."""

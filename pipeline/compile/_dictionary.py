@@ -12,7 +12,7 @@ from pipeline.compile._index import index_description
 from pipeline.compile._plan import ColumnDoc
 from pipeline.config import Covariate, Window
 from pipeline.config._explain_study import counted_records
-from pipeline.measures import DERIVED_FROM, MEASURES
+from pipeline.measures import DERIVED_FROM, MeasureRegistry
 
 
 def _days_before(days: int) -> str:
@@ -26,10 +26,10 @@ def _window(window: Window) -> str:
     return f"from {first} to {last}, both included"
 
 
-def _measure_docs(name: str, covariate: Covariate) -> list[ColumnDoc]:
+def _measure_docs(name: str, covariate: Covariate, registry: MeasureRegistry) -> list[ColumnDoc]:
     measure = covariate.latest or covariate.mean or covariate.minimum or covariate.maximum
     assert measure is not None  # only called for measure covariates
-    unit = MEASURES[measure].canonical_unit
+    unit = registry[measure].canonical_unit
     how = f"{covariate.kind} exact value (no < or >) {_window(covariate.span)}; 6 decimals"
     if measure in DERIVED_FROM:
         how += (
@@ -114,7 +114,7 @@ def _covariate_docs(ctx: CompileContext, name: str, covariate: Covariate) -> lis
         ]
     if kind == "charlson":
         return [_charlson_doc(name, covariate)]
-    return _measure_docs(name, covariate)
+    return _measure_docs(name, covariate, ctx.registry)
 
 
 def _definition_source(ctx: CompileContext, condition: str) -> str:

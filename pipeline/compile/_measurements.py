@@ -23,13 +23,7 @@ from pipeline.compile._sql import (
     values_table,
 )
 from pipeline.config import MeasurementEvidence
-from pipeline.measures import (
-    DERIVED_FROM,
-    MEASURES,
-    SAME_DAY_INPUTS,
-    Threshold,
-    conversion_rows,
-)
+from pipeline.measures import DERIVED_FROM, SAME_DAY_INPUTS, Threshold
 
 # No backslashes: the pattern must mean the same in every engine's string literals.
 READING_PATTERN = "^(<=|>=|<|>)?[ ]*([0-9]+([.,][0-9]+)?)[ ]*(.*)$"
@@ -231,17 +225,18 @@ def _judged_rows(ctx: CompileContext) -> exp.Query:
     One judgement for the quality log and for the values, so the two can never judge a row
     differently.
     """
+    measures = ctx.registry.measures
     known = values_table(
         "k",
         ["measure", "is_coded"],
-        [(m.name, m.is_coded) for m in sorted(MEASURES.values(), key=lambda m: m.name)],
+        [(m.name, m.is_coded) for m in sorted(measures.values(), key=lambda m: m.name)],
     )
     units = values_table(
         "u",
         ["measure", "unit", "factor", "divisor", "offset_value", "low", "high"],
-        conversion_rows(),
+        ctx.registry.conversion_rows(),
     )
-    categories = sorted({(m.name, c) for m in MEASURES.values() for c in m.categories})
+    categories = sorted({(m.name, c) for m in measures.values() for c in m.categories})
     known_category = exp.or_(
         *(
             exp.and_(exp.column("measure", "r").eq(name), exp.column("category", "r").eq(value))
@@ -364,7 +359,7 @@ def measurement_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         _values_stage(ctx),
     ]
     if "egfr" in ctx.measures:
-        low, high = MEASURES["egfr"].plausible
+        low, high = ctx.registry["egfr"].plausible
         age = age_in_years(birth=exp.column("birth_date", "p"), on=exp.column("obs_date", "c"))
         stages.append(
             Stage(
@@ -375,7 +370,7 @@ def measurement_stages(ctx: CompileContext) -> tuple[Stage, ...]:
             )
         )
     if "bmi" in ctx.measures:
-        low, high = MEASURES["bmi"].plausible
+        low, high = ctx.registry["bmi"].plausible
         stages.append(
             Stage(
                 "derived_bmi",

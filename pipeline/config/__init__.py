@@ -12,6 +12,7 @@ from pipeline.config._condition import (
     Rule,
 )
 from pipeline.config._loader import Catalog, LoadedStudy, load_catalog, load_condition, load_study
+from pipeline.config._measure import load_measure_file, load_measures, shipped_measures
 from pipeline.config._study import (
     Covariate,
     Criterion,
@@ -43,5 +44,8 @@ __all__ = [
     "Window",
     "load_catalog",
     "load_condition",
+    "load_measure_file",
+    "load_measures",
     "load_study",
+    "shipped_measures",
 ]

@@ -13,9 +13,12 @@ from pathlib import Path
 from pipeline.codes import expand_codes
 from pipeline.config._condition import Condition, Evidence, Rule
 from pipeline.config._loader import load_catalog, load_condition, load_study
+from pipeline.config._measure import load_measures, shipped_measures
+from pipeline.config._plausible import condition_warnings, study_warnings
 from pipeline.config._study import Study
 from pipeline.config._yaml import load_yaml
 from pipeline.errors import ConfigError, Problem
+from pipeline.measures import MeasureRegistry
 
 UNREADABLE = frozenset({"unreadable", "bad-yaml", "empty-file", "missing-folder", "not-found"})
 
@@ -24,10 +27,13 @@ UNREADABLE = frozenset({"unreadable", "bad-yaml", "empty-file", "missing-folder"
 class CheckReport:
     """Problems found, files checked, and the definitions and studies that loaded.
 
-    The loaded ones are kept for ``--explain``.
+    The loaded ones are kept for ``--explain``. ``warnings`` are things that load but are
+    probably a slip (a threshold no plausible value can meet); they do not change the exit
+    code.
     """
 
     problems: list[Problem] = field(default_factory=list)
+    warnings: list[Problem] = field(default_factory=list)
     files: list[Path] = field(default_factory=list)
     conditions: dict[Path, Condition] = field(default_factory=dict)
     studies: dict[Path, Study] = field(default_factory=dict)
@@ -53,12 +59,26 @@ def _yaml_files(paths: list[Path]) -> tuple[list[Path], list[Problem]]:
     return sorted(set(files)), missing
 
 
-def _is_study(file: Path) -> bool:
+def _kind(file: Path) -> str:
+    """``study``, ``measure`` or (the default, which reports any problem) ``condition``."""
     try:
         data = load_yaml(file).data
     except ConfigError:
-        return False
-    return isinstance(data, dict) and "study" in data
+        return "condition"
+    if isinstance(data, dict):
+        for kind in ("study", "measure"):
+            if kind in data and "condition" not in data:
+                return kind
+    return "condition"
+
+
+def _measures(files: list[Path], report: CheckReport) -> MeasureRegistry:
+    """The shipped measures and the measure files among the checked ones."""
+    try:
+        return load_measures(files, shipped_measures())
+    except ConfigError as err:
+        report.problems.extend(err.problems)
+        return shipped_measures()
 
 
 def _lint(file: Path, condition: Condition) -> list[Problem]:
@@ -127,26 +147,42 @@ def check_paths(paths: list[Path]) -> CheckReport:
     """Check every YAML file under ``paths``: studies, definitions and their folders."""
     files, problems = _yaml_files(paths)
     report = CheckReport(problems=problems, files=files)
+    kinds = {file: _kind(file) for file in files}
+    measures = _measures([f for f in files if kinds[f] == "measure"], report)
     folders: set[Path] = set()
+    checked = {file.resolve() for file in files}
     for file in files:
         try:
-            if _is_study(file):
-                report.studies[file] = load_study(file).study
+            if kinds[file] == "study":
+                loaded = load_study(file)
+                report.studies[file] = loaded.study
+                report.warnings += study_warnings(file, loaded.study, loaded.measures)
+                for name, condition_file in loaded.catalog.files.items():
+                    if condition_file.resolve() in checked:
+                        continue  # warned about below, under the name it was given
+                    condition = loaded.catalog.get(name)
+                    report.warnings += condition_warnings(
+                        condition_file, condition, loaded.measures
+                    )
                 continue
-            condition = load_condition(file)
+            if kinds[file] == "measure":
+                continue
+            condition = load_condition(file, measures)
         except ConfigError as err:
             report.problems.extend(err.problems)
             continue
         report.conditions[file] = condition
         report.problems.extend(_lint(file, condition))
+        report.warnings += condition_warnings(file, condition, measures)
         folders.add(file.parent)
     for folder in sorted(folders):
         try:
-            load_catalog(folder)
+            load_catalog(folder, measures)
         except ConfigError as err:
             known = set(report.problems)
             report.problems.extend(p for p in err.problems if p not in known)
     report.problems = sorted(set(report.problems))
+    report.warnings = sorted(set(report.warnings))
     return report
 
 

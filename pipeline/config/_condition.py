@@ -9,7 +9,7 @@ from __future__ import annotations
 import datetime as dt
 from typing import Annotated, Literal, Self
 
-from pydantic import Field, ValidationInfo, field_validator, model_validator
+from pydantic import Field, PrivateAttr, ValidationInfo, field_validator, model_validator
 
 from pipeline.config._base import (
     ONE_OR_MORE,
@@ -22,8 +22,8 @@ from pipeline.config._base import (
     PositiveInt,
     Quantity,
 )
-from pipeline.measures import MEASURES, Threshold
-from pipeline.measures._threshold import Comparison
+from pipeline.config._measure import measures_in
+from pipeline.measures import Comparison, Threshold
 
 
 class DiagnosisCodes(Model):
@@ -72,11 +72,12 @@ class MeasurementEvidence(Model):
     between: tuple[Quantity, Quantity] | None = None
     category: Annotated[tuple[str, ...], ONE_OR_MORE] = ()
 
+    _thresholds: tuple[Threshold, ...] = PrivateAttr(default=())
+
     @field_validator("measure")
     @classmethod
-    def _known_measure(cls, value: str) -> str:
-        if value not in MEASURES:
-            raise ValueError(f"unknown measure '{value}'; known: {', '.join(sorted(MEASURES))}")
+    def _known_measure(cls, value: str, info: ValidationInfo) -> str:
+        measures_in(info).known(value)  # raises naming the known measures
         return value
 
     @field_validator("at_least", "above", "below", "at_most", "between")
@@ -84,15 +85,24 @@ class MeasurementEvidence(Model):
     def _convertible(
         cls, value: Quantity | tuple[Quantity, Quantity] | None, info: ValidationInfo
     ) -> Quantity | tuple[Quantity, Quantity] | None:
-        measure = info.data.get("measure")
-        if value is None or measure is None or MEASURES[measure].is_coded:
+        measure = measures_in(info).get(info.data.get("measure", ""))
+        if value is None or measure is None or measure.is_coded:
             return value
         for text in value if isinstance(value, tuple) else (value,):
-            Threshold.parse(measure, "at_least", text)  # raises with the reason
+            measure.threshold("at_least", text)  # raises with the reason
         return value
 
     def thresholds(self) -> tuple[Threshold, ...]:
-        """Return the thresholds in canonical units (they were checked at load time)."""
+        """Return the thresholds in canonical units, converted when the file was loaded.
+
+        Converted by the measures the definition was loaded with (the study's own measure
+        files included), so later stages need not know where the measure came from.
+        """
+        return self._thresholds
+
+    @model_validator(mode="after")
+    def _valid_comparison(self, info: ValidationInfo) -> Self:
+        measure = measures_in(info).known(self.measure)
         written: list[tuple[Comparison, Quantity]] = [
             (comparison, text)
             for comparison, text in (
@@ -105,16 +115,9 @@ class MeasurementEvidence(Model):
         ]
         if self.between is not None:
             written += [("at_least", self.between[0]), ("at_most", self.between[1])]
-        return tuple(
-            Threshold.parse(self.measure, comparison, text) for comparison, text in written
-        )
-
-    @model_validator(mode="after")
-    def _valid_comparison(self) -> Self:
-        measure = MEASURES[self.measure]
         if measure.is_coded:
             unknown = sorted(set(self.category) - set(measure.categories))
-            if not self.category or unknown or self.thresholds():
+            if not self.category or unknown or written:
                 raise ValueError(
                     f"{self.measure} is a coded measure: give category with some of "
                     f"{', '.join(measure.categories)}"
@@ -123,7 +126,7 @@ class MeasurementEvidence(Model):
             return self
         if self.category:
             raise ValueError(f"{self.measure} is numeric: use thresholds, not category")
-        thresholds = self.thresholds()
+        thresholds = tuple(measure.threshold(comparison, text) for comparison, text in written)
         if not thresholds:
             raise ValueError(
                 "a measurement needs at least one of at_least, above, below, at_most, between"
@@ -132,6 +135,7 @@ class MeasurementEvidence(Model):
         high = min((t.canonical_value for t in thresholds if t.comparison in _UPPER), default=None)
         if low is not None and high is not None and low > high:
             raise ValueError("the thresholds leave no value that could qualify")
+        self._thresholds = thresholds
         return self
 
 

@@ -13,9 +13,16 @@ from pydantic import BaseModel, ValidationError
 from pipeline.config._base import Model
 from pipeline.config._condition import Condition, Rule
 from pipeline.config._library import library_conditions
+from pipeline.config._measure import (
+    MEASURES_CONTEXT,
+    load_measures,
+    measure_files,
+    shipped_measures,
+)
 from pipeline.config._study import Study
 from pipeline.config._yaml import LocatedDocument, PathKey, load_yaml
 from pipeline.errors import ConfigError, Problem
+from pipeline.measures import MeasureRegistry
 
 M = TypeVar("M", bound=BaseModel)
 
@@ -64,16 +71,24 @@ def _problem_from_error(doc: LocatedDocument, error: Any, vocabulary: list[str])
     return doc.problem(loc, "bad-value", f"{_dotted(loc)}: {message}", at_value=at_value)
 
 
-def validate_document(doc: LocatedDocument, model: type[M]) -> M:
+def validate_document(
+    doc: LocatedDocument, model: type[M], measures: MeasureRegistry | None = None
+) -> M:
     """Validate a located document against a model, mapping errors to file:line:col.
+
+    Args:
+        doc: The document.
+        model: The model to validate it against.
+        measures: The measures thresholds and covariates may name (default: the shipped ones).
 
     Raises:
         ConfigError: With one problem per validation error.
     """
     if not isinstance(doc.data, dict):
         raise ConfigError([doc.problem((), "bad-value", "the file must hold a mapping of keys")])
+    context = {MEASURES_CONTEXT: measures} if measures is not None else None
     try:
-        return model.model_validate(doc.data)
+        return model.model_validate(doc.data, context=context)
     except ValidationError as err:
         vocabulary = _vocabulary()
         raise ConfigError([_problem_from_error(doc, e, vocabulary) for e in err.errors()]) from err
@@ -176,22 +191,24 @@ def _find_cycle(start: str, catalog: dict[str, Condition]) -> list[str] | None:
     return None
 
 
-def load_condition(file: Path) -> Condition:
-    """Load and check one condition file.
+def load_condition(file: Path, measures: MeasureRegistry | None = None) -> Condition:
+    """Load and check one condition file, against ``measures`` (default: the shipped ones).
 
     Raises:
         ConfigError: Schema errors or rules that name undefined evidence.
     """
     doc = load_yaml(file)
-    condition = validate_document(doc, Condition)
+    condition = validate_document(doc, Condition, measures)
     problems = _check_rules(doc, condition)
     if problems:
         raise ConfigError(problems)
     return condition
 
 
-def load_catalog(folder: Path) -> Catalog:
+def load_catalog(folder: Path, measures: MeasureRegistry | None = None) -> Catalog:
     """Load every ``*.yaml`` condition file in a folder; all problems are reported together.
+
+    Thresholds are read against ``measures`` (default: the shipped ones).
 
     Raises:
         ConfigError: A file is invalid, or two files define the same condition name.
@@ -205,7 +222,7 @@ def load_catalog(folder: Path) -> Catalog:
     problems: list[Problem] = []
     for file in sorted(folder.glob("*.yaml")):
         try:
-            condition = load_condition(file)
+            condition = load_condition(file, measures)
         except ConfigError as err:
             problems.extend(err.problems)
             continue
@@ -237,11 +254,13 @@ class LoadedStudy:
         study: The study with ``extract``, ``definitions`` and ``output.folder`` resolved
             against the study file's folder.
         catalog: The condition definitions the study may use.
+        measures: The measures it may read: shipped, and its own (``measures:``).
     """
 
     file: Path
     study: Study
     catalog: Catalog
+    measures: MeasureRegistry
 
 
 def _resolve(base: Path, path: Path) -> Path:
@@ -343,8 +362,9 @@ def load_study(file: Path) -> LoadedStudy:
     """
     file = file.resolve()
     doc = load_yaml(file)
-    study = validate_document(doc, Study)
     base = file.parent
+    measures = _study_measures(doc, base)
+    study = validate_document(doc, Study, measures)
     if study.library and "definitions" in doc.data:
         raise ConfigError(
             [
@@ -369,7 +389,7 @@ def load_study(file: Path) -> LoadedStudy:
         }
     )
     try:
-        catalog = load_catalog(study.definitions)
+        catalog = load_catalog(study.definitions, measures)
     except ConfigError as err:
         if any(p.code == "missing-folder" for p in err.problems):
             raise ConfigError(
@@ -401,4 +421,36 @@ def load_study(file: Path) -> LoadedStudy:
     catalog = _apply_changes(doc, study, catalog)
     if problems:
         raise ConfigError(problems)
-    return LoadedStudy(file, study, catalog)
+    return LoadedStudy(file, study, catalog, measures)
+
+
+def _study_measures(doc: LocatedDocument, base: Path) -> MeasureRegistry:
+    """The shipped measures and the study's own (``measures:``), read before the study.
+
+    The study's covariates may name its own measures, so they are read first, from the
+    document itself; a ``measures`` value of the wrong shape is left to the study's validation
+    to report.
+    """
+    written = doc.data.get("measures") if isinstance(doc.data, dict) else None
+    if isinstance(written, str):
+        written = [written]
+    if not isinstance(written, list) or not all(isinstance(w, str) for w in written):
+        return shipped_measures()
+    problems = []
+    paths = []
+    for i, text in enumerate(written):
+        path = _resolve(base, Path(text))
+        if not path.exists():
+            problems.append(
+                doc.problem(
+                    ("measures", i) if isinstance(doc.data["measures"], list) else ("measures",),
+                    "missing-folder",
+                    f"the measures folder or file {path} does not exist (it is relative to the "
+                    "study file)",
+                    at_value=True,
+                )
+            )
+        paths.append(path)
+    if problems:
+        raise ConfigError(problems)
+    return load_measures(measure_files(paths), shipped_measures())

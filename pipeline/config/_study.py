@@ -12,13 +12,13 @@ import re
 from pathlib import Path
 from typing import Annotated, Literal, Self
 
-from pydantic import Field, field_validator, model_validator
+from pydantic import Field, ValidationInfo, field_validator, model_validator
 
 from pipeline.config._base import ONE_OR_MORE, Model, Name, NonNegativeInt, PositiveInt
 from pipeline.config._condition import Evidence
+from pipeline.config._measure import measures_in
 from pipeline.config._settings import EngineSettings, Output, QualitySettings
 from pipeline.config._spark import SparkSettings
-from pipeline.measures import MEASURES
 
 _DATABASE_URI = re.compile(r"^postgres(?:ql)?://", re.IGNORECASE)
 
@@ -318,12 +318,10 @@ class Covariate(Model):
 
     @field_validator("latest", "mean", "minimum", "maximum")
     @classmethod
-    def _numeric_measure(cls, value: str | None) -> str | None:
+    def _numeric_measure(cls, value: str | None, info: ValidationInfo) -> str | None:
         if value is None:
             return None
-        measure = MEASURES.get(value)
-        if measure is None:
-            raise ValueError(f"unknown measure '{value}'; known: {', '.join(sorted(MEASURES))}")
+        measure = measures_in(info).known(value)
         if measure.is_coded:
             raise ValueError(
                 f"{value} is a coded measure with no canonical unit; only numeric measures "
@@ -380,7 +378,8 @@ class Study(Model):
     ``library: true`` instead reads the definition library installed with ascertain, so a
     study copied anywhere still finds its definitions. ``definition_changes`` adjusts a
     definition's rule windows for this study only, by condition and rule name, without
-    copying the definition file.
+    copying the definition file. ``measures`` names the study's own measure files (folders of
+    ``*.yaml``, or files, relative to the study file), read beside the shipped measures.
     """
 
     study: Name
@@ -388,6 +387,7 @@ class Study(Model):
     extract: Path | str
     definitions: Path = Path("../conditions")
     library: bool = False
+    measures: Annotated[tuple[Path, ...], ONE_OR_MORE] = ()
     definition_changes: dict[Name, dict[str, RuleChange]] = Field(default_factory=dict)
     end_of_data: dt.date
     index: IndexRule

@@ -1,28 +1,23 @@
-"""Measures, units and plausibility ranges."""
+"""Measures, units and plausibility ranges (the measures themselves are YAML files)."""
 
 from pipeline.measures._registry import (
-    CREATININE_UMOL_PER_MG_DL,
+    DERIVATION_UNITS,
     DERIVED_FROM,
-    HBA1C_NGSP_INTERCEPT,
-    HBA1C_NGSP_SLOPE,
-    MEASURES,
     SAME_DAY_INPUTS,
     Measure,
+    MeasureRegistry,
     UnitConversion,
-    conversion_rows,
 )
-from pipeline.measures._threshold import Threshold, parse_quantity
+from pipeline.measures._threshold import Comparison, Threshold, parse_quantity
 
 __all__ = [
-    "CREATININE_UMOL_PER_MG_DL",
+    "DERIVATION_UNITS",
     "DERIVED_FROM",
-    "HBA1C_NGSP_INTERCEPT",
-    "HBA1C_NGSP_SLOPE",
-    "MEASURES",
     "SAME_DAY_INPUTS",
+    "Comparison",
     "Measure",
+    "MeasureRegistry",
     "Threshold",
     "UnitConversion",
-    "conversion_rows",
     "parse_quantity",
 ]

@@ -1,32 +1,23 @@
 """The measures the tool understands: canonical units, accepted spellings, plausible ranges.
 
-Every unit conversion is linear (``canonical = factor * value + offset``), which keeps the
-conversion a small lookup table the compiler can join against instead of a chain of CASEs.
-Units the registry does not list are never guessed: such values are not used. The plausibility
-ranges are common practice, not a published standard.
+The measures themselves are data: one YAML file each under ``definitions/measures/`` (shipped)
+or in a study's own measures folder, read by ``pipeline.config`` into a
+:class:`MeasureRegistry`. This module holds their shape and what stays built in: which
+measures are derived from which (eGFR by CKD-EPI 2021, BMI from weight and height), and the
+canonical units those formulas are written for.
+
+Every unit conversion is linear (``canonical = factor * value / divisor + offset``), which
+keeps the conversion a small lookup table the compiler can join against instead of a chain of
+CASEs. Units a measure does not list are never guessed: such values are not used.
 """
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass
+from pathlib import Path
 
-# Creatinine: 1 mg/dL = 88.42 umol/L (molar mass 113.12 g/mol; the demo
-# spec, definitions/studies/orvane_multimorbidity.md §4.2, uses 88.42).
-CREATININE_UMOL_PER_MG_DL = 88.42
-# HbA1c IFCC (mmol/mol) to NGSP (%): master equation NGSP = 0.09148 * IFCC + 2.152
-# (Hoelzel et al. 2004, Clin Chem 50:166).
-HBA1C_NGSP_SLOPE = 0.09148
-HBA1C_NGSP_INTERCEPT = 2.152
-# Glucose: molar mass 180.156 g/mol, so 1 mmol/L = 18.0156 mg/dL.
-GLUCOSE_MG_DL_PER_MMOL_L = 18.0156
-# Creatinine in mmol/L: 1 mmol/L = 1000 umol/L (SI prefixes), then umol/L as above.
-CREATININE_UMOL_PER_MMOL = 1000.0
-# Avoirdupois pound and international inch, exact by definition (International Yard and Pound
-# Agreement, 1959; the UCUM codes [lb_av] and [in_i] are defined from them).
-KG_PER_POUND = 0.45359237
-CM_PER_INCH = 2.54
-# Cholesterol: molar mass 386.65 g/mol, so 1 mmol/L = 38.67 mg/dL (from memory; common practice).
-CHOLESTEROL_MG_DL_PER_MMOL_L = 38.67
+from pipeline.measures._threshold import Comparison, Threshold, parse_quantity
 
 
 @dataclass(frozen=True)
@@ -57,6 +48,7 @@ class Measure:
         plausible: Inclusive range of canonical values that are used; others are set aside.
         categories: For a coded measure (smoking status), the accepted values of
             ``value_text``, compared lower-cased; numeric measures have none.
+        codes: (system, code) pairs that name the measure in coded sources (LOINC, local).
     """
 
     name: str
@@ -64,6 +56,7 @@ class Measure:
     units: tuple[UnitConversion, ...]
     plausible: tuple[float, float]
     categories: tuple[str, ...] = ()
+    codes: tuple[tuple[str, str], ...] = ()
 
     @property
     def is_coded(self) -> bool:
@@ -75,101 +68,87 @@ class Measure:
         wanted = spelling.strip()
         return next((u for u in self.units if u.spelling == wanted), None)
 
+    def threshold(self, comparison: Comparison, text: str | float) -> Threshold:
+        """Parse a threshold written for this measure and convert it to the canonical unit.
 
-def _same(*spellings: str) -> tuple[UnitConversion, ...]:
-    return tuple(UnitConversion(s, 1.0) for s in spellings)
+        Raises:
+            ValueError: A missing unit, or one this measure does not accept.
+        """
+        value, unit = (float(text), None) if isinstance(text, int | float) else parse_quantity(text)
+        if unit is None:
+            raise ValueError(
+                f"the threshold {value:g} needs a unit, e.g. '{value:g} {self.canonical_unit}'"
+            )
+        conversion = self.conversion(unit)
+        if conversion is None:
+            accepted = ", ".join(u.spelling for u in self.units)
+            raise ValueError(
+                f"unit '{unit}' cannot be converted for {self.name}; accepted: {accepted}"
+            )
+        return Threshold(comparison, round(conversion.to_canonical(value), 10), f"{value:g} {unit}")
 
 
-_EGFR_UNITS = _same(
-    "mL/min/1.73m2", "mL/min/1.73 m2", "mL/min/{1.73_m2}", "ml/min/1.73m2", "mL/min/1.73m²"
-)
+@dataclass(frozen=True)
+class MeasureRegistry:
+    """Every measure a study may read, with the files they were defined in.
 
-MEASURES: dict[str, Measure] = {
-    m.name: m
-    for m in (
-        Measure(
-            "hba1c",
-            "%",
-            (
-                *_same("%", "% Hb", "%{HbA1c}"),
-                UnitConversion("mmol/mol", HBA1C_NGSP_SLOPE, HBA1C_NGSP_INTERCEPT),
-            ),
-            (3.0, 20.0),
-        ),
-        Measure(
-            "fasting_glucose",
-            "mmol/L",
-            (
-                *_same("mmol/L", "mmol/l"),
-                UnitConversion("mg/dL", 1.0, divisor=GLUCOSE_MG_DL_PER_MMOL_L),
-                UnitConversion("mg/dl", 1.0, divisor=GLUCOSE_MG_DL_PER_MMOL_L),
-            ),
-            (1.0, 50.0),
-        ),
-        Measure(
-            "creatinine",
-            "mg/dL",
-            (
-                *_same("mg/dL", "mg/dl"),
-                *(
-                    UnitConversion(s, 1.0, divisor=CREATININE_UMOL_PER_MG_DL)
-                    for s in ("umol/L", "µmol/L", "μmol/L", "umol/l", "µmol/l")
-                ),
-                *(
-                    UnitConversion(s, CREATININE_UMOL_PER_MMOL, divisor=CREATININE_UMOL_PER_MG_DL)
-                    for s in ("mmol/L", "mmol/l")
-                ),
-            ),
-            (0.1, 20.0),
-        ),
-        Measure("egfr", "mL/min/1.73m2", _EGFR_UNITS, (1.0, 200.0)),
-        Measure("sbp", "mmHg", _same("mmHg", "mm[Hg]", "mm Hg"), (50.0, 300.0)),
-        Measure("dbp", "mmHg", _same("mmHg", "mm[Hg]", "mm Hg"), (20.0, 200.0)),
-        Measure("bmi", "kg/m2", _same("kg/m2", "kg/m²", "kg/m^2"), (10.0, 80.0)),
-        Measure(
-            "weight",
-            "kg",
-            (
-                *_same("kg"),
-                UnitConversion("g", 1.0, divisor=1000.0),
-                UnitConversion("[lb_av]", KG_PER_POUND),  # UCUM's code; "lb" is not read
-            ),
-            (2.0, 400.0),
-        ),
-        Measure(
-            "total_cholesterol",
-            "mmol/L",
-            (
-                *_same("mmol/L", "mmol/l"),
-                UnitConversion("mg/dL", 1.0, divisor=CHOLESTEROL_MG_DL_PER_MMOL_L),
-                UnitConversion("mg/dl", 1.0, divisor=CHOLESTEROL_MG_DL_PER_MMOL_L),
-            ),
-            (1.0, 20.0),
-        ),
-        Measure(
-            "ldl",
-            "mmol/L",
-            (
-                *_same("mmol/L", "mmol/l"),
-                UnitConversion("mg/dL", 1.0, divisor=CHOLESTEROL_MG_DL_PER_MMOL_L),
-                UnitConversion("mg/dl", 1.0, divisor=CHOLESTEROL_MG_DL_PER_MMOL_L),
-            ),
-            (0.2, 15.0),
-        ),
-        Measure("smoking", "", (), (0.0, 0.0), categories=("current", "former", "never")),
-        Measure(
-            "height",
-            "cm",
-            (
-                *_same("cm"),
-                UnitConversion("m", 100.0),
-                UnitConversion("mm", 1.0, divisor=10.0),
-                UnitConversion("[in_i]", CM_PER_INCH),  # UCUM's code
-            ),
-            (40.0, 250.0),
-        ),
-    )
-}
+    Attributes:
+        measures: Measure name -> measure.
+        files: Measure name -> the YAML file that defined it (for errors and the manifest).
+    """
+
+    measures: Mapping[str, Measure]
+    files: Mapping[str, Path]
+
+    def __contains__(self, name: object) -> bool:
+        return name in self.measures
+
+    def __getitem__(self, name: str) -> Measure:
+        return self.measures[name]
+
+    def get(self, name: str) -> Measure | None:
+        """The measure called ``name``, or None."""
+        return self.measures.get(name)
+
+    def names(self) -> list[str]:
+        """Every measure name, sorted."""
+        return sorted(self.measures)
+
+    def known(self, name: str) -> Measure:
+        """The measure called ``name``.
+
+        Raises:
+            ValueError: No measure has that name (the message lists the known ones).
+        """
+        measure = self.measures.get(name)
+        if measure is None:
+            raise ValueError(f"unknown measure '{name}'; known: {', '.join(self.names())}")
+        return measure
+
+    def threshold(self, name: str, comparison: Comparison, text: str | float) -> Threshold:
+        """Parse a threshold written for the measure ``name`` (see :meth:`Measure.threshold`).
+
+        >>> from pipeline.config import shipped_measures
+        >>> shipped_measures().threshold("hba1c", "at_least", "48 mmol/mol").canonical_value
+        6.54304
+
+        Raises:
+            ValueError: Unknown measure, missing or non-convertible unit.
+        """
+        return self.known(name).threshold(comparison, text)
+
+    def conversion_rows(self) -> list[tuple[str, str, float, float, float, float, float]]:
+        """Return (measure, unit spelling, factor, divisor, offset, low, high) per unit.
+
+        The compiler turns these rows into a small literal table that measurements are
+        joined to; measures in name order, units in the order their file lists them.
+        """
+        return [
+            (m.name, u.spelling, u.factor, u.divisor, u.offset, m.plausible[0], m.plausible[1])
+            for m in sorted(self.measures.values(), key=lambda m: m.name)
+            for u in m.units
+            if not m.is_coded
+        ]
 
 
 # Measures the engine can derive when they are not reported, and what from.
@@ -182,15 +161,13 @@ DERIVED_FROM: dict[str, tuple[str, ...]] = {
 # read whatever their date).
 SAME_DAY_INPUTS: dict[str, tuple[str, ...]] = {"egfr": ("creatinine",), "bmi": ("weight",)}
 
-
-def conversion_rows() -> list[tuple[str, str, float, float, float, float, float]]:
-    """Return (measure, unit spelling, factor, divisor, offset, low, high) per accepted unit.
-
-    The compiler turns these rows into a small literal table that measurements are joined to.
-    """
-    return [
-        (m.name, u.spelling, u.factor, u.divisor, u.offset, m.plausible[0], m.plausible[1])
-        for m in sorted(MEASURES.values(), key=lambda m: m.name)
-        for u in m.units
-        if not m.is_coded
-    ]
+# The canonical units the built-in derivations are written for: CKD-EPI 2021 takes creatinine
+# in mg/dL, BMI is kg over metres squared with height read in cm. A measure file may change
+# these measures' spellings and ranges, not their canonical units.
+DERIVATION_UNITS: dict[str, str] = {
+    "creatinine": "mg/dL",
+    "egfr": "mL/min/1.73m2",
+    "weight": "kg",
+    "height": "cm",
+    "bmi": "kg/m2",
+}

@@ -31,7 +31,7 @@ from pipeline.errors import AscertainError
 MANIFEST = "manifest.json"
 MANIFEST_VERSION = 2
 CHUNK = 1 << 20
-INPUT_GROUPS = ("study", "definitions", "extract")
+INPUT_GROUPS = ("study", "definitions", "measures", "extract")
 LIBRARY_PREFIX = "library:"
 
 
@@ -97,6 +97,18 @@ def definition_path(file: Path, study_file: Path, *, library: bool) -> str:
     return portable_path(file, study_file.parent) or file.name
 
 
+def measure_path(file: Path, study_file: Path) -> str:
+    """How a manifest names a measure file: ``library:measures/...`` for a shipped one.
+
+    Shipped measures are named inside the library wherever ascertain is installed (as
+    :func:`definition_path` does); a study's own relative to the study's folder.
+    """
+    library = library_folder().resolve()
+    if file.resolve().is_relative_to(library):
+        return LIBRARY_PREFIX + file.resolve().relative_to(library).as_posix()
+    return portable_path(file, study_file.parent) or file.name
+
+
 def extract_root(extract: Path | str) -> Path:
     """The folder extract files are named relative to: the folder, or a mapping file's folder.
 
@@ -138,6 +150,7 @@ def _locations(
 
 _NOT_STUDY_KEYS: dict[str, Any] = {
     "definitions": True,
+    "measures": True,
     "extract": True,
     "engine": True,
     "spark": True,
@@ -178,6 +191,7 @@ def make_manifest(
     engine: dict[str, Any],
     study_file: Path,
     definition_files: Iterable[Path],
+    measure_files: Iterable[Path] = (),
     library: bool = False,
     extract: Path | str,
     extract_entries: list[dict[str, Any]],
@@ -194,6 +208,7 @@ def make_manifest(
         engine: The engine's name, version and thread count.
         study_file: The study file, resolved.
         definition_files: Every definition file the study's catalog loaded.
+        measure_files: Every measure file the build read (shipped and the study's own).
         library: The study reads the shipped library (see :func:`definition_path`).
         extract: The extract folder, site mapping file or connection URI the build read.
         extract_entries: ``describe_files`` of the extract's files, relative to its root.
@@ -213,6 +228,7 @@ def make_manifest(
         "definitions": _describe(
             {f: definition_path(f, study_file, library=library) for f in set(definition_files)}
         ),
+        "measures": _describe({f: measure_path(f, study_file) for f in set(measure_files)}),
         "extract": extract_entries,
         "locations": _locations(extract, study_file, out, database),
         "plan_hash": plan_hash,

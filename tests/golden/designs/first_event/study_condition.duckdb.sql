@@ -1,4 +1,4 @@
--- plan for study design_first_event_condition (23 stages, dialect duckdb)
+-- plan for study design_first_event_condition (24 stages, dialect duckdb)
 
 -- reads src_patients: patient_id, sex, death_date, birth_date, birth_year, practice_id, registration_date, deregistration_date
 
@@ -1015,3 +1015,12 @@ FROM (
 GROUP BY
   source_table,
   reason;
+
+-- stage evidence_counts [table]: patient-days per piece of evidence, so a definition matching no row is reported
+-- reads: evidence_events
+SELECT
+  evidence,
+  COUNT(*) AS n_events
+FROM evidence_events
+GROUP BY
+  evidence;
