@@ -9,14 +9,19 @@ from __future__ import annotations
 
 import math
 
-import numpy as np
 import polars as pl
 import pytest
 from scipy import stats
 
-from pipeline.outputs._report_at_risk import END, at_risk_block, at_risk_days, render_at_risk
+from pipeline.outputs._report_at_risk import (
+    BIN_FIELDS,
+    END,
+    at_risk_block,
+    at_risk_days,
+    render_at_risk,
+)
 from pipeline.outputs._report_curves import band_note, outcome_curves
-from pipeline.outputs._report_suppression import hidden_keys
+from pipeline.outputs._report_suppression import Block, hidden_keys
 from pipeline.outputs._report_tables import incidence_block
 from pipeline.stats import cumulative_incidence_at_horizon, protect_cells
 from pipeline.stats._disclosure import feasible_range
@@ -117,79 +122,87 @@ def test_band_caption_names_the_method() -> None:
 
 
 def test_at_risk_days_are_whole_years_from_index() -> None:
-    assert at_risk_days(1461) == ([0, 365, 730, 1095, 1461], False)
-    assert at_risk_days(1460) == ([0, 365, 730, 1095], True)
-    assert at_risk_days(0) == ([0], False)
+    assert at_risk_days(1461) == [0, 365, 730, 1095, 1461]
+    assert at_risk_days(1460) == [0, 365, 730, 1095]
+    assert at_risk_days(0) == [0]
 
 
-def _table(block: object, outcome: str = "x") -> dict[tuple[str, str], int]:
-    frame = block.frame.filter(pl.col("outcome") == outcome)  # type: ignore[attr-defined]
+def _table(block: Block, outcome: str = "x") -> dict[tuple[str, str], int]:
+    frame = block.frame.filter(pl.col("outcome") == outcome)
     return {(r["day"], r["field"]): r["n"] for r in frame.iter_rows(named=True)}
+
+
+def _keys(block: Block) -> dict[tuple[str, str], str]:
+    return {(r["day"], r["field"]): r["n#key"] for r in block.frame.iter_rows(named=True)}
 
 
 def test_hand_counted_numbers_at_risk() -> None:
     # Follow-up in days (code): 0 (death), 100 (event), 365 (event), 365 (censored),
     # 400 (event), 700 (censored), 730 (event), 800 (death): longest 800, so columns 0, 365,
-    # 730 and an end column.
+    # 730 and End.
     days = [0, 100, 365, 365, 400, 700, 730, 800]
     codes = [2, 1, 1, 0, 1, 0, 1, 2]
     block = at_risk_block(_cohort(days, codes), ["x"])
     assert _table(block) == {
         ("0", "at_risk"): 8,  # everyone is followed to day 0
         ("365", "at_risk"): 6,  # all but the death on day 0 and the event on day 100
-        ("365", "events"): 2,  # days 100 and 365
-        ("365", "left"): 2,  # the death on day 0, the censoring on day 365
+        ("365", "events"): 1,  # day 100
+        ("365", "left"): 1,  # the death on day 0
         ("730", "at_risk"): 2,  # days 730 and 800
-        ("730", "events"): 4,
-        ("730", "left"): 3,
+        ("730", "events"): 3,  # days 100, 365, 400
+        ("730", "left"): 3,  # days 0, 365, 700
         (END, "events"): 4,
         (END, "left"): 4,
+        # the bins, never printed: follow-up ending in [0, 365), [365, 730), from 730 on
+        ("0", "events_in"): 1,
+        ("0", "left_in"): 1,
+        ("365", "events_in"): 2,
+        ("365", "left_in"): 2,
+        ("730", "events_in"): 1,
+        ("730", "left_in"): 1,
     }
-    keys = dict(zip(block.frame["day"] + block.frame["field"], block.frame["n#key"], strict=True))
-    # day 0 and the end column are the incidence table's own counts (one key each)
-    assert keys["0at_risk"] == "atrisk|x"
-    assert (keys[f"{END}events"], keys[f"{END}left"]) == ("events|x", "nonevents|x")
-    # every relation holds for the counts, bins included (protect_cells checks each)
-    values = {**dict(zip(block.frame["n#key"], block.frame["n"], strict=True)), **block.latent}
-    protect_cells(values, block.relations, 1, latent=block.latent)
     # at risk on a day = at risk at 0 - events before it - censored or died before it
-    durations, event = np.array(days), np.array(codes) == 1
-    for day in (365, 730):
-        before = durations < day
-        assert _table(block)[(str(day), "at_risk")] == 8 - int(before.sum())
-        assert int((before & event).sum()) <= _table(block)[(str(day), "events")]
+    table = _table(block)
+    for day in ("365", "730"):
+        assert table[(day, "at_risk")] == 8 - table[(day, "events")] - table[(day, "left")]
+    # day 0 and End are the incidence table's own counts (one key each)
+    keys = _keys(block)
+    assert keys[("0", "at_risk")] == "atrisk|x"
+    assert (keys[(END, "events")], keys[(END, "left")]) == ("events|x", "nonevents|x")
+    assert block.unprinted == {
+        keys[(d, f)] for d in ("0", "365", "730") for f in BIN_FIELDS.values()
+    }
+    # every relation holds for the counts (protect_cells checks each)
+    values = dict(zip(block.frame["n#key"], block.frame["n"], strict=True))
+    protect_cells(values, block.relations, 1)
 
 
-def test_without_an_end_column_the_last_year_holds_the_totals() -> None:
+def test_end_follows_the_horizon_column_with_the_events_on_its_day() -> None:
     days = [100, 1461, 1461, 1461]
     block = at_risk_block(_cohort(days, [1, 1, 0, 0]), ["x"])
     table = _table(block)
-    assert (END, "events") not in table
-    keys = dict(zip(block.frame["day"] + block.frame["field"], block.frame["n#key"], strict=True))
-    assert (keys["1461events"], keys["1461left"]) == ("events|x", "nonevents|x")
-    assert (table[("1461", "at_risk")], table[("1461", "events")]) == (3, 2)
+    assert (table[("1461", "at_risk")], table[("1461", "events")]) == (3, 1)
+    assert (table[(END, "events")], table[("1461", "events_in")]) == (2, 1)
 
 
 def test_small_numbers_at_risk_are_hidden_with_complements() -> None:
     # 60 at risk: 3 events in the first year, then nobody leaves before day 1461, where 9 have
     # the outcome. At risk at 0, 60, and at one year, 57, with nobody censored: the 3 events
-    # of the first year would be 60 - 57 - 0 - (events and censored on day 365 itself, 0 as
-    # at risk at 2 years is 57 too): some shown count must be hidden with them.
+    # before day 365 would be 60 - 57 - 0, so a shown count must be hidden with them; and the
+    # bin of those 3 (never printed) is protected as well.
     days = [50, 120, 300, *[1461] * 57]
     codes = [1, 1, 1, *[1] * 9, *[0] * 48]
     cohort = _cohort(days, codes).with_columns(prevalent_x=pl.lit(value=False))
     _, incidence = incidence_block(cohort, ["x"])
     block = at_risk_block(cohort, ["x"])
     hidden = hidden_keys([incidence, block], 5, cohort, ["x"])
-    assert "ar|x|365|events" in hidden
-    assert len(hidden - {"ar|x|365|events", "ar|x|730|events", "ar|x|1095|events"}) >= 1
-    values = {
-        **incidence.values(),
-        **dict(zip(block.frame["n#key"], block.frame["n"], strict=True)),
-        **block.latent,
-    }
+    assert {"ar|x|365|events", "arbin|x|0|events"} <= hidden
+    assert "ar|x|365|at_risk" in hidden  # the complement: "left" is 0, at risk at 0 is needed
+    values = incidence.values() | dict(zip(block.frame["n#key"], block.frame["n"], strict=True))
     relations = [*incidence.all_relations(), *block.relations]
-    low, high = feasible_range("ar|x|365|events", values, relations, {*hidden, *block.latent})
-    assert high - low >= 5
+    for cell in ("ar|x|365|events", "arbin|x|0|events"):
+        low, high = feasible_range(cell, values, relations, hidden | block.unprinted)
+        assert high - low >= 5, (cell, low, high)
     html = render_at_risk(block, "x", hidden, 5).replace("&lt;", "<")
     assert 'data-day="365" data-count="events" class="num n"><5<' in html
+    assert "events_in" not in html

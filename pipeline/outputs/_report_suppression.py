@@ -71,8 +71,10 @@ class Block:
         relations: Further identities between keys (beyond rows adding up to ``total``).
         meanings: For counts of cohort patients, which patients (see :mod:`._report_cells`).
         extra: Counts that are not printed but taken as known (e.g. rows read), by key.
-        latent: Counts that are never released but tie released ones together (e.g. the
-            patients whose follow-up ends between two columns of a numbers-at-risk table).
+        unprinted: Keys of counts that are not printed but that readers can work out from
+            printed ones (the patients whose follow-up ends between two columns of a
+            numbers-at-risk table): one of 1 to ``threshold - 1`` is hidden and protected like
+            a printed count; the others are latent.
     """
 
     frame: pl.DataFrame
@@ -81,7 +83,7 @@ class Block:
     relations: tuple[Relation, ...] = ()
     meanings: Mapping[str, Spec] = field(default_factory=dict)
     extra: Mapping[str, int] = field(default_factory=dict)
-    latent: Mapping[str, int] = field(default_factory=dict)
+    unprinted: frozenset[str] = frozenset()
 
     @property
     def cells(self) -> tuple[str, ...]:
@@ -122,10 +124,10 @@ def hidden_keys(
     meanings: dict[str, Spec] = {}
     relations: list[Relation] = []
     known: set[str] = set()
-    unreleased: dict[str, int] = {}
+    unprinted: set[str] = set()
     for block in blocks:
         values |= block.values()
-        unreleased |= block.latent
+        unprinted |= block.unprinted
         meanings |= block.meanings
         relations += block.all_relations()
         known |= set(block.extra)
@@ -134,7 +136,9 @@ def hidden_keys(
     atoms = cohort_atoms(cohort, outcomes, variables)
     relations += atom_relations(atoms, meanings)
     alias = aliases(atoms, meanings)
-    latent = atoms.values() | unreleased
+    # An unprinted count is protected when it is small, else only ties printed ones together.
+    large = {k: values.pop(k) for k in sorted(unprinted) if not 0 < values[k] < threshold}
+    latent = atoms.values() | large
     merged: dict[str, int] = {}
     for key, value in {**values, **latent}.items():
         merged[alias.get(key, key)] = value
