@@ -175,18 +175,24 @@ def read_json(path: Path) -> dict[str, Any]:
     return data if isinstance(data, dict) else {}
 
 
-def column_labels(output_dir: Path) -> dict[str, str]:
-    """Readable labels of the analysis-table columns from ``dictionary.csv`` (if present)."""
+def column_labels(output_dir: Path, own: dict[str, str]) -> dict[str, str]:
+    """How tables for readers name the analysis-table columns: the one place labels are chosen.
+
+    A covariate's own ``label:`` from the study (``own``) wins; every other column is named by
+    its documented meaning and unit in ``dictionary.csv`` (if present), which names a
+    condition's columns by the condition's ``title:`` ("Heart failure on or before the index
+    date"): a condition's title is its label, there is no second name for it.
+    """
     try:
         dictionary = pl.read_csv(output_dir / "dictionary.csv", infer_schema_length=0)
     except (OSError, pl.exceptions.PolarsError):
-        return {}
+        return dict(own)
     labels = {}
     for r in dictionary.iter_rows(named=True):
         meaning = r.get("meaning") or r["column"]
         text = meaning[:1].upper() + meaning[1:]
         labels[r["column"]] = f"{text} ({r['unit']})" if r.get("unit") else text
-    return labels
+    return labels | own
 
 
 def with_headline_time(incidence: pl.DataFrame, headlines: dict[str, Headline]) -> pl.DataFrame:
@@ -276,7 +282,7 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
         quality=pl.concat([masked(b, hidden, t) for b in quality_parts]),
         curves={o: c.years() for o, c in curves.items()},
         at_risk={o: render_at_risk(at_risk, o, hidden, t) for o in curves},
-        labels=column_labels(output_dir) | study.labels,
+        labels=column_labels(output_dir, study.labels),
     )
     names = [REPORT_PAGE, *(f"{SUMMARY}/{name}.csv" for name in sorted(summaries))]
     with staging(output_dir) as staged:
