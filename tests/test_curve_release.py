@@ -13,7 +13,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from pipeline.outputs._report_curves import CURVE_GRID_DAYS, curve_data, curve_note
+from pipeline.outputs._report_curves import CURVE_GRID_DAYS, curve_note, outcome_curves
 from pipeline.stats import (
     DAYS_PER_YEAR,
     OUTCOME,
@@ -151,7 +151,7 @@ def test_report_curves_step_only_on_the_grid_with_enough_events() -> None:
     days = rng.integers(1, 1461, 400).tolist()
     codes = rng.choice([0, 1, 2], 400, p=[0.6, 0.3, 0.1]).tolist()
     cohort = _cohort([*days, *[1461] * 50], [*codes, *[0] * 50])
-    aj_t, aj_v, km_t, km_v = curve_data(cohort, "x", 5)
+    aj_t, aj_v, _, _, km_t, km_v = outcome_curves(cohort, "x", 5).years()
     d, c = np.asarray(cohort["followup_days"]), np.asarray(codes + [0] * 50)
     step_days = np.round(aj_t * DAYS_PER_YEAR, 6)
     assert np.array_equal(aj_t, km_t)  # the two curves share events and risk sets

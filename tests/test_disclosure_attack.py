@@ -1,11 +1,13 @@
 """An attack on the released summary tables: can a reader work out a hidden count?
 
-The attacker reads only what was written (``summary/*.csv``, and the cohort size in
-``manifest.json``), knows what each table counts,
-and writes the identities between the tables from that meaning alone (this file does not use
-the suppression code's relations). Each patient of the cohort falls in one *atom*: a state per
-outcome (E incident, F at risk without the event, P prevalent, so not at risk) and, for each
-Table 1 variable, a level. Every released count is a sum of atoms; shown counts are
+The attacker reads only what was written (``summary/*.csv``, the numbers-at-risk tables under
+the curves in ``report.html``, and the cohort size in ``manifest.json``), knows what each table
+counts, and writes the identities between the tables from that meaning alone (this file does
+not use the suppression code's relations). Each patient of the cohort falls in one *atom*: a
+state per outcome (E incident, F at risk without the event, P prevalent, so not at risk) and,
+for each Table 1 variable, a level; and, per outcome with a numbers-at-risk table, in a *bin*:
+the year (from one column's day to the next, or from the last on) in which follow-up ended, by
+the event or otherwise. Every released count is a sum of atoms or bins; shown counts are
 equations, hidden ones unknowns. An exact integer solver (``scipy.optimize.milp``) then
 minimises and maximises each hidden count. The release passes when no hidden count is pinned
 to fewer than ``threshold`` + 1 values (``max - min >= 5``); the markers' own bounds ("<5"
@@ -16,8 +18,11 @@ disclosure control (interval/"protection level" audits), written here from memor
 from __future__ import annotations
 
 import csv
+import html
 import json
 import math
+import re
+import shutil
 from collections.abc import Callable
 from html.parser import HTMLParser
 from itertools import product, takewhile
@@ -30,6 +35,7 @@ from scipy.optimize import Bounds, LinearConstraint, milp
 
 from pipeline._build import BuildOptions, build_study
 from pipeline.outputs._report import write_report
+from pipeline.synth import generate_extract
 
 from .conftest import DEMO_STUDY, HANDMADE
 from .helpers import demo_study_variant
@@ -53,6 +59,20 @@ def tiny(tmp_path_factory: pytest.TempPathFactory) -> Path:
     build_study(DEMO_STUDY, BuildOptions(extract=HANDMADE, out=out))
     write_report(out)
     return out
+
+
+@pytest.fixture(scope="module")
+def sparse(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """3,000 synthetic patients: the curves are drawn, some numbers at risk are small."""
+    base = tmp_path_factory.mktemp("attack_sparse")
+    generate_extract(base / "extract", patients=3000, seed=5)
+    build_study(DEMO_STUDY, BuildOptions(extract=base / "extract", out=base / "out"))
+    write_report(base / "out")
+    return base / "out"
+
+
+# A numbers-at-risk cell of report.html: outcome, day, count, and the text printed.
+AT_RISK_CELL = re.compile(r'data-outcome="(\w+)" data-day="(\w+)" data-count="(\w+)"[^>]*>([^<]*)<')
 
 
 def _rows(path: Path) -> list[dict[str, str]]:
@@ -79,6 +99,17 @@ class Attack:
             self.names += [("l", s, v, lv) for s in self.states for lv in sorted(levels)]
         self.flow = _rows(folder / "summary" / "flow.csv")
         self.names += [("flow", (), c, str(i)) for i in range(len(self.flow)) for c in ("b", "r")]
+        page = (folder / "report.html").read_text(encoding="utf-8")
+        self.at_risk = {
+            (o, d, c): html.unescape(text).replace(",", "")
+            for o, d, c, text in AT_RISK_CELL.findall(page)
+        }
+        # each outcome's bins: [day, next day) for the days of its columns, the last one open
+        self.bins: dict[str, list[tuple[int, float]]] = {}
+        for o in sorted({o for o, _, _ in self.at_risk}):
+            days = sorted(int(d) for x, d, c in self.at_risk if x == o and c == "at_risk")
+            self.bins[o] = list(zip(days, [*days[1:], math.inf], strict=True))
+            self.names += [("bin", (), o, f"{lo}|{k}") for lo, _ in self.bins[o] for k in "ec"]
         self.index = {n: i for i, n in enumerate(self.names)}
         # (coefficients, released text, description); a cell is a sum of atoms
         self.cells: list[tuple[dict[int, int], str, str]] = []
@@ -170,9 +201,55 @@ class Attack:
             )
             self.cells.append((remaining, r["remaining"], f"flow {i} remaining"))
             self.identities.append({before: 1, removed: -1} | dict.fromkeys(remaining, -1))
+        self._read_at_risk()
+
+    def _bin(self, o: str, low: int, kind: str) -> int:
+        return self.index[("bin", (), o, f"{low}|{kind}")]
+
+    def _read_at_risk(self) -> None:
+        """At risk on a day: the bins from it on; before a day: the bins before; End: all."""
+        for o, bins in self.bins.items():
+            k = self._state(o)
+            events = {self._bin(o, lo, "e"): 1 for lo, _ in bins}
+            others = {self._bin(o, lo, "c"): 1 for lo, _ in bins}
+            at_risk = self._of(lambda s, k=k: s[k] in "EF")
+            self.identities.append(events | others | dict.fromkeys(at_risk, -1))
+            self.identities.append(events | dict.fromkeys(self._of(lambda s, k=k: s[k] == "E"), -1))
+        for (o, day, count), text in self.at_risk.items():
+            kinds = "ec" if count == "at_risk" else {"events": "e", "left": "c"}[count]
+            if count == "at_risk":
+                chosen = [lo for lo, _ in self.bins[o] if lo >= int(day)]
+            else:
+                chosen = [lo for lo, _ in self.bins[o] if day == "end" or lo < int(day)]
+            coefficients = {self._bin(o, lo, kind): 1 for lo in chosen for kind in kinds}
+            self.cells.append((coefficients, text, f"at risk table {o} {day} {count}"))
+
+    def bin_truth(self, folder: Path) -> dict[int, int]:
+        """The true size of every bin, from the cohort (to judge which bins are small)."""
+        cohort = pl.read_parquet(folder / "cohort.parquet")
+        truth = {}
+        for o, bins in self.bins.items():
+            rows = cohort.filter(pl.col(f"at_risk_{o}"))
+            incident = rows[f"incident_{o}"].to_numpy()
+            days = np.where(incident, rows[f"days_to_{o}"].fill_null(-1), rows["followup_days"])
+            for lo, hi in bins:
+                inside = (days >= lo) & (days < hi)
+                truth[self._bin(o, lo, "e")] = int((inside & incident).sum())
+                truth[self._bin(o, lo, "c")] = int((inside & ~incident).sum())
+        return truth
 
     def ranges(self) -> list[tuple[str, float, float]]:
         """Every hidden cell's exact (min, max) given all shown cells and identities."""
+        hidden = [(c, what) for c, text, what in self.cells if text in MARKERS]
+        return self.extremes(hidden)
+
+    def bin_leaks(self, truth: dict[int, int]) -> list[tuple[str, float, float]]:
+        """Bins of 1 to 4 patients (never printed) that the released counts pin below 5 values."""
+        small = [({i: 1}, self.names[i]) for i, n in truth.items() if 0 < n < THRESHOLD]
+        return [(str(w), lo, hi) for w, lo, hi in self.extremes(small) if hi - lo < THRESHOLD]
+
+    def extremes(self, targets: list[tuple[dict[int, int], object]]) -> list[tuple]:
+        """The exact (min, max) of each sum of unknowns, given all shown cells and identities."""
         n = len(self.names)
         rows = [dict(eq) for eq in self.identities]
         rhs = [0.0] * len(rows)
@@ -186,9 +263,7 @@ class Attack:
                 matrix[r, k] = c
         constraints = LinearConstraint(matrix, rhs, rhs)
         out = []
-        for coefficients, text, what in self.cells:
-            if text not in MARKERS:
-                continue
+        for coefficients, what in targets:
             objective = np.zeros(n)
             for k, c in coefficients.items():
                 objective[k] = c
@@ -235,6 +310,7 @@ def _naive(folder: Path) -> Attack:
             count[k] = cohort.filter(states[name[1]]).height
         elif name[0] == "l":
             count[k] = cohort.filter(states[name[1]] & levels[(name[2], name[3])]).height
+    count |= truth.bin_truth(folder)
     for i, r in enumerate(_rows(folder / "attrition.csv")):
         count[truth.index[("flow", (), "b", str(i))]] = int(r["patients_before"])
         count[truth.index[("flow", (), "r", str(i))]] = int(r["removed"])
@@ -246,13 +322,68 @@ def _naive(folder: Path) -> Attack:
     return truth
 
 
-@pytest.mark.parametrize("which", ["demo", "tiny"])
+@pytest.mark.parametrize("which", ["demo", "tiny", pytest.param("sparse", marks=pytest.mark.slow)])
 def test_no_hidden_count_can_be_narrowed_down(which: str, request: pytest.FixtureRequest) -> None:
     attack = Attack(request.getfixturevalue(which))
     ranges = attack.ranges()
-    assert ranges  # both cohorts have hidden counts
+    assert ranges  # every cohort has hidden counts
     narrow = [(what, lo, hi) for what, lo, hi in ranges if hi - lo < THRESHOLD]
     assert not narrow
+
+
+@pytest.mark.parametrize("which", ["demo", pytest.param("sparse", marks=pytest.mark.slow)])
+def test_no_small_bin_of_the_numbers_at_risk_can_be_narrowed_down(
+    which: str, request: pytest.FixtureRequest
+) -> None:
+    # The year in which follow-up ended is never printed, but differences of the printed
+    # columns give it; where it holds 1 to 4 patients, the tables must not pin it.
+    folder = request.getfixturevalue(which)
+    attack = Attack(folder)
+    assert attack.bins  # the curves and their tables are drawn
+    assert attack.bin_leaks(attack.bin_truth(folder)) == []
+
+
+def _tampered(folder: Path, tmp_path: Path, cell: tuple[str, str, str], text: str) -> Path:
+    """A copy of the folder whose report.html prints ``text`` in one numbers-at-risk cell."""
+    copy = tmp_path / "copy"
+    shutil.copytree(folder, copy)
+    page = (copy / "report.html").read_text(encoding="utf-8")
+    o, day, count = cell
+    pattern = rf'(data-outcome="{o}" data-day="{day}" data-count="{count}"[^>]*>)[^<]*<'
+    page, n = re.subn(pattern, lambda m: f"{m.group(1)}{html.escape(text)}<", page)
+    assert n == 1
+    (copy / "report.html").write_text(page, encoding="utf-8")
+    return copy
+
+
+def test_the_attack_finds_a_lone_hidden_number_at_risk(demo: Path, tmp_path: Path) -> None:
+    # Hand case: hide only heart failure's at risk at one year. At risk at 0 minus events
+    # and censored before day 365 gives it back; the attack must say so.
+    cell = ("heart_failure", "365", "at_risk")
+    value = float(Attack(demo).at_risk[cell])
+    attack = Attack(_tampered(demo, tmp_path, cell, "*"))
+    found = [(what, lo, hi) for what, lo, hi in attack.ranges() if "at risk table" in what]
+    assert found == [(f"at risk table {' '.join(cell)}", value, value)]
+
+
+@pytest.mark.slow
+def test_the_attack_finds_a_small_bin_given_away(sparse: Path, tmp_path: Path) -> None:
+    # Hand case: print a hidden count of the sparse report as its true value. The year bins
+    # it protected are then pinned, and the attack must find one of 1 to 4 patients. (The
+    # sparse report has hidden numbers at risk and small bins, so the tests above judge them.)
+    attack = Attack(sparse)
+    truth = attack.bin_truth(sparse)
+    assert any(0 < n < THRESHOLD for n in truth.values())
+    hidden = [
+        (c, w.split()[3:]) for c, text, w in attack.cells if text in MARKERS and "at risk" in w
+    ]
+    assert hidden
+    leaked = []
+    for coefficients, (o, day, count) in hidden:
+        value = str(sum(truth[k] * c for k, c in coefficients.items()))
+        copy = _tampered(sparse, tmp_path / f"{o}{day}{count}", (o, day, count), value)
+        leaked += Attack(copy).bin_leaks(truth)
+    assert leaked
 
 
 def test_the_attack_breaks_primary_suppression_alone(tiny: Path) -> None:

@@ -298,6 +298,10 @@ def test_table_one_names_covariates_by_their_label(
     html = (out / "report.html").read_text(encoding="utf-8")
     assert label in html
     assert "Hba1c" in html or "HbA1c" in html
+    # a condition is named by its title (its label): as a covariate, prevalent, by incidence
+    assert "<td>Hypertension on or before the index date, n (%)" in html
+    assert "<td>Heart failure on or before the index date, n (%)" in html
+    assert "<h3>By incident Heart failure</h3>" in html
     assert "<th class=num>SMD</th>" in html
 
 

@@ -254,6 +254,10 @@ class Condition(Model):
     ``first_evidence`` on the earliest evidence of the sets of events that met a rule that day
     (of every such set, when several meet one), so evidence outside those sets (an inhaler
     years before the codes) never dates the case.
+
+    ``title`` is also the condition's label wherever a table names it for readers: the data
+    dictionary's meanings ("Heart failure on or before the index date"), and from them Table 1
+    and the report's headings, curves and incidence table. A condition has no second name.
     """
 
     condition: Name

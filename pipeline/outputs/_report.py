@@ -13,6 +13,7 @@ names files relative to the study's folder, never by a path of the machine it ra
 from __future__ import annotations
 
 import json
+import math
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -24,7 +25,8 @@ from pipeline.config._check import explain_condition
 from pipeline.errors import AscertainError
 from pipeline.outputs._manifest import definition_path, read_manifest, sha256_file
 from pipeline.outputs._ownership import REPORT, check_folder, install, staging
-from pipeline.outputs._report_curves import curve_data
+from pipeline.outputs._report_at_risk import at_risk_block, render_at_risk
+from pipeline.outputs._report_curves import Headline, outcome_curves
 from pipeline.outputs._report_html import assemble
 from pipeline.outputs._report_suppression import hidden_keys, masked
 from pipeline.outputs._report_table_one import (
@@ -173,18 +175,40 @@ def read_json(path: Path) -> dict[str, Any]:
     return data if isinstance(data, dict) else {}
 
 
-def column_labels(output_dir: Path) -> dict[str, str]:
-    """Readable labels of the analysis-table columns from ``dictionary.csv`` (if present)."""
+def column_labels(output_dir: Path, own: dict[str, str]) -> dict[str, str]:
+    """How tables for readers name the analysis-table columns: the one place labels are chosen.
+
+    A covariate's own ``label:`` from the study (``own``) wins; every other column is named by
+    its documented meaning and unit in ``dictionary.csv`` (if present), which names a
+    condition's columns by the condition's ``title:`` ("Heart failure on or before the index
+    date"): a condition's title is its label, there is no second name for it.
+    """
     try:
         dictionary = pl.read_csv(output_dir / "dictionary.csv", infer_schema_length=0)
     except (OSError, pl.exceptions.PolarsError):
-        return {}
+        return dict(own)
     labels = {}
     for r in dictionary.iter_rows(named=True):
         meaning = r.get("meaning") or r["column"]
         text = meaning[:1].upper() + meaning[1:]
         labels[r["column"]] = f"{text} ({r['unit']})" if r.get("unit") else text
-    return labels
+    return labels | own
+
+
+def with_headline_time(incidence: pl.DataFrame, headlines: dict[str, Headline]) -> pl.DataFrame:
+    """Add when each cumulative incidence is estimated (years), empty where it is left out."""
+    years = [
+        None
+        if row["cumulative_incidence_percent"] is None or math.isnan(headlines[row["outcome"]].days)
+        else round(headlines[row["outcome"]].years, 2)
+        for row in incidence.iter_rows(named=True)
+    ]
+    columns = incidence.columns
+    at = columns.index("ci_high_percent") + 1
+    order = [*columns[:at], "cumulative_incidence_years", *columns[at:]]
+    return incidence.with_columns(
+        pl.Series("cumulative_incidence_years", years, dtype=pl.Float64)
+    ).select(order)
 
 
 def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]:
@@ -226,8 +250,15 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
     combos = combinations_block(cohort, outcomes)
     dependence = dependence_block(cohort, outcomes)
     quality_parts = quality_blocks(quality)
+    at_risk = at_risk_block(cohort, outcomes)
     blocks = [flow, *(b for _, *pair in t1.values() for b in pair), incidence, combos, dependence]
-    hidden = hidden_keys([*blocks, *quality_parts], t, cohort, outcomes)
+    hidden = hidden_keys([*blocks, at_risk, *quality_parts], t, cohort, outcomes)
+    curves = {o: outcome_curves(cohort, o, t) for o in outcomes if f"events|{o}" not in hidden}
+    # The headline cumulative incidence is the released curve's value at its last step, not
+    # the full estimate at the horizon beside it (see _report_curves on why).
+    none = Headline(math.nan, math.nan, math.nan, math.nan)
+    headlines = {o: curves[o].headline if o in curves else none for o in outcomes}
+    results = [(o, ci, headlines[o], rate) for o, ci, _, rate in results]
     no_means = differenced_means((long for long, *_ in t1.values()), t)
     summaries = {
         "flow": masked(flow, hidden, t),
@@ -237,19 +268,21 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
                 for o, (long, *parts) in t1.items()
             ]
         ),
-        "incidence": incidence_summary(results, study.titles, hidden, t),
+        "incidence": with_headline_time(
+            incidence_summary(results, study.titles, hidden, t), headlines
+        ),
         "combinations": masked(combos, hidden, t),
         "dependence": dependence_summary(dependence, hidden, t),
     }
-    curves = {o: curve_data(cohort, o, t) for o in outcomes if f"events|{o}" not in hidden}
     html = assemble(
         study=study,
         manifest=manifest,
         run=read_json(output_dir / "run.json"),
         summaries=summaries,
         quality=pl.concat([masked(b, hidden, t) for b in quality_parts]),
-        curves=curves,
-        labels=column_labels(output_dir) | study.labels,
+        curves={o: c.years() for o, c in curves.items()},
+        at_risk={o: render_at_risk(at_risk, o, hidden, t) for o in curves},
+        labels=column_labels(output_dir, study.labels),
     )
     names = [REPORT_PAGE, *(f"{SUMMARY}/{name}.csv" for name in sorted(summaries))]
     with staging(output_dir) as staged:

@@ -103,6 +103,9 @@ svg.flow{max-width:860px}
 .axis-label{font-size:12px;fill:var(--muted);text-anchor:middle}
 .aj{fill:none;stroke:var(--accent);stroke-width:2.2}
 .km{fill:none;stroke:var(--compare);stroke-width:1.6;stroke-dasharray:6 4}
+.band{fill:var(--accent);fill-opacity:.16;stroke:none}
+.swatch.band{height:12px;border-top:0;background:var(--accent);opacity:.16}
+table.at-risk{font-size:12px;margin:2px 0 0}table.at-risk th{font-weight:600}
 .legend{display:flex;gap:22px;font-size:13px;color:var(--muted);margin:4px 0 12px}
 .swatch{display:inline-block;width:28px;height:0;border-top:3px solid var(--accent);
 vertical-align:middle;margin-right:6px}.swatch.km{border-top:2px dashed var(--compare)}
@@ -271,7 +274,8 @@ def assemble(
     run: dict[str, Any],
     summaries: dict[str, pl.DataFrame],
     quality: pl.DataFrame,
-    curves: dict[str, tuple[Any, Any, Any, Any]],
+    curves: dict[str, tuple[Any, ...]],
+    at_risk: dict[str, str],
     labels: dict[str, str],
 ) -> str:
     """Put the whole page together from the suppressed tables.
@@ -282,7 +286,9 @@ def assemble(
         run: The build's run record (for the build date only).
         summaries: The suppressed summary tables by name.
         quality: The suppressed quality log.
-        curves: Per outcome with shown events, ``(aj_times, aj, km_times, 1 - km)`` in years.
+        curves: Per outcome with shown events, ``(aj_times, aj, band_low, band_high,
+            km_times, 1 - km)``, times in years (``OutcomeCurves.years``).
+        at_risk: Per outcome with a curve, its numbers-at-risk table as published HTML.
         labels: Readable labels of the analysis-table columns.
 
     Returns:
@@ -290,7 +296,10 @@ def assemble(
     """
     t, titles = study.threshold, study.titles
     horizon = max((float(c[0].max()) for c in curves.values()), default=1.0)
-    drawn = {o: Curve(titles.get(o, o), *c, horizon=horizon) for o, c in curves.items()}
+    drawn = {
+        o: Curve(titles.get(o, o), aj_t, aj, km_t, km, horizon=horizon, aj_low=lo, aj_high=hi)
+        for o, (aj_t, aj, lo, hi, km_t, km) in curves.items()
+    }
     built = str(run.get("finished_utc", "unknown"))[:10]
     version = manifest.get("tool_version", "?")
     body = {
@@ -300,7 +309,7 @@ def assemble(
             for o in study.outcomes
         ),
         "incidence": incidence_section(summaries["incidence"]),
-        "curves": curves_section(drawn, study.outcomes, titles, t),
+        "curves": curves_section(drawn, study.outcomes, titles, t, at_risk),
         "combinations": _combinations(summaries["combinations"], titles),
         "dependence": dependence_section(summaries["dependence"], titles),
         "definitions": _definitions(study.definitions),

@@ -13,7 +13,8 @@ from typing import Any
 
 import polars as pl
 
-from pipeline.outputs._report_curves import curve_note
+from pipeline.outputs._report_at_risk import at_risk_note
+from pipeline.outputs._report_curves import band_note, curve_note
 from pipeline.outputs._report_html_cells import n_cell as _n
 from pipeline.outputs._report_html_cells import num as _num
 from pipeline.outputs._report_html_cells import table as _table
@@ -114,24 +115,29 @@ def incidence_section(frame: pl.DataFrame) -> str:
         aj = ci(r["cumulative_incidence_percent"], r["ci_low_percent"], r["ci_high_percent"], 2)
         crude = ci(r["crude_percent"], r["crude_low_percent"], r["crude_high_percent"], 2)
         rate = ci(r["rate_per_1000_py"], r["rate_low"], r["rate_high"], 1)
+        at = r["cumulative_incidence_years"]
         rows.append(
             f"<tr><td>{escape(r['title'])}</td>{_n(r['at_risk'])}{_n(r['events'])}"
-            f'<td class="num">{aj}</td><td class="num">{_num(r["person_years"])}</td>'
+            f'<td class="num">{aj}</td><td class="num">{"" if at is None else f"{at:.2f}"}</td>'
+            f'<td class="num">{_num(r["person_years"])}</td>'
             f'<td class="num">{rate}</td><td class="num">{crude}</td></tr>'
         )
     head = [
         "Outcome",
         "At risk, n",
         "Events, n",
-        "Cumulative incidence at the horizon, % (95% CI)",
+        "Cumulative incidence, % (95% CI)",
+        "At, years",
         "Person-years",
         "Rate per 1,000 PY (95% CI)",
         "Crude proportion, % (95% CI)",
     ]
     return _table(head, rows) + (
         '<p class="note">At risk: patients without the condition at index. Cumulative incidence: '
-        "Aalen–Johansen estimate at the horizon with death as the competing event; 95% CI by "
-        "the delta method (the variance given by Collett 2015) on the log(−log) scale. "
+        "Aalen–Johansen estimate with death as the competing event, at the last step of the "
+        "released curve (At: the horizon when enough patients reach it; earlier, the last time "
+        "the curve may show); 95% CI by the delta method (the variance given by Collett 2015) on "
+        "the log(−log) scale. "
         "Rate: events per 1,000 person-years (days / 365.25) with an exact Poisson (Garwood) "
         "interval. Crude proportion: events over patients at risk, Wilson interval; it counts "
         "patients whose follow-up ended early as non-cases, so it understates the risk. "
@@ -140,11 +146,15 @@ def incidence_section(frame: pl.DataFrame) -> str:
 
 
 def curves_section(
-    curves: dict[str, Curve], outcomes: Sequence[str], titles: dict[str, str], threshold: int
+    curves: dict[str, Curve],
+    outcomes: Sequence[str],
+    titles: dict[str, str],
+    threshold: int,
+    at_risk: dict[str, str],
 ) -> str:
     figs = [
         f"<figure><figcaption>{escape(titles.get(o, o))}</figcaption>{render_curves(curves[o])}"
-        "</figure>"
+        f"{at_risk.get(o, '')}</figure>"
         for o in outcomes
         if o in curves
     ]
@@ -159,10 +169,14 @@ def curves_section(
     )
     legend = (
         '<div class="legend"><span><span class="swatch"></span>Aalen–Johansen, death as '
-        'competing event</span><span><span class="swatch km"></span>1 − Kaplan–Meier, '
+        'competing event</span><span><span class="swatch band"></span>its 95% confidence '
+        'band</span><span><span class="swatch km"></span>1 − Kaplan–Meier, '
         "deaths censored (overstates risk)</span></div>"
     )
-    coarse = f'<p class="note">{escape(curve_note(threshold))}</p>'
+    coarse = "".join(
+        f'<p class="note">{escape(text)}</p>'
+        for text in (curve_note(threshold), band_note(), at_risk_note(threshold))
+    )
     return legend + f'<div class="figs">{"".join(figs)}</div>' + coarse + note
 
 

@@ -1,8 +1,8 @@
 """The small-cell suppression shared by every table of the study report.
 
 Every released count of the report (the flow, Table 1 of each outcome, incidence,
-combinations, dependence and the quality log) is one cell of a single system, suppressed
-together by :func:`pipeline.stats.protect_cells`:
+combinations, dependence, the numbers at risk under the curves and the quality log) is one
+cell of a single system, suppressed together by :func:`pipeline.stats.protect_cells`:
 
 - Each count has a *key* naming the set it counts; a set shown in two tables (the cohort size
   in the flow and Table 1, the events of an outcome in the incidence table and as a Table 1
@@ -15,7 +15,8 @@ together by :func:`pipeline.stats.protect_cells`:
   (:mod:`._report_cells`) and tied to latent atoms of the cohort, which implies every identity
   between the tables (events of X = both + first only in the dependence table + Table 1's
   "incident X, prevalent Y" cell, combinations against incidence, and so on). Counts with the
-  same atoms share a key.
+  same atoms share a key. The numbers at risk under the curves are tied to the incidence table
+  through latent bins of follow-up time (:mod:`._report_at_risk`).
 - Complements are chosen from the detailed tables first (Table 1 by outcome, combinations,
   dependence, quality), then Table 1's overall column and the flow, then events and group
   sizes, and the cohort size and source population last: those are the numbers readers need.
@@ -70,6 +71,10 @@ class Block:
         relations: Further identities between keys (beyond rows adding up to ``total``).
         meanings: For counts of cohort patients, which patients (see :mod:`._report_cells`).
         extra: Counts that are not printed but taken as known (e.g. rows read), by key.
+        unprinted: Keys of counts that are not printed but that readers can work out from
+            printed ones (the patients whose follow-up ends between two columns of a
+            numbers-at-risk table): one of 1 to ``threshold - 1`` is hidden and protected like
+            a printed count; the others are latent.
     """
 
     frame: pl.DataFrame
@@ -78,6 +83,7 @@ class Block:
     relations: tuple[Relation, ...] = ()
     meanings: Mapping[str, Spec] = field(default_factory=dict)
     extra: Mapping[str, int] = field(default_factory=dict)
+    unprinted: frozenset[str] = frozenset()
 
     @property
     def cells(self) -> tuple[str, ...]:
@@ -118,8 +124,10 @@ def hidden_keys(
     meanings: dict[str, Spec] = {}
     relations: list[Relation] = []
     known: set[str] = set()
+    unprinted: set[str] = set()
     for block in blocks:
         values |= block.values()
+        unprinted |= block.unprinted
         meanings |= block.meanings
         relations += block.all_relations()
         known |= set(block.extra)
@@ -128,7 +136,9 @@ def hidden_keys(
     atoms = cohort_atoms(cohort, outcomes, variables)
     relations += atom_relations(atoms, meanings)
     alias = aliases(atoms, meanings)
-    latent = atoms.values()
+    # An unprinted count is protected when it is small, else only ties printed ones together.
+    large = {k: values.pop(k) for k in sorted(unprinted) if not 0 < values[k] < threshold}
+    latent = atoms.values() | large
     merged: dict[str, int] = {}
     for key, value in {**values, **latent}.items():
         merged[alias.get(key, key)] = value

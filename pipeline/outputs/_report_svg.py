@@ -171,6 +171,8 @@ class Curve:
         km_times: Kaplan-Meier step times.
         km_values: ``1 - KM`` with deaths censored.
         horizon: Right end of the x axis, in years.
+        aj_low: Lower limit of the pointwise band at each ``aj_times`` (no band when None).
+        aj_high: Upper limit of the band at each ``aj_times``.
     """
 
     title: str
@@ -179,6 +181,8 @@ class Curve:
     km_times: NDArray[np.float64]
     km_values: NDArray[np.float64]
     horizon: float
+    aj_low: NDArray[np.float64] | None = None
+    aj_high: NDArray[np.float64] | None = None
 
 
 def _nice_step(value: float) -> float:
@@ -201,8 +205,20 @@ def _step_path(
     return "".join(points)
 
 
+def _band_path(curve: Curve, sx: Callable[[float], float], sy: Callable[[float], float]) -> str:
+    """The band as one closed step shape: the upper limits forwards, the lower ones back."""
+    if curve.aj_low is None or curve.aj_high is None:
+        return ""
+    upper = _step_path(curve.aj_times, curve.aj_high, sx, sy)
+    back = [f"V{sy(curve.aj_low[-1]):.1f}"]
+    for i in range(curve.aj_times.size - 1, 0, -1):
+        back.append(f"H{sx(curve.aj_times[i]):.1f}V{sy(curve.aj_low[i - 1]):.1f}")
+    back.append(f"H{sx(curve.aj_times[0]):.1f}Z")
+    return f'<path d="{upper}{"".join(back)}" class="band"/>'
+
+
 def render_curves(curve: Curve) -> str:
-    """Draw one outcome's Aalen-Johansen curve (solid) and ``1 - KM`` (dashed) with axes.
+    """Draw one outcome's Aalen-Johansen curve (solid, with its band) and ``1 - KM`` (dashed).
 
     Args:
         curve: The estimates.
@@ -211,7 +227,8 @@ def render_curves(curve: Curve) -> str:
         An ``<svg>`` element.
     """
     w, h, left, right, top, bottom = 360, 250, 52, 14, 14, 40
-    highest = float(max(curve.aj_values.max(), curve.km_values.max()))
+    band_top = curve.aj_high.max() if curve.aj_high is not None else 0.0
+    highest = float(max(curve.aj_values.max(), curve.km_values.max(), band_top))
     step = _nice_step(highest / 4)
     ticks = max(math.ceil(highest / step - 1e-9), 1)
     top_value = step * ticks
@@ -235,6 +252,7 @@ def render_curves(curve: Curve) -> str:
         parts.append(f'<path d="M{sx(year):.1f} {h - bottom} v5" class="axis"/>')
         parts.append(_text(sx(year), h - bottom + 18, str(year), "tick tick-x"))
     parts.append(_text((left + w - right) / 2, h - 4, "Years since index", "axis-label"))
+    parts.append(_band_path(curve, sx, sy))
     km = _step_path(curve.km_times, curve.km_values, sx, sy)
     aj = _step_path(curve.aj_times, curve.aj_values, sx, sy)
     parts.append(f'<path d="{km}" class="km"/><path d="{aj}" class="aj"/>')

@@ -26,9 +26,11 @@ least ``threshold`` patients at risk.
 What this guarantees, per curve: every jump stands for at least ``threshold`` events, no jump is
 at a time that only the data could have chosen unless ``threshold`` patients share it, and no
 step is estimated from fewer than ``threshold`` patients at risk. It does not protect against
-combining this curve with other published numbers (for instance the number of events in the
-incidence table minus the events at the last step gives the events after it, which may be
-small; those are counts, suppressed by the report's tables, not by this function).
+combining this curve with other published numbers. An estimate at a later time than the last
+released step (the full estimate at the horizon) printed beside the curve would give away the
+few events after that step, so the report prints the estimate and interval at the last released
+step instead (``outputs/_report_curves.py``). Counts (events, numbers at risk) are suppressed
+by the report's tables, not by this function.
 """
 
 from __future__ import annotations
