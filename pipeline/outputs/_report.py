@@ -26,6 +26,12 @@ from pipeline.outputs._manifest import definition_path, read_manifest, sha256_fi
 from pipeline.outputs._ownership import REPORT, check_folder, install, staging
 from pipeline.outputs._report_curves import curve_data
 from pipeline.outputs._report_html import assemble
+from pipeline.outputs._report_rates import (
+    rates_block,
+    rates_summary,
+    read_persontime,
+    standardised_summary,
+)
 from pipeline.outputs._report_suppression import hidden_keys, masked
 from pipeline.outputs._report_table_one import (
     differenced_means,
@@ -227,6 +233,10 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
     dependence = dependence_block(cohort, outcomes)
     quality_parts = quality_blocks(quality)
     blocks = [flow, *(b for _, *pair in t1.values() for b in pair), incidence, combos, dependence]
+    persontime = read_persontime(output_dir)  # rates only when the build wrote person-time
+    if persontime is not None:
+        rates = rates_block(persontime, outcomes, {ci.outcome: ci.events for _, ci, *_ in results})
+        blocks.append(rates)
     hidden = hidden_keys([*blocks, *quality_parts], t, cohort, outcomes)
     no_means = differenced_means((long for long, *_ in t1.values()), t)
     summaries = {
@@ -241,6 +251,9 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
         "combinations": masked(combos, hidden, t),
         "dependence": dependence_summary(dependence, hidden, t),
     }
+    if persontime is not None:
+        summaries["rates"] = rates_summary(rates, hidden, t)
+        summaries["standardised_rates"] = standardised_summary(rates, hidden)
     curves = {o: curve_data(cohort, o, t) for o in outcomes if f"events|{o}" not in hidden}
     html = assemble(
         study=study,
