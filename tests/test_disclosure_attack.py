@@ -38,7 +38,7 @@ from pipeline.outputs._report import write_report
 from pipeline.synth import generate_extract
 
 from .conftest import DEMO_STUDY, HANDMADE
-from .helpers import demo_study_variant
+from .helpers import add_persontime, demo_study_variant
 
 THRESHOLD = 5
 MARKERS = ("<5", "*")
@@ -49,6 +49,24 @@ State = tuple[str, ...]
 def demo(tmp_path_factory: pytest.TempPathFactory) -> Path:
     out = tmp_path_factory.mktemp("attack_demo") / "out"
     build_study(DEMO_STUDY, BuildOptions(out=out))
+    write_report(out)
+    return out
+
+
+@pytest.fixture(scope="module")
+def demo_rates(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    out = tmp_path_factory.mktemp("attack_demo_rates") / "out"
+    build_study(DEMO_STUDY, BuildOptions(out=out))
+    add_persontime(out)
+    write_report(out)
+    return out
+
+
+@pytest.fixture(scope="module")
+def tiny_rates(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    out = tmp_path_factory.mktemp("attack_tiny_rates") / "out"
+    build_study(DEMO_STUDY, BuildOptions(extract=HANDMADE, out=out))
+    add_persontime(out)
     write_report(out)
     return out
 
@@ -110,6 +128,15 @@ class Attack:
             days = sorted(int(d) for x, d, c in self.at_risk if x == o and c == "at_risk")
             self.bins[o] = list(zip(days, [*days[1:], math.inf], strict=True))
             self.names += [("bin", (), o, f"{lo}|{k}") for lo, _ in self.bins[o] for k in "ec"]
+        # Events by age band and calendar year (when the build wrote person-time): each band's
+        # events over one year, or over all years, are unknowns of their own.
+        rates = folder / "summary" / "rates.csv"
+        self.rates = _rows(rates) if rates.is_file() else []
+        self.names += [
+            ("pt", (), r["outcome"], f"{r['age_band']}|{r['calendar_year']}")
+            for r in self.rates
+            if r["age_band"] != "all"
+        ]
         self.index = {n: i for i, n in enumerate(self.names)}
         # (coefficients, released text, description); a cell is a sum of atoms
         self.cells: list[tuple[dict[int, int], str, str]] = []
@@ -186,6 +213,7 @@ class Attack:
                         f"dependence {r['outcome_1']} {r['outcome_2']} {column}",
                     )
                 )
+        self._read_rates()
         last = len(self.flow) - 1
         for i, r in enumerate(self.flow):  # before = removed + remaining; remaining = next before
             before, removed = (
@@ -237,6 +265,38 @@ class Attack:
                 truth[self._bin(o, lo, "e")] = int((inside & incident).sum())
                 truth[self._bin(o, lo, "c")] = int((inside & ~incident).sum())
         return truth
+
+    def _read_rates(self) -> None:
+        """A band's years add up to the band; the bands to the outcome's incident events.
+
+        Person-time ends at onset, so every incident case's event falls in one band and year
+        of its outcome, and no other event does.
+        """
+        bands: dict[tuple[str, str], list[int]] = {}
+        for r in self.rates:
+            o, band, year = r["outcome"], r["age_band"], r["calendar_year"]
+            what = f"rates {o} {band} {year}"
+            if band == "all":
+                i = self._state(o)
+                events = self._of(lambda s, i=i: s[i] == "E")
+                self.cells.append((events, r["events"], what))
+                continue
+            k = self.index[("pt", (), o, f"{band}|{year}")]
+            self.cells.append(({k: 1}, r["events"], what))
+            if year != "all":
+                bands.setdefault((o, band), []).append(k)
+        for o in dict.fromkeys(r["outcome"] for r in self.rates):
+            totals = [
+                self.index[("pt", (), o, f"{r['age_band']}|all")]
+                for r in self.rates
+                if r["outcome"] == o and r["age_band"] != "all" and r["calendar_year"] == "all"
+            ]
+            i = self._state(o)
+            events = self._of(lambda s, i=i: s[i] == "E")
+            self.identities.append(dict.fromkeys(totals, 1) | dict.fromkeys(events, -1))
+        for (o, band), years in bands.items():
+            total = self.index[("pt", (), o, f"{band}|all")]
+            self.identities.append(dict.fromkeys(years, 1) | {total: -1})
 
     def ranges(self) -> list[tuple[str, float, float]]:
         """Every hidden cell's exact (min, max) given all shown cells and identities."""
@@ -322,7 +382,16 @@ def _naive(folder: Path) -> Attack:
     return truth
 
 
-@pytest.mark.parametrize("which", ["demo", "tiny", pytest.param("sparse", marks=pytest.mark.slow)])
+@pytest.mark.parametrize(
+    "which",
+    [
+        "demo",
+        "tiny",
+        "tiny_rates",
+        pytest.param("sparse", marks=pytest.mark.slow),
+        pytest.param("demo_rates", marks=pytest.mark.slow),
+    ],
+)
 def test_no_hidden_count_can_be_narrowed_down(which: str, request: pytest.FixtureRequest) -> None:
     attack = Attack(request.getfixturevalue(which))
     ranges = attack.ranges()

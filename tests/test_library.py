@@ -103,6 +103,9 @@ def test_wheel_installs_the_library(tmp_path: Path) -> None:
     names = zipfile.ZipFile(wheel).namelist()
     assert "pipeline/library/conditions/ckd.yaml" in names
     assert "pipeline/library/studies/orvane_multimorbidity.yaml" in names
+    # the standard populations for direct standardisation are package data too
+    assert "pipeline/stats/standards/esp2013.csv" in names
+    assert "pipeline/stats/standards/who2000_2025.csv" in names
     installed = tmp_path / "site"
     zipfile.ZipFile(wheel).extractall(installed)
     script = (
@@ -112,6 +115,8 @@ def test_wheel_installs_the_library(tmp_path: Path) -> None:
         "print(pathlib.Path(pipeline.__file__).parent)\n"
         "print(_installed())\n"
         "print(load_condition(library_conditions() / 'ckd.yaml').title)\n"
+        "from pipeline.stats import shipped_standard\n"
+        "print(shipped_standard('esp2013').listed_total)\n"
     )
     run = tmp_path / "elsewhere"
     run.mkdir()
@@ -122,3 +127,4 @@ def test_wheel_installs_the_library(tmp_path: Path) -> None:
     assert out[0] == str(installed / "pipeline")
     assert out[1] == str(installed / "pipeline" / "library")
     assert out[2] == "Chronic kidney disease, stage 3 or worse, persistent"
+    assert out[3] == "100000.0"

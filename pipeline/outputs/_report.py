@@ -28,6 +28,12 @@ from pipeline.outputs._ownership import REPORT, check_folder, install, staging
 from pipeline.outputs._report_at_risk import at_risk_block, render_at_risk
 from pipeline.outputs._report_curves import Headline, outcome_curves
 from pipeline.outputs._report_html import assemble
+from pipeline.outputs._report_rates import (
+    rates_block,
+    rates_summary,
+    read_persontime,
+    standardised_summary,
+)
 from pipeline.outputs._report_suppression import hidden_keys, masked
 from pipeline.outputs._report_table_one import (
     differenced_means,
@@ -252,6 +258,10 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
     quality_parts = quality_blocks(quality)
     at_risk = at_risk_block(cohort, outcomes)
     blocks = [flow, *(b for _, *pair in t1.values() for b in pair), incidence, combos, dependence]
+    persontime = read_persontime(output_dir)  # rates only when the build wrote person-time
+    if persontime is not None:
+        rates = rates_block(persontime, outcomes, {ci.outcome: ci.events for _, ci, *_ in results})
+        blocks.append(rates)
     hidden = hidden_keys([*blocks, at_risk, *quality_parts], t, cohort, outcomes)
     curves = {o: outcome_curves(cohort, o, t) for o in outcomes if f"events|{o}" not in hidden}
     # The headline cumulative incidence is the released curve's value at its last step, not
@@ -274,6 +284,9 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
         "combinations": masked(combos, hidden, t),
         "dependence": dependence_summary(dependence, hidden, t),
     }
+    if persontime is not None:
+        summaries["rates"] = rates_summary(rates, hidden, t)
+        summaries["standardised_rates"] = standardised_summary(rates, hidden)
     html = assemble(
         study=study,
         manifest=manifest,

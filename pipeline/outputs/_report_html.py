@@ -16,6 +16,7 @@ import polars as pl
 from pipeline.outputs._report_html_cells import n_cell as _n
 from pipeline.outputs._report_html_cells import table as _table
 from pipeline.outputs._report_html_cells import thousands as _thousands
+from pipeline.outputs._report_html_rates import rates_section
 from pipeline.outputs._report_html_results import (
     curves_section,
     dependence_section,
@@ -32,13 +33,14 @@ from pipeline.outputs._report_svg import (
     render_flow,
 )
 
-__all__ = ["SECTIONS", "assemble"]
+__all__ = ["OPTIONAL_SECTIONS", "SECTIONS", "assemble"]
 
 SECTIONS = (
     ("flow", "Patient flow"),
     ("table-one", "Table 1: baseline characteristics"),
     ("incidence", "Incidence"),
     ("curves", "Cumulative incidence curves"),
+    ("rates", "Rates by age band and calendar year"),
     ("combinations", "Outcome combinations"),
     ("dependence", "Pairwise dependence"),
     ("definitions", "Definitions"),
@@ -46,6 +48,9 @@ SECTIONS = (
     ("manifest", "Manifest"),
 )
 """Section ids and headings, in page order (the cautions box comes before them)."""
+
+OPTIONAL_SECTIONS = ("rates",)
+"""Sections shown only when the build has what they need (rates: ``persontime.parquet``)."""
 
 CSS = """
 :root{--ink:#1f2b2a;--muted:#5d6a67;--paper:#fbfaf6;--card:#ffffff;--line:#d9d4c8;
@@ -113,6 +118,7 @@ vertical-align:middle;margin-right:6px}.swatch.km{border-top:2px dashed var(--co
 svg.bars{max-width:900px;margin-bottom:8px}
 td.pair{min-width:190px}
 .bar-value{font-size:13px;font-weight:600;fill:var(--ink)}
+.dot{fill:var(--accent)}.ci{stroke:var(--accent);stroke-width:1.6}
 footer{color:var(--muted);font-size:12.5px;margin-top:28px}
 @media print{@page{margin:16mm 14mm}
 body{background:#fff;font-size:10pt}main{max-width:none;padding:0}
@@ -310,13 +316,22 @@ def assemble(
         ),
         "incidence": incidence_section(summaries["incidence"]),
         "curves": curves_section(drawn, study.outcomes, titles, t, at_risk),
+        "rates": rates_section(
+            summaries["rates"],
+            summaries["standardised_rates"],
+            study.outcomes,
+            titles,
+        )
+        if "rates" in summaries
+        else "",
         "combinations": _combinations(summaries["combinations"], titles),
         "dependence": dependence_section(summaries["dependence"], titles),
         "definitions": _definitions(study.definitions),
         "quality": _quality(quality),
         "manifest": _manifest(manifest),
     }
-    toc = "".join(f'<li><a href="#{i}">{escape(h)}</a></li>' for i, h in SECTIONS)
+    sections = [(i, h) for i, h in SECTIONS if body[i] or i not in OPTIONAL_SECTIONS]
+    toc = "".join(f'<li><a href="#{i}">{escape(h)}</a></li>' for i, h in sections)
     return (
         '<!doctype html><html lang="en"><head><meta charset="utf-8">'
         '<meta name="viewport" content="width=device-width, initial-scale=1">'
@@ -326,7 +341,7 @@ def assemble(
         f"{escape(str(version))} · small-cell threshold {t}</p></header>"
         + _cautions(t, study.notes)
         + f"<nav><ol>{toc}</ol></nav>"
-        + "".join(_section(i, body[i]) for i, _ in SECTIONS)
+        + "".join(_section(i, body[i]) for i, _ in sections)
         + "<footer>Written by ascertain report from the build's output folder. The summary "
         "tables are also in summary/*.csv.</footer></main></body></html>\n"
     )

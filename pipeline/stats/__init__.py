@@ -9,7 +9,11 @@
   expected co-occurrence within age band and sex);
 - agreement of a definition with a reference standard, and sensitivity and specificity
   corrected for verification bias (Begg and Greenes 1983);
-- small-cell suppression of every published table.
+- small-cell suppression of every published table;
+- rates from person-time by band, direct standardisation to a standard population (Fay and
+  Feuer 1997 gamma interval) and indirect standardisation (SMR); the standard populations
+  shipped (``standards/``) or a user's file (:mod:`._standards`, the one module that reads
+  files).
 
 Only numpy, scipy and polars are used; reference libraries (statsmodels, lifelines,
 scikit-learn) appear in the tests only.
@@ -46,6 +50,21 @@ from pipeline.stats._intervals import (
     poisson_exact_interval,
     wilson_interval,
 )
+from pipeline.stats._rates import (
+    StandardisedRatio,
+    band_rates,
+    crude_rate,
+    direct_standardised_rate,
+    standardised_ratio,
+)
+from pipeline.stats._standards import (
+    SHIPPED_STANDARDS,
+    StandardPopulation,
+    parse_age_band,
+    read_standard_population,
+    shipped_standard,
+    weights_for_bands,
+)
 from pipeline.stats._survival import (
     CENSORED,
     DEATH,
@@ -72,6 +91,7 @@ __all__ = [
     "DEPENDENCE_SCHEMA",
     "NO_OUTCOME",
     "OUTCOME",
+    "SHIPPED_STANDARDS",
     "TABLE_ONE_SCHEMA",
     "Association",
     "CifEstimate",
@@ -82,28 +102,38 @@ __all__ = [
     "Interval",
     "OnsetAgreement",
     "ReleasedCurve",
+    "StandardPopulation",
+    "StandardisedRatio",
     "StepCurve",
     "aalen_johansen",
     "aalen_johansen_interval",
     "association_2x2",
+    "band_rates",
     "baseline_variables",
     "clopper_pearson_interval",
     "coarsen_curve",
     "competing_risk_data",
     "crude_proportion",
+    "crude_rate",
     "cumulative_incidence_at_horizon",
     "diagnostic_accuracy",
+    "direct_standardised_rate",
     "expected_co_occurrence",
     "incidence_rate",
     "kaplan_meier",
     "onset_agreement",
     "outcome_combinations",
     "pairwise_dependence",
+    "parse_age_band",
     "poisson_exact_interval",
     "protect_cells",
+    "read_standard_population",
+    "shipped_standard",
     "smd_binary",
     "smd_continuous",
+    "standardised_ratio",
     "table_one",
     "verification_corrected",
+    "weights_for_bands",
     "wilson_interval",
 ]
