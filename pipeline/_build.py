@@ -190,7 +190,8 @@ def build_study(
             **run.engine_info,
         },
         study_file=loaded.file,
-        definition_files=loaded.catalog.files.values(),
+        # the definition files and every code list file they read (CSV, header, hierarchy)
+        definition_files=[*loaded.catalog.files.values(), *loaded.catalog.list_files()],
         library=study.library,
         extract=extract,
         extract_entries=extract_entries,

@@ -11,6 +11,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from pipeline.codes import expand_codes
+from pipeline.config._codelist import HEADER_SUFFIX, load_code_list
 from pipeline.config._condition import Condition, Evidence, Rule
 from pipeline.config._loader import load_catalog, load_condition, load_study
 from pipeline.config._study import Study
@@ -130,6 +131,9 @@ def check_paths(paths: list[Path]) -> CheckReport:
     folders: set[Path] = set()
     for file in files:
         try:
+            if file.name.endswith(HEADER_SUFFIX):
+                load_code_list(file)
+                continue
             if _is_study(file):
                 report.studies[file] = load_study(file).study
                 continue

@@ -155,7 +155,8 @@ def make_manifest(
         tool_version: The version of ascertain that built it.
         engine: The engine's name, version and thread count.
         study_file: The study file, resolved.
-        definition_files: Every definition file the study's catalog loaded.
+        definition_files: Every definition file the study's catalog loaded, and every code
+            list file (CSV, header, hierarchy, edition table) those definitions read.
         library: The study reads the shipped library (see :func:`definition_path`).
         extract: The extract folder, site mapping file or connection URI the build read.
         extract_entries: ``describe_files`` of the extract's files, relative to its root.
