@@ -11,8 +11,11 @@ from typer.testing import CliRunner
 
 from pipeline.cli import app
 from pipeline.compile import compile_study
+from pipeline.compile._context import evidence_number
 from pipeline.config import load_code_list, load_study
+from pipeline.engine import DuckDBEngine
 from pipeline.errors import ConfigError
+from pipeline.extract import discover_extract
 
 from .conftest import DEMO_STUDY, ROOT
 
@@ -190,8 +193,12 @@ def _plan_sql(definitions: Path) -> str:
     return compile_study(loaded).explain()
 
 
+TYPE1 = [f"250.{d}{t}" for d in range(10) for t in (1, 3)]
+
+
 def test_a_list_compiles_to_the_same_sql_as_its_codes_inline(tmp_path: Path) -> None:
     inline = _definitions_using(tmp_path / "inline", INLINE_DM)
+    # type 1 codes as a list named under exclude
     listed = _definitions_using(
         tmp_path / "listed",
         "  dm_code:\n    diagnosis:\n      lists: [../codelists/dm_icd10.csv]\n"
@@ -199,8 +206,63 @@ def test_a_list_compiles_to_the_same_sql_as_its_codes_inline(tmp_path: Path) -> 
         "      exclude: {lists: [../codelists/dm_type1_icd9.csv]}\n",
     )
     write_list(listed / "codelists", "dm_icd10", "E11,Type 2 diabetes mellitus,,\n")
-    type1 = "".join(f"250.{d}{t},Diabetes type I ({d}{t}),,\n" for d in range(10) for t in (1, 3))
+    type1 = "".join(f"{c},Diabetes type I ({c}),,\n" for c in TYPE1)
     write_list(listed / "codelists", "dm_type1_icd9", type1, system="ICD9", edition="ICD-9-CM")
+    # type 1 codes as excluded rows of one list, as a clinician would review them
+    marked = _definitions_using(
+        tmp_path / "marked",
+        "  dm_code:\n    diagnosis:\n"
+        "      lists: [../codelists/dm_icd10.csv, ../codelists/dm_icd9.csv]\n",
+    )
+    write_list(marked / "codelists", "dm_icd10", "E11,Type 2 diabetes mellitus,,\n")
+    rows = "250,Diabetes mellitus,,\n" + "".join(f"{c},Diabetes type I ({c}),yes,\n" for c in TYPE1)
+    write_list(marked / "codelists", "dm_icd9", rows, system="ICD9", edition="ICD-9-CM")
     assert _plan_sql(listed) == _plan_sql(inline)
+    assert _plan_sql(marked) == _plan_sql(inline)
     # and the demo's own SQL is that of the inline codes
     assert _plan_sql(inline) == compile_study(load_study(DEMO_STUDY)).explain()
+
+
+def _matched_patients(tmp_path: Path, definitions: Path, codes: list[tuple[str, str]]) -> set[str]:
+    """Patients (one per extract code) whose diagnosis the type 2 diabetes codes match."""
+    extract = tmp_path / "extract"
+    extract.mkdir()
+    (extract / "patients.csv").write_text(
+        "patient_id,birth_date,sex,death_date\n"
+        + "".join(f"p{i},1950-01-01,F,\n" for i in range(len(codes))),
+        encoding="utf-8",
+    )
+    (extract / "diagnoses.csv").write_text(
+        "patient_id,event_date,code_system,code,source\n"
+        + "".join(f"p{i},2015-01-01,{s},{c},billing\n" for i, (s, c) in enumerate(codes)),
+        encoding="utf-8",
+    )
+    (extract / "prescriptions.csv").write_text("patient_id,start_date,atc\n", encoding="utf-8")
+    loaded = load_study(definitions / "studies" / "orvane_multimorbidity.yaml")
+    plan = compile_study(loaded).through("coded_evidence", order=("patient_id", "event_date"))
+    result = DuckDBEngine(threads=1).run(plan, discover_extract(extract, plan.sources))
+    wanted = evidence_number("type2_diabetes.dm_code")
+    rows = result.outputs["coded_evidence"].to_pylist()
+    return {codes[int(r["patient_id"][1:])][1] for r in rows if r["evidence"] == wanted}
+
+
+EXTRACT_ICD10 = [("ICD10", c) for c in ("E11", "E11.9", "E11.90", "E119", "E10.9", "e11.9")]
+
+
+@pytest.mark.parametrize(
+    ("match", "expected"),
+    [
+        # exact: the code itself in any spelling the normalisation accepts, never a longer one
+        ("exact", {"E11.9", "E119", "e11.9"}),
+        # prefix: the code and every code below it
+        ("prefix", {"E11.9", "E11.90", "E119", "e11.9"}),
+    ],
+)
+def test_lists_match_exactly_or_by_prefix(tmp_path: Path, match: str, expected: set[str]) -> None:
+    definitions = _definitions_using(
+        tmp_path, "  dm_code:\n    diagnosis:\n      lists: [../codelists/dm.csv]\n"
+    )
+    write_list(
+        definitions / "codelists", "dm", "E11.9,Type 2 diabetes no complications,,\n", match=match
+    )
+    assert _matched_patients(tmp_path, definitions, EXTRACT_ICD10) == expected
