@@ -295,8 +295,8 @@ def check(
         for study_design in report.studies.values():
             console.print(explain_study(study_design), markup=False)
             console.print()
-        for condition in report.conditions.values():
-            console.print(explain_condition(condition), markup=False)
+        for file, condition in report.conditions.items():
+            console.print(explain_condition(condition, report.lists.get(file)), markup=False)
             console.print()
     for problem in report.problems:
         console.print(str(problem), markup=False)
