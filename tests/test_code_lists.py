@@ -266,3 +266,23 @@ def test_lists_match_exactly_or_by_prefix(tmp_path: Path, match: str, expected: 
         definitions / "codelists", "dm", "E11.9,Type 2 diabetes no complications,,\n", match=match
     )
     assert _matched_patients(tmp_path, definitions, EXTRACT_ICD10) == expected
+
+
+def test_a_study_cannot_name_lists_in_its_own_evidence(tmp_path: Path) -> None:
+    # Refused rather than ignored: an ignored list would silently match nothing.
+    definitions = tmp_path / "definitions"
+    shutil.copytree(ROOT / "definitions", definitions)
+    study = definitions / "studies" / "orvane_multimorbidity.yaml"
+    text = study.read_text(encoding="utf-8")
+    old = "  visits_prior_year: {count: {encounter: {}}, window: [-365, -1]}"
+    assert old in text
+    new = (
+        "  hf_codes: {count: {diagnosis: {lists: [../codelists/heart_failure_icd10.csv]}}, "
+        "window: [-365, -1]}"
+    )
+    study.write_text(text.replace(old, old + "\n" + new), encoding="utf-8")
+    with pytest.raises(ConfigError) as caught:
+        load_study(study)
+    (problem,) = caught.value.problems
+    line = next(i for i, t in enumerate(text.splitlines(), 1) if t.startswith(old)) + 1
+    assert (problem.line, problem.code) == (line, "list-in-study")

@@ -12,7 +12,7 @@ from pydantic import BaseModel, ValidationError
 
 from pipeline.config._base import Model
 from pipeline.config._codelist import HEADER_SUFFIX
-from pipeline.config._condition import Condition, Rule
+from pipeline.config._condition import Condition, DiagnosisEvidence, Evidence, Rule
 from pipeline.config._library import library_conditions
 from pipeline.config._listuse import EvidenceLists, ListUse, read_lists
 from pipeline.config._study import Study
@@ -378,6 +378,37 @@ def _apply_changes(doc: LocatedDocument, study: Study, catalog: Catalog) -> Cata
     return Catalog(catalog.folder, conditions, catalog.files, catalog.code_lists)
 
 
+def _study_lists(doc: LocatedDocument, study: Study) -> list[Problem]:
+    """Code lists are read in definitions only: a study's own evidence writes its codes inline.
+
+    (Refused rather than ignored, which would silently match nothing.)
+    """
+    found: list[tuple[PathKey, Evidence | None]] = []
+    if study.index.first_event is not None:
+        found.append((("index", "first_event", "evidence"), study.index.first_event.evidence))
+    for i, criterion in enumerate(study.eligibility):
+        if criterion.no_evidence is not None:
+            path: PathKey = ("eligibility", i, "no_evidence", "evidence")
+            found.append((path, criterion.no_evidence.evidence))
+    found += [(("covariates", name, "count"), cov.count) for name, cov in study.covariates.items()]
+    problems = []
+    for path, ev in found:
+        kind = (ev.diagnosis or ev.prescription) if ev is not None else None
+        if kind is None:
+            continue
+        excluded = isinstance(kind, DiagnosisEvidence) and kind.exclude and kind.exclude.lists
+        if kind.lists or excluded:
+            problems.append(
+                doc.problem(
+                    path,
+                    "list-in-study",
+                    "a study's own evidence writes its codes inline; code lists are named in "
+                    "definitions (make a definition and refer to it with condition:)",
+                )
+            )
+    return problems
+
+
 def load_study(file: Path) -> LoadedStudy:
     """Load a study file and the condition definitions it refers to.
 
@@ -439,6 +470,7 @@ def load_study(file: Path) -> LoadedStudy:
         if name not in catalog.conditions
     ]
     problems += _duplicate_columns(doc, study)
+    problems += _study_lists(doc, study)
     if problems:
         raise ConfigError(problems)
     catalog = _apply_changes(doc, study, catalog)
