@@ -199,7 +199,8 @@ def build_study(
             **run.engine_info,
         },
         study_file=loaded.file,
-        definition_files=loaded.catalog.files.values(),
+        # the definition files and every code list file they read (CSV, header, hierarchy)
+        definition_files=[*loaded.catalog.files.values(), *loaded.catalog.list_files()],
         measure_files=loaded.measures.files.values(),
         library=study.library,
         extract=extract,

@@ -58,8 +58,8 @@ def check_lines(report: CheckReport, *, explain: bool, data_warnings: list[str])
     if explain:
         for study in report.studies.values():
             lines += [explain_study(study), ""]
-        for condition in report.conditions.values():
-            lines += [explain_condition(condition), ""]
+        for file, condition in report.conditions.items():
+            lines += [explain_condition(condition, report.lists.get(file)), ""]
     lines += [str(problem) for problem in report.problems]
     warnings = [f"warning: {w}" for w in (*report.warnings, *data_warnings)]
     summary = f"{len(report.files)} files checked, {len(report.problems)} problems"

@@ -19,6 +19,7 @@ import re
 from pathlib import Path
 
 from pipeline.config._library import library_conditions
+from pipeline.config._loader import load_condition_lists
 from pipeline.errors import OutputFolderError
 from pipeline.outputs._ownership import Owner, check_folder, install, staging
 
@@ -155,8 +156,10 @@ Written by `ascertain init`. What to edit first:
 2. `definitions/{skeleton}.yaml`: a skeleton definition with every key a definition can use.
    Replace its codes and rules, or copy it to start a definition of your own.
 3. `definitions/{copied}.yaml`: a copy of the definition shipped with ascertain, to read as an
-   example or adapt. A study with `library: true` instead of `definitions:` reads the whole
-   shipped library without copying it.
+   example or adapt; its codes are in `codelists/` (a CSV of codes and terms to review in a
+   spreadsheet, and a `.list.yaml` header with the list's source, edition and licence). A study
+   with `library: true` instead of `definitions:` reads the whole shipped library without
+   copying it.
 
 Then, from this folder:
 
@@ -213,12 +216,20 @@ def init_study(folder: Path, *, extract: Path | None = None) -> list[Path]:
             name=name, study=STUDY_FILE, copied=COPIED, skeleton=SKELETON, output="output"
         ),
     }
-    copied = (library_conditions() / f"{COPIED}.yaml").read_bytes()
+    source = library_conditions() / f"{COPIED}.yaml"
+    copied = {f"definitions/{COPIED}.yaml": source.read_bytes()}
+    # its code lists too, where it names them (../codelists/ beside definitions/)
+    for uses in load_condition_lists(source)[1].values():
+        for use in uses:
+            for file in use.code_list.files:
+                copied[f"codelists/{file.name}"] = file.read_bytes()
     with staging(folder) as staged:
         (staged / "definitions").mkdir()
-        (staged / f"definitions/{COPIED}.yaml").write_bytes(copied)
+        (staged / "codelists").mkdir()
+        for relative, data in copied.items():
+            (staged / relative).write_bytes(data)
         for relative, text in files.items():
             (staged / relative).write_text(text, encoding="utf-8")
-        names = [*files, f"definitions/{COPIED}.yaml"]
+        names = [*files, *copied]
         install(staged, folder, INIT, names)
     return [folder / n for n in sorted(names)]

@@ -81,6 +81,9 @@ def write_study(
     definitions.mkdir(parents=True, exist_ok=True)
     for name, text in conditions.items():
         (definitions / f"{name}.yaml").write_text(text, encoding="utf-8")
+    if any("../codelists/" in text for text in conditions.values()):
+        # a shipped definition's text names the shipped code lists beside its folder
+        shutil.copytree(ROOT / "definitions" / "codelists", folder / "codelists")
     study = folder / "study.yaml"
     study.write_text(
         STUDY_TEMPLATE.format(
@@ -132,6 +135,7 @@ def demo_study_variant(folder: Path, *, output: str = "", quality: str = "") -> 
     written as a YAML flow mapping (e.g. ``"{max_share_set_aside: 1}"``).
     """
     shutil.copytree(ROOT / "definitions" / "conditions", folder / "conditions")
+    shutil.copytree(ROOT / "definitions" / "codelists", folder / "codelists")
     (folder / "studies").mkdir()
     text = DEMO_STUDY.read_text(encoding="utf-8")
     text = text.replace(

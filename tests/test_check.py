@@ -38,17 +38,20 @@ def test_shipped_definitions_are_clean() -> None:
     assert output.strip().endswith(", 0 problems")
 
 
+_T2_LISTS = "lists: [../codelists/type2_diabetes_icd10.csv, ../codelists/type2_diabetes_icd9.csv]"
+
+
 @pytest.mark.parametrize(
     ("old", "new", "expected"),
     [
         (
-            "ICD10: [E11]",
+            _T2_LISTS,
             "ICD10: [E14-E10]",
             "[bad-value] evidence.dm_code.diagnosis.ICD10[0]: "
             "range 'E14-E10' is reversed: E14 comes after E10",
         ),
         (
-            "ICD10: [E11]",
+            _T2_LISTS,
             "ICD10: [E11-]",
             "[bad-value] evidence.dm_code.diagnosis.ICD10[0]: "
             "'E11-' is not a valid ICD-10 code or prefix",
@@ -77,8 +80,8 @@ def test_unused_evidence_and_useless_exclusion(definitions: Path) -> None:
     file = definitions / "conditions" / "heart_failure.yaml"
     _edit(
         file,
-        '             "404.91", "404.93"]\n',
-        '             "404.91", "404.93"]\n      exclude: {ICD10: [J45]}\n  spare:\n'
+        "heart_failure_icd9.csv]\n",
+        "heart_failure_icd9.csv]\n      exclude: {ICD10: [J45]}\n  spare:\n"
         "    prescription: {atc: [C03CA01]}\n",
     )
     code, output = _check(str(file))
@@ -120,10 +123,11 @@ def test_explain_prints_a_paragraph() -> None:
         "rule is met: rule 'two heart failure codes': 2 hf_code events on distinct days within "
         "730 days of each other; rule 'code and loop diuretic': 1 hf_code and 1 loop_diuretic "
         "events within 365 days of each other. Evidence: hf_code is a diagnosis with an ICD-10 "
-        "code starting I50 or I11.0 or I13.0 or I13.2 or an ICD-9 code starting 428 or 402.01 "
-        "or 402.11 or 402.91 or 404.01 or 404.03 or 404.11 or 404.13 or 404.91 or 404.93; "
-        "loop_diuretic is a prescription with an ATC code starting C03C. Onset: the date the "
-        "first rule is met."
+        "code starting I50 or I11.0 or I13.0 or I13.2 (list heart_failure_icd10, edition WHO) "
+        "or an ICD-9 code starting 428 or 402.01 or 402.11 or 402.91 or 404.01 or 404.03 or "
+        "404.11 or 404.13 or 404.91 or 404.93 (list heart_failure_icd9, edition ICD-9-CM); "
+        "loop_diuretic is a prescription with a WHO ATC code starting C03C (list "
+        "loop_diuretics_atc, edition WHO ATC). Onset: the date the first rule is met."
     ) in " ".join(output.split())
 
 

@@ -36,10 +36,24 @@ def test_build_errors_keep_their_code(tmp_path: Path) -> None:
     assert not (tmp_path / "out").exists()
 
 
+# The shipped definition's codes written inline, as a definition without code lists has them.
+_INLINE = {
+    "      lists: [../codelists/heart_failure_icd10.csv, ../codelists/heart_failure_icd9.csv]\n": (
+        "      ICD10: [I50, I11.0, I13.0, I13.2]\n"
+        '      ICD9: ["428", "402.01", "402.11", "402.91", "404.01", "404.03", "404.11",\n'
+        '             "404.13", "404.91", "404.93"]\n'
+    ),
+    "      lists: [../codelists/loop_diuretics_atc.csv]\n": "      atc: [C03C]\n",
+}
+
+
 def _definition(tmp_path: Path, old: str, new: str) -> Path:
     folder = tmp_path / "conditions"
     folder.mkdir()
     source = (ROOT / "definitions" / "conditions" / "heart_failure.yaml").read_text("utf-8")
+    for listed, inline in _INLINE.items():
+        assert listed in source
+        source = source.replace(listed, inline)
     assert old in source
     file = folder / "heart_failure.yaml"
     file.write_text(source.replace(old, new), encoding="utf-8")

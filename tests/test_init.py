@@ -15,6 +15,13 @@ RUNNER = CliRunner()
 WRITTEN = [
     "README.md",
     "ascertain-init.json",
+    # the copied definition's code lists, beside definitions/ as in the library
+    "codelists/non_insulin_glucose_lowering_atc.csv",
+    "codelists/non_insulin_glucose_lowering_atc.list.yaml",
+    "codelists/type2_diabetes_icd10.csv",
+    "codelists/type2_diabetes_icd10.list.yaml",
+    "codelists/type2_diabetes_icd9.csv",
+    "codelists/type2_diabetes_icd9.list.yaml",
     "definitions/gout.yaml",
     "definitions/type2_diabetes.yaml",
     "study.yaml",
@@ -43,7 +50,7 @@ def test_init_writes_a_study_that_checks_and_builds(tmp_path: Path) -> None:
 
     checked = RUNNER.invoke(app, ["check", str(folder), "--explain"])
     assert checked.exit_code == 0, checked.output
-    assert checked.output.endswith("3 files checked, 0 problems\n")
+    assert checked.output.endswith("6 files checked, 0 problems\n")
     assert "Gout (skeleton) (gout): a patient is a case" in checked.output
 
     out = tmp_path / "out"
@@ -92,5 +99,8 @@ def test_init_twice_refuses_and_keeps_the_edited_study(tmp_path: Path) -> None:
     before = _files(folder)
     result = RUNNER.invoke(app, ["init", str(folder)])
     assert result.exit_code == 2
-    assert "is not empty (it holds README.md, ascertain-init.json, definitions" in result.output
+    assert (
+        "is not empty (it holds README.md, ascertain-init.json, codelists, definitions"
+        in result.output
+    )
     assert _files(folder) == before

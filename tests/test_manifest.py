@@ -131,3 +131,24 @@ def test_two_builds_with_1_and_2_threads_are_byte_identical(
     assert result.exit_code == 0, result.output
     for name in ("cohort.parquet", "attrition.csv", "quality.csv", "dictionary.csv"):
         assert (again / name).read_bytes() == (out / name).read_bytes(), name
+
+
+def test_manifest_hashes_code_lists_and_verify_names_a_changed_one(
+    workspace: tuple[Path, Path, Path],
+) -> None:
+    study, _, out = workspace
+    manifest = json.loads((out / "manifest.json").read_text(encoding="utf-8"))
+    names = {e["path"] for e in manifest["definitions"]}
+    assert {
+        "../codelists/heart_failure_icd10.csv",
+        "../codelists/heart_failure_icd10.list.yaml",
+    } <= names
+    # a term edited by a reviewer changes no code and no plan, but the input differs
+    listed = study.parent.parent / "codelists" / "heart_failure_icd10.csv"
+    listed.write_text(listed.read_text(encoding="utf-8").replace("Heart failure", "HF"))
+    code, output = _verify(out)
+    assert code == 1
+    assert (
+        "changed input: definitions file ../codelists/heart_failure_icd10.csv has changed "
+        "since the build" in output
+    )

@@ -46,6 +46,7 @@ def test_a_quote_in_the_extract_and_study_folders(
             frame.write_parquet(extract / f"{table}.parquet")
     project = tmp_path / "o'brien study"
     shutil.copytree(ROOT / "definitions" / "conditions", project / "conditions")
+    shutil.copytree(ROOT / "definitions" / "codelists", project / "codelists")
     (project / "studies").mkdir()
     study = project / "studies" / DEMO_STUDY.name
     text = DEMO_STUDY.read_text(encoding="utf-8")

@@ -88,5 +88,45 @@ def expand_code(pattern: str) -> list[str]:
 
 def expand_codes(patterns: tuple[str, ...]) -> list[str]:
     """Expand a code list into sorted, distinct prefixes, dropping those another one covers."""
-    prefixes = sorted({p for pattern in patterns for p in expand_code(pattern)})
-    return [p for p in prefixes if not any(p != q and p.startswith(q) for q in prefixes)]
+    return _uncovered({p for pattern in patterns for p in expand_code(pattern)})
+
+
+def _uncovered(prefixes: set[str]) -> list[str]:
+    ordered = sorted(prefixes)
+    return [p for p in ordered if not any(p != q and p.startswith(q) for q in ordered)]
+
+
+def normalise_in(system: str, code: str) -> str:
+    """Normalise a code as its system compares it.
+
+    Read v2 is case-sensitive and pads codes with trailing dots (``G30..`` is ``G30``): only
+    surrounding spaces and trailing dots go. Every other system: :func:`normalise_code`.
+
+    >>> normalise_in("READ2", "H33z.")
+    'H33z'
+    """
+    if system == "READ2":
+        return code.strip().rstrip(".")
+    return normalise_code(code)
+
+
+def prefixes_in(system: str, patterns: tuple[str, ...]) -> list[str]:
+    """:func:`expand_codes` for any system: Read v2 codes keep their case and have no ranges.
+
+    >>> prefixes_in("READ2", ("G3...", "G30..", "H33z."))
+    ['G3', 'H33z']
+    """
+    if system == "READ2":
+        return _uncovered({normalise_in(system, p) for p in patterns})
+    return expand_codes(patterns)
+
+
+def read2_code_sql(column: exp.Expression) -> exp.Expression:
+    """The SQL twin of :func:`normalise_in` for Read v2: trim spaces, then trailing dots.
+
+    >>> read2_code_sql(exp.column("code")).sql()
+    "RTRIM(TRIM(code), '.')"
+    """
+    return exp.Trim(
+        this=exp.Trim(this=column), expression=exp.Literal.string("."), position="TRAILING"
+    )

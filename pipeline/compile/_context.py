@@ -18,6 +18,7 @@ from pipeline.config import (
     DiagnosisCodes,
     DiagnosisEvidence,
     Evidence,
+    ListUse,
     Study,
 )
 from pipeline.config._measure import shipped_measures
@@ -159,6 +160,21 @@ class CompileContext:
             if ev.condition is None
         )
         return conditions + self.study_evidence
+
+    @cached_property
+    def evidence_lists(self) -> dict[str, tuple[ListUse, ...]]:
+        """The code lists each piece of evidence names, by evidence key (none: absent)."""
+        return {
+            evidence_key(c.condition, name): uses
+            for c in self.conditions
+            for name, uses in self.catalog.code_lists.get(c.condition, {}).items()
+        }
+
+    @cached_property
+    def list_systems(self) -> tuple[str, ...]:
+        """The diagnosis systems the study's code lists read beyond ICD-9 and ICD-10, sorted."""
+        systems = {use.code_list.system for uses in self.evidence_lists.values() for use in uses}
+        return tuple(sorted(systems - {"ICD9", "ICD10", "ATC"}))
 
     @property
     def index_range(self) -> tuple[dt.date, dt.date]:

@@ -12,15 +12,16 @@ import datetime as dt
 
 from sqlglot import exp
 
-from pipeline.codes import expand_codes
+from pipeline.codes import normalise_in, prefixes_in
 from pipeline.compile._context import CompileContext, evidence_id, evidence_number
 from pipeline.compile._measurements import measure_relations, measurement_passes
 from pipeline.compile._plan import Stage
 from pipeline.compile._sources import same_raw_code
 from pipeline.compile._sql import days_between, is_in, query, value, values_table
-from pipeline.config import Evidence, MeasurementEvidence
+from pipeline.config import Evidence, ListUse, MeasurementEvidence
 
-CodeRow = tuple[str, str, int, str | None, int | None, bool]
+CodeRow = tuple[str, str, int, str | None, int | None, bool, bool]
+_Group = tuple[str, bool, bool]
 
 # Each distinct extract code is probed once per prefix length, so the join to the prefixes is
 # an equality join. A code counts for a piece of evidence when it matches an included prefix
@@ -50,6 +51,12 @@ GROUP BY
 # Every usable coded row with each evidence its code matches (once per distinct row when exact
 # duplicates are checked). A row an exclusion matches is kept as not counting, for traces; a
 # prescription shorter than the evidence needs is left out, unless an exclusion matches too.
+# With an exact-match code list in the study, an exact code matches only a code of its length.
+_CODE_MATCHES_EXACT = _CODE_MATCHES.replace(
+    "WHERE c.problem IS NULL",
+    "WHERE c.problem IS NULL AND (NOT m.exact OR LENGTH(c.code) = l.prefix_length)",
+)
+
 _CODED_MATCHES = """
 SELECT
   e.patient_id, e.event_date, m.code_system, m.code, e.raw_code, m.source, e.duration_days,
@@ -95,34 +102,66 @@ WHERE FALSE
 """
 
 
-def _code_rows(key: str, ev: Evidence) -> list[CodeRow]:
-    number = evidence_number(key)
-    rows: list[CodeRow] = []
+def _written_codes(ev: Evidence, uses: tuple[ListUse, ...]) -> dict[_Group, list[str]]:
+    """The evidence's codes as written, by (system, is exclusion, exact match), lists included.
+
+    A prefix-mode list's codes join the inline codes of their system, so a definition reads the
+    same whether its codes are written inline or kept in a list.
+    """
+    groups: dict[_Group, list[str]] = {}
     if ev.diagnosis:
-        sources: tuple[str | None, ...] = ev.diagnosis.source or (None,)
-        lists = [("ICD9", ev.diagnosis.ICD9, False), ("ICD10", ev.diagnosis.ICD10, False)]
+        inline = [("ICD9", ev.diagnosis.ICD9, False), ("ICD10", ev.diagnosis.ICD10, False)]
         if ev.diagnosis.exclude:
-            lists += [
+            inline += [
                 ("ICD9", ev.diagnosis.exclude.ICD9, True),
                 ("ICD10", ev.diagnosis.exclude.ICD10, True),
             ]
-        for system, codes, excluded in lists:
-            rows += [
-                (system, prefix, number, source, None, excluded)
-                for prefix in expand_codes(codes)
-                for source in sources
-            ]
-    if ev.prescription:
-        rx = ev.prescription
-        rows += [("ATC", p, number, None, rx.min_days, False) for p in expand_codes(rx.atc)]
-        rows += [("ATC", p, number, None, None, True) for p in expand_codes(rx.exclude)]
+    elif ev.prescription:
+        inline = [("ATC", ev.prescription.atc, False), ("ATC", ev.prescription.exclude, True)]
+    else:
+        return groups
+    for system, codes, excluded in inline:
+        groups.setdefault((system, excluded, False), []).extend(codes)
+    for use in uses:
+        code_list = use.code_list
+        exact = code_list.match == "exact"
+        groups.setdefault((code_list.system, use.excluded, exact), []).extend(code_list.included())
+        groups.setdefault((code_list.system, True, exact), []).extend(code_list.excluded())
+    return groups
+
+
+def _code_rows(key: str, ev: Evidence, uses: tuple[ListUse, ...] = ()) -> list[CodeRow]:
+    number = evidence_number(key)
+    sources: tuple[str | None, ...] = (ev.diagnosis.source if ev.diagnosis else ()) or (None,)
+    min_days = ev.prescription.min_days if ev.prescription else None
+    groups = _written_codes(ev, uses)
+    prefixes = {
+        (system, excluded): prefixes_in(system, tuple(codes))
+        for (system, excluded, exact), codes in groups.items()
+        if not exact
+    }
+    rows: list[CodeRow] = []
+    for (system, excluded, exact), codes in groups.items():
+        if exact:
+            covering = prefixes.get((system, excluded), [])
+            found = {normalise_in(system, c) for c in codes}
+            found = {c for c in found if not any(c.startswith(p) for p in covering)}
+        else:
+            found = set(prefixes[(system, excluded)])
+        days = None if excluded else min_days
+        rows += [
+            (system, code, number, source, days, excluded, exact)
+            for code in sorted(found)
+            for source in sources
+        ]
     return rows
 
 
 def code_table_rows(ctx: CompileContext) -> list[CodeRow]:
-    """Every (system, prefix, evidence, source, is_exclusion) row of the study, sorted."""
-    rows = {row for key, ev in ctx.evidence for row in _code_rows(key, ev)}
-    return sorted(rows, key=lambda r: (r[0], r[1], r[2], r[3] or "", r[4] or 0, r[5]))
+    """Every (system, prefix, evidence, source, min_days, is_exclusion, exact) row, sorted."""
+    lists = ctx.evidence_lists
+    rows = {row for key, ev in ctx.evidence for row in _code_rows(key, ev, lists.get(key, ()))}
+    return sorted(rows, key=lambda r: (r[0], r[1], r[2], r[3] or "", r[4] or 0, r[5], r[6]))
 
 
 def _measurement_query(key: str, measurement: MeasurementEvidence, relation: str) -> exp.Query:
@@ -143,17 +182,17 @@ def evidence_stages(ctx: CompileContext) -> tuple[Stage, ...]:
     code_rows = code_table_rows(ctx)
     if code_rows:
         lengths = sorted({len(r[1]) for r in code_rows})
+        columns = ["code_system", "prefix", "evidence", "source", "min_days", "is_exclusion"]
+        exact = any(r[6] for r in code_rows)
+        # Without an exact-match list the table and query are those of inline codes alone.
+        table = [r if exact else r[:6] for r in code_rows]
         stages.append(
             Stage(
                 "code_matches",
                 query(
-                    _CODE_MATCHES,
+                    _CODE_MATCHES_EXACT if exact else _CODE_MATCHES,
                     lengths=values_table("l", ["prefix_length"], [(n,) for n in lengths]),
-                    codes=values_table(
-                        "m",
-                        ["code_system", "prefix", "evidence", "source", "min_days", "is_exclusion"],
-                        code_rows,
-                    ),
+                    codes=values_table("m", [*columns, "exact"] if exact else columns, table),
                 ),
                 ("extract_codes",),
                 "each distinct extract code with the evidence it matches or is excluded from",

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 from sqlglot import exp
 
-from pipeline.codes import SHAPES, normalised_code_sql
+from pipeline.codes import EXTRACT_PATTERNS, normalised_code_sql, read2_code_sql
 from pipeline.compile._context import CompileContext
 from pipeline.compile._plan import SOURCE_POSITION, SOURCE_PROBLEM, SourceTable, Stage
 from pipeline.compile._sql import days_between, is_in, query, value
@@ -192,12 +192,6 @@ FROM (
 ) AS c
 """
 
-# The same shapes definitions are checked against, applied to extract codes (no dots: the
-# extract codes are normalised first).
-_CODE_PATTERNS = {
-    system: pattern.pattern.replace("\\.?", "") for system, (pattern, _) in SHAPES.items()
-}
-
 
 def raw_code_columns(table: str) -> dict[str, exp.Expression]:
     """A coded table's raw system, code and source as text, the keys of ``extract_codes``."""
@@ -228,25 +222,44 @@ def same_raw_code(row: str, code: str) -> exp.Expression:
     return exp.and_(exp.column("source_table", row).eq(exp.column("source_table", code)), *same)
 
 
-def _code_problem() -> exp.Expression:
+def _code_problem(systems: tuple[str, ...]) -> exp.Expression:
+    """What is wrong with a distinct extract code: unknown system, malformed code, or NULL.
+
+    The diagnosis systems known are ICD-9 and ICD-10, and the others the study's code lists
+    read (SNOMED, READ2, ICPC2): a row in a system no evidence can match is set aside as an
+    unknown code system. The shapes are those definitions are checked against, on the
+    normalised code (``EXTRACT_PATTERNS``); an extract's SNOMED CT identifier is checked for
+    its digits only, and one with a wrong check digit matches no list.
+    """
     # An empty or missing code or system is malformed or unknown, never used.
     system = exp.func("COALESCE", exp.column("code_system"), value(""))
     code = exp.func("COALESCE", exp.column("code"), value(""))
 
     def malformed(name: str) -> exp.Expression:
-        return exp.not_(exp.func("REGEXP_MATCHES", code.copy(), value(_CODE_PATTERNS[name])))
+        return exp.not_(exp.func("REGEXP_MATCHES", code.copy(), value(EXTRACT_PATTERNS[name])))
 
     atc = exp.Case().when(malformed("ATC"), value("malformed code"))
-    return (
+    known = ("ICD9", "ICD10", *systems)
+    case = (
         exp.Case()
         .when(exp.column("source_table").eq(value("prescriptions")), atc)
         .when(
-            exp.not_(system.copy().isin(value("ICD9"), value("ICD10"))),
+            exp.not_(system.copy().isin(*(value(s) for s in known))),
             value("unknown code system"),
         )
-        .when(exp.and_(system.copy().eq("ICD9"), malformed("ICD9")), value("malformed code"))
-        .when(exp.and_(system.copy().eq("ICD10"), malformed("ICD10")), value("malformed code"))
     )
+    for name in known:
+        case = case.when(exp.and_(system.copy().eq(name), malformed(name)), value("malformed code"))
+    return case
+
+
+def _normalised_code(systems: tuple[str, ...]) -> exp.Expression:
+    """The extract code as its system compares it (Read v2 keeps its case)."""
+    code = normalised_code_sql(exp.column("raw_code"))
+    if "READ2" not in systems:
+        return code
+    is_read2 = exp.Upper(this=exp.Trim(this=exp.column("raw_system"))).eq(value("READ2"))
+    return exp.Case().when(is_read2, read2_code_sql(exp.column("raw_code"))).else_(code)
 
 
 def _extract_codes(ctx: CompileContext) -> exp.Query:
@@ -261,8 +274,8 @@ def _extract_codes(ctx: CompileContext) -> exp.Query:
     return query(
         _EXTRACT_CODES,
         found=union.subquery("found"),
-        code=normalised_code_sql(exp.column("raw_code")),
-        problem=_code_problem(),
+        code=_normalised_code(ctx.list_systems),
+        problem=_code_problem(ctx.list_systems),
     )
 
 

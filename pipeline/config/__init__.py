@@ -1,5 +1,6 @@
 """Study and condition files: pydantic models and located YAML loading."""
 
+from pipeline.config._codelist import CodeList, CodeListHeader, ListedCode, load_code_list
 from pipeline.config._condition import (
     Condition,
     DiagnosisCodes,
@@ -11,6 +12,7 @@ from pipeline.config._condition import (
     Provenance,
     Rule,
 )
+from pipeline.config._listuse import ListUse
 from pipeline.config._loader import Catalog, LoadedStudy, load_catalog, load_condition, load_study
 from pipeline.config._measure import load_measure_file, load_measures, shipped_measures
 from pipeline.config._study import (
@@ -25,6 +27,8 @@ from pipeline.config._study import (
 
 __all__ = [
     "Catalog",
+    "CodeList",
+    "CodeListHeader",
     "Condition",
     "Covariate",
     "Criterion",
@@ -34,6 +38,8 @@ __all__ = [
     "Evidence",
     "Followup",
     "IndexRule",
+    "ListUse",
+    "ListedCode",
     "LoadedStudy",
     "MeasurementEvidence",
     "Outcomes",
@@ -43,6 +49,7 @@ __all__ = [
     "Study",
     "Window",
     "load_catalog",
+    "load_code_list",
     "load_condition",
     "load_measure_file",
     "load_measures",

@@ -10,9 +10,11 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from pipeline.codes import expand_codes
+from pipeline.codes import SYSTEM_NAMES, expand_codes
+from pipeline.config._codelist import HEADER_SUFFIX, load_code_list
 from pipeline.config._condition import Condition, Evidence, Rule
-from pipeline.config._loader import load_catalog, load_condition, load_study
+from pipeline.config._listuse import EvidenceLists, ListUse
+from pipeline.config._loader import load_catalog, load_condition_lists, load_study
 from pipeline.config._measure import load_measures, shipped_measures
 from pipeline.config._plausible import condition_warnings, study_warnings
 from pipeline.config._study import Study
@@ -36,6 +38,7 @@ class CheckReport:
     warnings: list[Problem] = field(default_factory=list)
     files: list[Path] = field(default_factory=list)
     conditions: dict[Path, Condition] = field(default_factory=dict)
+    lists: dict[Path, EvidenceLists] = field(default_factory=dict)
     studies: dict[Path, Study] = field(default_factory=dict)
 
     @property
@@ -153,6 +156,9 @@ def check_paths(paths: list[Path]) -> CheckReport:
     checked = {file.resolve() for file in files}
     for file in files:
         try:
+            if file.name.endswith(HEADER_SUFFIX):
+                load_code_list(file)
+                continue
             if kinds[file] == "study":
                 loaded = load_study(file)
                 report.studies[file] = loaded.study
@@ -167,11 +173,12 @@ def check_paths(paths: list[Path]) -> CheckReport:
                 continue
             if kinds[file] == "measure":
                 continue
-            condition = load_condition(file, measures)
+            condition, lists = load_condition_lists(file, measures)
         except ConfigError as err:
             report.problems.extend(err.problems)
             continue
         report.conditions[file] = condition
+        report.lists[file] = lists
         report.problems.extend(_lint(file, condition))
         report.warnings += condition_warnings(file, condition, measures)
         folders.add(file.parent)
@@ -186,23 +193,41 @@ def check_paths(paths: list[Path]) -> CheckReport:
     return report
 
 
-def _codes_text(ev: Evidence) -> str:
+def _list_text(use: ListUse) -> str:
+    code_list = use.code_list
+    how = "starting" if code_list.match == "prefix" else "equal to"
+    system = SYSTEM_NAMES[code_list.system]
+    article = "an" if system[0] in "AEIOU" else "a"
+    text = (
+        f"{article} {system} code {how} {' or '.join(code_list.included())} "
+        f"(list {code_list.name}, edition {code_list.edition}"
+    )
+    if code_list.excluded():
+        text += f"; except {', '.join(code_list.excluded())}"
+    return text + ")"
+
+
+def _codes_text(ev: Evidence, uses: tuple[ListUse, ...] = ()) -> str:
+    included = [u for u in uses if not u.excluded]
+    excluded_lists = [u.code_list.name for u in uses if u.excluded]
     if ev.diagnosis:
         parts = [
             f"an {label} code starting {' or '.join(codes)}"
             for label, codes in (("ICD-10", ev.diagnosis.ICD10), ("ICD-9", ev.diagnosis.ICD9))
             if codes
-        ]
+        ] + [_list_text(u) for u in included]
         text = "a diagnosis with " + " or ".join(parts)
         if ev.diagnosis.exclude:
             excluded = [*ev.diagnosis.exclude.ICD10, *ev.diagnosis.exclude.ICD9]
+            excluded += [f"the codes of list {name}" for name in excluded_lists]
             text += f", except {', '.join(excluded)}"
         if ev.diagnosis.source:
             text += f", recorded in {' or '.join(s.replace('_', ' ') for s in ev.diagnosis.source)}"
         return text
     if ev.prescription:
         rx = ev.prescription
-        text = f"a prescription with an ATC code starting {' or '.join(rx.atc)}"
+        parts = [f"an ATC code starting {' or '.join(rx.atc)}"] if rx.atc else []
+        text = "a prescription with " + " or ".join(parts + [_list_text(u) for u in included])
         if rx.exclude:
             text += f", except {', '.join(rx.exclude)}"
         if rx.min_days:
@@ -263,8 +288,8 @@ def _absent_window_text(rule: Rule) -> str:
     )
 
 
-def explain_condition(condition: Condition) -> str:
-    """One plain paragraph saying what a definition means.
+def explain_condition(condition: Condition, lists: EvidenceLists | None = None) -> str:
+    """One plain paragraph saying what a definition means (with its code lists, if given).
 
     >>> from pipeline.config import Condition
     >>> c = Condition.model_validate({"condition": "x", "title": "X", "about": "a",
@@ -274,7 +299,11 @@ def explain_condition(condition: Condition) -> str:
     X (x): a patient is a case from the earliest date on which any rule is met: rule 'one code': 1 code event. Evidence: code is a diagnosis with an ICD-10 code starting I50. Onset: the date the first rule is met.
     """  # noqa: E501
     rules = "; ".join(_rule_text(r) for r in condition.rules)
-    evidence = "; ".join(f"{name} is {_codes_text(ev)}" for name, ev in condition.evidence.items())
+    lists = lists or {}
+    evidence = "; ".join(
+        f"{name} is {_codes_text(ev, lists.get(name, ()))}"
+        for name, ev in condition.evidence.items()
+    )
     onset = (
         "the date the first rule is met"
         if condition.onset == "rule_met"

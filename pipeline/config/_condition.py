@@ -25,12 +25,20 @@ from pipeline.config._base import (
 from pipeline.config._measure import measures_in
 from pipeline.measures import Comparison, Threshold
 
+# A code list file (its CSV), relative to the file that names it.
+ListFile = Annotated[str, Field(pattern=r"\.csv$")]
+
 
 class DiagnosisCodes(Model):
-    """Code prefixes (or ranges such as ``I10-I15``) per system, as written in a definition."""
+    """Code prefixes (or ranges such as ``I10-I15``) per system, as written in a definition.
+
+    ``lists`` names code list files (``../codelists/heart_failure_icd10.csv``), relative to
+    the definition file; their codes count as if written here, matched as each list declares.
+    """
 
     ICD9: Annotated[tuple[ICD9Code, ...], ONE_OR_MORE] = ()
     ICD10: Annotated[tuple[ICD10Code, ...], ONE_OR_MORE] = ()
+    lists: Annotated[tuple[ListFile, ...], ONE_OR_MORE] = ()
 
 
 class DiagnosisEvidence(DiagnosisCodes):
@@ -41,8 +49,8 @@ class DiagnosisEvidence(DiagnosisCodes):
 
     @model_validator(mode="after")
     def _needs_codes(self) -> Self:
-        if not (self.ICD9 or self.ICD10):
-            raise ValueError("a diagnosis needs at least one ICD9 or ICD10 code")
+        if not (self.ICD9 or self.ICD10 or self.lists):
+            raise ValueError("a diagnosis needs at least one ICD9 or ICD10 code or a code list")
         return self
 
 
@@ -50,12 +58,20 @@ class PrescriptionEvidence(Model):
     """Prescriptions whose WHO ATC code starts with a prefix, optionally lasting long enough.
 
     ``min_days`` counts the days from start to stop, both included; a prescription without a
-    stop date does not meet a minimum duration.
+    stop date does not meet a minimum duration. ``lists`` names ATC code list files (their
+    ``excluded`` rows are exclusions), relative to the definition file.
     """
 
-    atc: Annotated[tuple[ATCCode, ...], ONE_OR_MORE, Field(min_length=1)]
+    atc: Annotated[tuple[ATCCode, ...], ONE_OR_MORE] = ()
+    lists: Annotated[tuple[ListFile, ...], ONE_OR_MORE] = ()
     exclude: Annotated[tuple[ATCCode, ...], ONE_OR_MORE] = ()
     min_days: PositiveInt | None = None
+
+    @model_validator(mode="after")
+    def _needs_codes(self) -> Self:
+        if not (self.atc or self.lists):
+            raise ValueError("a prescription needs at least one atc code or a code list")
+        return self
 
 
 class MeasurementEvidence(Model):

@@ -4,14 +4,15 @@ from __future__ import annotations
 
 import difflib
 from collections.abc import Iterable
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, TypeVar
 
 from pydantic import BaseModel, ValidationError
 
 from pipeline.config._base import Model
-from pipeline.config._condition import Condition, Rule
+from pipeline.config._codelist import HEADER_SUFFIX
+from pipeline.config._condition import Condition, DiagnosisEvidence, Evidence, Rule
 from pipeline.config._library import library_conditions
 from pipeline.config._measure import (
     MEASURES_CONTEXT,
@@ -19,6 +20,7 @@ from pipeline.config._measure import (
     measure_files,
     shipped_measures,
 )
+from pipeline.config._listuse import EvidenceLists, ListUse, read_lists
 from pipeline.config._study import Study
 from pipeline.config._yaml import LocatedDocument, PathKey, load_yaml
 from pipeline.errors import ConfigError, Problem
@@ -96,15 +98,37 @@ def validate_document(
 
 @dataclass(frozen=True)
 class Catalog:
-    """Every condition definition in a folder, by name, with the file it came from."""
+    """Every condition definition in a folder, by name, with the file it came from.
+
+    ``code_lists`` holds the code lists each condition's evidence names, read and checked at
+    load time: condition name -> evidence name -> the lists.
+    """
 
     folder: Path
     conditions: dict[str, Condition]
     files: dict[str, Path]
+    code_lists: dict[str, EvidenceLists] = field(default_factory=dict)
 
     def get(self, name: str) -> Condition:
         """Return a condition by name (names were checked when the study was loaded)."""
         return self.conditions[name]
+
+    def lists_of(self, condition: str, evidence: str) -> tuple[ListUse, ...]:
+        """The code lists one piece of a condition's evidence names (none: empty)."""
+        return self.code_lists.get(condition, {}).get(evidence, ())
+
+    def list_files(self, conditions: tuple[str, ...] | None = None) -> list[Path]:
+        """Every file the code lists of these conditions (default: all) were read from."""
+        names = self.code_lists if conditions is None else conditions
+        return sorted(
+            {
+                file
+                for name in names
+                for uses in self.code_lists.get(name, {}).values()
+                for use in uses
+                for file in use.code_list.files
+            }
+        )
 
     def with_references(self, names: tuple[str, ...]) -> tuple[str, ...]:
         """``names`` and every condition they refer to, each after those it refers to."""
@@ -191,18 +215,38 @@ def _find_cycle(start: str, catalog: dict[str, Condition]) -> list[str] | None:
     return None
 
 
-def load_condition(file: Path, measures: MeasureRegistry | None = None) -> Condition:
-    """Load and check one condition file, against ``measures`` (default: the shipped ones).
+def load_condition_lists(
+    file: Path, measures: MeasureRegistry | None = None
+) -> tuple[Condition, EvidenceLists]:
+    """Load and check one condition file and the code lists its evidence names.
+
+    Thresholds are read against ``measures`` (default: the shipped ones).
 
     Raises:
-        ConfigError: Schema errors or rules that name undefined evidence.
+        ConfigError: Schema errors, rules that name undefined evidence, code list problems.
     """
     doc = load_yaml(file)
     condition = validate_document(doc, Condition, measures)
     problems = _check_rules(doc, condition)
+    lists, list_problems = read_lists(doc, condition)
+    problems += list_problems
     if problems:
         raise ConfigError(problems)
-    return condition
+    return condition, lists
+
+
+def load_condition(file: Path, measures: MeasureRegistry | None = None) -> Condition:
+    """Load and check one condition file (and its code lists).
+
+    Raises:
+        ConfigError: Schema errors, rules that name undefined evidence, code list problems.
+    """
+    return load_condition_lists(file, measures)[0]
+
+
+def condition_files(folder: Path) -> list[Path]:
+    """The condition files of a folder: its ``*.yaml``, except code list headers."""
+    return [f for f in sorted(folder.glob("*.yaml")) if not f.name.endswith(HEADER_SUFFIX)]
 
 
 def load_catalog(folder: Path, measures: MeasureRegistry | None = None) -> Catalog:
@@ -219,10 +263,11 @@ def load_catalog(folder: Path, measures: MeasureRegistry | None = None) -> Catal
         )
     conditions: dict[str, Condition] = {}
     files: dict[str, Path] = {}
+    code_lists: dict[str, EvidenceLists] = {}
     problems: list[Problem] = []
-    for file in sorted(folder.glob("*.yaml")):
+    for file in condition_files(folder):
         try:
-            condition = load_condition(file, measures)
+            condition, lists = load_condition_lists(file, measures)
         except ConfigError as err:
             problems.extend(err.problems)
             continue
@@ -239,10 +284,12 @@ def load_catalog(folder: Path, measures: MeasureRegistry | None = None) -> Catal
             continue
         conditions[condition.condition] = condition
         files[condition.condition] = file
+        if lists:
+            code_lists[condition.condition] = lists
     problems.extend(_check_references(conditions, files))
     if problems:
         raise ConfigError(problems)
-    return Catalog(folder, conditions, files)
+    return Catalog(folder, conditions, files, code_lists)
 
 
 @dataclass(frozen=True)
@@ -351,7 +398,38 @@ def _apply_changes(doc: LocatedDocument, study: Study, catalog: Catalog) -> Cata
         conditions[name] = condition.model_copy(update={"rules": tuple(new_rules)})
     if problems:
         raise ConfigError(problems)
-    return Catalog(catalog.folder, conditions, catalog.files)
+    return Catalog(catalog.folder, conditions, catalog.files, catalog.code_lists)
+
+
+def _study_lists(doc: LocatedDocument, study: Study) -> list[Problem]:
+    """Code lists are read in definitions only: a study's own evidence writes its codes inline.
+
+    (Refused rather than ignored, which would silently match nothing.)
+    """
+    found: list[tuple[PathKey, Evidence | None]] = []
+    if study.index.first_event is not None:
+        found.append((("index", "first_event", "evidence"), study.index.first_event.evidence))
+    for i, criterion in enumerate(study.eligibility):
+        if criterion.no_evidence is not None:
+            path: PathKey = ("eligibility", i, "no_evidence", "evidence")
+            found.append((path, criterion.no_evidence.evidence))
+    found += [(("covariates", name, "count"), cov.count) for name, cov in study.covariates.items()]
+    problems = []
+    for path, ev in found:
+        kind = (ev.diagnosis or ev.prescription) if ev is not None else None
+        if kind is None:
+            continue
+        excluded = isinstance(kind, DiagnosisEvidence) and kind.exclude and kind.exclude.lists
+        if kind.lists or excluded:
+            problems.append(
+                doc.problem(
+                    path,
+                    "list-in-study",
+                    "a study's own evidence writes its codes inline; code lists are named in "
+                    "definitions (make a definition and refer to it with condition:)",
+                )
+            )
+    return problems
 
 
 def load_study(file: Path) -> LoadedStudy:
@@ -416,6 +494,7 @@ def load_study(file: Path) -> LoadedStudy:
         if name not in catalog.conditions
     ]
     problems += _duplicate_columns(doc, study)
+    problems += _study_lists(doc, study)
     if problems:
         raise ConfigError(problems)
     catalog = _apply_changes(doc, study, catalog)

@@ -207,7 +207,8 @@ def make_manifest(
         tool_version: The version of ascertain that built it.
         engine: The engine's name, version and thread count.
         study_file: The study file, resolved.
-        definition_files: Every definition file the study's catalog loaded.
+        definition_files: Every definition file the study's catalog loaded, and every code
+            list file (CSV, header, hierarchy, edition table) those definitions read.
         measure_files: Every measure file the build read (shipped and the study's own).
         library: The study reads the shipped library (see :func:`definition_path`).
         extract: The extract folder, site mapping file or connection URI the build read.

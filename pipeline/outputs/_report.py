@@ -148,7 +148,10 @@ def read_study(
         condition = loaded.catalog.get(condition_name)
         # The rules in the words of `ascertain check --explain`, without the title the heading
         # already shows: what makes a case, not only what the author wrote about it.
-        rules = explain_condition(condition).removeprefix(f"{condition.title} ({condition_name}): ")
+        lists = loaded.catalog.code_lists.get(condition_name)
+        rules = explain_condition(condition, lists).removeprefix(
+            f"{condition.title} ({condition_name}): "
+        )
         definitions.append(
             {
                 "name": condition_name,
