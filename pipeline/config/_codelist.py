@@ -34,6 +34,7 @@ from pipeline.codes import (
     read_hierarchy,
 )
 from pipeline.config._base import Model, Name
+from pipeline.config._document import validate_document
 from pipeline.config._yaml import LocatedDocument, load_yaml
 from pipeline.errors import ConfigError, Problem
 
@@ -172,8 +173,6 @@ def header_file_of(csv_file: Path) -> Path:
 
 
 def _read_header(file: Path) -> tuple[CodeListHeader, LocatedDocument]:
-    from pipeline.config._loader import validate_document  # the loader imports this module
-
     doc = load_yaml(file)
     header = validate_document(doc, CodeListHeader)
     problems = []

@@ -31,7 +31,7 @@ from typing import Annotated, Literal, Self
 from pydantic import Field, field_validator, model_validator
 
 from pipeline.config._base import Model, Name
-from pipeline.config._loader import did_you_mean, validate_document
+from pipeline.config._document import did_you_mean, validate_document
 from pipeline.config._yaml import load_yaml
 from pipeline.errors import ConfigError
 

@@ -193,7 +193,7 @@ def load_measure_file(file: Path) -> Measure:
     Raises:
         ConfigError: Schema errors, a unit spelled twice, a canonical unit not listed.
     """
-    from pipeline.config._loader import validate_document  # the loader imports conditions
+    from pipeline.config._document import validate_document  # it imports this module
 
     entry = validate_document(load_yaml(file), MeasureFile)
     problems = _unit_problems(file, entry)
