@@ -199,6 +199,11 @@ def build_study(
         database=opened.database.as_manifest() if opened.database else None,
         rows={
             "cohort": run.outputs["cohort"].num_rows,
+            **(
+                {"persontime": run.outputs["persontime"].num_rows}
+                if "persontime" in run.outputs
+                else {}
+            ),
             **{row["source_table"]: row["n_rows"] for row in run.outputs["rows_read"].to_pylist()},
         },
     )
@@ -228,6 +233,8 @@ def build_study(
         columns=plan.columns,
         manifest=manifest,
         run_info=run_info,
+        persontime=run.outputs.get("persontime"),
+        persontime_columns=dict(plan.output_columns).get("persontime", ()),
     )
     return BuildResult(out, written.files, plan, run, [*notes, *written.notes])
 

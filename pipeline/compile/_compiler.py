@@ -9,6 +9,7 @@ from pipeline.compile._context import CompileContext, evidence_key, evidence_num
 from pipeline.compile._dictionary import dictionary
 from pipeline.compile._evidence import evidence_stages
 from pipeline.compile._measurements import measurement_stages
+from pipeline.compile._persontime import persontime_docs, persontime_stages
 from pipeline.compile._plan import Plan, Stage
 from pipeline.compile._quality import quality_stages
 from pipeline.compile._rules import rule_stages
@@ -26,6 +27,7 @@ PASSES: tuple[Pass, ...] = (
     rule_stages,
     cohort_stages,
     quality_stages,
+    persontime_stages,
 )
 
 
@@ -38,6 +40,7 @@ def compile_study(loaded: LoadedStudy) -> Plan:
     ctx = CompileContext(loaded.study, loaded.catalog)
     _check_evidence_numbers(ctx)
     stages = tuple(stage for compile_pass in PASSES for stage in compile_pass(ctx))
+    persontime = ctx.study.persontime is not None
     return Plan(
         study=loaded.study.study,
         sources=source_tables(ctx),
@@ -48,8 +51,10 @@ def compile_study(loaded: LoadedStudy) -> Plan:
             ("attrition", "attrition", ("step_number",)),
             ("quality", "quality_log", ("source_table", "outcome", "reason")),
             ("rows_read", "rows_read", ("source_table",)),
+            *((("persontime", "persontime", ("patient_id", "cell_start")),) if persontime else ()),
         ),
         columns=dictionary(ctx),
+        output_columns=(("persontime", persontime_docs(ctx)),) if persontime else (),
     )
 
 

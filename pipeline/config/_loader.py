@@ -13,6 +13,7 @@ from pydantic import BaseModel, ValidationError
 from pipeline.config._base import Model
 from pipeline.config._condition import Condition, Rule
 from pipeline.config._library import library_conditions
+from pipeline.config._persontime import persontime_problems
 from pipeline.config._study import Study
 from pipeline.config._yaml import LocatedDocument, PathKey, load_yaml
 from pipeline.errors import ConfigError, Problem
@@ -396,6 +397,8 @@ def load_study(file: Path) -> LoadedStudy:
         if name not in catalog.conditions
     ]
     problems += _duplicate_columns(doc, study)
+    ages = [c.age.between[0] for c in study.eligibility if c.age is not None]
+    problems += persontime_problems(doc, study.persontime, ages)
     if problems:
         raise ConfigError(problems)
     catalog = _apply_changes(doc, study, catalog)
