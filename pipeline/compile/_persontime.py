@@ -126,14 +126,12 @@ def _split_by_years(source: exp.Expression, carried: list[str]) -> tuple[exp.Sel
         *(_piece(c) for c in carried),
         _piece("piece_start"),
         _piece("piece_end"),
-        exp.Unnest(
-            expressions=[
-                exp.func(
-                    "GENERATE_SERIES",
-                    exp.Year(this=_piece("piece_start")),
-                    exp.Year(this=_piece("piece_end")),
-                )
-            ]
+        # DuckDB's UNNEST in a select list, Spark's EXPLODE: one row per element.
+        exp.Explode(
+            this=exp.GenerateSeries(
+                start=exp.Year(this=_piece("piece_start")),
+                end=exp.Year(this=_piece("piece_end")),
+            )
         ).as_("calendar_year"),
     ).from_(source)
     year = exp.column("calendar_year", "p")
@@ -200,8 +198,12 @@ def _spans_query(ctx: CompileContext) -> exp.Query:
     )
 
 
-def _cells_query(ctx: CompileContext, option: PersonTime) -> exp.Query:
-    names = [o.condition for o in ctx.outcomes]
+def cells_query(names: list[str], option: PersonTime) -> exp.Query:
+    """The ``persontime`` stage's query for outcomes ``names``: it reads ``persontime_spans``.
+
+    One row per patient and cell, from a span per patient (``piece_start``, ``piece_end``,
+    ``birth_date``, ``index_date``, ``at_risk_X`` and the incident ``onset_X``).
+    """
     carried = [*_CARRIED, *(f"at_risk_{n}" for n in names), *(f"onset_{n}" for n in names)]
     source: exp.Expression = exp.to_table("persontime_spans").as_("p")
     query, carried = _split_by_bands(
@@ -315,7 +317,7 @@ def persontime_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         ),
         Stage(
             "persontime",
-            _cells_query(ctx, option),
+            cells_query([o.condition for o in ctx.outcomes], option),
             ("persontime_spans",),
             "follow-up split at age bands, calendar years and time since index, with days at "
             "risk and events per outcome",

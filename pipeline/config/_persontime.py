@@ -13,9 +13,9 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from itertools import pairwise
-from typing import Annotated, Self
+from typing import Annotated
 
-from pydantic import Field, model_validator
+from pydantic import Field, field_validator
 
 from pipeline.config._base import Model, NonNegativeInt
 from pipeline.config._yaml import LocatedDocument
@@ -24,10 +24,10 @@ from pipeline.errors import Problem
 Bounds = Annotated[tuple[NonNegativeInt, ...], Field(min_length=1, max_length=40)]
 
 
-def _ascending(bounds: tuple[int, ...], key: str) -> None:
+def _ascending(bounds: tuple[int, ...]) -> None:
     for low, high in pairwise(bounds):
         if high <= low:
-            raise ValueError(f"{key} must be strictly ascending lower bounds ({low} then {high})")
+            raise ValueError(f"lower bounds must be strictly ascending ({low} then {high})")
 
 
 class PersonTime(Model):
@@ -44,16 +44,20 @@ class PersonTime(Model):
     calendar_year: bool = True
     since_index_years: Bounds | None = None
 
-    @model_validator(mode="after")
-    def _bounds(self) -> Self:
-        _ascending(self.age_bands, "age_bands")
-        if self.since_index_years is not None:
-            _ascending(self.since_index_years, "since_index_years")
-            if self.since_index_years[0] != 0:
-                raise ValueError(
-                    "since_index_years must start at 0: follow-up starts the day after index"
-                )
-        return self
+    @field_validator("age_bands")
+    @classmethod
+    def _ascending_ages(cls, bounds: tuple[int, ...]) -> tuple[int, ...]:
+        _ascending(bounds)
+        return bounds
+
+    @field_validator("since_index_years")
+    @classmethod
+    def _from_index(cls, bounds: tuple[int, ...] | None) -> tuple[int, ...] | None:
+        if bounds is not None:
+            _ascending(bounds)
+            if bounds[0] != 0:
+                raise ValueError("must start at 0: follow-up starts the day after index")
+        return bounds
 
     @property
     def age_labelled(self) -> tuple[tuple[int, int | None, str], ...]:
