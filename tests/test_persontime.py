@@ -10,7 +10,9 @@ from __future__ import annotations
 import csv
 import dataclasses
 import datetime as dt
+import importlib.util
 import json
+import os
 import shutil
 from pathlib import Path
 from typing import Any
@@ -28,6 +30,8 @@ from pipeline.config._persontime import PersonTime
 from pipeline.engine import DuckDBEngine
 from pipeline.errors import ConfigError, EngineError
 from pipeline.extract import discover_extract
+
+from .helpers import require
 
 FIXTURE = Path(__file__).parent / "fixtures" / "designs" / "persontime"
 DEFINITIONS = Path(__file__).resolve().parents[1] / "definitions"
@@ -363,3 +367,15 @@ def test_cells_equal_the_day_by_day_oracle(spans: list[dict[str, Any]], option: 
         assert sum(c["days"] for c in mine) == max(
             (span["followup_end"] - span["index_date"]).days, 0
         )
+
+
+@pytest.mark.spark
+@pytest.mark.slow
+def test_spark_writes_the_same_bytes(built: Path, tmp_path: Path) -> None:
+    require(importlib.util.find_spec("pyspark"), "pyspark is not installed (ascertain[spark])")
+    require(shutil.which("java") or os.environ.get("JAVA_HOME"), "no Java runtime for Spark")
+    study = _copy_fixture(tmp_path)
+    out = tmp_path / "spark"
+    build_study(study, BuildOptions(out=out, engine="spark", threads=2))
+    for name in ("persontime.parquet", "cohort.parquet", "dictionary.csv"):
+        assert (out / name).read_bytes() == (built / name).read_bytes(), name
