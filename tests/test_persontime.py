@@ -22,9 +22,11 @@ import pyarrow.parquet as pq
 import pytest
 from hypothesis import example, given, settings
 from hypothesis import strategies as st
+from sqlglot import exp
 
 from pipeline._build import BuildOptions, build_study, plan_study
 from pipeline.compile._persontime import cells_query
+from pipeline.compile._sql import add_days
 from pipeline.config import load_study
 from pipeline.config._persontime import PersonTime
 from pipeline.engine import DuckDBEngine
@@ -144,16 +146,39 @@ def test_a_study_without_the_option_writes_no_file(tmp_path: Path) -> None:
 # --- the accounting check fails a build whose cells do not add up ----------------------------
 
 
-def _run_with_broken_cells(tmp_path: Path, where: str) -> None:
+def _run_with_broken_cells(tmp_path: Path, where: str = "TRUE", *, shift: str = "") -> None:
+    """Run the fixture's plan with its cells broken as a defect would: some lost, or the cells
+    of patient ``shift`` moved a day later (same days, same sums)."""
     study = _copy_fixture(tmp_path)
     plan = plan_study(study)
-    stage = plan.stage("persontime")
-    broken = stage.query.copy().where(where)  # lose some cells, as a defect would
+    broken = plan.stage("persontime").query.copy().where(where)
+    if shift:
+        moved = {
+            column: exp.Case()
+            .when(
+                exp.column("patient_id").eq(exp.Literal.string(shift)),
+                add_days(exp.column(column), 1),
+            )
+            .else_(exp.column(column))
+            .as_(column)
+            for column in ("cell_start", "cell_end")
+        }
+        columns = [moved.get(s.alias_or_name, exp.column(s.alias_or_name)) for s in broken.selects]
+        broken = exp.select(*columns).from_(broken.subquery("moved"))
     stages = tuple(
         dataclasses.replace(s, query=broken) if s.name == "persontime" else s for s in plan.stages
     )
     plan = dataclasses.replace(plan, stages=stages)
     DuckDBEngine().run(plan, discover_extract(study.parent, plan.sources))
+
+
+def test_the_fixture_plan_runs_unbroken(tmp_path: Path) -> None:
+    _run_with_broken_cells(tmp_path)  # the helper itself breaks nothing unless asked
+
+
+def test_accounting_check_names_the_patient_when_cells_move(tmp_path: Path) -> None:
+    with pytest.raises(EngineError, match=r"PT-02, cells do not run from index \+ 1"):
+        _run_with_broken_cells(tmp_path, shift="PT-02")
 
 
 def test_accounting_check_names_the_patient_when_days_are_lost(tmp_path: Path) -> None:

@@ -249,6 +249,8 @@ def _accounting_query(ctx: CompileContext) -> exp.Query:
         exp.select(
             "patient_id",
             exp.func("SUM", exp.column("days")).as_("days"),
+            exp.func("MIN", exp.column("cell_start")).as_("first_day"),
+            exp.func("MAX", exp.column("cell_end")).as_("last_day"),
             *(
                 part
                 for n in names
@@ -269,8 +271,16 @@ def _accounting_query(ctx: CompileContext) -> exp.Query:
     def total(column: str) -> exp.Expression:
         return exp.func("COALESCE", exp.column(column, "s"), exp.Literal.number(0))
 
+    first, last = exp.column("first_day", "s"), exp.column("last_day", "s")
     differences: list[tuple[exp.Expression, str]] = [
-        (total("days").neq(exp.column("followup_days", "c")), "days <> followup_days")
+        (total("days").neq(exp.column("followup_days", "c")), "days <> followup_days"),
+        (
+            exp.or_(
+                first.neq(add_days(exp.column("index_date", "c"), 1)),
+                last.neq(exp.column("followup_end", "c")),
+            ),
+            "cells do not run from index + 1 to followup_end",
+        ),
     ]
     for n in names:
         at_risk = exp.column(f"at_risk_{n}", "c")

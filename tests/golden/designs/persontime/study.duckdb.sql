@@ -1556,6 +1556,9 @@ SELECT
   CASE
     WHEN COALESCE(s.days, 0) <> c.followup_days
     THEN 'days <> followup_days'
+    WHEN s.first_day <> CAST(c.index_date + INTERVAL 1 DAY AS DATE)
+    OR s.last_day <> c.followup_end
+    THEN 'cells do not run from index + 1 to followup_end'
     WHEN c.at_risk_heart_failure
     AND COALESCE(s.risk_heart_failure, 0) <> c.time_heart_failure
     THEN 'days_at_risk_heart_failure <> time_heart_failure'
@@ -1578,6 +1581,8 @@ LEFT JOIN (
   SELECT
     patient_id,
     SUM(days) AS days,
+    MIN(cell_start) AS first_day,
+    MAX(cell_end) AS last_day,
     SUM(days_at_risk_heart_failure) AS risk_heart_failure,
     SUM(events_heart_failure) AS events_heart_failure,
     COUNT(days_at_risk_heart_failure) + COUNT(events_heart_failure) AS marked_heart_failure,
@@ -1591,6 +1596,10 @@ LEFT JOIN (
   ON s.patient_id = c.patient_id
 WHERE
   COALESCE(s.days, 0) <> c.followup_days
+  OR (
+    s.first_day <> CAST(c.index_date + INTERVAL 1 DAY AS DATE)
+    OR s.last_day <> c.followup_end
+  )
   OR (
     c.at_risk_heart_failure
     AND COALESCE(s.risk_heart_failure, 0) <> c.time_heart_failure

@@ -1805,6 +1805,9 @@ SELECT
   CASE
     WHEN COALESCE(s.days, 0) <> c.followup_days
     THEN 'days <> followup_days'
+    WHEN s.first_day <> CAST(DATE_ADD(c.index_date, 1) AS DATE)
+    OR s.last_day <> c.followup_end
+    THEN 'cells do not run from index + 1 to followup_end'
     WHEN c.at_risk_heart_failure
     AND COALESCE(s.risk_heart_failure, 0) <> c.time_heart_failure
     THEN 'days_at_risk_heart_failure <> time_heart_failure'
@@ -1827,6 +1830,8 @@ LEFT JOIN (
   SELECT
     patient_id,
     SUM(days) AS days,
+    MIN(cell_start) AS first_day,
+    MAX(cell_end) AS last_day,
     SUM(days_at_risk_heart_failure) AS risk_heart_failure,
     SUM(events_heart_failure) AS events_heart_failure,
     COUNT(days_at_risk_heart_failure) + COUNT(events_heart_failure) AS marked_heart_failure,
@@ -1840,6 +1845,10 @@ LEFT JOIN (
   ON s.patient_id = c.patient_id
 WHERE
   COALESCE(s.days, 0) <> c.followup_days
+  OR (
+    s.first_day <> CAST(DATE_ADD(c.index_date, 1) AS DATE)
+    OR s.last_day <> c.followup_end
+  )
   OR (
     c.at_risk_heart_failure
     AND COALESCE(s.risk_heart_failure, 0) <> c.time_heart_failure
