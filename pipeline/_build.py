@@ -211,6 +211,11 @@ def build_study(
         keys=study_keys(study),
         rows={
             "cohort": run.outputs["cohort"].num_rows,
+            **(
+                {"persontime": run.outputs["persontime"].num_rows}
+                if "persontime" in run.outputs
+                else {}
+            ),
             **{row["source_table"]: row["n_rows"] for row in run.outputs["rows_read"].to_pylist()},
         },
     )
@@ -245,6 +250,8 @@ def build_study(
         columns=plan.columns,
         manifest=manifest,
         run_info=run_info,
+        persontime=run.outputs.get("persontime"),
+        persontime_columns=dict(plan.output_columns).get("persontime", ()),
     )
     return BuildResult(
         out,

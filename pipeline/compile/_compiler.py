@@ -10,6 +10,7 @@ from pipeline.compile._dictionary import dictionary
 from pipeline.compile._evidence import evidence_stages
 from pipeline.compile._matches import EVIDENCE_COUNTS, Use, match_count_stages, unmatched_uses
 from pipeline.compile._measurements import measurement_stages
+from pipeline.compile._persontime import persontime_docs, persontime_stages
 from pipeline.compile._plan import Plan, Stage
 from pipeline.compile._quality import quality_stages
 from pipeline.compile._rules import rule_stages
@@ -28,6 +29,7 @@ PASSES: tuple[Pass, ...] = (
     cohort_stages,
     quality_stages,
     match_count_stages,
+    persontime_stages,
 )
 
 
@@ -40,6 +42,7 @@ def compile_study(loaded: LoadedStudy) -> Plan:
     ctx = CompileContext(loaded.study, loaded.catalog, loaded.measures)
     _check_evidence_numbers(ctx)
     stages = tuple(stage for compile_pass in PASSES for stage in compile_pass(ctx))
+    persontime = ctx.study.persontime is not None
     return Plan(
         study=loaded.study.study,
         sources=source_tables(ctx),
@@ -51,8 +54,10 @@ def compile_study(loaded: LoadedStudy) -> Plan:
             ("quality", "quality_log", ("source_table", "outcome", "reason")),
             ("rows_read", "rows_read", ("source_table",)),
             (EVIDENCE_COUNTS, EVIDENCE_COUNTS, ("evidence",)),
+            *((("persontime", "persontime", ("patient_id", "cell_start")),) if persontime else ()),
         ),
         columns=dictionary(ctx),
+        output_columns=(("persontime", persontime_docs(ctx)),) if persontime else (),
     )
 
 

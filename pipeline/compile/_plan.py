@@ -105,6 +105,8 @@ class Plan:
         outputs: Output name (``cohort``, ``attrition``, ...) -> the stage that holds it, with
             the columns it must be sorted by.
         columns: The data dictionary of the analysis table.
+        output_columns: The data dictionaries of further outputs written as files of their own
+            (``persontime``), by output name.
     """
 
     study: str
@@ -112,6 +114,7 @@ class Plan:
     stages: tuple[Stage, ...]
     outputs: tuple[tuple[str, str, tuple[str, ...]], ...]
     columns: tuple[ColumnDoc, ...] = ()
+    output_columns: tuple[tuple[str, tuple[ColumnDoc, ...]], ...] = ()
 
     def __post_init__(self) -> None:
         known = {s.relation for s in self.sources}
@@ -162,7 +165,9 @@ class Plan:
         for name in names:
             self.stage(name)
         outputs = tuple((name, name, ()) for name in names)
-        return Plan(self.study, self.sources, self.stages, outputs, self.columns)
+        return Plan(
+            self.study, self.sources, self.stages, outputs, self.columns, self.output_columns
+        )
 
     def explain(self, dialect: str = SOURCE_DIALECT, *, only: str | None = None) -> str:
         """Render the plan as commented SQL, one stage after another."""

@@ -17,6 +17,7 @@ from pipeline.config._measure import (
     measure_files,
     shipped_measures,
 )
+from pipeline.config._persontime import persontime_problems
 from pipeline.config._study import Study
 from pipeline.config._yaml import LocatedDocument, PathKey, load_yaml
 from pipeline.errors import ConfigError, Problem
@@ -422,6 +423,8 @@ def load_study(file: Path) -> LoadedStudy:
     ]
     problems += _duplicate_columns(doc, study)
     problems += _study_lists(doc, study)
+    ages = [c.age.between[0] for c in study.eligibility if c.age is not None]
+    problems += persontime_problems(doc, study.persontime, ages)
     if problems:
         raise ConfigError(problems)
     catalog = _apply_changes(doc, study, catalog)

@@ -17,6 +17,7 @@ from pydantic import Field, ValidationInfo, field_validator, model_validator
 from pipeline.config._base import ONE_OR_MORE, Model, Name, NonNegativeInt, PositiveInt
 from pipeline.config._condition import Evidence
 from pipeline.config._measure import measures_in
+from pipeline.config._persontime import PersonTime
 from pipeline.config._settings import EngineSettings, Output, QualitySettings
 from pipeline.config._spark import SparkSettings
 
@@ -399,6 +400,7 @@ class Study(Model):
     engine: EngineSettings = EngineSettings()
     spark: SparkSettings = SparkSettings()
     quality: QualitySettings = QualitySettings()
+    persontime: PersonTime | None = None
 
     @field_validator("extract", mode="before")
     @classmethod

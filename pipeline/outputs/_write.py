@@ -103,27 +103,51 @@ def write_attrition(table: pa.Table, path: Path) -> None:
 DICTIONARY_COLUMNS = ("column", "type", "unit", "meaning", "computed", "sources")
 
 
-def write_dictionary(columns: tuple[ColumnDoc, ...], folder: Path) -> None:
-    """Write the data dictionary as ``dictionary.csv`` and ``dictionary.md``."""
+def write_dictionary(
+    columns: tuple[ColumnDoc, ...],
+    folder: Path,
+    further: tuple[tuple[str, tuple[ColumnDoc, ...]], ...] = (),
+) -> None:
+    """Write the data dictionary as ``dictionary.csv`` and ``dictionary.md``.
+
+    ``further`` documents other files by name (``persontime.parquet``): in the CSV their rows
+    follow the cohort's, each column named with its file's stem (``persontime.days``), so one
+    table can be filtered by file; the Markdown gives each file a section of its own.
+    """
     rows = [{name: getattr(doc, name) for name in DICTIONARY_COLUMNS} for doc in columns]
+    further_rows = [
+        (file, [{name: getattr(doc, name) for name in DICTIONARY_COLUMNS} for doc in docs])
+        for file, docs in further
+    ]
     with (folder / "dictionary.csv").open("w", encoding="utf-8", newline="") as handle:
         writer = csv.DictWriter(handle, fieldnames=DICTIONARY_COLUMNS, lineterminator="\n")
         writer.writeheader()
         writer.writerows(rows)
+        for file, file_rows in further_rows:
+            stem = file.split(".")[0]
+            writer.writerows({**row, "column": f"{stem}.{row['column']}"} for row in file_rows)
     lines = [
         "# Data dictionary of cohort.parquet",
         "",
         "Research use only; not for clinical decisions. Suppress small counts before sharing "
         "any summary, and follow your local data-governance rules.",
         "",
+        *_markdown_table(rows),
+    ]
+    for file, file_rows in further_rows:
+        lines += ["", f"# Data dictionary of {file}", "", *_markdown_table(file_rows)]
+    (folder / "dictionary.md").write_text("\n".join(lines) + "\n", encoding="utf-8")
+
+
+def _markdown_table(rows: list[dict[str, str]]) -> list[str]:
+    lines = [
         "| " + " | ".join(DICTIONARY_COLUMNS) + " |",
         "|" + "---|" * len(DICTIONARY_COLUMNS),
     ]
-    lines += [
+    return lines + [
         "| " + " | ".join(str(row[c]).replace("|", "\\|") for c in DICTIONARY_COLUMNS) + " |"
         for row in rows
     ]
-    (folder / "dictionary.md").write_text("\n".join(lines) + "\n", encoding="utf-8")
 
 
 def write_json(data: dict[str, Any], path: Path) -> None:
@@ -154,6 +178,8 @@ def write_outputs(
     columns: tuple[ColumnDoc, ...],
     manifest: dict[str, Any],
     run_info: dict[str, Any],
+    persontime: pa.Table | None = None,
+    persontime_columns: tuple[ColumnDoc, ...] = (),
 ) -> Written:
     """Write the cohort, attrition log, data dictionary, manifest and run record.
 
@@ -162,19 +188,24 @@ def write_outputs(
     output untouched. Only files a previous build listed in its manifest are replaced or
     removed; a report written for the previous cohort is removed, with a note saying so. The
     manifest gets the hash of every data file; ``run.json`` (when and how long) is the only
-    file that differs between runs.
+    file that differs between runs. ``persontime`` (with its dictionary) is written as
+    ``persontime.parquet`` when the study asks for it.
 
     Raises:
         OutputFolderError: ``target`` holds files ascertain did not write there.
     """
-    names = [*DATA_FILES, MANIFEST, "run.json"]
+    data_files = [*DATA_FILES, *([PERSONTIME] if persontime is not None else [])]
+    names = [*data_files, MANIFEST, "run.json"]
+    further = ((PERSONTIME, persontime_columns),) if persontime is not None else ()
     with staging(target) as staged:
         write_parquet(with_column_docs(cohort, columns), staged / "cohort.parquet")
         write_parquet(population, staged / "population.parquet")
         write_attrition(attrition, staged / "attrition.csv")
         write_csv(quality, QUALITY_COLUMNS, staged / "quality.csv")
-        write_dictionary(columns, staged)
-        hashed = {name: sha256_file(staged / name) for name in DATA_FILES}
+        write_dictionary(columns, staged, further)
+        if persontime is not None:
+            write_parquet(with_column_docs(persontime, persontime_columns), staged / PERSONTIME)
+        hashed = {name: sha256_file(staged / name) for name in data_files}
         write_json({**manifest, "outputs": hashed}, staged / MANIFEST)
         write_json(run_info, staged / "run.json")
         notes = install(staged, target, BUILD, names)
@@ -189,3 +220,6 @@ DATA_FILES = (
     "dictionary.csv",
     "dictionary.md",
 )
+
+PERSONTIME = "persontime.parquet"
+"""Written when the study has a ``persontime:`` option (listed in the manifest then)."""
