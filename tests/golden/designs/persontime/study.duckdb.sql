@@ -1,4 +1,4 @@
--- plan for study design_persontime (29 stages, dialect duckdb)
+-- plan for study design_persontime (30 stages, dialect duckdb)
 
 -- reads src_patients: patient_id, sex, death_date, birth_date, birth_year, practice_id, registration_date, deregistration_date
 
@@ -1381,6 +1381,15 @@ FROM (
 GROUP BY
   source_table,
   reason;
+
+-- stage evidence_counts [table]: patient-days per piece of evidence, so a definition matching no row is reported
+-- reads: evidence_events
+SELECT
+  evidence,
+  COUNT(*) AS n_events
+FROM evidence_events
+GROUP BY
+  evidence;
 
 -- stage persontime_spans [view]: each cohort patient's follow-up days (index + 1 to followup_end) and incident onsets
 -- reads: cohort, eligibility
