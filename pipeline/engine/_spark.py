@@ -440,13 +440,10 @@ class SparkEngine:
                 raise
             reports.append(StageReport(stage.name, stage.kind, time.perf_counter() - started, rows))
             log.debug("stage %s: %.3fs, %s rows", stage.name, reports[-1].seconds, rows)
+        counted = {report.name: report.rows for report in reports}
         outputs = {}
         for output, stage_name, order in plan.outputs:
-            select = exp.select("*").from_(stage_name)
-            if order:
-                # DuckDB sorts NULLs last; say so, since Spark sorts them first by default.
-                select = select.order_by(
-                    *(exp.Ordered(this=exp.column(c), nulls_first=False) for c in order)
-                )
-            outputs[output] = to_arrow(spark.sql(select.sql(self.DIALECT)))
+            # Sorted as DuckDB sorts (NULLs last), in partitions of bounded size.
+            frame = spark.table(stage_name)
+            outputs[output] = to_arrow(frame, order, counted.get(stage_name))
         return RunResult(outputs, reports)
