@@ -116,7 +116,9 @@ def main() -> None:
                 runs = []
                 for _ in range(args.repeat):
                     command = [sys.executable, __file__, "--fetch", how, "--folder", str(out)]
-                    done = subprocess.run(command, check=True, capture_output=True, text=True)
+                    done = subprocess.run(command, check=False, capture_output=True, text=True)
+                    if done.returncode != 0:
+                        sys.exit(f"{how} fetch failed:\n{done.stderr[-3000:]}")
                     runs.append(json.loads(done.stdout.strip().splitlines()[-1]))
                     print(json.dumps({"patients": patients, **runs[-1]}), flush=True)
                 print(json.dumps({"patients": patients, "median": _median(runs)}), flush=True)
