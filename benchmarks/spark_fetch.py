@@ -1,14 +1,17 @@
 """Driver memory while fetching a build's outputs from Spark: whole (toArrow) or in batches.
 
 For each size: a synthetic extract (``ascertain synth``, seed 1), a DuckDB build of the demo
-study, then for each way of fetching a fresh process with a ``local[2]`` Spark session that
-reads ``cohort.parquet`` and ``population.parquet``, sorts them by patient as the engine does,
-checkpoints them, and fetches them to Python. Measured per fetch: seconds, the peak of the
-driver JVM's heap during the fetch (the JVM's own memory-pool peaks, reset before it) and the
-growth of the Python process's peak resident memory. Both ways must give equal tables (the
-SHA-256 of each table's Arrow IPC stream is printed).
+study, then for each way of fetching and each repeat a fresh process with a ``local[2]`` Spark
+session that reads ``cohort.parquet`` and ``population.parquet`` in shuffled order, stores
+them as the engine stores a stage (a local checkpoint), and fetches them to Python sorted by
+patient: ``whole`` as ``ORDER BY`` + ``toArrow()``, ``batched`` as the engine does
+(``pipeline.engine._spark_fetch.to_arrow``). Measured per fetch: seconds, the peak of the
+driver JVM's heap during the fetch (the JVM's own memory-pool peaks, reset before it; on
+``local[2]`` the executors' sorting runs in the same JVM) and the growth of the Python
+process's peak resident memory. Both ways must give equal tables (the SHA-256 of each table's
+Arrow IPC stream is printed). Medians of ``--repeat`` runs (3 by default).
 
-    python benchmarks/spark_fetch.py --patients 200000
+    python benchmarks/spark_fetch.py --patients 20000 --patients 200000
 """
 
 from __future__ import annotations
@@ -17,6 +20,7 @@ import argparse
 import hashlib
 import json
 import resource
+import statistics
 import subprocess
 import sys
 import tempfile
@@ -29,6 +33,7 @@ STUDY = ROOT / "definitions" / "studies" / "orvane_multimorbidity.yaml"
 
 def _fetch(folder: Path, how: str) -> dict[str, object]:
     import pyarrow as pa
+    from pyspark.sql import functions as F
 
     from pipeline.engine import SparkEngine
     from pipeline.engine._spark_fetch import arrow_schema, to_arrow
@@ -43,14 +48,18 @@ def _fetch(folder: Path, how: str) -> dict[str, object]:
     result: dict[str, object] = {"how": how}
     for name in ("cohort", "population"):
         frame = spark.read.parquet(str(folder / f"{name}.parquet"))
-        frame = frame.orderBy("patient_id").localCheckpoint(eager=True)
+        # A stage arrives unsorted: shuffle it, then store it as the engine stores a stage.
+        frame = frame.orderBy(F.rand(seed=1)).localCheckpoint(eager=True)
         jvm.java.lang.System.gc()
         for pool in pools:
             pool.resetPeakUsage()
         baseline = sum(int(p.getUsage().getUsed()) for p in pools)
         rss_before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
         started = time.perf_counter()
-        table = frame.toArrow().cast(arrow_schema(frame)) if how == "whole" else to_arrow(frame)
+        if how == "whole":
+            table = frame.orderBy("patient_id").toArrow().cast(arrow_schema(frame))
+        else:
+            table = to_arrow(frame, ("patient_id",))
         seconds = time.perf_counter() - started
         peak = sum(int(p.getPeakUsage().getUsed()) for p in pools)
         rss_after = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
@@ -70,9 +79,25 @@ def _fetch(folder: Path, how: str) -> dict[str, object]:
     return result
 
 
+def _median(runs: list[dict[str, object]]) -> dict[str, object]:
+    """Per output, the median of each measured figure over the runs (hashes must agree)."""
+    result: dict[str, object] = {"how": runs[0]["how"], "runs": len(runs)}
+    for name in ("cohort", "population"):
+        tables = [run[name] for run in runs]
+        assert len({t["sha256"] for t in tables}) == 1, "runs fetched different tables"  # type: ignore[index]
+        result[name] = {
+            key: statistics.median(t[key] for t in tables)  # type: ignore[index]
+            if key != "sha256"
+            else tables[0][key]  # type: ignore[index]
+            for key in tables[0]  # type: ignore[union-attr]
+        }
+    return result
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__)
     parser.add_argument("--patients", type=int, action="append", default=[])
+    parser.add_argument("--repeat", type=int, default=3)
     parser.add_argument("--fetch", help=argparse.SUPPRESS)
     parser.add_argument("--folder", help=argparse.SUPPRESS)
     args = parser.parse_args()
@@ -88,10 +113,15 @@ def main() -> None:
             build = [*ascertain, "build", str(STUDY), "--extract", str(extract), "--out", str(out)]
             subprocess.run([*build, "--quiet"], check=True, capture_output=True)
             for how in ("whole", "batched"):
-                command = [sys.executable, __file__, "--fetch", how, "--folder", str(out)]
-                done = subprocess.run(command, check=True, capture_output=True, text=True)
-                line = done.stdout.strip().splitlines()[-1]
-                print(json.dumps({"patients": patients, **json.loads(line)}))
+                runs = []
+                for _ in range(args.repeat):
+                    command = [sys.executable, __file__, "--fetch", how, "--folder", str(out)]
+                    done = subprocess.run(command, check=False, capture_output=True, text=True)
+                    if done.returncode != 0:
+                        sys.exit(f"{how} fetch failed:\n{done.stderr[-3000:]}")
+                    runs.append(json.loads(done.stdout.strip().splitlines()[-1]))
+                    print(json.dumps({"patients": patients, **runs[-1]}), flush=True)
+                print(json.dumps({"patients": patients, "median": _median(runs)}), flush=True)
 
 
 if __name__ == "__main__":

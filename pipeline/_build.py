@@ -5,6 +5,7 @@ from __future__ import annotations
 import datetime as dt
 import tempfile
 from concurrent.futures import ThreadPoolExecutor
+from contextlib import ExitStack
 from dataclasses import dataclass, field
 from importlib.metadata import PackageNotFoundError, version
 from pathlib import Path
@@ -30,15 +31,22 @@ from pipeline.engine._spark_session import (
     parse_settings,
 )
 from pipeline.errors import AscertainError, EngineError
-from pipeline.extract import ExtractTable, database_source, discover_extract, open_extract
+from pipeline.extract import (
+    ExtractTable,
+    HadoopFiles,
+    database_source,
+    discover_extract,
+    is_hadoop_uri,
+    open_extract,
+)
 from pipeline.outputs import (
     changed_inputs,
     check_usable,
     describe_files,
     extract_inputs,
     extract_root,
+    file_name,
     make_manifest,
-    portable_path,
     read_manifest,
     sha256_file,
     study_keys,
@@ -172,7 +180,14 @@ def build_study(
         raise EngineError(
             "a Spark build reads files; a database extract can be built with --engine duckdb"
         )
-    with open_extract(extract, plan.sources) as opened, ThreadPoolExecutor(1) as hasher:
+    with ExitStack() as stack:
+        hadoop = None
+        if is_hadoop_uri(extract) and isinstance(engine, SparkEngine):
+            # The session starts first: the extract is listed and hashed through its file
+            # systems, and a scheme it lacks is refused before any stage runs.
+            hadoop = HadoopFiles.of(stack.enter_context(engine.started()))
+        opened = stack.enter_context(open_extract(extract, plan.sources, hadoop=hadoop))
+        hasher = stack.enter_context(ThreadPoolExecutor(1))
         tables = opened.tables
         extract_files = extract_inputs(extract, opened.files)
         # Hashing the extract overlaps with the engine's work instead of adding to it.
@@ -306,7 +321,7 @@ def locate_first_rows(
             rows.append(None)
             continue
         path = tables[entry["source_table"]].files[position // POSITION_BASE]
-        files.append(portable_path(path, folder) or path.name)
+        files.append(file_name(path, folder))
         rows.append(position % POSITION_BASE)
     kept = quality.drop_columns(["first_position"])
     kept = kept.append_column("first_file", pa.array(files, pa.string()))
@@ -373,6 +388,12 @@ def locate_inputs(
         study = folder.resolve() / hint  # the hint was made from the resolved folder
     if not study.is_file():
         raise AscertainError(f"{study}: the study file {name} is not there; pass --study FILE")
+    if extract is None and locations.get("extract_kind") == "hadoop folder":
+        raise AscertainError(
+            f"{folder}: the build read the extract '{locations.get('extract_name')}' on "
+            f"{locations.get('extract_scheme')}://, and the manifest keeps no server address; "
+            "pass --extract URI"
+        )
     if extract is None and locations.get("extract_uri") is not None:
         return study, str(locations["extract_uri"])
     if extract is None and locations.get("extract_from_study") is not None:

@@ -67,9 +67,9 @@ StudyArg = Annotated[
 ]
 DebugOpt = Annotated[bool, typer.Option("--debug", help="Show the full traceback on errors.")]
 EXTRACT_HELP = (
-    "Use this extract instead of the study's: a folder, a site mapping file, a file:// URI, or a "
-    "database URI postgresql://USER@HOST:PORT/DATABASE?schema=S (password from PGPASSWORD or "
-    "~/.pgpass)."
+    "Use this extract instead of the study's: a folder, a site mapping file, a file:// URI, a "
+    "folder on a Hadoop file system (hdfs://, s3a://; --engine spark), or a database URI "
+    "postgresql://USER@HOST:PORT/DATABASE?schema=S (password from PGPASSWORD or ~/.pgpass)."
 )
 
 

@@ -154,19 +154,19 @@ def test_extract_locations_as_uris(tmp_path: Path) -> None:
     assert extract_location(folder.as_uri()) == folder
     assert extract_location("file://localhost" + folder.as_posix()) == folder
     assert extract_location("plain/relative") == Path("plain/relative")
-    with pytest.raises(ExtractError, match=r"hdfs://nn/x: extracts on hdfs:// cannot be read"):
-        extract_location("hdfs://nn/x")
+    # Other schemes stay URIs, for Spark's Hadoop file systems (tests/test_spark_hadoop.py).
+    assert extract_location("hdfs://nn/x") == "hdfs://nn/x"
     with pytest.raises(ExtractError, match="not on host 'elsewhere'"):
         extract_location("file://elsewhere/x")
 
 
-def test_cli_refuses_an_hdfs_extract_naming_it(tmp_path: Path) -> None:
+def test_cli_refuses_an_s3a_extract_on_duckdb_naming_it(tmp_path: Path) -> None:
     out = tmp_path / "out"
     result = CliRunner().invoke(
         app, ["build", str(DEMO_STUDY), "--extract", "s3a://bucket/orvane", "--out", str(out)]
     )
     assert result.exit_code == 2
-    assert "s3a://bucket/orvane: extracts on s3a:// cannot be read yet" in result.output
+    assert "s3a://bucket/orvane: an extract on s3a:// is listed and read" in result.output
     assert not out.exists()
 
 

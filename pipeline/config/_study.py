@@ -11,6 +11,8 @@ import datetime as dt
 import re
 from pathlib import Path
 from typing import Annotated, Literal, Self
+from urllib.parse import urlsplit
+from urllib.request import url2pathname
 
 from pydantic import Field, ValidationInfo, field_validator, model_validator
 
@@ -22,6 +24,8 @@ from pipeline.config._settings import EngineSettings, Output, QualitySettings
 from pipeline.config._spark import SparkSettings
 
 _DATABASE_URI = re.compile(r"^postgres(?:ql)?://", re.IGNORECASE)
+# Any other URI but file:// names an extract on a Hadoop file system, read through Spark.
+_FILE_SYSTEM_URI = re.compile(r"^(?!file:)[a-z][a-z0-9+.-]+://", re.IGNORECASE)
 
 Window = tuple[int | None, int]
 
@@ -405,9 +409,18 @@ class Study(Model):
     @field_validator("extract", mode="before")
     @classmethod
     def _path_or_uri(cls, value: object) -> object:
-        # A database connection URI stays text (a path would fold its "//"); the rest is a path.
+        # A database connection URI, or an hdfs:// (s3a://, ...) one, stays text (a path would
+        # fold its "//"); a file:// URI is its local path; the rest is a path.
+        if isinstance(value, str) and value.lower().startswith("file://"):
+            parsed = urlsplit(value)
+            if parsed.netloc not in ("", "localhost"):
+                raise ValueError(
+                    f"a file:// URI names a path on this machine, not on host '{parsed.netloc}' "
+                    "(write file:///path)"
+                )
+            return Path(url2pathname(parsed.path))
         if isinstance(value, str) and not _DATABASE_URI.match(value):
-            return Path(value)
+            return value if _FILE_SYSTEM_URI.match(value) else Path(value)
         return value
 
     @field_validator("covariates")

@@ -174,6 +174,32 @@ class SparkEngine:
         return session
 
     @contextmanager
+    def started(self) -> Iterator[SparkSession]:
+        """A session kept up for this engine's next runs, e.g. to read the extract beforehand.
+
+        Used to list and hash an extract on a Hadoop file system through the session's file
+        systems before the run; :meth:`run` then works in a ``newSession()`` of it. A session
+        passed in or already running is used as it is and left running.
+
+        Raises:
+            EngineError: pyspark is missing, or the master cannot be reached.
+        """
+        from pyspark.sql import SparkSession
+
+        shared = self.session or SparkSession.getActiveSession()
+        if shared is not None:
+            yield shared
+            return
+        spark = start_session(self.request, self.request.passed(user_settings()))
+        spark.sparkContext.setLogLevel("FATAL")
+        self.session = spark
+        try:
+            yield spark
+        finally:
+            self.session = None
+            spark.stop()
+
+    @contextmanager
     def _session(self) -> Iterator[tuple[SparkSession, dict[str, Any]]]:
         """A session for one run, with what it runs on: master and settings in effect."""
         from pyspark.sql import SparkSession
@@ -440,13 +466,10 @@ class SparkEngine:
                 raise
             reports.append(StageReport(stage.name, stage.kind, time.perf_counter() - started, rows))
             log.debug("stage %s: %.3fs, %s rows", stage.name, reports[-1].seconds, rows)
+        counted = {report.name: report.rows for report in reports}
         outputs = {}
         for output, stage_name, order in plan.outputs:
-            select = exp.select("*").from_(stage_name)
-            if order:
-                # DuckDB sorts NULLs last; say so, since Spark sorts them first by default.
-                select = select.order_by(
-                    *(exp.Ordered(this=exp.column(c), nulls_first=False) for c in order)
-                )
-            outputs[output] = to_arrow(spark.sql(select.sql(self.DIALECT)))
+            # Sorted as DuckDB sorts (NULLs last), in partitions of bounded size.
+            frame = spark.table(stage_name)
+            outputs[output] = to_arrow(frame, order, counted.get(stage_name))
         return RunResult(outputs, reports)

@@ -43,7 +43,8 @@ from pipeline.extract._dbsource import (
     read_expression,
     scrub,
 )
-from pipeline.extract._discover import ExtractTable
+from pipeline.extract._discover import ExtractPath, ExtractTable, discover_folder
+from pipeline.extract._hadoop import HadoopFiles, is_hadoop_uri, safe_uri
 from pipeline.extract._mapped import discover_extract
 
 # Fixed text forms, so a row's text (and so the checksum) does not depend on client settings.
@@ -100,7 +101,7 @@ class OpenedExtract:
     database: DatabaseFacts | None = None
 
     @property
-    def files(self) -> tuple[Path, ...]:
+    def files(self) -> tuple[ExtractPath, ...]:
         """The extract's own files (none for a database: its temporary copy is not input)."""
         if self.database is not None:
             return ()
@@ -205,15 +206,30 @@ def open_extract(
     sources: tuple[SourceTable, ...],
     *,
     optional: frozenset[str] = frozenset(),
+    hadoop: HadoopFiles | None = None,
 ) -> Iterator[OpenedExtract]:
     """The extract's tables for a run: files as they are, or a database read into a snapshot.
 
     ``optional`` names tables that may be absent from a database (``profile``); a missing one
-    is left out of the result instead of being an error.
+    is left out of the result instead of being an error. An extract on a Hadoop file system
+    (``hdfs://...``, see :func:`is_hadoop_uri`) is discovered through ``hadoop``, the file
+    systems of the Spark session that will read it.
 
     Raises:
+        ExtractError: A Hadoop URI without a Spark session, or a scheme Spark has no file
+            system for.
         AscertainError: As :func:`discover_extract` or :func:`read_database`.
     """
+    if isinstance(extract, str) and is_hadoop_uri(extract):
+        if hadoop is None:
+            scheme = extract.split(":", 1)[0]
+            raise ExtractError(
+                f"{safe_uri(extract)}: an extract on {scheme}:// is listed and read through "
+                "Spark's Hadoop file systems, so it needs --engine spark (a build or verify); "
+                "other commands read a local folder"
+            )
+        yield OpenedExtract(discover_folder(hadoop.folder(extract), sources))
+        return
     database = database_source(extract)
     if database is None:
         if isinstance(extract, str):

@@ -8,9 +8,11 @@ from __future__ import annotations
 import csv
 import gzip
 import re
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Literal
+from typing import BinaryIO, Literal, cast
 from urllib.parse import urlparse
 from urllib.request import url2pathname
 
@@ -19,8 +21,12 @@ import pyarrow.parquet as pq
 from pipeline.compile import SourceTable
 from pipeline.config._mapping import TableMapping
 from pipeline.errors import ExtractError
+from pipeline.extract._hadoop import HadoopPath
 
 FileFormat = Literal["csv", "parquet", "fhir"]
+
+# A local path, or a file or folder on one of Spark's Hadoop file systems.
+ExtractPath = Path | HadoopPath
 
 _SUFFIXES: dict[str, FileFormat] = {".csv": "csv", ".csv.gz": "csv", ".parquet": "parquet"}
 
@@ -40,7 +46,7 @@ class ExtractTable:
     """
 
     name: str
-    files: tuple[Path, ...]
+    files: tuple[ExtractPath, ...]
     file_format: FileFormat
     columns: tuple[str, ...]
     resources: tuple[str, ...] = ()
@@ -55,26 +61,22 @@ class ExtractTable:
 _SCHEME = re.compile(r"^([A-Za-z][A-Za-z0-9+.-]*)://")
 
 
-def extract_location(text: str) -> Path:
-    """An extract given as a path or a URI, as the local path it names.
+def extract_location(text: str) -> Path | str:
+    """An extract given as a path or a URI: a local path, or a URI for Spark's file systems.
 
-    ``file://`` URIs are local paths. Other schemes (``hdfs://``, ``s3a://``) are refused with
-    a sentence saying so: the extract is discovered, checked and hashed by this process before
-    Spark starts, so it must be a path this machine sees (on a cluster: storage every machine
-    mounts at the same path).
+    ``file://`` URIs are local paths. Other schemes (``hdfs://``, ``s3a://``) stay text: such
+    an extract is listed, read and hashed through the Hadoop file systems of the Spark session
+    (see :mod:`pipeline.extract._hadoop`), so it needs ``--engine spark``.
 
     Raises:
-        ExtractError: A URI whose scheme is not ``file``, or a ``file://`` URI of another host.
+        ExtractError: A ``file://`` URI of another host.
     """
     found = _SCHEME.match(text)
     if not found:
         return Path(text)
     parsed = urlparse(text)
     if parsed.scheme.lower() != "file":
-        raise ExtractError(
-            f"{text}: extracts on {parsed.scheme}:// cannot be read yet; ascertain reads a local "
-            "path or file:// URI (on a cluster, storage every machine mounts at the same path)"
-        )
+        return text
     if parsed.netloc not in ("", "localhost"):
         raise ExtractError(
             f"{text}: a file:// URI names a path on this machine, not on host "
@@ -83,8 +85,8 @@ def extract_location(text: str) -> Path:
     return Path(url2pathname(parsed.path))
 
 
-def _candidates(folder: Path, name: str) -> list[tuple[tuple[Path, ...], FileFormat]]:
-    found: list[tuple[tuple[Path, ...], FileFormat]] = []
+def _candidates(folder: ExtractPath, name: str) -> list[tuple[tuple[ExtractPath, ...], FileFormat]]:
+    found: list[tuple[tuple[ExtractPath, ...], FileFormat]] = []
     for suffix, file_format in _SUFFIXES.items():
         path = folder / f"{name}{suffix}"
         if path.is_file():
@@ -109,13 +111,23 @@ _HEADER_BYTES = 1 << 20
 _OTHER_DELIMITERS = (";", "\t", "|")
 
 
-def _csv_header(path: Path) -> list[str]:
+@contextmanager
+def _open_bytes(path: ExtractPath) -> Iterator[BinaryIO]:
+    """A file's bytes, unzipped when its name ends in ``.gz`` (local or on a Hadoop system)."""
+    with path.open("rb") as raw:
+        if path.name.endswith(".gz"):
+            with gzip.GzipFile(fileobj=raw) as unzipped:
+                yield cast(BinaryIO, unzipped)
+        else:
+            yield cast(BinaryIO, raw)
+
+
+def _csv_header(path: ExtractPath) -> list[str]:
     """The names in a CSV file's first line, refusing files that cannot be comma-separated text.
 
     Only the first line is read: the engine checks the rest (and names the line at fault).
     """
-    opener = gzip.open if path.name.endswith(".gz") else open
-    with opener(path, "rb") as handle:
+    with _open_bytes(path) as handle:
         line = handle.readline(_HEADER_BYTES)
     if not line:
         raise ExtractError(f"{path}: empty file, no header")
@@ -141,16 +153,21 @@ def _csv_header(path: Path) -> list[str]:
     return names
 
 
-def _header(path: Path, file_format: FileFormat) -> tuple[str, ...]:
+def _parquet_names(path: ExtractPath) -> list[str]:
+    with path.open("rb") as handle:
+        return list(pq.read_schema(handle).names)
+
+
+def _header(path: ExtractPath, file_format: FileFormat) -> tuple[str, ...]:
     try:
-        names = pq.read_schema(path).names if file_format == "parquet" else _csv_header(path)
+        names = _parquet_names(path) if file_format == "parquet" else _csv_header(path)
     except (OSError, ValueError, csv.Error) as err:
         what = "not a readable Parquet file" if file_format == "parquet" else "cannot be read"
         raise ExtractError(f"{path}: {what}: {err}") from err
     return tuple(n.strip().lower() for n in names)
 
 
-def _check_columns(table: SourceTable, path: Path, columns: tuple[str, ...]) -> None:
+def _check_columns(table: SourceTable, path: ExtractPath, columns: tuple[str, ...]) -> None:
     present = set(columns)
     missing = [c for c in table.required if c not in present]
     for group in table.one_of:
@@ -188,21 +205,20 @@ _NDJSON = (".ndjson", ".ndjson.gz")
 _FHIR_NAME = re.compile(r"^(?:[0-9]+[._-])?([A-Z][A-Za-z]+)(?:[._-].*)?$")
 
 
-def _ndjson_files(folder: Path) -> list[Path]:
+def _ndjson_files(folder: ExtractPath) -> list[ExtractPath]:
     return sorted(p for p in folder.iterdir() if p.is_file() and p.name.endswith(_NDJSON))
 
 
-def _fhir_type(path: Path) -> str | None:
+def _fhir_type(path: ExtractPath) -> str | None:
     stem = path.name.removesuffix(".gz").removesuffix(".ndjson")
     match = _FHIR_NAME.match(stem)
     return match.group(1) if match else None
 
 
-def _has_resources(path: Path) -> bool:
+def _has_resources(path: ExtractPath) -> bool:
     """Whether an NDJSON file holds anything but blank space (read up to its first byte)."""
-    opener = gzip.open if path.name.endswith(".gz") else open
     try:
-        with opener(path, "rb") as handle:
+        with _open_bytes(path) as handle:
             while chunk := handle.read(1 << 16):
                 if chunk.strip(b" \t\r\n\xef\xbb\xbf"):
                     return True
@@ -212,7 +228,7 @@ def _has_resources(path: Path) -> bool:
 
 
 def _discover_fhir(
-    folder: Path, files: list[Path], tables: tuple[SourceTable, ...]
+    folder: ExtractPath, files: list[ExtractPath], tables: tuple[SourceTable, ...]
 ) -> dict[str, ExtractTable]:
     """Group a bulk-data export's files by resource type into the canonical tables.
 
@@ -244,10 +260,14 @@ def _discover_fhir(
     return found
 
 
-def discover_folder(folder: Path, tables: tuple[SourceTable, ...]) -> dict[str, ExtractTable]:
+def discover_folder(
+    folder: ExtractPath, tables: tuple[SourceTable, ...]
+) -> dict[str, ExtractTable]:
     """Locate each table the plan reads and check it has the columns the plan needs.
 
-    A folder holding ``*.ndjson`` files is read as a FHIR R4 bulk-data export instead.
+    A folder holding ``*.ndjson`` files is read as a FHIR R4 bulk-data export instead. The
+    folder may be a local one or on a Hadoop file system (:class:`HadoopPath`): discovery
+    uses only the methods both offer.
 
     Raises:
         ExtractError: The folder or a table is missing, ambiguous, unreadable, or lacks a

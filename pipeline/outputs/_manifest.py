@@ -27,6 +27,8 @@ from typing import Any
 from pipeline.config._library import library_folder
 from pipeline.config._study import Study
 from pipeline.errors import AscertainError
+from pipeline.extract import ExtractPath, HadoopPath, is_hadoop_uri
+from pipeline.extract._hadoop import hadoop_name
 
 MANIFEST = "manifest.json"
 MANIFEST_VERSION = 2
@@ -35,7 +37,7 @@ INPUT_GROUPS = ("study", "definitions", "measures", "extract")
 LIBRARY_PREFIX = "library:"
 
 
-def sha256_file(path: Path) -> str:
+def sha256_file(path: ExtractPath) -> str:
     """The SHA-256 of a file's bytes, read in chunks."""
     digest = hashlib.sha256()
     with path.open("rb") as handle:
@@ -71,12 +73,26 @@ def portable_path(path: Path, base: Path) -> str | None:
     return Path(os.path.relpath(path, base)).as_posix()
 
 
-def describe_files(paths: Iterable[Path], base: Path) -> list[dict[str, Any]]:
-    """Path relative to ``base`` (or the bare name), size and SHA-256 of each file, by path."""
-    return _describe({p: portable_path(p, base) or p.name for p in set(paths)})
+def file_name(path: ExtractPath, base: Path) -> str:
+    """How shareable files name an input: relative to ``base`` (or by its bare name).
+
+    A file on a Hadoop file system is named relative to its extract's root folder, whatever
+    ``base`` is: the server and the folders above the root are never written down.
+    """
+    if isinstance(path, HadoopPath):
+        return path.relative
+    return portable_path(path, base) or path.name
 
 
-def _describe(named: dict[Path, str]) -> list[dict[str, Any]]:
+def describe_files(paths: Iterable[ExtractPath], base: Path) -> list[dict[str, Any]]:
+    """Path relative to ``base`` (or the bare name), size and SHA-256 of each file, by path.
+
+    Files on a Hadoop file system are read through it (the same bytes give the same hash).
+    """
+    return _describe({p: file_name(p, base) for p in set(paths)})
+
+
+def _describe(named: dict[Any, str]) -> list[dict[str, Any]]:
     entries = [
         {"path": name, "bytes": p.stat().st_size, "sha256": sha256_file(p)}
         for p, name in named.items()
@@ -119,7 +135,7 @@ def extract_root(extract: Path | str) -> Path:
     return extract if extract.is_dir() else extract.parent
 
 
-def extract_inputs(extract: Path | str, files: Iterable[Path]) -> list[Path]:
+def extract_inputs(extract: Path | str, files: Iterable[ExtractPath]) -> list[ExtractPath]:
     """Every file a build reads from the extract: the table files, and a site mapping file."""
     if isinstance(extract, str):
         return [*files]
@@ -131,8 +147,19 @@ def _locations(
 ) -> dict[str, Any]:
     """Where the inputs were: hints for ``verify`` on the same layout (see module docstring).
 
-    A database named by a URI is recorded by that URI, which holds no password.
+    A database named by a URI is recorded by that URI, which holds no password. An extract on
+    a Hadoop file system is recorded by its scheme and its folder's name, never its server or
+    path; ``verify --extract URI`` names it again.
     """
+    if is_hadoop_uri(extract):
+        # Scheme and folder name only: the server and the path above the extract are private.
+        return {
+            "extract_kind": "hadoop folder",
+            "extract_scheme": str(extract).split(":", 1)[0].lower(),
+            "extract_name": hadoop_name(str(extract)),
+            "extract_from_study": None,
+            "study_from_output": portable_path(study_file, out),
+        }
     if isinstance(extract, str):
         return {
             "extract_kind": "database",
