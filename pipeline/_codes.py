@@ -47,6 +47,7 @@ class Entry:
     code: str
     term: str
     exact: bool
+    written: str
 
     def covers(self, system: str, code: str) -> bool:
         """Whether an extract code (normalised) falls under this entry."""
@@ -97,7 +98,7 @@ def _entries(ev: Evidence, uses: tuple[ListUse, ...]) -> list[Entry]:
     elif ev.prescription:
         inline = [("ATC", ev.prescription.atc)]
     found = [
-        Entry(INLINE, system, prefix, "", exact=False)
+        Entry(INLINE, system, prefix, "", exact=False, written=prefix)
         for system, codes in inline
         for prefix in prefixes_in(system, tuple(codes))
     ]
@@ -109,7 +110,8 @@ def _entries(ev: Evidence, uses: tuple[ListUse, ...]) -> list[Entry]:
             if not row.excluded:
                 code = normalise_in(code_list.system, row.code)
                 exact = code_list.match == "exact"
-                found.append(Entry(code_list.name, code_list.system, code, row.term, exact=exact))
+                entry = Entry(code_list.name, code_list.system, code, row.term, exact, row.code)
+                found.append(entry)
     return found
 
 
@@ -249,7 +251,7 @@ def _named_by(ev: EvidenceCodes, system: str, code: str) -> tuple[str, str, str]
     covering = [e for e in ev.entries if e.covers(system, code)]
     if covering:
         best = max(covering, key=lambda e: len(e.code))  # the first of the longest
-        return best.list_name, best.code, best.term
+        return best.list_name, best.written, best.term
     if code in ev.widened:
         return ev.widened[code], "", ""  # a concept below a member, through the hierarchy
     return "", "", ""
@@ -317,7 +319,7 @@ def _unseen(evidence: list[EvidenceCodes], extract_codes: list[dict[str, Any]]) 
                     "evidence": ev.evidence,
                     "system": entry.system,
                     "list": entry.list_name,
-                    "code": entry.code,
+                    "code": entry.written,
                     "term": entry.term,
                     "match": "exact" if entry.exact else "prefix",
                 }
