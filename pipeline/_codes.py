@@ -188,10 +188,11 @@ def check_codes_folder(study_file: Path, extract: Path | str | None, out: Path |
         out: The folder (default: the study's output folder, beside the build's files).
 
     Raises:
-        AscertainError: Bad config; OutputFolderError: the folder is not the tool's, or
-            overlaps the extract.
+        AscertainError: Bad config, a study without coded evidence; OutputFolderError: the
+            folder is not the tool's, or overlaps the extract.
     """
     loaded = load_study(study_file)
+    _check_usable(CompileContext(loaded.study, loaded.catalog, loaded.measures), study_file)
     folder = out if out is not None else loaded.study.output.folder
     source = resolve_extract(extract or loaded.study.extract)
     check_folder(folder, CODES, inputs=local_inputs(source, compile_study(loaded)))

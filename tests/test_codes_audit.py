@@ -139,3 +139,26 @@ def test_demo_totals_agree_with_the_quality_log() -> None:
     for row in audit.matched:
         key = (row["definition"], row["evidence"], row["system"], row["code_raw"])
         assert years[key] == row["rows"]
+
+
+def test_a_study_without_coded_evidence_is_refused_with_its_file(tmp_path: Path) -> None:
+    definitions = tmp_path / "definitions"
+    definitions.mkdir()
+    (definitions / "high_a1c.yaml").write_text(
+        "condition: high_a1c\ntitle: High HbA1c\nabout: A fixture.\n"
+        "provenance: {adapts: our own, icd_edition: none, version: '1.0', date: 2026-12-05}\n"
+        "evidence:\n  a1c: {measurement: {measure: hba1c, at_least: 6.5 %}}\n"
+        "rules:\n  - {name: one result, need: {a1c: 1}}\n"
+        "onset: rule_met\n",
+        encoding="utf-8",
+    )
+    text = STUDY.read_text(encoding="utf-8")
+    text = text.replace("extract: .", f"extract: {FIXTURE.as_posix()}")
+    text = text.replace("[diabetes, heart_failure]", "[high_a1c]")
+    study = tmp_path / "study.yaml"
+    study.write_text(text, encoding="utf-8")
+    result = CliRunner().invoke(app, ["codes", str(study), "--out", str(tmp_path / "out")])
+    assert result.exit_code == 2
+    assert "no diagnosis or prescription evidence" in result.output
+    assert "study.yaml" in result.output
+    assert not (tmp_path / "out").exists()
