@@ -20,19 +20,25 @@ from __future__ import annotations
 
 import datetime as dt
 import json
-import sys
-from collections.abc import Callable, Iterator
-from contextlib import contextmanager
+from collections.abc import Callable
 from pathlib import Path
 from typing import Annotated, TypeVar
 
 import typer
 from rich.console import Console
 from rich.markup import escape
-from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
 
 from pipeline._build import BuildOptions, BuildResult, build_study, plan_study, verify_output
 from pipeline._check_data import check_extract, check_lines
+from pipeline._cli_options import (
+    EXTRACT_HELP,
+    DebugOpt,
+    SparkConfOpt,
+    SparkMasterOpt,
+    StudyArg,
+    extract_arg,
+    progress_display,
+)
 from pipeline._diff import diff_runs, render_diff
 from pipeline._explain import explain_patient, render_trace
 from pipeline._init import init_study
@@ -43,7 +49,6 @@ from pipeline._profile import (
     profile_table,
     write_profile,
 )
-from pipeline.compile import Stage
 from pipeline.config import load_study
 from pipeline.config._check import check_paths
 from pipeline.engine import DuckDBEngine, SparkEngine
@@ -62,30 +67,6 @@ app = typer.Typer(
 
 T = TypeVar("T")
 
-StudyArg = Annotated[
-    Path, typer.Argument(help="The study file (YAML).", exists=False, dir_okay=False)
-]
-DebugOpt = Annotated[bool, typer.Option("--debug", help="Show the full traceback on errors.")]
-EXTRACT_HELP = (
-    "Use this extract instead of the study's: a folder, a site mapping file, a file:// URI, a "
-    "folder on a Hadoop file system (hdfs://, s3a://; --engine spark), or a database URI "
-    "postgresql://USER@HOST:PORT/DATABASE?schema=S (password from PGPASSWORD or ~/.pgpass)."
-)
-
-
-def _extract(text: str | None) -> Path | str | None:
-    return None if text is None else as_extract(text)
-
-
-SparkMasterOpt = Annotated[
-    str | None,
-    typer.Option(help="Spark master URL: local[*] (default), spark://HOST:PORT, yarn, k8s://URL."),
-]
-SparkConfOpt = Annotated[
-    list[str] | None,
-    typer.Option(help="A Spark setting KEY=VALUE (repeatable); beats the study's spark: section."),
-]
-
 
 def _fail_cleanly(action: Callable[[], T], *, debug: bool) -> T:
     try:
@@ -100,21 +81,6 @@ def _fail_cleanly(action: Callable[[], T], *, debug: bool) -> T:
             f"[bold red]error:[/] {escape(str(err))}", markup=True
         )
         raise typer.Exit(2) from None
-
-
-@contextmanager
-def _progress(*, quiet: bool) -> Iterator[Callable[[Stage, int, int], None] | None]:
-    if quiet or not sys.stderr.isatty():
-        yield None
-        return
-    columns = (SpinnerColumn(), TextColumn("{task.description}"), TimeElapsedColumn())
-    with Progress(*columns, console=Console(stderr=True), transient=True) as progress:
-        task = progress.add_task("starting", total=None)
-
-        def on_stage(stage: Stage, number: int, total: int) -> None:
-            progress.update(task, description=f"stage {number}/{total}: {stage.name}")
-
-        yield on_stage
 
 
 @app.command()
@@ -149,7 +115,7 @@ def build(
 
     def run() -> BuildResult:
         options = BuildOptions(
-            extract=_extract(extract),
+            extract=extract_arg(extract),
             out=out,
             threads=threads,
             memory_limit=memory_limit,
@@ -159,7 +125,7 @@ def build(
         )
         return build_study(study, options, on_stage=on_stage)
 
-    with _progress(quiet=quiet) as on_stage:
+    with progress_display(quiet=quiet) as on_stage:
         result = _fail_cleanly(run, debug=debug)
     console = Console(highlight=False)
     if profile:
@@ -335,7 +301,7 @@ def verify(
         lambda: verify_output(
             output,
             study=study,
-            extract=_extract(extract),
+            extract=extract_arg(extract),
             spark_master=spark_master,
             spark_conf=tuple(spark_conf or ()),
         ),
@@ -371,7 +337,7 @@ def explain(
         Console(stderr=True).print(f"error: --format must be text or json, not '{output_format}'")
         raise typer.Exit(2)
     trace = _fail_cleanly(
-        lambda: explain_patient(study, patient, extract=_extract(extract)), debug=debug
+        lambda: explain_patient(study, patient, extract=extract_arg(extract)), debug=debug
     )
     if not trace["in_extract"]:
         Console(stderr=True, highlight=False).print(
@@ -436,7 +402,7 @@ def validate(
         from pipeline._validate import render_validation, validate_study
 
         results = validate_study(
-            study, reference, extract=_extract(extract), coverage=coverage, sampling=sampling
+            study, reference, extract=extract_arg(extract), coverage=coverage, sampling=sampling
         )
         threshold = load_study(study).study.output.small_cell_threshold
         return render_validation(results, threshold)
@@ -497,3 +463,38 @@ def profile(
     console.print(result["release"])
     for path in _fail_cleanly(lambda: write_profile(result, out), debug=debug):
         console.print(str(path))
+
+
+@app.command()
+def codes(
+    study: StudyArg,
+    extract: Annotated[str | None, typer.Option(help=EXTRACT_HELP)] = None,
+    out: Annotated[
+        Path | None, typer.Option(help="Write the CSVs here (default: the study's output folder).")
+    ] = None,
+    for_release: Annotated[
+        bool, typer.Option("--release", help="Suppress counts below small_cell_threshold.")
+    ] = False,
+    debug: DebugOpt = False,
+) -> None:
+    """Audit the codes each evidence of the study matched in the extract (DuckDB).
+
+    Writes codes_*.csv and ascertain-codes.json; prints a table per definition (patient-level).
+
+    Example: ascertain codes definitions/studies/orvane_multimorbidity.yaml --out out/codes
+    """
+    from pipeline._codes import audit_codes, check_codes_folder
+    from pipeline._codes_files import audit_tables, header, write_audit
+
+    source = extract_arg(extract)
+    folder = _fail_cleanly(lambda: check_codes_folder(study, source, out), debug=debug)
+    audit = _fail_cleanly(lambda: audit_codes(study, source), debug=debug)
+    console = Console(highlight=False, soft_wrap=True)
+    console.print(header(audit, for_release=for_release), markup=False)
+    if not for_release:  # the terminal tables are exact counts
+        for table in audit_tables(audit):
+            console.print(table)
+    written = _fail_cleanly(
+        lambda: write_audit(audit, folder, for_release=for_release), debug=debug
+    )
+    console.print("\n".join(map(str, written)), markup=False)

@@ -51,12 +51,19 @@ BUILD = Owner("build", "manifest.json", own_record=False)
 REPORT = Owner("report", "ascertain-report.json")
 PROFILE = Owner("profile", "ascertain-profile.json")
 SYNTH = Owner("synth", "ascertain-synth.json")
+CODES = Owner("codes", "ascertain-codes.json")
 
 BUILD_COMPANIONS = ("run.json",)
 """Build files the manifest does not list in ``outputs`` but which the build writes."""
 
-SHARES_WITH: dict[Owner, tuple[Owner, ...]] = {BUILD: (REPORT,), REPORT: (BUILD,)}
-"""Other owners whose files may lie in the same folder: a report lives in its build folder."""
+SHARES_WITH: dict[Owner, tuple[Owner, ...]] = {
+    BUILD: (REPORT, CODES),
+    REPORT: (BUILD, CODES),
+    CODES: (BUILD, REPORT),
+}
+"""Other owners whose files may lie in the same folder: a report and a code audit live in
+their build folder (the audit describes the extract and the definitions, so a new build
+leaves it in place)."""
 
 REMOVES: dict[Owner, tuple[Owner, ...]] = {BUILD: (REPORT,)}
 """Owners whose files a new run removes: a report describes the cohort it was written for."""

@@ -1,0 +1,60 @@
+"""The command line's shared argument types, help texts and progress display.
+
+Kept apart from ``cli.py`` so the command module stays short; nothing here prints.
+"""
+
+from __future__ import annotations
+
+import sys
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
+from pathlib import Path
+from typing import Annotated
+
+import typer
+from rich.console import Console
+from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
+
+from pipeline.compile import Stage
+from pipeline.extract import as_extract
+
+StudyArg = Annotated[
+    Path, typer.Argument(help="The study file (YAML).", exists=False, dir_okay=False)
+]
+DebugOpt = Annotated[bool, typer.Option("--debug", help="Show the full traceback on errors.")]
+EXTRACT_HELP = (
+    "Use this extract instead of the study's: a folder, a site mapping file, a file:// URI, a "
+    "folder on a Hadoop file system (hdfs://, s3a://; --engine spark), or a database URI "
+    "postgresql://USER@HOST:PORT/DATABASE?schema=S (password from PGPASSWORD or ~/.pgpass)."
+)
+
+
+def extract_arg(text: str | None) -> Path | str | None:
+    """An ``--extract`` value as a path or a URI (None: the study's own)."""
+    return None if text is None else as_extract(text)
+
+
+SparkMasterOpt = Annotated[
+    str | None,
+    typer.Option(help="Spark master URL: local[*] (default), spark://HOST:PORT, yarn, k8s://URL."),
+]
+SparkConfOpt = Annotated[
+    list[str] | None,
+    typer.Option(help="A Spark setting KEY=VALUE (repeatable); beats the study's spark: section."),
+]
+
+
+@contextmanager
+def progress_display(*, quiet: bool) -> Iterator[Callable[[Stage, int, int], None] | None]:
+    """A spinner naming the running stage on a terminal's stderr; nothing when quiet or piped."""
+    if quiet or not sys.stderr.isatty():
+        yield None
+        return
+    columns = (SpinnerColumn(), TextColumn("{task.description}"), TimeElapsedColumn())
+    with Progress(*columns, console=Console(stderr=True), transient=True) as progress:
+        task = progress.add_task("starting", total=None)
+
+        def on_stage(stage: Stage, number: int, total: int) -> None:
+            progress.update(task, description=f"stage {number}/{total}: {stage.name}")
+
+        yield on_stage
