@@ -92,6 +92,10 @@ output:
   folder: output                      # relative to this file; build --out overrides it
   small_cell_threshold: 5             # counts below this are hidden in the report
 
+# persontime:                        # also write persontime.parquet, for the report's rates
+#   age_bands: [40, 50, 60, 70, 80]   # lower bounds; the first not above the age step's
+#   calendar_year: true               # split at 1 January
+#   since_index_years: [0, 1, 3]      # optional: whole years since index
 # quality:
 #   max_share_set_aside: 0.5          # more than this share of a table set aside stops a build
 #   accept_set_aside: [{{table: encounters, reason: unparseable date}}]

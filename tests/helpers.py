@@ -3,20 +3,16 @@
 from __future__ import annotations
 
 import csv
-import json
 import os
 import shutil
-from datetime import date, timedelta
 from pathlib import Path
 from typing import Any, NoReturn
 
-import polars as pl
 import pytest
 
 from pipeline._build import plan_study
 from pipeline.engine import DuckDBEngine
 from pipeline.extract import discover_extract
-from pipeline.outputs._manifest import sha256_file
 
 from .conftest import DEMO_STUDY, ROOT
 
@@ -127,12 +123,15 @@ def eligible_encounters(patient_id: str) -> list[dict]:
     ]
 
 
-def demo_study_variant(folder: Path, *, output: str = "", quality: str = "") -> Path:
+def demo_study_variant(
+    folder: Path, *, output: str = "", quality: str = "", persontime: str = ""
+) -> Path:
     """A copy of the demo study, with its definitions, plus settings a test needs.
 
     ``output`` is inserted as the first lines of the ``output:`` section (e.g.
-    ``"allow_empty_cohort: true"``); ``quality`` becomes the study's ``quality:`` section,
-    written as a YAML flow mapping (e.g. ``"{max_share_set_aside: 1}"``).
+    ``"allow_empty_cohort: true"``); ``quality`` and ``persontime`` become the study's
+    ``quality:`` and ``persontime:`` sections, written as YAML flow mappings (e.g.
+    ``"{max_share_set_aside: 1}"``, ``"{age_bands: [40, 50, 60, 70, 80]}"``).
     """
     shutil.copytree(ROOT / "definitions" / "conditions", folder / "conditions")
     shutil.copytree(ROOT / "definitions" / "codelists", folder / "codelists")
@@ -147,6 +146,9 @@ def demo_study_variant(folder: Path, *, output: str = "", quality: str = "") -> 
     if quality:
         assert "\nquality:" not in text
         text += f"\nquality: {quality}\n"
+    if persontime:
+        assert "\npersontime:" not in text
+        text += f"\npersontime: {persontime}\n"
     study = folder / "studies" / DEMO_STUDY.name
     study.write_text(text, encoding="utf-8")
     return study
@@ -178,72 +180,3 @@ def _missing(reason: str) -> NoReturn:
     if in_ci():
         pytest.fail(f"{reason} (CI=true: a missing test dependency fails)", pytrace=False)
     pytest.skip(reason)
-
-
-def add_persontime(out: Path, *, by_year: bool = True) -> pl.DataFrame:
-    """Write ``persontime.parquet`` of the agreed shape from a build's cohort, as the build will.
-
-    A stand-in for the build's own person-time table (written by another part of the work):
-    each patient's follow-up from index is cut at every 1 January into cells; the age band
-    (ten years, the last ``80+``) is the age at index plus the whole years since index at the
-    cell's start. For each outcome a cell is at risk while it starts before the end of
-    ``time_X`` (and the cell holding an onset is); ``events_X`` is 1 in the cell holding the
-    onset. The file is listed in the manifest's outputs, as the build lists its files.
-    """
-    cohort = pl.read_parquet(out / "cohort.parquet")
-    outcomes = [c.removeprefix("at_risk_") for c in cohort.columns if c.startswith("at_risk_")]
-    rows = []
-    for r in cohort.iter_rows(named=True):
-        index = r["index_date"]
-        end = index + timedelta(days=r["followup_days"])
-        cells = []
-        start = index
-        while True:
-            stop = min(end, date(start.year + 1, 1, 1))
-            cells.append((start, stop))
-            if stop >= end:
-                break
-            start = stop
-        for start, stop in cells:
-            age = r["age_at_index"] + (start - index).days // 365
-            band = min(age // 10 * 10, 80)
-            row: dict[str, Any] = {
-                "patient_id": r["patient_id"],
-                "age_band": "80+" if band == 80 else f"{band}-{band + 9}",
-                "age_band_start": band,
-                "calendar_year": start.year,
-                "cell_start": start,
-                "cell_end": stop,
-                "days": (stop - start).days,
-            }
-            for o in outcomes:
-                row[f"days_at_risk_{o}"] = row[f"events_{o}"] = None
-                if not r[f"at_risk_{o}"]:
-                    continue
-                t_end = index + timedelta(days=r[f"time_{o}"])
-                last = (start, stop) == cells[-1]
-                holds = start <= t_end < stop or (last and t_end >= stop)
-                if start < t_end or holds:
-                    row[f"days_at_risk_{o}"] = max(0, (min(stop, t_end) - start).days)
-                    row[f"events_{o}"] = int(holds and r[f"event_{o}"] == 1)
-            rows.append(row)
-    schema: dict[str, Any] = {
-        "patient_id": cohort.schema["patient_id"],
-        "age_band": pl.String,
-        "age_band_start": pl.Int32,
-        "calendar_year": pl.Int32,
-        "cell_start": pl.Date,
-        "cell_end": pl.Date,
-        "days": pl.Int32,
-    }
-    for o in outcomes:
-        schema |= {f"days_at_risk_{o}": pl.Int32, f"events_{o}": pl.Int8}
-    frame = pl.DataFrame(rows, schema=schema, orient="row")
-    if not by_year:
-        frame = frame.drop("calendar_year")
-    frame.write_parquet(out / "persontime.parquet")
-    manifest_path = out / "manifest.json"
-    manifest = json.loads(manifest_path.read_text(encoding="utf-8"))
-    manifest["outputs"]["persontime.parquet"] = sha256_file(out / "persontime.parquet")
-    manifest_path.write_text(json.dumps(manifest, indent=2), encoding="utf-8")
-    return frame

@@ -12,6 +12,7 @@ from typer.testing import CliRunner
 from pipeline.cli import app
 
 from .conftest import ROOT
+from .helpers import demo_study_variant
 
 
 def _check(*args: str) -> tuple[int, str]:
@@ -253,3 +254,15 @@ output: {folder: out}
         "2005 ICD10 and ICD9 codes with the Quan 2011 weights.",
     ):
         assert sentence in out, sentence
+
+
+def test_explain_a_study_says_what_person_time_it_writes(tmp_path: Path) -> None:
+    option = "{age_bands: [40, 60, 80], calendar_year: false, since_index_years: [0, 1, 3]}"
+    code, out = _check("--explain", str(demo_study_variant(tmp_path, persontime=option)))
+    assert code == 0, out
+    assert out.startswith(DEMO_EXPLAINED)  # the rest of the paragraph is unchanged
+    assert out.removeprefix(DEMO_EXPLAINED).startswith(
+        " Person-time: each patient's follow-up is split by age band (40-59, 60-79 and 80+) "
+        "and whole years since index (0-1, 1-3 and 3+) into persontime.parquet, with each "
+        "outcome's days at risk and events; the report's rates by age band come from it.\n"
+    )

@@ -38,7 +38,7 @@ from pipeline.outputs._report import write_report
 from pipeline.synth import generate_extract
 
 from .conftest import DEMO_STUDY, HANDMADE
-from .helpers import add_persontime, demo_study_variant
+from .helpers import demo_study_variant
 
 THRESHOLD = 5
 MARKERS = ("<5", "*")
@@ -53,22 +53,27 @@ def demo(tmp_path_factory: pytest.TempPathFactory) -> Path:
     return out
 
 
+PERSONTIME = "{age_bands: [40, 50, 60, 70, 80], calendar_year: true}"
+
+
+def _build_with_rates(folder: Path, extract: Path | None = None) -> Path:
+    """The demo study with a ``persontime:`` section, built and reported (rates included)."""
+    out = folder / "out"
+    study = demo_study_variant(folder, persontime=PERSONTIME)
+    build_study(study, BuildOptions(extract=extract, out=out))
+    write_report(out)
+    assert (out / "summary" / "rates.csv").is_file()
+    return out
+
+
 @pytest.fixture(scope="module")
 def demo_rates(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    out = tmp_path_factory.mktemp("attack_demo_rates") / "out"
-    build_study(DEMO_STUDY, BuildOptions(out=out))
-    add_persontime(out)
-    write_report(out)
-    return out
+    return _build_with_rates(tmp_path_factory.mktemp("attack_demo_rates"))
 
 
 @pytest.fixture(scope="module")
 def tiny_rates(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    out = tmp_path_factory.mktemp("attack_tiny_rates") / "out"
-    build_study(DEMO_STUDY, BuildOptions(extract=HANDMADE, out=out))
-    add_persontime(out)
-    write_report(out)
-    return out
+    return _build_with_rates(tmp_path_factory.mktemp("attack_tiny_rates"), HANDMADE)
 
 
 @pytest.fixture(scope="module")

@@ -62,6 +62,20 @@ def test_init_writes_a_study_that_checks_and_builds(tmp_path: Path) -> None:
     assert "history" in steps
 
 
+def test_init_study_offers_person_time_that_checks_clean(tmp_path: Path) -> None:
+    RUNNER.invoke(app, ["init", str(tmp_path / "s")])
+    study = tmp_path / "s" / "study.yaml"
+    text = study.read_text(encoding="utf-8")
+    lines = ["persontime:", "  age_bands:", "  calendar_year:", "  since_index_years:"]
+    for line in lines:
+        assert f"\n# {line}" in text, line
+        text = text.replace(f"\n# {line}", f"\n{line}")
+    study.write_text(text, encoding="utf-8")
+    checked = RUNNER.invoke(app, ["check", str(study), "--explain"])
+    assert checked.exit_code == 0, checked.output
+    assert "Person-time: each patient's follow-up is split by age band (40-49," in checked.output
+
+
 def test_init_skeleton_names_every_definition_key(tmp_path: Path) -> None:
     from pipeline.config._condition import Condition, Evidence, Provenance, Rule
 

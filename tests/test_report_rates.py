@@ -16,7 +16,7 @@ from pipeline.stats import direct_standardised_rate, protect_cells
 from pipeline.stats._disclosure import feasible_range
 
 from .conftest import DEMO_STUDY, HANDMADE
-from .helpers import add_persontime
+from .helpers import demo_study_variant
 
 
 def _persontime(cells: list[tuple[str, int, int, int]]) -> pl.DataFrame:
@@ -121,13 +121,40 @@ def test_without_calendar_years_the_bands_are_the_cells() -> None:
     assert block.frame.height == 4  # three bands and the total
 
 
-@pytest.fixture(scope="module")
-def tiny_rates(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    out = tmp_path_factory.mktemp("tiny_rates") / "out"
-    build_study(DEMO_STUDY, BuildOptions(extract=HANDMADE, out=out))
-    add_persontime(out)
+BANDS = "{age_bands: [40, 50, 60, 70, 80], calendar_year: true}"
+"""The demo study's person-time option in these tests: its age step admits 40 to 85."""
+
+
+def build_with_rates(folder: Path, persontime: str = BANDS, extract: Path | None = None) -> Path:
+    """Build the demo study with a ``persontime:`` section and write its report."""
+    study = demo_study_variant(folder, persontime=persontime)
+    out = folder / "out"
+    build_study(study, BuildOptions(extract=extract, out=out))
     write_report(out)
     return out
+
+
+@pytest.fixture(scope="module")
+def tiny_rates(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    return build_with_rates(tmp_path_factory.mktemp("tiny_rates"), extract=HANDMADE)
+
+
+@pytest.fixture(scope="module")
+def demo_rates(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    return build_with_rates(tmp_path_factory.mktemp("demo_rates"))
+
+
+def _by_hand(persontime: pl.DataFrame, outcome: str) -> pl.DataFrame:
+    """Events, days at risk and the rate per 1,000 person-years of each band, from the file."""
+    return (
+        persontime.filter(pl.col(f"days_at_risk_{outcome}").is_not_null())
+        .group_by("age_band")
+        .agg(
+            events=pl.col(f"events_{outcome}").cast(pl.Int64).sum(),
+            days=pl.col(f"days_at_risk_{outcome}").cast(pl.Int64).sum(),
+        )
+        .with_columns(rate=pl.col("events") / (pl.col("days") / 365.25) * 1000)
+    )
 
 
 def test_the_report_shows_rates_when_the_build_has_person_time(tiny_rates: Path) -> None:
@@ -145,7 +172,15 @@ def test_the_report_shows_rates_when_the_build_has_person_time(tiny_rates: Path)
             assert r["events"] == incidence[r["outcome"]]
         if r["events"] in ("<5", "*"):
             assert r["rate_per_1000_py"] == ""
-    assert (tiny_rates / "summary" / "standardised_rates.csv").is_file()
+    # a standardised rate is left out when a band it uses is hidden
+    hidden = {
+        r["outcome"]
+        for r in rates
+        if r["calendar_year"] == "all" and r["age_band"] != "all" and r["events"] in ("<5", "*")
+    }
+    assert hidden  # the tiny cohort has small bands
+    for r in _rows(tiny_rates / "summary" / "standardised_rates.csv"):
+        assert (r["rate_per_1000_py"] == "") == (r["outcome"] in hidden), r
 
 
 def test_the_report_is_the_same_twice_with_rates(tiny_rates: Path) -> None:
@@ -153,6 +188,86 @@ def test_the_report_is_the_same_twice_with_rates(tiny_rates: Path) -> None:
     write_report(tiny_rates)
     second = {p.name: p.read_bytes() for p in (tiny_rates / "summary").glob("*.csv")}
     assert first == second
+
+
+def test_band_events_add_up_to_the_incident_cases_of_the_real_build(tiny_rates: Path) -> None:
+    persontime = pl.read_parquet(tiny_rates / "persontime.parquet")
+    cohort = pl.read_parquet(tiny_rates / "cohort.parquet")
+    outcomes = ["type2_diabetes", "ckd", "heart_failure"]
+    incident = {o: int(cohort[f"incident_{o}"].sum()) for o in outcomes}
+    assert sum(incident.values()) > 0  # the tiny extract has incident cases to count
+    block = rates_block(persontime, outcomes, incident)
+    published = rates_summary(block, frozenset(), 5)  # unsuppressed, to compare every cell
+    for o in outcomes:
+        hand = _by_hand(persontime, o)
+        assert int(hand["events"].sum()) == incident[o]
+        # the outcome's total shares the incidence table's key, so suppression links them
+        total = block.frame.filter((pl.col("outcome") == o) & (pl.col("age_band") == "all"))
+        assert total["events#key"].to_list() == [f"events|{o}"]
+        bands = published.filter(
+            (pl.col("outcome") == o) & (pl.col("calendar_year") == "all")
+        ).join(hand, on="age_band", how="left")
+        assert bands.height == hand.height + 1  # each band and the whole outcome
+        for r in bands.filter(pl.col("age_band") != "all").iter_rows(named=True):
+            assert r["events"] == str(r["events_right"])
+            assert abs(r["person_years"] - r["days"] / 365.25) <= 0.05
+            assert abs(r["rate_per_1000_py"] - r["rate"]) <= 0.005 + 1e-9
+
+
+@pytest.mark.slow
+def test_the_demo_rates_agree_with_its_incidence_table(demo_rates: Path) -> None:
+    page = (demo_rates / "report.html").read_text(encoding="utf-8")
+    assert 'id="rates"' in page
+    persontime = pl.read_parquet(demo_rates / "persontime.parquet")
+    rates = _rows(demo_rates / "summary" / "rates.csv")
+    for row in _rows(demo_rates / "summary" / "incidence.csv"):
+        o = row["outcome"]
+        hand = _by_hand(persontime, o)
+        assert str(hand["events"].sum()) == row["events"]  # the demo shows every total
+        total = next(r for r in rates if r["outcome"] == o and r["age_band"] == "all")
+        assert (total["events"], total["person_years"]) == (row["events"], row["person_years"])
+        assert total["rate_per_1000_py"] == row["rate_per_1000_py"]
+        shown = [
+            r
+            for r in rates
+            if r["outcome"] == o and r["age_band"] != "all" and r["calendar_year"] == "all"
+        ]
+        assert len(shown) == hand.height == 5  # 40-49 ... 80+
+        for r in shown:
+            cell = hand.filter(pl.col("age_band") == r["age_band"]).row(0, named=True)
+            if r["events"] in ("<5", "*"):
+                continue
+            assert int(r["events"]) == cell["events"]
+            assert abs(float(r["rate_per_1000_py"]) - cell["rate"]) <= 0.005 + 1e-9
+            assert abs(float(r["person_years"]) - cell["days"] / 365.25) <= 0.05
+
+
+def test_rates_without_calendar_years_and_with_time_since_index(
+    tmp_path: Path, tiny_rates: Path
+) -> None:
+    # calendar_year: false leaves the column out; time since index splits cells further but
+    # the rates are by age band only, so each band sums the same days and events as before.
+    option = "{age_bands: [40, 50, 60, 70, 80], calendar_year: false, since_index_years: [0, 1, 3]}"
+    out = build_with_rates(tmp_path, option, extract=HANDMADE)
+    persontime = pl.read_parquet(out / "persontime.parquet")
+    assert "calendar_year" not in persontime.columns
+    assert "since_index_band" in persontime.columns
+    assert set(persontime["since_index_band"]) == {"0-1", "1-3", "3+"}
+    by_year = pl.read_parquet(tiny_rates / "persontime.parquet")
+    rates = _rows(out / "summary" / "rates.csv")
+    assert rates
+    assert {r["calendar_year"] for r in rates} == {"all"}
+    outcomes = ["type2_diabetes", "ckd", "heart_failure"]
+    columns = ["outcome", "age_band", "events", "person_years"]
+
+    def bands(frame: pl.DataFrame) -> pl.DataFrame:
+        block = rates_block(frame, outcomes, {})
+        return block.frame.filter(pl.col("calendar_year") == "all").select(columns)
+
+    assert bands(persontime).to_dicts() == bands(by_year).to_dicts()
+    page = (out / "report.html").read_text(encoding="utf-8")
+    assert 'id="rates"' in page
+    assert page.count('<svg class="rates"') == 3
 
 
 def test_no_person_time_no_rates_section(tmp_path: Path) -> None:

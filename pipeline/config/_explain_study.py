@@ -183,6 +183,24 @@ def _followup_text(study: Study) -> str:
     )
 
 
+def _persontime_text(study: Study) -> str:
+    """What ``persontime:`` asks the build to write; empty when the study has none."""
+    option = study.persontime
+    if option is None:
+        return ""
+    splits = [f"age band ({_and([label for *_, label in option.age_labelled])})"]
+    if option.calendar_year:
+        splits.append("calendar year")
+    if option.since_index_years:
+        since = _and([label for *_, label in option.since_labelled])
+        splits.append(f"whole years since index ({since})")
+    return (
+        f" Person-time: each patient's follow-up is split by {_and(splits)} into "
+        "persontime.parquet, with each outcome's days at risk and events; the report's rates "
+        "by age band come from it."
+    )
+
+
 def explain_study(study: Study) -> str:
     """One plain paragraph saying what a study design means, in the order a patient meets it.
 
@@ -204,5 +222,5 @@ def explain_study(study: Study) -> str:
     return (
         f"{study.title} ({study.study}): Index: {_index_text(study.index)}. "
         f"Eligibility, in this order: {steps or 'none'}. {_outcomes_text(study)} "
-        f"{_followup_text(study)} Covariates: {covariates or 'none'}."
+        f"{_followup_text(study)} Covariates: {covariates or 'none'}.{_persontime_text(study)}"
     )
