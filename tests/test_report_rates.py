@@ -160,7 +160,9 @@ def _by_hand(persontime: pl.DataFrame, outcome: str) -> pl.DataFrame:
 def test_the_report_shows_rates_when_the_build_has_person_time(tiny_rates: Path) -> None:
     page = (tiny_rates / "report.html").read_text(encoding="utf-8")
     assert 'id="rates"' in page
-    assert "Rates by age band and calendar year" in page
+    assert "Rates by age band" in page
+    assert "Each year's cell" in page
+    assert "counted in the age band and calendar year it falls in;" in page
     assert page.count('<svg class="rates"') == 3  # one small panel per outcome
     assert "Fay and Feuer" in page
     assert "Ahmad OB" in page
@@ -268,6 +270,9 @@ def test_rates_without_calendar_years_and_with_time_since_index(
     page = (out / "report.html").read_text(encoding="utf-8")
     assert 'id="rates"' in page
     assert page.count('<svg class="rates"') == 3
+    # without years the notes speak of bands only
+    assert "Each year's cell" not in page
+    assert "counted in the age band it falls in;" in page
 
 
 def test_no_person_time_no_rates_section(tmp_path: Path) -> None:

@@ -40,7 +40,7 @@ SECTIONS = (
     ("table-one", "Table 1: baseline characteristics"),
     ("incidence", "Incidence"),
     ("curves", "Cumulative incidence curves"),
-    ("rates", "Rates by age band and calendar year"),
+    ("rates", "Rates by age band"),
     ("combinations", "Outcome combinations"),
     ("dependence", "Pairwise dependence"),
     ("definitions", "Definitions"),

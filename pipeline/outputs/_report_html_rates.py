@@ -127,6 +127,7 @@ def rates_section(
         titles: Outcome titles.
     """
     figs, tables = [], []
+    by_year = rates.filter(pl.col("calendar_year") != _ALL).height > 0  # the study split years
     for o in outcomes:
         part = rates.filter(pl.col("outcome") == o)
         if not part.height:
@@ -152,10 +153,19 @@ def rates_section(
         '<p class="note">Rate per 1,000 person-years of each age band over all calendar years, '
         "with its 95% interval; a band whose count is suppressed is not drawn.</p>"
         + "".join(tables)
-        + '<p class="note">Each year\'s cell shows the rate per 1,000 person-years and, in '
-        "brackets, the events. Person-time runs from index to onset or the end of follow-up "
-        "(days / 365.25), counted in the age band and calendar year it falls in; only "
-        "patients at risk at index count. Intervals: exact Poisson (Garwood).</p>"
+        + '<p class="note">'
+        + (
+            "Each year's cell shows the rate per 1,000 person-years and, in brackets, the events. "
+            if by_year
+            else ""
+        )
+        + "Person-time runs from index to onset or the end of follow-up (days / 365.25), "
+        + (
+            "counted in the age band and calendar year it falls in"
+            if by_year
+            else "counted in the age band it falls in"
+        )
+        + "; only patients at risk at index count. Intervals: exact Poisson (Garwood).</p>"
         "<h3>Standardised rates</h3>"
         + _standardised_table(standardised, titles)
         + '<p class="note">Directly standardised to each standard population over the age '
