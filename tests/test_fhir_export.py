@@ -23,7 +23,7 @@ import pytest
 
 from pipeline._build import BuildOptions, build_study, plan_study
 from pipeline.engine._fhir import ICD_SYSTEMS, SNOMED_SMOKING, STATUS_SET_ASIDE
-from pipeline.measures._registry import MEASURES
+from pipeline.config import shipped_measures
 from pipeline.synth import generate_extract
 from pipeline.synth._fhir_export import write_fhir_export
 from pipeline.synth._fhir_server import (
@@ -137,7 +137,7 @@ def _named_rows(extract: Path) -> Rows:
 
 def _canonical_value(row: dict[str, str | None]) -> dict[str, str | None]:
     """A converted unit's row as its canonical value, converted as the pipeline does."""
-    measure = MEASURES.get(row.get("measure") or "")
+    measure = shipped_measures().get(row.get("measure") or "")
     if measure is None or row["measure"] not in UNIT_FORMS or row["value"] is None:
         return row
     source, code, _ = UNIT_FORMS[measure.name]
@@ -379,7 +379,7 @@ def test_server_look_reads_back_the_same_rows(tmp_path: Path) -> None:
 
 
 def test_exact_value_round_trips_or_declines() -> None:
-    pound = MEASURES["weight"].conversion("[lb_av]")
+    pound = shipped_measures()["weight"].conversion("[lb_av]")
     assert pound is not None
     declined = []
     for tenth in range(300, 2000):

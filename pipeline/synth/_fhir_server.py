@@ -49,7 +49,8 @@ from itertools import groupby
 
 from pipeline.engine._fhir import LOINC_SYSTEM, STATUS_SET_ASIDE, UCUM_SYSTEM
 from pipeline.engine._fhir_codes import SNOMED_SYSTEM
-from pipeline.measures._registry import MEASURES, UnitConversion
+from pipeline.config import shipped_measures
+from pipeline.measures._registry import UnitConversion
 from pipeline.synth._fhir_resources import ICD9_SYSTEM, ICD10_SYSTEM, WRITERS, Resource, Row
 
 # HL7 OIDs the reader knows (its ICD_SYSTEMS): ICD-10-CM and ICD-9-CM diagnoses.
@@ -390,7 +391,7 @@ class ServerLook:
             return None
         if not math.isfinite(number) or row["value"] != repr(number):
             return None
-        measure = MEASURES[row["measure"]]
+        measure = shipped_measures()[row["measure"]]
         source_unit, target = measure.conversion(source), measure.conversion(code)
         if source_unit is None or target is None:  # the registry no longer reads one of them
             return None
