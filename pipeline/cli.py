@@ -66,6 +66,7 @@ StudyArg = Annotated[
     Path, typer.Argument(help="The study file (YAML).", exists=False, dir_okay=False)
 ]
 DebugOpt = Annotated[bool, typer.Option("--debug", help="Show the full traceback on errors.")]
+SHAPES_HELP = "Reshape the data (repeatable): value_text, integer_ids, many_practices, messy, wide."
 EXTRACT_HELP = (
     "Use this extract instead of the study's: a folder, a site mapping file, a file:// URI, or a "
     "database URI postgresql://USER@HOST:PORT/DATABASE?schema=S (password from PGPASSWORD or "
@@ -241,6 +242,7 @@ def synth(
         str, typer.Option(help="First day of the extract (YYYY-MM-DD).")
     ] = "2010-01-01",
     end: Annotated[str, typer.Option(help="Last day of the extract (YYYY-MM-DD).")] = "2021-12-31",
+    shape: Annotated[list[str] | None, typer.Option(help=SHAPES_HELP)] = None,
     debug: DebugOpt = False,
 ) -> None:
     """Write a synthetic Orvane Bay extract with its ground truth (fictional data).
@@ -252,9 +254,6 @@ def synth(
     """
     from pipeline.synth import generate_extract
 
-    if file_format not in ("parquet", "csv", "fhir"):
-        Console(stderr=True).print(f"error: --format must be parquet, csv or fhir: '{file_format}'")
-        raise typer.Exit(2)
     try:
         first, last = dt.date.fromisoformat(start), dt.date.fromisoformat(end)
     except ValueError as err:
@@ -265,9 +264,10 @@ def synth(
             out_dir,
             patients=patients,
             seed=seed,
-            file_format=file_format,  # type: ignore[arg-type]  # one of the three, checked above
+            file_format=file_format,  # type: ignore[arg-type]  # generate_extract checks it
             start=first,
             end=last,
+            shapes=tuple(shape or ()),
         ),
         debug=debug,
     )
