@@ -85,19 +85,30 @@ def _table(results: list[dict[str, Any]], key: str) -> str:
             rows.append([r["shape"], f"{r['rows'] / 1e6:.1f} M", f"failed ({b['exit_code']})"])
             continue
         ratio = f"{b['wall_seconds'] / base:.2f}" if base else "-"
-        slow = ", ".join(f"{n} {s:.1f} s" for n, s in b["slowest_stages"].items())
+        slowest = sorted(b["slowest_stages"].items(), key=lambda item: -item[1])
+        slow = ", ".join(f"{n} {s:.1f} s" for n, s in slowest)
         rows.append(
             [
                 r["shape"],
                 f"{r['rows'] / 1e6:.1f} M",
                 f"{b['wall_seconds']:.1f} s",
                 ratio,
+                f"{b['cpu_seconds']:.1f} s",
                 f"{b['peak_rss_mb'] / 1024:.2f} GB",
                 f"{b['duckdb_peak_mb'] / 1024:.2f} GB",
                 slow,
             ]
         )
-    head = ["shape", "event rows", "wall", "/ base", "peak RSS", "DuckDB peak", "slowest stages"]
+    head = [
+        "shape",
+        "event rows",
+        "wall",
+        "/ base",
+        "CPU",
+        "peak RSS",
+        "DuckDB peak",
+        "slowest stages",
+    ]
     return markdown_table(head, rows)
 
 
