@@ -126,7 +126,8 @@ def make_engine(
         )
     if options.spark_master or options.spark_conf:
         raise EngineError("--spark-master and --spark-conf need --engine spark")
-    return DuckDBEngine(threads=threads, memory_limit=memory_limit)
+    source = "option" if options.memory_limit else "study"
+    return DuckDBEngine(threads=threads, memory_limit=memory_limit, memory_limit_from=source)
 
 
 @dataclass(frozen=True)
@@ -241,7 +242,12 @@ def build_study(
         "extract": manifest["locations"]["extract_from_study"],
         "started_utc": started.isoformat(timespec="seconds"),
         "finished_utc": finished.isoformat(timespec="seconds"),
-        "engine": {"name": run.engine, "version": run.engine_version, **run.engine_info},
+        "engine": {
+            "name": run.engine,
+            "version": run.engine_version,
+            **run.engine_info,
+            **run.run_settings,
+        },
         "quality": quality,
         "unmatched_definitions": [
             {"use": u.what, "definition": u.definition or None, "evidence": list(u.keys)}
@@ -252,7 +258,13 @@ def build_study(
             "attrition": run.outputs["attrition"].select(["step", "remaining"]).to_pylist(),
         },
         "stages": [
-            {"name": s.name, "kind": s.kind, "seconds": round(s.seconds, 3), "rows": s.rows}
+            {
+                "name": s.name,
+                "kind": s.kind,
+                "seconds": round(s.seconds, 3),
+                "rows": s.rows,
+                "memory_bytes": s.memory_bytes,
+            }
             for s in run.stages
         ],
     }

@@ -22,6 +22,7 @@ StudyArg = Annotated[
     Path, typer.Argument(help="The study file (YAML).", exists=False, dir_okay=False)
 ]
 DebugOpt = Annotated[bool, typer.Option("--debug", help="Show the full traceback on errors.")]
+SHAPES_HELP = "Reshape the data (repeatable): value_text, integer_ids, many_practices, messy, wide."
 EXTRACT_HELP = (
     "Use this extract instead of the study's: a folder, a site mapping file, a file:// URI, a "
     "folder on a Hadoop file system (hdfs://, s3a://; --engine spark), or a database URI "

@@ -32,6 +32,7 @@ from pipeline._build import BuildOptions, BuildResult, build_study, plan_study, 
 from pipeline._check_data import check_extract, check_lines
 from pipeline._cli_options import (
     EXTRACT_HELP,
+    SHAPES_HELP,
     DebugOpt,
     SparkConfOpt,
     SparkMasterOpt,
@@ -207,6 +208,7 @@ def synth(
         str, typer.Option(help="First day of the extract (YYYY-MM-DD).")
     ] = "2010-01-01",
     end: Annotated[str, typer.Option(help="Last day of the extract (YYYY-MM-DD).")] = "2021-12-31",
+    shape: Annotated[list[str] | None, typer.Option(help=SHAPES_HELP)] = None,
     debug: DebugOpt = False,
 ) -> None:
     """Write a synthetic Orvane Bay extract with its ground truth (fictional data).
@@ -218,9 +220,6 @@ def synth(
     """
     from pipeline.synth import generate_extract
 
-    if file_format not in ("parquet", "csv", "fhir"):
-        Console(stderr=True).print(f"error: --format must be parquet, csv or fhir: '{file_format}'")
-        raise typer.Exit(2)
     try:
         first, last = dt.date.fromisoformat(start), dt.date.fromisoformat(end)
     except ValueError as err:
@@ -231,9 +230,10 @@ def synth(
             out_dir,
             patients=patients,
             seed=seed,
-            file_format=file_format,  # type: ignore[arg-type]  # one of the three, checked above
+            file_format=file_format,  # type: ignore[arg-type]  # generate_extract checks it
             start=first,
             end=last,
+            shapes=tuple(shape or ()),
         ),
         debug=debug,
     )

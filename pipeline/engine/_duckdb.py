@@ -6,7 +6,9 @@ and executes the stages in order. It knows nothing about studies: only plans.
 
 from __future__ import annotations
 
+import json
 import logging
+import os
 import re
 import tempfile
 import time
@@ -40,12 +42,18 @@ _INTEGER_ID = r"^(0|-?[1-9][0-9]{0,17})$"
 
 @dataclass(frozen=True)
 class StageReport:
-    """What one stage cost: seconds and the rows it produced (None for views)."""
+    """What one stage cost: seconds, the rows it produced (None for views) and memory.
+
+    ``memory_bytes`` is DuckDB's own peak buffer memory while the stage ran (its profiler's
+    ``peak_buffer_memory``; where this DuckDB has no such figure, the memory it holds after the
+    stage), so a stage whose memory grows shows in run.json. None on other engines.
+    """
 
     name: str
     kind: str
     seconds: float
     rows: int | None
+    memory_bytes: int | None = None
 
 
 @dataclass
@@ -58,6 +66,9 @@ class RunResult:
     engine_version: str = duckdb.__version__
     engine_info: dict[str, Any] = field(default_factory=dict)
     """Where and how it ran, when that can differ between runs (Spark: master, settings)."""
+    run_settings: dict[str, Any] = field(default_factory=dict)
+    """Settings that depend on the machine (DuckDB's memory limit and where it came from):
+    for run.json only, so the manifest stays the same on every machine."""
 
 
 StageCallback = Callable[[Stage, int, int], None]
@@ -195,6 +206,21 @@ def _read_failure(err: duckdb.Error) -> ExtractError | None:
     return ExtractError(f"{file.group(1).strip()}: line {line.group(1)}{shown}: {reason}")
 
 
+def machine_memory_limit() -> str | None:
+    """Half the machine's physical memory, in DuckDB's notation (``"11974MiB"``).
+
+    DuckDB's own default is 80% of RAM, which leaves too little for the Arrow outputs, Python
+    and the rest of a shared machine; half is the tool's default when neither ``--memory-limit``
+    nor the study sets one. None where the platform does not report its memory (then DuckDB's
+    default applies).
+    """
+    try:
+        total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+    except (AttributeError, OSError, ValueError):
+        return None
+    return f"{total // 2 // 2**20}MiB" if total > 0 else None
+
+
 def _create(kind: str, name: str, query: exp.Query) -> exp.Create:
     return exp.Create(
         this=exp.to_table(name),
@@ -209,7 +235,10 @@ class DuckDBEngine:
 
     Args:
         threads: Worker threads (DuckDB's default: all cores).
-        memory_limit: e.g. ``"2GB"``; beyond it DuckDB spills to the scratch folder.
+        memory_limit: e.g. ``"2GB"``; beyond it DuckDB spills to the scratch folder. None:
+            half the machine's memory (:func:`machine_memory_limit`).
+        memory_limit_from: Where ``memory_limit`` came from (``option`` or ``study``), for
+            run.json; ``machine`` when it is None.
     """
 
     DIALECT = "duckdb"
@@ -219,9 +248,16 @@ class DuckDBEngine:
         """The plan exactly as this engine runs it (DuckDB runs the stages as compiled)."""
         return plan
 
-    def __init__(self, *, threads: int | None = None, memory_limit: str | None = None) -> None:
+    def __init__(
+        self,
+        *,
+        threads: int | None = None,
+        memory_limit: str | None = None,
+        memory_limit_from: str = "option",
+    ) -> None:
         self.threads = threads
-        self.memory_limit = memory_limit
+        self.memory_limit = memory_limit or machine_memory_limit()
+        self.memory_limit_from = memory_limit_from if memory_limit else "machine"
 
     def _connect(self, scratch: Path) -> duckdb.DuckDBPyConnection:
         con = duckdb.connect(":memory:")
@@ -235,7 +271,24 @@ class DuckDBEngine:
             con.execute("SET threads = ?", [self.threads])
         if self.memory_limit:
             con.execute("SET memory_limit = ?", [self.memory_limit])
+        # The profiler's figures are read after each stage (see _memory); no output is printed.
+        con.execute("PRAGMA enable_profiling = 'no_output'")
         return con
+
+    def _settings(self, con: duckdb.DuckDBPyConnection) -> dict[str, Any]:
+        """The memory limit in effect, as DuckDB states it, and where it came from."""
+        limit = con.sql("SELECT current_setting('memory_limit')").fetchall()[0][0]
+        return {"memory_limit": str(limit), "memory_limit_from": self.memory_limit_from}
+
+    @staticmethod
+    def _memory(con: duckdb.DuckDBPyConnection) -> int:
+        """DuckDB's peak buffer memory during the last statement, else what it holds now."""
+        try:
+            profile = json.loads(con.get_profiling_information(format="json"))
+            return int(profile["system"]["peak_buffer_memory"])
+        except (duckdb.Error, KeyError, TypeError, ValueError):
+            rows = con.sql("SELECT SUM(memory_usage_bytes) FROM duckdb_memory()").fetchall()
+            return int(rows[0][0] or 0)
 
     def _id_type(self, con: duckdb.DuckDBPyConnection, patients: ExtractTable) -> str:
         """The type patient_id gets in every table: the patients file's own type.
@@ -296,19 +349,21 @@ class DuckDBEngine:
                 view = view.where(typed.isin(*wanted))
             con.execute(_create("VIEW", source.relation, view).sql(self.DIALECT))
 
-    def _execute(self, con: duckdb.DuckDBPyConnection, stage: Stage) -> int | None:
+    def _execute(self, con: duckdb.DuckDBPyConnection, stage: Stage) -> tuple[int | None, int]:
+        """Run one stage: its rows (None for a view) and DuckDB's peak memory while it ran."""
         if stage.kind == "check":
             rows = con.execute(stage.render(self.DIALECT)).fetchall()
             if rows:
                 shown = "; ".join(", ".join(str(v) for v in row) for row in rows)
                 raise EngineError(f"{stage.failure} (stage {stage.name}; first rows: {shown})")
-            return 0
+            return 0, self._memory(con)
         kind = "VIEW" if stage.kind == "view" else "TABLE"
         con.execute(_create(kind, stage.name, stage.query).sql(self.DIALECT))
+        memory = self._memory(con)
         if stage.kind == "view":
-            return None
+            return None, memory
         count = exp.select(exp.func("COUNT", exp.Star())).from_(exp.to_table(stage.name))
-        return int(con.execute(count.sql(self.DIALECT)).fetchall()[0][0])
+        return int(con.execute(count.sql(self.DIALECT)).fetchall()[0][0]), memory
 
     def run(
         self,
@@ -349,11 +404,12 @@ class DuckDBEngine:
                 on_stage(stage, number, len(plan.stages))
             started = time.perf_counter()
             try:
-                rows = self._execute(con, stage)
+                rows, memory = self._execute(con, stage)
             except duckdb.Error as err:
                 failure = EngineError(f"stage {stage.name} failed on DuckDB: {err}")
                 raise _read_failure(err) or failure from err
-            reports.append(StageReport(stage.name, stage.kind, time.perf_counter() - started, rows))
+            seconds = time.perf_counter() - started
+            reports.append(StageReport(stage.name, stage.kind, seconds, rows, memory))
             log.debug("stage %s: %.3fs, %s rows", stage.name, reports[-1].seconds, rows)
         outputs = {}
         for output, stage_name, order in plan.outputs:
@@ -361,4 +417,4 @@ class DuckDBEngine:
             if order:
                 select = select.order_by(*order)
             outputs[output] = con.sql(select.sql(self.DIALECT)).to_arrow_table()
-        return RunResult(outputs, reports)
+        return RunResult(outputs, reports, run_settings=self._settings(con))

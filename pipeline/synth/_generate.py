@@ -43,6 +43,7 @@ from pipeline.synth._fhir_export import write_fhir_export
 from pipeline.synth._labs import MEASURES, NO_TEXT, TEXTS, UNITS, draw_measurements
 from pipeline.synth._population import NEVER, SEX_VALUES, Population, draw_population
 from pipeline.synth._scenario import CONDITIONS, Scenario
+from pipeline.synth._shapes import SHAPES, check_shapes, reshape
 
 FileFormat = Literal["parquet", "csv", "fhir"]
 TABLES: tuple[str, ...] = ("patients", "encounters", "diagnoses", "prescriptions", "measurements")
@@ -324,7 +325,7 @@ class _Sink:
             if self.path(table).suffix == ".parquet":
                 self.writers[table] = pq.ParquetWriter(
                     self.path(table),
-                    SCHEMAS[table],
+                    data.schema,
                     compression="zstd",
                     compression_level=3,
                     version="2.6",
@@ -368,6 +369,7 @@ def generate_extract(
     start: date = date(2010, 1, 1),
     end: date = date(2021, 12, 31),
     scenario: Scenario | None = None,
+    shapes: tuple[str, ...] = (),
 ) -> GenerationSummary:
     """Write a synthetic Orvane Bay extract with its ground truth to ``out_dir``.
 
@@ -388,6 +390,9 @@ def generate_extract(
         start: First day of the extract.
         end: Last day of the extract.
         scenario: Parameters; the default Orvane Bay scenario when None.
+        shapes: Names from :data:`~pipeline.synth._shapes.SHAPES`, each laid over the drawn
+            rows with a random stream of its own (none: the default extract, unchanged);
+            ``scenario.json`` records them under ``shapes``.
 
     Returns:
         A :class:`GenerationSummary`.
@@ -398,11 +403,14 @@ def generate_extract(
     """
     sc = scenario or Scenario()
     _check_arguments(patients, file_format, start, end, sc)
+    shapes = check_shapes(shapes)
+    if shapes and file_format == "fhir":
+        raise AscertainError("extract shapes apply to Parquet and CSV extracts, not to FHIR")
     out_dir = Path(out_dir)
     check_folder(out_dir, SYNTH)
     with staging(out_dir) as tmp:
         written = "parquet" if file_format == "fhir" else file_format
-        sink, orphans = _write_chunks(tmp, sc, patients, seed, written, start, end)
+        sink, orphans = _write_chunks(tmp, sc, patients, seed, written, (start, end), shapes)
         tables = [sink.path(t) for t in TABLES]
         fhir: dict[str, object] = {}
         if file_format == "fhir":
@@ -423,6 +431,7 @@ def generate_extract(
             "orphan_patients": orphans,
             "scenario": sc.to_dict(),
             **fhir,
+            **({"shapes": {s: SHAPES[s] for s in shapes}} if shapes else {}),
         }
         text = json.dumps(meta, sort_keys=True, indent=2, ensure_ascii=False) + "\n"
         (tmp / "scenario.json").write_text(text, encoding="utf-8")
@@ -451,10 +460,11 @@ def _write_chunks(
     patients: int,
     seed: int,
     file_format: FileFormat,
-    start: date,
-    end: date,
+    span: tuple[date, date],
+    shapes: tuple[str, ...],
 ) -> tuple[_Sink, int]:
     """Draw and write every chunk; returns the sink (row counts) and the orphan count."""
+    start, end = span
     sizes = [sc.chunk_size] * (patients // sc.chunk_size)
     if patients % sc.chunk_size:
         sizes.append(patients % sc.chunk_size)
@@ -475,6 +485,9 @@ def _write_chunks(
                 rng, sc, numbers=numbers, ghost=ghost, start_day=_day(start), end_day=_day(end)
             )
             tables = _chunk_tables(rng, sc, book, pop)
+            if shapes:
+                # A child of the chunk's stream: the drawn rows stay those of the default.
+                tables = reshape(tables, shapes, np.random.default_rng(streams[k + 1].spawn(1)[0]))
             if file_format == "csv":
                 spoil_dates(rng, tables, sc.p_unreadable_date_row)
             for name, table in tables.items():
