@@ -367,15 +367,24 @@ WITH read AS (
 ), split AS (
   SELECT
     *,
-    NULLIF(REGEXP_EXTRACT(text_given, '^(<=|>=|<|>)?[ ]*([0-9]+([.,][0-9]+)?)[ ]*(.*)$'), '') AS text_qualifier,
-    NULLIF(
-      REGEXP_EXTRACT(text_given, '^(<=|>=|<|>)?[ ]*([0-9]+([.,][0-9]+)?)[ ]*(.*)$', 2),
-      ''
-    ) AS text_number,
-    NULLIF(
-      TRIM(REGEXP_EXTRACT(text_given, '^(<=|>=|<|>)?[ ]*([0-9]+([.,][0-9]+)?)[ ]*(.*)$', 4)),
-      ''
-    ) AS text_unit
+    CASE
+      WHEN value_missing
+      THEN NULLIF(REGEXP_EXTRACT(text_given, '^(<=|>=|<|>)?[ ]*([0-9]+([.,][0-9]+)?)[ ]*(.*)$'), '')
+    END AS text_qualifier,
+    CASE
+      WHEN value_missing
+      THEN NULLIF(
+        REGEXP_EXTRACT(text_given, '^(<=|>=|<|>)?[ ]*([0-9]+([.,][0-9]+)?)[ ]*(.*)$', 2),
+        ''
+      )
+    END AS text_number,
+    CASE
+      WHEN value_missing
+      THEN NULLIF(
+        TRIM(REGEXP_EXTRACT(text_given, '^(<=|>=|<|>)?[ ]*([0-9]+([.,][0-9]+)?)[ ]*(.*)$', 4)),
+        ''
+      )
+    END AS text_unit
   FROM read
 ), parsed AS (
   SELECT
