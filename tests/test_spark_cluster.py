@@ -25,6 +25,7 @@ from typer.testing import CliRunner
 
 from pipeline.cli import app
 from pipeline.engine._spark_session import START_ALLOWANCE
+from pipeline.outputs import DATA_FILES
 
 from .conftest import DEMO_STUDY, HANDMADE
 
@@ -37,14 +38,7 @@ pytestmark = [
     pytest.mark.skipif(_NO_JAVA, reason="no Java runtime for Spark (install a JDK 17)"),
 ]
 
-COMPARED = (
-    "cohort.parquet",
-    "population.parquet",
-    "attrition.csv",
-    "quality.csv",
-    "dictionary.csv",
-    "dictionary.md",
-)
+COMPARED = DATA_FILES  # every data file a build writes
 
 
 def _free_port() -> int:

@@ -32,20 +32,13 @@ from pipeline.errors import AscertainError, ConfigError, ExtractError
 from pipeline.extract import HadoopFiles, discover_extract, extract_location, is_hadoop_uri
 from pipeline.extract._discover import discover_folder
 from pipeline.extract._hadoop import safe_uri
-from pipeline.outputs import describe_files
+from pipeline.outputs import DATA_FILES, describe_files
 from pipeline.synth import generate_extract
 
 from .conftest import DEMO_STUDY, HANDMADE
 from .helpers import require
 
-COMPARED = (
-    "cohort.parquet",
-    "population.parquet",
-    "attrition.csv",
-    "quality.csv",
-    "dictionary.csv",
-    "dictionary.md",
-)
+COMPARED = DATA_FILES  # every data file a build writes
 
 
 def _spark_is_available() -> None:

@@ -18,7 +18,7 @@ import polars as pl
 from pipeline.outputs._report_html_cells import n_cell as _n
 from pipeline.outputs._report_html_cells import table as _table
 from pipeline.outputs._report_rates import standard_sources
-from pipeline.outputs._report_svg import _nice_step, _text
+from pipeline.outputs._report_svg import _nice_step, _text, value_axis
 
 __all__ = ["rates_section", "render_rate_panel"]
 
@@ -38,22 +38,9 @@ def render_rate_panel(title: str, bands: Sequence[tuple[str, float | None, float
     w, h, left, right, top, bottom = 300, 200, 48, 10, 12, 38
     shown = [b for b in bands if b[1] is not None]
     highest = max((b[3] for b in shown if math.isfinite(b[3])), default=0.0)
-    step = _nice_step(max(highest, 1e-9) / 4)
-    ticks = max(math.ceil(highest / step - 1e-9), 1)
-    top_value = step * ticks
     slot = (w - left - right) / max(len(bands), 1)
-
-    def sy(v: float) -> float:
-        return top + (h - top - bottom) * (1 - min(v, top_value) / top_value)
-
-    parts = [
-        f'<rect x="{left}" y="{top}" width="{w - left - right}" '
-        f'height="{h - top - bottom}" class="plot"/>'
-    ]
-    for k in range(ticks + 1):
-        v = step * k
-        parts.append(f'<path d="M{left} {sy(v):.1f} H{w - right}" class="grid"/>')
-        parts.append(_text(left - 6, sy(v) + 4, f"{v:.4g}", "tick tick-y"))
+    step = _nice_step(max(highest, 1e-9) / 4)
+    parts, sy = value_axis((w, h, left, right, top, bottom), highest, step, lambda v: f"{v:.4g}")
     for i, (label, rate, low, high) in enumerate(bands):
         x = left + slot * (i + 0.5)
         parts.append(_text(x, h - bottom + 16, label, "tick tick-x"))

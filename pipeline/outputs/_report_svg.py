@@ -193,6 +193,44 @@ def _nice_step(value: float) -> float:
     return next(m * power for m in (1, 2, 5, 10) if m * power >= value)
 
 
+def value_axis(
+    box: tuple[int, int, int, int, int, int],
+    highest: float,
+    step: float,
+    label: Callable[[float], str],
+) -> tuple[list[str], Callable[[float], float]]:
+    """A plot's frame, horizontal grid and y tick labels, and its y scale.
+
+    The curves and the rates panels share it so the two read alike; values above the top
+    tick are drawn at the top.
+
+    Args:
+        box: ``(width, height, left, right, top, bottom)`` of the plot in pixels.
+        highest: The largest value to show.
+        step: The tick step.
+        label: A tick value's text.
+
+    Returns:
+        The SVG parts drawn so far, and the function placing a value on the y axis.
+    """
+    w, h, left, right, top, bottom = box
+    ticks = max(math.ceil(highest / step - 1e-9), 1)
+    top_value = step * ticks
+
+    def sy(v: float) -> float:
+        return top + (h - top - bottom) * (1 - min(v, top_value) / top_value)
+
+    parts = [
+        f'<rect x="{left}" y="{top}" width="{w - left - right}" '
+        f'height="{h - top - bottom}" class="plot"/>'
+    ]
+    for k in range(ticks + 1):
+        v = step * k
+        parts.append(f'<path d="M{left} {sy(v):.1f} H{w - right}" class="grid"/>')
+        parts.append(_text(left - 6, sy(v) + 4, label(v), "tick tick-y"))
+    return parts, sy
+
+
 def _step_path(
     times: NDArray[np.float64],
     values: NDArray[np.float64],
@@ -229,25 +267,13 @@ def render_curves(curve: Curve) -> str:
     w, h, left, right, top, bottom = 360, 250, 52, 14, 14, 40
     band_top = curve.aj_high.max() if curve.aj_high is not None else 0.0
     highest = float(max(curve.aj_values.max(), curve.km_values.max(), band_top))
-    step = _nice_step(highest / 4)
-    ticks = max(math.ceil(highest / step - 1e-9), 1)
-    top_value = step * ticks
     horizon = max(curve.horizon, 1e-9)
 
     def sx(t: float) -> float:
         return left + (w - left - right) * min(t, horizon) / horizon
 
-    def sy(v: float) -> float:
-        return top + (h - top - bottom) * (1 - v / top_value)
-
-    parts = [
-        f'<rect x="{left}" y="{top}" width="{w - left - right}" '
-        f'height="{h - top - bottom}" class="plot"/>'
-    ]
-    for k in range(ticks + 1):
-        v = step * k
-        parts.append(f'<path d="M{left} {sy(v):.1f} H{w - right}" class="grid"/>')
-        parts.append(_text(left - 6, sy(v) + 4, f"{100 * v:.4g}%", "tick tick-y"))
+    box = (w, h, left, right, top, bottom)
+    parts, sy = value_axis(box, highest, _nice_step(highest / 4), lambda v: f"{100 * v:.4g}%")
     for year in range(math.floor(horizon) + 1):
         parts.append(f'<path d="M{sx(year):.1f} {h - bottom} v5" class="axis"/>')
         parts.append(_text(sx(year), h - bottom + 18, str(year), "tick tick-x"))
