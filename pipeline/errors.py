@@ -55,12 +55,35 @@ class ConfigError(AscertainError):
         super().__init__("\n".join(str(p) for p in self.problems))
 
 
-class ExtractError(AscertainError):
+class _LocatedError(AscertainError):
+    """An error with a stable short code and, where known, the file, table or stage at fault.
+
+    The code lets a user (or a script) tell failures apart without parsing the sentence; the
+    place comes first, as in a :class:`Problem`, so every error reads the same way. An error
+    raised without a code prints its sentence alone (and carries the class's default code).
+    """
+
+    default_code = "error"
+
+    def __init__(self, message: str, *, code: str | None = None, where: str | None = None) -> None:
+        self.message = message
+        self.code = code or self.default_code
+        self.where = where
+        prefix = f"{where} " if where else ""
+        tag = f"[{code}] " if code else ""
+        super().__init__(f"{prefix}{tag}{message}")
+
+
+class ExtractError(_LocatedError):
     """The extract cannot be used: a missing table, a missing column, an unreadable file."""
 
+    default_code = "extract-unusable"
 
-class EngineError(AscertainError):
+
+class EngineError(_LocatedError):
     """The engine failed to run a plan, or a data check in the plan found offending rows."""
+
+    default_code = "engine-failed"
 
 
 class UnusableBuildError(AscertainError):
