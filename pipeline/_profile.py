@@ -17,14 +17,14 @@ from typing import Any
 
 from rich.table import Table
 
-from pipeline.compile._sources import DIAGNOSES, ENCOUNTERS, MEASUREMENTS, PATIENTS, PRESCRIPTIONS
 from pipeline.engine import DuckDBEngine
 from pipeline.engine._profile import profile_tables
 from pipeline.errors import AscertainError, ExtractError
 from pipeline.extract import ExtractTable, database_source, discover_extract, open_extract
+from pipeline.extract.schema import all_sources
 from pipeline.outputs._ownership import PROFILE, check_folder, install, staging
 
-ALL_TABLES = (PATIENTS, ENCOUNTERS, DIAGNOSES, PRESCRIPTIONS, MEASUREMENTS)
+ALL_TABLES = all_sources()
 PATIENT_LEVEL = (
     "Patient-level detail for use inside the secure environment: small counts are shown as "
     "they are, and first and last dates are single patients' dates. Do not release it."
@@ -48,7 +48,7 @@ def profile_extract(folder: Path | str, *, threshold: int = 5) -> dict[str, Any]
         raise AscertainError(f"the threshold must be at least 1, got {threshold}")
     database = database_source(folder)
     if database is not None:
-        optional = frozenset(t.name for t in ALL_TABLES if t is not PATIENTS)
+        optional = frozenset(t.name for t in ALL_TABLES if t.name != "patients")
         with open_extract(folder, ALL_TABLES, optional=optional) as opened:
             found = opened.tables
             profile = _profile(found, threshold)
@@ -63,7 +63,7 @@ def profile_extract(folder: Path | str, *, threshold: int = 5) -> dict[str, Any]
         try:
             found.update(discover_extract(folder, (table,)))
         except ExtractError as err:
-            if table is PATIENTS or "not found" not in str(err):
+            if table.name == "patients" or err.code != "missing-table":
                 raise
             missing.append(table.name)
     profile = _profile(found, threshold)

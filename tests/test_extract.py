@@ -33,9 +33,10 @@ def test_missing_table_is_named(extract: Path, tmp_path: Path) -> None:
     with pytest.raises(ExtractError) as caught:
         _build(extract, tmp_path / "out")
     assert str(caught.value) == (
-        f"{extract}: table 'prescriptions' not found "
+        f"{extract} [missing-table] table 'prescriptions' not found "
         "(looked for prescriptions.csv, prescriptions.parquet, prescriptions/*.parquet)"
     )
+    assert (caught.value.code, caught.value.where) == ("missing-table", str(extract))
     assert not (tmp_path / "out").exists()
 
 
@@ -46,7 +47,10 @@ def test_missing_column_is_named(extract: Path, tmp_path: Path) -> None:
     with pytest.raises(ExtractError) as caught:
         _build(extract, tmp_path / "out")
     message = str(caught.value)
-    assert message.startswith(f"{path}: table 'diagnoses' lacks column(s) code_system; found: ")
+    assert message.startswith(
+        f"{path} [missing-column] table 'diagnoses' lacks column(s) code_system; found: "
+    )
+    assert (caught.value.code, caught.value.where) == ("missing-column", str(path))
     assert "codesystem" in message
 
 

@@ -23,7 +23,7 @@ import pytest
 
 from pipeline._build import BuildOptions, build_study, plan_study
 from pipeline.config import shipped_measures
-from pipeline.engine._fhir import ICD_SYSTEMS, SNOMED_SMOKING, STATUS_SET_ASIDE
+from pipeline.extract.readers.fhir import ICD_SYSTEMS, SNOMED_SMOKING, STATUS_SET_ASIDE
 from pipeline.synth import generate_extract
 from pipeline.synth._fhir_export import write_fhir_export
 from pipeline.synth._fhir_server import (

@@ -186,7 +186,7 @@ def test_other_delimiters_are_refused(tmp_path: Path, delimiter: bytes) -> None:
     header = repr("patient_id{0}encounter_date{0}encounter_type".format(delimiter.decode()))
     _refused(
         extract,
-        f"{extract / 'encounters.csv'}: the header has one column {header}",
+        f"{extract / 'encounters.csv'}:1 [wrong-delimiter] the header has one column {header}",
         "files must be comma-separated",
     )
 
@@ -210,7 +210,7 @@ def test_latin1_in_the_header_is_refused_with_its_byte(tmp_path: Path) -> None:
     rows = [line.rstrip(b"\n") + b",x\n" for line in lines[1:]]
     extract = _hostile(tmp_path, "patients", b"".join([header, *rows]))
     byte = len(lines[0]) + 3  # 'p', 'r', then the Latin-1 'é'
-    _refused(extract, f"{extract / 'patients.csv'}: line 1, byte {byte}: not valid UTF-8")
+    _refused(extract, f"{extract / 'patients.csv'}:1 [not-utf8] byte {byte}: not valid UTF-8")
 
 
 def test_latin1_in_a_column_never_read_is_not_checked(
@@ -229,7 +229,7 @@ def test_latin1_in_a_column_never_read_is_not_checked(
 
 def test_an_empty_file_is_refused(tmp_path: Path) -> None:
     extract = _hostile(tmp_path, "encounters", b"")
-    _refused(extract, f"{extract / 'encounters.csv'}: empty file, no header")
+    _refused(extract, f"{extract / 'encounters.csv'} [empty-file] empty file, no header")
 
 
 def test_a_header_only_file_is_an_empty_table(tmp_path: Path) -> None:
@@ -246,13 +246,17 @@ def test_parquet_bytes_in_a_csv_are_refused(tmp_path: Path) -> None:
     buffer = io.BytesIO()
     pq.write_table(pa.table({"patient_id": ["HM-001"], "encounter_date": ["2015-01-01"]}), buffer)
     extract = _hostile(tmp_path, "encounters", buffer.getvalue())
-    _refused(extract, f"{extract / 'encounters.csv'}: this is a Parquet file, not CSV text")
+    _refused(
+        extract, f"{extract / 'encounters.csv'} [not-csv] this is a Parquet file, not CSV text"
+    )
 
 
 def test_text_in_a_parquet_file_is_refused(tmp_path: Path) -> None:
     content = b"".join(_lines("encounters"))
     extract = _hostile(tmp_path, "encounters", content, name="encounters.parquet")
-    _refused(extract, f"{extract / 'encounters.parquet'}: not a readable Parquet file")
+    _refused(
+        extract, f"{extract / 'encounters.parquet'} [unreadable-file] not a readable Parquet file"
+    )
 
 
 # 8. Enormous values are counted, never a crash.

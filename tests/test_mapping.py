@@ -11,6 +11,7 @@ import pytest
 from pipeline._build import BuildOptions, build_study, plan_study
 from pipeline.errors import ConfigError
 from pipeline.extract import discover_extract
+from pipeline.extract.schema import DATE_COLUMNS
 
 from .conftest import DEMO_STUDY, HANDMADE
 from .helpers import run_stage
@@ -27,8 +28,7 @@ RENAMES = {
     "measurements": ("labs", {"patient_id": "PersonID", "obs_date": "Taken", "measure": "Test",
                               "value_text": "Result Text", "value": "Result", "unit": "Units"}),
 }  # fmt: skip
-DATES = {"birth_date", "death_date", "encounter_date", "event_date", "start_date", "stop_date",
-         "obs_date"}  # fmt: skip
+DATES = DATE_COLUMNS
 SEX = {"F": "2", "M": "1"}
 SYSTEM = {"ICD10": "ICD-10-CA", "ICD9": "9"}
 

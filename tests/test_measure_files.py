@@ -19,9 +19,9 @@ from pipeline.compile import compile_study
 from pipeline.compile._context import evidence_number
 from pipeline.config import load_study, shipped_measures
 from pipeline.engine import DuckDBEngine
-from pipeline.engine._fhir_codes import LOINC_MEASURES
 from pipeline.errors import ConfigError
 from pipeline.extract import discover_extract
+from pipeline.extract.readers.fhir import LOINC_MEASURES
 from pipeline.outputs import sha256_file
 
 from .helpers import eligible_encounters, eligible_patient, write_extract, write_study

@@ -22,8 +22,8 @@ from pipeline._profile import profile_extract
 from pipeline.cli import app
 from pipeline.compile._quality import SET_ASIDE_REASONS
 from pipeline.config import load_study
-from pipeline.engine._fhir import READER_REASONS
 from pipeline.errors import ConfigError, UnusableBuildError
+from pipeline.extract.readers.fhir import READER_REASONS
 from pipeline.outputs._usability import misread_shares
 
 from .conftest import DEMO_STUDY, HANDMADE

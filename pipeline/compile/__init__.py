@@ -2,6 +2,7 @@
 
 from pipeline.compile._compiler import PASSES, compile_study, unmatched_definitions
 from pipeline.compile._matches import EVIDENCE_COUNTS, Use
+from pipeline.compile._measurements import READING_PATTERN
 from pipeline.compile._plan import (
     POSITION_BASE,
     SOURCE_DIALECT,
@@ -18,6 +19,7 @@ __all__ = [
     "EVIDENCE_COUNTS",
     "PASSES",
     "POSITION_BASE",
+    "READING_PATTERN",
     "SOURCE_DIALECT",
     "SOURCE_POSITION",
     "SOURCE_PROBLEM",

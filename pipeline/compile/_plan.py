@@ -11,49 +11,21 @@ from typing import Literal
 
 from sqlglot import exp
 
+from pipeline.extract.schema import POSITION_BASE, SOURCE_POSITION, SOURCE_PROBLEM, SourceTable
+
 # The dialect the stage templates are written in; engines render to their own.
 SOURCE_DIALECT = "duckdb"
 
-
-# Every source relation also carries ``source_position``: where a row sits in its table's
-# files, as file index * POSITION_BASE + row number (CSV: 1 = the first record after the
-# header; FHIR NDJSON: the line number). Parquet rows have none (NULL). The quality log names
-# the first row set aside per reason with it.
-SOURCE_POSITION = "source_position"
-POSITION_BASE = 10**12
-# Every source relation also carries ``source_problem``: the reason the reader itself set a row
-# aside before any stage judged it (a FHIR line that is not JSON, a resource of another type, a
-# refuted diagnosis...), NULL for a row the reader has nothing against (every CSV and Parquet
-# row). The quality log gives it first; no stage uses such a row.
-SOURCE_PROBLEM = "source_problem"
-
-
-@dataclass(frozen=True)
-class SourceTable:
-    """An extract table the plan reads, with the columns it needs.
-
-    Attributes:
-        name: Canonical table name, e.g. ``diagnoses``; the plan reads it as ``src_<name>``.
-        required: Columns that must be present in the file.
-        optional: Columns read when present and taken as NULL otherwise.
-        one_of: Groups of columns of which at least one must be present.
-    """
-
-    name: str
-    required: tuple[str, ...]
-    optional: tuple[str, ...] = ()
-    one_of: tuple[tuple[str, ...], ...] = ()
-
-    @property
-    def relation(self) -> str:
-        """The relation name stages use to read this table."""
-        return f"src_{self.name}"
-
-    @property
-    def columns(self) -> tuple[str, ...]:
-        """Every column the plan may read, in a fixed order."""
-        grouped = tuple(c for group in self.one_of for c in group)
-        return self.required + grouped + self.optional
+__all__ = [
+    "POSITION_BASE",
+    "SOURCE_DIALECT",
+    "SOURCE_POSITION",
+    "SOURCE_PROBLEM",
+    "ColumnDoc",
+    "Plan",
+    "SourceTable",
+    "Stage",
+]
 
 
 @dataclass(frozen=True)

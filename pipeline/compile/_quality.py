@@ -25,6 +25,7 @@ from pipeline.compile._sources import (
     unreadable_patient_date,
 )
 from pipeline.compile._sql import query, value
+from pipeline.extract.schema import canonical_table
 
 
 @dataclass(frozen=True)
@@ -284,13 +285,6 @@ GROUP BY source_table, reason
 """
 
 
-_DATE_COLUMNS = {
-    "encounters": "encounter_date",
-    "diagnoses": "event_date",
-    "prescriptions": "start_date",
-}
-
-
 def _classified(ctx: CompileContext, table: SourceTable) -> exp.Query:
     check = ctx.study.quality.exact_duplicates == "check"
     grouped = grouped_rows(table, check_duplicates=check).subquery("g")
@@ -298,11 +292,10 @@ def _classified(ctx: CompileContext, table: SourceTable) -> exp.Query:
         return query(_PATIENTS, rows=grouped, unreadable_date=unreadable_patient_date())
     if table.name == "measurements":
         return query(_MEASUREMENTS)
+    # The date that places the row in time (extract/schema.py), judged as usable rows judge it.
+    row_date = exp.column(canonical_table(table.name).row_date)
     dated = exp.select(
-        exp.Star(),
-        exp.TryCast(this=exp.column(_DATE_COLUMNS[table.name]), to=exp.DataType.build("DATE")).as_(
-            "row_date"
-        ),
+        exp.Star(), exp.TryCast(this=row_date, to=exp.DataType.build("DATE")).as_("row_date")
     ).from_(grouped)
     if table.name == "encounters":
         return query(

@@ -13,33 +13,20 @@ from pipeline.compile._context import CompileContext
 from pipeline.compile._plan import SOURCE_POSITION, SOURCE_PROBLEM, SourceTable, Stage
 from pipeline.compile._sql import days_between, is_in, query, value
 from pipeline.config import Study
+from pipeline.extract.schema import canonical_table
 
-PATIENTS = SourceTable(
-    "patients",
-    required=("patient_id", "sex", "death_date"),
-    one_of=(("birth_date", "birth_year"),),
-    optional=("practice_id", "registration_date", "deregistration_date"),
-)
-ENCOUNTERS = SourceTable(
-    "encounters", required=("patient_id", "encounter_date"), optional=("encounter_type",)
-)
-DIAGNOSES = SourceTable(
-    "diagnoses", required=("patient_id", "event_date", "code_system", "code"), optional=("source",)
-)
-PRESCRIPTIONS = SourceTable(
-    "prescriptions", required=("patient_id", "start_date", "atc"), optional=("stop_date",)
-)
-MEASUREMENTS = SourceTable(
-    "measurements",
-    required=("patient_id", "obs_date", "measure", "unit"),
-    one_of=(("value", "value_text"),),
-)
+# The canonical tables as the plan reads them (pipeline/extract/schema.py defines them).
+PATIENTS = canonical_table("patients").source
+ENCOUNTERS = canonical_table("encounters").source
+DIAGNOSES = canonical_table("diagnoses").source
+PRESCRIPTIONS = canonical_table("prescriptions").source
+MEASUREMENTS = canonical_table("measurements").source
 
 
 # The patients table's dates. One written but unreadable sets the whole patient aside
 # (quality log: ``unparseable date``): a birth date read as 1 July of birth_year, or a death
 # read as no death, would give wrong ages and end reasons without a word.
-PATIENT_DATES = ("birth_date", "death_date", "registration_date", "deregistration_date")
+PATIENT_DATES = canonical_table("patients").dates
 
 
 def unreadable_patient_date() -> exp.Expression:

@@ -34,24 +34,7 @@ from pipeline.config._base import Model, Name
 from pipeline.config._document import did_you_mean, validate_document
 from pipeline.config._yaml import load_yaml
 from pipeline.errors import ConfigError
-
-# Canonical columns per table, with the ones that hold dates: the canonical schema itself.
-CANONICAL_COLUMNS: dict[str, tuple[str, ...]] = {
-    "patients": (
-        "patient_id", "birth_date", "birth_year", "sex", "death_date", "practice_id",
-        "registration_date", "deregistration_date",
-    ),
-    "encounters": ("patient_id", "encounter_date", "encounter_type"),
-    "diagnoses": ("patient_id", "event_date", "code_system", "code", "source"),
-    "prescriptions": ("patient_id", "start_date", "stop_date", "atc", "drug_text"),
-    "measurements": ("patient_id", "obs_date", "measure", "value_text", "value", "unit"),
-}  # fmt: skip
-DATE_COLUMNS = frozenset(
-    {
-        "birth_date", "death_date", "registration_date", "deregistration_date",
-        "encounter_date", "event_date", "start_date", "stop_date", "obs_date",
-    }
-)  # fmt: skip
+from pipeline.extract.schema import TABLES
 
 _FORMAT = re.compile(r"%[dmyYbBHMSj]")
 
@@ -159,12 +142,12 @@ def load_mapping(file: Path) -> LoadedMapping:
     mapping = validate_document(doc, SiteMapping)
     problems = []
     for table, spec in mapping.tables.items():
-        if table not in CANONICAL_COLUMNS:
+        if table not in TABLES:
             problems.append(
                 doc.problem(
                     ("tables", table),
                     "unknown-table",
-                    f"'{table}' is not a canonical table{did_you_mean(table, CANONICAL_COLUMNS)}",
+                    f"'{table}' is not a canonical table{did_you_mean(table, TABLES)}",
                 )
             )
             continue
@@ -175,7 +158,7 @@ def load_mapping(file: Path) -> LoadedMapping:
                 else ("file", "a mapping with a database: section reads tables; give table")
             )
             problems.append(doc.problem(("tables", table, where), "wrong-source", why))
-        known = CANONICAL_COLUMNS[table]
+        known = TABLES[table].column_names
         for group in ("columns", "values"):
             for column in getattr(spec, group):
                 if column not in known:

@@ -21,18 +21,11 @@ import duckdb
 import pyarrow as pa
 from sqlglot import exp
 
-from pipeline.compile import (
-    POSITION_BASE,
-    SOURCE_POSITION,
-    SOURCE_PROBLEM,
-    Plan,
-    SourceTable,
-    Stage,
-)
-from pipeline.engine._fhir import fhir_source
-from pipeline.engine._mapped import source_column
+from pipeline.compile import Plan, Stage
 from pipeline.errors import EngineError, ExtractError
-from pipeline.extract import ExtractTable
+from pipeline.extract import ExtractTable, fhir_source, source_column
+from pipeline.extract import table_function as _reader
+from pipeline.extract.schema import POSITION_BASE, SOURCE_POSITION, SOURCE_PROBLEM, SourceTable
 
 log = logging.getLogger(__name__)
 
@@ -88,30 +81,6 @@ _OPTIMIZERS = exp.select("name").from_("duckdb_optimizers()").sql("duckdb")
 _DISABLED_OPTIMIZERS = ("type_pushdown", "build_side_probe_side")
 
 
-def _csv_options(table: ExtractTable) -> dict[str, exp.Expression]:
-    # The header as discovery read it (stripped, lower-cased); a blank or repeated name, which
-    # no canonical or mapped column can be, gets a positional one so DuckDB accepts the list.
-    names = [
-        name if name and name not in table.columns[:i] else f"column{i + 1}"
-        for i, name in enumerate(table.columns)
-    ]
-    text = exp.Literal.string
-    columns = exp.Struct(
-        expressions=[exp.PropertyEQ(this=text(n), expression=text("VARCHAR")) for n in names]
-    )
-    return {
-        "header": exp.true(),
-        "auto_detect": exp.false(),
-        "columns": columns,
-        "delim": text(","),
-        "quote": text('"'),
-        "escape": text('"'),
-        "encoding": text("utf-8"),
-        "strict_mode": exp.true(),
-        "null_padding": exp.false(),
-    }
-
-
 def _rows(table: ExtractTable) -> exp.Expression:
     """The rows of one extract table, each CSV row with its position (see SOURCE_POSITION).
 
@@ -138,36 +107,6 @@ def _rows(table: ExtractTable) -> exp.Expression:
     for part in parts[1:]:
         union = union.union(part, distinct=False)
     return union.subquery("r")
-
-
-def _reader(table: ExtractTable, files: tuple[Path, ...] | None = None) -> exp.Expression:
-    """The table function reading one extract table's files, every CSV value as text.
-
-    CSV files are read as RFC 4180 says and nothing is guessed: comma-separated, UTF-8 (a
-    byte-order mark is skipped), fields quoted with ``"`` (which may hold commas and line
-    breaks; ``""`` is a quote), the first line a header, skipped, whose names discovery read
-    into ``table.columns`` (so these must be the file's header, in file order). With
-    auto-detection off DuckDB never guesses a comment character, rows to skip or types, so no
-    line can disappear unnoticed, and its errors give the right line.
-
-    A ragged row, with too few or too many fields, is refused: the read fails and the engine
-    reports an ``ExtractError`` naming the file, the line and the first missing or extra
-    column (see :func:`_read_failure`); so do text that is not UTF-8, a quote never closed and
-    a line longer than DuckDB's maximum line size. Padding short rows (``null_padding``) was
-    rejected: DuckDB pads only in its single-threaded reader once fields hold line breaks, and
-    that reader silently drops the rest of a file after a quote that is never closed.
-
-    Delimiters other than the comma, other encodings, empty files and files that are not what
-    their name says are refused earlier, when discovery reads the header.
-    """
-    paths = exp.Array(expressions=[exp.Literal.string(str(f)) for f in files or table.files])
-    if table.file_format == "parquet":
-        return exp.func("read_parquet", paths)
-    return exp.func(
-        "read_csv",
-        paths,
-        *(exp.PropertyEQ(this=exp.var(k), expression=v) for k, v in _csv_options(table).items()),
-    )
 
 
 # DuckDB's CSV errors: "CSV Error on Line: N", "Original Line: ...", the reason, the options.

@@ -14,18 +14,12 @@ from typing import Any
 import duckdb
 from sqlglot import exp
 
-from pipeline.compile import POSITION_BASE, SourceTable, unreadable_patient_date
+from pipeline.compile import unreadable_patient_date
 from pipeline.engine._duckdb import DuckDBEngine, _read_failure
 from pipeline.errors import EngineError
 from pipeline.extract import ExtractTable
+from pipeline.extract.schema import POSITION_BASE, SourceTable, canonical_table
 
-DATE_COLUMNS = {
-    "patients": "birth_date",
-    "encounters": "encounter_date",
-    "diagnoses": "event_date",
-    "prescriptions": "start_date",
-    "measurements": "obs_date",
-}
 TOP = 10
 
 
@@ -50,10 +44,12 @@ def _table_profile(
     con: duckdb.DuckDBPyConnection, name: str, table: ExtractTable
 ) -> dict[str, Any]:
     relation = f"src_{name}"
-    day = _date(DATE_COLUMNS[name])
+    # The date that places a row in time, as the schema says (a patient's birth).
+    row_date = canonical_table(name).row_date
+    day = _date(row_date)
     given = exp.func(
         "NULLIF",
-        exp.Trim(this=exp.cast(exp.column(DATE_COLUMNS[name]), "VARCHAR")),
+        exp.Trim(this=exp.cast(exp.column(row_date), "VARCHAR")),
         exp.Literal.string(""),
     )
     problem = exp.column("source_problem")

@@ -16,16 +16,8 @@ from typing import TYPE_CHECKING, Any
 
 from sqlglot import exp
 
-from pipeline.compile import (
-    POSITION_BASE,
-    SOURCE_POSITION,
-    SOURCE_PROBLEM,
-    Plan,
-    SourceTable,
-    Stage,
-)
+from pipeline.compile import Plan, Stage
 from pipeline.engine._duckdb import _INTEGER_ID, RunResult, StageCallback, StageReport
-from pipeline.engine._mapped import source_column
 from pipeline.engine._spark_fetch import to_arrow
 from pipeline.engine._spark_session import (
     DEFAULT_CONNECT_TIMEOUT,
@@ -38,7 +30,8 @@ from pipeline.engine._spark_session import (
 )
 from pipeline.engine._spark_sql import spark_plan, spark_query, try_cast
 from pipeline.errors import EngineError, ExtractError
-from pipeline.extract import ExtractTable
+from pipeline.extract import ExtractTable, source_column
+from pipeline.extract.schema import POSITION_BASE, SOURCE_POSITION, SOURCE_PROBLEM, SourceTable
 
 if TYPE_CHECKING:  # pragma: no cover
     from pyspark.sql import DataFrame, SparkSession

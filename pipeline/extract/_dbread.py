@@ -28,7 +28,6 @@ import pyarrow.parquet as pq
 import sqlglot
 from sqlglot import exp
 
-from pipeline.compile import SourceTable
 from pipeline.config._mapping import load_mapping
 from pipeline.errors import ExtractError
 from pipeline.extract._dbsource import (
@@ -43,9 +42,10 @@ from pipeline.extract._dbsource import (
     read_expression,
     scrub,
 )
-from pipeline.extract._discover import ExtractPath, ExtractTable, discover_folder
+from pipeline.extract._discover import discover_extract, discover_folder
 from pipeline.extract._hadoop import HadoopFiles, is_hadoop_uri, safe_uri
-from pipeline.extract._mapped import discover_extract
+from pipeline.extract._table import ExtractPath, ExtractTable
+from pipeline.extract.schema import SourceTable
 
 # Fixed text forms, so a row's text (and so the checksum) does not depend on client settings.
 _SESSION = (
@@ -190,7 +190,9 @@ def read_database(
     except Exception as err:
         if type(err).__module__.startswith("adbc_driver"):
             raise ExtractError(
-                f"{source.label}: reading {current} failed: {scrub(str(err), secret)}"
+                f"reading {current} failed: {scrub(str(err), secret)}",
+                code="read-failed",
+                where=source.label,
             ) from None
         raise
     finally:
@@ -224,9 +226,11 @@ def open_extract(
         if hadoop is None:
             scheme = extract.split(":", 1)[0]
             raise ExtractError(
-                f"{safe_uri(extract)}: an extract on {scheme}:// is listed and read through "
-                "Spark's Hadoop file systems, so it needs --engine spark (a build or verify); "
-                "other commands read a local folder"
+                f"an extract on {scheme}:// is listed and read through Spark's Hadoop file "
+                "systems, so it needs --engine spark (a build or verify); other commands read "
+                "a local folder",
+                code="needs-spark",
+                where=safe_uri(extract),
             )
         yield OpenedExtract(discover_folder(hadoop.folder(extract), sources))
         return

@@ -24,10 +24,10 @@ from urllib.parse import parse_qsl, quote, unquote, urlsplit
 import sqlglot
 from sqlglot import exp
 
-from pipeline.compile import SourceTable
-from pipeline.config._mapping import DATE_COLUMNS, Constant, LoadedMapping, TableMapping
+from pipeline.config._mapping import Constant, LoadedMapping, TableMapping
 from pipeline.config._yaml import load_yaml
 from pipeline.errors import ConfigError, ExtractError, Problem
+from pipeline.extract.schema import DATE_COLUMNS, SourceTable
 
 _URI = re.compile(r"^postgres(?:ql)?://", re.IGNORECASE)
 _URI_OPTIONS = ("schema", "connect_timeout")
@@ -107,8 +107,10 @@ class DatabaseSource:
         value = os.environ.get(self.password_env)
         if value is None:
             raise ExtractError(
-                f"{self.label}: the environment variable {self.password_env} (password_env) is "
-                "not set; set it to the database password before running"
+                f"the environment variable {self.password_env} (password_env) is not set; set "
+                "it to the database password before running",
+                code="password-not-set",
+                where=self.label,
             )
         return value
 
@@ -124,7 +126,8 @@ def parse_uri(text: str) -> DatabaseSource:
     if parts.password is not None:
         raise ExtractError(
             "the connection URI holds a password; remove it and set PGPASSWORD or use a "
-            "password file (PGPASSFILE or ~/.pgpass) instead, so it never reaches logs or outputs"
+            "password file (PGPASSFILE or ~/.pgpass) instead, so it never reaches logs or outputs",
+            code="password-in-uri",
         )
     options = dict(parse_qsl(parts.query, keep_blank_values=True))
     unknown = sorted(set(options) - set(_URI_OPTIONS))
@@ -133,13 +136,16 @@ def parse_uri(text: str) -> DatabaseSource:
         what = f"unknown option(s) {', '.join(unknown)}" if unknown else "it lacks a part"
         raise ExtractError(
             f"the connection URI cannot be used ({what}); write "
-            "postgresql://USER@HOST:PORT/DATABASE?schema=SCHEMA&connect_timeout=SECONDS"
+            "postgresql://USER@HOST:PORT/DATABASE?schema=SCHEMA&connect_timeout=SECONDS",
+            code="bad-uri",
         )
     try:
         port = parts.port or 5432
         timeout = int(options.get("connect_timeout", DEFAULT_TIMEOUT))
     except ValueError as err:
-        raise ExtractError(f"the connection URI has a bad port or connect_timeout: {err}") from err
+        raise ExtractError(
+            f"the connection URI has a bad port or connect_timeout: {err}", code="bad-uri"
+        ) from err
     return DatabaseSource(
         parts.hostname,
         port,
@@ -187,8 +193,10 @@ def connect(source: DatabaseSource) -> Any:
         import adbc_driver_postgresql.dbapi as driver
     except ImportError as err:
         raise ExtractError(
-            f"{source.label}: reading a database needs its driver: "
-            "pip install 'ascertain[postgres]' (adbc-driver-postgresql)"
+            "reading a database needs its driver: "
+            "pip install 'ascertain[postgres]' (adbc-driver-postgresql)",
+            code="driver-missing",
+            where=source.label,
         ) from err
     secret = source.password()
     login = quote(source.user, safe="") + (f":{quote(secret, safe='')}" if secret else "")
@@ -201,9 +209,11 @@ def connect(source: DatabaseSource) -> Any:
         return driver.connect(uri, autocommit=True)
     except driver.Error as err:
         raise ExtractError(
-            f"{source.label}: cannot connect to {source.host}:{source.port} as {source.user} "
+            f"cannot connect to {source.host}:{source.port} as {source.user} "
             f"(database {source.database}, waited at most {source.timeout} s): "
-            f"{scrub(str(err), secret)}"
+            f"{scrub(str(err), secret)}",
+            code="connection-failed",
+            where=source.label,
         ) from None
 
 
@@ -277,19 +287,24 @@ class _Problems:
         self.source = source
         self.doc = load_yaml(source.mapping.file) if source.mapping else None
         self.located: list[Problem] = []
-        self.plain: list[str] = []
+        self.plain: list[tuple[str, str]] = []
 
     def add(self, path: tuple[str, ...], code: str, message: str) -> None:
         if self.doc is not None:
             self.located.append(self.doc.problem(path, code, message, at_value=True))
         else:
-            self.plain.append(message)
+            self.plain.append((code, message))
 
     def raise_any(self) -> None:
         if self.located:
             raise ConfigError(self.located)
         if self.plain:
-            raise ExtractError(f"{self.source.label}: " + "; ".join(self.plain))
+            codes = sorted({code for code, _ in self.plain})
+            raise ExtractError(
+                "; ".join(message for _, message in self.plain),
+                code=codes[0] if len(codes) == 1 else "database-mismatch",
+                where=self.source.label,
+            )
 
 
 def _type_problems(found: DatabaseTable, problems: _Problems, name: str) -> None:
@@ -320,12 +335,15 @@ def discover_database(
         ConfigError: Through a mapping file, located at the mapping's line.
         ExtractError: For a plain URI, naming the table or column.
     """
-    from pipeline.extract._discover import _check_columns
+    # Imported here: the CSV reader's module imports this one's neighbours (through _hadoop).
+    from pipeline.extract.readers.csv_parquet import check_columns
 
     problems = _Problems(source)
     if fetch(cursor, pg_query(_SCHEMA, schema=source.schema))[0][0] == 0:
         raise ExtractError(
-            f"{source.label}: schema {source.schema} is not in database {source.database}"
+            f"schema {source.schema} is not in database {source.database}",
+            code="missing-schema",
+            where=source.label,
         )
     found: dict[str, DatabaseTable] = {}
     for table in tables:
@@ -363,11 +381,9 @@ def discover_database(
         wanted = _wanted(table, spec, names, f"{source.schema}.{relation}", problems)
         here = DatabaseTable(source.schema, relation, columns, tuple(wanted.items()))
         try:
-            _check_columns(table, Path(here.qualified), tuple(spec.columns) if spec else names)
+            check_columns(table, Path(here.qualified), tuple(spec.columns) if spec else names)
         except ExtractError as err:
-            problems.add(
-                ("tables", table.name, "columns"), "missing-column", str(err).split(": ", 1)[1]
-            )
+            problems.add(("tables", table.name, "columns"), "missing-column", err.message)
             continue
         _type_problems(here, problems, table.name)
         found[table.name] = here

@@ -113,13 +113,17 @@ class HadoopFiles:
             if missing:
                 said = f"class {missing.group(1)} not found" if missing.group(1) else missing[0]
                 raise ExtractError(
-                    f"{safe_uri(uri)}: Spark has no Hadoop file system for the scheme "
+                    "Spark has no Hadoop file system for the scheme "
                     f"'{scheme}' ({said}): put its connector on Spark's class path (s3a: "
                     "hadoop-aws, e.g. --spark-conf spark.jars.packages=org.apache.hadoop:"
                     "hadoop-aws:VERSION) or name one with --spark-conf "
-                    f"spark.hadoop.fs.{scheme}.impl=CLASS"
+                    f"spark.hadoop.fs.{scheme}.impl=CLASS",
+                    code="unknown-scheme",
+                    where=safe_uri(uri),
                 ) from None
-            raise ExtractError(f"{safe_uri(uri)}: cannot be reached: {cause}") from None
+            raise ExtractError(
+                f"cannot be reached: {cause}", code="unreachable", where=safe_uri(uri)
+            ) from None
         return root
 
 

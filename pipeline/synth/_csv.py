@@ -13,13 +13,16 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from pipeline.extract.schema import CANONICAL_TABLES
+
 EVENT_DATE_COLUMNS: dict[str, str] = {
-    "diagnoses": "event_date",
-    "encounters": "encounter_date",
-    "measurements": "obs_date",
-    "prescriptions": "start_date",
+    t.name: t.row_date
+    for t in sorted(CANONICAL_TABLES, key=lambda t: t.name)
+    if t.name != "patients"
 }
-"""The date column of each event table that may be spoiled in CSV output."""
+"""The date column of each event table that may be spoiled in CSV output, by table name in
+alphabetical order (the order the random draws are made in, so the same seed spoils the same
+rows)."""
 
 
 def _two_digits(values: pa.Array) -> pa.Array:

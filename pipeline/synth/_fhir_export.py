@@ -4,7 +4,7 @@
 a site mapping file) into ``Patient.ndjson``, ``Encounter.ndjson``, ``Condition.ndjson``,
 ``MedicationRequest.ndjson`` and ``Observation.ndjson`` (with a seed also
 ``MedicationStatement.ndjson`` and ``Medication.ndjson``), shaped so that
-:mod:`pipeline.engine._fhir` reads back the same canonical rows, and so the same cohort. It
+:mod:`pipeline.extract.readers.fhir` reads back the same canonical rows, and so the same cohort. It
 exists to test that reader at scale and to give the demo study a FHIR copy of its extract.
 
 The row writers live in :mod:`pipeline.synth._fhir_resources`. Without a seed each row is
@@ -86,11 +86,14 @@ from typing import TextIO
 import duckdb
 from sqlglot import exp
 
-from pipeline.compile._sources import DIAGNOSES, ENCOUNTERS, MEASUREMENTS, PATIENTS, PRESCRIPTIONS
-from pipeline.engine._duckdb import _reader
-from pipeline.engine._fhir import fhir_source
-from pipeline.engine._mapped import source_column
-from pipeline.extract import ExtractTable, discover_extract
+from pipeline.extract import (
+    ExtractTable,
+    discover_extract,
+    fhir_source,
+    source_column,
+    table_function,
+)
+from pipeline.extract.schema import all_sources
 from pipeline.synth._fhir_resources import WRITERS, Resource, Row
 from pipeline.synth._fhir_server import ServerLook
 
@@ -181,7 +184,8 @@ def _source_sql(table: ExtractTable, columns: tuple[str, ...]) -> str:
     if table.file_format == "fhir":
         rows = fhir_source(table).subquery("src")
     else:
-        rows = exp.Table(this=_reader(table), alias=exp.TableAlias(this=exp.to_identifier("src")))
+        alias = exp.TableAlias(this=exp.to_identifier("src"))
+        rows = exp.Table(this=table_function(table), alias=alias)
     select = exp.select(
         *(
             source_column(table, c).as_(c)
@@ -297,8 +301,7 @@ def write_fhir_export(canonical_dir: Path, out_dir: Path, *, seed: int | None = 
     Raises:
         ExtractError: A table is missing or unreadable.
     """
-    sources = (PATIENTS, ENCOUNTERS, DIAGNOSES, PRESCRIPTIONS, MEASUREMENTS)
-    tables = discover_extract(Path(canonical_dir), sources)
+    tables = discover_extract(Path(canonical_dir), all_sources())
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
     look = None if seed is None else ServerLook(seed)

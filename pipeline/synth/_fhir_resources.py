@@ -1,8 +1,8 @@
 """The FHIR resource written for each canonical row (see :mod:`pipeline.synth._fhir_export`).
 
 Each writer turns one row of a canonical table, as :mod:`pipeline.synth._fhir_export` selects
-it, into one resource shaped so that :mod:`pipeline.engine._fhir` reads back the same row. Kept
-apart from the export's reading and writing so that each module stays small.
+it, into one resource shaped so that :mod:`pipeline.extract.readers.fhir` reads back the same
+row. Kept apart from the export's reading and writing so that each module stays small.
 """
 
 from __future__ import annotations
@@ -13,8 +13,8 @@ import re
 from collections.abc import Callable
 from typing import Any
 
-from pipeline.compile._measurements import READING_PATTERN
-from pipeline.engine._fhir import ATC_SYSTEM, LOINC_MEASURES, LOINC_SYSTEM, UCUM_SYSTEM
+from pipeline.compile import READING_PATTERN
+from pipeline.extract.readers.fhir import ATC_SYSTEM, LOINC_MEASURES, LOINC_SYSTEM, UCUM_SYSTEM
 
 Resource = dict[str, Any]
 Row = dict[str, Any]

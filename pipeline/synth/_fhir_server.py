@@ -48,8 +48,12 @@ from dataclasses import dataclass, field
 from itertools import groupby
 
 from pipeline.config import shipped_measures
-from pipeline.engine._fhir import LOINC_SYSTEM, STATUS_SET_ASIDE, UCUM_SYSTEM
-from pipeline.engine._fhir_codes import SNOMED_SYSTEM
+from pipeline.extract.readers.fhir import (
+    LOINC_SYSTEM,
+    SNOMED_SYSTEM,
+    STATUS_SET_ASIDE,
+    UCUM_SYSTEM,
+)
 from pipeline.measures._registry import UnitConversion
 from pipeline.synth._fhir_resources import ICD9_SYSTEM, ICD10_SYSTEM, WRITERS, Resource, Row
 

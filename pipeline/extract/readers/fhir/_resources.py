@@ -4,10 +4,10 @@ Each builder returns a SELECT over the export's files with the canonical column 
 text, as if the table had come from a CSV file, plus ``source_position`` (file and line) and
 ``source_problem`` (why the reader itself sets the row aside, or NULL); the stages that follow
 parse and judge the values exactly as they do for CSV, so every row a builder yields is used
-or counted in the quality log. Lines are read by :mod:`pipeline.engine._fhir_read`: a line that
-is not a JSON object is a ``malformed line``, a resource of a type other than its file's (a
-Bundle, a Practitioner in ``Patient.ndjson``) is ``other resource type``; Bundles are not
-unpacked.
+or counted in the quality log. Lines are read by :mod:`pipeline.extract.readers.fhir._read`:
+a line that is not a JSON object is a ``malformed line``, a resource of a type other than its
+file's (a Bundle, a Practitioner in ``Patient.ndjson``) is ``other resource type``; Bundles
+are not unpacked.
 
 Resources map to rows as follows (the Bulk Data file name says which type a file holds):
 
@@ -64,34 +64,21 @@ from pathlib import Path
 
 from sqlglot import exp
 
-from pipeline.engine._fhir_codes import (
+from pipeline.extract._table import ExtractTable
+from pipeline.extract.readers.fhir._codes import (
     ATC_SYSTEM,
     ICD_SYSTEMS,
     LOINC_MEASURES,
     LOINC_SYSTEM,
-    READER_REASONS,
     SNOMED_SMOKING,
     SNOMED_SYSTEM,
     STATUS_SET_ASIDE,
     UCUM_SYSTEM,
 )
-from pipeline.engine._fhir_read import READ_COLUMNS, fill, lookup, resources, strings
-from pipeline.extract import ExtractTable
+from pipeline.extract.readers.fhir._read import READ_COLUMNS, fill, lookup, resources, strings
 
 log = logging.getLogger(__name__)
 
-__all__ = [
-    "ATC_SYSTEM",
-    "BUILDERS",
-    "ICD_SYSTEMS",
-    "LOINC_MEASURES",
-    "LOINC_SYSTEM",
-    "READER_REASONS",
-    "SNOMED_SMOKING",
-    "STATUS_SET_ASIDE",
-    "UCUM_SYSTEM",
-    "fhir_source",
-]
 
 Files = Mapping[str, Sequence[tuple[int, Path]]]
 

@@ -1,6 +1,7 @@
 """The codes, systems and statuses the FHIR reader knows (constants only).
 
-Kept apart from the builders in :mod:`pipeline.engine._fhir` so each module stays small.
+Kept apart from the builders in :mod:`pipeline.extract.readers.fhir._resources` so each
+module stays small.
 """
 
 from __future__ import annotations

@@ -20,7 +20,7 @@ from pathlib import Path
 import sqlglot
 from sqlglot import exp
 
-from pipeline.compile import POSITION_BASE
+from pipeline.extract.schema import POSITION_BASE
 
 # The fields read from each resource type, and the DuckDB type each is read as.
 READ_COLUMNS: dict[str, dict[str, str]] = {
