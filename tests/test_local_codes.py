@@ -187,3 +187,15 @@ def test_a_missing_table_is_named_at_the_study_line(tmp_path: Path) -> None:
     assert code == 2, output
     assert "study.yaml:" in output
     assert "[unreadable]" in output
+
+
+def test_the_code_audit_shows_the_local_code_and_its_atc_code(tmp_path: Path) -> None:
+    study = _study(tmp_path)
+    audit = tmp_path / "audit"
+    result = CliRunner().invoke(app, ["codes", str(study), "--out", str(audit)])
+    assert result.exit_code == 0, result.output
+    with (audit / "codes_matched.csv").open(encoding="utf-8") as handle:
+        rows = list(csv.reader(handle))
+    assert ["on_insulin", "insulin", "ATC", "(inline)", "A10A", "RX-77", "A10AB01"] in [
+        r[:7] for r in rows
+    ]
