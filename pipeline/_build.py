@@ -216,7 +216,11 @@ def build_study(
         },
         study_file=loaded.file,
         # the definition files and every code list file they read (CSV, header, hierarchy)
-        definition_files=[*loaded.catalog.files.values(), *loaded.catalog.list_files()],
+        definition_files=[
+            *loaded.catalog.files.values(),
+            *loaded.catalog.list_files(),
+            *loaded.local_codes.files,
+        ],
         measure_files=loaded.measures.files.values(),
         library=study.library,
         extract=extract,

@@ -39,7 +39,7 @@ def compile_study(loaded: LoadedStudy) -> Plan:
     Pure: no connection, file, clock or environment is read, so the same study always gives
     the same plan.
     """
-    ctx = CompileContext(loaded.study, loaded.catalog, loaded.measures)
+    ctx = CompileContext(loaded.study, loaded.catalog, loaded.measures, loaded.local_codes)
     _check_evidence_numbers(ctx)
     stages = tuple(stage for compile_pass in PASSES for stage in compile_pass(ctx))
     persontime = ctx.study.persontime is not None

@@ -21,6 +21,7 @@ from pipeline.config import (
     ListUse,
     Study,
 )
+from pipeline.config._localcodes import LocalCodes
 from pipeline.config._measure import shipped_measures
 from pipeline.measures import DERIVED_FROM, MeasureRegistry
 
@@ -74,12 +75,14 @@ def charlson_key(category: str) -> str:
 class CompileContext:
     """A study and its definitions, with the facts the passes share.
 
-    ``registry`` holds the measures the study may read (shipped, and its own files).
+    ``registry`` holds the measures the study may read (shipped, and its own files);
+    ``local_codes`` the extract's own product and lab test codes the study maps.
     """
 
     study: Study
     catalog: Catalog
     registry: MeasureRegistry = field(default_factory=shipped_measures)
+    local_codes: LocalCodes = field(default_factory=LocalCodes)
 
     @cached_property
     def outcomes(self) -> tuple[Condition, ...]:

@@ -16,6 +16,7 @@ from pipeline.compile._plan import Stage
 from pipeline.compile._sources import MEASUREMENTS, grouped_rows
 from pipeline.compile._sql import (
     age_in_years,
+    expression,
     is_in,
     near_index,
     query,
@@ -39,7 +40,7 @@ WITH read AS (
   SELECT
     patient_id,
     TRY_CAST(obs_date AS DATE) AS obs_date,
-    LOWER(TRIM(CAST(measure AS VARCHAR))) AS measure,
+    :measure_name AS measure,
     TRY_CAST(value AS DOUBLE) AS value_number,
     CASE
       WHEN TRY_CAST(value AS DOUBLE) IS NOT NULL THEN FALSE
@@ -122,6 +123,13 @@ FROM parsed AS r
 LEFT JOIN patient_base AS p ON p.patient_id = r.patient_id
 LEFT JOIN :known ON k.measure = r.measure
 LEFT JOIN :units ON u.measure = r.measure AND u.unit = r.unit
+"""
+
+# Local lab test codes (``local_codes: {lab_tests: ...}``), looked up on the distinct rows.
+_MAPPED_LAB_TESTS = """
+SELECT g.*, t.measure AS mapped_measure
+FROM :rows
+LEFT JOIN :lab_tests ON TRIM(CAST(g.measure AS VARCHAR)) = t.local_code
 """
 
 _COMPARISONS = {
@@ -250,15 +258,26 @@ def _judged_rows(ctx: CompileContext) -> exp.Query:
         )
     )
     check = ctx.study.quality.exact_duplicates == "check"
+    rows = grouped_rows(MEASUREMENTS, check_duplicates=check)
+    name = expression("LOWER(TRIM(CAST(measure AS VARCHAR)))")
+    if ctx.local_codes.lab_tests:
+        # A local lab code of the study's table is judged as the measure it names.
+        rows = query(
+            _MAPPED_LAB_TESTS,
+            rows=rows.subquery("g"),
+            lab_tests=values_table("t", ["local_code", "measure"], list(ctx.local_codes.lab_tests)),
+        )
+        name = exp.func("COALESCE", exp.column("mapped_measure"), name)
     return query(
         _MEASUREMENT_ROWS,
+        measure_name=name,
         pattern=READING_PATTERN,
         decimal_comma=DECIMAL_COMMA_PATTERN,
         end_of_data=ctx.study.end_of_data,
         known=known,
         units=units,
         known_category=known_category,
-        distinct_rows=grouped_rows(MEASUREMENTS, check_duplicates=check).subquery("d"),
+        distinct_rows=rows.subquery("d"),
     )
 
 

@@ -11,7 +11,7 @@ from sqlglot import exp
 from pipeline.codes import EXTRACT_PATTERNS, normalised_code_sql, read2_code_sql
 from pipeline.compile._context import CompileContext
 from pipeline.compile._plan import SOURCE_POSITION, SOURCE_PROBLEM, SourceTable, Stage
-from pipeline.compile._sql import days_between, is_in, query, value
+from pipeline.compile._sql import days_between, is_in, query, value, values_table
 from pipeline.config import Study
 from pipeline.extract.schema import canonical_table
 
@@ -180,6 +180,14 @@ FROM (
 """
 
 
+# Local product codes (``local_codes: {products: ...}``) are looked up once per distinct code.
+_MAPPED_PRODUCTS = """
+SELECT f.*, m.atc AS mapped_code
+FROM :found
+LEFT JOIN :products ON f.source_table = 'prescriptions' AND TRIM(f.raw_code) = m.local_code
+"""
+
+
 def raw_code_columns(table: str) -> dict[str, exp.Expression]:
     """A coded table's raw system, code and source as text, the keys of ``extract_codes``."""
     text = {
@@ -258,10 +266,20 @@ def _extract_codes(ctx: CompileContext) -> exp.Query:
             exp.select(value(table).as_("source_table"), *columns).from_(relation).distinct()
         )
     union = found[0] if len(found) == 1 else found[0].union(found[1], distinct=False)
+    code = _normalised_code(ctx.list_systems)
+    products = ctx.local_codes.products
+    if products and "prescriptions" in coded_tables(ctx):
+        # A local product code of the study's table is judged as the ATC code it stands for.
+        union = query(
+            _MAPPED_PRODUCTS,
+            found=union.subquery("f"),
+            products=values_table("m", ["local_code", "atc"], list(products)),
+        )
+        code = exp.func("COALESCE", exp.column("mapped_code"), code)
     return query(
         _EXTRACT_CODES,
         found=union.subquery("found"),
-        code=_normalised_code(ctx.list_systems),
+        code=code,
         problem=_code_problem(ctx.list_systems),
     )
 

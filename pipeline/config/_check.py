@@ -7,12 +7,14 @@ inclusions an exclusion cancels.
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from dataclasses import dataclass, field
 from pathlib import Path
 
 from pipeline.codes import SYSTEM_NAMES, expand_codes
-from pipeline.config._codelist import HEADER_SUFFIX, load_code_list
+from pipeline.config._codelist import HEADER_SUFFIX, CodeList, load_code_list
 from pipeline.config._condition import Condition, Evidence, Rule
+from pipeline.config._editions import edition_problems
 from pipeline.config._listuse import EvidenceLists, ListUse
 from pipeline.config._loader import load_catalog, load_condition_lists, load_study
 from pipeline.config._measure import load_measures, shipped_measures
@@ -154,14 +156,16 @@ def check_paths(paths: list[Path]) -> CheckReport:
     measures = _measures([f for f in files if kinds[f] == "measure"], report)
     folders: set[Path] = set()
     checked = {file.resolve() for file in files}
+    code_lists: list[CodeList] = []  # every list read, for the edition check
     for file in files:
         try:
             if file.name.endswith(HEADER_SUFFIX):
-                load_code_list(file)
+                code_lists.append(load_code_list(file))
                 continue
             if kinds[file] == "study":
                 loaded = load_study(file)
                 report.studies[file] = loaded.study
+                code_lists += _lists_of(loaded.catalog.code_lists.values())
                 report.warnings += study_warnings(file, loaded.study, loaded.measures)
                 for name, condition_file in loaded.catalog.files.items():
                     if condition_file.resolve() in checked:
@@ -179,6 +183,7 @@ def check_paths(paths: list[Path]) -> CheckReport:
             continue
         report.conditions[file] = condition
         report.lists[file] = lists
+        code_lists += _lists_of([lists])
         report.problems.extend(_lint(file, condition))
         report.warnings += condition_warnings(file, condition, measures)
         folders.add(file.parent)
@@ -188,9 +193,15 @@ def check_paths(paths: list[Path]) -> CheckReport:
         except ConfigError as err:
             known = set(report.problems)
             report.problems.extend(p for p in err.problems if p not in known)
+    report.problems += edition_problems(code_lists)
     report.problems = sorted(set(report.problems))
     report.warnings = sorted(set(report.warnings))
     return report
+
+
+def _lists_of(evidence_lists: Iterable[EvidenceLists]) -> list[CodeList]:
+    """The lists named by some definitions' evidence."""
+    return [use.code_list for lists in evidence_lists for uses in lists.values() for use in uses]
 
 
 def _list_text(use: ListUse) -> str:

@@ -12,6 +12,7 @@ from pipeline.config._condition import Condition, DiagnosisEvidence, Evidence, R
 from pipeline.config._document import did_you_mean, validate_document
 from pipeline.config._library import library_conditions
 from pipeline.config._listuse import EvidenceLists, ListUse, read_lists
+from pipeline.config._localcodes import LocalCodes, load_local_codes
 from pipeline.config._measure import (
     load_measures,
     measure_files,
@@ -230,12 +231,14 @@ class LoadedStudy:
             against the study file's folder.
         catalog: The condition definitions the study may use.
         measures: The measures it may read: shipped, and its own (``measures:``).
+        local_codes: The extract's own product and lab test codes (``local_codes:``).
     """
 
     file: Path
     study: Study
     catalog: Catalog
     measures: MeasureRegistry
+    local_codes: LocalCodes = field(default_factory=LocalCodes)
 
 
 def _resolve(base: Path, path: Path) -> Path:
@@ -430,7 +433,8 @@ def load_study(file: Path) -> LoadedStudy:
     catalog = _apply_changes(doc, study, catalog)
     if problems:
         raise ConfigError(problems)
-    return LoadedStudy(file, study, catalog, measures)
+    local_codes = load_local_codes(doc, study.local_codes, measures)
+    return LoadedStudy(file, study, catalog, measures, local_codes)
 
 
 def _study_measures(doc: LocatedDocument, base: Path) -> MeasureRegistry:

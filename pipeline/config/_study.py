@@ -18,6 +18,7 @@ from pydantic import Field, ValidationInfo, field_validator, model_validator
 
 from pipeline.config._base import ONE_OR_MORE, Model, Name, NonNegativeInt, PositiveInt
 from pipeline.config._condition import Evidence
+from pipeline.config._localcodes import LocalCodeTables
 from pipeline.config._measure import measures_in
 from pipeline.config._persontime import PersonTime
 from pipeline.config._settings import EngineSettings, Output, QualitySettings
@@ -385,6 +386,8 @@ class Study(Model):
     definition's rule windows for this study only, by condition and rule name, without
     copying the definition file. ``measures`` names the study's own measure files (folders of
     ``*.yaml``, or files, relative to the study file), read beside the shipped measures.
+    ``local_codes`` names tables of the extract's own product and lab test codes
+    (:mod:`pipeline.config._localcodes`).
     """
 
     study: Name
@@ -393,6 +396,7 @@ class Study(Model):
     definitions: Path = Path("../conditions")
     library: bool = False
     measures: Annotated[tuple[Path, ...], ONE_OR_MORE] = ()
+    local_codes: LocalCodeTables | None = None
     definition_changes: dict[Name, dict[str, RuleChange]] = Field(default_factory=dict)
     end_of_data: dt.date
     index: IndexRule

@@ -178,14 +178,16 @@ def _locations(
 _NOT_STUDY_KEYS: dict[str, Any] = {
     "definitions": True,
     "measures": True,
+    "local_codes": True,
     "extract": True,
     "engine": True,
     "spark": True,
     "output": {"folder"},
 }
 """Study keys left out of the manifest: paths of this machine (the definitions, the extract, the
-output folder; the manifest names its files otherwise) and how an engine runs (threads, memory,
-Spark settings, which may name machine paths or secrets), which does not change a cohort."""
+output folder, the local code tables; the manifest names its files otherwise) and how an engine
+runs (threads, memory, Spark settings, which may name machine paths or secrets), which does not
+change a cohort."""
 
 
 def _flatten(value: Any, prefix: str, into: dict[str, Any]) -> None:
@@ -235,7 +237,8 @@ def make_manifest(
         engine: The engine's name, version and thread count.
         study_file: The study file, resolved.
         definition_files: Every definition file the study's catalog loaded, and every code
-            list file (CSV, header, hierarchy, edition table) those definitions read.
+            list file (CSV, header, hierarchy, edition table) those definitions read, and the
+            study's local code tables (``local_codes:``).
         measure_files: Every measure file the build read (shipped and the study's own).
         library: The study reads the shipped library (see :func:`definition_path`).
         extract: The extract folder, site mapping file or connection URI the build read.
