@@ -22,13 +22,13 @@ import polars as pl
 import pytest
 from sqlglot import exp
 
-from pipeline._build import BuildOptions, build_study, plan_study
 from pipeline.compile import Plan, Stage
 from pipeline.engine import DuckDBEngine
 from pipeline.engine._fhir import BUILDERS, fhir_source
 from pipeline.errors import ExtractError
 from pipeline.extract import discover_extract
 from pipeline.extract._discover import FHIR_COLUMNS
+from pipeline.workflows.build import BuildOptions, build_study, plan_study
 
 from .conftest import DEMO_STUDY, ROOT
 
