@@ -45,9 +45,9 @@ import yaml
 from _child import ascertain, markdown_table, run_child, write_results
 from sqlglot import exp
 
-from pipeline._build import plan_study
 from pipeline.config import load_study
 from pipeline.extract import discover_extract
+from pipeline.workflows.build import plan_study
 
 ROOT = Path(__file__).resolve().parent
 DEMO = ROOT.parent / "definitions" / "studies" / "orvane_multimorbidity.yaml"

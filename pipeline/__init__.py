@@ -11,32 +11,34 @@ from importlib import import_module
 from typing import TYPE_CHECKING, Any
 
 if TYPE_CHECKING:
-    from pipeline._build import BuildOptions, BuildResult, build_study, plan_study, verify_output
-    from pipeline._diff import diff_runs
-    from pipeline._explain import explain_patient
-    from pipeline._profile import profile_extract
-    from pipeline._validate import validate_study
     from pipeline.compile import Plan, compile_study
     from pipeline.config import load_study
     from pipeline.errors import AscertainError, ConfigError, EngineError, ExtractError
+    from pipeline.workflows.build import BuildResult, build_study, plan_study
+    from pipeline.workflows.diff import diff_runs
+    from pipeline.workflows.explain import explain_patient
+    from pipeline.workflows.prepare import BuildOptions
+    from pipeline.workflows.profile import profile_extract
+    from pipeline.workflows.validate import validate_study
+    from pipeline.workflows.verify import verify_output
 
 _HOMES = {
     "AscertainError": "pipeline.errors",
-    "BuildOptions": "pipeline._build",
-    "BuildResult": "pipeline._build",
+    "BuildOptions": "pipeline.workflows.prepare",
+    "BuildResult": "pipeline.workflows.build",
     "ConfigError": "pipeline.errors",
     "EngineError": "pipeline.errors",
     "ExtractError": "pipeline.errors",
     "Plan": "pipeline.compile",
-    "build_study": "pipeline._build",
+    "build_study": "pipeline.workflows.build",
     "compile_study": "pipeline.compile",
-    "diff_runs": "pipeline._diff",
-    "explain_patient": "pipeline._explain",
+    "diff_runs": "pipeline.workflows.diff",
+    "explain_patient": "pipeline.workflows.explain",
     "load_study": "pipeline.config",
-    "plan_study": "pipeline._build",
-    "profile_extract": "pipeline._profile",
-    "validate_study": "pipeline._validate",
-    "verify_output": "pipeline._build",
+    "plan_study": "pipeline.workflows.build",
+    "profile_extract": "pipeline.workflows.profile",
+    "validate_study": "pipeline.workflows.validate",
+    "verify_output": "pipeline.workflows.verify",
 }
 
 __all__ = [

@@ -28,8 +28,7 @@ import typer
 from rich.console import Console
 from rich.markup import escape
 
-from pipeline._build import BuildOptions, BuildResult, build_study, plan_study, verify_output
-from pipeline._check_data import check_extract, check_lines
+from pipeline import BuildOptions, BuildResult, build_study, plan_study, verify_output
 from pipeline._cli_options import (
     EXTRACT_HELP,
     SHAPES_HELP,
@@ -40,21 +39,22 @@ from pipeline._cli_options import (
     extract_arg,
     progress_display,
 )
-from pipeline._diff import diff_runs, render_diff
-from pipeline._explain import explain_patient, render_trace
-from pipeline._init import init_study
-from pipeline._profile import (
+from pipeline.config import load_study
+from pipeline.config._check import check_paths
+from pipeline.engine import DuckDBEngine, SparkEngine
+from pipeline.errors import AscertainError
+from pipeline.extract import as_extract
+from pipeline.workflows.check import check_extract, check_lines
+from pipeline.workflows.diff import diff_runs, render_diff
+from pipeline.workflows.explain import explain_patient, render_trace
+from pipeline.workflows.init import init_study
+from pipeline.workflows.profile import (
     check_profile_folder,
     profile_extract,
     profile_notes,
     profile_table,
     write_profile,
 )
-from pipeline.config import load_study
-from pipeline.config._check import check_paths
-from pipeline.engine import DuckDBEngine, SparkEngine
-from pipeline.errors import AscertainError
-from pipeline.extract import as_extract
 
 app = typer.Typer(
     name="ascertain",
@@ -399,7 +399,7 @@ def validate(
 
     def run() -> str:
         # Imported here: it loads scipy (half a second), which no other command needs.
-        from pipeline._validate import render_validation, validate_study
+        from pipeline.workflows.validate import render_validation, validate_study
 
         results = validate_study(
             study, reference, extract=extract_arg(extract), coverage=coverage, sampling=sampling
@@ -426,7 +426,7 @@ def report(
     Example: ascertain report output/orvane_multimorbidity
     """
     # Imported here: it loads scipy (half a second), which no other command needs.
-    from pipeline.outputs._report import write_report
+    from pipeline.outputs.report import write_report
 
     files = _fail_cleanly(lambda: write_report(output, study), debug=debug)
     for path in files:
@@ -483,8 +483,8 @@ def codes(
 
     Example: ascertain codes definitions/studies/orvane_multimorbidity.yaml --out out/codes
     """
-    from pipeline._codes import audit_codes, check_codes_folder
-    from pipeline._codes_files import audit_tables, header, write_audit
+    from pipeline.workflows._codes_files import audit_tables, header, write_audit
+    from pipeline.workflows.codes import audit_codes, check_codes_folder
 
     source = extract_arg(extract)
     folder = _fail_cleanly(lambda: check_codes_folder(study, source, out), debug=debug)

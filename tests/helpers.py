@@ -10,9 +10,9 @@ from typing import Any, NoReturn
 
 import pytest
 
-from pipeline._build import plan_study
 from pipeline.engine import DuckDBEngine
 from pipeline.extract import discover_extract
+from pipeline.workflows.build import plan_study
 
 from .conftest import DEMO_STUDY, ROOT
 

@@ -11,9 +11,9 @@ from pathlib import Path
 import pytest
 from typer.testing import CliRunner
 
-from pipeline._codes import audit_codes, parent_of
-from pipeline._codes_files import release, write_audit
 from pipeline.cli import app
+from pipeline.workflows._codes_files import release, write_audit
+from pipeline.workflows.codes import audit_codes, parent_of
 
 from .conftest import DEMO_STUDY, ROOT
 from .helpers import run_stage

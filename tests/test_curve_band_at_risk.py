@@ -13,16 +13,16 @@ import polars as pl
 import pytest
 from scipy import stats
 
-from pipeline.outputs._report_at_risk import (
+from pipeline.outputs.report._at_risk import (
     BIN_FIELDS,
     END,
     at_risk_block,
     at_risk_days,
     render_at_risk,
 )
-from pipeline.outputs._report_curves import band_note, outcome_curves
-from pipeline.outputs._report_suppression import Block, hidden_keys
-from pipeline.outputs._report_tables import incidence_block
+from pipeline.outputs.report._curves import band_note, outcome_curves
+from pipeline.outputs.report._suppression import Block, hidden_keys
+from pipeline.outputs.report._tables import incidence_block
 from pipeline.stats import cumulative_incidence_at_horizon, protect_cells
 from pipeline.stats._disclosure import feasible_range
 
@@ -52,7 +52,7 @@ def _loglog(f: float, variance: float) -> tuple[float, float]:
 
 def test_hand_computed_band_at_each_released_step(monkeypatch: pytest.MonkeyPatch) -> None:
     # Grid of 2 days (the report uses 30), threshold 2: the curve steps at 4 (3 events) and 8.
-    monkeypatch.setattr("pipeline.outputs._report_curves.CURVE_GRID_DAYS", 2)
+    monkeypatch.setattr("pipeline.outputs.report._curves.CURVE_GRID_DAYS", 2)
     curves = outcome_curves(_cohort(DURATIONS, CODES), "x", 2)
     assert curves.aj.times.tolist() == [0.0, 4.0, 8.0]
     # Up to day 4, event times 2 (n 10, 1 event, of the outcome), 3 (n 9, 2 events, 1 of

@@ -13,7 +13,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from pipeline.outputs._report_curves import CURVE_GRID_DAYS, curve_note, outcome_curves
+from pipeline.outputs.report._curves import CURVE_GRID_DAYS, curve_note, outcome_curves
 from pipeline.stats import (
     DAYS_PER_YEAR,
     OUTCOME,

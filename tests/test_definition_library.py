@@ -16,8 +16,8 @@ from pathlib import Path
 import polars as pl
 import pytest
 
-from pipeline._build import BuildOptions, build_study
 from pipeline.config import load_catalog
+from pipeline.workflows.build import BuildOptions, build_study
 
 ROOT = Path(__file__).resolve().parent.parent
 CONDITIONS = ROOT / "definitions" / "conditions"

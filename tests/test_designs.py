@@ -12,7 +12,7 @@ from pathlib import Path
 import polars as pl
 import pytest
 
-from pipeline._build import BuildOptions, build_study
+from pipeline.workflows.build import BuildOptions, build_study
 
 DESIGNS = Path(__file__).parent / "fixtures" / "designs"
 

@@ -8,8 +8,8 @@ from pathlib import Path
 
 from typer.testing import CliRunner
 
-from pipeline._diff import PATIENT_LEVEL, diff_runs
 from pipeline.cli import app
+from pipeline.workflows.diff import PATIENT_LEVEL, diff_runs
 
 from .conftest import DEMO_STUDY, HANDMADE
 
@@ -177,7 +177,7 @@ def _manifest(folder: Path, **groups: object) -> Path:
 
 
 def test_definition_and_extract_files_added_removed_and_changed(tmp_path: Path) -> None:
-    from pipeline._diff import _input_changes  # the manifests alone, without cohorts
+    from pipeline.workflows.diff import _input_changes  # the manifests alone, without cohorts
 
     def entries(**files: str) -> list[dict[str, object]]:
         return [{"path": p.replace("__", "."), "bytes": 1, "sha256": h} for p, h in files.items()]

@@ -33,9 +33,9 @@ import polars as pl
 import pytest
 from scipy.optimize import Bounds, LinearConstraint, milp
 
-from pipeline._build import BuildOptions, build_study
-from pipeline.outputs._report import write_report
+from pipeline.outputs.report import write_report
 from pipeline.synth import generate_extract
+from pipeline.workflows.build import BuildOptions, build_study
 
 from .conftest import DEMO_STUDY, HANDMADE
 from .helpers import demo_study_variant

@@ -12,8 +12,8 @@ from pathlib import Path
 import pytest
 from typer.testing import CliRunner
 
-from pipeline._explain import explain_patient
 from pipeline.cli import app
+from pipeline.workflows.explain import explain_patient
 
 from .conftest import DEMO_STUDY, HANDMADE
 

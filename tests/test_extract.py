@@ -10,9 +10,9 @@ import polars as pl
 import pytest
 from typer.testing import CliRunner
 
-from pipeline._build import BuildOptions, build_study
 from pipeline.cli import app
 from pipeline.errors import EngineError, ExtractError
+from pipeline.workflows.build import BuildOptions, build_study
 
 from .conftest import DEMO_STUDY, HANDMADE
 

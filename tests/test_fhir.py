@@ -22,12 +22,12 @@ import polars as pl
 import pytest
 from sqlglot import exp
 
-from pipeline._build import BuildOptions, build_study, plan_study
 from pipeline.compile import Plan, Stage
 from pipeline.engine import DuckDBEngine
 from pipeline.errors import ExtractError
 from pipeline.extract import discover_extract
 from pipeline.extract.readers.fhir import BUILDERS, FHIR_COLUMNS, fhir_source
+from pipeline.workflows.build import BuildOptions, build_study, plan_study
 
 from .conftest import DEMO_STUDY, ROOT
 

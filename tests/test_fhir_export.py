@@ -21,7 +21,6 @@ from pathlib import Path
 import polars as pl
 import pytest
 
-from pipeline._build import BuildOptions, build_study, plan_study
 from pipeline.config import shipped_measures
 from pipeline.extract.readers.fhir import ICD_SYSTEMS, SNOMED_SMOKING, STATUS_SET_ASIDE
 from pipeline.synth import generate_extract
@@ -34,6 +33,7 @@ from pipeline.synth._fhir_server import (
     UNIT_FORMS,
     exact_value,
 )
+from pipeline.workflows.build import BuildOptions, build_study, plan_study
 
 from .conftest import DEMO_STUDY, ROOT
 from .test_fhir import _source_rows

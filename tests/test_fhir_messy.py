@@ -36,11 +36,11 @@ from pathlib import Path
 import polars as pl
 import pytest
 
-from pipeline._build import BuildOptions, build_study
-from pipeline._profile import profile_extract
 from pipeline.compile._quality import SET_ASIDE_REASONS
 from pipeline.errors import ExtractError, UnusableBuildError
 from pipeline.extract.readers.fhir import READER_REASONS, STATUS_SET_ASIDE
+from pipeline.workflows.build import BuildOptions, build_study
+from pipeline.workflows.profile import profile_extract
 
 from .conftest import DEMO_STUDY, ROOT
 from .test_fhir import _source_rows

@@ -16,9 +16,9 @@ from pathlib import Path
 import polars as pl
 import pytest
 
-from pipeline._build import BuildOptions, build_study
 from pipeline.config import load_study
 from pipeline.errors import ConfigError, EngineError
+from pipeline.workflows.build import BuildOptions, build_study
 
 from .conftest import DEMO_STUDY
 from .helpers import write_extract

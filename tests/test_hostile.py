@@ -20,10 +20,10 @@ import pytest
 from sqlglot import exp
 from typer.testing import CliRunner
 
-from pipeline._build import BuildOptions, BuildResult, build_study, plan_study
 from pipeline.engine._duckdb import _reader
 from pipeline.errors import ExtractError
 from pipeline.extract import discover_extract
+from pipeline.workflows.build import BuildOptions, BuildResult, build_study, plan_study
 
 from .conftest import DEMO_STUDY, HANDMADE
 from .helpers import demo_study_variant

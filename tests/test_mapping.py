@@ -8,10 +8,10 @@ from pathlib import Path
 import polars as pl
 import pytest
 
-from pipeline._build import BuildOptions, build_study, plan_study
 from pipeline.errors import ConfigError
 from pipeline.extract import discover_extract
 from pipeline.extract.schema import DATE_COLUMNS
+from pipeline.workflows.build import BuildOptions, build_study, plan_study
 
 from .conftest import DEMO_STUDY, HANDMADE
 from .helpers import run_stage

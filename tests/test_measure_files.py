@@ -13,7 +13,6 @@ from pathlib import Path
 import pytest
 from typer.testing import CliRunner
 
-from pipeline._build import BuildOptions, build_study
 from pipeline.cli import app
 from pipeline.compile import compile_study
 from pipeline.compile._context import evidence_number
@@ -23,6 +22,7 @@ from pipeline.errors import ConfigError
 from pipeline.extract import discover_extract
 from pipeline.extract.readers.fhir import LOINC_MEASURES
 from pipeline.outputs import sha256_file
+from pipeline.workflows.build import BuildOptions, build_study
 
 from .helpers import eligible_encounters, eligible_patient, write_extract, write_study
 

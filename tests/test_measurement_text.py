@@ -8,7 +8,7 @@ from __future__ import annotations
 
 from sqlglot import exp
 
-from pipeline._build import plan_study
+from pipeline.workflows.build import plan_study
 
 from .conftest import DEMO_STUDY
 

@@ -15,13 +15,13 @@ from pathlib import Path
 import pytest
 from typer.testing import CliRunner
 
-import pipeline._build as build_module
 import pipeline.outputs._write as write_module
-from pipeline._build import BuildOptions, build_study
+import pipeline.workflows.prepare as prepare_module
 from pipeline.cli import app
 from pipeline.errors import EngineError, OutputFolderError
 from pipeline.outputs._ownership import REPORT, foreign_entries
-from pipeline.outputs._report import write_report
+from pipeline.outputs.report import write_report
+from pipeline.workflows.build import BuildOptions, build_study
 
 from .conftest import DEMO_STUDY, HANDMADE, ROOT
 from .helpers import write_study
@@ -109,7 +109,7 @@ def test_refused_build_does_not_start_the_engine(
     def engine_started(*args: object, **kwargs: object) -> None:
         raise AssertionError("the engine started before the output folder was checked")
 
-    monkeypatch.setattr(build_module, "make_engine", engine_started)
+    monkeypatch.setattr(prepare_module, "make_engine", engine_started)
     (tmp_path / "out").mkdir()
     (tmp_path / "out" / "notes.txt").write_text("mine")
     with pytest.raises(OutputFolderError, match=r"notes\.txt"):

@@ -17,9 +17,9 @@ from pathlib import Path
 
 import pytest
 
-from pipeline._build import BuildOptions, build_study
-from pipeline._profile import _bars, profile_extract, write_profile
-from pipeline.outputs._report import write_report
+from pipeline.outputs.report import write_report
+from pipeline.workflows.build import BuildOptions, build_study
+from pipeline.workflows.profile import _bars, profile_extract, write_profile
 
 from .conftest import DEMO_STUDY, ROOT
 

@@ -18,12 +18,12 @@ import pyarrow.parquet as pq
 import pytest
 from typer.testing import CliRunner
 
-from pipeline._build import BuildOptions, build_study
-from pipeline._profile import profile_extract
 from pipeline.cli import app
 from pipeline.compile._quality import SET_ASIDE_REASONS
 from pipeline.config import load_study
 from pipeline.outputs._usability import misread_shares
+from pipeline.workflows.build import BuildOptions, build_study
+from pipeline.workflows.profile import profile_extract
 
 from .conftest import DEMO_STUDY, HANDMADE
 from .helpers import demo_study_variant

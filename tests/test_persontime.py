@@ -24,7 +24,6 @@ from hypothesis import example, given, settings
 from hypothesis import strategies as st
 from sqlglot import exp
 
-from pipeline._build import BuildOptions, build_study, plan_study
 from pipeline.compile._persontime import cells_query
 from pipeline.compile._sql import add_days
 from pipeline.config import load_study
@@ -32,6 +31,7 @@ from pipeline.config._persontime import PersonTime
 from pipeline.engine import DuckDBEngine
 from pipeline.errors import ConfigError, EngineError
 from pipeline.extract import discover_extract
+from pipeline.workflows.build import BuildOptions, build_study, plan_study
 
 from .helpers import require
 

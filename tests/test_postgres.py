@@ -23,11 +23,12 @@ import pyarrow.parquet as pq
 import pytest
 from typer.testing import CliRunner
 
-from pipeline._build import BuildOptions, build_study, verify_output
-from pipeline._explain import explain_patient
-from pipeline._profile import profile_extract
 from pipeline.cli import app
 from pipeline.errors import ConfigError
+from pipeline.workflows.build import BuildOptions, build_study
+from pipeline.workflows.explain import explain_patient
+from pipeline.workflows.profile import profile_extract
+from pipeline.workflows.verify import verify_output
 
 from .conftest import DEMO_STUDY, ROOT
 from .pg_server import Server

@@ -9,9 +9,9 @@ from pathlib import Path
 import pytest
 from typer.testing import CliRunner
 
-from pipeline._profile import PATIENT_LEVEL, profile_extract
 from pipeline.cli import app
 from pipeline.errors import AscertainError, ExtractError
+from pipeline.workflows.profile import PATIENT_LEVEL, profile_extract
 
 from .helpers import write_extract
 

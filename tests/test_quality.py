@@ -8,8 +8,9 @@ from pathlib import Path
 
 import pytest
 
-from pipeline._build import BuildOptions, build_study, check_row_accounting
 from pipeline.errors import EngineError
+from pipeline.outputs._quality_log import check_row_accounting
+from pipeline.workflows.build import BuildOptions, build_study
 
 from .conftest import DEMO_STUDY, HANDMADE
 from .helpers import demo_study_variant, write_extract

@@ -13,7 +13,7 @@ from pathlib import Path
 import polars as pl
 import pytest
 
-from pipeline._build import BuildOptions, build_study
+from pipeline.workflows.build import BuildOptions, build_study
 
 from .conftest import DEMO_STUDY, HANDMADE, ROOT
 from .helpers import run_stage

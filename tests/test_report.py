@@ -19,9 +19,9 @@ import numpy as np
 import pytest
 from scipy import linalg
 
-from pipeline._build import BuildOptions, build_study
-from pipeline.outputs._report import write_report
-from pipeline.outputs._report_html import OPTIONAL_SECTIONS, SECTIONS
+from pipeline.outputs.report import write_report
+from pipeline.outputs.report._html import OPTIONAL_SECTIONS, SECTIONS
+from pipeline.workflows.build import BuildOptions, build_study
 
 from .conftest import DEMO_STUDY, HANDMADE, ROOT
 from .helpers import require

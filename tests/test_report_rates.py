@@ -9,11 +9,11 @@ from pathlib import Path
 import polars as pl
 import pytest
 
-from pipeline._build import BuildOptions, build_study
-from pipeline.outputs._report import write_report
-from pipeline.outputs._report_rates import rates_block, rates_summary, standardised_summary
+from pipeline.outputs.report import write_report
+from pipeline.outputs.report._rates import rates_block, rates_summary, standardised_summary
 from pipeline.stats import direct_standardised_rate, protect_cells
 from pipeline.stats._disclosure import feasible_range
+from pipeline.workflows.build import BuildOptions, build_study
 
 from .conftest import DEMO_STUDY, HANDMADE
 from .helpers import demo_study_variant

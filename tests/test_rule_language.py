@@ -7,10 +7,10 @@ from pathlib import Path
 import polars as pl
 import pytest
 
-from pipeline._build import BuildOptions, build_study
 from pipeline.codes import check_code
 from pipeline.config import load_catalog
 from pipeline.errors import ConfigError
+from pipeline.workflows.build import BuildOptions, build_study
 
 from .helpers import eligible_encounters, eligible_patient, write_extract, write_study
 

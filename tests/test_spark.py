@@ -23,7 +23,6 @@ import pytest
 from sqlglot import exp, parse_one
 from typer.testing import CliRunner
 
-from pipeline._build import plan_study
 from pipeline.cli import app
 from pipeline.compile import Plan, SourceTable, Stage
 from pipeline.engine import DuckDBEngine, SparkEngine
@@ -31,6 +30,7 @@ from pipeline.engine._spark_sql import spark_query
 from pipeline.errors import EngineError, ExtractError
 from pipeline.extract import discover_extract
 from pipeline.outputs import write_parquet
+from pipeline.workflows.build import plan_study
 
 from .conftest import DEMO_STUDY, HANDMADE, ROOT
 from .helpers import require

@@ -25,7 +25,6 @@ from typing import Any
 import pytest
 from typer.testing import CliRunner
 
-from pipeline._build import locate_inputs, plan_study
 from pipeline.cli import app
 from pipeline.config import load_study
 from pipeline.errors import AscertainError, ConfigError, ExtractError
@@ -33,7 +32,9 @@ from pipeline.extract import HadoopFiles, discover_extract, extract_location, is
 from pipeline.extract._discover import discover_folder
 from pipeline.extract._hadoop import safe_uri
 from pipeline.outputs import DATA_FILES, describe_files
+from pipeline.outputs._verify import locate_inputs
 from pipeline.synth import generate_extract
+from pipeline.workflows.build import plan_study
 
 from .conftest import DEMO_STUDY, HANDMADE
 from .helpers import require

@@ -7,7 +7,6 @@ from pathlib import Path
 import pytest
 from typer.testing import CliRunner
 
-from pipeline._build import BuildOptions, make_engine
 from pipeline.cli import app
 from pipeline.config import load_study
 from pipeline.config._spark import SparkSettings
@@ -25,6 +24,7 @@ from pipeline.engine._spark_session import (
 )
 from pipeline.errors import ConfigError, EngineError, ExtractError
 from pipeline.extract import extract_location
+from pipeline.workflows.prepare import BuildOptions, make_engine
 
 from .conftest import DEMO_STUDY, HANDMADE
 

@@ -11,8 +11,8 @@ import pytest
 import sqlglot
 from sqlglot import exp
 
-from pipeline._build import plan_study
 from pipeline.engine._spark_sql import spark_plan
+from pipeline.workflows.build import plan_study
 
 from .conftest import DEMO_STUDY
 

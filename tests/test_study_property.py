@@ -19,9 +19,9 @@ import yaml
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from pipeline._build import plan_study
 from pipeline.engine import DuckDBEngine, SparkEngine
 from pipeline.extract import discover_extract
+from pipeline.workflows.build import plan_study
 
 from .conftest import ROOT
 

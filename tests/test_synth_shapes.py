@@ -13,10 +13,10 @@ import pyarrow.parquet as pq
 import pytest
 from typer.testing import CliRunner
 
-from pipeline._build import BuildOptions, build_study
 from pipeline.cli import app
 from pipeline.synth import Scenario, generate_extract
 from pipeline.synth._shapes import EVENT_TABLES, PRACTICES, SHAPES, UNREADABLE_TEXTS
+from pipeline.workflows.build import BuildOptions, build_study
 
 from .conftest import DEMO_STUDY, ROOT
 

@@ -20,10 +20,10 @@ import numpy as np
 import pytest
 from statsmodels.stats.proportion import proportion_confint
 
-from pipeline._build import BuildOptions, build_study
 from pipeline.synth import Scenario, generate_extract
 from pipeline.synth._population import draw_population
 from pipeline.synth._scenario import CONDITIONS
+from pipeline.workflows.build import BuildOptions, build_study
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO_STUDY = ROOT / "definitions" / "studies" / "orvane_multimorbidity.yaml"

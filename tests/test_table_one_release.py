@@ -5,8 +5,8 @@ from __future__ import annotations
 import polars as pl
 import pytest
 
-from pipeline.outputs._report_suppression import hidden_keys
-from pipeline.outputs._report_table_one import (
+from pipeline.outputs.report._suppression import hidden_keys
+from pipeline.outputs.report._table_one import (
     differenced_means,
     table_one_blocks,
     table_one_summary,

@@ -16,7 +16,7 @@ import polars as pl
 import pyarrow.parquet as pq
 import pytest
 
-from pipeline._build import BuildOptions, build_study
+from pipeline.workflows.build import BuildOptions, build_study
 
 from .conftest import DEMO_STUDY, ROOT
 

@@ -7,11 +7,16 @@ from pathlib import Path
 import pytest
 from typer.testing import CliRunner
 
-from pipeline._validate import Validation, render_validation, validate_study, validation_cells
 from pipeline.cli import app
 from pipeline.errors import AscertainError
 from pipeline.stats import diagnostic_accuracy, onset_agreement
 from pipeline.stats._disclosure import feasible_range
+from pipeline.workflows.validate import (
+    Validation,
+    render_validation,
+    validate_study,
+    validation_cells,
+)
 
 from .conftest import DEMO_STUDY
 from .helpers import write_extract

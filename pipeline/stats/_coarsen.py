@@ -29,7 +29,7 @@ step is estimated from fewer than ``threshold`` patients at risk. It does not pr
 combining this curve with other published numbers. An estimate at a later time than the last
 released step (the full estimate at the horizon) printed beside the curve would give away the
 few events after that step, so the report prints the estimate and interval at the last released
-step instead (``outputs/_report_curves.py``). Counts (events, numbers at risk) are suppressed
+step instead (``outputs/report/_curves.py``). Counts (events, numbers at risk) are suppressed
 by the report's tables, not by this function.
 """
 

@@ -268,6 +268,23 @@ def feasible_range(
     return system.range_of(system.index[cell])
 
 
+def hidden_marker(value: int, threshold: int) -> str:
+    """How a hidden count reads: ``<threshold`` when it is small, else ``*``.
+
+    Every suppressed output (the report, ``summary/*.csv``, ``validate``'s text, the release
+    copy of the code audit) marks hidden counts with this one function.
+
+    A count hidden only so that a small one cannot be worked out by subtraction is larger than
+    the threshold; showing it as ``<5`` would misstate it.
+    """
+    return f"<{threshold}" if 0 < value < threshold else "*"
+
+
+def shown(value: int, key: str, hidden: frozenset[str], threshold: int) -> str:
+    """A count as published: the number, or its hidden marker."""
+    return hidden_marker(value, threshold) if key in hidden else str(value)
+
+
 def protect_cells(
     values: Mapping[str, int],
     relations: Sequence[Relation],

@@ -20,8 +20,8 @@ from typing import Any
 
 from rich.table import Table
 
-from pipeline._codes import PATIENT_LEVEL, CodeAudit
 from pipeline.outputs._ownership import CODES, install, staging
+from pipeline.workflows.codes import PATIENT_LEVEL, CodeAudit
 
 FILES = {
     "codes_matched.csv": (
@@ -97,7 +97,9 @@ def _line_key(prefix: str, row: dict[str, Any]) -> str:
 
 def release(audit: CodeAudit) -> CodeAudit:
     """The audit with its small counts, and those that would give them away, hidden."""
-    from pipeline.stats import protect_cells  # loads scipy, which the audit alone never needs
+    # Loads scipy, which the audit alone never needs.
+    from pipeline.stats import protect_cells
+    from pipeline.stats._disclosure import hidden_marker
 
     values, relations = _cells(audit)
     threshold = audit.threshold
@@ -106,9 +108,7 @@ def release(audit: CodeAudit) -> CodeAudit:
     hidden |= {k.removesuffix(".patients") + ".rows" for k in hidden if k.endswith(".patients")}
 
     def shown(key: str) -> int | str:
-        if key not in hidden:
-            return values[key]
-        return f"<{threshold}" if 0 < values[key] < threshold else "*"
+        return hidden_marker(values[key], threshold) if key in hidden else values[key]
 
     def masked(row: dict[str, Any], key: str, parts: tuple[str, ...]) -> dict[str, Any]:
         return {**row, **{part: shown(f"{key}.{part}") for part in parts}}
@@ -141,7 +141,7 @@ def write_audit(audit: CodeAudit, out: Path, *, for_release: bool = False) -> li
     """Write the audit's CSVs into ``out`` (checked with ``check_codes_folder`` first).
 
     Args:
-        audit: What :func:`pipeline._codes.audit_codes` found.
+        audit: What :func:`pipeline.workflows.codes.audit_codes` found.
         out: The folder; only files an earlier audit wrote there are replaced.
         for_release: Suppress small counts first (:func:`release`).
 

@@ -1,9 +1,9 @@
 """The report's rates section: small multiples of rate by age band, and the rate tables.
 
-Like the other sections it formats tables already suppressed (:mod:`._report_rates`): a rate
+Like the other sections it formats tables already suppressed (:mod:`._rates`): a rate
 that is missing there is not drawn and not printed. The figure is one small panel per outcome,
 the rate per 1,000 person-years of each age band over all years as a point with its 95%
-interval, in plain inline SVG like :mod:`._report_svg`.
+interval, in plain inline SVG like :mod:`._svg`.
 """
 
 from __future__ import annotations
@@ -15,10 +15,10 @@ from typing import Any
 
 import polars as pl
 
-from pipeline.outputs._report_html_cells import n_cell as _n
-from pipeline.outputs._report_html_cells import table as _table
-from pipeline.outputs._report_rates import standard_sources
-from pipeline.outputs._report_svg import _nice_step, _text, value_axis
+from pipeline.outputs.report._html_cells import n_cell as _n
+from pipeline.outputs.report._html_cells import table as _table
+from pipeline.outputs.report._rates import standard_sources
+from pipeline.outputs.report._svg import _nice_step, _text, value_axis
 
 __all__ = ["rates_section", "render_rate_panel"]
 

@@ -18,16 +18,15 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from pipeline._build import local_inputs, resolve_extract
 from pipeline.codes import descendants, normalise_in, prefixes_in, read_hierarchy
 from pipeline.compile import compile_study
 from pipeline.compile._audit import audit_plan
 from pipeline.compile._context import CompileContext, evidence_number
 from pipeline.config import Evidence, ListUse, load_study
-from pipeline.engine import DuckDBEngine
 from pipeline.errors import AscertainError
 from pipeline.extract import open_extract
 from pipeline.outputs._ownership import CODES, check_folder
+from pipeline.workflows.prepare import BuildOptions, local_inputs, prepare, resolve_extract
 
 PATIENT_LEVEL = (
     "Patient-level detail for use inside the secure environment: exact counts of rows and "
@@ -210,16 +209,13 @@ def audit_codes(study_file: Path, extract: Path | str | None = None) -> CodeAudi
         AscertainError: Bad config, a study without coded evidence, a bad extract, an engine
             failure.
     """
-    loaded = load_study(study_file)
+    ready = prepare(study_file, BuildOptions(extract=extract))
+    loaded = ready.loaded
     ctx = CompileContext(loaded.study, loaded.catalog, loaded.measures)
     _check_usable(ctx, study_file)
-    plan = audit_plan(compile_study(loaded), ctx)
-    source = resolve_extract(extract or loaded.study.extract)
-    engine = DuckDBEngine(
-        threads=loaded.study.engine.threads, memory_limit=loaded.study.engine.memory_limit
-    )
-    with open_extract(source, plan.sources) as opened:
-        run = engine.run(plan, opened.tables)
+    plan = audit_plan(ready.plan, ctx)
+    with open_extract(ready.extract, plan.sources) as opened:
+        run = ready.engine.run(plan, opened.tables)
     out = {name: table.to_pylist() for name, table in run.outputs.items()}
     evidence = coded_evidence(ctx)
     matched, by_year = _matched(evidence, out["audit_code_counts"], out["audit_code_years"])

@@ -1,7 +1,7 @@
 """The result sections of the report's HTML page: Table 1, incidence, curves, dependence.
 
-Split from :mod:`._report_html` by job; like it, everything here formats tables that
-:mod:`._report` has already suppressed, and escapes every string from data or user files.
+Split from :mod:`._html` by job; like it, everything here formats tables that
+:mod:`._write` has already suppressed, and escapes every string from data or user files.
 """
 
 from __future__ import annotations
@@ -13,12 +13,12 @@ from typing import Any
 
 import polars as pl
 
-from pipeline.outputs._report_at_risk import at_risk_note
-from pipeline.outputs._report_curves import band_note, curve_note
-from pipeline.outputs._report_html_cells import n_cell as _n
-from pipeline.outputs._report_html_cells import num as _num
-from pipeline.outputs._report_html_cells import table as _table
-from pipeline.outputs._report_svg import Curve, render_curves
+from pipeline.outputs.report._at_risk import at_risk_note
+from pipeline.outputs.report._curves import band_note, curve_note
+from pipeline.outputs.report._html_cells import n_cell as _n
+from pipeline.outputs.report._html_cells import num as _num
+from pipeline.outputs.report._html_cells import table as _table
+from pipeline.outputs.report._svg import Curve, render_curves
 
 __all__ = ["curves_section", "dependence_section", "incidence_section", "table_one_section"]
 

@@ -2,7 +2,7 @@
 
 ``write_report`` reads a build's output folder and writes ``report.html`` and ``summary/*.csv``.
 Every count in them is suppressed as one linked system by :func:`pipeline.stats.protect_cells`
-(see :mod:`._report_suppression` for the cells and relations of the report). The raw build
+(see :mod:`._suppression` for the cells and relations of the report). The raw build
 files next to them (``cohort.parquet`` and the build logs) are the unsuppressed record.
 
 The report is written even when the study and definition files named in the manifest are gone
@@ -25,22 +25,22 @@ from pipeline.config._check import explain_condition
 from pipeline.errors import AscertainError
 from pipeline.outputs._manifest import definition_path, read_manifest, sha256_file
 from pipeline.outputs._ownership import REPORT, check_folder, install, staging
-from pipeline.outputs._report_at_risk import at_risk_block, render_at_risk
-from pipeline.outputs._report_curves import Headline, outcome_curves
-from pipeline.outputs._report_html import assemble
-from pipeline.outputs._report_rates import (
+from pipeline.outputs.report._at_risk import at_risk_block, render_at_risk
+from pipeline.outputs.report._curves import Headline, outcome_curves
+from pipeline.outputs.report._html import assemble
+from pipeline.outputs.report._rates import (
     rates_block,
     rates_summary,
     read_persontime,
     standardised_summary,
 )
-from pipeline.outputs._report_suppression import hidden_keys, masked
-from pipeline.outputs._report_table_one import (
+from pipeline.outputs.report._suppression import hidden_keys, masked
+from pipeline.outputs.report._table_one import (
     differenced_means,
     table_one_blocks,
     table_one_summary,
 )
-from pipeline.outputs._report_tables import (
+from pipeline.outputs.report._tables import (
     combinations_block,
     dependence_block,
     dependence_summary,
@@ -268,7 +268,7 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
     hidden = hidden_keys([*blocks, at_risk, *quality_parts], t, cohort, outcomes)
     curves = {o: outcome_curves(cohort, o, t) for o in outcomes if f"events|{o}" not in hidden}
     # The headline cumulative incidence is the released curve's value at its last step, not
-    # the full estimate at the horizon beside it (see _report_curves on why).
+    # the full estimate at the horizon beside it (see _curves on why).
     none = Headline(math.nan, math.nan, math.nan, math.nan)
     headlines = {o: curves[o].headline if o in curves else none for o in outcomes}
     results = [(o, ci, headlines[o], rate) for o, ci, _, rate in results]

@@ -11,13 +11,13 @@ import datetime as dt
 from pathlib import Path
 from typing import Any
 
-from pipeline.compile import Plan, compile_study
+from pipeline.compile import Plan
 from pipeline.compile._context import evidence_key, evidence_number
-from pipeline.config import Condition, Study, load_study
-from pipeline.engine import DuckDBEngine
+from pipeline.config import Condition, Study
 from pipeline.extract import open_extract
 from pipeline.measures import DERIVED_FROM
 from pipeline.outputs._write import DECIMALS
+from pipeline.workflows.prepare import BuildOptions, prepare
 
 Trace = dict[str, Any]
 
@@ -27,6 +27,15 @@ def _iso(value: Any) -> Any:
     if isinstance(value, dt.date):
         return value.isoformat()
     return round(value, DECIMALS) if isinstance(value, float) else value
+
+
+def _tie(entry: dict[str, Any]) -> tuple[tuple[str, str], ...]:
+    """Every field as text: the last sort key, so rows equal on the others keep one order.
+
+    The engine returns rows in no set order when it runs on several threads, so every list of
+    the trace is sorted on its whole content.
+    """
+    return tuple((k, "" if v is None else str(v)) for k, v in sorted(entry.items()))
 
 
 def _rows(result: dict[str, Any], name: str) -> list[dict[str, Any]]:
@@ -82,7 +91,7 @@ def _measurements(measures: set[str], outputs: dict[str, Any]) -> list[dict[str,
             for r in _rows(outputs, derived)
             if r["measure"] in measures
         ]
-    return sorted(rows, key=lambda r: (r["date"] or "", r["measure"], r["raw"]))
+    return sorted(rows, key=lambda r: (r["date"] or "", r["measure"], r["raw"], _tie(r)))
 
 
 def _outcome(
@@ -124,9 +133,11 @@ def _outcome(
     for measure in list(measures):
         measures.update(DERIVED_FROM.get(measure, ()))
     entry: dict[str, Any] = {
-        "evidence": sorted(coded + measured, key=lambda e: (e["date"] or "", e["evidence"])),
+        "evidence": sorted(
+            coded + measured, key=lambda e: (e["date"] or "", e["evidence"], _tie(e))
+        ),
         "measurements": _measurements(measures, outputs),
-        "rules_met": sorted(rules, key=lambda r: (r["met_on"], r["rule"])),
+        "rules_met": sorted(rules, key=lambda r: (r["met_on"], r["rule"], _tie(r))),
     }
     if cohort is not None:
         entry |= {
@@ -143,14 +154,15 @@ def explain_patient(
 ) -> Trace:
     """Trace one patient through a study.
 
+    Runs on DuckDB with the study's ``engine:`` settings (threads, memory limit), as a build.
+
     Raises:
         AscertainError: Bad config or extract (as for a build).
     """
-    loaded = load_study(study_file)
-    plan = compile_study(loaded)
-    source = extract or loaded.study.extract
-    with open_extract(source if isinstance(source, str) else source.resolve(), plan.sources) as x:
-        run = DuckDBEngine(threads=1).run(
+    ready = prepare(study_file, BuildOptions(extract=extract))
+    loaded, plan = ready.loaded, ready.plan
+    with open_extract(ready.extract, plan.sources) as x:
+        run = ready.engine.run(
             plan.with_outputs(_trace_stages(plan)), x.tables, patients=(patient_id,)
         )
     outputs = run.outputs
@@ -243,7 +255,10 @@ def _steps(outputs: dict[str, Any]) -> list[dict[str, Any]]:
     if not eligibility:
         return []
     row = eligibility[0]
-    attrition = [r for r in _rows(outputs, "attrition") if r["step_number"] > 0]
+    attrition = sorted(
+        (r for r in _rows(outputs, "attrition") if r["step_number"] > 0),
+        key=lambda r: r["step_number"],
+    )
     return [
         {
             "step": step["step"],

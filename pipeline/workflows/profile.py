@@ -18,11 +18,12 @@ from typing import Any
 from rich.table import Table
 
 from pipeline.engine import DuckDBEngine
-from pipeline.engine._profile import profile_tables
 from pipeline.errors import AscertainError, ExtractError
 from pipeline.extract import ExtractTable, database_source, discover_extract, open_extract
 from pipeline.extract.schema import all_sources
 from pipeline.outputs._ownership import PROFILE, check_folder, install, staging
+from pipeline.workflows._profile_queries import profile_tables
+from pipeline.workflows.prepare import BuildOptions, make_engine
 
 ALL_TABLES = all_sources()
 PATIENT_LEVEL = (
@@ -75,7 +76,10 @@ def profile_extract(folder: Path | str, *, threshold: int = 5) -> dict[str, Any]
 
 def _profile(found: dict[str, ExtractTable], threshold: int) -> dict[str, Any]:
     sources = tuple(t for t in ALL_TABLES if t.name in found)
-    profile = profile_tables(DuckDBEngine(), sources, found, threshold=threshold)
+    # No study, so no engine settings but the machine's: DuckDB with its defaults.
+    engine = make_engine(BuildOptions(), threads=None, memory_limit=None)
+    assert isinstance(engine, DuckDBEngine)  # the default options name DuckDB
+    profile = profile_tables(engine, sources, found, threshold=threshold)
     profile["release"] = PATIENT_LEVEL
     profile["percentiles_from"] = threshold
     return profile

@@ -1,6 +1,6 @@
 """The HTML page of the study report: sections, tables and the stylesheet.
 
-Everything here formats tables that :mod:`._report` has already suppressed, so the HTML and
+Everything here formats tables that :mod:`._write` has already suppressed, so the HTML and
 the summary CSVs cannot disagree. The page is one file with inline CSS and inline SVG only:
 it must open on an offline analysis server and print on paper. Every string that comes from
 data or from user files is escaped; count cells carry ``class="n"`` so tests can find them.
@@ -13,17 +13,17 @@ from typing import Any
 
 import polars as pl
 
-from pipeline.outputs._report_html_cells import n_cell as _n
-from pipeline.outputs._report_html_cells import table as _table
-from pipeline.outputs._report_html_cells import thousands as _thousands
-from pipeline.outputs._report_html_rates import rates_section
-from pipeline.outputs._report_html_results import (
+from pipeline.outputs.report._html_cells import n_cell as _n
+from pipeline.outputs.report._html_cells import table as _table
+from pipeline.outputs.report._html_cells import thousands as _thousands
+from pipeline.outputs.report._html_rates import rates_section
+from pipeline.outputs.report._html_results import (
     curves_section,
     dependence_section,
     incidence_section,
     table_one_section,
 )
-from pipeline.outputs._report_svg import (
+from pipeline.outputs.report._svg import (
     DEFINING_STEPS,
     Bar,
     Curve,
@@ -287,7 +287,7 @@ def assemble(
     """Put the whole page together from the suppressed tables.
 
     Args:
-        study: The study facts (:class:`._report.Study`).
+        study: The study facts (:class:`._write.Study`).
         manifest: The build's manifest.
         run: The build's run record (for the build date only).
         summaries: The suppressed summary tables by name.

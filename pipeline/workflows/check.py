@@ -10,13 +10,12 @@ from __future__ import annotations
 from collections.abc import Iterable
 from pathlib import Path
 
-from pipeline._build import evidence_counts, resolve_extract
-from pipeline.compile import EVIDENCE_COUNTS, compile_study, unmatched_definitions
-from pipeline.config import load_study
+from pipeline.compile import EVIDENCE_COUNTS, unmatched_definitions
 from pipeline.config._check import CheckReport, explain_condition
 from pipeline.config._explain_study import explain_study
-from pipeline.engine import DuckDBEngine
 from pipeline.extract import open_extract
+from pipeline.workflows.build import evidence_counts
+from pipeline.workflows.prepare import BuildOptions, prepare
 
 
 def unmatched_in_extract(study_file: Path, extract: Path | str | None = None) -> list[str]:
@@ -29,14 +28,11 @@ def unmatched_in_extract(study_file: Path, extract: Path | str | None = None) ->
     Raises:
         AscertainError: Bad config, a bad extract, an engine failure.
     """
-    loaded = load_study(study_file)
-    plan = compile_study(loaded).through(EVIDENCE_COUNTS, order=("evidence",))
-    source = resolve_extract(extract or loaded.study.extract)
-    engine = DuckDBEngine(
-        threads=loaded.study.engine.threads, memory_limit=loaded.study.engine.memory_limit
-    )
-    with open_extract(source, plan.sources) as opened:
-        run = engine.run(plan, opened.tables)
+    ready = prepare(study_file, BuildOptions(extract=extract))
+    loaded = ready.loaded
+    plan = ready.plan.through(EVIDENCE_COUNTS, order=("evidence",))
+    with open_extract(ready.extract, plan.sources) as opened:
+        run = ready.engine.run(plan, opened.tables)
     unmatched = unmatched_definitions(loaded, evidence_counts(run.outputs[EVIDENCE_COUNTS]))
     return [f"{study_file}: {use.message()}" for use in unmatched]
 

@@ -26,7 +26,7 @@ from typing import Any
 import polars as pl
 
 from pipeline.errors import AscertainError
-from pipeline.outputs._report_suppression import Block, keyed_frame, shown
+from pipeline.outputs.report._suppression import Block, keyed_frame
 from pipeline.stats import (
     DAYS_PER_YEAR,
     direct_standardised_rate,
@@ -35,6 +35,7 @@ from pipeline.stats import (
     shipped_standard,
     weights_for_bands,
 )
+from pipeline.stats._disclosure import shown
 
 __all__ = [
     "PERSONTIME",

@@ -8,7 +8,7 @@ follow-up has ended. So at risk on a day = at risk at day 0 - events before it -
 before it, exactly, and End's counts are the incidence table's events and non-events.
 
 These are counts of cohort patients, so they join the report's linked suppression system
-(:mod:`._report_suppression`): the count at day 0 and End's counts have the incidence table's
+(:mod:`._suppression`): the count at day 0 and End's counts have the incidence table's
 keys (``atrisk|X``, ``events|X``, ``nonevents|X``), and every count is a sum of *bins*: the
 patients whose follow-up ends (by the event, or otherwise) in the year from one column's day to
 the next (from the last column's day on: to the end). Differences of printed counts give the
@@ -26,9 +26,10 @@ from html import escape
 
 import polars as pl
 
-from pipeline.outputs._report_html_cells import n_cell
-from pipeline.outputs._report_suppression import Block, keyed_frame, shown
+from pipeline.outputs.report._html_cells import n_cell
+from pipeline.outputs.report._suppression import Block, keyed_frame
 from pipeline.stats import DAYS_PER_YEAR, OUTCOME, competing_risk_data
+from pipeline.stats._disclosure import shown
 
 __all__ = ["END", "at_risk_block", "at_risk_days", "at_risk_note", "render_at_risk"]
 

@@ -1,9 +1,9 @@
 """Table 1 of each outcome: its suppression blocks, and Table 1 as published.
 
 Each count of Table 1 is a cell of the report's one suppression system
-(:mod:`._report_suppression`): the group sizes share keys with the cohort size and the events
+(:mod:`._suppression`): the group sizes share keys with the cohort size and the events
 of the incidence table, each variable's rows add up to its group's size, and every count is
-described by the patients it counts (:mod:`._report_cells`). As published, Table 1 leaves out
+described by the patients it counts (:mod:`._cells`). As published, Table 1 leaves out
 every statistic that would reveal a hidden count or describe a few patients.
 """
 
@@ -15,10 +15,10 @@ from typing import Any
 
 import polars as pl
 
-from pipeline.outputs._report_cells import Spec
-from pipeline.outputs._report_suppression import Block, hidden_marker, keyed_frame
+from pipeline.outputs.report._cells import Spec
+from pipeline.outputs.report._suppression import Block, keyed_frame
 from pipeline.stats import baseline_variables, smd_binary, smd_continuous, table_one
-from pipeline.stats._disclosure import Relation
+from pipeline.stats._disclosure import Relation, hidden_marker
 
 _NUMERIC_STATS = ("mean", "sd", "median", "q1", "q3")
 _STATES = {"false": "false", "true": "true", "null": "null"}

@@ -1,4 +1,4 @@
-"""``ascertain profile``: what is in a new extract and what is wrong with it, before any study.
+"""``ascertain profile``'s DuckDB half: what is in a new extract and what is wrong with it.
 
 One DuckDB pass per question over the same source views a build uses: row counts, date ranges
 and rows per year, unreadable dates, orphan rows, code systems and the most frequent codes,

@@ -1,12 +1,12 @@
 """``ascertain validate``: how well a case definition agrees with a reference standard.
 
-The reference (:mod:`pipeline._reference`) lists patients with their true status and declares
-its coverage. Each patient is classified by the definition (a case when a rule is met by the
-end of data) and by the reference (a case when its status is true and its date, if any, is on
-or before the end of data). With ``coverage: complete`` every patient of the extract counts (a
-patient without a row is a true negative); with ``coverage: reviewed`` only the listed
-patients do: the unreviewed are in no denominator. When a reviewed sample was drawn by
-definition status, sensitivity and specificity are corrected for verification bias
+The reference (:mod:`pipeline.workflows._reference`) lists patients with their true status
+and declares its coverage. Each patient is classified by the definition (a case when a rule
+is met by the end of data) and by the reference (a case when its status is true and its date,
+if any, is on or before the end of data). With ``coverage: complete`` every patient of the
+extract counts (a patient without a row is a true negative); with ``coverage: reviewed`` only
+the listed patients do: the unreviewed are in no denominator. When a reviewed sample was drawn
+by definition status, sensitivity and specificity are corrected for verification bias
 (:func:`pipeline.stats.verification_corrected`, Begg and Greenes 1983).
 
 Onset agreement compares dated reference onsets with the definition's, for patients both call
@@ -23,10 +23,7 @@ from pathlib import Path
 
 import polars as pl
 
-from pipeline._reference import Reference, read_reference
-from pipeline.compile import Plan, compile_study
-from pipeline.config import load_study
-from pipeline.engine import DuckDBEngine
+from pipeline.compile import Plan
 from pipeline.errors import AscertainError
 from pipeline.extract import open_extract
 from pipeline.stats import (
@@ -37,7 +34,10 @@ from pipeline.stats import (
     protect_cells,
 )
 from pipeline.stats._disclosure import Relation
+from pipeline.stats._disclosure import shown as shown_count
 from pipeline.stats._verification import CorrectedAccuracy, verification_corrected
+from pipeline.workflows._reference import Reference, read_reference
+from pipeline.workflows.prepare import BuildOptions, prepare
 
 __all__ = ["Validation", "render_validation", "validate_study", "validation_cells"]
 
@@ -107,8 +107,9 @@ def validate_study(
 
     Args:
         study_file: The study file.
-        reference: The reference file (see :mod:`pipeline._reference`).
-        extract: An extract (folder, mapping file or connection URI) instead of the study's.
+        reference: The reference file (see :mod:`pipeline.workflows._reference`).
+        extract: An extract (folder, mapping file or connection URI) instead of the study's;
+            read on DuckDB with the study's ``engine:`` settings, as a build.
         coverage: ``complete`` or ``reviewed``, when the file does not declare it.
         sampling: ``simple`` or ``by_definition``, when the file does not declare it.
 
@@ -116,13 +117,12 @@ def validate_study(
         AscertainError: Bad config, extract or reference (a bad row names its line); a
             reference patient not in the extract; no outcome in the reference.
     """
-    loaded = load_study(study_file)
+    ready = prepare(study_file, BuildOptions(extract=extract))
+    loaded, plan = ready.loaded, ready.plan
     ref = read_reference(reference, coverage=coverage, sampling=sampling)
-    plan = compile_study(loaded)
-    source = extract or loaded.study.extract
     wanted = ("patient_base", "condition_onsets", "encounter_summary")
-    with open_extract(source if isinstance(source, str) else source.resolve(), plan.sources) as x:
-        run = DuckDBEngine().run(_through(plan, wanted), x.tables)
+    with open_extract(ready.extract, plan.sources) as x:
+        run = ready.engine.run(_through(plan, wanted), x.tables)
     patients = pl.from_arrow(run.outputs["patient_base"]).select(
         pl.col("patient_id").cast(pl.String)
     )
@@ -349,12 +349,8 @@ def render_validation(results: list[Validation], threshold: int) -> str:
     values, relations, latent = validation_cells(results)
     hidden = protect_cells(values, relations, threshold, latent=latent, priority={"total": 1})
 
-    def show(key: str) -> str:
-        if key not in hidden:
-            return str(values[key])
-        return f"<{threshold}" if 0 < values[key] < threshold else "*"
-
-    shown = {key: show(key) for key in values if key not in latent}
+    # The report's own marking of hidden counts (pipeline.stats._disclosure.shown).
+    shown = {k: shown_count(values[k], k, hidden, threshold) for k in values if k not in latent}
     lines = []
     for r in results:
         c = r.condition

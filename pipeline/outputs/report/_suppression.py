@@ -12,11 +12,11 @@ cell of a single system, suppressed together by :func:`pipeline.stats.protect_ce
   patients row); quality lines add up to the rows read of their source table (a count that is
   not printed but taken as known).
 - Relations across tables: every count of patients of the cohort is described by whom it counts
-  (:mod:`._report_cells`) and tied to latent atoms of the cohort, which implies every identity
+  (:mod:`._cells`) and tied to latent atoms of the cohort, which implies every identity
   between the tables (events of X = both + first only in the dependence table + Table 1's
   "incident X, prevalent Y" cell, combinations against incidence, and so on). Counts with the
   same atoms share a key. The numbers at risk under the curves are tied to the incidence table
-  through latent bins of follow-up time (:mod:`._report_at_risk`).
+  through latent bins of follow-up time (:mod:`._at_risk`).
 - Complements are chosen from the detailed tables first (Table 1 by outcome, combinations,
   dependence, quality), then Table 1's overall column and the flow, then events and group
   sizes, and the cohort size and source population last: those are the numbers readers need.
@@ -39,9 +39,9 @@ from typing import Any
 
 import polars as pl
 
-from pipeline.outputs._report_cells import Spec, aliases, atom_relations, cohort_atoms
+from pipeline.outputs.report._cells import Spec, aliases, atom_relations, cohort_atoms
 from pipeline.stats import baseline_variables, protect_cells
-from pipeline.stats._disclosure import Relation
+from pipeline.stats._disclosure import Relation, shown
 
 # The flow's last remaining count: the cohort size, which manifest.json (rows.cohort) also
 # states exactly, so a reader knows it whatever the report shows.
@@ -69,7 +69,7 @@ class Block:
         counts: Count columns (the parts).
         total: Column holding each row's total, if rows add up.
         relations: Further identities between keys (beyond rows adding up to ``total``).
-        meanings: For counts of cohort patients, which patients (see :mod:`._report_cells`).
+        meanings: For counts of cohort patients, which patients (see :mod:`._cells`).
         extra: Counts that are not printed but taken as known (e.g. rows read), by key.
         unprinted: Keys of counts that are not printed but that readers can work out from
             printed ones (the patients whose follow-up ends between two columns of a
@@ -168,20 +168,6 @@ def hidden_keys(
 
 def keyed_frame(rows: list[dict[str, Any]], schema: dict[str, Any]) -> pl.DataFrame:
     return pl.DataFrame(rows, schema=schema, orient="row")
-
-
-def hidden_marker(value: int, threshold: int) -> str:
-    """How a hidden count reads: ``<threshold`` when it is small, else ``*``.
-
-    A count hidden only so that a small one cannot be worked out by subtraction is larger than
-    the threshold; showing it as ``<5`` would misstate it.
-    """
-    return f"<{threshold}" if 0 < value < threshold else "*"
-
-
-def shown(value: int, key: str, hidden: frozenset[str], threshold: int) -> str:
-    """A count as published: the number, or its hidden marker."""
-    return hidden_marker(value, threshold) if key in hidden else str(value)
 
 
 def masked(block: Block, hidden: frozenset[str], threshold: int) -> pl.DataFrame:

@@ -1,7 +1,7 @@
 """The report's count tables other than Table 1: flow, incidence, combinations, dependence, quality.
 
 Each ``*_block`` function returns the table's raw counts with a key per count, the relations
-between them and whom each count describes (a :class:`._report_suppression.Block`); the
+between them and whom each count describes (a :class:`._suppression.Block`); the
 ``*_summary`` functions turn a block into the table as published once the hidden keys are
 chosen, leaving out every number derived from a hidden count.
 """
@@ -14,8 +14,8 @@ from typing import Any
 
 import polars as pl
 
-from pipeline.outputs._report_cells import Spec
-from pipeline.outputs._report_suppression import Block, keyed_frame, masked, shown
+from pipeline.outputs.report._cells import Spec
+from pipeline.outputs.report._suppression import Block, keyed_frame, masked
 from pipeline.stats import (
     crude_proportion,
     cumulative_incidence_at_horizon,
@@ -23,6 +23,7 @@ from pipeline.stats import (
     outcome_combinations,
     pairwise_dependence,
 )
+from pipeline.stats._disclosure import shown
 
 _DERIVED_DEPENDENCE = (
     "odds_ratio",

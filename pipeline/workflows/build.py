@@ -1,0 +1,202 @@
+"""``ascertain build``: run a prepared study's plan and write its outputs.
+
+The engine is chosen by :func:`pipeline.workflows.prepare.prepare`; the quality log's checks,
+the manifest and the files are the outputs package's (``outputs/_quality_log.py``,
+``outputs/_manifest.py``, ``outputs/_write.py``). What stays here is the order: check the
+folder, open the extract, run, check the row accounting and usability, then write.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from concurrent.futures import ThreadPoolExecutor
+from contextlib import ExitStack
+from dataclasses import dataclass, field
+from importlib.metadata import PackageNotFoundError, version
+from pathlib import Path
+
+import pyarrow as pa
+
+from pipeline.compile import EVIDENCE_COUNTS, Plan, compile_study, unmatched_definitions
+from pipeline.config import load_study
+from pipeline.engine import RunResult, SparkEngine
+from pipeline.engine._duckdb import StageCallback
+from pipeline.extract import HadoopFiles, is_hadoop_uri, open_extract
+from pipeline.outputs import (
+    check_usable,
+    describe_files,
+    extract_inputs,
+    extract_root,
+    make_manifest,
+    study_keys,
+    write_outputs,
+)
+from pipeline.outputs._ownership import BUILD
+from pipeline.outputs._quality_log import check_row_accounting, locate_first_rows
+from pipeline.workflows.prepare import BuildOptions, prepare
+
+__all__ = ["BuildOptions", "BuildResult", "build_study", "evidence_counts", "plan_study"]
+
+
+def tool_version() -> str:
+    """The installed version of ascertain (``0+unknown`` when run from a source tree)."""
+    try:
+        return version("ascertain")
+    except PackageNotFoundError:
+        return "0+unknown"
+
+
+@dataclass(frozen=True)
+class BuildResult:
+    """What a build produced: where, the plan it ran, and the engine's report."""
+
+    out: Path
+    files: list[Path]
+    plan: Plan
+    run: RunResult
+    notes: list[str] = field(default_factory=list)
+    """Sentences for the user, e.g. that the previous cohort's report was removed."""
+    warnings: list[str] = field(default_factory=list)
+    """Things that may mislead without stopping the build: a definition matching no row."""
+
+
+def plan_study(study_file: Path) -> Plan:
+    """Load and compile a study without running it."""
+    return compile_study(load_study(study_file))
+
+
+def build_study(
+    study_file: Path,
+    options: BuildOptions | None = None,
+    *,
+    on_stage: StageCallback | None = None,
+) -> BuildResult:
+    """Build a study's cohort and write its outputs.
+
+    The output folder must be new, empty or a previous build's (see
+    :mod:`pipeline.outputs._ownership`); it is checked before the engine starts.
+
+    Raises:
+        AscertainError: Bad config, a bad extract, an engine failure, or an output folder
+            holding files ascertain did not write (OutputFolderError); nothing is written.
+    """
+    ready = prepare(study_file, options, owner=BUILD)
+    loaded, plan, extract, engine = ready.loaded, ready.plan, ready.extract, ready.engine
+    study, out, threads, notes = loaded.study, ready.out, ready.threads, ready.notes
+    assert out is not None  # prepare resolves the folder when given an owner
+    with ExitStack() as stack:
+        hadoop = None
+        if is_hadoop_uri(extract) and isinstance(engine, SparkEngine):
+            # The session starts first: the extract is listed and hashed through its file
+            # systems, and a scheme it lacks is refused before any stage runs.
+            hadoop = HadoopFiles.of(stack.enter_context(engine.started()))
+        opened = stack.enter_context(open_extract(extract, plan.sources, hadoop=hadoop))
+        hasher = stack.enter_context(ThreadPoolExecutor(1))
+        tables = opened.tables
+        extract_files = extract_inputs(extract, opened.files)
+        # Hashing the extract overlaps with the engine's work instead of adding to it.
+        hashed_extract = hasher.submit(describe_files, extract_files, extract_root(extract))
+        started = dt.datetime.now(dt.UTC)
+        run = engine.run(plan, tables, on_stage=on_stage)
+        finished = dt.datetime.now(dt.UTC)
+        extract_entries = hashed_extract.result()
+    quality = check_row_accounting(run.outputs["quality"], run.outputs["rows_read"])
+    located_quality = locate_first_rows(run.outputs["quality"], tables, extract)
+    check_usable(
+        study,
+        {table: counts["read"] for table, counts in quality.items()},
+        located_quality,
+        run.outputs["attrition"],
+        run.outputs["cohort"].num_rows,
+    )
+    manifest = make_manifest(
+        tool_version=tool_version(),
+        engine={
+            "name": run.engine,
+            "version": run.engine_version,
+            "threads": threads,
+            **run.engine_info,
+        },
+        study_file=loaded.file,
+        # the definition files and every code list file they read (CSV, header, hierarchy)
+        definition_files=[
+            *loaded.catalog.files.values(),
+            *loaded.catalog.list_files(),
+            *loaded.local_codes.files,
+        ],
+        measure_files=loaded.measures.files.values(),
+        library=study.library,
+        extract=extract,
+        extract_entries=extract_entries,
+        out=out,
+        plan_hash=plan.content_hash(),
+        database=opened.database.as_manifest() if opened.database else None,
+        keys=study_keys(study),
+        rows={
+            "cohort": run.outputs["cohort"].num_rows,
+            **(
+                {"persontime": run.outputs["persontime"].num_rows}
+                if "persontime" in run.outputs
+                else {}
+            ),
+            **{row["source_table"]: row["n_rows"] for row in run.outputs["rows_read"].to_pylist()},
+        },
+    )
+    unmatched = unmatched_definitions(loaded, evidence_counts(run.outputs[EVIDENCE_COUNTS]))
+    run_info = {
+        "study": study.study,
+        "study_file": loaded.file.name,
+        "extract": manifest["locations"]["extract_from_study"],
+        "started_utc": started.isoformat(timespec="seconds"),
+        "finished_utc": finished.isoformat(timespec="seconds"),
+        "engine": {
+            "name": run.engine,
+            "version": run.engine_version,
+            **run.engine_info,
+            **run.run_settings,
+        },
+        "quality": quality,
+        "unmatched_definitions": [
+            {"use": u.what, "definition": u.definition or None, "evidence": list(u.keys)}
+            for u in unmatched
+        ],
+        "counts": {
+            "cohort_patients": run.outputs["cohort"].num_rows,
+            "attrition": run.outputs["attrition"].select(["step", "remaining"]).to_pylist(),
+        },
+        "stages": [
+            {
+                "name": s.name,
+                "kind": s.kind,
+                "seconds": round(s.seconds, 3),
+                "rows": s.rows,
+                "memory_bytes": s.memory_bytes,
+            }
+            for s in run.stages
+        ],
+    }
+    written = write_outputs(
+        out,
+        cohort=run.outputs["cohort"],
+        population=run.outputs["population"],
+        attrition=run.outputs["attrition"],
+        quality=located_quality,
+        columns=plan.columns,
+        manifest=manifest,
+        run_info=run_info,
+        persontime=run.outputs.get("persontime"),
+        persontime_columns=dict(plan.output_columns).get("persontime", ()),
+    )
+    return BuildResult(
+        out,
+        written.files,
+        plan,
+        run,
+        [*notes, *written.notes],
+        [u.message() for u in unmatched],
+    )
+
+
+def evidence_counts(table: pa.Table) -> dict[int, int]:
+    """Evidence number -> patient-days, from a plan's ``evidence_counts`` output."""
+    return {row["evidence"]: row["n_events"] for row in table.to_pylist()}
