@@ -195,7 +195,7 @@ def sql(
         raise typer.Exit(2)
     engines = {e.DIALECT: e for e in (DuckDBEngine, SparkEngine)}
     prepared = engines[dialect].prepare(plan) if dialect in engines else plan
-    typer.echo(prepared.explain(dialect, only=stage), nl=False)
+    typer.echo(prepared.describe(dialect, only=stage), nl=False)
 
 
 @app.command()

@@ -190,7 +190,7 @@ INLINE_DM = """\
 
 def _plan_sql(definitions: Path) -> str:
     loaded = load_study(definitions / "studies" / "orvane_multimorbidity.yaml")
-    return compile_study(loaded).explain()
+    return compile_study(loaded).describe()
 
 
 TYPE1 = [f"250.{d}{t}" for d in range(10) for t in (1, 3)]
@@ -220,7 +220,7 @@ def test_a_list_compiles_to_the_same_sql_as_its_codes_inline(tmp_path: Path) -> 
     assert _plan_sql(listed) == _plan_sql(inline)
     assert _plan_sql(marked) == _plan_sql(inline)
     # and the demo's own SQL is that of the inline codes
-    assert _plan_sql(inline) == compile_study(load_study(DEMO_STUDY)).explain()
+    assert _plan_sql(inline) == compile_study(load_study(DEMO_STUDY)).describe()
 
 
 def _matched_patients(tmp_path: Path, definitions: Path, codes: list[tuple[str, str]]) -> set[str]:
@@ -239,10 +239,10 @@ def _matched_patients(tmp_path: Path, definitions: Path, codes: list[tuple[str, 
     )
     (extract / "prescriptions.csv").write_text("patient_id,start_date,atc\n", encoding="utf-8")
     loaded = load_study(definitions / "studies" / "orvane_multimorbidity.yaml")
-    plan = compile_study(loaded).through("coded_evidence", order=("patient_id", "event_date"))
+    plan = compile_study(loaded).through("coded_evidence_days", order=("patient_id", "event_date"))
     result = DuckDBEngine(threads=1).run(plan, discover_extract(extract, plan.sources))
     wanted = evidence_number("type2_diabetes.dm_code")
-    rows = result.outputs["coded_evidence"].to_pylist()
+    rows = result.outputs["coded_evidence_days"].to_pylist()
     return {codes[int(r["patient_id"][1:])][1] for r in rows if r["evidence"] == wanted}
 
 

@@ -87,7 +87,7 @@ def matched(tmp_path_factory: pytest.TempPathFactory) -> dict[str, set[str]]:
     )
     _write_csv(folder / "prescriptions.csv", ["patient_id", "start_date", "atc"], [])
     loaded = load_study(DEMO_STUDY)
-    plan = compile_study(loaded).through("coded_evidence", order=("patient_id", "event_date"))
+    plan = compile_study(loaded).through("coded_evidence_days", order=("patient_id", "event_date"))
     result = DuckDBEngine(threads=2).run(plan, discover_extract(folder, plan.sources))
     found: dict[str, set[str]] = {}
     days: dict[tuple[str, str], list[str]] = {}
@@ -95,7 +95,7 @@ def matched(tmp_path_factory: pytest.TempPathFactory) -> dict[str, set[str]]:
         evidence_number(key): key
         for key, _ in CompileContext(loaded.study, loaded.catalog).evidence
     }
-    for row in result.outputs["coded_evidence"].to_pylist():
+    for row in result.outputs["coded_evidence_days"].to_pylist():
         key = keys[row["evidence"]]
         found.setdefault(key, set()).add(row["patient_id"])
         days.setdefault((key, row["patient_id"]), []).append(row["event_date"].isoformat())

@@ -84,7 +84,7 @@ def sites(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, Path]:
 
 
 @pytest.mark.parametrize(
-    "stage", ["patient_base", "encounter_summary", "coded_evidence", "measurement_values"]
+    "stage", ["patient_base", "encounter_summary", "coded_evidence_days", "measurement_values"]
 )
 def test_both_sites_give_the_canonical_tables(sites: tuple[Path, Path], stage: str) -> None:
     order = (
@@ -92,8 +92,8 @@ def test_both_sites_give_the_canonical_tables(sites: tuple[Path, Path], stage: s
         if stage in ("patient_base", "encounter_summary")
         else (
             "patient_id",
-            "evidence" if stage == "coded_evidence" else "measure",
-            "event_date" if stage == "coded_evidence" else "obs_date",
+            "evidence" if stage == "coded_evidence_days" else "measure",
+            "event_date" if stage == "coded_evidence_days" else "obs_date",
         )
     )
     canonical = run_stage(HANDMADE, stage, order=order)

@@ -25,7 +25,7 @@ DESIGN_STUDIES = sorted(p.relative_to(DESIGNS) for p in DESIGNS.glob("*/study*.y
 def test_demo_plan_matches_golden(dialect: str, update_golden: bool) -> None:
     plan = plan_study(DEMO_STUDY)
     # Spark runs the plan after its rewrite rules; the golden shows exactly what it runs.
-    text = (spark_plan(plan) if dialect == "spark" else plan).explain(dialect)
+    text = (spark_plan(plan) if dialect == "spark" else plan).describe(dialect)
     golden = GOLDEN / f"{dialect}.sql"
     if update_golden:
         golden.write_text(text, encoding="utf-8")
@@ -37,7 +37,7 @@ def test_demo_plan_matches_golden(dialect: str, update_golden: bool) -> None:
 def test_design_plan_matches_golden(study: Path, dialect: str, update_golden: bool) -> None:
     # One golden file per design fixture's study file and dialect: tests/golden/designs/<fixture>/.
     plan = plan_study(DESIGNS / study)
-    text = (spark_plan(plan) if dialect == "spark" else plan).explain(dialect)
+    text = (spark_plan(plan) if dialect == "spark" else plan).describe(dialect)
     golden = GOLDEN.parent / "designs" / study.parent / f"{study.stem}.{dialect}.sql"
     if update_golden:
         golden.parent.mkdir(parents=True, exist_ok=True)
@@ -58,7 +58,7 @@ def test_every_design_study_has_a_golden_file() -> None:
 
 def test_compiling_twice_gives_identical_plans() -> None:
     first, second = plan_study(DEMO_STUDY), plan_study(DEMO_STUDY)
-    assert first.explain() == second.explain()
+    assert first.describe() == second.describe()
     assert first.content_hash() == second.content_hash()
 
 

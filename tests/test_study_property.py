@@ -171,7 +171,7 @@ def test_compiling_twice_gives_the_same_sql(
 ) -> None:
     path = _write(tmp_path / "same", study, extract)
     first, second = plan_study(path), plan_study(path)
-    assert first.explain("duckdb") == second.explain("duckdb")
+    assert first.describe("duckdb") == second.describe("duckdb")
     assert first.content_hash() == second.content_hash()
 
 

@@ -1,5 +1,6 @@
 """Compile a study into a plan of named SQL stages (sqlglot trees), without running anything."""
 
+from pipeline.compile import names
 from pipeline.compile._compiler import PASSES, compile_study, unmatched_definitions
 from pipeline.compile._matches import EVIDENCE_COUNTS, Use
 from pipeline.compile._measurements import READING_PATTERN
@@ -29,6 +30,7 @@ __all__ = [
     "Stage",
     "Use",
     "compile_study",
+    "names",
     "unmatched_definitions",
     "unreadable_patient_date",
 ]

@@ -1,17 +1,19 @@
 """The stages of the code audit (``ascertain codes``): which extract codes each evidence matched.
 
-The audit runs the study's own plan up to ``code_matches`` (so a code counts for a piece of
+The audit runs the study's own plan up to ``codes_to_evidence`` (so a code counts for a piece of
 evidence exactly when the build would count it) and adds the stages below. Each coded extract
 table is read once, in ``audit_used``: its usable rows, judged as the quality log judges them
 (a row the quality log calls used is here, and no other), grouped by raw code, patient, year
-and prescription length. Everything after reads that grouping and the small ``code_matches``.
+and prescription length. Everything after reads that grouping and the small ``codes_to_evidence``.
 """
 
 from __future__ import annotations
 
 from sqlglot import exp
 
+from pipeline.compile import names
 from pipeline.compile._context import CompileContext
+from pipeline.compile._judged import same_raw_code
 from pipeline.compile._plan import SOURCE_PROBLEM, Plan, Stage
 from pipeline.compile._sources import (
     DIAGNOSES,
@@ -19,7 +21,6 @@ from pipeline.compile._sources import (
     coded_tables,
     grouped_rows,
     raw_code_columns,
-    same_raw_code,
 )
 from pipeline.compile._sql import days_between, query
 
@@ -35,8 +36,8 @@ SELECT
   r.patient_id, CAST(EXTRACT(YEAR FROM r.row_date) AS INT) AS year, r.duration_days,
   CAST(COUNT(*) AS BIGINT) AS n_rows
 FROM :rows
-JOIN patient_base AS p ON p.patient_id = r.patient_id
-JOIN extract_codes AS c ON :same_code
+JOIN :base AS p ON p.patient_id = r.patient_id
+JOIN :found_codes AS c ON :same_code
 WHERE r.source_problem IS NULL
   AND r.row_date IS NOT NULL
   AND c.problem IS NULL
@@ -47,14 +48,14 @@ GROUP BY
   r.patient_id, CAST(EXTRACT(YEAR FROM r.row_date) AS INT), r.duration_days
 """
 
-# The build's rule (compile/_evidence.py, _CODED_MATCHES and coded_evidence): a row counts for
+# The build's rule (compile/_evidence.py, _CODED_MATCHES and coded_evidence_days): a row counts for
 # an evidence when its code is included and not excluded, and a prescription lasts long enough.
 _MATCHED = """
 SELECT
   m.evidence, u.source_table, u.raw_system, u.raw_code, u.raw_source, u.code_system, u.code,
   u.patient_id, u.year, u.duration_days, u.n_rows
 FROM audit_used AS u
-JOIN code_matches AS m ON :same_code
+JOIN :matches AS m ON :same_code
 WHERE m.included AND NOT m.excluded
   AND (m.min_days IS NULL OR u.duration_days >= m.min_days)
 """
@@ -139,7 +140,7 @@ def _same_group(left: str, right: str) -> exp.Expression:
 
 
 def audit_stages(ctx: CompileContext) -> tuple[Stage, ...]:
-    """The audit's own stages, to run after the study's plan through ``code_matches``."""
+    """The audit's own stages, to run after the study's plan through ``codes_to_evidence``."""
     parts = [_table_rows(ctx, t) for t in coded_tables(ctx)]
     rows = parts[0] if len(parts) == 1 else parts[0].union(parts[1], distinct=False)
     sources = tuple(f"src_{t}" for t in coded_tables(ctx))
@@ -151,14 +152,20 @@ def audit_stages(ctx: CompileContext) -> tuple[Stage, ...]:
                 rows=rows.subquery("r"),
                 same_code=same_raw_code("r", "c"),
                 end_of_data=ctx.study.end_of_data,
+                base=exp.to_table(names.PATIENT_BASE),
+                found_codes=exp.to_table(names.DISTINCT_CODES),
             ),
-            (*sources, "patient_base", "extract_codes"),
+            (*sources, names.PATIENT_BASE, names.DISTINCT_CODES),
             "the usable coded rows, one pass per table, grouped by code, patient and year",
         ),
         Stage(
             "audit_matched",
-            query(_MATCHED, same_code=same_raw_code("u", "m")),
-            ("audit_used", "code_matches"),
+            query(
+                _MATCHED,
+                same_code=same_raw_code("u", "m"),
+                matches=exp.to_table(names.CODES_TO_EVIDENCE),
+            ),
+            ("audit_used", names.CODES_TO_EVIDENCE),
             "each group of usable rows with each evidence its code counts for",
         ),
         Stage(
@@ -192,9 +199,9 @@ def audit_plan(plan: Plan, ctx: CompileContext) -> Plan:
     """The study's stages that the audit reads, then the audit's own, with its outputs.
 
     Raises:
-        KeyError: The study reads no coded evidence (no ``code_matches`` stage).
+        KeyError: The study reads no coded evidence (no ``codes_to_evidence`` stage).
     """
-    plan.stage("code_matches")
+    plan.stage(names.CODES_TO_EVIDENCE)
     audit = audit_stages(ctx)
     needed = {d for stage in audit for d in stage.depends_on}
     for stage in reversed(plan.stages):
@@ -202,4 +209,6 @@ def audit_plan(plan: Plan, ctx: CompileContext) -> Plan:
             needed.update(stage.depends_on)
     stages = (*(s for s in plan.stages if s.name in needed), *audit)
     sources = tuple(s for s in plan.sources if s.relation in needed)
-    return Plan(plan.study, sources, stages, ()).with_outputs((*AUDIT_OUTPUTS, "code_matches"))
+    return Plan(plan.study, sources, stages, ()).with_outputs(
+        (*AUDIT_OUTPUTS, names.CODES_TO_EVIDENCE)
+    )

@@ -1,7 +1,9 @@
-"""Stages from the source population to the analysis table: eligibility, attrition, follow-up.
+"""The passes from the source population to the analysis table (``COHORT_PASSES``).
 
-Every eligibility step is one boolean column; the attrition log counts patients who pass all
-steps before it and fail it, so each removed patient is counted exactly once, in order.
+Index, look-back onsets, contact, baseline windows, eligibility, attrition and population, the
+analysis table: each pass takes the draft plan and returns it with its stages added, and finds
+what earlier passes built through the draft (``draft.has``), never by rebuilding it. Every
+eligibility step is one boolean column of ``eligibility`` (the log: ``compile/_attrition.py``).
 """
 
 from __future__ import annotations
@@ -10,6 +12,8 @@ import datetime as dt
 
 from sqlglot import exp
 
+from pipeline.compile import names
+from pipeline.compile._attrition import attrition_query
 from pipeline.compile._baseline import (
     covariate_column,
     measure_covariates_stage,
@@ -24,11 +28,21 @@ from pipeline.compile._contact import (
     negative_followup_check,
 )
 from pipeline.compile._context import CompileContext
-from pipeline.compile._index import index_description, index_stage
-from pipeline.compile._outcomes import at_risk, cleared_outcomes, outcome_columns
+from pipeline.compile._draft import Draft, Pass
+from pipeline.compile._index import index_stage
+from pipeline.compile._outcomes import at_risk, cleared_outcomes, outcome_expressions
 from pipeline.compile._plan import Stage
 from pipeline.compile._rules import lookback_stages
+from pipeline.compile._sources import coded_tables
 from pipeline.compile._sql import add_days, age_in_years, days_between, expression, value
+from pipeline.compile.names import (
+    clear_evidence_column,
+    judged_stage,
+    onset_column,
+    prevalent_column,
+    step_column,
+    step_evidence_column,
+)
 from pipeline.config import Criterion
 
 _STEP_NAMES = {
@@ -98,7 +112,7 @@ def _step(ctx: CompileContext, number: int, criterion: Criterion) -> tuple[exp.E
     if criterion.encounters is not None:
         rule = criterion.encounters
         return (
-            column(f"step_evidence_{number}") >= rule.at_least,
+            column(step_evidence_column(number)) >= rule.at_least,
             f"at least {rule.at_least} encounters {_window_text(rule.window)}",
         )
     if criterion.practice is not None:
@@ -107,27 +121,27 @@ def _step(ctx: CompileContext, number: int, criterion: Criterion) -> tuple[exp.E
             f"registered at practice {', '.join(sorted(criterion.practice))}",
         )
     if criterion.not_prevalent is not None:
-        onset = column(f"onset_{criterion.not_prevalent}")
+        onset = column(onset_column(criterion.not_prevalent))
         return (
             exp.or_(onset.is_(exp.null()), onset > column("index_date")),
             f"no {criterion.not_prevalent} on or before the index date",
         )
     if criterion.no_evidence is not None:
         return (
-            column(f"step_evidence_{number}").eq(0),
+            column(step_evidence_column(number)).eq(0),
             f"none of the listed evidence {_window_text(criterion.no_evidence.window)}",
         )
     if criterion.in_contact_at_index is not None:
         return in_contact_predicate(criterion)
-    names = [c.condition for c in ctx.outcomes]
+    outcomes = [c.condition for c in ctx.outcomes]
     return (
-        exp.or_(*(at_risk(ctx, n) for n in names)),
-        f"at risk of at least one outcome (not prevalent for all of {', '.join(names)})",
+        exp.or_(*(at_risk(ctx, n) for n in outcomes)),
+        f"at risk of at least one outcome (not prevalent for all of {', '.join(outcomes)})",
     )
 
 
 def _prevalent(name: str) -> exp.Expression:
-    onset = exp.column(f"onset_{name}")
+    onset = exp.column(onset_column(name))
     return exp.func(
         "COALESCE",
         exp.and_(onset.is_(exp.null()).not_(), onset <= exp.column("index_date")),
@@ -187,79 +201,69 @@ def _lookback_outcomes(ctx: CompileContext) -> list[str]:
 def _onset_column(name: str, lookback: list[str]) -> exp.Expression:
     """A condition's onset: from its look-back stage when it has one, else from all history."""
     if name in lookback:
-        return exp.column("onset_date", f"lb{lookback.index(name)}").as_(f"onset_{name}")
-    return exp.column(f"onset_{name}", "o")
+        return exp.column("onset_date", f"lb{lookback.index(name)}").as_(onset_column(name))
+    return exp.column(onset_column(name), "o")
 
 
-def _eligibility_query(ctx: CompileContext, steps: list[exp.Expression]) -> exp.Query:
-    names = [c.condition for c in ctx.outcomes]
-    onset_columns = [f"onset_{n}" for n in ctx.flagged]
+def _eligibility_query(
+    ctx: CompileContext, steps: list[exp.Expression], read: set[str]
+) -> exp.Query:
+    """The eligibility table; ``read``: which optional earlier stages the plan has."""
+    outcomes = [c.condition for c in ctx.outcomes]
+    onset_columns = [onset_column(n) for n in ctx.flagged]
     lookback = _lookback_outcomes(ctx)
-    has_windows = window_counts_stage(ctx) is not None
     window_columns = [
-        f"step_evidence_{i}"
+        step_evidence_column(i)
         for i, c in enumerate(ctx.eligibility, 1)
         if c.encounters or c.no_evidence
     ]
     cleared = cleared_outcomes(ctx)
-    base = (
-        exp.select(
-            exp.column("patient_id", "i"),
-            exp.column("sex", "p"),
-            exp.column("birth_date", "p"),
-            exp.column("death_date", "p"),
-            exp.column("practice_id", "p"),
-            exp.column("registration_date", "p"),
-            exp.column("deregistration_date", "p"),
-            exp.column("index_date", "i"),
-            exp.column("first_encounter", "s"),
-            exp.column("last_encounter", "s"),
-            age_in_years(birth=exp.column("birth_date", "p"), on=exp.column("index_date", "i")).as_(
-                "age_at_index"
-            ),
-            *(_onset_column(c, lookback) for c in ctx.flagged),
-            *(exp.column(c, "w") for c in window_columns),
-            *(
-                exp.func("COALESCE", exp.column(f"clear_evidence_{n}", "w"), 0).as_(
-                    f"clear_evidence_{n}"
-                )
-                for n in cleared
-            ),
-            *_contact_columns(ctx),
-        )
-        .from_("index_dates AS i")
-        .join("patient_base AS p", on="p.patient_id = i.patient_id")
-        .join("encounter_summary AS s", on="s.patient_id = i.patient_id")
-        .join("condition_onsets AS o", on="o.patient_id = i.patient_id", join_type="left")
-    )
+    base = exp.select(
+        exp.column("patient_id", "i"),
+        exp.column("sex", "p"),
+        exp.column("birth_date", "p"),
+        exp.column("death_date", "p"),
+        exp.column("practice_id", "p"),
+        exp.column("registration_date", "p"),
+        exp.column("deregistration_date", "p"),
+        exp.column("index_date", "i"),
+        exp.column("first_encounter", "s"),
+        exp.column("last_encounter", "s"),
+        age_in_years(birth=exp.column("birth_date", "p"), on=exp.column("index_date", "i")).as_(
+            "age_at_index"
+        ),
+        *(_onset_column(c, lookback) for c in ctx.flagged),
+        *(exp.column(c, "w") for c in window_columns),
+        *(
+            exp.func("COALESCE", exp.column(clear_evidence_column(n), "w"), 0).as_(
+                clear_evidence_column(n)
+            )
+            for n in cleared
+        ),
+        *_contact_columns(ctx, read),
+    ).from_(exp.to_table(names.INDEX_DATES).as_("i"))
+    base = _joined(base, names.PATIENT_BASE, "p", left=False)
+    base = _joined(base, names.ENCOUNTER_SUMMARY, "s", left=False)
+    base = _joined(base, names.CONDITION_ONSETS, "o")
     for number, name in enumerate(lookback):
         alias = f"lb{number}"
-        base = base.join(
-            exp.to_table(f"onset_{name}_lookback").as_(alias),
-            on=exp.column("patient_id", alias).eq(exp.column("patient_id", "i")),
-            join_type="left",
-        )
-    if has_windows:
-        base = base.join("window_counts AS w", on="w.patient_id = i.patient_id", join_type="left")
-    if ctx.study.followup.contact == "any_activity":
-        base = base.join("last_contact AS lc", on="lc.patient_id = i.patient_id", join_type="left")
-    if _has_contact_step(ctx):
-        base = base.join(
-            "contact_at_index AS ci", on="ci.patient_id = i.patient_id", join_type="left"
-        )
+        base = _joined(base, names.onset_stage(name, lookback=True), alias)
+    for stage, alias in _OPTIONAL_JOINS:
+        if stage in read:
+            base = _joined(base, stage, alias)
     with_prevalence = exp.select(
-        exp.Star(), *(_prevalent(n).as_(f"prevalent_{n}") for n in names)
+        exp.Star(), *(_prevalent(n).as_(prevalent_column(n)) for n in outcomes)
     ).from_(base.subquery("b"))
     with_followup = _with_followup(ctx, with_prevalence.subquery("v"))
     flags = [
-        exp.func("COALESCE", predicate, exp.false()).as_(f"step_{i}")
+        exp.func("COALESCE", predicate, exp.false()).as_(step_column(i))
         for i, predicate in enumerate(steps, start=1)
     ]
     return exp.select(
         *_BASE_COLUMNS,
         *onset_columns,
-        *(f"prevalent_{n}" for n in names),
-        *(f"clear_evidence_{n}" for n in cleared),
+        *(prevalent_column(n) for n in outcomes),
+        *(clear_evidence_column(n) for n in cleared),
         "horizon_end",
         "followup_end",
         "end_reason",
@@ -267,15 +271,25 @@ def _eligibility_query(ctx: CompileContext, steps: list[exp.Expression]) -> exp.
     ).from_(with_followup.subquery("f"))
 
 
-def _has_contact_step(ctx: CompileContext) -> bool:
-    return any(c.in_contact_at_index is not None for c in ctx.eligibility)
+# Optional earlier stages the eligibility table joins when the plan has them, with their alias.
+_OPTIONAL_JOINS = (
+    (names.WINDOW_COUNTS, "w"),
+    (names.LAST_CONTACT, "lc"),
+    (names.CONTACT_AT_INDEX, "ci"),
+)
 
 
-def _contact_columns(ctx: CompileContext) -> list[exp.Expression]:
+def _joined(base: exp.Select, stage: str, alias: str, *, left: bool = True) -> exp.Select:
+    """``base`` joined to ``stage AS alias`` on the index patient (``i.patient_id``)."""
+    on = exp.column("patient_id", alias).eq(exp.column("patient_id", "i"))
+    return base.join(exp.to_table(stage).as_(alias), on=on, join_type="left" if left else None)
+
+
+def _contact_columns(ctx: CompileContext, read: set[str]) -> list[exp.Expression]:
     columns: list[exp.Expression] = []
-    if ctx.study.followup.contact == "any_activity":
+    if names.LAST_CONTACT in read:
         columns.append(exp.column("last_contact", "lc"))
-    if _has_contact_step(ctx):
+    if names.CONTACT_AT_INDEX in read:
         columns.append(exp.column("last_contact_by_index", "ci"))
     return columns
 
@@ -290,148 +304,135 @@ def _complete_followup() -> tuple[exp.Expression, str]:
     )
 
 
-def cohort_stages(ctx: CompileContext) -> tuple[Stage, ...]:
-    """Index, baseline windows, eligibility flags, the attrition log and the analysis table."""
+def _steps(ctx: CompileContext) -> tuple[list[tuple[exp.Expression, str]], list[str]]:
+    """Each eligibility step's predicate and text, and its name in the attrition log."""
     study = ctx.study
     steps = [_step(ctx, i, c) for i, c in enumerate(ctx.eligibility, start=1)]
-    names = [_step_name(c) for c in ctx.eligibility]
+    step_names = [_step_name(c) for c in ctx.eligibility]
     if eligibility_with_default(study)[1]:
         predicate, text = steps[0]
         steps[0] = (predicate, f"{text} ({DEFAULT_STEP_TEXT})")
     if study.followup.incomplete == "exclude":
         steps.append(_complete_followup())
-        names.append("complete_followup")
-    present = {"coded_events"} if ctx.uses_coded_events else set()
-    present |= {"src_measurements"} if ctx.measures else set()
-    contact = contact_stages(study, ctx.eligibility, tuple(sorted(present)))
-    stages = [index_stage(ctx), *lookback_stages(ctx), *contact]
-    optional = [window_counts_stage(ctx), measure_covariates_stage(ctx)]
-    stages += [stage for stage in optional if stage is not None]
-    depends = ["index_dates", "patient_base", "encounter_summary", "condition_onsets"]
-    depends += [f"onset_{n}_lookback" for n in _lookback_outcomes(ctx)]
-    if optional[0] is not None:
-        depends.append("window_counts")
-    depends += [s.name for s in contact if s.name in ("last_contact", "contact_at_index")]
-    stages.append(
+        step_names.append("complete_followup")
+    return steps, step_names
+
+
+def index_pass(draft: Draft) -> Draft:
+    """``index_dates``: the source population and each patient's index date."""
+    return draft.add(index_stage(draft.ctx))
+
+
+def lookback_pass(draft: Draft) -> Draft:
+    """Rule and onset stages of outcomes whose prevalence looks back a limited time."""
+    return draft.add(*lookback_stages(draft.ctx))
+
+
+def contact_pass(draft: Draft) -> Draft:
+    """What counts as contact, from the tables earlier passes made usable."""
+    ctx = draft.ctx
+    present = [judged_stage(t) for t in coded_tables(ctx) if draft.has(judged_stage(t))]
+    present += ["src_measurements"] if ctx.measures else []
+    return draft.add(*contact_stages(ctx.study, ctx.eligibility, tuple(present)))
+
+
+def baseline_pass(draft: Draft) -> Draft:
+    """Counts and measurement covariates in windows around the index date."""
+    return draft.add(window_counts_stage(draft.ctx), measure_covariates_stage(draft.ctx))
+
+
+def eligibility_pass(draft: Draft) -> Draft:
+    """``eligibility``: the source population with follow-up and one column per step."""
+    ctx = draft.ctx
+    steps, _ = _steps(ctx)
+    optional = (
+        names.WINDOW_COUNTS,
+        names.LAST_CONTACT,
+        names.CONTACT_AT_INDEX,
+    )
+    read = {name for name in optional if draft.has(name)}
+    depends = [
+        names.INDEX_DATES,
+        names.PATIENT_BASE,
+        names.ENCOUNTER_SUMMARY,
+        names.CONDITION_ONSETS,
+    ]
+    depends += [names.onset_stage(n, lookback=True) for n in _lookback_outcomes(ctx)]
+    depends += [name for name in optional if name in read]
+    return draft.add(
         Stage(
-            "eligibility",
-            _eligibility_query(ctx, [predicate for predicate, _ in steps]),
+            names.ELIGIBILITY,
+            _eligibility_query(ctx, [predicate for predicate, _ in steps], read),
             tuple(depends),
             "the source population with follow-up and one pass/fail column per eligibility step",
         )
     )
-    stages.append(
-        Stage(
-            "attrition",
-            _attrition_query(
-                [(name, text) for name, (_, text) in zip(names, steps, strict=True)],
-                index_text=index_description(ctx),
-            ),
-            ("eligibility", "patient_base"),
-            "patients in the extract, without an index date, and at each eligibility step",
-        )
-    )
+
+
+def attrition_pass(draft: Draft) -> Draft:
+    """``attrition`` (patients removed at each step) and ``population`` (who left where)."""
+    steps, step_names = _steps(draft.ctx)
+    index_text = draft.stage(names.INDEX_DATES).description.removeprefix("index: ")
     excluded_at = exp.Case()
-    for i, name in enumerate(names, start=1):
-        excluded_at = excluded_at.when(exp.not_(exp.column(f"step_{i}")), value(name))
-    stages.append(
-        Stage(
-            "population",
-            exp.select("patient_id", "index_date", excluded_at.as_("excluded_at")).from_(
-                "eligibility"
-            )
-            if names
-            else exp.select(
-                "patient_id", "index_date", exp.cast(exp.null(), "VARCHAR").as_("excluded_at")
-            ).from_("eligibility"),
-            ("eligibility",),
-            "the source population with the first eligibility step each patient failed",
+    for i, name in enumerate(step_names, start=1):
+        excluded_at = excluded_at.when(exp.not_(exp.column(step_column(i))), value(name))
+    population = (
+        exp.select("patient_id", "index_date", excluded_at.as_("excluded_at"))
+        if step_names
+        else exp.select(
+            "patient_id", "index_date", exp.cast(exp.null(), "VARCHAR").as_("excluded_at")
         )
     )
-    cohort_depends = ["eligibility", *(s.name for s in optional if s is not None)]
-    stages.append(
+    return draft.add(
         Stage(
-            "cohort",
+            names.ATTRITION,
+            attrition_query(
+                [(name, text) for name, (_, text) in zip(step_names, steps, strict=True)],
+                index_text=index_text,
+            ),
+            (names.ELIGIBILITY, names.PATIENT_BASE),
+            "patients in the extract, without an index date, and at each eligibility step",
+        ),
+        Stage(
+            names.POPULATION,
+            population.from_(names.ELIGIBILITY),
+            (names.ELIGIBILITY,),
+            "the source population with the first eligibility step each patient failed",
+        ),
+    )
+
+
+def cohort_pass(draft: Draft) -> Draft:
+    """``cohort``, the analysis table, and the check that no follow-up is negative."""
+    ctx = draft.ctx
+    steps, _ = _steps(ctx)
+    joined = [n for n in (names.WINDOW_COUNTS, names.MEASURE_COVARIATES) if draft.has(n)]
+    return draft.add(
+        Stage(
+            names.COHORT,
             _cohort_query(
                 ctx,
                 len(steps),
-                has_windows=optional[0] is not None,
-                has_measures=optional[1] is not None,
+                has_windows=names.WINDOW_COUNTS in joined,
+                has_measures=names.MEASURE_COVARIATES in joined,
             ),
-            tuple(cohort_depends),
+            (names.ELIGIBILITY, *joined),
             "the analysis table: one row per eligible patient",
-        )
+        ),
+        negative_followup_check(),
     )
-    stages.append(negative_followup_check())
-    return tuple(stages)
 
 
-def _attrition_query(steps: list[tuple[str, str]], *, index_text: str) -> exp.Query:
-    # The whole extract first: patients without an index date are the first removed.
-    extract = exp.select(exp.func("COUNT", exp.Star())).from_("patient_base")
-    counts = [exp.func("COUNT", exp.Star()).as_("n_0"), extract.subquery().as_("n_all")]
-    condition: exp.Expression = exp.column("step_1")
-    for i in range(1, len(steps) + 1):
-        if i > 1:
-            condition = exp.and_(condition, exp.column(f"step_{i}"))
-        passed = exp.Case().when(condition.copy(), exp.Literal.number(1))
-        counts.append(
-            exp.func(
-                "COALESCE",
-                exp.Sum(this=passed.else_(exp.Literal.number(0))),
-                exp.Literal.number(0),
-            ).as_(f"n_{i}")
-        )
-    totals = exp.select(*counts).from_("eligibility")
-    rows = [
-        exp.select(
-            exp.Literal.number(-2).as_("step_number"),
-            value("patients_in_extract").as_("step"),
-            value("patients in the extract").as_("description"),
-            exp.column("n_all").as_("patients_before"),
-            exp.Literal.number(0).as_("removed"),
-            exp.column("n_all").as_("remaining"),
-        ).from_("totals"),
-        exp.select(
-            exp.Literal.number(-1),
-            value("without_index_date"),
-            value("without an index date"),
-            exp.column("n_all"),
-            exp.column("n_all") - exp.column("n_0"),
-            exp.column("n_0"),
-        ).from_("totals"),
-        exp.select(
-            exp.Literal.number(0),
-            value("source_population"),
-            value(index_text),
-            exp.column("n_0"),
-            exp.Literal.number(0),
-            exp.column("n_0"),
-        ).from_("totals"),
-    ]
-    for i, (name, text) in enumerate(steps, start=1):
-        rows.append(
-            exp.select(
-                exp.Literal.number(i),
-                value(name),
-                value(text),
-                exp.column(f"n_{i - 1}"),
-                exp.column(f"n_{i - 1}") - exp.column(f"n_{i}"),
-                exp.column(f"n_{i}"),
-            ).from_("totals")
-        )
-    union = rows[0]
-    for row in rows[1:]:
-        union = union.union(row, distinct=False)
-    typed = exp.select(
-        exp.cast(exp.column("step_number"), "INT").as_("step_number"),
-        "step",
-        "description",
-        exp.cast(exp.column("patients_before"), "BIGINT").as_("patients_before"),
-        exp.cast(exp.column("removed"), "BIGINT").as_("removed"),
-        exp.cast(exp.column("remaining"), "BIGINT").as_("remaining"),
-    ).from_(union.subquery("steps"))
-    return typed.with_("totals", as_=totals)
+# From the source population to the analysis table, in the order the stages are needed.
+COHORT_PASSES: tuple[Pass, ...] = (
+    index_pass,
+    lookback_pass,
+    contact_pass,
+    baseline_pass,
+    eligibility_pass,
+    attrition_pass,
+    cohort_pass,
+)
 
 
 def _cohort_query(
@@ -447,7 +448,7 @@ def _cohort_query(
         *(
             c
             for outcome in ctx.outcomes
-            for c in outcome_columns(
+            for c in outcome_expressions(
                 outcome.condition,
                 cleared=ctx.study.outcomes.clear_before_for(outcome.condition) is not None,
             )
@@ -457,13 +458,13 @@ def _cohort_query(
             "followup_days"
         ),
         column("end_reason", "f"),
-    ).from_("eligibility AS f")
-    if has_windows:
-        query = query.join("window_counts AS w", on="w.patient_id = f.patient_id", join_type="left")
-    if has_measures:
-        query = query.join(
-            "measure_covariates AS m", on="m.patient_id = f.patient_id", join_type="left"
-        )
+    ).from_(exp.to_table(names.ELIGIBILITY).as_("f"))
+    joins = ((has_windows, names.WINDOW_COUNTS, "w"), (has_measures, names.MEASURE_COVARIATES, "m"))
+    for wanted, stage, alias in joins:
+        if wanted:
+            on = exp.column("patient_id", alias).eq(exp.column("patient_id", "f"))
+            query = query.join(exp.to_table(stage).as_(alias), on=on, join_type="left")
     if n_steps:
-        query = query.where(exp.and_(*(column(f"step_{i}", "f") for i in range(1, n_steps + 1))))
+        steps = (column(step_column(i), "f") for i in range(1, n_steps + 1))
+        query = query.where(exp.and_(*steps))
     return query

@@ -2,34 +2,32 @@
 
 from __future__ import annotations
 
-from collections.abc import Callable
-
-from pipeline.compile._cohort import cohort_stages
+from pipeline.compile._cohort import COHORT_PASSES
 from pipeline.compile._context import CompileContext, evidence_key, evidence_number
 from pipeline.compile._dictionary import dictionary
+from pipeline.compile._draft import Draft, Pass, adding
 from pipeline.compile._evidence import evidence_stages
 from pipeline.compile._matches import EVIDENCE_COUNTS, Use, match_count_stages, unmatched_uses
 from pipeline.compile._measurements import measurement_stages
 from pipeline.compile._persontime import persontime_docs, persontime_stages
-from pipeline.compile._plan import Plan, Stage
+from pipeline.compile._plan import Plan
 from pipeline.compile._quality import quality_stages
 from pipeline.compile._rules import rule_stages
 from pipeline.compile._sources import source_stages, source_tables
 from pipeline.config import LoadedStudy
 from pipeline.errors import AscertainError
 
-Pass = Callable[[CompileContext], tuple[Stage, ...]]
-
-# Data flows one way through these passes; each adds stages that read earlier ones.
+# Data flows one way through these passes; each takes the draft plan and returns it with its
+# stages added, which read only earlier ones (looked up through the draft).
 PASSES: tuple[Pass, ...] = (
-    source_stages,
-    measurement_stages,
-    evidence_stages,
-    rule_stages,
-    cohort_stages,
-    quality_stages,
-    match_count_stages,
-    persontime_stages,
+    adding(source_stages),
+    adding(measurement_stages),
+    adding(evidence_stages),
+    adding(rule_stages),
+    *COHORT_PASSES,
+    adding(quality_stages),
+    adding(match_count_stages),
+    adding(persontime_stages),
 )
 
 
@@ -41,7 +39,10 @@ def compile_study(loaded: LoadedStudy) -> Plan:
     """
     ctx = CompileContext(loaded.study, loaded.catalog, loaded.measures, loaded.local_codes)
     _check_evidence_numbers(ctx)
-    stages = tuple(stage for compile_pass in PASSES for stage in compile_pass(ctx))
+    draft = Draft(ctx)
+    for compile_pass in PASSES:
+        draft = compile_pass(draft)
+    stages = draft.stages
     persontime = ctx.study.persontime is not None
     return Plan(
         study=loaded.study.study,

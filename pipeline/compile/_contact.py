@@ -17,24 +17,39 @@ from __future__ import annotations
 
 from sqlglot import exp
 
+from pipeline.compile import names
+from pipeline.compile._judged import dated_and_placed
 from pipeline.compile._plan import Stage
 from pipeline.compile._sql import add_days, query
 from pipeline.config import Criterion, Study
 
 DEFAULT_STEP_TEXT = "added to fixed-date studies that end follow-up at loss of contact"
 
-_ACTIVITY_ROWS = {
-    "coded_events": "SELECT patient_id, event_date AS contact_date FROM coded_events",
-    "src_measurements": """
+# Measurements count as contact by their date alone, whatever the row's other problems.
+_MEASUREMENT_CONTACT = """
 SELECT m.patient_id, m.contact_date
 FROM (
   SELECT patient_id, TRY_CAST(obs_date AS DATE) AS contact_date FROM src_measurements
 ) AS m
-JOIN patient_base AS p ON p.patient_id = m.patient_id
+JOIN :base AS p ON p.patient_id = m.patient_id
 WHERE m.contact_date <= :end_of_data
   AND (p.death_date IS NULL OR m.contact_date <= p.death_date)
-""",
-}
+"""
+
+
+def _activity_rows(relation: str, study: Study) -> tuple[exp.Query, tuple[str, ...]]:
+    """A further table's contact dates (``any_activity``) and the relations they read.
+
+    A coded row counts by its judgement's record and timing parts alone (``dated_and_placed``):
+    its code does not matter to whether the patient was in touch.
+    """
+    if relation == "src_measurements":
+        base = exp.to_table(names.PATIENT_BASE)
+        text = query(_MEASUREMENT_CONTACT, base=base, end_of_data=study.end_of_data)
+        return text, (relation, names.PATIENT_BASE)
+    rows = exp.select("patient_id", exp.column("row_date").as_("contact_date")).from_(relation)
+    return rows.where(dated_and_placed()), (relation,)
+
 
 _LAST_CONTACT = """
 SELECT patient_id, MAX(contact_date) AS last_contact
@@ -96,21 +111,21 @@ def contact_stages(
     if not uses_contact_rows(study, steps):
         return ()
     parts = [exp.select("patient_id", exp.column("encounter_date").as_("contact_date"))]
-    parts[0] = parts[0].from_("encounter_rows")
-    depends = ["encounter_rows"]
+    parts[0] = parts[0].from_(names.ENCOUNTER_ROWS)
+    depends = [names.ENCOUNTER_ROWS]
     what = "usable encounters"
     if study.followup.contact == "any_activity":
         what = "usable dated rows of encounters, diagnoses, prescriptions and measurements read"
-        for relation, text in _ACTIVITY_ROWS.items():
-            if relation in sources:
-                parts.append(query(text, **_values(text, study)))
-                depends += [relation] + (["patient_base"] if relation.startswith("src") else [])
+        for relation in sources:
+            rows, read = _activity_rows(relation, study)
+            parts.append(rows)
+            depends += read
     union = parts[0]
     for part in parts[1:]:
         union = union.union(part, distinct=False)
     stages = [
         Stage(
-            "contact_rows",
+            names.CONTACT_ROWS,
             union,
             tuple(dict.fromkeys(depends)),
             f"contacts with the practice ({study.followup.contact}): {what}",
@@ -120,9 +135,9 @@ def contact_stages(
     if study.followup.contact == "any_activity":
         stages.append(
             Stage(
-                "last_contact",
+                names.LAST_CONTACT,
                 query(_LAST_CONTACT),
-                ("contact_rows",),
+                (names.CONTACT_ROWS,),
                 "the last contact per patient, from which loss of contact is measured",
             )
         )
@@ -131,17 +146,13 @@ def contact_stages(
         end = add_days(exp.column("index_date", "i"), step.window[1])
         stages.append(
             Stage(
-                "contact_at_index",
+                names.CONTACT_AT_INDEX,
                 query(_CONTACT_AT_INDEX, window_end=end),
-                ("index_dates", "contact_rows"),
+                (names.INDEX_DATES, names.CONTACT_ROWS),
                 "each patient's last contact on or before the end of the in-contact window",
             )
         )
     return tuple(stages)
-
-
-def _values(text: str, study: Study) -> dict[str, object]:
-    return {"end_of_data": study.end_of_data} if ":end_of_data" in text else {}
 
 
 def last_contact_column(study: Study) -> exp.Expression:
@@ -174,9 +185,9 @@ def in_contact_predicate(criterion: Criterion) -> tuple[exp.Expression, str]:
 def negative_followup_check() -> Stage:
     """The check that fails the build, naming patients, if any follow-up ends before index."""
     return Stage(
-        "followup_not_negative",
+        names.FOLLOWUP_NOT_NEGATIVE,
         query(_NEGATIVE_FOLLOWUP),
-        ("cohort",),
+        (names.COHORT,),
         "no patient of the cohort may have follow-up ending before the index date",
         kind="check",
         failure=(

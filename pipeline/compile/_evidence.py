@@ -13,10 +13,11 @@ import datetime as dt
 from sqlglot import exp
 
 from pipeline.codes import normalise_in, prefixes_in
+from pipeline.compile import names
 from pipeline.compile._context import CompileContext, evidence_id, evidence_number
+from pipeline.compile._judged import same_raw_code
 from pipeline.compile._measurements import measure_relations, measurement_passes
 from pipeline.compile._plan import Stage
-from pipeline.compile._sources import same_raw_code
 from pipeline.compile._sql import days_between, is_in, query, value, values_table
 from pipeline.config import Evidence, ListUse, MeasurementEvidence
 
@@ -37,7 +38,7 @@ SELECT
     WHEN BOOL_OR(NOT m.is_exclusion AND m.min_days IS NULL) THEN NULL
     ELSE MIN(CASE WHEN NOT m.is_exclusion THEN m.min_days END)
   END AS min_days
-FROM extract_codes AS c
+FROM :found_codes AS c
 CROSS JOIN :lengths
 JOIN :codes ON m.code_system = c.code_system
   AND m.prefix = LEFT(c.code, l.prefix_length)
@@ -61,8 +62,8 @@ _CODED_MATCHES = """
 SELECT
   e.patient_id, e.event_date, m.code_system, m.code, e.raw_code, m.source, e.duration_days,
   m.evidence, m.excluded OR NOT m.included AS excluded
-FROM coded_events AS e
-JOIN code_matches AS m ON :same_code
+FROM :rows AS e
+JOIN :matches AS m ON :same_code
 WHERE m.excluded OR m.min_days IS NULL OR e.duration_days >= m.min_days
 """
 
@@ -82,7 +83,7 @@ GROUP BY patient_id, obs_date
 _ENCOUNTER_EVIDENCE = """
 SELECT patient_id, :key AS evidence, encounter_date AS event_date,
   CAST(COUNT(DISTINCT COALESCE(encounter_type, '')) AS INT) AS n_rows
-FROM encounter_rows
+FROM :encounters
 WHERE :types
 GROUP BY patient_id, encounter_date
 """
@@ -97,7 +98,7 @@ FROM :events
 _NO_EVENTS = """
 SELECT patient_id, CAST(NULL AS INT) AS evidence, CAST(NULL AS DATE) AS event_date,
   1 AS n_rows
-FROM patient_base
+FROM :base
 WHERE FALSE
 """
 
@@ -188,44 +189,54 @@ def evidence_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         table = [r if exact else r[:6] for r in code_rows]
         stages.append(
             Stage(
-                "code_matches",
+                names.CODES_TO_EVIDENCE,
                 query(
                     _CODE_MATCHES_EXACT if exact else _CODE_MATCHES,
+                    found_codes=exp.to_table(names.DISTINCT_CODES),
                     lengths=values_table("l", ["prefix_length"], [(n,) for n in lengths]),
                     codes=values_table("m", [*columns, "exact"] if exact else columns, table),
                 ),
-                ("extract_codes",),
+                (names.DISTINCT_CODES,),
                 "each distinct extract code with the evidence it matches or is excluded from",
             )
         )
-        matches = query(_CODED_MATCHES, same_code=same_raw_code("e", "m"))
+        matches = query(
+            _CODED_MATCHES,
+            rows=exp.to_table(names.CODED_ROWS),
+            matches=exp.to_table(names.CODES_TO_EVIDENCE),
+            same_code=same_raw_code("e", "m"),
+        )
         if ctx.study.quality.exact_duplicates == "check":
             matches = matches.distinct()  # exact duplicates count once
         stages.append(
             Stage(
-                "coded_matches",
+                names.CODED_ROW_EVIDENCE,
                 matches,
-                ("code_matches", "coded_events"),
+                (names.CODES_TO_EVIDENCE, names.CODED_ROWS),
                 "each usable diagnosis or prescription row with the evidence its code matches",
                 kind="view",
             )
         )
         counted = (
             exp.select("patient_id", "event_date", "evidence")
-            .from_("coded_matches")
+            .from_(names.CODED_ROW_EVIDENCE)
             .where(exp.not_(exp.column("excluded")))
         )
         stages.append(
             Stage(
-                "coded_evidence",
+                names.CODED_EVIDENCE_DAYS,
                 query(_CODED_EVIDENCE, rows=counted.subquery("m")),
-                ("coded_matches",),
+                (names.CODED_ROW_EVIDENCE,),
                 "matched rows counted per patient, evidence and day (kept only in evidence_events)",
                 kind="view",
             )
         )
-        parts.append(query("SELECT patient_id, evidence, event_date, n_rows FROM coded_evidence"))
-        depends.append("coded_evidence")
+        parts.append(
+            exp.select("patient_id", "evidence", "event_date", "n_rows").from_(
+                names.CODED_EVIDENCE_DAYS
+            )
+        )
+        depends.append(names.CODED_EVIDENCE_DAYS)
     for key, ev in ctx.evidence:
         if ev.measurement:
             for relation in measure_relations(ctx, ev.measurement.measure):
@@ -237,18 +248,25 @@ def evidence_stages(ctx: CompileContext) -> tuple[Stage, ...]:
                 if ev.encounter.type
                 else exp.true()
             )
-            parts.append(query(_ENCOUNTER_EVIDENCE, key=evidence_id(key), types=types))
-            depends.append("encounter_rows")
+            parts.append(
+                query(
+                    _ENCOUNTER_EVIDENCE,
+                    key=evidence_id(key),
+                    types=types,
+                    encounters=exp.to_table(names.ENCOUNTER_ROWS),
+                )
+            )
+            depends.append(names.ENCOUNTER_ROWS)
     if not parts:  # every piece of evidence refers to another condition
-        parts.append(query(_NO_EVENTS))
-        depends.append("patient_base")
+        parts.append(query(_NO_EVENTS, base=exp.to_table(names.PATIENT_BASE)))
+        depends.append(names.PATIENT_BASE)
     union = parts[0]
     for part in parts[1:]:
         union = union.union(part, distinct=False)
     epoch = value(dt.date(1970, 1, 1))
     stages.append(
         Stage(
-            "evidence_events",
+            names.EVIDENCE_EVENTS,
             query(
                 _EVIDENCE_EVENTS,
                 day=days_between(epoch, exp.column("event_date")),

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 from sqlglot import exp
 
+from pipeline.compile import names
 from pipeline.compile._context import CompileContext
 from pipeline.compile._plan import Stage
 from pipeline.compile._sources import MEASUREMENTS, grouped_rows
@@ -172,7 +173,7 @@ def measurement_passes(measurement: MeasurementEvidence) -> exp.Expression:
 
 _MEASUREMENT_VALUES = """
 SELECT patient_id, obs_date, measure, value, qualifier, category, FALSE AS derived
-FROM measurement_judged
+FROM measurements_judged
 WHERE problem IS NULL AND :wanted
 """
 
@@ -341,15 +342,15 @@ def _values_stage(ctx: CompileContext) -> Stage:
     kept = _kept_rows(ctx)
     if kept is None:
         return Stage(
-            "measurement_values",
+            names.MEASUREMENT_VALUES,
             values,
-            ("measurement_judged",),
+            (names.MEASUREMENTS_JUDGED,),
             "usable values of the measures the study reads, in canonical units",
         )
     return Stage(
-        "measurement_values",
+        names.MEASUREMENT_VALUES,
         values.where(kept),
-        ("measurement_judged",),
+        (names.MEASUREMENTS_JUDGED,),
         "usable values some stage can read, in canonical units: those that are evidence, "
         "those near a possible index date, and what derived values need",
     )
@@ -358,7 +359,7 @@ def _values_stage(ctx: CompileContext) -> Stage:
 def measurement_stages(ctx: CompileContext) -> tuple[Stage, ...]:
     """``measurement_rows`` (every row, with a problem or not) and usable values.
 
-    Every row is judged once in ``measurement_judged``, for the values and the quality log.
+    Every row is judged once in ``measurements_judged``, for the values and the quality log.
     When exact duplicates are checked it is a table, so the grouping runs once; otherwise a
     view, read twice (by the values and the quality log), which costs less than storing tens
     of millions of judged rows.
@@ -368,16 +369,16 @@ def measurement_stages(ctx: CompileContext) -> tuple[Stage, ...]:
     check = ctx.study.quality.exact_duplicates == "check"
     stages = [
         Stage(
-            "measurement_rows",
+            names.MEASUREMENT_ROWS,
             _judged_rows(ctx),
-            ("src_measurements", "patient_base"),
+            (MEASUREMENTS.relation, names.PATIENT_BASE),
             "every distinct measurement row parsed and converted, with what stops its use",
             kind="view",
         ),
         Stage(
-            "measurement_judged",
+            names.MEASUREMENTS_JUDGED,
             query(_JUDGED),
-            ("measurement_rows",),
+            (names.MEASUREMENT_ROWS,),
             "every measurement row parsed, converted and judged: values and quality log",
             kind="table" if check else "view",
         ),
@@ -388,9 +389,9 @@ def measurement_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         age = age_in_years(birth=exp.column("birth_date", "p"), on=exp.column("obs_date", "c"))
         stages.append(
             Stage(
-                "derived_egfr",
+                names.DERIVED_EGFR,
                 query(_DERIVED_EGFR, age=age, low=low, high=high),
-                ("measurement_values", "patient_base"),
+                (names.MEASUREMENT_VALUES, names.PATIENT_BASE),
                 "eGFR derived from creatinine by CKD-EPI 2021 where none was reported that day",
             )
         )
@@ -398,9 +399,9 @@ def measurement_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         low, high = ctx.registry["bmi"].plausible
         stages.append(
             Stage(
-                "derived_bmi",
+                names.DERIVED_BMI,
                 query(_DERIVED_BMI, low=low, high=high),
-                ("measurement_values",),
+                (names.MEASUREMENT_VALUES,),
                 "BMI from weight and the latest height where none was reported that day",
             )
         )
@@ -410,5 +411,5 @@ def measurement_stages(ctx: CompileContext) -> tuple[Stage, ...]:
 def measure_relations(ctx: CompileContext, measure: str) -> tuple[str, ...]:
     """The stages holding values of ``measure``: reported, and derived where it can be."""
     if measure in DERIVED_FROM and measure in ctx.measures:
-        return ("measurement_values", f"derived_{measure}")
-    return ("measurement_values",)
+        return (names.MEASUREMENT_VALUES, names.derived_stage(measure))
+    return (names.MEASUREMENT_VALUES,)

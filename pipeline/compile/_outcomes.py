@@ -12,13 +12,14 @@ from sqlglot import exp
 
 from pipeline.compile._context import CompileContext
 from pipeline.compile._sql import days_between, value
+from pipeline.compile.names import clear_evidence_column, outcome_columns, prevalent_column
 
 
 def at_risk(ctx: CompileContext, name: str) -> exp.Expression:
     """Not prevalent, and with ``clear_before`` no evidence of the outcome in that window."""
-    at_risk: exp.Expression = exp.not_(exp.column(f"prevalent_{name}"))
+    at_risk: exp.Expression = exp.not_(exp.column(prevalent_column(name)))
     if ctx.study.outcomes.clear_before_for(name) is not None:
-        at_risk = exp.and_(at_risk, exp.column(f"clear_evidence_{name}").eq(0))
+        at_risk = exp.and_(at_risk, exp.column(clear_evidence_column(name)).eq(0))
     return at_risk
 
 
@@ -31,13 +32,14 @@ def cleared_outcomes(ctx: CompileContext) -> list[str]:
     ]
 
 
-def outcome_columns(name: str, *, cleared: bool) -> list[exp.Expression]:
+def outcome_expressions(name: str, *, cleared: bool) -> list[exp.Expression]:
     """The outcome's columns; with ``cleared`` evidence before index also makes it not at risk."""
-    onset = exp.column(f"onset_{name}", "f")
-    prevalent = exp.column(f"prevalent_{name}", "f")
+    named = outcome_columns(name)
+    onset = exp.column(named.onset, "f")
+    prevalent = exp.column(named.prevalent, "f")
     at_risk: exp.Expression = exp.not_(prevalent.copy())
     if cleared:
-        at_risk = exp.and_(at_risk, exp.column(f"clear_evidence_{name}", "f").eq(0))
+        at_risk = exp.and_(at_risk, exp.column(clear_evidence_column(name), "f").eq(0))
     index = exp.column("index_date", "f")
     end = exp.column("followup_end", "f")
     incident = exp.func("COALESCE", exp.and_(onset > index, onset <= end.copy()), exp.false())
@@ -61,13 +63,13 @@ def outcome_columns(name: str, *, cleared: bool) -> list[exp.Expression]:
         .when(at_risk.copy(), exp.Literal.number(0))
     )
     return [
-        prevalent.as_(f"prevalent_{name}"),
-        at_risk.copy().as_(f"at_risk_{name}"),
-        exp.Case().when(at_risk.copy(), incident).as_(f"incident_{name}"),
-        onset.copy().as_(f"onset_{name}"),
+        prevalent.as_(named.prevalent),
+        at_risk.copy().as_(named.at_risk),
+        exp.Case().when(at_risk.copy(), incident).as_(named.incident),
+        onset.copy().as_(named.onset),
         exp.cast(
             exp.Case().when(is_incident.copy(), days_between(index.copy(), onset.copy())), "INT"
-        ).as_(f"days_to_{name}"),
-        exp.cast(time, "INT").as_(f"time_{name}"),
-        exp.cast(event, "INT").as_(f"event_{name}"),
+        ).as_(named.days_to),
+        exp.cast(time, "INT").as_(named.time),
+        exp.cast(event, "INT").as_(named.event),
     ]

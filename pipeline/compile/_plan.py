@@ -1,6 +1,6 @@
 """The plan: an ordered tuple of named SQL stages, a value you can print, diff and hash.
 
-Nothing here touches a database. Engines take a plan and run it; ``explain`` renders it.
+Nothing here touches a database. Engines take a plan and run it; ``describe`` renders it.
 """
 
 from __future__ import annotations
@@ -48,7 +48,7 @@ class Stage:
         name: Unique snake_case name; later stages refer to it as a table.
         query: The stage's query as a sqlglot tree, in the source dialect.
         depends_on: Stages and source relations it reads.
-        description: Why the stage exists, in one line; shown by ``explain``.
+        description: Why the stage exists, in one line; shown by ``describe``.
         kind: ``table`` is materialised; ``view`` is inlined where it is read; ``check`` must
             return no rows, otherwise the run fails with ``failure`` and the first rows found.
         failure: For checks, the message shown when rows are returned.
@@ -141,8 +141,12 @@ class Plan:
             self.study, self.sources, self.stages, outputs, self.columns, self.output_columns
         )
 
-    def explain(self, dialect: str = SOURCE_DIALECT, *, only: str | None = None) -> str:
-        """Render the plan as commented SQL, one stage after another."""
+    def describe(self, dialect: str = SOURCE_DIALECT, *, only: str | None = None) -> str:
+        """The plan as commented SQL, one stage after another (what ``ascertain sql`` prints).
+
+        Named ``describe`` so that "explain" means only the ``explain`` command (one patient's
+        trace).
+        """
         parts = [f"-- plan for study {self.study} ({len(self.stages)} stages, dialect {dialect})"]
         for source in self.sources:
             parts.append(f"-- reads {source.relation}: {', '.join(source.columns)}")
@@ -157,7 +161,7 @@ class Plan:
 
     def content_hash(self) -> str:
         """A SHA-256 of the plan's SQL and shape, stored with outputs to tie them to the plan."""
-        digest = hashlib.sha256(self.explain(SOURCE_DIALECT).encode("utf-8"))
+        digest = hashlib.sha256(self.describe(SOURCE_DIALECT).encode("utf-8"))
         for name, stage_name, order in self.outputs:
             digest.update(f"{name}:{stage_name}:{','.join(order)}".encode())
         return digest.hexdigest()

@@ -1,9 +1,10 @@
 """The quality log: every extract row is either used or counted under the reason it was not.
 
-Each table is grouped on all its columns once, so exact duplicates are found (the first copy is
-judged, the others are counted as duplicates, unless the row has no readable patient_id: see
-_SUMMARY); each distinct row then gets the first reason that
-applies, in the order the reasons are listed below, or ``used``. A separate count of rows read
+Every row gets the first reason that applies, or ``used``, once, in its table's row-judgement
+stage (``compile/_judged.py``; measurements in ``compile/_measurements.py``), which the
+usable-row stages read too. The log groups each table's judged rows on all their columns, so
+exact duplicates are found (the first copy counts under its reason, the others as duplicates,
+unless the row has no readable patient_id: see _SUMMARY). A separate count of rows read
 lets the build check that used + set aside = read for every table. Each reason also keeps the
 position of the first row it set aside (CSV only; see SOURCE_POSITION), so a user can find it.
 """
@@ -14,18 +15,13 @@ from dataclasses import dataclass
 
 from sqlglot import exp
 
+from pipeline.compile import names
 from pipeline.compile._context import CompileContext
+from pipeline.compile._judged import judged_for_log
 from pipeline.compile._plan import SourceTable, Stage
-from pipeline.compile._sources import (
-    coded_tables,
-    grouped_rows,
-    raw_code_columns,
-    same_raw_code,
-    source_tables,
-    unreadable_patient_date,
-)
+from pipeline.compile._sources import source_tables
 from pipeline.compile._sql import query, value
-from pipeline.extract.schema import canonical_table
+from pipeline.compile.names import judged_stage
 
 
 @dataclass(frozen=True)
@@ -50,9 +46,10 @@ class SetAsideReason:
 _EVENTS = ("encounters", "diagnoses", "prescriptions", "measurements")
 _ALL = ("patients", *_EVENTS)
 
-# Every reason the quality log can give, spelt exactly as the stages below and
-# measurement_judged (compile/_measurements.py) and extract_codes (compile/_sources.py) spell
-# it. tests/test_useless_runs.py fails when a stage gives a reason that is missing here.
+# Every reason the quality log can give, spelt exactly as the row judgements
+# (compile/_judged.py, measurements_judged in compile/_measurements.py) and distinct_codes
+# (compile/_sources.py) spell it. tests/test_useless_runs.py fails when a stage gives a
+# reason that is missing here.
 SET_ASIDE_REASONS: dict[str, SetAsideReason] = {
     "missing patient_id": SetAsideReason(
         misread=True,
@@ -206,46 +203,14 @@ SET_ASIDE_REASONS: dict[str, SetAsideReason] = {
 }
 
 
-_DATED = """
-SELECT
-  CASE
-    WHEN r.source_problem IS NOT NULL THEN r.source_problem
-    WHEN p.patient_id IS NULL THEN 'orphan patient'
-    WHEN r.row_date IS NULL THEN 'unparseable date'
-    WHEN :problem IS NOT NULL THEN :problem
-    WHEN r.row_date > :end_of_data THEN 'after end of data'
-    WHEN p.death_date IS NOT NULL AND r.row_date > p.death_date THEN 'after death'
-    ELSE 'used'
-  END AS reason,
-  r.copies,
-  r.source_position,
-  r.patient_id IS NULL OR r.source_problem IS NOT NULL AS counted_whole
-FROM :rows
-LEFT JOIN patient_base AS p ON p.patient_id = r.patient_id
-"""
-
-# Every measurement row was judged in measurement_judged.
+# Every measurement row was judged in measurements_judged.
 _MEASUREMENTS = """
 SELECT
   COALESCE(problem, 'used') AS reason,
   copies,
   source_position,
   patient_id IS NULL OR source_problem IS NOT NULL AS counted_whole
-FROM measurement_judged
-"""
-
-_PATIENTS = """
-SELECT
-  CASE
-    WHEN source_problem IS NOT NULL THEN source_problem
-    WHEN patient_id IS NULL THEN 'missing patient_id'
-    WHEN :unreadable_date THEN 'unparseable date'
-    ELSE 'used'
-  END AS reason,
-  copies,
-  source_position,
-  patient_id IS NULL OR source_problem IS NOT NULL AS counted_whole
-FROM :rows
+FROM :judged
 """
 
 # A row whose patient_id is empty, or cannot be read as the patients table's id type (the
@@ -286,32 +251,11 @@ GROUP BY source_table, reason
 
 
 def _classified(ctx: CompileContext, table: SourceTable) -> exp.Query:
-    check = ctx.study.quality.exact_duplicates == "check"
-    grouped = grouped_rows(table, check_duplicates=check).subquery("g")
-    if table.name == "patients":
-        return query(_PATIENTS, rows=grouped, unreadable_date=unreadable_patient_date())
+    """A table's rows as judged once by its row-judgement stage, ready to be counted."""
     if table.name == "measurements":
-        return query(_MEASUREMENTS)
-    # The date that places the row in time (extract/schema.py), judged as usable rows judge it.
-    row_date = exp.column(canonical_table(table.name).row_date)
-    dated = exp.select(
-        exp.Star(), exp.TryCast(this=row_date, to=exp.DataType.build("DATE")).as_("row_date")
-    ).from_(grouped)
-    if table.name == "encounters":
-        return query(
-            _DATED, rows=dated.subquery("r"), problem=exp.null(), end_of_data=ctx.study.end_of_data
-        )
-    # Codes were judged once per distinct value, in extract_codes.
-    dated = dated.select(*(c.as_(n) for n, c in raw_code_columns(table.name).items()))
-    dated = dated.select(value(table.name).as_("source_table"))
-    judged = query(
-        _DATED,
-        rows=dated.subquery("r"),
-        problem=exp.column("problem", "c"),
-        end_of_data=ctx.study.end_of_data,
-    )
-    codes = exp.to_table("extract_codes").as_("c")
-    return judged.join(codes, on=same_raw_code("r", "c"), join_type="LEFT")
+        return query(_MEASUREMENTS, judged=exp.to_table(names.MEASUREMENTS_JUDGED))
+    check = ctx.study.quality.exact_duplicates == "check"
+    return judged_for_log(table, check_duplicates=check)
 
 
 def quality_stages(ctx: CompileContext) -> tuple[Stage, ...]:
@@ -330,20 +274,16 @@ def quality_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         query(_SUMMARY, table_name=t.name, classified=_classified(ctx, t).subquery("c"))
         for t in tables
     ]
-    depends = {t.relation for t in tables if t.name != "measurements"} | {"patient_base"}
-    if coded_tables(ctx):
-        depends.add("extract_codes")
-    if any(t.name == "measurements" for t in tables):
-        depends.add("measurement_judged")
+    depends = [judged_stage(t.name) for t in tables]
     return (
         Stage(
-            "rows_read",
+            names.ROWS_READ,
             _union(read),
             tuple(sorted(t.relation for t in tables)),
             "rows read per extract table, counted on their own to check the quality log",
         ),
         Stage(
-            "quality_log",
+            names.QUALITY_LOG,
             query(_LOG, used=used).with_("summary", as_=_union(summaries)),
             tuple(sorted(depends)),
             "every extract row: used, or set aside with the first reason that applies",

@@ -1,7 +1,9 @@
 """Stages that read the extract once per table and keep only rows the study may use.
 
-A row is usable when its date parses, its patient is in ``patients``, it is dated on or before
-the end of data and not after the patient's death. Each table is read in one pass.
+Each table's rows are judged once (``compile/_judged.py``): a row is usable when the reader
+kept it, its date parses, its patient is in ``patients``, it is dated on or before the end of
+data and not after the patient's death (and, for coded rows, its code is well formed in a
+known system). The stages here read the usable rows of those judgements.
 """
 
 from __future__ import annotations
@@ -9,9 +11,12 @@ from __future__ import annotations
 from sqlglot import exp
 
 from pipeline.codes import EXTRACT_PATTERNS, normalised_code_sql, read2_code_sql
+from pipeline.compile import names
 from pipeline.compile._context import CompileContext
+from pipeline.compile._judged import event_judged, is_used, patients_judged
 from pipeline.compile._plan import SOURCE_POSITION, SOURCE_PROBLEM, SourceTable, Stage
-from pipeline.compile._sql import days_between, is_in, query, value, values_table
+from pipeline.compile._sql import is_in, query, value, values_table
+from pipeline.compile.names import judged_stage
 from pipeline.config import Study
 from pipeline.extract.schema import canonical_table
 
@@ -75,6 +80,7 @@ def source_tables(ctx: CompileContext) -> tuple[SourceTable, ...]:
     return tuple(tables)
 
 
+# Only the rows ``patients_judged`` finds usable.
 _PATIENT_BASE = """
 SELECT DISTINCT
   patient_id,
@@ -86,13 +92,13 @@ SELECT DISTINCT
   NULLIF(TRIM(CAST(practice_id AS VARCHAR)), '') AS practice_id,
   TRY_CAST(registration_date AS DATE) AS registration_date,
   TRY_CAST(deregistration_date AS DATE) AS deregistration_date
-FROM src_patients
-WHERE patient_id IS NOT NULL AND source_problem IS NULL AND NOT :unreadable_date
+FROM :judged
+WHERE :used
 """
 
 _PATIENT_DUPLICATES = """
 SELECT patient_id, COUNT(*) AS n_rows
-FROM patient_base
+FROM :base
 GROUP BY patient_id
 HAVING COUNT(*) > 1
 ORDER BY patient_id
@@ -100,18 +106,12 @@ LIMIT 5
 """
 
 _ENCOUNTER_ROWS = """
-SELECT e.patient_id, e.encounter_date, e.encounter_type
-FROM (
-  SELECT
-    patient_id,
-    TRY_CAST(encounter_date AS DATE) AS encounter_date,
-    LOWER(TRIM(CAST(encounter_type AS VARCHAR))) AS encounter_type
-  FROM src_encounters
-  WHERE source_problem IS NULL
-) AS e
-JOIN patient_base AS p ON p.patient_id = e.patient_id
-WHERE e.encounter_date <= :end_of_data
-  AND (p.death_date IS NULL OR e.encounter_date <= p.death_date)
+SELECT
+  patient_id,
+  row_date AS encounter_date,
+  LOWER(TRIM(CAST(encounter_type AS VARCHAR))) AS encounter_type
+FROM :judged
+WHERE :used
 """
 
 # The first encounter in the index window is found in the same pass when the study indexes on it.
@@ -121,49 +121,20 @@ SELECT
   MIN(encounter_date) AS first_encounter,
   MAX(encounter_date) AS last_encounter,
   MIN(CASE WHEN :in_window THEN encounter_date END) AS first_in_window
-FROM encounter_rows
+FROM :rows
 GROUP BY patient_id
 """
 
 # Codes are read raw: every distinct (system, code, source) of the extract is normalised and
-# judged once, in ``extract_codes``, and rows are joined to it on their raw values.
-_DIAGNOSIS_ROWS = """
-SELECT
-  patient_id,
-  TRY_CAST(event_date AS DATE) AS event_date,
-  'diagnoses' AS source_table,
-  :raw_system AS raw_system,
-  :raw_code AS raw_code,
-  :raw_source AS raw_source,
-  CAST(NULL AS INT) AS duration_days
-FROM src_diagnoses
-WHERE source_problem IS NULL
+# judged once, in ``distinct_codes``, and rows are joined to it on their raw values.
+_CODED_ROWS = """
+SELECT patient_id, row_date AS event_date, source_table, raw_system, raw_code, raw_source,
+  duration_days
+FROM :judged
+WHERE :used
 """
 
-_PRESCRIPTION_ROWS = """
-SELECT
-  patient_id,
-  TRY_CAST(start_date AS DATE) AS event_date,
-  'prescriptions' AS source_table,
-  :raw_system AS raw_system,
-  :raw_code AS raw_code,
-  :raw_source AS raw_source,
-  CAST(:duration + 1 AS INT) AS duration_days
-FROM src_prescriptions
-WHERE source_problem IS NULL
-"""
-
-_CODED_EVENTS = """
-SELECT
-  r.patient_id, r.event_date, r.source_table, r.raw_system, r.raw_code, r.raw_source,
-  r.duration_days
-FROM :rows AS r
-JOIN patient_base AS p ON p.patient_id = r.patient_id
-WHERE r.event_date <= :end_of_data
-  AND (p.death_date IS NULL OR r.event_date <= p.death_date)
-"""
-
-_EXTRACT_CODES = """
+_DISTINCT_CODES = """
 SELECT
   source_table, raw_system, raw_code, raw_source, code_system, code, source,
   :problem AS problem
@@ -189,7 +160,7 @@ LEFT JOIN :products ON f.source_table = 'prescriptions' AND TRIM(f.raw_code) = m
 
 
 def raw_code_columns(table: str) -> dict[str, exp.Expression]:
-    """A coded table's raw system, code and source as text, the keys of ``extract_codes``."""
+    """A coded table's raw system, code and source as text, the keys of ``distinct_codes``."""
     text = {
         name: exp.cast(exp.column(name), "VARCHAR")
         for name in ("code_system", "code", "source", "atc")
@@ -202,19 +173,6 @@ def raw_code_columns(table: str) -> dict[str, exp.Expression]:
             "raw_source": text["source"],
         }
     return {"raw_system": none, "raw_code": text["atc"], "raw_source": none.copy()}
-
-
-def same_raw_code(row: str, code: str) -> exp.Expression:
-    """A coded row joined to its entry of ``extract_codes`` or ``code_matches``.
-
-    ``row`` and ``code`` are the aliases; both carry source_table and the raw_* columns, and
-    NULLs compare equal.
-    """
-    same = [
-        exp.NullSafeEQ(this=exp.column(c, row), expression=exp.column(c, code))
-        for c in ("raw_system", "raw_code", "raw_source")
-    ]
-    return exp.and_(exp.column("source_table", row).eq(exp.column("source_table", code)), *same)
 
 
 def _code_problem(systems: tuple[str, ...]) -> exp.Expression:
@@ -257,7 +215,7 @@ def _normalised_code(systems: tuple[str, ...]) -> exp.Expression:
     return exp.Case().when(is_read2, read2_code_sql(exp.column("raw_code"))).else_(code)
 
 
-def _extract_codes(ctx: CompileContext) -> exp.Query:
+def _distinct_codes(ctx: CompileContext) -> exp.Query:
     found = []
     for table in coded_tables(ctx):
         columns = [c.as_(name) for name, c in raw_code_columns(table).items()]
@@ -277,7 +235,7 @@ def _extract_codes(ctx: CompileContext) -> exp.Query:
         )
         code = exp.func("COALESCE", exp.column("mapped_code"), code)
     return query(
-        _EXTRACT_CODES,
+        _DISTINCT_CODES,
         found=union.subquery("found"),
         code=code,
         problem=_code_problem(ctx.list_systems),
@@ -285,65 +243,73 @@ def _extract_codes(ctx: CompileContext) -> exp.Query:
 
 
 def source_stages(ctx: CompileContext) -> tuple[Stage, ...]:
-    """Stages that turn raw extract tables into typed, usable rows."""
+    """Each table's row judgement, then the typed, usable rows later passes read."""
     study = ctx.study
+    patients = judged_stage(PATIENTS.name)
+    encounters = judged_stage(ENCOUNTERS.name)
     stages = [
+        patients_judged(PATIENTS, unreadable_patient_date()),
         Stage(
-            "patient_base",
-            query(_PATIENT_BASE, unreadable_date=unreadable_patient_date()),
-            ("src_patients",),
+            names.PATIENT_BASE,
+            query(_PATIENT_BASE, judged=exp.to_table(patients), used=is_used()),
+            (patients,),
             "one typed row per patient: birth date (1 July when only the year is known), sex; "
             "a patient with a written but unreadable date is left out",
         ),
         Stage(
-            "patient_duplicates",
-            query(_PATIENT_DUPLICATES),
-            ("patient_base",),
+            names.PATIENT_DUPLICATES,
+            query(_PATIENT_DUPLICATES, base=exp.to_table(names.PATIENT_BASE)),
+            (names.PATIENT_BASE,),
             "patients must be listed once",
             kind="check",
             failure="the patients table lists the same patient_id with different values",
         ),
+        event_judged(ENCOUNTERS, end_of_data=study.end_of_data),
         Stage(
-            "encounter_rows",
-            query(_ENCOUNTER_ROWS, end_of_data=study.end_of_data),
-            ("src_encounters", "patient_base"),
+            names.ENCOUNTER_ROWS,
+            query(_ENCOUNTER_ROWS, judged=exp.to_table(encounters), used=is_used()),
+            (encounters,),
             "usable encounters: a readable date, a known patient, not after death or end of data",
             kind="view",
         ),
         Stage(
-            "encounter_summary",
-            query(_ENCOUNTER_SUMMARY, in_window=_index_window(study)),
-            ("encounter_rows",),
+            names.ENCOUNTER_SUMMARY,
+            query(
+                _ENCOUNTER_SUMMARY,
+                in_window=_index_window(study),
+                rows=exp.to_table(names.ENCOUNTER_ROWS),
+            ),
+            (names.ENCOUNTER_ROWS,),
             "first and last usable encounter per patient (and the first in the index window)",
         ),
     ]
     if coded_tables(ctx):
         stages.append(
             Stage(
-                "extract_codes",
-                _extract_codes(ctx),
+                names.DISTINCT_CODES,
+                _distinct_codes(ctx),
                 _coded_sources(ctx),
                 "each distinct code of the extract, normalised, with what is wrong with it",
             )
         )
+    tables = {"diagnoses": DIAGNOSES, "prescriptions": PRESCRIPTIONS}
+    for name in coded_tables(ctx):
+        stages.append(
+            event_judged(
+                tables[name], end_of_data=study.end_of_data, raw_codes=raw_code_columns(name)
+            )
+        )
     if ctx.uses_coded_events:
-        parts = []
-        if ctx.uses("diagnosis"):
-            parts.append(query(_DIAGNOSIS_ROWS, **raw_code_columns("diagnoses")))
-        if ctx.uses("prescription"):
-            duration = days_between(
-                exp.TryCast(this=exp.column("start_date"), to=exp.DataType.build("DATE")),
-                exp.TryCast(this=exp.column("stop_date"), to=exp.DataType.build("DATE")),
-            )
-            parts.append(
-                query(_PRESCRIPTION_ROWS, duration=duration, **raw_code_columns("prescriptions"))
-            )
+        parts = [
+            query(_CODED_ROWS, judged=exp.to_table(judged_stage(name)), used=is_used())
+            for name in coded_tables(ctx)
+        ]
         rows = parts[0] if len(parts) == 1 else parts[0].union(parts[1], distinct=False)
         stages.append(
             Stage(
-                "coded_events",
-                query(_CODED_EVENTS, rows=rows.subquery(), end_of_data=study.end_of_data),
-                (*_coded_sources(ctx), "patient_base"),
+                names.CODED_ROWS,
+                rows,
+                tuple(judged_stage(name) for name in coded_tables(ctx)),
                 "usable diagnosis and prescription rows with their raw codes",
                 kind="view",
             )

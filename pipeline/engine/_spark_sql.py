@@ -257,7 +257,7 @@ def _bottom_up(node: exp.Expression, rule: Rule) -> exp.Expression:
 def spark_plan(plan: Plan) -> Plan:
     """The plan with every stage rewritten for Spark.
 
-    ``spark_plan(plan).explain("spark")`` is exactly the SQL :class:`SparkEngine` runs.
+    ``spark_plan(plan).describe("spark")`` is exactly the SQL :class:`SparkEngine` runs.
     """
     stages = tuple(dataclasses.replace(s, query=spark_query(s.query)) for s in plan.stages)
     return dataclasses.replace(plan, stages=stages)

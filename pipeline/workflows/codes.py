@@ -6,7 +6,7 @@ and last year and rows per calendar year (a code that stops in 2017 while its ne
 is coding drift); the codes of its lists and inline codes that no usable row carries; and its
 near misses: extract codes beside the matched ones (the same parent, see :func:`parent_of`)
 that the evidence does not name, ranked by patients. The counting runs on the engine, from the
-study's own ``code_matches`` stage, so "matched" means what the build means
+study's own ``codes_to_evidence`` stage, so "matched" means what the build means
 (:mod:`pipeline.compile._audit`); what is computed here in Python works on a few hundred codes.
 
 Every count is patient-level detail (:data:`PATIENT_LEVEL`) unless written with ``release``.
@@ -19,7 +19,7 @@ from pathlib import Path
 from typing import Any
 
 from pipeline.codes import descendants, normalise_in, prefixes_in, read_hierarchy
-from pipeline.compile import compile_study
+from pipeline.compile import compile_study, names
 from pipeline.compile._audit import audit_plan
 from pipeline.compile._context import CompileContext, evidence_number
 from pipeline.config import Evidence, ListUse, load_study
@@ -226,7 +226,7 @@ def audit_codes(study_file: Path, extract: Path | str | None = None) -> CodeAudi
         by_year=by_year,
         unseen=_unseen(evidence, out["audit_extract_codes"]),
         near_misses=_near_misses(
-            evidence, matched, out["code_matches"], out["audit_extract_codes"]
+            evidence, matched, out[names.CODES_TO_EVIDENCE], out["audit_extract_codes"]
         ),
         totals=sorted(
             (

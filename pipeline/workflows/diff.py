@@ -16,6 +16,7 @@ from typing import Any
 
 import polars as pl
 
+from pipeline.compile.names import ONSET_PREFIX, onset_column, outcome_columns
 from pipeline.errors import AscertainError
 from pipeline.outputs import read_manifest
 
@@ -148,8 +149,9 @@ def _false(flag: pl.Expr) -> pl.Expr:
 
 
 def _outcome_changes(both: pl.DataFrame, name: str) -> list[Change]:
-    onset_a, onset_b = pl.col(f"onset_{name}"), pl.col(f"onset_{name}_b")
-    incident_a, incident_b = pl.col(f"incident_{name}"), pl.col(f"incident_{name}_b")
+    columns = outcome_columns(name)
+    onset_a, onset_b = pl.col(columns.onset), pl.col(f"{columns.onset}_b")
+    incident_a, incident_b = pl.col(columns.incident), pl.col(f"{columns.incident}_b")
     rules = {
         "rule newly met": onset_a.is_null() & onset_b.is_not_null(),
         "rule no longer met": onset_a.is_not_null() & onset_b.is_null(),
@@ -252,8 +254,9 @@ def diff_runs(run_a: Path, run_b: Path) -> RunDiff:
         AscertainError: A folder lacks the files ``ascertain build`` writes.
     """
     cohort_a, cohort_b = _read(run_a, "cohort.parquet"), _read(run_b, "cohort.parquet")
-    outcomes = [c.removeprefix("onset_") for c in cohort_a.columns if c.startswith("onset_")]
-    outcomes = [o for o in outcomes if f"onset_{o}" in cohort_b.columns]
+    prefix = ONSET_PREFIX
+    outcomes = [c.removeprefix(prefix) for c in cohort_a.columns if c.startswith(prefix)]
+    outcomes = [o for o in outcomes if onset_column(o) in cohort_b.columns]
     keep = ["patient_id", *(f"{p}_{o}" for o in outcomes for p in ("onset", "incident"))]
     both = cohort_a.select(keep).join(cohort_b.select(keep), on="patient_id", suffix="_b")
     values, columns_only = _value_changes(cohort_a, cohort_b)

@@ -12,6 +12,7 @@ from pathlib import Path
 from typing import Any
 
 from pipeline.compile import Plan
+from pipeline.compile import names as plan_names
 from pipeline.compile._context import evidence_key, evidence_number
 from pipeline.config import Condition, Study
 from pipeline.extract import open_extract
@@ -47,22 +48,22 @@ def _rows(result: dict[str, Any], name: str) -> list[dict[str, Any]]:
 
 def _trace_stages(plan: Plan) -> tuple[str, ...]:
     wanted = [
-        "rows_read",
-        "patient_base",
-        "encounter_summary",
-        "index_dates",
-        "eligibility",
-        "attrition",
-        "cohort",
-        "evidence_events",
-        "coded_matches",
-        "measurement_rows",
-        "derived_egfr",
-        "derived_bmi",
+        plan_names.ROWS_READ,
+        plan_names.PATIENT_BASE,
+        plan_names.ENCOUNTER_SUMMARY,
+        plan_names.INDEX_DATES,
+        plan_names.ELIGIBILITY,
+        plan_names.ATTRITION,
+        plan_names.COHORT,
+        plan_names.EVIDENCE_EVENTS,
+        plan_names.CODED_ROW_EVIDENCE,
+        plan_names.MEASUREMENT_ROWS,
+        plan_names.DERIVED_EGFR,
+        plan_names.DERIVED_BMI,
     ]
-    names = {s.name for s in plan.stages}
-    rules = [s.name for s in plan.stages if s.name.startswith("rules_")]
-    return tuple(n for n in wanted if n in names) + tuple(rules)
+    present = {s.name for s in plan.stages}
+    rules = [s.name for s in plan.stages if s.name.startswith(plan_names.RULES_PREFIX)]
+    return tuple(n for n in wanted if n in present) + tuple(rules)
 
 
 def _measurements(measures: set[str], outputs: dict[str, Any]) -> list[dict[str, Any]]:
@@ -76,10 +77,10 @@ def _measurements(measures: set[str], outputs: dict[str, Any]) -> list[dict[str,
             "value": r["value"],
             "status": r["problem"] or "used",
         }
-        for r in _rows(outputs, "measurement_rows")
+        for r in _rows(outputs, plan_names.MEASUREMENT_ROWS)
         if r["measure"] in measures
     ]
-    for derived in ("derived_egfr", "derived_bmi"):
+    for derived in (plan_names.DERIVED_EGFR, plan_names.DERIVED_BMI):
         rows += [
             {
                 "date": r["obs_date"],
@@ -110,7 +111,7 @@ def _outcome(
             "evidence": names[r["evidence"]],
             "counts": not r["excluded"],
         }
-        for r in _rows(outputs, "coded_matches")
+        for r in _rows(outputs, plan_names.CODED_ROW_EVIDENCE)
         if r["evidence"] in names
     ]
     measured = [
@@ -120,14 +121,15 @@ def _outcome(
             "evidence": names[r["evidence"]],
             "rows": r["n_rows"],
         }
-        for r in _rows(outputs, "evidence_events")
+        for r in _rows(outputs, plan_names.EVIDENCE_EVENTS)
         if r["evidence"] in names
         and not any(
             c["date"] == r["event_date"] and c["evidence"] == names[r["evidence"]] for c in coded
         )
     ]
     rules = [
-        {"rule": r["rule"], "met_on": r["onset_date"]} for r in _rows(outputs, f"rules_{name}")
+        {"rule": r["rule"], "met_on": r["onset_date"]}
+        for r in _rows(outputs, plan_names.rules_stage(name))
     ]
     measures = {e.measurement.measure for e in condition.evidence.values() if e.measurement}
     for measure in list(measures):
@@ -140,11 +142,12 @@ def _outcome(
         "rules_met": sorted(rules, key=lambda r: (r["met_on"], r["rule"], _tie(r))),
     }
     if cohort is not None:
+        columns = plan_names.outcome_columns(name)
         entry |= {
-            "onset": _iso(cohort[f"onset_{name}"]),
-            "prevalent": cohort[f"prevalent_{name}"],
-            "incident": cohort[f"incident_{name}"],
-            "days_to": cohort[f"days_to_{name}"],
+            "onset": _iso(cohort[columns.onset]),
+            "prevalent": cohort[columns.prevalent],
+            "incident": cohort[columns.incident],
+            "days_to": cohort[columns.days_to],
         }
     return entry
 
@@ -166,12 +169,12 @@ def explain_patient(
             plan.with_outputs(_trace_stages(plan)), x.tables, patients=(patient_id,)
         )
     outputs = run.outputs
-    patient = _rows(outputs, "patient_base")
-    eligibility = _rows(outputs, "eligibility")
-    cohort_rows = _rows(outputs, "cohort")
+    patient = _rows(outputs, plan_names.PATIENT_BASE)
+    eligibility = _rows(outputs, plan_names.ELIGIBILITY)
+    cohort_rows = _rows(outputs, plan_names.COHORT)
     cohort = cohort_rows[0] if cohort_rows else None
-    rows = {r["source_table"]: r["n_rows"] for r in _rows(outputs, "rows_read")}
-    encounters = _rows(outputs, "encounter_summary")[:1] or None
+    rows = {r["source_table"]: r["n_rows"] for r in _rows(outputs, plan_names.ROWS_READ)}
+    encounters = _rows(outputs, plan_names.ENCOUNTER_SUMMARY)[:1] or None
     trace: Trace = {
         "trace_version": TRACE_VERSION,
         "study": loaded.study.study,
@@ -251,19 +254,19 @@ def _why_no_index(
 
 
 def _steps(outputs: dict[str, Any]) -> list[dict[str, Any]]:
-    eligibility = _rows(outputs, "eligibility")
+    eligibility = _rows(outputs, plan_names.ELIGIBILITY)
     if not eligibility:
         return []
     row = eligibility[0]
     attrition = sorted(
-        (r for r in _rows(outputs, "attrition") if r["step_number"] > 0),
+        (r for r in _rows(outputs, plan_names.ATTRITION) if r["step_number"] > 0),
         key=lambda r: r["step_number"],
     )
     return [
         {
             "step": step["step"],
             "description": step["description"],
-            "passed": bool(row[f"step_{i}"]),
+            "passed": bool(row[plan_names.step_column(i)]),
         }
         for i, step in enumerate(attrition, start=1)
     ]

@@ -23,7 +23,7 @@ from pathlib import Path
 
 import polars as pl
 
-from pipeline.compile import Plan
+from pipeline.compile import Plan, names
 from pipeline.errors import AscertainError
 from pipeline.extract import open_extract
 from pipeline.stats import (
@@ -120,16 +120,16 @@ def validate_study(
     ready = prepare(study_file, BuildOptions(extract=extract))
     loaded, plan = ready.loaded, ready.plan
     ref = read_reference(reference, coverage=coverage, sampling=sampling)
-    wanted = ("patient_base", "condition_onsets", "encounter_summary")
+    wanted = (names.PATIENT_BASE, names.CONDITION_ONSETS, names.ENCOUNTER_SUMMARY)
     with open_extract(ready.extract, plan.sources) as x:
         run = ready.engine.run(_through(plan, wanted), x.tables)
-    patients = pl.from_arrow(run.outputs["patient_base"]).select(
+    patients = pl.from_arrow(run.outputs[names.PATIENT_BASE]).select(
         pl.col("patient_id").cast(pl.String)
     )
-    onsets = pl.from_arrow(run.outputs["condition_onsets"]).with_columns(
+    onsets = pl.from_arrow(run.outputs[names.CONDITION_ONSETS]).with_columns(
         pl.col("patient_id").cast(pl.String)
     )
-    starts = pl.from_arrow(run.outputs["encounter_summary"])["first_encounter"]
+    starts = pl.from_arrow(run.outputs[names.ENCOUNTER_SUMMARY])["first_encounter"]
     start = starts.min() if starts.len() else None
     _check_patients(ref, patients, reference)
     end = loaded.study.end_of_data
@@ -144,8 +144,8 @@ def validate_study(
             )
         ).select("patient_id", "ref_case", pl.col("date").alias("ref_date"))
         classified = patients.join(
-            onsets.select("patient_id", f"onset_{condition}"), "patient_id", "left"
-        ).with_columns(pl.col(f"onset_{condition}").is_not_null().alias("def_case"))
+            onsets.select("patient_id", names.onset_column(condition)), "patient_id", "left"
+        ).with_columns(pl.col(names.onset_column(condition)).is_not_null().alias("def_case"))
         how = "left" if ref.coverage == "complete" else "inner"
         joined = classified.join(case_by_ref, "patient_id", how).with_columns(
             pl.col("ref_case").fill_null(value=False)
@@ -165,7 +165,9 @@ def validate_study(
         )
         early = both.filter(pl.col("ref_date") < start) if start is not None else both.clear()
         compared = both.join(early.select("patient_id"), "patient_id", "anti")
-        differences = (compared[f"onset_{condition}"] - compared["ref_date"]).dt.total_days()
+        differences = (
+            compared[names.onset_column(condition)] - compared["ref_date"]
+        ).dt.total_days()
         corrected = None
         if ref.sampling == "by_definition":
             corrected = verification_corrected(

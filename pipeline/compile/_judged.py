@@ -1,0 +1,190 @@
+"""One judgement per extract row: each source table's row-judgement view.
+
+Whether a row may be used, and if not the reason the quality log gives, is decided here once
+per table (``patients_judged``, ``encounters_judged``, ``diagnoses_judged``,
+``prescriptions_judged``; measurements are judged in ``measurements_judged``, see
+``compile/_measurements.py``). The usable-row stages read ``reason = 'used'`` from these views
+and the quality log counts their reasons, so the two can never disagree on a row.
+
+An event row's judgement has three parts, applied in the quality log's order:
+
+- ``record_problem``: the reader set it aside (``source_problem``), its patient is unknown
+  (``orphan patient``), or its date cannot be read (``unparseable date``);
+- ``code_problem`` (coded tables): its distinct code is malformed or of an unknown system,
+  judged once per distinct code in ``distinct_codes``;
+- ``timing_problem``: dated after the end of data or after the patient's death.
+
+``reason`` is the first part that applies, or ``used``. Contact with the practice
+(``followup.contact: any_activity``) counts a coded row whatever its code, so it reads the
+record and timing parts alone (:func:`dated_and_placed`).
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+
+from sqlglot import exp
+
+from pipeline.compile import names
+from pipeline.compile._plan import SOURCE_POSITION, SOURCE_PROBLEM, SourceTable, Stage
+from pipeline.compile._sql import days_between, template, value
+from pipeline.extract.schema import canonical_table
+
+_PATIENT_REASON = """
+CASE
+  WHEN source_problem IS NOT NULL THEN source_problem
+  WHEN patient_id IS NULL THEN 'missing patient_id'
+  WHEN :unreadable_date THEN 'unparseable date'
+  ELSE :used
+END
+"""
+
+_RECORD_PROBLEM = """
+CASE
+  WHEN r.source_problem IS NOT NULL THEN r.source_problem
+  WHEN p.patient_id IS NULL THEN 'orphan patient'
+  WHEN r.row_date IS NULL THEN 'unparseable date'
+END
+"""
+
+_TIMING_PROBLEM = """
+CASE
+  WHEN r.row_date > :end_of_data THEN 'after end of data'
+  WHEN p.death_date IS NOT NULL AND r.row_date > p.death_date THEN 'after death'
+END
+"""
+
+
+def patients_judged(table: SourceTable, unreadable_date: exp.Expression) -> Stage:
+    """``patients_judged``: every patients row with its reason (``used`` or why not)."""
+    reason = template(_PATIENT_REASON, unreadable_date=unreadable_date, used=names.USED)
+    return Stage(
+        names.judged_stage(table.name),
+        exp.select(*table.columns, SOURCE_PROBLEM, SOURCE_POSITION, reason.as_("reason")).from_(
+            table.relation
+        ),
+        (table.relation,),
+        "every patients row judged once: used, or the reason the quality log gives",
+        kind="view",
+    )
+
+
+def event_judged(
+    table: SourceTable,
+    *,
+    end_of_data: dt.date,
+    raw_codes: dict[str, exp.Expression] | None = None,
+) -> Stage:
+    """``<table>_judged`` for an event table: every row, its problems and its reason.
+
+    Args:
+        table: The extract table (encounters, diagnoses or prescriptions).
+        end_of_data: The study's end of data.
+        raw_codes: For a coded table, its raw system, code and source as text (the keys of
+            ``distinct_codes``); the view then carries them with ``source_table`` and
+            ``duration_days`` and takes each row's code problem from ``distinct_codes``.
+    """
+    # The date that places the row in time is the schema's (extract/schema.py).
+    row_date = exp.TryCast(
+        this=exp.column(canonical_table(table.name).row_date), to=exp.DataType.build("DATE")
+    )
+    columns: list[exp.Expression] = [
+        *(exp.column(c) for c in (*table.columns, SOURCE_PROBLEM, SOURCE_POSITION)),
+        row_date.as_("row_date"),
+    ]
+    if raw_codes is not None:
+        columns.append(value(table.name).as_("source_table"))
+        columns += [c.as_(n) for n, c in raw_codes.items()]
+        columns.append(_duration(table.name, row_date).as_("duration_days"))
+    parts = [template(_RECORD_PROBLEM).as_("record_problem")]
+    if raw_codes is not None:
+        parts.append(exp.column("problem", "c").as_("code_problem"))
+    parts.append(template(_TIMING_PROBLEM, end_of_data=end_of_data).as_("timing_problem"))
+    judged = (
+        exp.select(exp.column(exp.Star(), "r"), *parts)
+        .from_(exp.select(*columns).from_(table.relation).subquery("r"))
+        .join(
+            exp.to_table(names.PATIENT_BASE).as_("p"),
+            on=exp.column("patient_id", "p").eq(exp.column("patient_id", "r")),
+            join_type="left",
+        )
+    )
+    depends = [table.relation, names.PATIENT_BASE]
+    if raw_codes is not None:
+        judged = judged.join(
+            exp.to_table(names.DISTINCT_CODES).as_("c"),
+            on=same_raw_code("r", "c"),
+            join_type="left",
+        )
+        depends.append(names.DISTINCT_CODES)
+    # The quality log's order: the record, then the code, then the timing.
+    reason = exp.func("COALESCE", *(exp.column(p.alias) for p in parts), value(names.USED))
+    return Stage(
+        names.judged_stage(table.name),
+        exp.select(exp.Star(), reason.as_("reason")).from_(judged.subquery("j")),
+        tuple(depends),
+        f"every {table.name} row judged once: used, or the reason the quality log gives",
+        kind="view",
+    )
+
+
+def dated_and_placed() -> exp.Expression:
+    """A judged event row with a known patient and a usable date, whatever its code."""
+    return exp.and_(
+        exp.column("record_problem").is_(exp.null()),
+        exp.column("timing_problem").is_(exp.null()),
+    )
+
+
+def is_used() -> exp.Expression:
+    """The one test of a usable row, on a row-judgement view."""
+    return exp.column("reason").eq(value(names.USED))
+
+
+def judged_for_log(table: SourceTable, *, check_duplicates: bool) -> exp.Query:
+    """A table's judged rows as the quality log counts them: reason, copies, first position.
+
+    With the duplicate check the judged rows are grouped on all their columns (a row's reason
+    follows from its columns, so copies share it); the first copy's position is kept. Rows
+    without a patient or set aside by the reader are counted whole (see the quality log).
+    """
+    relation = names.judged_stage(table.name)
+    whole = exp.or_(
+        exp.column("patient_id").is_(exp.null()),
+        exp.column(SOURCE_PROBLEM).is_(exp.null()).not_(),
+    ).as_("counted_whole")
+    if not check_duplicates:
+        return exp.select(
+            "reason", exp.Literal.number(1).as_("copies"), SOURCE_POSITION, whole
+        ).from_(relation)
+    return (
+        exp.select(
+            "reason",
+            exp.func("COUNT", exp.Star()).as_("copies"),
+            exp.func("MIN", exp.column(SOURCE_POSITION)).as_(SOURCE_POSITION),
+            whole,
+        )
+        .from_(relation)
+        .group_by(*table.columns, SOURCE_PROBLEM, "reason")
+    )
+
+
+def same_raw_code(row: str, code: str) -> exp.Expression:
+    """A coded row joined to its entry of ``distinct_codes`` or ``codes_to_evidence``.
+
+    ``row`` and ``code`` are the aliases; both carry source_table and the raw_* columns, and
+    NULLs compare equal.
+    """
+    same = [
+        exp.NullSafeEQ(this=exp.column(c, row), expression=exp.column(c, code))
+        for c in ("raw_system", "raw_code", "raw_source")
+    ]
+    return exp.and_(exp.column("source_table", row).eq(exp.column("source_table", code)), *same)
+
+
+def _duration(table: str, row_date: exp.Expression) -> exp.Expression:
+    """A prescription's length in days, both ends counted (NULL for diagnoses)."""
+    if table != "prescriptions":
+        return exp.cast(exp.null(), "INT")
+    stop = exp.TryCast(this=exp.column("stop_date"), to=exp.DataType.build("DATE"))
+    return exp.cast(days_between(row_date.copy(), stop) + 1, "INT")

@@ -1,0 +1,68 @@
+"""The compiler's shape: one row judgement per table, one spelling of each name, passes.
+
+These check the contract of issue 17 part C on the demo plan: the usable-row rule and the
+quality log's reasons live in the row-judgement stages only; the analysis table's outcome
+columns are the ones ``names.outcome_columns`` lists; each stage is built once.
+"""
+
+from __future__ import annotations
+
+import pytest
+from sqlglot import exp
+
+from pipeline._build import plan_study
+from pipeline.compile import _cohort, compile_study, names
+from pipeline.config import load_study
+
+from .conftest import DEMO_STUDY
+
+_JUDGED = {names.judged_stage(t) for t in ("encounters", "diagnoses", "prescriptions")}
+
+
+def _literals(stage_query: exp.Expression) -> set[str]:
+    return {lit.this for lit in stage_query.find_all(exp.Literal) if lit.is_string}
+
+
+def test_timing_and_patient_reasons_are_written_only_in_the_judgements() -> None:
+    plan = plan_study(DEMO_STUDY)
+    for reason in ("orphan patient", "after end of data", "after death"):
+        writing = {s.name for s in plan.stages if reason in _literals(s.query)}
+        # measurement_rows judges each measurement; measurements_judged holds it.
+        assert writing == {*_JUDGED, names.MEASUREMENT_ROWS}, reason
+
+
+def test_usable_rows_and_the_quality_log_read_the_same_judgements() -> None:
+    plan = plan_study(DEMO_STUDY)
+    assert plan.stage(names.PATIENT_BASE).depends_on == (names.judged_stage("patients"),)
+    assert plan.stage(names.ENCOUNTER_ROWS).depends_on == (names.judged_stage("encounters"),)
+    assert set(plan.stage(names.CODED_ROWS).depends_on) == _JUDGED - {"encounters_judged"}
+    log = set(plan.stage(names.QUALITY_LOG).depends_on)
+    assert log == {*_JUDGED, names.judged_stage("patients"), names.MEASUREMENTS_JUDGED}
+    # Neither side restates the rule: the usable rows filter on the judgement's reason.
+    for name in (names.PATIENT_BASE, names.ENCOUNTER_ROWS, names.CODED_ROWS):
+        assert names.USED in _literals(plan.stage(name).query), name
+        assert "after death" not in _literals(plan.stage(name).query), name
+
+
+def test_the_cohort_writes_the_outcome_columns_names_lists() -> None:
+    loaded = load_study(DEMO_STUDY)
+    cohort = compile_study(loaded).stage(names.COHORT).query
+    written = [e.alias_or_name for e in cohort.selects]
+    for outcome in loaded.study.outcomes.conditions:
+        expected = list(names.outcome_columns(outcome).all())
+        start = written.index(expected[0])
+        assert written[start : start + len(expected)] == expected
+
+
+def test_window_counts_is_built_once(monkeypatch: pytest.MonkeyPatch) -> None:
+    calls: list[str] = []
+    original = _cohort.window_counts_stage
+
+    def counting(ctx: object) -> object:
+        calls.append("window_counts")
+        return original(ctx)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(_cohort, "window_counts_stage", counting)
+    plan = compile_study(load_study(DEMO_STUDY))
+    assert calls == ["window_counts"]
+    assert names.WINDOW_COUNTS in plan.stage(names.ELIGIBILITY).depends_on
