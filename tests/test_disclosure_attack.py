@@ -54,12 +54,15 @@ def demo(tmp_path_factory: pytest.TempPathFactory) -> Path:
 
 
 PERSONTIME = "{age_bands: [40, 50, 60, 70, 80], calendar_year: true}"
+SINCE = "{age_bands: [40, 50, 60, 70, 80], calendar_year: true, since_index_years: [0, 1, 3]}"
 
 
-def _build_with_rates(folder: Path, extract: Path | None = None) -> Path:
+def _build_with_rates(
+    folder: Path, extract: Path | None = None, persontime: str = PERSONTIME
+) -> Path:
     """The demo study with a ``persontime:`` section, built and reported (rates included)."""
     out = folder / "out"
-    study = demo_study_variant(folder, persontime=PERSONTIME)
+    study = demo_study_variant(folder, persontime=persontime)
     build_study(study, BuildOptions(extract=extract, out=out))
     write_report(out)
     assert (out / "summary" / "rates.csv").is_file()
@@ -68,12 +71,21 @@ def _build_with_rates(folder: Path, extract: Path | None = None) -> Path:
 
 @pytest.fixture(scope="module")
 def demo_rates(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    return _build_with_rates(tmp_path_factory.mktemp("attack_demo_rates"))
+    # Years since index up to the horizon (1461 days): the last band, 4+, holds a few days of
+    # follow-up, so its events are few while the outcome's total is large.
+    option = PERSONTIME.replace("}", ", since_index_years: [0, 1, 2, 3, 4]}")
+    return _build_with_rates(tmp_path_factory.mktemp("attack_demo_rates"), persontime=option)
 
 
 @pytest.fixture(scope="module")
 def tiny_rates(tmp_path_factory: pytest.TempPathFactory) -> Path:
     return _build_with_rates(tmp_path_factory.mktemp("attack_tiny_rates"), HANDMADE)
+
+
+@pytest.fixture(scope="module")
+def tiny_since(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The hand-made extract with rates by age band, year and years since index."""
+    return _build_with_rates(tmp_path_factory.mktemp("attack_tiny_since"), HANDMADE, SINCE)
 
 
 @pytest.fixture(scope="module")
@@ -141,6 +153,12 @@ class Attack:
             ("pt", (), r["outcome"], f"{r['age_band']}|{r['calendar_year']}")
             for r in self.rates
             if r["age_band"] != "all"
+        ]
+        # events by years since index (when the study split by it): unknowns of their own too
+        self.names += [
+            ("pt", (), r["outcome"], f"since|{r['since_index']}")
+            for r in self.rates
+            if r.get("since_index", "all") != "all"
         ]
         self.index = {n: i for i, n in enumerate(self.names)}
         # (coefficients, released text, description); a cell is a sum of atoms
@@ -278,9 +296,15 @@ class Attack:
         of its outcome, and no other event does.
         """
         bands: dict[tuple[str, str], list[int]] = {}
+        since: dict[str, list[int]] = {}
         for r in self.rates:
             o, band, year = r["outcome"], r["age_band"], r["calendar_year"]
             what = f"rates {o} {band} {year}"
+            if r.get("since_index", "all") != "all":  # a band of years since index
+                k = self.index[("pt", (), o, f"since|{r['since_index']}")]
+                self.cells.append(({k: 1}, r["events"], f"{what} since {r['since_index']}"))
+                since.setdefault(o, []).append(k)
+                continue
             if band == "all":
                 i = self._state(o)
                 events = self._of(lambda s, i=i: s[i] == "E")
@@ -302,6 +326,10 @@ class Attack:
         for (o, band), years in bands.items():
             total = self.index[("pt", (), o, f"{band}|all")]
             self.identities.append(dict.fromkeys(years, 1) | {total: -1})
+        for o, keys in since.items():  # every incident event falls in one since-index band
+            i = self._state(o)
+            events = self._of(lambda s, i=i: s[i] == "E")
+            self.identities.append(dict.fromkeys(keys, 1) | dict.fromkeys(events, -1))
 
     def ranges(self) -> list[tuple[str, float, float]]:
         """Every hidden cell's exact (min, max) given all shown cells and identities."""
@@ -393,6 +421,7 @@ def _naive(folder: Path) -> Attack:
         "demo",
         "tiny",
         "tiny_rates",
+        "tiny_since",
         pytest.param("sparse", marks=pytest.mark.slow),
         pytest.param("demo_rates", marks=pytest.mark.slow),
     ],
@@ -458,6 +487,24 @@ def test_the_attack_finds_a_small_bin_given_away(sparse: Path, tmp_path: Path) -
         copy = _tampered(sparse, tmp_path / f"{o}{day}{count}", (o, day, count), value)
         leaked += Attack(copy).bin_leaks(truth)
     assert leaked
+
+
+@pytest.mark.slow
+def test_the_attack_finds_a_lone_hidden_band_since_index(demo_rates: Path, tmp_path: Path) -> None:
+    # Hand case: hide only heart failure's events in the first year since index. The outcome's
+    # total less the other since-index bands gives it back; the attack must say so.
+    copy = tmp_path / "copy"
+    shutil.copytree(demo_rates, copy)
+    rates = _rows(copy / "summary" / "rates.csv")
+    (row,) = [r for r in rates if r["outcome"] == "heart_failure" and r["since_index"] == "0-1"]
+    value = float(row["events"])
+    row["events"] = "*"
+    with (copy / "summary" / "rates.csv").open("w", encoding="utf-8", newline="") as handle:
+        writer = csv.DictWriter(handle, fieldnames=list(rates[0]), lineterminator="\n")
+        writer.writeheader()
+        writer.writerows(rates)
+    found = [(w, lo, hi) for w, lo, hi in Attack(copy).ranges() if w.endswith("since 0-1")]
+    assert found == [("rates heart_failure all all since 0-1", value, value)]
 
 
 def test_the_attack_breaks_primary_suppression_alone(tiny: Path) -> None:
