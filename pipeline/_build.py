@@ -218,6 +218,7 @@ def build_study(
         # the definition files and every code list file they read (CSV, header, hierarchy)
         definition_files=[*loaded.catalog.files.values(), *loaded.catalog.list_files()],
         measure_files=loaded.measures.files.values(),
+        reference_files=[loaded.reference_rates.file] if loaded.reference_rates else [],
         library=study.library,
         extract=extract,
         extract_entries=extract_entries,

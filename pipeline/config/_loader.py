@@ -18,6 +18,8 @@ from pipeline.config._measure import (
     shipped_measures,
 )
 from pipeline.config._persontime import persontime_problems
+from pipeline.config._reference_rates import ReferenceRates
+from pipeline.config._reference_use import study_reference_rates
 from pipeline.config._study import Study
 from pipeline.config._yaml import LocatedDocument, PathKey, load_yaml
 from pipeline.errors import ConfigError, Problem
@@ -230,12 +232,15 @@ class LoadedStudy:
             against the study file's folder.
         catalog: The condition definitions the study may use.
         measures: The measures it may read: shipped, and its own (``measures:``).
+        reference_rates: The table of ``persontime: reference_rates:``, read and checked
+            against the study (None without one).
     """
 
     file: Path
     study: Study
     catalog: Catalog
     measures: MeasureRegistry
+    reference_rates: ReferenceRates | None = None
 
 
 def _resolve(base: Path, path: Path) -> Path:
@@ -427,10 +432,11 @@ def load_study(file: Path) -> LoadedStudy:
     problems += persontime_problems(doc, study.persontime, ages)
     if problems:
         raise ConfigError(problems)
+    study, rates = study_reference_rates(doc, study, base)
     catalog = _apply_changes(doc, study, catalog)
     if problems:
         raise ConfigError(problems)
-    return LoadedStudy(file, study, catalog, measures)
+    return LoadedStudy(file, study, catalog, measures, rates)
 
 
 def _study_measures(doc: LocatedDocument, base: Path) -> MeasureRegistry:
