@@ -37,7 +37,7 @@ from pipeline._build import BuildOptions, build_study
 from pipeline.outputs._report import write_report
 from pipeline.synth import generate_extract
 
-from .conftest import DEMO_STUDY, HANDMADE
+from .conftest import DEMO_STUDY, HANDMADE, ROOT
 from .helpers import demo_study_variant
 
 THRESHOLD = 5
@@ -54,7 +54,11 @@ def demo(tmp_path_factory: pytest.TempPathFactory) -> Path:
 
 
 PERSONTIME = "{age_bands: [40, 50, 60, 70, 80], calendar_year: true}"
-SINCE = "{age_bands: [40, 50, 60, 70, 80], calendar_year: true, since_index_years: [0, 1, 3]}"
+SINCE = (
+    "{age_bands: [40, 50, 60, 70, 80], calendar_year: true, since_index_years: [0, 1, 3], "
+    "reference_rates: ../rates.csv}"
+)
+"""Rates by year since index, and SMRs against the demo's (fictional) reference rates."""
 
 
 def _build_with_rates(
@@ -63,6 +67,9 @@ def _build_with_rates(
     """The demo study with a ``persontime:`` section, built and reported (rates included)."""
     out = folder / "out"
     study = demo_study_variant(folder, persontime=persontime)
+    shutil.copy(
+        ROOT / "definitions" / "studies" / "orvane_reference_rates.csv", folder / "rates.csv"
+    )
     build_study(study, BuildOptions(extract=extract, out=out))
     write_report(out)
     assert (out / "summary" / "rates.csv").is_file()
@@ -73,7 +80,7 @@ def _build_with_rates(
 def demo_rates(tmp_path_factory: pytest.TempPathFactory) -> Path:
     # Years since index up to the horizon (1461 days): the last band, 4+, holds a few days of
     # follow-up, so its events are few while the outcome's total is large.
-    option = PERSONTIME.replace("}", ", since_index_years: [0, 1, 2, 3, 4]}")
+    option = SINCE.replace("[0, 1, 3]", "[0, 1, 2, 3, 4]")
     return _build_with_rates(tmp_path_factory.mktemp("attack_demo_rates"), persontime=option)
 
 
@@ -149,6 +156,8 @@ class Attack:
         # events over one year, or over all years, are unknowns of their own.
         rates = folder / "summary" / "rates.csv"
         self.rates = _rows(rates) if rates.is_file() else []
+        smr = folder / "summary" / "smr.csv"  # with reference rates: observed, expected, SMR
+        self.smr = _rows(smr) if smr.is_file() else []
         self.names += [
             ("pt", (), r["outcome"], f"{r['age_band']}|{r['calendar_year']}")
             for r in self.rates
@@ -164,6 +173,8 @@ class Attack:
         # (coefficients, released text, description); a cell is a sum of atoms
         self.cells: list[tuple[dict[int, int], str, str]] = []
         self.identities: list[dict[int, int]] = []
+        # sums of atoms known to lie in a range (an SMR shown beside its expected count)
+        self.ranges_known: list[tuple[dict[int, int], float, float]] = []
         for v, levels in self.levels.items():  # each state's patients, split by a variable
             for s in self.states:
                 eq = {self.index[("l", s, v, lv)]: 1 for lv in levels}
@@ -237,6 +248,7 @@ class Attack:
                     )
                 )
         self._read_rates()
+        self._read_smr()
         last = len(self.flow) - 1
         for i, r in enumerate(self.flow):  # before = removed + remaining; remaining = next before
             before, removed = (
@@ -331,6 +343,22 @@ class Attack:
             events = self._of(lambda s, i=i: s[i] == "E")
             self.identities.append(dict.fromkeys(keys, 1) | dict.fromkeys(events, -1))
 
+    def _read_smr(self) -> None:
+        """Observed events are the outcome's incident cases; an SMR shown bounds them too.
+
+        The SMR is printed to 2 decimals beside the expected count (also to 2), so the observed
+        count lies within (SMR +- 0.005) x (expected +- 0.005): a range, not an equation.
+        """
+        for r in self.smr:
+            i = self._state(r["outcome"])
+            events = self._of(lambda s, i=i: s[i] == "E")
+            self.cells.append((events, r["observed"], f"smr {r['outcome']} observed"))
+            if r["smr"] and r["expected"]:
+                smr, expected = float(r["smr"]), float(r["expected"])
+                low = max(smr - 0.005, 0) * max(expected - 0.005, 0)
+                high = (smr + 0.005) * (expected + 0.005)
+                self.ranges_known.append((events, math.ceil(low - 1e-9), math.floor(high + 1e-9)))
+
     def ranges(self) -> list[tuple[str, float, float]]:
         """Every hidden cell's exact (min, max) given all shown cells and identities."""
         hidden = [(c, what) for c, text, what in self.cells if text in MARKERS]
@@ -350,11 +378,16 @@ class Attack:
             if text not in MARKERS:
                 rows.append(coefficients)
                 rhs.append(float(text))
+        lows, highs = list(rhs), list(rhs)
+        for coefficients, low, high in self.ranges_known:
+            rows.append(coefficients)
+            lows.append(low)
+            highs.append(high)
         matrix = np.zeros((len(rows), n))
         for r, eq in enumerate(rows):
             for k, c in eq.items():
                 matrix[r, k] = c
-        constraints = LinearConstraint(matrix, rhs, rhs)
+        constraints = LinearConstraint(matrix, lows, highs)
         out = []
         for coefficients, what in targets:
             objective = np.zeros(n)

@@ -18,6 +18,7 @@ from pipeline.config import load_study
 from pipeline.config._reference_rates import ReferenceRates, parse_reference_rates
 from pipeline.errors import ConfigError
 from pipeline.outputs import sha256_file
+from pipeline.outputs._manifest import changed_inputs
 from pipeline.outputs._report_rates import rates_block
 from pipeline.outputs._report_smr import expected_cells, smr_summary
 
@@ -238,3 +239,12 @@ def test_the_table_is_hashed_in_the_manifest_not_its_path(smr_build: Path) -> No
     assert entry["path"] == "../rates.csv"  # relative to the study's folder
     assert entry["sha256"] == sha256_file(smr_build.parent / "rates.csv")
     assert not any("reference_rates" in k for k in manifest["study_keys"])
+
+
+def test_verify_and_diff_see_a_changed_table() -> None:
+    recorded = {"reference_rates": [{"path": "../rates.csv", "sha256": "a"}]}
+    rebuilt = {"reference_rates": [{"path": "../rates.csv", "sha256": "b"}]}
+    assert changed_inputs(recorded, rebuilt) == [
+        "reference_rates file ../rates.csv has changed since the build"
+    ]
+    assert changed_inputs(recorded, recorded) == []
