@@ -120,7 +120,7 @@ def smr_summary(
         o, key = r["outcome"], r["events#key"]
         row: dict[str, Any] = {"outcome": o, "reference": table.name}
         row |= {"observed": shown(r["events"], key, hidden, threshold), "expected": None}
-        row |= {"smr": None, "smr_low": None, "smr_high": None, "note": ""}
+        row |= {"smr": None, "smr_low": None, "smr_high": None, "note": None}
         if o not in table.outcomes:
             rows.append(row | {"note": "no reference rates for this outcome in the table"})
             continue
