@@ -37,7 +37,7 @@ from pipeline.outputs.report import write_report
 from pipeline.synth import generate_extract
 from pipeline.workflows.build import BuildOptions, build_study
 
-from .conftest import DEMO_STUDY, HANDMADE
+from .conftest import DEMO_STUDY, HANDMADE, ROOT
 from .helpers import demo_study_variant
 
 THRESHOLD = 5
@@ -54,12 +54,22 @@ def demo(tmp_path_factory: pytest.TempPathFactory) -> Path:
 
 
 PERSONTIME = "{age_bands: [40, 50, 60, 70, 80], calendar_year: true}"
+SINCE = (
+    "{age_bands: [40, 50, 60, 70, 80], calendar_year: true, since_index_years: [0, 1, 3], "
+    "reference_rates: ../rates.csv}"
+)
+"""Rates by year since index, and SMRs against the demo's (fictional) reference rates."""
 
 
-def _build_with_rates(folder: Path, extract: Path | None = None) -> Path:
+def _build_with_rates(
+    folder: Path, extract: Path | None = None, persontime: str = PERSONTIME
+) -> Path:
     """The demo study with a ``persontime:`` section, built and reported (rates included)."""
     out = folder / "out"
-    study = demo_study_variant(folder, persontime=PERSONTIME)
+    study = demo_study_variant(folder, persontime=persontime)
+    shutil.copy(
+        ROOT / "definitions" / "studies" / "orvane_reference_rates.csv", folder / "rates.csv"
+    )
     build_study(study, BuildOptions(extract=extract, out=out))
     write_report(out)
     assert (out / "summary" / "rates.csv").is_file()
@@ -68,12 +78,21 @@ def _build_with_rates(folder: Path, extract: Path | None = None) -> Path:
 
 @pytest.fixture(scope="module")
 def demo_rates(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    return _build_with_rates(tmp_path_factory.mktemp("attack_demo_rates"))
+    # Years since index up to the horizon (1461 days): the last band, 4+, holds a few days of
+    # follow-up, so its events are few while the outcome's total is large.
+    option = SINCE.replace("[0, 1, 3]", "[0, 1, 2, 3, 4]")
+    return _build_with_rates(tmp_path_factory.mktemp("attack_demo_rates"), persontime=option)
 
 
 @pytest.fixture(scope="module")
 def tiny_rates(tmp_path_factory: pytest.TempPathFactory) -> Path:
     return _build_with_rates(tmp_path_factory.mktemp("attack_tiny_rates"), HANDMADE)
+
+
+@pytest.fixture(scope="module")
+def tiny_since(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The hand-made extract with rates by age band, year and years since index."""
+    return _build_with_rates(tmp_path_factory.mktemp("attack_tiny_since"), HANDMADE, SINCE)
 
 
 @pytest.fixture(scope="module")
@@ -137,15 +156,25 @@ class Attack:
         # events over one year, or over all years, are unknowns of their own.
         rates = folder / "summary" / "rates.csv"
         self.rates = _rows(rates) if rates.is_file() else []
+        smr = folder / "summary" / "smr.csv"  # with reference rates: observed, expected, SMR
+        self.smr = _rows(smr) if smr.is_file() else []
         self.names += [
             ("pt", (), r["outcome"], f"{r['age_band']}|{r['calendar_year']}")
             for r in self.rates
             if r["age_band"] != "all"
         ]
+        # events by years since index (when the study split by it): unknowns of their own too
+        self.names += [
+            ("pt", (), r["outcome"], f"since|{r['since_index']}")
+            for r in self.rates
+            if r.get("since_index", "all") != "all"
+        ]
         self.index = {n: i for i, n in enumerate(self.names)}
         # (coefficients, released text, description); a cell is a sum of atoms
         self.cells: list[tuple[dict[int, int], str, str]] = []
         self.identities: list[dict[int, int]] = []
+        # sums of atoms known to lie in a range (an SMR shown beside its expected count)
+        self.ranges_known: list[tuple[dict[int, int], float, float]] = []
         for v, levels in self.levels.items():  # each state's patients, split by a variable
             for s in self.states:
                 eq = {self.index[("l", s, v, lv)]: 1 for lv in levels}
@@ -219,6 +248,7 @@ class Attack:
                     )
                 )
         self._read_rates()
+        self._read_smr()
         last = len(self.flow) - 1
         for i, r in enumerate(self.flow):  # before = removed + remaining; remaining = next before
             before, removed = (
@@ -278,9 +308,15 @@ class Attack:
         of its outcome, and no other event does.
         """
         bands: dict[tuple[str, str], list[int]] = {}
+        since: dict[str, list[int]] = {}
         for r in self.rates:
             o, band, year = r["outcome"], r["age_band"], r["calendar_year"]
             what = f"rates {o} {band} {year}"
+            if r.get("since_index", "all") != "all":  # a band of years since index
+                k = self.index[("pt", (), o, f"since|{r['since_index']}")]
+                self.cells.append(({k: 1}, r["events"], f"{what} since {r['since_index']}"))
+                since.setdefault(o, []).append(k)
+                continue
             if band == "all":
                 i = self._state(o)
                 events = self._of(lambda s, i=i: s[i] == "E")
@@ -302,6 +338,26 @@ class Attack:
         for (o, band), years in bands.items():
             total = self.index[("pt", (), o, f"{band}|all")]
             self.identities.append(dict.fromkeys(years, 1) | {total: -1})
+        for o, keys in since.items():  # every incident event falls in one since-index band
+            i = self._state(o)
+            events = self._of(lambda s, i=i: s[i] == "E")
+            self.identities.append(dict.fromkeys(keys, 1) | dict.fromkeys(events, -1))
+
+    def _read_smr(self) -> None:
+        """Observed events are the outcome's incident cases; an SMR shown bounds them too.
+
+        The SMR is printed to 2 decimals beside the expected count (also to 2), so the observed
+        count lies within (SMR +- 0.005) x (expected +- 0.005): a range, not an equation.
+        """
+        for r in self.smr:
+            i = self._state(r["outcome"])
+            events = self._of(lambda s, i=i: s[i] == "E")
+            self.cells.append((events, r["observed"], f"smr {r['outcome']} observed"))
+            if r["smr"] and r["expected"]:
+                smr, expected = float(r["smr"]), float(r["expected"])
+                low = max(smr - 0.005, 0) * max(expected - 0.005, 0)
+                high = (smr + 0.005) * (expected + 0.005)
+                self.ranges_known.append((events, math.ceil(low - 1e-9), math.floor(high + 1e-9)))
 
     def ranges(self) -> list[tuple[str, float, float]]:
         """Every hidden cell's exact (min, max) given all shown cells and identities."""
@@ -322,11 +378,16 @@ class Attack:
             if text not in MARKERS:
                 rows.append(coefficients)
                 rhs.append(float(text))
+        lows, highs = list(rhs), list(rhs)
+        for coefficients, low, high in self.ranges_known:
+            rows.append(coefficients)
+            lows.append(low)
+            highs.append(high)
         matrix = np.zeros((len(rows), n))
         for r, eq in enumerate(rows):
             for k, c in eq.items():
                 matrix[r, k] = c
-        constraints = LinearConstraint(matrix, rhs, rhs)
+        constraints = LinearConstraint(matrix, lows, highs)
         out = []
         for coefficients, what in targets:
             objective = np.zeros(n)
@@ -393,6 +454,7 @@ def _naive(folder: Path) -> Attack:
         "demo",
         "tiny",
         "tiny_rates",
+        "tiny_since",
         pytest.param("sparse", marks=pytest.mark.slow),
         pytest.param("demo_rates", marks=pytest.mark.slow),
     ],
@@ -458,6 +520,24 @@ def test_the_attack_finds_a_small_bin_given_away(sparse: Path, tmp_path: Path) -
         copy = _tampered(sparse, tmp_path / f"{o}{day}{count}", (o, day, count), value)
         leaked += Attack(copy).bin_leaks(truth)
     assert leaked
+
+
+@pytest.mark.slow
+def test_the_attack_finds_a_lone_hidden_band_since_index(demo_rates: Path, tmp_path: Path) -> None:
+    # Hand case: hide only heart failure's events in the first year since index. The outcome's
+    # total less the other since-index bands gives it back; the attack must say so.
+    copy = tmp_path / "copy"
+    shutil.copytree(demo_rates, copy)
+    rates = _rows(copy / "summary" / "rates.csv")
+    (row,) = [r for r in rates if r["outcome"] == "heart_failure" and r["since_index"] == "0-1"]
+    value = float(row["events"])
+    row["events"] = "*"
+    with (copy / "summary" / "rates.csv").open("w", encoding="utf-8", newline="") as handle:
+        writer = csv.DictWriter(handle, fieldnames=list(rates[0]), lineterminator="\n")
+        writer.writeheader()
+        writer.writerows(rates)
+    found = [(w, lo, hi) for w, lo, hi in Attack(copy).ranges() if w.endswith("since 0-1")]
+    assert found == [("rates heart_failure all all since 0-1", value, value)]
 
 
 def test_the_attack_breaks_primary_suppression_alone(tiny: Path) -> None:

@@ -1,9 +1,13 @@
 """Properties of whole studies drawn at random from the study language.
 
 A hypothesis strategy writes valid study files (index strategy, eligibility steps, covariates,
-outcomes from the shipped definitions, horizon, look-back, follow-up) and checks what must hold
-for every study: compiling is deterministic, every stage's Spark SQL reads back with sqlglot's
-Spark reader, and one more exclusion step never adds a patient to the cohort.
+outcomes from the shipped definitions, horizon, look-back, follow-up, and sometimes measures of
+the study's own, written as files beside it, with thresholds on them in any of their units) and
+checks what must hold for every study: compiling is deterministic, every stage's Spark SQL reads
+back with sqlglot's Spark reader, and one more exclusion step never adds a patient to the cohort.
+
+The study's own measures are not in the shipped library; the property extract carries rows of
+them (in both units) so that their thresholds select patients in the cohort property too.
 """
 
 from __future__ import annotations
@@ -28,6 +32,45 @@ from .conftest import ROOT
 CONDITIONS = tuple(sorted(p.stem for p in (ROOT / "definitions" / "conditions").glob("*.yaml")))
 MEASURES = ("bmi", "sbp", "hba1c", "egfr", "creatinine", "weight")
 TABLES = ("patients", "encounters", "diagnoses", "prescriptions", "measurements")
+# Measures a drawn study may declare as its own files. Conversions from memory: uric acid is
+# 168.11 g/mol, so 1 mg/dL = 59.48 umol/L; creatinine is 113.12 g/mol, so 1 mg/g of creatinine
+# = 1 mg per 8.84 mmol = 0.1131 mg/mmol. The numbers need only be valid, not clinical.
+OWN_MEASURES = {
+    "serum_urate": {
+        "measure": "serum_urate",
+        "title": "Serum urate (property test)",
+        "canonical_unit": "umol/L",
+        "plausible": [30, 1500],
+        "codes": {"LOINC": ["3084-1"]},
+        "units": [
+            {"spellings": ["umol/L"]},
+            {"spellings": ["mg/dL"], "factor": 59.48, "source": "168.11 g/mol (from memory)"},
+        ],
+    },
+    "urine_acr": {
+        "measure": "urine_acr",
+        "title": "Urine albumin to creatinine ratio (property test)",
+        "canonical_unit": "mg/mmol",
+        "plausible": [0, 3000],
+        "units": [
+            {"spellings": ["mg/mmol"]},
+            {"spellings": ["mg/g"], "factor": 0.1131, "source": "113.12 g/mol (from memory)"},
+        ],
+    },
+}
+# (canonical unit's threshold range, other unit, its factor) to draw thresholds in either unit
+OWN_RANGES = {"serum_urate": (200, 600, "mg/dL", 59.48), "urine_acr": (1, 70, "mg/g", 0.1131)}
+# Rows of the own measures in the property extract: (patient, date, measure, value, unit)
+OWN_ROWS = [
+    ("HM-001", "2015-06-01", "serum_urate", "450", "umol/L"),
+    ("HM-002", "2016-02-10", "serum_urate", "5.1", "mg/dL"),
+    ("HM-003", "2014-11-20", "serum_urate", "7.4", "mg/dL"),
+    ("HX-001", "2016-03-01", "serum_urate", "310", "umol/L"),
+    ("HM-004", "2015-09-09", "urine_acr", "35", "mg/mmol"),
+    ("HM-005", "2016-04-04", "urine_acr", "120", "mg/g"),
+    ("HX-002", "2015-12-12", "urine_acr", "2.5", "mg/mmol"),
+    ("HX-003", "2016-07-07", "urine_acr", "600", "mg/g"),
+]
 PROPERTY = settings(
     max_examples=15,
     deadline=None,
@@ -91,10 +134,26 @@ EXCLUSION = st.one_of(
 )
 
 
-def _covariate(kind: str, draw: Any) -> dict[str, Any]:
+@st.composite
+def own_threshold(draw: Any, measure: str) -> dict[str, Any]:
+    """A measurement evidence on one of the study's own measures, in either of its units."""
+    low, high, other, factor = OWN_RANGES[measure]
+    value = draw(st.integers(low, high))
+    # the same threshold written in the other unit (rounded: any valid number will do)
+    written = draw(st.sampled_from([f"{value} {OWN_MEASURES[measure]['canonical_unit']}",
+                                    f"{round(value / factor, 2)} {other}"]))  # fmt: skip
+    comparison = draw(st.sampled_from(["at_least", "above", "below", "at_most"]))
+    return {"measurement": {"measure": measure, comparison: written}}
+
+
+def _covariate(kind: str, draw: Any, own: list[str]) -> dict[str, Any]:
     if kind in ("latest", "mean", "minimum", "maximum"):
-        return {kind: draw(st.sampled_from(MEASURES)), "window": draw(_window(-1095, 0))}
+        measure = draw(st.sampled_from([*MEASURES, *own]))
+        return {kind: measure, "window": draw(_window(-1095, 0))}
     if kind == "count":
+        if own and draw(st.booleans()):
+            evidence = draw(own_threshold(draw(st.sampled_from(own))))
+            return {"count": evidence, "window": draw(_window(-730, 0))}
         return {"count": {"encounter": {}}, "window": draw(_window(-730, 0))}
     if kind in ("condition", "days_since_first_evidence"):
         return {kind: draw(st.sampled_from(CONDITIONS))}
@@ -107,8 +166,9 @@ def studies(draw: Any) -> dict[str, Any]:
     """A valid study file as a dict (extract and definitions are filled in when written)."""
     kinds = ("latest", "mean", "minimum", "maximum", "count", "condition",
              "days_since_first_evidence", "charlson")  # fmt: skip
+    own = draw(st.lists(st.sampled_from(sorted(OWN_MEASURES)), max_size=2, unique=True))
     chosen = draw(st.lists(st.sampled_from(kinds), max_size=4))
-    covariates = {f"cov_{i}": _covariate(kind, draw) for i, kind in enumerate(chosen)}
+    covariates = {f"cov_{i}": _covariate(kind, draw, own) for i, kind in enumerate(chosen)}
     conditions = st.lists(st.sampled_from(CONDITIONS), min_size=1, max_size=3, unique=True)
     outcomes: dict[str, Any] = {"conditions": draw(conditions)}
     if draw(st.booleans()):
@@ -122,14 +182,25 @@ def studies(draw: Any) -> dict[str, Any]:
     # patient is alive at index and, when the index is not an encounter, was seen recently.
     required: list[dict[str, Any]] = [{"alive_at_index": True}]
     index = draw(INDEX)
+    if own and draw(st.booleans()):  # index at the first measurement past an own threshold
+        evidence = draw(own_threshold(draw(st.sampled_from(own))))
+        index = {"first_event": {"evidence": evidence, "between": draw(_years())}}
     if "first_encounter" not in index and "random_encounter" not in index:
         required.append({"in_contact_at_index": {"window": [-lost_contact, 0]}})
+    excluded = draw(st.lists(EXCLUSION, max_size=3))
+    for measure in own:  # sometimes exclude those with a value past an own threshold
+        if draw(st.booleans()):
+            evidence = draw(own_threshold(measure))
+            excluded.append(
+                {"no_evidence": {"evidence": evidence, "window": draw(_window(-1825, 0))}}
+            )
+    measures = {"measures": [f"measures/{m}.yaml" for m in own]} if own else {}
     return {
         "study": "property_study",
         "title": "a study drawn by hypothesis",
         "end_of_data": draw(st.dates(dt.date(2018, 1, 1), dt.date(2020, 12, 31))),
         "index": index,
-        "eligibility": required + draw(st.lists(EXCLUSION, max_size=3)),
+        "eligibility": required + excluded,
         "covariates": covariates,
         "outcomes": outcomes,
         "followup": {
@@ -139,11 +210,16 @@ def studies(draw: Any) -> dict[str, Any]:
             "contact": draw(st.sampled_from(["encounters", "any_activity"])),
         },
         "output": {"folder": "out", "allow_empty_cohort": True},
+        **measures,
     }
 
 
 def _write(folder: Path, study: dict[str, Any], extract: Path, name: str = "study.yaml") -> Path:
     folder.mkdir(parents=True, exist_ok=True)
+    for own in study.get("measures", []):  # the study's own measure files, beside it
+        file = folder / own
+        file.parent.mkdir(exist_ok=True)
+        file.write_text(yaml.safe_dump(OWN_MEASURES[file.stem], sort_keys=False), "utf-8")
     text = {"extract": str(extract), "definitions": str(ROOT / "definitions" / "conditions")}
     path = folder / name
     path.write_text(yaml.safe_dump({**study, **text}, sort_keys=False), encoding="utf-8")
@@ -160,6 +236,8 @@ def extract(tmp_path_factory: pytest.TempPathFactory) -> Path:
         second = (fixtures / "handmade_measures" / f"{table}.csv").read_text(encoding="utf-8")
         header, _, rows = second.partition("\n")
         assert first.startswith(header + "\n"), table
+        if table == "measurements":  # the study's own measures, in both their units
+            rows += "".join(f"{p},{d},{m},,{v},{u}\n" for p, d, m, v, u in OWN_ROWS)
         (folder / f"{table}.csv").write_text(first.rstrip("\n") + "\n" + rows, encoding="utf-8")
     return folder
 
@@ -172,6 +250,11 @@ def test_compiling_twice_gives_the_same_sql(
     path = _write(tmp_path / "same", study, extract)
     first, second = plan_study(path), plan_study(path)
     assert first.describe("duckdb") == second.describe("duckdb")
+    design = repr({k: v for k, v in study.items() if k != "measures"})
+    for name in study.get("measures", []):  # an own measure in use reaches the plan's SQL
+        measure = Path(name).stem
+        if f"'{measure}'" in design:
+            assert f"'{measure}'" in first.describe("duckdb"), measure
     assert first.content_hash() == second.content_hash()
 
 

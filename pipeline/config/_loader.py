@@ -19,6 +19,8 @@ from pipeline.config._measure import (
     shipped_measures,
 )
 from pipeline.config._persontime import persontime_problems
+from pipeline.config._reference_rates import ReferenceRates
+from pipeline.config._reference_use import study_reference_rates
 from pipeline.config._study import Study
 from pipeline.config._yaml import LocatedDocument, PathKey, load_yaml
 from pipeline.errors import ConfigError, Problem
@@ -232,6 +234,8 @@ class LoadedStudy:
         catalog: The condition definitions the study may use.
         measures: The measures it may read: shipped, and its own (``measures:``).
         local_codes: The extract's own product and lab test codes (``local_codes:``).
+        reference_rates: The table of ``persontime: reference_rates:``, read and checked
+            against the study (None without one).
     """
 
     file: Path
@@ -239,6 +243,7 @@ class LoadedStudy:
     catalog: Catalog
     measures: MeasureRegistry
     local_codes: LocalCodes = field(default_factory=LocalCodes)
+    reference_rates: ReferenceRates | None = None
 
 
 def _resolve(base: Path, path: Path) -> Path:
@@ -430,11 +435,12 @@ def load_study(file: Path) -> LoadedStudy:
     problems += persontime_problems(doc, study.persontime, ages)
     if problems:
         raise ConfigError(problems)
+    study, rates = study_reference_rates(doc, study, base)
     catalog = _apply_changes(doc, study, catalog)
     if problems:
         raise ConfigError(problems)
     local_codes = load_local_codes(doc, study.local_codes, measures)
-    return LoadedStudy(file, study, catalog, measures, local_codes)
+    return LoadedStudy(file, study, catalog, measures, local_codes, rates)
 
 
 def _study_measures(doc: LocatedDocument, base: Path) -> MeasureRegistry:

@@ -13,6 +13,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from itertools import pairwise
+from pathlib import Path
 from typing import Annotated
 
 from pydantic import Field, field_validator
@@ -38,11 +39,15 @@ class PersonTime(Model):
     day belongs to a band (checked at load, :func:`persontime_problems`).
     ``since_index_years: [0, 1, 3]`` makes 0-1, 1-3 and 3+ (years completed since index); it
     must start at 0, since follow-up starts the day after index.
+    ``reference_rates`` names a table of each outcome's rates in a reference population
+    (relative to the study file; read by :mod:`pipeline.config._reference_rates`), for the
+    report's observed and expected events and SMRs.
     """
 
     age_bands: Bounds
     calendar_year: bool = True
     since_index_years: Bounds | None = None
+    reference_rates: Path | None = None
 
     @field_validator("age_bands")
     @classmethod

@@ -33,7 +33,7 @@ from pipeline.extract._hadoop import hadoop_name
 MANIFEST = "manifest.json"
 MANIFEST_VERSION = 2
 CHUNK = 1 << 20
-INPUT_GROUPS = ("study", "definitions", "measures", "extract")
+INPUT_GROUPS = ("study", "definitions", "measures", "reference_rates", "extract")
 LIBRARY_PREFIX = "library:"
 
 
@@ -183,11 +183,12 @@ _NOT_STUDY_KEYS: dict[str, Any] = {
     "engine": True,
     "spark": True,
     "output": {"folder"},
+    "persontime": {"reference_rates"},
 }
 """Study keys left out of the manifest: paths of this machine (the definitions, the extract, the
-output folder, the local code tables; the manifest names its files otherwise) and how an engine
-runs (threads, memory, Spark settings, which may name machine paths or secrets), which does not
-change a cohort."""
+output folder, the local code tables, the reference rate table; the manifest names its files
+otherwise) and how an engine runs (threads, memory, Spark settings, which may name machine paths
+or secrets), which does not change a cohort."""
 
 
 def _flatten(value: Any, prefix: str, into: dict[str, Any]) -> None:
@@ -221,6 +222,7 @@ def make_manifest(
     study_file: Path,
     definition_files: Iterable[Path],
     measure_files: Iterable[Path] = (),
+    reference_files: Iterable[Path] = (),
     library: bool = False,
     extract: Path | str,
     extract_entries: list[dict[str, Any]],
@@ -240,6 +242,9 @@ def make_manifest(
             list file (CSV, header, hierarchy, edition table) those definitions read, and the
             study's local code tables (``local_codes:``).
         measure_files: Every measure file the build read (shipped and the study's own).
+        reference_files: The study's reference rate table (``persontime: reference_rates:``),
+            recorded as ``reference_rates`` relative to the study's folder; the section is
+            absent without one, so other builds' manifests are unchanged.
         library: The study reads the shipped library (see :func:`definition_path`).
         extract: The extract folder, site mapping file or connection URI the build read.
         extract_entries: ``describe_files`` of the extract's files, relative to its root.
@@ -265,6 +270,9 @@ def make_manifest(
         "plan_hash": plan_hash,
         "rows": rows,
     }
+    references = {f: portable_path(f, study_file.parent) or f.name for f in set(reference_files)}
+    if references:
+        manifest["reference_rates"] = _describe(references)
     if keys is not None:
         manifest["study_keys"] = keys
     if database is not None:

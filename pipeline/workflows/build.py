@@ -125,6 +125,7 @@ def build_study(
             *loaded.local_codes.files,
         ],
         measure_files=loaded.measures.files.values(),
+        reference_files=[loaded.reference_rates.file] if loaded.reference_rates else [],
         library=study.library,
         extract=extract,
         extract_entries=extract_entries,

@@ -35,6 +35,7 @@ FOLLOWUP_COLUMNS = ("followup_end", "end_reason")
 FILE_GROUPS = (
     ("study", "study file"),
     ("definitions", "definition file"),
+    ("reference_rates", "reference rate table"),
     ("extract", "extract file"),
 )
 
@@ -53,7 +54,8 @@ class InputChange:
     """One input that differs between the two builds' manifests.
 
     ``what`` is ``study key`` (``name`` a flat key path such as ``outcomes.horizon_days``,
-    ``a`` and ``b`` its values) or ``study file``, ``definition file``, ``extract file``
+    ``a`` and ``b`` its values) or ``study file``, ``definition file``, ``reference rate
+    table``, ``extract file``
     (``name`` its recorded path, ``a`` and ``b`` its SHA-256). ``None`` means absent: the key
     is not set, or the file was not an input of that build.
     """

@@ -23,6 +23,7 @@ from pipeline.outputs.report._html_results import (
     incidence_section,
     table_one_section,
 )
+from pipeline.outputs.report._html_smr import smr_section
 from pipeline.outputs.report._svg import (
     DEFINING_STEPS,
     Bar,
@@ -322,6 +323,7 @@ def assemble(
             study.outcomes,
             titles,
         )
+        + smr_section(summaries.get("smr"), study.reference, titles)
         if "rates" in summaries
         else "",
         "combinations": _combinations(summaries["combinations"], titles),

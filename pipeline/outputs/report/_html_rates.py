@@ -17,7 +17,9 @@ import polars as pl
 
 from pipeline.outputs.report._html_cells import n_cell as _n
 from pipeline.outputs.report._html_cells import table as _table
+from pipeline.outputs.report._html_since import since_index_table
 from pipeline.outputs.report._rates import standard_sources
+from pipeline.outputs.report._rates_since import SINCE_COLUMN
 from pipeline.outputs.report._svg import _nice_step, _text, value_axis
 
 __all__ = ["rates_section", "render_rate_panel"]
@@ -115,6 +117,9 @@ def rates_section(
     """
     figs, tables = [], []
     by_year = rates.filter(pl.col("calendar_year") != _ALL).height > 0  # the study split years
+    since = since_index_table(rates, outcomes, titles)
+    if since:
+        rates = rates.filter(pl.col(SINCE_COLUMN) == _ALL)
     for o in outcomes:
         part = rates.filter(pl.col("outcome") == o)
         if not part.height:
@@ -153,7 +158,8 @@ def rates_section(
             else "counted in the age band it falls in"
         )
         + "; only patients at risk at index count. Intervals: exact Poisson (Garwood).</p>"
-        "<h3>Standardised rates</h3>"
+        + since
+        + "<h3>Standardised rates</h3>"
         + _standardised_table(standardised, titles)
         + '<p class="note">Directly standardised to each standard population over the age '
         "bands of the study (the standard's bands inside each study band summed; bands "

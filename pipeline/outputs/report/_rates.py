@@ -26,6 +26,7 @@ from typing import Any
 import polars as pl
 
 from pipeline.errors import AscertainError
+from pipeline.outputs.report._rates_since import SINCE, SINCE_COLUMN, since_index_rows
 from pipeline.outputs.report._suppression import Block, keyed_frame
 from pipeline.stats import (
     DAYS_PER_YEAR,
@@ -141,6 +142,9 @@ def rates_block(
                 "events#key": total_key,
             }
         )
+        since, relation = since_index_rows(persontime, o, total_key)
+        rows += since
+        relations += [relation] if relation else []
     schema = {
         "outcome": pl.String,
         "age_band_start": pl.Int64,
@@ -150,6 +154,9 @@ def rates_block(
         "person_years": pl.Float64,
         "events#key": pl.String,
     }
+    if SINCE in persontime.columns:  # the since-index bands, "all" on the other rows
+        rows = [{SINCE_COLUMN: ALL} | r for r in rows]
+        schema = {SINCE_COLUMN: pl.String} | schema
     frame = keyed_frame(rows, schema)
     return Block(frame, ("events",), relations=tuple(relations))
 
@@ -178,6 +185,7 @@ def _rounded(value: float | None) -> float | None:
 def rates_summary(block: Block, hidden: frozenset[str], threshold: int) -> pl.DataFrame:
     """The rates table as published: hidden counts marked, their rates left out."""
     rows = []
+    since = SINCE_COLUMN in block.frame.columns  # the study split by time since index
     for r in block.frame.iter_rows(named=True):
         gone = r["events#key"] in hidden
         rate = None if gone else _rate(r["events"], r["person_years"])
@@ -186,6 +194,7 @@ def rates_summary(block: Block, hidden: frozenset[str], threshold: int) -> pl.Da
                 "outcome": r["outcome"],
                 "age_band": r["age_band"],
                 "calendar_year": r["calendar_year"],
+                **({SINCE_COLUMN: r[SINCE_COLUMN]} if since else {}),
                 "events": shown(r["events"], r["events#key"], hidden, threshold),
                 "person_years": round(r["person_years"], 1),
                 "rate_per_1000_py": _rounded(rate[0]) if rate else None,
@@ -197,6 +206,7 @@ def rates_summary(block: Block, hidden: frozenset[str], threshold: int) -> pl.Da
         "outcome": pl.String,
         "age_band": pl.String,
         "calendar_year": pl.String,
+        **({SINCE_COLUMN: pl.String} if since else {}),
         "events": pl.String,
         "person_years": pl.Float64,
         "rate_per_1000_py": pl.Float64,
@@ -214,6 +224,8 @@ def standardised_summary(block: Block, hidden: frozenset[str]) -> pl.DataFrame:
     """
     rows = []
     bands = block.frame.filter((pl.col("calendar_year") == ALL) & (pl.col("age_band") != ALL))
+    if SINCE_COLUMN in bands.columns:
+        bands = bands.filter(pl.col(SINCE_COLUMN) == ALL)
     for name in RATE_STANDARDS:
         standard = shipped_standard(name)
         for o in dict.fromkeys(block.frame["outcome"].to_list()):

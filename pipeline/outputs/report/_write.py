@@ -22,6 +22,7 @@ import polars as pl
 
 from pipeline.config import LoadedStudy, load_study
 from pipeline.config._check import explain_condition
+from pipeline.config._reference_rates import ReferenceRates
 from pipeline.errors import AscertainError
 from pipeline.outputs._manifest import definition_path, read_manifest, sha256_file
 from pipeline.outputs._ownership import REPORT, check_folder, install, staging
@@ -34,6 +35,7 @@ from pipeline.outputs.report._rates import (
     read_persontime,
     standardised_summary,
 )
+from pipeline.outputs.report._smr import changed_reference, smr_summary
 from pipeline.outputs.report._suppression import hidden_keys, masked
 from pipeline.outputs.report._table_one import (
     differenced_means,
@@ -75,6 +77,7 @@ class Study:
     definitions: list[dict[str, str]] = field(default_factory=list)
     labels: dict[str, str] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
+    reference: ReferenceRates | None = None
 
 
 def _used_conditions(loaded: LoadedStudy) -> tuple[str, ...]:
@@ -163,6 +166,7 @@ def read_study(
             }
         )
     study_model = loaded.study
+    base.notes += changed_reference(manifest, loaded)
     return Study(
         name=study_model.study,
         title=study_model.title,
@@ -172,6 +176,7 @@ def read_study(
         definitions=definitions,
         notes=base.notes,
         labels={n: c.label for n, c in study_model.covariates.items() if c.label},
+        reference=loaded.reference_rates,
     )
 
 
@@ -290,6 +295,8 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
     if persontime is not None:
         summaries["rates"] = rates_summary(rates, hidden, t)
         summaries["standardised_rates"] = standardised_summary(rates, hidden)
+        if study.reference is not None:  # the study names reference rates: SMRs
+            summaries["smr"] = smr_summary(persontime, cohort, study.reference, rates, hidden, t)
     html = assemble(
         study=study,
         manifest=manifest,
