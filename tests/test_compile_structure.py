@@ -8,9 +8,9 @@ columns are the ones ``names.outcome_columns`` lists; each stage is built once.
 from __future__ import annotations
 
 import pytest
-from pipeline._build import plan_study
 from sqlglot import exp
 
+from pipeline import plan_study
 from pipeline.compile import _cohort, compile_study, names
 from pipeline.config import load_study
 
