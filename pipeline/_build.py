@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 import tempfile
 from concurrent.futures import ThreadPoolExecutor
@@ -52,6 +53,7 @@ from pipeline.outputs import (
     study_keys,
     write_outputs,
 )
+from pipeline.outputs._matched import matched_outputs
 from pipeline.outputs._ownership import BUILD, check_folder
 
 
@@ -206,6 +208,7 @@ def build_study(
         run.outputs["attrition"],
         run.outputs["cohort"].num_rows,
     )
+    matched, attrition, matching = matched_outputs(run.outputs, study.matching)
     manifest = make_manifest(
         tool_version=tool_version(),
         engine={
@@ -232,6 +235,7 @@ def build_study(
                 if "persontime" in run.outputs
                 else {}
             ),
+            **({"matched": matched.num_rows} if matched is not None else {}),
             **{row["source_table"]: row["n_rows"] for row in run.outputs["rows_read"].to_pylist()},
         },
     )
@@ -255,7 +259,8 @@ def build_study(
         ],
         "counts": {
             "cohort_patients": run.outputs["cohort"].num_rows,
-            "attrition": run.outputs["attrition"].select(["step", "remaining"]).to_pylist(),
+            "attrition": attrition.select(["step", "remaining"]).to_pylist(),
+            **({"matching": dataclasses.asdict(matching)} if matching is not None else {}),
         },
         "stages": [
             {
@@ -272,13 +277,15 @@ def build_study(
         out,
         cohort=run.outputs["cohort"],
         population=run.outputs["population"],
-        attrition=run.outputs["attrition"],
+        attrition=attrition,
         quality=located_quality,
         columns=plan.columns,
         manifest=manifest,
         run_info=run_info,
         persontime=run.outputs.get("persontime"),
         persontime_columns=dict(plan.output_columns).get("persontime", ()),
+        matched=matched,
+        matched_columns=dict(plan.output_columns).get("matched", ()),
     )
     return BuildResult(
         out,
