@@ -15,7 +15,9 @@ import dataclasses
 import datetime as dt
 import functools
 import hashlib
+import importlib.util
 import json
+import os
 import shutil
 import tempfile
 from pathlib import Path
@@ -31,6 +33,8 @@ from pipeline._build import BuildOptions, build_study, plan_study
 from pipeline.config._matching import Matching
 from pipeline.errors import ConfigError
 from pipeline.outputs._matched import matched_table
+
+from .helpers import require
 
 FIXTURE = Path(__file__).parent / "fixtures" / "designs" / "matching"
 DEFINITIONS = Path(__file__).resolve().parents[1] / "definitions"
@@ -388,3 +392,26 @@ def test_an_exclusion_never_grows_the_sets(
         # With replacement each set is drawn on its own: none of the remaining sets grows.
         sizes = {case: len(c) for case, c in before}
         assert all(len(c) <= sizes[case] for case, c in after)
+
+
+# --- both engines draw the same sets ----------------------------------------------------------
+
+
+@pytest.mark.spark
+@pytest.mark.slow
+def test_spark_writes_the_same_matched_file_on_the_synthetic_extract(tmp_path: Path) -> None:
+    require(importlib.util.find_spec("pyspark"), "pyspark is not installed (ascertain[spark])")
+    require(
+        shutil.which("java") or os.environ.get("JAVA_HOME"),
+        "no Java runtime for Spark (install a JDK 17)",
+    )
+    study = DEFINITIONS / "studies" / "orvane_hf_matched.yaml"
+    outs = {}
+    for engine in ("duckdb", "spark"):
+        outs[engine] = tmp_path / engine
+        master = "local[2]" if engine == "spark" else None
+        build_study(study, BuildOptions(out=outs[engine], engine=engine, spark_master=master))
+    matched = pq.read_table(outs["duckdb"] / "matched.parquet")
+    assert matched.num_rows > 100
+    for name in ("matched.parquet", "attrition.csv", "dictionary.csv", "cohort.parquet"):
+        assert (outs["spark"] / name).read_bytes() == (outs["duckdb"] / name).read_bytes(), name
