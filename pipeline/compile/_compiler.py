@@ -8,6 +8,7 @@ from pipeline.compile._dictionary import dictionary
 from pipeline.compile._draft import Draft, Pass, adding
 from pipeline.compile._evidence import evidence_stages
 from pipeline.compile._matches import EVIDENCE_COUNTS, Use, match_count_stages, unmatched_uses
+from pipeline.compile._matching import matched_docs, matching_outputs, matching_stages
 from pipeline.compile._measurements import measurement_stages
 from pipeline.compile._persontime import persontime_docs, persontime_stages
 from pipeline.compile._plan import Plan
@@ -28,6 +29,7 @@ PASSES: tuple[Pass, ...] = (
     adding(quality_stages),
     adding(match_count_stages),
     adding(persontime_stages),
+    adding(matching_stages),
 )
 
 
@@ -56,9 +58,13 @@ def compile_study(loaded: LoadedStudy) -> Plan:
             ("rows_read", "rows_read", ("source_table",)),
             (EVIDENCE_COUNTS, EVIDENCE_COUNTS, ("evidence",)),
             *((("persontime", "persontime", ("patient_id", "cell_start")),) if persontime else ()),
+            *matching_outputs(ctx),
         ),
         columns=dictionary(ctx),
-        output_columns=(("persontime", persontime_docs(ctx)),) if persontime else (),
+        output_columns=(
+            *((("persontime", persontime_docs(ctx)),) if persontime else ()),
+            *((("matched", matched_docs(ctx)),) if ctx.study.matching else ()),
+        ),
     )
 
 

@@ -9,6 +9,7 @@ definitions (evidence through the same phrases).
 from __future__ import annotations
 
 from pipeline.config._check import _codes_text
+from pipeline.config._matching import matching_text
 from pipeline.config._study import Covariate, Criterion, IndexRule, Study, Window
 
 
@@ -223,4 +224,5 @@ def explain_study(study: Study) -> str:
         f"{study.title} ({study.study}): Index: {_index_text(study.index)}. "
         f"Eligibility, in this order: {steps or 'none'}. {_outcomes_text(study)} "
         f"{_followup_text(study)} Covariates: {covariates or 'none'}.{_persontime_text(study)}"
+        f"{matching_text(study.matching) if study.matching else ''}"
     )

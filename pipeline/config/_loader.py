@@ -13,6 +13,7 @@ from pipeline.config._document import did_you_mean, validate_document
 from pipeline.config._library import library_conditions
 from pipeline.config._listuse import EvidenceLists, ListUse, read_lists
 from pipeline.config._localcodes import LocalCodes, load_local_codes
+from pipeline.config._matching import matching_problems
 from pipeline.config._measure import (
     load_measures,
     measure_files,
@@ -433,6 +434,7 @@ def load_study(file: Path) -> LoadedStudy:
     problems += _study_lists(doc, study)
     ages = [c.age.between[0] for c in study.eligibility if c.age is not None]
     problems += persontime_problems(doc, study.persontime, ages)
+    problems += matching_problems(doc, study.matching, study.outcomes.conditions)
     if problems:
         raise ConfigError(problems)
     study, rates = study_reference_rates(doc, study, base)

@@ -19,6 +19,7 @@ from pydantic import Field, ValidationInfo, field_validator, model_validator
 from pipeline.config._base import ONE_OR_MORE, Model, Name, NonNegativeInt, PositiveInt
 from pipeline.config._condition import Evidence
 from pipeline.config._localcodes import LocalCodeTables
+from pipeline.config._matching import Matching
 from pipeline.config._measure import measures_in
 from pipeline.config._persontime import PersonTime
 from pipeline.config._settings import EngineSettings, Output, QualitySettings
@@ -409,6 +410,7 @@ class Study(Model):
     spark: SparkSettings = SparkSettings()
     quality: QualitySettings = QualitySettings()
     persontime: PersonTime | None = None
+    matching: Matching | None = None
 
     @field_validator("extract", mode="before")
     @classmethod

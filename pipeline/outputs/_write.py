@@ -180,6 +180,8 @@ def write_outputs(
     run_info: dict[str, Any],
     persontime: pa.Table | None = None,
     persontime_columns: tuple[ColumnDoc, ...] = (),
+    matched: pa.Table | None = None,
+    matched_columns: tuple[ColumnDoc, ...] = (),
 ) -> Written:
     """Write the cohort, attrition log, data dictionary, manifest and run record.
 
@@ -189,22 +191,30 @@ def write_outputs(
     removed; a report written for the previous cohort is removed, with a note saying so. The
     manifest gets the hash of every data file; ``run.json`` (when and how long) is the only
     file that differs between runs. ``persontime`` (with its dictionary) is written as
-    ``persontime.parquet`` when the study asks for it.
+    ``persontime.parquet`` when the study asks for it, and ``matched`` as ``matched.parquet``.
 
     Raises:
         OutputFolderError: ``target`` holds files ascertain did not write there.
     """
-    data_files = [*DATA_FILES, *([PERSONTIME] if persontime is not None else [])]
+    extra = [
+        (file, table, docs)
+        for file, table, docs in (
+            (PERSONTIME, persontime, persontime_columns),
+            (MATCHED, matched, matched_columns),
+        )
+        if table is not None
+    ]
+    data_files = [*DATA_FILES, *(file for file, _, _ in extra)]
     names = [*data_files, MANIFEST, "run.json"]
-    further = ((PERSONTIME, persontime_columns),) if persontime is not None else ()
+    further = tuple((file, docs) for file, _, docs in extra)
     with staging(target) as staged:
         write_parquet(with_column_docs(cohort, columns), staged / "cohort.parquet")
         write_parquet(population, staged / "population.parquet")
         write_attrition(attrition, staged / "attrition.csv")
         write_csv(quality, QUALITY_COLUMNS, staged / "quality.csv")
         write_dictionary(columns, staged, further)
-        if persontime is not None:
-            write_parquet(with_column_docs(persontime, persontime_columns), staged / PERSONTIME)
+        for file, table, docs in extra:
+            write_parquet(with_column_docs(table, docs), staged / file)
         hashed = {name: sha256_file(staged / name) for name in data_files}
         write_json({**manifest, "outputs": hashed}, staged / MANIFEST)
         write_json(run_info, staged / "run.json")
@@ -223,3 +233,6 @@ DATA_FILES = (
 
 PERSONTIME = "persontime.parquet"
 """Written when the study has a ``persontime:`` option (listed in the manifest then)."""
+
+MATCHED = "matched.parquet"
+"""Written when the study has a ``matching:`` option (listed in the manifest then)."""

@@ -8,6 +8,7 @@ folder, open the extract, run, check the row accounting and usability, then writ
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 from concurrent.futures import ThreadPoolExecutor
 from contextlib import ExitStack
@@ -31,6 +32,7 @@ from pipeline.outputs import (
     study_keys,
     write_outputs,
 )
+from pipeline.outputs._matched import matched_outputs
 from pipeline.outputs._ownership import BUILD
 from pipeline.outputs._quality_log import check_row_accounting, locate_first_rows
 from pipeline.workflows.prepare import BuildOptions, prepare
@@ -109,6 +111,7 @@ def build_study(
         run.outputs["attrition"],
         run.outputs["cohort"].num_rows,
     )
+    matched, attrition, matching = matched_outputs(run.outputs, study.matching)
     manifest = make_manifest(
         tool_version=tool_version(),
         engine={
@@ -140,6 +143,7 @@ def build_study(
                 if "persontime" in run.outputs
                 else {}
             ),
+            **({"matched": matched.num_rows} if matched is not None else {}),
             **{row["source_table"]: row["n_rows"] for row in run.outputs["rows_read"].to_pylist()},
         },
     )
@@ -163,7 +167,8 @@ def build_study(
         ],
         "counts": {
             "cohort_patients": run.outputs["cohort"].num_rows,
-            "attrition": run.outputs["attrition"].select(["step", "remaining"]).to_pylist(),
+            "attrition": attrition.select(["step", "remaining"]).to_pylist(),
+            **({"matching": dataclasses.asdict(matching)} if matching is not None else {}),
         },
         "stages": [
             {
@@ -180,13 +185,15 @@ def build_study(
         out,
         cohort=run.outputs["cohort"],
         population=run.outputs["population"],
-        attrition=run.outputs["attrition"],
+        attrition=attrition,
         quality=located_quality,
         columns=plan.columns,
         manifest=manifest,
         run_info=run_info,
         persontime=run.outputs.get("persontime"),
         persontime_columns=dict(plan.output_columns).get("persontime", ()),
+        matched=matched,
+        matched_columns=dict(plan.output_columns).get("matched", ()),
     )
     return BuildResult(
         out,

@@ -1,0 +1,352 @@
+"""Matched controls: the candidate pairs of each case's set and their deterministic draw.
+
+A study with ``matching:`` opens one set per incident case of the named outcome in the cohort,
+dated on its onset (the set's date). Its candidates are the cohort's patients of the same sex,
+born within ``birth_year_within`` years of the case (and at the same practice with
+``same_practice``) who on the set's date are
+
+- in the cohort's follow-up: index date before the set's date, ``followup_end`` on or after it,
+  not dead and not deregistered before it (the case's own onset is after its index date, so
+  both sides of a set are judged on the same days);
+- in contact: a contact (as ``followup.contact`` counts them, ``compile/_contact.py``) on one of
+  the ``contact_within_days`` days before the set's date or on it;
+- free of the outcome: at risk of it at their own index and with no onset on or before the
+  set's date; a control may become a case the next day (incidence-density sampling).
+
+Candidates are ranked within their set by the MD5 of ``seed|case id|candidate id`` (text),
+which DuckDB and Spark compute alike, so the same seed draws the same sets on both engines; an
+engine's random function would not. Being in contact is judged on spells: consecutive contacts
+at most ``contact_within_days`` apart form one spell, in contact from its first contact to its
+last plus that many days; spells of a patient never overlap, so each candidate pair is found
+once, by an equality join on sex and birth year (the set's birth year plus each allowed
+difference) and a range condition on the spell.
+
+With ``reuse_controls: true`` (with replacement) the draw is set-based: a set keeps the first
+``controls_per_case`` candidates by rank. Without replacement a patient is a control in one set
+at most, and which depends on every earlier set, so the sets are filled after the run, in
+Python, in order of set date then case id (``outputs/_matched.py``). The plan fetches only the
+candidates that fill can reach: a set can lose at most ``controls_per_case`` candidates to each
+earlier set whose pool overlaps its own (same sex and practice, birth years at most twice
+``birth_year_within`` apart), so ranks beyond ``controls_per_case * (1 + such sets)`` are never
+needed. The candidate pairs grow with cases times the patients of a case's stratum.
+"""
+
+from __future__ import annotations
+
+from sqlglot import exp
+
+from pipeline.compile._contact import uses_contact_rows
+from pipeline.compile._context import CompileContext
+from pipeline.compile._plan import ColumnDoc, Stage
+from pipeline.compile._sql import add_days, query, value, values_table
+from pipeline.config._matching import Matching
+
+MATCHED_OUTPUTS = ("matching_sets", "matching_draws")
+"""The plan outputs ``outputs/_matched.py`` turns into ``matched.parquet``."""
+
+_SPELLS = """
+SELECT patient_id, MIN(contact_date) AS spell_start, :spell_end AS spell_end
+FROM (
+  SELECT
+    patient_id,
+    contact_date,
+    SUM(starts) OVER (
+      PARTITION BY patient_id ORDER BY contact_date
+      ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW
+    ) AS spell
+  FROM (
+    SELECT
+      patient_id,
+      contact_date,
+      CASE
+        WHEN LAG(contact_date) OVER (PARTITION BY patient_id ORDER BY contact_date) >= :gap_start
+        THEN 0 ELSE 1
+      END AS starts
+    FROM (
+      SELECT DISTINCT c.patient_id, c.contact_date
+      FROM {contacts} AS c
+      JOIN matching_pool AS q ON q.patient_id = c.patient_id
+    ) AS d
+  ) AS m
+) AS n
+GROUP BY patient_id, spell
+"""
+
+_CONTACTS = {
+    "contact_rows": "contact_rows",
+    "encounter_rows": "(SELECT patient_id, encounter_date AS contact_date FROM encounter_rows)",
+}
+
+_SETS = """
+SELECT
+  CAST(ROW_NUMBER() OVER (ORDER BY onset, patient_id) AS INT) AS set_id,
+  patient_id,
+  onset AS set_date,
+  sex,
+  birth_year,
+  practice_id
+FROM matching_pool
+WHERE incident
+"""
+
+# One row per (set, candidate); the spell join finds a candidate's contact at most once.
+_CANDIDATES = """
+SELECT
+  s.set_id,
+  q.patient_id,
+  q.sex,
+  q.birth_year,
+  q.practice_id,
+  MD5(CONCAT(:seed, '|', CAST(s.patient_id AS VARCHAR), '|', CAST(q.patient_id AS VARCHAR)))
+    AS draw_key
+FROM matching_sets AS s
+CROSS JOIN :offsets
+JOIN matching_pool AS q
+  ON q.sex = s.sex AND q.birth_year = s.birth_year + o.year_offset AND :same_practice
+JOIN matching_contact_spells AS k
+  ON k.patient_id = q.patient_id AND s.set_date BETWEEN k.spell_start AND k.spell_end
+WHERE q.patient_id <> s.patient_id
+  AND q.at_risk
+  AND q.index_date < s.set_date
+  AND s.set_date <= q.followup_end
+  AND (q.onset IS NULL OR q.onset > s.set_date)
+  AND (q.death_date IS NULL OR q.death_date >= s.set_date)
+  AND (q.deregistration_date IS NULL OR q.deregistration_date >= s.set_date)
+"""
+
+# Without replacement: the most candidates of a set the sequential fill can ever reach.
+_LIMITS = """
+SELECT s.set_id, :controls * (1 + COUNT(e.set_id)) AS draw_limit
+FROM matching_sets AS s
+CROSS JOIN :offsets
+LEFT JOIN matching_sets AS e
+  ON e.sex = s.sex
+  AND e.birth_year = s.birth_year + o.year_offset
+  AND e.set_id < s.set_id
+  AND :same_practice
+GROUP BY s.set_id
+"""
+
+_RANKED = """
+SELECT
+  set_id,
+  patient_id,
+  sex,
+  birth_year,
+  practice_id,
+  CAST(ROW_NUMBER() OVER (PARTITION BY set_id ORDER BY draw_key, patient_id) AS INT)
+    AS draw_rank
+FROM matching_candidates
+"""
+
+
+def _offsets(within: int) -> exp.Expression:
+    """The allowed birth-year differences as a literal table ``o(year_offset)``."""
+    return values_table("o", ["year_offset"], [(d,) for d in range(-within, within + 1)])
+
+
+def _same_practice(option: Matching, left: str, right: str) -> exp.Expression:
+    if not option.same_practice:
+        return exp.true()
+    return exp.column("practice_id", left).eq(exp.column("practice_id", right))
+
+
+def _pool_query(name: str) -> exp.Query:
+    """The cohort with what matching reads: matching variables, follow-up, the outcome."""
+    column = exp.column
+    return (
+        exp.select(
+            column("patient_id", "c"),
+            column("sex", "c"),
+            exp.cast(exp.Year(this=column("birth_date", "p")), "INT").as_("birth_year"),
+            column("practice_id", "p"),
+            column("index_date", "c"),
+            column("followup_end", "c"),
+            column("death_date", "p"),
+            column("deregistration_date", "p"),
+            column(f"at_risk_{name}", "c").as_("at_risk"),
+            exp.func("COALESCE", column(f"incident_{name}", "c"), exp.false()).as_("incident"),
+            column(f"onset_{name}", "c").as_("onset"),
+        )
+        .from_("cohort AS c")
+        .join("patient_base AS p", on="p.patient_id = c.patient_id")
+    )
+
+
+def matching_stages(ctx: CompileContext) -> tuple[Stage, ...]:
+    """The pool, contact spells, sets, candidate pairs and ranked draws.
+
+    Nothing without ``matching:``.
+    """
+    option = ctx.study.matching
+    if option is None:
+        return ()
+    contacts = "contact_rows" if uses_contact_rows(ctx.study, ctx.eligibility) else "encounter_rows"
+    within = option.contact_within_days
+    spells = query(
+        _SPELLS.replace("{contacts}", _CONTACTS[contacts]),
+        spell_end=add_days(exp.func("MAX", exp.column("contact_date")), within),
+        gap_start=add_days(exp.column("contact_date"), -within),
+    )
+    candidates = query(
+        _CANDIDATES,
+        seed=value(str(option.seed)),
+        offsets=_offsets(option.birth_year_within),
+        same_practice=_same_practice(option, "q", "s"),
+    )
+    ranked = query(_RANKED).subquery("r")
+    if option.reuse_controls:
+        draws = (
+            exp.select(exp.Star())
+            .from_(ranked)
+            .where(exp.column("draw_rank") <= option.controls_per_case)
+        )
+        draw_depends: tuple[str, ...] = ("matching_candidates",)
+    else:
+        draws = (
+            exp.select(*(exp.column(c, "r") for c in _DRAW_COLUMNS))
+            .from_(ranked)
+            .join("matching_limits AS l", on="l.set_id = r.set_id")
+            .where("r.draw_rank <= l.draw_limit")
+        )
+        draw_depends = ("matching_candidates", "matching_limits")
+    stages = [
+        Stage(
+            "matching_pool",
+            _pool_query(option.cases_of),
+            ("cohort", "patient_base"),
+            f"the cohort with its matching variables, follow-up and {option.cases_of} onset",
+        ),
+        Stage(
+            "matching_contact_spells",
+            spells,
+            (contacts, "matching_pool"),
+            f"spells in contact: contacts at most {within} days apart, to the last + {within}",
+        ),
+        Stage(
+            "matching_sets",
+            query(_SETS),
+            ("matching_pool",),
+            f"one set per incident {option.cases_of} case, dated on its onset, numbered by date",
+        ),
+        Stage(
+            "matching_candidates",
+            candidates,
+            ("matching_sets", "matching_pool", "matching_contact_spells"),
+            "every eligible control of every set, with its draw key (MD5 of seed, case, control)",
+        ),
+    ]
+    if not option.reuse_controls:
+        stages.append(
+            Stage(
+                "matching_limits",
+                query(
+                    _LIMITS,
+                    controls=option.controls_per_case,
+                    offsets=_offsets(2 * option.birth_year_within),
+                    same_practice=_same_practice(option, "e", "s"),
+                ),
+                ("matching_sets",),
+                "the most ranked candidates each set's fill without replacement can reach",
+            )
+        )
+    stages.append(
+        Stage(
+            "matching_draws",
+            draws,
+            draw_depends,
+            "candidates ranked by draw key within each set, as far as the fill can need them",
+        )
+    )
+    return tuple(stages)
+
+
+_DRAW_COLUMNS = ("set_id", "patient_id", "sex", "birth_year", "practice_id", "draw_rank")
+
+
+def matching_outputs(ctx: CompileContext) -> tuple[tuple[str, str, tuple[str, ...]], ...]:
+    """The plan outputs the build fetches to write ``matched.parquet`` (none without it)."""
+    if ctx.study.matching is None:
+        return ()
+    return (
+        ("matching_sets", "matching_sets", ("set_id",)),
+        ("matching_draws", "matching_draws", ("set_id", "draw_rank")),
+    )
+
+
+def matched_docs(ctx: CompileContext) -> tuple[ColumnDoc, ...]:
+    """The data dictionary of ``matched.parquet``, every column in file order."""
+    option = ctx.study.matching
+    if option is None:
+        return ()
+    name = option.cases_of
+    replacement = (
+        "with replacement: a patient may be a control of several sets"
+        if option.reuse_controls
+        else "without replacement: a patient is a control of one set at most; sets filled in "
+        "order of set date, then case id"
+    )
+    docs = [
+        ColumnDoc(
+            "set_id",
+            "INTEGER",
+            "",
+            "the matched set: one per incident case, numbered 1, 2, ... by set date, then case id",
+            f"ROW_NUMBER over incident {name} cases ordered by onset_{name}, patient_id",
+            "cohort",
+        ),
+        ColumnDoc("role", "VARCHAR", "", "case or control", "case: the set's own case", "study"),
+        ColumnDoc(
+            "control_number",
+            "INTEGER",
+            "",
+            "0 for the case; 1, 2, ... for controls in the order they were drawn",
+            f"controls ranked by MD5 of 'seed|case id|control id' (seed {option.seed}), "
+            f"up to {option.controls_per_case}; {replacement}",
+            "study",
+        ),
+        ColumnDoc(
+            "patient_id",
+            "same as cohort.parquet",
+            "",
+            "the patient",
+            "from cohort.parquet",
+            "extract",
+        ),
+        ColumnDoc(
+            "index_date",
+            "DATE",
+            "date",
+            "the set's date: the case's onset; a control's index date in the matched analysis",
+            f"onset_{name} of the set's case",
+            "diagnoses, prescriptions, measurements",
+        ),
+        ColumnDoc(
+            "sex",
+            "VARCHAR",
+            "",
+            "sex recorded (the same in every row of a set)",
+            "from patients.sex, upper case",
+            "patients",
+        ),
+        ColumnDoc(
+            "birth_year",
+            "INTEGER",
+            "year",
+            f"year of birth; a control's is within {option.birth_year_within} of its case's",
+            "year of patients.birth_date (1 July of birth_year when only the year is known)",
+            "patients",
+        ),
+    ]
+    if option.same_practice:
+        docs.append(
+            ColumnDoc(
+                "practice_id",
+                "VARCHAR",
+                "",
+                "the practice (the same in every row of a set)",
+                "from patients.practice_id",
+                "patients",
+            )
+        )
+    return tuple(docs)
