@@ -29,7 +29,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from pipeline._build import BuildOptions, build_study, plan_study
+from pipeline import BuildOptions, build_study, plan_study
 from pipeline.config._matching import Matching
 from pipeline.errors import ConfigError
 from pipeline.outputs._matched import matched_table

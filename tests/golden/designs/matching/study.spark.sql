@@ -1,4 +1,4 @@
--- plan for study design_matching (28 stages, dialect spark)
+-- plan for study design_matching (32 stages, dialect spark)
 
 -- reads src_patients: patient_id, sex, death_date, birth_date, birth_year, practice_id, registration_date, deregistration_date
 
@@ -8,8 +8,77 @@
 
 -- reads src_prescriptions: patient_id, start_date, atc, stop_date
 
--- stage patient_base [table]: one typed row per patient: birth date (1 July when only the year is known), sex; a patient with a written but unreadable date is left out
+-- stage patients_judged [view]: every patients row judged once: used, or the reason the quality log gives
 -- reads: src_patients
+SELECT
+  patient_id,
+  sex,
+  death_date,
+  birth_date,
+  birth_year,
+  practice_id,
+  registration_date,
+  deregistration_date,
+  source_problem,
+  source_position,
+  CASE
+    WHEN NOT source_problem IS NULL
+    THEN source_problem
+    WHEN patient_id IS NULL
+    THEN 'missing patient_id'
+    WHEN (
+      (
+        COALESCE(TRIM(CAST(birth_date AS STRING)), '') <> ''
+        AND CASE
+          WHEN CAST(birth_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+          THEN TRY_CAST(REGEXP_REPLACE(
+            TRIM(CAST(birth_date AS STRING)),
+            '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+            '$1-$3-$4'
+          ) AS DATE)
+        END IS NULL
+      )
+      OR (
+        COALESCE(TRIM(CAST(death_date AS STRING)), '') <> ''
+        AND CASE
+          WHEN CAST(death_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+          THEN TRY_CAST(REGEXP_REPLACE(
+            TRIM(CAST(death_date AS STRING)),
+            '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+            '$1-$3-$4'
+          ) AS DATE)
+        END IS NULL
+      )
+      OR (
+        COALESCE(TRIM(CAST(registration_date AS STRING)), '') <> ''
+        AND CASE
+          WHEN CAST(registration_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+          THEN TRY_CAST(REGEXP_REPLACE(
+            TRIM(CAST(registration_date AS STRING)),
+            '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+            '$1-$3-$4'
+          ) AS DATE)
+        END IS NULL
+      )
+      OR (
+        COALESCE(TRIM(CAST(deregistration_date AS STRING)), '') <> ''
+        AND CASE
+          WHEN CAST(deregistration_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+          THEN TRY_CAST(REGEXP_REPLACE(
+            TRIM(CAST(deregistration_date AS STRING)),
+            '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+            '$1-$3-$4'
+          ) AS DATE)
+        END IS NULL
+      )
+    )
+    THEN 'unparseable date'
+    ELSE 'used'
+  END AS reason
+FROM src_patients;
+
+-- stage patient_base [table]: one typed row per patient: birth date (1 July when only the year is known), sex; a patient with a written but unreadable date is left out
+-- reads: patients_judged
 SELECT DISTINCT
   patient_id,
   COALESCE(
@@ -72,56 +141,9 @@ SELECT DISTINCT
       '$1-$3-$4'
     ) AS DATE)
   END AS deregistration_date
-FROM src_patients
+FROM patients_judged
 WHERE
-  NOT patient_id IS NULL
-  AND source_problem IS NULL
-  AND NOT (
-    (
-      COALESCE(TRIM(CAST(birth_date AS STRING)), '') <> ''
-      AND CASE
-        WHEN CAST(birth_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
-        THEN TRY_CAST(REGEXP_REPLACE(
-          TRIM(CAST(birth_date AS STRING)),
-          '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
-          '$1-$3-$4'
-        ) AS DATE)
-      END IS NULL
-    )
-    OR (
-      COALESCE(TRIM(CAST(death_date AS STRING)), '') <> ''
-      AND CASE
-        WHEN CAST(death_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
-        THEN TRY_CAST(REGEXP_REPLACE(
-          TRIM(CAST(death_date AS STRING)),
-          '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
-          '$1-$3-$4'
-        ) AS DATE)
-      END IS NULL
-    )
-    OR (
-      COALESCE(TRIM(CAST(registration_date AS STRING)), '') <> ''
-      AND CASE
-        WHEN CAST(registration_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
-        THEN TRY_CAST(REGEXP_REPLACE(
-          TRIM(CAST(registration_date AS STRING)),
-          '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
-          '$1-$3-$4'
-        ) AS DATE)
-      END IS NULL
-    )
-    OR (
-      COALESCE(TRIM(CAST(deregistration_date AS STRING)), '') <> ''
-      AND CASE
-        WHEN CAST(deregistration_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
-        THEN TRY_CAST(REGEXP_REPLACE(
-          TRIM(CAST(deregistration_date AS STRING)),
-          '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
-          '$1-$3-$4'
-        ) AS DATE)
-      END IS NULL
-    )
-  );
+  reason = 'used';
 
 -- stage patient_duplicates [check]: patients must be listed once
 -- reads: patient_base
@@ -137,35 +159,58 @@ ORDER BY
   patient_id NULLS LAST
 LIMIT 5;
 
--- stage encounter_rows [view]: usable encounters: a readable date, a known patient, not after death or end of data
+-- stage encounters_judged [view]: every encounters row judged once: used, or the reason the quality log gives
 -- reads: src_encounters, patient_base
 SELECT
-  e.patient_id,
-  e.encounter_date,
-  e.encounter_type
+  *,
+  COALESCE(record_problem, timing_problem, 'used') AS reason
 FROM (
   SELECT
-    patient_id,
+    r.*,
     CASE
-      WHEN CAST(encounter_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
-      THEN TRY_CAST(REGEXP_REPLACE(
-        TRIM(CAST(encounter_date AS STRING)),
-        '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
-        '$1-$3-$4'
-      ) AS DATE)
-    END AS encounter_date,
-    LOWER(TRIM(CAST(encounter_type AS STRING))) AS encounter_type
-  FROM src_encounters
-  WHERE
-    source_problem IS NULL
-) AS e
-JOIN patient_base AS p
-  ON p.patient_id = e.patient_id
+      WHEN NOT r.source_problem IS NULL
+      THEN r.source_problem
+      WHEN p.patient_id IS NULL
+      THEN 'orphan patient'
+      WHEN r.row_date IS NULL
+      THEN 'unparseable date'
+    END AS record_problem,
+    CASE
+      WHEN r.row_date > CAST('2019-12-31' AS DATE)
+      THEN 'after end of data'
+      WHEN NOT p.death_date IS NULL AND r.row_date > p.death_date
+      THEN 'after death'
+    END AS timing_problem
+  FROM (
+    SELECT
+      patient_id,
+      encounter_date,
+      encounter_type,
+      source_problem,
+      source_position,
+      CASE
+        WHEN CAST(encounter_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+        THEN TRY_CAST(REGEXP_REPLACE(
+          TRIM(CAST(encounter_date AS STRING)),
+          '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+          '$1-$3-$4'
+        ) AS DATE)
+      END AS row_date
+    FROM src_encounters
+  ) AS r
+  LEFT JOIN patient_base AS p
+    ON p.patient_id = r.patient_id
+) AS j;
+
+-- stage encounter_rows [view]: usable encounters: a readable date, a known patient, not after death or end of data
+-- reads: encounters_judged
+SELECT
+  patient_id,
+  row_date AS encounter_date,
+  LOWER(TRIM(CAST(encounter_type AS STRING))) AS encounter_type
+FROM encounters_judged
 WHERE
-  e.encounter_date <= CAST('2019-12-31' AS DATE)
-  AND (
-    p.death_date IS NULL OR e.encounter_date <= p.death_date
-  );
+  reason = 'used';
 
 -- stage encounter_summary [table]: first and last usable encounter per patient (and the first in the index window)
 -- reads: encounter_rows
@@ -183,7 +228,7 @@ FROM encounter_rows
 GROUP BY
   patient_id;
 
--- stage extract_codes [table]: each distinct code of the extract, normalised, with what is wrong with it
+-- stage distinct_codes [table]: each distinct code of the extract, normalised, with what is wrong with it
 -- reads: src_diagnoses, src_prescriptions
 SELECT
   source_table,
@@ -234,52 +279,93 @@ FROM (
   ) AS found
 ) AS c;
 
--- stage coded_events [view]: usable diagnosis and prescription rows with their raw codes
--- reads: src_diagnoses, src_prescriptions, patient_base
+-- stage diagnoses_judged [view]: every diagnoses row judged once: used, or the reason the quality log gives
+-- reads: src_diagnoses, patient_base, distinct_codes
 SELECT
-  r.patient_id,
-  r.event_date,
-  r.source_table,
-  r.raw_system,
-  r.raw_code,
-  r.raw_source,
-  r.duration_days
+  *,
+  COALESCE(record_problem, code_problem, timing_problem, 'used') AS reason
 FROM (
   SELECT
-    patient_id,
+    r.*,
     CASE
-      WHEN CAST(event_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
-      THEN TRY_CAST(REGEXP_REPLACE(
-        TRIM(CAST(event_date AS STRING)),
-        '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
-        '$1-$3-$4'
-      ) AS DATE)
-    END AS event_date,
-    'diagnoses' AS source_table,
-    CAST(code_system AS STRING) AS raw_system,
-    CAST(code AS STRING) AS raw_code,
-    CAST(source AS STRING) AS raw_source,
-    CAST(NULL AS INT) AS duration_days
-  FROM src_diagnoses
-  WHERE
-    source_problem IS NULL
-  UNION ALL
+      WHEN NOT r.source_problem IS NULL
+      THEN r.source_problem
+      WHEN p.patient_id IS NULL
+      THEN 'orphan patient'
+      WHEN r.row_date IS NULL
+      THEN 'unparseable date'
+    END AS record_problem,
+    c.problem AS code_problem,
+    CASE
+      WHEN r.row_date > CAST('2019-12-31' AS DATE)
+      THEN 'after end of data'
+      WHEN NOT p.death_date IS NULL AND r.row_date > p.death_date
+      THEN 'after death'
+    END AS timing_problem
+  FROM (
+    SELECT
+      patient_id,
+      event_date,
+      code_system,
+      code,
+      source,
+      source_problem,
+      source_position,
+      CASE
+        WHEN CAST(event_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+        THEN TRY_CAST(REGEXP_REPLACE(
+          TRIM(CAST(event_date AS STRING)),
+          '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+          '$1-$3-$4'
+        ) AS DATE)
+      END AS row_date,
+      'diagnoses' AS source_table,
+      CAST(code_system AS STRING) AS raw_system,
+      CAST(code AS STRING) AS raw_code,
+      CAST(source AS STRING) AS raw_source,
+      CAST(NULL AS INT) AS duration_days
+    FROM src_diagnoses
+  ) AS r
+  LEFT JOIN patient_base AS p
+    ON p.patient_id = r.patient_id
+  LEFT JOIN distinct_codes AS c
+    ON r.source_table = c.source_table
+    AND r.raw_system IS NOT DISTINCT FROM c.raw_system
+    AND r.raw_code IS NOT DISTINCT FROM c.raw_code
+    AND r.raw_source IS NOT DISTINCT FROM c.raw_source
+) AS j;
+
+-- stage prescriptions_judged [view]: every prescriptions row judged once: used, or the reason the quality log gives
+-- reads: src_prescriptions, patient_base, distinct_codes
+SELECT
+  *,
+  COALESCE(record_problem, code_problem, timing_problem, 'used') AS reason
+FROM (
   SELECT
-    patient_id,
+    r.*,
     CASE
-      WHEN CAST(start_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
-      THEN TRY_CAST(REGEXP_REPLACE(
-        TRIM(CAST(start_date AS STRING)),
-        '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
-        '$1-$3-$4'
-      ) AS DATE)
-    END AS event_date,
-    'prescriptions' AS source_table,
-    CAST(NULL AS STRING) AS raw_system,
-    CAST(atc AS STRING) AS raw_code,
-    CAST(NULL AS STRING) AS raw_source,
-    CAST(DATEDIFF(
-      DAY,
+      WHEN NOT r.source_problem IS NULL
+      THEN r.source_problem
+      WHEN p.patient_id IS NULL
+      THEN 'orphan patient'
+      WHEN r.row_date IS NULL
+      THEN 'unparseable date'
+    END AS record_problem,
+    c.problem AS code_problem,
+    CASE
+      WHEN r.row_date > CAST('2019-12-31' AS DATE)
+      THEN 'after end of data'
+      WHEN NOT p.death_date IS NULL AND r.row_date > p.death_date
+      THEN 'after death'
+    END AS timing_problem
+  FROM (
+    SELECT
+      patient_id,
+      start_date,
+      atc,
+      stop_date,
+      source_problem,
+      source_position,
       CASE
         WHEN CAST(start_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
         THEN TRY_CAST(REGEXP_REPLACE(
@@ -287,30 +373,69 @@ FROM (
           '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
           '$1-$3-$4'
         ) AS DATE)
-      END,
-      CASE
-        WHEN CAST(stop_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
-        THEN TRY_CAST(REGEXP_REPLACE(
-          TRIM(CAST(stop_date AS STRING)),
-          '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
-          '$1-$3-$4'
-        ) AS DATE)
-      END
-    ) + 1 AS INT) AS duration_days
-  FROM src_prescriptions
-  WHERE
-    source_problem IS NULL
-) AS r
-JOIN patient_base AS p
-  ON p.patient_id = r.patient_id
-WHERE
-  r.event_date <= CAST('2019-12-31' AS DATE)
-  AND (
-    p.death_date IS NULL OR r.event_date <= p.death_date
-  );
+      END AS row_date,
+      'prescriptions' AS source_table,
+      CAST(NULL AS STRING) AS raw_system,
+      CAST(atc AS STRING) AS raw_code,
+      CAST(NULL AS STRING) AS raw_source,
+      CAST(DATEDIFF(
+        DAY,
+        CASE
+          WHEN CAST(start_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+          THEN TRY_CAST(REGEXP_REPLACE(
+            TRIM(CAST(start_date AS STRING)),
+            '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+            '$1-$3-$4'
+          ) AS DATE)
+        END,
+        CASE
+          WHEN CAST(stop_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+          THEN TRY_CAST(REGEXP_REPLACE(
+            TRIM(CAST(stop_date AS STRING)),
+            '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+            '$1-$3-$4'
+          ) AS DATE)
+        END
+      ) + 1 AS INT) AS duration_days
+    FROM src_prescriptions
+  ) AS r
+  LEFT JOIN patient_base AS p
+    ON p.patient_id = r.patient_id
+  LEFT JOIN distinct_codes AS c
+    ON r.source_table = c.source_table
+    AND r.raw_system IS NOT DISTINCT FROM c.raw_system
+    AND r.raw_code IS NOT DISTINCT FROM c.raw_code
+    AND r.raw_source IS NOT DISTINCT FROM c.raw_source
+) AS j;
 
--- stage code_matches [table]: each distinct extract code with the evidence it matches or is excluded from
--- reads: extract_codes
+-- stage coded_rows [view]: usable diagnosis and prescription rows with their raw codes
+-- reads: diagnoses_judged, prescriptions_judged
+SELECT
+  patient_id,
+  row_date AS event_date,
+  source_table,
+  raw_system,
+  raw_code,
+  raw_source,
+  duration_days
+FROM diagnoses_judged
+WHERE
+  reason = 'used'
+UNION ALL
+SELECT
+  patient_id,
+  row_date AS event_date,
+  source_table,
+  raw_system,
+  raw_code,
+  raw_source,
+  duration_days
+FROM prescriptions_judged
+WHERE
+  reason = 'used';
+
+-- stage codes_to_evidence [table]: each distinct extract code with the evidence it matches or is excluded from
+-- reads: distinct_codes
 SELECT
   c.source_table,
   c.raw_system,
@@ -327,7 +452,7 @@ SELECT
     THEN NULL
     ELSE MIN(CASE WHEN NOT m.is_exclusion THEN m.min_days END)
   END AS min_days
-FROM extract_codes AS c
+FROM distinct_codes AS c
 CROSS JOIN VALUES
   (3),
   (4),
@@ -365,8 +490,8 @@ GROUP BY
   c.source,
   m.evidence;
 
--- stage coded_matches [view]: each usable diagnosis or prescription row with the evidence its code matches
--- reads: code_matches, coded_events
+-- stage coded_row_evidence [view]: each usable diagnosis or prescription row with the evidence its code matches
+-- reads: codes_to_evidence, coded_rows
 SELECT DISTINCT
   e.patient_id,
   e.event_date,
@@ -377,8 +502,8 @@ SELECT DISTINCT
   e.duration_days,
   m.evidence,
   m.excluded OR NOT m.included AS excluded
-FROM coded_events AS e
-JOIN code_matches AS m
+FROM coded_rows AS e
+JOIN codes_to_evidence AS m
   ON e.source_table = m.source_table
   AND e.raw_system IS NOT DISTINCT FROM m.raw_system
   AND e.raw_code IS NOT DISTINCT FROM m.raw_code
@@ -386,8 +511,8 @@ JOIN code_matches AS m
 WHERE
   m.excluded OR m.min_days IS NULL OR e.duration_days >= m.min_days;
 
--- stage coded_evidence [view]: matched rows counted per patient, evidence and day (kept only in evidence_events)
--- reads: coded_matches
+-- stage coded_evidence_days [view]: matched rows counted per patient, evidence and day (kept only in evidence_events)
+-- reads: coded_row_evidence
 SELECT
   patient_id,
   evidence,
@@ -398,7 +523,7 @@ FROM (
     patient_id,
     event_date,
     evidence
-  FROM coded_matches
+  FROM coded_row_evidence
   WHERE
     NOT excluded
 ) AS m
@@ -408,7 +533,7 @@ GROUP BY
   event_date;
 
 -- stage evidence_events [table]: one row per patient, evidence and day, with the day number for windows
--- reads: coded_evidence
+-- reads: coded_evidence_days
 SELECT
   patient_id,
   evidence,
@@ -421,7 +546,7 @@ FROM (
     evidence,
     event_date,
     n_rows
-  FROM coded_evidence
+  FROM coded_evidence_days
 ) AS events;
 
 -- stage rules_heart_failure [table]: the first date each rule of heart_failure is met, per patient
@@ -788,7 +913,7 @@ SELECT
 FROM src_prescriptions;
 
 -- stage quality_log [table]: every extract row: used, or set aside with the first reason that applies
--- reads: extract_codes, patient_base, src_diagnoses, src_encounters, src_patients, src_prescriptions
+-- reads: diagnoses_judged, encounters_judged, patients_judged, prescriptions_judged
 WITH summary AS (
   SELECT
     reason,
@@ -798,88 +923,22 @@ WITH summary AS (
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
-      CASE
-        WHEN NOT source_problem IS NULL
-        THEN source_problem
-        WHEN patient_id IS NULL
-        THEN 'missing patient_id'
-        WHEN (
-          (
-            COALESCE(TRIM(CAST(birth_date AS STRING)), '') <> ''
-            AND CASE
-              WHEN CAST(birth_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
-              THEN TRY_CAST(REGEXP_REPLACE(
-                TRIM(CAST(birth_date AS STRING)),
-                '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
-                '$1-$3-$4'
-              ) AS DATE)
-            END IS NULL
-          )
-          OR (
-            COALESCE(TRIM(CAST(death_date AS STRING)), '') <> ''
-            AND CASE
-              WHEN CAST(death_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
-              THEN TRY_CAST(REGEXP_REPLACE(
-                TRIM(CAST(death_date AS STRING)),
-                '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
-                '$1-$3-$4'
-              ) AS DATE)
-            END IS NULL
-          )
-          OR (
-            COALESCE(TRIM(CAST(registration_date AS STRING)), '') <> ''
-            AND CASE
-              WHEN CAST(registration_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
-              THEN TRY_CAST(REGEXP_REPLACE(
-                TRIM(CAST(registration_date AS STRING)),
-                '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
-                '$1-$3-$4'
-              ) AS DATE)
-            END IS NULL
-          )
-          OR (
-            COALESCE(TRIM(CAST(deregistration_date AS STRING)), '') <> ''
-            AND CASE
-              WHEN CAST(deregistration_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
-              THEN TRY_CAST(REGEXP_REPLACE(
-                TRIM(CAST(deregistration_date AS STRING)),
-                '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
-                '$1-$3-$4'
-              ) AS DATE)
-            END IS NULL
-          )
-        )
-        THEN 'unparseable date'
-        ELSE 'used'
-      END AS reason,
-      copies,
-      source_position,
+      reason,
+      COUNT(*) AS copies,
+      MIN(source_position) AS source_position,
       patient_id IS NULL OR NOT source_problem IS NULL AS counted_whole
-    FROM (
-      SELECT
-        patient_id,
-        sex,
-        death_date,
-        birth_date,
-        birth_year,
-        practice_id,
-        registration_date,
-        deregistration_date,
-        source_problem,
-        MIN(source_position) AS source_position,
-        COUNT(*) AS copies
-      FROM src_patients
-      GROUP BY
-        patient_id,
-        sex,
-        death_date,
-        birth_date,
-        birth_year,
-        practice_id,
-        registration_date,
-        deregistration_date,
-        source_problem
-    ) AS g
+    FROM patients_judged
+    GROUP BY
+      patient_id,
+      sex,
+      death_date,
+      birth_date,
+      birth_year,
+      practice_id,
+      registration_date,
+      deregistration_date,
+      source_problem,
+      reason
   ) AS c
   GROUP BY
     reason
@@ -892,53 +951,17 @@ WITH summary AS (
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
-      CASE
-        WHEN NOT r.source_problem IS NULL
-        THEN r.source_problem
-        WHEN p.patient_id IS NULL
-        THEN 'orphan patient'
-        WHEN r.row_date IS NULL
-        THEN 'unparseable date'
-        WHEN NOT NULL IS NULL
-        THEN NULL
-        WHEN r.row_date > CAST('2019-12-31' AS DATE)
-        THEN 'after end of data'
-        WHEN NOT p.death_date IS NULL AND r.row_date > p.death_date
-        THEN 'after death'
-        ELSE 'used'
-      END AS reason,
-      r.copies,
-      r.source_position,
-      r.patient_id IS NULL OR NOT r.source_problem IS NULL AS counted_whole
-    FROM (
-      SELECT
-        *,
-        CASE
-          WHEN CAST(encounter_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
-          THEN TRY_CAST(REGEXP_REPLACE(
-            TRIM(CAST(encounter_date AS STRING)),
-            '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
-            '$1-$3-$4'
-          ) AS DATE)
-        END AS row_date
-      FROM (
-        SELECT
-          patient_id,
-          encounter_date,
-          encounter_type,
-          source_problem,
-          MIN(source_position) AS source_position,
-          COUNT(*) AS copies
-        FROM src_encounters
-        GROUP BY
-          patient_id,
-          encounter_date,
-          encounter_type,
-          source_problem
-      ) AS g
-    ) AS r
-    LEFT JOIN patient_base AS p
-      ON p.patient_id = r.patient_id
+      reason,
+      COUNT(*) AS copies,
+      MIN(source_position) AS source_position,
+      patient_id IS NULL OR NOT source_problem IS NULL AS counted_whole
+    FROM encounters_judged
+    GROUP BY
+      patient_id,
+      encounter_date,
+      encounter_type,
+      source_problem,
+      reason
   ) AS c
   GROUP BY
     reason
@@ -951,66 +974,19 @@ WITH summary AS (
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
-      CASE
-        WHEN NOT r.source_problem IS NULL
-        THEN r.source_problem
-        WHEN p.patient_id IS NULL
-        THEN 'orphan patient'
-        WHEN r.row_date IS NULL
-        THEN 'unparseable date'
-        WHEN NOT c.problem IS NULL
-        THEN c.problem
-        WHEN r.row_date > CAST('2019-12-31' AS DATE)
-        THEN 'after end of data'
-        WHEN NOT p.death_date IS NULL AND r.row_date > p.death_date
-        THEN 'after death'
-        ELSE 'used'
-      END AS reason,
-      r.copies,
-      r.source_position,
-      r.patient_id IS NULL OR NOT r.source_problem IS NULL AS counted_whole
-    FROM (
-      SELECT
-        *,
-        CASE
-          WHEN CAST(event_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
-          THEN TRY_CAST(REGEXP_REPLACE(
-            TRIM(CAST(event_date AS STRING)),
-            '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
-            '$1-$3-$4'
-          ) AS DATE)
-        END AS row_date,
-        CAST(code_system AS STRING) AS raw_system,
-        CAST(code AS STRING) AS raw_code,
-        CAST(source AS STRING) AS raw_source,
-        'diagnoses' AS source_table
-      FROM (
-        SELECT
-          patient_id,
-          event_date,
-          code_system,
-          code,
-          source,
-          source_problem,
-          MIN(source_position) AS source_position,
-          COUNT(*) AS copies
-        FROM src_diagnoses
-        GROUP BY
-          patient_id,
-          event_date,
-          code_system,
-          code,
-          source,
-          source_problem
-      ) AS g
-    ) AS r
-    LEFT JOIN patient_base AS p
-      ON p.patient_id = r.patient_id
-    LEFT JOIN extract_codes AS c
-      ON r.source_table = c.source_table
-      AND r.raw_system IS NOT DISTINCT FROM c.raw_system
-      AND r.raw_code IS NOT DISTINCT FROM c.raw_code
-      AND r.raw_source IS NOT DISTINCT FROM c.raw_source
+      reason,
+      COUNT(*) AS copies,
+      MIN(source_position) AS source_position,
+      patient_id IS NULL OR NOT source_problem IS NULL AS counted_whole
+    FROM diagnoses_judged
+    GROUP BY
+      patient_id,
+      event_date,
+      code_system,
+      code,
+      source,
+      source_problem,
+      reason
   ) AS c
   GROUP BY
     reason
@@ -1023,64 +999,18 @@ WITH summary AS (
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
-      CASE
-        WHEN NOT r.source_problem IS NULL
-        THEN r.source_problem
-        WHEN p.patient_id IS NULL
-        THEN 'orphan patient'
-        WHEN r.row_date IS NULL
-        THEN 'unparseable date'
-        WHEN NOT c.problem IS NULL
-        THEN c.problem
-        WHEN r.row_date > CAST('2019-12-31' AS DATE)
-        THEN 'after end of data'
-        WHEN NOT p.death_date IS NULL AND r.row_date > p.death_date
-        THEN 'after death'
-        ELSE 'used'
-      END AS reason,
-      r.copies,
-      r.source_position,
-      r.patient_id IS NULL OR NOT r.source_problem IS NULL AS counted_whole
-    FROM (
-      SELECT
-        *,
-        CASE
-          WHEN CAST(start_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
-          THEN TRY_CAST(REGEXP_REPLACE(
-            TRIM(CAST(start_date AS STRING)),
-            '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
-            '$1-$3-$4'
-          ) AS DATE)
-        END AS row_date,
-        CAST(NULL AS STRING) AS raw_system,
-        CAST(atc AS STRING) AS raw_code,
-        CAST(NULL AS STRING) AS raw_source,
-        'prescriptions' AS source_table
-      FROM (
-        SELECT
-          patient_id,
-          start_date,
-          atc,
-          stop_date,
-          source_problem,
-          MIN(source_position) AS source_position,
-          COUNT(*) AS copies
-        FROM src_prescriptions
-        GROUP BY
-          patient_id,
-          start_date,
-          atc,
-          stop_date,
-          source_problem
-      ) AS g
-    ) AS r
-    LEFT JOIN patient_base AS p
-      ON p.patient_id = r.patient_id
-    LEFT JOIN extract_codes AS c
-      ON r.source_table = c.source_table
-      AND r.raw_system IS NOT DISTINCT FROM c.raw_system
-      AND r.raw_code IS NOT DISTINCT FROM c.raw_code
-      AND r.raw_source IS NOT DISTINCT FROM c.raw_source
+      reason,
+      COUNT(*) AS copies,
+      MIN(source_position) AS source_position,
+      patient_id IS NULL OR NOT source_problem IS NULL AS counted_whole
+    FROM prescriptions_judged
+    GROUP BY
+      patient_id,
+      start_date,
+      atc,
+      stop_date,
+      source_problem,
+      reason
   ) AS c
   GROUP BY
     reason
