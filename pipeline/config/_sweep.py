@@ -211,7 +211,8 @@ def load_sweep(file: Path) -> Sweep:
     return sweep
 
 
-def _segments(text: str) -> list[str | int]:
+def target_parts(text: str) -> list[str | int]:
+    """An override's dotted target as path parts (digits as list positions)."""
     return [int(part) if part.isdigit() else part for part in text.split(".")]
 
 
@@ -237,7 +238,9 @@ def _step(node: Any, segment: str | int) -> tuple[list[str | int], str | None]:
     return [segment], None
 
 
-def _apply(doc: LocatedDocument, parts: list[str | int], value: Any, mark: int) -> LocatedDocument:
+def apply_override(
+    doc: LocatedDocument, parts: list[str | int], value: Any, mark: int
+) -> LocatedDocument:
     """``doc`` with the value at ``parts`` replaced; positions there become the mark ``mark``.
 
     Raises:
@@ -300,7 +303,7 @@ def load_variant(sweep: Sweep, variant: Variant) -> LoadedStudy:
                 )
             )
 
-        parts = _segments(override.target)
+        parts = target_parts(override.target)
         if parts[0] not in TARGETS or len(parts) < 2:
             problem(
                 f"a target starts with study. or definition.{did_you_mean(str(parts[0]), TARGETS)}"
@@ -320,7 +323,7 @@ def load_variant(sweep: Sweep, variant: Variant) -> LoadedStudy:
         targets.append(file)
         current = documents.get(file) or load_yaml(file)
         try:
-            documents[file] = _apply(current, rest, override.value, mark)
+            documents[file] = apply_override(current, rest, override.value, mark)
         except ValueError as err:
             problem(str(err))
     if problems:
