@@ -190,6 +190,19 @@ def _set(data: Any, parts: list[str | int], value: Any) -> Any:
     return apply_override(doc, parts, value, 1).data
 
 
+def sweep_folder(sweep_file: Path, options: SweepOptions) -> Path:
+    """Where a sweep writes: ``--out``, else ``<base output folder>_sweep_<sweep name>``.
+
+    Raises:
+        ConfigError: The sweep file cannot be read (the base study names the default).
+    """
+    if options.out is not None:
+        return options.out.resolve()
+    sweep = load_sweep(sweep_file)
+    folder = sweep.base.study.output.folder
+    return folder.with_name(f"{folder.name}_sweep_{sweep.name}")
+
+
 def check_sweep_folder(sweep_file: Path, out: Path) -> None:
     """Refuse an output folder holding files the sweep did not write, before any work."""
     check_folder(out, SWEEP, inputs=[("sweep file", sweep_file.resolve())])
