@@ -172,9 +172,14 @@ def _relation(*terms: tuple[str, int]) -> tuple[tuple[str, int], ...]:
 
 
 def cell_system(
-    rows: list[dict[str, Any]],
+    rows: list[dict[str, Any]], threshold: int
 ) -> tuple[dict[str, int], list[tuple[tuple[str, int], ...]], set[str], dict[str, int]]:
-    """The released counts of every row as cells: values, relations, latent cells, priority."""
+    """The released counts of every row as cells: values, relations, latent cells, priority.
+
+    The patients in one variant's set and not in another's are never printed, but two printed
+    counts of overlapping sets bound them: like the report's unprinted counts, such a count is
+    protected when it is small (1 to ``threshold`` - 1) and latent otherwise.
+    """
     values: dict[str, int] = {}
     relations = []
     released: set[str] = set()
@@ -190,7 +195,9 @@ def cell_system(
                     values[ids.key()] = len(ids)
                 # Counts of overlapping sets in two variants imply the counts of their
                 # differences: those are released (though not printed), so protected when small.
-                released.update((parts["a_only"].key(), parts["b_only"].key()))
+                released.update(
+                    parts[p].key() for p in ("a_only", "b_only") if 1 <= len(parts[p]) < threshold
+                )
                 relations += [
                     _relation(
                         (a.key(), 1), (parts["common"].key(), -1), (parts["a_only"].key(), -1)
@@ -236,7 +243,7 @@ def released_rows(rows: list[dict[str, Any]], threshold: int) -> list[dict[str, 
     at-risk count is hidden; the Jaccard overlap when any count it is made of is; the median
     onset shift when fewer than ``threshold`` patients have an onset in both.
     """
-    values, relations, latent, priority = cell_system(rows)
+    values, relations, latent, priority = cell_system(rows, threshold)
     hidden = protect_cells(values, relations, threshold, latent=latent, priority=priority)
     out = []
     for row in rows:

@@ -123,7 +123,7 @@ def _variants(doc: LocatedDocument, spec: SweepFile) -> list[Variant]:
             )
         )
     ranges = [list(enumerate(axis.values)) for axis in spec.grid]
-    for point in itertools.product(*ranges):
+    for point in itertools.product(*ranges) if ranges else ():
         overrides = tuple(
             Override(axis.key, value, *doc.locate(("grid", i, "values", j), at_value=True))
             for i, (axis, (j, value)) in enumerate(zip(spec.grid, point, strict=True))
