@@ -57,7 +57,7 @@ def sweep_command(
         keep=tuple(keep or ()),
     )
     folder = fail_cleanly(lambda: sweep_folder(sweep_file, options), debug=debug)
-    fail_cleanly(lambda: check_sweep_folder(sweep_file, folder), debug=debug)
+    fail_cleanly(lambda: check_sweep_folder(sweep_file, folder, options.extract), debug=debug)
     with progress_display(quiet=quiet) as on_stage:
         run = fail_cleanly(lambda: run_sweep(sweep_file, options, on_stage=on_stage), debug=debug)
     console = Console(highlight=False, soft_wrap=True)

@@ -33,8 +33,7 @@ from pipeline.config._sweep import (
 )
 from pipeline.config._yaml import LocatedDocument
 from pipeline.engine._duckdb import StageCallback
-from pipeline.errors import EngineError
-from pipeline.extract import database_source, open_extract
+from pipeline.extract import open_extract
 from pipeline.outputs._ownership import Owner, check_folder, install, staging
 
 SWEEP = Owner("sweep", "ascertain-sweep.json")
@@ -157,7 +156,9 @@ def write_variant_inputs(sweep: Sweep, variant: Variant, folder: Path, out: Path
         }
     )
     if "measures" in study_doc:
-        study_doc["measures"] = [_relative(p, folder) for p in base.study.measures]
+        study_doc["measures"] = [
+            _relative((base.file.parent / p).resolve(), folder) for p in base.study.measures
+        ]
     changed: dict[str, Any] = {}
     for override in variant.overrides:
         parts = target_parts(override.target)
@@ -203,9 +204,12 @@ def sweep_folder(sweep_file: Path, options: SweepOptions) -> Path:
     return folder.with_name(f"{folder.name}_sweep_{sweep.name}")
 
 
-def check_sweep_folder(sweep_file: Path, out: Path) -> None:
-    """Refuse an output folder holding files the sweep did not write, before any work."""
-    check_folder(out, SWEEP, inputs=[("sweep file", sweep_file.resolve())])
+def check_sweep_folder(sweep_file: Path, out: Path, extract: Path | str | None = None) -> None:
+    """Refuse an output folder holding foreign files or overlapping an input, before any work."""
+    inputs: list[tuple[str, Path]] = [("sweep file", sweep_file.resolve())]
+    if isinstance(extract, Path):
+        inputs.append(("extract", extract.resolve()))
+    check_folder(out, SWEEP, inputs=inputs)
 
 
 def write_sweep(run: SweepRun, out: Path, options: SweepOptions | None = None) -> list[Path]:
@@ -244,8 +248,6 @@ def _keep(run: SweepRun, name: str, staged: Path, out: Path, options: SweepOptio
     inputs, build = staged / "variants" / name, staged / "keep" / name
     if name == BASE:
         study = sweep.base.file
-        if database_source(sweep.base.study.extract) is not None:
-            raise EngineError("a sweep keeps a variant of a file extract only")
     else:
         study = write_variant_inputs(sweep, sweep.variant(name), inputs, build)
     extract = options.extract

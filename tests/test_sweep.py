@@ -194,3 +194,34 @@ def test_statistics_are_those_of_the_stats_package(window_run) -> None:  # type:
         assert row["rate_per_1000py"] >= 0
         assert not math.isnan(row["rate_high"])
         assert 0 <= row["cumulative_incidence"] <= 1
+
+
+def test_the_command_writes_the_sweep_and_a_verifiable_kept_variant(tmp_path: Path) -> None:
+    from typer.testing import CliRunner
+
+    from pipeline._build import verify_output
+    from pipeline.cli import app
+
+    out = tmp_path / "out"
+    args = ["sweep", str(FIXTURE / "sweep.yaml"), "--out", str(out), "--keep", "window_730"]
+    result = CliRunner().invoke(app, [*args, "--quiet", "--threads", "1"])
+    assert result.exit_code == 0, result.output
+    assert "ran " in result.output
+    assert "shared" in result.output
+    assert (out / "keep" / "window_730" / "manifest.json").is_file()
+    assert "within_days: 730" in (out / "variants" / "window_730" / "study.yaml").read_text(
+        encoding="utf-8"
+    )
+    assert verify_output(out / "keep" / "window_730").identical
+
+
+def test_the_command_reports_a_bad_sweep_file_at_its_line(tmp_path: Path) -> None:
+    from typer.testing import CliRunner
+
+    from pipeline.cli import app
+
+    file = _sweep(tmp_path, "variants:\n  a:\n    study.outcomes.horizon_yeras: 3\n")
+    result = CliRunner().invoke(app, ["sweep", str(file), "--out", str(tmp_path / "o")])
+    assert result.exit_code == 2
+    assert "sweep.yaml:5:5 [unknown-key]" in result.output.replace("\n", "")
+    assert not (tmp_path / "o").exists()
