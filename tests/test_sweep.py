@@ -225,3 +225,13 @@ def test_the_command_reports_a_bad_sweep_file_at_its_line(tmp_path: Path) -> Non
     assert result.exit_code == 2
     assert "sweep.yaml:5:5 [unknown-key]" in result.output.replace("\n", "")
     assert not (tmp_path / "o").exists()
+
+
+def test_check_checks_a_sweep_file_with_its_variants(tmp_path: Path) -> None:
+    from pipeline.config._check import check_paths
+
+    assert not check_paths([FIXTURE / "sweep.yaml"]).problems
+    file = _sweep(tmp_path, "variants:\n  a:\n    study.outcomes.horizon_yeras: 3\n")
+    (problem,) = check_paths([file]).problems
+    assert problem.code == "unknown-key"
+    assert problem.line == 5
