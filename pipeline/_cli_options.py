@@ -9,14 +9,18 @@ import sys
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from pathlib import Path
-from typing import Annotated
+from typing import Annotated, TypeVar
 
 import typer
 from rich.console import Console
+from rich.markup import escape
 from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
 
 from pipeline.compile import Stage
+from pipeline.errors import AscertainError
 from pipeline.extract import as_extract
+
+T = TypeVar("T")
 
 StudyArg = Annotated[
     Path, typer.Argument(help="The study file (YAML).", exists=False, dir_okay=False)
@@ -59,3 +63,23 @@ def progress_display(*, quiet: bool) -> Iterator[Callable[[Stage, int, int], Non
             progress.update(task, description=f"stage {number}/{total}: {stage.name}")
 
         yield on_stage
+
+
+def fail_cleanly(action: Callable[[], T], *, debug: bool) -> T:
+    """Run one library call; a user's error is printed as one message and exits 2.
+
+    Raises:
+        typer.Exit: With status 2 after printing the error (unless ``debug``).
+    """
+    try:
+        return action()
+    except (AscertainError, OSError) as err:
+        # OSError: a folder that cannot be created or read, a full disk. Writes are staged, so
+        # nothing was written; a traceback's exit status (1) would read as a negative answer.
+        if debug:
+            raise
+        # escape(): the message's "[unknown-key]" codes are text, not console markup.
+        Console(stderr=True, highlight=False, soft_wrap=True).print(
+            f"[bold red]error:[/] {escape(str(err))}", markup=True
+        )
+        raise typer.Exit(2) from None

@@ -20,13 +20,11 @@ from __future__ import annotations
 
 import datetime as dt
 import json
-from collections.abc import Callable
 from pathlib import Path
-from typing import Annotated, TypeVar
+from typing import Annotated
 
 import typer
 from rich.console import Console
-from rich.markup import escape
 
 from pipeline import BuildOptions, BuildResult, build_study, plan_study, verify_output
 from pipeline._cli_options import (
@@ -37,12 +35,13 @@ from pipeline._cli_options import (
     SparkMasterOpt,
     StudyArg,
     extract_arg,
+    fail_cleanly,
     progress_display,
 )
+from pipeline._cli_sweep import sweep_command
 from pipeline.config import load_study
 from pipeline.config._check import check_paths
 from pipeline.engine import DuckDBEngine, SparkEngine
-from pipeline.errors import AscertainError
 from pipeline.extract import as_extract
 from pipeline.workflows.check import check_extract, check_lines
 from pipeline.workflows.diff import diff_runs, render_diff
@@ -66,22 +65,8 @@ app = typer.Typer(
     rich_markup_mode="markdown",
 )
 
-T = TypeVar("T")
-
-
-def _fail_cleanly(action: Callable[[], T], *, debug: bool) -> T:
-    try:
-        return action()
-    except (AscertainError, OSError) as err:
-        # OSError: a folder that cannot be created or read, a full disk. Writes are staged, so
-        # nothing was written; a traceback's exit status (1) would read as a negative answer.
-        if debug:
-            raise
-        # escape(): the message's "[unknown-key]" codes are text, not console markup.
-        Console(stderr=True, highlight=False, soft_wrap=True).print(
-            f"[bold red]error:[/] {escape(str(err))}", markup=True
-        )
-        raise typer.Exit(2) from None
+_fail_cleanly = fail_cleanly
+app.command(name="sweep")(sweep_command)
 
 
 @app.command()

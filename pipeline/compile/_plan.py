@@ -11,6 +11,7 @@ from typing import Literal
 
 from sqlglot import exp
 
+from pipeline.compile._reads import relations_read
 from pipeline.extract.schema import POSITION_BASE, SOURCE_POSITION, SOURCE_PROBLEM, SourceTable
 
 # The dialect the stage templates are written in; engines render to their own.
@@ -94,6 +95,13 @@ class Plan:
             missing = [d for d in stage.depends_on if d not in known]
             if missing:
                 raise ValueError(f"stage {stage.name} reads {missing} before they exist")
+            read = relations_read(stage.query)
+            if set(read) != set(stage.depends_on):
+                # The sweep shares stages along these edges: a wrong one would share too much.
+                raise ValueError(
+                    f"stage {stage.name} declares it reads {sorted(stage.depends_on)}, "
+                    f"its query reads {list(read)}"
+                )
             if stage.name in known:
                 raise ValueError(f"stage name {stage.name} is used twice")
             known.add(stage.name)

@@ -20,6 +20,7 @@ from pipeline.config._loader import load_catalog, load_condition_lists, load_stu
 from pipeline.config._measure import load_measures, shipped_measures
 from pipeline.config._plausible import condition_warnings, study_warnings
 from pipeline.config._study import Study
+from pipeline.config._sweep import load_sweep
 from pipeline.config._yaml import load_yaml
 from pipeline.errors import ConfigError, Problem
 from pipeline.measures import MeasureRegistry
@@ -65,13 +66,13 @@ def _yaml_files(paths: list[Path]) -> tuple[list[Path], list[Problem]]:
 
 
 def _kind(file: Path) -> str:
-    """``study``, ``measure`` or (the default, which reports any problem) ``condition``."""
+    """``study``, ``measure``, ``sweep`` or (the default, reporting any problem) ``condition``."""
     try:
         data = load_yaml(file).data
     except ConfigError:
         return "condition"
     if isinstance(data, dict):
-        for kind in ("study", "measure"):
+        for kind in ("study", "measure", "sweep"):
             if kind in data and "condition" not in data:
                 return kind
     return "condition"
@@ -176,6 +177,9 @@ def check_paths(paths: list[Path]) -> CheckReport:
                     )
                 continue
             if kinds[file] == "measure":
+                continue
+            if kinds[file] == "sweep":
+                load_sweep(file)  # the base study and every variant, checked as studies
                 continue
             condition, lists = load_condition_lists(file, measures)
         except ConfigError as err:

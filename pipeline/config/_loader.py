@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -147,17 +148,29 @@ def _find_cycle(start: str, catalog: dict[str, Condition]) -> list[str] | None:
     return None
 
 
+# Parsed documents standing in for files (resolved path -> document): a sweep's variant is
+# its base study and definitions with some values replaced before validation.
+Documents = Mapping[Path, LocatedDocument]
+
+
+def _document(file: Path, documents: Documents | None) -> LocatedDocument:
+    """The document given for ``file``, else the file read from disk."""
+    given = documents.get(file.resolve()) if documents else None
+    return given if given is not None else load_yaml(file)
+
+
 def load_condition_lists(
-    file: Path, measures: MeasureRegistry | None = None
+    file: Path, measures: MeasureRegistry | None = None, documents: Documents | None = None
 ) -> tuple[Condition, EvidenceLists]:
     """Load and check one condition file and the code lists its evidence names.
 
-    Thresholds are read against ``measures`` (default: the shipped ones).
+    Thresholds are read against ``measures`` (default: the shipped ones); ``documents`` may
+    give the file's parsed content instead of reading it.
 
     Raises:
         ConfigError: Schema errors, rules that name undefined evidence, code list problems.
     """
-    doc = load_yaml(file)
+    doc = _document(file, documents)
     condition = validate_document(doc, Condition, measures)
     problems = _check_rules(doc, condition)
     lists, list_problems = read_lists(doc, condition)
@@ -181,10 +194,13 @@ def condition_files(folder: Path) -> list[Path]:
     return [f for f in sorted(folder.glob("*.yaml")) if not f.name.endswith(HEADER_SUFFIX)]
 
 
-def load_catalog(folder: Path, measures: MeasureRegistry | None = None) -> Catalog:
+def load_catalog(
+    folder: Path, measures: MeasureRegistry | None = None, documents: Documents | None = None
+) -> Catalog:
     """Load every ``*.yaml`` condition file in a folder; all problems are reported together.
 
-    Thresholds are read against ``measures`` (default: the shipped ones).
+    Thresholds are read against ``measures`` (default: the shipped ones); ``documents`` may
+    give some files' parsed content instead of reading them.
 
     Raises:
         ConfigError: A file is invalid, or two files define the same condition name.
@@ -199,7 +215,7 @@ def load_catalog(folder: Path, measures: MeasureRegistry | None = None) -> Catal
     problems: list[Problem] = []
     for file in condition_files(folder):
         try:
-            condition, lists = load_condition_lists(file, measures)
+            condition, lists = load_condition_lists(file, measures, documents)
         except ConfigError as err:
             problems.extend(err.problems)
             continue
@@ -369,14 +385,17 @@ def _study_lists(doc: LocatedDocument, study: Study) -> list[Problem]:
     return problems
 
 
-def load_study(file: Path) -> LoadedStudy:
+def load_study(file: Path, documents: Documents | None = None) -> LoadedStudy:
     """Load a study file and the condition definitions it refers to.
+
+    ``documents`` (resolved path -> parsed document) stands in for the study file or
+    definition files it names, e.g. a sweep's variant of them; other files are read.
 
     Raises:
         ConfigError: Any schema or cross-reference problem, with file:line:col.
     """
     file = file.resolve()
-    doc = load_yaml(file)
+    doc = _document(file, documents)
     base = file.parent
     measures = _study_measures(doc, base)
     study = validate_document(doc, Study, measures)
@@ -404,7 +423,7 @@ def load_study(file: Path) -> LoadedStudy:
         }
     )
     try:
-        catalog = load_catalog(study.definitions, measures)
+        catalog = load_catalog(study.definitions, measures, documents)
     except ConfigError as err:
         if any(p.code == "missing-folder" for p in err.problems):
             raise ConfigError(

@@ -1,0 +1,237 @@
+"""``ascertain sweep``: variants of a study built in one run, compared with the base.
+
+The hand-computed fixture is ``tests/fixtures/sweep_window`` (its README works out every
+gained and lost patient); the demo checks are in ``tests/test_sweep_demo.py``.
+"""
+
+from __future__ import annotations
+
+import csv
+import math
+from pathlib import Path
+
+import pytest
+
+from pipeline.config._sweep import load_sweep
+from pipeline.errors import ConfigError, OutputFolderError
+from pipeline.workflows.sweep import SweepOptions, run_sweep, write_sweep
+
+FIXTURE = Path(__file__).parent / "fixtures" / "sweep_window"
+
+
+@pytest.fixture(scope="module")
+def window_run():  # type: ignore[no-untyped-def]
+    return run_sweep(FIXTURE / "sweep.yaml", SweepOptions(threads=1))
+
+
+def _row(run, variant: str) -> dict:  # type: ignore[no-untyped-def]
+    return next(r for r in run.rows if r["variant"] == variant)
+
+
+# From the fixture's README, worked out by hand: (prevalent, at risk, incident, gained, lost,
+# Jaccard, median onset shift).
+BY_HAND = {
+    "base": (0, 14, 5, 0, 0, 1.0, 0.0),
+    "window_120": (0, 14, 3, 0, 2, 3 / 5, 0.0),
+    "window_499": (0, 14, 6, 1, 0, 5 / 6, 0.0),
+    "window_730": (1, 13, 7, 2, 0, 5 / 7, 0.0),
+}
+
+
+@pytest.mark.parametrize("variant", sorted(BY_HAND))
+def test_hand_computed_window_variants(window_run, variant: str) -> None:  # type: ignore[no-untyped-def]
+    row = _row(window_run, variant)
+    got = (
+        row["prevalent"],
+        row["at_risk"],
+        row["incident"],
+        row["gained"],
+        row["lost"],
+        row["jaccard"],
+        row["median_onset_shift_days"],
+    )
+    assert row["cohort"] == 14
+    assert got[:5] == BY_HAND[variant][:5]
+    assert got[5] == pytest.approx(BY_HAND[variant][5])
+    assert got[6] == BY_HAND[variant][6]
+
+
+def test_the_gained_and_lost_patients_are_the_ones_the_readme_names(window_run) -> None:  # type: ignore[no-untyped-def]
+    def ids(variant: str, name: str) -> set[str]:
+        universe = sorted(
+            {p for t in window_run.cohorts.values() for p in t.column("patient_id").to_pylist()}
+        )
+        return {universe[i] for i in _row(window_run, variant)["sets"][name].values}
+
+    assert ids("window_120", "lost") == {"HY-04", "HY-15"}
+    assert ids("window_499", "gained") == {"HY-05"}
+    assert ids("window_730", "gained") == {"HY-03", "HY-05"}
+    assert ids("window_730", "prevalent") == {"HY-12"}
+
+
+def test_only_stages_downstream_of_the_window_run_per_variant(window_run) -> None:  # type: ignore[no-untyped-def]
+    merged = window_run.merged
+    names = {s.name for s in merged.plan.stages}
+    assert "evidence_events" in merged.shared
+    assert "index_dates" in merged.shared
+    for variant in ("window_120", "window_499", "window_730"):
+        assert f"rules_heart_failure__{variant}" in names
+        assert f"evidence_events__{variant}" not in names
+    assert len(merged.plan.stages) < merged.stages_alone
+
+
+def test_released_table_hides_small_counts_and_what_they_imply(window_run, tmp_path: Path) -> None:  # type: ignore[no-untyped-def]
+    files = write_sweep(window_run, tmp_path / "out")
+    assert {f.name for f in files} == {"sweep.csv", "sweep.html"}
+    with (tmp_path / "out" / "sweep.csv").open(encoding="utf-8") as handle:
+        rows = list(csv.DictReader(handle))
+    lost = next(r for r in rows if r["variant"] == "window_120")
+    assert lost["lost"] == "<5"
+    assert lost["jaccard"] == ""  # made of a hidden count
+    for row in rows:
+        for name in ("prevalent", "incident"):
+            value = row[name]
+            assert value in ("0", "*", "<5") or int(value) >= 5
+        if row["incident"] in ("*", "<5"):
+            assert row["cumulative_incidence"] == row["rate_per_1000py"] == ""
+    assert "window_730" in (tmp_path / "out" / "sweep.html").read_text(encoding="utf-8")
+
+
+def test_a_second_sweep_replaces_its_own_files_and_refuses_foreign_ones(
+    window_run, tmp_path: Path
+) -> None:  # type: ignore[no-untyped-def]
+    out = tmp_path / "out"
+    write_sweep(window_run, out)
+    first = (out / "sweep.csv").read_bytes()
+    write_sweep(window_run, out)
+    assert (out / "sweep.csv").read_bytes() == first  # deterministic
+    (out / "mine.txt").write_text("keep me", encoding="utf-8")
+    with pytest.raises(OutputFolderError):
+        write_sweep(window_run, out)
+    assert (out / "mine.txt").read_text(encoding="utf-8") == "keep me"
+
+
+def _sweep(tmp_path: Path, body: str) -> Path:
+    file = tmp_path / "sweep.yaml"
+    base = (FIXTURE / "study.yaml").resolve()
+    file.write_text(f"sweep: s\nbase: {base}\n{body}", encoding="utf-8")
+    return file
+
+
+def _problems(file: Path) -> list[str]:
+    with pytest.raises(ConfigError) as err:
+        load_sweep(file)
+    return [str(p) for p in err.value.problems]
+
+
+def test_an_unknown_key_is_located_in_the_sweep_file_with_a_suggestion(tmp_path: Path) -> None:
+    file = _sweep(tmp_path, "variants:\n  a:\n    study.outcomes.horizon_yeras: 3\n")
+    (problem,) = _problems(file)
+    assert problem.startswith(f"{file}:5:5 [unknown-key]")
+    assert "did you mean 'horizon_years'?" in problem
+
+
+def test_a_bad_value_and_an_unknown_rule_are_located_at_their_override(tmp_path: Path) -> None:
+    body = (
+        "variants:\n"
+        "  a:\n"
+        "    definition.heart_failure.rules.0.within_days: -1\n"
+        "  b:\n"
+        "    definition.heart_failure.rules.two hf codes.within_days: 3\n"
+        "  c:\n"
+        "    definition.heart_falure.onset: rule_met\n"
+    )
+    problems = _problems(_sweep(tmp_path, body))
+    assert problems[0].split(" [")[0].endswith(":5:5")
+    assert "[bad-value]" in problems[0]
+    assert "must be 0 or more" in problems[0]
+    assert problems[1].split(" [")[0].endswith(":7:5")
+    assert "did you mean 'two heart failure codes'?" in problems[1]
+    assert "did you mean 'heart_failure'?" in problems[2]
+
+
+def test_a_problem_of_a_whole_mapping_names_the_override_and_the_base_place(tmp_path: Path) -> None:
+    file = _sweep(tmp_path, "variants:\n  a:\n    study.eligibility.age.between: [90, 40]\n")
+    (problem,) = _problems(file)
+    assert problem.startswith(f"{file}:5:5 [bad-value]")
+    assert "(at study.yaml:" in problem
+
+
+def test_a_grid_makes_one_variant_per_value_and_names_them(tmp_path: Path) -> None:
+    body = (
+        "grid:\n"
+        "  - key: definition.heart_failure.rules.0.within_days\n"
+        "    label: window\n"
+        "    values: [180, 1095]\n"
+        "  - key: definition.heart_failure.rules.0.need.hf_code\n"
+        "    label: need\n"
+        "    values: [1, 3]\n"
+    )
+    sweep = load_sweep(_sweep(tmp_path, body))
+    assert [v.name for v in sweep.variants] == [
+        "window_180_need_1",
+        "window_180_need_3",
+        "window_1095_need_1",
+        "window_1095_need_3",
+    ]
+    assert sweep.variants[1].overrides[1].line == 9
+
+
+def test_a_variant_may_not_be_called_base_nor_be_missing(tmp_path: Path) -> None:
+    body = "variants:\n  base:\n    study.outcomes.horizon_years: 3\n"
+    assert "[duplicate-variant]" in _problems(_sweep(tmp_path, body))[0]
+    assert "[missing-key]" in _problems(_sweep(tmp_path, ""))[0]
+
+
+def test_an_unknown_kept_variant_is_refused_with_a_suggestion() -> None:
+    with pytest.raises(ConfigError, match="did you mean 'window_120'"):
+        run_sweep(FIXTURE / "sweep.yaml", SweepOptions(keep=("window_12",)))
+
+
+def test_statistics_are_those_of_the_stats_package(window_run) -> None:  # type: ignore[no-untyped-def]
+    # A rate with no events is 0 with a finite upper limit (exact Poisson), never NaN.
+    for row in window_run.rows:
+        assert row["rate_per_1000py"] >= 0
+        assert not math.isnan(row["rate_high"])
+        assert 0 <= row["cumulative_incidence"] <= 1
+
+
+def test_the_command_writes_the_sweep_and_a_verifiable_kept_variant(tmp_path: Path) -> None:
+    from typer.testing import CliRunner
+
+    from pipeline import verify_output
+    from pipeline.cli import app
+
+    out = tmp_path / "out"
+    args = ["sweep", str(FIXTURE / "sweep.yaml"), "--out", str(out), "--keep", "window_730"]
+    result = CliRunner().invoke(app, [*args, "--quiet", "--threads", "1"])
+    assert result.exit_code == 0, result.output
+    assert "ran " in result.output
+    assert "shared" in result.output
+    assert (out / "keep" / "window_730" / "manifest.json").is_file()
+    assert "within_days: 730" in (out / "variants" / "window_730" / "study.yaml").read_text(
+        encoding="utf-8"
+    )
+    assert verify_output(out / "keep" / "window_730").identical
+
+
+def test_the_command_reports_a_bad_sweep_file_at_its_line(tmp_path: Path) -> None:
+    from typer.testing import CliRunner
+
+    from pipeline.cli import app
+
+    file = _sweep(tmp_path, "variants:\n  a:\n    study.outcomes.horizon_yeras: 3\n")
+    result = CliRunner().invoke(app, ["sweep", str(file), "--out", str(tmp_path / "o")])
+    assert result.exit_code == 2
+    assert "sweep.yaml:5:5 [unknown-key]" in result.output.replace("\n", "")
+    assert not (tmp_path / "o").exists()
+
+
+def test_check_checks_a_sweep_file_with_its_variants(tmp_path: Path) -> None:
+    from pipeline.config._check import check_paths
+
+    assert not check_paths([FIXTURE / "sweep.yaml"]).problems
+    file = _sweep(tmp_path, "variants:\n  a:\n    study.outcomes.horizon_yeras: 3\n")
+    (problem,) = check_paths([file]).problems
+    assert problem.code == "unknown-key"
+    assert problem.line == 5
