@@ -22,8 +22,7 @@ from pipeline.compile import (
 )
 from pipeline.config import LoadedStudy, load_study
 from pipeline.config._spark import SparkSettings
-from pipeline.engine import DuckDBEngine, RunResult, SparkEngine
-from pipeline.engine._duckdb import StageCallback
+from pipeline.engine import DuckDBEngine, RunResult, SparkEngine, StageCallback
 from pipeline.engine._spark_session import (
     DEFAULT_MASTER,
     is_local,

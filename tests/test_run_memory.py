@@ -9,7 +9,7 @@ from pathlib import Path
 import pytest
 
 from pipeline._build import BuildOptions, build_study
-from pipeline.engine._duckdb import machine_memory_limit
+from pipeline.engine.duckdb import machine_memory_limit
 
 from .conftest import DEMO_STUDY, HANDMADE
 from .helpers import demo_study_variant

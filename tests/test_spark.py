@@ -27,7 +27,7 @@ from pipeline._build import plan_study
 from pipeline.cli import app
 from pipeline.compile import Plan, SourceTable, Stage
 from pipeline.engine import DuckDBEngine, SparkEngine
-from pipeline.engine._spark_sql import spark_query
+from pipeline.engine.spark_rewrites import spark_query
 from pipeline.errors import EngineError, ExtractError
 from pipeline.extract import discover_extract
 from pipeline.outputs import write_parquet

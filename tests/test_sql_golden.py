@@ -12,7 +12,7 @@ import sqlglot
 from sqlglot import exp
 
 from pipeline._build import plan_study
-from pipeline.engine._spark_sql import spark_plan
+from pipeline.engine.spark_rewrites import spark_plan
 
 from .conftest import DEMO_STUDY
 

@@ -1,19 +1,19 @@
 """Run a plan on DuckDB, embedded, with a scratch folder for spilling.
 
-The engine binds each source table to a view over its files, renders every stage to DuckDB SQL
-and executes the stages in order. It knows nothing about studies: only plans.
+The steps every engine shares (binding, the stage loop, fetching) are in
+:mod:`pipeline.engine.base`; this module says how DuckDB reads the extract files (CSV as text,
+nothing guessed, every row with its position), which optimizers it runs without, how it creates
+views and tables, and how its errors name a file and a line.
 """
 
 from __future__ import annotations
 
 import json
-import logging
 import os
 import re
 import tempfile
-import time
-from collections.abc import Callable
-from dataclasses import dataclass, field
+from collections.abc import Iterator, Sequence
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
@@ -21,58 +21,11 @@ import duckdb
 import pyarrow as pa
 from sqlglot import exp
 
-from pipeline.compile import (
-    POSITION_BASE,
-    SOURCE_POSITION,
-    SOURCE_PROBLEM,
-    Plan,
-    SourceTable,
-    Stage,
-)
+from pipeline.compile import POSITION_BASE, SOURCE_POSITION, Stage
 from pipeline.engine._fhir import fhir_source
-from pipeline.engine._mapped import source_column
-from pipeline.errors import EngineError, ExtractError
+from pipeline.engine.base import Engine
+from pipeline.errors import ExtractError
 from pipeline.extract import ExtractTable
-
-log = logging.getLogger(__name__)
-
-# An identifier in canonical integer form keeps its integer type; anything else stays text.
-_INTEGER_ID = r"^(0|-?[1-9][0-9]{0,17})$"
-
-
-@dataclass(frozen=True)
-class StageReport:
-    """What one stage cost: seconds, the rows it produced (None for views) and memory.
-
-    ``memory_bytes`` is DuckDB's own peak buffer memory while the stage ran (its profiler's
-    ``peak_buffer_memory``; where this DuckDB has no such figure, the memory it holds after the
-    stage), so a stage whose memory grows shows in run.json. None on other engines.
-    """
-
-    name: str
-    kind: str
-    seconds: float
-    rows: int | None
-    memory_bytes: int | None = None
-
-
-@dataclass
-class RunResult:
-    """The outputs of a plan, read back from the engine, and what each stage cost."""
-
-    outputs: dict[str, pa.Table]
-    stages: list[StageReport] = field(default_factory=list)
-    engine: str = "duckdb"
-    engine_version: str = duckdb.__version__
-    engine_info: dict[str, Any] = field(default_factory=dict)
-    """Where and how it ran, when that can differ between runs (Spark: master, settings)."""
-    run_settings: dict[str, Any] = field(default_factory=dict)
-    """Settings that depend on the machine (DuckDB's memory limit and where it came from):
-    for run.json only, so the manifest stays the same on every machine."""
-
-
-StageCallback = Callable[[Stage, int, int], None]
-
 
 _OPTIMIZERS = exp.select("name").from_("duckdb_optimizers()").sql("duckdb")
 
@@ -127,12 +80,14 @@ def _rows(table: ExtractTable) -> exp.Expression:
         # The FHIR reader gives each row its file and line, and its own problem with it.
         return fhir_source(table).subquery("r")
     if table.file_format == "parquet":
-        return exp.select(every, no_position).from_(exp.Table(this=_reader(table))).subquery("r")
+        return (
+            exp.select(every, no_position).from_(exp.Table(this=table_reader(table))).subquery("r")
+        )
     parts = []
     for index, file in enumerate(table.files):
         number = exp.Window(this=exp.func("ROW_NUMBER"))
         position = exp.Add(this=exp.Literal.number(index * POSITION_BASE), expression=number)
-        reader = exp.Table(this=_reader(table, (file,)))
+        reader = exp.Table(this=table_reader(table, (file,)))
         parts.append(exp.select(every.copy(), position.as_(SOURCE_POSITION)).from_(reader))
     union = parts[0]
     for part in parts[1:]:
@@ -140,7 +95,7 @@ def _rows(table: ExtractTable) -> exp.Expression:
     return union.subquery("r")
 
 
-def _reader(table: ExtractTable, files: tuple[Path, ...] | None = None) -> exp.Expression:
+def table_reader(table: ExtractTable, files: tuple[Path, ...] | None = None) -> exp.Expression:
     """The table function reading one extract table's files, every CSV value as text.
 
     CSV files are read as RFC 4180 says and nothing is guessed: comma-separated, UTF-8 (a
@@ -175,16 +130,21 @@ _CSV_LINE = re.compile(r"CSV Error on Line: (\d+)")
 _CSV_TEXT = re.compile(r"^Original Line: (.*)$", re.MULTILINE)
 _CSV_FILE = re.compile(r"^\s*file = (.+)$", re.MULTILINE)
 _CSV_WIDTH = re.compile(r"Expected Number of Columns: (\d+) Found: (\d+)")
+# What DuckDB's message says -> the error's code and our sentence.
 _CSV_REASONS = {
-    "Invalid unicode": "not valid UTF-8 (convert the file to UTF-8)",
-    "Maximum line size": "the line is longer than DuckDB's maximum line size",
-    "unterminated quote": "a quoted field is never closed",
+    "Invalid unicode": ("csv-not-utf8", "not valid UTF-8 (convert the file to UTF-8)"),
+    "Maximum line size": (
+        "csv-line-too-long",
+        "the line is longer than DuckDB's maximum line size",
+    ),
+    "unterminated quote": ("csv-unclosed-quote", "a quoted field is never closed"),
 }
 
 
-def _read_failure(err: duckdb.Error) -> ExtractError | None:
+def read_failure(err: BaseException) -> ExtractError | None:
     """An extract file DuckDB could not read, as an error naming the file and the line.
 
+    The error reads ``file:line [code] 'the line': why``, like a located configuration problem.
     DuckDB counts a record whose quoted fields hold line breaks as one line. Returns None when
     ``err`` is not a CSV reading error.
     """
@@ -195,15 +155,17 @@ def _read_failure(err: duckdb.Error) -> ExtractError | None:
     width = _CSV_WIDTH.search(message)
     if width:
         expected, found = (int(n) for n in width.groups())
-        where = "extra" if found > expected else "missing"
+        side = "extra" if found > expected else "missing"
         column = min(expected, found) + 1
-        reason = f"{found} fields where the header has {expected} ({where} from column {column})"
+        code = "csv-ragged-row"
+        reason = f"{found} fields where the header has {expected} ({side} from column {column})"
     else:
-        known = (text for key, text in _CSV_REASONS.items() if key.lower() in message.lower())
-        reason = next(known, "cannot be read as CSV")
+        known = (found for key, found in _CSV_REASONS.items() if key.lower() in message.lower())
+        code, reason = next(known, ("csv-unreadable", "cannot be read as CSV"))
     text = _CSV_TEXT.search(message)
-    shown = f" {text.group(1)[:60]!r}" if text else ""
-    return ExtractError(f"{file.group(1).strip()}: line {line.group(1)}{shown}: {reason}")
+    shown = f"{text.group(1)[:60]!r}: " if text else ""
+    where = f"{file.group(1).strip()}:{line.group(1)}"
+    return ExtractError(f"{shown}{reason}", code=code, where=where)
 
 
 def machine_memory_limit() -> str | None:
@@ -230,7 +192,7 @@ def _create(kind: str, name: str, query: exp.Query) -> exp.Create:
     )
 
 
-class DuckDBEngine:
+class DuckDBEngine(Engine[duckdb.DuckDBPyConnection]):
     """Execute plans on an embedded DuckDB database.
 
     Args:
@@ -242,11 +204,7 @@ class DuckDBEngine:
     """
 
     DIALECT = "duckdb"
-
-    @staticmethod
-    def prepare(plan: Plan) -> Plan:
-        """The plan exactly as this engine runs it (DuckDB runs the stages as compiled)."""
-        return plan
+    LABEL = "DuckDB"
 
     def __init__(
         self,
@@ -259,7 +217,22 @@ class DuckDBEngine:
         self.memory_limit = memory_limit or machine_memory_limit()
         self.memory_limit_from = memory_limit_from if memory_limit else "machine"
 
+    @property
+    def version(self) -> str:
+        """DuckDB's version."""
+        return str(duckdb.__version__)
+
+    @contextmanager
+    def _open(self) -> Iterator[duckdb.DuckDBPyConnection]:
+        with tempfile.TemporaryDirectory(prefix="ascertain-scratch-") as scratch:
+            con = self._connect(Path(scratch))
+            try:
+                yield con
+            finally:
+                con.close()
+
     def _connect(self, scratch: Path) -> duckdb.DuckDBPyConnection:
+        """A connection spilling to ``scratch``, with the tool's settings and optimizers."""
         con = duckdb.connect(":memory:")
         con.execute("SET temp_directory = ?", [str(scratch)])
         optimizers = {row[0] for row in con.execute(_OPTIMIZERS).fetchall()}
@@ -275,146 +248,71 @@ class DuckDBEngine:
         con.execute("PRAGMA enable_profiling = 'no_output'")
         return con
 
-    def _settings(self, con: duckdb.DuckDBPyConnection) -> dict[str, Any]:
+    def _run_settings(self, conn: duckdb.DuckDBPyConnection) -> dict[str, Any]:
         """The memory limit in effect, as DuckDB states it, and where it came from."""
-        limit = con.sql("SELECT current_setting('memory_limit')").fetchall()[0][0]
+        limit = conn.sql("SELECT current_setting('memory_limit')").fetchall()[0][0]
         return {"memory_limit": str(limit), "memory_limit_from": self.memory_limit_from}
 
-    @staticmethod
-    def _memory(con: duckdb.DuckDBPyConnection) -> int:
+    def _memory(self, conn: duckdb.DuckDBPyConnection) -> int:
         """DuckDB's peak buffer memory during the last statement, else what it holds now."""
         try:
-            profile = json.loads(con.get_profiling_information(format="json"))
+            profile = json.loads(conn.get_profiling_information(format="json"))
             return int(profile["system"]["peak_buffer_memory"])
         except (duckdb.Error, KeyError, TypeError, ValueError):
-            rows = con.sql("SELECT SUM(memory_usage_bytes) FROM duckdb_memory()").fetchall()
+            rows = conn.sql("SELECT SUM(memory_usage_bytes) FROM duckdb_memory()").fetchall()
             return int(rows[0][0] or 0)
 
-    def _id_type(self, con: duckdb.DuckDBPyConnection, patients: ExtractTable) -> str:
-        """The type patient_id gets in every table: the patients file's own type.
+    def _table_rows(self, conn: duckdb.DuckDBPyConnection, table: ExtractTable) -> exp.Expression:
+        return _rows(table)
 
-        CSV has no types, so a CSV column of canonical integers is read as BIGINT (sorting 9
-        before 10) and anything else as text. FHIR resource ids are text.
-        """
-        if patients.file_format == "fhir":
-            return "VARCHAR"
-        source = exp.Table(this=_reader(patients))
-        if patients.file_format == "parquet":
-            describe = exp.Describe(
-                this=exp.select(source_column(patients, "patient_id")).from_(source)
-            )
-            rows = con.execute(describe.sql(self.DIALECT)).fetchall()
-            return str(rows[0][1]) if rows else "VARCHAR"
-        match = exp.func(
-            "REGEXP_FULL_MATCH",
-            source_column(patients, "patient_id"),
-            exp.Literal.string(_INTEGER_ID),
-        )
-        probe = exp.select(exp.func("BOOL_AND", match)).from_(source)
-        rows = con.execute(probe.sql(self.DIALECT)).fetchall()
-        return "BIGINT" if rows and rows[0][0] else "VARCHAR"
+    def _probe_rows(self, conn: duckdb.DuckDBPyConnection, table: ExtractTable) -> exp.Expression:
+        # The plain reader: the probe needs no row positions.
+        return exp.Table(this=table_reader(table))
 
-    def _bind(
-        self,
-        con: duckdb.DuckDBPyConnection,
-        sources: tuple[SourceTable, ...],
-        tables: dict[str, ExtractTable],
-        patients: tuple[str, ...] | None = None,
-    ) -> None:
-        id_type = exp.DataType.build(self._id_type(con, tables["patients"]), dialect=self.DIALECT)
-        for source in sources:
-            table = tables[source.name]
-            columns: list[exp.Expression] = []
-            for name in source.columns:
-                if name not in table.provides:
-                    columns.append(exp.cast(exp.null(), "VARCHAR").as_(name))
-                elif name == "patient_id":
-                    column = source_column(table, name)
-                    columns.append(exp.TryCast(this=column, to=id_type.copy()).as_(name))
-                else:
-                    columns.append(source_column(table, name).as_(name))
-            rows = _rows(table)
-            problem = (
-                exp.column(SOURCE_PROBLEM)
-                if table.file_format == "fhir"
-                else exp.cast(exp.null(), "VARCHAR").as_(SOURCE_PROBLEM)
-            )
-            view = exp.select(*columns, exp.column(SOURCE_POSITION), problem).from_(rows)
-            if patients is not None:
-                # Restrict every table to some patients (a trace); ids compared as typed values.
-                wanted = [
-                    exp.TryCast(this=exp.Literal.string(p), to=id_type.copy()) for p in patients
-                ]
-                typed = exp.TryCast(this=exp.column("patient_id"), to=id_type.copy())
-                view = view.where(typed.isin(*wanted))
-            con.execute(_create("VIEW", source.relation, view).sql(self.DIALECT))
+    def _column_type(
+        self, conn: duckdb.DuckDBPyConnection, table: ExtractTable, column: exp.Expression
+    ) -> str:
+        describe = exp.Describe(this=exp.select(column).from_(self._probe_rows(conn, table)))
+        rows = conn.execute(describe.sql(self.DIALECT)).fetchall()
+        return str(rows[0][1]) if rows else self.TEXT_TYPE
 
-    def _execute(self, con: duckdb.DuckDBPyConnection, stage: Stage) -> tuple[int | None, int]:
-        """Run one stage: its rows (None for a view) and DuckDB's peak memory while it ran."""
-        if stage.kind == "check":
-            rows = con.execute(stage.render(self.DIALECT)).fetchall()
-            if rows:
-                shown = "; ".join(", ".join(str(v) for v in row) for row in rows)
-                raise EngineError(f"{stage.failure} (stage {stage.name}; first rows: {shown})")
-            return 0, self._memory(con)
+    def _create_view(self, conn: duckdb.DuckDBPyConnection, name: str, query: exp.Query) -> None:
+        conn.execute(_create("VIEW", name, query).sql(self.DIALECT))
+
+    def _materialise(
+        self, conn: duckdb.DuckDBPyConnection, stage: Stage
+    ) -> tuple[int | None, int | None]:
         kind = "VIEW" if stage.kind == "view" else "TABLE"
-        con.execute(_create(kind, stage.name, stage.query).sql(self.DIALECT))
-        memory = self._memory(con)
+        conn.execute(_create(kind, stage.name, stage.query).sql(self.DIALECT))
+        memory = self._memory(conn)
         if stage.kind == "view":
             return None, memory
         count = exp.select(exp.func("COUNT", exp.Star())).from_(exp.to_table(stage.name))
-        return int(con.execute(count.sql(self.DIALECT)).fetchall()[0][0]), memory
+        return int(conn.execute(count.sql(self.DIALECT)).fetchall()[0][0]), memory
 
-    def run(
+    def _first_rows(
+        self, conn: duckdb.DuckDBPyConnection, query: exp.Query, limit: int | None
+    ) -> list[Any]:
+        # Fetched completely before the next statement (DuckDB 2 requires it).
+        if limit is not None:
+            query = exp.select("*").from_(query.subquery("q")).limit(limit)
+        return conn.execute(query.sql(self.DIALECT, pretty=True)).fetchall()
+
+    def _fetch(
         self,
-        plan: Plan,
-        tables: dict[str, ExtractTable],
-        *,
-        on_stage: StageCallback | None = None,
-        patients: tuple[str, ...] | None = None,
-    ) -> RunResult:
-        """Run every stage of the plan and return its outputs, sorted as the plan says.
+        conn: duckdb.DuckDBPyConnection,
+        stage_name: str,
+        order: Sequence[str],
+        rows: int | None,
+    ) -> pa.Table:
+        # DuckDB sorts NULLs last by default, as the outputs are specified.
+        select = exp.select("*").from_(stage_name)
+        if order:
+            select = select.order_by(*order)
+        return conn.sql(select.sql(self.DIALECT)).to_arrow_table()
 
-        ``patients`` restricts every source table to those patient ids (used to trace one).
+    def _is_own_error(self, err: BaseException) -> bool:
+        return isinstance(err, duckdb.Error)
 
-        Raises:
-            EngineError: DuckDB rejected a stage or a check stage found offending rows.
-        """
-        with tempfile.TemporaryDirectory(prefix="ascertain-scratch-") as scratch:
-            con = self._connect(Path(scratch))
-            try:
-                return self._run(con, plan, tables, on_stage, patients)
-            except duckdb.Error as err:
-                raise _read_failure(err) or EngineError(f"DuckDB failed: {err}") from err
-            finally:
-                con.close()
-
-    def _run(
-        self,
-        con: duckdb.DuckDBPyConnection,
-        plan: Plan,
-        tables: dict[str, ExtractTable],
-        on_stage: StageCallback | None,
-        patients: tuple[str, ...] | None,
-    ) -> RunResult:
-        self._bind(con, plan.sources, tables, patients)
-        reports: list[StageReport] = []
-        for number, stage in enumerate(plan.stages, start=1):
-            if on_stage:
-                on_stage(stage, number, len(plan.stages))
-            started = time.perf_counter()
-            try:
-                rows, memory = self._execute(con, stage)
-            except duckdb.Error as err:
-                failure = EngineError(f"stage {stage.name} failed on DuckDB: {err}")
-                raise _read_failure(err) or failure from err
-            seconds = time.perf_counter() - started
-            reports.append(StageReport(stage.name, stage.kind, seconds, rows, memory))
-            log.debug("stage %s: %.3fs, %s rows", stage.name, reports[-1].seconds, rows)
-        outputs = {}
-        for output, stage_name, order in plan.outputs:
-            select = exp.select("*").from_(stage_name)
-            if order:
-                select = select.order_by(*order)
-            outputs[output] = con.sql(select.sql(self.DIALECT)).to_arrow_table()
-        return RunResult(outputs, reports, run_settings=self._settings(con))
+    def _read_failure(self, err: BaseException) -> ExtractError | None:
+        return read_failure(err)

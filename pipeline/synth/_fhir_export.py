@@ -87,9 +87,9 @@ import duckdb
 from sqlglot import exp
 
 from pipeline.compile._sources import DIAGNOSES, ENCOUNTERS, MEASUREMENTS, PATIENTS, PRESCRIPTIONS
-from pipeline.engine._duckdb import _reader
 from pipeline.engine._fhir import fhir_source
 from pipeline.engine._mapped import source_column
+from pipeline.engine.duckdb import table_reader
 from pipeline.extract import ExtractTable, discover_extract
 from pipeline.synth._fhir_resources import WRITERS, Resource, Row
 from pipeline.synth._fhir_server import ServerLook
@@ -181,7 +181,9 @@ def _source_sql(table: ExtractTable, columns: tuple[str, ...]) -> str:
     if table.file_format == "fhir":
         rows = fhir_source(table).subquery("src")
     else:
-        rows = exp.Table(this=_reader(table), alias=exp.TableAlias(this=exp.to_identifier("src")))
+        rows = exp.Table(
+            this=table_reader(table), alias=exp.TableAlias(this=exp.to_identifier("src"))
+        )
     select = exp.select(
         *(
             source_column(table, c).as_(c)
