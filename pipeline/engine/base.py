@@ -167,6 +167,10 @@ class Engine(ABC, Generic[Connection]):
         ``rows`` is the stage's row count when it is a stored table, else None.
         """
 
+    def _check_rows(self, conn: Connection, stage: Stage) -> list[Any]:
+        """The offending rows a check stage finds: at most :attr:`CHECK_ROWS_SHOWN` of them."""
+        return self._first_rows(conn, stage.query, self.CHECK_ROWS_SHOWN)
+
     def _memory(self, conn: Connection) -> int | None:
         """The engine's memory figure for the statement just run (None: it has none)."""
         return None
@@ -354,7 +358,7 @@ class Engine(ABC, Generic[Connection]):
         """
         if stage.kind != "check":
             return self._materialise(conn, stage)
-        rows = self._first_rows(conn, stage.query, self.CHECK_ROWS_SHOWN)
+        rows = self._check_rows(conn, stage)
         if rows:
             raise EngineError(
                 f"{stage.failure} (first rows: {shown_rows(rows)})",

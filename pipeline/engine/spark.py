@@ -141,10 +141,14 @@ class SparkEngine(Engine["SparkSession"]):
         if stage_storage not in STAGE_STORAGE:
             raise EngineError(
                 f"Spark stage storage must be one of {', '.join(STAGE_STORAGE)}, "
-                f"not '{stage_storage}'"
+                f"not '{stage_storage}'",
+                code="spark-storage-invalid",
             )
         if (stage_storage == "checkpoint") != (checkpoint_folder is not None):
-            raise EngineError("Spark stage storage 'checkpoint' goes with a checkpoint folder")
+            raise EngineError(
+                "Spark stage storage 'checkpoint' goes with a checkpoint folder",
+                code="spark-storage-invalid",
+            )
         self.request = SessionRequest(master, dict(conf or {}), connect_timeout)
         self.session = session
         self.stage_storage = stage_storage
@@ -245,8 +249,9 @@ class SparkEngine(Engine["SparkSession"]):
         except Exception as err:
             if _spark_error(err):
                 raise EngineError(
-                    f"the checkpoint folder {self.checkpoint_folder} cannot be used: "
-                    f"{_first_line(err)}"
+                    f"cannot be used as the checkpoint folder: {_first_line(err)}",
+                    code="checkpoint-folder-unusable",
+                    where=self.checkpoint_folder,
                 ) from err
             raise
         # Spark made a fresh subfolder (a random name) for this context: ours to remove.
