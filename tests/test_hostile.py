@@ -20,9 +20,8 @@ import pytest
 from sqlglot import exp
 from typer.testing import CliRunner
 
-from pipeline.engine._duckdb import _reader
 from pipeline.errors import ExtractError
-from pipeline.extract import discover_extract
+from pipeline.extract import discover_extract, table_function
 from pipeline.workflows.build import BuildOptions, BuildResult, build_study, plan_study
 
 from .conftest import DEMO_STUDY, HANDMADE
@@ -80,7 +79,7 @@ def _added(result: BuildResult, baseline: BuildResult, table: str) -> dict[str, 
 def _values(extract: Path, table: str, column: str) -> list[str | None]:
     """One column of a table exactly as the engine reads it."""
     found = discover_extract(extract, plan_study(DEMO_STUDY).sources)[table]
-    select = exp.select(column).from_(exp.Table(this=_reader(found)))
+    select = exp.select(column).from_(exp.Table(this=table_function(found)))
     return [row[0] for row in duckdb.sql(select.sql("duckdb")).fetchall()]
 
 
@@ -152,7 +151,7 @@ def test_a_row_with_too_few_fields_is_refused(tmp_path: Path) -> None:
     line = len(_lines("diagnoses")) + 1
     _refused(
         extract,
-        f"{extract / 'diagnoses.csv'}: line {line}",
+        f"{extract / 'diagnoses.csv'}:{line} [csv-ragged-row]",
         "4 fields where the header has 5 (missing from column 5)",
     )
 
@@ -163,7 +162,7 @@ def test_a_row_with_too_many_fields_is_refused(tmp_path: Path) -> None:
     extract = _hostile(tmp_path, "diagnoses", b"".join([*lines[:5], row, *lines[5:]]))
     _refused(
         extract,
-        f"{extract / 'diagnoses.csv'}: line 6 'HM-001,2016-01-01,ICD10,I10,visit,extra'",
+        f"{extract / 'diagnoses.csv'}:6 [csv-ragged-row] 'HM-001,2016-01-01,ICD10,I10,visit,extra'",
         "6 fields where the header has 5 (extra from column 6)",
     )
 
@@ -173,7 +172,11 @@ def test_a_quote_never_closed_is_refused(tmp_path: Path) -> None:
     lines = _lines("diagnoses")
     row = b'HM-001,2016-01-01,ICD10,"I10,visit\n'
     extract = _hostile(tmp_path, "diagnoses", b"".join([*lines[:5], row, *lines[5:]]))
-    _refused(extract, f"{extract / 'diagnoses.csv'}: line 6", "a quoted field is never closed")
+    _refused(
+        extract,
+        f"{extract / 'diagnoses.csv'}:6 [csv-unclosed-quote]",
+        "a quoted field is never closed",
+    )
 
 
 # 4. Other delimiters are refused when the header is read.
@@ -199,7 +202,7 @@ def test_latin1_in_a_row_is_refused_with_its_line(tmp_path: Path) -> None:
     extract = _hostile(tmp_path, "diagnoses", b"".join([*_lines("diagnoses"), row]))
     _refused(
         extract,
-        f"{extract / 'diagnoses.csv'}: line {len(_lines('diagnoses')) + 1}",
+        f"{extract / 'diagnoses.csv'}:{len(_lines('diagnoses')) + 1} [csv-not-utf8]",
         "not valid UTF-8",
     )
 

@@ -8,7 +8,7 @@ from pathlib import Path
 
 import pytest
 
-from pipeline.engine._duckdb import machine_memory_limit
+from pipeline.engine.duckdb import machine_memory_limit
 from pipeline.workflows.build import BuildOptions, build_study
 
 from .conftest import DEMO_STUDY, HANDMADE

@@ -11,7 +11,7 @@ import pytest
 import sqlglot
 from sqlglot import exp
 
-from pipeline.engine._spark_sql import spark_plan
+from pipeline.engine.spark_rewrites import spark_plan
 from pipeline.workflows.build import plan_study
 
 from .conftest import DEMO_STUDY

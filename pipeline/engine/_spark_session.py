@@ -101,7 +101,8 @@ def master_addresses(master: str) -> list[tuple[str, int]]:
     if not standalone:
         raise EngineError(
             f"'{master}' is not a Spark master URL; use local[*], local[N], "
-            "spark://HOST:PORT, yarn or k8s://URL"
+            "spark://HOST:PORT, yarn or k8s://URL",
+            code="spark-master-invalid",
         )
     addresses = []
     for part in standalone.group(1).split(","):
@@ -109,7 +110,8 @@ def master_addresses(master: str) -> list[tuple[str, int]]:
         if not found or not 0 < int(found.group(2)) < 65536:
             raise EngineError(
                 f"the Spark master URL {master} needs HOST:PORT after spark:// "
-                f"(the standalone master's port, 7077 unless set otherwise), not '{part}'"
+                f"(the standalone master's port, 7077 unless set otherwise), not '{part}'",
+                code="spark-master-invalid",
             )
         addresses.append((found.group(1).strip("[]"), int(found.group(2))))
     return addresses
@@ -131,7 +133,10 @@ def probe_master(master: str, timeout: float) -> None:
         except OSError as err:
             reasons.append(f"{host}:{port}: {err.strerror or err}")
     if reasons:
-        raise EngineError(f"cannot reach the Spark master {master}: {'; '.join(reasons)}")
+        raise EngineError(
+            f"cannot reach the Spark master {master}: {'; '.join(reasons)}",
+            code="spark-master-unreachable",
+        )
 
 
 def parse_settings(pairs: list[str] | tuple[str, ...], source: str) -> dict[str, str]:
@@ -145,7 +150,9 @@ def parse_settings(pairs: list[str] | tuple[str, ...], source: str) -> dict[str,
         key, sep, value = pair.partition("=")
         key = key.strip()
         if not sep or not key.startswith("spark.") or not value:
-            raise EngineError(f"{source} takes spark.KEY=VALUE, not '{pair}'")
+            raise EngineError(
+                f"{source} takes spark.KEY=VALUE, not '{pair}'", code="spark-setting-invalid"
+            )
         settings[key] = value
     return settings
 
@@ -226,7 +233,8 @@ class SessionRequest:
             if key in REQUIRED and value.strip().lower() != REQUIRED[key].lower():
                 raise EngineError(
                     f"{key}={value} would change what the study's SQL means; "
-                    f"ascertain runs with {key}={REQUIRED[key]}"
+                    f"ascertain runs with {key}={REQUIRED[key]}",
+                    code="spark-setting-refused",
                 )
         defaults = {k: v for k, v in TOOL_DEFAULTS.items() if k not in user}
         return {**defaults, **explicit, **REQUIRED}
@@ -288,7 +296,9 @@ def start_session(request: SessionRequest, passed: Mapping[str, str]) -> Any:
         from pyspark import SparkConf, SparkContext
         from pyspark.sql import SparkSession
     except ImportError as err:
-        raise EngineError("the Spark engine needs pyspark: pip install 'ascertain[spark]'") from err
+        raise EngineError(
+            "the Spark engine needs pyspark: pip install 'ascertain[spark]'", code="spark-missing"
+        ) from err
     probe_master(request.master, request.connect_timeout)
     conf = SparkConf().setMaster(request.master).setAppName("ascertain")
     conf.setAll(list(passed.items()))
@@ -296,7 +306,9 @@ def start_session(request: SessionRequest, passed: Mapping[str, str]) -> Any:
         # Launches the JVM with these settings as --conf (driver memory must be known then).
         SparkContext._ensure_initialized(conf=conf)
     except Exception as err:
-        raise EngineError(f"Java for Spark did not start: {str(err).strip()[:300]}") from err
+        raise EngineError(
+            f"Java for Spark did not start: {str(err).strip()[:300]}", code="java-failed"
+        ) from err
     # The wait runs in this thread (so the session is this thread's active one, as after a
     # plain getOrCreate); a timer stops the JVM if the master keeps it waiting too long, which
     # ends the wait with an error.
@@ -320,9 +332,12 @@ def start_session(request: SessionRequest, passed: Mapping[str, str]) -> Any:
             raise EngineError(
                 f"the Spark master {master} did not accept the application within {waited:g} s "
                 "(is it a Spark master of the same version as pyspark?); set spark: "
-                "connect_timeout_seconds to wait longer"
+                "connect_timeout_seconds to wait longer",
+                code="spark-master-timeout",
             ) from err
-        raise EngineError(f"the Spark master {master} refused: {_one_line(err)}") from err
+        raise EngineError(
+            f"the Spark master {master} refused: {_one_line(err)}", code="spark-master-refused"
+        ) from err
     finally:
         timer.cancel()
 

@@ -15,7 +15,7 @@ import duckdb
 from sqlglot import exp
 
 from pipeline.compile import unreadable_patient_date
-from pipeline.engine._duckdb import DuckDBEngine, _read_failure
+from pipeline.engine.duckdb import DuckDBEngine, read_failure
 from pipeline.errors import EngineError
 from pipeline.extract import ExtractTable
 from pipeline.extract.schema import POSITION_BASE, SourceTable, canonical_table
@@ -280,7 +280,9 @@ def profile_tables(
         try:
             return _profile(con, engine, sources, tables, threshold)
         except duckdb.Error as err:
-            raise _read_failure(err) or EngineError(f"DuckDB failed: {err}") from err
+            raise read_failure(err) or EngineError(
+                f"DuckDB failed: {err}", code="engine-failed"
+            ) from err
         finally:
             con.close()
 

@@ -20,8 +20,7 @@ import pyarrow as pa
 
 from pipeline.compile import EVIDENCE_COUNTS, Plan, compile_study, unmatched_definitions
 from pipeline.config import load_study
-from pipeline.engine import RunResult, SparkEngine
-from pipeline.engine._duckdb import StageCallback
+from pipeline.engine import RunResult, SparkEngine, StageCallback
 from pipeline.extract import HadoopFiles, is_hadoop_uri, open_extract
 from pipeline.outputs import (
     check_usable,

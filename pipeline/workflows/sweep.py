@@ -30,7 +30,7 @@ from pipeline.config._sweep import (
     target_parts,
 )
 from pipeline.config._yaml import LocatedDocument
-from pipeline.engine._duckdb import StageCallback
+from pipeline.engine import StageCallback
 from pipeline.extract import open_extract
 from pipeline.outputs._ownership import Owner, check_folder, install, staging
 from pipeline.workflows._sweep_numbers import COLUMNS, released_rows, sweep_rows

@@ -1,23 +1,23 @@
 """Run a plan on Spark: the same stages, rewritten where Spark SQL means something else.
 
-The rewrite rules live in :mod:`pipeline.engine._spark_sql`; this module binds the extract
-files as ``src_<table>`` views, runs the stages and fetches the outputs as Arrow. pyspark is
-imported only inside its functions: ``pip install ascertain[spark]`` is needed only to run.
+The steps every engine shares (binding, the stage loop, fetching) are in
+:mod:`pipeline.engine.base`; the rewrite rules in :mod:`pipeline.engine.spark_rewrites`. This
+module says how Spark reads the extract files, keeps each table stage, fetches the outputs as
+Arrow, and how its errors name a file. pyspark is imported only inside its functions:
+``pip install ascertain[spark]`` is needed only to run.
 """
 
 from __future__ import annotations
 
-import logging
 import re
-import time
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from typing import TYPE_CHECKING, Any
 
+import pyarrow as pa
 from sqlglot import exp
 
 from pipeline.compile import Plan, Stage
-from pipeline.engine._duckdb import _INTEGER_ID, RunResult, StageCallback, StageReport
 from pipeline.engine._spark_fetch import to_arrow
 from pipeline.engine._spark_session import (
     DEFAULT_CONNECT_TIMEOUT,
@@ -28,23 +28,20 @@ from pipeline.engine._spark_session import (
     start_session,
     user_settings,
 )
-from pipeline.engine._spark_sql import spark_plan, spark_query, try_cast
+from pipeline.engine.base import Engine
+from pipeline.engine.spark_rewrites import spark_plan, spark_query
 from pipeline.errors import EngineError, ExtractError
-from pipeline.extract import ExtractTable, source_column
-from pipeline.extract.schema import POSITION_BASE, SOURCE_POSITION, SOURCE_PROBLEM, SourceTable
+from pipeline.extract import ExtractTable
+from pipeline.extract.schema import POSITION_BASE, SOURCE_POSITION
 
 if TYPE_CHECKING:  # pragma: no cover
     from pyspark.sql import DataFrame, SparkSession
-
-log = logging.getLogger(__name__)
 
 # Where each ``table`` stage is kept: ``local_checkpoint`` (fastest; on the executors' local
 # disks, so a lost executor fails the build), ``checkpoint`` (written to a folder every machine
 # shares, survives a lost executor) or ``cache`` (memory and disk, recomputed from its lineage
 # when an executor is lost; later stages are planned over the whole lineage, which is slower).
 STAGE_STORAGE = ("local_checkpoint", "checkpoint", "cache")
-
-# -- the engine --------------------------------------------------------------------------------
 
 
 def _spark_error(err: BaseException) -> bool:
@@ -85,12 +82,16 @@ def _read_failure(err: BaseException) -> ExtractError | None:
     if record:
         shown = record.group(1).strip()[:60]
         return ExtractError(
-            f"{file.group(1)}: row {shown!r} has more or fewer fields than the header"
+            f"row {shown!r} has more or fewer fields than the header",
+            code="csv-ragged-row",
+            where=file.group(1),
         )
-    return ExtractError(f"{file.group(1)}: cannot be read: {_first_line(err)}")
+    return ExtractError(
+        f"cannot be read: {_first_line(err)}", code="file-unreadable", where=file.group(1)
+    )
 
 
-class SparkEngine:
+class SparkEngine(Engine["SparkSession"]):
     """Execute plans on Spark, ``local[*]`` by default or any cluster by its master URL.
 
     A session is created for each run (see :mod:`pipeline.engine._spark_session` for its
@@ -115,16 +116,18 @@ class SparkEngine:
         """The plan exactly as this engine runs it: every stage through the Spark rewrites."""
         return spark_plan(plan)
 
-    # Declared differences that compile could read (habit 5); none needs a compile change yet.
-    SUPPORTS_QUALIFY = False
-    NULLS_FIRST_BY_DEFAULT = True  # sqlglot writes NULLS LAST wherever DuckDB's default matters
-    STRICT_CSV_WIDTH = True  # ragged CSV rows fail the read (FAILFAST), as on DuckDB
+    # Declared differences the shared steps read (see pipeline.engine.base).
+    LABEL = "Spark"
     READS_FHIR = False  # FHIR bulk exports are read by the DuckDB engine only
-    # ROUND(double, d) rounds the shortest decimal text of the double (Double.toString) half
-    # up; DuckDB rounds its exact binary value. They differ at apparent ties (0.0055 -> 0.006
-    # here, 0.005 there), and Java's POW may differ from C's by one ulp. No SQL rule fixes
-    # this; compile should not ROUND doubles to near full precision when this flag is False.
-    ROUNDS_LIKE_DUCKDB = False
+    CHECK_ROWS_SHOWN = 5  # a failed check's rows are collected on the driver: a few suffice
+    TEXT_TYPE = "STRING"
+
+    @property
+    def version(self) -> str:
+        """Pyspark's version (imported only now: Spark is optional)."""
+        import pyspark
+
+        return str(pyspark.__version__)
 
     def __init__(
         self,
@@ -139,10 +142,14 @@ class SparkEngine:
         if stage_storage not in STAGE_STORAGE:
             raise EngineError(
                 f"Spark stage storage must be one of {', '.join(STAGE_STORAGE)}, "
-                f"not '{stage_storage}'"
+                f"not '{stage_storage}'",
+                code="spark-storage-invalid",
             )
         if (stage_storage == "checkpoint") != (checkpoint_folder is not None):
-            raise EngineError("Spark stage storage 'checkpoint' goes with a checkpoint folder")
+            raise EngineError(
+                "Spark stage storage 'checkpoint' goes with a checkpoint folder",
+                code="spark-storage-invalid",
+            )
         self.request = SessionRequest(master, dict(conf or {}), connect_timeout)
         self.session = session
         self.stage_storage = stage_storage
@@ -193,21 +200,22 @@ class SparkEngine:
             spark.stop()
 
     @contextmanager
-    def _session(self) -> Iterator[tuple[SparkSession, dict[str, Any]]]:
-        """A session for one run, with what it runs on: master and settings in effect."""
+    def _open(self) -> Iterator[SparkSession]:
+        """A session for one run, stopped afterwards unless it is shared.
+
+        A session passed in, or one already running in this process (a notebook, a test
+        module), is shared: the run gets its own ``newSession()`` and leaves the shared one up.
+        """
         from pyspark.sql import SparkSession
 
         user = user_settings()
-        watched = self.request.watched(user)
-        # A session passed in, or one already running in this process (a notebook, a test
-        # module), is shared: the run gets its own newSession() and leaves the shared one up.
         shared = self.session or SparkSession.getActiveSession()
         if shared is None:
             spark = start_session(self.request, self.request.passed(user))
             spark.sparkContext.setLogLevel("FATAL")
             try:
                 with self._storage(spark):
-                    yield spark, self._describe(spark, watched)
+                    yield spark
             finally:
                 spark.stop()
             return
@@ -217,17 +225,18 @@ class SparkEngine:
                 spark.conf.set(key, value)
         try:
             with self._storage(spark):
-                yield spark, self._describe(spark, watched)
+                yield spark
         finally:
             spark.catalog.clearCache()
 
-    def _describe(self, spark: SparkSession, watched: list[str]) -> dict[str, Any]:
-        info: dict[str, Any] = {
-            "master": safe_master(spark.sparkContext.master),
-            "settings": settings_in_effect(spark, watched),
+    def _engine_info(self, conn: SparkSession) -> dict[str, Any]:
+        """The master, the settings in effect (redacted) and where table stages were kept."""
+        watched = self.request.watched(user_settings())
+        return {
+            "master": safe_master(conn.sparkContext.master),
+            "settings": settings_in_effect(conn, watched),
             "stage_storage": self.stage_storage,
         }
-        return info
 
     @contextmanager
     def _storage(self, spark: SparkSession) -> Iterator[None]:
@@ -241,8 +250,9 @@ class SparkEngine:
         except Exception as err:
             if _spark_error(err):
                 raise EngineError(
-                    f"the checkpoint folder {self.checkpoint_folder} cannot be used: "
-                    f"{_first_line(err)}"
+                    f"cannot be used as the checkpoint folder: {_first_line(err)}",
+                    code="checkpoint-folder-unusable",
+                    where=self.checkpoint_folder,
                 ) from err
             raise
         # Spark made a fresh subfolder (a random name) for this context: ours to remove.
@@ -254,42 +264,6 @@ class SparkEngine:
                 jvm = context._jvm
                 path = jvm.org.apache.hadoop.fs.Path(made)
                 path.getFileSystem(context._jsc.hadoopConfiguration()).delete(path, True)  # noqa: FBT003 (Java: recursive)
-
-    def run(
-        self,
-        plan: Plan,
-        tables: dict[str, ExtractTable],
-        *,
-        on_stage: StageCallback | None = None,
-        patients: tuple[str, ...] | None = None,
-    ) -> RunResult:
-        """Run every stage of the plan and return its outputs, sorted as the plan says.
-
-        ``patients`` restricts every source table to those patient ids (used to trace one).
-
-        Raises:
-            EngineError: Spark rejected a stage or a check stage found offending rows.
-            ExtractError: An extract file could not be read.
-        """
-        for table in tables.values():
-            if table.file_format == "fhir" and not self.READS_FHIR:
-                raise EngineError(
-                    f"the Spark engine cannot read the FHIR export {table.name}; use DuckDB"
-                )
-        with self._session() as (spark, info):
-            import pyspark
-
-            try:
-                result = self._run(spark, plan, tables, on_stage, patients)
-                result.engine_info = info
-            except (ExtractError, EngineError):
-                raise
-            except Exception as err:
-                if _spark_error(err):
-                    raise EngineError(f"Spark failed: {_first_line(err)}") from err
-                raise
-            result.engine, result.engine_version = "spark", pyspark.__version__
-            return result
 
     # -- binding sources -----------------------------------------------------------------------
 
@@ -350,69 +324,45 @@ class SparkEngine:
             nullValue="",
         )
 
-    def _id_type(self, spark: SparkSession, patients: DataFrame, table: ExtractTable) -> str:
-        """The type patient_id gets in every table, as on DuckDB: the patients file's own type.
+    def _table_rows(self, conn: SparkSession, table: ExtractTable) -> exp.Expression:
+        # Registered as a view of its own, as the SQL of the source view reads it.
+        raw = f"src_{table.name}_raw"
+        self._read(conn, table).createOrReplaceTempView(raw)
+        return exp.to_table(raw)
 
-        CSV ids all in canonical integer form are BIGINT (sorting 9 before 10), others text.
-        """
-        column = source_column(table, "patient_id")
-        if table.file_format == "parquet":
-            typed = patients.selectExpr(column.sql(self.DIALECT))
-            return str(typed.schema.fields[0].dataType.simpleString())
-        match = exp.RegexpLike(this=column, expression=exp.Literal.string(_INTEGER_ID))
-        probe = exp.select(exp.func("BOOL_AND", match)).from_("src_patients_raw")
-        patients.createOrReplaceTempView("src_patients_raw")
-        rows = spark.sql(probe.sql(self.DIALECT)).collect()
-        return "BIGINT" if rows and rows[0][0] else "STRING"
+    def _column_type(self, conn: SparkSession, table: ExtractTable, column: exp.Expression) -> str:
+        typed = self._read(conn, table).selectExpr(column.sql(self.DIALECT))
+        return str(typed.schema.fields[0].dataType.simpleString())
 
-    def _bind(
-        self,
-        spark: SparkSession,
-        sources: tuple[SourceTable, ...],
-        tables: dict[str, ExtractTable],
-        patients: tuple[str, ...] | None,
-    ) -> None:
-        if not sources:
-            return
-        frames = {name: self._read(spark, table) for name, table in tables.items()}
-        id_type = exp.DataType.build(
-            self._id_type(spark, frames["patients"], tables["patients"]), dialect=self.DIALECT
-        )
-        for source in sources:
-            table = tables[source.name]
-            raw = f"{source.relation}_raw"
-            frames[source.name].createOrReplaceTempView(raw)
-            columns: list[exp.Expression] = []
-            for name in source.columns:
-                if name not in table.provides:
-                    columns.append(exp.cast(exp.null(), "VARCHAR").as_(name))
-                elif name == "patient_id":
-                    column = source_column(table, name)
-                    columns.append(try_cast(column, id_type).as_(name))
-                else:
-                    columns.append(source_column(table, name).as_(name))
-            # Spark reads no FHIR, the one reader that sets rows aside itself.
-            problem = exp.cast(exp.null(), "VARCHAR").as_(SOURCE_PROBLEM)
-            view = exp.select(*columns, exp.column(SOURCE_POSITION), problem).from_(raw)
-            if patients is not None:
-                wanted = [try_cast(exp.Literal.string(p), id_type) for p in patients]
-                typed = try_cast(exp.column("patient_id"), id_type)
-                view = exp.select("*").from_(view.subquery("v")).where(typed.isin(*wanted))
-            spark.sql(spark_query(view).sql(self.DIALECT)).createOrReplaceTempView(source.relation)
+    def _create_view(self, conn: SparkSession, name: str, query: exp.Query) -> None:
+        conn.sql(spark_query(query).sql(self.DIALECT)).createOrReplaceTempView(name)
+
+    def _first_rows(self, conn: SparkSession, query: exp.Query, limit: int | None) -> list[Any]:
+        frame = conn.sql(spark_query(query).sql(self.DIALECT))
+        return list(frame.collect() if limit is None else frame.limit(limit).collect())
+
+    def _fetch(
+        self, conn: SparkSession, stage_name: str, order: Sequence[str], rows: int | None
+    ) -> pa.Table:
+        # Sorted as DuckDB sorts (NULLs last), in partitions of bounded size.
+        return to_arrow(conn.table(stage_name), order, rows)
+
+    def _is_own_error(self, err: BaseException) -> bool:
+        return _spark_error(err)
+
+    def _error_text(self, err: BaseException) -> str:
+        return _first_line(err)
+
+    def _read_failure(self, err: BaseException) -> ExtractError | None:
+        return _read_failure(err)
 
     # -- running stages ------------------------------------------------------------------------
 
-    def _execute(self, spark: SparkSession, stage: Stage) -> int | None:
-        frame = spark.sql(spark_query(stage.query).sql(self.DIALECT))
-        if stage.kind == "check":
-            rows = frame.limit(5).collect()
-            if rows:
-                shown = "; ".join(", ".join(str(v) for v in row) for row in rows)
-                raise EngineError(f"{stage.failure} (stage {stage.name}; first rows: {shown})")
-            return 0
+    def _materialise(self, conn: SparkSession, stage: Stage) -> tuple[int | None, int | None]:
+        frame = conn.sql(spark_query(stage.query).sql(self.DIALECT))
         if stage.kind == "view":
             frame.createOrReplaceTempView(stage.name)
-            return None
+            return None, None
         # A checkpoint computes the table once and cuts its lineage, so later stages read it as
         # a scan rather than re-planning (and re-rendering) everything upstream. A local one
         # lives on the executors' disks; a reliable one in the shared folder; a cached one is
@@ -427,42 +377,4 @@ class SparkEngine:
             frame = frame.persist(StorageLevel.MEMORY_AND_DISK)
         count = frame.count()
         frame.createOrReplaceTempView(stage.name)
-        return int(count)
-
-    def _run(
-        self,
-        spark: SparkSession,
-        plan: Plan,
-        tables: dict[str, ExtractTable],
-        on_stage: StageCallback | None,
-        patients: tuple[str, ...] | None,
-    ) -> RunResult:
-        try:
-            self._bind(spark, plan.sources, tables, patients)
-        except Exception as err:
-            if _spark_error(err):
-                raise ExtractError(f"Spark could not read the extract: {_first_line(err)}") from err
-            raise
-        reports: list[StageReport] = []
-        for number, stage in enumerate(plan.stages, start=1):
-            if on_stage:
-                on_stage(stage, number, len(plan.stages))
-            started = time.perf_counter()
-            try:
-                rows = self._execute(spark, stage)
-            except EngineError:
-                raise
-            except Exception as err:
-                if _spark_error(err):
-                    message = f"stage {stage.name} failed on Spark: {_first_line(err)}"
-                    raise _read_failure(err) or EngineError(message) from err
-                raise
-            reports.append(StageReport(stage.name, stage.kind, time.perf_counter() - started, rows))
-            log.debug("stage %s: %.3fs, %s rows", stage.name, reports[-1].seconds, rows)
-        counted = {report.name: report.rows for report in reports}
-        outputs = {}
-        for output, stage_name, order in plan.outputs:
-            # Sorted as DuckDB sorts (NULLs last), in partitions of bounded size.
-            frame = spark.table(stage_name)
-            outputs[output] = to_arrow(frame, order, counted.get(stage_name))
-        return RunResult(outputs, reports)
+        return int(count), None
