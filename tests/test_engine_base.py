@@ -10,9 +10,9 @@ from collections.abc import Callable
 from pathlib import Path
 
 import pytest
-from pipeline._build import plan_study
 from sqlglot import exp, parse_one
 
+from pipeline import plan_study
 from pipeline.compile import Plan, SourceTable, Stage
 from pipeline.engine import DuckDBEngine, SparkEngine
 from pipeline.engine._spark_session import SessionRequest, master_addresses, parse_settings
