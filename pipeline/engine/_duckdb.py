@@ -81,8 +81,11 @@ _OPTIMIZERS = exp.select("name").from_("duckdb_optimizers()").sql("duckdb")
 _DISABLED_OPTIMIZERS = ("type_pushdown", "build_side_probe_side")
 
 
-def _rows(table: ExtractTable) -> exp.Expression:
+def _rows(table: ExtractTable, source: SourceTable) -> exp.Expression:
     """The rows of one extract table, each CSV row with its position (see SOURCE_POSITION).
+
+    ``source`` is the table as the plan reads it: the FHIR reader takes from it the code
+    systems and LOINC codes the study reads.
 
     Each CSV file is read on its own and numbered by ``ROW_NUMBER() OVER ()``, which DuckDB
     runs as a streaming window over the reader's output in file order. Blank lines are not
@@ -94,7 +97,7 @@ def _rows(table: ExtractTable) -> exp.Expression:
     no_position = exp.cast(exp.null(), "BIGINT").as_(SOURCE_POSITION)
     if table.file_format == "fhir":
         # The FHIR reader gives each row its file and line, and its own problem with it.
-        return fhir_source(table).subquery("r")
+        return fhir_source(table, source).subquery("r")
     if table.file_format == "parquet":
         return exp.select(every, no_position).from_(exp.Table(this=_reader(table))).subquery("r")
     parts = []
@@ -272,7 +275,7 @@ class DuckDBEngine:
                     columns.append(exp.TryCast(this=column, to=id_type.copy()).as_(name))
                 else:
                     columns.append(source_column(table, name).as_(name))
-            rows = _rows(table)
+            rows = _rows(table, source)
             problem = (
                 exp.column(SOURCE_PROBLEM)
                 if table.file_format == "fhir"
