@@ -128,7 +128,8 @@ def test_edge_cases(fhir_rows: dict[str, list[tuple[str | None, ...]]]) -> None:
     assert ("OB-008", None, "amb") in fhir_rows["encounters"]  # no period.start
     # diagnoses: patient_id, event_date, code_system, code, source
     assert _where(fhir_rows["diagnoses"], "OB-004") == [
-        ("OB-004", "2016-02-01", "http://snomed.info/sct", "38341003", "problem_list"),
+        # SNOMED CT only, in a study reading ICD-10: its known coding, used and matching nothing
+        ("OB-004", "2016-02-01", "SNOMED", "38341003", "problem_list"),
         ("OB-004", "2016-08-01", None, None, "visit"),
     ]
     # The same code under icd-10 and icd-10-cm is one row; a year-month onset -> the 15th.

@@ -119,7 +119,7 @@ def test_shipped_measures_keep_their_conversions() -> None:
 
 
 def test_shipped_loinc_codes_agree_with_the_fhir_reader() -> None:
-    # the FHIR reader still reads its own table; the files must say the same
+    # the FHIR reader's own table (read without a plan: the synthetic writer) must say the same
     from_files = {
         code: m.name
         for m in shipped_measures().measures.values()

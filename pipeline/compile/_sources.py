@@ -8,6 +8,8 @@ known system). The stages here read the usable rows of those judgements.
 
 from __future__ import annotations
 
+from dataclasses import replace
+
 from sqlglot import exp
 
 from pipeline.codes import EXTRACT_PATTERNS, normalised_code_sql, read2_code_sql
@@ -69,15 +71,50 @@ def grouped_rows(table: SourceTable, *, check_duplicates: bool) -> exp.Query:
 
 
 def source_tables(ctx: CompileContext) -> tuple[SourceTable, ...]:
-    """The extract tables this study reads."""
+    """The extract tables this study reads.
+
+    The plan's sources are the seam through which a reader learns what the study reads before
+    any row is read: ``diagnoses`` carries the code systems of the study's diagnosis evidence,
+    ``measurements`` the LOINC codes of its measure registry. Only the FHIR reader uses them
+    (a Condition coded twice, an Observation named by LOINC); the SQL of the stages is the
+    same, and both come from files the manifest already hashes (definitions, measures).
+    """
     tables = [PATIENTS, ENCOUNTERS]
     if ctx.uses("diagnosis"):
-        tables.append(DIAGNOSES)
+        tables.append(replace(DIAGNOSES, code_systems=diagnosis_systems(ctx)))
     if ctx.uses("prescription"):
         tables.append(PRESCRIPTIONS)
     if ctx.measures:
-        tables.append(MEASUREMENTS)
+        tables.append(replace(MEASUREMENTS, measure_codes=measure_codes(ctx)))
     return tuple(tables)
+
+
+def diagnosis_systems(ctx: CompileContext) -> tuple[str, ...]:
+    """The code systems the study's diagnosis evidence reads (inline codes and lists), sorted."""
+    systems: set[str] = set()
+    for key, ev in ctx.evidence:
+        if ev.diagnosis is None:
+            continue
+        for codes in (ev.diagnosis, ev.diagnosis.exclude):
+            if codes is not None:
+                systems.update(s for s in ("ICD9", "ICD10") if getattr(codes, s))
+        systems.update(use.code_list.system for use in ctx.evidence_lists.get(key, ()))
+    return tuple(sorted(systems - {"ATC"}))
+
+
+def measure_codes(ctx: CompileContext) -> tuple[tuple[str, str], ...]:
+    """Every (LOINC code, measure) the study's measure registry declares, sorted.
+
+    The whole registry, not only the measures the study reads: an observation of a measure the
+    study does not read is then counted in the quality log as such, not as an unknown code.
+    """
+    found = {
+        (code, name)
+        for name, measure in ctx.registry.measures.items()
+        for system, code in measure.codes
+        if system == "LOINC"
+    }
+    return tuple(sorted(found))
 
 
 # Only the rows ``patients_judged`` finds usable.

@@ -131,10 +131,14 @@ class Engine(ABC, Generic[Connection]):
         """A connection for one run, closed (and its scratch space removed) afterwards."""
 
     @abstractmethod
-    def _table_rows(self, conn: Connection, table: ExtractTable) -> exp.Expression:
+    def _table_rows(
+        self, conn: Connection, table: ExtractTable, source: SourceTable | None = None
+    ) -> exp.Expression:
         """One extract table's rows as a relation to select from, with ``source_position``.
 
-        A FHIR table also carries ``source_problem``. Every CSV value is text.
+        A FHIR table also carries ``source_problem``; its reader takes from ``source`` (the
+        table as the plan reads it) the code systems and LOINC codes the study reads. Every
+        CSV value is text.
         """
 
     def _probe_rows(self, conn: Connection, table: ExtractTable) -> exp.Expression:
@@ -313,7 +317,7 @@ class Engine(ABC, Generic[Connection]):
                 if table.file_format == "fhir"
                 else exp.cast(exp.null(), "VARCHAR").as_(SOURCE_PROBLEM)
             )
-            rows = self._table_rows(conn, table)
+            rows = self._table_rows(conn, table, source)
             view = exp.select(*columns, exp.column(SOURCE_POSITION), problem).from_(rows)
             if patients is not None:
                 # Restrict every table to some patients (a trace); ids compared as typed values.

@@ -25,7 +25,7 @@ from pipeline.compile import Stage
 from pipeline.engine.base import Engine
 from pipeline.errors import ExtractError
 from pipeline.extract import ExtractTable, fhir_source, table_function
-from pipeline.extract.schema import POSITION_BASE, SOURCE_POSITION
+from pipeline.extract.schema import POSITION_BASE, SOURCE_POSITION, SourceTable
 
 _OPTIMIZERS = exp.select("name").from_("duckdb_optimizers()").sql("duckdb")
 
@@ -41,8 +41,11 @@ _OPTIMIZERS = exp.select("name").from_("duckdb_optimizers()").sql("duckdb")
 _DISABLED_OPTIMIZERS = ("type_pushdown", "build_side_probe_side")
 
 
-def _rows(table: ExtractTable) -> exp.Expression:
+def _rows(table: ExtractTable, source: SourceTable | None = None) -> exp.Expression:
     """The rows of one extract table, each CSV row with its position (see SOURCE_POSITION).
+
+    ``source`` is the table as the plan reads it: the FHIR reader takes from it the code
+    systems and LOINC codes the study reads.
 
     Each CSV file is read on its own and numbered by ``ROW_NUMBER() OVER ()``, which DuckDB
     runs as a streaming window over the reader's output in file order. Blank lines are not
@@ -54,7 +57,7 @@ def _rows(table: ExtractTable) -> exp.Expression:
     no_position = exp.cast(exp.null(), "BIGINT").as_(SOURCE_POSITION)
     if table.file_format == "fhir":
         # The FHIR reader gives each row its file and line, and its own problem with it.
-        return fhir_source(table).subquery("r")
+        return fhir_source(table, source).subquery("r")
     if table.file_format == "parquet":
         return (
             exp.select(every, no_position)
@@ -210,8 +213,13 @@ class DuckDBEngine(Engine[duckdb.DuckDBPyConnection]):
             rows = conn.sql("SELECT SUM(memory_usage_bytes) FROM duckdb_memory()").fetchall()
             return int(rows[0][0] or 0)
 
-    def _table_rows(self, conn: duckdb.DuckDBPyConnection, table: ExtractTable) -> exp.Expression:
-        return _rows(table)
+    def _table_rows(
+        self,
+        conn: duckdb.DuckDBPyConnection,
+        table: ExtractTable,
+        source: SourceTable | None = None,
+    ) -> exp.Expression:
+        return _rows(table, source)
 
     def _probe_rows(self, conn: duckdb.DuckDBPyConnection, table: ExtractTable) -> exp.Expression:
         # The plain reader: the probe needs no row positions.

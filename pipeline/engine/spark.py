@@ -32,7 +32,7 @@ from pipeline.engine.base import Engine
 from pipeline.engine.spark_rewrites import spark_plan, spark_query
 from pipeline.errors import EngineError, ExtractError
 from pipeline.extract import ExtractTable
-from pipeline.extract.schema import POSITION_BASE, SOURCE_POSITION
+from pipeline.extract.schema import POSITION_BASE, SOURCE_POSITION, SourceTable
 
 if TYPE_CHECKING:  # pragma: no cover
     from pyspark.sql import DataFrame, SparkSession
@@ -324,7 +324,9 @@ class SparkEngine(Engine["SparkSession"]):
             nullValue="",
         )
 
-    def _table_rows(self, conn: SparkSession, table: ExtractTable) -> exp.Expression:
+    def _table_rows(
+        self, conn: SparkSession, table: ExtractTable, source: SourceTable | None = None
+    ) -> exp.Expression:
         # Registered as a view of its own, as the SQL of the source view reads it.
         raw = f"src_{table.name}_raw"
         self._read(conn, table).createOrReplaceTempView(raw)

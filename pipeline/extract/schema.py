@@ -42,12 +42,21 @@ class SourceTable:
         required: Columns that must be present in the file.
         optional: Columns read when present and taken as NULL otherwise.
         one_of: Groups of columns of which at least one must be present.
+        code_systems: For ``diagnoses``: the code systems the study's definitions read
+            (``ICD10``, ``SNOMED``...). A reader of records coded in several systems at once
+            (a FHIR Condition) gives a row per coding in these systems; empty: the reader's
+            default. CSV and Parquet readers ignore it.
+        measure_codes: For ``measurements``: (LOINC code, measure) pairs of every measure file
+            the study may read (shipped and its own), so a reader of LOINC-coded observations
+            (FHIR) names them as the study's measures; empty: the reader's own table.
     """
 
     name: str
     required: tuple[str, ...]
     optional: tuple[str, ...] = ()
     one_of: tuple[tuple[str, ...], ...] = ()
+    code_systems: tuple[str, ...] = ()
+    measure_codes: tuple[tuple[str, str], ...] = ()
 
     @property
     def relation(self) -> str:

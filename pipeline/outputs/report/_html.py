@@ -13,6 +13,7 @@ from typing import Any
 
 import polars as pl
 
+from pipeline.outputs.report._codes import codes_section
 from pipeline.outputs.report._html_cells import n_cell as _n
 from pipeline.outputs.report._html_cells import table as _table
 from pipeline.outputs.report._html_cells import thousands as _thousands
@@ -45,13 +46,15 @@ SECTIONS = (
     ("combinations", "Outcome combinations"),
     ("dependence", "Pairwise dependence"),
     ("definitions", "Definitions"),
+    ("codes", "Codes matched by each definition"),
     ("quality", "Data quality"),
     ("manifest", "Manifest"),
 )
 """Section ids and headings, in page order (the cautions box comes before them)."""
 
-OPTIONAL_SECTIONS = ("rates",)
-"""Sections shown only when the build has what they need (rates: ``persontime.parquet``)."""
+OPTIONAL_SECTIONS = ("rates", "codes")
+"""Sections shown only when the build has what they need (rates: ``persontime.parquet``;
+codes: the files of ``ascertain codes`` in the build folder)."""
 
 CSS = """
 :root{--ink:#1f2b2a;--muted:#5d6a67;--paper:#fbfaf6;--card:#ffffff;--line:#d9d4c8;
@@ -329,6 +332,7 @@ def assemble(
         "combinations": _combinations(summaries["combinations"], titles),
         "dependence": dependence_section(summaries["dependence"], titles),
         "definitions": _definitions(study.definitions),
+        "codes": codes_section(summaries.get("codes_matched"), summaries.get("codes_near_misses")),
         "quality": _quality(quality),
         "manifest": _manifest(manifest),
     }

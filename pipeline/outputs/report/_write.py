@@ -27,6 +27,7 @@ from pipeline.errors import AscertainError
 from pipeline.outputs._manifest import definition_path, read_manifest, sha256_file
 from pipeline.outputs._ownership import REPORT, check_folder, install, staging
 from pipeline.outputs.report._at_risk import at_risk_block, render_at_risk
+from pipeline.outputs.report._codes import RELEASED_NOTE, codes_summaries, read_audit
 from pipeline.outputs.report._curves import Headline, outcome_curves
 from pipeline.outputs.report._html import assemble
 from pipeline.outputs.report._rates import (
@@ -297,6 +298,11 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
         summaries["standardised_rates"] = standardised_summary(rates, hidden)
         if study.reference is not None:  # the study names reference rates: SMRs
             summaries["smr"] = smr_summary(persontime, cohort, study.reference, rates, hidden, t)
+    audit = read_audit(output_dir)  # the codes section only when `codes` wrote here
+    if audit is not None and audit[1]:
+        study.notes.append(RELEASED_NOTE)
+    elif audit is not None:
+        summaries.update(codes_summaries(audit[0], t))
     html = assemble(
         study=study,
         manifest=manifest,

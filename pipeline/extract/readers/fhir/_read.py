@@ -20,6 +20,7 @@ from pathlib import Path
 import sqlglot
 from sqlglot import exp
 
+from pipeline.extract.readers.fhir._codes import STATUS_SET_ASIDE
 from pipeline.extract.schema import POSITION_BASE
 
 # The fields read from each resource type, and the DuckDB type each is read as.
@@ -266,3 +267,33 @@ def lookup(key: exp.Expression, mapping: Mapping[str, str]) -> exp.Expression:
     for k, v in sorted(mapping.items()):
         case = case.when(exp.Literal.string(k), exp.Literal.string(v))
     return case
+
+
+Files = Mapping[str, Sequence[tuple[int, Path]]]
+"""A resource type -> the (index, path) of each file holding it."""
+
+
+def status_problem(resource_type: str, status: exp.Expression) -> exp.Expression:
+    """The reason a resource's status sets it aside (``STATUS_SET_ASIDE``), else NULL."""
+    return lookup(status, STATUS_SET_ASIDE[resource_type])
+
+
+def read_type(files: Files, resource_type: str) -> exp.Expression:
+    """The parsed resources of one type (no files: an empty relation of the same shape)."""
+    return resources(resource_type, files.get(resource_type, ()))
+
+
+# The reader's problems, first that applies: the line, the subject, the status, the date.
+_PROBLEM = """
+COALESCE(
+  line_problem,
+  CASE WHEN patient_id IS NULL THEN 'no patient reference' END,
+  status_problem,
+  DATE_PROBLEM(date_text)
+)
+"""
+
+
+def row_problem() -> exp.Expression:
+    """The reader's ``source_problem`` of a row with the columns named in ``_PROBLEM``."""
+    return fill(f"SELECT {_PROBLEM}").expressions[0]

@@ -17,11 +17,19 @@ Resources map to rows as follows (the Bulk Data file name says which type a file
   ``managingOrganization.reference`` as ``practice_id``. ``deceasedBoolean`` is not read: a
   patient known to be dead without a date has no death date and is followed as alive.
 - ``Encounter`` -> ``encounters``: ``subject``, ``period.start``, ``class.code`` lower-cased.
-- ``Condition`` -> ``diagnoses``: one row per distinct ICD-10 or ICD-9-CM coding (chosen by
-  system URI or OID, :data:`ICD_SYSTEMS`; other codings such as SNOMED CT are ignored). A
-  Condition with no such coding still gives one row, carrying its first coding's system URI
-  and code (or NULLs when it has none), so the quality log counts it as an unknown code
-  system instead of losing it. The date is ``onsetDateTime``, else ``onsetPeriod.start``, else
+- ``Condition`` -> ``diagnoses``: the reader knows ICD-10 and ICD-9-CM codings (by system
+  URI or OID, :data:`ICD_SYSTEMS`) and SNOMED CT (:data:`SNOMED_SYSTEM`, code system
+  ``SNOMED``). A Condition gives one row per distinct coding in a system the study's
+  diagnosis evidence reads (the plan's ``SourceTable.code_systems``; ICD-10 and ICD-9 when
+  the plan names none). A Condition coded in ICD-10 and SNOMED CT is one clinical fact
+  written twice: a study reading one of the systems sees it once, so a rule counting rows
+  does not count it twice; a study reading both gets a row per system, one for each of its
+  lists (evidence listing both systems then counts such a Condition twice unless it counts
+  ``distinct_days``). A Condition with no coding the study reads gives one row per known
+  coding (used, matching nothing, as a CSV row of another code would), and one with no
+  known coding gives one row carrying its first coding's system URI and code (or NULLs when
+  it has none), so the quality log counts it as an unknown code system instead of losing
+  it. The date is ``onsetDateTime``, else ``onsetPeriod.start``, else
   ``recordedDate``; ``source`` is ``problem_list`` when a category is ``problem-list-item``,
   else ``visit``.
 - ``MedicationRequest`` and ``MedicationStatement`` -> ``prescriptions``: the medication is
@@ -35,10 +43,13 @@ Resources map to rows as follows (the Bulk Data file name says which type a file
   Requests start at ``authoredOn`` and stop at the first dosage instruction's
   ``timing.repeat.boundsPeriod.end``, else ``dispenseRequest.validityPeriod.end``; statements
   use ``effectiveDateTime`` or ``effectivePeriod``. A stop before the start is set aside.
-- ``Observation`` -> ``measurements``: one row per distinct measure its LOINC codings map to
-  (:data:`LOINC_MEASURES`); each ``component`` entry (a blood pressure panel) gives its own
-  row, and so does the observation's own value when it has one beside its components. Unmapped
-  LOINC codes give ``measure`` = ``loinc:<code>`` (counted as an unknown measure).
+- ``Observation`` -> ``measurements``: one row per distinct measure its LOINC codings map to:
+  the LOINC codes of the study's measure files, shipped and its own (the plan's
+  ``SourceTable.measure_codes``), else the reader's own :data:`LOINC_MEASURES` (the same
+  codes as the shipped measure files; used by the synthetic writer); each ``component``
+  entry (a blood pressure panel) gives its own row, and so does the observation's own value
+  when it has one beside its components. Unmapped LOINC codes give ``measure`` =
+  ``loinc:<code>`` (counted as an unknown measure).
   ``valueQuantity`` gives ``value`` and ``unit`` (the UCUM code when the system is UCUM, else
   the printed unit); ``valueInteger`` gives ``value``; a comparator (``<``, ``>=``...) is kept
   by writing the value as text, e.g. ``>90``; ``valueString`` and the text of
@@ -59,36 +70,28 @@ Statuses set aside are :data:`STATUS_SET_ASIDE`; every other status (a ``provisi
 from __future__ import annotations
 
 import logging
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable
 from pathlib import Path
+from typing import Protocol
 
 from sqlglot import exp
 
 from pipeline.extract._table import ExtractTable
-from pipeline.extract.readers.fhir._codes import (
-    ATC_SYSTEM,
-    ICD_SYSTEMS,
-    LOINC_MEASURES,
-    LOINC_SYSTEM,
-    SNOMED_SMOKING,
-    SNOMED_SYSTEM,
-    STATUS_SET_ASIDE,
-    UCUM_SYSTEM,
+from pipeline.extract.readers.fhir._codes import ATC_SYSTEM, ICD_SYSTEMS, SNOMED_SYSTEM
+from pipeline.extract.readers.fhir._observations import fhir_measurements
+from pipeline.extract.readers.fhir._read import (
+    READ_COLUMNS,
+    Files,
+    fill,
+    lookup,
+    read_type,
+    row_problem,
+    status_problem,
+    strings,
 )
-from pipeline.extract.readers.fhir._read import READ_COLUMNS, fill, lookup, resources, strings
+from pipeline.extract.schema import SourceTable
 
 log = logging.getLogger(__name__)
-
-
-Files = Mapping[str, Sequence[tuple[int, Path]]]
-
-
-def _status(resource_type: str, status: exp.Expression) -> exp.Expression:
-    return lookup(status, STATUS_SET_ASIDE[resource_type])
-
-
-def _read(files: Files, resource_type: str) -> exp.Expression:
-    return resources(resource_type, files.get(resource_type, ()))
 
 
 _PATIENTS = """
@@ -112,18 +115,10 @@ FROM :patient
 
 def fhir_patients(files: Files) -> exp.Select:
     """``patients`` from Patient resources."""
-    return fill(_PATIENTS, year=exp.Literal.string("^[0-9]{4}$"), patient=_read(files, "Patient"))
+    return fill(
+        _PATIENTS, year=exp.Literal.string("^[0-9]{4}$"), patient=read_type(files, "Patient")
+    )
 
-
-# The reader's problems, first that applies: the line, the subject, the status, the date.
-_PROBLEM = """
-COALESCE(
-  line_problem,
-  CASE WHEN patient_id IS NULL THEN 'no patient reference' END,
-  status_problem,
-  DATE_PROBLEM(date_text)
-)
-"""
 
 _ENCOUNTERS = """
 SELECT
@@ -145,17 +140,13 @@ FROM (
 """
 
 
-def _problem() -> exp.Expression:
-    return fill(f"SELECT {_PROBLEM}").expressions[0]
-
-
 def fhir_encounters(files: Files) -> exp.Select:
     """``encounters`` from Encounter resources."""
     return fill(
         _ENCOUNTERS,
-        problem=_problem(),
-        status=_status("Encounter", exp.column("status")),
-        encounter=_read(files, "Encounter"),
+        problem=row_problem(),
+        status=status_problem("Encounter", exp.column("status")),
+        encounter=read_type(files, "Encounter"),
     )
 
 
@@ -169,7 +160,7 @@ FROM (
     event_date,
     source,
     UNNEST(
-      CASE WHEN LEN(usable) > 0 THEN usable
+      CASE WHEN LEN(usable) > 0 THEN usable WHEN LEN(known) > 0 THEN known
       ELSE [{
         'code_system': json_extract_string(code, '$.coding[0].system'),
         'code': json_extract_string(code, '$.coding[0].code')
@@ -195,8 +186,13 @@ FROM (
       ARRAY(
         SELECT DISTINCT {'code_system': :label, 'code': json_extract_string(c, '$.code')}
         FROM (SELECT UNNEST(json_extract(code, '$.coding[*]')) AS c) AS codings
-        WHERE json_extract_string(c, '$.system') IN :systems
+        WHERE json_extract_string(c, '$.system') IN :read_systems
       ) AS usable,
+      ARRAY(
+        SELECT DISTINCT {'code_system': :label, 'code': json_extract_string(c, '$.code')}
+        FROM (SELECT UNNEST(json_extract(code, '$.coding[*]')) AS c) AS codings
+        WHERE json_extract_string(c, '$.system') IN :known_systems
+      ) AS known,
       CASE
         WHEN LIST_CONTAINS(json_extract_string(verificationStatus, '$.coding[*].code'),
           'entered-in-error') THEN 'entered in error'
@@ -211,15 +207,26 @@ FROM (
 """
 
 
-def fhir_diagnoses(files: Files) -> exp.Select:
-    """``diagnoses`` from Condition resources: one row per distinct ICD coding."""
+# The diagnosis codings the reader knows: system URI or OID -> the pipeline's code system.
+DIAGNOSIS_SYSTEMS = {**ICD_SYSTEMS, SNOMED_SYSTEM: "SNOMED"}
+# What a plan without code systems reads (the reader's behaviour before SNOMED CT was read).
+DEFAULT_READ = ("ICD10", "ICD9")
+
+
+def fhir_diagnoses(files: Files, source: SourceTable | None = None) -> exp.Select:
+    """``diagnoses`` from Condition resources: a row per coding in the systems the study reads."""
+    wanted = (source.code_systems if source is not None else ()) or DEFAULT_READ
+    read = [uri for uri, label in DIAGNOSIS_SYSTEMS.items() if label in wanted]
     system = exp.func("json_extract_string", exp.column("c"), exp.Literal.string("$.system"))
     return fill(
         _DIAGNOSES,
-        problem=_problem(),
-        label=lookup(system, ICD_SYSTEMS),
-        systems=strings(list(ICD_SYSTEMS)),
-        condition=_read(files, "Condition"),
+        problem=row_problem(),
+        label=lookup(system, DIAGNOSIS_SYSTEMS),
+        # An empty IN list does not parse: a study reading none of the reader's systems (only
+        # Read v2, say) names a system no coding has.
+        read_systems=strings(read or [""]),
+        known_systems=strings(list(DIAGNOSIS_SYSTEMS)),
+        condition=read_type(files, "Condition"),
     )
 
 
@@ -328,158 +335,52 @@ def fhir_prescriptions(files: Files) -> exp.Select:
     """``prescriptions`` from MedicationRequest and MedicationStatement resources."""
     return fill(
         _PRESCRIPTIONS,
-        problem=_problem(),
+        problem=row_problem(),
         atc_system=exp.Literal.string(ATC_SYSTEM),
-        request_status=_status("MedicationRequest", exp.column("status")),
-        statement_status=_status("MedicationStatement", exp.column("status")),
-        request=_read(files, "MedicationRequest"),
-        statement=_read(files, "MedicationStatement"),
-        medication=_read(files, "Medication"),
+        request_status=status_problem("MedicationRequest", exp.column("status")),
+        statement_status=status_problem("MedicationStatement", exp.column("status")),
+        request=read_type(files, "MedicationRequest"),
+        statement=read_type(files, "MedicationStatement"),
+        medication=read_type(files, "Medication"),
     )
 
 
-_MEASUREMENTS = """
-SELECT
-  patient_id,
-  obs_date,
-  measure,
-  CASE
-    WHEN value_string IS NOT NULL THEN value_string
-    WHEN comparator IS NOT NULL THEN comparator || quantity_value
-    WHEN smoking IS NOT NULL THEN smoking
-    ELSE LOWER(COALESCE(
-      json_extract_string(concept, '$.text'), json_extract_string(concept, '$.coding[0].display')
-    ))
-  END AS value_text,
-  CASE WHEN value_string IS NULL AND comparator IS NULL THEN quantity_value END AS value,
-  CASE
-    WHEN json_extract_string(quantity, '$.system') = :ucum
-      THEN COALESCE(
-        json_extract_string(quantity, '$.code'), json_extract_string(quantity, '$.unit')
-      )
-    ELSE COALESCE(json_extract_string(quantity, '$.unit'), json_extract_string(quantity, '$.code'))
-  END AS unit,
-  source_position,
-  source_problem
-FROM (
-  SELECT
-    patient_id,
-    obs_date,
-    UNNEST(
-      CASE
-        WHEN LEN(measures) > 0 THEN measures
-        ELSE ['loinc:' || loinc[1]]
-      END
-    ) AS measure,
-    quantity,
-    COALESCE(json_extract_string(quantity, '$.value'), value_integer) AS quantity_value,
-    json_extract_string(quantity, '$.comparator') AS comparator,
-    value_string,
-    concept,
-    ARRAY(
-      SELECT :smoking
-      FROM (SELECT UNNEST(json_extract(concept, '$.coding[*]')) AS c) AS codings
-      WHERE json_extract_string(c, '$.system') = :snomed AND :smoking IS NOT NULL
-    )[1] AS smoking,
-    source_position,
-    source_problem
-  FROM (
-    SELECT
-      *,
-      ARRAY(
-        SELECT DISTINCT :measure
-        FROM (SELECT UNNEST(json_extract(part_code, '$.coding[*]')) AS c) AS codings
-        WHERE json_extract_string(c, '$.system') = :loinc_system AND :measure IS NOT NULL
-      ) AS measures,
-      ARRAY(
-        SELECT json_extract_string(c, '$.code')
-        FROM (SELECT UNNEST(json_extract(part_code, '$.coding[*]')) AS c) AS codings
-        WHERE json_extract_string(c, '$.system') = :loinc_system
-      ) AS loinc
-    FROM (
-      SELECT
-        patient_id, obs_date, code AS part_code, valueQuantity AS quantity,
-        valueInteger AS value_integer, valueString AS value_string,
-        valueCodeableConcept AS concept, source_position, source_problem
-      FROM observations
-      WHERE COALESCE(json_array_length(component), 0) = 0
-        OR COALESCE(valueQuantity, valueInteger, valueString, valueCodeableConcept) IS NOT NULL
-      UNION ALL
-      SELECT
-        patient_id, obs_date, json_extract(part, '$.code') AS part_code,
-        json_extract(part, '$.valueQuantity') AS quantity,
-        json_extract_string(part, '$.valueInteger') AS value_integer,
-        json_extract_string(part, '$.valueString') AS value_string,
-        json_extract(part, '$.valueCodeableConcept') AS concept,
-        source_position, source_problem
-      FROM (
-        SELECT *, UNNEST(json_extract(component, '$[*]')) AS part
-        FROM observations
-        WHERE json_array_length(component) > 0
-      ) AS components
-    ) AS parts
-  ) AS mapped
-) AS flat
-"""
+class Builder(Protocol):
+    """Builds one table's SELECT from the export's files and the table as the plan reads it."""
 
-_OBSERVATIONS = """
-SELECT
-  patient_id, FHIR_DATE(date_text) AS obs_date, code, valueQuantity, valueInteger,
-  valueString, valueCodeableConcept, component, source_position, :problem AS source_problem
-FROM (
-  SELECT
-    REF_ID(json_extract_string(subject, '$.reference'), 'Patient') AS patient_id,
-    COALESCE(
-      effectiveDateTime, json_extract_string(effectivePeriod, '$.start'), effectiveInstant,
-      issued
-    ) AS date_text,
-    code, valueQuantity, valueInteger, valueString, valueCodeableConcept, component,
-    :status AS status_problem,
-    line_problem,
-    source_position
-  FROM :observation
-) AS o
-"""
+    def __call__(self, files: Files, source: SourceTable | None = None) -> exp.Select: ...
 
 
-def fhir_measurements(files: Files) -> exp.Select:
-    """``measurements`` from Observation resources (their own value and their components)."""
-    code = exp.func("json_extract_string", exp.column("c"), exp.Literal.string("$.code"))
-    observations = fill(
-        _OBSERVATIONS,
-        problem=_problem(),
-        status=_status("Observation", exp.column("status")),
-        observation=_read(files, "Observation"),
-    )
-    select = fill(
-        _MEASUREMENTS,
-        ucum=exp.Literal.string(UCUM_SYSTEM),
-        loinc_system=exp.Literal.string(LOINC_SYSTEM),
-        snomed=exp.Literal.string(SNOMED_SYSTEM),
-        measure=lookup(code, LOINC_MEASURES),
-        smoking=lookup(code.copy(), SNOMED_SMOKING),
-    )
-    return select.with_("observations", as_=observations)
+def _only_files(build: Callable[[Files], exp.Select]) -> Builder:
+    """A builder that needs nothing of the plan's source table."""
+
+    def builder(files: Files, source: SourceTable | None = None) -> exp.Select:
+        del source  # the same rows whatever the study reads
+        return build(files)
+
+    return builder
 
 
-BUILDERS: dict[str, Callable[[Files], exp.Select]] = {
-    "patients": fhir_patients,
-    "encounters": fhir_encounters,
+BUILDERS: dict[str, Builder] = {
+    "patients": _only_files(fhir_patients),
+    "encounters": _only_files(fhir_encounters),
     "diagnoses": fhir_diagnoses,
-    "prescriptions": fhir_prescriptions,
+    "prescriptions": _only_files(fhir_prescriptions),
     "measurements": fhir_measurements,
 }
 
 
-def fhir_source(table: ExtractTable) -> exp.Select:
+def fhir_source(table: ExtractTable, source: SourceTable | None = None) -> exp.Select:
     """The canonical rows of one table of a FHIR export, as a SELECT over its NDJSON files.
 
     Besides the canonical columns it gives ``source_position`` (the file's index in
-    ``table.files`` * POSITION_BASE + the line) and ``source_problem``.
+    ``table.files`` * POSITION_BASE + the line) and ``source_problem``. ``source`` is the
+    table as the plan reads it (the code systems and LOINC codes of the study); without it
+    the reader reads ICD codings and its own LOINC table.
     """
     files: dict[str, list[tuple[int, Path]]] = {}
     for index, (path, resource_type) in enumerate(zip(table.files, table.resources, strict=True)):
         files.setdefault(resource_type, []).append((index, path))
     for resource_type in sorted(set(READ_COLUMNS) - set(files)):
         log.debug("no %s files for table %s", resource_type, table.name)
-    return BUILDERS[table.name](files)
+    return BUILDERS[table.name](files, source)
