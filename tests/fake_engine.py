@@ -2,9 +2,10 @@
 
 :class:`FakeEngine` runs a plan through :class:`pipeline.engine.base.Engine`'s own stage loop
 (callbacks, reports, data checks, the result's engine name) but executes nothing: each stage
-is recorded in order, and the relations its SQL reads (found in the sqlglot tree, not taken
-from ``depends_on``) must have been produced earlier, by a source view or an earlier stage,
-and must be among the stage's declared ``depends_on`` (``Plan.through`` trusts that list).
+is recorded in order, and the relations its SQL reads (found in the sqlglot tree by
+``relations_read``) must have been produced earlier in this run, by a source view or an
+earlier stage. (A ``Plan`` already refuses a stage whose declared ``depends_on`` differs from
+what its tree reads, or names a relation made later; the fake checks the run itself.)
 Outputs come back as empty tables; a check stage passes unless the test names it in
 ``failing_checks`` with the rows it should "find".
 """
@@ -20,6 +21,7 @@ import pyarrow as pa
 from sqlglot import exp
 
 from pipeline.compile import SourceTable, Stage
+from pipeline.compile._reads import relations_read
 from pipeline.engine.base import Engine
 from pipeline.errors import EngineError
 from pipeline.extract import ExtractTable
@@ -31,16 +33,6 @@ class Ledger:
 
     produced: set[str] = field(default_factory=set)
     stages: list[str] = field(default_factory=list)
-
-
-def relations_read(query: exp.Expression) -> set[str]:
-    """The named relations a query reads: its tables, without its own CTEs or table functions."""
-    own = {cte.alias_or_name for cte in query.find_all(exp.CTE)}
-    return {
-        table.name
-        for table in query.find_all(exp.Table)
-        if isinstance(table.this, exp.Identifier) and table.name not in own
-    }
 
 
 class FakeEngine(Engine[Ledger]):
@@ -77,7 +69,9 @@ class FakeEngine(Engine[Ledger]):
         # No files: every source view simply exists.
         conn.produced.update(source.relation for source in sources)
 
-    def _table_rows(self, conn: Ledger, table: ExtractTable) -> exp.Expression:
+    def _table_rows(
+        self, conn: Ledger, table: ExtractTable, source: SourceTable | None = None
+    ) -> exp.Expression:
         return exp.to_table(f"{table.name}_files")
 
     def _column_type(self, conn: Ledger, table: ExtractTable, column: exp.Expression) -> str:
@@ -87,20 +81,12 @@ class FakeEngine(Engine[Ledger]):
         conn.produced.add(name)
 
     def _reads(self, conn: Ledger, stage: Stage) -> None:
-        """Refuse a stage reading what is not there yet, or what it does not declare."""
-        read = relations_read(stage.query)
-        missing = sorted(read - conn.produced)
+        """Refuse a stage reading what this run has not produced yet."""
+        missing = sorted(set(relations_read(stage.query)) - conn.produced)
         if missing:
             raise EngineError(
                 f"reads {', '.join(missing)}, not produced earlier",
                 code="stage-input-missing",
-                where=f"stage {stage.name}",
-            )
-        undeclared = sorted(read - set(stage.depends_on))
-        if undeclared:
-            raise EngineError(
-                f"reads {', '.join(undeclared)} without declaring it in depends_on",
-                code="stage-input-undeclared",
                 where=f"stage {stage.name}",
             )
         conn.stages.append(stage.name)
