@@ -85,7 +85,10 @@ def test_duckdb_refuses_a_hadoop_extract_saying_it_needs_spark(tmp_path: Path) -
     args = ["build", str(DEMO_STUDY), "--extract", "hdfs://nn:8020/orvane", "--out", str(out)]
     result = CliRunner().invoke(app, args)
     assert result.exit_code == 2, result.output
-    assert "hdfs://nn:8020/orvane: an extract on hdfs:// is listed and read" in result.output
+    assert (
+        "hdfs://nn:8020/orvane [needs-spark] an extract on hdfs:// is listed and read"
+        in result.output
+    )
     assert "needs --engine spark" in result.output
     assert not out.exists()
     with pytest.raises(ExtractError, match="needs --engine spark"):
@@ -226,7 +229,10 @@ def test_a_scheme_without_a_file_system_is_one_sentence_and_exit_2(tmp_path: Pat
     )  # fmt: skip
     assert run.returncode == 2, run.stderr[-3000:]
     said = " ".join((run.stderr + run.stdout).split())
-    assert "s3a://bucket/orvane: Spark has no Hadoop file system for the scheme 's3a'" in said
+    assert (
+        "s3a://bucket/orvane [unknown-scheme] Spark has no Hadoop file system for the scheme 's3a'"
+        in said
+    )
     assert "S3AFileSystem not found" in said
     assert "Traceback" not in said
     assert not out.exists()
