@@ -53,20 +53,20 @@ def _activity_rows(relation: str, study: Study) -> tuple[exp.Query, tuple[str, .
 
 _LAST_CONTACT = """
 SELECT patient_id, MAX(contact_date) AS last_contact
-FROM contact_rows
+FROM :contacts
 GROUP BY patient_id
 """
 
 _CONTACT_AT_INDEX = """
 SELECT i.patient_id, MAX(c.contact_date) AS last_contact_by_index
-FROM index_dates AS i
-JOIN contact_rows AS c ON c.patient_id = i.patient_id AND c.contact_date <= :window_end
+FROM :index_dates AS i
+JOIN :contacts AS c ON c.patient_id = i.patient_id AND c.contact_date <= :window_end
 GROUP BY i.patient_id
 """
 
 _NEGATIVE_FOLLOWUP = """
 SELECT patient_id, index_date, followup_end, end_reason
-FROM cohort
+FROM :cohort
 WHERE followup_days < 0
 ORDER BY patient_id
 LIMIT 5
@@ -136,7 +136,7 @@ def contact_stages(
         stages.append(
             Stage(
                 names.LAST_CONTACT,
-                query(_LAST_CONTACT),
+                query(_LAST_CONTACT, contacts=exp.to_table(names.CONTACT_ROWS)),
                 (names.CONTACT_ROWS,),
                 "the last contact per patient, from which loss of contact is measured",
             )
@@ -147,7 +147,12 @@ def contact_stages(
         stages.append(
             Stage(
                 names.CONTACT_AT_INDEX,
-                query(_CONTACT_AT_INDEX, window_end=end),
+                query(
+                    _CONTACT_AT_INDEX,
+                    index_dates=exp.to_table(names.INDEX_DATES),
+                    contacts=exp.to_table(names.CONTACT_ROWS),
+                    window_end=end,
+                ),
                 (names.INDEX_DATES, names.CONTACT_ROWS),
                 "each patient's last contact on or before the end of the in-contact window",
             )
@@ -186,7 +191,7 @@ def negative_followup_check() -> Stage:
     """The check that fails the build, naming patients, if any follow-up ends before index."""
     return Stage(
         names.FOLLOWUP_NOT_NEGATIVE,
-        query(_NEGATIVE_FOLLOWUP),
+        query(_NEGATIVE_FOLLOWUP, cohort=exp.to_table(names.COHORT)),
         (names.COHORT,),
         "no patient of the cohort may have follow-up ending before the index date",
         kind="check",
