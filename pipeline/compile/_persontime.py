@@ -150,6 +150,7 @@ def _split_by_years(source: exp.Expression, carried: list[str]) -> tuple[exp.Sel
 def _outcome_cells(name: str) -> list[exp.Expression]:
     """``days_at_risk_X`` and ``events_X`` of one cell (both NULL when not at risk of X)."""
     columns = names.outcome_columns(name)
+    days_at_risk, events_in = names.persontime_columns(name)
     onset = exp.column(columns.onset, "p")
     start, end = _piece("piece_start"), _piece("piece_end")
     at_risk = exp.column(columns.at_risk, "p")
@@ -170,8 +171,8 @@ def _outcome_cells(name: str) -> list[exp.Expression]:
         .else_(exp.Literal.number(0))
     )
     return [
-        exp.cast(risk, "INT").as_(f"days_at_risk_{name}"),
-        exp.cast(events, "TINYINT").as_(f"events_{name}"),
+        exp.cast(risk, "INT").as_(days_at_risk),
+        exp.cast(events, "TINYINT").as_(events_in),
     ]
 
 
@@ -243,6 +244,19 @@ def cells_query(outcomes: list[str], option: PersonTime) -> exp.Query:
     ).from_(query.subquery("p"))
 
 
+def _outcome_sums(outcome: str) -> tuple[exp.Expression, ...]:
+    """A patient's days at risk, events and marked cells of one outcome, over their cells."""
+    days_at_risk, events_in = names.persontime_columns(outcome)
+    return (
+        exp.func("SUM", exp.column(days_at_risk)).as_(f"risk_{outcome}"),
+        exp.func("SUM", exp.column(events_in)).as_(events_in),
+        exp.Add(
+            this=exp.func("COUNT", exp.column(days_at_risk)),
+            expression=exp.func("COUNT", exp.column(events_in)),
+        ).as_(f"marked_{outcome}"),
+    )
+
+
 def _accounting_query(ctx: CompileContext) -> exp.Query:
     """Cohort patients whose cells do not add up, with the first quantity that differs."""
     outcomes = [o.condition for o in ctx.outcomes]
@@ -252,18 +266,7 @@ def _accounting_query(ctx: CompileContext) -> exp.Query:
             exp.func("SUM", exp.column("days")).as_("days"),
             exp.func("MIN", exp.column("cell_start")).as_("first_day"),
             exp.func("MAX", exp.column("cell_end")).as_("last_day"),
-            *(
-                part
-                for n in outcomes
-                for part in (
-                    exp.func("SUM", exp.column(f"days_at_risk_{n}")).as_(f"risk_{n}"),
-                    exp.func("SUM", exp.column(f"events_{n}")).as_(f"events_{n}"),
-                    exp.Add(
-                        this=exp.func("COUNT", exp.column(f"days_at_risk_{n}")),
-                        expression=exp.func("COUNT", exp.column(f"events_{n}")),
-                    ).as_(f"marked_{n}"),
-                )
-            ),
+            *(part for n in outcomes for part in _outcome_sums(n)),
         )
         .from_(names.PERSONTIME)
         .group_by("patient_id")
@@ -287,14 +290,15 @@ def _accounting_query(ctx: CompileContext) -> exp.Query:
         columns = names.outcome_columns(n)
         at_risk = exp.column(columns.at_risk, "c")
         incident = exp.Case().when(exp.column(columns.incident, "c"), 1).else_(0)
+        days_at_risk, events_in = names.persontime_columns(n)
         differences += [
             (
                 exp.and_(at_risk.copy(), total(f"risk_{n}").neq(exp.column(columns.time, "c"))),
-                f"days_at_risk_{n} <> {columns.time}",
+                f"{days_at_risk} <> {columns.time}",
             ),
             (
-                exp.and_(at_risk.copy(), total(f"events_{n}").neq(incident)),
-                f"events_{n} <> {columns.incident}",
+                exp.and_(at_risk.copy(), total(events_in).neq(incident)),
+                f"{events_in} <> {columns.incident}",
             ),
             (
                 exp.and_(exp.not_(at_risk.copy()), total(f"marked_{n}") > 0),
@@ -423,25 +427,27 @@ def persontime_docs(ctx: CompileContext) -> tuple[ColumnDoc, ...]:
     ]
     for outcome in ctx.outcomes:
         n = outcome.condition
+        columns = names.outcome_columns(n)
+        days_at_risk, events_in = names.persontime_columns(n)
         docs += [
             ColumnDoc(
-                f"days_at_risk_{n}",
+                days_at_risk,
                 "INTEGER",
                 "days",
                 f"days of the cell at risk of {n}",
                 f"the cell's days up to and including the onset of an incident case, 0 after "
-                f"it; empty when not at risk (at_risk_{n} false); over a patient's cells they "
-                f"add up to time_{n} (checked on every build)",
+                f"it; empty when not at risk ({columns.at_risk} false); over a patient's cells "
+                f"they add up to {columns.time} (checked on every build)",
                 "cohort",
             ),
             ColumnDoc(
-                f"events_{n}",
+                events_in,
                 "TINYINT",
                 "patients",
                 f"1 in the cell holding the onset of incident {n}",
-                f"1 when onset_{n} of an incident case falls in the cell, else 0; empty when "
-                f"not at risk; over a patient's cells they add up to incident_{n} (checked on "
-                "every build)",
+                f"1 when {columns.onset} of an incident case falls in the cell, else 0; empty "
+                f"when not at risk; over a patient's cells they add up to {columns.incident} "
+                "(checked on every build)",
                 "cohort",
             ),
         ]
