@@ -13,6 +13,7 @@ from sqlglot import exp
 
 from pipeline.compile import names
 from pipeline.compile._context import CompileContext
+from pipeline.compile._judged import record_problem, timing_problem
 from pipeline.compile._plan import Stage
 from pipeline.compile._sources import MEASUREMENTS, grouped_rows
 from pipeline.compile._sql import (
@@ -103,12 +104,9 @@ SELECT
   r.source_position,
   r.source_problem,
   u.factor * r.reading / u.divisor + u.offset_value AS value,
-  CASE
-    WHEN r.source_problem IS NOT NULL THEN r.source_problem
-    WHEN p.patient_id IS NULL THEN 'orphan patient'
-    WHEN r.obs_date IS NULL THEN 'unparseable date'
-    WHEN r.obs_date > :end_of_data THEN 'after end of data'
-    WHEN p.death_date IS NOT NULL AND r.obs_date > p.death_date THEN 'after death'
+  :record_problem AS record_problem,
+  :timing_problem AS timing_problem,
+  COALESCE(:record_problem, :timing_problem, CASE
     WHEN k.measure IS NULL THEN 'unknown measure'
     WHEN k.is_coded AND (r.category IS NULL OR NOT (:known_category))
       THEN 'category not recognised'
@@ -119,7 +117,7 @@ SELECT
     WHEN u.measure IS NULL THEN 'unit not convertible'
     WHEN u.factor * r.reading / u.divisor + u.offset_value NOT BETWEEN u.low AND u.high
       THEN 'implausible value'
-  END AS problem
+  END) AS problem
 FROM parsed AS r
 LEFT JOIN :base AS p ON p.patient_id = r.patient_id
 LEFT JOIN :known ON k.measure = r.measure
@@ -269,12 +267,14 @@ def _judged_rows(ctx: CompileContext) -> exp.Query:
             lab_tests=values_table("t", ["local_code", "measure"], list(ctx.local_codes.lab_tests)),
         )
         name = exp.func("COALESCE", exp.column("mapped_measure"), name)
+    day = exp.column("obs_date", "r")
     return query(
         _MEASUREMENT_ROWS,
         measure_name=name,
         pattern=READING_PATTERN,
         decimal_comma=DECIMAL_COMMA_PATTERN,
-        end_of_data=ctx.study.end_of_data,
+        record_problem=record_problem(day),
+        timing_problem=timing_problem(day, ctx.study.end_of_data),
         known=known,
         units=units,
         known_category=known_category,
@@ -283,10 +283,12 @@ def _judged_rows(ctx: CompileContext) -> exp.Query:
     )
 
 
+# The record and timing parts of the judgement are kept for contact with the practice, which
+# counts a measurement whatever its value (``dated_and_placed`` in compile/_judged.py).
 _JUDGED = """
 SELECT
   patient_id, obs_date, measure, value, qualifier, category, copies, source_position,
-  source_problem, problem
+  source_problem, record_problem, timing_problem, problem
 FROM :rows
 """
 
