@@ -162,3 +162,25 @@ def test_a_study_without_coded_evidence_is_refused_with_its_file(tmp_path: Path)
     assert "no diagnosis or prescription evidence" in result.output
     assert "study.yaml" in result.output
     assert not (tmp_path / "out").exists()
+
+
+def test_audit_reads_the_row_judgement_not_the_extract() -> None:
+    # The usable-row rule lives in the row-judgement views (compile/_judged.py); the audit
+    # reads them, so it cannot state the rule again over the raw tables.
+    from pipeline.compile import compile_study, names
+    from pipeline.compile._audit import audit_plan
+    from pipeline.compile._context import CompileContext
+    from pipeline.config import load_study
+
+    loaded = load_study(DEMO_STUDY)
+    ctx = CompileContext(loaded.study, loaded.catalog, loaded.measures)
+    used = audit_plan(compile_study(loaded), ctx).stage("audit_used")
+    assert set(used.depends_on) == {
+        names.judged_stage("diagnoses"),
+        names.judged_stage("prescriptions"),
+        names.DISTINCT_CODES,
+    }
+    sql = used.render("duckdb")
+    assert "src_" not in sql
+    assert "death_date" not in sql
+    assert "source_problem" not in sql

@@ -2,9 +2,11 @@
 
 The audit runs the study's own plan up to ``codes_to_evidence`` (so a code counts for a piece of
 evidence exactly when the build would count it) and adds the stages below. Each coded extract
-table is read once, in ``audit_used``: its usable rows, judged as the quality log judges them
-(a row the quality log calls used is here, and no other), grouped by raw code, patient, year
-and prescription length. Everything after reads that grouping and the small ``codes_to_evidence``.
+table is read once, in ``audit_used``: the rows its row-judgement view (``diagnoses_judged``,
+``prescriptions_judged``; compile/_judged.py) calls used, the very rows the quality log counts
+as used, grouped by raw code, patient, year and prescription length. The usable-row rule is
+not stated here: change it in the judgement and the audit, the quality log and the cohort move
+together. Everything after reads that grouping and the small ``codes_to_evidence``.
 """
 
 from __future__ import annotations
@@ -13,36 +15,22 @@ from sqlglot import exp
 
 from pipeline.compile import names
 from pipeline.compile._context import CompileContext
-from pipeline.compile._judged import same_raw_code
-from pipeline.compile._plan import SOURCE_PROBLEM, Plan, Stage
-from pipeline.compile._sources import (
-    DIAGNOSES,
-    PRESCRIPTIONS,
-    coded_tables,
-    grouped_rows,
-    raw_code_columns,
-)
-from pipeline.compile._sql import days_between, query
+from pipeline.compile._judged import is_used, same_raw_code
+from pipeline.compile._plan import Plan, Stage
+from pipeline.compile._sources import DIAGNOSES, PRESCRIPTIONS, coded_tables
+from pipeline.compile._sql import query
 
 AUDIT_OUTPUTS = ("audit_code_counts", "audit_code_years", "audit_extract_codes", "audit_totals")
 """The audit plan's outputs, all small: one row per code (and year), or per table."""
 
-# One row per group of usable rows: the conditions are the quality log's (_DATED in
-# compile/_quality.py) in the same order, so used rows here are its used rows. With the
-# duplicate check on, exact copies were grouped first and count once, as there.
+# One row per group of usable rows (see _used_rows), with the normalised code of each.
 _USED = """
 SELECT
   r.source_table, r.raw_system, r.raw_code, r.raw_source, c.code_system, c.code,
   r.patient_id, CAST(EXTRACT(YEAR FROM r.row_date) AS INT) AS year, r.duration_days,
   CAST(COUNT(*) AS BIGINT) AS n_rows
 FROM :rows
-JOIN :base AS p ON p.patient_id = r.patient_id
 JOIN :found_codes AS c ON :same_code
-WHERE r.source_problem IS NULL
-  AND r.row_date IS NOT NULL
-  AND c.problem IS NULL
-  AND r.row_date <= :end_of_data
-  AND (p.death_date IS NULL OR r.row_date <= p.death_date)
 GROUP BY
   r.source_table, r.raw_system, r.raw_code, r.raw_source, c.code_system, c.code,
   r.patient_id, CAST(EXTRACT(YEAR FROM r.row_date) AS INT), r.duration_days
@@ -108,26 +96,31 @@ GROUP BY u.source_table
 """
 
 
-def _table_rows(ctx: CompileContext, table: str) -> exp.Query:
-    """One coded table's rows (grouped when duplicates are checked) with the audit's columns."""
+_AUDIT_COLUMNS = (
+    "row_date",
+    "source_table",
+    "raw_system",
+    "raw_code",
+    "raw_source",
+    "duration_days",
+)
+
+
+def _used_rows(ctx: CompileContext, table: str) -> exp.Query:
+    """One coded table's used rows, as its row judgement gives them, with the audit's columns.
+
+    With the duplicate check on, exact copies count once, as in the quality log (which groups
+    the judged rows on the table's columns: ``judged_for_log``); the other copies are its
+    exact duplicates, not used rows. A used row has no reader's problem, so the table's columns
+    say everything that makes copies.
+    """
+    columns = ("patient_id", *_AUDIT_COLUMNS)
+    used = exp.select(*columns).from_(names.judged_stage(table)).where(is_used())
+    if ctx.study.quality.exact_duplicates != "check":
+        return used
     source = DIAGNOSES if table == "diagnoses" else PRESCRIPTIONS
-    check = ctx.study.quality.exact_duplicates == "check"
-    grouped = grouped_rows(source, check_duplicates=check).subquery("g")
-    date_column = "event_date" if table == "diagnoses" else "start_date"
-    row_date = exp.TryCast(this=exp.column(date_column), to=exp.DataType.build("DATE"))
-    if table == "prescriptions":
-        stop = exp.TryCast(this=exp.column("stop_date"), to=exp.DataType.build("DATE"))
-        duration: exp.Expression = exp.cast(days_between(row_date.copy(), stop) + 1, "INT")
-    else:
-        duration = exp.cast(exp.null(), "INT")
-    return exp.select(
-        "patient_id",
-        exp.column(SOURCE_PROBLEM),
-        row_date.as_("row_date"),
-        exp.Literal.string(table).as_("source_table"),
-        *(c.as_(n) for n, c in raw_code_columns(table).items()),
-        duration.as_("duration_days"),
-    ).from_(grouped)
+    copies = used.select(*(c for c in source.columns if c not in columns)).distinct()
+    return exp.select(*columns).from_(copies.subquery("copies"))
 
 
 def _same_group(left: str, right: str) -> exp.Expression:
@@ -141,9 +134,9 @@ def _same_group(left: str, right: str) -> exp.Expression:
 
 def audit_stages(ctx: CompileContext) -> tuple[Stage, ...]:
     """The audit's own stages, to run after the study's plan through ``codes_to_evidence``."""
-    parts = [_table_rows(ctx, t) for t in coded_tables(ctx)]
+    parts = [_used_rows(ctx, t) for t in coded_tables(ctx)]
     rows = parts[0] if len(parts) == 1 else parts[0].union(parts[1], distinct=False)
-    sources = tuple(f"src_{t}" for t in coded_tables(ctx))
+    judged = tuple(names.judged_stage(t) for t in coded_tables(ctx))
     return (
         Stage(
             "audit_used",
@@ -151,12 +144,10 @@ def audit_stages(ctx: CompileContext) -> tuple[Stage, ...]:
                 _USED,
                 rows=rows.subquery("r"),
                 same_code=same_raw_code("r", "c"),
-                end_of_data=ctx.study.end_of_data,
-                base=exp.to_table(names.PATIENT_BASE),
                 found_codes=exp.to_table(names.DISTINCT_CODES),
             ),
-            (*sources, names.PATIENT_BASE, names.DISTINCT_CODES),
-            "the usable coded rows, one pass per table, grouped by code, patient and year",
+            (*judged, names.DISTINCT_CODES),
+            "the coded rows their judgement calls used, grouped by code, patient and year",
         ),
         Stage(
             "audit_matched",

@@ -11,6 +11,7 @@ from __future__ import annotations
 from sqlglot import exp
 
 from pipeline.codes import CHARLSON_CATEGORIES, HIERARCHY, WEIGHTS
+from pipeline.compile import names
 from pipeline.compile._context import (
     CompileContext,
     charlson_key,
@@ -57,7 +58,7 @@ def window_columns(ctx: CompileContext) -> list[tuple[str, exp.Expression, tuple
     for name, covariate in ctx.study.covariates.items():
         if covariate.count is not None and _encounter_types(covariate.count) is None:
             key = covariate_key(name)
-            columns.append((f"count_{name}", _count(key, covariate.span), (key,)))
+            columns.append((names.count_column(name), _count(key, covariate.span), (key,)))
     if any(c.charlson for c in ctx.study.covariates.values()):
         for category in CHARLSON_CATEGORIES:
             key = charlson_key(category.name)
@@ -125,8 +126,13 @@ def encounter_columns(ctx: CompileContext) -> list[tuple[str, Window, tuple[str,
     for name, covariate in ctx.study.covariates.items():
         types = _encounter_types(covariate.count) if covariate.count is not None else None
         if types is not None:
-            columns.append((f"count_{name}", covariate.span, types))
+            columns.append((names.count_column(name), covariate.span, types))
     return columns
+
+
+def _index_dates() -> exp.Expression:
+    """``index_dates AS i``, as every window join of this module reads it."""
+    return exp.to_table(names.INDEX_DATES).as_("i")
 
 
 def _evidence_counts(ctx: CompileContext) -> exp.Query | None:
@@ -137,7 +143,7 @@ def _evidence_counts(ctx: CompileContext) -> exp.Query | None:
     offset = days_between(exp.column("index_date", "i"), exp.column("event_date", "e"))
     events = (
         exp.select("patient_id", "evidence", "event_date", "n_rows")
-        .from_("evidence_events")
+        .from_(names.EVIDENCE_EVENTS)
         .where(exp.column("evidence").isin(*(evidence_id(k) for k in keys)))
         .where(near_index(exp.column("event_date"), ctx.index_range, (None, 0)))
     )
@@ -149,7 +155,7 @@ def _evidence_counts(ctx: CompileContext) -> exp.Query | None:
             exp.column("n_rows", "e"),
             offset.as_(OFFSET),
         )
-        .from_("index_dates AS i")
+        .from_(_index_dates())
         .join(
             events.subquery("e"),
             on=exp.and_(
@@ -181,10 +187,10 @@ def _encounter_counts(ctx: CompileContext) -> exp.Query | None:
             offset.as_(OFFSET),
         )
         .distinct()
-        .from_("encounter_rows AS e")
+        .from_(exp.to_table(names.ENCOUNTER_ROWS).as_("e"))
         .where(near_index(exp.column("encounter_date", "e"), ctx.index_range, (earliest, 0)))
         .join(
-            "index_dates AS i",
+            _index_dates(),
             on=exp.and_(
                 exp.column("patient_id", "i").eq(exp.column("patient_id", "e")),
                 in_window((earliest, 0), offset.copy()),
@@ -208,14 +214,14 @@ def window_counts_stage(ctx: CompileContext) -> Stage | None:
     stay missing when there is none.
     """
     parts = [
-        ("ev", _evidence_counts(ctx), "evidence_events"),
-        ("en", _encounter_counts(ctx), "encounter_rows"),
+        ("ev", _evidence_counts(ctx), names.EVIDENCE_EVENTS),
+        ("en", _encounter_counts(ctx), names.ENCOUNTER_ROWS),
     ]
     present = [(alias, q, source) for alias, q, source in parts if q is not None]
     if not present:
         return None
     selected: list[exp.Expression] = [exp.column("patient_id", "i")]
-    query = exp.select().from_("index_dates AS i")
+    query = exp.select().from_(_index_dates())
     for alias, part, _ in present:
         for projection in part.selects[1:]:
             name = projection.alias_or_name
@@ -229,9 +235,9 @@ def window_counts_stage(ctx: CompileContext) -> Stage | None:
             join_type="left",
         )
     return Stage(
-        "window_counts",
+        names.WINDOW_COUNTS,
         query.select(*selected),
-        ("index_dates", *(source for _, _, source in present)),
+        (names.INDEX_DATES, *(source for _, _, source in present)),
         "per patient, evidence and encounters counted in windows around the index date",
     )
 
@@ -269,7 +275,7 @@ def _baseline_values(ctx: CompileContext, measures: list[str], earliest: int | N
         )
         .from_(union.subquery("v"))
         .join(
-            "index_dates AS i",
+            _index_dates(),
             on=exp.and_(
                 exp.column("patient_id", "i").eq(exp.column("patient_id", "v")),
                 in_window((earliest, 0), offset.copy()),
@@ -331,7 +337,7 @@ def measure_covariates_stage(ctx: CompileContext) -> Stage | None:
     measures = sorted({c.latest or c.mean or c.minimum or c.maximum or "" for _, c in wanted})
     starts = [c.span[0] for _, c in wanted]
     earliest = None if any(s is None for s in starts) else min(s for s in starts if s is not None)
-    query = exp.select(exp.column("patient_id", "i")).from_("index_dates AS i")
+    query = exp.select(exp.column("patient_id", "i")).from_(_index_dates())
     for number, (name, covariate) in enumerate(wanted):
         alias = f"c{number}"
         columns = [f"m_{name}"]
@@ -342,9 +348,9 @@ def measure_covariates_stage(ctx: CompileContext) -> Stage | None:
             on=exp.column("patient_id", alias).eq(exp.column("patient_id", "i")),
             join_type="left",
         )
-    depends = {"index_dates"} | {r for m in measures for r in measure_relations(ctx, m)}
+    depends = {names.INDEX_DATES} | {r for m in measures for r in measure_relations(ctx, m)}
     return Stage(
-        "measure_covariates",
+        names.MEASURE_COVARIATES,
         query.with_("baseline_values", as_=_baseline_values(ctx, measures, earliest)),
         tuple(sorted(depends)),
         "per patient, measurement covariates summarised in their windows",
@@ -380,11 +386,11 @@ def covariate_column(name: str, covariate: Covariate) -> list[exp.Expression]:
     """The analysis-table column(s) of one covariate (read from eligibility ``f``, ``w``, ``m``)."""
     kind = covariate.kind
     if kind == "condition":
-        onset = exp.column(f"onset_{covariate.condition}", "f")
+        onset = exp.column(names.onset_column(covariate.condition), "f")
         prevalent = exp.and_(onset.is_(exp.null()).not_(), onset <= exp.column("index_date", "f"))
         return [exp.func("COALESCE", prevalent, exp.false()).as_(name)]
     if kind == "count":
-        return [exp.cast(exp.column(f"count_{name}", "w"), "INT").as_(name)]
+        return [exp.cast(exp.column(names.count_column(name), "w"), "INT").as_(name)]
     if kind == "days_since_first_evidence":
         first = exp.column(f"first_evidence_{covariate.days_since_first_evidence}", "w")
         return [exp.cast(days_between(first, exp.column("index_date", "f")), "INT").as_(name)]

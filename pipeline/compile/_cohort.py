@@ -332,7 +332,7 @@ def contact_pass(draft: Draft) -> Draft:
     """What counts as contact, from the tables earlier passes made usable."""
     ctx = draft.ctx
     present = [judged_stage(t) for t in coded_tables(ctx) if draft.has(judged_stage(t))]
-    present += ["src_measurements"] if ctx.measures else []
+    present += [names.MEASUREMENTS_JUDGED] if draft.has(names.MEASUREMENTS_JUDGED) else []
     return draft.add(*contact_stages(ctx.study, ctx.eligibility, tuple(present)))
 
 

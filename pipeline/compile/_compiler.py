@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from pipeline.compile import names
 from pipeline.compile._cohort import COHORT_PASSES
 from pipeline.compile._context import CompileContext, evidence_key, evidence_number
 from pipeline.compile._dictionary import dictionary
@@ -51,13 +52,17 @@ def compile_study(loaded: LoadedStudy) -> Plan:
         sources=source_tables(ctx),
         stages=stages,
         outputs=(
-            ("cohort", "cohort", ("patient_id",)),
-            ("population", "population", ("patient_id",)),
-            ("attrition", "attrition", ("step_number",)),
-            ("quality", "quality_log", ("source_table", "outcome", "reason")),
-            ("rows_read", "rows_read", ("source_table",)),
+            ("cohort", names.COHORT, ("patient_id",)),
+            ("population", names.POPULATION, ("patient_id",)),
+            ("attrition", names.ATTRITION, ("step_number",)),
+            ("quality", names.QUALITY_LOG, ("source_table", "outcome", "reason")),
+            ("rows_read", names.ROWS_READ, ("source_table",)),
             (EVIDENCE_COUNTS, EVIDENCE_COUNTS, ("evidence",)),
-            *((("persontime", "persontime", ("patient_id", "cell_start")),) if persontime else ()),
+            *(
+                (("persontime", names.PERSONTIME, ("patient_id", "cell_start")),)
+                if persontime
+                else ()
+            ),
             *matching_outputs(ctx),
         ),
         columns=dictionary(ctx),

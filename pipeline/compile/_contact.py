@@ -2,8 +2,10 @@
 
 Loss of contact (a follow-up end) and the ``in_contact_at_index`` eligibility step read the
 same contacts: usable encounters (``followup.contact: encounters``, the default), or any row
-with a usable date of encounters and of whichever of diagnoses, prescriptions and measurements
-the study reads (``any_activity``), whatever its code or value.
+of encounters and of whichever of diagnoses, prescriptions and measurements the study reads
+whose row judgement finds no record or timing problem (``any_activity``), whatever its code or
+value: a known patient, a readable date up to the end of data and death, and not set aside by
+the extract's reader.
 
 A fixed-date index can fall long after a patient's last contact; such a patient's follow-up
 would end before it starts. So a fixed-date study that ends follow-up at loss of contact and
@@ -25,48 +27,37 @@ from pipeline.config import Criterion, Study
 
 DEFAULT_STEP_TEXT = "added to fixed-date studies that end follow-up at loss of contact"
 
-# Measurements count as contact by their date alone, whatever the row's other problems.
-_MEASUREMENT_CONTACT = """
-SELECT m.patient_id, m.contact_date
-FROM (
-  SELECT patient_id, TRY_CAST(obs_date AS DATE) AS contact_date FROM src_measurements
-) AS m
-JOIN :base AS p ON p.patient_id = m.patient_id
-WHERE m.contact_date <= :end_of_data
-  AND (p.death_date IS NULL OR m.contact_date <= p.death_date)
-"""
 
+def _activity_rows(relation: str) -> exp.Query:
+    """A further table's contact dates (``any_activity``), from its row judgement.
 
-def _activity_rows(relation: str, study: Study) -> tuple[exp.Query, tuple[str, ...]]:
-    """A further table's contact dates (``any_activity``) and the relations they read.
-
-    A coded row counts by its judgement's record and timing parts alone (``dated_and_placed``):
-    its code does not matter to whether the patient was in touch.
+    A row counts by its judgement's record and timing parts alone (``dated_and_placed``): its
+    code or value does not matter to whether the patient was in touch, but a row the reader set
+    aside (entered in error, cancelled...), of an unknown patient, without a date, or dated
+    after the end of data or the patient's death is no contact. Measurements are judged the
+    same way as coded rows (``measurements_judged``), so the rule is the same for every table.
     """
-    if relation == "src_measurements":
-        base = exp.to_table(names.PATIENT_BASE)
-        text = query(_MEASUREMENT_CONTACT, base=base, end_of_data=study.end_of_data)
-        return text, (relation, names.PATIENT_BASE)
-    rows = exp.select("patient_id", exp.column("row_date").as_("contact_date")).from_(relation)
-    return rows.where(dated_and_placed()), (relation,)
+    day = "obs_date" if relation == names.MEASUREMENTS_JUDGED else "row_date"
+    rows = exp.select("patient_id", exp.column(day).as_("contact_date")).from_(relation)
+    return rows.where(dated_and_placed())
 
 
 _LAST_CONTACT = """
 SELECT patient_id, MAX(contact_date) AS last_contact
-FROM contact_rows
+FROM :contacts
 GROUP BY patient_id
 """
 
 _CONTACT_AT_INDEX = """
 SELECT i.patient_id, MAX(c.contact_date) AS last_contact_by_index
-FROM index_dates AS i
-JOIN contact_rows AS c ON c.patient_id = i.patient_id AND c.contact_date <= :window_end
+FROM :index_dates AS i
+JOIN :contacts AS c ON c.patient_id = i.patient_id AND c.contact_date <= :window_end
 GROUP BY i.patient_id
 """
 
 _NEGATIVE_FOLLOWUP = """
 SELECT patient_id, index_date, followup_end, end_reason
-FROM cohort
+FROM :cohort
 WHERE followup_days < 0
 ORDER BY patient_id
 LIMIT 5
@@ -117,9 +108,8 @@ def contact_stages(
     if study.followup.contact == "any_activity":
         what = "usable dated rows of encounters, diagnoses, prescriptions and measurements read"
         for relation in sources:
-            rows, read = _activity_rows(relation, study)
-            parts.append(rows)
-            depends += read
+            parts.append(_activity_rows(relation))
+            depends.append(relation)
     union = parts[0]
     for part in parts[1:]:
         union = union.union(part, distinct=False)
@@ -136,7 +126,7 @@ def contact_stages(
         stages.append(
             Stage(
                 names.LAST_CONTACT,
-                query(_LAST_CONTACT),
+                query(_LAST_CONTACT, contacts=exp.to_table(names.CONTACT_ROWS)),
                 (names.CONTACT_ROWS,),
                 "the last contact per patient, from which loss of contact is measured",
             )
@@ -147,7 +137,12 @@ def contact_stages(
         stages.append(
             Stage(
                 names.CONTACT_AT_INDEX,
-                query(_CONTACT_AT_INDEX, window_end=end),
+                query(
+                    _CONTACT_AT_INDEX,
+                    index_dates=exp.to_table(names.INDEX_DATES),
+                    contacts=exp.to_table(names.CONTACT_ROWS),
+                    window_end=end,
+                ),
                 (names.INDEX_DATES, names.CONTACT_ROWS),
                 "each patient's last contact on or before the end of the in-contact window",
             )
@@ -186,7 +181,7 @@ def negative_followup_check() -> Stage:
     """The check that fails the build, naming patients, if any follow-up ends before index."""
     return Stage(
         names.FOLLOWUP_NOT_NEGATIVE,
-        query(_NEGATIVE_FOLLOWUP),
+        query(_NEGATIVE_FOLLOWUP, cohort=exp.to_table(names.COHORT)),
         (names.COHORT,),
         "no patient of the cohort may have follow-up ending before the index date",
         kind="check",

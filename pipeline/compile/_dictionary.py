@@ -7,6 +7,7 @@ definitions it comes from, so the table describes itself.
 from __future__ import annotations
 
 from pipeline.codes import CHARLSON_CATEGORIES, WEIGHTS
+from pipeline.compile import names
 from pipeline.compile._context import CompileContext
 from pipeline.compile._index import index_description
 from pipeline.compile._plan import ColumnDoc
@@ -126,7 +127,8 @@ def _outcome_docs(ctx: CompileContext, name: str) -> list[ColumnDoc]:
     condition = ctx.catalog.get(name)
     title = condition.title
     source = _definition_source(ctx, name)
-    at_risk = f"not prevalent_{name}"
+    c = names.outcome_columns(name)
+    at_risk = f"not {c.prevalent}"
     clear = ctx.study.outcomes.clear_before_for(name)
     if clear is not None:
         at_risk += (
@@ -141,18 +143,18 @@ def _outcome_docs(ctx: CompileContext, name: str) -> list[ColumnDoc]:
             "whose latest date is the first date any rule is met; when several sets meet a "
             "rule that day, the earliest evidence of all of them), "
         )
-    at_risk_event = f"at_risk_{name} and " if clear is not None else ""
+    at_risk_event = f"{c.at_risk} and " if clear is not None else ""
     return [
         ColumnDoc(
-            f"prevalent_{name}",
+            c.prevalent,
             "BOOLEAN",
             "",
             f"{title} on or before the index date",
-            f"onset_{name} <= index_date",
+            f"{c.onset} <= index_date",
             source,
         ),
         ColumnDoc(
-            f"at_risk_{name}",
+            c.at_risk,
             "BOOLEAN",
             "",
             f"at risk of {title} at index",
@@ -160,15 +162,15 @@ def _outcome_docs(ctx: CompileContext, name: str) -> list[ColumnDoc]:
             source,
         ),
         ColumnDoc(
-            f"incident_{name}",
+            c.incident,
             "BOOLEAN",
             "",
             f"{title} developed during follow-up",
-            f"{at_risk_event}index_date < onset_{name} <= followup_end; empty when not at risk",
+            f"{at_risk_event}index_date < {c.onset} <= followup_end; empty when not at risk",
             source,
         ),
         ColumnDoc(
-            f"onset_{name}",
+            c.onset,
             "DATE",
             "",
             f"date a rule for {title} was first met"
@@ -179,28 +181,28 @@ def _outcome_docs(ctx: CompileContext, name: str) -> list[ColumnDoc]:
             source,
         ),
         ColumnDoc(
-            f"days_to_{name}",
+            c.days_to,
             "INTEGER",
             "days",
             f"days from index to {title}",
-            f"onset_{name} - index_date when incident, else empty",
+            f"{c.onset} - index_date when incident, else empty",
             source,
         ),
         ColumnDoc(
-            f"time_{name}",
+            c.time,
             "INTEGER",
             "days",
             f"time at risk of {title}, for survival analysis (person-years: days / 365.25)",
-            f"when incident_{name}: onset_{name} - index_date (= days_to_{name}); otherwise "
+            f"when {c.incident}: {c.onset} - index_date (= {c.days_to}); otherwise "
             f"followup_end - index_date (= followup_days); empty when not at risk",
             source,
         ),
         ColumnDoc(
-            f"event_{name}",
+            c.event,
             "INTEGER",
             "",
-            f"how time_{name} ends: 1 {title}, 2 death first (a competing event), 0 censored",
-            f"1 when incident_{name} (an onset on the day of death counts: 1); otherwise 2 when "
+            f"how {c.time} ends: 1 {title}, 2 death first (a competing event), 0 censored",
+            f"1 when {c.incident} (an onset on the day of death counts: 1); otherwise 2 when "
             "end_reason is death; otherwise 0 (follow-up ended for another reason); empty when "
             "not at risk",
             source,

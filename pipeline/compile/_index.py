@@ -11,25 +11,26 @@ from __future__ import annotations
 
 from sqlglot import exp
 
+from pipeline.compile import names
 from pipeline.compile._context import INDEX_EVENT, CompileContext, evidence_id
 from pipeline.compile._plan import Stage
 from pipeline.compile._sql import query, value
 
 _FIRST_ENCOUNTER = """
 SELECT patient_id, first_in_window AS index_date
-FROM encounter_summary
+FROM :summary
 WHERE first_in_window IS NOT NULL
 """
 
 _FIXED_DATE = """
 SELECT patient_id, :day AS index_date
-FROM encounter_summary
+FROM :summary
 WHERE first_encounter <= :day
 """
 
 _FIRST_EVIDENCE = """
 SELECT patient_id, MIN(event_date) AS index_date
-FROM evidence_events
+FROM :events
 WHERE evidence = :key AND event_date BETWEEN :start AND :end
 GROUP BY patient_id
 """
@@ -53,7 +54,7 @@ FROM (
     ) AS draw
   FROM (
     SELECT DISTINCT patient_id, encounter_date
-    FROM encounter_rows
+    FROM :encounters
     WHERE encounter_date BETWEEN :start AND :end
   ) AS days
 ) AS drawn
@@ -70,42 +71,54 @@ def index_stage(ctx: CompileContext) -> Stage:
             f" of type {', '.join(rule.first_encounter.type)}" if rule.first_encounter.type else ""
         )
         return Stage(
-            "index_dates",
-            query(_FIRST_ENCOUNTER),
-            ("encounter_summary",),
+            names.INDEX_DATES,
+            query(_FIRST_ENCOUNTER, summary=exp.to_table(names.ENCOUNTER_SUMMARY)),
+            (names.ENCOUNTER_SUMMARY,),
             f"index: the first encounter{kinds} between {start} and {end}",
         )
     if rule.fixed_date is not None:
         return Stage(
-            "index_dates",
-            query(_FIXED_DATE, day=rule.fixed_date),
-            ("encounter_summary",),
+            names.INDEX_DATES,
+            query(_FIXED_DATE, summary=exp.to_table(names.ENCOUNTER_SUMMARY), day=rule.fixed_date),
+            (names.ENCOUNTER_SUMMARY,),
             f"index: {rule.fixed_date} for everyone with an encounter on or before it",
         )
     if rule.first_event is not None:
         event = rule.first_event
         start, end = event.between
         if event.condition is not None:
-            onsets = f"onset_{event.condition}"
+            onsets = names.onset_stage(event.condition)
             return Stage(
-                "index_dates",
+                names.INDEX_DATES,
                 query(_CONDITION_ONSET, onsets=exp.to_table(onsets), start=start, end=end),
                 (onsets,),
                 f"index: the onset of {event.condition} between {start} and {end}",
             )
         return Stage(
-            "index_dates",
-            query(_FIRST_EVIDENCE, key=evidence_id(INDEX_EVENT), start=start, end=end),
-            ("evidence_events",),
+            names.INDEX_DATES,
+            query(
+                _FIRST_EVIDENCE,
+                events=exp.to_table(names.EVIDENCE_EVENTS),
+                key=evidence_id(INDEX_EVENT),
+                start=start,
+                end=end,
+            ),
+            (names.EVIDENCE_EVENTS,),
             f"index: the first qualifying event between {start} and {end}",
         )
     draw = rule.random_encounter
     assert draw is not None  # the model requires exactly one strategy
     start, end = draw.between
     return Stage(
-        "index_dates",
-        query(_RANDOM_ENCOUNTER, seed=value(str(draw.seed)), start=start, end=end),
-        ("encounter_rows",),
+        names.INDEX_DATES,
+        query(
+            _RANDOM_ENCOUNTER,
+            encounters=exp.to_table(names.ENCOUNTER_ROWS),
+            seed=value(str(draw.seed)),
+            start=start,
+            end=end,
+        ),
+        (names.ENCOUNTER_ROWS,),
         f"index: one encounter day between {start} and {end} drawn with seed {draw.seed}",
     )
 

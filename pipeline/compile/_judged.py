@@ -39,20 +39,37 @@ CASE
 END
 """
 
+# ``r`` is the row, ``p`` its patient in patient_base (joined on the left); ``:day`` its date.
 _RECORD_PROBLEM = """
 CASE
   WHEN r.source_problem IS NOT NULL THEN r.source_problem
   WHEN p.patient_id IS NULL THEN 'orphan patient'
-  WHEN r.row_date IS NULL THEN 'unparseable date'
+  WHEN :day IS NULL THEN 'unparseable date'
 END
 """
 
 _TIMING_PROBLEM = """
 CASE
-  WHEN r.row_date > :end_of_data THEN 'after end of data'
-  WHEN p.death_date IS NOT NULL AND r.row_date > p.death_date THEN 'after death'
+  WHEN :day > :end_of_data THEN 'after end of data'
+  WHEN p.death_date IS NOT NULL AND :day > p.death_date THEN 'after death'
 END
 """
+
+
+def record_problem(day: exp.Expression) -> exp.Expression:
+    """What is wrong with a row's record: the reader's problem, an unknown patient, no date.
+
+    The row is ``r`` (with ``source_problem``), its patient ``p`` (``patient_base``, joined on
+    the left), ``day`` the row's date. NULL when the record is sound. Shared by every event
+    table's judgement and the measurements' (``measurement_rows``), so contact and the quality
+    log read the same parts whatever the table.
+    """
+    return template(_RECORD_PROBLEM, day=day)
+
+
+def timing_problem(day: exp.Expression, end_of_data: dt.date) -> exp.Expression:
+    """A row dated after the end of data or after its patient's death (NULL otherwise)."""
+    return template(_TIMING_PROBLEM, day=day, end_of_data=end_of_data)
 
 
 def patients_judged(table: SourceTable, unreadable_date: exp.Expression) -> Stage:
@@ -96,10 +113,11 @@ def event_judged(
         columns.append(value(table.name).as_("source_table"))
         columns += [c.as_(n) for n, c in raw_codes.items()]
         columns.append(_duration(table.name, row_date).as_("duration_days"))
-    parts = [template(_RECORD_PROBLEM).as_("record_problem")]
+    day = exp.column("row_date", "r")
+    parts = [record_problem(day).as_("record_problem")]
     if raw_codes is not None:
         parts.append(exp.column("problem", "c").as_("code_problem"))
-    parts.append(template(_TIMING_PROBLEM, end_of_data=end_of_data).as_("timing_problem"))
+    parts.append(timing_problem(day, end_of_data).as_("timing_problem"))
     judged = (
         exp.select(exp.column(exp.Star(), "r"), *parts)
         .from_(exp.select(*columns).from_(table.relation).subquery("r"))

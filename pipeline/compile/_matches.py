@@ -12,6 +12,9 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+from sqlglot import exp
+
+from pipeline.compile import names
 from pipeline.compile._context import (
     INDEX_EVENT,
     CompileContext,
@@ -23,11 +26,11 @@ from pipeline.compile._context import (
 from pipeline.compile._plan import Stage
 from pipeline.compile._sql import query
 
-EVIDENCE_COUNTS = "evidence_counts"
+EVIDENCE_COUNTS = names.EVIDENCE_COUNTS
 
 _EVIDENCE_COUNTS = """
 SELECT evidence, COUNT(*) AS n_events
-FROM evidence_events
+FROM :events
 GROUP BY evidence
 """
 
@@ -38,8 +41,8 @@ def match_count_stages(ctx: CompileContext) -> tuple[Stage, ...]:
     return (
         Stage(
             EVIDENCE_COUNTS,
-            query(_EVIDENCE_COUNTS),
-            ("evidence_events",),
+            query(_EVIDENCE_COUNTS, events=exp.to_table(names.EVIDENCE_EVENTS)),
+            (names.EVIDENCE_EVENTS,),
             "patient-days per piece of evidence, so a definition matching no row is reported",
         ),
     )

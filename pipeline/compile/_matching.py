@@ -35,6 +35,7 @@ from __future__ import annotations
 
 from sqlglot import exp
 
+from pipeline.compile import names
 from pipeline.compile._contact import uses_contact_rows
 from pipeline.compile._context import CompileContext
 from pipeline.compile._plan import ColumnDoc, Stage
@@ -64,7 +65,7 @@ FROM (
       END AS starts
     FROM (
       SELECT DISTINCT c.patient_id, c.contact_date
-      FROM {contacts} AS c
+      FROM :contacts AS c
       JOIN matching_pool AS q ON q.patient_id = c.patient_id
     ) AS d
   ) AS m
@@ -72,10 +73,14 @@ FROM (
 GROUP BY patient_id, spell
 """
 
-_CONTACTS = {
-    "contact_rows": "contact_rows",
-    "encounter_rows": "(SELECT patient_id, encounter_date AS contact_date FROM encounter_rows)",
-}
+
+def _contacts(relation: str) -> exp.Expression:
+    """The contacts spells are made of: ``contact_rows``, or usable encounters as contacts."""
+    if relation == names.CONTACT_ROWS:
+        return exp.to_table(relation)
+    dates = exp.select("patient_id", exp.column("encounter_date").as_("contact_date"))
+    return dates.from_(relation).subquery()
+
 
 _SETS = """
 SELECT
@@ -154,6 +159,7 @@ def _same_practice(option: Matching, left: str, right: str) -> exp.Expression:
 def _pool_query(name: str) -> exp.Query:
     """The cohort with what matching reads: matching variables, follow-up, the outcome."""
     column = exp.column
+    outcome = names.outcome_columns(name)
     return (
         exp.select(
             column("patient_id", "c"),
@@ -164,12 +170,12 @@ def _pool_query(name: str) -> exp.Query:
             column("followup_end", "c"),
             column("death_date", "p"),
             column("deregistration_date", "p"),
-            column(f"at_risk_{name}", "c").as_("at_risk"),
-            exp.func("COALESCE", column(f"incident_{name}", "c"), exp.false()).as_("incident"),
-            column(f"onset_{name}", "c").as_("onset"),
+            column(outcome.at_risk, "c").as_("at_risk"),
+            exp.func("COALESCE", column(outcome.incident, "c"), exp.false()).as_("incident"),
+            column(outcome.onset, "c").as_("onset"),
         )
-        .from_("cohort AS c")
-        .join("patient_base AS p", on="p.patient_id = c.patient_id")
+        .from_(exp.to_table(names.COHORT).as_("c"))
+        .join(exp.to_table(names.PATIENT_BASE).as_("p"), on="p.patient_id = c.patient_id")
     )
 
 
@@ -181,10 +187,15 @@ def matching_stages(ctx: CompileContext) -> tuple[Stage, ...]:
     option = ctx.study.matching
     if option is None:
         return ()
-    contacts = "contact_rows" if uses_contact_rows(ctx.study, ctx.eligibility) else "encounter_rows"
+    contacts = (
+        names.CONTACT_ROWS
+        if uses_contact_rows(ctx.study, ctx.eligibility)
+        else names.ENCOUNTER_ROWS
+    )
     within = option.contact_within_days
     spells = query(
-        _SPELLS.replace("{contacts}", _CONTACTS[contacts]),
+        _SPELLS,
+        contacts=_contacts(contacts),
         spell_end=add_days(exp.func("MAX", exp.column("contact_date")), within),
         gap_start=add_days(exp.column("contact_date"), -within),
     )
@@ -214,7 +225,7 @@ def matching_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         Stage(
             "matching_pool",
             _pool_query(option.cases_of),
-            ("cohort", "patient_base"),
+            (names.COHORT, names.PATIENT_BASE),
             f"the cohort with its matching variables, follow-up and {option.cases_of} onset",
         ),
         Stage(
@@ -292,7 +303,8 @@ def matched_docs(ctx: CompileContext) -> tuple[ColumnDoc, ...]:
             "INTEGER",
             "",
             "the matched set: one per incident case, numbered 1, 2, ... by set date, then case id",
-            f"ROW_NUMBER over incident {name} cases ordered by onset_{name}, patient_id",
+            f"ROW_NUMBER over incident {name} cases ordered by {names.onset_column(name)}, "
+            "patient_id",
             "cohort",
         ),
         ColumnDoc("role", "VARCHAR", "", "case or control", "case: the set's own case", "study"),
@@ -318,7 +330,7 @@ def matched_docs(ctx: CompileContext) -> tuple[ColumnDoc, ...]:
             "DATE",
             "date",
             "the set's date: the case's onset; a control's index date in the matched analysis",
-            f"onset_{name} of the set's case",
+            f"{names.onset_column(name)} of the set's case",
             "diagnoses, prescriptions, measurements",
         ),
         ColumnDoc(

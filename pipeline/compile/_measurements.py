@@ -13,6 +13,7 @@ from sqlglot import exp
 
 from pipeline.compile import names
 from pipeline.compile._context import CompileContext
+from pipeline.compile._judged import record_problem, timing_problem
 from pipeline.compile._plan import Stage
 from pipeline.compile._sources import MEASUREMENTS, grouped_rows
 from pipeline.compile._sql import (
@@ -103,12 +104,9 @@ SELECT
   r.source_position,
   r.source_problem,
   u.factor * r.reading / u.divisor + u.offset_value AS value,
-  CASE
-    WHEN r.source_problem IS NOT NULL THEN r.source_problem
-    WHEN p.patient_id IS NULL THEN 'orphan patient'
-    WHEN r.obs_date IS NULL THEN 'unparseable date'
-    WHEN r.obs_date > :end_of_data THEN 'after end of data'
-    WHEN p.death_date IS NOT NULL AND r.obs_date > p.death_date THEN 'after death'
+  :record_problem AS record_problem,
+  :timing_problem AS timing_problem,
+  COALESCE(:record_problem, :timing_problem, CASE
     WHEN k.measure IS NULL THEN 'unknown measure'
     WHEN k.is_coded AND (r.category IS NULL OR NOT (:known_category))
       THEN 'category not recognised'
@@ -119,9 +117,9 @@ SELECT
     WHEN u.measure IS NULL THEN 'unit not convertible'
     WHEN u.factor * r.reading / u.divisor + u.offset_value NOT BETWEEN u.low AND u.high
       THEN 'implausible value'
-  END AS problem
+  END) AS problem
 FROM parsed AS r
-LEFT JOIN patient_base AS p ON p.patient_id = r.patient_id
+LEFT JOIN :base AS p ON p.patient_id = r.patient_id
 LEFT JOIN :known ON k.measure = r.measure
 LEFT JOIN :units ON u.measure = r.measure AND u.unit = r.unit
 """
@@ -173,7 +171,7 @@ def measurement_passes(measurement: MeasurementEvidence) -> exp.Expression:
 
 _MEASUREMENT_VALUES = """
 SELECT patient_id, obs_date, measure, value, qualifier, category, FALSE AS derived
-FROM measurements_judged
+FROM :judged
 WHERE problem IS NULL AND :wanted
 """
 
@@ -192,12 +190,12 @@ FROM (
       * POWER(GREATEST(c.value / k.kappa, 1), -1.2)
       * POWER(0.9938, :age)
       * k.female_factor AS egfr
-  FROM measurement_values AS c
-  JOIN patient_base AS p ON p.patient_id = c.patient_id
+  FROM :kept AS c
+  JOIN :base AS p ON p.patient_id = c.patient_id
   JOIN (VALUES ('F', 0.7, -0.241, 1.012), ('M', 0.9, -0.302, 1.0))
     AS k(sex, kappa, alpha, female_factor) ON k.sex = p.sex
   LEFT JOIN (
-    SELECT DISTINCT patient_id, obs_date FROM measurement_values WHERE measure = 'egfr'
+    SELECT DISTINCT patient_id, obs_date FROM :kept WHERE measure = 'egfr'
   ) AS r ON r.patient_id = c.patient_id AND r.obs_date = c.obs_date
   WHERE c.measure = 'creatinine' AND c.qualifier IS NULL AND r.patient_id IS NULL
     AND p.birth_date IS NOT NULL
@@ -213,20 +211,20 @@ SELECT patient_id, obs_date, 'bmi' AS measure, bmi AS value, CAST(NULL AS VARCHA
   CAST(NULL AS VARCHAR) AS category, TRUE AS derived
 FROM (
   SELECT w.patient_id, w.obs_date, w.value / POWER(h.height_cm / 100, 2) AS bmi
-  FROM measurement_values AS w
+  FROM :kept AS w
   JOIN (
     SELECT patient_id, AVG(value) AS height_cm
     FROM (
       SELECT patient_id, value, obs_date,
         MAX(obs_date) OVER (PARTITION BY patient_id) AS last_date
-      FROM measurement_values
+      FROM :kept
       WHERE measure = 'height' AND qualifier IS NULL
     ) AS heights
     WHERE obs_date = last_date
     GROUP BY patient_id
   ) AS h ON h.patient_id = w.patient_id
   LEFT JOIN (
-    SELECT DISTINCT patient_id, obs_date FROM measurement_values WHERE measure = 'bmi'
+    SELECT DISTINCT patient_id, obs_date FROM :kept WHERE measure = 'bmi'
   ) AS r ON r.patient_id = w.patient_id AND r.obs_date = w.obs_date
   WHERE w.measure = 'weight' AND w.qualifier IS NULL AND r.patient_id IS NULL
 ) AS d
@@ -269,24 +267,29 @@ def _judged_rows(ctx: CompileContext) -> exp.Query:
             lab_tests=values_table("t", ["local_code", "measure"], list(ctx.local_codes.lab_tests)),
         )
         name = exp.func("COALESCE", exp.column("mapped_measure"), name)
+    day = exp.column("obs_date", "r")
     return query(
         _MEASUREMENT_ROWS,
         measure_name=name,
         pattern=READING_PATTERN,
         decimal_comma=DECIMAL_COMMA_PATTERN,
-        end_of_data=ctx.study.end_of_data,
+        record_problem=record_problem(day),
+        timing_problem=timing_problem(day, ctx.study.end_of_data),
         known=known,
         units=units,
         known_category=known_category,
         distinct_rows=rows.subquery("d"),
+        base=exp.to_table(names.PATIENT_BASE),
     )
 
 
+# The record and timing parts of the judgement are kept for contact with the practice, which
+# counts a measurement whatever its value (``dated_and_placed`` in compile/_judged.py).
 _JUDGED = """
 SELECT
   patient_id, obs_date, measure, value, qualifier, category, copies, source_position,
-  source_problem, problem
-FROM measurement_rows
+  source_problem, record_problem, timing_problem, problem
+FROM :rows
 """
 
 
@@ -338,7 +341,11 @@ def _kept_rows(ctx: CompileContext) -> exp.Expression | None:
 
 
 def _values_stage(ctx: CompileContext) -> Stage:
-    values = query(_MEASUREMENT_VALUES, wanted=is_in(exp.column("measure"), ctx.measures))
+    values = query(
+        _MEASUREMENT_VALUES,
+        judged=exp.to_table(names.MEASUREMENTS_JUDGED),
+        wanted=is_in(exp.column("measure"), ctx.measures),
+    )
     kept = _kept_rows(ctx)
     if kept is None:
         return Stage(
@@ -377,7 +384,7 @@ def measurement_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         ),
         Stage(
             names.MEASUREMENTS_JUDGED,
-            query(_JUDGED),
+            query(_JUDGED, rows=exp.to_table(names.MEASUREMENT_ROWS)),
             (names.MEASUREMENT_ROWS,),
             "every measurement row parsed, converted and judged: values and quality log",
             kind="table" if check else "view",
@@ -390,7 +397,14 @@ def measurement_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         stages.append(
             Stage(
                 names.DERIVED_EGFR,
-                query(_DERIVED_EGFR, age=age, low=low, high=high),
+                query(
+                    _DERIVED_EGFR,
+                    kept=exp.to_table(names.MEASUREMENT_VALUES),
+                    base=exp.to_table(names.PATIENT_BASE),
+                    age=age,
+                    low=low,
+                    high=high,
+                ),
                 (names.MEASUREMENT_VALUES, names.PATIENT_BASE),
                 "eGFR derived from creatinine by CKD-EPI 2021 where none was reported that day",
             )
@@ -400,7 +414,9 @@ def measurement_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         stages.append(
             Stage(
                 names.DERIVED_BMI,
-                query(_DERIVED_BMI, low=low, high=high),
+                query(
+                    _DERIVED_BMI, kept=exp.to_table(names.MEASUREMENT_VALUES), low=low, high=high
+                ),
                 (names.MEASUREMENT_VALUES,),
                 "BMI from weight and the latest height where none was reported that day",
             )

@@ -21,6 +21,7 @@ from __future__ import annotations
 
 from sqlglot import exp
 
+from pipeline.compile import names
 from pipeline.compile._context import CompileContext
 from pipeline.compile._plan import ColumnDoc, Stage
 from pipeline.compile._sql import add_days, days_between, value
@@ -148,9 +149,11 @@ def _split_by_years(source: exp.Expression, carried: list[str]) -> tuple[exp.Sel
 
 def _outcome_cells(name: str) -> list[exp.Expression]:
     """``days_at_risk_X`` and ``events_X`` of one cell (both NULL when not at risk of X)."""
-    onset = exp.column(f"onset_{name}", "p")
+    columns = names.outcome_columns(name)
+    days_at_risk, events_in = names.persontime_columns(name)
+    onset = exp.column(columns.onset, "p")
     start, end = _piece("piece_start"), _piece("piece_end")
-    at_risk = exp.column(f"at_risk_{name}", "p")
+    at_risk = exp.column(columns.at_risk, "p")
     days = exp.Add(this=days_between(start.copy(), end.copy()), expression=exp.Literal.number(1))
     risk = (
         exp.Case()
@@ -168,14 +171,14 @@ def _outcome_cells(name: str) -> list[exp.Expression]:
         .else_(exp.Literal.number(0))
     )
     return [
-        exp.cast(risk, "INT").as_(f"days_at_risk_{name}"),
-        exp.cast(events, "TINYINT").as_(f"events_{name}"),
+        exp.cast(risk, "INT").as_(days_at_risk),
+        exp.cast(events, "TINYINT").as_(events_in),
     ]
 
 
 def _spans_query(ctx: CompileContext) -> exp.Query:
     """Each cohort patient's follow-up days as one span, with each outcome's incident onset."""
-    names = [o.condition for o in ctx.outcomes]
+    columns = [names.outcome_columns(o.condition) for o in ctx.outcomes]
     cohort = exp.column
     return (
         exp.select(
@@ -184,28 +187,27 @@ def _spans_query(ctx: CompileContext) -> exp.Query:
             cohort("index_date", "c"),
             add_days(cohort("index_date", "c"), 1).as_("piece_start"),
             cohort("followup_end", "c").as_("piece_end"),
-            *(cohort(f"at_risk_{n}", "c").as_(f"at_risk_{n}") for n in names),
+            *(cohort(c.at_risk, "c").as_(c.at_risk) for c in columns),
             *(
-                exp.Case()
-                .when(cohort(f"incident_{n}", "c"), cohort(f"onset_{n}", "c"))
-                .as_(f"onset_{n}")
-                for n in names
+                exp.Case().when(cohort(c.incident, "c"), cohort(c.onset, "c")).as_(c.onset)
+                for c in columns
             ),
         )
-        .from_("cohort AS c")
-        .join("eligibility AS e", on="e.patient_id = c.patient_id")
+        .from_(exp.to_table(names.COHORT).as_("c"))
+        .join(exp.to_table(names.ELIGIBILITY).as_("e"), on="e.patient_id = c.patient_id")
         .where(cohort("followup_end", "c") > cohort("index_date", "c"))
     )
 
 
-def cells_query(names: list[str], option: PersonTime) -> exp.Query:
-    """The ``persontime`` stage's query for outcomes ``names``: it reads ``persontime_spans``.
+def cells_query(outcomes: list[str], option: PersonTime) -> exp.Query:
+    """The ``persontime`` stage's query for the named outcomes: it reads ``persontime_spans``.
 
     One row per patient and cell, from a span per patient (``piece_start``, ``piece_end``,
     ``birth_date``, ``index_date``, ``at_risk_X`` and the incident ``onset_X``).
     """
-    carried = [*_CARRIED, *(f"at_risk_{n}" for n in names), *(f"onset_{n}" for n in names)]
-    source: exp.Expression = exp.to_table("persontime_spans").as_("p")
+    columns = [names.outcome_columns(n) for n in outcomes]
+    carried = [*_CARRIED, *(c.at_risk for c in columns), *(c.onset for c in columns)]
+    source: exp.Expression = exp.to_table(names.PERSONTIME_SPANS).as_("p")
     query, carried = _split_by_bands(
         source,
         carried,
@@ -238,33 +240,35 @@ def cells_query(names: list[str], option: PersonTime) -> exp.Query:
         start.copy().as_("cell_start"),
         end.copy().as_("cell_end"),
         exp.cast(days, "INT").as_("days"),
-        *(column for n in names for column in _outcome_cells(n)),
+        *(column for n in outcomes for column in _outcome_cells(n)),
     ).from_(query.subquery("p"))
+
+
+def _outcome_sums(outcome: str) -> tuple[exp.Expression, ...]:
+    """A patient's days at risk, events and marked cells of one outcome, over their cells."""
+    days_at_risk, events_in = names.persontime_columns(outcome)
+    return (
+        exp.func("SUM", exp.column(days_at_risk)).as_(f"risk_{outcome}"),
+        exp.func("SUM", exp.column(events_in)).as_(events_in),
+        exp.Add(
+            this=exp.func("COUNT", exp.column(days_at_risk)),
+            expression=exp.func("COUNT", exp.column(events_in)),
+        ).as_(f"marked_{outcome}"),
+    )
 
 
 def _accounting_query(ctx: CompileContext) -> exp.Query:
     """Cohort patients whose cells do not add up, with the first quantity that differs."""
-    names = [o.condition for o in ctx.outcomes]
+    outcomes = [o.condition for o in ctx.outcomes]
     sums = (
         exp.select(
             "patient_id",
             exp.func("SUM", exp.column("days")).as_("days"),
             exp.func("MIN", exp.column("cell_start")).as_("first_day"),
             exp.func("MAX", exp.column("cell_end")).as_("last_day"),
-            *(
-                part
-                for n in names
-                for part in (
-                    exp.func("SUM", exp.column(f"days_at_risk_{n}")).as_(f"risk_{n}"),
-                    exp.func("SUM", exp.column(f"events_{n}")).as_(f"events_{n}"),
-                    exp.Add(
-                        this=exp.func("COUNT", exp.column(f"days_at_risk_{n}")),
-                        expression=exp.func("COUNT", exp.column(f"events_{n}")),
-                    ).as_(f"marked_{n}"),
-                )
-            ),
+            *(part for n in outcomes for part in _outcome_sums(n)),
         )
-        .from_("persontime")
+        .from_(names.PERSONTIME)
         .group_by("patient_id")
     )
 
@@ -282,17 +286,19 @@ def _accounting_query(ctx: CompileContext) -> exp.Query:
             "cells do not run from index + 1 to followup_end",
         ),
     ]
-    for n in names:
-        at_risk = exp.column(f"at_risk_{n}", "c")
-        incident = exp.Case().when(exp.column(f"incident_{n}", "c"), 1).else_(0)
+    for n in outcomes:
+        columns = names.outcome_columns(n)
+        at_risk = exp.column(columns.at_risk, "c")
+        incident = exp.Case().when(exp.column(columns.incident, "c"), 1).else_(0)
+        days_at_risk, events_in = names.persontime_columns(n)
         differences += [
             (
-                exp.and_(at_risk.copy(), total(f"risk_{n}").neq(exp.column(f"time_{n}", "c"))),
-                f"days_at_risk_{n} <> time_{n}",
+                exp.and_(at_risk.copy(), total(f"risk_{n}").neq(exp.column(columns.time, "c"))),
+                f"{days_at_risk} <> {columns.time}",
             ),
             (
-                exp.and_(at_risk.copy(), total(f"events_{n}").neq(incident)),
-                f"events_{n} <> incident_{n}",
+                exp.and_(at_risk.copy(), total(events_in).neq(incident)),
+                f"{events_in} <> {columns.incident}",
             ),
             (
                 exp.and_(exp.not_(at_risk.copy()), total(f"marked_{n}") > 0),
@@ -304,7 +310,7 @@ def _accounting_query(ctx: CompileContext) -> exp.Query:
         reason = reason.when(condition.copy(), value(text))
     return (
         exp.select(exp.column("patient_id", "c"), reason.as_("difference"))
-        .from_("cohort AS c")
+        .from_(exp.to_table(names.COHORT).as_("c"))
         .join(sums.subquery("s"), on="s.patient_id = c.patient_id", join_type="left")
         .where(exp.or_(*(condition for condition, _ in differences)))
         .order_by(exp.column("patient_id", "c"))
@@ -319,23 +325,23 @@ def persontime_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         return ()
     return (
         Stage(
-            "persontime_spans",
+            names.PERSONTIME_SPANS,
             _spans_query(ctx),
-            ("cohort", "eligibility"),
+            (names.COHORT, names.ELIGIBILITY),
             "each cohort patient's follow-up days (index + 1 to followup_end) and incident onsets",
             kind="view",
         ),
         Stage(
-            "persontime",
+            names.PERSONTIME,
             cells_query([o.condition for o in ctx.outcomes], option),
-            ("persontime_spans",),
+            (names.PERSONTIME_SPANS,),
             "follow-up split at age bands, calendar years and time since index, with days at "
             "risk and events per outcome",
         ),
         Stage(
-            "persontime_accounting",
+            names.PERSONTIME_ACCOUNTING,
             _accounting_query(ctx),
-            ("cohort", "persontime"),
+            (names.COHORT, names.PERSONTIME),
             "every patient's cells add up to followup_days, time_X and incident_X",
             kind="check",
             failure=(
@@ -421,25 +427,27 @@ def persontime_docs(ctx: CompileContext) -> tuple[ColumnDoc, ...]:
     ]
     for outcome in ctx.outcomes:
         n = outcome.condition
+        columns = names.outcome_columns(n)
+        days_at_risk, events_in = names.persontime_columns(n)
         docs += [
             ColumnDoc(
-                f"days_at_risk_{n}",
+                days_at_risk,
                 "INTEGER",
                 "days",
                 f"days of the cell at risk of {n}",
                 f"the cell's days up to and including the onset of an incident case, 0 after "
-                f"it; empty when not at risk (at_risk_{n} false); over a patient's cells they "
-                f"add up to time_{n} (checked on every build)",
+                f"it; empty when not at risk ({columns.at_risk} false); over a patient's cells "
+                f"they add up to {columns.time} (checked on every build)",
                 "cohort",
             ),
             ColumnDoc(
-                f"events_{n}",
+                events_in,
                 "TINYINT",
                 "patients",
                 f"1 in the cell holding the onset of incident {n}",
-                f"1 when onset_{n} of an incident case falls in the cell, else 0; empty when "
-                f"not at risk; over a patient's cells they add up to incident_{n} (checked on "
-                "every build)",
+                f"1 when {columns.onset} of an incident case falls in the cell, else 0; empty "
+                f"when not at risk; over a patient's cells they add up to {columns.incident} "
+                "(checked on every build)",
                 "cohort",
             ),
         ]

@@ -18,6 +18,7 @@ import datetime as dt
 
 from sqlglot import exp
 
+from pipeline.compile import names
 from pipeline.compile._context import CompileContext, evidence_id, evidence_key
 from pipeline.compile._plan import Stage
 from pipeline.compile._sql import add_days, days_between, expression, query, value
@@ -126,8 +127,8 @@ def _absent_in_frame(rule: Rule, keys: list[exp.Expression]) -> exp.Expression:
     ).as_("absent_in_frame")
 
 
-def _keys(condition: Condition, names: list[str] | tuple[str, ...]) -> list[exp.Expression]:
-    return [evidence_id(evidence_key(condition.condition, n)) for n in names]
+def _keys(condition: Condition, needed: list[str] | tuple[str, ...]) -> list[exp.Expression]:
+    return [evidence_id(evidence_key(condition.condition, n)) for n in needed]
 
 
 def rule_query(
@@ -149,9 +150,9 @@ def rule_query(
             a set: a set without an event on that day would have met the rule earlier); for a
             two-event rule, the earliest partner that the day's events pair with.
     """
-    source = events if events is not None else exp.to_table("evidence_events")
-    names = sorted(rule.need)
-    keys = _keys(condition, names)
+    source = events if events is not None else exp.to_table(names.EVIDENCE_EVENTS)
+    wanted = sorted(rule.need)
+    keys = _keys(condition, wanted)
     frame, bounds = _frame(rule)
     weight = exp.Literal.number(1) if rule.distinct_days else exp.column("n_rows")
     counts = [
@@ -162,7 +163,7 @@ def rule_query(
     ]
     needed = exp.column("evidence").isin(*(k.copy() for k in keys))
     relevant: exp.Expression = needed
-    met = _met(rule, names, keys)
+    met = _met(rule, wanted, keys)
     if rule.absent and rule.absent_window is None:
         absent = exp.select("patient_id").from_(source.copy())
         absent = absent.where(exp.column("evidence").isin(*_keys(condition, rule.absent)))
@@ -183,7 +184,7 @@ def rule_query(
             condition=condition.condition,
             rule=rule.name,
             counted=counted.subquery("counted"),
-            met=_met(rule, names, keys),
+            met=_met(rule, wanted, keys),
         )
     return query(
         _RULE_MET,
@@ -211,10 +212,10 @@ def _set_start(
     return exp.Case().when(exp.column("evidence").eq(keys[0].copy()), firsts[1]).else_(firsts[0])
 
 
-def _met(rule: Rule, names: list[str], keys: list[str]) -> exp.Expression:
+def _met(rule: Rule, needed: list[str], keys: list[str]) -> exp.Expression:
     if rule.apart_at_least_days is None:
         return exp.and_(
-            *(exp.column(f"in_frame_{i}") >= rule.need[name] for i, name in enumerate(names))
+            *(exp.column(f"in_frame_{i}") >= rule.need[name] for i, name in enumerate(needed))
         )
     # Exactly two events: the current row is one, the frame must hold the other.
     if len(keys) == 1:
@@ -240,11 +241,11 @@ def _events_for(condition: Condition) -> tuple[exp.Expression, tuple[str, ...]]:
     """The evidence events a condition reads, with its referenced conditions' onsets added."""
     own = (
         exp.select("patient_id", "evidence", "event_date", "day", "n_rows")
-        .from_("evidence_events")
+        .from_(names.EVIDENCE_EVENTS)
         .where(exp.column("evidence").isin(*_keys(condition, sorted(condition.evidence))))
     )
     parts: list[exp.Query] = [own]
-    depends = ["evidence_events"]
+    depends = [names.EVIDENCE_EVENTS]
     epoch = value(dt.date(1970, 1, 1))
     for name, ev in sorted(condition.evidence.items()):
         if ev.condition is not None:
@@ -253,13 +254,13 @@ def _events_for(condition: Condition) -> tuple[exp.Expression, tuple[str, ...]]:
                     _REFERENCED_ONSETS,
                     key=evidence_id(evidence_key(condition.condition, name)),
                     day=days_between(epoch, exp.column("onset_date")),
-                    onsets=exp.to_table(f"onset_{ev.condition}"),
+                    onsets=exp.to_table(names.onset_stage(ev.condition)),
                 )
             )
-            depends.append(f"onset_{ev.condition}")
+            depends.append(names.onset_stage(ev.condition))
     if len(parts) == 1:
-        return exp.to_table("evidence_events"), ("evidence_events",)
-    return _union_all(parts).subquery("evidence_events"), tuple(depends)
+        return exp.to_table(names.EVIDENCE_EVENTS), (names.EVIDENCE_EVENTS,)
+    return _union_all(parts).subquery(names.EVIDENCE_EVENTS), tuple(depends)
 
 
 def condition_stages(
@@ -272,20 +273,19 @@ def condition_stages(
     """
     name = condition.condition
     events, depends = _events_for(condition)
-    suffix = ""
+    lookback = lookback_days is not None
     if lookback_days is not None:
-        suffix = "_lookback"
         events = _since_lookback(events, lookback_days)
-        depends = (*depends, "index_dates")
+        depends = (*depends, names.INDEX_DATES)
     first = condition.onset == "first_evidence"
     rules = Stage(
-        f"rules_{name}{suffix}",
+        names.rules_stage(name, lookback=lookback),
         _union_all(
             [rule_query(condition, r, events.copy(), first_evidence=first) for r in condition.rules]
         ),
         depends,
         f"the first date each rule of {name} is met, per patient"
-        + (f", from evidence since {lookback_days} days before index" if suffix else ""),
+        + (f", from evidence since {lookback_days} days before index" if lookback else ""),
     )
     if condition.onset == "rule_met":
         onset_query = query(_ONSET_RULE_MET, rules=exp.to_table(rules.name))
@@ -298,7 +298,7 @@ def condition_stages(
             f"onset of {name}: the earliest evidence of the sets of events that first met a "
             "rule (on the first date any rule is met)"
         )
-    return rules, Stage(f"onset_{name}{suffix}", onset_query, onset_depends, why)
+    return rules, Stage(names.onset_stage(name, lookback=lookback), onset_query, onset_depends, why)
 
 
 def _since_lookback(events: exp.Expression, days: int) -> exp.Expression:
@@ -312,14 +312,14 @@ def _since_lookback(events: exp.Expression, days: int) -> exp.Expression:
         )
         .from_(source.as_("e"))
         .join(
-            "index_dates AS i",
+            exp.to_table(names.INDEX_DATES).as_("i"),
             on=exp.and_(
                 exp.column("patient_id", "i").eq(exp.column("patient_id", "e")),
                 exp.column("event_date", "e") >= start,
             ),
         )
     )
-    return recent.subquery("evidence_events")
+    return recent.subquery(names.EVIDENCE_EVENTS)
 
 
 def lookback_stages(ctx: CompileContext) -> tuple[Stage, ...]:
@@ -336,22 +336,24 @@ def rule_stages(ctx: CompileContext) -> tuple[Stage, ...]:
     """Per-condition rule and onset stages, then ``condition_onsets``: one column each."""
     stages = [stage for c in ctx.conditions for stage in condition_stages(c)]
     rows = [
-        exp.select("patient_id", value(name).as_("condition"), "onset_date").from_(f"onset_{name}")
+        exp.select("patient_id", value(name).as_("condition"), "onset_date").from_(
+            names.onset_stage(name)
+        )
         for name in ctx.flagged
     ]
     onsets = [
         exp.Min(
             this=exp.Case().when(exp.column("condition").eq(name), exp.column("onset_date"))
-        ).as_(f"onset_{name}")
+        ).as_(names.onset_column(name))
         for name in ctx.flagged
     ]
     stages.append(
         Stage(
-            "condition_onsets",
+            names.CONDITION_ONSETS,
             exp.select("patient_id", *onsets)
             .from_(_union_all(rows).subquery("onsets"))
             .group_by("patient_id"),
-            tuple(f"onset_{name}" for name in ctx.flagged),
+            tuple(names.onset_stage(name) for name in ctx.flagged),
             "each condition's onset per patient, one column per condition the table needs",
         )
     )

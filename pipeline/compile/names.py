@@ -107,6 +107,10 @@ PERSONTIME_ACCOUNTING = "persontime_accounting"
 
 # --- Generated columns. -------------------------------------------------------------------
 
+PREVALENT_PREFIX = "prevalent_"
+AT_RISK_PREFIX = "at_risk_"
+INCIDENT_PREFIX = "incident_"
+
 
 def onset_column(condition: str) -> str:
     """A condition's onset date as a column (``condition_onsets``, ``eligibility``, cohort)."""
@@ -115,7 +119,7 @@ def onset_column(condition: str) -> str:
 
 def prevalent_column(condition: str) -> str:
     """Whether ``condition``'s onset is on or before the index date."""
-    return f"prevalent_{condition}"
+    return f"{PREVALENT_PREFIX}{condition}"
 
 
 def clear_evidence_column(condition: str) -> str:
@@ -173,8 +177,20 @@ class OutcomeColumns:
         )
 
 
-OUTCOME_PREFIXES = ("prevalent_", "at_risk_", "incident_", "onset_", "days_to_", "time_", "event_")
-"""Prefixes of the per-outcome columns, in the order :class:`OutcomeColumns` lists them."""
+OUTCOME_PREFIXES = (
+    PREVALENT_PREFIX,
+    AT_RISK_PREFIX,
+    INCIDENT_PREFIX,
+    ONSET_PREFIX,
+    "days_to_",
+    "time_",
+    "event_",
+)
+"""Prefixes of the per-outcome columns, in the order :class:`OutcomeColumns` lists them.
+
+Readers that find the outcomes of an analysis table by its columns (the report, ``diff``,
+``explain``) test these prefixes instead of spelling them again.
+"""
 
 
 def outcome_columns(outcome: str) -> OutcomeColumns:
@@ -184,3 +200,12 @@ def outcome_columns(outcome: str) -> OutcomeColumns:
     'incident_ckd'
     """
     return OutcomeColumns(*(f"{prefix}{outcome}" for prefix in OUTCOME_PREFIXES))
+
+
+def persontime_columns(outcome: str) -> tuple[str, str]:
+    """One outcome's columns in ``persontime`` (a cell's days at risk and its events).
+
+    >>> persontime_columns("ckd")
+    ('days_at_risk_ckd', 'events_ckd')
+    """
+    return f"days_at_risk_{outcome}", f"events_{outcome}"

@@ -2,7 +2,9 @@
 
 The analysis table (``cohort.parquet``) names outcome columns by a fixed pattern, one set per
 outcome ``X``: ``prevalent_X``, ``at_risk_X``, ``incident_X`` (null when not at risk),
-``onset_X`` and ``days_to_X``. Keeping the pattern in one place means a rename touches one file.
+``onset_X``, ``days_to_X``, ``time_X`` and ``event_X``. The pattern is spelt once, in
+:mod:`pipeline.compile.names` (which imports nothing of the package); this module and the
+other statistics ask it for the names.
 """
 
 from __future__ import annotations
@@ -11,15 +13,9 @@ from collections.abc import Iterable
 
 import polars as pl
 
-OUTCOME_PREFIXES = (
-    "prevalent_",
-    "at_risk_",
-    "incident_",
-    "onset_",
-    "days_to_",
-    "time_",
-    "event_",
-)
+from pipeline.compile import names
+
+OUTCOME_PREFIXES = names.OUTCOME_PREFIXES
 """Prefixes of the per-outcome columns, in the order the analysis table writes them."""
 
 FOLLOWUP_COLUMNS = ("followup_end", "followup_days", "end_reason")
@@ -58,14 +54,13 @@ def at_risk_rows(cohort: pl.DataFrame, outcomes: Iterable[str], *, what: str) ->
             (the analysis table promises a value there, so a null means a broken input).
     """
     outcomes = list(outcomes)
-    require_columns(
-        cohort, [f"{p}{o}" for o in outcomes for p in ("at_risk_", "incident_")], what=what
-    )
+    columns = [names.outcome_columns(o) for o in outcomes]
+    require_columns(cohort, [n for c in columns for n in (c.at_risk, c.incident)], what=what)
     rows = cohort.filter(
-        pl.all_horizontal(pl.col(f"at_risk_{o}").fill_null(value=False) for o in outcomes)
+        pl.all_horizontal(pl.col(c.at_risk).fill_null(value=False) for c in columns)
     )
-    for o in outcomes:
-        nulls = rows[f"incident_{o}"].null_count()
+    for o, c in zip(outcomes, columns, strict=True):
+        nulls = rows[c.incident].null_count()
         if nulls:
-            raise ValueError(f"{what}: {nulls} patient(s) at risk of {o} have a null incident_{o}")
+            raise ValueError(f"{what}: {nulls} patient(s) at risk of {o} have a null {c.incident}")
     return rows

@@ -12,6 +12,7 @@ from collections.abc import Sequence
 
 import polars as pl
 
+from pipeline.compile import names
 from pipeline.stats._columns import at_risk_rows
 
 __all__ = ["COMBINATIONS_SCHEMA", "NO_OUTCOME", "outcome_combinations"]
@@ -62,14 +63,16 @@ def outcome_combinations(
     if not outcomes or len(set(outcomes)) != len(outcomes):
         raise ValueError(f"outcomes must be a non-empty list of distinct names, got {outcomes}")
     rows = at_risk_rows(cohort, outcomes, what="outcome combinations")
-    names = pl.concat_list(
-        pl.when(pl.col(f"incident_{o}")).then(pl.lit(o)).otherwise(pl.lit(None, pl.String))
+    incident = pl.concat_list(
+        pl.when(pl.col(names.outcome_columns(o).incident))
+        .then(pl.lit(o))
+        .otherwise(pl.lit(None, pl.String))
         for o in outcomes
     ).list.drop_nulls()
     combos = (
         rows.select(
-            names.list.join("+").alias("combination"),
-            names.list.len().cast(pl.Int64).alias("outcomes"),
+            incident.list.join("+").alias("combination"),
+            incident.list.len().cast(pl.Int64).alias("outcomes"),
         )
         .group_by("combination", "outcomes")
         .agg(pl.len().cast(pl.Int64).alias("n"))

@@ -29,6 +29,7 @@ from itertools import combinations
 import polars as pl
 from scipy import stats
 
+from pipeline.compile import names
 from pipeline.stats._columns import at_risk_rows
 from pipeline.stats._intervals import poisson_exact_interval
 
@@ -145,14 +146,14 @@ def association_2x2(a: int, b: int, c: int, d: int, *, confidence: float = 0.95)
 
 def _strata(cohort: pl.DataFrame) -> tuple[list[pl.Expr], str]:
     """Age band and sex, as far as the table has them, and their description."""
-    keys, names = [], []
+    keys, labels = [], []
     if "age_at_index" in cohort.columns:
         keys.append((pl.col("age_at_index") // AGE_BAND_YEARS).alias("age_band"))
-        names.append(f"{AGE_BAND_YEARS}-year age band")
+        labels.append(f"{AGE_BAND_YEARS}-year age band")
     if "sex" in cohort.columns:
         keys.append(pl.col("sex"))
-        names.append("sex")
-    return keys, " x ".join(names) or "none"
+        labels.append("sex")
+    return keys, " x ".join(labels) or "none"
 
 
 def expected_co_occurrence(rows: pl.DataFrame, first: str, second: str) -> tuple[float, str]:
@@ -179,7 +180,8 @@ def expected_co_occurrence(rows: pl.DataFrame, first: str, second: str) -> tuple
         (1.0, 'sex')
     """
     keys, described = _strata(rows)
-    x, y = pl.col(f"incident_{first}").cast(pl.Int64), pl.col(f"incident_{second}").cast(pl.Int64)
+    x = pl.col(names.outcome_columns(first).incident).cast(pl.Int64)
+    y = pl.col(names.outcome_columns(second).incident).cast(pl.Int64)
     per = (
         rows.group_by(keys)
         .agg(pl.len().alias("n"), x.sum().alias("e1"), y.sum().alias("e2"))
@@ -210,8 +212,8 @@ def pairwise_dependence(
     records = []
     for first, second in combinations(list(outcomes), 2):
         rows = at_risk_rows(cohort, [first, second], what="pairwise dependence")
-        x = rows[f"incident_{first}"]
-        y = rows[f"incident_{second}"]
+        x = rows[names.outcome_columns(first).incident]
+        y = rows[names.outcome_columns(second).incident]
         a = int((x & y).sum())
         b = int((x & ~y).sum())
         c = int((~x & y).sum())

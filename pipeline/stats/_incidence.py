@@ -21,6 +21,7 @@ from dataclasses import dataclass
 
 import polars as pl
 
+from pipeline.compile import names
 from pipeline.stats._cif_interval import aalen_johansen_interval
 from pipeline.stats._columns import at_risk_rows, require_columns
 from pipeline.stats._intervals import Interval, poisson_exact_interval, wilson_interval
@@ -114,7 +115,7 @@ def crude_proportion(
     """
     rows = at_risk_rows(cohort, [outcome], what="crude proportion")
     n = rows.height
-    events = int(rows[f"incident_{outcome}"].sum())
+    events = int(rows[names.outcome_columns(outcome).incident].sum())
     ci = wilson_interval(events, n, confidence=confidence)
     return CrudeProportion(outcome, n, events, ci.estimate, ci.low, ci.high)
 
@@ -196,20 +197,21 @@ def incidence_rate(
     """
     if not per > 0:
         raise ValueError(f"per must be positive, got {per!r}")
-    require_columns(cohort, [f"days_to_{outcome}", "followup_days"], what="incidence rate")
+    columns = names.outcome_columns(outcome)
+    require_columns(cohort, [columns.days_to, "followup_days"], what="incidence rate")
     rows = at_risk_rows(cohort, [outcome], what="incidence rate")
-    incident = pl.col(f"incident_{outcome}")
+    incident = pl.col(columns.incident)
     days = rows.select(
-        pl.when(incident).then(pl.col(f"days_to_{outcome}")).otherwise(pl.col("followup_days"))
+        pl.when(incident).then(pl.col(columns.days_to)).otherwise(pl.col("followup_days"))
     ).to_series()
     if days.null_count():
         raise ValueError(
             f"incidence rate: {days.null_count()} at-risk patient(s) have no follow-up time "
-            f"(days_to_{outcome} for incident cases, else followup_days)"
+            f"({columns.days_to} for incident cases, else followup_days)"
         )
     if rows.height and days.min() < 0:  # type: ignore[operator]
         raise ValueError(f"incidence rate: negative follow-up time for {outcome}")
-    events = int(rows[f"incident_{outcome}"].sum())
+    events = int(rows[columns.incident].sum())
     person_years = float(days.cast(pl.Float64).sum()) / DAYS_PER_YEAR
     ci = poisson_exact_interval(events, person_years, confidence=confidence)
     return IncidenceRate(

@@ -23,6 +23,7 @@ import numpy as np
 import polars as pl
 from numpy.typing import ArrayLike, NDArray
 
+from pipeline.compile import names
 from pipeline.stats._columns import at_risk_rows, require_columns
 
 __all__ = ["StepCurve", "aalen_johansen", "competing_risk_data", "kaplan_meier"]
@@ -208,13 +209,14 @@ def competing_risk_data(
         >>> durations.tolist(), codes.tolist()
         ([100.0, 400.0, 1461.0], [1, 2, 0])
     """
-    need = [f"days_to_{outcome}", "followup_days", "end_reason"]
+    columns = names.outcome_columns(outcome)
+    need = [columns.days_to, "followup_days", "end_reason"]
     require_columns(cohort, need, what="competing-risks data")
     rows = at_risk_rows(cohort, [outcome], what="competing-risks data")
-    incident = pl.col(f"incident_{outcome}")
+    incident = pl.col(columns.incident)
     out = rows.select(
         pl.when(incident)
-        .then(pl.col(f"days_to_{outcome}"))
+        .then(pl.col(columns.days_to))
         .otherwise(pl.col("followup_days"))
         .cast(pl.Float64)
         .alias("duration"),

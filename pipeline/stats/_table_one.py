@@ -34,6 +34,7 @@ from typing import Any
 
 import polars as pl
 
+from pipeline.compile import names
 from pipeline.stats._columns import FOLLOWUP_COLUMNS, OUTCOME_PREFIXES, require_columns
 
 __all__ = [
@@ -59,7 +60,7 @@ TABLE_ONE_SCHEMA: dict[str, pl.DataType] = {
 }
 """Column names and types of the table returned by :func:`table_one`."""
 
-_POST_INDEX_PREFIXES = tuple(p for p in OUTCOME_PREFIXES if p != "prevalent_")
+_POST_INDEX_PREFIXES = tuple(p for p in OUTCOME_PREFIXES if p != names.PREVALENT_PREFIX)
 _CATEGORICAL = (pl.String, pl.Categorical, pl.Enum, pl.Boolean)
 
 

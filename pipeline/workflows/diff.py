@@ -16,7 +16,12 @@ from typing import Any
 
 import polars as pl
 
-from pipeline.compile.names import ONSET_PREFIX, onset_column, outcome_columns
+from pipeline.compile.names import (
+    ONSET_PREFIX,
+    PREVALENT_PREFIX,
+    onset_column,
+    outcome_columns,
+)
 from pipeline.errors import AscertainError
 from pipeline.outputs import read_manifest
 
@@ -174,7 +179,7 @@ def covariate_columns(cohort: pl.DataFrame) -> list[str]:
     columns = cohort.columns
     start = columns.index("sex") + 1 if "sex" in columns else 0
     end = next(
-        (i for i, c in enumerate(columns) if c.startswith("prevalent_") or c == "followup_end"),
+        (i for i, c in enumerate(columns) if c.startswith(PREVALENT_PREFIX) or c == "followup_end"),
         len(columns),
     )
     return columns[start:end]

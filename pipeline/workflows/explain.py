@@ -208,9 +208,11 @@ def explain_patient(
     }
     trace["covariates"] = {}
     if cohort is not None:
-        names = list(cohort)
-        first_outcome = next(i for i, n in enumerate(names) if n.startswith("prevalent_"))
-        trace["covariates"] = {n: cohort[n] for n in names[names.index("sex") + 1 : first_outcome]}
+        columns = list(cohort)
+        prevalent = plan_names.PREVALENT_PREFIX
+        first_outcome = next(i for i, n in enumerate(columns) if n.startswith(prevalent))
+        covariates = columns[columns.index("sex") + 1 : first_outcome]
+        trace["covariates"] = {n: cohort[n] for n in covariates}
     return trace
 
 

@@ -29,6 +29,7 @@ from itertools import product
 
 import polars as pl
 
+from pipeline.compile import names
 from pipeline.stats._disclosure import Relation
 
 Spec = tuple[tuple[str, str], ...]
@@ -116,7 +117,11 @@ def cohort_atoms(cohort: pl.DataFrame, outcomes: Sequence[str], variables: Itera
             states already).
     """
     states = tuple(f"{p}|{o}" for o in outcomes for p in ("inc", "prev", "at"))
-    columns = {"inc": "incident_", "prev": "prevalent_", "at": "at_risk_"}
+    columns = {
+        "inc": names.INCIDENT_PREFIX,
+        "prev": names.PREVALENT_PREFIX,
+        "at": names.AT_RISK_PREFIX,
+    }
     labelled = cohort.select(
         *(_state_label(columns[s.split("|")[0]] + s.split("|")[1]).alias(s) for s in states),
         *(_level_label(cohort, v).alias(f"level|{v}") for v in variables),
@@ -133,8 +138,8 @@ def cohort_atoms(cohort: pl.DataFrame, outcomes: Sequence[str], variables: Itera
     for v in variables:
         grouped = labelled.group_by([*states, f"level|{v}"]).len()
         found = {(tuple(r[:-2]), str(r[-2])): int(r[-1]) for r in grouped.iter_rows()}
-        names = sorted({level for _, level in found})
-        levels[v] = {(s, level): found.get((s, level), 0) for s in outcome for level in names}
+        seen = sorted({level for _, level in found})
+        levels[v] = {(s, level): found.get((s, level), 0) for s in outcome for level in seen}
     return Atoms(states, outcome, levels)
 
 

@@ -13,6 +13,7 @@ from typing import Any
 
 import polars as pl
 
+from pipeline.compile import names
 from pipeline.outputs.report._at_risk import at_risk_note
 from pipeline.outputs.report._curves import band_note, curve_note
 from pipeline.outputs.report._html_cells import n_cell as _n
@@ -45,7 +46,7 @@ def _smd(r: dict[str, Any] | None) -> str:
 
 
 def table_one_section(frame: pl.DataFrame, outcome: str, title: str, labels: dict[str, str]) -> str:
-    by = f"incident_{outcome}"
+    by = names.outcome_columns(outcome).incident
     groups = ("overall", f"{by}=false", f"{by}=true", f"{by}=null")
     part = frame.filter(pl.col("by") == by)
     cells = {(r["variable"], r["level"], r["group"]): r for r in part.iter_rows(named=True)}

@@ -25,6 +25,7 @@ from typing import Any
 
 import polars as pl
 
+from pipeline.compile import names
 from pipeline.errors import AscertainError
 from pipeline.outputs.report._rates_since import SINCE, SINCE_COLUMN, since_index_rows
 from pipeline.outputs.report._suppression import Block, keyed_frame
@@ -73,7 +74,7 @@ def read_persontime(output_dir: Path) -> pl.DataFrame | None:
 
 def _outcome_cells(persontime: pl.DataFrame, outcome: str, *, by_year: bool) -> pl.DataFrame:
     """Events and person-years of one outcome by band (and year), plus each band over years."""
-    days, events = f"days_at_risk_{outcome}", f"events_{outcome}"
+    days, events = names.persontime_columns(outcome)
     missing = [c for c in (days, events, "age_band", "age_band_start") if c not in persontime]
     if missing:
         raise AscertainError(f"{PERSONTIME} has no column {', '.join(missing)}")

@@ -16,6 +16,7 @@ from typing import Any
 
 import polars as pl
 
+from pipeline.compile import names
 from pipeline.stats import DAYS_PER_YEAR
 
 __all__ = ["SINCE", "SINCE_COLUMN", "since_index_rows"]
@@ -49,7 +50,7 @@ def since_index_rows(
     """
     if SINCE not in persontime.columns:
         return [], None
-    days, events = f"days_at_risk_{outcome}", f"events_{outcome}"
+    days, events = names.persontime_columns(outcome)
     cells = (
         persontime.filter(pl.col(days).is_not_null())
         .group_by(SINCE)

@@ -21,6 +21,7 @@ from typing import Any
 
 import polars as pl
 
+from pipeline.compile import names
 from pipeline.config import LoadedStudy
 from pipeline.config._reference_rates import ReferenceRates, stratum_label
 from pipeline.errors import AscertainError
@@ -52,7 +53,7 @@ def expected_cells(
         AscertainError: A cell has no rate in the table, naming its band and stratum (the
             study's load checks this, so it means the table changed since then).
     """
-    days, events = f"days_at_risk_{outcome}", f"events_{outcome}"
+    days, events = names.persontime_columns(outcome)
     frame = persontime.filter(pl.col(days).is_not_null())
     keys = ["age_band"]
     if table.by_sex:

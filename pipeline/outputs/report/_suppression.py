@@ -39,6 +39,7 @@ from typing import Any
 
 import polars as pl
 
+from pipeline.compile import names
 from pipeline.outputs.report._cells import Spec, aliases, atom_relations, cohort_atoms
 from pipeline.stats import baseline_variables, protect_cells
 from pipeline.stats._disclosure import Relation, shown
@@ -131,7 +132,7 @@ def hidden_keys(
         meanings |= block.meanings
         relations += block.all_relations()
         known |= set(block.extra)
-    prevalent = {f"prevalent_{o}" for o in outcomes}
+    prevalent = {names.prevalent_column(o) for o in outcomes}
     variables = [v for v in baseline_variables(cohort) if v not in prevalent]
     atoms = cohort_atoms(cohort, outcomes, variables)
     relations += atom_relations(atoms, meanings)

@@ -15,6 +15,7 @@ from typing import Any
 
 import polars as pl
 
+from pipeline.compile import names
 from pipeline.outputs.report._cells import Spec
 from pipeline.outputs.report._suppression import Block, keyed_frame
 from pipeline.stats import baseline_variables, smd_binary, smd_continuous, table_one
@@ -31,7 +32,8 @@ def _group_names(by: str) -> tuple[str, ...]:
 def _t1_key(outcome: str, variable: str, row: str, group: str) -> str:
     if variable == "patients":
         special = ("N", *(f"t1size|{outcome}|{state}" for state in ("false", "true", "null")))
-        return dict(zip(_group_names(f"incident_{outcome}"), special, strict=True))[group]
+        groups = _group_names(names.outcome_columns(outcome).incident)
+        return dict(zip(groups, special, strict=True))[group]
     if group == "overall":
         return f"t1|{variable}|{row}"
     return f"t1|{outcome}|{variable}|{row}|{group}"
@@ -42,8 +44,9 @@ def _t1_meaning(outcome: str, variable: str, row: str, group: str) -> Spec:
     spec: list[tuple[str, str]] = []
     if group != "overall":
         spec.append((f"inc|{outcome}", group.rsplit("=", 1)[1]))
-    if variable.startswith("prevalent_"):
-        spec.append((f"prev|{variable.removeprefix('prevalent_')}", _STATES.get(row, "null")))
+    if variable.startswith(names.PREVALENT_PREFIX):
+        condition = variable.removeprefix(names.PREVALENT_PREFIX)
+        spec.append((f"prev|{condition}", _STATES.get(row, "null")))
     elif variable != "patients":
         spec.append((variable, row))
     return tuple(spec)
@@ -60,8 +63,8 @@ def table_one_blocks(cohort: pl.DataFrame, outcome: str) -> tuple[pl.DataFrame, 
         The long Table 1 from :func:`pipeline.stats.table_one`, the variables block and the
         group-size block.
     """
-    by = f"incident_{outcome}"
-    variables = baseline_variables(cohort, exclude=[by, f"prevalent_{outcome}"])
+    by = names.outcome_columns(outcome).incident
+    variables = baseline_variables(cohort, exclude=[by, names.prevalent_column(outcome)])
     long = table_one(cohort, by=by, variables=variables)
     groups = _group_names(by)
     sizes = cohort.group_by(pl.col(by).cast(pl.String).fill_null("null")).len()
@@ -151,13 +154,13 @@ def table_one_summary(
     out = []
     for r in [
         {"variable": "patients", "level": None, "group": g}
-        for g in _group_names(f"incident_{outcome}")
+        for g in _group_names(names.outcome_columns(outcome).incident)
     ] + list(long.iter_rows(named=True)):
         var, group = r["variable"], r["group"]
         row = "all" if var == "patients" else (r["level"] or "non-missing")
         n, n_hidden = status[(var, row, group)]
         record = {
-            "by": f"incident_{outcome}",
+            "by": names.outcome_columns(outcome).incident,
             "variable": var,
             "level": r["level"],
             "group": group,
@@ -178,7 +181,7 @@ def table_one_summary(
         missing = hidden_marker(m, threshold) if m_hidden else str(m)
         record["missing"] = None if var == "patients" else missing
         out.append(record)
-    _add_smd(out, long, f"incident_{outcome}")
+    _add_smd(out, long, names.outcome_columns(outcome).incident)
     schema = {
         "by": pl.String,
         "variable": pl.String,

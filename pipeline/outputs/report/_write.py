@@ -20,6 +20,7 @@ from typing import Any
 
 import polars as pl
 
+from pipeline.compile import names
 from pipeline.config import LoadedStudy, load_study
 from pipeline.config._check import explain_condition
 from pipeline.config._reference_rates import ReferenceRates
@@ -117,7 +118,11 @@ def read_study(
     safe-haven), so a missing or invalid study only adds a note. Notes and definition paths
     name files relative to the study's folder, never by a path of this machine.
     """
-    fallback = tuple(c.removeprefix("at_risk_") for c in cohort.columns if c.startswith("at_risk_"))
+    fallback = tuple(
+        c.removeprefix(names.AT_RISK_PREFIX)
+        for c in cohort.columns
+        if c.startswith(names.AT_RISK_PREFIX)
+    )
     path, name = locate_study(output_dir, manifest, study)
     stem = Path(name).stem
     base = Study(stem, stem, DEFAULT_THRESHOLD, fallback, {o: o for o in fallback})

@@ -566,45 +566,65 @@ SELECT
     THEN 'orphan patient'
     WHEN r.obs_date IS NULL
     THEN 'unparseable date'
+  END AS record_problem,
+  CASE
     WHEN r.obs_date > CAST('2020-12-31' AS DATE)
     THEN 'after end of data'
     WHEN NOT p.death_date IS NULL AND r.obs_date > p.death_date
     THEN 'after death'
-    WHEN k.measure IS NULL
-    THEN 'unknown measure'
-    WHEN k.is_coded
-    AND (
-      r.category IS NULL
-      OR NOT (
-        (
-          r.measure = 'smoking' AND r.category = 'current'
-        )
-        OR (
-          r.measure = 'smoking' AND r.category = 'former'
-        )
-        OR (
-          r.measure = 'smoking' AND r.category = 'never'
+  END AS timing_problem,
+  COALESCE(
+    CASE
+      WHEN NOT r.source_problem IS NULL
+      THEN r.source_problem
+      WHEN p.patient_id IS NULL
+      THEN 'orphan patient'
+      WHEN r.obs_date IS NULL
+      THEN 'unparseable date'
+    END,
+    CASE
+      WHEN r.obs_date > CAST('2020-12-31' AS DATE)
+      THEN 'after end of data'
+      WHEN NOT p.death_date IS NULL AND r.obs_date > p.death_date
+      THEN 'after death'
+    END,
+    CASE
+      WHEN k.measure IS NULL
+      THEN 'unknown measure'
+      WHEN k.is_coded
+      AND (
+        r.category IS NULL
+        OR NOT (
+          (
+            r.measure = 'smoking' AND r.category = 'current'
+          )
+          OR (
+            r.measure = 'smoking' AND r.category = 'former'
+          )
+          OR (
+            r.measure = 'smoking' AND r.category = 'never'
+          )
         )
       )
-    )
-    THEN 'category not recognised'
-    WHEN k.is_coded
-    THEN NULL
-    WHEN r.empty
-    THEN 'no value'
-    WHEN r.reading IS NULL
-    THEN 'value not numeric'
-    WHEN r.unit_conflict
-    THEN 'unit differs from value_text'
-    WHEN u.measure IS NULL
-    THEN 'unit not convertible'
-    WHEN NOT CASE
-      WHEN u.divisor = 0
-      THEN u.factor * r.reading * CAST('Infinity' AS DOUBLE)
-      ELSE u.factor * r.reading / u.divisor
-    END + u.offset_value BETWEEN u.low AND u.high
-    THEN 'implausible value'
-  END AS problem
+      THEN 'category not recognised'
+      WHEN k.is_coded
+      THEN NULL
+      WHEN r.empty
+      THEN 'no value'
+      WHEN r.reading IS NULL
+      THEN 'value not numeric'
+      WHEN r.unit_conflict
+      THEN 'unit differs from value_text'
+      WHEN u.measure IS NULL
+      THEN 'unit not convertible'
+      WHEN NOT CASE
+        WHEN u.divisor = 0
+        THEN u.factor * r.reading * CAST('Infinity' AS DOUBLE)
+        ELSE u.factor * r.reading / u.divisor
+      END + u.offset_value BETWEEN u.low AND u.high
+      THEN 'implausible value'
+    END
+  ) AS problem
 FROM parsed AS r
 LEFT JOIN patient_base AS p
   ON p.patient_id = r.patient_id
@@ -683,6 +703,8 @@ SELECT
   copies,
   source_position,
   source_problem,
+  record_problem,
+  timing_problem,
   problem
 FROM measurement_rows;
 
