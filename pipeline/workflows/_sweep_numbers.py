@@ -26,6 +26,7 @@ import numpy as np
 import polars as pl
 import pyarrow as pa
 
+from pipeline.compile import names
 from pipeline.config._sweep import BASE
 from pipeline.stats import cumulative_incidence_at_horizon, incidence_rate, protect_cells
 
@@ -96,7 +97,7 @@ def _key(ids: Ids) -> str:
 
 def _onset_shift(base: pl.DataFrame, other: pl.DataFrame, outcome: str) -> tuple[float, int]:
     """Median days from the base's onset to the variant's, among patients with both; and n."""
-    column = f"onset_{outcome}"
+    column = names.outcome_columns(outcome).onset
     pairs = base.select("patient_id", pl.col(column).alias("b")).join(
         other.select("patient_id", pl.col(column).alias("v")), on="patient_id"
     )
@@ -118,13 +119,21 @@ def sweep_rows(cohorts: Mapping[str, pa.Table], outcomes: Iterable[str]) -> list
     universe = np.unique(np.concatenate(every))
     rows = []
     for outcome in outcomes:
-        incident = pl.col(f"incident_{outcome}").fill_null(value=False)
+        incident = pl.col(names.outcome_columns(outcome).incident).fill_null(value=False)
         base_cases = _ids(base, universe, incident)
         for key, frame in frames.items():
             assert isinstance(frame, pl.DataFrame)
             cohort = _ids(frame, universe)
-            prevalent = _ids(frame, universe, pl.col(f"prevalent_{outcome}").fill_null(value=False))
-            at_risk = _ids(frame, universe, pl.col(f"at_risk_{outcome}").fill_null(value=False))
+            prevalent = _ids(
+                frame,
+                universe,
+                pl.col(names.outcome_columns(outcome).prevalent).fill_null(value=False),
+            )
+            at_risk = _ids(
+                frame,
+                universe,
+                pl.col(names.outcome_columns(outcome).at_risk).fill_null(value=False),
+            )
             cases = _ids(frame, universe, incident)
             cif = cumulative_incidence_at_horizon(frame, outcome)
             rate = incidence_rate(frame, outcome)
