@@ -4,8 +4,8 @@
 (callbacks, reports, data checks, the result's engine name) but executes nothing: each stage
 is recorded in order, and the relations its SQL reads (found in the sqlglot tree by
 ``relations_read``) must have been produced earlier in this run, by a source view or an
-earlier stage. (A ``Plan`` already refuses a stage whose declared ``depends_on`` differs from
-what its tree reads, or names a relation made later; the fake checks the run itself.)
+earlier stage. (A ``Plan`` already refuses a stage whose ``depends_on``, read from its tree,
+names a relation made later; the fake checks the run itself, e.g. a stage list cut short.)
 Outputs come back as empty tables; a check stage passes unless the test names it in
 ``failing_checks`` with the rows it should "find".
 """

@@ -23,10 +23,10 @@ from .conftest import DEMO_STUDY
 from .fake_engine import FakeEngine
 
 
-def _stage(name: str, sql: str, depends_on: tuple[str, ...] = (), **kind: str) -> Stage:
+def _stage(name: str, sql: str, **kind: str) -> Stage:
     query = parse_one(sql, read="duckdb")
     assert isinstance(query, exp.Query)
-    return Stage(name, query, depends_on, f"test stage {name}", **kind)  # type: ignore[arg-type]
+    return Stage(name, query, f"test stage {name}", **kind)  # type: ignore[arg-type]
 
 
 def test_stages_run_in_plan_order_with_numbered_callbacks() -> None:
@@ -37,7 +37,7 @@ def test_stages_run_in_plan_order_with_numbered_callbacks() -> None:
     names = [stage.name for stage in plan.stages]
     total = len(names)
     assert called == [(name, i, total) for i, name in enumerate(names, start=1)]
-    assert engine.ledger.stages == names  # each stage read only what existed and it declared
+    assert engine.ledger.stages == names  # each stage read only what existed
     assert [(r.name, r.kind) for r in result.stages] == [(s.name, s.kind) for s in plan.stages]
     assert all(r.rows is None for r in result.stages if r.kind == "view")
     assert (result.engine, result.engine_version) == ("fake", "0")  # set by the base
@@ -45,23 +45,17 @@ def test_stages_run_in_plan_order_with_numbered_callbacks() -> None:
 
 
 def test_a_stage_reading_what_does_not_exist_yet_is_refused() -> None:
-    # The plan refuses it before any engine sees it: declared or not, "later" comes later.
+    # The plan refuses it before any engine sees it: its tree reads "later", made after it.
     source = SourceTable("patients", ("patient_id",))
-    for declared in ((), ("src_patients", "later")):
-        with pytest.raises(ValueError, match="stage first"):
-            Plan(
-                "t",
-                (source,),
-                (
-                    _stage(
-                        "first",
-                        "SELECT * FROM src_patients JOIN later USING (patient_id)",
-                        declared,
-                    ),
-                    _stage("later", "SELECT * FROM src_patients", ("src_patients",)),
-                ),
-                (("later", "later", ()),),
-            )
+    first = _stage("first", "SELECT * FROM src_patients JOIN later USING (patient_id)")
+    assert first.depends_on == ("later", "src_patients")  # read from the tree
+    with pytest.raises(ValueError, match=r"stage first reads \['later'\] before they exist"):
+        Plan(
+            "t",
+            (source,),
+            (first, _stage("later", "SELECT * FROM src_patients")),
+            (("later", "later", ()),),
+        )
 
 
 def test_the_fake_engine_refuses_a_stage_whose_input_this_run_did_not_make() -> None:
@@ -101,7 +95,6 @@ def test_duckdb_check_and_stage_failures_carry_codes() -> None:
     too_big = _stage(
         "too_big",
         "SELECT a FROM numbers WHERE a > 1",
-        ("numbers",),
         kind="check",
         failure="a number above 1",
     )
@@ -122,7 +115,7 @@ class _ShowsOneRow(DuckDBEngine):
 
 def test_the_declared_number_of_check_rows_is_shown() -> None:
     numbers = _stage("numbers", "SELECT * FROM (VALUES (1), (2), (3)) AS t(a)")
-    above = _stage("above", "SELECT a FROM numbers", ("numbers",), kind="check", failure="any")
+    above = _stage("above", "SELECT a FROM numbers", kind="check", failure="any")
     plan = _tiny_plan(numbers, above)
     for engine, shown in ((DuckDBEngine(threads=1), 3), (_ShowsOneRow(threads=1), 1)):
         with pytest.raises(EngineError) as caught:

@@ -74,7 +74,6 @@ def _source_rows(
             exp.select(*(exp.cast(exp.column(c), "VARCHAR").as_(c) for c in s.columns))
             .from_(s.relation)
             .where(kept.copy()),
-            (s.relation,),
             f"the {s.name} table as bound",
         )
         for s in plan.sources

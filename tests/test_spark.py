@@ -183,7 +183,7 @@ def test_a_failing_check_stops_the_run(session: Any) -> None:
     plan = Plan(
         study="check",
         sources=(),
-        stages=(Stage("must_be_empty", rows, (), "a check", kind="check", failure="oops"),),
+        stages=(Stage("must_be_empty", rows, "a check", kind="check", failure="oops"),),
         outputs=(),
     )
     with pytest.raises(EngineError) as caught:
@@ -197,7 +197,7 @@ def test_source_typing_and_patient_filter(session: Any) -> None:
     plan = Plan(
         study="bind",
         sources=(patients,),
-        stages=(Stage("picked", query, ("src_patients",), "bound rows"),),
+        stages=(Stage("picked", query, "bound rows"),),
         outputs=(("picked", "picked", ("patient_id",)),),
     )
     tables = discover_extract(HANDMADE, (patients,))
@@ -291,7 +291,7 @@ def test_reliable_stage_storage_gives_the_same_rows(
     plan = Plan(
         study="storage",
         sources=(patients,),
-        stages=(Stage("kept", query, ("src_patients",), "bound rows"),),
+        stages=(Stage("kept", query, "bound rows"),),
         outputs=(("kept", "kept", ("patient_id",)),),
     )
     tables = discover_extract(HANDMADE, (patients,))

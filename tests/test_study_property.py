@@ -4,9 +4,8 @@ A hypothesis strategy writes valid study files (index strategy, eligibility step
 outcomes from the shipped definitions, horizon, look-back, follow-up, and sometimes measures of
 the study's own, written as files beside it, with thresholds on them in any of their units) and
 checks what must hold for every study: compiling is deterministic, every stage's Spark SQL reads
-back with sqlglot's Spark reader, every stage reads only relations made earlier and declared in
-its ``depends_on`` (the fake engine, no database), and one more exclusion step never adds a
-patient to the cohort.
+back with sqlglot's Spark reader, every stage reads only relations made earlier in the run (the
+fake engine, no database), and one more exclusion step never adds a patient to the cohort.
 
 The study's own measures are not in the shipped library; the property extract carries rows of
 them (in both units) so that their thresholds select patients in the cohort property too.
@@ -276,11 +275,11 @@ def test_every_spark_stage_parses_back(
 
 @PROPERTY
 @given(study=studies())
-def test_every_stage_reads_only_earlier_declared_relations(
+def test_every_stage_reads_only_relations_made_earlier(
     study: dict[str, Any], tmp_path: Path, extract: Path
 ) -> None:
     # The fake engine runs the stage loop without a database and refuses a stage whose SQL
-    # reads a relation made later, or one missing from depends_on (Plan.through trusts it).
+    # reads a relation this run has not made yet.
     plan = plan_study(_write(tmp_path / "reads", study, extract))
     engine = FakeEngine()
     engine.run(plan, {})

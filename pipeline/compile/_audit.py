@@ -136,7 +136,6 @@ def audit_stages(ctx: CompileContext) -> tuple[Stage, ...]:
     """The audit's own stages, to run after the study's plan through ``codes_to_evidence``."""
     parts = [_used_rows(ctx, t) for t in coded_tables(ctx)]
     rows = parts[0] if len(parts) == 1 else parts[0].union(parts[1], distinct=False)
-    judged = tuple(names.judged_stage(t) for t in coded_tables(ctx))
     return (
         Stage(
             "audit_used",
@@ -146,7 +145,6 @@ def audit_stages(ctx: CompileContext) -> tuple[Stage, ...]:
                 same_code=same_raw_code("r", "c"),
                 found_codes=exp.to_table(names.DISTINCT_CODES),
             ),
-            (*judged, names.DISTINCT_CODES),
             "the coded rows their judgement calls used, grouped by code, patient and year",
         ),
         Stage(
@@ -156,31 +154,26 @@ def audit_stages(ctx: CompileContext) -> tuple[Stage, ...]:
                 same_code=same_raw_code("u", "m"),
                 matches=exp.to_table(names.CODES_TO_EVIDENCE),
             ),
-            ("audit_used", names.CODES_TO_EVIDENCE),
             "each group of usable rows with each evidence its code counts for",
         ),
         Stage(
             "audit_code_counts",
             query(_CODE_COUNTS),
-            ("audit_matched",),
             "rows, patients, first and last year of each matched code, per evidence",
         ),
         Stage(
             "audit_code_years",
             query(_CODE_YEARS),
-            ("audit_matched",),
             "rows and patients of each matched code per calendar year (coding drift)",
         ),
         Stage(
             "audit_extract_codes",
             query(_EXTRACT_CODES),
-            ("audit_used",),
             "rows and patients of every usable extract code, for the near misses",
         ),
         Stage(
             "audit_totals",
             query(_TOTALS, same_group=_same_group("u", "k")),
-            ("audit_used", "audit_matched"),
             "used rows per table: matched by some evidence, and not",
         ),
     )

@@ -237,7 +237,6 @@ def window_counts_stage(ctx: CompileContext) -> Stage | None:
     return Stage(
         names.WINDOW_COUNTS,
         query.select(*selected),
-        (names.INDEX_DATES, *(source for _, _, source in present)),
         "per patient, evidence and encounters counted in windows around the index date",
     )
 
@@ -348,11 +347,9 @@ def measure_covariates_stage(ctx: CompileContext) -> Stage | None:
             on=exp.column("patient_id", alias).eq(exp.column("patient_id", "i")),
             join_type="left",
         )
-    depends = {names.INDEX_DATES} | {r for m in measures for r in measure_relations(ctx, m)}
     return Stage(
         names.MEASURE_COVARIATES,
         query.with_("baseline_values", as_=_baseline_values(ctx, measures, earliest)),
-        tuple(sorted(depends)),
         "per patient, measurement covariates summarised in their windows",
     )
 

@@ -351,19 +351,10 @@ def eligibility_pass(draft: Draft) -> Draft:
         names.CONTACT_AT_INDEX,
     )
     read = {name for name in optional if draft.has(name)}
-    depends = [
-        names.INDEX_DATES,
-        names.PATIENT_BASE,
-        names.ENCOUNTER_SUMMARY,
-        names.CONDITION_ONSETS,
-    ]
-    depends += [names.onset_stage(n, lookback=True) for n in _lookback_outcomes(ctx)]
-    depends += [name for name in optional if name in read]
     return draft.add(
         Stage(
             names.ELIGIBILITY,
             _eligibility_query(ctx, [predicate for predicate, _ in steps], read),
-            tuple(depends),
             "the source population with follow-up and one pass/fail column per eligibility step",
         )
     )
@@ -390,13 +381,11 @@ def attrition_pass(draft: Draft) -> Draft:
                 [(name, text) for name, (_, text) in zip(step_names, steps, strict=True)],
                 index_text=index_text,
             ),
-            (names.ELIGIBILITY, names.PATIENT_BASE),
             "patients in the extract, without an index date, and at each eligibility step",
         ),
         Stage(
             names.POPULATION,
             population.from_(names.ELIGIBILITY),
-            (names.ELIGIBILITY,),
             "the source population with the first eligibility step each patient failed",
         ),
     )
@@ -416,7 +405,6 @@ def cohort_pass(draft: Draft) -> Draft:
                 has_windows=names.WINDOW_COUNTS in joined,
                 has_measures=names.MEASURE_COVARIATES in joined,
             ),
-            (names.ELIGIBILITY, *joined),
             "the analysis table: one row per eligible patient",
         ),
         negative_followup_check(),

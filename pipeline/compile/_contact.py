@@ -103,13 +103,11 @@ def contact_stages(
         return ()
     parts = [exp.select("patient_id", exp.column("encounter_date").as_("contact_date"))]
     parts[0] = parts[0].from_(names.ENCOUNTER_ROWS)
-    depends = [names.ENCOUNTER_ROWS]
     what = "usable encounters"
     if study.followup.contact == "any_activity":
         what = "usable dated rows of encounters, diagnoses, prescriptions and measurements read"
         for relation in sources:
             parts.append(_activity_rows(relation))
-            depends.append(relation)
     union = parts[0]
     for part in parts[1:]:
         union = union.union(part, distinct=False)
@@ -117,7 +115,6 @@ def contact_stages(
         Stage(
             names.CONTACT_ROWS,
             union,
-            tuple(dict.fromkeys(depends)),
             f"contacts with the practice ({study.followup.contact}): {what}",
             kind="view",
         )
@@ -127,7 +124,6 @@ def contact_stages(
             Stage(
                 names.LAST_CONTACT,
                 query(_LAST_CONTACT, contacts=exp.to_table(names.CONTACT_ROWS)),
-                (names.CONTACT_ROWS,),
                 "the last contact per patient, from which loss of contact is measured",
             )
         )
@@ -143,7 +139,6 @@ def contact_stages(
                     contacts=exp.to_table(names.CONTACT_ROWS),
                     window_end=end,
                 ),
-                (names.INDEX_DATES, names.CONTACT_ROWS),
                 "each patient's last contact on or before the end of the in-contact window",
             )
         )
@@ -182,7 +177,6 @@ def negative_followup_check() -> Stage:
     return Stage(
         names.FOLLOWUP_NOT_NEGATIVE,
         query(_NEGATIVE_FOLLOWUP, cohort=exp.to_table(names.COHORT)),
-        (names.COHORT,),
         "no patient of the cohort may have follow-up ending before the index date",
         kind="check",
         failure=(

@@ -179,7 +179,6 @@ def evidence_stages(ctx: CompileContext) -> tuple[Stage, ...]:
     """Stages that produce ``evidence_events`` for every piece of evidence of the study."""
     stages: list[Stage] = []
     parts: list[exp.Query] = []
-    depends: list[str] = []
     code_rows = code_table_rows(ctx)
     if code_rows:
         lengths = sorted({len(r[1]) for r in code_rows})
@@ -196,7 +195,6 @@ def evidence_stages(ctx: CompileContext) -> tuple[Stage, ...]:
                     lengths=values_table("l", ["prefix_length"], [(n,) for n in lengths]),
                     codes=values_table("m", [*columns, "exact"] if exact else columns, table),
                 ),
-                (names.DISTINCT_CODES,),
                 "each distinct extract code with the evidence it matches or is excluded from",
             )
         )
@@ -212,7 +210,6 @@ def evidence_stages(ctx: CompileContext) -> tuple[Stage, ...]:
             Stage(
                 names.CODED_ROW_EVIDENCE,
                 matches,
-                (names.CODES_TO_EVIDENCE, names.CODED_ROWS),
                 "each usable diagnosis or prescription row with the evidence its code matches",
                 kind="view",
             )
@@ -226,7 +223,6 @@ def evidence_stages(ctx: CompileContext) -> tuple[Stage, ...]:
             Stage(
                 names.CODED_EVIDENCE_DAYS,
                 query(_CODED_EVIDENCE, rows=counted.subquery("m")),
-                (names.CODED_ROW_EVIDENCE,),
                 "matched rows counted per patient, evidence and day (kept only in evidence_events)",
                 kind="view",
             )
@@ -236,12 +232,10 @@ def evidence_stages(ctx: CompileContext) -> tuple[Stage, ...]:
                 names.CODED_EVIDENCE_DAYS
             )
         )
-        depends.append(names.CODED_EVIDENCE_DAYS)
     for key, ev in ctx.evidence:
         if ev.measurement:
             for relation in measure_relations(ctx, ev.measurement.measure):
                 parts.append(_measurement_query(key, ev.measurement, relation))
-                depends.append(relation)
         if ev.encounter:
             types = (
                 is_in(exp.column("encounter_type"), [t.lower() for t in ev.encounter.type])
@@ -256,10 +250,8 @@ def evidence_stages(ctx: CompileContext) -> tuple[Stage, ...]:
                     encounters=exp.to_table(names.ENCOUNTER_ROWS),
                 )
             )
-            depends.append(names.ENCOUNTER_ROWS)
     if not parts:  # every piece of evidence refers to another condition
         parts.append(query(_NO_EVENTS, base=exp.to_table(names.PATIENT_BASE)))
-        depends.append(names.PATIENT_BASE)
     union = parts[0]
     for part in parts[1:]:
         union = union.union(part, distinct=False)
@@ -272,7 +264,6 @@ def evidence_stages(ctx: CompileContext) -> tuple[Stage, ...]:
                 day=days_between(epoch, exp.column("event_date")),
                 events=union.subquery("events"),
             ),
-            tuple(sorted(set(depends))),
             "one row per patient, evidence and day, with the day number for windows",
         )
     )

@@ -73,14 +73,12 @@ def index_stage(ctx: CompileContext) -> Stage:
         return Stage(
             names.INDEX_DATES,
             query(_FIRST_ENCOUNTER, summary=exp.to_table(names.ENCOUNTER_SUMMARY)),
-            (names.ENCOUNTER_SUMMARY,),
             f"index: the first encounter{kinds} between {start} and {end}",
         )
     if rule.fixed_date is not None:
         return Stage(
             names.INDEX_DATES,
             query(_FIXED_DATE, summary=exp.to_table(names.ENCOUNTER_SUMMARY), day=rule.fixed_date),
-            (names.ENCOUNTER_SUMMARY,),
             f"index: {rule.fixed_date} for everyone with an encounter on or before it",
         )
     if rule.first_event is not None:
@@ -91,7 +89,6 @@ def index_stage(ctx: CompileContext) -> Stage:
             return Stage(
                 names.INDEX_DATES,
                 query(_CONDITION_ONSET, onsets=exp.to_table(onsets), start=start, end=end),
-                (onsets,),
                 f"index: the onset of {event.condition} between {start} and {end}",
             )
         return Stage(
@@ -103,7 +100,6 @@ def index_stage(ctx: CompileContext) -> Stage:
                 start=start,
                 end=end,
             ),
-            (names.EVIDENCE_EVENTS,),
             f"index: the first qualifying event between {start} and {end}",
         )
     draw = rule.random_encounter
@@ -118,7 +114,6 @@ def index_stage(ctx: CompileContext) -> Stage:
             start=start,
             end=end,
         ),
-        (names.ENCOUNTER_ROWS,),
         f"index: one encounter day between {start} and {end} drawn with seed {draw.seed}",
     )
 

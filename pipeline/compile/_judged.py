@@ -80,7 +80,6 @@ def patients_judged(table: SourceTable, unreadable_date: exp.Expression) -> Stag
         exp.select(*table.columns, SOURCE_PROBLEM, SOURCE_POSITION, reason.as_("reason")).from_(
             table.relation
         ),
-        (table.relation,),
         "every patients row judged once: used, or the reason the quality log gives",
         kind="view",
     )
@@ -127,20 +126,17 @@ def event_judged(
             join_type="left",
         )
     )
-    depends = [table.relation, names.PATIENT_BASE]
     if raw_codes is not None:
         judged = judged.join(
             exp.to_table(names.DISTINCT_CODES).as_("c"),
             on=same_raw_code("r", "c"),
             join_type="left",
         )
-        depends.append(names.DISTINCT_CODES)
     # The quality log's order: the record, then the code, then the timing.
     reason = exp.func("COALESCE", *(exp.column(p.alias) for p in parts), value(names.USED))
     return Stage(
         names.judged_stage(table.name),
         exp.select(exp.Star(), reason.as_("reason")).from_(judged.subquery("j")),
-        tuple(depends),
         f"every {table.name} row judged once: used, or the reason the quality log gives",
         kind="view",
     )

@@ -42,7 +42,6 @@ def match_count_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         Stage(
             EVIDENCE_COUNTS,
             query(_EVIDENCE_COUNTS, events=exp.to_table(names.EVIDENCE_EVENTS)),
-            (names.EVIDENCE_EVENTS,),
             "patient-days per piece of evidence, so a definition matching no row is reported",
         ),
     )

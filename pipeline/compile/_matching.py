@@ -212,7 +212,6 @@ def matching_stages(ctx: CompileContext) -> tuple[Stage, ...]:
             .from_(ranked)
             .where(exp.column("draw_rank") <= option.controls_per_case)
         )
-        draw_depends: tuple[str, ...] = ("matching_candidates",)
     else:
         draws = (
             exp.select(*(exp.column(c, "r") for c in _DRAW_COLUMNS))
@@ -220,30 +219,25 @@ def matching_stages(ctx: CompileContext) -> tuple[Stage, ...]:
             .join("matching_limits AS l", on="l.set_id = r.set_id")
             .where("r.draw_rank <= l.draw_limit")
         )
-        draw_depends = ("matching_candidates", "matching_limits")
     stages = [
         Stage(
             "matching_pool",
             _pool_query(option.cases_of),
-            (names.COHORT, names.PATIENT_BASE),
             f"the cohort with its matching variables, follow-up and {option.cases_of} onset",
         ),
         Stage(
             "matching_contact_spells",
             spells,
-            (contacts, "matching_pool"),
             f"spells in contact: contacts at most {within} days apart, to the last + {within}",
         ),
         Stage(
             "matching_sets",
             query(_SETS),
-            ("matching_pool",),
             f"one set per incident {option.cases_of} case, dated on its onset, numbered by date",
         ),
         Stage(
             "matching_candidates",
             candidates,
-            ("matching_sets", "matching_pool", "matching_contact_spells"),
             "every eligible control of every set, with its draw key (MD5 of seed, case, control)",
         ),
     ]
@@ -257,7 +251,6 @@ def matching_stages(ctx: CompileContext) -> tuple[Stage, ...]:
                     offsets=_offsets(2 * option.birth_year_within),
                     same_practice=_same_practice(option, "e", "s"),
                 ),
-                ("matching_sets",),
                 "the most ranked candidates each set's fill without replacement can reach",
             )
         )
@@ -265,7 +258,6 @@ def matching_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         Stage(
             "matching_draws",
             draws,
-            draw_depends,
             "candidates ranked by draw key within each set, as far as the fill can need them",
         )
     )

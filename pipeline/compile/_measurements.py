@@ -351,13 +351,11 @@ def _values_stage(ctx: CompileContext) -> Stage:
         return Stage(
             names.MEASUREMENT_VALUES,
             values,
-            (names.MEASUREMENTS_JUDGED,),
             "usable values of the measures the study reads, in canonical units",
         )
     return Stage(
         names.MEASUREMENT_VALUES,
         values.where(kept),
-        (names.MEASUREMENTS_JUDGED,),
         "usable values some stage can read, in canonical units: those that are evidence, "
         "those near a possible index date, and what derived values need",
     )
@@ -378,14 +376,12 @@ def measurement_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         Stage(
             names.MEASUREMENT_ROWS,
             _judged_rows(ctx),
-            (MEASUREMENTS.relation, names.PATIENT_BASE),
             "every distinct measurement row parsed and converted, with what stops its use",
             kind="view",
         ),
         Stage(
             names.MEASUREMENTS_JUDGED,
             query(_JUDGED, rows=exp.to_table(names.MEASUREMENT_ROWS)),
-            (names.MEASUREMENT_ROWS,),
             "every measurement row parsed, converted and judged: values and quality log",
             kind="table" if check else "view",
         ),
@@ -405,7 +401,6 @@ def measurement_stages(ctx: CompileContext) -> tuple[Stage, ...]:
                     low=low,
                     high=high,
                 ),
-                (names.MEASUREMENT_VALUES, names.PATIENT_BASE),
                 "eGFR derived from creatinine by CKD-EPI 2021 where none was reported that day",
             )
         )
@@ -417,7 +412,6 @@ def measurement_stages(ctx: CompileContext) -> tuple[Stage, ...]:
                 query(
                     _DERIVED_BMI, kept=exp.to_table(names.MEASUREMENT_VALUES), low=low, high=high
                 ),
-                (names.MEASUREMENT_VALUES,),
                 "BMI from weight and the latest height where none was reported that day",
             )
         )

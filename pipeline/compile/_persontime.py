@@ -327,21 +327,18 @@ def persontime_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         Stage(
             names.PERSONTIME_SPANS,
             _spans_query(ctx),
-            (names.COHORT, names.ELIGIBILITY),
             "each cohort patient's follow-up days (index + 1 to followup_end) and incident onsets",
             kind="view",
         ),
         Stage(
             names.PERSONTIME,
             cells_query([o.condition for o in ctx.outcomes], option),
-            (names.PERSONTIME_SPANS,),
             "follow-up split at age bands, calendar years and time since index, with days at "
             "risk and events per outcome",
         ),
         Stage(
             names.PERSONTIME_ACCOUNTING,
             _accounting_query(ctx),
-            (names.COHORT, names.PERSONTIME),
             "every patient's cells add up to followup_days, time_X and incident_X",
             kind="check",
             failure=(

@@ -6,7 +6,7 @@ Nothing here touches a database. Engines take a plan and run it; ``describe`` re
 from __future__ import annotations
 
 import hashlib
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Literal
 
 from sqlglot import exp
@@ -48,19 +48,24 @@ class Stage:
     Attributes:
         name: Unique snake_case name; later stages refer to it as a table.
         query: The stage's query as a sqlglot tree, in the source dialect.
-        depends_on: Stages and source relations it reads.
         description: Why the stage exists, in one line; shown by ``describe``.
         kind: ``table`` is materialised; ``view`` is inlined where it is read; ``check`` must
             return no rows, otherwise the run fails with ``failure`` and the first rows found.
         failure: For checks, the message shown when rows are returned.
+        depends_on: The stages and source relations it reads, read from ``query`` itself
+            (:func:`relations_read`), never written by hand: a declared list could drift from
+            the query, and the sweep shares stages along these edges.
     """
 
     name: str
     query: exp.Query
-    depends_on: tuple[str, ...]
     description: str
     kind: Literal["table", "view", "check"] = "table"
     failure: str = ""
+    depends_on: tuple[str, ...] = field(init=False)
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "depends_on", relations_read(self.query))
 
     def render(self, dialect: str) -> str:
         """Render the stage's query as SQL text for one dialect."""
@@ -95,13 +100,6 @@ class Plan:
             missing = [d for d in stage.depends_on if d not in known]
             if missing:
                 raise ValueError(f"stage {stage.name} reads {missing} before they exist")
-            read = relations_read(stage.query)
-            if set(read) != set(stage.depends_on):
-                # The sweep shares stages along these edges: a wrong one would share too much.
-                raise ValueError(
-                    f"stage {stage.name} declares it reads {sorted(stage.depends_on)}, "
-                    f"its query reads {list(read)}"
-                )
             if stage.name in known:
                 raise ValueError(f"stage name {stage.name} is used twice")
             known.add(stage.name)

@@ -21,7 +21,6 @@ from pipeline.compile._judged import judged_for_log
 from pipeline.compile._plan import SourceTable, Stage
 from pipeline.compile._sources import source_tables
 from pipeline.compile._sql import query, value
-from pipeline.compile.names import judged_stage
 
 
 @dataclass(frozen=True)
@@ -274,18 +273,15 @@ def quality_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         query(_SUMMARY, table_name=t.name, classified=_classified(ctx, t).subquery("c"))
         for t in tables
     ]
-    depends = [judged_stage(t.name) for t in tables]
     return (
         Stage(
             names.ROWS_READ,
             _union(read),
-            tuple(sorted(t.relation for t in tables)),
             "rows read per extract table, counted on their own to check the quality log",
         ),
         Stage(
             names.QUALITY_LOG,
             query(_LOG, used=used).with_("summary", as_=_union(summaries)),
-            tuple(sorted(depends)),
             "every extract row: used, or set aside with the first reason that applies",
         ),
     )

@@ -237,7 +237,7 @@ def _union_all(parts: list[exp.Query]) -> exp.Query:
     return union
 
 
-def _events_for(condition: Condition) -> tuple[exp.Expression, tuple[str, ...]]:
+def _events_for(condition: Condition) -> exp.Expression:
     """The evidence events a condition reads, with its referenced conditions' onsets added."""
     own = (
         exp.select("patient_id", "evidence", "event_date", "day", "n_rows")
@@ -245,7 +245,6 @@ def _events_for(condition: Condition) -> tuple[exp.Expression, tuple[str, ...]]:
         .where(exp.column("evidence").isin(*_keys(condition, sorted(condition.evidence))))
     )
     parts: list[exp.Query] = [own]
-    depends = [names.EVIDENCE_EVENTS]
     epoch = value(dt.date(1970, 1, 1))
     for name, ev in sorted(condition.evidence.items()):
         if ev.condition is not None:
@@ -257,10 +256,9 @@ def _events_for(condition: Condition) -> tuple[exp.Expression, tuple[str, ...]]:
                     onsets=exp.to_table(names.onset_stage(ev.condition)),
                 )
             )
-            depends.append(names.onset_stage(ev.condition))
     if len(parts) == 1:
-        return exp.to_table(names.EVIDENCE_EVENTS), (names.EVIDENCE_EVENTS,)
-    return _union_all(parts).subquery(names.EVIDENCE_EVENTS), tuple(depends)
+        return exp.to_table(names.EVIDENCE_EVENTS)
+    return _union_all(parts).subquery(names.EVIDENCE_EVENTS)
 
 
 def condition_stages(
@@ -272,33 +270,29 @@ def condition_stages(
     and read only evidence dated on or after each patient's index date minus that many days.
     """
     name = condition.condition
-    events, depends = _events_for(condition)
+    events = _events_for(condition)
     lookback = lookback_days is not None
     if lookback_days is not None:
         events = _since_lookback(events, lookback_days)
-        depends = (*depends, names.INDEX_DATES)
     first = condition.onset == "first_evidence"
     rules = Stage(
         names.rules_stage(name, lookback=lookback),
         _union_all(
             [rule_query(condition, r, events.copy(), first_evidence=first) for r in condition.rules]
         ),
-        depends,
         f"the first date each rule of {name} is met, per patient"
         + (f", from evidence since {lookback_days} days before index" if lookback else ""),
     )
     if condition.onset == "rule_met":
         onset_query = query(_ONSET_RULE_MET, rules=exp.to_table(rules.name))
-        onset_depends: tuple[str, ...] = (rules.name,)
         why = f"onset of {name}: the earliest date any of its rules is met"
     else:
         onset_query = query(_ONSET_FIRST_EVIDENCE, rules=exp.to_table(rules.name))
-        onset_depends = (rules.name,)
         why = (
             f"onset of {name}: the earliest evidence of the sets of events that first met a "
             "rule (on the first date any rule is met)"
         )
-    return rules, Stage(names.onset_stage(name, lookback=lookback), onset_query, onset_depends, why)
+    return rules, Stage(names.onset_stage(name, lookback=lookback), onset_query, why)
 
 
 def _since_lookback(events: exp.Expression, days: int) -> exp.Expression:
@@ -353,7 +347,6 @@ def rule_stages(ctx: CompileContext) -> tuple[Stage, ...]:
             exp.select("patient_id", *onsets)
             .from_(_union_all(rows).subquery("onsets"))
             .group_by("patient_id"),
-            tuple(names.onset_stage(name) for name in ctx.flagged),
             "each condition's onset per patient, one column per condition the table needs",
         )
     )

@@ -126,10 +126,7 @@ def merge_plans(plans: Mapping[str, Plan], outputs: tuple[str, ...]) -> MergedPl
                 taken.add(name)
                 by_print[mark] = name
                 query = _renamed(stage.query, local)
-                reads = tuple(local[d] for d in stage.depends_on)
-                stages.append(
-                    Stage(name, query, reads, stage.description, stage.kind, stage.failure)
-                )
+                stages.append(Stage(name, query, stage.description, stage.kind, stage.failure))
             local[stage.name] = by_print[mark]
             users.setdefault(by_print[mark], set()).add(key)
         names[key] = {k: v for k, v in local.items() if not k.startswith("src_")}

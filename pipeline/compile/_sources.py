@@ -289,14 +289,12 @@ def source_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         Stage(
             names.PATIENT_BASE,
             query(_PATIENT_BASE, judged=exp.to_table(patients), used=is_used()),
-            (patients,),
             "one typed row per patient: birth date (1 July when only the year is known), sex; "
             "a patient with a written but unreadable date is left out",
         ),
         Stage(
             names.PATIENT_DUPLICATES,
             query(_PATIENT_DUPLICATES, base=exp.to_table(names.PATIENT_BASE)),
-            (names.PATIENT_BASE,),
             "patients must be listed once",
             kind="check",
             failure="the patients table lists the same patient_id with different values",
@@ -305,7 +303,6 @@ def source_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         Stage(
             names.ENCOUNTER_ROWS,
             query(_ENCOUNTER_ROWS, judged=exp.to_table(encounters), used=is_used()),
-            (encounters,),
             "usable encounters: a readable date, a known patient, not after death or end of data",
             kind="view",
         ),
@@ -316,7 +313,6 @@ def source_stages(ctx: CompileContext) -> tuple[Stage, ...]:
                 in_window=_index_window(study),
                 rows=exp.to_table(names.ENCOUNTER_ROWS),
             ),
-            (names.ENCOUNTER_ROWS,),
             "first and last usable encounter per patient (and the first in the index window)",
         ),
     ]
@@ -325,7 +321,6 @@ def source_stages(ctx: CompileContext) -> tuple[Stage, ...]:
             Stage(
                 names.DISTINCT_CODES,
                 _distinct_codes(ctx),
-                _coded_sources(ctx),
                 "each distinct code of the extract, normalised, with what is wrong with it",
             )
         )
@@ -346,7 +341,6 @@ def source_stages(ctx: CompileContext) -> tuple[Stage, ...]:
             Stage(
                 names.CODED_ROWS,
                 rows,
-                tuple(judged_stage(name) for name in coded_tables(ctx)),
                 "usable diagnosis and prescription rows with their raw codes",
                 kind="view",
             )

@@ -162,7 +162,7 @@ ORDER BY
 LIMIT 5;
 
 -- stage encounters_judged [view]: every encounters row judged once: used, or the reason the quality log gives
--- reads: src_encounters, patient_base
+-- reads: patient_base, src_encounters
 SELECT
   *,
   COALESCE(record_problem, timing_problem, 'used') AS reason
@@ -282,7 +282,7 @@ FROM (
 ) AS c;
 
 -- stage diagnoses_judged [view]: every diagnoses row judged once: used, or the reason the quality log gives
--- reads: src_diagnoses, patient_base, distinct_codes
+-- reads: distinct_codes, patient_base, src_diagnoses
 SELECT
   *,
   COALESCE(record_problem, code_problem, timing_problem, 'used') AS reason
@@ -338,7 +338,7 @@ FROM (
 ) AS j;
 
 -- stage prescriptions_judged [view]: every prescriptions row judged once: used, or the reason the quality log gives
--- reads: src_prescriptions, patient_base, distinct_codes
+-- reads: distinct_codes, patient_base, src_prescriptions
 SELECT
   *,
   COALESCE(record_problem, code_problem, timing_problem, 'used') AS reason
@@ -437,7 +437,7 @@ WHERE
   reason = 'used';
 
 -- stage measurement_rows [view]: every distinct measurement row parsed and converted, with what stops its use
--- reads: src_measurements, patient_base
+-- reads: patient_base, src_measurements
 WITH read AS (
   SELECT
     patient_id,
@@ -1276,7 +1276,7 @@ GROUP BY
   m.evidence;
 
 -- stage coded_row_evidence [view]: each usable diagnosis or prescription row with the evidence its code matches
--- reads: codes_to_evidence, coded_rows
+-- reads: coded_rows, codes_to_evidence
 SELECT DISTINCT
   e.patient_id,
   e.event_date,
@@ -1699,7 +1699,7 @@ GROUP BY
   patient_id;
 
 -- stage condition_onsets [table]: each condition's onset per patient, one column per condition the table needs
--- reads: onset_type2_diabetes, onset_ckd, onset_heart_failure, onset_hypertension
+-- reads: onset_ckd, onset_heart_failure, onset_hypertension, onset_type2_diabetes
 SELECT
   patient_id,
   MIN(CASE WHEN condition = 'type2_diabetes' THEN onset_date END) AS onset_type2_diabetes,
@@ -1744,7 +1744,7 @@ WHERE
   NOT first_in_window IS NULL;
 
 -- stage window_counts [table]: per patient, evidence and encounters counted in windows around the index date
--- reads: index_dates, evidence_events, encounter_rows
+-- reads: encounter_rows, evidence_events, index_dates
 SELECT
   i.patient_id,
   COALESCE(ev.charlson_myocardial_infarction, 0) AS charlson_myocardial_infarction,
@@ -2202,7 +2202,7 @@ LEFT JOIN (
   ON c3.patient_id = i.patient_id;
 
 -- stage eligibility [table]: the source population with follow-up and one pass/fail column per eligibility step
--- reads: index_dates, patient_base, encounter_summary, condition_onsets, window_counts
+-- reads: condition_onsets, encounter_summary, index_dates, patient_base, window_counts
 SELECT
   patient_id,
   sex,
@@ -2441,7 +2441,7 @@ SELECT
 FROM eligibility;
 
 -- stage cohort [table]: the analysis table: one row per eligible patient
--- reads: eligibility, window_counts, measure_covariates
+-- reads: eligibility, measure_covariates, window_counts
 SELECT
   f.patient_id,
   f.index_date,

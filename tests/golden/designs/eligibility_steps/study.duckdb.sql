@@ -80,7 +80,7 @@ ORDER BY
 LIMIT 5;
 
 -- stage encounters_judged [view]: every encounters row judged once: used, or the reason the quality log gives
--- reads: src_encounters, patient_base
+-- reads: patient_base, src_encounters
 SELECT
   *,
   COALESCE(record_problem, timing_problem, 'used') AS reason
@@ -196,7 +196,7 @@ FROM (
 ) AS c;
 
 -- stage diagnoses_judged [view]: every diagnoses row judged once: used, or the reason the quality log gives
--- reads: src_diagnoses, patient_base, distinct_codes
+-- reads: distinct_codes, patient_base, src_diagnoses
 SELECT
   *,
   COALESCE(record_problem, code_problem, timing_problem, 'used') AS reason
@@ -245,7 +245,7 @@ FROM (
 ) AS j;
 
 -- stage prescriptions_judged [view]: every prescriptions row judged once: used, or the reason the quality log gives
--- reads: src_prescriptions, patient_base, distinct_codes
+-- reads: distinct_codes, patient_base, src_prescriptions
 SELECT
   *,
   COALESCE(record_problem, code_problem, timing_problem, 'used') AS reason
@@ -319,7 +319,7 @@ WHERE
   reason = 'used';
 
 -- stage measurement_rows [view]: every distinct measurement row parsed and converted, with what stops its use
--- reads: src_measurements, patient_base
+-- reads: patient_base, src_measurements
 WITH read AS (
   SELECT
     patient_id,
@@ -681,7 +681,7 @@ GROUP BY
   m.evidence;
 
 -- stage coded_row_evidence [view]: each usable diagnosis or prescription row with the evidence its code matches
--- reads: codes_to_evidence, coded_rows
+-- reads: coded_rows, codes_to_evidence
 SELECT DISTINCT
   e.patient_id,
   e.event_date,
@@ -900,7 +900,7 @@ GROUP BY
   patient_id;
 
 -- stage condition_onsets [table]: each condition's onset per patient, one column per condition the table needs
--- reads: onset_type2_diabetes, onset_hypertension
+-- reads: onset_hypertension, onset_type2_diabetes
 SELECT
   patient_id,
   MIN(CASE WHEN condition = 'type2_diabetes' THEN onset_date END) AS onset_type2_diabetes,
@@ -931,7 +931,7 @@ WHERE
   NOT first_in_window IS NULL;
 
 -- stage window_counts [table]: per patient, evidence and encounters counted in windows around the index date
--- reads: index_dates, evidence_events, encounter_rows
+-- reads: encounter_rows, evidence_events, index_dates
 SELECT
   i.patient_id,
   COALESCE(ev.step_evidence_5, 0) AS step_evidence_5,
@@ -998,7 +998,7 @@ LEFT JOIN (
   ON en.patient_id = i.patient_id;
 
 -- stage eligibility [table]: the source population with follow-up and one pass/fail column per eligibility step
--- reads: index_dates, patient_base, encounter_summary, condition_onsets, window_counts
+-- reads: condition_onsets, encounter_summary, index_dates, patient_base, window_counts
 SELECT
   patient_id,
   sex,

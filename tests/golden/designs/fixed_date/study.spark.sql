@@ -162,7 +162,7 @@ ORDER BY
 LIMIT 5;
 
 -- stage encounters_judged [view]: every encounters row judged once: used, or the reason the quality log gives
--- reads: src_encounters, patient_base
+-- reads: patient_base, src_encounters
 SELECT
   *,
   COALESCE(record_problem, timing_problem, 'used') AS reason
@@ -277,7 +277,7 @@ FROM (
 ) AS c;
 
 -- stage diagnoses_judged [view]: every diagnoses row judged once: used, or the reason the quality log gives
--- reads: src_diagnoses, patient_base, distinct_codes
+-- reads: distinct_codes, patient_base, src_diagnoses
 SELECT
   *,
   COALESCE(record_problem, code_problem, timing_problem, 'used') AS reason
@@ -333,7 +333,7 @@ FROM (
 ) AS j;
 
 -- stage prescriptions_judged [view]: every prescriptions row judged once: used, or the reason the quality log gives
--- reads: src_prescriptions, patient_base, distinct_codes
+-- reads: distinct_codes, patient_base, src_prescriptions
 SELECT
   *,
   COALESCE(record_problem, code_problem, timing_problem, 'used') AS reason
@@ -432,7 +432,7 @@ WHERE
   reason = 'used';
 
 -- stage measurement_rows [view]: every distinct measurement row parsed and converted, with what stops its use
--- reads: src_measurements, patient_base
+-- reads: patient_base, src_measurements
 WITH read AS (
   SELECT
     patient_id,
@@ -816,7 +816,7 @@ GROUP BY
   m.evidence;
 
 -- stage coded_row_evidence [view]: each usable diagnosis or prescription row with the evidence its code matches
--- reads: codes_to_evidence, coded_rows
+-- reads: coded_rows, codes_to_evidence
 SELECT DISTINCT
   e.patient_id,
   e.event_date,
@@ -1063,7 +1063,7 @@ GROUP BY
   patient_id;
 
 -- stage condition_onsets [table]: each condition's onset per patient, one column per condition the table needs
--- reads: onset_type2_diabetes, onset_heart_failure
+-- reads: onset_heart_failure, onset_type2_diabetes
 SELECT
   patient_id,
   MIN(CASE WHEN condition = 'type2_diabetes' THEN onset_date END) AS onset_type2_diabetes,
@@ -1101,7 +1101,7 @@ SELECT
 FROM encounter_rows;
 
 -- stage contact_at_index [table]: each patient's last contact on or before the end of the in-contact window
--- reads: index_dates, contact_rows
+-- reads: contact_rows, index_dates
 SELECT
   i.patient_id,
   MAX(c.contact_date) AS last_contact_by_index
@@ -1113,7 +1113,7 @@ GROUP BY
   i.patient_id;
 
 -- stage eligibility [table]: the source population with follow-up and one pass/fail column per eligibility step
--- reads: index_dates, patient_base, encounter_summary, condition_onsets, contact_at_index
+-- reads: condition_onsets, contact_at_index, encounter_summary, index_dates, patient_base
 SELECT
   patient_id,
   sex,
