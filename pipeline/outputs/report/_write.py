@@ -43,6 +43,7 @@ from pipeline.outputs.report._table_one import (
     table_one_summary,
 )
 from pipeline.outputs.report._tables import (
+    check_matched_cases,
     combinations_block,
     dependence_block,
     dependence_summary,
@@ -78,6 +79,7 @@ class Study:
     labels: dict[str, str] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
     reference: ReferenceRates | None = None
+    cases_of: str | None = None
 
 
 def _used_conditions(loaded: LoadedStudy) -> tuple[str, ...]:
@@ -177,6 +179,7 @@ def read_study(
         notes=base.notes,
         labels={n: c.label for n, c in study_model.covariates.items() if c.label},
         reference=loaded.reference_rates,
+        cases_of=study_model.matching.cases_of if study_model.matching else None,
     )
 
 
@@ -225,6 +228,28 @@ def with_headline_time(incidence: pl.DataFrame, headlines: dict[str, Headline]) 
     ).select(order)
 
 
+def matched_outcome(
+    output_dir: Path, cohort: pl.DataFrame, outcomes: tuple[str, ...], study: Study
+) -> str | None:
+    """The outcome whose incident cases the build matched, if it matched any.
+
+    From the study; when the study file could not be read, from the cases of
+    ``matched.parquet``: the outcome whose incident cases in the cohort are exactly those
+    patients. The flow's matching lines must be tied to it even then (see ``flow_block``).
+    """
+    if study.cases_of is not None or not (output_dir / "matched.parquet").is_file():
+        return study.cases_of
+    matched = pl.read_parquet(output_dir / "matched.parquet", columns=["role", "patient_id"])
+    cases = set(matched.filter(pl.col("role") == "case")["patient_id"].cast(pl.String))
+    for o in outcomes:
+        incident = cohort.filter(
+            pl.col(f"at_risk_{o}") & pl.col(f"incident_{o}").fill_null(value=False)
+        )
+        if set(incident["patient_id"].cast(pl.String)) == cases:
+            return o
+    return None
+
+
 def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]:
     """Write ``report.html`` and the suppressed ``summary/*.csv`` tables of a build.
 
@@ -258,9 +283,12 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
     attrition = attrition.with_columns(pl.col(c).cast(pl.Int64) for c in counts)
     study = read_study(manifest, cohort, output_dir, study_file)
     outcomes, t = study.outcomes, study.threshold
-    flow = flow_block(attrition, cohort.height)
+    flow = flow_block(
+        attrition, cohort.height, matched_outcome(output_dir, cohort, outcomes, study)
+    )
     t1 = {o: table_one_blocks(cohort, o) for o in outcomes}
     results, incidence = incidence_block(cohort, outcomes)
+    check_matched_cases(flow, incidence)
     combos = combinations_block(cohort, outcomes)
     dependence = dependence_block(cohort, outcomes)
     quality_parts = quality_blocks(quality)
