@@ -633,7 +633,8 @@ def test_the_matched_outcome_comes_from_the_study_or_from_the_matched_cases(
     found = read_study(read_manifest(matched_few), cohort, matched_few)
     assert found.cases_of is None
     assert found.notes
-    assert matched_outcome(matched_few, cohort, found.outcomes, found) == "heart_failure"
+    attrition = pl.read_csv(matched_few / "attrition.csv")
+    assert matched_outcome(matched_few, cohort, attrition, found) == "heart_failure"
     given = read_study(read_manifest(matched_few), cohort, matched_few, MATCHED_STUDY)
     assert given.cases_of == "heart_failure"
     copy = tmp_path / "copy"
@@ -641,6 +642,10 @@ def test_the_matched_outcome_comes_from_the_study_or_from_the_matched_cases(
     write_report(copy, MATCHED_STUDY)
     flow = (copy / "summary" / "flow.csv").read_text(encoding="utf-8")
     assert flow == (matched_few / "summary" / "flow.csv").read_text(encoding="utf-8")
+    # without the study and without matched.parquet the sets line cannot be tied: refused
+    (copy / "matched.parquet").unlink()
+    with pytest.raises(AscertainError, match="cannot be tied to an outcome"):
+        write_report(copy)
 
 
 def _matched_attrition(cases: int) -> pl.DataFrame:

@@ -229,25 +229,34 @@ def with_headline_time(incidence: pl.DataFrame, headlines: dict[str, Headline]) 
 
 
 def matched_outcome(
-    output_dir: Path, cohort: pl.DataFrame, outcomes: tuple[str, ...], study: Study
+    output_dir: Path, cohort: pl.DataFrame, attrition: pl.DataFrame, study: Study
 ) -> str | None:
-    """The outcome whose incident cases the build matched, if it matched any.
+    """The outcome whose incident cases the build matched; None when the log has no sets line.
 
     From the study; when the study file could not be read, from the cases of
     ``matched.parquet``: the outcome whose incident cases in the cohort are exactly those
-    patients. The flow's matching lines must be tied to it even then (see ``flow_block``).
+    patients. The flow's sets line must be tied to it (see ``flow_block``), so a report that
+    cannot tell refuses rather than print the line untied.
+
+    Raises:
+        AscertainError: The log has matching lines but neither the study nor matched.parquet
+            says which outcome they count.
     """
-    if study.cases_of is not None or not (output_dir / "matched.parquet").is_file():
+    if study.cases_of is not None or "match_cases" not in attrition["step"].to_list():
         return study.cases_of
-    matched = pl.read_parquet(output_dir / "matched.parquet", columns=["role", "patient_id"])
-    cases = set(matched.filter(pl.col("role") == "case")["patient_id"].cast(pl.String))
-    for o in outcomes:
-        incident = cohort.filter(
-            pl.col(f"at_risk_{o}") & pl.col(f"incident_{o}").fill_null(value=False)
-        )
-        if set(incident["patient_id"].cast(pl.String)) == cases:
-            return o
-    return None
+    if (output_dir / "matched.parquet").is_file():
+        matched = pl.read_parquet(output_dir / "matched.parquet", columns=["role", "patient_id"])
+        cases = set(matched.filter(pl.col("role") == "case")["patient_id"].cast(pl.String))
+        for o in study.outcomes:
+            incident = cohort.filter(
+                pl.col(f"at_risk_{o}") & pl.col(f"incident_{o}").fill_null(value=False)
+            )
+            if set(incident["patient_id"].cast(pl.String)) == cases:
+                return o
+    raise AscertainError(
+        f"{output_dir / 'attrition.csv'}: the matching lines cannot be tied to an outcome "
+        "without the study file or matched.parquet; name the study with --study"
+    )
 
 
 def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]:
@@ -284,7 +293,7 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
     study = read_study(manifest, cohort, output_dir, study_file)
     outcomes, t = study.outcomes, study.threshold
     flow = flow_block(
-        attrition, cohort.height, matched_outcome(output_dir, cohort, outcomes, study)
+        attrition, cohort.height, matched_outcome(output_dir, cohort, attrition, study)
     )
     t1 = {o: table_one_blocks(cohort, o) for o in outcomes}
     results, incidence = incidence_block(cohort, outcomes)
