@@ -118,11 +118,9 @@ def build(
         for report in result.run.stages:
             rows = "-" if report.rows is None else f"{report.rows:,}"
             console.print(f"{report.name:<24} {report.kind:<6} {report.seconds:8.3f} s {rows:>14}")
-    attrition = result.run.outputs["attrition"].to_pylist()
     if not quiet:
-        for step in attrition:
-            removed, remaining = step["removed"], step["remaining"]
-            console.print(f"{step['step']:<24} removed {removed:>9,}  remaining {remaining:>9,}")
+        for line in result.attrition_lines():
+            console.print(line, markup=False)
     for note in result.notes:
         console.print(f"note: {note}", markup=False, soft_wrap=True)
     for warning in result.warnings:

@@ -33,7 +33,11 @@ import polars as pl
 import pytest
 from scipy.optimize import Bounds, LinearConstraint, milp
 
+from pipeline.errors import AscertainError
+from pipeline.outputs._manifest import read_manifest
 from pipeline.outputs.report import write_report
+from pipeline.outputs.report._tables import check_matched_cases, flow_block, incidence_block
+from pipeline.outputs.report._write import matched_outcome, read_study
 from pipeline.synth import generate_extract
 from pipeline.workflows.build import BuildOptions, build_study
 
@@ -43,6 +47,8 @@ from .helpers import demo_study_variant
 THRESHOLD = 5
 MARKERS = ("<5", "*")
 State = tuple[str, ...]
+MATCH_LINES = ("match_cases", "match_any_control", "match_all_controls")
+FLOW_REST = ("flow", (), "rest", "")
 
 
 @pytest.fixture(scope="module")
@@ -113,6 +119,24 @@ def sparse(tmp_path_factory: pytest.TempPathFactory) -> Path:
     return base / "out"
 
 
+MATCHED_STUDY = ROOT / "definitions" / "studies" / "orvane_hf_matched.yaml"
+
+
+@pytest.fixture(scope="module")
+def matched_few(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The matched example study on 3,000 synthetic patients: six matched sets.
+
+    The flow's sets line counts the same six cases as the incidence table's events of heart
+    failure, which are hidden (``*``) to protect small cells of Table 1's incident group; the
+    sets line must be hidden with them, or the flow gives the events away.
+    """
+    base = tmp_path_factory.mktemp("attack_matched")
+    generate_extract(base / "extract", patients=3000, seed=5)
+    build_study(MATCHED_STUDY, BuildOptions(extract=base / "extract", out=base / "out"))
+    write_report(base / "out")
+    return base / "out"
+
+
 # A numbers-at-risk cell of report.html: outcome, day, count, and the text printed.
 AT_RISK_CELL = re.compile(r'data-outcome="(\w+)" data-day="(\w+)" data-count="(\w+)"[^>]*>([^<]*)<')
 
@@ -141,6 +165,7 @@ class Attack:
             self.names += [("l", s, v, lv) for s in self.states for lv in sorted(levels)]
         self.flow = _rows(folder / "summary" / "flow.csv")
         self.names += [("flow", (), c, str(i)) for i in range(len(self.flow)) for c in ("b", "r")]
+        self.names.append(FLOW_REST)  # the last line's remaining (not the cohort when matched)
         page = (folder / "report.html").read_text(encoding="utf-8")
         self.at_risk = {
             (o, d, c): html.unescape(text).replace(",", "")
@@ -249,22 +274,37 @@ class Attack:
                 )
         self._read_rates()
         self._read_smr()
+        self._read_flow()
+        self._read_at_risk()
+
+    def _read_flow(self) -> None:
+        """Before = removed + remaining; remaining = next before; the matching lines' meaning.
+
+        The last eligibility line leaves the cohort (the manifest's size). A matched study's
+        lines follow it: ``match_cases`` leaves the incident cases of the outcome its
+        description names (one set each), the lines after it count sets.
+        """
         last = len(self.flow) - 1
-        for i, r in enumerate(self.flow):  # before = removed + remaining; remaining = next before
+        steps = [r["step"] for r in self.flow]
+        first_match = next((i for i, s in enumerate(steps) if s in MATCH_LINES), len(steps))
+        for i, r in enumerate(self.flow):
             before, removed = (
                 self.index[("flow", (), "b", str(i))],
                 self.index[("flow", (), "r", str(i))],
             )
             self.cells.append(({before: 1}, r["patients_before"], f"flow {i} before"))
             self.cells.append(({removed: 1}, r["removed"], f"flow {i} removed"))
-            remaining = (
-                self._of(lambda s: True)
-                if i == last
-                else {self.index[("flow", (), "b", str(i + 1))]: 1}
-            )
-            self.cells.append((remaining, r["remaining"], f"flow {i} remaining"))
-            self.identities.append({before: 1, removed: -1} | dict.fromkeys(remaining, -1))
-        self._read_at_risk()
+            remaining = self.index[("flow", (), "b", str(i + 1)) if i < last else FLOW_REST]
+            self.cells.append(({remaining: 1}, r["remaining"], f"flow {i} {steps[i]} remaining"))
+            self.identities.append({before: 1, removed: -1, remaining: -1})
+            if i == first_match - 1:  # the cohort
+                self.identities.append(dict.fromkeys(self._of(lambda s: True), 1) | {remaining: -1})
+            if steps[i] == "match_cases":
+                found = re.match(r"incident (\w+) cases", r["description"])
+                assert found, r["description"]
+                o = self._state(found.group(1))
+                events = self._of(lambda s, o=o: s[o] == "E")
+                self.identities.append(dict.fromkeys(events, 1) | {remaining: -1})
 
     def _bin(self, o: str, low: int, kind: str) -> int:
         return self.index[("bin", (), o, f"{low}|{kind}")]
@@ -440,6 +480,7 @@ def _naive(folder: Path) -> Attack:
     for i, r in enumerate(_rows(folder / "attrition.csv")):
         count[truth.index[("flow", (), "b", str(i))]] = int(r["patients_before"])
         count[truth.index[("flow", (), "r", str(i))]] = int(r["removed"])
+        count[truth.index[FLOW_REST]] = int(r["remaining"])  # the last line's, in the end
     naive = []
     for coefficients, _, what in truth.cells:
         value = sum(c * count[k] for k, c in coefficients.items())
@@ -455,6 +496,7 @@ def _naive(folder: Path) -> Attack:
         "tiny",
         "tiny_rates",
         "tiny_since",
+        "matched_few",
         pytest.param("sparse", marks=pytest.mark.slow),
         pytest.param("demo_rates", marks=pytest.mark.slow),
     ],
@@ -538,6 +580,122 @@ def test_the_attack_finds_a_lone_hidden_band_since_index(demo_rates: Path, tmp_p
         writer.writerows(rates)
     found = [(w, lo, hi) for w, lo, hi in Attack(copy).ranges() if w.endswith("since 0-1")]
     assert found == [("rates heart_failure all all since 0-1", value, value)]
+
+
+def _flow_line(folder: Path, step: str) -> dict[str, str]:
+    (line,) = [r for r in _rows(folder / "summary" / "flow.csv") if r["step"] == step]
+    return line
+
+
+def test_the_matching_lines_hide_the_events_they_repeat(matched_few: Path) -> None:
+    # Six sets: the sets line counts the six incident cases the incidence table hides as a
+    # complement (not as a small count). Every matching line is hidden with them, and the
+    # cohort line before them is printed exactly.
+    size = json.loads((matched_few / "manifest.json").read_text(encoding="utf-8"))
+    (sets,) = [r for r in _rows(matched_few / "attrition.csv") if r["step"] == "match_cases"]
+    assert sets["remaining"] == "6"
+    (incidence,) = _rows(matched_few / "summary" / "incidence.csv")
+    assert incidence["events"] == "*"
+    for step in ("match_cases", "match_any_control", "match_all_controls"):
+        assert _flow_line(matched_few, step)["remaining"] in MARKERS
+    assert _flow_line(matched_few, "not_prevalent")["remaining"] == str(size["rows"]["cohort"])
+    assert _flow_line(matched_few, "match_cases")["patients_before"] == str(size["rows"]["cohort"])
+
+
+def test_the_attack_reads_the_events_off_a_printed_sets_line(
+    matched_few: Path, tmp_path: Path
+) -> None:
+    # Hand case: print the sets line as its true count (as a report that did not tie it to the
+    # events would). The events of heart failure, hidden in the incidence table, are then
+    # pinned to that count; the attack must say so.
+    copy = tmp_path / "copy"
+    shutil.copytree(matched_few, copy)
+    truth = {r["step"]: r for r in _rows(copy / "attrition.csv")}
+    flow = _rows(copy / "summary" / "flow.csv")
+    for r in flow:
+        if r["step"].startswith("match_"):
+            r |= {c: truth[r["step"]][c] for c in ("patients_before", "removed", "remaining")}
+    with (copy / "summary" / "flow.csv").open("w", encoding="utf-8", newline="") as handle:
+        writer = csv.DictWriter(handle, fieldnames=list(flow[0]), lineterminator="\n")
+        writer.writeheader()
+        writer.writerows(flow)
+    pinned = [(w, lo, hi) for w, lo, hi in Attack(copy).ranges() if w == "events"]
+    assert pinned == [("events", 6.0, 6.0)]
+
+
+def test_the_matched_outcome_comes_from_the_study_or_from_the_matched_cases(
+    matched_few: Path, tmp_path: Path
+) -> None:
+    # The fixture's report could not find the study (built far from it), so it named the
+    # matched outcome from matched.parquet's cases; given the study, it reads cases_of there,
+    # and the flow is the same.
+    cohort = pl.read_parquet(matched_few / "cohort.parquet")
+    found = read_study(read_manifest(matched_few), cohort, matched_few)
+    assert found.cases_of is None
+    assert found.notes
+    attrition = pl.read_csv(matched_few / "attrition.csv")
+    assert matched_outcome(matched_few, cohort, attrition, found) == "heart_failure"
+    given = read_study(read_manifest(matched_few), cohort, matched_few, MATCHED_STUDY)
+    assert given.cases_of == "heart_failure"
+    copy = tmp_path / "copy"
+    shutil.copytree(matched_few, copy)
+    write_report(copy, MATCHED_STUDY)
+    flow = (copy / "summary" / "flow.csv").read_text(encoding="utf-8")
+    assert flow == (matched_few / "summary" / "flow.csv").read_text(encoding="utf-8")
+    # without the study and without matched.parquet the sets line cannot be tied: refused
+    (copy / "matched.parquet").unlink()
+    with pytest.raises(AscertainError, match="cannot be tied to an outcome"):
+        write_report(copy)
+
+
+def _matched_attrition(cases: int) -> pl.DataFrame:
+    rows = [
+        (1, "patients_in_extract", 100, 0, 100),
+        (2, "not_prevalent", 100, 10, 90),
+        (3, "match_cases", 90, 90 - cases, cases),
+        (4, "match_any_control", cases, 0, cases),
+        (5, "match_all_controls", cases, 1, cases - 1),
+    ]
+    return pl.DataFrame(
+        [(n, step, "", *counts) for n, step, *counts in rows],
+        schema=["step_number", "step", "description", "patients_before", "removed", "remaining"],
+        orient="row",
+    )
+
+
+def test_the_flow_keys_the_cohort_and_the_matched_cases_as_the_tables_do() -> None:
+    # The cohort line stays the known total N although matching lines follow it, and the sets
+    # line is the incidence table's events of the matched outcome (one key: one count).
+    flow = flow_block(_matched_attrition(7), 90, "heart_failure")
+    keys = flow.frame.select("step", "patients_before#key", "remaining#key").rows()
+    assert keys == [
+        ("patients_in_extract", "src", "flow|0"),
+        ("not_prevalent", "flow|0", "N"),
+        ("match_cases", "N", "events|heart_failure"),
+        ("match_any_control", "events|heart_failure", "flow|3"),
+        ("match_all_controls", "flow|3", "flow|4"),
+    ]
+    assert flow.meanings["N"] == ()
+    assert flow.meanings["events|heart_failure"] == (
+        ("at|heart_failure", "true"),
+        ("inc|heart_failure", "true"),
+    )
+
+
+def test_a_sets_line_that_differs_from_the_cohorts_cases_is_refused() -> None:
+    cohort = pl.DataFrame(
+        {
+            "at_risk_heart_failure": [True] * 90,
+            "incident_heart_failure": [True] * 6 + [False] * 84,
+            "days_to_heart_failure": [10] * 6 + [None] * 84,
+            "followup_days": [100] * 90,
+            "end_reason": ["horizon"] * 90,
+        }
+    )
+    _, incidence = incidence_block(cohort, ["heart_failure"])
+    check_matched_cases(flow_block(_matched_attrition(6), 90, "heart_failure"), incidence)
+    with pytest.raises(AscertainError, match="counts 7 matched sets but the cohort has 6"):
+        check_matched_cases(flow_block(_matched_attrition(7), 90, "heart_failure"), incidence)
 
 
 def test_the_attack_breaks_primary_suppression_alone(tiny: Path) -> None:

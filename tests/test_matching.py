@@ -28,8 +28,10 @@ import pyarrow.parquet as pq
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from typer.testing import CliRunner
 
 from pipeline import BuildOptions, build_study, plan_study
+from pipeline.cli import app
 from pipeline.config._matching import Matching
 from pipeline.errors import ConfigError
 from pipeline.outputs._matched import matched_table
@@ -107,6 +109,23 @@ def test_attrition_counts_sets_with_all_fewer_and_no_controls(built: Path) -> No
         "controls": 3,
         "distinct_controls": 3,
     }
+
+
+def test_the_build_summary_prints_the_matching_lines(tmp_path: Path) -> None:
+    # The terminal summary prints the log as written: the hand-computed matching lines follow
+    # the eligibility steps, as in attrition.csv, before the cohort line.
+    study = _copy_fixture(tmp_path)
+    result = CliRunner().invoke(app, ["build", str(study), "--out", str(tmp_path / "out")])
+    assert result.exit_code == 0, result.output
+    printed = [line.split() for line in result.output.splitlines()]
+    steps = [words[0] for words in printed if "remaining" in words]
+    with (tmp_path / "out" / "attrition.csv").open(encoding="utf-8") as handle:
+        assert steps == [r["step"] for r in csv.DictReader(handle)]
+    assert [words for words in printed if words[0].startswith("match_")] == [
+        ["match_cases", "removed", "8", "remaining", "3"],
+        ["match_any_control", "removed", "1", "remaining", "2"],
+        ["match_all_controls", "removed", "1", "remaining", "1"],
+    ]
 
 
 def test_dictionary_and_manifest_describe_the_file(built: Path) -> None:

@@ -2,7 +2,8 @@
 
 A hypothesis strategy writes valid study files (index strategy, eligibility steps, covariates,
 outcomes from the shipped definitions, horizon, look-back, follow-up, and sometimes measures of
-the study's own, written as files beside it, with thresholds on them in any of their units) and
+the study's own, written as files beside it, with thresholds on them in any of their units,
+person-time cells by age band, year and years since index, and matched controls) and
 checks what must hold for every study: compiling is deterministic, every stage's Spark SQL reads
 back with sqlglot's Spark reader, every stage reads only relations made earlier in the run (the
 fake engine, no database), and one more exclusion step never adds a patient to the cohort.
@@ -164,6 +165,39 @@ def _covariate(kind: str, draw: Any, own: list[str]) -> dict[str, Any]:
 
 
 @st.composite
+def matching(draw: Any, outcomes: list[str]) -> dict[str, Any]:
+    """A ``matching:`` section: controls for the incident cases of one of the outcomes."""
+    return {
+        "cases_of": draw(st.sampled_from(outcomes)),
+        "controls_per_case": draw(st.integers(1, 5)),
+        "birth_year_within": draw(st.integers(0, 10)),
+        "same_practice": draw(st.booleans()),
+        "reuse_controls": draw(st.booleans()),
+        "seed": draw(st.integers(0, 2**31 - 1)),
+        "contact_within_days": draw(st.integers(0, 1095)),
+    }
+
+
+@st.composite
+def persontime(draw: Any, youngest: int) -> dict[str, Any]:
+    """A ``persontime:`` section whose first age band admits the study's youngest patient.
+
+    The first band must start at or below the highest lower bound of the age steps (the load
+    check ``age-band-gap``), so every follow-up day falls in a band.
+    """
+    first = draw(st.integers(0, youngest))
+    more = draw(st.lists(st.integers(first + 1, 110), max_size=5, unique=True))
+    option: dict[str, Any] = {
+        "age_bands": [first, *sorted(more)],
+        "calendar_year": draw(st.booleans()),
+    }
+    if draw(st.booleans()):
+        later = draw(st.lists(st.integers(1, 10), max_size=3, unique=True))
+        option["since_index_years"] = [0, *sorted(later)]
+    return option
+
+
+@st.composite
 def studies(draw: Any) -> dict[str, Any]:
     """A valid study file as a dict (extract and definitions are filled in when written)."""
     kinds = ("latest", "mean", "minimum", "maximum", "count", "condition",
@@ -197,6 +231,15 @@ def studies(draw: Any) -> dict[str, Any]:
                 {"no_evidence": {"evidence": evidence, "window": draw(_window(-1825, 0))}}
             )
     measures = {"measures": [f"measures/{m}.yaml" for m in own]} if own else {}
+    options: dict[str, Any] = {}
+    if draw(st.booleans()):  # person-time needs an age step at or above its first band
+        ages = [step["age"]["between"][0] for step in excluded if "age" in step]
+        if not ages:
+            ages = [draw(st.integers(0, 70))]
+            required.append({"age": {"between": [ages[0], draw(st.integers(ages[0], 110))]}})
+        options["persontime"] = draw(persontime(max(ages)))
+    if draw(st.booleans()):
+        options["matching"] = draw(matching(outcomes["conditions"]))
     return {
         "study": "property_study",
         "title": "a study drawn by hypothesis",
@@ -213,6 +256,7 @@ def studies(draw: Any) -> dict[str, Any]:
         },
         "output": {"folder": "out", "allow_empty_cohort": True},
         **measures,
+        **options,
     }
 
 
@@ -258,6 +302,10 @@ def test_compiling_twice_gives_the_same_sql(
         if f"'{measure}'" in design:
             assert f"'{measure}'" in first.describe("duckdb"), measure
     assert first.content_hash() == second.content_hash()
+    # the drawn options reach the plan: their stages are there exactly when the key is
+    names = {stage.name for stage in first.stages}
+    assert ("persontime" in names) == ("persontime" in study)
+    assert ("matching_sets" in names) == ("matching" in study)
 
 
 @PROPERTY

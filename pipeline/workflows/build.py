@@ -59,6 +59,20 @@ class BuildResult:
     """Sentences for the user, e.g. that the previous cohort's report was removed."""
     warnings: list[str] = field(default_factory=list)
     """Things that may mislead without stopping the build: a definition matching no row."""
+    attrition: pa.Table | None = None
+    """The attrition log as written, with the matching lines (None: the run's own log)."""
+
+    def attrition_lines(self) -> list[str]:
+        """The attrition log as the build's terminal summary prints it, one line per step.
+
+        From the log as written, so a matched study's ``match_*`` lines (sets, sets with a
+        control, sets with all controls) follow the eligibility steps as in attrition.csv.
+        """
+        log = self.attrition if self.attrition is not None else self.run.outputs["attrition"]
+        return [
+            f"{r['step']:<24} removed {r['removed']:>9,}  remaining {r['remaining']:>9,}"
+            for r in log.to_pylist()
+        ]
 
 
 def plan_study(study_file: Path) -> Plan:
@@ -201,6 +215,7 @@ def build_study(
         run,
         [*notes, *written.notes],
         [u.message() for u in unmatched],
+        attrition,
     )
 
 

@@ -6,7 +6,8 @@ cell of a single system, suppressed together by :func:`pipeline.stats.protect_ce
 
 - Each count has a *key* naming the set it counts; a set shown in two tables (the cohort size
   in the flow and Table 1, the events of an outcome in the incidence table and as a Table 1
-  column) has one key, so it is hidden everywhere or nowhere.
+  column, and, in a matched study, as the flow's sets line ``match_cases``) has one key, so
+  it is hidden everywhere or nowhere.
 - Relations within tables: parts add up to their row total (flow, incidence, dependence, the
   Table 1 groups); each Table 1 variable's rows add up to its group's size (a count of the
   patients row); quality lines add up to the rows read of their source table (a count that is
@@ -44,8 +45,9 @@ from pipeline.outputs.report._cells import Spec, aliases, atom_relations, cohort
 from pipeline.stats import baseline_variables, protect_cells
 from pipeline.stats._disclosure import Relation, shown
 
-# The flow's last remaining count: the cohort size, which manifest.json (rows.cohort) also
-# states exactly, so a reader knows it whatever the report shows.
+# The flow's last eligibility line's remaining count (the last line, or the line before the
+# matching lines): the cohort size, which manifest.json (rows.cohort) also states exactly, so a
+# reader knows it whatever the report shows.
 COHORT_KEY = "N"
 _PRIORITY = (  # how much readers need a count; complements come from low ranks first
     (3, ("N", "src")),

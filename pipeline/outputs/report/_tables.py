@@ -14,6 +14,8 @@ from typing import Any
 
 import polars as pl
 
+from pipeline.errors import AscertainError
+from pipeline.outputs._matched import MATCHING_STEPS
 from pipeline.outputs.report._cells import Spec
 from pipeline.outputs.report._suppression import Block, keyed_frame, masked
 from pipeline.stats import (
@@ -37,26 +39,72 @@ _DERIVED_DEPENDENCE = (
 )
 
 
-def flow_block(attrition: pl.DataFrame, cohort_size: int) -> Block:
-    """The attrition log; each step's remaining count is the next step's patients_before."""
-    last = attrition.height - 1
-    rows = []
+def _events_spec(outcome: str) -> Spec:
+    """Whom an outcome's events count: its incident cases among the patients at risk."""
+    return ((f"at|{outcome}", "true"), (f"inc|{outcome}", "true"))
+
+
+def flow_block(attrition: pl.DataFrame, cohort_size: int, cases_of: str | None = None) -> Block:
+    """The attrition log; each step's remaining count is the next step's patients_before.
+
+    The last eligibility step's remaining count is the cohort size (key ``N``, known). A study
+    with matched controls adds the matching lines after it (``MATCHING_STEPS``): their first,
+    the sets, counts the incident cases of ``cases_of`` in the cohort, the same patients as
+    the incidence table's events of that outcome, so it takes that key and is hidden or shown
+    with them. The two lines after it count sets, which no other table counts.
+
+    Args:
+        attrition: The build's attrition log, counts as integers.
+        cohort_size: Rows of the analysis table.
+        cases_of: The matched outcome, when the log has matching lines (else they are tied to
+            nothing, which would let a reader see a hidden events count there).
+
+    Raises:
+        AscertainError: The matching lines' cases differ from the cohort's incident cases of
+            ``cases_of`` (the two files do not come from one build).
+    """
+    steps = attrition["step"].to_list()
+    first_match = next((i for i, s in enumerate(steps) if s in MATCHING_STEPS), len(steps))
+    meanings: dict[str, Spec] = {}
+    rows: list[dict[str, Any]] = []
+    before_key = "src"
     for i, r in enumerate(attrition.iter_rows(named=True)):
-        rem_key = "N" if i == last and r["remaining"] == cohort_size else f"flow|{i}"
+        rem_key = f"flow|{i}"
+        if i == first_match - 1 and r["remaining"] == cohort_size:
+            rem_key, meanings["N"] = "N", ()
+        elif r["step"] == MATCHING_STEPS[0] and cases_of is not None:
+            rem_key = f"events|{cases_of}"
+            meanings[rem_key] = _events_spec(cases_of)
         rows.append(
             r
             | {
-                "patients_before#key": "src" if i == 0 else f"flow|{i - 1}",
+                "patients_before#key": before_key,
                 "removed#key": f"removed|{i}",
                 "remaining#key": rem_key,
             }
         )
+        before_key = rem_key
     schema = dict(attrition.schema) | {
         f"{c}#key": pl.String for c in ("patients_before", "removed", "remaining")
     }
     frame = keyed_frame(rows, schema)
-    meanings: dict[str, Spec] = {"N": ()} if "N" in frame["remaining#key"] else {}
     return Block(frame, ("removed", "remaining"), total="patients_before", meanings=meanings)
+
+
+def check_matched_cases(flow: Block, incidence: Block) -> None:
+    """Refuse a flow whose matched cases differ from the incidence table's events they share.
+
+    The two are tied by one key (:func:`flow_block`); a key holds one count, so a mismatch
+    would silently keep one of them. It can only come from files of different builds.
+    """
+    events = incidence.values()
+    for key, value in flow.values().items():
+        if key.startswith("events|") and events.get(key) != value:
+            raise AscertainError(
+                f"attrition.csv counts {value} matched sets but the cohort has "
+                f"{events.get(key)} incident cases of {key.removeprefix('events|')}; "
+                "the build folder's files do not come from one build"
+            )
 
 
 def incidence_block(cohort: pl.DataFrame, outcomes: Sequence[str]) -> tuple[list[Any], Block]:
@@ -82,7 +130,7 @@ def incidence_block(cohort: pl.DataFrame, outcomes: Sequence[str]) -> tuple[list
             }
         )
         meanings |= {
-            f"events|{o}": ((f"at|{o}", "true"), (f"inc|{o}", "true")),
+            f"events|{o}": _events_spec(o),
             f"nonevents|{o}": ((f"at|{o}", "true"), (f"inc|{o}", "false")),
             f"atrisk|{o}": ((f"at|{o}", "true"),),
         }

@@ -45,6 +45,7 @@ from pipeline.outputs.report._table_one import (
     table_one_summary,
 )
 from pipeline.outputs.report._tables import (
+    check_matched_cases,
     combinations_block,
     dependence_block,
     dependence_summary,
@@ -80,6 +81,7 @@ class Study:
     labels: dict[str, str] = field(default_factory=dict)
     notes: list[str] = field(default_factory=list)
     reference: ReferenceRates | None = None
+    cases_of: str | None = None
 
 
 def _used_conditions(loaded: LoadedStudy) -> tuple[str, ...]:
@@ -183,6 +185,7 @@ def read_study(
         notes=base.notes,
         labels={n: c.label for n, c in study_model.covariates.items() if c.label},
         reference=loaded.reference_rates,
+        cases_of=study_model.matching.cases_of if study_model.matching else None,
     )
 
 
@@ -231,6 +234,37 @@ def with_headline_time(incidence: pl.DataFrame, headlines: dict[str, Headline]) 
     ).select(order)
 
 
+def matched_outcome(
+    output_dir: Path, cohort: pl.DataFrame, attrition: pl.DataFrame, study: Study
+) -> str | None:
+    """The outcome whose incident cases the build matched; None when the log has no sets line.
+
+    From the study; when the study file could not be read, from the cases of
+    ``matched.parquet``: the outcome whose incident cases in the cohort are exactly those
+    patients. The flow's sets line must be tied to it (see ``flow_block``), so a report that
+    cannot tell refuses rather than print the line untied.
+
+    Raises:
+        AscertainError: The log has matching lines but neither the study nor matched.parquet
+            says which outcome they count.
+    """
+    if study.cases_of is not None or "match_cases" not in attrition["step"].to_list():
+        return study.cases_of
+    if (output_dir / "matched.parquet").is_file():
+        matched = pl.read_parquet(output_dir / "matched.parquet", columns=["role", "patient_id"])
+        cases = set(matched.filter(pl.col("role") == "case")["patient_id"].cast(pl.String))
+        for o in study.outcomes:
+            incident = cohort.filter(
+                pl.col(f"at_risk_{o}") & pl.col(f"incident_{o}").fill_null(value=False)
+            )
+            if set(incident["patient_id"].cast(pl.String)) == cases:
+                return o
+    raise AscertainError(
+        f"{output_dir / 'attrition.csv'}: the matching lines cannot be tied to an outcome "
+        "without the study file or matched.parquet; name the study with --study"
+    )
+
+
 def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]:
     """Write ``report.html`` and the suppressed ``summary/*.csv`` tables of a build.
 
@@ -264,9 +298,12 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
     attrition = attrition.with_columns(pl.col(c).cast(pl.Int64) for c in counts)
     study = read_study(manifest, cohort, output_dir, study_file)
     outcomes, t = study.outcomes, study.threshold
-    flow = flow_block(attrition, cohort.height)
+    flow = flow_block(
+        attrition, cohort.height, matched_outcome(output_dir, cohort, attrition, study)
+    )
     t1 = {o: table_one_blocks(cohort, o) for o in outcomes}
     results, incidence = incidence_block(cohort, outcomes)
+    check_matched_cases(flow, incidence)
     combos = combinations_block(cohort, outcomes)
     dependence = dependence_block(cohort, outcomes)
     quality_parts = quality_blocks(quality)
