@@ -105,6 +105,12 @@ PERSONTIME_SPANS = "persontime_spans"
 PERSONTIME = "persontime"
 PERSONTIME_ACCOUNTING = "persontime_accounting"
 
+# --- New users of exposure groups (``exposure:``). ------------------------------------------
+
+EXPOSURE = "exposure"  # the cohort's column: the group started on the index date
+EXPOSURE_GROUPS_AT_INDEX = "exposure_groups_at_index"  # groups recorded on the index day
+EXPOSURE_WASHOUT_RECORDS = "exposure_washout_records"  # group-days in the washout before index
+
 # --- Generated columns. -------------------------------------------------------------------
 
 

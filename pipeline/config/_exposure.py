@@ -1,0 +1,106 @@
+"""The study's ``exposure:`` section: new users of one of several treatment groups.
+
+A new-user (active-comparator) study compares patients who start one treatment with patients
+who start another. Each group is a piece of evidence, usually a prescription of a drug class
+by ATC code. The index strategy ``index: {exposure_start: {between: [...]}}`` dates each
+patient on the first record of any group in that window; two eligibility steps, put before the
+study's own, keep only new users (no record of any group in the ``washout_days`` days before
+index) and patients who started one group only (a record of two groups on the index day is
+no choice between them). The cohort's ``exposure`` column names the group. The compiler's side
+is ``pipeline/compile/_exposure.py``.
+"""
+
+from __future__ import annotations
+
+from typing import Annotated
+
+from pydantic import Field, field_validator
+
+from pipeline.config._base import Model, Name, NonNegativeInt
+from pipeline.config._condition import Evidence
+from pipeline.config._yaml import LocatedDocument
+from pipeline.errors import Problem
+
+# Analysis-table columns the section adds; no covariate may take their names.
+EXPOSURE_COLUMNS = ("exposure",)
+
+
+class Exposure(Model):
+    """The treatment groups compared, and how long a new user must have been without any.
+
+    Attributes:
+        groups: Group name -> the evidence that shows the group was started (a prescription,
+            or a diagnosis such as a procedure code), codes written inline.
+        washout_days: A patient with a record of any group on one of the this many days before
+            the index date is a prevalent user, not a new user (0: no washout).
+    """
+
+    groups: Annotated[dict[Name, Evidence], Field(min_length=1)]
+    washout_days: NonNegativeInt = 365
+
+    @field_validator("groups")
+    @classmethod
+    def _coded_evidence(cls, value: dict[str, Evidence]) -> dict[str, Evidence]:
+        for name, evidence in value.items():
+            if evidence.prescription is None and evidence.diagnosis is None:
+                raise ValueError(
+                    f"group {name}: an exposure group is a prescription or a diagnosis "
+                    f"(got {evidence.kind})"
+                )
+        return value
+
+
+def exposure_problems(
+    doc: LocatedDocument,
+    exposure: Exposure | None,
+    strategy: str,
+    covariates: tuple[str, ...],
+) -> list[Problem]:
+    """Refuse an exposure section and an index strategy that do not go together.
+
+    Args:
+        doc: The study file, to locate each problem.
+        exposure: The study's section (None when absent).
+        strategy: The study's index strategy key.
+        covariates: The study's covariate names (none may be ``exposure``).
+    """
+    problems: list[Problem] = []
+    if exposure is None and strategy == "exposure_start":
+        problems.append(
+            doc.problem(
+                ("index", "exposure_start"),
+                "missing-exposure",
+                "index exposure_start dates patients on their first treatment of an exposure "
+                "group; add an exposure: section with the groups",
+            )
+        )
+    if exposure is not None and strategy != "exposure_start":
+        problems.append(
+            doc.problem(
+                ("exposure",),
+                "exposure-index",
+                f"an exposure: section needs index exposure_start (the study indexes by "
+                f"{strategy}); new users are dated on their first treatment",
+            )
+        )
+    if exposure is not None:
+        problems += [
+            doc.problem(
+                ("covariates", name),
+                "duplicate-column",
+                f"covariate '{name}' would share its name with the cohort's exposure column",
+            )
+            for name in covariates
+            if name in EXPOSURE_COLUMNS
+        ]
+    return problems
+
+
+def exposure_text(exposure: Exposure) -> str:
+    """One sentence on the design, for ``check --explain``."""
+    groups = ", ".join(exposure.groups)
+    return (
+        f" New users of one of {groups}: a record of any group on the {exposure.washout_days} "
+        "days before index excludes a patient, and so does a record of two groups on the "
+        "index day (cohort column exposure)."
+    )

@@ -1,0 +1,112 @@
+"""New users of exposure groups (``exposure:``): located errors, the example study, both engines.
+
+The hand-computed fixture is tests/fixtures/designs/new_users/ (built by tests/test_designs.py;
+its README works out every patient: washout boundary, two groups on one day, a switcher).
+"""
+
+from __future__ import annotations
+
+import importlib.util
+import os
+import shutil
+from pathlib import Path
+
+import pytest
+
+from pipeline import BuildOptions, build_study, plan_study
+from pipeline.config import load_study
+from pipeline.errors import ConfigError
+
+from .helpers import require
+
+FIXTURE = Path(__file__).parent / "fixtures" / "designs" / "new_users"
+DEFINITIONS = Path(__file__).resolve().parents[1] / "definitions"
+EXAMPLE = DEFINITIONS / "studies" / "orvane_new_users.yaml"
+
+
+def _study(tmp_path: Path, old: str, new: str) -> Path:
+    folder = tmp_path / "new_users"
+    shutil.copytree(FIXTURE, folder)
+    study = folder / "study.yaml"
+    text = study.read_text(encoding="utf-8").replace("../../../../definitions", str(DEFINITIONS))
+    assert old in text
+    study.write_text(text.replace(old, new), encoding="utf-8")
+    return study
+
+
+def _problem(study: Path) -> tuple[str, str]:
+    """The first problem's code and the study line it points at."""
+    with pytest.raises(ConfigError) as err:
+        load_study(study)
+    problem = err.value.problems[0]
+    return problem.code, study.read_text(encoding="utf-8").splitlines()[problem.line - 1]
+
+
+def test_an_exposure_start_without_groups_is_located(tmp_path: Path) -> None:
+    text = FIXTURE.joinpath("study.yaml").read_text(encoding="utf-8")
+    section = text[text.index("exposure:\n") : text.index("eligibility:")]
+    code, line = _problem(_study(tmp_path, section, ""))
+    assert code == "missing-exposure"
+    assert "exposure_start" in line
+
+
+def test_groups_with_another_index_are_located(tmp_path: Path) -> None:
+    study = _study(
+        tmp_path,
+        "  exposure_start:\n    between: [2016-01-01, 2017-12-31]",
+        "  first_encounter:\n    between: [2016-01-01, 2017-12-31]",
+    )
+    code, line = _problem(study)
+    assert code == "exposure-index"
+    assert line.startswith("exposure:")
+
+
+def test_a_covariate_named_exposure_is_refused(tmp_path: Path) -> None:
+    study = _study(tmp_path, "outcomes:", "covariates:\n  exposure: {condition: ckd}\n\noutcomes:")
+    code, line = _problem(study)
+    assert code == "duplicate-column"
+    assert "exposure:" in line
+
+
+def test_a_measurement_group_is_refused_at_its_line(tmp_path: Path) -> None:
+    study = _study(
+        tmp_path,
+        "dpp4: {prescription: {atc: [A10BH]}}",
+        "dpp4: {measurement: {measure: hba1c, at_least: 6.5 %}}",
+    )
+    _, line = _problem(study)
+    assert "groups:" in line or "dpp4" in line
+
+
+def test_a_code_list_in_a_group_is_refused(tmp_path: Path) -> None:
+    study = _study(
+        tmp_path, "{prescription: {atc: [A10BH]}}", "{prescription: {lists: [dpp4.csv]}}"
+    )
+    code, line = _problem(study)
+    assert code == "list-in-study"
+    assert "dpp4" in line
+
+
+def test_the_cohort_has_the_exposure_column_after_sex() -> None:
+    plan = plan_study(EXAMPLE)
+    columns = [doc.column for doc in plan.columns]
+    assert columns[columns.index("sex") + 1] == "exposure"
+    index = next(s for s in plan.stages if s.name == "index_dates")
+    assert "exposure_washout_records" in index.render("duckdb")
+
+
+@pytest.mark.spark
+@pytest.mark.slow
+def test_spark_writes_the_same_files_for_the_example_study(tmp_path: Path) -> None:
+    require(importlib.util.find_spec("pyspark"), "pyspark is not installed (ascertain[spark])")
+    require(
+        shutil.which("java") or os.environ.get("JAVA_HOME"),
+        "no Java runtime for Spark (install a JDK 17)",
+    )
+    outs = {}
+    for engine in ("duckdb", "spark"):
+        outs[engine] = tmp_path / engine
+        master = "local[2]" if engine == "spark" else None
+        build_study(EXAMPLE, BuildOptions(out=outs[engine], engine=engine, spark_master=master))
+    for name in ("cohort.parquet", "population.parquet", "attrition.csv", "dictionary.csv"):
+        assert (outs["spark"] / name).read_bytes() == (outs["duckdb"] / name).read_bytes(), name
