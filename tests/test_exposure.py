@@ -6,11 +6,14 @@ its README works out every patient: washout boundary, two groups on one day, a s
 
 from __future__ import annotations
 
+import csv
 import importlib.util
+import json
 import os
 import shutil
 from pathlib import Path
 
+import pyarrow.parquet as pq
 import pytest
 
 from pipeline import BuildOptions, build_study, plan_study
@@ -87,6 +90,48 @@ def test_a_code_list_in_a_group_is_refused(tmp_path: Path) -> None:
     assert "dpp4" in line
 
 
+def _text(value: object) -> str:
+    return "" if value is None else str(value)
+
+
+@pytest.fixture(scope="module")
+def built(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    tmp_path = tmp_path_factory.mktemp("episodes")
+    study = _study(tmp_path, "washout_days: 365", "washout_days: 365")
+    out = tmp_path / "out"
+    build_study(study, BuildOptions(out=out))
+    return out
+
+
+def test_episodes_match_the_hand_computed_table(built: Path) -> None:
+    with (FIXTURE / "expected_episodes.csv").open(encoding="utf-8") as handle:
+        expected = list(csv.DictReader(handle))
+    got = [
+        {k: _text(v) for k, v in row.items()}
+        for row in pq.read_table(built / "episodes.parquet").to_pylist()
+    ]
+    assert got == expected
+
+
+def test_episodes_are_documented_and_listed(built: Path) -> None:
+    dictionary = (built / "dictionary.csv").read_text(encoding="utf-8")
+    for column in ("exposure", "episode_number", "episode_start", "episode_end", "prescriptions"):
+        assert f"\nepisodes.{column}," in dictionary
+    assert "# Data dictionary of episodes.parquet" in (built / "dictionary.md").read_text("utf-8")
+    manifest = json.loads((built / "manifest.json").read_text(encoding="utf-8"))
+    assert "episodes.parquet" in manifest["outputs"]
+    assert manifest["rows"]["episodes"] == 8
+
+
+def test_without_episodes_no_file_is_written(tmp_path: Path) -> None:
+    study = _study(
+        tmp_path, "  episodes:\n    grace_days: 30\n    cover_without_stop_days: 30\n", ""
+    )
+    build_study(study, BuildOptions(out=tmp_path / "out"))
+    assert not (tmp_path / "out" / "episodes.parquet").exists()
+    assert not any(s.name == "episodes" for s in plan_study(study).stages)
+
+
 def test_the_cohort_has_the_exposure_column_after_sex() -> None:
     plan = plan_study(EXAMPLE)
     columns = [doc.column for doc in plan.columns]
@@ -108,5 +153,6 @@ def test_spark_writes_the_same_files_for_the_example_study(tmp_path: Path) -> No
         outs[engine] = tmp_path / engine
         master = "local[2]" if engine == "spark" else None
         build_study(EXAMPLE, BuildOptions(out=outs[engine], engine=engine, spark_master=master))
-    for name in ("cohort.parquet", "population.parquet", "attrition.csv", "dictionary.csv"):
+    names = ("cohort.parquet", "population.parquet", "attrition.csv", "dictionary.csv")
+    for name in (*names, "episodes.parquet"):
         assert (outs["spark"] / name).read_bytes() == (outs["duckdb"] / name).read_bytes(), name

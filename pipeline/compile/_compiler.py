@@ -2,10 +2,12 @@
 
 from __future__ import annotations
 
+from pipeline.compile import names
 from pipeline.compile._cohort import COHORT_PASSES
 from pipeline.compile._context import CompileContext, evidence_key, evidence_number
 from pipeline.compile._dictionary import dictionary
 from pipeline.compile._draft import Draft, Pass, adding
+from pipeline.compile._episodes import episode_docs, episode_outputs, episode_stages
 from pipeline.compile._evidence import evidence_stages
 from pipeline.compile._matches import EVIDENCE_COUNTS, Use, match_count_stages, unmatched_uses
 from pipeline.compile._matching import matched_docs, matching_outputs, matching_stages
@@ -30,6 +32,7 @@ PASSES: tuple[Pass, ...] = (
     adding(match_count_stages),
     adding(persontime_stages),
     adding(matching_stages),
+    adding(episode_stages),
 )
 
 
@@ -59,11 +62,13 @@ def compile_study(loaded: LoadedStudy) -> Plan:
             (EVIDENCE_COUNTS, EVIDENCE_COUNTS, ("evidence",)),
             *((("persontime", "persontime", ("patient_id", "cell_start")),) if persontime else ()),
             *matching_outputs(ctx),
+            *episode_outputs(ctx),
         ),
         columns=dictionary(ctx),
         output_columns=(
             *((("persontime", persontime_docs(ctx)),) if persontime else ()),
             *((("matched", matched_docs(ctx)),) if ctx.study.matching else ()),
+            *(((names.EPISODES, docs),) if (docs := episode_docs(ctx)) else ()),
         ),
     )
 

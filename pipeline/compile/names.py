@@ -110,6 +110,7 @@ PERSONTIME_ACCOUNTING = "persontime_accounting"
 EXPOSURE = "exposure"  # the cohort's column: the group started on the index date
 EXPOSURE_GROUPS_AT_INDEX = "exposure_groups_at_index"  # groups recorded on the index day
 EXPOSURE_WASHOUT_RECORDS = "exposure_washout_records"  # group-days in the washout before index
+EPISODES = "episodes"  # treatment episodes, written as episodes.parquet
 
 # --- Generated columns. -------------------------------------------------------------------
 

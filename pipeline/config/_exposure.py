@@ -25,6 +25,25 @@ from pipeline.errors import Problem
 EXPOSURE_COLUMNS = ("exposure",)
 
 
+class Episodes(Model):
+    """How prescriptions of a group join into treatment episodes (``episodes.parquet``).
+
+    A prescription covers its days from ``start_date`` to ``stop_date``, both included; one
+    without a usable stop date (and a diagnosis group's record) covers
+    ``cover_without_stop_days`` days from its date. Prescriptions of one group join into one
+    episode while each starts at most ``grace_days`` days after the cover so far ends (a gap of
+    exactly ``grace_days`` uncovered days joins). Stockpiling: days that overlap are counted
+    once; an early refill's overlap is not carried forward past the later prescription's end.
+
+    Attributes:
+        grace_days: The longest gap of uncovered days that still joins two prescriptions.
+        cover_without_stop_days: Days one prescription without a stop date covers.
+    """
+
+    grace_days: NonNegativeInt
+    cover_without_stop_days: Annotated[int, Field(ge=1, le=3650)]
+
+
 class Exposure(Model):
     """The treatment groups compared, and how long a new user must have been without any.
 
@@ -33,10 +52,13 @@ class Exposure(Model):
             or a diagnosis such as a procedure code), codes written inline.
         washout_days: A patient with a record of any group on one of the this many days before
             the index date is a prevalent user, not a new user (0: no washout).
+        episodes: Optional: write each cohort patient's treatment episodes from the index date
+            on (``episodes.parquet``).
     """
 
     groups: Annotated[dict[Name, Evidence], Field(min_length=1)]
     washout_days: NonNegativeInt = 365
+    episodes: Episodes | None = None
 
     @field_validator("groups")
     @classmethod

@@ -1,4 +1,4 @@
--- plan for study design_new_users (26 stages, dialect duckdb)
+-- plan for study design_new_users (27 stages, dialect duckdb)
 
 -- reads src_patients: patient_id, sex, death_date, birth_date, birth_year, practice_id, registration_date, deregistration_date
 
@@ -979,3 +979,64 @@ SELECT
 FROM evidence_events
 GROUP BY
   evidence;
+
+-- stage episodes [table]: treatment episodes of each cohort patient and exposure group from the index date
+-- reads: coded_row_evidence, cohort
+WITH rx AS (
+  SELECT
+    r.patient_id,
+    g.exposure_group,
+    r.event_date AS rx_start,
+    CAST(r.event_date + INTERVAL (GREATEST(COALESCE(r.duration_days, 30), 1) - 1) DAY AS DATE) AS rx_end
+  FROM coded_row_evidence AS r
+  JOIN (VALUES
+    (1640576594, 'dpp4'),
+    (1696233030, 'sglt2')) AS g(evidence, exposure_group)
+    ON g.evidence = r.evidence
+  JOIN cohort AS c
+    ON c.patient_id = r.patient_id
+  WHERE
+    NOT r.excluded AND r.event_date >= c.index_date
+), covered AS (
+  SELECT
+    patient_id,
+    exposure_group,
+    rx_start,
+    rx_end,
+    MAX(rx_end) OVER (
+      PARTITION BY patient_id, exposure_group
+      ORDER BY rx_start, rx_end
+      ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING
+    ) AS covered_to
+  FROM rx
+), opened AS (
+  SELECT
+    patient_id,
+    exposure_group,
+    rx_start,
+    rx_end,
+    SUM(
+      CASE
+        WHEN covered_to IS NULL OR DATE_DIFF('DAY', covered_to, rx_start) - 1 > 30
+        THEN 1
+        ELSE 0
+      END
+    ) OVER (
+      PARTITION BY patient_id, exposure_group
+      ORDER BY rx_start, rx_end
+      ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW
+    ) AS episode_number
+  FROM covered
+)
+SELECT
+  patient_id,
+  exposure_group AS exposure,
+  CAST(episode_number AS INT) AS episode_number,
+  MIN(rx_start) AS episode_start,
+  MAX(rx_end) AS episode_end,
+  CAST(COUNT(*) AS INT) AS prescriptions
+FROM opened
+GROUP BY
+  patient_id,
+  exposure_group,
+  episode_number;
