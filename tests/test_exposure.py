@@ -91,6 +91,8 @@ def test_a_code_list_in_a_group_is_refused(tmp_path: Path) -> None:
 
 
 def _text(value: object) -> str:
+    if isinstance(value, bool):
+        return "true" if value else "false"
     return "" if value is None else str(value)
 
 
@@ -113,6 +115,36 @@ def test_episodes_match_the_hand_computed_table(built: Path) -> None:
     assert got == expected
 
 
+def test_as_treated_follow_up_matches_the_hand_computed_table(built: Path) -> None:
+    with (FIXTURE / "expected_as_treated.csv").open(encoding="utf-8") as handle:
+        expected = list(csv.DictReader(handle))
+    cohort = pq.read_table(built / "cohort.parquet", columns=list(expected[0])).to_pylist()
+    assert [{k: _text(v) for k, v in row.items()} for row in cohort] == expected
+
+
+def test_as_treated_columns_come_last_and_are_documented(built: Path) -> None:
+    names = pq.read_schema(built / "cohort.parquet").names
+    assert names[names.index("end_reason") + 1 :] == [
+        "followup_end_as_treated",
+        "followup_days_as_treated",
+        "end_reason_as_treated",
+        "incident_heart_failure_as_treated",
+        "time_heart_failure_as_treated",
+        "event_heart_failure_as_treated",
+    ]
+    dictionary = (built / "dictionary.csv").read_text(encoding="utf-8")
+    assert all(f"\n{name}," in dictionary for name in names)
+
+
+def test_as_treated_needs_episodes(tmp_path: Path) -> None:
+    study = _study(
+        tmp_path, "  episodes:\n    grace_days: 30\n    cover_without_stop_days: 30\n", ""
+    )
+    with pytest.raises(ConfigError) as err:
+        load_study(study)
+    assert "as_treated" in err.value.problems[0].message
+
+
 def test_episodes_are_documented_and_listed(built: Path) -> None:
     dictionary = (built / "dictionary.csv").read_text(encoding="utf-8")
     for column in ("exposure", "episode_number", "episode_start", "episode_end", "prescriptions"):
@@ -125,7 +157,9 @@ def test_episodes_are_documented_and_listed(built: Path) -> None:
 
 def test_without_episodes_no_file_is_written(tmp_path: Path) -> None:
     study = _study(
-        tmp_path, "  episodes:\n    grace_days: 30\n    cover_without_stop_days: 30\n", ""
+        tmp_path,
+        "  episodes:\n    grace_days: 30\n    cover_without_stop_days: 30\n  as_treated: true\n",
+        "",
     )
     build_study(study, BuildOptions(out=tmp_path / "out"))
     assert not (tmp_path / "out" / "episodes.parquet").exists()

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from pipeline.compile import names
+from pipeline.compile._as_treated import as_treated_docs, as_treated_stages, wanted
 from pipeline.compile._cohort import COHORT_PASSES
 from pipeline.compile._context import CompileContext, evidence_key, evidence_number
 from pipeline.compile._dictionary import dictionary
@@ -33,6 +34,7 @@ PASSES: tuple[Pass, ...] = (
     adding(persontime_stages),
     adding(matching_stages),
     adding(episode_stages),
+    adding(as_treated_stages),
 )
 
 
@@ -54,7 +56,7 @@ def compile_study(loaded: LoadedStudy) -> Plan:
         sources=source_tables(ctx),
         stages=stages,
         outputs=(
-            ("cohort", "cohort", ("patient_id",)),
+            ("cohort", names.COHORT_AS_TREATED if wanted(ctx) else names.COHORT, ("patient_id",)),
             ("population", "population", ("patient_id",)),
             ("attrition", "attrition", ("step_number",)),
             ("quality", "quality_log", ("source_table", "outcome", "reason")),
@@ -64,7 +66,7 @@ def compile_study(loaded: LoadedStudy) -> Plan:
             *matching_outputs(ctx),
             *episode_outputs(ctx),
         ),
-        columns=dictionary(ctx),
+        columns=(*dictionary(ctx), *as_treated_docs(ctx)),
         output_columns=(
             *((("persontime", persontime_docs(ctx)),) if persontime else ()),
             *((("matched", matched_docs(ctx)),) if ctx.study.matching else ()),

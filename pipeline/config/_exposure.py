@@ -12,9 +12,9 @@ is ``pipeline/compile/_exposure.py``.
 
 from __future__ import annotations
 
-from typing import Annotated
+from typing import Annotated, Self
 
-from pydantic import Field, field_validator
+from pydantic import Field, field_validator, model_validator
 
 from pipeline.config._base import Model, Name, NonNegativeInt
 from pipeline.config._condition import Evidence
@@ -54,11 +54,25 @@ class Exposure(Model):
             the index date is a prevalent user, not a new user (0: no washout).
         episodes: Optional: write each cohort patient's treatment episodes from the index date
             on (``episodes.parquet``).
+        as_treated: Also follow each patient as treated (cohort columns ``*_as_treated``):
+            follow-up also ends when the first episode of the group started ends, plus the
+            grace period (discontinued), or on the first record of another group (a switch or
+            an add-on). Needs ``episodes``.
     """
 
     groups: Annotated[dict[Name, Evidence], Field(min_length=1)]
     washout_days: NonNegativeInt = 365
     episodes: Episodes | None = None
+    as_treated: bool = False
+
+    @model_validator(mode="after")
+    def _as_treated_needs_episodes(self) -> Self:
+        if self.as_treated and self.episodes is None:
+            raise ValueError(
+                "as_treated follow-up ends at the end of a treatment episode: add episodes: "
+                "with grace_days and cover_without_stop_days"
+            )
+        return self
 
     @field_validator("groups")
     @classmethod

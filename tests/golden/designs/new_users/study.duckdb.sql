@@ -1,4 +1,4 @@
--- plan for study design_new_users (27 stages, dialect duckdb)
+-- plan for study design_new_users (28 stages, dialect duckdb)
 
 -- reads src_patients: patient_id, sex, death_date, birth_date, birth_year, practice_id, registration_date, deregistration_date
 
@@ -1040,3 +1040,100 @@ GROUP BY
   patient_id,
   exposure_group,
   episode_number;
+
+-- stage cohort_as_treated [table]: the analysis table with as-treated follow-up (ends also at discontinuation or another group)
+-- reads: cohort, episodes
+SELECT
+  patient_id,
+  index_date,
+  age_at_index,
+  sex,
+  exposure,
+  prevalent_heart_failure,
+  at_risk_heart_failure,
+  incident_heart_failure,
+  onset_heart_failure,
+  days_to_heart_failure,
+  time_heart_failure,
+  event_heart_failure,
+  followup_end,
+  followup_days,
+  end_reason,
+  followup_end_as_treated,
+  followup_days_as_treated,
+  end_reason_as_treated,
+  CASE
+    WHEN at_risk_heart_failure
+    THEN COALESCE(
+      at_risk_heart_failure
+      AND onset_heart_failure > index_date
+      AND onset_heart_failure <= followup_end_as_treated,
+      FALSE
+    )
+  END AS incident_heart_failure_as_treated,
+  CAST(CASE
+    WHEN at_risk_heart_failure
+    AND onset_heart_failure > index_date
+    AND onset_heart_failure <= followup_end_as_treated
+    THEN DATE_DIFF('DAY', index_date, onset_heart_failure)
+    WHEN at_risk_heart_failure
+    THEN DATE_DIFF('DAY', index_date, followup_end_as_treated)
+  END AS INT) AS time_heart_failure_as_treated,
+  CAST(CASE
+    WHEN at_risk_heart_failure
+    AND onset_heart_failure > index_date
+    AND onset_heart_failure <= followup_end_as_treated
+    THEN 1
+    WHEN at_risk_heart_failure AND end_reason_as_treated = 'death'
+    THEN 2
+    WHEN at_risk_heart_failure
+    THEN 0
+  END AS INT) AS event_heart_failure_as_treated
+FROM (
+  SELECT
+    *,
+    CAST(DATE_DIFF('DAY', index_date, followup_end_as_treated) AS INT) AS followup_days_as_treated,
+    CASE
+      WHEN followup_end = followup_end_as_treated
+      THEN end_reason
+      WHEN discontinued_on = followup_end_as_treated
+      THEN 'discontinued'
+      ELSE 'other_group'
+    END AS end_reason_as_treated
+  FROM (
+    SELECT
+      *,
+      LEAST(
+        followup_end,
+        COALESCE(discontinued_on, CAST('9999-12-31' AS DATE)),
+        COALESCE(other_group_on, CAST('9999-12-31' AS DATE))
+      ) AS followup_end_as_treated
+    FROM (
+      SELECT
+        c.*,
+        CAST(d.episode_end + INTERVAL 30 DAY AS DATE) AS discontinued_on,
+        o.other AS other_group_on
+      FROM cohort AS c
+      LEFT JOIN (
+        SELECT
+          e.patient_id,
+          e.episode_end
+        FROM episodes AS e
+        JOIN cohort AS k
+          ON k.patient_id = e.patient_id AND k.exposure = e.exposure AND e.episode_number = 1
+      ) AS d
+        ON d.patient_id = c.patient_id
+      LEFT JOIN (
+        SELECT
+          e.patient_id,
+          MIN(e.episode_start) AS other
+        FROM episodes AS e
+        JOIN cohort AS k
+          ON k.patient_id = e.patient_id AND k.exposure <> e.exposure
+        GROUP BY
+          e.patient_id
+      ) AS o
+        ON o.patient_id = c.patient_id
+    ) AS x
+  ) AS y
+) AS z;
