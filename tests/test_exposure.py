@@ -16,7 +16,7 @@ from pathlib import Path
 import pyarrow.parquet as pq
 import pytest
 
-from pipeline import BuildOptions, build_study, plan_study
+from pipeline import BuildOptions, build_study, explain_patient, plan_study
 from pipeline.config import load_study
 from pipeline.errors import ConfigError
 
@@ -164,6 +164,27 @@ def test_without_episodes_no_file_is_written(tmp_path: Path) -> None:
     build_study(study, BuildOptions(out=tmp_path / "out"))
     assert not (tmp_path / "out" / "episodes.parquet").exists()
     assert not any(s.name == "episodes" for s in plan_study(study).stages)
+
+
+def test_a_group_that_matches_no_row_is_warned_of(tmp_path: Path) -> None:
+    study = _study(
+        tmp_path, "dpp4: {prescription: {atc: [A10BH]}}", "dpp4: {prescription: {atc: [A10BX]}}"
+    )
+    result = build_study(study, BuildOptions(out=tmp_path / "out"))
+    assert [w for w in result.warnings if "exposure group 'dpp4'" in w]
+    assert not [w for w in result.warnings if "exposure group 'sglt2'" in w]
+
+
+def test_explain_names_the_groups_and_the_new_user_steps(tmp_path: Path) -> None:
+    study = _study(tmp_path, "washout_days: 365", "washout_days: 365")
+    missing = explain_patient(study, "NU-06")
+    assert "no record of an exposure group (sglt2, dpp4)" in str(
+        missing["not_in_source_population"]
+    )
+    prevalent = explain_patient(study, "NU-02")
+    steps = {s["step"]: s["passed"] for s in prevalent["eligibility"]}
+    assert steps["new_user"] is False
+    assert steps["one_exposure_group"] is True
 
 
 def test_the_cohort_has_the_exposure_column_after_sex() -> None:
