@@ -18,6 +18,7 @@ import pytest
 
 from pipeline import BuildOptions, build_study, explain_patient, plan_study
 from pipeline.config import load_study
+from pipeline.config._explain_study import explain_study
 from pipeline.errors import ConfigError
 
 from .helpers import require
@@ -185,6 +186,13 @@ def test_explain_names_the_groups_and_the_new_user_steps(tmp_path: Path) -> None
     steps = {s["step"]: s["passed"] for s in prevalent["eligibility"]}
     assert steps["new_user"] is False
     assert steps["one_exposure_group"] is True
+
+
+def test_check_explain_states_the_design() -> None:
+    text = explain_study(load_study(EXAMPLE).study)
+    assert "record of any group on the 365 days before index excludes a patient (new_user)" in text
+    assert "at most 30 uncovered days apart" in text
+    assert "*_as_treated columns" in text
 
 
 def test_the_cohort_has_the_exposure_column_after_sex() -> None:

@@ -135,8 +135,22 @@ def exposure_problems(
 def exposure_text(exposure: Exposure) -> str:
     """One sentence on the design, for ``check --explain``."""
     groups = ", ".join(exposure.groups)
-    return (
-        f" New users of one of {groups}: a record of any group on the {exposure.washout_days} "
-        "days before index excludes a patient, and so does a record of two groups on the "
-        "index day (cohort column exposure)."
+    text = (
+        f" New users of one of {groups}: before the eligibility steps above, a record of any "
+        f"group on the {exposure.washout_days} days before index excludes a patient "
+        "(new_user), and so does a record of two groups on the index day (one_exposure_group); "
+        "cohort column exposure."
     )
+    if exposure.episodes is not None:
+        rule = exposure.episodes
+        text += (
+            f" Treatment episodes (episodes.parquet) join records of a group at most "
+            f"{rule.grace_days} uncovered days apart; a prescription without a stop date "
+            f"covers {rule.cover_without_stop_days} days."
+        )
+    if exposure.as_treated:
+        text += (
+            " As treated (*_as_treated columns), follow-up also ends at the end of the first "
+            "episode plus the grace days, or at a record of another group."
+        )
+    return text
