@@ -72,6 +72,15 @@ def test_a_covariate_named_exposure_is_refused(tmp_path: Path) -> None:
     assert "exposure:" in line
 
 
+def test_a_covariate_named_as_an_as_treated_column_is_refused(tmp_path: Path) -> None:
+    study = _study(
+        tmp_path, "outcomes:", "covariates:\n  end_reason_as_treated: {condition: ckd}\n\noutcomes:"
+    )
+    code, line = _problem(study)
+    assert code == "duplicate-column"
+    assert "end_reason_as_treated:" in line
+
+
 def test_a_measurement_group_is_refused_at_its_line(tmp_path: Path) -> None:
     study = _study(
         tmp_path,

@@ -120,14 +120,18 @@ def exposure_problems(
             )
         )
     if exposure is not None:
+        taken = set(EXPOSURE_COLUMNS)
+        if exposure.as_treated:
+            taken |= {f"{c}_as_treated" for c in ("followup_end", "followup_days", "end_reason")}
         problems += [
             doc.problem(
                 ("covariates", name),
                 "duplicate-column",
-                f"covariate '{name}' would share its name with the cohort's exposure column",
+                f"covariate '{name}' would share its name with a column the exposure section "
+                "adds to the cohort",
             )
             for name in covariates
-            if name in EXPOSURE_COLUMNS
+            if name in taken
         ]
     return problems
 
