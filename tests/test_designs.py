@@ -24,6 +24,7 @@ CASES = [
     ("covariates", "study.yaml", ""),
     ("horizon_years", "study.yaml", ""),
     ("horizon_years", "study_3y.yaml", "_3y"),
+    ("new_users", "study.yaml", ""),
 ]
 
 

@@ -109,6 +109,31 @@ INDEX = st.one_of(
         _years(),
         st.integers(0, 1000),
     ),
+    st.builds(lambda b: {"exposure_start": {"between": b}}, _years()),
+)
+
+
+def _exposure(atcs: list[str], washout: int, grace: int | None, treated: bool) -> dict[str, Any]:
+    """An ``exposure:`` section: groups of drug classes, episodes and as treated optional."""
+    section: dict[str, Any] = {
+        "groups": {f"group_{i}": {"prescription": {"atc": [a]}} for i, a in enumerate(atcs)},
+        "washout_days": washout,
+    }
+    if grace is not None:
+        section["episodes"] = {"grace_days": grace, "cover_without_stop_days": 30}
+        section["as_treated"] = treated
+    return section
+
+
+# Drug classes of the hand-made extracts, two or three groups compared.
+EXPOSURE = st.builds(
+    _exposure,
+    st.lists(
+        st.sampled_from(["C09", "C03C", "A10B", "C07", "C08"]), min_size=1, max_size=3, unique=True
+    ),
+    st.integers(0, 730),
+    st.one_of(st.none(), st.integers(0, 90)),
+    st.booleans(),
 )
 
 # Steps that only remove patients. in_contact_at_index is left out on purpose: a fixed-date
@@ -240,6 +265,7 @@ def studies(draw: Any) -> dict[str, Any]:
         options["persontime"] = draw(persontime(max(ages)))
     if draw(st.booleans()):
         options["matching"] = draw(matching(outcomes["conditions"]))
+    exposure = {"exposure": draw(EXPOSURE)} if "exposure_start" in index else {}
     return {
         "study": "property_study",
         "title": "a study drawn by hypothesis",
@@ -257,6 +283,7 @@ def studies(draw: Any) -> dict[str, Any]:
         "output": {"folder": "out", "allow_empty_cohort": True},
         **measures,
         **options,
+        **exposure,
     }
 
 

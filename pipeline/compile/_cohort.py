@@ -29,6 +29,7 @@ from pipeline.compile._contact import (
 )
 from pipeline.compile._context import CompileContext
 from pipeline.compile._draft import Draft, Pass
+from pipeline.compile._exposure import exposure_index_columns, exposure_steps
 from pipeline.compile._index import index_stage
 from pipeline.compile._outcomes import at_risk, cleared_outcomes, outcome_expressions
 from pipeline.compile._plan import Stage
@@ -218,6 +219,7 @@ def _eligibility_query(
         if c.encounters or c.no_evidence
     ]
     cleared = cleared_outcomes(ctx)
+    exposure = exposure_index_columns() if ctx.study.exposure else ()
     base = exp.select(
         exp.column("patient_id", "i"),
         exp.column("sex", "p"),
@@ -227,6 +229,7 @@ def _eligibility_query(
         exp.column("registration_date", "p"),
         exp.column("deregistration_date", "p"),
         exp.column("index_date", "i"),
+        *(exp.column(c, "i") for c in exposure),
         exp.column("first_encounter", "s"),
         exp.column("last_encounter", "s"),
         age_in_years(birth=exp.column("birth_date", "p"), on=exp.column("index_date", "i")).as_(
@@ -261,6 +264,7 @@ def _eligibility_query(
     ]
     return exp.select(
         *_BASE_COLUMNS,
+        *exposure,
         *onset_columns,
         *(prevalent_column(n) for n in outcomes),
         *(clear_evidence_column(n) for n in cleared),
@@ -312,6 +316,10 @@ def _steps(ctx: CompileContext) -> tuple[list[tuple[exp.Expression, str]], list[
     if eligibility_with_default(study)[1]:
         predicate, text = steps[0]
         steps[0] = (predicate, f"{text} ({DEFAULT_STEP_TEXT})")
+    # A new user's steps come first: they finish choosing the index (``_exposure``).
+    new_user = exposure_steps(study)
+    steps = [(predicate, text) for _, predicate, text in new_user] + steps
+    step_names = [name for name, _, _ in new_user] + step_names
     if study.followup.incomplete == "exclude":
         steps.append(_complete_followup())
         step_names.append("complete_followup")
@@ -432,6 +440,7 @@ def _cohort_query(
         column("index_date", "f"),
         exp.cast(column("age_at_index", "f"), "INT").as_("age_at_index"),
         column("sex", "f"),
+        *((column(names.EXPOSURE, "f"),) if ctx.study.exposure else ()),
         *(c for name, cov in ctx.study.covariates.items() for c in covariate_column(name, cov)),
         *(
             c

@@ -3,10 +3,12 @@
 from __future__ import annotations
 
 from pipeline.compile import names
+from pipeline.compile._as_treated import as_treated_docs, as_treated_stages, wanted
 from pipeline.compile._cohort import COHORT_PASSES
 from pipeline.compile._context import CompileContext, evidence_key, evidence_number
 from pipeline.compile._dictionary import dictionary
 from pipeline.compile._draft import Draft, Pass, adding
+from pipeline.compile._episodes import episode_docs, episode_outputs, episode_stages
 from pipeline.compile._evidence import evidence_stages
 from pipeline.compile._matches import EVIDENCE_COUNTS, Use, match_count_stages, unmatched_uses
 from pipeline.compile._matching import matched_docs, matching_outputs, matching_stages
@@ -31,6 +33,8 @@ PASSES: tuple[Pass, ...] = (
     adding(match_count_stages),
     adding(persontime_stages),
     adding(matching_stages),
+    adding(episode_stages),
+    adding(as_treated_stages),
 )
 
 
@@ -52,7 +56,7 @@ def compile_study(loaded: LoadedStudy) -> Plan:
         sources=source_tables(ctx),
         stages=stages,
         outputs=(
-            ("cohort", names.COHORT, ("patient_id",)),
+            ("cohort", names.COHORT_AS_TREATED if wanted(ctx) else names.COHORT, ("patient_id",)),
             ("population", names.POPULATION, ("patient_id",)),
             ("attrition", names.ATTRITION, ("step_number",)),
             ("quality", names.QUALITY_LOG, ("source_table", "outcome", "reason")),
@@ -64,11 +68,13 @@ def compile_study(loaded: LoadedStudy) -> Plan:
                 else ()
             ),
             *matching_outputs(ctx),
+            *episode_outputs(ctx),
         ),
-        columns=dictionary(ctx),
+        columns=(*dictionary(ctx), *as_treated_docs(ctx)),
         output_columns=(
             *((("persontime", persontime_docs(ctx)),) if persontime else ()),
             *((("matched", matched_docs(ctx)),) if ctx.study.matching else ()),
+            *(((names.EPISODES, docs),) if (docs := episode_docs(ctx)) else ()),
         ),
     )
 

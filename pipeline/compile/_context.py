@@ -66,6 +66,11 @@ def covariate_key(name: str) -> str:
     return f"@covariate.{name}"
 
 
+def exposure_key(group: str) -> str:
+    """The evidence key of one exposure group (``exposure:`` section)."""
+    return f"@exposure.{group}"
+
+
 def charlson_key(category: str) -> str:
     """The evidence key of one Charlson category."""
     return f"@charlson.{category}"
@@ -122,6 +127,8 @@ class CompileContext:
         event = self.study.index.first_event
         if event is not None and event.evidence is not None:
             found.append((INDEX_EVENT, event.evidence))
+        if self.study.exposure is not None:
+            found += [(exposure_key(g), ev) for g, ev in self.study.exposure.groups.items()]
         for i, criterion in enumerate(self.eligibility, start=1):
             # encounter-kind evidence of the study is counted from encounters directly
             no_evidence = criterion.no_evidence

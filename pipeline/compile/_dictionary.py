@@ -9,6 +9,7 @@ from __future__ import annotations
 from pipeline.codes import CHARLSON_CATEGORIES, WEIGHTS
 from pipeline.compile import names
 from pipeline.compile._context import CompileContext
+from pipeline.compile._exposure import exposure_doc
 from pipeline.compile._index import index_description
 from pipeline.compile._plan import ColumnDoc
 from pipeline.config import Covariate, Window
@@ -256,6 +257,8 @@ def dictionary(ctx: CompileContext) -> tuple[ColumnDoc, ...]:
         ),
         ColumnDoc("sex", "VARCHAR", "", "sex as recorded", "trimmed and upper-cased", "patients"),
     ]
+    if study.exposure is not None:
+        docs.append(exposure_doc(study))
     for name, covariate in study.covariates.items():
         docs += _covariate_docs(ctx, name, covariate)
     for outcome in ctx.outcomes:

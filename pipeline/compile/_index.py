@@ -3,6 +3,7 @@
 - ``first_encounter``: the first usable encounter in the window (of some types, if given);
 - ``fixed_date``: one calendar date for everyone with a usable encounter on or before it;
 - ``first_event``: the first event of some evidence, or a condition's onset, in the window;
+- ``exposure_start``: the first record of an exposure group in the window (``_exposure``);
 - ``random_encounter``: one encounter day in the window per patient, drawn by hashing the seed,
   the patient and the day with MD5, which every engine computes the same way.
 """
@@ -13,6 +14,7 @@ from sqlglot import exp
 
 from pipeline.compile import names
 from pipeline.compile._context import INDEX_EVENT, CompileContext, evidence_id
+from pipeline.compile._exposure import exposure_index_stage
 from pipeline.compile._plan import Stage
 from pipeline.compile._sql import query, value
 
@@ -65,6 +67,8 @@ WHERE draw = 1
 def index_stage(ctx: CompileContext) -> Stage:
     """``index_dates``: one row per patient in the source population."""
     rule = ctx.study.index
+    if rule.exposure_start is not None:
+        return exposure_index_stage(ctx.study)
     if rule.first_encounter is not None:
         start, end = rule.first_encounter.between
         kinds = (

@@ -21,6 +21,7 @@ from pipeline.compile._context import (
     covariate_key,
     evidence_key,
     evidence_number,
+    exposure_key,
     step_key,
 )
 from pipeline.compile._plan import Stage
@@ -104,6 +105,8 @@ def study_uses(ctx: CompileContext) -> tuple[Use, ...]:
         uses.append(Use("the index event", event.condition, ()))
     elif event is not None and event.evidence is not None:
         uses.append(Use("the index event", "", (INDEX_EVENT,)))
+    groups = study.exposure.groups if study.exposure is not None else {}
+    uses += [Use(f"exposure group '{g}'", "", (exposure_key(g),)) for g in groups]
     return tuple(
         Use(u.what, u.definition, _condition_keys(ctx, u.definition)) if u.definition else u
         for u in uses

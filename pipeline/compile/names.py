@@ -105,6 +105,15 @@ PERSONTIME_SPANS = "persontime_spans"
 PERSONTIME = "persontime"
 PERSONTIME_ACCOUNTING = "persontime_accounting"
 
+# --- New users of exposure groups (``exposure:``). ------------------------------------------
+
+EXPOSURE = "exposure"  # the cohort's column: the group started on the index date
+EXPOSURE_GROUPS_AT_INDEX = "exposure_groups_at_index"  # groups recorded on the index day
+EXPOSURE_WASHOUT_RECORDS = "exposure_washout_records"  # group-days in the washout before index
+EPISODES = "episodes"  # treatment episodes, written as episodes.parquet
+COHORT_AS_TREATED = "cohort_as_treated"  # the cohort with as-treated follow-up (the output then)
+AS_TREATED_SUFFIX = "_as_treated"  # followup_end_as_treated, time_X_as_treated, ...
+
 # --- Generated columns. -------------------------------------------------------------------
 
 PREVALENT_PREFIX = "prevalent_"

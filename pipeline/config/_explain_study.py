@@ -9,6 +9,7 @@ definitions (evidence through the same phrases).
 from __future__ import annotations
 
 from pipeline.config._check import _codes_text
+from pipeline.config._exposure import exposure_text
 from pipeline.config._matching import matching_text
 from pipeline.config._study import Covariate, Criterion, IndexRule, Study, Window
 
@@ -49,6 +50,9 @@ def _index_text(index: IndexRule) -> str:
             else _codes_text(event.evidence)  # type: ignore[arg-type]  # one of the two is set
         )
         return f"the first date of {what} between {start} and {end}"
+    if index.exposure_start is not None:
+        start, end = index.exposure_start.between
+        return f"the first record of an exposure group between {start} and {end}"
     draw = index.random_encounter
     assert draw is not None  # the model requires exactly one strategy
     start, end = draw.between
@@ -225,4 +229,5 @@ def explain_study(study: Study) -> str:
         f"Eligibility, in this order: {steps or 'none'}. {_outcomes_text(study)} "
         f"{_followup_text(study)} Covariates: {covariates or 'none'}.{_persontime_text(study)}"
         f"{matching_text(study.matching) if study.matching else ''}"
+        f"{exposure_text(study.exposure) if study.exposure else ''}"
     )

@@ -11,6 +11,7 @@ from pydantic import ValidationError
 from pipeline.config._codelist import HEADER_SUFFIX
 from pipeline.config._condition import Condition, DiagnosisEvidence, Evidence, Rule
 from pipeline.config._document import did_you_mean, validate_document
+from pipeline.config._exposure import exposure_problems
 from pipeline.config._library import library_conditions
 from pipeline.config._listuse import EvidenceLists, ListUse, read_lists
 from pipeline.config._localcodes import LocalCodes, load_local_codes
@@ -367,6 +368,8 @@ def _study_lists(doc: LocatedDocument, study: Study) -> list[Problem]:
             path: PathKey = ("eligibility", i, "no_evidence", "evidence")
             found.append((path, criterion.no_evidence.evidence))
     found += [(("covariates", name, "count"), cov.count) for name, cov in study.covariates.items()]
+    groups = study.exposure.groups.items() if study.exposure else ()
+    found += [(("exposure", "groups", name), ev) for name, ev in groups]
     problems = []
     for path, ev in found:
         kind = (ev.diagnosis or ev.prescription) if ev is not None else None
@@ -454,6 +457,9 @@ def load_study(file: Path, documents: Documents | None = None) -> LoadedStudy:
     ages = [c.age.between[0] for c in study.eligibility if c.age is not None]
     problems += persontime_problems(doc, study.persontime, ages)
     problems += matching_problems(doc, study.matching, study.outcomes.conditions)
+    problems += exposure_problems(
+        doc, study.exposure, study.index.strategy, tuple(study.covariates)
+    )
     if problems:
         raise ConfigError(problems)
     study, rates = study_reference_rates(doc, study, base)

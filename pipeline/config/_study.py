@@ -18,6 +18,7 @@ from pydantic import Field, ValidationInfo, field_validator, model_validator
 
 from pipeline.config._base import ONE_OR_MORE, Model, Name, NonNegativeInt, PositiveInt
 from pipeline.config._condition import Evidence
+from pipeline.config._exposure import Exposure
 from pipeline.config._localcodes import LocalCodeTables
 from pipeline.config._matching import Matching
 from pipeline.config._measure import measures_in
@@ -103,6 +104,7 @@ class IndexRule(Model):
     fixed_date: dt.date | None = None
     first_event: FirstEvent | None = None
     random_encounter: RandomEncounter | None = None
+    exposure_start: DateRange | None = None
 
     @model_validator(mode="after")
     def _one_strategy(self) -> Self:
@@ -119,12 +121,15 @@ class IndexRule(Model):
         """The earliest and latest dates an index can fall on."""
         if self.fixed_date is not None:
             return self.fixed_date, self.fixed_date
-        window = self.first_encounter or self.first_event or self.random_encounter
+        window = (
+            self.first_encounter or self.first_event or self.random_encounter or self.exposure_start
+        )
         assert window is not None  # one strategy is set (checked above)
         return window.between
 
 
-STRATEGIES = ("first_encounter", "fixed_date", "first_event", "random_encounter")
+# exposure_start: the first record of an exposure group in the window (``exposure:`` section).
+STRATEGIES = ("first_encounter", "fixed_date", "first_event", "random_encounter", "exposure_start")
 
 
 class AgeRange(Model):
@@ -411,6 +416,7 @@ class Study(Model):
     quality: QualitySettings = QualitySettings()
     persontime: PersonTime | None = None
     matching: Matching | None = None
+    exposure: Exposure | None = None
 
     @field_validator("extract", mode="before")
     @classmethod

@@ -182,6 +182,8 @@ def write_outputs(
     persontime_columns: tuple[ColumnDoc, ...] = (),
     matched: pa.Table | None = None,
     matched_columns: tuple[ColumnDoc, ...] = (),
+    episodes: pa.Table | None = None,
+    episodes_columns: tuple[ColumnDoc, ...] = (),
 ) -> Written:
     """Write the cohort, attrition log, data dictionary, manifest and run record.
 
@@ -191,7 +193,8 @@ def write_outputs(
     removed; a report written for the previous cohort is removed, with a note saying so. The
     manifest gets the hash of every data file; ``run.json`` (when and how long) is the only
     file that differs between runs. ``persontime`` (with its dictionary) is written as
-    ``persontime.parquet`` when the study asks for it, and ``matched`` as ``matched.parquet``.
+    ``persontime.parquet`` when the study asks for it, ``matched`` as ``matched.parquet`` and
+    ``episodes`` as ``episodes.parquet``.
 
     Raises:
         OutputFolderError: ``target`` holds files ascertain did not write there.
@@ -201,6 +204,7 @@ def write_outputs(
         for file, table, docs in (
             (PERSONTIME, persontime, persontime_columns),
             (MATCHED, matched, matched_columns),
+            (EPISODES, episodes, episodes_columns),
         )
         if table is not None
     ]
@@ -236,3 +240,6 @@ PERSONTIME = "persontime.parquet"
 
 MATCHED = "matched.parquet"
 """Written when the study has a ``matching:`` option (listed in the manifest then)."""
+
+EPISODES = "episodes.parquet"
+"""Written when the study's ``exposure:`` has ``episodes:`` (listed in the manifest then)."""

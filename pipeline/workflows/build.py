@@ -157,6 +157,7 @@ def build_study(
                 else {}
             ),
             **({"matched": matched.num_rows} if matched is not None else {}),
+            **({"episodes": run.outputs["episodes"].num_rows} if "episodes" in run.outputs else {}),
             **{row["source_table"]: row["n_rows"] for row in run.outputs["rows_read"].to_pylist()},
         },
     )
@@ -207,6 +208,8 @@ def build_study(
         persontime_columns=dict(plan.output_columns).get("persontime", ()),
         matched=matched,
         matched_columns=dict(plan.output_columns).get("matched", ()),
+        episodes=run.outputs.get("episodes"),
+        episodes_columns=dict(plan.output_columns).get("episodes", ()),
     )
     return BuildResult(
         out,

@@ -243,6 +243,9 @@ def _why_no_index(
     if index.first_event is not None:
         what = "onset of " + index.first_event.condition if index.first_event.condition else ""
         return f"no {what or 'qualifying event'} from {start} to {end} (the index window)"
+    if study.exposure is not None:
+        groups = ", ".join(study.exposure.groups)
+        return f"no record of an exposure group ({groups}) from {start} to {end} (the index window)"
     window = index.first_encounter or index.random_encounter
     types = getattr(window, "type", ())
     kind = f"encounter of type {' or '.join(types)}" if types else "usable encounter"
