@@ -160,7 +160,7 @@ ORDER BY
 LIMIT 5;
 
 -- stage encounters_judged [view]: every encounters row judged once: used, or the reason the quality log gives
--- reads: src_encounters, patient_base
+-- reads: patient_base, src_encounters
 SELECT
   *,
   COALESCE(record_problem, timing_problem, 'used') AS reason
@@ -275,7 +275,7 @@ FROM (
 ) AS c;
 
 -- stage diagnoses_judged [view]: every diagnoses row judged once: used, or the reason the quality log gives
--- reads: src_diagnoses, patient_base, distinct_codes
+-- reads: distinct_codes, patient_base, src_diagnoses
 SELECT
   *,
   COALESCE(record_problem, code_problem, timing_problem, 'used') AS reason
@@ -331,7 +331,7 @@ FROM (
 ) AS j;
 
 -- stage prescriptions_judged [view]: every prescriptions row judged once: used, or the reason the quality log gives
--- reads: src_prescriptions, patient_base, distinct_codes
+-- reads: distinct_codes, patient_base, src_prescriptions
 SELECT
   *,
   COALESCE(record_problem, code_problem, timing_problem, 'used') AS reason
@@ -488,7 +488,7 @@ GROUP BY
   m.evidence;
 
 -- stage coded_row_evidence [view]: each usable diagnosis or prescription row with the evidence its code matches
--- reads: codes_to_evidence, coded_rows
+-- reads: coded_rows, codes_to_evidence
 SELECT DISTINCT
   e.patient_id,
   e.event_date,
@@ -682,7 +682,7 @@ GROUP BY
   patient_id;
 
 -- stage eligibility [table]: the source population with follow-up and one pass/fail column per eligibility step
--- reads: index_dates, patient_base, encounter_summary, condition_onsets
+-- reads: condition_onsets, encounter_summary, index_dates, patient_base
 SELECT
   patient_id,
   sex,
