@@ -166,7 +166,9 @@ def test_cli_refuses_an_s3a_extract_on_duckdb_naming_it(tmp_path: Path) -> None:
         app, ["build", str(DEMO_STUDY), "--extract", "s3a://bucket/orvane", "--out", str(out)]
     )
     assert result.exit_code == 2
-    assert "s3a://bucket/orvane: an extract on s3a:// is listed and read" in result.output
+    assert (
+        "s3a://bucket/orvane [needs-spark] an extract on s3a:// is listed and read" in result.output
+    )
     assert not out.exists()
 
 
