@@ -1,4 +1,4 @@
--- plan for study design_persontime (34 stages, dialect spark)
+-- plan for study design_persontime (35 stages, dialect spark)
 
 -- reads src_patients: patient_id, sex, death_date, birth_date, birth_year, practice_id, registration_date, deregistration_date
 
@@ -436,58 +436,37 @@ FROM prescriptions_judged
 WHERE
   reason = 'used';
 
--- stage measurement_rows [view]: every distinct measurement row parsed and converted, with what stops its use
--- reads: src_measurements, patient_base
+-- stage measurement_shapes [table]: each distinct measure, unit, value and value_text of the extract parsed, converted and judged once
+-- reads: src_measurements
 WITH read AS (
   SELECT
-    patient_id,
+    key_measure,
+    key_unit,
+    key_value,
+    key_value_text,
+    LOWER(TRIM(CAST(key_measure AS STRING))) AS measure,
     CASE
-      WHEN CAST(obs_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
-      THEN TRY_CAST(REGEXP_REPLACE(
-        TRIM(CAST(obs_date AS STRING)),
-        '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
-        '$1-$3-$4'
-      ) AS DATE)
-    END AS obs_date,
-    LOWER(TRIM(CAST(measure AS STRING))) AS measure,
-    CASE
-      WHEN NOT CAST(value AS STRING) RLIKE '[0-9.][dDfF]\\s*$'
-      THEN TRY_CAST(value AS DOUBLE)
+      WHEN NOT CAST(key_value AS STRING) RLIKE '[0-9.][dDfF]\\s*$'
+      THEN TRY_CAST(key_value AS DOUBLE)
     END AS value_number,
     CASE
       WHEN NOT CASE
-        WHEN NOT CAST(value AS STRING) RLIKE '[0-9.][dDfF]\\s*$'
-        THEN TRY_CAST(value AS DOUBLE)
+        WHEN NOT CAST(key_value AS STRING) RLIKE '[0-9.][dDfF]\\s*$'
+        THEN TRY_CAST(key_value AS DOUBLE)
       END IS NULL
       THEN FALSE
-      ELSE NULLIF(TRIM(CAST(value AS STRING)), '') IS NULL
+      ELSE NULLIF(TRIM(CAST(key_value AS STRING)), '') IS NULL
     END AS value_missing,
-    NULLIF(TRIM(CAST(value AS STRING)), '') AS value_given,
-    NULLIF(TRIM(CAST(value_text AS STRING)), '') AS text_given,
-    NULLIF(TRIM(CAST(unit AS STRING)), '') AS unit_given,
-    copies,
-    source_position,
-    source_problem
+    NULLIF(TRIM(CAST(key_value AS STRING)), '') AS value_given,
+    NULLIF(TRIM(CAST(key_value_text AS STRING)), '') AS text_given,
+    NULLIF(TRIM(CAST(key_unit AS STRING)), '') AS unit_given
   FROM (
-    SELECT
-      patient_id,
-      obs_date,
-      measure,
-      unit,
-      value,
-      value_text,
-      source_problem,
-      MIN(source_position) AS source_position,
-      COUNT(*) AS copies
+    SELECT DISTINCT
+      measure AS key_measure,
+      unit AS key_unit,
+      value AS key_value,
+      value_text AS key_value_text
     FROM src_measurements
-    GROUP BY
-      patient_id,
-      obs_date,
-      measure,
-      unit,
-      value,
-      value_text,
-      source_problem
   ) AS d
 ), split AS (
   SELECT
@@ -513,8 +492,10 @@ WITH read AS (
   FROM read
 ), parsed AS (
   SELECT
-    patient_id,
-    obs_date,
+    key_measure,
+    key_unit,
+    key_value,
+    key_value_text,
     measure,
     CASE
       WHEN NOT value_missing
@@ -541,40 +522,26 @@ WITH read AS (
     CASE WHEN value_missing THEN LOWER(text_given) END AS category,
     value_given,
     text_given,
-    unit_given,
-    copies,
-    source_position,
-    source_problem
+    unit_given
   FROM split
 )
 SELECT
-  r.patient_id,
-  r.obs_date,
+  r.key_measure,
+  r.key_unit,
+  r.key_value,
+  r.key_value_text,
   r.measure,
   r.qualifier,
   CASE WHEN k.is_coded THEN r.category END AS category,
   r.value_given AS raw_value,
   r.text_given AS raw_value_text,
   r.unit_given AS raw_unit,
-  r.copies,
-  r.source_position,
-  r.source_problem,
   CASE
     WHEN u.divisor = 0
     THEN u.factor * r.reading * CAST('Infinity' AS DOUBLE)
     ELSE u.factor * r.reading / u.divisor
   END + u.offset_value AS value,
   CASE
-    WHEN NOT r.source_problem IS NULL
-    THEN r.source_problem
-    WHEN p.patient_id IS NULL
-    THEN 'orphan patient'
-    WHEN r.obs_date IS NULL
-    THEN 'unparseable date'
-    WHEN r.obs_date > CAST('2019-12-31' AS DATE)
-    THEN 'after end of data'
-    WHEN NOT p.death_date IS NULL AND r.obs_date > p.death_date
-    THEN 'after death'
     WHEN k.measure IS NULL
     THEN 'unknown measure'
     WHEN k.is_coded
@@ -611,8 +578,6 @@ SELECT
     THEN 'implausible value'
   END AS problem
 FROM parsed AS r
-LEFT JOIN patient_base AS p
-  ON p.patient_id = r.patient_id
 LEFT JOIN VALUES
   ('bmi', FALSE),
   ('creatinine', FALSE),
@@ -675,6 +640,82 @@ LEFT JOIN VALUES
   ('weight', 'g', 1.0, 1000.0, 0.0, 2.0, 400.0),
   ('weight', '[lb_av]', 0.45359237, 1.0, 0.0, 2.0, 400.0) AS u(measure, unit, factor, divisor, offset_value, low, high)
   ON u.measure = r.measure AND u.unit = r.unit;
+
+-- stage measurement_rows [view]: every distinct measurement row with its shape's value and what stops its use
+-- reads: src_measurements, patient_base, measurement_shapes
+SELECT
+  r.patient_id,
+  r.obs_date,
+  s.measure,
+  s.qualifier,
+  s.category,
+  s.raw_value,
+  s.raw_value_text,
+  s.raw_unit,
+  r.copies,
+  r.source_position,
+  r.source_problem,
+  s.value,
+  CASE
+    WHEN NOT r.source_problem IS NULL
+    THEN r.source_problem
+    WHEN p.patient_id IS NULL
+    THEN 'orphan patient'
+    WHEN r.obs_date IS NULL
+    THEN 'unparseable date'
+    WHEN r.obs_date > CAST('2019-12-31' AS DATE)
+    THEN 'after end of data'
+    WHEN NOT p.death_date IS NULL AND r.obs_date > p.death_date
+    THEN 'after death'
+    ELSE s.problem
+  END AS problem
+FROM (
+  SELECT
+    patient_id,
+    CASE
+      WHEN CAST(obs_date AS STRING) RLIKE '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$'
+      THEN TRY_CAST(REGEXP_REPLACE(
+        TRIM(CAST(obs_date AS STRING)),
+        '^\\s*(-?[0-9]{1,7})([-/ ])([0-9]{1,2})\\2([0-9]{1,2})([ T][0-9]{1,2}:[0-9]{2}(:[0-9]{2}(\\.[0-9]+)?)?\\s*([+-][0-9]{2}(:?[0-9]{2})?|Z|UTC)?)?\\s*$',
+        '$1-$3-$4'
+      ) AS DATE)
+    END AS obs_date,
+    measure,
+    unit,
+    value,
+    value_text,
+    copies,
+    source_position,
+    source_problem
+  FROM (
+    SELECT
+      patient_id,
+      obs_date,
+      measure,
+      unit,
+      value,
+      value_text,
+      source_problem,
+      MIN(source_position) AS source_position,
+      COUNT(*) AS copies
+    FROM src_measurements
+    GROUP BY
+      patient_id,
+      obs_date,
+      measure,
+      unit,
+      value,
+      value_text,
+      source_problem
+  ) AS g
+) AS r
+LEFT JOIN patient_base AS p
+  ON p.patient_id = r.patient_id
+LEFT JOIN measurement_shapes AS s
+  ON s.key_measure IS NOT DISTINCT FROM r.measure
+  AND s.key_unit IS NOT DISTINCT FROM r.unit
+  AND s.key_value IS NOT DISTINCT FROM r.value
+  AND s.key_value_text IS NOT DISTINCT FROM r.value_text;
 
 -- stage measurements_judged [table]: every measurement row parsed, converted and judged: values and quality log
 -- reads: measurement_rows
