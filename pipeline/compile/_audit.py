@@ -13,13 +13,12 @@ from sqlglot import exp
 
 from pipeline.compile import names
 from pipeline.compile._context import CompileContext
-from pipeline.compile._judged import same_raw_code
+from pipeline.compile._judged import grouped_rows, same_raw_code
 from pipeline.compile._plan import SOURCE_PROBLEM, Plan, Stage
 from pipeline.compile._sources import (
     DIAGNOSES,
     PRESCRIPTIONS,
     coded_tables,
-    grouped_rows,
     raw_code_columns,
 )
 from pipeline.compile._sql import days_between, query

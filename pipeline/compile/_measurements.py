@@ -13,8 +13,9 @@ from sqlglot import exp
 
 from pipeline.compile import names
 from pipeline.compile._context import CompileContext
+from pipeline.compile._judged import grouped_rows
 from pipeline.compile._plan import Stage
-from pipeline.compile._sources import MEASUREMENTS, grouped_rows
+from pipeline.compile._sources import MEASUREMENTS
 from pipeline.compile._sql import (
     age_in_years,
     expression,
