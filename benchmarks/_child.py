@@ -35,11 +35,13 @@ def run_child(
     stdout: IO[bytes] | int = subprocess.DEVNULL,
     stderr: IO[bytes] | int | None = None,
     before: Callable[[], None] | None = None,
+    cwd: Path | None = None,
+    env: dict[str, str] | None = None,
 ) -> ChildRun:
     """Run ``cmd`` and reap it with ``os.wait4``, which gives that child's own resource usage
     (``ru_maxrss`` is KiB on Linux), unmixed with other runs."""
     started = time.perf_counter()
-    child = subprocess.Popen(cmd, stdout=stdout, stderr=stderr, preexec_fn=before)
+    child = subprocess.Popen(cmd, stdout=stdout, stderr=stderr, preexec_fn=before, cwd=cwd, env=env)
     _, status, usage = os.wait4(child.pid, 0)
     return ChildRun(
         exit_code=os.waitstatus_to_exitcode(status),

@@ -146,8 +146,9 @@ def main() -> None:
         print(done, file=sys.stderr)
     print(f"\n{args.patients:,} patients, unlimited (median of {args.repeat})\n")
     print(_table(results, "unlimited"))
-    print(f"\n{args.patients:,} patients, --memory-limit {args.memory_limit}\n")
-    print(_table(results, "limited"))
+    if args.memory_limit:
+        print(f"\n{args.patients:,} patients, --memory-limit {args.memory_limit}\n")
+        print(_table(results, "limited"))
     write_results(RESULTS, results, patients=args.patients, seed=args.seed)
 
 

@@ -26,7 +26,7 @@ def _guarded(node: exp.Expression) -> bool:
 
 
 def test_value_text_is_parsed_only_without_a_value() -> None:
-    stage = next(s for s in plan_study(DEMO_STUDY).stages if s.name == "measurement_rows")
+    stage = next(s for s in plan_study(DEMO_STUDY).stages if s.name == "measurement_shapes")
     parsing = [
         node
         for node in stage.query.find_all(exp.RegexpExtract, exp.RegexpLike)
@@ -36,3 +36,23 @@ def test_value_text_is_parsed_only_without_a_value() -> None:
     assert len(parsing) == 3
     unguarded = [node.sql("duckdb") for node in parsing if not _guarded(node)]
     assert unguarded == []
+
+
+def test_rows_meet_their_judged_shape_without_parsing_anything() -> None:
+    """Parsing, units and plausibility are judged per distinct shape, not per row (issue 24).
+
+    ``measurement_rows`` reads millions of rows; it may only join them to
+    ``measurement_shapes`` and judge what depends on the row (patient, date).
+    """
+    plan = plan_study(DEMO_STUDY)
+    rows = plan.stage("measurement_rows")
+    assert "measurement_shapes" in rows.depends_on
+    assert not list(rows.query.find_all(exp.RegexpExtract, exp.RegexpLike))
+    casts = [c for c in rows.query.find_all(exp.TryCast, exp.Cast) if c.to.is_type("double")]
+    assert casts == []
+    shapes = plan.stage("measurement_shapes").query
+    assert shapes.find(exp.Distinct) is not None
+    # Every raw column is a join key, compared so that NULLs meet NULLs (a number's
+    # value_text is NULL in most extracts).
+    keys = {c.name for eq in rows.query.find_all(exp.NullSafeEQ) for c in eq.find_all(exp.Column)}
+    assert {"measure", "unit", "value", "value_text"} <= keys

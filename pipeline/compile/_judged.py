@@ -74,15 +74,19 @@ def timing_problem(day: exp.Expression, end_of_data: dt.date) -> exp.Expression:
 
 def patients_judged(table: SourceTable, unreadable_date: exp.Expression) -> Stage:
     """``patients_judged``: every patients row with its reason (``used`` or why not)."""
-    reason = template(_PATIENT_REASON, unreadable_date=unreadable_date, used=names.USED)
+    rows = exp.select(*table.columns, SOURCE_PROBLEM, SOURCE_POSITION).from_(table.relation)
     return Stage(
         names.judged_stage(table.name),
-        exp.select(*table.columns, SOURCE_PROBLEM, SOURCE_POSITION, reason.as_("reason")).from_(
-            table.relation
-        ),
+        _judge_patients(rows.subquery("r"), unreadable_date),
         "every patients row judged once: used, or the reason the quality log gives",
         kind="view",
     )
+
+
+def _judge_patients(rows: exp.Expression, unreadable_date: exp.Expression) -> exp.Select:
+    """Patients ``rows`` (a relation), each with its reason."""
+    reason = template(_PATIENT_REASON, unreadable_date=unreadable_date, used=names.USED)
+    return exp.select(exp.Star(), reason.as_("reason")).from_(rows)
 
 
 def event_judged(
@@ -100,18 +104,36 @@ def event_judged(
             ``distinct_codes``); the view then carries them with ``source_table`` and
             ``duration_days`` and takes each row's code problem from ``distinct_codes``.
     """
+    rows = exp.select(*table.columns, SOURCE_PROBLEM, SOURCE_POSITION).from_(table.relation)
+    return Stage(
+        names.judged_stage(table.name),
+        _judge_events(table, rows, end_of_data=end_of_data, raw_codes=raw_codes),
+        f"every {table.name} row judged once: used, or the reason the quality log gives",
+        kind="view",
+    )
+
+
+def _judge_events(
+    table: SourceTable,
+    rows: exp.Select,
+    *,
+    end_of_data: dt.date,
+    raw_codes: dict[str, exp.Expression] | None,
+) -> exp.Select:
+    """Event ``rows`` (a query over the table's columns) with their problems and reason.
+
+    The one statement of the rule: the row-judgement view applies it to the extract's rows,
+    the quality log with the duplicate check to its distinct rows.
+    """
     # The date that places the row in time is the schema's (extract/schema.py).
     row_date = exp.TryCast(
         this=exp.column(canonical_table(table.name).row_date), to=exp.DataType.build("DATE")
     )
-    columns: list[exp.Expression] = [
-        *(exp.column(c) for c in (*table.columns, SOURCE_PROBLEM, SOURCE_POSITION)),
-        row_date.as_("row_date"),
-    ]
+    rows = rows.select(row_date.as_("row_date"))
     if raw_codes is not None:
-        columns.append(value(table.name).as_("source_table"))
-        columns += [c.as_(n) for n, c in raw_codes.items()]
-        columns.append(_duration(table.name, row_date).as_("duration_days"))
+        rows = rows.select(value(table.name).as_("source_table"))
+        rows = rows.select(*(c.as_(n) for n, c in raw_codes.items()))
+        rows = rows.select(_duration(table.name, row_date).as_("duration_days"))
     day = exp.column("row_date", "r")
     parts = [record_problem(day).as_("record_problem")]
     if raw_codes is not None:
@@ -119,7 +141,7 @@ def event_judged(
     parts.append(timing_problem(day, end_of_data).as_("timing_problem"))
     judged = (
         exp.select(exp.column(exp.Star(), "r"), *parts)
-        .from_(exp.select(*columns).from_(table.relation).subquery("r"))
+        .from_(rows.subquery("r"))
         .join(
             exp.to_table(names.PATIENT_BASE).as_("p"),
             on=exp.column("patient_id", "p").eq(exp.column("patient_id", "r")),
@@ -134,12 +156,7 @@ def event_judged(
         )
     # The quality log's order: the record, then the code, then the timing.
     reason = exp.func("COALESCE", *(exp.column(p.alias) for p in parts), value(names.USED))
-    return Stage(
-        names.judged_stage(table.name),
-        exp.select(exp.Star(), reason.as_("reason")).from_(judged.subquery("j")),
-        f"every {table.name} row judged once: used, or the reason the quality log gives",
-        kind="view",
-    )
+    return exp.select(exp.Star(), reason.as_("reason")).from_(judged.subquery("j"))
 
 
 def dated_and_placed() -> exp.Expression:
@@ -155,14 +172,39 @@ def is_used() -> exp.Expression:
     return exp.column("reason").eq(value(names.USED))
 
 
-def judged_for_log(table: SourceTable, *, check_duplicates: bool) -> exp.Query:
+def grouped_rows(table: SourceTable, *, check_duplicates: bool) -> exp.Query:
+    """Distinct rows of a source table with how many copies of each the extract holds.
+
+    A row's position is its first copy's. Without the duplicate check every row stands alone
+    (``copies`` is 1): no grouping. The reader's own problem with a row (``source_problem``)
+    is part of the row: a refuted diagnosis is no copy of a confirmed one on the same day.
+    """
+    rows = exp.select(*table.columns, SOURCE_PROBLEM).from_(table.relation)
+    if not check_duplicates:
+        return rows.select(exp.column(SOURCE_POSITION), exp.Literal.number(1).as_("copies"))
+    first = exp.func("MIN", exp.column(SOURCE_POSITION)).as_(SOURCE_POSITION)
+    copies = exp.func("COUNT", exp.Star()).as_("copies")
+    return rows.select(first, copies).group_by(*table.columns, SOURCE_PROBLEM)
+
+
+def judged_for_log(
+    table: SourceTable,
+    *,
+    check_duplicates: bool,
+    end_of_data: dt.date,
+    raw_codes: dict[str, exp.Expression] | None = None,
+    unreadable_date: exp.Expression | None = None,
+) -> exp.Query:
     """A table's judged rows as the quality log counts them: reason, copies, first position.
 
-    With the duplicate check the judged rows are grouped on all their columns (a row's reason
-    follows from its columns, so copies share it); the first copy's position is kept. Rows
-    without a patient or set aside by the reader are counted whole (see the quality log).
+    Without the duplicate check this reads the table's row-judgement view. With it, the
+    table's rows are grouped on all their columns first and the same judgement
+    (:func:`_judge_events`, :func:`_judge_patients`) is applied to each distinct row: a row's
+    reason follows from its columns, so copies share it, and grouping the raw columns before
+    the joins to the patients and codes costs less than grouping judged rows with their
+    reason (issue 24: 4-6 s more at 200,000 patients). Rows without a patient or set aside by
+    the reader are counted whole (see the quality log).
     """
-    relation = names.judged_stage(table.name)
     whole = exp.or_(
         exp.column("patient_id").is_(exp.null()),
         exp.column(SOURCE_PROBLEM).is_(exp.null()).not_(),
@@ -170,17 +212,21 @@ def judged_for_log(table: SourceTable, *, check_duplicates: bool) -> exp.Query:
     if not check_duplicates:
         return exp.select(
             "reason", exp.Literal.number(1).as_("copies"), SOURCE_POSITION, whole
-        ).from_(relation)
-    return (
-        exp.select(
-            "reason",
-            exp.func("COUNT", exp.Star()).as_("copies"),
-            exp.func("MIN", exp.column(SOURCE_POSITION)).as_(SOURCE_POSITION),
-            whole,
+        ).from_(names.judged_stage(table.name))
+    rows = grouped_rows(table, check_duplicates=True)
+    if table.name == "patients":
+        if unreadable_date is None:
+            raise TypeError("the patients table is judged with its unreadable-date test")
+        judged = _judge_patients(rows.subquery("r"), unreadable_date)
+    else:
+        distinct = exp.select(*table.columns, SOURCE_PROBLEM, SOURCE_POSITION, "copies")
+        judged = _judge_events(
+            table,
+            distinct.from_(rows.subquery("g")),
+            end_of_data=end_of_data,
+            raw_codes=raw_codes,
         )
-        .from_(relation)
-        .group_by(*table.columns, SOURCE_PROBLEM, "reason")
-    )
+    return exp.select("reason", "copies", SOURCE_POSITION, whole).from_(judged.subquery("j"))
 
 
 def same_raw_code(row: str, code: str) -> exp.Expression:

@@ -13,9 +13,9 @@ from sqlglot import exp
 
 from pipeline.compile import names
 from pipeline.compile._context import CompileContext
-from pipeline.compile._judged import record_problem, timing_problem
+from pipeline.compile._judged import grouped_rows, record_problem, timing_problem
 from pipeline.compile._plan import Stage
-from pipeline.compile._sources import MEASUREMENTS, grouped_rows
+from pipeline.compile._sources import MEASUREMENTS
 from pipeline.compile._sql import (
     age_in_years,
     expression,
@@ -32,29 +32,34 @@ from pipeline.measures import DERIVED_FROM, SAME_DAY_INPUTS, Threshold
 READING_PATTERN = "^(<=|>=|<|>)?[ ]*([0-9]+([.,][0-9]+)?)[ ]*(.*)$"
 DECIMAL_COMMA_PATTERN = "^[0-9]+,[0-9]{1,2}$"
 
+# Measurements are judged once per distinct shape, not per row (issue 24): the measure, unit,
+# value and value_text of a row decide its reading, unit conversion and plausibility, and an
+# extract of millions of rows holds a few thousand such combinations (lab values are written
+# to a fixed precision). ``measurement_shapes`` parses and judges those; each row then meets
+# its shape by an equality join on the raw values, as coded rows meet ``distinct_codes``. Only
+# what depends on the row itself (its patient and date) is judged per row.
+#
 # A numeric value is never missing, so the text test of ``value_missing`` (a cast of every
-# number to text, costly at tens of millions of rows) runs only on the few other rows. For the
-# same reason ``value_text`` is parsed only where ``value`` is missing: extracts that write
-# every number twice (value and value_text) would otherwise run three regular expressions on
-# every row for text that is never read.
-_MEASUREMENT_ROWS = """
+# number to text) runs only on the few other shapes. For the same reason ``value_text`` is
+# parsed only where ``value`` is missing: extracts that write every number twice (value and
+# value_text) would otherwise run three regular expressions on text that is never read.
+_MEASUREMENT_SHAPES = """
 WITH read AS (
   SELECT
-    patient_id,
-    TRY_CAST(obs_date AS DATE) AS obs_date,
+    key_measure,
+    key_unit,
+    key_value,
+    key_value_text,
     :measure_name AS measure,
-    TRY_CAST(value AS DOUBLE) AS value_number,
+    TRY_CAST(key_value AS DOUBLE) AS value_number,
     CASE
-      WHEN TRY_CAST(value AS DOUBLE) IS NOT NULL THEN FALSE
-      ELSE NULLIF(TRIM(CAST(value AS VARCHAR)), '') IS NULL
+      WHEN TRY_CAST(key_value AS DOUBLE) IS NOT NULL THEN FALSE
+      ELSE NULLIF(TRIM(CAST(key_value AS VARCHAR)), '') IS NULL
     END AS value_missing,
-    NULLIF(TRIM(CAST(value AS VARCHAR)), '') AS value_given,
-    NULLIF(TRIM(CAST(value_text AS VARCHAR)), '') AS text_given,
-    NULLIF(TRIM(CAST(unit AS VARCHAR)), '') AS unit_given,
-    copies,
-    source_position,
-    source_problem
-  FROM :distinct_rows
+    NULLIF(TRIM(CAST(key_value AS VARCHAR)), '') AS value_given,
+    NULLIF(TRIM(CAST(key_value_text AS VARCHAR)), '') AS text_given,
+    NULLIF(TRIM(CAST(key_unit AS VARCHAR)), '') AS unit_given
+  FROM :shapes
 ), split AS (
   SELECT
     *,
@@ -67,8 +72,10 @@ WITH read AS (
   FROM read
 ), parsed AS (
   SELECT
-    patient_id,
-    obs_date,
+    key_measure,
+    key_unit,
+    key_value,
+    key_value_text,
     measure,
     CASE
       WHEN NOT value_missing THEN value_number
@@ -85,28 +92,22 @@ WITH read AS (
     CASE WHEN value_missing THEN LOWER(text_given) END AS category,
     value_given,
     text_given,
-    unit_given,
-    copies,
-    source_position,
-    source_problem
+    unit_given
   FROM split
 )
 SELECT
-  r.patient_id,
-  r.obs_date,
+  r.key_measure,
+  r.key_unit,
+  r.key_value,
+  r.key_value_text,
   r.measure,
   r.qualifier,
   CASE WHEN k.is_coded THEN r.category END AS category,
   r.value_given AS raw_value,
   r.text_given AS raw_value_text,
   r.unit_given AS raw_unit,
-  r.copies,
-  r.source_position,
-  r.source_problem,
   u.factor * r.reading / u.divisor + u.offset_value AS value,
-  :record_problem AS record_problem,
-  :timing_problem AS timing_problem,
-  COALESCE(:record_problem, :timing_problem, CASE
+  CASE
     WHEN k.measure IS NULL THEN 'unknown measure'
     WHEN k.is_coded AND (r.category IS NULL OR NOT (:known_category))
       THEN 'category not recognised'
@@ -117,18 +118,69 @@ SELECT
     WHEN u.measure IS NULL THEN 'unit not convertible'
     WHEN u.factor * r.reading / u.divisor + u.offset_value NOT BETWEEN u.low AND u.high
       THEN 'implausible value'
-  END) AS problem
+  END AS problem
 FROM parsed AS r
-LEFT JOIN :base AS p ON p.patient_id = r.patient_id
 LEFT JOIN :known ON k.measure = r.measure
 LEFT JOIN :units ON u.measure = r.measure AND u.unit = r.unit
 """
 
-# Local lab test codes (``local_codes: {lab_tests: ...}``), looked up on the distinct rows.
+# Each distinct shape of the extract's measurement rows, the keys ``measurement_shapes`` and
+# the rows are joined on.
+_DISTINCT_SHAPES = """
+SELECT DISTINCT
+  measure AS key_measure,
+  unit AS key_unit,
+  value AS key_value,
+  value_text AS key_value_text
+FROM :source
+"""
+
+# A row's own judgement (its patient and date: the record and timing parts every event table
+# shares, compile/_judged.py) first, in the quality log's order, then its shape's. Both parts
+# are kept for contact with the practice. NULL keys meet NULL keys: a row without a unit has
+# the shape without one.
+_MEASUREMENT_ROWS = """
+SELECT
+  r.patient_id,
+  r.obs_date,
+  s.measure,
+  s.qualifier,
+  s.category,
+  s.raw_value,
+  s.raw_value_text,
+  s.raw_unit,
+  r.copies,
+  r.source_position,
+  r.source_problem,
+  s.value,
+  :record_problem AS record_problem,
+  :timing_problem AS timing_problem,
+  COALESCE(:record_problem, :timing_problem, s.problem) AS problem
+FROM (
+  SELECT
+    patient_id,
+    TRY_CAST(obs_date AS DATE) AS obs_date,
+    measure,
+    unit,
+    value,
+    value_text,
+    copies,
+    source_position,
+    source_problem
+  FROM :rows
+) AS r
+LEFT JOIN :base AS p ON p.patient_id = r.patient_id
+LEFT JOIN :shapes ON s.key_measure IS NOT DISTINCT FROM r.measure
+  AND s.key_unit IS NOT DISTINCT FROM r.unit
+  AND s.key_value IS NOT DISTINCT FROM r.value
+  AND s.key_value_text IS NOT DISTINCT FROM r.value_text
+"""
+
+# Local lab test codes (``local_codes: {lab_tests: ...}``), looked up on the distinct shapes.
 _MAPPED_LAB_TESTS = """
 SELECT g.*, t.measure AS mapped_measure
-FROM :rows
-LEFT JOIN :lab_tests ON TRIM(CAST(g.measure AS VARCHAR)) = t.local_code
+FROM :shapes
+LEFT JOIN :lab_tests ON TRIM(CAST(g.key_measure AS VARCHAR)) = t.local_code
 """
 
 _COMPARISONS = {
@@ -232,11 +284,11 @@ WHERE bmi BETWEEN :low AND :high
 """
 
 
-def _judged_rows(ctx: CompileContext) -> exp.Query:
-    """Every distinct measurement row parsed, converted and judged.
+def _shapes(ctx: CompileContext) -> exp.Query:
+    """Every distinct shape (measure, unit, value, value_text) parsed, converted and judged.
 
-    One judgement for the quality log and for the values, so the two can never judge a row
-    differently.
+    What a row's shape decides (its measure, reading, qualifier, unit and plausibility) is
+    decided here once per shape; ``measurement_rows`` adds what depends on the row.
     """
     measures = ctx.registry.measures
     known = values_table(
@@ -256,30 +308,43 @@ def _judged_rows(ctx: CompileContext) -> exp.Query:
             for name, value in categories
         )
     )
-    check = ctx.study.quality.exact_duplicates == "check"
-    rows = grouped_rows(MEASUREMENTS, check_duplicates=check)
-    name = expression("LOWER(TRIM(CAST(measure AS VARCHAR)))")
+    shapes = query(_DISTINCT_SHAPES, source=exp.to_table(MEASUREMENTS.relation))
+    name = expression("LOWER(TRIM(CAST(key_measure AS VARCHAR)))")
     if ctx.local_codes.lab_tests:
         # A local lab code of the study's table is judged as the measure it names.
-        rows = query(
+        shapes = query(
             _MAPPED_LAB_TESTS,
-            rows=rows.subquery("g"),
+            shapes=shapes.subquery("g"),
             lab_tests=values_table("t", ["local_code", "measure"], list(ctx.local_codes.lab_tests)),
         )
         name = exp.func("COALESCE", exp.column("mapped_measure"), name)
-    day = exp.column("obs_date", "r")
     return query(
-        _MEASUREMENT_ROWS,
+        _MEASUREMENT_SHAPES,
         measure_name=name,
         pattern=READING_PATTERN,
         decimal_comma=DECIMAL_COMMA_PATTERN,
-        record_problem=record_problem(day),
-        timing_problem=timing_problem(day, ctx.study.end_of_data),
         known=known,
         units=units,
         known_category=known_category,
-        distinct_rows=rows.subquery("d"),
+        shapes=shapes.subquery("d"),
+    )
+
+
+def _judged_rows(ctx: CompileContext) -> exp.Query:
+    """Every distinct measurement row with its shape's judgement and its own.
+
+    One judgement for the quality log and for the values, so the two can never judge a row
+    differently.
+    """
+    check = ctx.study.quality.exact_duplicates == "check"
+    day = exp.column("obs_date", "r")
+    return query(
+        _MEASUREMENT_ROWS,
+        rows=grouped_rows(MEASUREMENTS, check_duplicates=check).subquery("g"),
+        shapes=exp.to_table(names.MEASUREMENT_SHAPES).as_("s"),
         base=exp.to_table(names.PATIENT_BASE),
+        record_problem=record_problem(day),
+        timing_problem=timing_problem(day, ctx.study.end_of_data),
     )
 
 
@@ -374,9 +439,15 @@ def measurement_stages(ctx: CompileContext) -> tuple[Stage, ...]:
     check = ctx.study.quality.exact_duplicates == "check"
     stages = [
         Stage(
+            names.MEASUREMENT_SHAPES,
+            _shapes(ctx),
+            "each distinct measure, unit, value and value_text of the extract parsed, converted "
+            "and judged once",
+        ),
+        Stage(
             names.MEASUREMENT_ROWS,
             _judged_rows(ctx),
-            "every distinct measurement row parsed and converted, with what stops its use",
+            "every distinct measurement row with its shape's value and what stops its use",
             kind="view",
         ),
         Stage(

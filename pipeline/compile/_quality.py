@@ -19,7 +19,12 @@ from pipeline.compile import names
 from pipeline.compile._context import CompileContext
 from pipeline.compile._judged import judged_for_log
 from pipeline.compile._plan import SourceTable, Stage
-from pipeline.compile._sources import source_tables
+from pipeline.compile._sources import (
+    coded_tables,
+    raw_code_columns,
+    source_tables,
+    unreadable_patient_date,
+)
 from pipeline.compile._sql import query, value
 
 
@@ -250,11 +255,17 @@ GROUP BY source_table, reason
 
 
 def _classified(ctx: CompileContext, table: SourceTable) -> exp.Query:
-    """A table's rows as judged once by its row-judgement stage, ready to be counted."""
+    """A table's rows judged by its row-judgement rule, ready to be counted."""
     if table.name == "measurements":
         return query(_MEASUREMENTS, judged=exp.to_table(names.MEASUREMENTS_JUDGED))
     check = ctx.study.quality.exact_duplicates == "check"
-    return judged_for_log(table, check_duplicates=check)
+    return judged_for_log(
+        table,
+        check_duplicates=check,
+        end_of_data=ctx.study.end_of_data,
+        raw_codes=raw_code_columns(table.name) if table.name in coded_tables(ctx) else None,
+        unreadable_date=unreadable_patient_date() if table.name == "patients" else None,
+    )
 
 
 def quality_stages(ctx: CompileContext) -> tuple[Stage, ...]:

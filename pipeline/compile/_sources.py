@@ -16,7 +16,7 @@ from pipeline.codes import EXTRACT_PATTERNS, normalised_code_sql, read2_code_sql
 from pipeline.compile import names
 from pipeline.compile._context import CompileContext
 from pipeline.compile._judged import event_judged, is_used, patients_judged
-from pipeline.compile._plan import SOURCE_POSITION, SOURCE_PROBLEM, SourceTable, Stage
+from pipeline.compile._plan import SourceTable, Stage
 from pipeline.compile._sql import is_in, query, value, values_table
 from pipeline.compile.names import judged_stage
 from pipeline.config import Study
@@ -53,21 +53,6 @@ def unreadable_patient_date() -> exp.Expression:
         cast = exp.TryCast(this=column.copy(), to=exp.DataType.build("DATE"))
         unreadable.append(exp.and_(written, cast.is_(exp.null())))
     return exp.paren(exp.or_(*unreadable))
-
-
-def grouped_rows(table: SourceTable, *, check_duplicates: bool) -> exp.Query:
-    """Distinct rows of a source table with how many copies of each the extract holds.
-
-    A row's position is its first copy's. Without the duplicate check every row stands alone
-    (``copies`` is 1): no grouping. The reader's own problem with a row (``source_problem``)
-    is part of the row: a refuted diagnosis is no copy of a confirmed one on the same day.
-    """
-    rows = exp.select(*table.columns, SOURCE_PROBLEM).from_(table.relation)
-    if not check_duplicates:
-        return rows.select(exp.column(SOURCE_POSITION), exp.Literal.number(1).as_("copies"))
-    first = exp.func("MIN", exp.column(SOURCE_POSITION)).as_(SOURCE_POSITION)
-    copies = exp.func("COUNT", exp.Star()).as_("copies")
-    return rows.select(first, copies).group_by(*table.columns, SOURCE_PROBLEM)
 
 
 def source_tables(ctx: CompileContext) -> tuple[SourceTable, ...]:

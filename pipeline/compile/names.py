@@ -41,6 +41,8 @@ CODED_ROWS = "coded_rows"
 
 # --- Measurements. ------------------------------------------------------------------------
 
+MEASUREMENT_SHAPES = "measurement_shapes"
+"""Each distinct measure, unit, value and value_text of the extract, parsed and judged once."""
 MEASUREMENT_ROWS = "measurement_rows"
 MEASUREMENTS_JUDGED = judged_stage("measurements")
 MEASUREMENT_VALUES = "measurement_values"

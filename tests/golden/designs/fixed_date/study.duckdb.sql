@@ -1,4 +1,4 @@
--- plan for study design_fixed_date (33 stages, dialect duckdb)
+-- plan for study design_fixed_date (34 stages, dialect duckdb)
 
 -- reads src_patients: patient_id, sex, death_date, birth_date, birth_year, practice_id, registration_date, deregistration_date
 
@@ -13,16 +13,7 @@
 -- stage patients_judged [view]: every patients row judged once: used, or the reason the quality log gives
 -- reads: src_patients
 SELECT
-  patient_id,
-  sex,
-  death_date,
-  birth_date,
-  birth_year,
-  practice_id,
-  registration_date,
-  deregistration_date,
-  source_problem,
-  source_position,
+  *,
   CASE
     WHEN NOT source_problem IS NULL
     THEN source_problem
@@ -49,7 +40,20 @@ SELECT
     THEN 'unparseable date'
     ELSE 'used'
   END AS reason
-FROM src_patients;
+FROM (
+  SELECT
+    patient_id,
+    sex,
+    death_date,
+    birth_date,
+    birth_year,
+    practice_id,
+    registration_date,
+    deregistration_date,
+    source_problem,
+    source_position
+  FROM src_patients
+) AS r;
 
 -- stage patient_base [table]: one typed row per patient: birth date (1 July when only the year is known), sex; a patient with a written but unreadable date is left out
 -- reads: patients_judged
@@ -313,45 +317,31 @@ FROM prescriptions_judged
 WHERE
   reason = 'used';
 
--- stage measurement_rows [view]: every distinct measurement row parsed and converted, with what stops its use
--- reads: patient_base, src_measurements
+-- stage measurement_shapes [table]: each distinct measure, unit, value and value_text of the extract parsed, converted and judged once
+-- reads: src_measurements
 WITH read AS (
   SELECT
-    patient_id,
-    TRY_CAST(obs_date AS DATE) AS obs_date,
-    LOWER(TRIM(CAST(measure AS TEXT))) AS measure,
-    TRY_CAST(value AS DOUBLE) AS value_number,
+    key_measure,
+    key_unit,
+    key_value,
+    key_value_text,
+    LOWER(TRIM(CAST(key_measure AS TEXT))) AS measure,
+    TRY_CAST(key_value AS DOUBLE) AS value_number,
     CASE
-      WHEN NOT TRY_CAST(value AS DOUBLE) IS NULL
+      WHEN NOT TRY_CAST(key_value AS DOUBLE) IS NULL
       THEN FALSE
-      ELSE NULLIF(TRIM(CAST(value AS TEXT)), '') IS NULL
+      ELSE NULLIF(TRIM(CAST(key_value AS TEXT)), '') IS NULL
     END AS value_missing,
-    NULLIF(TRIM(CAST(value AS TEXT)), '') AS value_given,
-    NULLIF(TRIM(CAST(value_text AS TEXT)), '') AS text_given,
-    NULLIF(TRIM(CAST(unit AS TEXT)), '') AS unit_given,
-    copies,
-    source_position,
-    source_problem
+    NULLIF(TRIM(CAST(key_value AS TEXT)), '') AS value_given,
+    NULLIF(TRIM(CAST(key_value_text AS TEXT)), '') AS text_given,
+    NULLIF(TRIM(CAST(key_unit AS TEXT)), '') AS unit_given
   FROM (
-    SELECT
-      patient_id,
-      obs_date,
-      measure,
-      unit,
-      value,
-      value_text,
-      source_problem,
-      MIN(source_position) AS source_position,
-      COUNT(*) AS copies
+    SELECT DISTINCT
+      measure AS key_measure,
+      unit AS key_unit,
+      value AS key_value,
+      value_text AS key_value_text
     FROM src_measurements
-    GROUP BY
-      patient_id,
-      obs_date,
-      measure,
-      unit,
-      value,
-      value_text,
-      source_problem
   ) AS d
 ), split AS (
   SELECT
@@ -380,8 +370,10 @@ WITH read AS (
   FROM read
 ), parsed AS (
   SELECT
-    patient_id,
-    obs_date,
+    key_measure,
+    key_unit,
+    key_value,
+    key_value_text,
     measure,
     CASE
       WHEN NOT value_missing
@@ -402,90 +394,54 @@ WITH read AS (
     CASE WHEN value_missing THEN LOWER(text_given) END AS category,
     value_given,
     text_given,
-    unit_given,
-    copies,
-    source_position,
-    source_problem
+    unit_given
   FROM split
 )
 SELECT
-  r.patient_id,
-  r.obs_date,
+  r.key_measure,
+  r.key_unit,
+  r.key_value,
+  r.key_value_text,
   r.measure,
   r.qualifier,
   CASE WHEN k.is_coded THEN r.category END AS category,
   r.value_given AS raw_value,
   r.text_given AS raw_value_text,
   r.unit_given AS raw_unit,
-  r.copies,
-  r.source_position,
-  r.source_problem,
   u.factor * r.reading / u.divisor + u.offset_value AS value,
   CASE
-    WHEN NOT r.source_problem IS NULL
-    THEN r.source_problem
-    WHEN p.patient_id IS NULL
-    THEN 'orphan patient'
-    WHEN r.obs_date IS NULL
-    THEN 'unparseable date'
-  END AS record_problem,
-  CASE
-    WHEN r.obs_date > CAST('2020-12-31' AS DATE)
-    THEN 'after end of data'
-    WHEN NOT p.death_date IS NULL AND r.obs_date > p.death_date
-    THEN 'after death'
-  END AS timing_problem,
-  COALESCE(
-    CASE
-      WHEN NOT r.source_problem IS NULL
-      THEN r.source_problem
-      WHEN p.patient_id IS NULL
-      THEN 'orphan patient'
-      WHEN r.obs_date IS NULL
-      THEN 'unparseable date'
-    END,
-    CASE
-      WHEN r.obs_date > CAST('2020-12-31' AS DATE)
-      THEN 'after end of data'
-      WHEN NOT p.death_date IS NULL AND r.obs_date > p.death_date
-      THEN 'after death'
-    END,
-    CASE
-      WHEN k.measure IS NULL
-      THEN 'unknown measure'
-      WHEN k.is_coded
-      AND (
-        r.category IS NULL
-        OR NOT (
-          (
-            r.measure = 'smoking' AND r.category = 'current'
-          )
-          OR (
-            r.measure = 'smoking' AND r.category = 'former'
-          )
-          OR (
-            r.measure = 'smoking' AND r.category = 'never'
-          )
+    WHEN k.measure IS NULL
+    THEN 'unknown measure'
+    WHEN k.is_coded
+    AND (
+      r.category IS NULL
+      OR NOT (
+        (
+          r.measure = 'smoking' AND r.category = 'current'
+        )
+        OR (
+          r.measure = 'smoking' AND r.category = 'former'
+        )
+        OR (
+          r.measure = 'smoking' AND r.category = 'never'
         )
       )
-      THEN 'category not recognised'
-      WHEN k.is_coded
-      THEN NULL
-      WHEN r.empty
-      THEN 'no value'
-      WHEN r.reading IS NULL
-      THEN 'value not numeric'
-      WHEN r.unit_conflict
-      THEN 'unit differs from value_text'
-      WHEN u.measure IS NULL
-      THEN 'unit not convertible'
-      WHEN NOT u.factor * r.reading / u.divisor + u.offset_value BETWEEN u.low AND u.high
-      THEN 'implausible value'
-    END
-  ) AS problem
+    )
+    THEN 'category not recognised'
+    WHEN k.is_coded
+    THEN NULL
+    WHEN r.empty
+    THEN 'no value'
+    WHEN r.reading IS NULL
+    THEN 'value not numeric'
+    WHEN r.unit_conflict
+    THEN 'unit differs from value_text'
+    WHEN u.measure IS NULL
+    THEN 'unit not convertible'
+    WHEN NOT u.factor * r.reading / u.divisor + u.offset_value BETWEEN u.low AND u.high
+    THEN 'implausible value'
+  END AS problem
 FROM parsed AS r
-LEFT JOIN patient_base AS p
-  ON p.patient_id = r.patient_id
 LEFT JOIN (VALUES
   ('bmi', FALSE),
   ('creatinine', FALSE),
@@ -548,6 +504,93 @@ LEFT JOIN (VALUES
   ('weight', 'g', 1.0, 1000.0, 0.0, 2.0, 400.0),
   ('weight', '[lb_av]', 0.45359237, 1.0, 0.0, 2.0, 400.0)) AS u(measure, unit, factor, divisor, offset_value, low, high)
   ON u.measure = r.measure AND u.unit = r.unit;
+
+-- stage measurement_rows [view]: every distinct measurement row with its shape's value and what stops its use
+-- reads: measurement_shapes, patient_base, src_measurements
+SELECT
+  r.patient_id,
+  r.obs_date,
+  s.measure,
+  s.qualifier,
+  s.category,
+  s.raw_value,
+  s.raw_value_text,
+  s.raw_unit,
+  r.copies,
+  r.source_position,
+  r.source_problem,
+  s.value,
+  CASE
+    WHEN NOT r.source_problem IS NULL
+    THEN r.source_problem
+    WHEN p.patient_id IS NULL
+    THEN 'orphan patient'
+    WHEN r.obs_date IS NULL
+    THEN 'unparseable date'
+  END AS record_problem,
+  CASE
+    WHEN r.obs_date > CAST('2020-12-31' AS DATE)
+    THEN 'after end of data'
+    WHEN NOT p.death_date IS NULL AND r.obs_date > p.death_date
+    THEN 'after death'
+  END AS timing_problem,
+  COALESCE(
+    CASE
+      WHEN NOT r.source_problem IS NULL
+      THEN r.source_problem
+      WHEN p.patient_id IS NULL
+      THEN 'orphan patient'
+      WHEN r.obs_date IS NULL
+      THEN 'unparseable date'
+    END,
+    CASE
+      WHEN r.obs_date > CAST('2020-12-31' AS DATE)
+      THEN 'after end of data'
+      WHEN NOT p.death_date IS NULL AND r.obs_date > p.death_date
+      THEN 'after death'
+    END,
+    s.problem
+  ) AS problem
+FROM (
+  SELECT
+    patient_id,
+    TRY_CAST(obs_date AS DATE) AS obs_date,
+    measure,
+    unit,
+    value,
+    value_text,
+    copies,
+    source_position,
+    source_problem
+  FROM (
+    SELECT
+      patient_id,
+      obs_date,
+      measure,
+      unit,
+      value,
+      value_text,
+      source_problem,
+      MIN(source_position) AS source_position,
+      COUNT(*) AS copies
+    FROM src_measurements
+    GROUP BY
+      patient_id,
+      obs_date,
+      measure,
+      unit,
+      value,
+      value_text,
+      source_problem
+  ) AS g
+) AS r
+LEFT JOIN patient_base AS p
+  ON p.patient_id = r.patient_id
+LEFT JOIN measurement_shapes AS s
+  ON s.key_measure IS NOT DISTINCT FROM r.measure
+  AND s.key_unit IS NOT DISTINCT FROM r.unit
+  AND s.key_value IS NOT DISTINCT FROM r.value
+  AND s.key_value_text IS NOT DISTINCT FROM r.value_text;
 
 -- stage measurements_judged [table]: every measurement row parsed, converted and judged: values and quality log
 -- reads: measurement_rows
@@ -1350,7 +1393,7 @@ SELECT
 FROM src_measurements;
 
 -- stage quality_log [table]: every extract row: used, or set aside with the first reason that applies
--- reads: diagnoses_judged, encounters_judged, measurements_judged, patients_judged, prescriptions_judged
+-- reads: distinct_codes, measurements_judged, patient_base, src_diagnoses, src_encounters, src_patients, src_prescriptions
 WITH summary AS (
   SELECT
     reason,
@@ -1361,21 +1404,64 @@ WITH summary AS (
   FROM (
     SELECT
       reason,
-      COUNT(*) AS copies,
-      MIN(source_position) AS source_position,
+      copies,
+      source_position,
       patient_id IS NULL OR NOT source_problem IS NULL AS counted_whole
-    FROM patients_judged
-    GROUP BY
-      patient_id,
-      sex,
-      death_date,
-      birth_date,
-      birth_year,
-      practice_id,
-      registration_date,
-      deregistration_date,
-      source_problem,
-      reason
+    FROM (
+      SELECT
+        *,
+        CASE
+          WHEN NOT source_problem IS NULL
+          THEN source_problem
+          WHEN patient_id IS NULL
+          THEN 'missing patient_id'
+          WHEN (
+            (
+              COALESCE(TRIM(CAST(birth_date AS TEXT)), '') <> ''
+              AND TRY_CAST(birth_date AS DATE) IS NULL
+            )
+            OR (
+              COALESCE(TRIM(CAST(death_date AS TEXT)), '') <> ''
+              AND TRY_CAST(death_date AS DATE) IS NULL
+            )
+            OR (
+              COALESCE(TRIM(CAST(registration_date AS TEXT)), '') <> ''
+              AND TRY_CAST(registration_date AS DATE) IS NULL
+            )
+            OR (
+              COALESCE(TRIM(CAST(deregistration_date AS TEXT)), '') <> ''
+              AND TRY_CAST(deregistration_date AS DATE) IS NULL
+            )
+          )
+          THEN 'unparseable date'
+          ELSE 'used'
+        END AS reason
+      FROM (
+        SELECT
+          patient_id,
+          sex,
+          death_date,
+          birth_date,
+          birth_year,
+          practice_id,
+          registration_date,
+          deregistration_date,
+          source_problem,
+          MIN(source_position) AS source_position,
+          COUNT(*) AS copies
+        FROM src_patients
+        GROUP BY
+          patient_id,
+          sex,
+          death_date,
+          birth_date,
+          birth_year,
+          practice_id,
+          registration_date,
+          deregistration_date,
+          source_problem
+      ) AS r
+    ) AS j
   ) AS c
   GROUP BY
     reason
@@ -1389,16 +1475,59 @@ WITH summary AS (
   FROM (
     SELECT
       reason,
-      COUNT(*) AS copies,
-      MIN(source_position) AS source_position,
+      copies,
+      source_position,
       patient_id IS NULL OR NOT source_problem IS NULL AS counted_whole
-    FROM encounters_judged
-    GROUP BY
-      patient_id,
-      encounter_date,
-      encounter_type,
-      source_problem,
-      reason
+    FROM (
+      SELECT
+        *,
+        COALESCE(record_problem, timing_problem, 'used') AS reason
+      FROM (
+        SELECT
+          r.*,
+          CASE
+            WHEN NOT r.source_problem IS NULL
+            THEN r.source_problem
+            WHEN p.patient_id IS NULL
+            THEN 'orphan patient'
+            WHEN r.row_date IS NULL
+            THEN 'unparseable date'
+          END AS record_problem,
+          CASE
+            WHEN r.row_date > CAST('2020-12-31' AS DATE)
+            THEN 'after end of data'
+            WHEN NOT p.death_date IS NULL AND r.row_date > p.death_date
+            THEN 'after death'
+          END AS timing_problem
+        FROM (
+          SELECT
+            patient_id,
+            encounter_date,
+            encounter_type,
+            source_problem,
+            source_position,
+            copies,
+            TRY_CAST(encounter_date AS DATE) AS row_date
+          FROM (
+            SELECT
+              patient_id,
+              encounter_date,
+              encounter_type,
+              source_problem,
+              MIN(source_position) AS source_position,
+              COUNT(*) AS copies
+            FROM src_encounters
+            GROUP BY
+              patient_id,
+              encounter_date,
+              encounter_type,
+              source_problem
+          ) AS g
+        ) AS r
+        LEFT JOIN patient_base AS p
+          ON p.patient_id = r.patient_id
+      ) AS j
+    ) AS j
   ) AS c
   GROUP BY
     reason
@@ -1412,18 +1541,76 @@ WITH summary AS (
   FROM (
     SELECT
       reason,
-      COUNT(*) AS copies,
-      MIN(source_position) AS source_position,
+      copies,
+      source_position,
       patient_id IS NULL OR NOT source_problem IS NULL AS counted_whole
-    FROM diagnoses_judged
-    GROUP BY
-      patient_id,
-      event_date,
-      code_system,
-      code,
-      source,
-      source_problem,
-      reason
+    FROM (
+      SELECT
+        *,
+        COALESCE(record_problem, code_problem, timing_problem, 'used') AS reason
+      FROM (
+        SELECT
+          r.*,
+          CASE
+            WHEN NOT r.source_problem IS NULL
+            THEN r.source_problem
+            WHEN p.patient_id IS NULL
+            THEN 'orphan patient'
+            WHEN r.row_date IS NULL
+            THEN 'unparseable date'
+          END AS record_problem,
+          c.problem AS code_problem,
+          CASE
+            WHEN r.row_date > CAST('2020-12-31' AS DATE)
+            THEN 'after end of data'
+            WHEN NOT p.death_date IS NULL AND r.row_date > p.death_date
+            THEN 'after death'
+          END AS timing_problem
+        FROM (
+          SELECT
+            patient_id,
+            event_date,
+            code_system,
+            code,
+            source,
+            source_problem,
+            source_position,
+            copies,
+            TRY_CAST(event_date AS DATE) AS row_date,
+            'diagnoses' AS source_table,
+            CAST(code_system AS TEXT) AS raw_system,
+            CAST(code AS TEXT) AS raw_code,
+            CAST(source AS TEXT) AS raw_source,
+            CAST(NULL AS INT) AS duration_days
+          FROM (
+            SELECT
+              patient_id,
+              event_date,
+              code_system,
+              code,
+              source,
+              source_problem,
+              MIN(source_position) AS source_position,
+              COUNT(*) AS copies
+            FROM src_diagnoses
+            GROUP BY
+              patient_id,
+              event_date,
+              code_system,
+              code,
+              source,
+              source_problem
+          ) AS g
+        ) AS r
+        LEFT JOIN patient_base AS p
+          ON p.patient_id = r.patient_id
+        LEFT JOIN distinct_codes AS c
+          ON r.source_table = c.source_table
+          AND r.raw_system IS NOT DISTINCT FROM c.raw_system
+          AND r.raw_code IS NOT DISTINCT FROM c.raw_code
+          AND r.raw_source IS NOT DISTINCT FROM c.raw_source
+      ) AS j
+    ) AS j
   ) AS c
   GROUP BY
     reason
@@ -1437,17 +1624,73 @@ WITH summary AS (
   FROM (
     SELECT
       reason,
-      COUNT(*) AS copies,
-      MIN(source_position) AS source_position,
+      copies,
+      source_position,
       patient_id IS NULL OR NOT source_problem IS NULL AS counted_whole
-    FROM prescriptions_judged
-    GROUP BY
-      patient_id,
-      start_date,
-      atc,
-      stop_date,
-      source_problem,
-      reason
+    FROM (
+      SELECT
+        *,
+        COALESCE(record_problem, code_problem, timing_problem, 'used') AS reason
+      FROM (
+        SELECT
+          r.*,
+          CASE
+            WHEN NOT r.source_problem IS NULL
+            THEN r.source_problem
+            WHEN p.patient_id IS NULL
+            THEN 'orphan patient'
+            WHEN r.row_date IS NULL
+            THEN 'unparseable date'
+          END AS record_problem,
+          c.problem AS code_problem,
+          CASE
+            WHEN r.row_date > CAST('2020-12-31' AS DATE)
+            THEN 'after end of data'
+            WHEN NOT p.death_date IS NULL AND r.row_date > p.death_date
+            THEN 'after death'
+          END AS timing_problem
+        FROM (
+          SELECT
+            patient_id,
+            start_date,
+            atc,
+            stop_date,
+            source_problem,
+            source_position,
+            copies,
+            TRY_CAST(start_date AS DATE) AS row_date,
+            'prescriptions' AS source_table,
+            CAST(NULL AS TEXT) AS raw_system,
+            CAST(atc AS TEXT) AS raw_code,
+            CAST(NULL AS TEXT) AS raw_source,
+            CAST(DATE_DIFF('DAY', TRY_CAST(start_date AS DATE), TRY_CAST(stop_date AS DATE)) + 1 AS INT) AS duration_days
+          FROM (
+            SELECT
+              patient_id,
+              start_date,
+              atc,
+              stop_date,
+              source_problem,
+              MIN(source_position) AS source_position,
+              COUNT(*) AS copies
+            FROM src_prescriptions
+            GROUP BY
+              patient_id,
+              start_date,
+              atc,
+              stop_date,
+              source_problem
+          ) AS g
+        ) AS r
+        LEFT JOIN patient_base AS p
+          ON p.patient_id = r.patient_id
+        LEFT JOIN distinct_codes AS c
+          ON r.source_table = c.source_table
+          AND r.raw_system IS NOT DISTINCT FROM c.raw_system
+          AND r.raw_code IS NOT DISTINCT FROM c.raw_code
+          AND r.raw_source IS NOT DISTINCT FROM c.raw_source
+      ) AS j
+    ) AS j
   ) AS c
   GROUP BY
     reason
