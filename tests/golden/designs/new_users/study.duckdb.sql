@@ -11,16 +11,7 @@
 -- stage patients_judged [view]: every patients row judged once: used, or the reason the quality log gives
 -- reads: src_patients
 SELECT
-  patient_id,
-  sex,
-  death_date,
-  birth_date,
-  birth_year,
-  practice_id,
-  registration_date,
-  deregistration_date,
-  source_problem,
-  source_position,
+  *,
   CASE
     WHEN NOT source_problem IS NULL
     THEN source_problem
@@ -47,7 +38,20 @@ SELECT
     THEN 'unparseable date'
     ELSE 'used'
   END AS reason
-FROM src_patients;
+FROM (
+  SELECT
+    patient_id,
+    sex,
+    death_date,
+    birth_date,
+    birth_year,
+    practice_id,
+    registration_date,
+    deregistration_date,
+    source_problem,
+    source_position
+  FROM src_patients
+) AS r;
 
 -- stage patient_base [table]: one typed row per patient: birth date (1 July when only the year is known), sex; a patient with a written but unreadable date is left out
 -- reads: patients_judged
@@ -842,7 +846,7 @@ SELECT
 FROM src_prescriptions;
 
 -- stage quality_log [table]: every extract row: used, or set aside with the first reason that applies
--- reads: diagnoses_judged, encounters_judged, patients_judged, prescriptions_judged
+-- reads: distinct_codes, patient_base, src_diagnoses, src_encounters, src_patients, src_prescriptions
 WITH summary AS (
   SELECT
     reason,
@@ -853,21 +857,64 @@ WITH summary AS (
   FROM (
     SELECT
       reason,
-      COUNT(*) AS copies,
-      MIN(source_position) AS source_position,
+      copies,
+      source_position,
       patient_id IS NULL OR NOT source_problem IS NULL AS counted_whole
-    FROM patients_judged
-    GROUP BY
-      patient_id,
-      sex,
-      death_date,
-      birth_date,
-      birth_year,
-      practice_id,
-      registration_date,
-      deregistration_date,
-      source_problem,
-      reason
+    FROM (
+      SELECT
+        *,
+        CASE
+          WHEN NOT source_problem IS NULL
+          THEN source_problem
+          WHEN patient_id IS NULL
+          THEN 'missing patient_id'
+          WHEN (
+            (
+              COALESCE(TRIM(CAST(birth_date AS TEXT)), '') <> ''
+              AND TRY_CAST(birth_date AS DATE) IS NULL
+            )
+            OR (
+              COALESCE(TRIM(CAST(death_date AS TEXT)), '') <> ''
+              AND TRY_CAST(death_date AS DATE) IS NULL
+            )
+            OR (
+              COALESCE(TRIM(CAST(registration_date AS TEXT)), '') <> ''
+              AND TRY_CAST(registration_date AS DATE) IS NULL
+            )
+            OR (
+              COALESCE(TRIM(CAST(deregistration_date AS TEXT)), '') <> ''
+              AND TRY_CAST(deregistration_date AS DATE) IS NULL
+            )
+          )
+          THEN 'unparseable date'
+          ELSE 'used'
+        END AS reason
+      FROM (
+        SELECT
+          patient_id,
+          sex,
+          death_date,
+          birth_date,
+          birth_year,
+          practice_id,
+          registration_date,
+          deregistration_date,
+          source_problem,
+          MIN(source_position) AS source_position,
+          COUNT(*) AS copies
+        FROM src_patients
+        GROUP BY
+          patient_id,
+          sex,
+          death_date,
+          birth_date,
+          birth_year,
+          practice_id,
+          registration_date,
+          deregistration_date,
+          source_problem
+      ) AS r
+    ) AS j
   ) AS c
   GROUP BY
     reason
@@ -881,16 +928,59 @@ WITH summary AS (
   FROM (
     SELECT
       reason,
-      COUNT(*) AS copies,
-      MIN(source_position) AS source_position,
+      copies,
+      source_position,
       patient_id IS NULL OR NOT source_problem IS NULL AS counted_whole
-    FROM encounters_judged
-    GROUP BY
-      patient_id,
-      encounter_date,
-      encounter_type,
-      source_problem,
-      reason
+    FROM (
+      SELECT
+        *,
+        COALESCE(record_problem, timing_problem, 'used') AS reason
+      FROM (
+        SELECT
+          r.*,
+          CASE
+            WHEN NOT r.source_problem IS NULL
+            THEN r.source_problem
+            WHEN p.patient_id IS NULL
+            THEN 'orphan patient'
+            WHEN r.row_date IS NULL
+            THEN 'unparseable date'
+          END AS record_problem,
+          CASE
+            WHEN r.row_date > CAST('2019-12-31' AS DATE)
+            THEN 'after end of data'
+            WHEN NOT p.death_date IS NULL AND r.row_date > p.death_date
+            THEN 'after death'
+          END AS timing_problem
+        FROM (
+          SELECT
+            patient_id,
+            encounter_date,
+            encounter_type,
+            source_problem,
+            source_position,
+            copies,
+            TRY_CAST(encounter_date AS DATE) AS row_date
+          FROM (
+            SELECT
+              patient_id,
+              encounter_date,
+              encounter_type,
+              source_problem,
+              MIN(source_position) AS source_position,
+              COUNT(*) AS copies
+            FROM src_encounters
+            GROUP BY
+              patient_id,
+              encounter_date,
+              encounter_type,
+              source_problem
+          ) AS g
+        ) AS r
+        LEFT JOIN patient_base AS p
+          ON p.patient_id = r.patient_id
+      ) AS j
+    ) AS j
   ) AS c
   GROUP BY
     reason
@@ -904,18 +994,76 @@ WITH summary AS (
   FROM (
     SELECT
       reason,
-      COUNT(*) AS copies,
-      MIN(source_position) AS source_position,
+      copies,
+      source_position,
       patient_id IS NULL OR NOT source_problem IS NULL AS counted_whole
-    FROM diagnoses_judged
-    GROUP BY
-      patient_id,
-      event_date,
-      code_system,
-      code,
-      source,
-      source_problem,
-      reason
+    FROM (
+      SELECT
+        *,
+        COALESCE(record_problem, code_problem, timing_problem, 'used') AS reason
+      FROM (
+        SELECT
+          r.*,
+          CASE
+            WHEN NOT r.source_problem IS NULL
+            THEN r.source_problem
+            WHEN p.patient_id IS NULL
+            THEN 'orphan patient'
+            WHEN r.row_date IS NULL
+            THEN 'unparseable date'
+          END AS record_problem,
+          c.problem AS code_problem,
+          CASE
+            WHEN r.row_date > CAST('2019-12-31' AS DATE)
+            THEN 'after end of data'
+            WHEN NOT p.death_date IS NULL AND r.row_date > p.death_date
+            THEN 'after death'
+          END AS timing_problem
+        FROM (
+          SELECT
+            patient_id,
+            event_date,
+            code_system,
+            code,
+            source,
+            source_problem,
+            source_position,
+            copies,
+            TRY_CAST(event_date AS DATE) AS row_date,
+            'diagnoses' AS source_table,
+            CAST(code_system AS TEXT) AS raw_system,
+            CAST(code AS TEXT) AS raw_code,
+            CAST(source AS TEXT) AS raw_source,
+            CAST(NULL AS INT) AS duration_days
+          FROM (
+            SELECT
+              patient_id,
+              event_date,
+              code_system,
+              code,
+              source,
+              source_problem,
+              MIN(source_position) AS source_position,
+              COUNT(*) AS copies
+            FROM src_diagnoses
+            GROUP BY
+              patient_id,
+              event_date,
+              code_system,
+              code,
+              source,
+              source_problem
+          ) AS g
+        ) AS r
+        LEFT JOIN patient_base AS p
+          ON p.patient_id = r.patient_id
+        LEFT JOIN distinct_codes AS c
+          ON r.source_table = c.source_table
+          AND r.raw_system IS NOT DISTINCT FROM c.raw_system
+          AND r.raw_code IS NOT DISTINCT FROM c.raw_code
+          AND r.raw_source IS NOT DISTINCT FROM c.raw_source
+      ) AS j
+    ) AS j
   ) AS c
   GROUP BY
     reason
@@ -929,17 +1077,73 @@ WITH summary AS (
   FROM (
     SELECT
       reason,
-      COUNT(*) AS copies,
-      MIN(source_position) AS source_position,
+      copies,
+      source_position,
       patient_id IS NULL OR NOT source_problem IS NULL AS counted_whole
-    FROM prescriptions_judged
-    GROUP BY
-      patient_id,
-      start_date,
-      atc,
-      stop_date,
-      source_problem,
-      reason
+    FROM (
+      SELECT
+        *,
+        COALESCE(record_problem, code_problem, timing_problem, 'used') AS reason
+      FROM (
+        SELECT
+          r.*,
+          CASE
+            WHEN NOT r.source_problem IS NULL
+            THEN r.source_problem
+            WHEN p.patient_id IS NULL
+            THEN 'orphan patient'
+            WHEN r.row_date IS NULL
+            THEN 'unparseable date'
+          END AS record_problem,
+          c.problem AS code_problem,
+          CASE
+            WHEN r.row_date > CAST('2019-12-31' AS DATE)
+            THEN 'after end of data'
+            WHEN NOT p.death_date IS NULL AND r.row_date > p.death_date
+            THEN 'after death'
+          END AS timing_problem
+        FROM (
+          SELECT
+            patient_id,
+            start_date,
+            atc,
+            stop_date,
+            source_problem,
+            source_position,
+            copies,
+            TRY_CAST(start_date AS DATE) AS row_date,
+            'prescriptions' AS source_table,
+            CAST(NULL AS TEXT) AS raw_system,
+            CAST(atc AS TEXT) AS raw_code,
+            CAST(NULL AS TEXT) AS raw_source,
+            CAST(DATE_DIFF('DAY', TRY_CAST(start_date AS DATE), TRY_CAST(stop_date AS DATE)) + 1 AS INT) AS duration_days
+          FROM (
+            SELECT
+              patient_id,
+              start_date,
+              atc,
+              stop_date,
+              source_problem,
+              MIN(source_position) AS source_position,
+              COUNT(*) AS copies
+            FROM src_prescriptions
+            GROUP BY
+              patient_id,
+              start_date,
+              atc,
+              stop_date,
+              source_problem
+          ) AS g
+        ) AS r
+        LEFT JOIN patient_base AS p
+          ON p.patient_id = r.patient_id
+        LEFT JOIN distinct_codes AS c
+          ON r.source_table = c.source_table
+          AND r.raw_system IS NOT DISTINCT FROM c.raw_system
+          AND r.raw_code IS NOT DISTINCT FROM c.raw_code
+          AND r.raw_source IS NOT DISTINCT FROM c.raw_source
+      ) AS j
+    ) AS j
   ) AS c
   GROUP BY
     reason
