@@ -63,6 +63,8 @@ def check_row_accounting(quality: pa.Table, rows_read: pa.Table) -> dict[str, di
         if counts["used"] + counts["set_aside"] != counts["read"]:
             raise EngineError(
                 f"row accounting failed for {table}: read {counts['read']:,}, used "
-                f"{counts['used']:,}, set aside {counts['set_aside']:,}"
+                f"{counts['used']:,}, set aside {counts['set_aside']:,}",
+                code="row-accounting-failed",
+                where="stage quality_log",
             )
     return summary

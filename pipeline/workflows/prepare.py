@@ -68,7 +68,10 @@ def make_engine(
             or ``--spark-conf`` setting.
     """
     if options.engine not in ENGINES:
-        raise EngineError(f"--engine must be one of {', '.join(ENGINES)}, not '{options.engine}'")
+        raise EngineError(
+            f"--engine must be one of {', '.join(ENGINES)}, not '{options.engine}'",
+            code="unknown-engine",
+        )
     if options.engine == "spark":
         spark = spark or SparkSettings()
         notes = notes if notes is not None else []
@@ -93,7 +96,10 @@ def make_engine(
             checkpoint_folder=spark.checkpoint_folder,
         )
     if options.spark_master or options.spark_conf:
-        raise EngineError("--spark-master and --spark-conf need --engine spark")
+        raise EngineError(
+            "--spark-master and --spark-conf need --engine spark",
+            code="spark-options-without-spark",
+        )
     source = "option" if options.memory_limit else "study"
     return DuckDBEngine(threads=threads, memory_limit=memory_limit, memory_limit_from=source)
 
@@ -157,7 +163,8 @@ def prepare(
     )
     if isinstance(engine, SparkEngine) and database_source(extract) is not None:
         raise EngineError(
-            "a Spark build reads files; a database extract can be built with --engine duckdb"
+            "a Spark build reads files; a database extract can be built with --engine duckdb",
+            code="database-on-spark",
         )
     return Prepared(loaded, plan, extract, engine, threads, out, notes)
 
