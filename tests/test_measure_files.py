@@ -183,6 +183,22 @@ def test_measure_defined_twice_names_both_files(tmp_path: Path) -> None:
     ) in output
 
 
+def test_a_loinc_code_names_one_measure(tmp_path: Path) -> None:
+    # FHIR observations and local lab tables are read by LOINC code, so a second measure
+    # claiming a code would make the reading depend on which file sorts last.
+    (tmp_path / "a").mkdir()
+    (tmp_path / "b").mkdir()
+    (tmp_path / "a" / "urate.yaml").write_text(URATE, encoding="utf-8")
+    twin = URATE.replace("measure: urate", "measure: uric_acid")
+    (tmp_path / "b" / "uric_acid.yaml").write_text(twin, encoding="utf-8")
+    code, output = _check(str(tmp_path / "a"), str(tmp_path / "b"))
+    assert code == 1
+    assert (
+        f"{tmp_path / 'b' / 'uric_acid.yaml'}:5:9 [duplicate-code] LOINC code 3084-1 is already "
+        f"the code of measure 'urate' ({tmp_path / 'a' / 'urate.yaml'})"
+    ) in output
+
+
 def test_a_study_cannot_redefine_a_shipped_measure(tmp_path: Path) -> None:
     study = _urate_study(tmp_path)
     hba1c = URATE.replace("measure: urate", "measure: hba1c")

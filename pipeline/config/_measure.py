@@ -248,6 +248,25 @@ def load_measures(files: Iterable[Path], base: MeasureRegistry | None = None) ->
                 )
             )
             continue
+        claimed = {
+            code: other
+            for other, known in measures.items()
+            for system, code in known.codes
+            if system == "LOINC"
+        }
+        taken = [c for s, c in measure.codes if s == "LOINC" and c in claimed]
+        if taken:
+            # A LOINC code names one measure: FHIR observations and local lab tables are read
+            # by it, and two claimants would make the reading depend on file order.
+            problems.append(
+                load_yaml(file).problem(
+                    ("codes", "LOINC"),
+                    "duplicate-code",
+                    f"LOINC code {taken[0]} is already the code of measure '{claimed[taken[0]]}' "
+                    f"({defined_in[claimed[taken[0]]]})",
+                )
+            )
+            continue
         measures[measure.name] = measure
         defined_in[measure.name] = file
     if problems:
