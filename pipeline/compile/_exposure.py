@@ -30,7 +30,7 @@ from pipeline.config._exposure import Exposure
 _EXPOSURE_START = """
 WITH starts AS (
   SELECT e.patient_id, MIN(e.day) AS first_day
-  FROM evidence_events AS e
+  FROM :events AS e
   JOIN :groups ON g.evidence = e.evidence
   WHERE e.event_date BETWEEN :start AND :end
   GROUP BY e.patient_id
@@ -41,7 +41,7 @@ WITH starts AS (
     e.day,
     s.first_day,
     g.exposure_group
-  FROM evidence_events AS e
+  FROM :events AS e
   JOIN :groups ON g.evidence = e.evidence
   JOIN starts AS s ON s.patient_id = e.patient_id
   WHERE e.day BETWEEN s.first_day - :washout AND s.first_day
@@ -77,6 +77,7 @@ def exposure_index_stage(study: Study) -> Stage:
         names.INDEX_DATES,
         query(
             _EXPOSURE_START,
+            events=exp.to_table(names.EVIDENCE_EVENTS),
             groups=_groups_table(exposure),
             start=start,
             end=end,

@@ -254,8 +254,9 @@ def matched_outcome(
         matched = pl.read_parquet(output_dir / "matched.parquet", columns=["role", "patient_id"])
         cases = set(matched.filter(pl.col("role") == "case")["patient_id"].cast(pl.String))
         for o in study.outcomes:
+            columns = names.outcome_columns(o)
             incident = cohort.filter(
-                pl.col(f"at_risk_{o}") & pl.col(f"incident_{o}").fill_null(value=False)
+                pl.col(columns.at_risk) & pl.col(columns.incident).fill_null(value=False)
             )
             if set(incident["patient_id"].cast(pl.String)) == cases:
                 return o
