@@ -288,3 +288,18 @@ class Condition(Model):
     def references(self) -> tuple[str, ...]:
         """Other conditions this one uses as evidence, sorted."""
         return tuple(sorted({e.condition for e in self.evidence.values() if e.condition}))
+
+
+def find_cycle(start: str, catalog: dict[str, Condition]) -> list[str] | None:
+    """The chain from ``start`` back to itself through condition references, if any."""
+    stack: list[tuple[str, list[str]]] = [(start, [start])]
+    seen: set[str] = set()
+    while stack:
+        name, chain = stack.pop()
+        for ref in catalog[name].references:
+            if ref == start:
+                return [*chain, start]
+            if ref not in seen:
+                seen.add(ref)
+                stack.append((ref, [*chain, ref]))
+    return None

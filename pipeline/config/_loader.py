@@ -9,7 +9,7 @@ from pathlib import Path
 from pydantic import ValidationError
 
 from pipeline.config._codelist import HEADER_SUFFIX
-from pipeline.config._condition import Condition, DiagnosisEvidence, Evidence, Rule
+from pipeline.config._condition import Condition, DiagnosisEvidence, Evidence, Rule, find_cycle
 from pipeline.config._document import did_you_mean, validate_document
 from pipeline.config._exposure import exposure_problems
 from pipeline.config._library import library_conditions
@@ -120,7 +120,7 @@ def _check_references(catalog: dict[str, Condition], files: dict[str, Path]) -> 
         return problems
     reported: set[frozenset[str]] = set()
     for start in sorted(catalog):
-        cycle = _find_cycle(start, catalog)
+        cycle = find_cycle(start, catalog)
         if cycle and frozenset(cycle) not in reported:
             reported.add(frozenset(cycle))
             doc = load_yaml(files[start])
@@ -132,21 +132,6 @@ def _check_references(catalog: dict[str, Condition], files: dict[str, Path]) -> 
                 )
             )
     return problems
-
-
-def _find_cycle(start: str, catalog: dict[str, Condition]) -> list[str] | None:
-    """The chain from ``start`` back to itself through condition references, if any."""
-    stack: list[tuple[str, list[str]]] = [(start, [start])]
-    seen: set[str] = set()
-    while stack:
-        name, chain = stack.pop()
-        for ref in catalog[name].references:
-            if ref == start:
-                return [*chain, start]
-            if ref not in seen:
-                seen.add(ref)
-                stack.append((ref, [*chain, ref]))
-    return None
 
 
 # Parsed documents standing in for files (resolved path -> document): a sweep's variant is
