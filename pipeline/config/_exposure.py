@@ -21,9 +21,6 @@ from pipeline.config._condition import Evidence
 from pipeline.config._yaml import LocatedDocument
 from pipeline.errors import Problem
 
-# Analysis-table columns the section adds; no covariate may take their names.
-EXPOSURE_COLUMNS = ("exposure",)
-
 
 class Episodes(Model):
     """How prescriptions of a group join into treatment episodes (``episodes.parquet``).
@@ -90,15 +87,16 @@ def exposure_problems(
     doc: LocatedDocument,
     exposure: Exposure | None,
     strategy: str,
-    covariates: tuple[str, ...],
 ) -> list[Problem]:
     """Refuse an exposure section and an index strategy that do not go together.
+
+    The columns the section adds are checked against every other generated column by
+    :func:`pipeline.config._columns.column_clashes`.
 
     Args:
         doc: The study file, to locate each problem.
         exposure: The study's section (None when absent).
         strategy: The study's index strategy key.
-        covariates: The study's covariate names (none may be ``exposure``).
     """
     problems: list[Problem] = []
     if exposure is None and strategy == "exposure_start":
@@ -119,20 +117,6 @@ def exposure_problems(
                 f"{strategy}); new users are dated on their first treatment",
             )
         )
-    if exposure is not None:
-        taken = set(EXPOSURE_COLUMNS)
-        if exposure.as_treated:
-            taken |= {f"{c}_as_treated" for c in ("followup_end", "followup_days", "end_reason")}
-        problems += [
-            doc.problem(
-                ("covariates", name),
-                "duplicate-column",
-                f"covariate '{name}' would share its name with a column the exposure section "
-                "adds to the cohort",
-            )
-            for name in covariates
-            if name in taken
-        ]
     return problems
 
 

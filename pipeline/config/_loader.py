@@ -9,6 +9,7 @@ from pathlib import Path
 from pydantic import ValidationError
 
 from pipeline.config._codelist import HEADER_SUFFIX
+from pipeline.config._columns import column_clashes
 from pipeline.config._condition import Condition, DiagnosisEvidence, Evidence, Rule, find_cycle
 from pipeline.config._document import did_you_mean, validate_document
 from pipeline.config._exposure import exposure_problems
@@ -278,30 +279,6 @@ def _condition_references(study: Study) -> list[tuple[PathKey, str, str]]:
     return found
 
 
-def _duplicate_columns(doc: LocatedDocument, study: Study) -> list[Problem]:
-    taken = {"followup_end", "followup_days", "end_reason"} | {
-        f"{prefix}_{outcome}"
-        for outcome in study.outcomes.conditions
-        for prefix in ("prevalent", "at_risk", "incident", "onset", "days_to")
-    }
-    problems = []
-    for name, cov in study.covariates.items():
-        columns = [name, f"{name}_date", f"{name}_derived"] if cov.latest else [name]
-        # (the _derived column exists only for derivable measures; reserving it always is safe)
-        clash = [c for c in columns if c in taken]
-        if clash:
-            problems.append(
-                doc.problem(
-                    ("covariates", name),
-                    "duplicate-column",
-                    f"covariate '{name}' makes column(s) {', '.join(clash)}, which the analysis "
-                    "table already has",
-                )
-            )
-        taken.update(columns)
-    return problems
-
-
 def _apply_changes(doc: LocatedDocument, study: Study, catalog: Catalog) -> Catalog:
     """The catalog with the study's rule-window changes applied (files stay as they are)."""
     if not study.definition_changes:
@@ -437,14 +414,12 @@ def load_study(file: Path, documents: Documents | None = None) -> LoadedStudy:
         for path, what, name in _condition_references(study)
         if name not in catalog.conditions
     ]
-    problems += _duplicate_columns(doc, study)
+    problems += column_clashes(doc, study)
     problems += _study_lists(doc, study)
     ages = [c.age.between[0] for c in study.eligibility if c.age is not None]
     problems += persontime_problems(doc, study.persontime, ages)
     problems += matching_problems(doc, study.matching, study.outcomes.conditions)
-    problems += exposure_problems(
-        doc, study.exposure, study.index.strategy, tuple(study.covariates)
-    )
+    problems += exposure_problems(doc, study.exposure, study.index.strategy)
     if problems:
         raise ConfigError(problems)
     study, rates = study_reference_rates(doc, study, base)
