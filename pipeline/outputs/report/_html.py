@@ -13,6 +13,7 @@ from typing import Any
 
 import polars as pl
 
+from pipeline.outputs._matched import MATCHING_STEPS
 from pipeline.outputs.report._codes import codes_section
 from pipeline.outputs.report._html_cells import n_cell as _n
 from pipeline.outputs.report._html_cells import table as _table
@@ -30,6 +31,7 @@ from pipeline.outputs.report._svg import (
     Bar,
     Curve,
     FlowStep,
+    flow_side,
     flow_title,
     render_bars,
     render_flow,
@@ -154,10 +156,12 @@ def _flow(flow: pl.DataFrame, threshold: int) -> str:
             r["remaining"],
             removes=r["step"] not in DEFINING_STEPS,
             title=flow_title(r["step"]),
+            side=flow_side(r["step"]),
         )
         for r in rows
     ]
-    return render_flow(steps) + (
+    sets = [i for i, r in enumerate(rows) if r["step"] in MATCHING_STEPS]
+    return render_flow(steps, cohort=sets[0] - 1 if sets else None) + (
         f'<p class="note">Counts below {threshold} are shown as "&lt;{threshold}". Because each '
         "box's count is the previous count minus the exclusions, a hidden exclusion would follow "
         "by subtraction; so in each step where one of the three numbers (before, excluded, "

@@ -25,6 +25,7 @@ __all__ = [
     "Bar",
     "Curve",
     "FlowStep",
+    "flow_side",
     "flow_title",
     "render_bars",
     "render_curves",
@@ -46,18 +47,45 @@ STEP_TITLES = {
     "age": "In the age range",
     "history": "Enough history before index",
     "registration": "Registered long enough",
+    "encounters": "Enough encounters",
     "practice": "In the chosen practices",
+    "not_prevalent": "Free of the condition at index",
+    "no_prior_evidence": "Without the evidence before index",
     "in_contact_at_index": "In contact at index",
     "at_risk_any_outcome": "At risk of an outcome",
     "complete_followup": "Complete follow-up",
+    # a new-user study's steps (compile/_exposure.py), which come before the study's own
+    "new_user": "New users: no treatment in the washout",
+    "one_exposure_group": "Starting one treatment group",
+    # a matched study's lines after the cohort (outputs/_matched.py); they count sets
+    "match_cases": "Matched sets, one per incident case",
+    "match_any_control": "Sets with at least one control",
+    "match_all_controls": "Sets with every control",
 }
 # Lines that remove nobody by definition: drawn as a box without a side box.
 DEFINING_STEPS = ("patients_in_extract", "source_population")
+# What a side box counts when it is not patients excluded: a matched study's lines count sets.
+SIDE_TITLES = {
+    "match_cases": "Not a case:",
+    "match_any_control": "No control found:",
+    "match_all_controls": "Fewer controls:",
+}
 
 
 def flow_title(step: str) -> str:
     """The label of a flow-diagram box after ``step`` (its name, spelled out, when unknown)."""
     return STEP_TITLES.get(step, step.replace("_", " ").capitalize())
+
+
+def flow_side(step: str) -> str:
+    """The label of the side box of ``step``: what its removed count counts."""
+    return SIDE_TITLES.get(step, "Excluded:")
+
+
+def _side_count_x(label: str) -> float:
+    # The count follows its label: about 8.7 px a character of the side title's bold 13 px
+    # font (measured by eye on "Excluded:", whose count has always stood at +92).
+    return _SIDE_X + 14 + round(8.7 * len(label))
 
 
 @dataclass(frozen=True)
@@ -73,6 +101,7 @@ class FlowStep:
         removes: Whether the step is drawn with a side box (false for a step that removes
             nobody by definition: the extract, the source population).
         title: The box's label (e.g. "Alive at index"); the step name when empty.
+        side: The side box's label, before its count.
     """
 
     step: str
@@ -82,6 +111,7 @@ class FlowStep:
     remaining: str
     removes: bool
     title: str = ""
+    side: str = "Excluded:"
 
 
 def _text(x: float, y: float, content: str, cls: str, extra: str = "") -> str:
@@ -106,12 +136,16 @@ def _main_box(y: float, title: str, lines: list[str], count: tuple[str, str, str
     return "".join(parts)
 
 
-def render_flow(steps: Sequence[FlowStep], *, final_label: str = "Analysis cohort") -> str:
+def render_flow(
+    steps: Sequence[FlowStep], *, final_label: str = "Analysis cohort", cohort: int | None = None
+) -> str:
     """Draw the patient flow: a column of remaining counts with exclusions to the side.
 
     Args:
         steps: The attrition steps in order, counts already suppressed.
-        final_label: Title of the last box.
+        final_label: Title of the box of the analysis cohort.
+        cohort: Position of the step whose box is the analysis cohort; the last by default (a
+            matched study's set lines come after it).
 
     Returns:
         An ``<svg>`` element.
@@ -119,6 +153,7 @@ def render_flow(steps: Sequence[FlowStep], *, final_label: str = "Analysis cohor
     parts: list[str] = []
     y = 10.0
     centre = _MAIN_X + _MAIN_W / 2
+    cohort = len(steps) - 1 if cohort is None else cohort
     for i, s in enumerate(steps):
         last = i == len(steps) - 1
         if i == 0 and s.removes:
@@ -132,14 +167,16 @@ def render_flow(steps: Sequence[FlowStep], *, final_label: str = "Analysis cohor
                 f'<path d="M{centre:g} {side_y + side_h / 2:g} H{_SIDE_X}" class="link"/>'
                 f'<rect x="{_SIDE_X}" y="{side_y:g}" width="{_SIDE_W}" height="{side_h:g}" '
                 'rx="6" class="side"/>'
-                + _text(_SIDE_X + 14, side_y + 21, "Excluded:", "side-title")
-                + _count(_SIDE_X + 92, side_y + 21, s.removed, s.step, "removed", "side-count")
+                + _text(_SIDE_X + 14, side_y + 21, s.side, "side-title")
+                + _count(
+                    _side_count_x(s.side), side_y + 21, s.removed, s.step, "removed", "side-count"
+                )
                 + "".join(
                     _text(_SIDE_X + 14, side_y + 40 + _LINE * j, line, "box-note")
                     for j, line in enumerate(lines)
                 )
             )
-        title = final_label if last else (s.title or s.step)
+        title = final_label if i == cohort else (s.title or s.step)
         note = textwrap.wrap(s.description, 40) if i > 0 and not s.removes else []
         parts.append(_main_box(y, title, note, (s.remaining, s.step, "remaining")))
         height = 52 + _LINE * len(note)
