@@ -20,6 +20,7 @@ from pipeline import BuildOptions, build_study, explain_patient, plan_study
 from pipeline.config import load_study
 from pipeline.config._explain_study import explain_study
 from pipeline.errors import ConfigError
+from pipeline.outputs.report import write_report
 
 from .helpers import require
 
@@ -228,3 +229,17 @@ def test_spark_writes_the_same_files_for_the_example_study(tmp_path: Path) -> No
     names = ("cohort.parquet", "population.parquet", "attrition.csv", "dictionary.csv")
     for name in (*names, "episodes.parquet"):
         assert (outs["spark"] / name).read_bytes() == (outs["duckdb"] / name).read_bytes(), name
+
+
+def test_the_report_has_table_one_by_exposure_group(built: Path) -> None:
+    # the fixture's cohort (expected_cohort.csv): 3 dpp4 (NU-05, NU-10, NU-12) and 3 sglt2
+    # (NU-01, NU-03, NU-13); every group is below the threshold of 5, so hidden
+    write_report(built)
+    text = (built / "summary" / "table_one_by_exposure.csv").read_text(encoding="utf-8")
+    rows = list(csv.DictReader(text.splitlines()))
+    patients = {r["group"]: r["n"] for r in rows if r["variable"] == "patients"}
+    assert patients == {"overall": "6", "exposure=dpp4": "<5", "exposure=sglt2": "<5"}
+    assert {r["by"] for r in rows} == {"exposure"}
+    page = (built / "report.html").read_text(encoding="utf-8")
+    assert "<h3>By exposure group</h3>" in page
+    assert "New users: no treatment in the washout" in page  # the flow's words for the step

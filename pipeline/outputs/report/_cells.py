@@ -11,6 +11,9 @@ split into atoms no released count cuts through:
 - a *level atom* is an outcome atom crossed with the level of one Table 1 variable (its value,
   or ``non-missing`` for numeric variables, or ``missing``).
 
+A column a Table 1 is grouped by other than an outcome (a new-user study's ``exposure``) is
+part of the outcome atoms, like a state, so a count can describe its group and a level.
+
 A released count is the sum of the atoms matching its description, and each outcome atom is
 the sum of its level atoms for every variable. These relations imply every linear identity
 between the released counts that holds because of what they count. The atoms are every
@@ -107,29 +110,42 @@ class Atoms:
         return out
 
 
-def cohort_atoms(cohort: pl.DataFrame, outcomes: Sequence[str], variables: Iterable[str]) -> Atoms:
+def cohort_atoms(
+    cohort: pl.DataFrame,
+    outcomes: Sequence[str],
+    variables: Iterable[str],
+    grouping: Sequence[str] = (),
+) -> Atoms:
     """Split the cohort into atoms (see the module docstring).
 
     Args:
         cohort: The analysis table.
         outcomes: Outcome names ``X`` (columns ``incident_X``, ``prevalent_X``, ``at_risk_X``).
         variables: Table 1 variables other than ``prevalent_X`` of an outcome (those are outcome
-            states already).
+            states already) and other than ``grouping``.
+        grouping: Columns that split the cohort like an outcome's state, because a Table 1 is
+            grouped by them (a new-user study's ``exposure``): a count can then describe a
+            group and a level at once. Labelled like a variable's levels (``missing`` for null).
     """
-    states = tuple(f"{p}|{o}" for o in outcomes for p in ("inc", "prev", "at"))
+    states = tuple(f"{p}|{o}" for o in outcomes for p in ("inc", "prev", "at")) + tuple(grouping)
     columns = {
         "inc": names.INCIDENT_PREFIX,
         "prev": names.PREVALENT_PREFIX,
         "at": names.AT_RISK_PREFIX,
     }
     labelled = cohort.select(
-        *(_state_label(columns[s.split("|")[0]] + s.split("|")[1]).alias(s) for s in states),
+        *(
+            _state_label(columns[s.split("|")[0]] + s.split("|")[1]).alias(s)
+            for s in states[: 3 * len(outcomes)]
+        ),
+        *(_level_label(cohort, g).alias(g) for g in grouping),
         *(_level_label(cohort, v).alias(f"level|{v}") for v in variables),
     )
     counted = {tuple(r[:-1]): int(r[-1]) for r in labelled.group_by(list(states)).len().iter_rows()}
-    per_outcome = [  # the (incident, prevalent, at risk) states each outcome takes
-        sorted({state[i : i + 3] for state in counted}) for i in range(0, len(states), 3)
-    ]
+    # the (incident, prevalent, at risk) states each outcome takes, then each grouping's values
+    spans = [(i, i + 3) for i in range(0, 3 * len(outcomes), 3)]
+    spans += [(i, i + 1) for i in range(3 * len(outcomes), len(states))]
+    per_outcome = [sorted({state[a:b] for state in counted}) for a, b in spans]
     outcome = {
         s: counted.get(s, 0)
         for s in (tuple(x for part in combo for x in part) for combo in product(*per_outcome))

@@ -22,6 +22,7 @@ from pipeline.outputs.report._html_rates import rates_section
 from pipeline.outputs.report._html_results import (
     curves_section,
     dependence_section,
+    exposure_table_one_section,
     incidence_section,
     table_one_section,
 )
@@ -318,7 +319,12 @@ def assemble(
     version = manifest.get("tool_version", "?")
     body = {
         "flow": _flow(summaries["flow"], t),
-        "table-one": "".join(
+        "table-one": (
+            exposure_table_one_section(summaries["table_one_by_exposure"], labels)
+            if "table_one_by_exposure" in summaries
+            else ""
+        )
+        + "".join(
             table_one_section(summaries["table_one"], o, titles.get(o, o), labels)
             for o in study.outcomes
         ),

@@ -21,7 +21,13 @@ from pipeline.outputs.report._html_cells import num as _num
 from pipeline.outputs.report._html_cells import table as _table
 from pipeline.outputs.report._svg import Curve, render_curves
 
-__all__ = ["curves_section", "dependence_section", "incidence_section", "table_one_section"]
+__all__ = [
+    "curves_section",
+    "dependence_section",
+    "exposure_table_one_section",
+    "incidence_section",
+    "table_one_section",
+]
 
 
 def _t1_cell(r: dict[str, Any] | None) -> str:
@@ -48,9 +54,41 @@ def _smd(r: dict[str, Any] | None) -> str:
 def table_one_section(frame: pl.DataFrame, outcome: str, title: str, labels: dict[str, str]) -> str:
     by = names.outcome_columns(outcome).incident
     groups = ("overall", f"{by}=false", f"{by}=true", f"{by}=null")
-    part = frame.filter(pl.col("by") == by)
-    cells = {(r["variable"], r["level"], r["group"]): r for r in part.iter_rows(named=True)}
     head = ["Characteristic", "Overall", "Not incident", "Incident", "Not at risk", "SMD"]
+    return (
+        f"<h3>By incident {escape(title)}</h3>"
+        + _t1_table(frame.filter(pl.col("by") == by), groups, head, labels)
+        + '<p class="note">SMD: standardised difference, incident against not incident (Austin '
+        "2009): the difference in means over the square root of the average of the two "
+        "variances, or for a category the difference in proportions over the square root of "
+        "the average of p(1 − p). Left empty where a statistic it uses is withheld.</p>"
+    )
+
+
+def exposure_table_one_section(frame: pl.DataFrame, labels: dict[str, str]) -> str:
+    """Table 1 of a new-user study by the exposure group started at index."""
+    groups = tuple(dict.fromkeys(frame["group"].to_list()))
+    values = [g.split("=", 1)[1] for g in groups[1:]]
+    head = ["Characteristic", "Overall", *values, "SMD"]
+    pair = (
+        f"{escape(values[0])} against {escape(values[1])}"
+        if len(values) == 2
+        else "shown for two groups only"
+    )
+    return (
+        "<h3>By exposure group</h3>"
+        + _t1_table(frame, groups, head, labels)
+        + f'<p class="note">SMD: standardised difference, {pair} (Austin 2009), computed as in '
+        "the tables by outcome. Left empty where a statistic it uses is withheld.</p>"
+    )
+
+
+def _t1_table(
+    part: pl.DataFrame, groups: Sequence[str], head: list[str], labels: dict[str, str]
+) -> str:
+    """One Table 1 as HTML: a column per group and the SMD, rows as the summary lists them."""
+    cells = {(r["variable"], r["level"], r["group"]): r for r in part.iter_rows(named=True)}
+    span = len(head)
     rows = [
         "<tr><td>Patients, n</td>"
         + "".join(_n(cells[("patients", None, g)]["n"]) for g in groups)
@@ -63,7 +101,7 @@ def table_one_section(frame: pl.DataFrame, outcome: str, title: str, labels: dic
         col = f' <span class="col">{escape(v)}</span>' if v in labels else ""
         first = cells[(v, levels[0], "overall")]
         if levels == [None]:
-            rows.append(f'<tr class="var"><td colspan="6">{label}{col}</td></tr>')
+            rows.append(f'<tr class="var"><td colspan="{span}">{label}{col}</td></tr>')
             for kind, text in (("mean", "Mean (SD)"), ("median", "Median [Q1, Q3]")):
                 rows.append(
                     f'<tr><td class="sub">{text}</td>'
@@ -79,7 +117,7 @@ def table_one_section(frame: pl.DataFrame, outcome: str, title: str, labels: dic
                 + "</tr>"
             )
         else:
-            rows.append(f'<tr class="var"><td colspan="6">{label}, n (%){col}</td></tr>')
+            rows.append(f'<tr class="var"><td colspan="{span}">{label}, n (%){col}</td></tr>')
             rows += [
                 f'<tr><td class="sub">{escape(str(lv))}</td>'
                 + "".join(_t1_cell(cells.get((v, lv, g))) for g in groups)
@@ -93,14 +131,7 @@ def table_one_section(frame: pl.DataFrame, outcome: str, title: str, labels: dic
                 + "".join(_n((cells.get((v, levels[0], g)) or {}).get("missing")) for g in groups)
                 + "<td></td></tr>"
             )
-    return (
-        f"<h3>By incident {escape(title)}</h3>"
-        + _table(head, rows)
-        + '<p class="note">SMD: standardised difference, incident against not incident (Austin '
-        "2009): the difference in means over the square root of the average of the two "
-        "variances, or for a category the difference in proportions over the square root of "
-        "the average of p(1 − p). Left empty where a statistic it uses is withheld.</p>"
-    )
+    return _table(head, rows)
 
 
 def incidence_section(frame: pl.DataFrame) -> str:

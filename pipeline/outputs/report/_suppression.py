@@ -135,8 +135,10 @@ def hidden_keys(
         relations += block.all_relations()
         known |= set(block.extra)
     prevalent = {names.prevalent_column(o) for o in outcomes}
-    variables = [v for v in baseline_variables(cohort) if v not in prevalent]
-    atoms = cohort_atoms(cohort, outcomes, variables)
+    # a new-user cohort's exposure group splits it like a state: Table 1 is grouped by it too
+    grouping = [names.EXPOSURE] if names.EXPOSURE in cohort.columns else []
+    variables = [v for v in baseline_variables(cohort) if v not in prevalent | set(grouping)]
+    atoms = cohort_atoms(cohort, outcomes, variables, grouping)
     relations += atom_relations(atoms, meanings)
     alias = aliases(atoms, meanings)
     # An unprinted count is protected when it is small, else only ties printed ones together.

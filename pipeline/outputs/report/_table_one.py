@@ -10,7 +10,7 @@ every statistic that would reveal a hidden count or describe a few patients.
 from __future__ import annotations
 
 import math
-from collections.abc import Iterable, Sequence
+from collections.abc import Callable, Iterable, Sequence
 from typing import Any
 
 import polars as pl
@@ -41,32 +41,32 @@ def _t1_key(outcome: str, variable: str, row: str, group: str) -> str:
 
 def _t1_meaning(outcome: str, variable: str, row: str, group: str) -> Spec:
     """Whom a Table 1 count counts: its group's incident state, and its variable's level."""
-    spec: list[tuple[str, str]] = []
-    if group != "overall":
-        spec.append((f"inc|{outcome}", group.rsplit("=", 1)[1]))
+    own = () if group == "overall" else ((f"inc|{outcome}", group.rsplit("=", 1)[1]),)
+    return own + _variable_meaning(variable, row)
+
+
+def _variable_meaning(variable: str, row: str) -> Spec:
+    """Whom a row of Table 1 counts, whatever the group: a prevalent state, or a level."""
     if variable.startswith(names.PREVALENT_PREFIX):
         condition = variable.removeprefix(names.PREVALENT_PREFIX)
-        spec.append((f"prev|{condition}", _STATES.get(row, "null")))
-    elif variable != "patients":
-        spec.append((variable, row))
-    return tuple(spec)
+        return ((f"prev|{condition}", _STATES.get(row, "null")),)
+    return () if variable == "patients" else ((variable, row),)
 
 
-def table_one_blocks(cohort: pl.DataFrame, outcome: str) -> tuple[pl.DataFrame, Block, Block]:
-    """Table 1 by incident status of one outcome, and its two suppression blocks.
+def _grouped_blocks(
+    cohort: pl.DataFrame,
+    by: str,
+    groups: tuple[str, ...],
+    variables: Sequence[str],
+    key: Callable[[str, str, str], str],
+    meaning: Callable[[str, str, str], Spec],
+) -> tuple[pl.DataFrame, Block, Block]:
+    """Table 1 by ``by`` and its two suppression blocks, with keys and meanings given.
 
-    The first block has, per variable, a row per level (``non-missing`` for numeric ones) and a
-    ``missing`` row; each variable's rows add up to the group size, a count of the second
-    block (``patients``), whose groups add up to the cohort size.
-
-    Returns:
-        The long Table 1 from :func:`pipeline.stats.table_one`, the variables block and the
-        group-size block.
+    ``groups`` lists "overall" then every group's name (``"<by>=<value>"``); a group absent
+    from the cohort counts 0.
     """
-    by = names.outcome_columns(outcome).incident
-    variables = baseline_variables(cohort, exclude=[by, names.prevalent_column(outcome)])
     long = table_one(cohort, by=by, variables=variables)
-    groups = _group_names(by)
     sizes = cohort.group_by(pl.col(by).cast(pl.String).fill_null("null")).len()
     size = {f"{by}={k}": int(n) for k, n in sizes.iter_rows()} | {"overall": cohort.height}
     cells: dict[tuple[str, str], dict[str, int]] = {}
@@ -84,8 +84,8 @@ def table_one_blocks(cohort: pl.DataFrame, outcome: str) -> tuple[pl.DataFrame, 
             record: dict[str, Any] = {"variable": variable, "row": row}
             for g in groups:
                 record[g] = values.get(g, 0)
-                record[f"{g}#key"] = key = _t1_key(outcome, variable, row, g)
-                meanings[key] = _t1_meaning(outcome, variable, row, g)
+                record[f"{g}#key"] = k = key(variable, row, g)
+                meanings[k] = meaning(variable, row, g)
             rows.append(record)
         return keyed_frame(rows, schema)
 
@@ -94,13 +94,70 @@ def table_one_blocks(cohort: pl.DataFrame, outcome: str) -> tuple[pl.DataFrame, 
     columns: list[Relation] = []
     for part in body.partition_by("variable", maintain_order=True):
         for g in groups:  # a variable's rows add up to its group's size
-            total = _t1_key(outcome, "patients", "all", g)
+            total = key("patients", "all", g)
             columns.append(((total, -1), *((k, 1) for k in part[f"{g}#key"])))
     return (
         long,
         Block(body, groups[1:], "overall", tuple(columns), meanings),
         Block(sizes_frame, groups[1:], "overall", meanings=meanings),
     )
+
+
+def table_one_blocks(cohort: pl.DataFrame, outcome: str) -> tuple[pl.DataFrame, Block, Block]:
+    """Table 1 by incident status of one outcome, and its two suppression blocks.
+
+    The first block has, per variable, a row per level (``non-missing`` for numeric ones) and a
+    ``missing`` row; each variable's rows add up to the group size, a count of the second
+    block (``patients``), whose groups add up to the cohort size.
+
+    Returns:
+        The long Table 1 from :func:`pipeline.stats.table_one`, the variables block and the
+        group-size block.
+    """
+    by = names.outcome_columns(outcome).incident
+    variables = baseline_variables(cohort, exclude=[by, names.prevalent_column(outcome)])
+    return _grouped_blocks(
+        cohort,
+        by,
+        _group_names(by),
+        variables,
+        lambda variable, row, group: _t1_key(outcome, variable, row, group),
+        lambda variable, row, group: _t1_meaning(outcome, variable, row, group),
+    )
+
+
+def exposure_groups(cohort: pl.DataFrame) -> tuple[str, ...]:
+    """The names of the exposure Table 1's columns: overall, then each group in sorted order."""
+    values = cohort[names.EXPOSURE].cast(pl.String).fill_null("null").unique().sort()
+    return ("overall", *(f"{names.EXPOSURE}={v}" for v in values))
+
+
+def exposure_table_one_blocks(cohort: pl.DataFrame) -> tuple[pl.DataFrame, Block, Block]:
+    """Table 1 by exposure group (a new-user study), and its two suppression blocks.
+
+    Laid out and related like :func:`table_one_blocks`. Its overall column counts the same
+    patients as every outcome's overall column and shares their keys; each group's cells are
+    described by the group (the ``exposure`` state of :mod:`._cells`' atoms) and the level,
+    so the suppression sees, for instance, that the group's patients prevalent for an outcome
+    are among that outcome's Table 1 cells.
+    """
+    by = names.EXPOSURE
+    tag = f"@{by}"  # no condition name starts with "@", so keys cannot meet an outcome's
+
+    def key(variable: str, row: str, group: str) -> str:
+        if variable == "patients":
+            return "N" if group == "overall" else f"t1size|{tag}|{group.rsplit('=', 1)[1]}"
+        return (
+            f"t1|{variable}|{row}" if group == "overall" else f"t1|{tag}|{variable}|{row}|{group}"
+        )
+
+    def meaning(variable: str, row: str, group: str) -> Spec:
+        value = group.rsplit("=", 1)[-1]  # the atoms label a null group "missing", as a level
+        own = () if group == "overall" else ((by, "missing" if value == "null" else value),)
+        return own + _variable_meaning(variable, row)
+
+    variables = baseline_variables(cohort, exclude=[by])
+    return _grouped_blocks(cohort, by, exposure_groups(cohort), variables, key, meaning)
 
 
 def differenced_means(longs: Iterable[pl.DataFrame], threshold: int) -> frozenset[str]:
@@ -136,6 +193,44 @@ def table_one_summary(
     threshold: int,
     no_means: frozenset[str] = frozenset(),
 ) -> pl.DataFrame:
+    """Table 1 by incident status as published (see :func:`_published`).
+
+    The SMD compares the incident patients with those not incident.
+    """
+    by = names.outcome_columns(outcome).incident
+    groups = _group_names(by)
+    pair = (f"{by}=true", f"{by}=false")
+    return _published(by, groups, long, blocks, hidden, threshold, no_means, pair)
+
+
+def exposure_table_one_summary(
+    long: pl.DataFrame,
+    blocks: Sequence[Block],
+    hidden: frozenset[str],
+    threshold: int,
+    no_means: frozenset[str] = frozenset(),
+) -> pl.DataFrame:
+    """Table 1 by exposure group as published (see :func:`_published`).
+
+    With two groups, the SMD compares the first group of the columns (sorted by name) with the
+    second, the comparison of an active-comparator design; with more there is no single pair,
+    and no SMD.
+    """
+    groups = ("overall", *blocks[-1].counts)
+    pair = (groups[1], groups[2]) if len(groups) == 3 else None
+    return _published(names.EXPOSURE, groups, long, blocks, hidden, threshold, no_means, pair)
+
+
+def _published(
+    by: str,
+    groups: Sequence[str],
+    long: pl.DataFrame,
+    blocks: Sequence[Block],
+    hidden: frozenset[str],
+    threshold: int,
+    no_means: frozenset[str],
+    pair: tuple[str, str] | None,
+) -> pl.DataFrame:
     """Table 1 as published: counts suppressed, and statistics of hidden counts removed.
 
     A percentage is shown only when every count of its variable in that group is shown,
@@ -152,15 +247,14 @@ def table_one_summary(
             for g in block.cells:
                 status[(r["variable"], r["row"], g)] = (r[g], r[f"{g}#key"] in hidden)
     out = []
-    for r in [
-        {"variable": "patients", "level": None, "group": g}
-        for g in _group_names(names.outcome_columns(outcome).incident)
-    ] + list(long.iter_rows(named=True)):
+    for r in [{"variable": "patients", "level": None, "group": g} for g in groups] + list(
+        long.iter_rows(named=True)
+    ):
         var, group = r["variable"], r["group"]
         row = "all" if var == "patients" else (r["level"] or "non-missing")
         n, n_hidden = status[(var, row, group)]
         record = {
-            "by": names.outcome_columns(outcome).incident,
+            "by": by,
             "variable": var,
             "level": r["level"],
             "group": group,
@@ -181,7 +275,7 @@ def table_one_summary(
         missing = hidden_marker(m, threshold) if m_hidden else str(m)
         record["missing"] = None if var == "patients" else missing
         out.append(record)
-    _add_smd(out, long, names.outcome_columns(outcome).incident)
+    _add_smd(out, long, pair)
     schema = {
         "by": pl.String,
         "variable": pl.String,
@@ -194,20 +288,20 @@ def table_one_summary(
     return pl.DataFrame(out, schema=schema, orient="row")
 
 
-def _add_smd(out: list[dict[str, Any]], long: pl.DataFrame, by: str) -> None:
-    """Put the incident-versus-not-incident SMD on each variable's overall row (Austin 2009).
+def _add_smd(out: list[dict[str, Any]], long: pl.DataFrame, pair: tuple[str, str] | None) -> None:
+    """Put the SMD of the ``pair`` of groups on each variable's overall row (Austin 2009).
 
     It is computed from the unrounded statistics, and only where the statistics it is made of
     are published for both groups (the means and SDs, or the percentages): an SMD from a
-    withheld mean or a hidden count would give it back.
+    withheld mean or a hidden count would give it back. Without a pair every SMD is empty.
     """
     raw = {(r["variable"], r["level"], r["group"]): r for r in long.iter_rows(named=True)}
     published = {(r["variable"], r["level"], r["group"]): r for r in out}
-    one, zero = f"{by}=true", f"{by}=false"
+    one, zero = pair or ("", "")
     for record in out:
         record["smd"] = None
         key = (record["variable"], record["level"])
-        if record["group"] != "overall" or record["variable"] == "patients":
+        if pair is None or record["group"] != "overall" or record["variable"] == "patients":
             continue
         shown = [published.get((*key, g)) for g in (one, zero)]
         values = [raw.get((*key, g)) for g in (one, zero)]

@@ -41,6 +41,8 @@ from pipeline.outputs.report._smr import changed_reference, smr_summary
 from pipeline.outputs.report._suppression import hidden_keys, masked
 from pipeline.outputs.report._table_one import (
     differenced_means,
+    exposure_table_one_blocks,
+    exposure_table_one_summary,
     table_one_blocks,
     table_one_summary,
 )
@@ -303,6 +305,8 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
         attrition, cohort.height, matched_outcome(output_dir, cohort, attrition, study)
     )
     t1 = {o: table_one_blocks(cohort, o) for o in outcomes}
+    # a new-user study: Table 1 by the group started at index, in the same suppression system
+    t1x = exposure_table_one_blocks(cohort) if names.EXPOSURE in cohort.columns else None
     results, incidence = incidence_block(cohort, outcomes)
     check_matched_cases(flow, incidence)
     combos = combinations_block(cohort, outcomes)
@@ -310,6 +314,7 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
     quality_parts = quality_blocks(quality)
     at_risk = at_risk_block(cohort, outcomes)
     blocks = [flow, *(b for _, *pair in t1.values() for b in pair), incidence, combos, dependence]
+    blocks += list(t1x[1:]) if t1x is not None else []
     persontime = read_persontime(output_dir)  # rates only when the build wrote person-time
     if persontime is not None:
         rates = rates_block(persontime, outcomes, {ci.outcome: ci.events for _, ci, *_ in results})
@@ -321,7 +326,8 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
     none = Headline(math.nan, math.nan, math.nan, math.nan)
     headlines = {o: curves[o].headline if o in curves else none for o in outcomes}
     results = [(o, ci, headlines[o], rate) for o, ci, _, rate in results]
-    no_means = differenced_means((long for long, *_ in t1.values()), t)
+    longs = [long for long, *_ in t1.values()] + ([t1x[0]] if t1x is not None else [])
+    no_means = differenced_means(longs, t)
     summaries = {
         "flow": masked(flow, hidden, t),
         "table_one": pl.concat(
@@ -336,6 +342,11 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
         "combinations": masked(combos, hidden, t),
         "dependence": dependence_summary(dependence, hidden, t),
     }
+    if t1x is not None:
+        long, *parts = t1x
+        summaries["table_one_by_exposure"] = exposure_table_one_summary(
+            long, parts, hidden, t, no_means
+        )
     if persontime is not None:
         summaries["rates"] = rates_summary(rates, hidden, t)
         summaries["standardised_rates"] = standardised_summary(rates, hidden)
@@ -356,11 +367,11 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
         at_risk={o: render_at_risk(at_risk, o, hidden, t) for o in curves},
         labels=column_labels(output_dir, study.labels),
     )
-    names = [REPORT_PAGE, *(f"{SUMMARY}/{name}.csv" for name in sorted(summaries))]
+    files = [REPORT_PAGE, *(f"{SUMMARY}/{name}.csv" for name in sorted(summaries))]
     with staging(output_dir) as staged:
         (staged / SUMMARY).mkdir()
         for name, frame in summaries.items():
             frame.write_csv(staged / SUMMARY / f"{name}.csv", line_terminator="\n")
         (staged / REPORT_PAGE).write_text(html, encoding="utf-8")
-        install(staged, output_dir, REPORT, names)
-    return sorted(output_dir / name for name in names)
+        install(staged, output_dir, REPORT, files)
+    return sorted(output_dir / name for name in files)
