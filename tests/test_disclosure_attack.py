@@ -120,6 +120,22 @@ def sparse(tmp_path_factory: pytest.TempPathFactory) -> Path:
 
 
 MATCHED_STUDY = ROOT / "definitions" / "studies" / "orvane_hf_matched.yaml"
+NEW_USERS_STUDY = ROOT / "definitions" / "studies" / "orvane_new_users.yaml"
+
+
+@pytest.fixture(scope="module")
+def new_users(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The new-user example on 3,000 synthetic patients: Table 1 by exposure group as well.
+
+    A cohort of a few dozen, so both tables by group have small cells to protect.
+    """
+    base = tmp_path_factory.mktemp("attack_new_users")
+    generate_extract(base / "extract", patients=3000, seed=5)
+    build_study(NEW_USERS_STUDY, BuildOptions(extract=base / "extract", out=base / "out"))
+    write_report(base / "out")
+    by_exposure = _rows(base / "out" / "summary" / "table_one_by_exposure.csv")
+    assert any(r["n"] in MARKERS for r in by_exposure)
+    return base / "out"
 
 
 @pytest.fixture(scope="module")
@@ -153,13 +169,20 @@ class Attack:
         self.incidence = _rows(folder / "summary" / "incidence.csv")
         self.outcomes = [r["outcome"] for r in self.incidence]
         self.table_one = _rows(folder / "summary" / "table_one.csv")
+        # A new-user study's Table 1 by exposure group: each patient's group is one more part
+        # of its atom (the last letter of a state), like an outcome's state.
+        by_exposure = folder / "summary" / "table_one_by_exposure.csv"
+        self.table_one_x = _rows(by_exposure) if by_exposure.is_file() else []
+        groups = [r["group"].split("=", 1)[1] for r in self.table_one_x if r["group"] != "overall"]
         self.levels: dict[str, set[str]] = {}
-        for r in self.table_one:
+        for r in self.table_one + self.table_one_x:
             v = r["variable"]
-            if v == "patients" or v.startswith("prevalent_"):
+            if v in ("patients", "exposure") or v.startswith("prevalent_"):
                 continue
             self.levels.setdefault(v, {"missing"}).add(r["level"] or "non-missing")
         self.states = list(product("EFP", repeat=len(self.outcomes)))
+        if groups:
+            self.states = [(*s, g) for s in self.states for g in dict.fromkeys(groups)]
         self.names = [("s", s, "", "") for s in self.states]
         for v, levels in sorted(self.levels.items()):
             self.names += [("l", s, v, lv) for s in self.states for lv in sorted(levels)]
@@ -228,24 +251,36 @@ class Attack:
             def in_group(s: State, o: int = o, g: str = g) -> bool:
                 return g == "overall" or s[o] == group_state[g]
 
-            v, level = r["variable"], r["level"]
-            what = f"table_one {r['by']} {v} {level} {r['group']}"
-            if v == "patients":
-                self.cells.append((self._of(in_group), r["n"], what))
-            elif v.startswith("prevalent_"):
-                p = self._state(v.removeprefix("prevalent_"))
-                want = {"true": "P", "false": "EF"}[level]
-                self.cells.append(
-                    (self._of(lambda s, p=p, w=want, f=in_group: f(s) and s[p] in w), r["n"], what)
-                )
-                self.cells.append(
-                    (self._of(lambda s: False), r["missing"], what + " missing")
-                )  # the attacker knows prevalence is never missing: 0 patients
-            else:
-                self.cells.append((self._of(in_group, v, level or "non-missing"), r["n"], what))
-                self.cells.append(
-                    (self._of(in_group, v, "missing"), r["missing"], what + " missing")
-                )
+            self._read_table_one_row(r, in_group)
+        for r in self.table_one_x:
+            g = r["group"].split("=", 1)[-1]
+            self._read_table_one_row(r, lambda s, g=g: g == "overall" or s[-1] == g)
+        self._read_other_tables(folder)
+
+    def _read_table_one_row(self, r: dict[str, str], in_group: Callable[[State], bool]) -> None:
+        v, level = r["variable"], r["level"]
+        what = f"table_one {r['by']} {v} {level} {r['group']}"
+        if v == "exposure":  # a group of a new-user study: every cohort patient has one
+            chosen = self._of(lambda s, f=in_group, g=level: f(s) and s[-1] == g)
+            self.cells.append((chosen, r["n"], what))
+            self.cells.append((self._of(lambda s: False), r["missing"], what + " missing"))
+            return
+        if v == "patients":
+            self.cells.append((self._of(in_group), r["n"], what))
+        elif v.startswith("prevalent_"):
+            p = self._state(v.removeprefix("prevalent_"))
+            want = {"true": "P", "false": "EF"}[level]
+            self.cells.append(
+                (self._of(lambda s, p=p, w=want, f=in_group: f(s) and s[p] in w), r["n"], what)
+            )
+            self.cells.append(
+                (self._of(lambda s: False), r["missing"], what + " missing")
+            )  # the attacker knows prevalence is never missing: 0 patients
+        else:
+            self.cells.append((self._of(in_group, v, level or "non-missing"), r["n"], what))
+            self.cells.append((self._of(in_group, v, "missing"), r["missing"], what + " missing"))
+
+    def _read_other_tables(self, folder: Path) -> None:
         for r in self.incidence:
             o = self._state(r["outcome"])
             self.cells.append((self._of(lambda s, o=o: s[o] in "EF"), r["at_risk"], "at_risk"))
@@ -254,7 +289,11 @@ class Attack:
             members = set() if r["combination"] == "none" else set(r["combination"].split("+"))
             wanted = tuple("E" if o in members else "F" for o in self.outcomes)
             self.cells.append(
-                (self._of(lambda s, w=wanted: s == w), r["n"], f"combination {r['combination']}")
+                (
+                    self._of(lambda s, w=wanted: s[: len(w)] == w),
+                    r["n"],
+                    f"combination {r['combination']}",
+                )
             )
         for r in _rows(folder / "summary" / "dependence.csv"):
             i, j = self._state(r["outcome_1"]), self._state(r["outcome_2"])
@@ -447,20 +486,25 @@ class Attack:
         return out
 
 
+def _state_mask(outcomes: list[str], s: State) -> pl.Expr:
+    """The cohort's patients in state ``s`` (each outcome's letter, then any exposure group)."""
+    mask = pl.lit(value=True)
+    for o, x in zip(outcomes, s[: len(outcomes)], strict=True):
+        inc = pl.col(f"incident_{o}")
+        mask &= {"E": inc.fill_null(value=False), "F": inc.not_().fill_null(value=False)}.get(
+            x, inc.is_null()
+        )
+    if len(s) > len(outcomes):  # a new-user study's exposure group
+        mask &= pl.col("exposure") == s[-1]
+    return mask
+
+
 def _naive(folder: Path) -> Attack:
     """The same released cells with primary suppression only: the counts 1 to 4 hidden."""
     cohort = pl.read_parquet(folder / "cohort.parquet")
     outcomes = [r["outcome"] for r in _rows(folder / "summary" / "incidence.csv")]
     truth = Attack(folder)
-    states = {}
-    for s in truth.states:
-        mask = pl.lit(value=True)
-        for o, x in zip(outcomes, s, strict=True):
-            inc = pl.col(f"incident_{o}")
-            mask &= {"E": inc.fill_null(value=False), "F": inc.not_().fill_null(value=False)}.get(
-                x, inc.is_null()
-            )
-        states[s] = mask
+    states = {s: _state_mask(outcomes, s) for s in truth.states}
     levels = {}
     for v, names in truth.levels.items():
         for lv in names:
@@ -497,6 +541,7 @@ def _naive(folder: Path) -> Attack:
         "tiny_rates",
         "tiny_since",
         "matched_few",
+        "new_users",
         pytest.param("sparse", marks=pytest.mark.slow),
         pytest.param("demo_rates", marks=pytest.mark.slow),
     ],

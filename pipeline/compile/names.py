@@ -118,6 +118,9 @@ AS_TREATED_SUFFIX = "_as_treated"  # followup_end_as_treated, time_X_as_treated,
 
 # --- Generated columns. -------------------------------------------------------------------
 
+FOLLOWUP_COLUMNS = ("followup_end", "followup_days", "end_reason")
+"""The analysis table's follow-up columns (each also suffixed ``_as_treated`` as treated)."""
+
 PREVALENT_PREFIX = "prevalent_"
 AT_RISK_PREFIX = "at_risk_"
 INCIDENT_PREFIX = "incident_"

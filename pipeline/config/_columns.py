@@ -16,10 +16,9 @@ from pipeline.config._study import RESERVED_COLUMNS, Study
 from pipeline.config._yaml import LocatedDocument, PathKey
 from pipeline.errors import Problem
 
-__all__ = ["FOLLOWUP_COLUMNS", "column_clashes", "generated_columns"]
+__all__ = ["column_clashes", "generated_columns"]
 
-FOLLOWUP_COLUMNS = ("followup_end", "followup_days", "end_reason")
-"""The follow-up columns of every cohort (and, suffixed, of as-treated follow-up)."""
+FOLLOWUP_COLUMNS = names.FOLLOWUP_COLUMNS
 
 # Analysis-table columns the exposure section adds (the group started on the index date).
 _EXPOSURE_COLUMNS = (names.EXPOSURE,)

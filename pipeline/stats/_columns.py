@@ -18,7 +18,7 @@ from pipeline.compile import names
 OUTCOME_PREFIXES = names.OUTCOME_PREFIXES
 """Prefixes of the per-outcome columns, in the order the analysis table writes them."""
 
-FOLLOWUP_COLUMNS = ("followup_end", "followup_days", "end_reason")
+FOLLOWUP_COLUMNS = names.FOLLOWUP_COLUMNS
 """Columns describing follow-up after the index date (not baseline characteristics)."""
 
 

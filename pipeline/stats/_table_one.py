@@ -70,7 +70,7 @@ def baseline_variables(cohort: pl.DataFrame, *, exclude: Sequence[str] = ()) -> 
     Kept: numeric, string, categorical and boolean columns, including ``prevalent_X``
     (conditions present at index). Dropped: ``patient_id``, dates, anything measured after the
     index date (``at_risk_X``, ``incident_X``, ``onset_X``, ``days_to_X``, ``time_X``,
-    ``event_X``, follow-up columns)
+    ``event_X``, follow-up columns, and every ``*_as_treated`` column of a new-user study)
     and ``exclude``.
 
     Args:
@@ -84,8 +84,8 @@ def baseline_variables(cohort: pl.DataFrame, *, exclude: Sequence[str] = ()) -> 
     for name, dtype in cohort.schema.items():
         if name == "patient_id" or name in exclude or name in FOLLOWUP_COLUMNS:
             continue
-        if name.startswith(_POST_INDEX_PREFIXES):
-            continue
+        if name.startswith(_POST_INDEX_PREFIXES) or name.endswith(names.AS_TREATED_SUFFIX):
+            continue  # (every as-treated column describes follow-up)
         if dtype.is_numeric() or isinstance(dtype, _CATEGORICAL):
             keep.append(name)
     return keep
