@@ -18,6 +18,7 @@ from pipeline.outputs.report._table_one import (
     table_one_blocks,
     table_one_summary,
 )
+from pipeline.stats import baseline_variables
 
 DPP4_AGES = [50, 52, 54, 56, 58, 60, 62]
 SGLT2_AGES = [41, 43, 45, 47, 49]
@@ -138,3 +139,20 @@ def test_three_groups_have_no_smd() -> None:
         "exposure=sglt2",
     ]
     assert table["smd"].drop_nulls().is_empty()
+
+
+def test_as_treated_columns_are_not_baseline_characteristics() -> None:
+    # follow-up as treated ends after index: no row of either Table 1
+    cohort = COHORT.with_columns(
+        pl.lit(30).alias("followup_days_as_treated"),
+        pl.lit("discontinued").alias("end_reason_as_treated"),
+    )
+    long, *_ = exposure_table_one_blocks(cohort)
+    assert set(long["variable"]) == {"sex", "age_at_index", "smoker", "prevalent_x"}
+    assert baseline_variables(cohort) == [
+        "sex",
+        "exposure",
+        "age_at_index",
+        "smoker",
+        "prevalent_x",
+    ]
