@@ -102,6 +102,19 @@ def tiny_since(tmp_path_factory: pytest.TempPathFactory) -> Path:
 
 
 @pytest.fixture(scope="module")
+def few_rates(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """5,000 synthetic patients with SMRs: heart failure's 10 events, few of them men's.
+
+    Its events by sex are small where its total is shown, so the SMR table's sex rows must be
+    hidden together (a shown sex gives the other away through the total) and with Table 1's
+    incident cases of each sex, which count the same patients.
+    """
+    base = tmp_path_factory.mktemp("attack_few_rates")
+    generate_extract(base / "extract", patients=5000, seed=5)
+    return _build_with_rates(base, base / "extract", SINCE)
+
+
+@pytest.fixture(scope="module")
 def tiny(tmp_path_factory: pytest.TempPathFactory) -> Path:
     out = tmp_path_factory.mktemp("attack_tiny") / "out"
     build_study(DEMO_STUDY, BuildOptions(extract=HANDMADE, out=out))
@@ -510,6 +523,7 @@ def _naive(folder: Path) -> Attack:
         "matched_few",
         pytest.param("sparse", marks=pytest.mark.slow),
         pytest.param("demo_rates", marks=pytest.mark.slow),
+        pytest.param("few_rates", marks=pytest.mark.slow),
     ],
 )
 def test_no_hidden_count_can_be_narrowed_down(which: str, request: pytest.FixtureRequest) -> None:
