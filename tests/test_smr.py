@@ -20,7 +20,7 @@ from pipeline.errors import ConfigError
 from pipeline.outputs import sha256_file
 from pipeline.outputs._manifest import changed_inputs
 from pipeline.outputs.report._rates import rates_block
-from pipeline.outputs.report._smr import expected_cells, smr_summary
+from pipeline.outputs.report._smr import expected_cells, smr_block, smr_summary
 
 from .conftest import HANDMADE, ROOT
 from .helpers import demo_study_variant
@@ -35,13 +35,17 @@ def _table(body: str, head: str = HEAD) -> ReferenceRates:
     return parse_reference_rates(head + body, Path("rates.csv"))
 
 
-def _persontime() -> tuple[pl.DataFrame, pl.DataFrame]:
-    """Cells of four patients: (patient, sex, band, days at risk, events)."""
+def _persontime(events: tuple[int, int, int, int] = (6, 3, 2, 1)) -> tuple[pl.DataFrame, ...]:
+    """Cells of four patients: (patient, sex, band, days at risk, events), and their sexes.
+
+    Two age bands by two sexes, one patient each (cells this large stand for many patients;
+    the SMR only sums them).
+    """
     cells = [
-        (1, "F", "40-49", 730_500, 6),  # 2,000 person-years
-        (2, "F", "50-59", 365_250, 3),  # 1,000
-        (3, "M", "40-49", 365_250, 2),  # 1,000
-        (4, "M", "50-59", 182_625, 1),  # 500
+        (1, "F", "40-49", 730_500, events[0]),  # 2,000 person-years
+        (2, "F", "50-59", 365_250, events[1]),  # 1,000
+        (3, "M", "40-49", 365_250, events[2]),  # 1,000
+        (4, "M", "50-59", 182_625, events[3]),  # 500
     ]
     persontime = pl.DataFrame(
         [
@@ -59,7 +63,18 @@ def _persontime() -> tuple[pl.DataFrame, pl.DataFrame]:
             for p, _, band, days, events in cells
         ]
     )
-    cohort = pl.DataFrame({"patient_id": [c[0] for c in cells], "sex": [c[1] for c in cells]})
+    # The cohort: the four, and further incident cases without person-time of their own, so
+    # that each sex's incident cases are its events (as the build's accounting check makes them).
+    extra = [(100 + i, sex) for p, sex, _, _, n in cells for i in range(10 * p, 10 * p + n - 1)]
+    ids = [c[0] for c in cells] + [e[0] for e in extra]
+    cohort = pl.DataFrame(
+        {
+            "patient_id": ids,
+            "sex": [c[1] for c in cells] + [e[1] for e in extra],
+            "at_risk_hf": [True] * len(ids),
+            "incident_hf": [c[4] > 0 for c in cells] + [True] * len(extra),
+        }
+    )
     return persontime, cohort
 
 
@@ -79,8 +94,9 @@ def test_smr_by_hand_with_the_exact_interval_from_scipy() -> None:
     assert person_years == [2000.0, 1000.0, 1000.0, 500.0]
     assert rates == [1.5, 4.0, 1.5, 4.0]
     # F: (2,000 + 1,000) py x 1.5 = 4.5; M: (1,000 + 500) py x 4 = 6.0; expected 10.5
-    block = rates_block(persontime.drop("calendar_year"), ["hf"], {"hf": 12})
-    row = smr_summary(persontime, cohort, table, block, frozenset(), 5).row(0, named=True)
+    rates = rates_block(persontime.drop("calendar_year"), ["hf"], {"hf": 12})
+    block = smr_block(persontime, cohort, table, rates)
+    row = smr_summary(block, table, frozenset(), 5).row(0, named=True)
     assert row["observed"] == "12"
     assert row["expected"] == 10.5
     assert row["smr"] == round(12 / 10.5, 2)
@@ -95,14 +111,87 @@ def test_smr_by_hand_with_the_exact_interval_from_scipy() -> None:
 def test_a_hidden_observed_count_leaves_the_smr_out() -> None:
     persontime, cohort = _persontime()
     table = _table(RATES.replace("hf,F,40,54,1.5\nhf,F,55,,9", "hf,F,40,,1.5"))
-    block = rates_block(persontime.drop("calendar_year"), ["hf"], {"hf": 12})
-    row = smr_summary(persontime, cohort, table, block, frozenset({"events|hf"}), 5).row(
-        0, named=True
-    )
+    rates = rates_block(persontime.drop("calendar_year"), ["hf"], {"hf": 12})
+    block = smr_block(persontime, cohort, table, rates)
+    row = smr_summary(block, table, frozenset({"events|hf"}), 5).row(0, named=True)
     assert row["observed"] == "*"
     assert (row["smr"], row["smr_low"], row["smr_high"]) == (None, None, None)
     assert row["expected"] == 10.5  # person-time times rates: shown
     assert "suppressed" in row["note"]
+
+
+# Two bands by two sexes, by hand. Events (F 40-49, F 50-59, M 40-49, M 50-59) = 6, 3, 2, 2 over
+# 2,000, 1,000, 1,000 and 500 person-years; women's rate 1.5 per 1,000 at 40-59, men's 4:
+#   all       13 observed, expected 3.0 + 1.5 + 4.0 + 2.0 = 10.5
+#   40-49      8 observed, expected 3.0 + 4.0 = 7.0         SMR 8 / 7   = 1.1429
+#   50-59      5 observed, expected 1.5 + 2.0 = 3.5         SMR 5 / 3.5 = 1.4286
+#   F          9 observed, expected 3.0 + 1.5 = 4.5         SMR 9 / 4.5 = 2.0
+#   M          4 observed, expected 4.0 + 2.0 = 6.0         SMR 4 / 6   = 0.6667
+BY_HAND = [
+    ("all", "all", "13", 10.5, 1.24),
+    ("40-49", "all", "8", 7.0, 1.14),
+    ("50-59", "all", "5", 3.5, 1.43),
+    ("all", "F", "9", 4.5, 2.0),
+    ("all", "M", "4", 6.0, 0.67),
+]
+BY_SEX = RATES.replace("hf,F,40,54,1.5\nhf,F,55,,9", "hf,F,40,59,1.5\nhf,F,60,,9")
+
+
+def _smr_rows(hidden: frozenset[str] = frozenset()) -> list[dict[str, object]]:
+    persontime, cohort = _persontime((6, 3, 2, 2))
+    table = _table(BY_SEX)
+    rates = rates_block(persontime.drop("calendar_year"), ["hf"], {"hf": 13})
+    return smr_summary(smr_block(persontime, cohort, table, rates), table, hidden, 5).to_dicts()
+
+
+def test_smr_by_age_band_and_sex_by_hand() -> None:
+    rows = _smr_rows()
+    got = [(r["age_band"], r["sex"], r["observed"], r["expected"], r["smr"]) for r in rows]
+    assert got == BY_HAND
+    for r in rows:
+        observed, expected = int(str(r["observed"])), float(str(r["expected"]))
+        # Exact limits of an SMR (observed Poisson, expected fixed) in the gamma form: the
+        # lower limit is the 2.5% quantile of Gamma(k, 1), the upper the 97.5% quantile of
+        # Gamma(k + 1, 1), over the expected count (the chi-square limits of Garwood 1936
+        # halved; the equivalence from memory), with scipy's gamma quantiles.
+        low = stats.gamma.ppf(0.025, observed) / expected
+        high = stats.gamma.ppf(0.975, observed + 1) / expected
+        assert (r["smr_low"], r["smr_high"]) == (round(low, 2), round(high, 2)), r
+    # and written out for men: 4 events, 6 expected -> 0.1817 to 1.7069
+    assert (rows[-1]["smr_low"], rows[-1]["smr_high"]) == (0.18, 1.71)
+
+
+def test_smr_rows_add_up_and_a_hidden_band_or_sex_leaves_its_smr_out() -> None:
+    rows = _smr_rows(frozenset({"pt|hf|50-59|all", "pt|hf|sex|M"}))
+    by = {(r["age_band"], r["sex"]): r for r in rows}
+    assert by[("50-59", "all")]["observed"] == "*"
+    assert by[("all", "M")]["observed"] == "<5"
+    for key in (("50-59", "all"), ("all", "M")):
+        assert (by[key]["smr"], by[key]["smr_low"], by[key]["smr_high"]) == (None, None, None)
+        assert by[key]["expected"] is not None  # person-time times rates: shown
+    assert by[("40-49", "all")]["smr"] == 1.14  # the others are shown
+
+
+def test_the_sex_counts_are_tied_to_the_total_and_to_table_one() -> None:
+    persontime, cohort = _persontime((6, 3, 2, 2))
+    table = _table(BY_SEX)
+    rates = rates_block(persontime.drop("calendar_year"), ["hf"], {"hf": 13})
+    block = smr_block(persontime, cohort, table, rates)
+    assert block.relations == ((("events|hf", -1), ("pt|hf|sex|F", 1), ("pt|hf|sex|M", 1)),)
+    # each sex's events are the incident cases of that sex, as Table 1 counts them
+    assert block.meanings["pt|hf|sex|F"] == (("at|hf", "true"), ("inc|hf", "true"), ("sex", "F"))
+    band_keys = set(rates.frame["events#key"].to_list())
+    assert {k for k in block.frame["events#key"] if "|sex|" not in k} <= band_keys
+
+
+def test_a_table_without_sex_gives_smrs_by_sex_from_the_same_rates() -> None:
+    persontime, cohort = _persontime((6, 3, 2, 2))
+    table = _table("outcome,age_start,age_end,rate_per_1000_py\nhf,40,49,2\nhf,50,,4\n")
+    rates = rates_block(persontime.drop("calendar_year"), ["hf"], {"hf": 13})
+    rows = smr_summary(smr_block(persontime, cohort, table, rates), table, frozenset(), 5)
+    by = {(r["age_band"], r["sex"]): r["expected"] for r in rows.to_dicts()}
+    # F: 2,000 x 2 + 1,000 x 4 = 8.0 per 1,000; M: 1,000 x 2 + 500 x 4 = 4.0
+    assert (by[("all", "F")], by[("all", "M")], by[("all", "all")]) == (8.0, 4.0, 12.0)
 
 
 @pytest.mark.parametrize(
@@ -127,6 +216,11 @@ def test_a_hidden_observed_count_leaves_the_smr_out() -> None:
         (
             "outcome,sex,age_start,age_end,rate_per_1000_py\nhf,,40,,1\n",
             "rates.csv:5:4",
+            "bad-row",
+        ),
+        (
+            "outcome,sex,age_start,age_end,rate_per_1000_py\nhf,F,40,,1\nhf,W,40,,1\n",
+            "rates.csv:6:4",
             "bad-row",
         ),
     ],
@@ -212,13 +306,34 @@ def test_the_report_gives_observed_expected_and_smr(smr_build: Path) -> None:
     }
     smr = _rows(smr_build / "summary" / "smr.csv")
     incidence = {r["outcome"]: r["events"] for r in _rows(smr_build / "summary" / "incidence.csv")}
-    assert [r["outcome"] for r in smr] == ["type2_diabetes", "ckd", "heart_failure"]
+    band_events = {
+        (r["outcome"], r["age_band"]): r["events"]
+        for r in _rows(smr_build / "summary" / "rates.csv")
+        if r["calendar_year"] == "all"
+    }
+    outcomes = ["type2_diabetes", "ckd", "heart_failure"]
+    assert [r["outcome"] for r in smr if r["age_band"] == r["sex"] == "all"] == outcomes
+    for o in outcomes:  # the whole outcome, then its bands (those with person-time), sexes
+        groups = [(r["age_band"], r["sex"]) for r in smr if r["outcome"] == o]
+        bands = [(b, "all") for x, b in band_events if x == o and b != "all"]
+        at_risk = cohort.filter(pl.col(f"at_risk_{o}"))["sex"].unique().sort().to_list()
+        assert at_risk == ["F", "M"]
+        assert groups == [("all", "all"), *bands, ("all", "F"), ("all", "M")]
     for r in smr:
-        o = r["outcome"]
-        assert r["observed"] == incidence[o]  # the same count, suppressed the same way
+        o, band, sex = r["outcome"], r["age_band"], r["sex"]
+        if sex == "all":  # the outcome's and each band's count: the rates table's cells
+            assert r["observed"] == band_events[(o, band)]
+        if band == sex == "all":
+            assert r["observed"] == incidence[o]  # the same count, suppressed the same way
         cells = persontime.filter(pl.col(f"days_at_risk_{o}").is_not_null()).join(
             cohort.select("patient_id", "sex"), on="patient_id"
         )
+        if band != "all":
+            cells = cells.filter(pl.col("age_band") == band)
+        if sex != "all":
+            cells = cells.filter(pl.col("sex") == sex)
+            events = cells[f"events_{o}"].sum()
+            assert r["observed"] == (str(events) if events >= 5 else r["observed"])
         expected = sum(
             c[f"days_at_risk_{o}"] / 365.25 * rates[(o, c["sex"], c["age_band"][:1])] / 1000
             for c in cells.iter_rows(named=True)
@@ -228,8 +343,17 @@ def test_the_report_gives_observed_expected_and_smr(smr_build: Path) -> None:
             assert float(r["smr"]) == pytest.approx(int(r["observed"]) / expected, abs=0.005)
         else:
             assert r["smr"] == ""
+    for o in outcomes:  # where shown, the bands and the sexes add up to the incident cases
+        for part in (
+            [r["observed"] for r in smr if r["outcome"] == o and r["sex"] == "all"][1:],
+            [r["observed"] for r in smr if r["outcome"] == o and r["sex"] != "all"],
+        ):
+            if all(x.isdigit() for x in [*part, incidence[o]]):
+                assert sum(map(int, part)) == int(incidence[o])
     page = (smr_build / "report.html").read_text(encoding="utf-8")
     assert "Observed and expected events" in page
+    assert "<td>sex F</td>" in page
+    assert "<td>age 60-69</td>" in page
     assert "invented for the Orvane Bay demo scenario" in page  # the table's stated source
 
 

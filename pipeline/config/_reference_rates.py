@@ -16,8 +16,10 @@ say what it is and where its figures come from::
 Keys: ``rates`` (its name), ``source`` and ``figures`` (how the numbers were obtained) are
 required, ``note`` is optional. Columns: ``outcome``, ``age_start``, ``age_end`` (empty for an
 open last band: "60 and over") and ``rate_per_1000_py`` are required; ``sex`` and
-``calendar_year`` are optional, and when present every line gives them. Within one outcome, sex
-and year the bands follow each other without gap or overlap.
+``calendar_year`` are optional, and when present every line gives them (``sex`` is ``F`` or
+``M``, in either case, as the study's sex step names them). Within one outcome, sex and year the
+bands follow each other without gap or overlap. A table without ``sex`` gives each band's rate
+for both sexes; the report's SMRs by sex then apply the same rates to each sex's person-time.
 
 Every bad line is reported with the file, line and column, each with a stable code, and the
 study is refused (nothing is built). Whether the table covers the study (every age band of the
@@ -37,6 +39,7 @@ from pathlib import Path
 from pipeline.errors import ConfigError, Problem
 
 __all__ = [
+    "SEXES",
     "RateBand",
     "ReferenceRates",
     "read_reference_rates",
@@ -47,6 +50,9 @@ _KEYS = ("rates", "source", "figures", "note")
 _REQUIRED_KEYS = ("rates", "source", "figures")
 _COLUMNS = ("outcome", "sex", "calendar_year", "age_start", "age_end", "rate_per_1000_py")
 _REQUIRED_COLUMNS = ("outcome", "age_start", "age_end", "rate_per_1000_py")
+
+SEXES = ("F", "M")
+"""The sexes a table by sex may name: those of the canonical extract and the study's sex step."""
 
 Stratum = tuple[str, str | None, int | None]
 """(outcome, sex or None, calendar year or None): the rows that share one set of age bands."""
@@ -240,6 +246,8 @@ def _parse_row(
         return bad("outcome", "is empty")
     if "sex" in values and not values["sex"]:
         return bad("sex", "is empty; every line of a table by sex gives it")
+    if "sex" in values and values["sex"].upper() not in SEXES:
+        return bad("sex", f"is not one of {', '.join(SEXES)} (the sexes of the extract)")
     ages = _ages(values, bad)
     if isinstance(ages, Problem):
         return ages

@@ -5,8 +5,16 @@ Spark run starts. What both do the same way, and the result types, are in
 :mod:`pipeline.engine.base`.
 """
 
-from pipeline.engine.base import Engine, RunResult, StageCallback, StageReport
+from pipeline.engine.base import BatchSink, Engine, RunResult, StageCallback, StageReport
 from pipeline.engine.duckdb import DuckDBEngine
 from pipeline.engine.spark import SparkEngine
 
-__all__ = ["DuckDBEngine", "Engine", "RunResult", "SparkEngine", "StageCallback", "StageReport"]
+__all__ = [
+    "BatchSink",
+    "DuckDBEngine",
+    "Engine",
+    "RunResult",
+    "SparkEngine",
+    "StageCallback",
+    "StageReport",
+]

@@ -24,7 +24,7 @@ compare every output with DuckDB's, so a Spark release that changes them fails t
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from typing import TYPE_CHECKING
 
 import pyarrow as pa
@@ -69,8 +69,14 @@ def sorted_partitions(frame: DataFrame, order: Sequence[str], rows: int) -> Data
     return frame.repartitionByRange(parts, *keys).sortWithinPartitions(*keys)
 
 
-def to_arrow(frame: DataFrame, order: Sequence[str] = (), rows: int | None = None) -> pa.Table:
-    """A DataFrame as an Arrow table, sorted by ``order``, fetched a bounded partition at a time.
+def to_arrow_reader(
+    frame: DataFrame, order: Sequence[str] = (), rows: int | None = None
+) -> pa.RecordBatchReader:
+    """A DataFrame as a stream of Arrow batches, sorted by ``order``, a partition at a time.
+
+    Nothing is fetched until the reader is read; each partition's batches are read from the
+    JVM's socket as the reader reaches them, so Python holds one batch at a time (at most
+    :data:`PARTITION_ROWS` rows) and the driver's JVM one partition's Arrow bytes.
 
     Args:
         frame: The output's rows (a stored stage: counting and sampling it is cheap).
@@ -83,14 +89,27 @@ def to_arrow(frame: DataFrame, order: Sequence[str] = (), rows: int | None = Non
     rows = frame.count() if rows is None else rows
     ordered = sorted_partitions(frame, order, rows)
     spark_schema = spark_arrow_schema(ordered)
+    schema = arrow_schema(ordered)
     context = ordered.sparkSession.sparkContext
-    served = context._jvm.PythonRDD.toLocalIteratorAndServe(
-        ordered._jdf.toArrowBatchRdd(),
-        False,  # noqa: FBT003 (Java: no prefetch of the next partition)
-    )
-    batches = [
-        pa.ipc.read_record_batch(pa.py_buffer(message), spark_schema)
-        for message in _local_iterator_from_socket(served, NoOpSerializer())
-    ]
-    table = pa.Table.from_batches(batches, schema=spark_schema)
-    return table.cast(arrow_schema(ordered))
+
+    def batches() -> Iterator[pa.RecordBatch]:
+        served = context._jvm.PythonRDD.toLocalIteratorAndServe(
+            ordered._jdf.toArrowBatchRdd(),
+            False,  # noqa: FBT003 (Java: no prefetch of the next partition)
+        )
+        for message in _local_iterator_from_socket(served, NoOpSerializer()):
+            batch = pa.ipc.read_record_batch(pa.py_buffer(message), spark_schema)
+            yield batch.cast(schema)
+
+    return pa.RecordBatchReader.from_batches(schema, batches())
+
+
+def to_arrow(frame: DataFrame, order: Sequence[str] = (), rows: int | None = None) -> pa.Table:
+    """A DataFrame as an Arrow table, sorted by ``order``, fetched a bounded partition at a time.
+
+    Args:
+        frame: The output's rows (a stored stage: counting and sampling it is cheap).
+        order: Columns to sort by, NULLs last; partitions are fetched in order.
+        rows: The frame's row count, if known (else it is counted).
+    """
+    return to_arrow_reader(frame, order, rows).read_all()

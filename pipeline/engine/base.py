@@ -24,7 +24,7 @@ from __future__ import annotations
 import logging
 import time
 from abc import ABC, abstractmethod
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from contextlib import AbstractContextManager
 from dataclasses import dataclass, field
 from typing import Any, ClassVar, Generic, TypeVar
@@ -75,7 +75,16 @@ class RunResult:
     run_settings: dict[str, Any] = field(default_factory=dict)
     """Settings that depend on the machine (DuckDB's memory limit and where it came from):
     for run.json only, so the manifest stays the same on every machine."""
+    streamed: dict[str, int] = field(default_factory=dict)
+    """Outputs handed to a sink batch by batch instead of held in ``outputs``: rows written."""
 
+
+BatchSink = Callable[[pa.RecordBatchReader], int]
+"""Takes one output's rows, sorted, as a stream of Arrow batches; returns the rows it kept.
+
+Called while the engine's connection is open, so the output never needs to be held whole:
+the sink writes each batch (a Parquet file, ``outputs._write.parquet_sink``) and lets it go.
+"""
 
 StageCallback = Callable[[Stage, int, int], None]
 """Called before each stage with the stage, its 1-based number and the number of stages."""
@@ -170,6 +179,18 @@ class Engine(ABC, Generic[Connection]):
         ``rows`` is the stage's row count when it is a stored table, else None.
         """
 
+    def _fetch_batches(
+        self, conn: Connection, stage_name: str, order: Sequence[str], rows: int | None
+    ) -> pa.RecordBatchReader:
+        """A stage's rows sorted by ``order``, as a stream of batches of bounded size.
+
+        The default fetches the whole table and hands it over in its own batches; an engine
+        that can stream a query's result overrides it, so that a large output (person-time)
+        is never held whole in Python.
+        """
+        table = self._fetch(conn, stage_name, order, rows)
+        return pa.RecordBatchReader.from_batches(table.schema, table.to_batches())
+
     def _check_rows(self, conn: Connection, stage: Stage) -> list[Any]:
         """The offending rows a check stage finds: at most :attr:`CHECK_ROWS_SHOWN` of them."""
         return self._first_rows(conn, stage.query, self.CHECK_ROWS_SHOWN)
@@ -207,10 +228,13 @@ class Engine(ABC, Generic[Connection]):
         *,
         on_stage: StageCallback | None = None,
         patients: tuple[str, ...] | None = None,
+        sinks: Mapping[str, BatchSink] | None = None,
     ) -> RunResult:
         """Run every stage of the plan and return its outputs, sorted as the plan says.
 
         ``patients`` restricts every source table to those patient ids (used to trace one).
+        An output named in ``sinks`` is streamed to its sink in sorted batches (see
+        :data:`BatchSink`) instead of being returned; ``RunResult.streamed`` has its rows.
 
         Raises:
             ExtractError: An extract file could not be read (named with its line, where the
@@ -231,10 +255,14 @@ class Engine(ABC, Generic[Connection]):
                 self._bind_sources(conn, plan.sources, tables, patients)
                 reports = self._run_stages(conn, plan, on_stage)
                 rows = {report.name: report.rows for report in reports}
-                outputs = {
-                    output: self._fetch(conn, stage_name, order, rows.get(stage_name))
-                    for output, stage_name, order in plan.outputs
-                }
+                outputs: dict[str, pa.Table] = {}
+                streamed: dict[str, int] = {}
+                for output, stage_name, order in plan.outputs:
+                    if sinks and output in sinks:
+                        batches = self._fetch_batches(conn, stage_name, order, rows.get(stage_name))
+                        streamed[output] = sinks[output](batches)
+                    else:
+                        outputs[output] = self._fetch(conn, stage_name, order, rows.get(stage_name))
                 return RunResult(
                     outputs,
                     reports,
@@ -242,6 +270,7 @@ class Engine(ABC, Generic[Connection]):
                     engine_version=self.version,
                     engine_info=self._engine_info(conn),
                     run_settings=self._run_settings(conn),
+                    streamed=streamed,
                 )
         except AscertainError:
             raise

@@ -40,6 +40,9 @@ _OPTIMIZERS = exp.select("name").from_("duckdb_optimizers()").sql("duckdb")
 #   order optimizer picks.
 _DISABLED_OPTIMIZERS = ("type_pushdown", "build_side_probe_side")
 
+FETCH_ROWS = 65_536
+"""Rows per batch when an output is streamed to a sink (a few MB of person-time cells)."""
+
 
 def _rows(table: ExtractTable, source: SourceTable | None = None) -> exp.Expression:
     """The rows of one extract table, each CSV row with its position (see SOURCE_POSITION).
@@ -266,6 +269,21 @@ class DuckDBEngine(Engine[duckdb.DuckDBPyConnection]):
         if order:
             select = select.order_by(*order)
         return conn.sql(select.sql(self.DIALECT)).to_arrow_table()
+
+    def _fetch_batches(
+        self,
+        conn: duckdb.DuckDBPyConnection,
+        stage_name: str,
+        order: Sequence[str],
+        rows: int | None,
+    ) -> pa.RecordBatchReader:
+        # The same query as _fetch, read batch by batch: DuckDB sorts inside its own memory
+        # limit (spilling to disk if it must) and hands over FETCH_ROWS rows at a time. The
+        # reader must be read to its end before the connection runs anything else.
+        select = exp.select("*").from_(stage_name)
+        if order:
+            select = select.order_by(*order)
+        return conn.sql(select.sql(self.DIALECT)).to_arrow_reader(FETCH_ROWS)
 
     def _is_own_error(self, err: BaseException) -> bool:
         return isinstance(err, duckdb.Error)

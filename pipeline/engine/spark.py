@@ -18,7 +18,7 @@ import pyarrow as pa
 from sqlglot import exp
 
 from pipeline.compile import Plan, Stage
-from pipeline.engine._spark_fetch import to_arrow
+from pipeline.engine._spark_fetch import to_arrow, to_arrow_reader
 from pipeline.engine._spark_session import (
     DEFAULT_CONNECT_TIMEOUT,
     DEFAULT_MASTER,
@@ -348,6 +348,11 @@ class SparkEngine(Engine["SparkSession"]):
     ) -> pa.Table:
         # Sorted as DuckDB sorts (NULLs last), in partitions of bounded size.
         return to_arrow(conn.table(stage_name), order, rows)
+
+    def _fetch_batches(
+        self, conn: SparkSession, stage_name: str, order: Sequence[str], rows: int | None
+    ) -> pa.RecordBatchReader:
+        return to_arrow_reader(conn.table(stage_name), order, rows)
 
     def _is_own_error(self, err: BaseException) -> bool:
         return _spark_error(err)

@@ -18,8 +18,10 @@ from pipeline.outputs._usability import check_usable
 from pipeline.outputs._write import (
     ATTRITION_COLUMNS,
     DATA_FILES,
+    parquet_sink,
     write_outputs,
     write_parquet,
+    write_parquet_stream,
 )
 
 __all__ = [
@@ -34,10 +36,12 @@ __all__ = [
     "extract_root",
     "file_name",
     "make_manifest",
+    "parquet_sink",
     "portable_path",
     "read_manifest",
     "sha256_file",
     "study_keys",
     "write_outputs",
     "write_parquet",
+    "write_parquet_stream",
 ]

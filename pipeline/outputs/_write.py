@@ -8,6 +8,8 @@ from __future__ import annotations
 
 import csv
 import json
+import shutil
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -41,17 +43,77 @@ def round_doubles(table: pa.Table) -> pa.Table:
     return pa.Table.from_arrays(columns, schema=table.schema)
 
 
-def write_parquet(table: pa.Table, path: Path) -> None:
+_PARQUET: dict[str, Any] = {
+    "compression": "zstd",
+    "compression_level": 3,
+    "use_dictionary": True,
+    "write_statistics": True,
+}
+"""The writer settings of every Parquet output (fixed, for deterministic bytes)."""
+
+ROW_GROUP_ROWS = 1_000_000
+"""Rows per row group of an output written whole."""
+
+STREAMED_ROW_GROUP_ROWS = 131_072
+"""Rows per row group of an output streamed from the engine (person-time).
+
+The writer holds one row group's rows before writing them, so this bounds the rows in Python
+whatever the cohort's size (person-time: about 66 bytes a row, under 10 MB). Smaller row
+groups compress a little less well (at 200,000 patients the person-time file is 5% larger
+than in one group); a file of fewer rows is one row group, as before.
+"""
+
+
+def write_parquet(table: pa.Table, path: Path, row_group_rows: int = ROW_GROUP_ROWS) -> None:
     """Write a table to Parquet with fixed writer settings (deterministic bytes)."""
-    pq.write_table(
-        round_doubles(table),
-        path,
-        compression="zstd",
-        compression_level=3,
-        use_dictionary=True,
-        write_statistics=True,
-        row_group_size=1_000_000,
-    )
+    pq.write_table(round_doubles(table), path, row_group_size=row_group_rows, **_PARQUET)
+
+
+def write_parquet_stream(
+    batches: pa.RecordBatchReader,
+    path: Path,
+    columns: tuple[ColumnDoc, ...] = (),
+    row_group_rows: int = STREAMED_ROW_GROUP_ROWS,
+) -> int:
+    """Write a stream of batches to Parquet, one row group at a time; return the rows written.
+
+    The bytes are those :func:`write_parquet` writes for the whole table with
+    ``row_group_rows`` (the writer's output does not depend on how the rows arrive in
+    batches, and one call per row group writes what one call with that row group size
+    writes), so a streamed output is the same file whichever engine fetched it and however it
+    was batched. The column documentation goes into the schema as in :func:`with_column_docs`.
+    """
+    schema = with_column_docs(batches.schema.empty_table(), columns).schema
+    pending: list[pa.RecordBatch] = []
+    held = written = 0
+
+    def flush(writer: pq.ParquetWriter) -> None:
+        nonlocal held, written
+        table = pa.Table.from_batches(pending, batches.schema)
+        writer.write_table(round_doubles(table.cast(schema)), row_group_size=row_group_rows)
+        written += table.num_rows
+        pending.clear()
+        held = 0
+
+    with pq.ParquetWriter(path, schema, **_PARQUET) as writer:
+        for batch in batches:
+            while batch.num_rows:
+                part = batch.slice(0, row_group_rows - held)
+                pending.append(part)
+                held += part.num_rows
+                batch = batch.slice(part.num_rows)
+                if held == row_group_rows:
+                    flush(writer)
+        if pending or not written:  # the last rows; an empty output is one empty row group
+            flush(writer)
+    return written
+
+
+def parquet_sink(
+    path: Path, columns: tuple[ColumnDoc, ...] = ()
+) -> Callable[[pa.RecordBatchReader], int]:
+    """A sink for :meth:`pipeline.engine.Engine.run` writing an output to ``path`` as it comes."""
+    return lambda batches: write_parquet_stream(batches, path, columns)
 
 
 COLUMN_DOCS_KEY = "ascertain.columns"
@@ -178,7 +240,7 @@ def write_outputs(
     columns: tuple[ColumnDoc, ...],
     manifest: dict[str, Any],
     run_info: dict[str, Any],
-    persontime: pa.Table | None = None,
+    persontime: pa.Table | Path | None = None,
     persontime_columns: tuple[ColumnDoc, ...] = (),
     matched: pa.Table | None = None,
     matched_columns: tuple[ColumnDoc, ...] = (),
@@ -194,7 +256,8 @@ def write_outputs(
     manifest gets the hash of every data file; ``run.json`` (when and how long) is the only
     file that differs between runs. ``persontime`` (with its dictionary) is written as
     ``persontime.parquet`` when the study asks for it, ``matched`` as ``matched.parquet`` and
-    ``episodes`` as ``episodes.parquet``.
+    ``episodes`` as ``episodes.parquet``; an output given as a path is a file the build
+    already wrote (streamed from the engine, :func:`parquet_sink`), moved in as it is.
 
     Raises:
         OutputFolderError: ``target`` holds files ascertain did not write there.
@@ -218,7 +281,10 @@ def write_outputs(
         write_csv(quality, QUALITY_COLUMNS, staged / "quality.csv")
         write_dictionary(columns, staged, further)
         for file, table, docs in extra:
-            write_parquet(with_column_docs(table, docs), staged / file)
+            if isinstance(table, Path):
+                shutil.move(table, staged / file)
+            else:
+                write_parquet(with_column_docs(table, docs), staged / file)
         hashed = {name: sha256_file(staged / name) for name in data_files}
         write_json({**manifest, "outputs": hashed}, staged / MANIFEST)
         write_json(run_info, staged / "run.json")

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import dataclasses
 import datetime as dt
+import tempfile
 from concurrent.futures import ThreadPoolExecutor
 from contextlib import ExitStack
 from dataclasses import dataclass, field
@@ -28,13 +29,15 @@ from pipeline.outputs import (
     extract_inputs,
     extract_root,
     make_manifest,
+    parquet_sink,
     study_keys,
     write_outputs,
 )
 from pipeline.outputs._matched import matched_outputs
 from pipeline.outputs._ownership import BUILD
 from pipeline.outputs._quality_log import check_row_accounting, locate_first_rows
-from pipeline.workflows.prepare import BuildOptions, prepare
+from pipeline.outputs._write import PERSONTIME
+from pipeline.workflows.prepare import BuildOptions, Prepared, prepare
 
 __all__ = ["BuildOptions", "BuildResult", "build_study", "evidence_counts", "plan_study"]
 
@@ -96,6 +99,13 @@ def build_study(
             holding files ascertain did not write (OutputFolderError); nothing is written.
     """
     ready = prepare(study_file, options, owner=BUILD)
+    # Person-time is streamed from the engine into a file here, then moved into the output.
+    with tempfile.TemporaryDirectory(prefix="ascertain-build-") as scratch:
+        return _run_and_write(ready, Path(scratch), on_stage)
+
+
+def _run_and_write(ready: Prepared, scratch: Path, on_stage: StageCallback | None) -> BuildResult:
+    """Run the prepared study, check the row accounting and usability, write the outputs."""
     loaded, plan, extract, engine = ready.loaded, ready.plan, ready.extract, ready.engine
     study, out, threads, notes = loaded.study, ready.out, ready.threads, ready.notes
     assert out is not None  # prepare resolves the folder when given an owner
@@ -112,7 +122,12 @@ def build_study(
         # Hashing the extract overlaps with the engine's work instead of adding to it.
         hashed_extract = hasher.submit(describe_files, extract_files, extract_root(extract))
         started = dt.datetime.now(dt.UTC)
-        run = engine.run(plan, tables, on_stage=on_stage)
+        streamed = {o: scratch / PERSONTIME for o, *_ in plan.outputs if o == "persontime"}
+        sinks = {
+            o: parquet_sink(path, dict(plan.output_columns).get(o, ()))
+            for o, path in streamed.items()
+        }
+        run = engine.run(plan, tables, on_stage=on_stage, sinks=sinks)
         finished = dt.datetime.now(dt.UTC)
         extract_entries = hashed_extract.result()
     quality = check_row_accounting(run.outputs["quality"], run.outputs["rows_read"])
@@ -151,11 +166,7 @@ def build_study(
         keys=study_keys(study),
         rows={
             "cohort": run.outputs["cohort"].num_rows,
-            **(
-                {"persontime": run.outputs["persontime"].num_rows}
-                if "persontime" in run.outputs
-                else {}
-            ),
+            **run.streamed,
             **({"matched": matched.num_rows} if matched is not None else {}),
             **({"episodes": run.outputs["episodes"].num_rows} if "episodes" in run.outputs else {}),
             **{row["source_table"]: row["n_rows"] for row in run.outputs["rows_read"].to_pylist()},
@@ -204,7 +215,7 @@ def build_study(
         columns=plan.columns,
         manifest=manifest,
         run_info=run_info,
-        persontime=run.outputs.get("persontime"),
+        persontime=streamed.get("persontime"),
         persontime_columns=dict(plan.output_columns).get("persontime", ()),
         matched=matched,
         matched_columns=dict(plan.output_columns).get("matched", ()),

@@ -2,16 +2,21 @@
 
 Only when the study names a reference rate table (``persontime: reference_rates:``, read by
 :mod:`pipeline.config._reference_rates`) and the build wrote ``persontime.parquet``. For each
-outcome the table names, the cohort's days at risk are summed by the study's age band (and by
-sex, from ``cohort.parquet``, and calendar year when the table is by them); each cell's
-person-years times the table's rate for the band holding it gives the expected events, and
-:func:`pipeline.stats.standardised_ratio` the ratio with its exact Poisson interval (the
-expected count fixed, the observed one Poisson).
+outcome the table names, the cohort's days at risk are summed by the study's age band, by sex
+(from ``cohort.parquet``) and, when the table is by year, by calendar year; each cell's
+person-years times the table's rate for the band holding it (for the cell's sex and year when
+the table is by them) gives its expected events. The SMR is given for the whole outcome, for
+each age band and for each sex, each with :func:`pipeline.stats.standardised_ratio` (the
+expected count fixed, the observed one Poisson, exact limits).
 
-Suppression: the observed count is the outcome's total events of the rates table, so it takes
-that row's key and is one cell of the report's linked system (it adds no new count). When it is
-hidden, the ratio and its interval are left out, since the ratio times the expected count gives
-it back; the expected count is shown (person-time times rates, not a count of patients).
+Suppression: the observed counts are cells of the report's one linked system. The outcome's
+count is the rates table's total row and each band's the rates table's band row (the same keys,
+so the same cells). The counts by sex are new cells: they add up to the outcome's total (the
+incidence table's incident cases), and each counts the incident cases of one sex, as Table 1's
+"incident" column does on its sex row, so it is described by those patients (:mod:`._cells`)
+and shares that cell's key. Where an observed count is hidden its SMR and interval are left
+out, since the SMR times the expected count gives it back; the expected count is shown
+(person-time times rates, not a count of patients).
 """
 
 from __future__ import annotations
@@ -26,28 +31,37 @@ from pipeline.config import LoadedStudy
 from pipeline.config._reference_rates import ReferenceRates, stratum_label
 from pipeline.errors import AscertainError
 from pipeline.outputs._manifest import sha256_file
+from pipeline.outputs.report._cells import Spec
 from pipeline.outputs.report._rates_since import SINCE_COLUMN
-from pipeline.outputs.report._suppression import Block, shown
-from pipeline.stats import DAYS_PER_YEAR, parse_age_band, standardised_ratio
+from pipeline.outputs.report._suppression import Block, keyed_frame, shown
+from pipeline.stats import DAYS_PER_YEAR, baseline_variables, parse_age_band, standardised_ratio
 
-__all__ = ["changed_reference", "expected_cells", "smr_summary"]
+__all__ = ["changed_reference", "expected_cells", "expected_frame", "smr_block", "smr_summary"]
 
 _ALL = "all"
+_MISSING = "missing"
+"""The sex of a patient whose sex is not recorded, as Table 1 labels it."""
 
 
-def expected_cells(
+def _sex_label() -> pl.Expr:
+    return pl.col("sex").cast(pl.String).fill_null(_MISSING)
+
+
+def expected_frame(
     persontime: pl.DataFrame, cohort: pl.DataFrame, table: ReferenceRates, outcome: str
-) -> tuple[list[int], list[float], list[float]]:
-    """One outcome's events, person-years and reference rate per cell of the table's strata.
+) -> pl.DataFrame:
+    """One outcome's events, person-years and reference rate per cell of band, sex and year.
 
     Args:
         persontime: The build's person-time table.
-        cohort: The analysis table (for each patient's sex, when the table is by sex).
+        cohort: The analysis table (each patient's sex).
         table: The reference rates.
         outcome: The outcome.
 
     Returns:
-        Events, person-years and rate per 1,000 person-years, one entry per cell, sorted.
+        Columns ``age_band_start``, ``age_band``, ``sex`` (``missing`` where not recorded),
+        ``calendar_year`` (only when the table is by year), ``events``, ``person_years``,
+        ``rate`` (per 1,000 person-years) and ``expected``; sorted by the keys.
 
     Raises:
         AscertainError: A cell has no rate in the table, naming its band and stratum (the
@@ -55,10 +69,8 @@ def expected_cells(
     """
     days, events = names.persontime_columns(outcome)
     frame = persontime.filter(pl.col(days).is_not_null())
-    keys = ["age_band"]
-    if table.by_sex:
-        frame = frame.join(cohort.select("patient_id", "sex"), on="patient_id", how="left")
-        keys.append("sex")
+    frame = frame.join(cohort.select("patient_id", "sex"), on="patient_id", how="left")
+    keys = ["age_band_start", "age_band", "sex"]
     if table.by_year:
         if "calendar_year" not in frame.columns:
             raise AscertainError(
@@ -67,28 +79,146 @@ def expected_cells(
             )
         keys.append("calendar_year")
     cells = (
-        frame.group_by(keys)
+        frame.with_columns(_sex_label().alias("sex"))
+        .group_by(keys)
         .agg(
             pl.col(events).cast(pl.Int64).sum().alias("events"),
             pl.col(days).cast(pl.Int64).sum().alias("days"),
         )
         .sort(keys)
     )
-    counts, person_years, rates = [], [], []
+    rates = []
     for r in cells.iter_rows(named=True):
-        sex, year = r.get("sex"), r.get("calendar_year")
-        band = parse_age_band(r["age_band"])
-        found = table.rate(outcome, sex, None if year is None else int(year), band)
+        year = r.get("calendar_year")
+        sex = None if r["sex"] == _MISSING else r["sex"]
+        found = table.rate(
+            outcome, sex, None if year is None else int(year), parse_age_band(r["age_band"])
+        )
         if found is None:
-            stratum = (outcome, sex, None if year is None else int(year))
+            stratum = (outcome, sex if table.by_sex else None, None if year is None else int(year))
             raise AscertainError(
                 f"the reference rates {table.file.name} have no rate for the age band "
                 f"{r['age_band']} ({stratum_label(stratum)}) of the cohort"
             )
-        counts.append(int(r["events"]))
-        person_years.append(r["days"] / DAYS_PER_YEAR)
         rates.append(found.rate)
-    return counts, person_years, rates
+    person_years = pl.col("days") / DAYS_PER_YEAR
+    return (
+        cells.with_columns(person_years.alias("person_years"), pl.Series("rate", rates, pl.Float64))
+        .with_columns((pl.col("person_years") * pl.col("rate") / 1000.0).alias("expected"))
+        .drop("days")
+    )
+
+
+def expected_cells(
+    persontime: pl.DataFrame, cohort: pl.DataFrame, table: ReferenceRates, outcome: str
+) -> tuple[list[int], list[float], list[float]]:
+    """Events, person-years and rate per cell of :func:`expected_frame`, as lists."""
+    frame = expected_frame(persontime, cohort, table, outcome)
+    return frame["events"].to_list(), frame["person_years"].to_list(), frame["rate"].to_list()
+
+
+def _events_of_sex(outcome: str, sex: str) -> Spec:
+    """Whom an outcome's events of one sex count (as Table 1's incident column, sex row)."""
+    return ((f"at|{outcome}", "true"), (f"inc|{outcome}", "true"), ("sex", sex))
+
+
+def _cohort_events_of_sex(cohort: pl.DataFrame, outcome: str) -> dict[str, int]:
+    incident = pl.col(names.outcome_columns(outcome).incident).fill_null(value=False)
+    counted = cohort.filter(incident).group_by(_sex_label().alias("sex")).len()
+    return {str(s): int(n) for s, n in counted.iter_rows()}
+
+
+def _row(outcome: str, band: str, sex: str, key: str, cells: pl.DataFrame) -> dict[str, Any]:
+    return {
+        "outcome": outcome,
+        "age_band": band,
+        "sex": sex,
+        "events": int(cells["events"].sum()),
+        "events#key": key,
+        "person_years": cells["person_years"].to_list(),
+        "rates": cells["rate"].to_list(),
+        "cell_events": cells["events"].to_list(),
+    }
+
+
+def smr_block(
+    persontime: pl.DataFrame, cohort: pl.DataFrame, table: ReferenceRates, rates: Block
+) -> Block:
+    """Observed events of each outcome, age band and sex as one block of the suppression system.
+
+    Args:
+        persontime: The build's person-time table.
+        cohort: The analysis table.
+        table: The reference rates.
+        rates: The rates block (:func:`pipeline.outputs.report._rates.rates_block`): its total
+            and band rows give the outcome's and each band's count and key.
+
+    Returns:
+        One row per outcome (``all``/``all``), age band (band/``all``) and sex (``all``/sex),
+        with ``events``, ``events#key`` and each row's cells (person-years, rates, events) for
+        its expected count; an outcome the table does not name has its total row only.
+
+    Raises:
+        AscertainError: A count differs from the rates table's or from the cohort's incident
+            cases of a sex (the person-time accounting check makes both impossible).
+    """
+    frame = rates.frame.filter(pl.col("calendar_year") == _ALL)
+    if SINCE_COLUMN in frame.columns:
+        frame = frame.filter(pl.col(SINCE_COLUMN) == _ALL)
+    keys = {(r["outcome"], r["age_band"]): r for r in frame.iter_rows(named=True)}
+    described = "sex" in baseline_variables(cohort)
+    rows: list[dict[str, Any]] = []
+    relations = []
+    meanings: dict[str, Spec] = {}
+    empty = pl.DataFrame(
+        schema={"events": pl.Int64, "person_years": pl.Float64, "rate": pl.Float64}
+    )
+    for o in dict.fromkeys(frame["outcome"].to_list()):
+        total = keys[(o, _ALL)]
+        if o not in table.outcomes:
+            rows.append(
+                _row(o, _ALL, _ALL, total["events#key"], empty) | {"events": total["events"]}
+            )
+            continue
+        cells = expected_frame(persontime, cohort, table, o)
+        parts = [(_ALL, _ALL, total, cells)]
+        parts += [
+            (band, _ALL, keys[(o, band)], cells.filter(pl.col("age_band") == band))
+            for band in dict.fromkeys(cells["age_band"].to_list())
+        ]
+        for band, sex, known, part in parts:
+            if int(part["events"].sum()) != known["events"]:  # the same cells, so never
+                raise AscertainError(
+                    f"the observed events of {o} ({band}) differ from the rates table"
+                )
+            rows.append(_row(o, band, sex, known["events#key"], part))
+        cohort_counts = _cohort_events_of_sex(cohort, o)
+        sex_keys = []
+        for sex in sorted(set(cells["sex"].to_list())):
+            key = f"pt|{o}|sex|{sex}"
+            row = _row(o, _ALL, sex, key, cells.filter(pl.col("sex") == sex))
+            if row["events"] != cohort_counts.get(sex, 0):  # the accounting check, so never
+                raise AscertainError(
+                    f"the observed events of {o} (sex {sex}) differ from the cohort"
+                )
+            rows.append(row)
+            sex_keys.append(key)
+            if described:
+                meanings[key] = _events_of_sex(o, sex)
+        relations.append(((total["events#key"], -1), *((k, 1) for k in sex_keys)))
+    schema = {
+        "outcome": pl.String,
+        "age_band": pl.String,
+        "sex": pl.String,
+        "events": pl.Int64,
+        "events#key": pl.String,
+        "person_years": pl.List(pl.Float64),
+        "rates": pl.List(pl.Float64),
+        "cell_events": pl.List(pl.Int64),
+    }
+    return Block(
+        keyed_frame(rows, schema), ("events",), relations=tuple(relations), meanings=meanings
+    )
 
 
 def _rounded(value: float, digits: int = 2) -> float | None:
@@ -96,39 +226,30 @@ def _rounded(value: float, digits: int = 2) -> float | None:
 
 
 def smr_summary(
-    persontime: pl.DataFrame,
-    cohort: pl.DataFrame,
-    table: ReferenceRates,
-    block: Block,
-    hidden: frozenset[str],
-    threshold: int,
+    block: Block, table: ReferenceRates, hidden: frozenset[str], threshold: int
 ) -> pl.DataFrame:
-    """Each outcome's observed and expected events and SMR as published (``summary/smr.csv``).
+    """Observed and expected events and SMR as published (``summary/smr.csv``).
+
+    One row per outcome (``age_band`` and ``sex`` ``all``), then per age band and per sex.
 
     Args:
-        persontime: The build's person-time table.
-        cohort: The analysis table.
+        block: The SMR block (:func:`smr_block`).
         table: The reference rates.
-        block: The rates block (its total rows give each outcome's observed count and key).
         hidden: The hidden keys of the report's suppression.
         threshold: The small-cell threshold.
     """
-    totals = block.frame.filter((pl.col("age_band") == _ALL) & (pl.col("calendar_year") == _ALL))
-    if SINCE_COLUMN in totals.columns:
-        totals = totals.filter(pl.col(SINCE_COLUMN) == _ALL)
     rows: list[dict[str, Any]] = []
-    for r in totals.iter_rows(named=True):
+    for r in block.frame.iter_rows(named=True):
         o, key = r["outcome"], r["events#key"]
-        row: dict[str, Any] = {"outcome": o, "reference": table.name}
-        row |= {"observed": shown(r["events"], key, hidden, threshold), "expected": None}
-        row |= {"smr": None, "smr_low": None, "smr_high": None, "note": None}
+        row: dict[str, Any] = {"outcome": o, "age_band": r["age_band"], "sex": r["sex"]}
+        row |= {"reference": table.name, "observed": shown(r["events"], key, hidden, threshold)}
+        row |= {"expected": None, "smr": None, "smr_low": None, "smr_high": None, "note": None}
         if o not in table.outcomes:
             rows.append(row | {"note": "no reference rates for this outcome in the table"})
             continue
-        events, person_years, rates = expected_cells(persontime, cohort, table, o)
-        if sum(events) != r["events"]:  # the same cells as the rates table, so never
-            raise AscertainError(f"the observed events of {o} differ from the rates table")
-        ratio = standardised_ratio(events, person_years, rates, reference_per=1000.0)
+        ratio = standardised_ratio(
+            r["cell_events"], r["person_years"], r["rates"], reference_per=1000.0
+        )
         row["expected"] = _rounded(ratio.expected)
         if key in hidden:
             rows.append(row | {"note": "left out: the observed count is suppressed"})
@@ -146,6 +267,8 @@ def smr_summary(
         )
     schema = {
         "outcome": pl.String,
+        "age_band": pl.String,
+        "sex": pl.String,
         "reference": pl.String,
         "observed": pl.String,
         "expected": pl.Float64,

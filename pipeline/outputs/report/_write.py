@@ -37,7 +37,7 @@ from pipeline.outputs.report._rates import (
     read_persontime,
     standardised_summary,
 )
-from pipeline.outputs.report._smr import changed_reference, smr_summary
+from pipeline.outputs.report._smr import changed_reference, smr_block, smr_summary
 from pipeline.outputs.report._suppression import hidden_keys, masked
 from pipeline.outputs.report._table_one import (
     differenced_means,
@@ -319,6 +319,9 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
     if persontime is not None:
         rates = rates_block(persontime, outcomes, {ci.outcome: ci.events for _, ci, *_ in results})
         blocks.append(rates)
+        if study.reference is not None:  # the study names reference rates: SMRs
+            smr = smr_block(persontime, cohort, study.reference, rates)
+            blocks.append(smr)
     hidden = hidden_keys([*blocks, at_risk, *quality_parts], t, cohort, outcomes)
     curves = {o: outcome_curves(cohort, o, t) for o in outcomes if f"events|{o}" not in hidden}
     # The headline cumulative incidence is the released curve's value at its last step, not
@@ -350,8 +353,8 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
     if persontime is not None:
         summaries["rates"] = rates_summary(rates, hidden, t)
         summaries["standardised_rates"] = standardised_summary(rates, hidden)
-        if study.reference is not None:  # the study names reference rates: SMRs
-            summaries["smr"] = smr_summary(persontime, cohort, study.reference, rates, hidden, t)
+        if study.reference is not None:
+            summaries["smr"] = smr_summary(smr, study.reference, hidden, t)
     audit = read_audit(output_dir)  # the codes section only when `codes` wrote here
     if audit is not None and audit[1]:
         study.notes.append(RELEASED_NOTE)
