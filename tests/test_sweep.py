@@ -235,3 +235,51 @@ def test_check_checks_a_sweep_file_with_its_variants(tmp_path: Path) -> None:
     (problem,) = check_paths([file]).problems
     assert problem.code == "unknown-key"
     assert problem.line == 5
+
+
+def test_a_variant_a_build_would_refuse_fails_the_sweep_naming_it(tmp_path: Path) -> None:
+    from pipeline.errors import UnusableBuildError
+    from pipeline.workflows.build import BuildOptions, build_study
+    from pipeline.workflows.sweep import write_variant_inputs
+
+    # No encounter of the fixture falls in 1990, so this variant's cohort is empty; the study
+    # does not allow an empty cohort (outputs/_usability.py).
+    file = _sweep(
+        tmp_path,
+        "variants:\n  too_early:\n"
+        "    study.index.first_encounter.between: [1990-01-01, 1990-12-31]\n",
+    )
+    with pytest.raises(UnusableBuildError) as swept:
+        run_sweep(file, SweepOptions(threads=1))
+    assert str(swept.value).startswith("variant 'too_early': the cohort is empty")
+    sweep = load_sweep(file)
+    study = write_variant_inputs(
+        sweep, sweep.variant("too_early"), tmp_path / "v", tmp_path / "v" / "out"
+    )
+    with pytest.raises(UnusableBuildError) as built:
+        build_study(study, BuildOptions(threads=1))
+    assert str(built.value) == str(swept.value).removeprefix("variant 'too_early': ")
+    assert not (tmp_path / "v" / "out").exists()
+
+
+def test_a_failed_check_stage_names_the_variants_that_run_it(window_run) -> None:  # type: ignore[no-untyped-def]
+    from pipeline.errors import EngineError
+    from pipeline.workflows.sweep import _naming_variants
+
+    merged = window_run.merged
+    own = next(n for n in merged.names["window_120"].values() if n.endswith("__window_120"))
+    err = _naming_variants(EngineError("3 rows", code="data-check-failed", where=own), merged)
+    assert err.code == "data-check-failed"
+    assert str(err).endswith("3 rows (stage of window_120)")
+    shared = merged.names["base"]["patient_base"]
+    err = _naming_variants(EngineError("3 rows", code="data-check-failed", where=shared), merged)
+    assert str(err).endswith("(stage of every variant)")
+
+
+def test_the_sweep_folder_may_not_lie_inside_the_extract() -> None:
+    from pipeline.workflows.sweep import check_sweep_folder
+
+    extract = (FIXTURE / "../designs/horizon_years").resolve()
+    with pytest.raises(OutputFolderError, match="extract"):
+        check_sweep_folder(FIXTURE / "sweep.yaml", extract / "sweep_out")
+    assert not (extract / "sweep_out").exists()
