@@ -37,7 +37,8 @@ from pipeline.extract import ExtractTable, HadoopFiles, is_hadoop_uri, open_extr
 from pipeline.outputs import check_usable
 from pipeline.outputs._ownership import Owner, check_folder, install, staging
 from pipeline.outputs._quality_log import check_row_accounting, locate_first_rows
-from pipeline.workflows._sweep_numbers import COLUMNS, released_rows, sweep_rows
+from pipeline.outputs.report._sweep import SweepFacts
+from pipeline.workflows._sweep_numbers import COLUMNS, sweep_rows
 from pipeline.workflows.build import build_study
 from pipeline.workflows.prepare import BuildOptions, local_inputs, resolve_extract, study_engine
 
@@ -310,37 +311,74 @@ def check_sweep_folder(sweep_file: Path, out: Path, extract: Path | str | None =
 
 
 def write_sweep(run: SweepRun, out: Path, options: SweepOptions | None = None) -> list[Path]:
-    """Write the sweep's released table (``sweep.csv``), its report and kept variants.
+    """Write the sweep's released table (``sweep.csv``), its page and kept variants.
 
-    ``sweep.csv`` and ``sweep.html`` are suppressed for release (one linked system of counts
-    over every variant, :func:`released_rows`). A kept variant is written as its study files
-    (``variants/<name>/``) and a full build of them (``keep/<name>/``), which ``verify``
-    accepts; it is built separately, so each costs one build.
+    A kept variant is written as its study files (``variants/<name>/``) and a full build of
+    them (``keep/<name>/``), which ``verify`` accepts; it is built separately, so each costs
+    one build. Its ``report.html`` is written too, with the sweep's section. ``sweep.csv``,
+    ``sweep.html`` and those reports are suppressed as one linked system of counts over every
+    variant (:func:`joint_release`).
 
     Raises:
         AscertainError: The folder holds foreign files, or a kept variant's build fails.
     """
-    from pipeline.outputs.report._sweep import render_sweep_html
+    from pipeline.outputs.report._sweep import SECTION, sweep_frame, sweep_page, sweep_section
+    from pipeline.outputs.report._write import finish_report, read_report
+    from pipeline.workflows._sweep_release import joint_release
 
     options = options or SweepOptions()
     out = out.resolve()
-    threshold = run.sweep.base.study.output.small_cell_threshold
-    released = released_rows(run.rows, threshold)
-    names = ["sweep.csv", "sweep.html"]
     with staging(out) as staged:
+        reports = {
+            name: read_report(staged / "keep" / name, _keep(run, name, staged, options))
+            for name in options.keep
+        }
+        base_threshold = run.sweep.base.study.output.small_cell_threshold
+        released, hidden, threshold = joint_release(run.rows, base_threshold, reports)
         lines = [",".join(COLUMNS)]
         lines += [",".join(_cell(row[c]) for c in COLUMNS) for row in released]
         (staged / "sweep.csv").write_text("\n".join(lines) + "\n", encoding="utf-8")
-        html = render_sweep_html(run, released, threshold)
+        facts = sweep_facts(run)
+        html = sweep_page(facts, released, threshold)
         (staged / "sweep.html").write_text(html, encoding="utf-8")
-        for name in options.keep:
-            names += _keep(run, name, staged, out, options)
+        for name, parts in reports.items():
+            section = sweep_section(facts, released, threshold, current=name)
+            finish_report(parts, hidden[name], {SECTION: (section, sweep_frame(released))})
+        kept = {(folder, name) for name in options.keep for folder in ("variants", "keep")}
+        names = ["sweep.csv", "sweep.html"]
+        names += sorted(
+            p.relative_to(staged).as_posix()
+            for p in staged.rglob("*")
+            if p.is_file() and p.relative_to(staged).parts[:2] in kept
+        )
         install(staged, out, SWEEP, names)
     return [out / name for name in names]
 
 
-def _keep(run: SweepRun, name: str, staged: Path, out: Path, options: SweepOptions) -> list[str]:
-    """Write one variant's study files and build them into the staging folder."""
+def sweep_facts(run: SweepRun) -> SweepFacts:
+    """What the sweep's section says about the sweep besides its numbers."""
+    sweep = run.sweep
+    catalog = sweep.base.catalog
+    return SweepFacts(
+        name=sweep.name,
+        title=sweep.title,
+        base_file=sweep.base.file.name,
+        overrides=tuple(
+            (v.name, tuple(f"{o.target} = {o.value}" for o in v.overrides)) for v in sweep.variants
+        ),
+        stages_run=len(run.merged.plan.stages),
+        stages_alone=run.merged.stages_alone,
+        shared=len(run.merged.shared),
+        titles={o: catalog.get(o).title for o in sweep.outcomes},
+    )
+
+
+def _keep(run: SweepRun, name: str, staged: Path, options: SweepOptions) -> Path:
+    """Write one variant's study files and build them into the staging folder.
+
+    Returns:
+        The study file the variant was built from.
+    """
     sweep = run.sweep
     inputs, build = staged / "variants" / name, staged / "keep" / name
     if name == BASE:
@@ -348,12 +386,7 @@ def _keep(run: SweepRun, name: str, staged: Path, out: Path, options: SweepOptio
     else:
         study = write_variant_inputs(sweep, sweep.variant(name), inputs, build)
     build_study(study, options.build_options(out=build))
-    written = [p for p in staged.rglob("*") if p.is_file()]
-    return [
-        p.relative_to(staged).as_posix()
-        for p in written
-        if p.relative_to(staged).parts[:2] in {("variants", name), ("keep", name)}
-    ]
+    return study
 
 
 def _cell(value: Any) -> str:
