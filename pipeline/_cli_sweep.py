@@ -44,7 +44,8 @@ def sweep_command(
 
     Writes sweep.csv and sweep.html (suppressed for release) and ascertain-sweep.json; with
     --keep, variants/NAME/ (the variant's study files) and keep/NAME/ (its build, which
-    `ascertain verify` accepts).
+    `ascertain verify` accepts, and its report.html with the sweep's section). Each variant
+    passes a build's checks first; --engine spark runs the sweep in one Spark session.
 
     Example: ascertain sweep definitions/studies/orvane_hf_window_sweep.yaml --out out/sweep
     """
