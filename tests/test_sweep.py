@@ -386,3 +386,56 @@ def test_the_section_draws_one_plot_per_outcome_and_no_point_for_a_hidden_count(
     assert html.count("not shown (hidden count)") == 2
     assert '<td class="num n">&lt;5</td>' in html
     assert '<td class="num n">*</td>' in html
+
+
+def test_the_sweep_and_the_kept_reports_are_safe_read_together(
+    kept_sweep: Path, window_run
+) -> None:  # type: ignore[no-untyped-def]
+    # A reader holding sweep.csv and the kept reports writes down the sweep's identities (as in
+    # test_sweep_demo) and, per kept report, its incidence table's (events + non-events = at
+    # risk) and the twins: the report's at risk and events are the sweep row's. No hidden count
+    # of either may be narrowed below the threshold (5, the fixture's study).
+    from pipeline.stats._disclosure import feasible_range
+    from pipeline.workflows._sweep_numbers import COUNTS
+
+    from .test_sweep_demo import _reader_system
+
+    released = _csv(kept_sweep / "sweep.csv")
+    for row in released:
+        for key in COUNTS:
+            row[key] = row[key] or None
+    values, relations, unknown, _ = _reader_system(released, window_run.rows)
+    hidden = [
+        f"{k}|{r['variant']}" + ("" if k == "cohort" else f"|{r['outcome']}")
+        for r in released
+        for k in COUNTS
+        if r[k] in ("*", "<5")
+    ]
+    truth = {(r["variant"], r["outcome"]): r for r in window_run.rows}
+    for kept in ("base", "window_730"):
+        for shown in _csv(kept_sweep / "keep" / kept / "summary" / "incidence.csv"):
+            o, exact = shown["outcome"], truth[(kept, shown["outcome"])]
+            cells = {
+                "at_risk": (exact["at_risk"], shown["at_risk"]),
+                "events": (exact["incident"], shown["events"]),
+                "nonevents": (exact["at_risk"] - exact["incident"], None),
+            }
+            for name, (value, text) in cells.items():
+                values[f"report|{name}|{kept}|{o}"] = value
+                if text is None or text in ("*", "<5"):
+                    unknown.add(f"report|{name}|{kept}|{o}")
+                    if text is not None:
+                        hidden.append(f"report|{name}|{kept}|{o}")
+            relations += [
+                (
+                    (f"report|events|{kept}|{o}", 1),
+                    (f"report|nonevents|{kept}|{o}", 1),
+                    (f"report|at_risk|{kept}|{o}", -1),
+                ),
+                ((f"at_risk|{kept}|{o}", 1), (f"report|at_risk|{kept}|{o}", -1)),
+                ((f"incident|{kept}|{o}", 1), (f"report|events|{kept}|{o}", -1)),
+            ]
+    assert any(h.startswith("report|") for h in hidden)  # the check is not empty
+    for name in sorted(set(hidden)):
+        low, high = feasible_range(name, values, relations, unknown)
+        assert high - low >= 5, (name, low, high)
