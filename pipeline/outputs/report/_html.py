@@ -253,16 +253,21 @@ def _manifest(manifest: dict[str, Any]) -> str:
     )
 
 
-def _cautions(threshold: int, notes: list[str]) -> str:
+REPORT_RELEASED = (
+    "Only this report and summary/ are suppressed: cohort.parquet and the build files next to "
+    "it hold raw counts and must not be shared."
+)
+"""What the report's cautions say is released; another page names its own released files."""
+
+
+def _cautions(threshold: int, notes: list[str], released: str = REPORT_RELEASED) -> str:
     items = [
         "For research use only.",
         "Not for clinical decisions about individual patients.",
         "Validate every condition definition locally before relying on it.",
         f'Counts below {threshold} are suppressed (shown as "&lt;{threshold}"); a count that '
         'would let one be worked out by subtraction is suppressed too (shown as "*"); '
-        "percentages, rates and intervals from suppressed counts are not shown. Only this report "
-        "and summary/ are suppressed: cohort.parquet and the build files next to it hold raw "
-        "counts and must not be shared.",
+        "percentages, rates and intervals from suppressed counts are not shown. " + released,
         "Follow your local data-governance rules before sharing this report.",
     ]
     notes_html = "".join(f"<li>{escape(n)}</li>" for n in notes)
@@ -384,6 +389,9 @@ def page(
     )
 
 
-def cautions(threshold: int, notes: list[str]) -> str:
-    """The cautions box every released page opens with (research use, suppression, sharing)."""
-    return _cautions(threshold, notes)
+def cautions(threshold: int, notes: list[str], released: str = REPORT_RELEASED) -> str:
+    """The cautions box every released page opens with (research use, suppression, sharing).
+
+    ``released`` says which files are suppressed (and which are not) for this page.
+    """
+    return _cautions(threshold, notes, released)

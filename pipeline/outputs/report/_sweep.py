@@ -188,7 +188,13 @@ def sweep_page(facts: SweepFacts, released: list[dict[str, Any]], threshold: int
         title=facts.title,
         eyebrow=f"Definition sweep · {facts.name}",
         meta=f"Base study {facts.base_file} · small-cell threshold {threshold}",
-        cautions=cautions(threshold, []),
+        cautions=cautions(
+            threshold,
+            [],
+            "Only sweep.csv, this page and the reports of kept variants (keep/NAME/report.html "
+            "and summary/) are suppressed: every other file of the sweep's folder holds raw "
+            "counts and must not be shared.",
+        ),
         sections=[(SECTION, "Definition sensitivity", sweep_section(facts, released, threshold))],
         footer="Written by ascertain sweep. The table is also in sweep.csv.",
     )
