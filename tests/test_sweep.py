@@ -268,11 +268,14 @@ def test_a_failed_check_stage_names_the_variants_that_run_it(window_run) -> None
 
     merged = window_run.merged
     own = next(n for n in merged.names["window_120"].values() if n.endswith("__window_120"))
-    err = _naming_variants(EngineError("3 rows", code="data-check-failed", where=own), merged)
+    # The engine names a failing stage as where="stage <name>" (engine/base.py).
+    where = f"stage {own}"
+    err = _naming_variants(EngineError("3 rows", code="data-check-failed", where=where), merged)
     assert err.code == "data-check-failed"
-    assert str(err).endswith("3 rows (stage of window_120)")
+    assert str(err) == f"stage {own} [data-check-failed] 3 rows (stage of window_120)"
     shared = merged.names["base"]["patient_base"]
-    err = _naming_variants(EngineError("3 rows", code="data-check-failed", where=shared), merged)
+    where = f"stage {shared}"
+    err = _naming_variants(EngineError("3 rows", code="data-check-failed", where=where), merged)
     assert str(err).endswith("(stage of every variant)")
 
 

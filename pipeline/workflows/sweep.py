@@ -197,10 +197,12 @@ def check_variant(
 
 
 def _naming_variants(err: EngineError, merged: MergedPlan) -> EngineError:
-    """The engine's error with the variants that use the failing stage named, if it is one."""
-    users = [
-        key for key, stages in merged.names.items() if err.where and err.where in stages.values()
-    ]
+    """The engine's error with the variants that run the failing stage named, if it is one.
+
+    The engine names a failing stage as ``where="stage <name>"`` (``engine/base.py``).
+    """
+    stage = (err.where or "").removeprefix("stage ")
+    users = [key for key, stages in merged.names.items() if stage in stages.values()]
     if not users:
         return err
     which = "every variant" if len(users) == len(merged.names) else ", ".join(users)
