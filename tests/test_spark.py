@@ -309,3 +309,24 @@ def test_reliable_stage_storage_gives_the_same_rows(
     assert result.engine_info["stage_storage"] == storage
     # The run's own checkpoint subfolder is removed; nothing else in the folder is touched.
     assert sorted(p.name for p in folder.iterdir()) == ["someone-elses.txt"]
+
+
+def test_a_sweep_on_spark_writes_the_same_table_as_on_duckdb(session: Any, tmp_path: Path) -> None:
+    # One variant of the hand-made window fixture (tests/fixtures/sweep_window): a Spark stage
+    # costs about a second here, so the sweep is kept to its base and one variant.
+    base = (ROOT / "tests" / "fixtures" / "sweep_window" / "study.yaml").as_posix()
+    sweep = tmp_path / "sweep.yaml"
+    sweep.write_text(
+        f"sweep: spark\nbase: {base}\nvariants:\n  window_730:\n"
+        "    study.definition_changes.heart_failure.two heart failure codes.within_days: 730\n",
+        encoding="utf-8",
+    )
+    outs = {}
+    for engine in ("duckdb", "spark"):
+        outs[engine] = tmp_path / engine
+        args = ["sweep", str(sweep), "--out", str(outs[engine]), "--engine", engine, "--quiet"]
+        result = CliRunner().invoke(app, args)
+        assert result.exit_code == 0, result.output
+    duck, spark = ((outs[e] / "sweep.csv").read_bytes() for e in ("duckdb", "spark"))
+    assert spark == duck
+    assert b"window_730,no,heart_failure,14," in spark  # the fixture's README: 14 patients

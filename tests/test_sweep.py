@@ -235,3 +235,210 @@ def test_check_checks_a_sweep_file_with_its_variants(tmp_path: Path) -> None:
     (problem,) = check_paths([file]).problems
     assert problem.code == "unknown-key"
     assert problem.line == 5
+
+
+def test_a_variant_a_build_would_refuse_fails_the_sweep_naming_it(tmp_path: Path) -> None:
+    from pipeline.errors import UnusableBuildError
+    from pipeline.workflows.build import BuildOptions, build_study
+    from pipeline.workflows.sweep import write_variant_inputs
+
+    # No encounter of the fixture falls in 1990, so this variant's cohort is empty; the study
+    # does not allow an empty cohort (outputs/_usability.py).
+    file = _sweep(
+        tmp_path,
+        "variants:\n  too_early:\n"
+        "    study.index.first_encounter.between: [1990-01-01, 1990-12-31]\n",
+    )
+    with pytest.raises(UnusableBuildError) as swept:
+        run_sweep(file, SweepOptions(threads=1))
+    assert str(swept.value).startswith("variant 'too_early': the cohort is empty")
+    sweep = load_sweep(file)
+    study = write_variant_inputs(
+        sweep, sweep.variant("too_early"), tmp_path / "v", tmp_path / "v" / "out"
+    )
+    with pytest.raises(UnusableBuildError) as built:
+        build_study(study, BuildOptions(threads=1))
+    assert str(built.value) == str(swept.value).removeprefix("variant 'too_early': ")
+    assert not (tmp_path / "v" / "out").exists()
+
+
+def test_a_failed_check_stage_names_the_variants_that_run_it(window_run) -> None:  # type: ignore[no-untyped-def]
+    from pipeline.errors import EngineError
+    from pipeline.workflows.sweep import _naming_variants
+
+    merged = window_run.merged
+    own = next(n for n in merged.names["window_120"].values() if n.endswith("__window_120"))
+    # The engine names a failing stage as where="stage <name>" (engine/base.py).
+    where = f"stage {own}"
+    err = _naming_variants(EngineError("3 rows", code="data-check-failed", where=where), merged)
+    assert err.code == "data-check-failed"
+    assert str(err) == f"stage {own} [data-check-failed] 3 rows (stage of window_120)"
+    shared = merged.names["base"]["patient_base"]
+    where = f"stage {shared}"
+    err = _naming_variants(EngineError("3 rows", code="data-check-failed", where=where), merged)
+    assert str(err).endswith("(stage of every variant)")
+
+
+def test_the_sweep_folder_may_not_lie_inside_the_extract() -> None:
+    from pipeline.workflows.sweep import check_sweep_folder
+
+    extract = (FIXTURE / "../designs/horizon_years").resolve()
+    with pytest.raises(OutputFolderError, match="extract"):
+        check_sweep_folder(FIXTURE / "sweep.yaml", extract / "sweep_out")
+    assert not (extract / "sweep_out").exists()
+
+
+@pytest.fixture(scope="module")
+def kept_sweep(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    from typer.testing import CliRunner
+
+    from pipeline.cli import app
+
+    out = tmp_path_factory.mktemp("kept") / "out"
+    args = ["sweep", str(FIXTURE / "sweep.yaml"), "--out", str(out), "--quiet", "--threads", "1"]
+    result = CliRunner().invoke(app, [*args, "--keep", "base", "--keep", "window_730"])
+    assert result.exit_code == 0, result.output
+    return out
+
+
+def _csv(path: Path) -> list[dict[str, str]]:
+    with path.open(encoding="utf-8", newline="") as handle:
+        return list(csv.DictReader(handle))
+
+
+def _section(html: str) -> str:
+    start = html.index('<section id="sweep">')
+    return html[start : html.index("</section>", start)]
+
+
+@pytest.mark.parametrize("kept", ["base", "window_730"])
+def test_a_kept_variants_report_carries_the_sweep_section(kept_sweep: Path, kept: str) -> None:
+    import re
+
+    folder = kept_sweep / "keep" / kept
+    html = (folder / "report.html").read_text(encoding="utf-8")
+    section = _section(html)
+    assert '<a href="#sweep">Definition sensitivity</a>' in html  # in the report's contents
+    assert section.count("<svg") == 1  # one plot per outcome: the fixture compares one
+    assert f"{kept} (this report)" in section
+    released = _csv(kept_sweep / "sweep.csv")
+    # The section's count cells are the released table's, hidden counts marked as the report
+    # marks them (<5 or *, in class="n" cells).
+    cells = re.findall(r'<td class="num n">([^<]*)</td>', section)
+    counts = ("cohort", "prevalent", "at_risk", "incident", "gained", "lost")
+    assert [c.replace("&lt;", "<") for c in cells] == [r[c] for r in released for c in counts]
+    assert any(c in ("*", "&lt;5") for c in cells)
+    summary = _csv(folder / "summary" / "sweep.csv")
+    assert [[r[c] for c in counts] for r in summary] == [[r[c] for c in counts] for r in released]
+
+
+@pytest.mark.parametrize("kept", ["base", "window_730"])
+def test_counts_printed_in_the_report_and_the_sweep_are_hidden_alike(
+    kept_sweep: Path, kept: str
+) -> None:
+    # One linked system: the same patients counted in the report's incidence table and flow
+    # and in the sweep's row of that variant are shown (or hidden) alike.
+    folder = kept_sweep / "keep" / kept
+    (incidence,) = _csv(folder / "summary" / "incidence.csv")
+    row = next(r for r in _csv(kept_sweep / "sweep.csv") if r["variant"] == kept)
+    assert (row["at_risk"], row["incident"]) == (incidence["at_risk"], incidence["events"])
+    assert row["cohort"] == _csv(folder / "summary" / "flow.csv")[-1]["remaining"]
+    assert "cohort.parquet" in {p.name for p in folder.iterdir()}
+
+
+def test_the_sweep_page_is_the_report_section_in_the_report_chrome(kept_sweep: Path) -> None:
+    from pipeline.outputs.report._html import CSS
+
+    page = (kept_sweep / "sweep.html").read_text(encoding="utf-8")
+    kept = (kept_sweep / "keep" / "base" / "report.html").read_text(encoding="utf-8")
+    assert CSS in page
+    assert 'id="cautions"' in page
+    assert _section(page) == _section(kept).replace(" (this report)", "")
+
+
+def test_the_section_draws_one_plot_per_outcome_and_no_point_for_a_hidden_count() -> None:
+    from pipeline.outputs.report._sweep import SweepFacts, sweep_section
+
+    def row(variant: str, outcome: str, incident: str, ci: float | None) -> dict:  # type: ignore[type-arg]
+        counts = {"cohort": 40, "prevalent": 0, "at_risk": 40, "incident": incident}
+        counts |= {"gained": None, "lost": None}
+        stats = dict.fromkeys(("ci_low", "rate_per_1000py", "rate_low", "rate_high"), ci)
+        return {
+            "variant": variant,
+            "is_base": "yes" if variant == "base" else "no",
+            "outcome": outcome,
+            **counts,
+            **stats,
+            "cumulative_incidence": ci,
+            "ci_high": None if ci is None else ci + 0.1,
+            "jaccard": None,
+            "median_onset_shift_days": None,
+        }
+
+    released = [
+        row("base", "ckd", "12", 0.3),
+        row("wide", "ckd", "<5", None),
+        row("base", "heart_failure", "9", 0.2),
+        row("wide", "heart_failure", "*", None),
+    ]
+    facts = SweepFacts("s", "S", "study.yaml", (("wide", ("a = 1",)),), 3, 6, 2, {})
+    html = sweep_section(facts, released, 5)
+    assert html.count("<svg") == 2
+    assert html.count('<rect class="dot"') == 2  # the base's point, a square, per outcome
+    assert "<circle" not in html  # the variant's hidden estimates are not drawn
+    assert html.count("not shown (hidden count)") == 2
+    assert '<td class="num n">&lt;5</td>' in html
+    assert '<td class="num n">*</td>' in html
+
+
+def test_the_sweep_and_the_kept_reports_are_safe_read_together(
+    kept_sweep: Path, window_run
+) -> None:  # type: ignore[no-untyped-def]
+    # A reader holding sweep.csv and the kept reports writes down the sweep's identities (as in
+    # test_sweep_demo) and, per kept report, its incidence table's (events + non-events = at
+    # risk) and the twins: the report's at risk and events are the sweep row's. No hidden count
+    # of either may be narrowed below the threshold (5, the fixture's study).
+    from pipeline.stats._disclosure import feasible_range
+    from pipeline.workflows._sweep_numbers import COUNTS
+
+    from .test_sweep_demo import _reader_system
+
+    released = _csv(kept_sweep / "sweep.csv")
+    for row in released:
+        for key in COUNTS:
+            row[key] = row[key] or None
+    values, relations, unknown, _ = _reader_system(released, window_run.rows)
+    hidden = [
+        f"{k}|{r['variant']}" + ("" if k == "cohort" else f"|{r['outcome']}")
+        for r in released
+        for k in COUNTS
+        if r[k] in ("*", "<5")
+    ]
+    truth = {(r["variant"], r["outcome"]): r for r in window_run.rows}
+    for kept in ("base", "window_730"):
+        for shown in _csv(kept_sweep / "keep" / kept / "summary" / "incidence.csv"):
+            o, exact = shown["outcome"], truth[(kept, shown["outcome"])]
+            cells = {
+                "at_risk": (exact["at_risk"], shown["at_risk"]),
+                "events": (exact["incident"], shown["events"]),
+                "nonevents": (exact["at_risk"] - exact["incident"], None),
+            }
+            for name, (value, text) in cells.items():
+                values[f"report|{name}|{kept}|{o}"] = value
+                if text is None or text in ("*", "<5"):
+                    unknown.add(f"report|{name}|{kept}|{o}")
+                    if text is not None:
+                        hidden.append(f"report|{name}|{kept}|{o}")
+            relations += [
+                (
+                    (f"report|events|{kept}|{o}", 1),
+                    (f"report|nonevents|{kept}|{o}", 1),
+                    (f"report|at_risk|{kept}|{o}", -1),
+                ),
+                ((f"at_risk|{kept}|{o}", 1), (f"report|at_risk|{kept}|{o}", -1)),
+                ((f"incident|{kept}|{o}", 1), (f"report|events|{kept}|{o}", -1)),
+            ]
+    assert any(h.startswith("report|") for h in hidden)  # the check is not empty
+    for name in sorted(set(hidden)):
+        low, high = feasible_range(name, values, relations, unknown)
+        assert high - low >= 5, (name, low, high)

@@ -244,16 +244,23 @@ def cell_system(
     return values, relations, latent, priority
 
 
-def released_rows(rows: list[dict[str, Any]], threshold: int) -> list[dict[str, Any]]:
+def released_rows(
+    rows: list[dict[str, Any]], threshold: int, hidden: frozenset[str] | None = None
+) -> list[dict[str, Any]]:
     """The rows as released: small counts and their complements hidden, and what they imply.
 
     A count below ``threshold`` shows as ``<N``, a larger one hidden as a complement as ``*``.
     The cumulative incidence and the rate (with intervals) are left out when the incident or
     at-risk count is hidden; the Jaccard overlap when any count it is made of is; the median
     onset shift when fewer than ``threshold`` patients have an onset in both.
+
+    ``hidden`` is the cells chosen in a larger system holding these rows' cells (the kept
+    variants' reports, :mod:`pipeline.workflows._sweep_release`); by default the rows are
+    suppressed as a system of their own.
     """
-    values, relations, latent, priority = cell_system(rows, threshold)
-    hidden = protect_cells(values, relations, threshold, latent=latent, priority=priority)
+    if hidden is None:
+        values, relations, latent, priority = cell_system(rows, threshold)
+        hidden = protect_cells(values, relations, threshold, latent=latent, priority=priority)
     out = []
     for row in rows:
         keys = {name: _key(row["sets"][name]) for name in COUNTS}

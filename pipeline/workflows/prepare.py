@@ -158,6 +158,23 @@ def prepare(
         check_folder(out, owner, inputs=local_inputs(extract, plan))
     threads = options.threads or study.engine.threads
     notes: list[str] = []
+    engine = study_engine(loaded, extract, options, notes)
+    return Prepared(loaded, plan, extract, engine, threads, out, notes)
+
+
+def study_engine(
+    loaded: LoadedStudy, extract: Path | str, options: BuildOptions, notes: list[str]
+) -> DuckDBEngine | SparkEngine:
+    """The engine a study runs on: the command line's options over its ``engine:`` and ``spark:``.
+
+    Shared by :func:`prepare` and the sweep (which loads its studies itself), so both honour the
+    same settings and refuse the same combinations.
+
+    Raises:
+        EngineError: Bad engine options, or a database extract given to Spark.
+    """
+    study = loaded.study
+    threads = options.threads or study.engine.threads
     engine = make_engine(
         options, threads, options.memory_limit or study.engine.memory_limit, study.spark, notes
     )
@@ -166,7 +183,7 @@ def prepare(
             "a Spark build reads files; a database extract can be built with --engine duckdb",
             code="database-on-spark",
         )
-    return Prepared(loaded, plan, extract, engine, threads, out, notes)
+    return engine
 
 
 def local_inputs(extract: Path | str, plan: Plan) -> list[tuple[str, Path]]:

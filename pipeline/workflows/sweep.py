@@ -20,6 +20,7 @@ import yaml
 
 from pipeline.compile import Plan, compile_study
 from pipeline.compile._shared import MergedPlan, merge_plans
+from pipeline.config import LoadedStudy
 from pipeline.config._sweep import (
     BASE,
     Sweep,
@@ -30,21 +31,26 @@ from pipeline.config._sweep import (
     target_parts,
 )
 from pipeline.config._yaml import LocatedDocument
-from pipeline.engine import StageCallback
-from pipeline.extract import open_extract
+from pipeline.engine import SparkEngine, StageCallback
+from pipeline.errors import EngineError, UnusableBuildError
+from pipeline.extract import ExtractTable, HadoopFiles, is_hadoop_uri, open_extract
+from pipeline.outputs import check_usable
 from pipeline.outputs._ownership import Owner, check_folder, install, staging
-from pipeline.workflows._sweep_numbers import COLUMNS, released_rows, sweep_rows
+from pipeline.outputs._quality_log import check_row_accounting, locate_first_rows
+from pipeline.outputs.report._sweep import SweepFacts
+from pipeline.workflows._sweep_numbers import COLUMNS, sweep_rows
 from pipeline.workflows.build import build_study
-from pipeline.workflows.prepare import BuildOptions, make_engine, resolve_extract
+from pipeline.workflows.prepare import BuildOptions, local_inputs, resolve_extract, study_engine
 
 SWEEP = Owner("sweep", "ascertain-sweep.json")
 
 
 @dataclass(frozen=True)
 class SweepOptions:
-    """Command-line overrides: the extract, the output folder, the engine's threads and memory.
+    """Command-line overrides: the extract, the output folder, the engine and its settings.
 
-    ``keep`` names variants (or ``base``) to write as full build folders as well.
+    ``keep`` names variants (or ``base``) to write as full build folders as well. ``engine``,
+    ``spark_master`` and ``spark_conf`` are the build's (:class:`BuildOptions`).
     """
 
     extract: Path | str | None = None
@@ -52,6 +58,21 @@ class SweepOptions:
     threads: int | None = None
     memory_limit: str | None = None
     keep: tuple[str, ...] = ()
+    engine: str = "duckdb"
+    spark_master: str | None = None
+    spark_conf: tuple[str, ...] = ()
+
+    def build_options(self, out: Path | None = None) -> BuildOptions:
+        """The same settings as a build's options (for the engine and each kept variant)."""
+        return BuildOptions(
+            extract=self.extract,
+            out=out,
+            threads=self.threads,
+            memory_limit=self.memory_limit,
+            engine=self.engine,
+            spark_master=self.spark_master,
+            spark_conf=self.spark_conf,
+        )
 
 
 @dataclass(frozen=True)
@@ -73,14 +94,24 @@ class SweepRun:
     seconds: float
     rows: list[dict[str, Any]] = field(default_factory=list)
     """The numbers per variant and outcome, unsuppressed (patient-level)."""
+    engine: str = "duckdb"
+    """The engine that ran the merged plan (its dialect name)."""
+    notes: list[str] = field(default_factory=list)
+    """Sentences for the user about options that were not applied."""
+
+
+OUTPUTS = ("cohort", "attrition", "quality", "rows_read")
+"""The outputs computed of every variant: its cohort, and what a build checks before writing."""
+
+
+def variant_studies(sweep: Sweep) -> dict[str, LoadedStudy]:
+    """The base study and each variant's, loaded and checked, keyed by name (``base`` first)."""
+    return {BASE: sweep.base, **{v.name: load_variant(sweep, v) for v in sweep.variants}}
 
 
 def variant_plans(sweep: Sweep) -> dict[str, Plan]:
     """The base's plan and each variant's, keyed by name (``base`` first)."""
-    plans = {BASE: compile_study(sweep.base)}
-    for variant in sweep.variants:
-        plans[variant.name] = compile_study(load_variant(sweep, variant))
-    return plans
+    return {key: compile_study(loaded) for key, loaded in variant_studies(sweep).items()}
 
 
 def run_sweep(
@@ -89,34 +120,93 @@ def run_sweep(
     *,
     on_stage: StageCallback | None = None,
 ) -> SweepRun:
-    """Load a sweep, compile every variant and run them all as one plan on DuckDB.
+    """Load a sweep, compile every variant and run them all as one plan in one engine session.
+
+    Every variant passes the checks a build makes before writing (the plan's data checks, the
+    row accounting, misread shares and an empty cohort, :func:`check_variant`), each with its
+    own study's settings; a failure names the variant.
 
     Raises:
         AscertainError: Bad sweep file or variant (located in the sweep file), a bad extract,
-            or an engine failure.
+            an engine failure, or a variant a build would refuse (UnusableBuildError).
     """
     options = options or SweepOptions()
     sweep = load_sweep(sweep_file)
     for name in options.keep:
         if name != BASE:
             sweep.variant(name)
-    plans = variant_plans(sweep)
-    merged = merge_plans(plans, ("cohort",))
-    study = sweep.base.study
-    extract = resolve_extract(options.extract or study.extract)
-    engine = make_engine(
-        BuildOptions(extract=extract, memory_limit=options.memory_limit),
-        options.threads or study.engine.threads,
-        options.memory_limit or study.engine.memory_limit,
-    )
+    studies = variant_studies(sweep)
+    plans = {key: compile_study(loaded) for key, loaded in studies.items()}
+    merged = merge_plans(plans, OUTPUTS)
+    extract = resolve_extract(options.extract or sweep.base.study.extract)
+    notes: list[str] = []
+    engine = study_engine(sweep.base, extract, options.build_options(), notes)
     with ExitStack() as stack:
-        opened = stack.enter_context(open_extract(extract, merged.plan.sources))
+        hadoop = None
+        if is_hadoop_uri(extract) and isinstance(engine, SparkEngine):
+            # As in a build: the session lists the extract through its file systems.
+            hadoop = HadoopFiles.of(stack.enter_context(engine.started()))
+        opened = stack.enter_context(open_extract(extract, merged.plan.sources, hadoop=hadoop))
         started = time.perf_counter()
-        run = engine.run(merged.plan, opened.tables, on_stage=on_stage)
+        try:
+            run = engine.run(merged.plan, opened.tables, on_stage=on_stage)
+        except EngineError as err:
+            raise _naming_variants(err, merged) from err
         seconds = time.perf_counter() - started
+        for key, loaded in studies.items():
+            outputs = {o: run.outputs[f"{key}/{o}"] for o in OUTPUTS}
+            check_variant(key, loaded, outputs, opened.tables, extract)
     cohorts = {key: run.outputs[f"{key}/cohort"] for key in plans}
     rows = sweep_rows(cohorts, sweep.outcomes)
-    return SweepRun(sweep, plans, merged, cohorts, seconds, rows)
+    return SweepRun(sweep, plans, merged, cohorts, seconds, rows, run.engine, notes)
+
+
+def check_variant(
+    key: str,
+    loaded: LoadedStudy,
+    outputs: dict[str, pa.Table],
+    tables: dict[str, ExtractTable],
+    extract: Path | str,
+) -> None:
+    """Make the checks ``build`` makes after its run, for one variant, naming it on failure.
+
+    The row accounting (used + set aside = read, a defect of the tool if not), then
+    :func:`check_usable` with the variant's own study: misread shares beyond its
+    ``quality.max_share_set_aside``, an empty cohort without ``output.allow_empty_cohort``.
+
+    Raises:
+        EngineError: The rows of a table do not add up.
+        UnusableBuildError: A build of the variant would be refused.
+    """
+    try:
+        quality = check_row_accounting(outputs["quality"], outputs["rows_read"])
+        located = locate_first_rows(outputs["quality"], tables, extract)
+        check_usable(
+            loaded.study,
+            {table: counts["read"] for table, counts in quality.items()},
+            located,
+            outputs["attrition"],
+            outputs["cohort"].num_rows,
+        )
+    except EngineError as err:
+        raise EngineError(
+            f"variant '{key}': {err.message}", code=err.code, where=err.where
+        ) from err
+    except UnusableBuildError as err:
+        raise UnusableBuildError(f"variant '{key}': {err}") from err
+
+
+def _naming_variants(err: EngineError, merged: MergedPlan) -> EngineError:
+    """The engine's error with the variants that run the failing stage named, if it is one.
+
+    The engine names a failing stage as ``where="stage <name>"`` (``engine/base.py``).
+    """
+    stage = (err.where or "").removeprefix("stage ")
+    users = [key for key, stages in merged.names.items() if stage in stages.values()]
+    if not users:
+        return err
+    which = "every variant" if len(users) == len(merged.names) else ", ".join(users)
+    return EngineError(f"{err.message} (stage of {which})", code=err.code, where=err.where)
 
 
 def _relative(target: Path, start: Path) -> str:
@@ -206,64 +296,99 @@ def sweep_folder(sweep_file: Path, options: SweepOptions) -> Path:
 
 
 def check_sweep_folder(sweep_file: Path, out: Path, extract: Path | str | None = None) -> None:
-    """Refuse an output folder holding foreign files or overlapping an input, before any work."""
-    inputs: list[tuple[str, Path]] = [("sweep file", sweep_file.resolve())]
-    if isinstance(extract, Path):
-        inputs.append(("extract", extract.resolve()))
+    """Refuse an output folder holding foreign files or overlapping an input, before any work.
+
+    The inputs are those a build protects (the extract and each of its files, found as the
+    base plan reads them) and the sweep file.
+
+    Raises:
+        OutputFolderError: The folder may not be written.
+        AscertainError: The sweep file or the extract cannot be read.
+    """
+    sweep = load_sweep(sweep_file)
+    located = resolve_extract(extract or sweep.base.study.extract)
+    inputs = [("sweep file", sweep_file.resolve())]
+    inputs += local_inputs(located, compile_study(sweep.base))
     check_folder(out, SWEEP, inputs=inputs)
 
 
 def write_sweep(run: SweepRun, out: Path, options: SweepOptions | None = None) -> list[Path]:
-    """Write the sweep's released table (``sweep.csv``), its report and kept variants.
+    """Write the sweep's released table (``sweep.csv``), its page and kept variants.
 
-    ``sweep.csv`` and ``sweep.html`` are suppressed for release (one linked system of counts
-    over every variant, :func:`released_rows`). A kept variant is written as its study files
-    (``variants/<name>/``) and a full build of them (``keep/<name>/``), which ``verify``
-    accepts; it is built separately, so each costs one build.
+    A kept variant is written as its study files (``variants/<name>/``) and a full build of
+    them (``keep/<name>/``), which ``verify`` accepts; it is built separately, so each costs
+    one build. Its ``report.html`` is written too, with the sweep's section. ``sweep.csv``,
+    ``sweep.html`` and those reports are suppressed as one linked system of counts over every
+    variant (:func:`joint_release`).
 
     Raises:
         AscertainError: The folder holds foreign files, or a kept variant's build fails.
     """
-    from pipeline.outputs.report._sweep import render_sweep_html
+    from pipeline.outputs.report._sweep import SECTION, sweep_frame, sweep_page, sweep_section
+    from pipeline.outputs.report._write import finish_report, read_report
+    from pipeline.workflows._sweep_release import joint_release
 
     options = options or SweepOptions()
     out = out.resolve()
-    threshold = run.sweep.base.study.output.small_cell_threshold
-    released = released_rows(run.rows, threshold)
-    names = ["sweep.csv", "sweep.html"]
     with staging(out) as staged:
+        reports = {
+            name: read_report(staged / "keep" / name, _keep(run, name, staged, options))
+            for name in options.keep
+        }
+        base_threshold = run.sweep.base.study.output.small_cell_threshold
+        released, hidden, threshold = joint_release(run.rows, base_threshold, reports)
         lines = [",".join(COLUMNS)]
         lines += [",".join(_cell(row[c]) for c in COLUMNS) for row in released]
         (staged / "sweep.csv").write_text("\n".join(lines) + "\n", encoding="utf-8")
-        html = render_sweep_html(run, released, threshold)
+        facts = sweep_facts(run)
+        html = sweep_page(facts, released, threshold)
         (staged / "sweep.html").write_text(html, encoding="utf-8")
-        for name in options.keep:
-            names += _keep(run, name, staged, out, options)
+        for name, parts in reports.items():
+            section = sweep_section(facts, released, threshold, current=name)
+            finish_report(parts, hidden[name], {SECTION: (section, sweep_frame(released))})
+        kept = {(folder, name) for name in options.keep for folder in ("variants", "keep")}
+        names = ["sweep.csv", "sweep.html"]
+        names += sorted(
+            p.relative_to(staged).as_posix()
+            for p in staged.rglob("*")
+            if p.is_file() and p.relative_to(staged).parts[:2] in kept
+        )
         install(staged, out, SWEEP, names)
     return [out / name for name in names]
 
 
-def _keep(run: SweepRun, name: str, staged: Path, out: Path, options: SweepOptions) -> list[str]:
-    """Write one variant's study files and build them into the staging folder."""
+def sweep_facts(run: SweepRun) -> SweepFacts:
+    """What the sweep's section says about the sweep besides its numbers."""
+    sweep = run.sweep
+    catalog = sweep.base.catalog
+    return SweepFacts(
+        name=sweep.name,
+        title=sweep.title,
+        base_file=sweep.base.file.name,
+        overrides=tuple(
+            (v.name, tuple(f"{o.target} = {o.value}" for o in v.overrides)) for v in sweep.variants
+        ),
+        stages_run=len(run.merged.plan.stages),
+        stages_alone=run.merged.stages_alone,
+        shared=len(run.merged.shared),
+        titles={o: catalog.get(o).title for o in sweep.outcomes},
+    )
+
+
+def _keep(run: SweepRun, name: str, staged: Path, options: SweepOptions) -> Path:
+    """Write one variant's study files and build them into the staging folder.
+
+    Returns:
+        The study file the variant was built from.
+    """
     sweep = run.sweep
     inputs, build = staged / "variants" / name, staged / "keep" / name
     if name == BASE:
         study = sweep.base.file
     else:
         study = write_variant_inputs(sweep, sweep.variant(name), inputs, build)
-    extract = options.extract
-    build_study(
-        study,
-        BuildOptions(
-            extract=extract, out=build, threads=options.threads, memory_limit=options.memory_limit
-        ),
-    )
-    written = [p for p in staged.rglob("*") if p.is_file()]
-    return [
-        p.relative_to(staged).as_posix()
-        for p in written
-        if p.relative_to(staged).parts[:2] in {("variants", name), ("keep", name)}
-    ]
+    build_study(study, options.build_options(out=build))
+    return study
 
 
 def _cell(value: Any) -> str:

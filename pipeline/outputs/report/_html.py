@@ -38,7 +38,7 @@ from pipeline.outputs.report._svg import (
     render_flow,
 )
 
-__all__ = ["OPTIONAL_SECTIONS", "SECTIONS", "assemble"]
+__all__ = ["OPTIONAL_SECTIONS", "SECTIONS", "assemble", "page"]
 
 SECTIONS = (
     ("flow", "Patient flow"),
@@ -48,6 +48,7 @@ SECTIONS = (
     ("rates", "Rates by age band"),
     ("combinations", "Outcome combinations"),
     ("dependence", "Pairwise dependence"),
+    ("sweep", "Definition sensitivity"),
     ("definitions", "Definitions"),
     ("codes", "Codes matched by each definition"),
     ("quality", "Data quality"),
@@ -55,9 +56,10 @@ SECTIONS = (
 )
 """Section ids and headings, in page order (the cautions box comes before them)."""
 
-OPTIONAL_SECTIONS = ("rates", "codes")
+OPTIONAL_SECTIONS = ("rates", "codes", "sweep")
 """Sections shown only when the build has what they need (rates: ``persontime.parquet``;
-codes: the files of ``ascertain codes`` in the build folder)."""
+codes: the files of ``ascertain codes`` in the build folder; sweep: a variant kept by
+``ascertain sweep``, whose report the sweep writes)."""
 
 CSS = """
 :root{--ink:#1f2b2a;--muted:#5d6a67;--paper:#fbfaf6;--card:#ffffff;--line:#d9d4c8;
@@ -133,11 +135,6 @@ section,.cautions{border:0;padding:0;margin:0 0 14pt;break-inside:auto}
 h2{break-after:avoid}figure,svg,tr{break-inside:avoid}nav{display:none}
 thead{display:table-header-group}}
 """
-
-
-def _section(ident: str, body: str) -> str:
-    title = dict(SECTIONS)[ident]
-    return f'<section id="{ident}"><h2>{escape(title)}</h2>{body}</section>'
 
 
 def _flow(flow: pl.DataFrame, threshold: int) -> str:
@@ -261,16 +258,21 @@ def _manifest(manifest: dict[str, Any]) -> str:
     )
 
 
-def _cautions(threshold: int, notes: list[str]) -> str:
+REPORT_RELEASED = (
+    "Only this report and summary/ are suppressed: cohort.parquet and the build files next to "
+    "it hold raw counts and must not be shared."
+)
+"""What the report's cautions say is released; another page names its own released files."""
+
+
+def _cautions(threshold: int, notes: list[str], released: str = REPORT_RELEASED) -> str:
     items = [
         "For research use only.",
         "Not for clinical decisions about individual patients.",
         "Validate every condition definition locally before relying on it.",
         f'Counts below {threshold} are suppressed (shown as "&lt;{threshold}"); a count that '
         'would let one be worked out by subtraction is suppressed too (shown as "*"); '
-        "percentages, rates and intervals from suppressed counts are not shown. Only this report "
-        "and summary/ are suppressed: cohort.parquet and the build files next to it hold raw "
-        "counts and must not be shared.",
+        "percentages, rates and intervals from suppressed counts are not shown. " + released,
         "Follow your local data-governance rules before sharing this report.",
     ]
     notes_html = "".join(f"<li>{escape(n)}</li>" for n in notes)
@@ -292,6 +294,7 @@ def assemble(
     curves: dict[str, tuple[Any, ...]],
     at_risk: dict[str, str],
     labels: dict[str, str],
+    sections: dict[str, str] | None = None,
 ) -> str:
     """Put the whole page together from the suppressed tables.
 
@@ -305,6 +308,8 @@ def assemble(
             km_times, 1 - km)``, times in years (``OutcomeCurves.years``).
         at_risk: Per outcome with a curve, its numbers-at-risk table as published HTML.
         labels: Readable labels of the analysis-table columns.
+        sections: The HTML of optional sections made elsewhere, by id (``sweep``), suppressed
+            by their maker in one system with the page's counts.
 
     Returns:
         The HTML text.
@@ -343,21 +348,60 @@ def assemble(
         "dependence": dependence_section(summaries["dependence"], titles),
         "definitions": _definitions(study.definitions),
         "codes": codes_section(summaries.get("codes_matched"), summaries.get("codes_near_misses")),
+        "sweep": (sections or {}).get("sweep", ""),
         "quality": _quality(quality),
         "manifest": _manifest(manifest),
     }
-    sections = [(i, h) for i, h in SECTIONS if body[i] or i not in OPTIONAL_SECTIONS]
-    toc = "".join(f'<li><a href="#{i}">{escape(h)}</a></li>' for i, h in sections)
+    shown = [(i, h) for i, h in SECTIONS if body[i] or i not in OPTIONAL_SECTIONS]
+    return page(
+        title=study.title,
+        eyebrow=f"Study report · {study.name}",
+        meta=f"Built {built} with ascertain {version} · small-cell threshold {t}",
+        cautions=_cautions(t, study.notes),
+        sections=[(i, h, body[i]) for i, h in shown],
+        footer="Written by ascertain report from the build's output folder. The summary "
+        "tables are also in summary/*.csv.",
+    )
+
+
+def page(
+    *,
+    title: str,
+    eyebrow: str,
+    meta: str,
+    cautions: str,
+    sections: list[tuple[str, str, str]],
+    footer: str,
+) -> str:
+    """The report's page chrome around its sections: the one look of every page ascertain writes.
+
+    Args:
+        title: The page's title (escaped here).
+        eyebrow: The line above the title (escaped here).
+        meta: The line below the title (escaped here).
+        cautions: The cautions box, as HTML (:func:`cautions`).
+        sections: ``(id, heading, body HTML)`` in page order.
+        footer: The footer's sentence (its HTML special characters escaped here).
+    """
+    toc = "".join(f'<li><a href="#{i}">{escape(h)}</a></li>' for i, h, _ in sections)
     return (
         '<!doctype html><html lang="en"><head><meta charset="utf-8">'
         '<meta name="viewport" content="width=device-width, initial-scale=1">'
-        f"<title>{escape(study.title)}</title><style>{CSS}</style></head><body><main>"
-        f'<header><p class="eyebrow">Study report · {escape(study.name)}</p>'
-        f'<h1>{escape(study.title)}</h1><p class="meta">Built {escape(built)} with ascertain '
-        f"{escape(str(version))} · small-cell threshold {t}</p></header>"
-        + _cautions(t, study.notes)
+        f"<title>{escape(title)}</title><style>{CSS}</style></head><body><main>"
+        f'<header><p class="eyebrow">{escape(eyebrow)}</p>'
+        f'<h1>{escape(title)}</h1><p class="meta">{escape(meta)}</p></header>'
+        + cautions
         + f"<nav><ol>{toc}</ol></nav>"
-        + "".join(_section(i, body[i]) for i, _ in sections)
-        + "<footer>Written by ascertain report from the build's output folder. The summary "
-        "tables are also in summary/*.csv.</footer></main></body></html>\n"
+        + "".join(
+            f'<section id="{i}"><h2>{escape(h)}</h2>{body}</section>' for i, h, body in sections
+        )
+        + f"<footer>{escape(footer, quote=False)}</footer></main></body></html>\n"
     )
+
+
+def cautions(threshold: int, notes: list[str], released: str = REPORT_RELEASED) -> str:
+    """The cautions box every released page opens with (research use, suppression, sharing).
+
+    ``released`` says which files are suppressed (and which are not) for this page.
+    """
+    return _cautions(threshold, notes, released)

@@ -109,19 +109,44 @@ class Block:
         return out
 
 
-def hidden_keys(
+@dataclass(frozen=True)
+class CellSystem:
+    """The report's counts as one system for :func:`pipeline.stats.protect_cells`.
+
+    Attributes:
+        values: Every cell's value, latent ones included, by cell (a printed key's alias).
+        relations: Identities between cells.
+        latent: Cells never released.
+        known: Cells a reader knows though they are not printed (never hidden).
+        priority: How much readers need each cell.
+        alias: A printed key's cell, where several keys count the same patients.
+        printed: The keys of the printed counts.
+    """
+
+    values: dict[str, int]
+    relations: list[Relation]
+    latent: frozenset[str]
+    known: frozenset[str]
+    priority: dict[str, int]
+    alias: dict[str, str]
+    printed: frozenset[str]
+
+    def cell(self, key: str) -> str:
+        """The cell a printed key names."""
+        return self.alias.get(key, key)
+
+    def hidden(self, cells: frozenset[str]) -> frozenset[str]:
+        """The printed keys whose cell is among ``cells`` (what protect_cells chose)."""
+        return frozenset(k for k in self.printed if self.cell(k) in cells)
+
+
+def report_system(
     blocks: Sequence[Block], threshold: int, cohort: pl.DataFrame, outcomes: Sequence[str]
-) -> frozenset[str]:
-    """Keys of every count to hide, chosen over all tables at once (see the module docstring).
+) -> CellSystem:
+    """Every table of the report as one system of cells (see the module docstring).
 
-    Args:
-        blocks: Every table of the report.
-        threshold: Smallest count that may be shown.
-        cohort: The analysis table the counts were taken from (for the atoms).
-        outcomes: The study's outcomes.
-
-    Returns:
-        The hidden keys.
+    Kept apart from :func:`hidden_keys` so that a caller releasing other counts of the same
+    patients beside the report (the definition sweep) can solve both as one system.
     """
     values: dict[str, int] = {}
     meanings: dict[str, Spec] = {}
@@ -160,15 +185,45 @@ def hidden_keys(
             summed[alias.get(k, k)] = summed.get(alias.get(k, k), 0) + c
         if len(kept := tuple(sorted((k, c) for k, c in summed.items() if c))) > 1:
             unique.add(kept)
-    hidden = protect_cells(
+    return CellSystem(
         merged,
         sorted(unique),
-        threshold,
-        latent=latent,
-        known=known,
-        priority=priority,
+        frozenset(latent),
+        frozenset(known),
+        priority,
+        alias,
+        frozenset(values),
     )
-    return frozenset(k for k in values if alias.get(k, k) in hidden)
+
+
+def hidden_keys(
+    blocks: Sequence[Block], threshold: int, cohort: pl.DataFrame, outcomes: Sequence[str]
+) -> frozenset[str]:
+    """Keys of every count to hide, chosen over all tables at once (see the module docstring).
+
+    Args:
+        blocks: Every table of the report.
+        threshold: Smallest count that may be shown.
+        cohort: The analysis table the counts were taken from (for the atoms).
+        outcomes: The study's outcomes.
+
+    Returns:
+        The hidden keys.
+    """
+    system = report_system(blocks, threshold, cohort, outcomes)
+    return system.hidden(protect_system(system, threshold))
+
+
+def protect_system(system: CellSystem, threshold: int) -> frozenset[str]:
+    """The cells of ``system`` to hide (:func:`pipeline.stats.protect_cells` on all of it)."""
+    return protect_cells(
+        system.values,
+        system.relations,
+        threshold,
+        latent=system.latent,
+        known=system.known,
+        priority=system.priority,
+    )
 
 
 def keyed_frame(rows: list[dict[str, Any]], schema: dict[str, Any]) -> pl.DataFrame:

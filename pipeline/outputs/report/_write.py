@@ -38,7 +38,13 @@ from pipeline.outputs.report._rates import (
     standardised_summary,
 )
 from pipeline.outputs.report._smr import changed_reference, smr_block, smr_summary
-from pipeline.outputs.report._suppression import hidden_keys, masked
+from pipeline.outputs.report._suppression import (
+    Block,
+    CellSystem,
+    masked,
+    protect_system,
+    report_system,
+)
 from pipeline.outputs.report._table_one import (
     differenced_means,
     exposure_table_one_blocks,
@@ -57,7 +63,7 @@ from pipeline.outputs.report._tables import (
     quality_blocks,
 )
 
-__all__ = ["DEFAULT_THRESHOLD", "write_report"]
+__all__ = ["DEFAULT_THRESHOLD", "finish_report", "read_report", "write_report"]
 
 REPORT_PAGE = "report.html"
 SUMMARY = "summary"
@@ -268,6 +274,34 @@ def matched_outcome(
     )
 
 
+@dataclass
+class ReportParts:
+    """A build folder's report before suppression: its tables as blocks, and their system.
+
+    :func:`read_report` makes it, :func:`finish_report` writes it with the hidden keys chosen
+    (by :func:`write_report` from the report's system alone, by the sweep from its system
+    joined with the sweep's).
+    """
+
+    output_dir: Path
+    manifest: dict[str, Any]
+    study: Study
+    cohort: pl.DataFrame
+    flow: Block
+    t1: dict[str, Any]
+    results: list[Any]
+    incidence: Block
+    combos: Block
+    dependence: Block
+    quality_parts: list[Block]
+    at_risk: Block
+    persontime: pl.DataFrame | None
+    rates: Block | None
+    system: CellSystem
+    t1x: tuple[Any, ...] | None = None  # a new-user study's Table 1 by exposure group
+    smr: Block | None = None  # the SMR counts, when the study names reference rates
+
+
 def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]:
     """Write ``report.html`` and the suppressed ``summary/*.csv`` tables of a build.
 
@@ -283,6 +317,18 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
 
     Returns:
         The report's files (not its record), sorted.
+
+    Raises:
+        AscertainError: The folder has no manifest or lacks a build file.
+        OutputFolderError: The folder holds files ascertain did not write there.
+    """
+    parts = read_report(output_dir, study_file)
+    cells = protect_system(parts.system, parts.study.threshold)
+    return finish_report(parts, parts.system.hidden(cells))
+
+
+def read_report(output_dir: Path, study_file: Path | None = None) -> ReportParts:
+    """Read a build folder and make the report's tables as blocks (nothing suppressed yet).
 
     Raises:
         AscertainError: The folder has no manifest or lacks a build file.
@@ -316,27 +362,56 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
     blocks = [flow, *(b for _, *pair in t1.values() for b in pair), incidence, combos, dependence]
     blocks += list(t1x[1:]) if t1x is not None else []
     persontime = read_persontime(output_dir)  # rates only when the build wrote person-time
+    rates = smr = None
     if persontime is not None:
         rates = rates_block(persontime, outcomes, {ci.outcome: ci.events for _, ci, *_ in results})
         blocks.append(rates)
         if study.reference is not None:  # the study names reference rates: SMRs
             smr = smr_block(persontime, cohort, study.reference, rates)
             blocks.append(smr)
-    hidden = hidden_keys([*blocks, at_risk, *quality_parts], t, cohort, outcomes)
+    system = report_system([*blocks, at_risk, *quality_parts], t, cohort, outcomes)
+    return ReportParts(
+        output_dir, manifest, study, cohort, flow, t1, results, incidence, combos, dependence,
+        quality_parts, at_risk, persontime, rates, system, t1x, smr,
+    )  # fmt: skip
+
+
+def finish_report(
+    parts: ReportParts,
+    hidden: frozenset[str],
+    extra: dict[str, tuple[str, pl.DataFrame]] | None = None,
+) -> list[Path]:
+    """Write the report of :func:`read_report` with the counts of ``hidden`` hidden.
+
+    Args:
+        parts: The report's tables.
+        hidden: The printed keys to hide (``parts.system.hidden`` of the chosen cells).
+        extra: Optional sections by id (``sweep``): their HTML and their released table,
+            written as ``summary/<id>.csv``; suppressed by the caller in one system with
+            ``hidden``.
+
+    Returns:
+        The report's files (not its record), sorted.
+    """
+    output_dir, study, cohort = parts.output_dir, parts.study, parts.cohort
+    outcomes, t = study.outcomes, study.threshold
+    flow, t1, combos, dependence = parts.flow, parts.t1, parts.combos, parts.dependence
+    persontime, rates, at_risk = parts.persontime, parts.rates, parts.at_risk
+    t1x, smr = parts.t1x, parts.smr
     curves = {o: outcome_curves(cohort, o, t) for o in outcomes if f"events|{o}" not in hidden}
     # The headline cumulative incidence is the released curve's value at its last step, not
     # the full estimate at the horizon beside it (see _curves on why).
     none = Headline(math.nan, math.nan, math.nan, math.nan)
     headlines = {o: curves[o].headline if o in curves else none for o in outcomes}
-    results = [(o, ci, headlines[o], rate) for o, ci, _, rate in results]
+    results = [(o, ci, headlines[o], rate) for o, ci, _, rate in parts.results]
     longs = [long for long, *_ in t1.values()] + ([t1x[0]] if t1x is not None else [])
     no_means = differenced_means(longs, t)
     summaries = {
         "flow": masked(flow, hidden, t),
         "table_one": pl.concat(
             [
-                table_one_summary(o, long, parts, hidden, t, no_means)
-                for o, (long, *parts) in t1.items()
+                table_one_summary(o, long, blocks, hidden, t, no_means)
+                for o, (long, *blocks) in t1.items()
             ]
         ),
         "incidence": with_headline_time(
@@ -346,29 +421,32 @@ def write_report(output_dir: Path, study_file: Path | None = None) -> list[Path]
         "dependence": dependence_summary(dependence, hidden, t),
     }
     if t1x is not None:
-        long, *parts = t1x
+        long, *groups = t1x
         summaries["table_one_by_exposure"] = exposure_table_one_summary(
-            long, parts, hidden, t, no_means
+            long, groups, hidden, t, no_means
         )
-    if persontime is not None:
+    if persontime is not None and rates is not None:
         summaries["rates"] = rates_summary(rates, hidden, t)
         summaries["standardised_rates"] = standardised_summary(rates, hidden)
-        if study.reference is not None:
+        if study.reference is not None and smr is not None:
             summaries["smr"] = smr_summary(smr, study.reference, hidden, t)
     audit = read_audit(output_dir)  # the codes section only when `codes` wrote here
     if audit is not None and audit[1]:
         study.notes.append(RELEASED_NOTE)
     elif audit is not None:
         summaries.update(codes_summaries(audit[0], t))
+    extra = extra or {}
+    summaries.update({name: frame for name, (_, frame) in extra.items()})
     html = assemble(
         study=study,
-        manifest=manifest,
+        manifest=parts.manifest,
         run=read_json(output_dir / "run.json"),
         summaries=summaries,
-        quality=pl.concat([masked(b, hidden, t) for b in quality_parts]),
+        quality=pl.concat([masked(b, hidden, t) for b in parts.quality_parts]),
         curves={o: c.years() for o, c in curves.items()},
         at_risk={o: render_at_risk(at_risk, o, hidden, t) for o in curves},
         labels=column_labels(output_dir, study.labels),
+        sections={name: html for name, (html, _) in extra.items()},
     )
     files = [REPORT_PAGE, *(f"{SUMMARY}/{name}.csv" for name in sorted(summaries))]
     with staging(output_dir) as staged:
