@@ -219,6 +219,10 @@ def test_a_mapping_file_is_read_and_hashed_through_hadoop(session: Any, tmp_path
         f"{broken.as_uri()}:5:83 [missing-column] column 'Sex' is not in people.csv "
         "(found: personid, dob, born, gender, died, surgery)"
     ]
+    # A mapping file on a scheme Spark has no file system for: the same one sentence.
+    with pytest.raises(ExtractError, match="no Hadoop file system for the scheme 's3a'") as no:
+        files.extract("s3a://bucket/north/mapping.yaml")
+    assert (no.value.code, no.value.where) == ("unknown-scheme", "s3a://bucket/north/mapping.yaml")
 
 
 @pytest.mark.spark
