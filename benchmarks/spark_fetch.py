@@ -12,12 +12,26 @@ Measured per fetch: seconds, the peak of the driver JVM's heap during the fetch 
 memory-pool peaks, reset before it; on ``local[2]`` the executors' sorting runs in the same
 JVM), the peak of its old generation alone (where G1 puts Arrow buffers of half a region and
 more, and what survives collections) and the growth of the Python process's peak resident
-memory. Both ways must give equal tables (the SHA-256 of each table's Arrow IPC stream is
-printed). Medians of ``--repeat`` runs (3 by default). ``--partition-rows`` sets the batched
-fetch's partition size in the fetching process only (the engine's ``PARTITION_ROWS``, 50,000,
-is not changed); ``--cache DIR`` keeps each size's extract and build in ``DIR/p<patients>``
-and reuses them.
+memory. Both ways must give equal tables (the SHA-256 of each table's Arrow IPC stream,
+written batch by batch after combining its chunks, is printed). Medians of ``--repeat`` runs
+(3 by default). ``--partition-rows`` sets the batched fetch's partition size in the fetching
+process only (the engine's ``PARTITION_ROWS``, 50,000, is not changed); ``--cache DIR`` keeps
+each size's extract and build in ``DIR/p<patients>`` and reuses them.
 
+Fetch-only (``--synthetic-rows N``, repeatable): no extract or build; each process makes a
+cohort-shaped frame of N rows in its session (:func:`synthetic_frame`) and fetches it one way
+(one process per size and way, once each), so the outputs can be far larger than a demo
+build's without the machine time of building them. Here the Python figure is the process's
+peak resident memory itself (``python_peak_rss_mb``), as well as its growth.
+``--driver-memory 512m`` starts the fetching driver with that heap, to see which way still
+fits. Every fetch also reports ``jvm_live_peak_mb``, the largest heap in use right after a
+garbage collection (the pools' collection usage, polled every 50 ms): the heap's peak counts
+garbage not yet collected. It is updated only when a collection runs, and the old generation
+(where the whole fetch's large buffers go) is rarely collected in a short fetch, so it can
+miss what a fetch holds; read it beside the old generation's peak, not instead of it.
+
+    python benchmarks/spark_fetch.py --cluster --synthetic-rows 1000000 --synthetic-rows 4000000
+    python benchmarks/spark_fetch.py --cluster --synthetic-rows 4000000 --driver-memory 512m
     python benchmarks/spark_fetch.py --patients 20000 --patients 200000
     python benchmarks/spark_fetch.py --cluster --patients 20000 --patients 200000
 """
@@ -33,6 +47,7 @@ import statistics
 import subprocess
 import sys
 import tempfile
+import threading
 import time
 from collections.abc import Iterator
 from pathlib import Path
@@ -75,16 +90,17 @@ def _cluster() -> Iterator[tuple[str, dict[str, str]]]:
             starts.close()  # runs the fixture's own clean-up: both processes, by id
 
 
-def _fetch(folder: Path, how: str, master: str, partition_rows: int | None) -> dict[str, object]:
-    import pyarrow as pa
-    from pyspark.sql import functions as F
-
+def _session(
+    master: str, partition_rows: int | None, driver_memory: str | None = None
+) -> tuple[Any, list[Any], list[Any]]:
+    """A Spark session as the engine makes it, and the driver JVM's heap pools (all, old gen)."""
     from pipeline.engine import SparkEngine, _spark_fetch
-    from pipeline.engine._spark_fetch import arrow_schema, to_arrow
 
     if partition_rows:
         _spark_fetch.PARTITION_ROWS = partition_rows  # this process only
-    conf = CLUSTER_CONF if master.startswith("spark://") else {}
+    conf = dict(CLUSTER_CONF) if master.startswith("spark://") else {}
+    if driver_memory:
+        conf["spark.driver.memory"] = driver_memory
     spark = SparkEngine.create_session(master, conf)
     jvm = spark.sparkContext._jvm
     pools = [
@@ -92,7 +108,74 @@ def _fetch(folder: Path, how: str, master: str, partition_rows: int | None) -> d
         for p in jvm.java.lang.management.ManagementFactory.getMemoryPoolMXBeans()
         if str(p.getType().toString()) == "Heap memory"
     ]
-    old = [p for p in pools if "Old Gen" in str(p.getName())]
+    return spark, pools, [p for p in pools if "Old Gen" in str(p.getName())]
+
+
+def _fetch_one(
+    spark: Any, pools: list[Any], old: list[Any], frame: Any, how: str, rows: int | None
+) -> dict[str, object]:
+    """Fetch ``frame`` sorted by patient one way; what it cost the driver, and its hash."""
+    import pyarrow as pa
+
+    from pipeline.engine._spark_fetch import arrow_schema, to_arrow
+
+    spark.sparkContext._jvm.java.lang.System.gc()
+    for pool in pools:
+        pool.resetPeakUsage()
+    baseline = sum(int(p.getUsage().getUsed()) for p in pools)
+    rss_before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    # The heap's peak counts garbage not yet collected; what is still held after each garbage
+    # collection (the pools' collection usage, polled) is the live part.
+    live = [baseline]
+    done = threading.Event()
+
+    def watch() -> None:
+        while not done.wait(0.05):
+            after = [p.getCollectionUsage() for p in pools]
+            live[0] = max(live[0], sum(int(u.getUsed()) for u in after if u is not None))
+
+    watcher = threading.Thread(target=watch, daemon=True)
+    watcher.start()
+    started = time.perf_counter()
+    try:
+        if how == "whole":
+            table = frame.orderBy("patient_id").toArrow().cast(arrow_schema(frame))
+        else:
+            table = to_arrow(frame, ("patient_id",), rows)
+    finally:
+        done.set()
+        watcher.join()
+    seconds = time.perf_counter() - started
+    peak = sum(int(p.getPeakUsage().getUsed()) for p in pools)
+    old_peak = sum(int(p.getPeakUsage().getUsed()) for p in old)
+    rss_after = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    digest = hashlib.sha256()
+    for batch in table.combine_chunks().to_batches():
+        # The IPC stream of the table batch by batch: the same bytes both ways, no copy of all.
+        sink = pa.BufferOutputStream()
+        with pa.ipc.new_stream(sink, table.schema) as writer:
+            writer.write_batch(batch)
+        digest.update(sink.getvalue().to_pybytes())
+    return {
+        "rows": table.num_rows,
+        "seconds": round(seconds, 2),
+        "jvm_heap_before_mb": round(baseline / 2**20),
+        "jvm_heap_peak_mb": round(peak / 2**20),
+        "jvm_old_peak_mb": round(old_peak / 2**20),
+        "jvm_live_peak_mb": round(live[0] / 2**20),
+        "python_peak_rss_mb": round(rss_after / 1024),
+        "python_peak_growth_mb": round((rss_after - rss_before) / 1024),
+        "arrow_mb": round(table.nbytes / 2**20, 1),
+        "sha256": digest.hexdigest()[:16],
+    }
+
+
+def _fetch(folder: Path, how: str, master: str, partition_rows: int | None) -> dict[str, object]:
+    from pyspark.sql import functions as F
+
+    from pipeline.engine import _spark_fetch
+
+    spark, pools, old = _session(master, partition_rows)
     result: dict[str, object] = {
         "how": how,
         "master": "cluster" if master.startswith("spark://") else master,
@@ -102,33 +185,60 @@ def _fetch(folder: Path, how: str, master: str, partition_rows: int | None) -> d
         frame = spark.read.parquet(str(folder / f"{name}.parquet"))
         # A stage arrives unsorted: shuffle it, then store it as the engine stores a stage.
         frame = frame.orderBy(F.rand(seed=1)).localCheckpoint(eager=True)
-        jvm.java.lang.System.gc()
-        for pool in pools:
-            pool.resetPeakUsage()
-        baseline = sum(int(p.getUsage().getUsed()) for p in pools)
-        rss_before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-        started = time.perf_counter()
-        if how == "whole":
-            table = frame.orderBy("patient_id").toArrow().cast(arrow_schema(frame))
-        else:
-            table = to_arrow(frame, ("patient_id",))
-        seconds = time.perf_counter() - started
-        peak = sum(int(p.getPeakUsage().getUsed()) for p in pools)
-        old_peak = sum(int(p.getPeakUsage().getUsed()) for p in old)
-        rss_after = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-        sink = pa.BufferOutputStream()
-        with pa.ipc.new_stream(sink, table.schema) as writer:
-            writer.write_table(table.combine_chunks())
-        result[name] = {
-            "rows": table.num_rows,
-            "seconds": round(seconds, 2),
-            "jvm_heap_before_mb": round(baseline / 2**20),
-            "jvm_heap_peak_mb": round(peak / 2**20),
-            "jvm_old_peak_mb": round(old_peak / 2**20),
-            "python_peak_growth_mb": round((rss_after - rss_before) / 1024),
-            "arrow_mb": round(table.nbytes / 2**20, 1),
-            "sha256": hashlib.sha256(sink.getvalue().to_pybytes()).hexdigest()[:16],
-        }
+        result[name] = _fetch_one(spark, pools, old, frame, how, None)
+    spark.stop()
+    return result
+
+
+def synthetic_frame(spark: Any, rows: int) -> Any:
+    """``rows`` cohort-shaped rows made in the session, in no particular order.
+
+    Columns as the demo cohort's kinds: a text id, a practice and sex, dates (birth, index,
+    end of follow-up, an onset), integers (age, visits, days to an outcome, NULL for most),
+    doubles (eGFR, BMI) and flags; about 100 bytes of Arrow a row. Each row's values come from
+    a permutation of ``0..rows-1`` (multiplying by a prime modulo ``rows``), so the id order is
+    not the generation order and the sort has work to do, and every run makes the same rows.
+    """
+    from pyspark.sql import functions as F
+
+    key = F.pmod(F.col("id") * F.lit(2_654_435_761), F.lit(rows))
+    index = F.date_add(F.lit("2015-01-01").cast("date"), (key % 1800).cast("int"))
+    ill = (key % 11) == 0
+    return spark.range(0, rows, 1, max(2, rows // 500_000)).select(
+        F.concat(F.lit("OB"), F.lpad(key.cast("string"), 9, "0")).alias("patient_id"),
+        F.concat(F.lit("P"), (key % 200).cast("string")).alias("practice_id"),
+        F.when(key % 2 == 0, "F").otherwise("M").alias("sex"),
+        F.date_add(F.lit("1930-01-01").cast("date"), (key % 25_000).cast("int")).alias(
+            "birth_date"
+        ),
+        index.alias("index_date"),
+        F.date_add(index, (365 + key % 2000).cast("int")).alias("end_date"),
+        (18 + key % 80).cast("int").alias("age"),
+        (key % 37).cast("int").alias("visits"),
+        (key % 1000 / 7.0).alias("egfr"),
+        (15 + key % 300 / 10.0).alias("bmi"),
+        ((key % 5) == 0).alias("prevalent_ckd"),
+        ill.alias("incident_ckd"),
+        F.when(ill, F.date_add(index, (key % 3000).cast("int"))).alias("onset_ckd"),
+        F.when(ill, (key % 3000).cast("int")).alias("days_to_ckd"),
+        ((key % 7) == 0).alias("prevalent_diabetes"),
+    )
+
+
+def _fetch_synthetic(args: argparse.Namespace) -> dict[str, object]:
+    """One fetch of a synthetic frame, in a process of its own (so its peak RSS is the fetch's)."""
+    from pipeline.engine import _spark_fetch
+
+    rows, how, master = args.synthetic, args.fetch, args.master
+    spark, pools, old = _session(master, args.partition_rows, args.driver_memory)
+    frame = synthetic_frame(spark, rows)
+    result: dict[str, object] = {
+        "how": how,
+        "master": "cluster" if master.startswith("spark://") else master,
+        "driver_memory": spark.conf.get("spark.driver.memory"),
+        "partition_rows": _spark_fetch.PARTITION_ROWS,
+        "synthetic": _fetch_one(spark, pools, old, frame, how, rows),
+    }
     spark.stop()
     return result
 
@@ -164,7 +274,31 @@ def _outputs(patients: int, cache: Path | None, scratch: Path) -> Path:
     return out
 
 
+def _measure_synthetic(args: argparse.Namespace, master: str, env: dict[str, str] | None) -> None:
+    """Each size and way once, each in a fresh process (its peak RSS is the fetch's alone)."""
+    for rows in args.synthetic_rows:
+        for how in args.way or ("whole", "batched"):
+            command = [sys.executable, __file__, "--fetch", how, "--synthetic", str(rows)]
+            command += ["--master", master]
+            if args.partition_rows:
+                command += ["--partition-rows", str(args.partition_rows)]
+            if args.driver_memory:
+                command += ["--driver-memory", args.driver_memory]
+            done = subprocess.run(command, check=False, capture_output=True, text=True, env=env)
+            if done.returncode != 0:
+                # A fetch the driver's memory cannot hold is a result too: say how it ended.
+                causes = ("Caused by", "OutOfMemory", "maxResultSize", "Java heap")
+                said = [x for x in done.stderr.splitlines() if any(c in x for c in causes)]
+                print(json.dumps({"rows": rows, "how": how, "failed": said[:6]}), flush=True)
+                continue
+            result = json.loads(done.stdout.splitlines()[-1])
+            print(json.dumps({"rows": rows, **result}), flush=True)
+
+
 def _measure(args: argparse.Namespace, master: str, env: dict[str, str] | None) -> None:
+    if args.synthetic_rows:
+        _measure_synthetic(args, master, env)
+        return
     with tempfile.TemporaryDirectory(prefix="ascertain-fetch-") as scratch:
         for patients in args.patients or [200_000]:
             out = _outputs(patients, args.cache, Path(scratch))
@@ -196,9 +330,26 @@ def main() -> None:
     )
     parser.add_argument("--partition-rows", type=int, help="rows per batched partition")
     parser.add_argument("--cache", type=Path, help="keep and reuse extracts and builds here")
+    parser.add_argument(
+        "--synthetic-rows",
+        type=int,
+        action="append",
+        default=[],
+        help="fetch-only: a cohort-shaped frame of this many rows made in the session",
+    )
+    parser.add_argument(
+        "--driver-memory", help="fetch-only: the driver's heap (spark.driver.memory), e.g. 512m"
+    )
+    parser.add_argument(
+        "--way", action="append", choices=("whole", "batched"), help="fetch-only: one way only"
+    )
     parser.add_argument("--fetch", help=argparse.SUPPRESS)
     parser.add_argument("--folder", help=argparse.SUPPRESS)
+    parser.add_argument("--synthetic", type=int, help=argparse.SUPPRESS)
     args = parser.parse_args()
+    if args.fetch and args.synthetic:
+        print(json.dumps(_fetch_synthetic(args)))
+        return
     if args.fetch:
         print(json.dumps(_fetch(Path(args.folder), args.fetch, args.master, args.partition_rows)))
         return

@@ -27,17 +27,26 @@ from typer.testing import CliRunner
 
 from pipeline.cli import app
 from pipeline.config import load_study
-from pipeline.errors import AscertainError, ConfigError, ExtractError
-from pipeline.extract import HadoopFiles, discover_extract, extract_location, is_hadoop_uri
+from pipeline.errors import AscertainError, ConfigError, EngineError, ExtractError
+from pipeline.extract import (
+    HadoopFiles,
+    discover_extract,
+    extract_location,
+    is_hadoop_uri,
+    open_extract,
+)
 from pipeline.extract._discover import discover_folder
 from pipeline.extract._hadoop import safe_uri
-from pipeline.outputs import DATA_FILES, describe_files
+from pipeline.outputs import DATA_FILES, describe_files, extract_inputs, extract_root
 from pipeline.outputs._verify import locate_inputs
 from pipeline.synth import generate_extract
 from pipeline.workflows.build import plan_study
 
 from .conftest import DEMO_STUDY, HANDMADE
 from .helpers import require
+from .test_mapping import _site
+
+FHIR = Path(__file__).parent / "fixtures" / "fhir"
 
 COMPARED = DATA_FILES  # every data file a build writes
 
@@ -166,6 +175,73 @@ def test_discovery_and_hashes_through_hadoop_equal_local_ones(session: Any, tmp_
         discover_folder(files.folder((tmp_path / "nowhere").as_uri()), sources)
 
 
+def _mapped_site(folder: Path) -> Path:
+    """A site's CSV files and their mapping file, one table found by a pattern in a subfolder."""
+    mapping = _site(folder, dates="dmy", parquet=False)
+    (folder / "drugs").mkdir()
+    (folder / "meds.csv").rename(folder / "drugs" / "meds.csv")
+    text = mapping.read_text(encoding="utf-8").replace("file: meds.csv", "file: drugs/*.csv")
+    mapping.write_text(text, encoding="utf-8")
+    return mapping
+
+
+@pytest.mark.spark
+@pytest.mark.slow
+def test_a_mapping_file_is_read_and_hashed_through_hadoop(session: Any, tmp_path: Path) -> None:
+    mapping = _mapped_site(tmp_path / "north")
+    sources = plan_study(DEMO_STUDY).sources
+    local = discover_extract(mapping, sources)
+    files = HadoopFiles.of(session)
+    with open_extract(mapping.as_uri(), sources, hadoop=files) as opened:
+        remote = opened.tables
+        assert opened.mapping is not None
+        assert opened.mapping.relative == "mapping.yaml"
+        hashed_there = describe_files(opened.files, Path.cwd())
+    assert set(remote) == set(local)
+    for name, table in local.items():
+        there = remote[name]
+        assert (there.file_format, there.columns) == (table.file_format, table.columns), name
+        assert there.mapping == table.mapping, name
+        assert [str(f) for f in there.files] == [f.as_uri() for f in table.files], name
+    inputs = extract_inputs(mapping, [f for t in local.values() for f in t.files])
+    assert hashed_there == describe_files(inputs, extract_root(mapping))
+    assert {"mapping.yaml", "drugs/meds.csv"} <= {e["path"] for e in hashed_there}
+    # A mapping naming a missing column is refused at its line, the file named by its URI.
+    broken = tmp_path / "north" / "broken.yaml"
+    broken.write_text(mapping.read_text(encoding="utf-8").replace("Gender", "Sex"), "utf-8")
+    with pytest.raises(ConfigError) as caught:
+        discover_extract(files.extract(broken.as_uri()), sources)
+    with pytest.raises(ConfigError) as here:
+        discover_extract(broken, sources)
+    said = [str(p) for p in caught.value.problems]
+    assert said == [str(p).replace(str(broken), broken.as_uri()) for p in here.value.problems]
+    assert said == [
+        f"{broken.as_uri()}:5:83 [missing-column] column 'Sex' is not in people.csv "
+        "(found: personid, dob, born, gender, died, surgery)"
+    ]
+    # A mapping file on a scheme Spark has no file system for: the same one sentence.
+    with pytest.raises(ExtractError, match="no Hadoop file system for the scheme 's3a'") as no:
+        files.extract("s3a://bucket/north/mapping.yaml")
+    assert (no.value.code, no.value.where) == ("unknown-scheme", "s3a://bucket/north/mapping.yaml")
+
+
+@pytest.mark.spark
+@pytest.mark.slow
+def test_a_fhir_export_on_hadoop_is_found_and_refused_by_spark(session: Any) -> None:
+    """Spark has no FHIR reader (DuckDB's reads the NDJSON with its own JSON functions)."""
+    from pipeline.engine import SparkEngine
+
+    plan = plan_study(DEMO_STUDY)
+    files = HadoopFiles.of(session)
+    tables = discover_extract(files.extract(FHIR.as_uri()), plan.sources)
+    local = discover_extract(FHIR, plan.sources)
+    assert {n: [str(f) for f in t.files] for n, t in tables.items()} == {
+        n: [f.as_uri() for f in t.files] for n, t in local.items()
+    }
+    with pytest.raises(EngineError, match=r"\[fhir-unsupported\] the Spark engine cannot read"):
+        SparkEngine(session=session).run(SparkEngine.prepare(plan), tables)
+
+
 def _ascertain(*args: str) -> subprocess.CompletedProcess[str]:
     import pyspark
 
@@ -216,6 +292,42 @@ def test_a_viewfs_extract_builds_as_duckdb_and_verifies_by_its_uri(tmp_path: Pat
     lost = _ascertain(*verify)
     assert lost.returncode == 2
     assert "pass --extract URI" in lost.stderr + lost.stdout
+
+
+@pytest.mark.spark
+@pytest.mark.slow
+def test_a_viewfs_mapping_file_builds_as_its_local_copy_on_duckdb(
+    session: Any, tmp_path: Path
+) -> None:
+    site = tmp_path / "south"
+    mapping = _mapped_site(site)
+    duck = tmp_path / "duckdb"
+    result = CliRunner().invoke(
+        app, ["build", str(DEMO_STUDY), "--extract", str(mapping), "--out", str(duck), "--quiet"]
+    )
+    assert result.exit_code == 0, result.output
+    # In this process (the module's session, no second JVM): the mount link goes straight into
+    # the session's Hadoop configuration, as --spark-conf spark.hadoop.... puts it there.
+    hadoop = session.sparkContext._jsc.hadoopConfiguration()
+    hadoop.set("fs.viewfs.mounttable.default.link./site", site.as_uri())
+    spark = tmp_path / "spark"
+    args = ["build", str(DEMO_STUDY), "--extract", "viewfs:///site/mapping.yaml"]
+    run = CliRunner().invoke(app, [*args, "--out", str(spark), "--engine", "spark", "--quiet"])
+    assert run.exit_code == 0, run.output
+    for name in COMPARED:
+        assert (spark / name).read_bytes() == (duck / name).read_bytes(), name
+    manifest = json.loads((spark / "manifest.json").read_text())
+    expected = json.loads((duck / "manifest.json").read_text())
+    assert manifest["extract"] == expected["extract"]  # the mapping file and the mapped files
+    assert "mapping.yaml" in {e["path"] for e in manifest["extract"]}
+    assert manifest["locations"]["extract_kind"] == "hadoop mapping file"
+    assert manifest["locations"]["extract_scheme"] == "viewfs"
+    assert manifest["locations"]["extract_name"] == "mapping.yaml"
+    named = json.dumps([manifest["locations"], manifest["extract"]])
+    assert "viewfs:" not in named
+    assert str(site) not in named
+    with pytest.raises(AscertainError, match=r"'mapping.yaml' on viewfs://.*pass --extract URI"):
+        locate_inputs(spark, manifest, DEMO_STUDY, None)
 
 
 @pytest.mark.spark

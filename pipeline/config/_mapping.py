@@ -26,7 +26,7 @@ from __future__ import annotations
 import re
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Annotated, Literal, Self
+from typing import TYPE_CHECKING, Annotated, Literal, Self
 
 from pydantic import Field, field_validator, model_validator
 
@@ -35,6 +35,9 @@ from pipeline.config._document import did_you_mean, validate_document
 from pipeline.config._yaml import load_yaml
 from pipeline.errors import ConfigError
 from pipeline.extract.schema import TABLES
+
+if TYPE_CHECKING:  # pragma: no cover
+    from pipeline.extract._hadoop import HadoopPath
 
 _FORMAT = re.compile(r"%[dmyYbBHMSj]")
 
@@ -127,17 +130,21 @@ class SiteMapping(Model):
 class LoadedMapping:
     """A validated mapping with its file (paths in it are relative to that file's folder)."""
 
-    file: Path
+    file: Path | HadoopPath
     mapping: SiteMapping
 
 
-def load_mapping(file: Path) -> LoadedMapping:
-    """Load and check a site mapping file.
+def load_mapping(file: Path | HadoopPath) -> LoadedMapping:
+    """Load and check a site mapping file, local or on a Hadoop file system.
+
+    A file on a Hadoop file system (read through the Spark session, see
+    :mod:`pipeline.extract._hadoop`) is taken as it is named: it has no local path to resolve.
 
     Raises:
         ConfigError: With file:line:col for unknown tables or columns and bad values.
     """
-    file = file.resolve()
+    if isinstance(file, Path):
+        file = file.resolve()
     doc = load_yaml(file)
     mapping = validate_document(doc, SiteMapping)
     problems = []

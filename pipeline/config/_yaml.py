@@ -98,6 +98,9 @@ class _Builder:
 def load_yaml(file: Path) -> LocatedDocument:
     """Read one YAML file into a :class:`LocatedDocument`.
 
+    ``file`` is read with ``read_text``: a local path, or a site mapping file on a Hadoop
+    file system (:class:`pipeline.extract.HadoopPath`), named in problems by its URI.
+
     Raises:
         ConfigError: The file cannot be read, is not valid YAML, or repeats a key.
     """

@@ -42,8 +42,8 @@ from pipeline.extract._dbsource import (
     read_expression,
     scrub,
 )
-from pipeline.extract._discover import discover_extract, discover_folder
-from pipeline.extract._hadoop import HadoopFiles, is_hadoop_uri, safe_uri
+from pipeline.extract._discover import discover_extract
+from pipeline.extract._hadoop import HadoopFiles, HadoopPath, is_hadoop_uri, safe_uri
 from pipeline.extract._table import ExtractPath, ExtractTable
 from pipeline.extract.schema import SourceTable
 
@@ -99,13 +99,20 @@ class OpenedExtract:
 
     tables: dict[str, ExtractTable]
     database: DatabaseFacts | None = None
+    mapping: HadoopPath | None = None
+    """A site mapping file on a Hadoop file system (a local one is the extract argument)."""
 
     @property
     def files(self) -> tuple[ExtractPath, ...]:
-        """The extract's own files (none for a database: its temporary copy is not input)."""
+        """The extract's own files (none for a database: its temporary copy is not input).
+
+        A mapping file on a Hadoop file system is among them: it cannot be reached from the
+        extract argument's text alone, so the manifest hashes it from here.
+        """
         if self.database is not None:
             return ()
-        return tuple(f for t in self.tables.values() for f in t.files)
+        mapping = (self.mapping,) if self.mapping is not None else ()
+        return (*(f for t in self.tables.values() for f in t.files), *mapping)
 
 
 def database_source(extract: Path | str) -> DatabaseSource | None:
@@ -214,8 +221,8 @@ def open_extract(
 
     ``optional`` names tables that may be absent from a database (``profile``); a missing one
     is left out of the result instead of being an error. An extract on a Hadoop file system
-    (``hdfs://...``, see :func:`is_hadoop_uri`) is discovered through ``hadoop``, the file
-    systems of the Spark session that will read it.
+    (``hdfs://...``, see :func:`is_hadoop_uri`; a folder or a site mapping file) is
+    discovered through ``hadoop``, the file systems of the Spark session that will read it.
 
     Raises:
         ExtractError: A Hadoop URI without a Spark session, or a scheme Spark has no file
@@ -232,7 +239,9 @@ def open_extract(
                 code="needs-spark",
                 where=safe_uri(extract),
             )
-        yield OpenedExtract(discover_folder(hadoop.folder(extract), sources))
+        found = hadoop.extract(extract)
+        mapping = found if found.is_file() else None
+        yield OpenedExtract(discover_extract(found, sources), mapping=mapping)
         return
     database = database_source(extract)
     if database is None:

@@ -81,11 +81,14 @@ def discover_folder(
     return discover_fhir(folder, ndjson, tables)
 
 
-def discover_extract(source: Path, tables: tuple[SourceTable, ...]) -> dict[str, ExtractTable]:
+def discover_extract(
+    source: ExtractPath, tables: tuple[SourceTable, ...]
+) -> dict[str, ExtractTable]:
     """Locate each table the plan reads, in an extract folder or through a mapping file.
 
     A folder holds canonical CSV or Parquet files, or a FHIR R4 bulk export (``*.ndjson``);
-    a ``.yaml`` file is a site mapping (see :mod:`pipeline.config._mapping`).
+    a ``.yaml`` file is a site mapping (see :mod:`pipeline.config._mapping`). Either may be
+    local or on a Hadoop file system (:class:`HadoopPath`).
 
     Raises:
         ExtractError: A table is missing, ambiguous, unreadable or lacks a required column.

@@ -126,6 +126,22 @@ class HadoopFiles:
             ) from None
         return root
 
+    def extract(self, uri: str) -> HadoopPath:
+        """The extract a URI names: a folder, or a site mapping file (``.yaml``, ``.yml``).
+
+        A mapping file's paths are relative to its folder, so the file is given with that
+        folder as its root: the manifest then names the mapping and the files it maps relative
+        to the same folder, as for a local mapping file.
+
+        Raises:
+            ExtractError: As :meth:`folder`.
+        """
+        found = self.folder(uri)
+        if found.suffix not in (".yaml", ".yml") or not found.is_file():
+            return found
+        folder, name = found.uri.rsplit("/", 1)
+        return HadoopPath(folder, folder, self) / name
+
 
 @dataclass(frozen=True, order=True)
 class HadoopPath:
@@ -155,6 +171,14 @@ class HadoopPath:
     def suffix(self) -> str:
         """The name's last suffix (``.parquet``), as ``Path.suffix``."""
         return PurePosixPath(self.name).suffix
+
+    @property
+    def parent(self) -> HadoopPath:
+        """The folder holding it (the root stays the root: nothing above it is named)."""
+        folder = self.uri.rsplit("/", 1)[0] if "/" in self.uri else self.uri
+        if len(folder) <= len(self.root):
+            return HadoopPath(self.root, self.root, self.files)
+        return HadoopPath(folder, self.root, self.files)
 
     @property
     def relative(self) -> str:
@@ -203,13 +227,34 @@ class HadoopPath:
         return sorted(self / str(status.getPath().getName()) for status in found)
 
     def glob(self, pattern: str) -> list[HadoopPath]:
-        """Entries of the folder whose name matches ``pattern`` (one level, as ``*.parquet``)."""
-        return [p for p in self.iterdir() if fnmatch.fnmatchcase(p.name, pattern)]
+        """Entries below the folder matching ``pattern``, level by level (``labs/*.csv``).
+
+        Each ``/``-separated part matches one level's names as ``fnmatch`` does (``*``, ``?``,
+        ``[...]``); ``**`` is one level too, not any depth as in ``Path.glob``.
+        """
+        found = [self]
+        for part in (p for p in pattern.split("/") if p not in ("", ".")):
+            if not any(c in part for c in "*?["):
+                found = [f / part for f in found if (f / part).exists()]
+                continue
+            found = [
+                entry
+                for folder in found
+                if folder.is_dir()
+                for entry in folder.iterdir()
+                if fnmatch.fnmatchcase(entry.name, part)
+            ]
+        return sorted(found)
 
     def stat(self) -> SimpleNamespace:
         """Its size in bytes, as ``st_size``."""
         status = self._call("read its status", lambda fs, p: fs.getFileStatus(p))
         return SimpleNamespace(st_size=int(status.getLen()))
+
+    def read_text(self, encoding: str = "utf-8") -> str:
+        """The whole file as text (a site mapping file: small), as ``Path.read_text``."""
+        with self.open() as handle:
+            return handle.read().decode(encoding)
 
     def open(self, mode: str = "rb") -> io.BufferedReader:
         """The file's bytes, streamed from the file system (read only, binary)."""

@@ -21,7 +21,7 @@ import json
 import os
 import platform
 from collections.abc import Iterable
-from pathlib import Path
+from pathlib import Path, PurePosixPath
 from typing import Any
 
 from pipeline.config._library import library_folder
@@ -148,15 +148,17 @@ def _locations(
     """Where the inputs were: hints for ``verify`` on the same layout (see module docstring).
 
     A database named by a URI is recorded by that URI, which holds no password. An extract on
-    a Hadoop file system is recorded by its scheme and its folder's name, never its server or
-    path; ``verify --extract URI`` names it again.
+    a Hadoop file system is recorded by its scheme and its folder's (or mapping file's) name,
+    never its server or path; ``verify --extract URI`` names it again.
     """
     if is_hadoop_uri(extract):
-        # Scheme and folder name only: the server and the path above the extract are private.
+        # Scheme and name only: the server and the path above the extract are private.
+        name = hadoop_name(str(extract))
+        mapped = PurePosixPath(name).suffix in (".yaml", ".yml")
         return {
-            "extract_kind": "hadoop folder",
+            "extract_kind": "hadoop mapping file" if mapped else "hadoop folder",
             "extract_scheme": str(extract).split(":", 1)[0].lower(),
-            "extract_name": hadoop_name(str(extract)),
+            "extract_name": name,
             "extract_from_study": None,
             "study_from_output": portable_path(study_file, out),
         }

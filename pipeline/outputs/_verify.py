@@ -15,6 +15,9 @@ from typing import Any
 from pipeline.errors import AscertainError
 from pipeline.outputs._manifest import changed_inputs, sha256_file
 
+# How a manifest records an extract on a Hadoop file system: by scheme and name only.
+HADOOP_KINDS = ("hadoop folder", "hadoop mapping file")
+
 
 @dataclass(frozen=True)
 class VerifyResult:
@@ -54,7 +57,7 @@ def locate_inputs(
         study = folder.resolve() / hint  # the hint was made from the resolved folder
     if not study.is_file():
         raise AscertainError(f"{study}: the study file {name} is not there; pass --study FILE")
-    if extract is None and locations.get("extract_kind") == "hadoop folder":
+    if extract is None and locations.get("extract_kind") in HADOOP_KINDS:
         raise AscertainError(
             f"{folder}: the build read the extract '{locations.get('extract_name')}' on "
             f"{locations.get('extract_scheme')}://, and the manifest keeps no server address; "

@@ -9,14 +9,12 @@ it is (or as NULL for a date), so the quality log can still judge the row.
 
 from __future__ import annotations
 
-from pathlib import Path
-
 from sqlglot import exp
 
 from pipeline.config._mapping import Constant, load_mapping
 from pipeline.config._yaml import load_yaml
 from pipeline.errors import ConfigError, ExtractError
-from pipeline.extract._table import ExtractTable, FileFormat
+from pipeline.extract._table import ExtractPath, ExtractTable, FileFormat
 from pipeline.extract.readers.csv_parquet import check_columns, header
 from pipeline.extract.schema import DATE_COLUMNS, SourceTable
 
@@ -58,7 +56,8 @@ def source_column(table: ExtractTable, canonical: str) -> exp.Expression:
     return column
 
 
-def _files(base: Path, pattern: str) -> tuple[Path, ...]:
+def _files(base: ExtractPath, pattern: str) -> tuple[ExtractPath, ...]:
+    """The files a table's ``file:`` names, below the mapping's folder (local or Hadoop)."""
     path = base / pattern
     if path.is_dir():
         return tuple(sorted(path.glob("*.parquet")))
@@ -67,12 +66,16 @@ def _files(base: Path, pattern: str) -> tuple[Path, ...]:
     return tuple(sorted(p for p in base.glob(pattern) if p.is_file()))
 
 
-def _format(path: Path) -> FileFormat:
+def _format(path: ExtractPath) -> FileFormat:
     return "parquet" if path.suffix == ".parquet" else "csv"
 
 
-def discover_mapped(file: Path, tables: tuple[SourceTable, ...]) -> dict[str, ExtractTable]:
+def discover_mapped(file: ExtractPath, tables: tuple[SourceTable, ...]) -> dict[str, ExtractTable]:
     """Locate each table through a mapping file and check its source columns.
+
+    The mapping file and the files it names may be on a Hadoop file system (a
+    :class:`~pipeline.extract.HadoopPath`, read through the Spark session): the mapping is
+    read, its files found and their headers checked through it, as for a local mapping.
 
     Raises:
         ConfigError: The mapping is invalid, or names a file or column that is not there
