@@ -187,6 +187,49 @@ def grouped_rows(table: SourceTable, *, check_duplicates: bool) -> exp.Query:
     return rows.select(first, copies).group_by(*table.columns, SOURCE_PROBLEM)
 
 
+def row_hash(columns: list[exp.Expression]) -> exp.Expression:
+    """A row's hash over ``columns``: only a filter, never the test of two rows being copies.
+
+    Rows with equal columns have equal hashes in DuckDB (``HASH``, 64 bits) and Spark
+    (``hash``, Murmur3, 32 bits), NULLs included, so every pair of exact copies shares a hash;
+    rows that share a hash without being copies are told apart by the exact grouping that
+    follows (:func:`rows_with_copies`). A weaker hash (Spark's, or a constant in a test)
+    lets more rows through that filter and costs time, never a different answer.
+    """
+    return exp.func("HASH", *columns)
+
+
+def rows_with_copies(table: SourceTable) -> exp.Select:
+    """The distinct rows of ``table`` whose hash another row shares, with their copies.
+
+    Only these rows can have exact copies. Finding them groups the table on one integer
+    (the row's hash) instead of on all its columns, and only the few rows that share a hash
+    are then grouped on all their columns, which is the exact confirmation: rows that merely
+    collide stay apart with one copy each. ``source_problem`` is part of the row, as in
+    :func:`grouped_rows`. Issue 24: grouping every row on every column was most of the
+    quality log's time.
+    """
+    hashed = row_hash([exp.column(c) for c in (*table.columns, SOURCE_PROBLEM)])
+    shared = (
+        exp.select(hashed.copy().as_("row_hash"))
+        .from_(table.relation)
+        .group_by(hashed.copy())
+        .having(exp.func("COUNT", exp.Star()) > 1)
+    )
+    candidates = (
+        exp.select(*table.columns, SOURCE_PROBLEM, SOURCE_POSITION)
+        .from_(table.relation)
+        .where(hashed.copy().isin(query=shared))
+    )
+    first = exp.func("MIN", exp.column(SOURCE_POSITION)).as_(SOURCE_POSITION)
+    copies = exp.func("COUNT", exp.Star()).as_("copies")
+    return (
+        exp.select(*table.columns, SOURCE_PROBLEM, first, copies)
+        .from_(candidates.subquery("h"))
+        .group_by(*table.columns, SOURCE_PROBLEM)
+    )
+
+
 def judged_for_log(
     table: SourceTable,
     *,
@@ -195,25 +238,26 @@ def judged_for_log(
     raw_codes: dict[str, exp.Expression] | None = None,
     unreadable_date: exp.Expression | None = None,
 ) -> exp.Query:
-    """A table's judged rows as the quality log counts them: reason, copies, first position.
+    """A table's judged rows as the quality log counts them: reason, rows, duplicates.
 
-    Without the duplicate check this reads the table's row-judgement view. With it, the
-    table's rows are grouped on all their columns first and the same judgement
-    (:func:`_judge_events`, :func:`_judge_patients`) is applied to each distinct row: a row's
-    reason follows from its columns, so copies share it, and grouping the raw columns before
-    the joins to the patients and codes costs less than grouping judged rows with their
-    reason (issue 24: 4-6 s more at 200,000 patients). Rows without a patient or set aside by
-    the reader are counted whole (see the quality log).
+    Every row of the table's row-judgement view counts once under its reason
+    (``n_rows`` 1, ``duplicates`` 0, its position). With the duplicate check, the rows that
+    have exact copies (:func:`rows_with_copies`: few, found through a hash) are judged again
+    by the same rule (:func:`_judge_events`, :func:`_judge_patients`; copies share a reason,
+    since a row's reason follows from its columns) and add, under that reason, their copies
+    beyond the first as duplicates (``n_rows`` 0). The log's distinct rows are then
+    ``n_rows - duplicates``. Rows without a patient or set aside by the reader are counted
+    whole: their copies are no duplicates (see the quality log).
     """
-    whole = exp.or_(
-        exp.column("patient_id").is_(exp.null()),
-        exp.column(SOURCE_PROBLEM).is_(exp.null()).not_(),
-    ).as_("counted_whole")
+    each = exp.select(
+        "reason",
+        exp.Literal.number(1).as_("n_rows"),
+        exp.Literal.number(0).as_("duplicates"),
+        SOURCE_POSITION,
+    ).from_(names.judged_stage(table.name))
     if not check_duplicates:
-        return exp.select(
-            "reason", exp.Literal.number(1).as_("copies"), SOURCE_POSITION, whole
-        ).from_(names.judged_stage(table.name))
-    rows = grouped_rows(table, check_duplicates=True)
+        return each
+    rows = rows_with_copies(table)
     if table.name == "patients":
         if unreadable_date is None:
             raise TypeError("the patients table is judged with its unreadable-date test")
@@ -226,7 +270,20 @@ def judged_for_log(
             end_of_data=end_of_data,
             raw_codes=raw_codes,
         )
-    return exp.select("reason", "copies", SOURCE_POSITION, whole).from_(judged.subquery("j"))
+    whole = exp.or_(
+        exp.column("patient_id").is_(exp.null()),
+        exp.column(SOURCE_PROBLEM).is_(exp.null()).not_(),
+    )
+    beyond_first = exp.Case(ifs=[exp.If(this=whole, true=exp.Literal.number(0))]).else_(
+        exp.column("copies") - 1
+    )
+    copies = exp.select(
+        "reason",
+        exp.Literal.number(0).as_("n_rows"),
+        beyond_first.as_("duplicates"),
+        exp.cast(exp.null(), "BIGINT").as_(SOURCE_POSITION),
+    ).from_(judged.subquery("j"))
+    return each.union(copies.where(exp.column("copies") > 1), distinct=False)
 
 
 def same_raw_code(row: str, code: str) -> exp.Expression:

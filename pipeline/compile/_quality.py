@@ -2,11 +2,12 @@
 
 Every row gets the first reason that applies, or ``used``, once, in its table's row-judgement
 stage (``compile/_judged.py``; measurements in ``compile/_measurements.py``), which the
-usable-row stages read too. The log groups each table's judged rows on all their columns, so
-exact duplicates are found (the first copy counts under its reason, the others as duplicates,
-unless the row has no readable patient_id: see _SUMMARY). A separate count of rows read
-lets the build check that used + set aside = read for every table. Each reason also keeps the
-position of the first row it set aside (CSV only; see SOURCE_POSITION), so a user can find it.
+usable-row stages read too. The log counts each judged row once, and finds exact duplicates
+through a row hash confirmed on all columns (``judged_for_log``): the first copy counts under
+its reason, the others as duplicates, unless the row has no readable patient_id (see _SUMMARY).
+A separate count of rows read lets the build check that used + set aside = read for every
+table. Each reason also keeps the position of the first row it set aside (CSV only; see
+SOURCE_POSITION), so a user can find it.
 """
 
 from __future__ import annotations
@@ -211,9 +212,10 @@ SET_ASIDE_REASONS: dict[str, SetAsideReason] = {
 _MEASUREMENTS = """
 SELECT
   COALESCE(problem, 'used') AS reason,
-  copies,
-  source_position,
-  patient_id IS NULL OR source_problem IS NOT NULL AS counted_whole
+  copies AS n_rows,
+  CASE WHEN patient_id IS NULL OR source_problem IS NOT NULL THEN 0 ELSE copies - 1 END
+    AS duplicates,
+  source_position
 FROM :judged
 """
 
@@ -228,8 +230,8 @@ _SUMMARY = """
 SELECT
   reason,
   :table_name AS source_table,
-  SUM(CASE WHEN counted_whole THEN copies ELSE 1 END) AS distinct_rows,
-  SUM(CASE WHEN counted_whole THEN 0 ELSE copies - 1 END) AS duplicates,
+  SUM(n_rows) - SUM(duplicates) AS distinct_rows,
+  SUM(duplicates) AS duplicates,
   MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
 FROM :classified
 GROUP BY reason

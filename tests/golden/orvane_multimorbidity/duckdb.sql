@@ -2477,20 +2477,31 @@ SELECT
 FROM src_measurements;
 
 -- stage quality_log [table]: every extract row: used, or set aside with the first reason that applies
--- reads: distinct_codes, measurements_judged, patient_base, src_diagnoses, src_encounters, src_patients, src_prescriptions
+-- reads: diagnoses_judged, distinct_codes, encounters_judged, measurements_judged, patient_base, patients_judged, prescriptions_judged, src_diagnoses, src_encounters, src_patients, src_prescriptions
 WITH summary AS (
   SELECT
     reason,
     'patients' AS source_table,
-    SUM(CASE WHEN counted_whole THEN copies ELSE 1 END) AS distinct_rows,
-    SUM(CASE WHEN counted_whole THEN 0 ELSE copies - 1 END) AS duplicates,
+    SUM(n_rows) - SUM(duplicates) AS distinct_rows,
+    SUM(duplicates) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       reason,
-      copies,
-      source_position,
-      patient_id IS NULL OR NOT source_problem IS NULL AS counted_whole
+      1 AS n_rows,
+      0 AS duplicates,
+      source_position
+    FROM patients_judged
+    UNION ALL
+    SELECT
+      reason,
+      0 AS n_rows,
+      CASE
+        WHEN patient_id IS NULL OR NOT source_problem IS NULL
+        THEN 0
+        ELSE copies - 1
+      END AS duplicates,
+      CAST(NULL AS BIGINT) AS source_position
     FROM (
       SELECT
         *,
@@ -2533,7 +2544,60 @@ WITH summary AS (
           source_problem,
           MIN(source_position) AS source_position,
           COUNT(*) AS copies
-        FROM src_patients
+        FROM (
+          SELECT
+            patient_id,
+            sex,
+            death_date,
+            birth_date,
+            birth_year,
+            practice_id,
+            registration_date,
+            deregistration_date,
+            source_problem,
+            source_position
+          FROM src_patients
+          WHERE
+            HASH(
+              patient_id,
+              sex,
+              death_date,
+              birth_date,
+              birth_year,
+              practice_id,
+              registration_date,
+              deregistration_date,
+              source_problem
+            ) IN (
+              SELECT
+                HASH(
+                  patient_id,
+                  sex,
+                  death_date,
+                  birth_date,
+                  birth_year,
+                  practice_id,
+                  registration_date,
+                  deregistration_date,
+                  source_problem
+                ) AS row_hash
+              FROM src_patients
+              GROUP BY
+                HASH(
+                  patient_id,
+                  sex,
+                  death_date,
+                  birth_date,
+                  birth_year,
+                  practice_id,
+                  registration_date,
+                  deregistration_date,
+                  source_problem
+                )
+              HAVING
+                COUNT(*) > 1
+            )
+        ) AS h
         GROUP BY
           patient_id,
           sex,
@@ -2546,6 +2610,8 @@ WITH summary AS (
           source_problem
       ) AS r
     ) AS j
+    WHERE
+      copies > 1
   ) AS c
   GROUP BY
     reason
@@ -2553,15 +2619,26 @@ WITH summary AS (
   SELECT
     reason,
     'encounters' AS source_table,
-    SUM(CASE WHEN counted_whole THEN copies ELSE 1 END) AS distinct_rows,
-    SUM(CASE WHEN counted_whole THEN 0 ELSE copies - 1 END) AS duplicates,
+    SUM(n_rows) - SUM(duplicates) AS distinct_rows,
+    SUM(duplicates) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       reason,
-      copies,
-      source_position,
-      patient_id IS NULL OR NOT source_problem IS NULL AS counted_whole
+      1 AS n_rows,
+      0 AS duplicates,
+      source_position
+    FROM encounters_judged
+    UNION ALL
+    SELECT
+      reason,
+      0 AS n_rows,
+      CASE
+        WHEN patient_id IS NULL OR NOT source_problem IS NULL
+        THEN 0
+        ELSE copies - 1
+      END AS duplicates,
+      CAST(NULL AS BIGINT) AS source_position
     FROM (
       SELECT
         *,
@@ -2600,7 +2677,25 @@ WITH summary AS (
               source_problem,
               MIN(source_position) AS source_position,
               COUNT(*) AS copies
-            FROM src_encounters
+            FROM (
+              SELECT
+                patient_id,
+                encounter_date,
+                encounter_type,
+                source_problem,
+                source_position
+              FROM src_encounters
+              WHERE
+                HASH(patient_id, encounter_date, encounter_type, source_problem) IN (
+                  SELECT
+                    HASH(patient_id, encounter_date, encounter_type, source_problem) AS row_hash
+                  FROM src_encounters
+                  GROUP BY
+                    HASH(patient_id, encounter_date, encounter_type, source_problem)
+                  HAVING
+                    COUNT(*) > 1
+                )
+            ) AS h
             GROUP BY
               patient_id,
               encounter_date,
@@ -2612,6 +2707,8 @@ WITH summary AS (
           ON p.patient_id = r.patient_id
       ) AS j
     ) AS j
+    WHERE
+      copies > 1
   ) AS c
   GROUP BY
     reason
@@ -2619,15 +2716,26 @@ WITH summary AS (
   SELECT
     reason,
     'diagnoses' AS source_table,
-    SUM(CASE WHEN counted_whole THEN copies ELSE 1 END) AS distinct_rows,
-    SUM(CASE WHEN counted_whole THEN 0 ELSE copies - 1 END) AS duplicates,
+    SUM(n_rows) - SUM(duplicates) AS distinct_rows,
+    SUM(duplicates) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       reason,
-      copies,
-      source_position,
-      patient_id IS NULL OR NOT source_problem IS NULL AS counted_whole
+      1 AS n_rows,
+      0 AS duplicates,
+      source_position
+    FROM diagnoses_judged
+    UNION ALL
+    SELECT
+      reason,
+      0 AS n_rows,
+      CASE
+        WHEN patient_id IS NULL OR NOT source_problem IS NULL
+        THEN 0
+        ELSE copies - 1
+      END AS duplicates,
+      CAST(NULL AS BIGINT) AS source_position
     FROM (
       SELECT
         *,
@@ -2676,7 +2784,27 @@ WITH summary AS (
               source_problem,
               MIN(source_position) AS source_position,
               COUNT(*) AS copies
-            FROM src_diagnoses
+            FROM (
+              SELECT
+                patient_id,
+                event_date,
+                code_system,
+                code,
+                source,
+                source_problem,
+                source_position
+              FROM src_diagnoses
+              WHERE
+                HASH(patient_id, event_date, code_system, code, source, source_problem) IN (
+                  SELECT
+                    HASH(patient_id, event_date, code_system, code, source, source_problem) AS row_hash
+                  FROM src_diagnoses
+                  GROUP BY
+                    HASH(patient_id, event_date, code_system, code, source, source_problem)
+                  HAVING
+                    COUNT(*) > 1
+                )
+            ) AS h
             GROUP BY
               patient_id,
               event_date,
@@ -2695,6 +2823,8 @@ WITH summary AS (
           AND r.raw_source IS NOT DISTINCT FROM c.raw_source
       ) AS j
     ) AS j
+    WHERE
+      copies > 1
   ) AS c
   GROUP BY
     reason
@@ -2702,15 +2832,26 @@ WITH summary AS (
   SELECT
     reason,
     'prescriptions' AS source_table,
-    SUM(CASE WHEN counted_whole THEN copies ELSE 1 END) AS distinct_rows,
-    SUM(CASE WHEN counted_whole THEN 0 ELSE copies - 1 END) AS duplicates,
+    SUM(n_rows) - SUM(duplicates) AS distinct_rows,
+    SUM(duplicates) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       reason,
-      copies,
-      source_position,
-      patient_id IS NULL OR NOT source_problem IS NULL AS counted_whole
+      1 AS n_rows,
+      0 AS duplicates,
+      source_position
+    FROM prescriptions_judged
+    UNION ALL
+    SELECT
+      reason,
+      0 AS n_rows,
+      CASE
+        WHEN patient_id IS NULL OR NOT source_problem IS NULL
+        THEN 0
+        ELSE copies - 1
+      END AS duplicates,
+      CAST(NULL AS BIGINT) AS source_position
     FROM (
       SELECT
         *,
@@ -2757,7 +2898,26 @@ WITH summary AS (
               source_problem,
               MIN(source_position) AS source_position,
               COUNT(*) AS copies
-            FROM src_prescriptions
+            FROM (
+              SELECT
+                patient_id,
+                start_date,
+                atc,
+                stop_date,
+                source_problem,
+                source_position
+              FROM src_prescriptions
+              WHERE
+                HASH(patient_id, start_date, atc, stop_date, source_problem) IN (
+                  SELECT
+                    HASH(patient_id, start_date, atc, stop_date, source_problem) AS row_hash
+                  FROM src_prescriptions
+                  GROUP BY
+                    HASH(patient_id, start_date, atc, stop_date, source_problem)
+                  HAVING
+                    COUNT(*) > 1
+                )
+            ) AS h
             GROUP BY
               patient_id,
               start_date,
@@ -2775,6 +2935,8 @@ WITH summary AS (
           AND r.raw_source IS NOT DISTINCT FROM c.raw_source
       ) AS j
     ) AS j
+    WHERE
+      copies > 1
   ) AS c
   GROUP BY
     reason
@@ -2782,15 +2944,19 @@ WITH summary AS (
   SELECT
     reason,
     'measurements' AS source_table,
-    SUM(CASE WHEN counted_whole THEN copies ELSE 1 END) AS distinct_rows,
-    SUM(CASE WHEN counted_whole THEN 0 ELSE copies - 1 END) AS duplicates,
+    SUM(n_rows) - SUM(duplicates) AS distinct_rows,
+    SUM(duplicates) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       COALESCE(problem, 'used') AS reason,
-      copies,
-      source_position,
-      patient_id IS NULL OR NOT source_problem IS NULL AS counted_whole
+      copies AS n_rows,
+      CASE
+        WHEN patient_id IS NULL OR NOT source_problem IS NULL
+        THEN 0
+        ELSE copies - 1
+      END AS duplicates,
+      source_position
     FROM measurements_judged
   ) AS c
   GROUP BY

@@ -917,20 +917,31 @@ SELECT
 FROM src_prescriptions;
 
 -- stage quality_log [table]: every extract row: used, or set aside with the first reason that applies
--- reads: distinct_codes, patient_base, src_diagnoses, src_encounters, src_patients, src_prescriptions
+-- reads: diagnoses_judged, distinct_codes, encounters_judged, patient_base, patients_judged, prescriptions_judged, src_diagnoses, src_encounters, src_patients, src_prescriptions
 WITH summary AS (
   SELECT
     reason,
     'patients' AS source_table,
-    SUM(CASE WHEN counted_whole THEN copies ELSE 1 END) AS distinct_rows,
-    SUM(CASE WHEN counted_whole THEN 0 ELSE copies - 1 END) AS duplicates,
+    SUM(n_rows) - SUM(duplicates) AS distinct_rows,
+    SUM(duplicates) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       reason,
-      copies,
-      source_position,
-      patient_id IS NULL OR NOT source_problem IS NULL AS counted_whole
+      1 AS n_rows,
+      0 AS duplicates,
+      source_position
+    FROM patients_judged
+    UNION ALL
+    SELECT
+      reason,
+      0 AS n_rows,
+      CASE
+        WHEN patient_id IS NULL OR NOT source_problem IS NULL
+        THEN 0
+        ELSE copies - 1
+      END AS duplicates,
+      CAST(NULL AS BIGINT) AS source_position
     FROM (
       SELECT
         *,
@@ -1001,7 +1012,60 @@ WITH summary AS (
           source_problem,
           MIN(source_position) AS source_position,
           COUNT(*) AS copies
-        FROM src_patients
+        FROM (
+          SELECT
+            patient_id,
+            sex,
+            death_date,
+            birth_date,
+            birth_year,
+            practice_id,
+            registration_date,
+            deregistration_date,
+            source_problem,
+            source_position
+          FROM src_patients
+          WHERE
+            HASH(
+              patient_id,
+              sex,
+              death_date,
+              birth_date,
+              birth_year,
+              practice_id,
+              registration_date,
+              deregistration_date,
+              source_problem
+            ) IN (
+              SELECT
+                HASH(
+                  patient_id,
+                  sex,
+                  death_date,
+                  birth_date,
+                  birth_year,
+                  practice_id,
+                  registration_date,
+                  deregistration_date,
+                  source_problem
+                ) AS row_hash
+              FROM src_patients
+              GROUP BY
+                HASH(
+                  patient_id,
+                  sex,
+                  death_date,
+                  birth_date,
+                  birth_year,
+                  practice_id,
+                  registration_date,
+                  deregistration_date,
+                  source_problem
+                )
+              HAVING
+                COUNT(*) > 1
+            )
+        ) AS h
         GROUP BY
           patient_id,
           sex,
@@ -1014,6 +1078,8 @@ WITH summary AS (
           source_problem
       ) AS r
     ) AS j
+    WHERE
+      copies > 1
   ) AS c
   GROUP BY
     reason
@@ -1021,15 +1087,26 @@ WITH summary AS (
   SELECT
     reason,
     'encounters' AS source_table,
-    SUM(CASE WHEN counted_whole THEN copies ELSE 1 END) AS distinct_rows,
-    SUM(CASE WHEN counted_whole THEN 0 ELSE copies - 1 END) AS duplicates,
+    SUM(n_rows) - SUM(duplicates) AS distinct_rows,
+    SUM(duplicates) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       reason,
-      copies,
-      source_position,
-      patient_id IS NULL OR NOT source_problem IS NULL AS counted_whole
+      1 AS n_rows,
+      0 AS duplicates,
+      source_position
+    FROM encounters_judged
+    UNION ALL
+    SELECT
+      reason,
+      0 AS n_rows,
+      CASE
+        WHEN patient_id IS NULL OR NOT source_problem IS NULL
+        THEN 0
+        ELSE copies - 1
+      END AS duplicates,
+      CAST(NULL AS BIGINT) AS source_position
     FROM (
       SELECT
         *,
@@ -1075,7 +1152,25 @@ WITH summary AS (
               source_problem,
               MIN(source_position) AS source_position,
               COUNT(*) AS copies
-            FROM src_encounters
+            FROM (
+              SELECT
+                patient_id,
+                encounter_date,
+                encounter_type,
+                source_problem,
+                source_position
+              FROM src_encounters
+              WHERE
+                HASH(patient_id, encounter_date, encounter_type, source_problem) IN (
+                  SELECT
+                    HASH(patient_id, encounter_date, encounter_type, source_problem) AS row_hash
+                  FROM src_encounters
+                  GROUP BY
+                    HASH(patient_id, encounter_date, encounter_type, source_problem)
+                  HAVING
+                    COUNT(*) > 1
+                )
+            ) AS h
             GROUP BY
               patient_id,
               encounter_date,
@@ -1087,6 +1182,8 @@ WITH summary AS (
           ON p.patient_id = r.patient_id
       ) AS j
     ) AS j
+    WHERE
+      copies > 1
   ) AS c
   GROUP BY
     reason
@@ -1094,15 +1191,26 @@ WITH summary AS (
   SELECT
     reason,
     'diagnoses' AS source_table,
-    SUM(CASE WHEN counted_whole THEN copies ELSE 1 END) AS distinct_rows,
-    SUM(CASE WHEN counted_whole THEN 0 ELSE copies - 1 END) AS duplicates,
+    SUM(n_rows) - SUM(duplicates) AS distinct_rows,
+    SUM(duplicates) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       reason,
-      copies,
-      source_position,
-      patient_id IS NULL OR NOT source_problem IS NULL AS counted_whole
+      1 AS n_rows,
+      0 AS duplicates,
+      source_position
+    FROM diagnoses_judged
+    UNION ALL
+    SELECT
+      reason,
+      0 AS n_rows,
+      CASE
+        WHEN patient_id IS NULL OR NOT source_problem IS NULL
+        THEN 0
+        ELSE copies - 1
+      END AS duplicates,
+      CAST(NULL AS BIGINT) AS source_position
     FROM (
       SELECT
         *,
@@ -1158,7 +1266,27 @@ WITH summary AS (
               source_problem,
               MIN(source_position) AS source_position,
               COUNT(*) AS copies
-            FROM src_diagnoses
+            FROM (
+              SELECT
+                patient_id,
+                event_date,
+                code_system,
+                code,
+                source,
+                source_problem,
+                source_position
+              FROM src_diagnoses
+              WHERE
+                HASH(patient_id, event_date, code_system, code, source, source_problem) IN (
+                  SELECT
+                    HASH(patient_id, event_date, code_system, code, source, source_problem) AS row_hash
+                  FROM src_diagnoses
+                  GROUP BY
+                    HASH(patient_id, event_date, code_system, code, source, source_problem)
+                  HAVING
+                    COUNT(*) > 1
+                )
+            ) AS h
             GROUP BY
               patient_id,
               event_date,
@@ -1177,6 +1305,8 @@ WITH summary AS (
           AND r.raw_source IS NOT DISTINCT FROM c.raw_source
       ) AS j
     ) AS j
+    WHERE
+      copies > 1
   ) AS c
   GROUP BY
     reason
@@ -1184,15 +1314,26 @@ WITH summary AS (
   SELECT
     reason,
     'prescriptions' AS source_table,
-    SUM(CASE WHEN counted_whole THEN copies ELSE 1 END) AS distinct_rows,
-    SUM(CASE WHEN counted_whole THEN 0 ELSE copies - 1 END) AS duplicates,
+    SUM(n_rows) - SUM(duplicates) AS distinct_rows,
+    SUM(duplicates) AS duplicates,
     MIN(CASE WHEN reason <> 'used' THEN source_position END) AS first_position
   FROM (
     SELECT
       reason,
-      copies,
-      source_position,
-      patient_id IS NULL OR NOT source_problem IS NULL AS counted_whole
+      1 AS n_rows,
+      0 AS duplicates,
+      source_position
+    FROM prescriptions_judged
+    UNION ALL
+    SELECT
+      reason,
+      0 AS n_rows,
+      CASE
+        WHEN patient_id IS NULL OR NOT source_problem IS NULL
+        THEN 0
+        ELSE copies - 1
+      END AS duplicates,
+      CAST(NULL AS BIGINT) AS source_position
     FROM (
       SELECT
         *,
@@ -1264,7 +1405,26 @@ WITH summary AS (
               source_problem,
               MIN(source_position) AS source_position,
               COUNT(*) AS copies
-            FROM src_prescriptions
+            FROM (
+              SELECT
+                patient_id,
+                start_date,
+                atc,
+                stop_date,
+                source_problem,
+                source_position
+              FROM src_prescriptions
+              WHERE
+                HASH(patient_id, start_date, atc, stop_date, source_problem) IN (
+                  SELECT
+                    HASH(patient_id, start_date, atc, stop_date, source_problem) AS row_hash
+                  FROM src_prescriptions
+                  GROUP BY
+                    HASH(patient_id, start_date, atc, stop_date, source_problem)
+                  HAVING
+                    COUNT(*) > 1
+                )
+            ) AS h
             GROUP BY
               patient_id,
               start_date,
@@ -1282,6 +1442,8 @@ WITH summary AS (
           AND r.raw_source IS NOT DISTINCT FROM c.raw_source
       ) AS j
     ) AS j
+    WHERE
+      copies > 1
   ) AS c
   GROUP BY
     reason
