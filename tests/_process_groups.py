@@ -87,7 +87,12 @@ def check_spark_units(items: Iterable[pytest.Item], spark: set[str]) -> None:
 
 
 class FileAndSparkScheduling(LoadScopeScheduling):
-    """xdist's scope scheduling with :func:`unit_of` as the scope (largest units first)."""
+    """xdist's scope scheduling with :func:`unit_of` as the scope, the Spark unit first.
+
+    xdist hands out the units with the most tests first; the Spark unit is the longest by
+    time (Java start-ups, a standalone cluster), so it starts first, and the other process
+    works through the files meanwhile instead of waiting for it at the end.
+    """
 
     def __init__(self, config: pytest.Config, log: object = None) -> None:
         super().__init__(config, log)  # type: ignore[arg-type]
@@ -95,6 +100,11 @@ class FileAndSparkScheduling(LoadScopeScheduling):
 
     def _split_scope(self, nodeid: str) -> str:
         return unit_of(nodeid, self.spark)
+
+    def _assign_work_unit(self, node: object) -> None:
+        if SPARK in self.workqueue:
+            self.workqueue.move_to_end(SPARK, last=False)
+        super()._assign_work_unit(node)  # type: ignore[arg-type]
 
 
 class ProcessGroups:

@@ -8,11 +8,18 @@ from __future__ import annotations
 import shutil
 import subprocess
 import tomllib
+import types
 from pathlib import Path
 
 import pytest
 
-from ._process_groups import SPARK, check_spark_units, read_spark_tests_of, unit_of
+from ._process_groups import (
+    SPARK,
+    FileAndSparkScheduling,
+    check_spark_units,
+    read_spark_tests_of,
+    unit_of,
+)
 from .conftest import ROOT
 from .helpers import in_ci, require
 
@@ -143,3 +150,53 @@ def test_a_spark_test_the_reading_misses_fails_the_run(tmp_path: Path) -> None:
     hidden = _Item("tests/test_b.py::test_hidden[1]", pytest.mark.spark)
     with pytest.raises(pytest.UsageError, match=r"test_b.py::test_hidden\[1\]"):
         check_spark_units([*seen, hidden], spark)  # type: ignore[list-item]
+
+
+class _Config:
+    """What xdist's scope scheduler reads of the configuration: two processes, the root."""
+
+    def __init__(self, root: Path) -> None:
+        self.rootpath = root
+        self.option = types.SimpleNamespace(loadscopereorder=True)
+
+    def getvalue(self, name: str) -> object:
+        assert name == "tx"
+        return ["2*popen"]
+
+
+class _Process:
+    """A stand-in for one xdist worker: records the tests it is sent."""
+
+    def __init__(self, name: str, collection: list[str]) -> None:
+        self.gateway = types.SimpleNamespace(id=name)
+        self.shutting_down = False
+        self.collection = collection
+        self.sent: list[str] = []
+
+    def send_runtest_some(self, indices: list[int]) -> None:
+        self.sent += [self.collection[i] for i in indices]
+
+    def shutdown(self) -> None:
+        pass
+
+
+def test_the_spark_unit_goes_first_and_files_stay_whole(tmp_path: Path) -> None:
+    tests = tmp_path / "tests"
+    tests.mkdir()
+    (tests / "test_s.py").write_text("import pytest\n\npytestmark = pytest.mark.spark\n")
+    collection = [
+        *(f"tests/test_many.py::test_{i}" for i in range(6)),  # the most tests
+        *(f"tests/test_few.py::test_{i}" for i in range(3)),
+        "tests/test_s.py::test_a",
+        "tests/test_s.py::test_b",
+    ]
+    scheduler = FileAndSparkScheduling(_Config(tmp_path))  # type: ignore[arg-type]
+    first, second = _Process("gw0", collection), _Process("gw1", collection)
+    for process in (first, second):
+        scheduler.add_node(process)  # type: ignore[arg-type]
+        scheduler.add_node_collection(process, collection)  # type: ignore[arg-type]
+    scheduler.schedule()
+    assert first.sent[:2] == ["tests/test_s.py::test_a", "tests/test_s.py::test_b"]
+    assert sorted(first.sent + second.sent) == sorted(collection)
+    for file in ("test_many", "test_few", "test_s"):
+        assert len({p for p in (first, second) for t in p.sent if file + ".py" in t}) == 1
