@@ -9,9 +9,9 @@ so two JVMs never compete for the two cores and the memory at once.
 xdist's own ``--dist loadgroup`` would say the same with ``xdist_group`` marks, but from
 pytest 9.2 it silently ignores them (it renames node ids, which pytest no longer lets it do;
 pytest-xdist issue 1386), so the units are decided here, in the controller, from the test
-files' text: the controller collects no tests and never sees a mark. Each worker then checks
-every collected Spark test against that reading (:func:`check_spark_units`), so a Spark mark
-this reading misses fails the run instead of quietly splitting the Spark tests.
+files' text: the controller collects no tests and never sees a mark. A test checks every
+collected Spark test against that reading (:func:`check_spark_units`), so a Spark mark this
+reading misses fails the suite instead of quietly splitting the Spark tests.
 """
 
 from __future__ import annotations
@@ -68,7 +68,7 @@ def read_spark_tests_of(root: Path) -> set[str]:
 
 
 def check_spark_units(items: Iterable[pytest.Item], spark: set[str]) -> None:
-    """Fail the run when a collected Spark test would not join the ``spark`` unit.
+    """Fail when a collected Spark test would not join the ``spark`` unit.
 
     Raises:
         pytest.UsageError: A test carries the ``spark`` mark in a way the controller's reading
@@ -116,9 +116,3 @@ class ProcessGroups:
         if config.getvalue("dist") != "load":
             return None
         return FileAndSparkScheduling(config, log)
-
-    @pytest.hookimpl(trylast=True)
-    def pytest_collection_modifyitems(self, config: pytest.Config, items: list[pytest.Item]):
-        """In each worker: every Spark test must belong to the ``spark`` unit."""
-        if hasattr(config, "workerinput"):
-            check_spark_units(items, read_spark_tests_of(config.rootpath))

@@ -116,6 +116,13 @@ def test_a_file_stays_in_one_process_and_spark_tests_share_one() -> None:
     assert unit_of("pipeline/stats/_x.py::pipeline.stats._x.f", spark) == "pipeline/stats/_x.py"
 
 
+def test_every_collected_spark_test_joins_the_spark_unit(request: pytest.FixtureRequest) -> None:
+    # The whole suite's collection when the whole suite runs (the README command).
+    items = request.session.items
+    assert request.node in items
+    check_spark_units(items, read_spark_tests_of(ROOT))
+
+
 class _Item:
     """Just what :func:`check_spark_units` reads of a collected test."""
 
