@@ -24,6 +24,17 @@ def pytest_addoption(parser: pytest.Parser) -> None:
     )
 
 
+def pytest_configure(config: pytest.Config) -> None:
+    """With xdist (``-n 2``), tests of a file and all Spark tests share a process.
+
+    See tests/_process_groups.py; without xdist (``-p no:xdist``) nothing changes.
+    """
+    if config.pluginmanager.hasplugin("xdist"):
+        from ._process_groups import ProcessGroups
+
+        config.pluginmanager.register(ProcessGroups(), "ascertain-process-groups")
+
+
 @pytest.fixture
 def update_golden(request: pytest.FixtureRequest) -> bool:
     return bool(request.config.getoption("--update-golden"))
