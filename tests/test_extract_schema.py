@@ -98,11 +98,14 @@ def test_imports_run_one_way() -> None:
 
 
 def test_locating_an_extract_loads_no_compiler() -> None:
+    # The compile package loads its passes lazily; its `names` module (pure strings, which the
+    # config's column checks read) is the one part of it that may come along.
     script = (
         "import sys\n"
         "from pipeline.extract import discover_extract, fhir_source, source_column\n"
+        "light = {'pipeline.compile', 'pipeline.compile.names'}\n"
         "late = ('pipeline.compile', 'pipeline.engine')\n"
-        "loaded = [m for m in sys.modules if m.startswith(late)]\n"
+        "loaded = [m for m in sys.modules if m.startswith(late) and m not in light]\n"
         "assert loaded == [], loaded\n"
     )
     subprocess.run([sys.executable, "-c", script], check=True, cwd=ROOT)
