@@ -55,8 +55,9 @@ DATA = ROOT / "data"
 RESULTS = ROOT / "results" / "build_scale.json"
 
 
-def _extract(patients: int, seed: int) -> Path:
-    folder = DATA / f"synth_{patients}_seed{seed}"
+def _extract(patients: int, seed: int, data: Path = DATA) -> Path:
+    """A synthetic extract of ``patients`` in ``data``, made by ``ascertain synth`` if missing."""
+    folder = data / f"synth_{patients}_seed{seed}"
     if not (folder / "scenario.json").exists():
         shutil.rmtree(folder, ignore_errors=True)
         folder.parent.mkdir(parents=True, exist_ok=True)

@@ -39,12 +39,12 @@ from typing import Any
 import duckdb
 import yaml
 from _child import ascertain, markdown_table, run_child, write_results
+from build_scale import DATA, _extract
 from sqlglot import exp
 
 ROOT = Path(__file__).resolve().parent
 DEMO = ROOT.parent / "definitions" / "studies" / "orvane_multimorbidity.yaml"
 HAND_SQL = ROOT / "outcome_only.sql"
-DATA = ROOT / "data"
 RESULTS = ROOT / "results" / "outcome_only.json"
 OUTCOMES = ("type2_diabetes", "ckd", "heart_failure")
 COMPARED = [
@@ -66,21 +66,6 @@ con.execute("SET file_search_path = ?", [extract])
 query = open(sql_file, encoding="utf-8").read()
 con.execute("COPY (" + query + ") TO ? (FORMAT parquet)", [out])
 """
-
-
-def _extract(data: Path, patients: int, seed: int) -> Path:
-    """A synthetic extract of ``patients`` (the folder build_scale.py names), made if missing."""
-    folder = data / f"synth_{patients}_seed{seed}"
-    if not (folder / "scenario.json").exists():
-        shutil.rmtree(folder, ignore_errors=True)
-        folder.parent.mkdir(parents=True, exist_ok=True)
-        print(f"generating {patients:,} patients in {folder} ...", file=sys.stderr, flush=True)
-        run = run_child(
-            ascertain("synth", str(folder), "--patients", str(patients), "--seed", str(seed))
-        )
-        if run.exit_code:
-            raise SystemExit(f"ascertain synth failed with exit code {run.exit_code}")
-    return folder
 
 
 def outcome_only_study(folder: Path) -> Path:
@@ -233,7 +218,7 @@ def main() -> None:
     args = parser.parse_args()
     extracts: list[tuple[int | str, Path]] = [(str(e), e.resolve()) for e in args.extract or []]
     sizes = args.patients or ([] if extracts else [200_000, 2_000_000])
-    extracts += [(n, _extract(args.data, n, args.seed)) for n in sizes]
+    extracts += [(n, _extract(n, args.seed, args.data)) for n in sizes]
     results = []
     with tempfile.TemporaryDirectory(prefix="outcome-only-study-") as folder:
         study = outcome_only_study(Path(folder))
