@@ -38,8 +38,8 @@ from typing import Any
 
 import duckdb
 import yaml
-from _child import ascertain, markdown_table, run_child, write_results
-from build_scale import DATA, _extract
+from _child import markdown_table, run_child, write_results
+from build_scale import DATA, _build, _extract
 from sqlglot import exp
 
 ROOT = Path(__file__).resolve().parent
@@ -79,23 +79,6 @@ def outcome_only_study(folder: Path) -> Path:
     study = folder / f"{DEMO.stem}_outcome_only.yaml"
     study.write_text(yaml.safe_dump(doc, sort_keys=False), encoding="utf-8")
     return study
-
-
-def _build(study: Path, extract: Path, out: Path, threads: int) -> dict[str, Any]:
-    args = ["build", str(study), "--extract", str(extract), "--out", str(out), "--quiet"]
-    args += ["--threads", str(threads)]
-    child = run_child(ascertain(*args))
-    if child.exit_code:
-        raise SystemExit(f"ascertain {' '.join(args)} failed with exit code {child.exit_code}")
-    run = json.loads((out / "run.json").read_text(encoding="utf-8"))
-    stages = sorted(run["stages"], key=lambda s: -s["seconds"])
-    return {
-        "wall_seconds": round(child.wall_seconds, 2),
-        "cpu_seconds": round(child.cpu_seconds, 2),
-        "peak_rss_mb": child.peak_rss_mb,
-        "cohort_patients": run["counts"]["cohort_patients"],
-        "slowest_stages": {s["name"]: s["seconds"] for s in stages[:5]},
-    }
 
 
 def _hand(extract: Path, out: Path, threads: int) -> dict[str, Any]:
@@ -155,7 +138,7 @@ def _measure(args: argparse.Namespace, study: Path, extract: Path, label: int | 
     try:
         builds, hands = [], []
         for i in range(args.repeat):  # alternately, so a change of load falls on both
-            builds.append(_build(study, extract, out / f"build{i}", args.threads))
+            builds.append(_build(study, extract, out / f"build{i}", "--threads", str(args.threads)))
             hands.append(_hand(extract, out / f"hand{i}.parquet", args.threads))
         last = args.repeat - 1
         check = compare(out / f"build{last}" / "cohort.parquet", out / f"hand{last}.parquet")
