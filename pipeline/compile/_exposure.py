@@ -61,7 +61,8 @@ GROUP BY patient_id
 """
 
 
-def _groups_table(exposure: Exposure) -> exp.Expression:
+def groups_table(exposure: Exposure) -> exp.Expression:
+    """The groups' evidence numbers as a literal table ``g(evidence, exposure_group)``."""
     rows = [(evidence_number(exposure_key(g)), g) for g in sorted(exposure.groups)]
     return values_table("g", ["evidence", "exposure_group"], rows)
 
@@ -78,7 +79,7 @@ def exposure_index_stage(study: Study) -> Stage:
         query(
             _EXPOSURE_START,
             events=exp.to_table(names.EVIDENCE_EVENTS),
-            groups=_groups_table(exposure),
+            groups=groups_table(exposure),
             start=start,
             end=end,
             washout=exposure.washout_days,

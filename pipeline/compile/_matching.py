@@ -38,6 +38,14 @@ from sqlglot import exp
 from pipeline.compile import names
 from pipeline.compile._contact import uses_contact_rows
 from pipeline.compile._context import CompileContext
+from pipeline.compile._matching_source import (
+    SOURCE_POOL,
+    cohort_sets_query,
+    pool_description,
+    sets_description,
+    source_candidates_query,
+    source_pool_query,
+)
 from pipeline.compile._plan import ColumnDoc, Stage
 from pipeline.compile._sql import add_days, query, value, values_table
 from pipeline.config._matching import Matching
@@ -199,12 +207,28 @@ def matching_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         spell_end=add_days(exp.func("MAX", exp.column("contact_date")), within),
         gap_start=add_days(exp.column("contact_date"), -within),
     )
-    candidates = query(
-        _CANDIDATES,
-        seed=value(str(option.seed)),
-        offsets=_offsets(option.birth_year_within),
-        same_practice=_same_practice(option, "q", "s"),
-    )
+    from_source = option.pool == SOURCE_POOL
+    if from_source:
+        pool = Stage(
+            "matching_pool", source_pool_query(ctx.study, option), pool_description(option)
+        )
+        sets = cohort_sets_query(option)
+        candidates = source_candidates_query(
+            option, _offsets(option.birth_year_within), _same_practice(option, "q", "s")
+        )
+    else:
+        pool = Stage(
+            "matching_pool",
+            _pool_query(option.opener),
+            f"the cohort with its matching variables, follow-up and {option.opener} onset",
+        )
+        sets = query(_SETS)
+        candidates = query(
+            _CANDIDATES,
+            seed=value(str(option.seed)),
+            offsets=_offsets(option.birth_year_within),
+            same_practice=_same_practice(option, "q", "s"),
+        )
     ranked = query(_RANKED).subquery("r")
     if option.reuse_controls:
         draws = (
@@ -220,21 +244,13 @@ def matching_stages(ctx: CompileContext) -> tuple[Stage, ...]:
             .where("r.draw_rank <= l.draw_limit")
         )
     stages = [
-        Stage(
-            "matching_pool",
-            _pool_query(option.cases_of),
-            f"the cohort with its matching variables, follow-up and {option.cases_of} onset",
-        ),
+        pool,
         Stage(
             "matching_contact_spells",
             spells,
             f"spells in contact: contacts at most {within} days apart, to the last + {within}",
         ),
-        Stage(
-            "matching_sets",
-            query(_SETS),
-            f"one set per incident {option.cases_of} case, dated on its onset, numbered by date",
-        ),
+        Stage("matching_sets", sets, sets_description(option)),
         Stage(
             "matching_candidates",
             candidates,
@@ -282,29 +298,61 @@ def matched_docs(ctx: CompileContext) -> tuple[ColumnDoc, ...]:
     option = ctx.study.matching
     if option is None:
         return ()
-    name = option.cases_of
+    name = option.opener
     replacement = (
         "with replacement: a patient may be a control of several sets"
         if option.reuse_controls
         else "without replacement: a patient is a control of one set at most; sets filled in "
         "order of set date, then case id"
     )
+    if option.exposed_in is None:
+        opened = (
+            "incident case",
+            f"ROW_NUMBER over incident {name} cases ordered by "
+            f"{names.onset_column(name)}, patient_id",
+        )
+        role = ("case or control", "case: the set's own case")
+        index = (
+            "the set's date: the case's onset; a control's index date in the matched analysis",
+            f"{names.onset_column(name)} of the set's case",
+            "diagnoses, prescriptions, measurements",
+        )
+    else:
+        opened = (
+            f"new user of {name}",
+            f"ROW_NUMBER over cohort patients with exposure "
+            f"'{name}' ordered by index_date, patient_id",
+        )
+        role = (
+            "exposed (the set's new user of the group) or control",
+            "exposed: the set's own patient; control: not yet exposed to any group on the date",
+        )
+        index = (
+            "the set's date: the exposed patient's index date; a control's index date in the "
+            "matched analysis",
+            "index_date of the set's exposed patient",
+            "prescriptions",
+        )
+    patient_from = (
+        "from cohort.parquet"
+        if option.pool != SOURCE_POOL
+        else "the set's patient from cohort.parquet; controls from the extract's patients"
+    )
     docs = [
         ColumnDoc(
             "set_id",
             "INTEGER",
             "",
-            "the matched set: one per incident case, numbered 1, 2, ... by set date, then case id",
-            f"ROW_NUMBER over incident {name} cases ordered by {names.onset_column(name)}, "
-            "patient_id",
+            f"the matched set: one per {opened[0]}, numbered 1, 2, ... by set date, then case id",
+            opened[1],
             "cohort",
         ),
-        ColumnDoc("role", "VARCHAR", "", "case or control", "case: the set's own case", "study"),
+        ColumnDoc("role", "VARCHAR", "", role[0], role[1], "study"),
         ColumnDoc(
             "control_number",
             "INTEGER",
             "",
-            "0 for the case; 1, 2, ... for controls in the order they were drawn",
+            f"0 for the {option.opener_role}; 1, 2, ... for controls in the order they were drawn",
             f"controls ranked by MD5 of 'seed|case id|control id' (seed {option.seed}), "
             f"up to {option.controls_per_case}; {replacement}",
             "study",
@@ -314,17 +362,10 @@ def matched_docs(ctx: CompileContext) -> tuple[ColumnDoc, ...]:
             "same as cohort.parquet",
             "",
             "the patient",
-            "from cohort.parquet",
+            patient_from,
             "extract",
         ),
-        ColumnDoc(
-            "index_date",
-            "DATE",
-            "date",
-            "the set's date: the case's onset; a control's index date in the matched analysis",
-            f"{names.onset_column(name)} of the set's case",
-            "diagnoses, prescriptions, measurements",
-        ),
+        ColumnDoc("index_date", "DATE", "date", *index),
         ColumnDoc(
             "sex",
             "VARCHAR",

@@ -418,7 +418,8 @@ def load_study(file: Path, documents: Documents | None = None) -> LoadedStudy:
     problems += _study_lists(doc, study)
     ages = [c.age.between[0] for c in study.eligibility if c.age is not None]
     problems += persontime_problems(doc, study.persontime, ages)
-    problems += matching_problems(doc, study.matching, study.outcomes.conditions)
+    groups = tuple(study.exposure.groups) if study.exposure is not None else None
+    problems += matching_problems(doc, study.matching, study.outcomes.conditions, groups)
     problems += exposure_problems(doc, study.exposure, study.index.strategy)
     if problems:
         raise ConfigError(problems)

@@ -21,7 +21,13 @@ from pipeline.config._matching import Matching
 from pipeline.errors import AscertainError
 
 MATCHING_STEPS = ("match_cases", "match_any_control", "match_all_controls")
-"""The attrition log's matching lines, after the eligibility steps."""
+"""The attrition log's matching lines, after the eligibility steps (sets opened by cases)."""
+
+EXPOSED_SETS_STEP = "match_exposed"
+"""The first matching line when new users of a group open the sets (``exposed_in``)."""
+
+MATCHING_LINES = (*MATCHING_STEPS, EXPOSED_SETS_STEP)
+"""Every step name a matching line may have: a reader finds where the lines start by these."""
 
 
 @dataclass(frozen=True)
@@ -29,7 +35,7 @@ class MatchSummary:
     """How many sets got all their controls, fewer, or none.
 
     Attributes:
-        cases: Sets (one per incident case in the cohort).
+        cases: Sets (one per incident case, or new user of the group, in the cohort).
         full: Sets with ``controls_per_case`` controls.
         fewer: Sets with at least one control but fewer than ``controls_per_case``.
         none: Sets without a control.
@@ -113,7 +119,7 @@ def matched_table(
 
     sizes = []
     for set_row in set_rows:
-        add(set_row, set_row, "case", 0)
+        add(set_row, set_row, option.opener_role, 0)
         picked = chosen[set_row["set_id"]]
         sizes.append(len(picked))
         for number, position in enumerate(picked, start=1):
@@ -152,19 +158,26 @@ def with_matching_lines(
 ) -> pa.Table:
     """The attrition log with three matching lines after the eligibility steps.
 
-    Cases, then sets with a control, then sets with every control: each line's remaining is
-    the next one's before, so the report draws them as the flow's continuation.
+    Cases (or new users of the group), then sets with a control, then sets with every
+    control: each line's remaining is the next one's before, so the report draws them as the
+    flow's continuation.
     """
     last = max(attrition.column("step_number").to_pylist(), default=0)
-    k, name = option.controls_per_case, option.cases_of
+    k, name = option.controls_per_case, option.opener
     some = summary.full + summary.fewer
-    lines = [
+    first = (
         (
             "match_cases",
             f"incident {name} cases in the cohort: one matched set each, dated on the onset",
-            cohort_size,
-            summary.cases,
-        ),
+        )
+        if option.exposed_in is None
+        else (
+            EXPOSED_SETS_STEP,
+            f"new users of {name} in the cohort: one matched set each, dated on the index date",
+        )
+    )
+    lines = [
+        (*first, cohort_size, summary.cases),
         ("match_any_control", "sets with at least one control", summary.cases, some),
         ("match_all_controls", f"sets with all {k} controls", some, summary.full),
     ]
