@@ -13,7 +13,7 @@ from typing import Any
 
 import polars as pl
 
-from pipeline.outputs._matched import MATCHING_STEPS
+from pipeline.outputs._matched import MATCHING_LINES
 from pipeline.outputs.report._codes import codes_section
 from pipeline.outputs.report._html_cells import n_cell as _n
 from pipeline.outputs.report._html_cells import table as _table
@@ -158,7 +158,7 @@ def _flow(flow: pl.DataFrame, threshold: int) -> str:
         )
         for r in rows
     ]
-    sets = [i for i, r in enumerate(rows) if r["step"] in MATCHING_STEPS]
+    sets = [i for i, r in enumerate(rows) if r["step"] in MATCHING_LINES]
     return render_flow(steps, cohort=sets[0] - 1 if sets else None) + (
         f'<p class="note">Counts below {threshold} are shown as "&lt;{threshold}". Because each '
         "box's count is the previous count minus the exclusions, a hidden exclusion would follow "

@@ -59,6 +59,7 @@ STEP_TITLES = {
     "one_exposure_group": "Starting one treatment group",
     # a matched study's lines after the cohort (outputs/_matched.py); they count sets
     "match_cases": "Matched sets, one per incident case",
+    "match_exposed": "Matched sets, one per new user of the group",
     "match_any_control": "Sets with at least one control",
     "match_all_controls": "Sets with every control",
 }
@@ -67,6 +68,7 @@ DEFINING_STEPS = ("patients_in_extract", "source_population")
 # What a side box counts when it is not patients excluded: a matched study's lines count sets.
 SIDE_TITLES = {
     "match_cases": "Not a case:",
+    "match_exposed": "Not a new user of the group:",
     "match_any_control": "No control found:",
     "match_all_controls": "Fewer controls:",
 }

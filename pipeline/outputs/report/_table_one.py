@@ -25,6 +25,11 @@ _NUMERIC_STATS = ("mean", "sd", "median", "q1", "q3")
 _STATES = {"false": "false", "true": "true", "null": "null"}
 
 
+def exposure_size_key(group: str) -> str:
+    """The key of an exposure group's size: Table 1 by exposure's column, a matched flow line."""
+    return f"t1size|@{names.EXPOSURE}|{group}"
+
+
 def _group_names(by: str) -> tuple[str, ...]:
     return ("overall", f"{by}=false", f"{by}=true", f"{by}=null")
 
@@ -146,7 +151,7 @@ def exposure_table_one_blocks(cohort: pl.DataFrame) -> tuple[pl.DataFrame, Block
 
     def key(variable: str, row: str, group: str) -> str:
         if variable == "patients":
-            return "N" if group == "overall" else f"t1size|{tag}|{group.rsplit('=', 1)[1]}"
+            return "N" if group == "overall" else exposure_size_key(group.rsplit("=", 1)[1])
         return (
             f"t1|{variable}|{row}" if group == "overall" else f"t1|{tag}|{variable}|{row}|{group}"
         )

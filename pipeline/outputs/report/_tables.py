@@ -14,10 +14,12 @@ from typing import Any
 
 import polars as pl
 
+from pipeline.compile import names
 from pipeline.errors import AscertainError
-from pipeline.outputs._matched import MATCHING_STEPS
+from pipeline.outputs._matched import EXPOSED_SETS_STEP, MATCHING_LINES, MATCHING_STEPS
 from pipeline.outputs.report._cells import Spec
 from pipeline.outputs.report._suppression import Block, keyed_frame, masked
+from pipeline.outputs.report._table_one import exposure_size_key
 from pipeline.stats import (
     crude_proportion,
     cumulative_incidence_at_horizon,
@@ -44,7 +46,13 @@ def _events_spec(outcome: str) -> Spec:
     return ((f"at|{outcome}", "true"), (f"inc|{outcome}", "true"))
 
 
-def flow_block(attrition: pl.DataFrame, cohort_size: int, cases_of: str | None = None) -> Block:
+def flow_block(
+    attrition: pl.DataFrame,
+    cohort_size: int,
+    cases_of: str | None = None,
+    *,
+    exposed_in: str | None = None,
+) -> Block:
     """The attrition log; each step's remaining count is the next step's patients_before.
 
     The last eligibility step's remaining count is the cohort size (key ``N``, known). A study
@@ -58,13 +66,16 @@ def flow_block(attrition: pl.DataFrame, cohort_size: int, cases_of: str | None =
         cohort_size: Rows of the analysis table.
         cases_of: The matched outcome, when the log has matching lines (else they are tied to
             nothing, which would let a reader see a hidden events count there).
+        exposed_in: The exposure group whose new users opened the sets (``match_exposed``):
+            that line counts the group's patients in the cohort, Table 1 by exposure's column
+            size (``exposure_size_key``), so it takes that key.
 
     Raises:
         AscertainError: The matching lines' cases differ from the cohort's incident cases of
             ``cases_of`` (the two files do not come from one build).
     """
     steps = attrition["step"].to_list()
-    first_match = next((i for i, s in enumerate(steps) if s in MATCHING_STEPS), len(steps))
+    first_match = next((i for i, s in enumerate(steps) if s in MATCHING_LINES), len(steps))
     meanings: dict[str, Spec] = {}
     rows: list[dict[str, Any]] = []
     before_key = "src"
@@ -75,6 +86,9 @@ def flow_block(attrition: pl.DataFrame, cohort_size: int, cases_of: str | None =
         elif r["step"] == MATCHING_STEPS[0] and cases_of is not None:
             rem_key = f"events|{cases_of}"
             meanings[rem_key] = _events_spec(cases_of)
+        elif r["step"] == EXPOSED_SETS_STEP and exposed_in is not None:
+            rem_key = exposure_size_key(exposed_in)
+            meanings[rem_key] = ((names.EXPOSURE, exposed_in),)
         rows.append(
             r
             | {

@@ -90,6 +90,7 @@ class Study:
     notes: list[str] = field(default_factory=list)
     reference: ReferenceRates | None = None
     cases_of: str | None = None
+    exposed_in: str | None = None
 
 
 def _used_conditions(loaded: LoadedStudy) -> tuple[str, ...]:
@@ -194,6 +195,7 @@ def read_study(
         labels={n: c.label for n, c in study_model.covariates.items() if c.label},
         reference=loaded.reference_rates,
         cases_of=study_model.matching.cases_of if study_model.matching else None,
+        exposed_in=study_model.matching.exposed_in if study_model.matching else None,
     )
 
 
@@ -274,6 +276,22 @@ def matched_outcome(
     )
 
 
+def matched_group(output_dir: Path, cohort: pl.DataFrame, study: Study) -> str | None:
+    """The exposure group whose new users opened the sets (``exposed_in``), if any.
+
+    From the study; when the study file could not be read, from ``matched.parquet``: the one
+    exposure of the cohort patients who open its sets. None when the build has no such sets.
+    """
+    if study.exposed_in is not None or not (output_dir / "matched.parquet").is_file():
+        return study.exposed_in
+    matched = pl.read_parquet(output_dir / "matched.parquet", columns=["role", "patient_id"])
+    exposed = matched.filter(pl.col("role") == "exposed")["patient_id"]
+    if exposed.is_empty() or names.EXPOSURE not in cohort.columns:
+        return None
+    groups = cohort.filter(pl.col("patient_id").is_in(exposed.implode()))[names.EXPOSURE]
+    return groups[0] if groups.n_unique() == 1 else None
+
+
 @dataclass
 class ReportParts:
     """A build folder's report before suppression: its tables as blocks, and their system.
@@ -348,7 +366,10 @@ def read_report(output_dir: Path, study_file: Path | None = None) -> ReportParts
     study = read_study(manifest, cohort, output_dir, study_file)
     outcomes, t = study.outcomes, study.threshold
     flow = flow_block(
-        attrition, cohort.height, matched_outcome(output_dir, cohort, attrition, study)
+        attrition,
+        cohort.height,
+        matched_outcome(output_dir, cohort, attrition, study),
+        exposed_in=matched_group(output_dir, cohort, study),
     )
     t1 = {o: table_one_blocks(cohort, o) for o in outcomes}
     # a new-user study: Table 1 by the group started at index, in the same suppression system
