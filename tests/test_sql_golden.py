@@ -45,6 +45,23 @@ def test_design_plan_matches_golden(study: Path, dialect: str, update_golden: bo
     assert text == golden.read_text(encoding="utf-8")
 
 
+EXAMPLE_GOLDEN = ("orvane_new_users_matched",)
+"""Example studies of definitions/studies/ with golden files in tests/golden/examples/."""
+
+
+@pytest.mark.parametrize("dialect", ["duckdb", "spark"])
+@pytest.mark.parametrize("name", EXAMPLE_GOLDEN)
+def test_example_plan_matches_golden(name: str, dialect: str, update_golden: bool) -> None:
+    study = Path(__file__).resolve().parents[1] / "definitions" / "studies" / f"{name}.yaml"
+    plan = plan_study(study)
+    text = (spark_plan(plan) if dialect == "spark" else plan).describe(dialect)
+    golden = GOLDEN.parent / "examples" / f"{name}.{dialect}.sql"
+    if update_golden:
+        golden.parent.mkdir(parents=True, exist_ok=True)
+        golden.write_text(text, encoding="utf-8")
+    assert text == golden.read_text(encoding="utf-8")
+
+
 def test_every_design_study_has_a_golden_file() -> None:
     assert len(DESIGN_STUDIES) >= 7
     written = sorted((GOLDEN.parent / "designs").glob("*/*.sql"))
