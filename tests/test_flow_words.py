@@ -18,7 +18,7 @@ from sqlglot import exp
 
 from pipeline.compile import compile_study, names
 from pipeline.config import Criterion, load_study
-from pipeline.outputs._matched import MATCHING_STEPS
+from pipeline.outputs._matched import EXPOSED_SETS_STEP, MATCHING_LINES, MATCHING_STEPS
 from pipeline.outputs.report._svg import STEP_TITLES, FlowStep, flow_side, render_flow
 
 STUDIES = Path(__file__).resolve().parents[1] / "definitions" / "studies"
@@ -34,12 +34,19 @@ def _attrition_steps(study: Path) -> list[str]:
     rows = [s for s in attrition.find_all(exp.Select) if len(s.expressions) == 6]
     steps = [row.expressions[1].unalias() for row in rows]
     found = [s.this for s in steps if isinstance(s, exp.Literal) and s.is_string]
-    return found + (list(MATCHING_STEPS) if loaded.study.matching is not None else [])
+    option = loaded.study.matching
+    if option is None:
+        return found
+    return (
+        found
+        + ([EXPOSED_SETS_STEP] if option.exposed_in else list(MATCHING_STEPS[:1]))
+        + list(MATCHING_STEPS[1:])
+    )
 
 
 def test_the_examples_cover_both_new_designs() -> None:
     everything = {step for study in EXAMPLES for step in _attrition_steps(study)}
-    assert {"new_user", "one_exposure_group", *MATCHING_STEPS} <= everything
+    assert {"new_user", "one_exposure_group", *MATCHING_LINES} <= everything
 
 
 @pytest.mark.parametrize("study", EXAMPLES, ids=lambda p: p.stem)

@@ -15,6 +15,8 @@ import dataclasses
 import datetime as dt
 import functools
 import hashlib
+import importlib.util
+import os
 import shutil
 import tempfile
 from pathlib import Path
@@ -33,6 +35,8 @@ from pipeline.config._explain_study import explain_study
 from pipeline.config._matching import Matching
 from pipeline.errors import ConfigError
 from pipeline.outputs._matched import matched_table
+
+from .helpers import require
 
 FIXTURE = Path(__file__).parent / "fixtures" / "designs" / "matching_exposed"
 DEFINITIONS = Path(__file__).resolve().parents[1] / "definitions"
@@ -471,3 +475,25 @@ def test_an_exclusion_never_grows_the_sets(
     if option.reuse_controls:
         sizes = dict(before)
         assert all(c == sizes[opener] for opener, c in after)
+
+
+# --- both engines draw the same sets ----------------------------------------------------------
+
+
+@pytest.mark.spark
+@pytest.mark.slow
+def test_spark_writes_the_same_files_for_the_exposed_example(tmp_path: Path) -> None:
+    require(importlib.util.find_spec("pyspark"), "pyspark is not installed (ascertain[spark])")
+    require(
+        shutil.which("java") or os.environ.get("JAVA_HOME"),
+        "no Java runtime for Spark (install a JDK 17)",
+    )
+    outs = {}
+    for engine in ("duckdb", "spark"):
+        outs[engine] = tmp_path / engine
+        master = "local[2]" if engine == "spark" else None
+        build_study(EXAMPLE, BuildOptions(out=outs[engine], engine=engine, spark_master=master))
+    matched = pq.read_table(outs["duckdb"] / "matched.parquet")
+    assert matched.num_rows > 100
+    for name in ("matched.parquet", "attrition.csv", "dictionary.csv", "cohort.parquet"):
+        assert (outs["spark"] / name).read_bytes() == (outs["duckdb"] / name).read_bytes(), name

@@ -192,7 +192,8 @@ def _covariate(kind: str, draw: Any, own: list[str]) -> dict[str, Any]:
 @st.composite
 def matching(draw: Any, outcomes: list[str]) -> dict[str, Any]:
     """A ``matching:`` section: controls for the incident cases of one of the outcomes."""
-    return {
+    pool = draw(st.sampled_from([None, "cohort", "source_population"]))
+    return ({"controls_from": pool} if pool else {}) | {
         "cases_of": draw(st.sampled_from(outcomes)),
         "controls_per_case": draw(st.integers(1, 5)),
         "birth_year_within": draw(st.integers(0, 10)),
@@ -263,9 +264,14 @@ def studies(draw: Any) -> dict[str, Any]:
             ages = [draw(st.integers(0, 70))]
             required.append({"age": {"between": [ages[0], draw(st.integers(ages[0], 110))]}})
         options["persontime"] = draw(persontime(max(ages)))
+    exposure = {"exposure": draw(EXPOSURE)} if "exposure_start" in index else {}
     if draw(st.booleans()):
         options["matching"] = draw(matching(outcomes["conditions"]))
-    exposure = {"exposure": draw(EXPOSURE)} if "exposure_start" in index else {}
+        if exposure and draw(st.booleans()):  # sets opened by new users of one group instead
+            option = options["matching"]
+            del option["cases_of"]
+            option.pop("controls_from", None)
+            option["exposed_in"] = draw(st.sampled_from(sorted(exposure["exposure"]["groups"])))
     return {
         "study": "property_study",
         "title": "a study drawn by hypothesis",
