@@ -2,7 +2,7 @@
 
 A benchmark, not a test: it prints figures and asserts nothing about them.
 
-    python benchmarks/matching.py --patients 200000 [--repeat 3]
+    python benchmarks/matching.py --patients 200000 [--repeat 3] [--study FILE] [--extract DIR]
 
 It generates (or reuses, in the git-ignored ``benchmarks/data/``) a synthetic Parquet extract
 with ``ascertain synth`` and builds the demo study and ``definitions/studies/orvane_hf_matched``
@@ -12,7 +12,10 @@ medians of wall time and of the child's CPU seconds (user plus system, from ``os
 printed with their ratios (the issue's target: at most 1.5), the sets and candidate pairs, and
 the matching stages' own seconds from ``run.json``. On a shared machine the wall times carry
 the other work's load; the CPU seconds compare the two studies better. Figures go to
-``benchmarks/results/matching.json``.
+``benchmarks/results/matching.json``. ``--study`` measures another matched study instead (such
+as ``orvane_new_users_matched.yaml``, new users with controls from the source population;
+figures then go to ``matching_<study>.json``), and ``--extract`` reads an extract made
+beforehand instead of generating one.
 """
 
 from __future__ import annotations
@@ -57,14 +60,17 @@ def main() -> None:
     parser.add_argument("--seed", type=int, default=1)
     parser.add_argument("--repeat", type=int, default=3)
     parser.add_argument("--threads", type=int, default=0)
+    parser.add_argument("--study", type=Path, default=MATCHED, help="the matched study")
+    parser.add_argument("--extract", type=Path, default=None, help="an extract made beforehand")
     args = parser.parse_args()
-    extract = _extract(args.patients, args.seed)
+    extract = args.extract or _extract(args.patients, args.seed)
+    matched = args.study.resolve()
     threads = ["--threads", str(args.threads)] if args.threads else []
     runs: dict[str, list[dict[str, Any]]] = {"demo": [], "matched": []}
     with tempfile.TemporaryDirectory(prefix="matching-") as scratch:
         folder = Path(scratch)
         for i in range(args.repeat):
-            for name, study in (("demo", DEMO), ("matched", MATCHED)):
+            for name, study in (("demo", DEMO), ("matched", matched)):
                 runs[name].append(_build(study, extract, folder / f"{name}{i}", threads))
                 print(name, json.dumps(runs[name][-1]), file=sys.stderr, flush=True)
     medians = {
@@ -113,7 +119,7 @@ def main() -> None:
         )
     )
     write_results(
-        RESULTS,
+        RESULTS if matched == MATCHED else RESULTS.with_name(f"matching_{matched.stem}.json"),
         [
             {
                 "patients": args.patients,

@@ -22,6 +22,7 @@ import tempfile
 from pathlib import Path
 
 import duckdb
+import polars as pl
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
@@ -35,6 +36,10 @@ from pipeline.config._explain_study import explain_study
 from pipeline.config._matching import Matching
 from pipeline.errors import ConfigError
 from pipeline.outputs._matched import matched_table
+from pipeline.outputs.report._table_one import exposure_table_one_blocks
+from pipeline.outputs.report._tables import flow_block
+from pipeline.outputs.report._write import Study as ReportStudy
+from pipeline.outputs.report._write import matched_group
 
 from .helpers import require
 
@@ -497,3 +502,22 @@ def test_spark_writes_the_same_files_for_the_exposed_example(tmp_path: Path) -> 
     assert matched.num_rows > 100
     for name in ("matched.parquet", "attrition.csv", "dictionary.csv", "cohort.parquet"):
         assert (outs["spark"] / name).read_bytes() == (outs["duckdb"] / name).read_bytes(), name
+
+
+# --- the report ties the exposed sets line to Table 1 by exposure -----------------------------
+
+
+def test_the_report_ties_the_exposed_sets_to_the_group_size(exposed: Path) -> None:
+    attrition = pl.read_csv(exposed / "attrition.csv", infer_schema_length=0).with_columns(
+        pl.col(c).cast(pl.Int64) for c in ("patients_before", "removed", "remaining")
+    )
+    cohort = pl.read_parquet(exposed / "cohort.parquet")
+    # Without the study file, the group is read from matched.parquet's exposed patients.
+    unread = ReportStudy(name="x", title="x", threshold=5, outcomes=(), titles={})
+    assert matched_group(exposed, cohort, unread) == "sulfonylurea"
+    flow = flow_block(attrition, cohort.height, None, exposed_in="sulfonylurea")
+    keys = dict(zip(flow.frame["step"], flow.frame["remaining#key"], strict=True))
+    assert keys["match_exposed"] == "t1size|@exposure|sulfonylurea"
+    _, _, size_block = exposure_table_one_blocks(cohort)
+    assert size_block.values()["t1size|@exposure|sulfonylurea"] == 2
+    assert flow.values()["t1size|@exposure|sulfonylurea"] == 2
