@@ -249,10 +249,12 @@ class _Patient:
     def first_exposure(self) -> dt.date | None:
         return min((d for _, d in self.records), default=None)
 
-    @property
-    def opens(self) -> bool:
-        """In the cohort as a new user of sulfonylurea only (one group on the first day)."""
+    def opens(self, option: Matching) -> bool:
+        """Opens a set: in the cohort as a new user of sulfonylurea only (one group on the
+        first day), or, for case sets, in the cohort with an onset (its first record)."""
         first = self.first_exposure
+        if option.exposed_in is None:
+            return self.in_cohort and first is not None
         groups = {g for g, d in self.records if d == first}
         return self.in_cohort and groups == {"sulfonylurea"}
 
@@ -281,15 +283,24 @@ def _patients(draw: st.DrawFn) -> list[_Patient]:
     return out
 
 
-_OPTIONS = st.builds(
-    Matching,
-    exposed_in=st.just("sulfonylurea"),
-    controls_per_case=st.integers(1, 3),
-    birth_year_within=st.integers(0, 2),
-    same_practice=st.booleans(),
-    reuse_controls=st.booleans(),
-    seed=st.integers(0, 1000),
-    contact_within_days=st.integers(0, 12),
+# Sets opened by new users of sulfonylurea, or by heart failure cases with controls from the
+# source population; for those, a patient's first record stands for the outcome's onset.
+_SHARED = {
+    "controls_per_case": st.integers(1, 3),
+    "birth_year_within": st.integers(0, 2),
+    "same_practice": st.booleans(),
+    "reuse_controls": st.booleans(),
+    "seed": st.integers(0, 1000),
+    "contact_within_days": st.integers(0, 12),
+}
+_OPTIONS = st.one_of(
+    st.builds(Matching, exposed_in=st.just("sulfonylurea"), **_SHARED),
+    st.builds(
+        Matching,
+        cases_of=st.just("heart_failure"),
+        controls_from=st.just("source_population"),
+        **_SHARED,
+    ),
 )
 
 
@@ -314,7 +325,9 @@ def _eligible(option: Matching, opener: _Patient, other: _Patient) -> bool:
 
 
 def _oracle(people: list[_Patient], option: Matching) -> list[tuple[str, list[str]]]:
-    openers = sorted((p for p in people if p.opens), key=lambda p: (p.first_exposure, p.patient_id))
+    openers = sorted(
+        (p for p in people if p.opens(option)), key=lambda p: (p.first_exposure, p.patient_id)
+    )
     taken: set[str] = set()
     sets = []
     for opener in openers:
@@ -337,12 +350,13 @@ def _oracle(people: list[_Patient], option: Matching) -> list[tuple[str, list[st
 
 @functools.cache
 def _stages_sql(option: Matching) -> tuple[tuple[str, str], ...]:
-    """The matching stages of the fixture's exposed plan compiled with ``option``."""
+    """The matching stages of the fixture's plan (exposed or case sets) compiled with ``option``."""
+    name, k = ("study.yaml", 3) if option.exposed_in else ("study_cases_source.yaml", 2)
     text = (
-        (FIXTURE / "study.yaml")
+        (FIXTURE / name)
         .read_text(encoding="utf-8")
         .replace("../../../../definitions", str(DEFINITIONS))
-        .replace("controls_per_case: 3", f"controls_per_case: {option.controls_per_case}")
+        .replace(f"controls_per_case: {k}", f"controls_per_case: {option.controls_per_case}")
         .replace("birth_year_within: 1", f"birth_year_within: {option.birth_year_within}")
         .replace("contact_within_days: 180", f"contact_within_days: {option.contact_within_days}")
         .replace(
@@ -385,7 +399,19 @@ def _run_plan(people: list[_Patient], option: Matching) -> list[tuple[str, list[
             "patient_id": [p.patient_id for p in people if p.in_cohort],
             "sex": [p.sex for p in people if p.in_cohort],
             "index_date": pa.array([p.first_exposure for p in people if p.in_cohort], pa.date32()),
-            "exposure": ["sulfonylurea" if p.opens else "dpp4" for p in people if p.in_cohort],
+            "exposure": [
+                "sulfonylurea" if p.opens(option) else "dpp4" for p in people if p.in_cohort
+            ],
+            "incident_heart_failure": [p.opens(option) for p in people if p.in_cohort],
+            "onset_heart_failure": pa.array(
+                [p.first_exposure for p in people if p.in_cohort], pa.date32()
+            ),
+        }
+    )
+    onsets = pa.table(
+        {
+            "patient_id": [p.patient_id for p in people],
+            "onset_heart_failure": pa.array([p.first_exposure for p in people], pa.date32()),
         }
     )
     encounters = pa.table(
@@ -399,6 +425,7 @@ def _run_plan(people: list[_Patient], option: Matching) -> list[tuple[str, list[
         ("patient_base", base),
         ("evidence_events", events),
         ("cohort", cohort),
+        ("condition_onsets", onsets),
         ("encounter_rows", encounters),
     ):
         con.register(name, table)
@@ -410,7 +437,7 @@ def _run_plan(people: list[_Patient], option: Matching) -> list[tuple[str, list[
     table, _ = matched_table(sets, draws, option, pa.string())
     out: list[tuple[str, list[str]]] = []
     for row in table.to_pylist():
-        if row["role"] == "exposed":
+        if row["role"] in ("exposed", "case"):
             out.append((row["patient_id"], []))
         else:
             out[-1][1].append(row["patient_id"])
