@@ -29,6 +29,12 @@ candidates that fill can reach: a set can lose at most ``controls_per_case`` can
 earlier set whose pool overlaps its own (same sex and practice, birth years at most twice
 ``birth_year_within`` apart), so ranks beyond ``controls_per_case * (1 + such sets)`` are never
 needed. The candidate pairs grow with cases times the patients of a case's stratum.
+
+That is the cohort pool. With ``controls_from: source_population``, or sets opened by the new
+users of an exposure group (``exposed_in``), the pool, the sets and the candidate pairs are
+those of ``compile/_matching_source.py`` (the extract's patients, judged on registration,
+death and the first onset or exposure); the contact spells, the limits and the ranked draws
+here are shared.
 """
 
 from __future__ import annotations
@@ -299,11 +305,12 @@ def matched_docs(ctx: CompileContext) -> tuple[ColumnDoc, ...]:
     if option is None:
         return ()
     name = option.opener
+    who = "case" if option.exposed_in is None else "exposed patient"
     replacement = (
         "with replacement: a patient may be a control of several sets"
         if option.reuse_controls
         else "without replacement: a patient is a control of one set at most; sets filled in "
-        "order of set date, then case id"
+        f"order of set date, then {who} id"
     )
     if option.exposed_in is None:
         opened = (
@@ -343,7 +350,7 @@ def matched_docs(ctx: CompileContext) -> tuple[ColumnDoc, ...]:
             "set_id",
             "INTEGER",
             "",
-            f"the matched set: one per {opened[0]}, numbered 1, 2, ... by set date, then case id",
+            f"the matched set: one per {opened[0]}, numbered 1, 2, ... by set date, then {who} id",
             opened[1],
             "cohort",
         ),
@@ -352,8 +359,8 @@ def matched_docs(ctx: CompileContext) -> tuple[ColumnDoc, ...]:
             "control_number",
             "INTEGER",
             "",
-            f"0 for the {option.opener_role}; 1, 2, ... for controls in the order they were drawn",
-            f"controls ranked by MD5 of 'seed|case id|control id' (seed {option.seed}), "
+            f"0 for the {who}; 1, 2, ... for controls in the order they were drawn",
+            f"controls ranked by MD5 of 'seed|{who} id|control id' (seed {option.seed}), "
             f"up to {option.controls_per_case}; {replacement}",
             "study",
         ),
@@ -378,7 +385,7 @@ def matched_docs(ctx: CompileContext) -> tuple[ColumnDoc, ...]:
             "birth_year",
             "INTEGER",
             "year",
-            f"year of birth; a control's is within {option.birth_year_within} of its case's",
+            f"year of birth; a control's is within {option.birth_year_within} of its {who}'s",
             "year of patients.birth_date (1 July of birth_year when only the year is known)",
             "patients",
         ),
