@@ -199,76 +199,27 @@ def row_hash(columns: list[exp.Expression]) -> exp.Expression:
     return exp.func("HASH", *columns)
 
 
-def _hashed_columns(table: SourceTable) -> exp.Expression:
-    """The hash of a row of ``table`` over every column the check compares."""
-    return row_hash([exp.column(c) for c in (*table.columns, SOURCE_PROBLEM)])
-
-
-def hash_counts(table: SourceTable) -> exp.Select:
-    """One pass over ``table``'s judged rows: those whose hash is theirs alone, and the others.
-
-    The row-judgement view is read once, each row hashed, and the rows grouped on their hash.
-    A row whose hash no other row shares has no copy: it is counted under its reason
-    (``shared_hash`` NULL, ``n_rows`` such rows, the first one's position). Every hash that
-    rows share is kept on a row of its own (``reason`` NULL), for :func:`rows_with_copies` to
-    confirm exactly. Issue 24: counting the reasons, grouping on the hash and reading the
-    judged rows were three passes over each table; this is one.
-    """
-    hashed = exp.select(_hashed_columns(table).as_("row_hash"), "reason", SOURCE_POSITION).from_(
-        names.judged_stage(table.name)
-    )
-    per_hash = (
-        exp.select(
-            "row_hash",
-            exp.func("COUNT", exp.Star()).as_("n"),
-            exp.func("MIN", exp.column("reason")).as_("reason"),
-            exp.func("MIN", exp.column(SOURCE_POSITION)).as_(SOURCE_POSITION),
-        )
-        .from_(hashed.subquery("r"))
-        .group_by("row_hash")
-    )
-    shared = exp.column("n") > 1
-    shared_hash = exp.Case(ifs=[exp.If(this=shared, true=exp.column("row_hash"))])
-    alone = exp.column("n").eq(exp.Literal.number(1))
-    reason = exp.Case(ifs=[exp.If(this=alone, true=exp.column("reason"))])
-    return (
-        exp.select(
-            value(table.name).as_("source_table"),
-            shared_hash.as_("shared_hash"),
-            reason.as_("reason"),
-            exp.func("COUNT", exp.Star()).as_("n_rows"),
-            exp.func("MIN", exp.column(SOURCE_POSITION)).as_(SOURCE_POSITION),
-        )
-        .from_(per_hash.subquery("h"))
-        .group_by(shared_hash.copy(), reason.copy())
-    )
-
-
-def _of_table(table: SourceTable, *, shared: bool) -> exp.Select:
-    """``row_hashes``' rows of ``table``: its shared hashes, or its rows with a hash alone."""
-    test = exp.column("shared_hash").is_(exp.null())
-    return (
-        exp.select()
-        .from_(names.ROW_HASHES)
-        .where(exp.column("source_table").eq(value(table.name)))
-        .where(test.not_() if shared else test)
-    )
-
-
 def rows_with_copies(table: SourceTable) -> exp.Select:
     """The distinct rows of ``table`` whose hash another row shares, with their copies.
 
-    Only these rows can have exact copies. They are found through ``row_hashes``
-    (:func:`hash_counts`), which grouped the table on one integer (the row's hash) instead of
-    on all its columns; only the few rows that share a hash are then grouped on all their
-    columns, which is the exact confirmation: rows that merely collide stay apart with one
-    copy each. ``source_problem`` is part of the row, as in :func:`grouped_rows`.
+    Only these rows can have exact copies. Finding them groups the table on one integer
+    (the row's hash) instead of on all its columns, and only the few rows that share a hash
+    are then grouped on all their columns, which is the exact confirmation: rows that merely
+    collide stay apart with one copy each. ``source_problem`` is part of the row, as in
+    :func:`grouped_rows`. Issue 24: grouping every row on every column was most of the
+    quality log's time.
     """
-    shared = _of_table(table, shared=True).select("shared_hash")
+    hashed = row_hash([exp.column(c) for c in (*table.columns, SOURCE_PROBLEM)])
+    shared = (
+        exp.select(hashed.copy().as_("row_hash"))
+        .from_(table.relation)
+        .group_by(hashed.copy())
+        .having(exp.func("COUNT", exp.Star()) > 1)
+    )
     candidates = (
         exp.select(*table.columns, SOURCE_PROBLEM, SOURCE_POSITION)
         .from_(table.relation)
-        .where(_hashed_columns(table).isin(query=shared))
+        .where(hashed.copy().isin(query=shared))
     )
     first = exp.func("MIN", exp.column(SOURCE_POSITION)).as_(SOURCE_POSITION)
     copies = exp.func("COUNT", exp.Star()).as_("copies")
@@ -289,26 +240,23 @@ def judged_for_log(
 ) -> exp.Query:
     """A table's judged rows as the quality log counts them: reason, rows, duplicates.
 
-    Without the duplicate check every row of the table's row-judgement view counts once
-    under its reason (``n_rows`` 1, ``duplicates`` 0, its position). With it, the rows whose
-    hash is theirs alone come counted by reason from ``row_hashes`` (:func:`hash_counts`),
-    and the rows sharing a hash are grouped exactly (:func:`rows_with_copies`) and judged
-    again by the same rule (:func:`_judge_events`, :func:`_judge_patients`; copies share a
-    reason, since a row's reason follows from its columns): each distinct row counts its
-    copies as rows, those beyond the first as duplicates. The log's distinct rows are then
+    Every row of the table's row-judgement view counts once under its reason
+    (``n_rows`` 1, ``duplicates`` 0, its position). With the duplicate check, the rows that
+    have exact copies (:func:`rows_with_copies`: few, found through a hash) are judged again
+    by the same rule (:func:`_judge_events`, :func:`_judge_patients`; copies share a reason,
+    since a row's reason follows from its columns) and add, under that reason, their copies
+    beyond the first as duplicates (``n_rows`` 0). The log's distinct rows are then
     ``n_rows - duplicates``. Rows without a patient or set aside by the reader are counted
     whole: their copies are no duplicates (see the quality log).
     """
+    each = exp.select(
+        "reason",
+        exp.Literal.number(1).as_("n_rows"),
+        exp.Literal.number(0).as_("duplicates"),
+        SOURCE_POSITION,
+    ).from_(names.judged_stage(table.name))
     if not check_duplicates:
-        return exp.select(
-            "reason",
-            exp.Literal.number(1).as_("n_rows"),
-            exp.Literal.number(0).as_("duplicates"),
-            SOURCE_POSITION,
-        ).from_(names.judged_stage(table.name))
-    alone = _of_table(table, shared=False).select(
-        "reason", "n_rows", exp.Literal.number(0).as_("duplicates"), SOURCE_POSITION
-    )
+        return each
     rows = rows_with_copies(table)
     if table.name == "patients":
         if unreadable_date is None:
@@ -331,11 +279,11 @@ def judged_for_log(
     )
     copies = exp.select(
         "reason",
-        exp.column("copies").as_("n_rows"),
+        exp.Literal.number(0).as_("n_rows"),
         beyond_first.as_("duplicates"),
-        SOURCE_POSITION,
+        exp.cast(exp.null(), "BIGINT").as_(SOURCE_POSITION),
     ).from_(judged.subquery("j"))
-    return alone.union(copies, distinct=False)
+    return each.union(copies.where(exp.column("copies") > 1), distinct=False)
 
 
 def same_raw_code(row: str, code: str) -> exp.Expression:

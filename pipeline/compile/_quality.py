@@ -18,7 +18,7 @@ from sqlglot import exp
 
 from pipeline.compile import names
 from pipeline.compile._context import CompileContext
-from pipeline.compile._judged import hash_counts, judged_for_log
+from pipeline.compile._judged import judged_for_log
 from pipeline.compile._plan import SourceTable, Stage
 from pipeline.compile._sources import (
     coded_tables,
@@ -271,11 +271,7 @@ def _classified(ctx: CompileContext, table: SourceTable) -> exp.Query:
 
 
 def quality_stages(ctx: CompileContext) -> tuple[Stage, ...]:
-    """``rows_read``, ``row_hashes`` (with the duplicate check) and ``quality_log``.
-
-    ``row_hashes`` is the one pass over each table's judged rows that the duplicate check
-    needs (``hash_counts``); ``quality_log`` has the rows per table, outcome and reason.
-    """
+    """``rows_read``, and ``quality_log``: rows per table, outcome and reason."""
     tables = source_tables(ctx)
     read = [
         exp.select(
@@ -290,24 +286,12 @@ def quality_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         query(_SUMMARY, table_name=t.name, classified=_classified(ctx, t).subquery("c"))
         for t in tables
     ]
-    hashed = [hash_counts(t) for t in tables if t.name != "measurements"]
-    hashes = (
-        Stage(
-            names.ROW_HASHES,
-            _union(hashed),
-            "per extract table, the rows whose hash no other row shares counted by reason, "
-            "and each hash rows share (the exact-duplicate check's candidates)",
-        )
-        if checked and hashed
-        else None
-    )
     return (
         Stage(
             names.ROWS_READ,
             _union(read),
             "rows read per extract table, counted on their own to check the quality log",
         ),
-        *((hashes,) if hashes else ()),
         Stage(
             names.QUALITY_LOG,
             query(_LOG, used=used).with_("summary", as_=_union(summaries)),

@@ -102,8 +102,6 @@ FOLLOWUP_NOT_NEGATIVE = "followup_not_negative"
 # --- Row accounting and person-time. ------------------------------------------------------
 
 ROWS_READ = "rows_read"
-ROW_HASHES = "row_hashes"
-"""Per table: rows no other row shares a hash with, counted by reason, and each shared hash."""
 QUALITY_LOG = "quality_log"
 PERSONTIME_SPANS = "persontime_spans"
 PERSONTIME = "persontime"

@@ -1,4 +1,4 @@
--- plan for study design_eligibility_steps (34 stages, dialect duckdb)
+-- plan for study design_eligibility_steps (33 stages, dialect duckdb)
 
 -- reads src_patients: patient_id, sex, death_date, birth_date, birth_year, practice_id, registration_date, deregistration_date
 
@@ -1371,124 +1371,8 @@ SELECT
   CAST(COUNT(*) AS BIGINT) AS n_rows
 FROM src_measurements;
 
--- stage row_hashes [table]: per extract table, the rows whose hash no other row shares counted by reason, and each hash rows share (the exact-duplicate check's candidates)
--- reads: diagnoses_judged, encounters_judged, patients_judged, prescriptions_judged
-SELECT
-  'patients' AS source_table,
-  CASE WHEN n > 1 THEN row_hash END AS shared_hash,
-  CASE WHEN n = 1 THEN reason END AS reason,
-  COUNT(*) AS n_rows,
-  MIN(source_position) AS source_position
-FROM (
-  SELECT
-    row_hash,
-    COUNT(*) AS n,
-    MIN(reason) AS reason,
-    MIN(source_position) AS source_position
-  FROM (
-    SELECT
-      HASH(
-        patient_id,
-        sex,
-        death_date,
-        birth_date,
-        birth_year,
-        practice_id,
-        registration_date,
-        deregistration_date,
-        source_problem
-      ) AS row_hash,
-      reason,
-      source_position
-    FROM patients_judged
-  ) AS r
-  GROUP BY
-    row_hash
-) AS h
-GROUP BY
-  CASE WHEN n > 1 THEN row_hash END,
-  CASE WHEN n = 1 THEN reason END
-UNION ALL
-SELECT
-  'encounters' AS source_table,
-  CASE WHEN n > 1 THEN row_hash END AS shared_hash,
-  CASE WHEN n = 1 THEN reason END AS reason,
-  COUNT(*) AS n_rows,
-  MIN(source_position) AS source_position
-FROM (
-  SELECT
-    row_hash,
-    COUNT(*) AS n,
-    MIN(reason) AS reason,
-    MIN(source_position) AS source_position
-  FROM (
-    SELECT
-      HASH(patient_id, encounter_date, encounter_type, source_problem) AS row_hash,
-      reason,
-      source_position
-    FROM encounters_judged
-  ) AS r
-  GROUP BY
-    row_hash
-) AS h
-GROUP BY
-  CASE WHEN n > 1 THEN row_hash END,
-  CASE WHEN n = 1 THEN reason END
-UNION ALL
-SELECT
-  'diagnoses' AS source_table,
-  CASE WHEN n > 1 THEN row_hash END AS shared_hash,
-  CASE WHEN n = 1 THEN reason END AS reason,
-  COUNT(*) AS n_rows,
-  MIN(source_position) AS source_position
-FROM (
-  SELECT
-    row_hash,
-    COUNT(*) AS n,
-    MIN(reason) AS reason,
-    MIN(source_position) AS source_position
-  FROM (
-    SELECT
-      HASH(patient_id, event_date, code_system, code, source, source_problem) AS row_hash,
-      reason,
-      source_position
-    FROM diagnoses_judged
-  ) AS r
-  GROUP BY
-    row_hash
-) AS h
-GROUP BY
-  CASE WHEN n > 1 THEN row_hash END,
-  CASE WHEN n = 1 THEN reason END
-UNION ALL
-SELECT
-  'prescriptions' AS source_table,
-  CASE WHEN n > 1 THEN row_hash END AS shared_hash,
-  CASE WHEN n = 1 THEN reason END AS reason,
-  COUNT(*) AS n_rows,
-  MIN(source_position) AS source_position
-FROM (
-  SELECT
-    row_hash,
-    COUNT(*) AS n,
-    MIN(reason) AS reason,
-    MIN(source_position) AS source_position
-  FROM (
-    SELECT
-      HASH(patient_id, start_date, atc, stop_date, source_problem) AS row_hash,
-      reason,
-      source_position
-    FROM prescriptions_judged
-  ) AS r
-  GROUP BY
-    row_hash
-) AS h
-GROUP BY
-  CASE WHEN n > 1 THEN row_hash END,
-  CASE WHEN n = 1 THEN reason END;
-
 -- stage quality_log [table]: every extract row: used, or set aside with the first reason that applies
--- reads: distinct_codes, measurements_judged, patient_base, row_hashes, src_diagnoses, src_encounters, src_patients, src_prescriptions
+-- reads: diagnoses_judged, distinct_codes, encounters_judged, measurements_judged, patient_base, patients_judged, prescriptions_judged, src_diagnoses, src_encounters, src_patients, src_prescriptions
 WITH summary AS (
   SELECT
     reason,
@@ -1499,22 +1383,20 @@ WITH summary AS (
   FROM (
     SELECT
       reason,
-      n_rows,
+      1 AS n_rows,
       0 AS duplicates,
       source_position
-    FROM row_hashes
-    WHERE
-      source_table = 'patients' AND shared_hash IS NULL
+    FROM patients_judged
     UNION ALL
     SELECT
       reason,
-      copies AS n_rows,
+      0 AS n_rows,
       CASE
         WHEN patient_id IS NULL OR NOT source_problem IS NULL
         THEN 0
         ELSE copies - 1
       END AS duplicates,
-      source_position
+      CAST(NULL AS BIGINT) AS source_position
     FROM (
       SELECT
         *,
@@ -1583,10 +1465,32 @@ WITH summary AS (
               source_problem
             ) IN (
               SELECT
-                shared_hash
-              FROM row_hashes
-              WHERE
-                source_table = 'patients' AND NOT shared_hash IS NULL
+                HASH(
+                  patient_id,
+                  sex,
+                  death_date,
+                  birth_date,
+                  birth_year,
+                  practice_id,
+                  registration_date,
+                  deregistration_date,
+                  source_problem
+                ) AS row_hash
+              FROM src_patients
+              GROUP BY
+                HASH(
+                  patient_id,
+                  sex,
+                  death_date,
+                  birth_date,
+                  birth_year,
+                  practice_id,
+                  registration_date,
+                  deregistration_date,
+                  source_problem
+                )
+              HAVING
+                COUNT(*) > 1
             )
         ) AS h
         GROUP BY
@@ -1601,6 +1505,8 @@ WITH summary AS (
           source_problem
       ) AS r
     ) AS j
+    WHERE
+      copies > 1
   ) AS c
   GROUP BY
     reason
@@ -1614,22 +1520,20 @@ WITH summary AS (
   FROM (
     SELECT
       reason,
-      n_rows,
+      1 AS n_rows,
       0 AS duplicates,
       source_position
-    FROM row_hashes
-    WHERE
-      source_table = 'encounters' AND shared_hash IS NULL
+    FROM encounters_judged
     UNION ALL
     SELECT
       reason,
-      copies AS n_rows,
+      0 AS n_rows,
       CASE
         WHEN patient_id IS NULL OR NOT source_problem IS NULL
         THEN 0
         ELSE copies - 1
       END AS duplicates,
-      source_position
+      CAST(NULL AS BIGINT) AS source_position
     FROM (
       SELECT
         *,
@@ -1679,10 +1583,12 @@ WITH summary AS (
               WHERE
                 HASH(patient_id, encounter_date, encounter_type, source_problem) IN (
                   SELECT
-                    shared_hash
-                  FROM row_hashes
-                  WHERE
-                    source_table = 'encounters' AND NOT shared_hash IS NULL
+                    HASH(patient_id, encounter_date, encounter_type, source_problem) AS row_hash
+                  FROM src_encounters
+                  GROUP BY
+                    HASH(patient_id, encounter_date, encounter_type, source_problem)
+                  HAVING
+                    COUNT(*) > 1
                 )
             ) AS h
             GROUP BY
@@ -1696,6 +1602,8 @@ WITH summary AS (
           ON p.patient_id = r.patient_id
       ) AS j
     ) AS j
+    WHERE
+      copies > 1
   ) AS c
   GROUP BY
     reason
@@ -1709,22 +1617,20 @@ WITH summary AS (
   FROM (
     SELECT
       reason,
-      n_rows,
+      1 AS n_rows,
       0 AS duplicates,
       source_position
-    FROM row_hashes
-    WHERE
-      source_table = 'diagnoses' AND shared_hash IS NULL
+    FROM diagnoses_judged
     UNION ALL
     SELECT
       reason,
-      copies AS n_rows,
+      0 AS n_rows,
       CASE
         WHEN patient_id IS NULL OR NOT source_problem IS NULL
         THEN 0
         ELSE copies - 1
       END AS duplicates,
-      source_position
+      CAST(NULL AS BIGINT) AS source_position
     FROM (
       SELECT
         *,
@@ -1786,10 +1692,12 @@ WITH summary AS (
               WHERE
                 HASH(patient_id, event_date, code_system, code, source, source_problem) IN (
                   SELECT
-                    shared_hash
-                  FROM row_hashes
-                  WHERE
-                    source_table = 'diagnoses' AND NOT shared_hash IS NULL
+                    HASH(patient_id, event_date, code_system, code, source, source_problem) AS row_hash
+                  FROM src_diagnoses
+                  GROUP BY
+                    HASH(patient_id, event_date, code_system, code, source, source_problem)
+                  HAVING
+                    COUNT(*) > 1
                 )
             ) AS h
             GROUP BY
@@ -1810,6 +1718,8 @@ WITH summary AS (
           AND r.raw_source IS NOT DISTINCT FROM c.raw_source
       ) AS j
     ) AS j
+    WHERE
+      copies > 1
   ) AS c
   GROUP BY
     reason
@@ -1823,22 +1733,20 @@ WITH summary AS (
   FROM (
     SELECT
       reason,
-      n_rows,
+      1 AS n_rows,
       0 AS duplicates,
       source_position
-    FROM row_hashes
-    WHERE
-      source_table = 'prescriptions' AND shared_hash IS NULL
+    FROM prescriptions_judged
     UNION ALL
     SELECT
       reason,
-      copies AS n_rows,
+      0 AS n_rows,
       CASE
         WHEN patient_id IS NULL OR NOT source_problem IS NULL
         THEN 0
         ELSE copies - 1
       END AS duplicates,
-      source_position
+      CAST(NULL AS BIGINT) AS source_position
     FROM (
       SELECT
         *,
@@ -1897,10 +1805,12 @@ WITH summary AS (
               WHERE
                 HASH(patient_id, start_date, atc, stop_date, source_problem) IN (
                   SELECT
-                    shared_hash
-                  FROM row_hashes
-                  WHERE
-                    source_table = 'prescriptions' AND NOT shared_hash IS NULL
+                    HASH(patient_id, start_date, atc, stop_date, source_problem) AS row_hash
+                  FROM src_prescriptions
+                  GROUP BY
+                    HASH(patient_id, start_date, atc, stop_date, source_problem)
+                  HAVING
+                    COUNT(*) > 1
                 )
             ) AS h
             GROUP BY
@@ -1920,6 +1830,8 @@ WITH summary AS (
           AND r.raw_source IS NOT DISTINCT FROM c.raw_source
       ) AS j
     ) AS j
+    WHERE
+      copies > 1
   ) AS c
   GROUP BY
     reason

@@ -1,4 +1,4 @@
--- plan for study design_persontime (36 stages, dialect spark)
+-- plan for study design_persontime (35 stages, dialect spark)
 
 -- reads src_patients: patient_id, sex, death_date, birth_date, birth_year, practice_id, registration_date, deregistration_date
 
@@ -1458,124 +1458,8 @@ SELECT
   CAST(COUNT(*) AS BIGINT) AS n_rows
 FROM src_measurements;
 
--- stage row_hashes [table]: per extract table, the rows whose hash no other row shares counted by reason, and each hash rows share (the exact-duplicate check's candidates)
--- reads: diagnoses_judged, encounters_judged, patients_judged, prescriptions_judged
-SELECT
-  'patients' AS source_table,
-  CASE WHEN n > 1 THEN row_hash END AS shared_hash,
-  CASE WHEN n = 1 THEN reason END AS reason,
-  COUNT(*) AS n_rows,
-  MIN(source_position) AS source_position
-FROM (
-  SELECT
-    row_hash,
-    COUNT(*) AS n,
-    MIN(reason) AS reason,
-    MIN(source_position) AS source_position
-  FROM (
-    SELECT
-      HASH(
-        patient_id,
-        sex,
-        death_date,
-        birth_date,
-        birth_year,
-        practice_id,
-        registration_date,
-        deregistration_date,
-        source_problem
-      ) AS row_hash,
-      reason,
-      source_position
-    FROM patients_judged
-  ) AS r
-  GROUP BY
-    row_hash
-) AS h
-GROUP BY
-  CASE WHEN n > 1 THEN row_hash END,
-  CASE WHEN n = 1 THEN reason END
-UNION ALL
-SELECT
-  'encounters' AS source_table,
-  CASE WHEN n > 1 THEN row_hash END AS shared_hash,
-  CASE WHEN n = 1 THEN reason END AS reason,
-  COUNT(*) AS n_rows,
-  MIN(source_position) AS source_position
-FROM (
-  SELECT
-    row_hash,
-    COUNT(*) AS n,
-    MIN(reason) AS reason,
-    MIN(source_position) AS source_position
-  FROM (
-    SELECT
-      HASH(patient_id, encounter_date, encounter_type, source_problem) AS row_hash,
-      reason,
-      source_position
-    FROM encounters_judged
-  ) AS r
-  GROUP BY
-    row_hash
-) AS h
-GROUP BY
-  CASE WHEN n > 1 THEN row_hash END,
-  CASE WHEN n = 1 THEN reason END
-UNION ALL
-SELECT
-  'diagnoses' AS source_table,
-  CASE WHEN n > 1 THEN row_hash END AS shared_hash,
-  CASE WHEN n = 1 THEN reason END AS reason,
-  COUNT(*) AS n_rows,
-  MIN(source_position) AS source_position
-FROM (
-  SELECT
-    row_hash,
-    COUNT(*) AS n,
-    MIN(reason) AS reason,
-    MIN(source_position) AS source_position
-  FROM (
-    SELECT
-      HASH(patient_id, event_date, code_system, code, source, source_problem) AS row_hash,
-      reason,
-      source_position
-    FROM diagnoses_judged
-  ) AS r
-  GROUP BY
-    row_hash
-) AS h
-GROUP BY
-  CASE WHEN n > 1 THEN row_hash END,
-  CASE WHEN n = 1 THEN reason END
-UNION ALL
-SELECT
-  'prescriptions' AS source_table,
-  CASE WHEN n > 1 THEN row_hash END AS shared_hash,
-  CASE WHEN n = 1 THEN reason END AS reason,
-  COUNT(*) AS n_rows,
-  MIN(source_position) AS source_position
-FROM (
-  SELECT
-    row_hash,
-    COUNT(*) AS n,
-    MIN(reason) AS reason,
-    MIN(source_position) AS source_position
-  FROM (
-    SELECT
-      HASH(patient_id, start_date, atc, stop_date, source_problem) AS row_hash,
-      reason,
-      source_position
-    FROM prescriptions_judged
-  ) AS r
-  GROUP BY
-    row_hash
-) AS h
-GROUP BY
-  CASE WHEN n > 1 THEN row_hash END,
-  CASE WHEN n = 1 THEN reason END;
-
 -- stage quality_log [table]: every extract row: used, or set aside with the first reason that applies
--- reads: distinct_codes, measurements_judged, patient_base, row_hashes, src_diagnoses, src_encounters, src_patients, src_prescriptions
+-- reads: diagnoses_judged, distinct_codes, encounters_judged, measurements_judged, patient_base, patients_judged, prescriptions_judged, src_diagnoses, src_encounters, src_patients, src_prescriptions
 WITH summary AS (
   SELECT
     reason,
@@ -1586,22 +1470,20 @@ WITH summary AS (
   FROM (
     SELECT
       reason,
-      n_rows,
+      1 AS n_rows,
       0 AS duplicates,
       source_position
-    FROM row_hashes
-    WHERE
-      source_table = 'patients' AND shared_hash IS NULL
+    FROM patients_judged
     UNION ALL
     SELECT
       reason,
-      copies AS n_rows,
+      0 AS n_rows,
       CASE
         WHEN patient_id IS NULL OR NOT source_problem IS NULL
         THEN 0
         ELSE copies - 1
       END AS duplicates,
-      source_position
+      CAST(NULL AS BIGINT) AS source_position
     FROM (
       SELECT
         *,
@@ -1698,10 +1580,32 @@ WITH summary AS (
               source_problem
             ) IN (
               SELECT
-                shared_hash
-              FROM row_hashes
-              WHERE
-                source_table = 'patients' AND NOT shared_hash IS NULL
+                HASH(
+                  patient_id,
+                  sex,
+                  death_date,
+                  birth_date,
+                  birth_year,
+                  practice_id,
+                  registration_date,
+                  deregistration_date,
+                  source_problem
+                ) AS row_hash
+              FROM src_patients
+              GROUP BY
+                HASH(
+                  patient_id,
+                  sex,
+                  death_date,
+                  birth_date,
+                  birth_year,
+                  practice_id,
+                  registration_date,
+                  deregistration_date,
+                  source_problem
+                )
+              HAVING
+                COUNT(*) > 1
             )
         ) AS h
         GROUP BY
@@ -1716,6 +1620,8 @@ WITH summary AS (
           source_problem
       ) AS r
     ) AS j
+    WHERE
+      copies > 1
   ) AS c
   GROUP BY
     reason
@@ -1729,22 +1635,20 @@ WITH summary AS (
   FROM (
     SELECT
       reason,
-      n_rows,
+      1 AS n_rows,
       0 AS duplicates,
       source_position
-    FROM row_hashes
-    WHERE
-      source_table = 'encounters' AND shared_hash IS NULL
+    FROM encounters_judged
     UNION ALL
     SELECT
       reason,
-      copies AS n_rows,
+      0 AS n_rows,
       CASE
         WHEN patient_id IS NULL OR NOT source_problem IS NULL
         THEN 0
         ELSE copies - 1
       END AS duplicates,
-      source_position
+      CAST(NULL AS BIGINT) AS source_position
     FROM (
       SELECT
         *,
@@ -1801,10 +1705,12 @@ WITH summary AS (
               WHERE
                 HASH(patient_id, encounter_date, encounter_type, source_problem) IN (
                   SELECT
-                    shared_hash
-                  FROM row_hashes
-                  WHERE
-                    source_table = 'encounters' AND NOT shared_hash IS NULL
+                    HASH(patient_id, encounter_date, encounter_type, source_problem) AS row_hash
+                  FROM src_encounters
+                  GROUP BY
+                    HASH(patient_id, encounter_date, encounter_type, source_problem)
+                  HAVING
+                    COUNT(*) > 1
                 )
             ) AS h
             GROUP BY
@@ -1818,6 +1724,8 @@ WITH summary AS (
           ON p.patient_id = r.patient_id
       ) AS j
     ) AS j
+    WHERE
+      copies > 1
   ) AS c
   GROUP BY
     reason
@@ -1831,22 +1739,20 @@ WITH summary AS (
   FROM (
     SELECT
       reason,
-      n_rows,
+      1 AS n_rows,
       0 AS duplicates,
       source_position
-    FROM row_hashes
-    WHERE
-      source_table = 'diagnoses' AND shared_hash IS NULL
+    FROM diagnoses_judged
     UNION ALL
     SELECT
       reason,
-      copies AS n_rows,
+      0 AS n_rows,
       CASE
         WHEN patient_id IS NULL OR NOT source_problem IS NULL
         THEN 0
         ELSE copies - 1
       END AS duplicates,
-      source_position
+      CAST(NULL AS BIGINT) AS source_position
     FROM (
       SELECT
         *,
@@ -1915,10 +1821,12 @@ WITH summary AS (
               WHERE
                 HASH(patient_id, event_date, code_system, code, source, source_problem) IN (
                   SELECT
-                    shared_hash
-                  FROM row_hashes
-                  WHERE
-                    source_table = 'diagnoses' AND NOT shared_hash IS NULL
+                    HASH(patient_id, event_date, code_system, code, source, source_problem) AS row_hash
+                  FROM src_diagnoses
+                  GROUP BY
+                    HASH(patient_id, event_date, code_system, code, source, source_problem)
+                  HAVING
+                    COUNT(*) > 1
                 )
             ) AS h
             GROUP BY
@@ -1939,6 +1847,8 @@ WITH summary AS (
           AND r.raw_source IS NOT DISTINCT FROM c.raw_source
       ) AS j
     ) AS j
+    WHERE
+      copies > 1
   ) AS c
   GROUP BY
     reason
@@ -1952,22 +1862,20 @@ WITH summary AS (
   FROM (
     SELECT
       reason,
-      n_rows,
+      1 AS n_rows,
       0 AS duplicates,
       source_position
-    FROM row_hashes
-    WHERE
-      source_table = 'prescriptions' AND shared_hash IS NULL
+    FROM prescriptions_judged
     UNION ALL
     SELECT
       reason,
-      copies AS n_rows,
+      0 AS n_rows,
       CASE
         WHEN patient_id IS NULL OR NOT source_problem IS NULL
         THEN 0
         ELSE copies - 1
       END AS duplicates,
-      source_position
+      CAST(NULL AS BIGINT) AS source_position
     FROM (
       SELECT
         *,
@@ -2051,10 +1959,12 @@ WITH summary AS (
               WHERE
                 HASH(patient_id, start_date, atc, stop_date, source_problem) IN (
                   SELECT
-                    shared_hash
-                  FROM row_hashes
-                  WHERE
-                    source_table = 'prescriptions' AND NOT shared_hash IS NULL
+                    HASH(patient_id, start_date, atc, stop_date, source_problem) AS row_hash
+                  FROM src_prescriptions
+                  GROUP BY
+                    HASH(patient_id, start_date, atc, stop_date, source_problem)
+                  HAVING
+                    COUNT(*) > 1
                 )
             ) AS h
             GROUP BY
@@ -2074,6 +1984,8 @@ WITH summary AS (
           AND r.raw_source IS NOT DISTINCT FROM c.raw_source
       ) AS j
     ) AS j
+    WHERE
+      copies > 1
   ) AS c
   GROUP BY
     reason
