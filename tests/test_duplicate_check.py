@@ -38,12 +38,18 @@ TABLES = {
         EN,  # a second copy
         EN | {"encounter_type": "telephone"},  # differs in the type only
         EN | {"patient_id": "B"},  # differs in the patient only
+        EN | {"encounter_date": "2020-01-01"},  # after end of data ...
+        EN | {"encounter_date": "2020-01-01"},  # ... and its copy
+        EN | {"patient_id": "Z"},  # an orphan ...
+        EN | {"patient_id": "Z"},  # ... and its copy (an id, though unknown: a duplicate)
     ],
     "diagnoses": [
         DX,
         DX,  # a copy
         DX | {"source": "hospital"},  # differs in the source only
         DX | {"code": "I50.1"},  # differs in the code only
+        DX | {"event_date": "2020-02-01"},  # after end of data, a hash of its own
+        DX | {"event_date": "2020-03-01"},  # the same reason, a later row: not the first
     ],
     "prescriptions": [
         RX,
@@ -56,9 +62,12 @@ EXPECTED = {
     ("patients", "used"): 3,
     ("patients", "exact duplicate"): 1,
     ("encounters", "used"): 3,
-    ("encounters", "exact duplicate"): 2,
+    ("encounters", "exact duplicate"): 4,
+    ("encounters", "after end of data"): 1,
+    ("encounters", "orphan patient"): 1,
     ("diagnoses", "used"): 3,
     ("diagnoses", "exact duplicate"): 1,
+    ("diagnoses", "after end of data"): 2,
     ("prescriptions", "used"): 2,
     ("prescriptions", "exact duplicate"): 1,
 }
@@ -95,13 +104,17 @@ def test_every_row_colliding_gives_the_same_log(
     monkeypatch: pytest.MonkeyPatch,
 ) -> None:
     # A constant hash: every row of a table shares it with every other, so only the exact
-    # confirmation on all columns can tell copies from rows that differ in one column.
+    # confirmation on all columns can tell copies from rows that differ in one column. The
+    # bytes include the first row of each reason set aside (first_file, first_row), which
+    # must not depend on which rows the hash let through to the exact grouping.
     # (A cast, since GROUP BY 7 would name the seventh column.)
     constant = exp.cast(exp.Literal.number(7), "BIGINT")
     monkeypatch.setattr(_judged, "row_hash", lambda columns: constant.copy())
     counts, text = _quality(tmp_path)
     assert {k: n for k, n in counts.items() if k[0] != "measurements"} == EXPECTED
     assert text == by_hash[1]
+    # The first diagnosis set aside after the end of data is the CSV's record 5.
+    assert b"diagnoses,set aside,after end of data,2,diagnoses.csv,5" in text
 
 
 def test_the_hash_is_only_a_filter() -> None:
