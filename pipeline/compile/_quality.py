@@ -19,6 +19,7 @@ from sqlglot import exp
 from pipeline.compile import names
 from pipeline.compile._context import CompileContext
 from pipeline.compile._judged import judged_for_log
+from pipeline.compile._measurement_rows import measurements_for_log
 from pipeline.compile._plan import SourceTable, Stage
 from pipeline.compile._sources import (
     coded_tables,
@@ -208,17 +209,6 @@ SET_ASIDE_REASONS: dict[str, SetAsideReason] = {
 }
 
 
-# Every measurement row was judged in measurements_judged.
-_MEASUREMENTS = """
-SELECT
-  COALESCE(problem, 'used') AS reason,
-  copies AS n_rows,
-  CASE WHEN patient_id IS NULL OR source_problem IS NOT NULL THEN 0 ELSE copies - 1 END
-    AS duplicates,
-  source_position
-FROM :judged
-"""
-
 # A row whose patient_id is empty, or cannot be read as the patients table's id type (the
 # views bind it with TRY_CAST), has no patient, so its copies are not exact duplicates: rows
 # of different patients would otherwise meet on a NULL id and their date and code, and an
@@ -258,9 +248,9 @@ GROUP BY source_table, reason
 
 def _classified(ctx: CompileContext, table: SourceTable) -> exp.Query:
     """A table's rows judged by its row-judgement rule, ready to be counted."""
-    if table.name == "measurements":
-        return query(_MEASUREMENTS, judged=exp.to_table(names.MEASUREMENTS_JUDGED))
     check = ctx.study.quality.exact_duplicates == "check"
+    if table.name == "measurements":
+        return measurements_for_log(check_duplicates=check, end_of_data=ctx.study.end_of_data)
     return judged_for_log(
         table,
         check_duplicates=check,
