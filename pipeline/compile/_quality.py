@@ -1,7 +1,7 @@
 """The quality log: every extract row is either used or counted under the reason it was not.
 
 Every row gets the first reason that applies, or ``used``, once, in its table's row-judgement
-stage (``compile/_judged.py``; measurements in ``compile/_measurements.py``), which the
+stage (``compile/_judged.py``; measurements in ``compile/_measurement_rows.py``), which the
 usable-row stages read too. The log counts each judged row once, and finds exact duplicates
 through a row hash confirmed on all columns (``judged_for_log``): the first copy counts under
 its reason, the others as duplicates, unless the row has no readable patient_id (see _SUMMARY).
@@ -53,7 +53,7 @@ _EVENTS = ("encounters", "diagnoses", "prescriptions", "measurements")
 _ALL = ("patients", *_EVENTS)
 
 # Every reason the quality log can give, spelt exactly as the row judgements
-# (compile/_judged.py, measurements_judged in compile/_measurements.py) and distinct_codes
+# (compile/_judged.py, measurement_shapes and compile/_measurement_rows.py) and distinct_codes
 # (compile/_sources.py) spell it. tests/test_useless_runs.py fails when a stage gives a
 # reason that is missing here.
 SET_ASIDE_REASONS: dict[str, SetAsideReason] = {
