@@ -27,14 +27,13 @@ import datetime as dt
 
 from sqlglot import exp
 
-from pipeline.compile import _judged, names
+from pipeline.compile import names
 from pipeline.compile._judged import (
     grouped_rows,
     record_problem,
     rows_with_copies,
     timing_problem,
 )
-from pipeline.compile._plan import SOURCE_PROBLEM
 from pipeline.compile._sources import MEASUREMENTS
 from pipeline.compile._sql import query
 
@@ -96,7 +95,7 @@ WHERE problem IS NULL AND :wanted
 
 # The rows of a usable shape whose record and timing are sound (the same parts as
 # ``measurement_rows``: with a usable shape, a row's problem is NULL exactly when both are),
-# each with its row hash (the one ``measurement_copies`` groups on).
+# each with its raw columns, which tell a row from its copies.
 _USABLE_ROWS = """
 SELECT
   r.patient_id,
@@ -105,12 +104,17 @@ SELECT
   s.value,
   s.qualifier,
   s.category,
-  r.row_hash
+  r.raw_date,
+  s.key_measure,
+  s.key_unit,
+  s.key_value,
+  s.key_value_text,
+  r.source_problem
 FROM (
   SELECT
     patient_id,
+    obs_date AS raw_date,
     TRY_CAST(obs_date AS DATE) AS obs_date,
-    :row_hash AS row_hash,
     measure,
     unit,
     value,
@@ -132,13 +136,19 @@ FROM :rows
 WHERE :kept
 """
 
-# With the duplicate check, a row whose hash no other row shares has no copy and stands alone;
-# the rows whose hash is shared come from ``measurement_copies``, each distinct row once.
+# With the duplicate check, a row that is no exact copy of another stands alone; the rows that
+# are come from ``measurement_copies``, each distinct row once. The copies are the small side.
 _ALONE = """
 SELECT u.*
 FROM :rows
-LEFT JOIN (SELECT DISTINCT row_hash FROM :copies) AS c ON c.row_hash = u.row_hash
-WHERE c.row_hash IS NULL
+LEFT JOIN :copies ON c.patient_id IS NOT DISTINCT FROM u.patient_id
+  AND c.obs_date IS NOT DISTINCT FROM u.raw_date
+  AND c.measure IS NOT DISTINCT FROM u.key_measure
+  AND c.unit IS NOT DISTINCT FROM u.key_unit
+  AND c.value IS NOT DISTINCT FROM u.key_value
+  AND c.value_text IS NOT DISTINCT FROM u.key_value_text
+  AND c.source_problem IS NOT DISTINCT FROM u.source_problem
+WHERE c.copies IS NULL
 """
 
 # Each row counts once under its reason; rows with exact copies add their copies beyond the
@@ -161,21 +171,17 @@ WHERE copies > 1
 """
 
 
-def _hash() -> exp.Expression:
-    """A measurement row's hash over its columns and the reader's problem, as grouped."""
-    # Looked up on the module, so that a test's weaker hash reaches every use of it.
-    return _judged.row_hash([exp.column(c) for c in (*MEASUREMENTS.columns, SOURCE_PROBLEM)])
-
-
 def copies_table() -> exp.Query:
-    """``measurement_copies``: the few distinct rows that may have exact copies.
+    """``measurement_copies``: the distinct measurement rows that have exact copies.
 
-    The table grouped on one integer, the row's hash; only rows sharing a hash are grouped on
-    all columns (:func:`pipeline.compile._judged.rows_with_copies`), so rows that merely
-    collide stay apart. Stored, because the quality log counts their copies and
-    ``measurement_values`` takes the usable ones from here instead of grouping its rows.
+    Found as the other tables' are (:func:`pipeline.compile._judged.rows_with_copies`): the
+    table grouped on one integer, the row's hash, and only rows sharing a hash grouped on all
+    columns, so rows that merely collide stay apart and are left out here (one copy). Its rows
+    are thus the same whatever the engine's hash. Stored, because the quality log counts the
+    copies and ``measurement_values`` takes the usable ones from here instead of grouping its
+    rows.
     """
-    return rows_with_copies(MEASUREMENTS).select(_hash().as_("row_hash"))
+    return rows_with_copies(MEASUREMENTS).having(exp.func("COUNT", exp.Star()) > 1)
 
 
 def judge_rows(rows: exp.Query, end_of_data: dt.date) -> exp.Query:
@@ -228,7 +234,6 @@ def usable_values(
         return query(
             _USABLE_ROWS,
             source=source,
-            row_hash=_hash(),
             usable=usable.subquery("s"),
             base=exp.to_table(names.PATIENT_BASE),
             record_problem=record_problem(day),
@@ -240,7 +245,7 @@ def usable_values(
     if not check_duplicates:
         return query(_VALUES, rows=rows.subquery("u"), kept=keep)
     copies = exp.to_table(names.MEASUREMENT_COPIES)
-    alone = query(_ALONE, rows=rows.subquery("u"), copies=copies)
+    alone = query(_ALONE, rows=rows.subquery("u"), copies=copies.as_("c"))
     shared = usable_rows(copies.copy())
     return query(_VALUES, rows=alone.subquery("u"), kept=keep).union(
         query(_VALUES, rows=shared.subquery("u"), kept=keep.copy()), distinct=False

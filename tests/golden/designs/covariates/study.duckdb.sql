@@ -702,8 +702,7 @@ SELECT
   value_text,
   source_problem,
   MIN(source_position) AS source_position,
-  COUNT(*) AS copies,
-  HASH(patient_id, obs_date, measure, unit, value, value_text, source_problem) AS row_hash
+  COUNT(*) AS copies
 FROM (
   SELECT
     patient_id,
@@ -733,7 +732,9 @@ GROUP BY
   unit,
   value,
   value_text,
-  source_problem;
+  source_problem
+HAVING
+  COUNT(*) > 1;
 
 -- stage measurement_values [table]: usable values some stage can read, in canonical units: those that are evidence, those near a possible index date, and what derived values need
 -- reads: measurement_copies, measurement_shapes, patient_base, src_measurements
@@ -756,12 +757,17 @@ FROM (
       s.value,
       s.qualifier,
       s.category,
-      r.row_hash
+      r.raw_date,
+      s.key_measure,
+      s.key_unit,
+      s.key_value,
+      s.key_value_text,
+      r.source_problem
     FROM (
       SELECT
         patient_id,
+        obs_date AS raw_date,
         TRY_CAST(obs_date AS DATE) AS obs_date,
-        HASH(patient_id, obs_date, measure, unit, value, value_text, source_problem) AS row_hash,
         measure,
         unit,
         value,
@@ -806,14 +812,16 @@ FROM (
         THEN 'after death'
       END IS NULL
   ) AS u
-  LEFT JOIN (
-    SELECT DISTINCT
-      row_hash
-    FROM measurement_copies
-  ) AS c
-    ON c.row_hash = u.row_hash
+  LEFT JOIN measurement_copies AS c
+    ON c.patient_id IS NOT DISTINCT FROM u.patient_id
+    AND c.obs_date IS NOT DISTINCT FROM u.raw_date
+    AND c.measure IS NOT DISTINCT FROM u.key_measure
+    AND c.unit IS NOT DISTINCT FROM u.key_unit
+    AND c.value IS NOT DISTINCT FROM u.key_value
+    AND c.value_text IS NOT DISTINCT FROM u.key_value_text
+    AND c.source_problem IS NOT DISTINCT FROM u.source_problem
   WHERE
-    c.row_hash IS NULL
+    c.copies IS NULL
 ) AS u
 WHERE
   measure IN ('height')
@@ -869,12 +877,17 @@ FROM (
     s.value,
     s.qualifier,
     s.category,
-    r.row_hash
+    r.raw_date,
+    s.key_measure,
+    s.key_unit,
+    s.key_value,
+    s.key_value_text,
+    r.source_problem
   FROM (
     SELECT
       patient_id,
+      obs_date AS raw_date,
       TRY_CAST(obs_date AS DATE) AS obs_date,
-      HASH(patient_id, obs_date, measure, unit, value, value_text, source_problem) AS row_hash,
       measure,
       unit,
       value,
