@@ -12,8 +12,11 @@ to the rows each reader needs, as the other tables' log applies ``_judge_events`
 - ``measurement_values`` (a table): only the usable rows some later stage can read. The rows
   first meet the usable shapes of the measures the study reads (a few hundred rows, the build
   side of the join), so the tens of millions of rows with another measure or an unusable value
-  are dropped before anything is joined, grouped or stored; with the duplicate check only
-  those kept rows are grouped into distinct rows.
+  are dropped before anything else is joined or stored. With the duplicate check, the rows
+  that have exact copies come from ``measurement_copies`` (each once) and the others straight
+  from the extract, so no row is grouped here;
+- ``measurement_copies`` (a table, with the check): the distinct rows that have exact copies,
+  found through a row hash and confirmed on all columns, for the log and the values.
 
 Issue 24: materialising every judged row (77.5M at 2M patients) for two readers was the
 measurement path's main cost; the quality log now counts the judgement in one aggregate pass
