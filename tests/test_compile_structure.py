@@ -27,9 +27,32 @@ def test_timing_and_patient_reasons_are_written_only_in_the_judgements() -> None
     plan = plan_study(DEMO_STUDY)
     for reason in ("orphan patient", "after end of data", "after death"):
         writing = {s.name for s in plan.stages if reason in _literals(s.query)}
-        # measurement_rows judges each measurement; measurements_judged holds it. The quality
-        # log applies the judgement's own expressions to distinct rows (checked below).
-        assert writing == {*_JUDGED, names.MEASUREMENT_ROWS, names.QUALITY_LOG}, reason
+        # measurement_rows judges each distinct measurement, measurements_judged each row, and
+        # measurement_values its usable rows; the quality log applies the judgements' own
+        # expressions to the rows with copies (checked below and in the next test).
+        measurements = {names.MEASUREMENT_ROWS, names.MEASUREMENTS_JUDGED, names.MEASUREMENT_VALUES}
+        assert writing == {*_JUDGED, *measurements, names.QUALITY_LOG}, reason
+
+
+def test_every_measurement_reader_applies_the_same_row_judgement() -> None:
+    # The record and timing parts of a measurement row's judgement are one pair of
+    # expressions (compile/_judged.py); every stage that judges measurement rows states them
+    # identically, so the values, contact and the quality log cannot disagree on a row.
+    plan = plan_study(DEMO_STUDY)
+
+    def parts(name: str) -> set[str]:
+        return {
+            case.sql("duckdb")
+            for case in plan.stage(name).query.find_all(exp.Case)
+            if {"orphan patient", "after death"} & _literals(case)
+        }
+
+    judgement = parts(names.MEASUREMENT_ROWS)
+    assert len(judgement) == 2
+    for name in (names.MEASUREMENTS_JUDGED, names.MEASUREMENT_VALUES):
+        assert parts(name) == judgement, name
+    # The log also judges the other tables' rows (their date is row_date).
+    assert judgement <= parts(names.QUALITY_LOG)
 
 
 def test_usable_rows_and_the_quality_log_read_the_same_judgements() -> None:

@@ -13,7 +13,12 @@ from sqlglot import exp
 
 from pipeline.compile import names
 from pipeline.compile._context import CompileContext
-from pipeline.compile._judged import grouped_rows, record_problem, timing_problem
+from pipeline.compile._measurement_rows import (
+    copies_table,
+    measurement_rows,
+    measurements_judged,
+    usable_values,
+)
 from pipeline.compile._plan import Stage
 from pipeline.compile._sources import MEASUREMENTS
 from pipeline.compile._sql import (
@@ -135,47 +140,6 @@ SELECT DISTINCT
 FROM :source
 """
 
-# A row's own judgement (its patient and date: the record and timing parts every event table
-# shares, compile/_judged.py) first, in the quality log's order, then its shape's. Both parts
-# are kept for contact with the practice. NULL keys meet NULL keys: a row without a unit has
-# the shape without one.
-_MEASUREMENT_ROWS = """
-SELECT
-  r.patient_id,
-  r.obs_date,
-  s.measure,
-  s.qualifier,
-  s.category,
-  s.raw_value,
-  s.raw_value_text,
-  s.raw_unit,
-  r.copies,
-  r.source_position,
-  r.source_problem,
-  s.value,
-  :record_problem AS record_problem,
-  :timing_problem AS timing_problem,
-  COALESCE(:record_problem, :timing_problem, s.problem) AS problem
-FROM (
-  SELECT
-    patient_id,
-    TRY_CAST(obs_date AS DATE) AS obs_date,
-    measure,
-    unit,
-    value,
-    value_text,
-    copies,
-    source_position,
-    source_problem
-  FROM :rows
-) AS r
-LEFT JOIN :base AS p ON p.patient_id = r.patient_id
-LEFT JOIN :shapes ON s.key_measure IS NOT DISTINCT FROM r.measure
-  AND s.key_unit IS NOT DISTINCT FROM r.unit
-  AND s.key_value IS NOT DISTINCT FROM r.value
-  AND s.key_value_text IS NOT DISTINCT FROM r.value_text
-"""
-
 # Local lab test codes (``local_codes: {lab_tests: ...}``), looked up on the distinct shapes.
 _MAPPED_LAB_TESTS = """
 SELECT g.*, t.measure AS mapped_measure
@@ -220,12 +184,6 @@ def measurement_passes(measurement: MeasurementEvidence) -> exp.Expression:
         return is_in(exp.column("category"), measurement.category)
     return exp.and_(*(_meets(t) for t in measurement.thresholds()))
 
-
-_MEASUREMENT_VALUES = """
-SELECT patient_id, obs_date, measure, value, qualifier, category, FALSE AS derived
-FROM :judged
-WHERE problem IS NULL AND :wanted
-"""
 
 # eGFR from creatinine by CKD-EPI 2021 (Inker et al., N Engl J Med 2021;385:1737), age in
 # completed years on the measurement date. Only exact creatinine values (no < or >), and only
@@ -330,34 +288,6 @@ def _shapes(ctx: CompileContext) -> exp.Query:
     )
 
 
-def _judged_rows(ctx: CompileContext) -> exp.Query:
-    """Every distinct measurement row with its shape's judgement and its own.
-
-    One judgement for the quality log and for the values, so the two can never judge a row
-    differently.
-    """
-    check = ctx.study.quality.exact_duplicates == "check"
-    day = exp.column("obs_date", "r")
-    return query(
-        _MEASUREMENT_ROWS,
-        rows=grouped_rows(MEASUREMENTS, check_duplicates=check).subquery("g"),
-        shapes=exp.to_table(names.MEASUREMENT_SHAPES).as_("s"),
-        base=exp.to_table(names.PATIENT_BASE),
-        record_problem=record_problem(day),
-        timing_problem=timing_problem(day, ctx.study.end_of_data),
-    )
-
-
-# The record and timing parts of the judgement are kept for contact with the practice, which
-# counts a measurement whatever its value (``dated_and_placed`` in compile/_judged.py).
-_JUDGED = """
-SELECT
-  patient_id, obs_date, measure, value, qualifier, category, copies, source_position,
-  source_problem, record_problem, timing_problem, problem
-FROM :rows
-"""
-
-
 def _kept_rows(ctx: CompileContext) -> exp.Expression | None:
     """Which usable rows ``measurement_values`` keeps: those some later stage can read.
 
@@ -406,12 +336,13 @@ def _kept_rows(ctx: CompileContext) -> exp.Expression | None:
 
 
 def _values_stage(ctx: CompileContext) -> Stage:
-    values = query(
-        _MEASUREMENT_VALUES,
-        judged=exp.to_table(names.MEASUREMENTS_JUDGED),
-        wanted=is_in(exp.column("measure"), ctx.measures),
-    )
     kept = _kept_rows(ctx)
+    values = usable_values(
+        wanted=is_in(exp.column("measure"), ctx.measures),
+        kept=kept,
+        check_duplicates=ctx.study.quality.exact_duplicates == "check",
+        end_of_data=ctx.study.end_of_data,
+    )
     if kept is None:
         return Stage(
             names.MEASUREMENT_VALUES,
@@ -420,23 +351,24 @@ def _values_stage(ctx: CompileContext) -> Stage:
         )
     return Stage(
         names.MEASUREMENT_VALUES,
-        values.where(kept),
+        values,
         "usable values some stage can read, in canonical units: those that are evidence, "
         "those near a possible index date, and what derived values need",
     )
 
 
 def measurement_stages(ctx: CompileContext) -> tuple[Stage, ...]:
-    """``measurement_rows`` (every row, with a problem or not) and usable values.
+    """Shapes, every row judged (two views), and the usable values (a table).
 
-    Every row is judged once in ``measurements_judged``, for the values and the quality log.
-    When exact duplicates are checked it is a table, so the grouping runs once; otherwise a
-    view, read twice (by the values and the quality log), which costs less than storing tens
-    of millions of judged rows.
+    ``measurement_rows`` (every distinct row with its raw values, for ``explain``) and
+    ``measurements_judged`` (every row once, for the quality log and contact) are views: no
+    reader needs tens of millions of judged rows stored. ``measurement_values`` reads only
+    the rows of usable shapes (compile/_measurement_rows.py).
     """
     if not ctx.measures:
         return ()
     check = ctx.study.quality.exact_duplicates == "check"
+    end = ctx.study.end_of_data
     stages = [
         Stage(
             names.MEASUREMENT_SHAPES,
@@ -446,18 +378,27 @@ def measurement_stages(ctx: CompileContext) -> tuple[Stage, ...]:
         ),
         Stage(
             names.MEASUREMENT_ROWS,
-            _judged_rows(ctx),
+            measurement_rows(check_duplicates=check, end_of_data=end),
             "every distinct measurement row with its shape's value and what stops its use",
             kind="view",
         ),
         Stage(
             names.MEASUREMENTS_JUDGED,
-            query(_JUDGED, rows=exp.to_table(names.MEASUREMENT_ROWS)),
-            "every measurement row parsed, converted and judged: values and quality log",
-            kind="table" if check else "view",
+            measurements_judged(end),
+            "every measurement row once, parsed, converted and judged: quality log and contact",
+            kind="view",
         ),
-        _values_stage(ctx),
     ]
+    if check:
+        stages.append(
+            Stage(
+                names.MEASUREMENT_COPIES,
+                copies_table(),
+                "the distinct measurement rows whose hash another row shares (the only ones "
+                "that can have exact copies), with their copies",
+            )
+        )
+    stages.append(_values_stage(ctx))
     if "egfr" in ctx.measures:
         low, high = ctx.registry["egfr"].plausible
         age = age_in_years(birth=exp.column("birth_date", "p"), on=exp.column("obs_date", "c"))

@@ -1,7 +1,7 @@
 """The quality log: every extract row is either used or counted under the reason it was not.
 
 Every row gets the first reason that applies, or ``used``, once, in its table's row-judgement
-stage (``compile/_judged.py``; measurements in ``compile/_measurements.py``), which the
+stage (``compile/_judged.py``; measurements in ``compile/_measurement_rows.py``), which the
 usable-row stages read too. The log counts each judged row once, and finds exact duplicates
 through a row hash confirmed on all columns (``judged_for_log``): the first copy counts under
 its reason, the others as duplicates, unless the row has no readable patient_id (see _SUMMARY).
@@ -19,6 +19,7 @@ from sqlglot import exp
 from pipeline.compile import names
 from pipeline.compile._context import CompileContext
 from pipeline.compile._judged import judged_for_log
+from pipeline.compile._measurement_rows import measurements_for_log
 from pipeline.compile._plan import SourceTable, Stage
 from pipeline.compile._sources import (
     coded_tables,
@@ -52,7 +53,7 @@ _EVENTS = ("encounters", "diagnoses", "prescriptions", "measurements")
 _ALL = ("patients", *_EVENTS)
 
 # Every reason the quality log can give, spelt exactly as the row judgements
-# (compile/_judged.py, measurements_judged in compile/_measurements.py) and distinct_codes
+# (compile/_judged.py, measurement_shapes and compile/_measurement_rows.py) and distinct_codes
 # (compile/_sources.py) spell it. tests/test_useless_runs.py fails when a stage gives a
 # reason that is missing here.
 SET_ASIDE_REASONS: dict[str, SetAsideReason] = {
@@ -208,17 +209,6 @@ SET_ASIDE_REASONS: dict[str, SetAsideReason] = {
 }
 
 
-# Every measurement row was judged in measurements_judged.
-_MEASUREMENTS = """
-SELECT
-  COALESCE(problem, 'used') AS reason,
-  copies AS n_rows,
-  CASE WHEN patient_id IS NULL OR source_problem IS NOT NULL THEN 0 ELSE copies - 1 END
-    AS duplicates,
-  source_position
-FROM :judged
-"""
-
 # A row whose patient_id is empty, or cannot be read as the patients table's id type (the
 # views bind it with TRY_CAST), has no patient, so its copies are not exact duplicates: rows
 # of different patients would otherwise meet on a NULL id and their date and code, and an
@@ -258,9 +248,9 @@ GROUP BY source_table, reason
 
 def _classified(ctx: CompileContext, table: SourceTable) -> exp.Query:
     """A table's rows judged by its row-judgement rule, ready to be counted."""
-    if table.name == "measurements":
-        return query(_MEASUREMENTS, judged=exp.to_table(names.MEASUREMENTS_JUDGED))
     check = ctx.study.quality.exact_duplicates == "check"
+    if table.name == "measurements":
+        return measurements_for_log(check_duplicates=check, end_of_data=ctx.study.end_of_data)
     return judged_for_log(
         table,
         check_duplicates=check,

@@ -45,6 +45,8 @@ MEASUREMENT_SHAPES = "measurement_shapes"
 """Each distinct measure, unit, value and value_text of the extract, parsed and judged once."""
 MEASUREMENT_ROWS = "measurement_rows"
 MEASUREMENTS_JUDGED = judged_stage("measurements")
+MEASUREMENT_COPIES = "measurement_copies"
+"""The distinct measurement rows whose row hash another row shares, with their copies."""
 MEASUREMENT_VALUES = "measurement_values"
 
 

@@ -1,4 +1,4 @@
--- plan for study orvane_multimorbidity (40 stages, dialect duckdb)
+-- plan for study orvane_multimorbidity (41 stages, dialect duckdb)
 
 -- reads src_patients: patient_id, sex, death_date, birth_date, birth_year, practice_id, registration_date, deregistration_date
 
@@ -597,8 +597,8 @@ LEFT JOIN measurement_shapes AS s
   AND s.key_value IS NOT DISTINCT FROM r.value
   AND s.key_value_text IS NOT DISTINCT FROM r.value_text;
 
--- stage measurements_judged [table]: every measurement row parsed, converted and judged: values and quality log
--- reads: measurement_rows
+-- stage measurements_judged [view]: every measurement row once, parsed, converted and judged: quality log and contact
+-- reads: measurement_shapes, patient_base, src_measurements
 SELECT
   patient_id,
   obs_date,
@@ -612,10 +612,132 @@ SELECT
   record_problem,
   timing_problem,
   problem
-FROM measurement_rows;
+FROM (
+  SELECT
+    r.patient_id,
+    r.obs_date,
+    s.measure,
+    s.qualifier,
+    s.category,
+    s.raw_value,
+    s.raw_value_text,
+    s.raw_unit,
+    r.copies,
+    r.source_position,
+    r.source_problem,
+    s.value,
+    CASE
+      WHEN NOT r.source_problem IS NULL
+      THEN r.source_problem
+      WHEN p.patient_id IS NULL
+      THEN 'orphan patient'
+      WHEN r.obs_date IS NULL
+      THEN 'unparseable date'
+    END AS record_problem,
+    CASE
+      WHEN r.obs_date > CAST('2019-12-31' AS DATE)
+      THEN 'after end of data'
+      WHEN NOT p.death_date IS NULL AND r.obs_date > p.death_date
+      THEN 'after death'
+    END AS timing_problem,
+    COALESCE(
+      CASE
+        WHEN NOT r.source_problem IS NULL
+        THEN r.source_problem
+        WHEN p.patient_id IS NULL
+        THEN 'orphan patient'
+        WHEN r.obs_date IS NULL
+        THEN 'unparseable date'
+      END,
+      CASE
+        WHEN r.obs_date > CAST('2019-12-31' AS DATE)
+        THEN 'after end of data'
+        WHEN NOT p.death_date IS NULL AND r.obs_date > p.death_date
+        THEN 'after death'
+      END,
+      s.problem
+    ) AS problem
+  FROM (
+    SELECT
+      patient_id,
+      TRY_CAST(obs_date AS DATE) AS obs_date,
+      measure,
+      unit,
+      value,
+      value_text,
+      copies,
+      source_position,
+      source_problem
+    FROM (
+      SELECT
+        patient_id,
+        obs_date,
+        measure,
+        unit,
+        value,
+        value_text,
+        source_problem,
+        source_position,
+        1 AS copies
+      FROM src_measurements
+    ) AS g
+  ) AS r
+  LEFT JOIN patient_base AS p
+    ON p.patient_id = r.patient_id
+  LEFT JOIN measurement_shapes AS s
+    ON s.key_measure IS NOT DISTINCT FROM r.measure
+    AND s.key_unit IS NOT DISTINCT FROM r.unit
+    AND s.key_value IS NOT DISTINCT FROM r.value
+    AND s.key_value_text IS NOT DISTINCT FROM r.value_text
+) AS j;
+
+-- stage measurement_copies [table]: the distinct measurement rows whose hash another row shares (the only ones that can have exact copies), with their copies
+-- reads: src_measurements
+SELECT
+  patient_id,
+  obs_date,
+  measure,
+  unit,
+  value,
+  value_text,
+  source_problem,
+  MIN(source_position) AS source_position,
+  COUNT(*) AS copies
+FROM (
+  SELECT
+    patient_id,
+    obs_date,
+    measure,
+    unit,
+    value,
+    value_text,
+    source_problem,
+    source_position
+  FROM src_measurements
+  WHERE
+    HASH(patient_id, obs_date, measure, unit, value, value_text, source_problem) IN (
+      SELECT
+        HASH(patient_id, obs_date, measure, unit, value, value_text, source_problem) AS row_hash
+      FROM src_measurements
+      GROUP BY
+        HASH(patient_id, obs_date, measure, unit, value, value_text, source_problem)
+      HAVING
+        COUNT(*) > 1
+    )
+) AS h
+GROUP BY
+  patient_id,
+  obs_date,
+  measure,
+  unit,
+  value,
+  value_text,
+  source_problem
+HAVING
+  COUNT(*) > 1;
 
 -- stage measurement_values [table]: usable values some stage can read, in canonical units: those that are evidence, those near a possible index date, and what derived values need
--- reads: measurements_judged
+-- reads: measurement_copies, measurement_shapes, patient_base, src_measurements
 SELECT
   patient_id,
   obs_date,
@@ -624,41 +746,212 @@ SELECT
   qualifier,
   category,
   FALSE AS derived
-FROM measurements_judged
+FROM (
+  SELECT
+    u.*
+  FROM (
+    SELECT
+      r.patient_id,
+      r.obs_date,
+      s.measure,
+      s.value,
+      s.qualifier,
+      s.category,
+      r.raw_date,
+      s.key_measure,
+      s.key_unit,
+      s.key_value,
+      s.key_value_text,
+      r.source_problem
+    FROM (
+      SELECT
+        patient_id,
+        obs_date AS raw_date,
+        TRY_CAST(obs_date AS DATE) AS obs_date,
+        measure,
+        unit,
+        value,
+        value_text,
+        source_problem
+      FROM src_measurements
+    ) AS r
+    JOIN (
+      SELECT
+        key_measure,
+        key_unit,
+        key_value,
+        key_value_text,
+        measure,
+        value,
+        qualifier,
+        category
+      FROM measurement_shapes
+      WHERE
+        problem IS NULL
+        AND measure IN ('bmi', 'creatinine', 'egfr', 'hba1c', 'height', 'sbp', 'weight')
+    ) AS s
+      ON s.key_measure IS NOT DISTINCT FROM r.measure
+      AND s.key_unit IS NOT DISTINCT FROM r.unit
+      AND s.key_value IS NOT DISTINCT FROM r.value
+      AND s.key_value_text IS NOT DISTINCT FROM r.value_text
+    LEFT JOIN patient_base AS p
+      ON p.patient_id = r.patient_id
+    WHERE
+      CASE
+        WHEN NOT r.source_problem IS NULL
+        THEN r.source_problem
+        WHEN p.patient_id IS NULL
+        THEN 'orphan patient'
+        WHEN r.obs_date IS NULL
+        THEN 'unparseable date'
+      END IS NULL
+      AND CASE
+        WHEN r.obs_date > CAST('2019-12-31' AS DATE)
+        THEN 'after end of data'
+        WHEN NOT p.death_date IS NULL AND r.obs_date > p.death_date
+        THEN 'after death'
+      END IS NULL
+  ) AS u
+  LEFT JOIN measurement_copies AS c
+    ON c.patient_id IS NOT DISTINCT FROM u.patient_id
+    AND c.obs_date IS NOT DISTINCT FROM u.raw_date
+    AND c.measure IS NOT DISTINCT FROM u.key_measure
+    AND c.unit IS NOT DISTINCT FROM u.key_unit
+    AND c.value IS NOT DISTINCT FROM u.key_value
+    AND c.value_text IS NOT DISTINCT FROM u.key_value_text
+    AND c.source_problem IS NOT DISTINCT FROM u.source_problem
+  WHERE
+    c.copies IS NULL
+) AS u
 WHERE
-  (
-    problem IS NULL
-    AND measure IN ('bmi', 'creatinine', 'egfr', 'hba1c', 'height', 'sbp', 'weight')
+  measure IN ('creatinine', 'egfr', 'height')
+  OR (
+    measure = 'bmi'
+    AND obs_date BETWEEN CAST('2013-01-01' AS DATE) AND CAST('2016-12-31' AS DATE)
   )
-  AND (
-    measure IN ('creatinine', 'egfr', 'height')
-    OR (
-      measure = 'bmi'
-      AND obs_date BETWEEN CAST('2013-01-01' AS DATE) AND CAST('2016-12-31' AS DATE)
+  OR (
+    measure = 'hba1c'
+    AND (
+      CASE
+        WHEN qualifier IS NULL
+        THEN value >= 6.5
+        WHEN qualifier = '>'
+        THEN value >= 6.5
+        WHEN qualifier = '>='
+        THEN value >= 6.5
+        ELSE FALSE
+      END
+      OR obs_date BETWEEN CAST('2013-01-01' AS DATE) AND CAST('2016-12-31' AS DATE)
     )
-    OR (
-      measure = 'hba1c'
-      AND (
-        CASE
-          WHEN qualifier IS NULL
-          THEN value >= 6.5
-          WHEN qualifier = '>'
-          THEN value >= 6.5
-          WHEN qualifier = '>='
-          THEN value >= 6.5
-          ELSE FALSE
-        END
-        OR obs_date BETWEEN CAST('2013-01-01' AS DATE) AND CAST('2016-12-31' AS DATE)
-      )
+  )
+  OR (
+    measure = 'sbp'
+    AND obs_date BETWEEN CAST('2013-01-01' AS DATE) AND CAST('2016-12-31' AS DATE)
+  )
+  OR (
+    measure = 'weight'
+    AND obs_date BETWEEN CAST('2013-01-01' AS DATE) AND CAST('2016-12-31' AS DATE)
+  )
+UNION ALL
+SELECT
+  patient_id,
+  obs_date,
+  measure,
+  value,
+  qualifier,
+  category,
+  FALSE AS derived
+FROM (
+  SELECT
+    r.patient_id,
+    r.obs_date,
+    s.measure,
+    s.value,
+    s.qualifier,
+    s.category,
+    r.raw_date,
+    s.key_measure,
+    s.key_unit,
+    s.key_value,
+    s.key_value_text,
+    r.source_problem
+  FROM (
+    SELECT
+      patient_id,
+      obs_date AS raw_date,
+      TRY_CAST(obs_date AS DATE) AS obs_date,
+      measure,
+      unit,
+      value,
+      value_text,
+      source_problem
+    FROM measurement_copies
+  ) AS r
+  JOIN (
+    SELECT
+      key_measure,
+      key_unit,
+      key_value,
+      key_value_text,
+      measure,
+      value,
+      qualifier,
+      category
+    FROM measurement_shapes
+    WHERE
+      problem IS NULL
+      AND measure IN ('bmi', 'creatinine', 'egfr', 'hba1c', 'height', 'sbp', 'weight')
+  ) AS s
+    ON s.key_measure IS NOT DISTINCT FROM r.measure
+    AND s.key_unit IS NOT DISTINCT FROM r.unit
+    AND s.key_value IS NOT DISTINCT FROM r.value
+    AND s.key_value_text IS NOT DISTINCT FROM r.value_text
+  LEFT JOIN patient_base AS p
+    ON p.patient_id = r.patient_id
+  WHERE
+    CASE
+      WHEN NOT r.source_problem IS NULL
+      THEN r.source_problem
+      WHEN p.patient_id IS NULL
+      THEN 'orphan patient'
+      WHEN r.obs_date IS NULL
+      THEN 'unparseable date'
+    END IS NULL
+    AND CASE
+      WHEN r.obs_date > CAST('2019-12-31' AS DATE)
+      THEN 'after end of data'
+      WHEN NOT p.death_date IS NULL AND r.obs_date > p.death_date
+      THEN 'after death'
+    END IS NULL
+) AS u
+WHERE
+  measure IN ('creatinine', 'egfr', 'height')
+  OR (
+    measure = 'bmi'
+    AND obs_date BETWEEN CAST('2013-01-01' AS DATE) AND CAST('2016-12-31' AS DATE)
+  )
+  OR (
+    measure = 'hba1c'
+    AND (
+      CASE
+        WHEN qualifier IS NULL
+        THEN value >= 6.5
+        WHEN qualifier = '>'
+        THEN value >= 6.5
+        WHEN qualifier = '>='
+        THEN value >= 6.5
+        ELSE FALSE
+      END
+      OR obs_date BETWEEN CAST('2013-01-01' AS DATE) AND CAST('2016-12-31' AS DATE)
     )
-    OR (
-      measure = 'sbp'
-      AND obs_date BETWEEN CAST('2013-01-01' AS DATE) AND CAST('2016-12-31' AS DATE)
-    )
-    OR (
-      measure = 'weight'
-      AND obs_date BETWEEN CAST('2013-01-01' AS DATE) AND CAST('2016-12-31' AS DATE)
-    )
+  )
+  OR (
+    measure = 'sbp'
+    AND obs_date BETWEEN CAST('2013-01-01' AS DATE) AND CAST('2016-12-31' AS DATE)
+  )
+  OR (
+    measure = 'weight'
+    AND obs_date BETWEEN CAST('2013-01-01' AS DATE) AND CAST('2016-12-31' AS DATE)
   );
 
 -- stage derived_egfr [table]: eGFR derived from creatinine by CKD-EPI 2021 where none was reported that day
@@ -2477,7 +2770,7 @@ SELECT
 FROM src_measurements;
 
 -- stage quality_log [table]: every extract row: used, or set aside with the first reason that applies
--- reads: diagnoses_judged, distinct_codes, encounters_judged, measurements_judged, patient_base, patients_judged, prescriptions_judged, src_diagnoses, src_encounters, src_patients, src_prescriptions
+-- reads: diagnoses_judged, distinct_codes, encounters_judged, measurement_copies, measurement_shapes, measurements_judged, patient_base, patients_judged, prescriptions_judged, src_diagnoses, src_encounters, src_patients, src_prescriptions
 WITH summary AS (
   SELECT
     reason,
@@ -2950,14 +3243,92 @@ WITH summary AS (
   FROM (
     SELECT
       COALESCE(problem, 'used') AS reason,
-      copies AS n_rows,
+      1 AS n_rows,
+      0 AS duplicates,
+      source_position
+    FROM measurements_judged
+    UNION ALL
+    SELECT
+      COALESCE(problem, 'used') AS reason,
+      0 AS n_rows,
       CASE
         WHEN patient_id IS NULL OR NOT source_problem IS NULL
         THEN 0
         ELSE copies - 1
       END AS duplicates,
-      source_position
-    FROM measurements_judged
+      CAST(NULL AS BIGINT) AS source_position
+    FROM (
+      SELECT
+        r.patient_id,
+        r.obs_date,
+        s.measure,
+        s.qualifier,
+        s.category,
+        s.raw_value,
+        s.raw_value_text,
+        s.raw_unit,
+        r.copies,
+        r.source_position,
+        r.source_problem,
+        s.value,
+        CASE
+          WHEN NOT r.source_problem IS NULL
+          THEN r.source_problem
+          WHEN p.patient_id IS NULL
+          THEN 'orphan patient'
+          WHEN r.obs_date IS NULL
+          THEN 'unparseable date'
+        END AS record_problem,
+        CASE
+          WHEN r.obs_date > CAST('2019-12-31' AS DATE)
+          THEN 'after end of data'
+          WHEN NOT p.death_date IS NULL AND r.obs_date > p.death_date
+          THEN 'after death'
+        END AS timing_problem,
+        COALESCE(
+          CASE
+            WHEN NOT r.source_problem IS NULL
+            THEN r.source_problem
+            WHEN p.patient_id IS NULL
+            THEN 'orphan patient'
+            WHEN r.obs_date IS NULL
+            THEN 'unparseable date'
+          END,
+          CASE
+            WHEN r.obs_date > CAST('2019-12-31' AS DATE)
+            THEN 'after end of data'
+            WHEN NOT p.death_date IS NULL AND r.obs_date > p.death_date
+            THEN 'after death'
+          END,
+          s.problem
+        ) AS problem
+      FROM (
+        SELECT
+          patient_id,
+          TRY_CAST(obs_date AS DATE) AS obs_date,
+          measure,
+          unit,
+          value,
+          value_text,
+          copies,
+          source_position,
+          source_problem
+        FROM (
+          SELECT
+            *
+          FROM measurement_copies
+        ) AS g
+      ) AS r
+      LEFT JOIN patient_base AS p
+        ON p.patient_id = r.patient_id
+      LEFT JOIN measurement_shapes AS s
+        ON s.key_measure IS NOT DISTINCT FROM r.measure
+        AND s.key_unit IS NOT DISTINCT FROM r.unit
+        AND s.key_value IS NOT DISTINCT FROM r.value
+        AND s.key_value_text IS NOT DISTINCT FROM r.value_text
+    ) AS j
+    WHERE
+      copies > 1
   ) AS c
   GROUP BY
     reason
