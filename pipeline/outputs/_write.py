@@ -120,9 +120,10 @@ def parquet_sink(
 ) -> Callable[[pa.RecordBatchReader], int]:
     """A sink for :meth:`pipeline.engine.Engine.run` writing an output to ``path`` as it comes.
 
-    ``columns`` as in :func:`write_parquet_stream` (None: no column documentation).
+    ``columns`` as in :func:`write_parquet_stream` (None: no column documentation); row groups
+    of :data:`STREAMED_ROW_GROUP_ROWS`, read when the output arrives.
     """
-    return lambda batches: write_parquet_stream(batches, path, columns)
+    return lambda batches: write_parquet_stream(batches, path, columns, STREAMED_ROW_GROUP_ROWS)
 
 
 COLUMN_DOCS_KEY = "ascertain.columns"
