@@ -121,3 +121,25 @@ def test_a_build_streams_its_cohort_and_population_in_bounded_row_groups(
         assert file.read_bytes() == (tmp_path / f"{name}.parquet").read_bytes(), name
         assert pq.ParquetFile(file).metadata.num_row_groups == -(-table.num_rows // 10), name
         assert result.read(name).equals(table), name
+
+
+def test_a_column_past_its_dictionary_limit_gives_the_same_bytes_however_chunked(
+    tmp_path: Path,
+) -> None:
+    # 90,000 distinct 15-character ids: about 1.7 MB of dictionary, past the writer's 1 MB
+    # dictionary page limit, where it falls back to plain encoding at a point that depends on
+    # where the Arrow chunks end (DuckDB's batches of 65,536 rows, Spark's partitions of
+    # 50,000 gave population files of different bytes at 200,000 patients).
+    ids = pa.array([f"OB-{i * 7919 % 90_000:012d}" for i in range(90_000)])
+    table = pa.table({"patient_id": ids, "step": pa.array(["age", "sex", None] * 30_000)})
+    files = []
+    for size in (65_536, 50_000, 999):
+        path = tmp_path / f"streamed_{size}.parquet"
+        reader = pa.RecordBatchReader.from_batches(table.schema, table.to_batches(size))
+        write_parquet_stream(reader, path, None)
+        files.append(path.read_bytes())
+    write_parquet(pa.Table.from_batches(table.to_batches(777)), tmp_path / "whole.parquet", 131_072)
+    files.append((tmp_path / "whole.parquet").read_bytes())
+    assert all(file == files[0] for file in files)
+    encodings = pq.ParquetFile(tmp_path / "whole.parquet").metadata.row_group(0).column(0)
+    assert "PLAIN" in str(encodings.encodings)  # the dictionary was given up, as intended

@@ -67,8 +67,16 @@ this many rows is one row group, byte for byte the file written whole.
 
 
 def write_parquet(table: pa.Table, path: Path, row_group_rows: int = ROW_GROUP_ROWS) -> None:
-    """Write a table to Parquet with fixed writer settings (deterministic bytes)."""
-    pq.write_table(round_doubles(table), path, row_group_size=row_group_rows, **_PARQUET)
+    """Write a table to Parquet with fixed writer settings (deterministic bytes).
+
+    The columns are made one chunk each first: the Parquet writer gives up a column's
+    dictionary (past its 1 MB page limit, e.g. 131,072 distinct patient ids) at a point that
+    depends on where the Arrow chunks end, so the same rows in other chunks (DuckDB's batches,
+    Spark's partitions) would make other bytes.
+    """
+    pq.write_table(
+        round_doubles(table.combine_chunks()), path, row_group_size=row_group_rows, **_PARQUET
+    )
 
 
 def write_parquet_stream(
@@ -80,12 +88,12 @@ def write_parquet_stream(
     """Write a stream of batches to Parquet, one row group at a time; return the rows written.
 
     The bytes are those :func:`write_parquet` writes for the whole table with
-    ``row_group_rows`` (the writer's output does not depend on how the rows arrive in
-    batches, and one call per row group writes what one call with that row group size
-    writes), so a streamed output is the same file whichever engine fetched it and however it
-    was batched. The column documentation goes into the schema as in :func:`with_column_docs`;
-    ``columns=None`` writes the schema as it comes (``population.parquet`` carries no
-    dictionary).
+    ``row_group_rows`` (each row group is made one chunk per column before it is written, as
+    :func:`write_parquet` makes the whole table, and one call per row group writes what one
+    call with that row group size writes), so a streamed output is the same file whichever
+    engine fetched it and however it was batched. The column documentation goes into the
+    schema as in :func:`with_column_docs`; ``columns=None`` writes the schema as it comes
+    (``population.parquet`` carries no dictionary).
     """
     schema = batches.schema
     if columns is not None:
@@ -95,7 +103,7 @@ def write_parquet_stream(
 
     def flush(writer: pq.ParquetWriter) -> None:
         nonlocal held, written
-        table = pa.Table.from_batches(pending, batches.schema)
+        table = pa.Table.from_batches(pending, batches.schema).combine_chunks()
         writer.write_table(round_doubles(table.cast(schema)), row_group_size=row_group_rows)
         written += table.num_rows
         pending.clear()
