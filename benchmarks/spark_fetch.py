@@ -1,4 +1,4 @@
-"""Driver memory while fetching a build's outputs from Spark: whole (toArrow) or in batches.
+"""Driver memory while fetching a build's outputs from Spark: whole, in batches, or streamed.
 
 For each size: a synthetic extract (``ascertain synth``, seed 1), a DuckDB build of the demo
 study, then for each way of fetching and each repeat a fresh process with a Spark session
@@ -7,7 +7,11 @@ on 127.0.0.1 as ``tests/test_spark_cluster.py`` starts them, so the executors so
 their own and the driver's heap shows the fetch alone) that reads ``cohort.parquet`` and
 ``population.parquet`` in shuffled order, stores them as the engine stores a stage (a local
 checkpoint), and fetches them to Python sorted by patient: ``whole`` as ``ORDER BY`` +
-``toArrow()``, ``batched`` as the engine does (``pipeline.engine._spark_fetch.to_arrow``).
+``toArrow()``, ``batched`` as the engine's bounded fetch into one Arrow table
+(``pipeline.engine._spark_fetch.to_arrow``), ``streamed`` as a build does: the same bounded
+fetch written to Parquet batch by batch (``to_arrow_reader`` into ``write_parquet_stream``),
+never held whole. Every way's rows are written as a build writes them afterwards, and the
+files' SHA-256 (``parquet_sha256``) must be equal.
 Measured per fetch: seconds, the peak of the driver JVM's heap during the fetch (the JVM's own
 memory-pool peaks, reset before it; on ``local[2]`` the executors' sorting runs in the same
 JVM), the peak of its old generation alone (where G1 puts Arrow buffers of half a region and
@@ -56,6 +60,10 @@ from typing import Any
 ROOT = Path(__file__).resolve().parent.parent
 STUDY = ROOT / "definitions" / "studies" / "orvane_multimorbidity.yaml"
 
+
+WAYS = ("whole", "batched", "streamed")
+"""How an output reaches the driver: ``toArrow``, the bounded fetch into one table, or the
+bounded fetch written to Parquet as it comes (what a build does)."""
 
 # Executors on the test cluster's 1 GB worker get half of it, as in the cluster test.
 CLUSTER_CONF = {"spark.executor.memory": "512m"}
@@ -114,10 +122,20 @@ def _session(
 def _fetch_one(
     spark: Any, pools: list[Any], old: list[Any], frame: Any, how: str, rows: int | None
 ) -> dict[str, object]:
-    """Fetch ``frame`` sorted by patient one way; what it cost the driver, and its hash."""
+    """Fetch ``frame`` sorted by patient one way; what it cost the driver, and its hashes.
+
+    ``streamed`` is the build's way: the batched fetch's batches written to Parquet as they
+    come (``write_parquet_stream``), never held whole. Every way's rows end in a Parquet file
+    written as the build writes a streamed output (row groups of ``STREAMED_ROW_GROUP_ROWS``),
+    after the figures are taken: its SHA-256 must be the same every way.
+    """
     import pyarrow as pa
 
-    from pipeline.engine._spark_fetch import arrow_schema, to_arrow
+    from pipeline.engine._spark_fetch import arrow_schema, to_arrow, to_arrow_reader
+    from pipeline.outputs import write_parquet, write_parquet_stream
+    from pipeline.outputs._write import STREAMED_ROW_GROUP_ROWS
+
+    written = Path(tempfile.mkdtemp(prefix="ascertain-fetch-")) / "output.parquet"
 
     spark.sparkContext._jvm.java.lang.System.gc()
     for pool in pools:
@@ -138,10 +156,14 @@ def _fetch_one(
     watcher.start()
     started = time.perf_counter()
     try:
+        table = None
         if how == "whole":
             table = frame.orderBy("patient_id").toArrow().cast(arrow_schema(frame))
-        else:
+        elif how == "batched":
             table = to_arrow(frame, ("patient_id",), rows)
+        else:
+            reader = to_arrow_reader(frame, ("patient_id",), rows)
+            streamed_rows = write_parquet_stream(reader, written, None)
     finally:
         done.set()
         watcher.join()
@@ -149,15 +171,22 @@ def _fetch_one(
     peak = sum(int(p.getPeakUsage().getUsed()) for p in pools)
     old_peak = sum(int(p.getPeakUsage().getUsed()) for p in old)
     rss_after = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-    digest = hashlib.sha256()
-    for batch in table.combine_chunks().to_batches():
-        # The IPC stream of the table batch by batch: the same bytes both ways, no copy of all.
-        sink = pa.BufferOutputStream()
-        with pa.ipc.new_stream(sink, table.schema) as writer:
-            writer.write_batch(batch)
-        digest.update(sink.getvalue().to_pybytes())
+    digest = None
+    if table is not None:
+        digest = hashlib.sha256()
+        for batch in table.combine_chunks().to_batches():
+            # The IPC stream of the table batch by batch: the same bytes both ways, no copy.
+            sink = pa.BufferOutputStream()
+            with pa.ipc.new_stream(sink, table.schema) as writer:
+                writer.write_batch(batch)
+            digest.update(sink.getvalue().to_pybytes())
+        write_parquet(table, written, STREAMED_ROW_GROUP_ROWS)
+    parquet_digest = hashlib.sha256(written.read_bytes()).hexdigest()[:16]
+    parquet_mb = round(written.stat().st_size / 2**20, 1)
+    written.unlink()
+    written.parent.rmdir()
     return {
-        "rows": table.num_rows,
+        "rows": table.num_rows if table is not None else streamed_rows,
         "seconds": round(seconds, 2),
         "jvm_heap_before_mb": round(baseline / 2**20),
         "jvm_heap_peak_mb": round(peak / 2**20),
@@ -165,8 +194,10 @@ def _fetch_one(
         "jvm_live_peak_mb": round(live[0] / 2**20),
         "python_peak_rss_mb": round(rss_after / 1024),
         "python_peak_growth_mb": round((rss_after - rss_before) / 1024),
-        "arrow_mb": round(table.nbytes / 2**20, 1),
-        "sha256": digest.hexdigest()[:16],
+        "arrow_mb": round(table.nbytes / 2**20, 1) if table is not None else None,
+        "sha256": digest.hexdigest()[:16] if digest is not None else None,
+        "parquet_mb": parquet_mb,
+        "parquet_sha256": parquet_digest,
     }
 
 
@@ -249,10 +280,10 @@ def _median(runs: list[dict[str, object]]) -> dict[str, object]:
     result["runs"] = len(runs)
     for name in ("cohort", "population"):
         tables = [run[name] for run in runs]
-        assert len({t["sha256"] for t in tables}) == 1, "runs fetched different tables"  # type: ignore[index]
+        assert len({t["parquet_sha256"] for t in tables}) == 1, "runs fetched different tables"  # type: ignore[index]
         result[name] = {
             key: statistics.median(t[key] for t in tables)  # type: ignore[index]
-            if key != "sha256"
+            if key not in ("sha256", "parquet_sha256", "arrow_mb")
             else tables[0][key]  # type: ignore[index]
             for key in tables[0]  # type: ignore[union-attr]
         }
@@ -277,7 +308,7 @@ def _outputs(patients: int, cache: Path | None, scratch: Path) -> Path:
 def _measure_synthetic(args: argparse.Namespace, master: str, env: dict[str, str] | None) -> None:
     """Each size and way once, each in a fresh process (its peak RSS is the fetch's alone)."""
     for rows in args.synthetic_rows:
-        for how in args.way or ("whole", "batched"):
+        for how in args.way or WAYS:
             command = [sys.executable, __file__, "--fetch", how, "--synthetic", str(rows)]
             command += ["--master", master]
             if args.partition_rows:
@@ -302,7 +333,7 @@ def _measure(args: argparse.Namespace, master: str, env: dict[str, str] | None) 
     with tempfile.TemporaryDirectory(prefix="ascertain-fetch-") as scratch:
         for patients in args.patients or [200_000]:
             out = _outputs(patients, args.cache, Path(scratch))
-            for how in ("whole", "batched"):
+            for how in args.way or WAYS:
                 runs = []
                 for _ in range(args.repeat):
                     command = [sys.executable, __file__, "--fetch", how, "--folder", str(out)]
@@ -340,9 +371,7 @@ def main() -> None:
     parser.add_argument(
         "--driver-memory", help="fetch-only: the driver's heap (spark.driver.memory), e.g. 512m"
     )
-    parser.add_argument(
-        "--way", action="append", choices=("whole", "batched"), help="fetch-only: one way only"
-    )
+    parser.add_argument("--way", action="append", choices=WAYS, help="only this way (repeatable)")
     parser.add_argument("--fetch", help=argparse.SUPPRESS)
     parser.add_argument("--folder", help=argparse.SUPPRESS)
     parser.add_argument("--synthetic", type=int, help=argparse.SUPPRESS)

@@ -125,7 +125,7 @@ def build(
         console.print(f"note: {note}", markup=False, soft_wrap=True)
     for warning in result.warnings:
         console.print(f"warning: {warning}", markup=False, soft_wrap=True)
-    console.print(f"cohort of {result.run.outputs['cohort'].num_rows:,} patients -> {result.out}")
+    console.print(f"cohort of {result.cohort_rows:,} patients -> {result.out}")
 
 
 @app.command()

@@ -235,7 +235,7 @@ def test_missing_resource_types_give_empty_tables(tmp_path: Path) -> None:
     assert tables["encounters"].resources == ("Encounter",)
     assert tables["diagnoses"].files == ()
     result = build_study(DEMO_STUDY, BuildOptions(extract=export, out=tmp_path / "out"))
-    assert result.run.outputs["cohort"].num_rows == 5
+    assert result.cohort_rows == 5
     assert "READ_CSV" in fhir_source(tables["measurements"]).sql("duckdb").upper()
 
 

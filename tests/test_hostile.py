@@ -120,7 +120,7 @@ def test_byte_order_mark_is_skipped(tmp_path: Path, baseline: BuildResult) -> No
     result = _build(extract)
     assert _read(result)["patients"] == _data_rows("patients")
     assert _added(result, baseline, "patients") == {}
-    assert result.run.outputs["cohort"].equals(baseline.run.outputs["cohort"])
+    assert result.read("cohort").equals(baseline.read("cohort"))
 
 
 # 2. Quoted fields hold commas, doubled quotes and line breaks.
@@ -309,7 +309,7 @@ def test_impossible_dates_are_unparseable(tmp_path: Path, baseline: BuildResult)
     assert _read(result)["diagnoses"] == _data_rows("diagnoses") + len(rows)
     added = _added(result, baseline, "diagnoses")
     assert added == {"unparseable date": 3, "after end of data": 1}
-    assert result.run.outputs["cohort"].equals(baseline.run.outputs["cohort"])
+    assert result.read("cohort").equals(baseline.read("cohort"))
 
 
 # 10. Quotes, semicolons and SQL in codes are data.
@@ -335,7 +335,7 @@ def test_sql_in_codes_is_data(tmp_path: Path, baseline: BuildResult) -> None:
     assert _read(result)["diagnoses"] == _data_rows("diagnoses") + len(codes)
     assert _added(result, baseline, "diagnoses") == {"malformed code": len(codes)}
     assert _read(result)["patients"] == _data_rows("patients")
-    assert result.run.outputs["cohort"].equals(baseline.run.outputs["cohort"])
+    assert result.read("cohort").equals(baseline.read("cohort"))
 
 
 # 11. A malformed date is counted, and the quality log names the first row it set aside.
@@ -361,7 +361,7 @@ def test_a_malformed_date_in_row_1234_is_named(tmp_path: Path, baseline: BuildRe
     located = _quality_rows(result, "diagnoses")
     assert located["unparseable date"] == ("diagnoses.csv", "1234")
     assert located["used"] == ("", "")
-    assert result.run.outputs["cohort"].equals(baseline.run.outputs["cohort"])
+    assert result.read("cohort").equals(baseline.read("cohort"))
 
 
 def test_rows_are_named_per_file_of_a_mapped_glob(tmp_path: Path) -> None:
@@ -401,7 +401,7 @@ def test_a_column_named_source_position_is_data(tmp_path: Path, baseline: BuildR
         "diagnoses.csv",
         str(len(rows)),
     )
-    assert result.run.outputs["cohort"].equals(baseline.run.outputs["cohort"])
+    assert result.read("cohort").equals(baseline.read("cohort"))
 
 
 def test_a_code_set_aside_never_counts_as_evidence(tmp_path: Path, baseline: BuildResult) -> None:
@@ -417,4 +417,4 @@ def test_a_code_set_aside_never_counts_as_evidence(tmp_path: Path, baseline: Bui
     result = _build(extract)
     added = _added(result, baseline, "diagnoses")
     assert added == {"used": 1, "unknown code system": 1, "malformed code": 1}
-    assert result.run.outputs["cohort"].equals(baseline.run.outputs["cohort"])
+    assert result.read("cohort").equals(baseline.read("cohort"))

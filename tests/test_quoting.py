@@ -27,7 +27,7 @@ QUOTED_SEX = 'Sex "as recorded"'
 def plain_cohort(tmp_path_factory: pytest.TempPathFactory) -> pl.DataFrame:
     out = tmp_path_factory.mktemp("plain") / "out"
     result = build_study(DEMO_STUDY, BuildOptions(extract=HANDMADE, out=out))
-    assert result.run.outputs["cohort"].num_rows == 29  # tests/fixtures/handmade/README.md
+    assert result.cohort_rows == 29  # tests/fixtures/handmade/README.md
     return pl.read_parquet(out / "cohort.parquet")
 
 

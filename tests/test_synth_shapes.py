@@ -126,7 +126,7 @@ def test_the_demo_study_builds_on_every_shape(extracts: dict[str, Path], tmp_pat
     cohorts = {}
     for shape, folder in extracts.items():
         result = build_study(DEMO_STUDY, BuildOptions(extract=folder, out=tmp_path / shape))
-        cohorts[shape] = result.run.outputs["cohort"]
+        cohorts[shape] = result.read("cohort")
     base = cohorts["base"]
     assert base.num_rows > 300
     for shape in ("value_text", "many_practices", "wide"):

@@ -196,20 +196,24 @@ def with_matching_lines(
 
 
 def matched_outputs(
-    outputs: dict[str, pa.Table], option: Matching | None
+    outputs: dict[str, pa.Table],
+    option: Matching | None,
+    cohort: pa.Schema,
+    cohort_rows: int,
 ) -> tuple[pa.Table | None, pa.Table, MatchSummary | None]:
     """``matched.parquet``'s table, the attrition log with its matching lines, and the summary.
 
-    From a run's outputs; None and the log unchanged for a study without ``matching:``.
+    From a run's outputs, and the cohort's schema (its ``patient_id`` type) and row count: the
+    cohort itself is streamed to its file, never held here. None and the log unchanged for a
+    study without ``matching:``.
     """
     attrition = outputs["attrition"]
     if option is None:
         return None, attrition, None
-    cohort = outputs["cohort"]
     matched, summary = matched_table(
         outputs["matching_sets"],
         outputs["matching_draws"],
         option,
-        cohort.schema.field("patient_id").type,
+        cohort.field("patient_id").type,
     )
-    return matched, with_matching_lines(attrition, summary, option, cohort.num_rows), summary
+    return matched, with_matching_lines(attrition, summary, option, cohort_rows), summary

@@ -55,41 +55,55 @@ ROW_GROUP_ROWS = 1_000_000
 """Rows per row group of an output written whole."""
 
 STREAMED_ROW_GROUP_ROWS = 131_072
-"""Rows per row group of an output streamed from the engine (person-time).
+"""Rows per row group of an output streamed from the engine (cohort, population, episodes,
+person-time).
 
 The writer holds one row group's rows before writing them, so this bounds the rows in Python
-whatever the cohort's size (person-time: about 66 bytes a row, under 10 MB). Smaller row
-groups compress a little less well (at 200,000 patients the person-time file is 5% larger
-than in one group); a file of fewer rows is one row group, as before.
+whatever the cohort's size (a demo cohort row is about 150 bytes of Arrow: some 20 MB;
+person-time about 66 bytes a row, under 10 MB). Smaller row groups compress a little less well
+(at 200,000 patients the person-time file is 5% larger than in one group); a file of at most
+this many rows is one row group, byte for byte the file written whole.
 """
 
 
 def write_parquet(table: pa.Table, path: Path, row_group_rows: int = ROW_GROUP_ROWS) -> None:
-    """Write a table to Parquet with fixed writer settings (deterministic bytes)."""
-    pq.write_table(round_doubles(table), path, row_group_size=row_group_rows, **_PARQUET)
+    """Write a table to Parquet with fixed writer settings (deterministic bytes).
+
+    The columns are made one chunk each first: the Parquet writer gives up a column's
+    dictionary (past its 1 MB page limit, e.g. 131,072 distinct patient ids) at a point that
+    depends on where the Arrow chunks end, so the same rows in other chunks (DuckDB's batches,
+    Spark's partitions) would make other bytes.
+    """
+    pq.write_table(
+        round_doubles(table.combine_chunks()), path, row_group_size=row_group_rows, **_PARQUET
+    )
 
 
 def write_parquet_stream(
     batches: pa.RecordBatchReader,
     path: Path,
-    columns: tuple[ColumnDoc, ...] = (),
+    columns: tuple[ColumnDoc, ...] | None = (),
     row_group_rows: int = STREAMED_ROW_GROUP_ROWS,
 ) -> int:
     """Write a stream of batches to Parquet, one row group at a time; return the rows written.
 
     The bytes are those :func:`write_parquet` writes for the whole table with
-    ``row_group_rows`` (the writer's output does not depend on how the rows arrive in
-    batches, and one call per row group writes what one call with that row group size
-    writes), so a streamed output is the same file whichever engine fetched it and however it
-    was batched. The column documentation goes into the schema as in :func:`with_column_docs`.
+    ``row_group_rows`` (each row group is made one chunk per column before it is written, as
+    :func:`write_parquet` makes the whole table, and one call per row group writes what one
+    call with that row group size writes), so a streamed output is the same file whichever
+    engine fetched it and however it was batched. The column documentation goes into the
+    schema as in :func:`with_column_docs`; ``columns=None`` writes the schema as it comes
+    (``population.parquet`` carries no dictionary).
     """
-    schema = with_column_docs(batches.schema.empty_table(), columns).schema
+    schema = batches.schema
+    if columns is not None:
+        schema = with_column_docs(schema.empty_table(), columns).schema
     pending: list[pa.RecordBatch] = []
     held = written = 0
 
     def flush(writer: pq.ParquetWriter) -> None:
         nonlocal held, written
-        table = pa.Table.from_batches(pending, batches.schema)
+        table = pa.Table.from_batches(pending, batches.schema).combine_chunks()
         writer.write_table(round_doubles(table.cast(schema)), row_group_size=row_group_rows)
         written += table.num_rows
         pending.clear()
@@ -110,10 +124,14 @@ def write_parquet_stream(
 
 
 def parquet_sink(
-    path: Path, columns: tuple[ColumnDoc, ...] = ()
+    path: Path, columns: tuple[ColumnDoc, ...] | None = ()
 ) -> Callable[[pa.RecordBatchReader], int]:
-    """A sink for :meth:`pipeline.engine.Engine.run` writing an output to ``path`` as it comes."""
-    return lambda batches: write_parquet_stream(batches, path, columns)
+    """A sink for :meth:`pipeline.engine.Engine.run` writing an output to ``path`` as it comes.
+
+    ``columns`` as in :func:`write_parquet_stream` (None: no column documentation); row groups
+    of :data:`STREAMED_ROW_GROUP_ROWS`, read when the output arrives.
+    """
+    return lambda batches: write_parquet_stream(batches, path, columns, STREAMED_ROW_GROUP_ROWS)
 
 
 COLUMN_DOCS_KEY = "ascertain.columns"
@@ -233,8 +251,8 @@ class Written:
 def write_outputs(
     target: Path,
     *,
-    cohort: pa.Table,
-    population: pa.Table,
+    cohort: pa.Table | Path,
+    population: pa.Table | Path,
     attrition: pa.Table,
     quality: pa.Table,
     columns: tuple[ColumnDoc, ...],
@@ -256,8 +274,10 @@ def write_outputs(
     manifest gets the hash of every data file; ``run.json`` (when and how long) is the only
     file that differs between runs. ``persontime`` (with its dictionary) is written as
     ``persontime.parquet`` when the study asks for it, ``matched`` as ``matched.parquet`` and
-    ``episodes`` as ``episodes.parquet``; an output given as a path is a file the build
-    already wrote (streamed from the engine, :func:`parquet_sink`), moved in as it is.
+    ``episodes`` as ``episodes.parquet``. An output given as a path (the cohort, the
+    population, ...) is a file the build already wrote, streamed from the engine through
+    :func:`parquet_sink` with the same documentation this function would give it, and is
+    moved in as it is.
 
     Raises:
         OutputFolderError: ``target`` holds files ascertain did not write there.
@@ -275,21 +295,26 @@ def write_outputs(
     names = [*data_files, MANIFEST, "run.json"]
     further = tuple((file, docs) for file, _, docs in extra)
     with staging(target) as staged:
-        write_parquet(with_column_docs(cohort, columns), staged / "cohort.parquet")
-        write_parquet(population, staged / "population.parquet")
+        _place(cohort, columns, staged / "cohort.parquet")
+        _place(population, None, staged / "population.parquet")
         write_attrition(attrition, staged / "attrition.csv")
         write_csv(quality, QUALITY_COLUMNS, staged / "quality.csv")
         write_dictionary(columns, staged, further)
         for file, table, docs in extra:
-            if isinstance(table, Path):
-                shutil.move(table, staged / file)
-            else:
-                write_parquet(with_column_docs(table, docs), staged / file)
+            _place(table, docs, staged / file)
         hashed = {name: sha256_file(staged / name) for name in data_files}
         write_json({**manifest, "outputs": hashed}, staged / MANIFEST)
         write_json(run_info, staged / "run.json")
         notes = install(staged, target, BUILD, names)
     return Written([target / name for name in names], notes)
+
+
+def _place(data: pa.Table | Path, columns: tuple[ColumnDoc, ...] | None, path: Path) -> None:
+    """Write a table to ``path`` (documented with ``columns`` unless None), or move a file there."""
+    if isinstance(data, Path):
+        shutil.move(data, path)
+    else:
+        write_parquet(data if columns is None else with_column_docs(data, columns), path)
 
 
 DATA_FILES = (
@@ -309,3 +334,14 @@ MATCHED = "matched.parquet"
 
 EPISODES = "episodes.parquet"
 """Written when the study's ``exposure:`` has ``episodes:`` (listed in the manifest then)."""
+
+STREAMED_FILES = {
+    "cohort": "cohort.parquet",
+    "population": "population.parquet",
+    "episodes": EPISODES,
+    "persontime": PERSONTIME,
+}
+"""The outputs a build streams from the engine to their files (they grow with the patients).
+
+``matched.parquet`` is not among them: its sets are filled in Python from the candidate pairs.
+"""

@@ -18,6 +18,7 @@ from importlib.metadata import PackageNotFoundError, version
 from pathlib import Path
 
 import pyarrow as pa
+import pyarrow.parquet as pq
 
 from pipeline.compile import EVIDENCE_COUNTS, Plan, compile_study, unmatched_definitions
 from pipeline.config import load_study
@@ -36,7 +37,7 @@ from pipeline.outputs import (
 from pipeline.outputs._matched import matched_outputs
 from pipeline.outputs._ownership import BUILD
 from pipeline.outputs._quality_log import check_row_accounting, locate_first_rows
-from pipeline.outputs._write import PERSONTIME
+from pipeline.outputs._write import STREAMED_FILES
 from pipeline.workflows.prepare import BuildOptions, Prepared, prepare
 
 __all__ = ["BuildOptions", "BuildResult", "build_study", "evidence_counts", "plan_study"]
@@ -52,7 +53,12 @@ def tool_version() -> str:
 
 @dataclass(frozen=True)
 class BuildResult:
-    """What a build produced: where, the plan it ran, and the engine's report."""
+    """What a build produced: where, the plan it ran, and the engine's report.
+
+    The patient-level outputs (cohort, population, episodes, person-time) were streamed from
+    the engine into their files and are not in ``run.outputs``: ``run.streamed`` has their
+    rows, :attr:`cohort_rows` the cohort's, and :meth:`read` reads a written file back.
+    """
 
     out: Path
     files: list[Path]
@@ -64,6 +70,23 @@ class BuildResult:
     """Things that may mislead without stopping the build: a definition matching no row."""
     attrition: pa.Table | None = None
     """The attrition log as written, with the matching lines (None: the run's own log)."""
+
+    @property
+    def cohort_rows(self) -> int:
+        """The cohort's patients: the rows written to ``cohort.parquet``."""
+        return self.run.streamed["cohort"]
+
+    def read(self, output: str = "cohort") -> pa.Table:
+        """A patient-level output as written (``cohort``, ``population``...), read from its file.
+
+        The build holds no copy of these in memory (they grow with the cohort), so this reads
+        the file the build wrote: the table has the file's schema, with the data dictionary's
+        column metadata on the cohort.
+
+        Raises:
+            KeyError: ``output`` is not a file this build streamed.
+        """
+        return pq.read_table(self.out / STREAMED_FILES[output])
 
     def attrition_lines(self) -> list[str]:
         """The attrition log as the build's terminal summary prints it, one line per step.
@@ -99,7 +122,8 @@ def build_study(
             holding files ascertain did not write (OutputFolderError); nothing is written.
     """
     ready = prepare(study_file, options, owner=BUILD)
-    # Person-time is streamed from the engine into a file here, then moved into the output.
+    # The patient-level outputs are streamed from the engine into files here, then moved into
+    # the output folder: the driver never holds one whole.
     with tempfile.TemporaryDirectory(prefix="ascertain-build-") as scratch:
         return _run_and_write(ready, Path(scratch), on_stage)
 
@@ -122,11 +146,9 @@ def _run_and_write(ready: Prepared, scratch: Path, on_stage: StageCallback | Non
         # Hashing the extract overlaps with the engine's work instead of adding to it.
         hashed_extract = hasher.submit(describe_files, extract_files, extract_root(extract))
         started = dt.datetime.now(dt.UTC)
-        streamed = {o: scratch / PERSONTIME for o, *_ in plan.outputs if o == "persontime"}
-        sinks = {
-            o: parquet_sink(path, dict(plan.output_columns).get(o, ()))
-            for o, path in streamed.items()
-        }
+        streamed = {o: scratch / STREAMED_FILES[o] for o, *_ in plan.outputs if o in STREAMED_FILES}
+        docs = {"cohort": plan.columns, "population": None, **dict(plan.output_columns)}
+        sinks = {o: parquet_sink(path, docs.get(o, ())) for o, path in streamed.items()}
         run = engine.run(plan, tables, on_stage=on_stage, sinks=sinks)
         finished = dt.datetime.now(dt.UTC)
         extract_entries = hashed_extract.result()
@@ -137,9 +159,11 @@ def _run_and_write(ready: Prepared, scratch: Path, on_stage: StageCallback | Non
         {table: counts["read"] for table, counts in quality.items()},
         located_quality,
         run.outputs["attrition"],
-        run.outputs["cohort"].num_rows,
+        run.streamed["cohort"],
     )
-    matched, attrition, matching = matched_outputs(run.outputs, study.matching)
+    matched, attrition, matching = matched_outputs(
+        run.outputs, study.matching, pq.read_schema(streamed["cohort"]), run.streamed["cohort"]
+    )
     manifest = make_manifest(
         tool_version=tool_version(),
         engine={
@@ -165,10 +189,10 @@ def _run_and_write(ready: Prepared, scratch: Path, on_stage: StageCallback | Non
         database=opened.database.as_manifest() if opened.database else None,
         keys=study_keys(study),
         rows={
-            "cohort": run.outputs["cohort"].num_rows,
-            **run.streamed,
+            "cohort": run.streamed["cohort"],
+            # the files the manifest has always counted: not the population
+            **{o: n for o, n in run.streamed.items() if o in ("persontime", "episodes")},
             **({"matched": matched.num_rows} if matched is not None else {}),
-            **({"episodes": run.outputs["episodes"].num_rows} if "episodes" in run.outputs else {}),
             **{row["source_table"]: row["n_rows"] for row in run.outputs["rows_read"].to_pylist()},
         },
     )
@@ -191,7 +215,7 @@ def _run_and_write(ready: Prepared, scratch: Path, on_stage: StageCallback | Non
             for u in unmatched
         ],
         "counts": {
-            "cohort_patients": run.outputs["cohort"].num_rows,
+            "cohort_patients": run.streamed["cohort"],
             "attrition": attrition.select(["step", "remaining"]).to_pylist(),
             **({"matching": dataclasses.asdict(matching)} if matching is not None else {}),
         },
@@ -208,8 +232,8 @@ def _run_and_write(ready: Prepared, scratch: Path, on_stage: StageCallback | Non
     }
     written = write_outputs(
         out,
-        cohort=run.outputs["cohort"],
-        population=run.outputs["population"],
+        cohort=streamed["cohort"],
+        population=streamed["population"],
         attrition=attrition,
         quality=located_quality,
         columns=plan.columns,
@@ -219,7 +243,7 @@ def _run_and_write(ready: Prepared, scratch: Path, on_stage: StageCallback | Non
         persontime_columns=dict(plan.output_columns).get("persontime", ()),
         matched=matched,
         matched_columns=dict(plan.output_columns).get("matched", ()),
-        episodes=run.outputs.get("episodes"),
+        episodes=streamed.get("episodes"),
         episodes_columns=dict(plan.output_columns).get("episodes", ()),
     )
     return BuildResult(
