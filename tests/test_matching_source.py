@@ -116,6 +116,13 @@ def test_a_patient_registered_after_the_set_date_is_refused(exposed: Path) -> No
     assert {"XE-08", "XE-09", "XE-10"}.isdisjoint(r["patient_id"] for r in rows)
 
 
+def test_an_untreated_patient_with_the_outcome_is_no_control(exposed: Path) -> None:
+    # XE-17 (F 1950, never treated, encounter 2016-02-01) has had heart failure since
+    # 2014-02-10: untreated, registered and in contact, but not free of the study's outcome on
+    # either set's date, so no control (the issue: "free of the outcome on the set's date").
+    assert "XE-17" not in {r["patient_id"] for r in _rows(exposed / "matched.parquet")}
+
+
 def test_controls_come_from_outside_the_cohort(exposed: Path) -> None:
     cohort = {str(p) for p in pq.read_table(exposed / "cohort.parquet")["patient_id"].to_pylist()}
     assert cohort == {"XE-01", "XE-03", "XE-04"}
