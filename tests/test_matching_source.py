@@ -251,6 +251,7 @@ class _Patient:
     records: tuple[tuple[str, dt.date], ...]  # (exposure group, date)
     contacts: tuple[dt.date, ...]
     in_cohort: bool
+    onset: dt.date | None = None  # heart failure, for exposed sets (case sets: first record)
 
     @property
     def first_exposure(self) -> dt.date | None:
@@ -285,6 +286,7 @@ def _patients(draw: st.DrawFn) -> list[_Patient]:
                 tuple(sorted({(g, _day(d)) for g, d in records})),
                 tuple(sorted({_day(c) for c in draw(st.lists(st.integers(-10, 20), max_size=4))})),
                 draw(st.booleans()),
+                _day(draw(st.one_of(st.none(), st.integers(-5, 20)))),
             )
         )
     return out
@@ -316,6 +318,7 @@ def _eligible(option: Matching, opener: _Patient, other: _Patient) -> bool:
     day = opener.first_exposure
     assert day is not None
     first = other.first_exposure
+    onset = other.onset if option.exposed_in is not None else None
     return (
         other.patient_id != opener.patient_id
         and other.sex == opener.sex
@@ -325,6 +328,7 @@ def _eligible(option: Matching, opener: _Patient, other: _Patient) -> bool:
         and (other.deregistration_date is None or other.deregistration_date >= day)
         and (other.death_date is None or other.death_date >= day)
         and (first is None or first > day)
+        and (onset is None or onset > day)
         and any(
             day - dt.timedelta(days=option.contact_within_days) <= c <= day for c in other.contacts
         )
@@ -418,7 +422,9 @@ def _run_plan(people: list[_Patient], option: Matching) -> list[tuple[str, list[
     onsets = pa.table(
         {
             "patient_id": [p.patient_id for p in people],
-            "onset_heart_failure": pa.array([p.first_exposure for p in people], pa.date32()),
+            "onset_heart_failure": pa.array(
+                [p.onset if option.exposed_in else p.first_exposure for p in people], pa.date32()
+            ),
         }
     )
     encounters = pa.table(
