@@ -116,6 +116,13 @@ def test_a_patient_registered_after_the_set_date_is_refused(exposed: Path) -> No
     assert {"XE-08", "XE-09", "XE-10"}.isdisjoint(r["patient_id"] for r in rows)
 
 
+def test_an_untreated_patient_with_the_outcome_is_no_control(exposed: Path) -> None:
+    # XE-17 (F 1950, never treated, encounter 2016-02-01) has had heart failure since
+    # 2014-02-10: untreated, registered and in contact, but not free of the study's outcome on
+    # either set's date, so no control (the issue: "free of the outcome on the set's date").
+    assert "XE-17" not in {r["patient_id"] for r in _rows(exposed / "matched.parquet")}
+
+
 def test_controls_come_from_outside_the_cohort(exposed: Path) -> None:
     cohort = {str(p) for p in pq.read_table(exposed / "cohort.parquet")["patient_id"].to_pylist()}
     assert cohort == {"XE-01", "XE-03", "XE-04"}
@@ -244,6 +251,7 @@ class _Patient:
     records: tuple[tuple[str, dt.date], ...]  # (exposure group, date)
     contacts: tuple[dt.date, ...]
     in_cohort: bool
+    onset: dt.date | None = None  # heart failure, for exposed sets (case sets: first record)
 
     @property
     def first_exposure(self) -> dt.date | None:
@@ -278,6 +286,7 @@ def _patients(draw: st.DrawFn) -> list[_Patient]:
                 tuple(sorted({(g, _day(d)) for g, d in records})),
                 tuple(sorted({_day(c) for c in draw(st.lists(st.integers(-10, 20), max_size=4))})),
                 draw(st.booleans()),
+                _day(draw(st.one_of(st.none(), st.integers(-5, 20)))),
             )
         )
     return out
@@ -309,6 +318,7 @@ def _eligible(option: Matching, opener: _Patient, other: _Patient) -> bool:
     day = opener.first_exposure
     assert day is not None
     first = other.first_exposure
+    onset = other.onset if option.exposed_in is not None else None
     return (
         other.patient_id != opener.patient_id
         and other.sex == opener.sex
@@ -318,6 +328,7 @@ def _eligible(option: Matching, opener: _Patient, other: _Patient) -> bool:
         and (other.deregistration_date is None or other.deregistration_date >= day)
         and (other.death_date is None or other.death_date >= day)
         and (first is None or first > day)
+        and (onset is None or onset > day)
         and any(
             day - dt.timedelta(days=option.contact_within_days) <= c <= day for c in other.contacts
         )
@@ -411,7 +422,9 @@ def _run_plan(people: list[_Patient], option: Matching) -> list[tuple[str, list[
     onsets = pa.table(
         {
             "patient_id": [p.patient_id for p in people],
-            "onset_heart_failure": pa.array([p.first_exposure for p in people], pa.date32()),
+            "onset_heart_failure": pa.array(
+                [p.onset if option.exposed_in else p.first_exposure for p in people], pa.date32()
+            ),
         }
     )
     encounters = pa.table(

@@ -332,7 +332,8 @@ def matched_docs(ctx: CompileContext) -> tuple[ColumnDoc, ...]:
         )
         role = (
             "exposed (the set's new user of the group) or control",
-            "exposed: the set's own patient; control: not yet exposed to any group on the date",
+            "exposed: the set's own patient; control: not yet exposed to any group, and free "
+            "of the study's outcomes, on the date",
         )
         index = (
             "the set's date: the exposed patient's index date; a control's index date in the "

@@ -14,8 +14,10 @@ cohort pool's own, read over this pool.
   the matching variables, registration, death and ``excluded_from``, the first day the
   patient can no longer be a control: the outcome's onset from ``condition_onsets`` (the
   condition's first onset over the whole history, whatever the cohort's look-back), or, for
-  exposed sets, the first record of ANY exposure group (``evidence_events``, over the whole
-  history; a patient treated with the comparator is not an unexposed control).
+  exposed sets, the earliest of the first record of ANY exposure group (``evidence_events``,
+  over the whole history; a patient treated with the comparator is not an unexposed control)
+  and the first onset of ANY outcome of the study (``condition_onsets``, as for case sets: a
+  control, like the issue's controls, is free of the outcome on the set's date).
 - **Eligible at the set's date** (``matching_candidates``): same sex, birth year within
   ``birth_year_within``, same practice with ``same_practice``; not the set's own patient;
   registered on the set's date (``registration_date`` on or before it, and
@@ -67,10 +69,22 @@ WHERE :onset IS NOT NULL
 """
 
 _EXPOSURE_FIRST = """
-SELECT e.patient_id, MIN(e.event_date) AS excluded_from
+SELECT e.patient_id, e.event_date AS first_day
 FROM :events AS e
 JOIN :groups ON g.evidence = e.evidence
-GROUP BY e.patient_id
+"""
+
+_OUTCOME_DAY = """
+SELECT patient_id, :onset AS first_day
+FROM :onsets
+WHERE :onset IS NOT NULL
+"""
+
+# An exposed set's control must be untreated and free of every outcome of the study.
+_EXPOSED_FIRST = """
+SELECT patient_id, MIN(first_day) AS excluded_from
+FROM :days
+GROUP BY patient_id
 """
 
 _SETS = """
@@ -113,11 +127,16 @@ def _firsts(study: Study, option: Matching) -> exp.Expression:
     """Per patient, the first day they can no longer be a control, as subquery ``f``."""
     if option.exposed_in is not None:
         assert study.exposure is not None  # checked at load (matching_problems)
-        first = query(
+        days: exp.Query = query(
             _EXPOSURE_FIRST,
             events=exp.to_table(names.EVIDENCE_EVENTS),
             groups=groups_table(study.exposure),
         )
+        for outcome in sorted(study.outcomes.conditions):
+            onset = exp.column(names.onset_column(outcome))
+            day = query(_OUTCOME_DAY, onset=onset, onsets=exp.to_table(names.CONDITION_ONSETS))
+            days = days.union(day, distinct=False)
+        first = query(_EXPOSED_FIRST, days=days.subquery("d"))
     else:
         onset = exp.column(names.onset_column(option.opener))
         first = query(_OUTCOME_FIRST, onset=onset, onsets=exp.to_table(names.CONDITION_ONSETS))
@@ -162,7 +181,10 @@ def source_candidates_query(
 def pool_description(option: Matching) -> str:
     """One line on the pool stage for ``Plan.describe()``."""
     if option.exposed_in is not None:
-        return "the extract's patients with matching variables, registration and first exposure"
+        return (
+            "the extract's patients with matching variables, registration and first exposure "
+            "or outcome onset"
+        )
     return f"the extract's patients with matching variables, registration and {option.opener} onset"
 
 

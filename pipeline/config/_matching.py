@@ -18,7 +18,8 @@ date in the pool ``controls_from`` names:
   set's date (registration date, when recorded, on or before it; no deregistration before
   it), alive on it, in contact, and free of the outcome (no onset on or before the set's
   date, over the whole history) or, for exposed sets, not yet exposed (no record of ANY
-  exposure group on or before the set's date).
+  exposure group on or before the set's date) and free of every outcome of the study (no
+  onset of any of ``outcomes.conditions`` on or before it, over the whole history).
 
 "Any group", not only the set's own: a patient already treated with the comparator is not an
 untreated control, and counting only the set's group would let comparator users stand for the
@@ -206,7 +207,8 @@ def _exposed_text(option: Matching) -> str:
         f"{option.exposed_in} in the cohort, from the source population (the extract's "
         f"patients), {_like(option)}, registered, alive, in contact within "
         f"{option.contact_within_days} days and with no record of any exposure group on or "
-        f"before the new user's index date, {_drawn(option)}"
+        "before the new user's index date, and free of the study's outcomes on it, "
+        f"{_drawn(option)}"
     )
 
 

@@ -1349,8 +1349,8 @@ FROM evidence_events
 GROUP BY
   evidence;
 
--- stage matching_pool [table]: the extract's patients with matching variables, registration and first exposure
--- reads: evidence_events, patient_base
+-- stage matching_pool [table]: the extract's patients with matching variables, registration and first exposure or outcome onset
+-- reads: condition_onsets, evidence_events, patient_base
 SELECT
   p.patient_id,
   p.sex,
@@ -1363,15 +1363,27 @@ SELECT
 FROM patient_base AS p
 LEFT JOIN (
   SELECT
-    e.patient_id,
-    MIN(e.event_date) AS excluded_from
-  FROM evidence_events AS e
-  JOIN (VALUES
-    (1640576594, 'dpp4'),
-    (2032589656, 'sulfonylurea')) AS g(evidence, exposure_group)
-    ON g.evidence = e.evidence
+    patient_id,
+    MIN(first_day) AS excluded_from
+  FROM (
+    SELECT
+      e.patient_id,
+      e.event_date AS first_day
+    FROM evidence_events AS e
+    JOIN (VALUES
+      (1640576594, 'dpp4'),
+      (2032589656, 'sulfonylurea')) AS g(evidence, exposure_group)
+      ON g.evidence = e.evidence
+    UNION ALL
+    SELECT
+      patient_id,
+      onset_heart_failure AS first_day
+    FROM condition_onsets
+    WHERE
+      NOT onset_heart_failure IS NULL
+  ) AS d
   GROUP BY
-    e.patient_id
+    patient_id
 ) AS f
   ON f.patient_id = p.patient_id;
 
